@@ -26,8 +26,8 @@ import itertools
 import numpy as np
 import qutip
 
-# Frequencies solved in one batched call (bounds the memory of the stacked matrices).
-_CHUNK = 256
+# Matrix entries stacked in one batched solve (bounds its memory to about 64 MB).
+_BATCH_ENTRIES = 4_000_000
 
 
 def spin_operators(n_spins: int) -> list[tuple[qutip.Qobj, qutip.Qobj, qutip.Qobj]]:
@@ -269,12 +269,13 @@ def qutip_spectrum(freqs_hz, states: list[dict], jumps: list[dict]) -> np.ndarra
     reduced = liouvillian[keep][:, keep].toarray()
     identity = np.eye(len(keep))
     spectrum = np.empty(len(freqs), dtype=complex)
-    for start in range(0, len(freqs), _CHUNK):
-        omega = 2.0 * np.pi * freqs[start:start + _CHUNK]
+    chunk = max(1, _BATCH_ENTRIES // len(keep) ** 2)
+    for start in range(0, len(freqs), chunk):
+        omega = 2.0 * np.pi * freqs[start:start + chunk]
         resolvent = 1j * omega[:, None, None] * identity - reduced
         rhs = np.broadcast_to(rho0[keep][:, None], (len(omega), len(keep), 1))
         solution = np.linalg.solve(resolvent, rhs)[..., 0]
-        spectrum[start:start + _CHUNK] = 2.0 * solution @ row[keep]
+        spectrum[start:start + chunk] = 2.0 * solution @ row[keep]
     return spectrum
 
 
