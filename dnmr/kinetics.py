@@ -5,8 +5,17 @@ Constants are CODATA values from :mod:`scipy.constants`.
 """
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
 import numpy as np
 from scipy import constants
+
+from .errors import InputError
+
+if TYPE_CHECKING:
+    from .model import Model
 
 BOLTZMANN = constants.k  # J/K
 PLANCK = constants.h  # J s
@@ -65,3 +74,104 @@ def boltzmann_populations(free_energies_kj_mol: np.ndarray, temperature_k: float
     g = np.asarray(free_energies_kj_mol, dtype=float) * 1e3
     w = np.exp(-(g - g.min()) / (GAS_CONSTANT * temperature_k))
     return w / w.sum()
+
+
+# --- exchange processes as elementary jumps ---------------------------------------------------
+
+@dataclass(frozen=True)
+class Jump:
+    """One elementary, directed exchange: state `source` -> state `target` at `rate_per_s` (s^-1).
+
+    `permutation[i]` is the index of the spin that spin `i` of the source state becomes in the target
+    state (spins indexed in the model's order, ``model.spins``).  `process` is the index of the model's exchange process it belongs to and
+    `forward` is False for the reverse (detailed balance) or inverse-permutation partner.
+    """
+
+    source: int
+    target: int
+    permutation: tuple[int, ...]
+    rate_per_s: float
+    process: int
+    forward: bool = True
+
+
+def _permutation(model: "Model", ex) -> tuple[int, ...]:
+    spins = model.spins  # one spin order for every state
+    return tuple(spins.index(ex.spins.get(name, name)) for name in spins)
+
+
+def _inverse(perm: tuple[int, ...]) -> tuple[int, ...]:
+    inv = [0] * len(perm)
+    for i, j in enumerate(perm):
+        inv[j] = i
+    return tuple(inv)
+
+
+def exchange_jumps(model: "Model", rates_per_s: np.ndarray | None = None) -> list[Jump]:
+    """All elementary jumps of a model, with reverse processes implied by detailed balance.
+
+    For a process a -> b (a != b) at rate k the reverse b -> a runs at k p_a / p_b; a mutual exchange
+    (a == b) implies its inverse permutation at the same rate.  A reverse that the model lists itself
+    must agree with this (relative tolerance 1e-6), and is then not added twice.
+
+    Parameters
+    ----------
+    model : Model
+        The model.
+    rates_per_s : array, optional
+        Forward rates (s^-1) per process; default ``model.rates()``.
+    """
+    rates = model.rates() if rates_per_s is None else np.asarray(rates_per_s, dtype=float)
+    pop = model.populations()
+    listed = []
+    for i, ex in enumerate(model.exchanges):
+        listed.append((model.state_index(ex.from_state), model.state_index(ex.to_state), _permutation(model, ex)))
+    partner: dict[int, int] = {}
+    for i, (a, b, perm) in enumerate(listed):
+        for j in range(i + 1, len(listed)):
+            if j not in partner and listed[j] == (b, a, _inverse(perm)) and i not in partner:
+                partner[i], partner[j] = j, i
+    jumps: list[Jump] = []
+    for i, (a, b, perm) in enumerate(listed):
+        k = float(rates[i])
+        if a != b and pop[b] == 0:
+            raise InputError(
+                f'state "{model.states[b].name}" has population 0 but is reached by exchange;'
+                " give it a positive population", where=f"exchange[{i}].to")
+        k_back = k * pop[a] / pop[b] if a != b else k
+        if i in partner:
+            j = partner[i]
+            if not math.isclose(float(rates[j]), k_back, rel_tol=1e-6, abs_tol=1e-300):
+                rule = "detailed balance k_rev = k p_from / p_to" if a != b else "equal rates for a permutation and its inverse"
+                raise InputError(
+                    f"exchange {i} and its listed reverse {j} disagree: {rule} needs {k_back:.6g} s^-1,"
+                    f" got {float(rates[j]):.6g}; drop the reverse (it is implied) or fix its rate",
+                    where=f"exchange[{j}].rate_per_s")
+            if j < i:
+                continue
+        jumps.append(Jump(a, b, perm, k, i, True))
+        if a != b or perm != _inverse(perm):
+            jumps.append(Jump(b, a, _inverse(perm), k_back, i, False))
+    return jumps
+
+
+def rate_matrix(n_states: int, jumps: list[Jump]) -> np.ndarray:
+    """Rate matrix K (s^-1) of the state populations, dp/dt = K p (mutual exchanges do not enter)."""
+    K = np.zeros((n_states, n_states))
+    for jump in jumps:
+        if jump.source != jump.target:
+            K[jump.target, jump.source] += jump.rate_per_s
+            K[jump.source, jump.source] -= jump.rate_per_s
+    return K
+
+
+def check_stationary(K: np.ndarray, populations: np.ndarray) -> None:
+    """Raise InputError unless `populations` is a stationary vector of the rate matrix `K` (K p = 0)."""
+    scale = max(1.0, float(np.abs(K).max()))
+    residual = np.abs(K @ populations)
+    if residual.max() > 1e-9 * scale:
+        worst = int(residual.argmax())
+        raise InputError(
+            f"the exchange rates do not keep the populations at equilibrium (state {worst} drifts at"
+            f" {residual.max():.3g} s^-1); check populations and the rates of processes listed in both directions",
+            where="exchange")

@@ -1,0 +1,133 @@
+"""Engine speed, measured as ratios in one run (not a test).
+
+(a) two-site exchange at 8192 points: ``dnmr.simulate`` / a vectorised McConnell closed form on the
+    same grid (goal <= 1.0);
+(b) six coupled spins with mutual exchange at 8192 points: ``dnmr.simulate`` / dense eigendecomposition
+    of the whole, unfactored single-quantum Liouvillian (goal <= 0.1);
+(c) peak memory of a seven-spin simulation (tracemalloc, numpy allocations included).
+
+Run:  python benchmarks/engine_speed.py
+"""
+from __future__ import annotations
+
+import time
+import tracemalloc
+
+import numpy as np
+
+import dnmr
+from dnmr.engine import SpinParameters, block_liouvillian, block_pattern, block_start
+from dnmr.liouville import coherence_blocks
+
+POINTS = 8192
+
+
+def best_time(fn, repeat: int, inner: int) -> float:
+    """Best mean time (s) of `inner` calls over `repeat` rounds."""
+    best = np.inf
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        for _ in range(inner):
+            fn()
+        best = min(best, (time.perf_counter() - t0) / inner)
+    return best
+
+
+def mcconnell(hz, nu_a, nu_b, k_ab, p_a, width_hz):
+    """Two-site McConnell lineshape (J. Chem. Phys. 28, 430 (1958)): a 2x2 solve per point, vectorised."""
+    p_b = 1.0 - p_a
+    k_ba = k_ab * p_a / p_b
+    z = 2j * np.pi * hz + np.pi * width_hz
+    m_a = z - 2j * np.pi * nu_a + k_ab
+    m_b = z - 2j * np.pi * nu_b + k_ba
+    return 2.0 * ((m_b + k_ab) * p_a + (m_a + k_ba) * p_b) / (m_a * m_b - k_ab * k_ba)
+
+
+def two_site_models(rates):
+    states = [dnmr.State("major", {"H": 3.10}, linewidth_hz=1.5, population=0.62),
+              dnmr.State("minor", {"H": 3.35}, linewidth_hz=1.5, population=0.38)]
+    return [dnmr.Model(dnmr.Spectrometer(400.0), states, [dnmr.Exchange("major", "minor", rate_per_s=k)],
+                       window_ppm=(2.6, 3.8), points=POINTS) for k in rates]
+
+
+def bench_two_site() -> float:
+    rates = np.geomspace(1.0, 1e4, 64)
+    models = two_site_models(rates)
+    hz = np.linspace(2.6, 3.8, POINTS) * 400.0
+    it = iter(range(10**9))
+
+    def engine():
+        dnmr.simulate(models[next(it) % len(models)])
+
+    def closed():
+        k = rates[next(it) % len(rates)]
+        mcconnell(hz, 3.10 * 400.0, 3.35 * 400.0, k, 0.62, 1.5).real
+
+    t_engine = best_time(engine, 7, 200)
+    t_closed = best_time(closed, 7, 200)
+    print(f"(a) two-site, {POINTS} points: simulate {t_engine * 1e6:.0f} us, closed form {t_closed * 1e6:.0f} us,"
+          f" ratio {t_engine / t_closed:.2f} (goal <= 1.0)")
+    return t_engine / t_closed
+
+
+def six_spin_model(n_spins: int = 6) -> dnmr.Model:
+    """An invented ring-flip of a coupled six-spin chain: the flip reverses the chain."""
+    names = [f"H{i + 1}" for i in range(n_spins)]
+    shifts = {n: 1.2 + 0.37 * i + 0.05 * (i % 2) for i, n in enumerate(names)}
+    couplings = {f"{a}-{b}": (7.5 if j == i + 1 else 1.2) for i, a in enumerate(names)
+                 for j, b in enumerate(names) if j > i and j - i <= 2}
+    state = dnmr.State("chain", shifts, couplings, linewidth_hz=1.0, population=1.0)
+    flip = {a: b for a, b in zip(names, reversed(names))}
+    return dnmr.Model(dnmr.Spectrometer(400.0), [state], [dnmr.Exchange("chain", "chain", flip, rate_per_s=40.0)],
+                      points=POINTS)
+
+
+def dense_unfactored(model: dnmr.Model, hz: np.ndarray) -> np.ndarray:
+    """Baseline: one dense Liouvillian over all single-quantum coherences, one eigendecomposition."""
+    params = SpinParameters.from_model(model)
+    blocks = [block_pattern(b, params.topology) for b in coherence_blocks(len(model.spins))]
+    mats = [block_liouvillian(p, params) for p in blocks]
+    n = sum(len(m) for m in mats)
+    L = np.zeros((n, n), complex)  # assemble unfactored (block structure not exploited below)
+    detect = np.concatenate([p.detect for p in blocks])
+    start = np.concatenate([block_start(p, params.populations) for p in blocks])
+    at = 0
+    for m in mats:
+        L[at:at + len(m), at:at + len(m)] = m
+        at += len(m)
+    lam, V = np.linalg.eig(L)
+    amp = (detect @ V) * np.linalg.solve(V, start)
+    iw = 2j * np.pi * hz
+    out = np.zeros(hz.size, complex)
+    for c, p in zip(amp, lam):
+        out += c / (iw - p)
+    return out
+
+
+def bench_six_spins() -> float:
+    model = six_spin_model()
+    spectrum = dnmr.simulate(model)
+    ref = dense_unfactored(model, spectrum.hz)
+    err = np.abs(spectrum.intensity - ref.real).max() / ref.real.max()
+    t_engine = best_time(lambda: dnmr.simulate(model), 3, 3)
+    t_dense = best_time(lambda: dense_unfactored(model, spectrum.hz), 3, 1)
+    print(f"(b) six spins, mutual exchange, {POINTS} points: simulate {t_engine * 1e3:.0f} ms, dense unfactored"
+          f" {t_dense * 1e3:.0f} ms, ratio {t_engine / t_dense:.3f} (goal <= 0.1); max difference {err:.1e}")
+    return t_engine / t_dense
+
+
+def bench_memory_seven() -> None:
+    model = six_spin_model(7)
+    tracemalloc.start()
+    t0 = time.perf_counter()
+    dnmr.simulate(model)
+    elapsed = time.perf_counter() - t0
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    print(f"(c) seven spins, {POINTS} points: {elapsed:.2f} s, peak memory {peak / 2**20:.0f} MiB")
+
+
+if __name__ == "__main__":
+    bench_two_site()
+    bench_six_spins()
+    bench_memory_seven()

@@ -1,0 +1,141 @@
+"""Simulated spectra: the result object of :func:`simulate` and the function itself."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .engine import frequency_grid_ppm, lineshape_terms
+from .model import Model
+from .output import atomic_write_text
+
+
+@dataclass(frozen=True)
+class Spectrum:
+    """A simulated spectrum on a ppm grid.
+
+    Attributes
+    ----------
+    ppm : ndarray
+        Chemical shift axis (ppm), ascending.
+    intensity : ndarray
+        Absorption as a spectral density (per Hz); integrates to sum of population x spins.
+    dispersion : ndarray
+        The matching dispersion signal (per Hz), for phase errors.
+    frequency_mhz : float
+        Spectrometer frequency of the observed nucleus (MHz).
+    title : str
+        The model's title.
+    """
+
+    ppm: np.ndarray
+    intensity: np.ndarray
+    dispersion: np.ndarray
+    frequency_mhz: float
+    title: str = ""
+
+    @property
+    def hz(self) -> np.ndarray:
+        """Frequency axis (Hz from 0 ppm): ppm x frequency_mhz."""
+        return self.ppm * self.frequency_mhz
+
+    def integral(self) -> float:
+        """Area under the absorption over the grid (trapezoid rule on the Hz axis)."""
+        return float(np.trapezoid(self.intensity, self.hz))
+
+    def maxima_ppm(self, prominence: float = 1e-3) -> np.ndarray:
+        """Shifts (ppm) of the local maxima of the absorption, highest ppm first.
+
+        Parameters
+        ----------
+        prominence : float
+            Minimum prominence relative to the tallest point.
+        """
+        from scipy.signal import find_peaks
+
+        peaks, _ = find_peaks(self.intensity, prominence=prominence * self.intensity.max())
+        return self.ppm[peaks][::-1]
+
+    def to_csv(self, path: str | Path, overwrite: bool = False) -> Path:
+        """Write columns ppm, hz, intensity, dispersion (high ppm first, full precision), atomically."""
+        order = slice(None, None, -1)
+        rows = zip(self.ppm[order], self.hz[order], self.intensity[order], self.dispersion[order])
+        lines = ["ppm,hz,intensity,dispersion"]
+        lines += [",".join(repr(float(v)) for v in row) for row in rows]
+        return atomic_write_text(path, "\n".join(lines) + "\n", overwrite=overwrite)
+
+    def plot(self, ax=None, **line_kwargs):
+        """Draw the absorption against ppm (high to low); returns the matplotlib Axes."""
+        from .plotting import plot_spectrum
+
+        return plot_spectrum(self, ax=ax, **line_kwargs)
+
+
+def simulate(
+    model: Model,
+    ppm: np.ndarray | None = None,
+    *,
+    window_ppm: tuple[float, float] | None = None,
+    points: int | None = None,
+) -> Spectrum:
+    """Simulate the exchange-broadened spectrum of `model`.
+
+    Parameters
+    ----------
+    model : Model
+        Spin system, populations and exchange rates.
+    ppm : array, optional
+        Chemical shifts (ppm) to evaluate at; default is the model's window.
+    window_ppm : (float, float), optional
+        Override the model's window (ppm, either order).
+    points : int, optional
+        Override the number of points.
+
+    Returns
+    -------
+    Spectrum
+        Absorption (and dispersion) per Hz on an ascending ppm axis.
+    """
+    grid = np.asarray(ppm, dtype=float) if ppm is not None else frequency_grid_ppm(model, window_ppm, points)
+    sf = model.spectrometer.frequency_mhz
+    if grid.size > 1 and grid[0] > grid[-1]:
+        grid = grid[::-1]
+    if np.any(grid[1:] <= grid[:-1]):
+        grid = np.unique(grid)
+    values = lineshape_terms(model).evaluate(grid * sf)
+    return Spectrum(grid, values.real, -values.imag, sf, model.title)
+
+
+def simulate_over(
+    model: Model,
+    *,
+    rates_per_s: list[float] | None = None,
+    temperatures_k: list[float] | None = None,
+) -> tuple[list[Spectrum], list[str]]:
+    """Simulate `model` over a list of rates (first process, s^-1) or of temperatures (K), on one grid.
+
+    Returns the spectra and a label for each ("k = 120 s^-1" or "250 K").  Temperatures need rates given
+    as activation parameters (or populations as free energies) for anything to change.
+    """
+    from .errors import InputError
+
+    if (rates_per_s is None) == (temperatures_k is None):
+        raise InputError("give either rates or temperatures")
+    if rates_per_s is not None:
+        if not model.exchanges:
+            raise InputError("the model has no exchange process to vary", where="exchange")
+        for k in rates_per_s:
+            if not (k >= 0 and np.isfinite(k)):
+                raise InputError(f"rates must be finite and not negative, got {k!r}", where="--rates")
+        others = list(model.rates())[1:]
+        models = [model.with_rates([k, *others]) for k in rates_per_s]
+        labels = [f"k = {k:.3g} s$^{{-1}}$" for k in rates_per_s]
+    else:
+        for t in temperatures_k:
+            if not (t > 0 and np.isfinite(t)):
+                raise InputError(f"temperatures must be positive kelvin, got {t!r}", where="--temperatures")
+        models = [model.at_temperature(t) for t in temperatures_k]
+        labels = [f"{t:.0f} K" for t in temperatures_k]
+    grid = frequency_grid_ppm(models[0])
+    return [simulate(m, grid) for m in models], labels
