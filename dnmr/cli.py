@@ -57,6 +57,65 @@ def _json_safe(obj):
     return obj
 
 
+def _parse_list(text: str, option: str) -> list[float]:
+    try:
+        values = [float(v) for v in text.replace(";", ",").split(",") if v.strip()]
+    except ValueError:
+        raise InputError(f"expected numbers separated by commas, got {text!r}", where=option) from None
+    if not values:
+        raise InputError("expected at least one number", where=option)
+    return values
+
+
+@cli.command()
+@click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path), required=True,
+              help="CSV file to write (columns ppm, hz, intensity, dispersion).")
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Also draw the spectrum to this image (PNG, SVG or PDF).")
+@click.option("--points", type=click.IntRange(16, 2**22), help="Number of points (overrides the model file).")
+@click.option("--overwrite", is_flag=True, help="Replace existing output files.")
+def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int | None, overwrite: bool) -> None:
+    """Simulate the exchange-broadened spectrum of MODEL_FILE."""
+    from . import load_model, simulate as run
+    from .output import save_figure
+
+    model = load_model(model_file)
+    spectrum = run(model, points=points)
+    spectrum.to_csv(output, overwrite=overwrite)
+    click.echo(f"wrote {output} ({len(spectrum.ppm)} points, {spectrum.ppm.min():.3f}-{spectrum.ppm.max():.3f} ppm)")
+    if plot_file:
+        ax = spectrum.plot()
+        save_figure(ax.figure, plot_file, overwrite=overwrite)
+        click.echo(f"wrote {plot_file}")
+
+
+@cli.command()
+@click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--rates", help="Forward rates (s^-1) of the first exchange process, comma separated.")
+@click.option("--temperatures", help="Temperatures (K), comma separated (rates from the model's activation parameters).")
+@click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path), required=True,
+              help="Image to write (PNG, SVG or PDF).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing image.")
+def stack(model_file: Path, rates: str | None, temperatures: str | None, output: Path, overwrite: bool) -> None:
+    """Draw MODEL_FILE's spectrum over a list of rates or temperatures, stacked (a coalescence figure)."""
+    from . import load_model
+    from .output import save_figure
+    from .plotting import plot_stack
+    from .spectrum import simulate_over
+
+    if (rates is None) == (temperatures is None):
+        raise InputError("give either --rates or --temperatures", where="stack")
+    model = load_model(model_file)
+    if rates:
+        spectra, labels = simulate_over(model, rates_per_s=_parse_list(rates, "--rates"))
+    else:
+        spectra, labels = simulate_over(model, temperatures_k=_parse_list(temperatures, "--temperatures"))
+    ax = plot_stack(spectra, labels, title=model.title)
+    save_figure(ax.figure, output, overwrite=overwrite)
+    click.echo(f"wrote {output}")
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point of the ``dnmr`` console script."""
     try:
