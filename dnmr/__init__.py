@@ -12,10 +12,11 @@ from __future__ import annotations
 from .errors import InputError
 from .model import Exchange, Model, Spectrometer, State
 from .modelfile import load_model
+from .readers import MeasuredSpectrum, read_spectrum
 from .spectrum import Spectrum, simulate, simulate_over
 
 __version__ = "0.1.0"
 __all__ = [
     "Exchange", "InputError", "Model", "Spectrometer", "Spectrum", "State",
-    "load_model", "simulate", "simulate_over", "__version__",
+    "MeasuredSpectrum", "load_model", "read_spectrum", "simulate", "simulate_over", "__version__",
 ]
