@@ -497,7 +497,7 @@ def _check_jcamp_budget(text: str) -> None:
     """Refuse truncated files, and declared point counts or DUP runs that would expand past MAX_POINTS."""
     if not _END_LABEL.search(text):
         raise InputError(
-            "the file ends without the closing ##END= record: it is truncated; export it again"
+            "the file has no closing ##END= record: it is truncated or not JCAMP-DX; export it again"
         )
     for match in _COUNT_LABEL.finditer(text):
         for value in match.group(2).split(","):
