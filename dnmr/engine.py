@@ -222,7 +222,7 @@ def block_liouvillian(pattern: BlockPattern, params: SpinParameters) -> np.ndarr
         L[pattern.flip_rows, pattern.flip_cols] = (-1j * TWO_PI) * pattern.flip_values * params.couplings_hz[
             pattern.flip_state, pattern.flip_pair]
     if len(pattern.move_rows):
-        L[pattern.move_rows, pattern.move_cols] = rates @ pattern.move_weights
+        L[pattern.move_rows, pattern.move_cols] += rates @ pattern.move_weights  # unique; may meet couplings
     return L
 
 

@@ -149,3 +149,20 @@ def permutation_map(block: CoherenceBlock, perm: tuple[int, ...]) -> np.ndarray:
     """
     r, s = block.pairs()
     return _index_in_block(block, _permute_states(r, perm), _permute_states(s, perm))
+
+
+def hamiltonian(shifts_hz: np.ndarray, couplings_hz: np.ndarray) -> np.ndarray:
+    """Hilbert-space spin Hamiltonian (Hz) in the product basis, for energy levels and checks.
+
+    H = sum_i nu_i Iz_i + sum_{i<j} J_ij (I_i . I_j), with `couplings_hz` over the pairs i < j in
+    ``combinations`` order.  Dense 2^N x 2^N; the engine itself never forms it.
+    """
+    n = len(shifts_hz)
+    states = np.arange(2**n)
+    m = 0.5 - _bits(states, n)
+    H = np.diag(np.asarray(shifts_hz, dtype=float) @ m).astype(float)
+    for (i, j), J in zip(combinations(range(n), 2), couplings_hz):
+        H[states, states] += J * m[i] * m[j]
+        flip = ((states >> i) & 1) != ((states >> j) & 1)
+        H[states[flip] ^ ((1 << i) | (1 << j)), states[flip]] += 0.5 * J
+    return H
