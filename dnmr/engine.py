@@ -39,7 +39,7 @@ from .model import Model
 TWO_PI = 2.0 * np.pi
 #: Largest condition number of an eigenvector basis that is trusted (rounding error ~ 1e-16 x this).
 EIGENBASIS_CONDITION_LIMIT = 1e6
-#: Lines whose peak height is below this fraction of the tallest are dropped (a bound on the error).
+#: Lines below this fraction of the tallest peak and of the largest area are dropped (bounds the error).
 LINE_HEIGHT_CUTOFF = 1e-15
 
 
@@ -261,11 +261,13 @@ def _schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurB
 
 
 def _prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Drop lines whose peak height |c|/|Re lambda| is negligible against the tallest one."""
-    height = np.abs(amplitudes) / np.maximum(-poles.real, 1e-300)
-    if height.size == 0:
+    """Drop lines that matter nowhere: peak height |c|/|Re lambda| and area |c| both negligible
+    against the largest ones (so neither any point nor the integral moves by more than the cutoff)."""
+    if amplitudes.size == 0:
         return poles, amplitudes
-    keep = height > LINE_HEIGHT_CUTOFF * height.max()
+    area = np.abs(amplitudes)
+    height = area / np.maximum(-poles.real, 1e-300)
+    keep = (height > LINE_HEIGHT_CUTOFF * height.max()) | (area > LINE_HEIGHT_CUTOFF * area.max())
     return poles[keep], amplitudes[keep]
 
 
