@@ -116,6 +116,82 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
     click.echo(f"wrote {output}")
 
 
+@cli.command()
+@click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Draw the Eyring plot with residuals to this image (PNG, SVG or PDF).")
+@click.option("--process", help="Analyse only this exchange process (default: each process in the table).")
+@click.option("--temperature-stderr", type=float,
+              help="Standard error of every temperature, K (for tables without a temperature_stderr column).")
+@click.option("--transmission", type=float, default=1.0, show_default=True, help="Transmission coefficient kappa.")
+@click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Set-point calibration table (CSV: setpoint_k, temperature_k); the rates' temperatures are set-points.")
+@click.option("--calibration-degree", type=click.IntRange(1, 3), default=1, show_default=True,
+              help="Polynomial degree of the calibration.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing image.")
+def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
+           temperature_stderr: float | None, transmission: float, calibration_file: Path | None,
+           calibration_degree: int, overwrite: bool) -> None:
+    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
+
+    With --json the first (or only) process's results are at the top level and, for several processes,
+    all of them are listed under "processes".
+    """
+    from .activation import eyring_fit_file, results_to_dict
+    from .output import save_figure
+    from .plotting import plot_eyring
+    from .thermometry import read_temperature_calibration
+
+    calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
+    results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
+                              transmission=transmission, calibration=calibration)
+    if plot_file:
+        save_figure(plot_eyring(results), plot_file, overwrite=overwrite)
+    if as_json:
+        out = results_to_dict(results)
+        if calibration is not None:
+            out["calibration"] = calibration.to_dict()
+        print_json(out)
+    else:
+        parts = ([calibration.report()] if calibration is not None else []) + [r.report() for r in results]
+        click.echo("\n\n".join(parts))
+    if plot_file:
+        click.echo(f"wrote {plot_file}", err=as_json)
+
+
+@cli.command()
+@click.argument("liquid", type=click.Choice(["methanol", "glycol"]))
+@click.option("--shift-difference", "shift_differences", type=float, multiple=True,
+              help="dd = delta(OH) - delta(CH3 or CH2) in ppm; repeat for several readings.")
+@click.option("--spectrum", "spectra", type=click.Path(path_type=Path), multiple=True,
+              help="Thermometer spectrum (text, JCAMP-DX or processed folder); repeat for several.")
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
+def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tuple[Path, ...], as_json: bool) -> None:
+    """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982)."""
+    from .thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+
+    if not shift_differences and not spectra:
+        raise InputError("give --shift-difference PPM or --spectrum FILE", where="thermometer")
+    readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
+    readings += [temperature_from_file(path, liquid) for path in spectra]
+    if as_json:
+        print_json(readings_to_dict(readings))
+    else:
+        click.echo("\n".join(r.report() for r in readings))
+        click.echo(THERMOMETER_CAUTIONS)
+
+
+@cli.command()
+@click.argument("outdir", required=False, default="dnmr-demo", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--overwrite", is_flag=True, help="Write into an existing, non-empty folder.")
+def demo(outdir: Path, overwrite: bool) -> None:
+    """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
+    from .demo import run_demo
+
+    run_demo(outdir, overwrite=overwrite, echo=click.echo)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point of the ``dnmr`` console script."""
     try:
