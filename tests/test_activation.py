@@ -1,0 +1,508 @@
+"""Tests of dnmr.activation: Eyring/Arrhenius analysis, error propagation, bounds, rates tables, CLI.
+
+Reference values come from the outside world: scipy.constants (CODATA), statsmodels (weighted least
+squares), the Eyring equation, Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956), and Grieger, Hunter &
+Krug, Nature 261, 566 (1976). Synthetic rate series are generated from stated dH‡/dS‡ with the Eyring
+equation written out here with scipy.constants, not with dnmr's own functions.
+"""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from click.testing import CliRunner
+from scipy import constants, stats
+from statsmodels.stats.outliers_influence import OLSInfluence
+
+from dnmr.activation import (
+    BASIS_GIVEN,
+    BASIS_SCALED,
+    BASIS_SCATTER,
+    COALESCENCE_CAVEAT,
+    coalescence_barrier,
+    eyring_fit,
+    eyring_fit_file,
+    read_rates,
+)
+from dnmr.cli import cli
+from dnmr.errors import InputError
+from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, eyring_rate
+
+R = constants.R
+KB, H = constants.k, constants.h
+TRUE_DH, TRUE_DS = 55.0, -12.0  # kJ/mol, J/(mol K): the stated truths of the synthetic series
+TEMPS = np.linspace(230.0, 300.0, 8)
+
+
+def eyring_k(dh_kj: float, ds_j: float, t: np.ndarray, kappa: float = 1.0) -> np.ndarray:
+    """Eyring equation k = kappa kB T/h exp(dS/R) exp(-dH/RT), written out with scipy.constants."""
+    return kappa * KB * t / H * np.exp(ds_j / R) * np.exp(-dh_kj * 1e3 / (R * t))
+
+
+def noisy_series(rng, sigma_ln=0.05, temps=TEMPS):
+    k = eyring_k(TRUE_DH, TRUE_DS, temps)
+    return k * np.exp(rng.normal(0.0, sigma_ln, len(temps)))
+
+
+# ---------------------------------------------------------------------------------------------
+# Constants and the Eyring equation
+# ---------------------------------------------------------------------------------------------
+
+
+def test_constants_are_codata_from_scipy():
+    # CODATA values through scipy.constants; kB and h are exact in the 2019 SI (from memory)
+    assert BOLTZMANN == constants.k == 1.380649e-23
+    assert PLANCK == constants.h == 6.62607015e-34
+    assert GAS_CONSTANT == constants.R
+    assert GAS_CONSTANT == pytest.approx(constants.N_A * constants.k, rel=1e-15)
+
+
+def test_rate_is_kB_T_over_h_at_zero_barrier():
+    # common practice: with dG‡ = 0 the Eyring rate is the "frequency factor" kB T / h (6.2e12 s^-1 at 298 K)
+    assert eyring_rate(0.0, 298.15) == pytest.approx(KB * 298.15 / H, rel=1e-14)
+    assert eyring_rate(0.0, 298.15) == pytest.approx(6.21e12, rel=1e-3)
+    # and the analysis of such rates returns dH‡ = 0 and dS‡ = 0
+    result = eyring_fit(TEMPS, KB * TEMPS / H)
+    assert result.enthalpy_kj_mol == pytest.approx(0.0, abs=1e-9)
+    assert result.entropy_j_mol_k == pytest.approx(0.0, abs=1e-7)
+
+
+def test_exact_series_recovers_stated_parameters():
+    # Eyring equation: noise-free rates from stated dH‡, dS‡ give them back, and dG‡ = dH‡ - T dS‡
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    result = eyring_fit(TEMPS, k, 0.05 * k)
+    assert result.enthalpy_kj_mol == pytest.approx(TRUE_DH, rel=1e-10)
+    assert result.entropy_j_mol_k == pytest.approx(TRUE_DS, rel=1e-8)
+    assert result.gibbs(298.15).value == pytest.approx(TRUE_DH - 298.15 * TRUE_DS / 1e3, rel=1e-10)
+    # Arrhenius of the same rates: Ea = dH‡ + R T over the range (textbook relation), within R * a few K
+    assert result.activation_energy_kj_mol == pytest.approx(TRUE_DH + R * result.harmonic_mean_temperature_k / 1e3, abs=0.03)
+
+
+def test_transmission_coefficient_moves_entropy_only():
+    # Eyring equation with kappa: ln(k/T) = ln(kappa kB/h) + dS/R - dH/RT, so dS shifts by -R ln kappa
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS, kappa=0.5)
+    result = eyring_fit(TEMPS, k, 0.05 * k, transmission=0.5)
+    assert result.enthalpy_kj_mol == pytest.approx(TRUE_DH, rel=1e-10)
+    assert result.entropy_j_mol_k == pytest.approx(TRUE_DS, rel=1e-8)
+    plain = eyring_fit(TEMPS, k, 0.05 * k)
+    assert plain.entropy_j_mol_k - result.entropy_j_mol_k == pytest.approx(R * math.log(0.5), rel=1e-8)
+
+
+# ---------------------------------------------------------------------------------------------
+# statsmodels as the reference for the regression
+# ---------------------------------------------------------------------------------------------
+
+
+def _design(temps, rates):
+    return sm.add_constant(1.0 / temps), np.log(rates / temps)
+
+
+def _with_uneven_errors(seed, low, high):
+    """A noisy synthetic series with rate errors drawn between `low` and `high` (relative)."""
+    rng = np.random.default_rng(seed)
+    k = noisy_series(rng)
+    return k, k * rng.uniform(low, high, len(k))
+
+
+def test_weighted_fit_matches_statsmodels_wls_with_given_errors():
+    # reference library: statsmodels WLS, weights 1/sigma^2, covariance not rescaled ("fixed scale")
+    k, k_err = _with_uneven_errors(11, 0.02, 0.10)
+    result = eyring_fit(TEMPS, k, k_err)
+    x, y = _design(TEMPS, k)
+    ref = sm.WLS(y, x, weights=(k / k_err) ** 2).fit(cov_type="fixed scale")
+    assert result.error_basis == BASIS_GIVEN
+    assert [result.eyring.intercept, result.eyring.slope] == pytest.approx(ref.params, rel=1e-9)
+    assert np.sqrt(np.diag(result.eyring.covariance)) == pytest.approx(ref.bse, rel=1e-8)
+    assert result.enthalpy_stderr == pytest.approx(R * ref.bse[1] / 1e3, rel=1e-8)
+    assert result.entropy_stderr == pytest.approx(R * ref.bse[0], rel=1e-8)
+    # dG‡(T) = -R (slope + T intercept) + const: its error is R times that of the contrast (T, 1)
+    for t in (250.0, 298.15, 350.0):
+        assert result.gibbs(t).stderr == pytest.approx(R / 1e3 * ref.t_test([t, 1.0]).sd.item(), rel=1e-8)
+    assert result.eyring.chi_square == pytest.approx(float((ref.wresid**2).sum()), rel=1e-9)
+
+
+def test_scaled_errors_match_statsmodels_wls_default():
+    # reference library: statsmodels WLS default covariance is scaled by the reduced chi-square
+    rng = np.random.default_rng(12)
+    k = noisy_series(rng, 0.08)
+    k_err = 0.04 * k
+    result = eyring_fit(TEMPS, k, k_err, scale_errors=True)
+    x, y = _design(TEMPS, k)
+    ref = sm.WLS(y, x, weights=(k / k_err) ** 2).fit()
+    assert result.error_basis == BASIS_SCALED
+    assert np.sqrt(np.diag(result.eyring.covariance)) == pytest.approx(ref.bse, rel=1e-8)
+
+
+def test_without_errors_matches_statsmodels_ols():
+    # reference library: statsmodels OLS (errors from the residual scatter), and its externally
+    # studentised residuals (OLSInfluence)
+    rng = np.random.default_rng(13)
+    k = noisy_series(rng)
+    result = eyring_fit(TEMPS, k)
+    x, y = _design(TEMPS, k)
+    ref = sm.OLS(y, x).fit()
+    assert result.error_basis == BASIS_SCATTER
+    assert [result.eyring.intercept, result.eyring.slope] == pytest.approx(ref.params, rel=1e-9)
+    assert np.sqrt(np.diag(result.eyring.covariance)) == pytest.approx(ref.bse, rel=1e-8)
+    assert result.studentised_residuals == pytest.approx(OLSInfluence(ref).resid_studentized_external, rel=1e-8)
+    assert result.band_quantile == pytest.approx(stats.t.ppf(0.975, len(TEMPS) - 2))
+
+
+def test_studentised_residuals_with_given_errors_match_whitened_statsmodels():
+    # reference library: WLS is OLS on whitened data; with known errors the studentised residual is
+    # e_w / sqrt(1 - h) (internal, scale 1)
+    k, k_err = _with_uneven_errors(14, 0.03, 0.08)
+    result = eyring_fit(TEMPS, k, k_err)
+    x, y = _design(TEMPS, k)
+    w = np.sqrt((k / k_err) ** 2)
+    ref = sm.OLS(y * w, x * w[:, None]).fit()
+    hat = OLSInfluence(ref).hat_matrix_diag
+    assert result.studentised_residuals == pytest.approx(ref.resid / np.sqrt(1 - hat), rel=1e-8)
+
+
+# ---------------------------------------------------------------------------------------------
+# Coverage of the stated errors (Monte Carlo over replicate synthetic series)
+# ---------------------------------------------------------------------------------------------
+
+
+def _coverage(fits, truths):
+    inside = [[abs(value - truth) < err for (value, err), truth in zip(f, truths)] for f in fits]
+    return np.mean(inside, axis=0)
+
+
+def _parameters(result):
+    g = result.gibbs(298.15)
+    return [
+        (result.enthalpy_kj_mol, result.enthalpy_stderr),
+        (result.entropy_j_mol_k, result.entropy_stderr),
+        (g.value, g.stderr),
+    ]
+
+
+TRUTHS = (TRUE_DH, TRUE_DS, TRUE_DH - 298.15 * TRUE_DS / 1e3)
+REPLICAS = 400
+# binomial standard error of a 68 % fraction over 400 replicas is 0.023; allow 3 of them
+TOLERANCE = 3 * math.sqrt(0.683 * 0.317 / REPLICAS)
+
+
+def test_stated_errors_cover_68_percent_with_given_rate_errors():
+    # a 1-sigma interval of a normal estimate holds the truth 68.3 % of the time (normal distribution)
+    rng = np.random.default_rng(21)
+    fits = []
+    for _ in range(REPLICAS):
+        k = noisy_series(rng, 0.05)
+        fits.append(_parameters(eyring_fit(TEMPS, k, 0.05 * k)))
+    assert _coverage(fits, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
+
+
+def test_scatter_errors_cover_as_student_t():
+    # without rate errors, (estimate - truth)/stderr follows Student's t with n - 2 degrees of freedom
+    rng = np.random.default_rng(22)
+    fits = [_parameters(eyring_fit(TEMPS, noisy_series(rng, 0.05))) for _ in range(REPLICAS)]
+    expected = stats.t.cdf(1, len(TEMPS) - 2) - stats.t.cdf(-1, len(TEMPS) - 2)
+    assert _coverage(fits, TRUTHS) == pytest.approx([expected] * 3, abs=TOLERANCE)
+
+
+def test_temperature_errors_are_carried_into_the_coverage():
+    # the nominal temperatures scatter by 1.5 K about the true ones; the stated errors must still cover
+    # 68 %, and leaving the temperature errors out must cover visibly less
+    rng = np.random.default_rng(23)
+    with_t, without_t = [], []
+    for _ in range(REPLICAS):
+        k = noisy_series(rng, 0.03)
+        nominal = TEMPS + rng.normal(0.0, 1.5, len(TEMPS))
+        with_t.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_stderr=1.5, monte_carlo_draws=1000, seed=None)))
+        without_t.append(_parameters(eyring_fit(nominal, k, 0.03 * k)))
+    assert _coverage(with_t, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
+    assert (_coverage(without_t, TRUTHS) < 0.683 - TOLERANCE).all()
+
+
+def test_correlated_temperature_offset_is_carried():
+    # a calibration offset common to all points (1 K standard deviation), passed as a covariance of ones
+    rng = np.random.default_rng(24)
+    cov = np.ones((len(TEMPS), len(TEMPS)))
+    fits = []
+    for _ in range(REPLICAS):
+        k = noisy_series(rng, 0.03)
+        nominal = TEMPS + rng.normal(0.0, 1.0)
+        fits.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_covariance=cov, monte_carlo_draws=1000, seed=None)))
+    assert _coverage(fits, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
+
+
+def test_fixed_seed_makes_monte_carlo_reproducible():
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    a = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=5)
+    b = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=5)
+    c = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=6)
+    assert a.enthalpy_stderr == b.enthalpy_stderr != c.enthalpy_stderr
+    assert a.enthalpy_stderr > eyring_fit(TEMPS, k, 0.05 * k).enthalpy_stderr
+
+
+# ---------------------------------------------------------------------------------------------
+# Error structure (Grieger, Hunter & Krug 1976)
+# ---------------------------------------------------------------------------------------------
+
+
+def test_enthalpy_entropy_correlation_close_to_one_for_narrow_range():
+    # Grieger, Hunter & Krug, Nature 261, 566 (1976): dH‡ and dS‡ of one series are almost perfectly
+    # correlated, the more so the narrower the temperature range
+    narrow_t = np.linspace(260.0, 280.0, 6)
+    wide_t = np.linspace(200.0, 340.0, 6)
+    narrow = eyring_fit(narrow_t, eyring_k(TRUE_DH, TRUE_DS, narrow_t), 0.05 * eyring_k(TRUE_DH, TRUE_DS, narrow_t))
+    wide = eyring_fit(wide_t, eyring_k(TRUE_DH, TRUE_DS, wide_t), 0.05 * eyring_k(TRUE_DH, TRUE_DS, wide_t))
+    assert narrow.correlation > 0.999
+    assert 0.9 < wide.correlation < narrow.correlation
+
+
+def test_gibbs_at_harmonic_mean_temperature_uncorrelated_with_enthalpy():
+    # Grieger, Hunter & Krug (1976): at the harmonic-mean temperature dG‡ is uncorrelated with dH‡
+    # (checked on the covariance, and empirically over replicate series), whereas dG‡(298 K) is not
+    temps = np.array([225.0, 235.0, 250.0, 262.0, 270.0, 285.0])
+    t_hm = len(temps) / (1.0 / temps).sum()
+    rng = np.random.default_rng(31)
+    k = noisy_series(rng, 0.05, temps)
+    result = eyring_fit(temps, k)
+    assert result.harmonic_mean_temperature_k == pytest.approx(t_hm, rel=1e-12)
+    assert result.uncorrelated_temperature_k == pytest.approx(t_hm, rel=1e-9)
+    assert result.gibbs_enthalpy_correlation(t_hm) == pytest.approx(0.0, abs=1e-9)
+    dh, g_hm, g_298 = [], [], []
+    for _ in range(2000):
+        r = eyring_fit(temps, noisy_series(rng, 0.05, temps), 0.05 * eyring_k(TRUE_DH, TRUE_DS, temps))
+        dh.append(r.enthalpy_kj_mol)
+        g_hm.append(r.gibbs(t_hm).value)
+        g_298.append(r.gibbs(298.15).value)
+    assert abs(np.corrcoef(dh, g_hm)[0, 1]) < 0.08  # 3.5 standard errors of a zero correlation over 2000
+    assert abs(np.corrcoef(dh, g_298)[0, 1]) > 0.5  # 298 K lies above t_hm: anticorrelated
+    # and dG‡ is best determined near there, far better than dH‡ itself
+    assert result.gibbs(t_hm).stderr < 0.2 * result.enthalpy_stderr
+
+
+# ---------------------------------------------------------------------------------------------
+# Bounds, outliers, warnings
+# ---------------------------------------------------------------------------------------------
+
+
+def test_bounds_are_not_fitted_and_are_checked():
+    rng = np.random.default_rng(41)
+    k = noisy_series(rng)
+    plain = eyring_fit(TEMPS, k, 0.05 * k)
+    t = np.append(TEMPS, [320.0, 210.0])
+    k_fit_320, k_fit_210 = eyring_k(TRUE_DH, TRUE_DS, np.array([320.0, 210.0]))
+    lower = np.append(np.full(8, np.nan), [3 * k_fit_320, np.nan])  # line below this lower bound: violated
+    upper = np.append(np.full(8, np.nan), [np.nan, 10 * k_fit_210])  # respected
+    rates = np.append(k, [np.nan, np.nan])
+    errors = np.append(0.05 * k, [np.nan, np.nan])
+    result = eyring_fit(t, rates, errors, rate_lower=lower, rate_upper=upper)
+    assert result.enthalpy_kj_mol == plain.enthalpy_kj_mol
+    assert result.enthalpy_stderr == plain.enthalpy_stderr
+    assert result.used.sum() == 8 and len(result.bounds) == 2
+    violated, respected = result.bounds
+    assert violated.violated and violated.sigma > 3
+    assert not respected.violated
+    assert any("lower bound at 320 K" in w for w in result.warnings)
+    assert "VIOLATED" in result.report()
+
+
+def test_outlier_flagged_by_studentised_residual():
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS) * np.exp(np.random.default_rng(42).normal(0, 0.03, 8))
+    k[4] *= math.exp(0.5)  # 0.5 in ln k is about 17 sigma
+    result = eyring_fit(TEMPS, k, 0.03 * k)
+    assert result.outliers.tolist() == [i == 4 for i in range(8)]
+    assert any("outlier at 270 K" in w for w in result.warnings)
+
+
+def test_warnings_for_narrow_span_and_few_rates():
+    # common practice: a span under about 30 K leaves dS‡ poorly determined; fewer than 4 rates are few
+    t = np.array([260.0, 270.0, 280.0])
+    k = eyring_k(TRUE_DH, TRUE_DS, t)
+    result = eyring_fit(t, k, 0.05 * k)
+    assert any("span only 20.0 K" in w for w in result.warnings)
+    assert any("only 3 rates" in w for w in result.warnings)
+    k = noisy_series(np.random.default_rng(44), 0.05)
+    assert eyring_fit(TEMPS, k, 0.05 * k).warnings == ()
+
+
+def test_two_rates_without_errors_give_no_fake_error_bar():
+    t = np.array([250.0, 290.0])
+    result = eyring_fit(t, eyring_k(TRUE_DH, TRUE_DS, t))
+    assert math.isnan(result.enthalpy_stderr) and math.isnan(result.gibbs(298.15).stderr)
+    assert "n.d." in result.report()
+    assert any("cannot be estimated" in w for w in result.warnings)
+
+
+def test_poor_chi_square_is_warned():
+    rng = np.random.default_rng(43)
+    k = noisy_series(rng, 0.2)
+    result = eyring_fit(TEMPS, k, 0.02 * k)
+    assert result.to_dict()["reduced_chi_square"] > 5
+    assert any("scatter more than their errors" in w for w in result.warnings)
+
+
+def test_bad_arrays_raise_input_error():
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    with pytest.raises(InputError, match="Celsius"):
+        eyring_fit(TEMPS - 273.15, k)
+    with pytest.raises(InputError, match="rate_per_s must be positive"):
+        eyring_fit(TEMPS, -k)
+    with pytest.raises(InputError, match="transmission"):
+        eyring_fit(TEMPS, k, transmission=1.5)
+    with pytest.raises(InputError, match="temperature_stderr must be zero or positive"):
+        eyring_fit(TEMPS, k, temperature_stderr=-1.0)
+    errors = 0.05 * k
+    errors[2] = np.nan
+    with pytest.raises(InputError, match="row 3.*given for other rates"):
+        eyring_fit(TEMPS, k, errors)
+
+
+# ---------------------------------------------------------------------------------------------
+# Coalescence estimate
+# ---------------------------------------------------------------------------------------------
+
+
+def test_coalescence_estimate_is_eyring_plus_gutowsky_holm():
+    # Gutowsky & Holm (1956): k_c = pi dnu / sqrt 2; Eyring: dG = R T ln(kB T / (h k))
+    for t_c, dnu in [(250.0, 80.0), (320.0, 400.0), (190.0, 12.5)]:
+        est = coalescence_barrier(t_c, dnu)
+        k_c = math.pi * dnu / math.sqrt(2)
+        assert est.rate_per_s == pytest.approx(k_c, rel=1e-14)
+        assert est.gibbs_kj_mol == pytest.approx(R * t_c * math.log(KB * t_c / (H * k_c)) / 1e3, rel=1e-12)
+        # the textbook working form (from memory): dG‡ = 19.14 T_c (9.97 + log10(T_c/dnu)) J/mol
+        assert est.gibbs_kj_mol == pytest.approx(19.14e-3 * t_c * (9.97 + math.log10(t_c / dnu)), rel=1e-3)
+    assert "equally populated" in COALESCENCE_CAVEAT and est.caveat in est.report()
+
+
+def test_coalescence_error_from_temperature_error():
+    # linear propagation checked against a central difference of the Gutowsky-Holm + Eyring formula
+    est = coalescence_barrier(260.0, 120.0, temperature_stderr=2.0)
+    d = (coalescence_barrier(260.001, 120.0).gibbs_kj_mol - coalescence_barrier(259.999, 120.0).gibbs_kj_mol) / 0.002
+    assert est.gibbs_stderr == pytest.approx(2.0 * d, rel=1e-6)
+
+
+# ---------------------------------------------------------------------------------------------
+# Rates tables
+# ---------------------------------------------------------------------------------------------
+
+
+def _write(tmp_path, text, name="rates.csv"):
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def _table(temps, rates, errors=None, process=None):
+    lines = ["temperature_k,rate_per_s" + (",rate_stderr" if errors is not None else "") + (",process" if process else "")]
+    for i, (t, k) in enumerate(zip(temps, rates)):
+        row = [repr(float(t)), repr(float(k))] + ([repr(float(errors[i]))] if errors is not None else []) + ([process] if process else [])
+        lines.append(",".join(row))
+    return "\n".join(lines) + "\n"
+
+
+def test_table_with_two_processes_fits_each(tmp_path):
+    k1 = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    k2 = eyring_k(48.0, 5.0, TEMPS)
+    text = _table(TEMPS, k1, 0.05 * k1, "rotation") + _table(TEMPS, k2, 0.05 * k2, "inversion").split("\n", 1)[1]
+    path = _write(tmp_path, "# invented test compound\n" + text)
+    before = path.read_bytes()
+    results = eyring_fit_file(path)
+    assert [r.process for r in results] == ["rotation", "inversion"]
+    assert results[0].enthalpy_kj_mol == pytest.approx(TRUE_DH, rel=1e-9)
+    assert results[1].enthalpy_kj_mol == pytest.approx(48.0, rel=1e-9)
+    assert results[1].entropy_j_mol_k == pytest.approx(5.0, rel=1e-7)
+    assert [r.process for r in eyring_fit_file(path, process="inversion")] == ["inversion"]
+    with pytest.raises(InputError, match="no process 'rotaton'.*did you mean \"rotation\""):
+        eyring_fit_file(path, process="rotaton")
+    assert path.read_bytes() == before  # input never modified
+
+
+def test_table_bounds_rows_follow_the_contract(tmp_path):
+    # CONTRACT.md §3: a rate the data only bound has an empty rate_stderr and fills rate_lower / rate_upper
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    rows = [f"{t},{v},{0.05 * v},," for t, v in zip(TEMPS, k)] + ["320,5000,,4000,", "205,,,,0.1"]
+    path = _write(tmp_path, "temperature_k,rate_per_s,rate_stderr,rate_lower,rate_upper\n" + "\n".join(rows) + "\n")
+    (series,) = read_rates(path)
+    assert series.is_bound.tolist() == [False] * 8 + [True, True]
+    (result,) = eyring_fit_file(path)
+    assert result.used.sum() == 8
+    assert [b.where for b in result.bounds] == ["line 10", "line 11"]
+
+
+@pytest.mark.parametrize(
+    "text, message",
+    [
+        ("temperature_k,rate_per_sec\n250,3\n", r"missing column 'rate_per_s' \(did you mean \"rate_per_sec\"\?\)"),
+        ("temperature_k,rate_per_s\n250,3\n260,abc\n", r"line 3: rate_per_s must be a number, got 'abc'"),
+        ("temperature_k,rate_per_s\n25,3\n35,9\n", r"line 2: temperature_k = 25 looks like degrees Celsius.*298.15 K"),
+        ("temperature_k,rate_per_s\n250,3\n260,-9\n", r"line 3: rate_per_s must be positive"),
+        ("temperature_k,rate_per_s,rate_stderr\n250,3,0.1\n260,9,\n", r"line 3: rate_stderr is empty here"),
+        ("temperature_k,rate_per_s,rate_stder\n250,3,0.1\n260,9,0.2\n", r"unknown column 'rate_stder' \(did you mean 'rate_stderr'\?\)"),
+        ("temperature_k,rate_per_s\n250,3\n", r"1 rate\(s\) with values"),
+        ("temperature_k,rate_per_s\n250,3\n250,4\n", r"fewer than 2 different temperatures"),
+        ("temperature_k,rate_per_s\n250,3,4\n", r"line 2: 3 cells but the header has 2 columns"),
+        ("", r"the file is empty"),
+    ],
+)
+def test_bad_tables_name_file_and_line(tmp_path, text, message):
+    path = _write(tmp_path, text)
+    with pytest.raises(InputError, match=message) as info:
+        read_rates(path)
+    assert str(info.value).startswith(str(path))
+    assert "\n" not in str(info.value)
+
+
+def test_one_temperature_error_for_all_or_a_column(tmp_path):
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    path = _write(tmp_path, _table(TEMPS, k, 0.05 * k))
+    (series,) = read_rates(path, temperature_stderr=0.8)
+    assert series.temperature_stderr == pytest.approx([0.8] * 8)
+    with_column = _write(tmp_path, "temperature_k,rate_per_s,temperature_stderr\n250,3,0.5\n260,9,0.5\n", "t.csv")
+    with pytest.raises(InputError, match="temperature_stderr column and one value"):
+        read_rates(with_column, temperature_stderr=1.0)
+
+
+# ---------------------------------------------------------------------------------------------
+# Command line
+# ---------------------------------------------------------------------------------------------
+
+CONTRACT_KEYS = {"enthalpy_kj_mol", "enthalpy_stderr", "entropy_j_mol_k", "entropy_stderr", "gibbs_298_kj_mol", "gibbs_298_stderr"}
+
+
+def test_cli_eyring_json_has_contract_keys(tmp_path):
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    path = _write(tmp_path, _table(TEMPS, k, 0.05 * k))
+    run = CliRunner().invoke(cli, ["eyring", str(path), "--json"])
+    assert run.exit_code == 0, run.output
+    out = json.loads(run.stdout)
+    assert CONTRACT_KEYS <= set(out)
+    assert out["enthalpy_kj_mol"] == pytest.approx(TRUE_DH, rel=1e-9)
+    assert out["gibbs_298_kj_mol"] == pytest.approx(TRUE_DH - 298.15 * TRUE_DS / 1e3, rel=1e-9)
+    assert "processes" not in out
+
+
+def test_cli_eyring_several_processes_and_plot(tmp_path):
+    k1, k2 = eyring_k(TRUE_DH, TRUE_DS, TEMPS), eyring_k(48.0, 5.0, TEMPS)
+    text = _table(TEMPS, k1, 0.05 * k1, "a") + _table(TEMPS, k2, 0.05 * k2, "b").split("\n", 1)[1]
+    path = _write(tmp_path, text)
+    image = tmp_path / "eyring.png"
+    run = CliRunner().invoke(cli, ["eyring", str(path), "--json", "--plot", str(image), "--temperature-stderr", "0.5"])
+    assert run.exit_code == 0, run.output
+    out = json.loads(run.stdout)
+    assert out["process"] == "a" and [p["process"] for p in out["processes"]] == ["a", "b"]
+    assert all(CONTRACT_KEYS <= set(p) for p in out["processes"])
+    assert image.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    again = CliRunner().invoke(cli, ["eyring", str(path), "--plot", str(image)])
+    assert again.exit_code == 2 and "already exists" in again.stderr
+    text_run = CliRunner().invoke(cli, ["eyring", str(path), "--process", "b"])
+    assert text_run.exit_code == 0 and "process 'b'" in text_run.stdout and "[[Activation parameters]]" in text_run.stdout
+
+
+def test_cli_eyring_bad_file_exits_2_with_one_line(tmp_path):
+    path = _write(tmp_path, "temperature_k,rate_per_s\n250,3\n260,fast\n")
+    run = CliRunner().invoke(cli, ["eyring", str(path)])
+    assert run.exit_code == 2
+    assert run.stderr.strip().count("\n") == 0
+    assert "line 3" in run.stderr and "Traceback" not in run.stderr
+    missing = CliRunner().invoke(cli, ["eyring", str(tmp_path / "nothing.csv")])
+    assert missing.exit_code == 2 and "file not found" in missing.stderr
