@@ -449,7 +449,8 @@ def _check_bound(line: LineFit, t: float, lower: float, upper: float, where: str
         ln_fit - np.log(upper) if np.isfinite(upper) else -np.inf,
     )
     violated = bool(beyond > 0)
-    sigma = float(beyond / se) if violated and se > 0 else (math.inf if violated else 0.0)
+    with np.errstate(divide="ignore"):
+        sigma = float(beyond / se) if violated else 0.0  # NaN when the line's error is not determined
     return BoundCheck(t, lower, upper, math.exp(ln_fit), float(se), violated, sigma, where)
 
 
@@ -908,7 +909,12 @@ def eyring_fit_file(
             )
         series = [s for s in series if s.process == process]
     if calibration is not None:
-        series = [s.with_temperatures(*calibration.true_temperature(s.temperature_k, source=str(path))) for s in series]
+        series = [
+            s.with_temperatures(
+                *calibration.true_temperature(s.temperature_k, source=s.source, where=[s.where(i) for i in range(len(s))])
+            )
+            for s in series
+        ]
     return [eyring_fit_series(s, **options) for s in series]
 
 
@@ -1069,13 +1075,13 @@ def _report(r: EyringResult) -> str:
     lines += ["", "[[Arrhenius]]"]
     lines.append(f"  {'Ea':<16}{format_with_error(d['activation_energy_kj_mol'], d['activation_energy_stderr']):>18} kJ/mol")
     lines.append(f"  {'ln(A / s^-1)':<16}{format_with_error(d['ln_prefactor'], d['ln_prefactor_stderr']):>18}")
-    lines += ["", "[[Points]]", f"  {'T / K':>9} {'k / s^-1':>11} {'± k':>10} {'fit k':>11} {'stud. res.':>10}"]
+    lines += ["", "[[Points]]", f"  {'T / K':>9} {'± T':>6} {'k / s^-1':>11} {'± k':>10} {'fit k':>11} {'stud. res.':>10}"]
     for p in d["points"]:
         flag = "  outlier?" if p["outlier"] else ""
         err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
         lines.append(
-            f"  {p['temperature_k']:9.2f} {p['rate_per_s']:11.4g} {err} {p['fitted_rate_per_s']:11.4g} "
-            f"{p['studentised_residual']:10.2f}{flag}"
+            f"  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
+            f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}{flag}"
         )
     if r.bounds:
         lines += ["", "[[Bounds (not fitted)]]", f"  {'T / K':>9} {'lower':>11} {'upper':>11} {'fit k':>11}"]

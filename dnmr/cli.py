@@ -166,15 +166,17 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
               help="dd = delta(OH) - delta(CH3 or CH2) in ppm; repeat for several readings.")
 @click.option("--spectrum", "spectra", type=click.Path(path_type=Path), multiple=True,
               help="Thermometer spectrum (text, JCAMP-DX or processed folder); repeat for several.")
+@click.option("--frequency-mhz", type=float, help="Spectrometer frequency, MHz (for spectra with a Hz axis).")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
-def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tuple[Path, ...], as_json: bool) -> None:
+def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tuple[Path, ...],
+                frequency_mhz: float | None, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982)."""
     from .thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
 
     if not shift_differences and not spectra:
         raise InputError("give --shift-difference PPM or --spectrum FILE", where="thermometer")
     readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
-    readings += [temperature_from_file(path, liquid) for path in spectra]
+    readings += [temperature_from_file(path, liquid, frequency_mhz=frequency_mhz) for path in spectra]
     if as_json:
         print_json(readings_to_dict(readings))
     else:

@@ -416,12 +416,23 @@ class TemperatureCalibration:
     scatter_k: float
     source: str | None = None
 
-    def true_temperature(self, setpoint_k: Sequence[float] | np.ndarray, *, source: str | None = None) -> CalibratedTemperatures:
+    def true_temperature(
+        self, setpoint_k: Sequence[float] | np.ndarray, *, source: str | None = None, where: Sequence[str] | None = None
+    ) -> CalibratedTemperatures:
         """True temperatures (K) at `setpoint_k` (K) with their covariance (K^2).
 
         The covariance is the curve's own uncertainty (shared, hence correlated, between set-points) plus
         the scatter of the calibration points about the curve on the diagonal: a new run at a set-point
         is taken to stray from the curve as the calibration runs did.
+
+        Parameters
+        ----------
+        setpoint_k : array
+            Set-points, K.
+        source : str, optional
+            File the set-points come from, for messages.
+        where : sequence of str, optional
+            Place of each set-point in that file ('line N'), for messages.
 
         Raises
         ------
@@ -430,12 +441,13 @@ class TemperatureCalibration:
         """
         s = np.asarray(setpoint_k, dtype=float)
         lo, hi = float(self.setpoint_k.min()), float(self.setpoint_k.max())
-        for value in s:
+        for i, value in enumerate(s):
             if not lo - 1e-6 <= value <= hi + 1e-6:
                 raise InputError(
                     f"set-point {value:g} K is outside the calibrated range {lo:g}-{hi:g} K; "
                     "extend the calibration instead of extrapolating it",
                     source,
+                    where[i] if where is not None else None,
                 )
         v = self._design(s)
         covariance = v @ self.coefficient_covariance @ v.T + self.scatter_k**2 * np.eye(len(s))

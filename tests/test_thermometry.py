@@ -261,6 +261,10 @@ def test_calibration_is_carried_into_the_eyring_analysis(tmp_path):
     assert abs(plain.enthalpy_kj_mol - 50.0) > 0.5  # set-points taken as sample temperatures: biased
     assert calibrated.enthalpy_stderr > plain.enthalpy_stderr
     assert calibrated.monte_carlo_draws > 0
+    beyond = tmp_path / "beyond.csv"
+    beyond.write_text("temperature_k,rate_per_s\n240,1.0\n260,5.0\n335,900\n")
+    with pytest.raises(InputError, match=r"beyond.csv: line 4: set-point 335 K is outside the calibrated range"):
+        eyring_fit_file(beyond, calibration=cal)
     cal_file = tmp_path / "cal.csv"
     cal_file.write_text("setpoint_k,temperature_k\n" + "\n".join(f"{s},{t}" for s, t in zip(SETPOINTS, MEASURED)) + "\n")
     run = CliRunner().invoke(cli, ["eyring", str(rates), "--calibration", str(cal_file), "--json"])
