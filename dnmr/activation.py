@@ -253,7 +253,7 @@ def _check_row(series: RateSeries, i: int) -> None:
     check_kelvin(t, "temperature_k", series.source, series.where(i))
     t_err = series.temperature_stderr[i]
     if not (0.0 <= t_err <= MAX_RELATIVE_TEMPERATURE_ERROR * t):
-        _fail(series, i, f"temperature_stderr = {t_err:g} K is not a plausible standard error (0 to {0.2 * t:.0f} K)")
+        _fail(series, i, f"temperature_stderr = {t_err:g} K is not a plausible standard error (0 to {MAX_RELATIVE_TEMPERATURE_ERROR * t:.0f} K)")
     for name in ("rate_lower", "rate_upper"):
         bound = getattr(series, name)[i]
         if np.isfinite(bound) and bound <= 0:
@@ -1048,6 +1048,8 @@ def _report(r: EyringResult) -> str:
         )
     if r.monte_carlo_draws:
         lines.append(f"  temperature errors   propagated by Monte Carlo ({r.monte_carlo_draws} draws, seed {r.seed})")
+        if r.error_basis == BASIS_SCATTER:
+            lines.append("                       (their random part is in the scatter too: counted twice, conservative)")
     else:
         lines.append("  temperature errors   none given: temperatures taken as exact (no calibration error included)")
     if r.transmission != 1.0:
