@@ -22,14 +22,15 @@ from dnmr.liouville import coherence_blocks
 POINTS = 8192
 
 
-def best_time(fn, repeat: int, inner: int) -> float:
-    """Best mean time (s) of `inner` calls over `repeat` rounds."""
-    best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        for _ in range(inner):
-            fn()
-        best = min(best, (time.perf_counter() - t0) / inner)
+def best_times(fns, rounds: int, inner: int) -> list[float]:
+    """Best mean time (s) per call of each function, rounds interleaved so both see the same machine."""
+    best = [np.inf] * len(fns)
+    for _ in range(rounds):
+        for i, fn in enumerate(fns):
+            t0 = time.perf_counter()
+            for _ in range(inner):
+                fn()
+            best[i] = min(best[i], (time.perf_counter() - t0) / inner)
     return best
 
 
@@ -63,8 +64,7 @@ def bench_two_site() -> float:
         k = rates[next(it) % len(rates)]
         mcconnell(hz, 3.10 * 400.0, 3.35 * 400.0, k, 0.62, 1.5).real
 
-    t_engine = best_time(engine, 7, 200)
-    t_closed = best_time(closed, 7, 200)
+    t_engine, t_closed = best_times([engine, closed], 15, 100)
     print(f"(a) two-site, {POINTS} points: simulate {t_engine * 1e6:.0f} us, closed form {t_closed * 1e6:.0f} us,"
           f" ratio {t_engine / t_closed:.2f} (goal <= 1.0)")
     return t_engine / t_closed
@@ -109,8 +109,7 @@ def bench_six_spins() -> float:
     spectrum = dnmr.simulate(model)
     ref = dense_unfactored(model, spectrum.hz)
     err = np.abs(spectrum.intensity - ref.real).max() / ref.real.max()
-    t_engine = best_time(lambda: dnmr.simulate(model), 3, 3)
-    t_dense = best_time(lambda: dense_unfactored(model, spectrum.hz), 3, 1)
+    t_engine, t_dense = best_times([lambda: dnmr.simulate(model), lambda: dense_unfactored(model, spectrum.hz)], 3, 1)
     print(f"(b) six spins, mutual exchange, {POINTS} points: simulate {t_engine * 1e3:.0f} ms, dense unfactored"
           f" {t_dense * 1e3:.0f} ms, ratio {t_engine / t_dense:.3f} (goal <= 0.1); max difference {err:.1e}")
     return t_engine / t_dense

@@ -12,18 +12,14 @@ restricted to the observable single-quantum coherences and split into independen
 
 so that the absorption Re S integrates to sum_c p_c N over all frequencies, whatever the rates.
 
-Each block is diagonalised, L = V diag(lambda) V^-1, which turns S into a sum of complex Lorentzians
-that is cheap on any frequency grid.  L is not normal and can be defective (two-site exchange with equal
-populations at k = pi dnu has a double eigenvalue); where the eigenbasis is ill-conditioned the block
-is evaluated instead through its Schur form, Q T Q^H, by triangular solves at each frequency, which is
-backward stable.  Both routes are exact; the choice only moves rounding error.
+This module assembles each block's Liouvillian; :mod:`dnmr.resolvent` turns it into a spectrum by the
+best exact route for the block (eigen-lines, Schur form, or a Krylov continued fraction for large blocks).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg as sla
 
 from .kinetics import Jump, exchange_jumps
 from .liouville import (
@@ -35,83 +31,7 @@ from .liouville import (
     zeeman_terms,
 )
 from .model import Model
-
-TWO_PI = 2.0 * np.pi
-#: Largest condition number of an eigenvector basis that is trusted (rounding error ~ 1e-16 x this).
-EIGENBASIS_CONDITION_LIMIT = 1e6
-#: Lines below this fraction of the tallest peak and of the largest area are dropped (bounds the error).
-LINE_HEIGHT_CUTOFF = 1e-15
-
-
-@dataclass(frozen=True)
-class SchurBlock:
-    """A block evaluated by triangular solves: S(nu) = left . (i 2 pi nu - T)^-1 . right."""
-
-    left: np.ndarray
-    triangle: np.ndarray
-    right: np.ndarray
-
-
-@dataclass
-class LineshapeTerms:
-    """The spectrum of a model in a form that is cheap to evaluate on any grid.
-
-    Attributes
-    ----------
-    poles : ndarray (complex)
-        Eigenvalues lambda_k (rad/s) of the Liouvillian: Re is minus the decay rate, Im the angular
-        frequency of line k.
-    amplitudes : ndarray (complex)
-        Complex weight of each line, already including the factor 2 of the normalisation.
-    schur_blocks : list of SchurBlock
-        Blocks whose eigenbasis was too ill-conditioned to trust, evaluated directly.
-    """
-
-    poles: np.ndarray
-    amplitudes: np.ndarray
-    schur_blocks: list[SchurBlock] = field(default_factory=list)
-
-    def evaluate(self, hz: np.ndarray) -> np.ndarray:
-        """Complex spectrum S at frequencies `hz` (Hz from 0 ppm): absorption = Re S, dispersion = -Im S."""
-        omega = TWO_PI * np.asarray(hz, dtype=float)
-        out = _sum_of_lorentzians(omega, self.poles, self.amplitudes)
-        for block in self.schur_blocks:
-            out += _triangular_resolvent(omega, block)
-        return out
-
-    @property
-    def line_frequencies_hz(self) -> np.ndarray:
-        """Centre of each Lorentzian term (Hz)."""
-        return self.poles.imag / TWO_PI
-
-    @property
-    def line_widths_hz(self) -> np.ndarray:
-        """Full width at half height of each Lorentzian term (Hz)."""
-        return -self.poles.real / np.pi
-
-
-def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
-    """sum_k c_k / (i omega - lambda_k); one pass per line (faster than 2-D blocks in numpy)."""
-    out = np.zeros(omega.shape, dtype=complex)
-    term = np.empty_like(out)
-    iw = 1j * omega
-    for c, lam in zip(amplitudes.tolist(), poles.tolist()):
-        np.subtract(iw, lam, out=term)
-        np.divide(c, term, out=term)
-        out += term
-    return out
-
-
-def _triangular_resolvent(omega: np.ndarray, block: SchurBlock) -> np.ndarray:
-    """left . (i omega - T)^-1 . right for every omega, by back substitution vectorised over omega."""
-    T = block.triangle
-    n = T.shape[0]
-    z = 1j * omega
-    x = np.empty((n, omega.size), dtype=complex)
-    for i in range(n - 1, -1, -1):
-        acc = block.right[i] + T[i, i + 1:] @ x[i + 1:]
-        x[i] = acc / (z - T[i, i])
-    return block.left @ x
+from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
 
 
 # --- assembling the Liouvillian -------------------------------------------------------------------
@@ -232,65 +152,18 @@ def block_start(pattern: BlockPattern, populations: np.ndarray) -> np.ndarray:
     return np.outer(populations, u).ravel() * (2.0 / 2.0 ** (pattern.block.n_spins - 1))
 
 
-# --- from a Liouvillian to lines --------------------------------------------------------------
-
-def _eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
-    """Poles and amplitudes from an eigendecomposition, or None when the eigenbasis is ill-conditioned.
-
-    The test is the 1-norm condition number of the eigenvector matrix V (rounding error in the
-    amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the amplitudes
-    against their sum (large terms that cancel).
-    """
-    lam, V = np.linalg.eig(L)
-    try:
-        V_inv = np.linalg.inv(V)
-    except np.linalg.LinAlgError:
-        return None
-    condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
-    if not condition < EIGENBASIS_CONDITION_LIMIT:
-        return None
-    amp = (detect @ V) * (V_inv @ start)
-    if np.abs(amp).sum() > EIGENBASIS_CONDITION_LIMIT * abs(detect @ start):
-        return None  # near-defective: large amplitudes that cancel
-    return lam, amp
-
-
-def _schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurBlock:
-    T, Q = sla.schur(L, output="complex")
-    return SchurBlock(left=detect @ Q, triangle=T, right=Q.conj().T @ start)
-
-
-def _prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Drop lines that matter nowhere: peak height |c|/|Re lambda| and area |c| both negligible
-    against the largest ones (so neither any point nor the integral moves by more than the cutoff)."""
-    if amplitudes.size == 0:
-        return poles, amplitudes
-    area = np.abs(amplitudes)
-    height = area / np.maximum(-poles.real, 1e-300)
-    keep = (height > LINE_HEIGHT_CUTOFF * height.max()) | (area > LINE_HEIGHT_CUTOFF * area.max())
-    return poles[keep], amplitudes[keep]
-
-
 def lineshape_terms(model: Model) -> LineshapeTerms:
-    """Decompose the spectrum of `model` into Lorentzian terms (and directly evaluated blocks)."""
+    """Decompose the spectrum of `model` into Lorentzian terms and directly evaluated blocks."""
     params = SpinParameters.from_model(model)
     topology = params.topology
-    poles, amps, schur = [], [], []
+    roots = np.sqrt(params.populations)
+    results = []
     for block in coherence_blocks(len(model.spins)):
         pattern = block_pattern(block, topology)
         L = block_liouvillian(pattern, params)
         start = block_start(pattern, params.populations)
-        lines = _eigen_lines(L, pattern.detect, start)
-        if lines is None:
-            schur.append(_schur_block(L, pattern.detect, start))
-        else:
-            poles.append(lines[0])
-            amps.append(lines[1])
-    if poles:
-        p, a = _prune(np.concatenate(poles), np.concatenate(amps))
-    else:
-        p, a = np.zeros(0, complex), np.zeros(0, complex)
-    return LineshapeTerms(p, a, schur)
+        results.append(block_terms(L, pattern.detect, start, np.repeat(roots, block.size)))
+    return combine(results)
 
 
 # --- frequency grid --------------------------------------------------------------------------

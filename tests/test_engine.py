@@ -20,7 +20,7 @@ from closed_forms import (
 from reference_qutip import jumps_with_reverse, qutip_spectrum, random_model
 
 import dnmr
-from dnmr import engine
+from dnmr import engine, resolvent
 from dnmr.liouville import coherence_blocks, hamiltonian
 
 SF = 400.0  # MHz
@@ -73,7 +73,7 @@ def test_defective_point_stays_exact(relative):
 
 def test_exactly_defective_block_takes_the_schur_route():
     terms = engine.lineshape_terms(two_site(np.pi * 100.0))
-    assert len(terms.schur_blocks) == 1 and len(terms.poles) == 0
+    assert len(terms.direct) == 1 and isinstance(terms.direct[0], resolvent.SchurBlock) and len(terms.poles) == 0
 
 
 def test_schur_and_eigen_routes_agree_on_a_coupled_block():
@@ -84,10 +84,9 @@ def test_schur_and_eigen_routes_agree_on_a_coupled_block():
         pattern = engine.block_pattern(block, params.topology)
         L = engine.block_liouvillian(pattern, params)
         start = engine.block_start(pattern, params.populations)
-        lam, amp = engine._eigen_lines(L, pattern.detect, start)
-        eig_route = engine.LineshapeTerms(lam, amp).evaluate(hz)
-        schur_route = engine.LineshapeTerms(np.zeros(0, complex), np.zeros(0, complex),
-                                            [engine._schur_block(L, pattern.detect, start)]).evaluate(hz)
+        lam, amp = resolvent.eigen_lines(L, pattern.detect, start)
+        eig_route = resolvent.LineshapeTerms(lam, amp).evaluate(hz)
+        schur_route = resolvent.schur_block(L, pattern.detect, start).evaluate(2 * np.pi * hz)
         assert relative_error(eig_route, schur_route) < 1e-10
 
 

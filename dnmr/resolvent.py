@@ -1,0 +1,273 @@
+"""From a block Liouvillian to its spectrum: S(nu) = <detect| (i 2 pi nu - L)^-1 |start>.
+
+Three exact routes, chosen per block; each only moves rounding error:
+
+- **eigen**: L = V diag(lambda) V^-1 makes S a sum of complex Lorentzians (cheap on any grid).  L is not
+  normal and can be defective (two equally populated sites at k = pi dnu give a double eigenvalue), so
+  the route is refused when V is ill-conditioned or the line amplitudes cancel.
+- **Schur**: L = Q T Q^H; S by triangular solves at every frequency.  Backward stable; used where the
+  eigen route is refused.
+- **Krylov** (large blocks): detailed balance makes D^-1 L D complex symmetric for D = diag(sqrt p), and
+  the detection and start vectors then coincide, so a complex-symmetric Lanczos recursion (with full
+  re-orthogonalisation in the bilinear form) reduces the block to a tridiagonal matrix whose continued
+  fraction is S.  It costs O(n^2) per step instead of the O(n^3) of a dense eigendecomposition; it is
+  refused on a (rare) serious breakdown or when its basis grows ill-conditioned, and the eigen route
+  is used instead.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.linalg as sla
+
+TWO_PI = 2.0 * np.pi
+#: Largest condition number of an eigenvector basis that is trusted (rounding error ~ 1e-16 x this).
+EIGENBASIS_CONDITION_LIMIT = 1e6
+#: Lines below this fraction of the tallest peak and of the largest area are dropped (bounds the error).
+LINE_HEIGHT_CUTOFF = 1e-15
+#: Blocks at least this large go the Krylov route (below it a dense eigendecomposition is as quick).
+KRYLOV_MIN_SIZE = 160
+#: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
+KRYLOV_GROWTH_LIMIT = 1e6
+
+
+@dataclass(frozen=True)
+class SchurBlock:
+    """A block evaluated by triangular solves: S(nu) = left . (i 2 pi nu - T)^-1 . right."""
+
+    left: np.ndarray
+    triangle: np.ndarray
+    right: np.ndarray
+
+    def evaluate(self, omega: np.ndarray) -> np.ndarray:
+        """S at angular frequencies `omega` (rad/s), by back substitution vectorised over omega."""
+        T = self.triangle
+        n = T.shape[0]
+        z = 1j * omega
+        x = np.empty((n, omega.size), dtype=complex)
+        for i in range(n - 1, -1, -1):
+            x[i] = (self.right[i] + T[i, i + 1:] @ x[i + 1:]) / (z - T[i, i])
+        return self.left @ x
+
+    @property
+    def weight(self) -> complex:
+        """Integral of S over angular frequency / pi: the block's <detect|start>."""
+        return complex(self.left @ self.right)
+
+
+@dataclass(frozen=True)
+class ContinuedFraction:
+    """A block reduced to a complex-symmetric tridiagonal matrix T (diagonal `alpha`, off-diagonal `beta`):
+    S(nu) = norm * e1 . (i 2 pi nu - T)^-1 . e1."""
+
+    alpha: np.ndarray
+    beta: np.ndarray
+    norm: float
+
+    def evaluate(self, omega: np.ndarray) -> np.ndarray:
+        """S at angular frequencies `omega` (rad/s): continued fraction, pivoted solves where it is unsafe."""
+        z = 1j * omega
+        f = z - self.alpha[-1]
+        smallest = np.abs(f)
+        for a, b2 in zip(self.alpha[-2::-1], (self.beta**2)[::-1]):
+            f = z - a - b2 / f
+            smallest = np.minimum(smallest, np.abs(f) / (np.abs(z - a) + abs(b2) ** 0.5))
+        out = self.norm / f
+        unsafe = ~np.isfinite(out) | (smallest < 1e-8)
+        for i in np.flatnonzero(unsafe):
+            out[i] = self.norm * self._pivoted(z[i])
+        return out
+
+    def _pivoted(self, z: complex) -> complex:
+        m = len(self.alpha)
+        bands = np.zeros((3, m), dtype=complex)
+        bands[0, 1:] = -self.beta
+        bands[1] = z - self.alpha
+        bands[2, :-1] = -self.beta
+        rhs = np.zeros(m, dtype=complex)
+        rhs[0] = 1.0
+        return sla.solve_banded((1, 1), bands, rhs)[0]
+
+    @property
+    def weight(self) -> complex:
+        """Integral of S over angular frequency / pi: the block's <detect|start>."""
+        return complex(self.norm)
+
+
+@dataclass
+class LineshapeTerms:
+    """A spectrum in a form that is cheap to evaluate on any grid.
+
+    Attributes
+    ----------
+    poles : ndarray (complex)
+        Eigenvalues lambda_k (rad/s): Re is minus the decay rate, Im the angular frequency of line k.
+    amplitudes : ndarray (complex)
+        Complex weight of each line (normalisation included).
+    direct : list
+        Blocks evaluated directly (:class:`SchurBlock`, :class:`ContinuedFraction`).
+    """
+
+    poles: np.ndarray
+    amplitudes: np.ndarray
+    direct: list = field(default_factory=list)
+
+    def evaluate(self, hz: np.ndarray) -> np.ndarray:
+        """Complex spectrum S at frequencies `hz` (Hz from 0 ppm): absorption = Re S, dispersion = -Im S."""
+        omega = TWO_PI * np.asarray(hz, dtype=float)
+        out = _sum_of_lorentzians(omega, self.poles, self.amplitudes)
+        for block in self.direct:
+            out += block.evaluate(omega)
+        return out
+
+    def integral(self) -> float:
+        """Integral of the absorption over all frequencies (Hz): each term c/(i w - lambda) gives Re(c)/2."""
+        return float(self.amplitudes.real.sum() / 2 + sum(b.weight.real / 2 for b in self.direct))
+
+    @property
+    def line_frequencies_hz(self) -> np.ndarray:
+        """Centre of each Lorentzian term (Hz)."""
+        return self.poles.imag / TWO_PI
+
+    @property
+    def line_widths_hz(self) -> np.ndarray:
+        """Full width at half height of each Lorentzian term (Hz)."""
+        return -self.poles.real / np.pi
+
+
+def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
+    """sum_k c_k / (i omega - lambda_k); one pass per line (faster than 2-D blocks in numpy)."""
+    out = np.zeros(omega.shape, dtype=complex)
+    term = np.empty_like(out)
+    iw = 1j * omega
+    for c, lam in zip(amplitudes.tolist(), poles.tolist()):
+        np.subtract(iw, lam, out=term)
+        np.divide(c, term, out=term)
+        out += term
+    return out
+
+
+def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
+    """Poles and amplitudes from an eigendecomposition, or None when the eigenbasis is ill-conditioned.
+
+    The test is the 1-norm condition number of the eigenvector matrix V (rounding error in the
+    amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the amplitudes
+    against their sum (large terms that cancel).
+    """
+    lam, V = np.linalg.eig(L)
+    try:
+        V_inv = np.linalg.inv(V)
+    except np.linalg.LinAlgError:
+        return None
+    condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
+    if not condition < EIGENBASIS_CONDITION_LIMIT:
+        return None
+    amp = (detect @ V) * (V_inv @ start)
+    if np.abs(amp).sum() > EIGENBASIS_CONDITION_LIMIT * abs(detect @ start):
+        return None  # near-defective: large amplitudes that cancel
+    return lam, amp
+
+
+def schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurBlock:
+    """The Schur-form evaluator of a block (always available, backward stable)."""
+    T, Q = sla.schur(L, output="complex")
+    return SchurBlock(left=detect @ Q, triangle=T, right=Q.conj().T @ start)
+
+
+def symmetrised(L: np.ndarray, weights: np.ndarray) -> np.ndarray | None:
+    """D^-1 L D for D = diag(weights), or None unless it is complex symmetric to rounding error."""
+    S = L * (weights[None, :] / weights[:, None])
+    asymmetry = np.abs(S - S.T).max()
+    if asymmetry > 1e-12 * np.abs(S).max():
+        return None
+    return 0.5 * (S + S.T)
+
+
+def lanczos(S: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Complex-symmetric Lanczos with full re-orthogonalisation (twice) in the bilinear form x^T y.
+
+    Returns the tridiagonal (alpha, beta) with g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a
+    serious breakdown or excessive growth of the basis (the caller then takes another route).
+    """
+    n = len(g)
+    Q = np.zeros((n, n), dtype=complex)
+    alpha = np.zeros(n, dtype=complex)
+    beta = np.zeros(max(n - 1, 0), dtype=complex)
+    Q[0] = g / np.sqrt(g @ g)
+    exhausted = 1e-11 * np.abs(S).sum(axis=1).max()
+    for j in range(n):
+        w = S @ Q[j]
+        alpha[j] = Q[j] @ w
+        basis = Q[: j + 1]
+        for _ in range(2):
+            w -= (basis @ w) @ basis
+        if j == n - 1:
+            break
+        length2 = np.vdot(w, w).real
+        if length2 ** 0.5 <= exhausted:
+            return alpha[: j + 1], beta[:j]  # the Krylov space is exhausted: exact with fewer steps
+        b2 = w @ w
+        if abs(b2) * KRYLOV_GROWTH_LIMIT < length2:
+            return None  # serious breakdown: w is nearly isotropic in the bilinear form
+        beta[j] = np.sqrt(b2)
+        Q[j + 1] = w / beta[j]
+    return alpha, beta
+
+
+def krylov_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
+    """The Krylov evaluator of a block, or None where it is not safe (see :func:`lanczos`).
+
+    `weights` are sqrt(population) of the state of each coherence; `start` must equal
+    scale x weights^2 x detect (as the engine builds it).
+    """
+    if np.any(weights <= 0):
+        return None
+    S = symmetrised(L, weights)
+    if S is None:
+        return None
+    g = detect * weights
+    scale = (detect @ start) / (g @ g)
+    reduced = lanczos(S, g)
+    if reduced is None:
+        return None
+    return ContinuedFraction(reduced[0], reduced[1], float(scale * (g @ g)))
+
+
+def prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Drop lines that matter nowhere: peak height |c|/|Re lambda| and area |c| both negligible
+    against the largest ones (so neither any point nor the integral moves by more than the cutoff)."""
+    if amplitudes.size == 0:
+        return poles, amplitudes
+    area = np.abs(amplitudes)
+    height = area / np.maximum(-poles.real, 1e-300)
+    keep = (height > LINE_HEIGHT_CUTOFF * height.max()) | (area > LINE_HEIGHT_CUTOFF * area.max())
+    return poles[keep], amplitudes[keep]
+
+
+def block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
+    """Evaluate one block by the best safe route: ('lines', (poles, amplitudes)) or ('direct', evaluator)."""
+    if len(L) >= KRYLOV_MIN_SIZE:
+        fraction = krylov_block(L, detect, start, weights)
+        if fraction is not None:
+            return "direct", fraction
+    lines = eigen_lines(L, detect, start)
+    if lines is None:
+        return "direct", schur_block(L, detect, start)
+    return "lines", lines
+
+
+def combine(blocks) -> LineshapeTerms:
+    """Gather the per-block results of :func:`block_terms` into one :class:`LineshapeTerms`."""
+    poles, amps, direct = [], [], []
+    for kind, value in blocks:
+        if kind == "lines":
+            poles.append(value[0])
+            amps.append(value[1])
+        else:
+            direct.append(value)
+    if poles:
+        p, a = prune(np.concatenate(poles), np.concatenate(amps))
+    else:
+        p, a = np.zeros(0, complex), np.zeros(0, complex)
+    return LineshapeTerms(p, a, direct)
