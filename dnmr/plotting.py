@@ -20,6 +20,47 @@ def nmr_axis(ax, label: str = "chemical shift / ppm") -> None:
         ax.invert_xaxis()
 
 
+def plot_spectrum(spectrum, ax=None, **line_kwargs):
+    """Absorption of a spectrum against ppm (high to low); returns the Axes."""
+    if ax is None:
+        _, ax = plt.subplots(figsize=(7, 3.5))
+    ax.plot(spectrum.ppm, spectrum.intensity, lw=1.0, **line_kwargs)
+    nmr_axis(ax)
+    ax.set_ylabel("intensity / Hz$^{-1}$")
+    if spectrum.title:
+        ax.set_title(spectrum.title)
+    return ax
+
+
+def plot_stack(spectra, labels, ax=None, title: str = ""):
+    """Spectra stacked bottom to top with a label beside each (the usual VT or rate series figure).
+
+    Parameters
+    ----------
+    spectra : sequence of Spectrum
+        One per trace, drawn from the bottom up.
+    labels : sequence of str
+        Text beside each trace (a temperature or a rate).
+    """
+    if ax is None:
+        _, ax = plt.subplots(figsize=(6.5, 1.0 + 0.8 * len(spectra)))
+    peak = max(float(s.intensity.max()) for s in spectra)
+    step = 1.05 * peak
+    for i, (s, label) in enumerate(zip(spectra, labels)):
+        scale = peak / max(float(s.intensity.max()), 1e-300)
+        scale = min(scale, 8.0)  # broad traces are enlarged, at most eightfold, to stay readable
+        ax.plot(s.ppm, i * step + s.intensity * scale, color="k", lw=0.9)
+        note = label if scale == 1.0 else f"{label}  (x{scale:.1f})"
+        ax.text(s.ppm.min(), i * step + 0.25 * step, " " + note, va="center", ha="left", fontsize=8)
+    nmr_axis(ax)
+    ax.set_yticks([])
+    for side in ("left", "right", "top"):
+        ax.spines[side].set_visible(False)
+    if title:
+        ax.set_title(title)
+    return ax
+
+
 # --- activation analysis: Eyring plot and rates against temperature ---------------------------
 
 def _kilo_reciprocal(x):
@@ -127,4 +168,73 @@ def plot_rates(results, *, figure=None):
     ax.set_xlabel(r"$T$ / K")
     ax.set_ylabel(r"$k$ / s$^{-1}$")
     ax.legend(frameon=False)
+    return fig
+
+
+# --- spectrum fits: data against fit, one spectrum or a whole series --------------------------
+
+def plot_spectrum_fit(fit, *, figure=None):
+    """Data, fitted spectrum and residuals of one fit against ppm (high to low).
+
+    Parameters
+    ----------
+    fit : SpectrumFit
+        The fit (see :func:`dnmr.fitting.fit_spectrum`).
+    figure : matplotlib Figure, optional
+        Figure to draw into (default: a new one).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Upper panel: data (black), fit (red), baseline (grey, dashed); lower panel: data - fit with the
+        band of +/- 2 noise standard deviations.
+    """
+    fig = figure if figure is not None else plt.figure(figsize=(7.0, 4.8))
+    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.06})
+    ax.plot(fit.ppm, fit.data, color="k", lw=0.8, label="data")
+    ax.plot(fit.ppm, fit.fitted, color="tab:red", lw=1.1, label="fit")
+    ax.plot(fit.ppm, fit.baseline, color="0.55", lw=0.8, ls="--", label="baseline")
+    ax.set_ylabel("intensity")
+    ax.legend(frameon=False, fontsize=8, loc="upper right")
+    text = "\n".join(f"{r.process}: {r.describe().split('   ')[0]}" for r in fit.rates)
+    ax.text(0.01, 0.97, text, transform=ax.transAxes, va="top", ha="left", fontsize=8)
+    band = 2.0 * fit.noise.sigma
+    res.axhspan(-band, band, color="0.88", lw=0)
+    res.plot(fit.ppm, fit.residuals, color="k", lw=0.6)
+    res.set_ylabel("residual")
+    nmr_axis(res)
+    from pathlib import Path
+
+    name = Path(fit.source).name if fit.source else "spectrum"
+    ax.set_title(f"{name}" + (f", {fit.temperature_k:g} K" if fit.temperature_k else ""), fontsize=10)
+    return fig
+
+
+def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
+    """Measured (black) and fitted (red) spectra of a series, stacked bottom to top.
+
+    Parameters
+    ----------
+    fits : sequence of SpectrumFit
+        One per trace, drawn from the bottom up; each trace is scaled to its own tallest point.
+    labels : sequence of str
+        Text beside each trace (its temperature).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    fig = figure if figure is not None else plt.figure(figsize=(6.5, 1.2 + 0.9 * len(fits)))
+    ax = fig.subplots()
+    for i, (fit, label) in enumerate(zip(fits, labels)):
+        baseline = fit.baseline
+        height = max(float(np.max(fit.fitted - baseline)), 1e-300)
+        ax.plot(fit.ppm, i + (fit.data - baseline) / height * 0.85, color="k", lw=0.7)
+        ax.plot(fit.ppm, i + (fit.fitted - baseline) / height * 0.85, color="tab:red", lw=0.9)
+        ax.text(fit.ppm.max(), i + 0.3, " " + label, va="center", ha="left", fontsize=8)
+    nmr_axis(ax)
+    ax.set_yticks([])
+    for side in ("left", "right", "top"):
+        ax.spines[side].set_visible(False)
+    ax.set_title(title or "measured (black) and fitted (red)", fontsize=10)
     return fig
