@@ -252,3 +252,47 @@ def test_listed_reverse_that_breaks_detailed_balance_is_refused():
     base = two_site(80.0, 0.7)
     with pytest.raises(dnmr.InputError, match="detailed balance"):
         base.replace(exchanges=base.exchanges + (dnmr.Exchange("b", "a", rate_per_s=80.0),))
+
+
+# --- the Krylov route for large blocks ---------------------------------------------------------------
+
+@pytest.fixture
+def krylov_everywhere(monkeypatch):
+    """Send every block through the Krylov (Lanczos continued-fraction) route."""
+    monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 1)
+
+
+@pytest.mark.parametrize("seed, n_spins, n_states", [(21, 2, 2), (22, 3, 1), (23, 3, 2), (24, 4, 1), (25, 2, 3)])
+def test_krylov_route_matches_qutip(krylov_everywhere, seed, n_spins, n_states):
+    states, exchanges = random_model(np.random.default_rng(seed), n_spins, n_states)
+    hz = probe_frequencies(states, 160)
+    ref = qutip_spectrum(hz, states, jumps_with_reverse(states, exchanges))
+    terms = engine.lineshape_terms(model_from_reference(states, exchanges))
+    assert terms.direct and all(isinstance(b, resolvent.ContinuedFraction) for b in terms.direct)
+    assert relative_error(terms.evaluate(hz), ref) < 1e-8
+
+
+@pytest.mark.parametrize("k", [np.pi * 100.0, 1e-3, 1e7])
+def test_krylov_route_at_the_defective_point_and_the_limits(krylov_everywhere, k):
+    """McConnell (1958) again, now through the continued fraction, including k = pi dnu."""
+    spec = dnmr.simulate(two_site(k))
+    ref = mcconnell_two_site(spec.hz, 3.00 * SF, 3.25 * SF, k, 0.5, 1.0, 1.0)
+    assert relative_error(spec.intensity, ref.real) < 1e-8
+
+
+def test_krylov_and_eigen_routes_agree_on_six_coupled_spins(monkeypatch):
+    """Two exact routes through different arithmetic must give the same 6-spin spectrum."""
+    names = [f"H{i}" for i in range(6)]
+    rng = np.random.default_rng(5)
+    shifts = {n: float(v) for n, v in zip(names, rng.uniform(1.0, 2.2, 6))}
+    couplings = {f"{a}-{b}": float(rng.uniform(-15, 15)) for i, a in enumerate(names) for b in names[i + 1:]}
+    state = dnmr.State("s", shifts, couplings, linewidth_hz=1.3, population=1)
+    flip = dict(zip(names, reversed(names)))
+    model = dnmr.Model(dnmr.Spectrometer(SF), [state], [dnmr.Exchange("s", "s", flip, rate_per_s=25.0)])
+    hz = np.linspace(0.8 * SF, 2.4 * SF, 3000)
+    krylov = engine.lineshape_terms(model)
+    assert any(isinstance(b, resolvent.ContinuedFraction) for b in krylov.direct)
+    monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 10**9)
+    eigen = engine.lineshape_terms(model)
+    assert not eigen.direct
+    assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-9
