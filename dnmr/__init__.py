@@ -9,14 +9,31 @@ Quick start::
 """
 from __future__ import annotations
 
+from .activation import EyringResult, coalescence_barrier, eyring_fit, eyring_fit_file, read_rates
 from .errors import InputError
 from .model import Exchange, Model, Spectrometer, State
 from .modelfile import load_model
 from .readers import MeasuredSpectrum, read_spectrum
 from .spectrum import Spectrum, simulate, simulate_over
+from .thermometry import (
+    fit_temperature_calibration,
+    read_temperature_calibration,
+    temperature_from_file,
+    temperature_from_spectrum,
+    thermometer_reading,
+)
 
 __version__ = "0.1.0"
 __all__ = [
+    # spin model and simulation
     "Exchange", "InputError", "Model", "Spectrometer", "Spectrum", "State",
-    "MeasuredSpectrum", "load_model", "read_spectrum", "simulate", "simulate_over", "__version__",
+    "load_model", "simulate", "simulate_over",
+    # measured spectra
+    "MeasuredSpectrum", "read_spectrum",
+    # activation parameters
+    "EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates",
+    # sample temperature
+    "fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
+    "temperature_from_spectrum", "thermometer_reading",
+    "__version__",
 ]

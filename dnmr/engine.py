@@ -191,5 +191,7 @@ def frequency_grid_ppm(model: Model, window_ppm=None, points: int | None = None)
     """The ppm grid (ascending) of a simulation: the model's window and points unless given here."""
     window = window_ppm or model.window_ppm or default_window_ppm(model)
     lo, hi = sorted(float(v) for v in window)
-    n = points or model.points or default_points(model, (lo, hi))
-    return np.linspace(lo, hi, int(n))
+    n = int(points or model.points or default_points(model, (lo, hi)))
+    grid = lo + ((hi - lo) / (n - 1)) * np.arange(n)
+    grid[-1] = hi
+    return grid

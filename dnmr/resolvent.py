@@ -20,6 +20,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.linalg as sla
+from scipy.linalg.lapack import zgeev as _zgeev
+from scipy.linalg.lapack import zgetrf as _zgetrf
+from scipy.linalg.lapack import zgetri as _zgetri
 
 TWO_PI = 2.0 * np.pi
 #: Largest condition number of an eigenvector basis that is trusted (rounding error ~ 1e-16 x this).
@@ -155,11 +158,13 @@ def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
     amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the amplitudes
     against their sum (large terms that cancel).
     """
-    lam, V = np.linalg.eig(L)
-    try:
-        V_inv = np.linalg.inv(V)
-    except np.linalg.LinAlgError:
+    lam, _, V, info = _zgeev(L, compute_vl=0, compute_vr=1)
+    if info != 0:
         return None
+    lu, piv, info = _zgetrf(V)
+    if info != 0:
+        return None  # singular eigenvector matrix: defective
+    V_inv, info = _zgetri(lu, piv)
     condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
     if not condition < EIGENBASIS_CONDITION_LIMIT:
         return None
