@@ -124,6 +124,14 @@ class LineshapeTerms:
             out += block.evaluate(omega)
         return out
 
+    def absorption(self, hz: np.ndarray) -> np.ndarray:
+        """Absorption Re S at frequencies `hz` (Hz), in real arithmetic (about twice as fast as `evaluate`)."""
+        omega = TWO_PI * np.asarray(hz, dtype=float)
+        out = _sum_of_absorption_lines(omega, self.poles, self.amplitudes)
+        for block in self.direct:
+            out += block.evaluate(omega).real
+        return out
+
     def integral(self) -> float:
         """Integral of the absorption over all frequencies (Hz): each term c/(i w - lambda) gives Re(c)/2."""
         return float(self.amplitudes.real.sum() / 2 + sum(b.weight.real / 2 for b in self.direct))
@@ -148,6 +156,23 @@ def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.nda
         np.subtract(iw, lam, out=term)
         np.divide(c, term, out=term)
         out += term
+    return out
+
+
+def _sum_of_absorption_lines(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
+    """Re sum_k c_k / (i omega - lambda_k) = sum_k (Re c a + Im c d) / (a^2 + d^2), a = -Re lambda, d = omega - Im lambda."""
+    out = np.zeros(omega.shape)
+    d = np.empty_like(out)
+    den = np.empty_like(out)
+    for c, lam in zip(amplitudes.tolist(), poles.tolist()):
+        a = -lam.real
+        np.subtract(omega, lam.imag, out=d)
+        np.multiply(d, d, out=den)
+        den += a * a
+        d *= c.imag
+        d += c.real * a
+        d /= den
+        out += d
     return out
 
 

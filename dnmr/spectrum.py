@@ -1,12 +1,14 @@
 """Simulated spectra: the result object of :func:`simulate` and the function itself."""
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 
 import numpy as np
 
 from .engine import frequency_grid_ppm, lineshape_terms
+from .resolvent import LineshapeTerms
 from .model import Model
 from .output import atomic_write_text
 
@@ -21,19 +23,24 @@ class Spectrum:
         Chemical shift axis (ppm), ascending.
     intensity : ndarray
         Absorption as a spectral density (per Hz); integrates to sum of population x spins.
-    dispersion : ndarray
-        The matching dispersion signal (per Hz), for phase errors.
     frequency_mhz : float
         Spectrometer frequency of the observed nucleus (MHz).
     title : str
         The model's title.
+    terms : LineshapeTerms, optional
+        The engine's decomposition, kept to give the dispersion on request.
     """
 
     ppm: np.ndarray
     intensity: np.ndarray
-    dispersion: np.ndarray
     frequency_mhz: float
     title: str = ""
+    terms: LineshapeTerms | None = field(default=None, repr=False, compare=False)
+
+    @cached_property
+    def dispersion(self) -> np.ndarray | None:
+        """The matching dispersion signal (per Hz), -Im S; None when the engine's terms were not kept."""
+        return None if self.terms is None else -self.terms.evaluate(self.hz).imag
 
     @property
     def hz(self) -> np.ndarray:
@@ -95,7 +102,7 @@ def simulate(
     Returns
     -------
     Spectrum
-        Absorption (and dispersion) per Hz on an ascending ppm axis.
+        Absorption per Hz on an ascending ppm axis (dispersion on request, ``.dispersion``).
     """
     grid = np.asarray(ppm, dtype=float) if ppm is not None else frequency_grid_ppm(model, window_ppm, points)
     sf = model.spectrometer.frequency_mhz
@@ -103,8 +110,8 @@ def simulate(
         grid = grid[::-1]
     if np.any(grid[1:] <= grid[:-1]):
         grid = np.unique(grid)
-    values = lineshape_terms(model).evaluate(grid * sf)
-    return Spectrum(grid, values.real, -values.imag, sf, model.title)
+    terms = lineshape_terms(model)
+    return Spectrum(grid, terms.absorption(grid * sf), sf, model.title, terms)
 
 
 def simulate_over(
