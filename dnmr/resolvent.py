@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.linalg as sla
+from scipy import sparse
 from scipy.linalg.lapack import zgeev as _zgeev
 from scipy.linalg.lapack import zgetrf as _zgetrf
 from scipy.linalg.lapack import zgetri as _zgetri
@@ -31,6 +32,8 @@ EIGENBASIS_CONDITION_LIMIT = 1e6
 LINE_HEIGHT_CUTOFF = 1e-15
 #: Blocks at least this large go the Krylov route (below it a dense eigendecomposition is as quick).
 KRYLOV_MIN_SIZE = 160
+#: Blocks at least this large apply the Liouvillian as a sparse matrix inside the Lanczos recursion.
+SPARSE_MATVEC_SIZE = 400
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
 
@@ -215,10 +218,12 @@ def symmetrised(L: np.ndarray, weights: np.ndarray) -> np.ndarray | None:
 
 
 def lanczos(S: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
-    """Complex-symmetric Lanczos with full re-orthogonalisation (twice) in the bilinear form x^T y.
+    """Complex-symmetric Lanczos with full re-orthogonalisation in the bilinear form x^T y.
 
-    Returns the tridiagonal (alpha, beta) with g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a
-    serious breakdown or excessive growth of the basis (the caller then takes another route).
+    Each new vector is projected out of the basis once, and once more when that removed most of it
+    ("twice is enough").  Returns the tridiagonal (alpha, beta) with
+    g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
+    the basis (the caller then takes another route).
     """
     n = len(g)
     Q = np.zeros((n, n), dtype=complex)
@@ -226,15 +231,19 @@ def lanczos(S: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | Non
     beta = np.zeros(max(n - 1, 0), dtype=complex)
     Q[0] = g / np.sqrt(g @ g)
     exhausted = 1e-11 * np.abs(S).sum(axis=1).max()
+    operator = sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
     for j in range(n):
-        w = S @ Q[j]
+        w = operator @ Q[j]
         alpha[j] = Q[j] @ w
         basis = Q[: j + 1]
-        for _ in range(2):
+        before = np.vdot(w, w).real
+        w -= (basis @ w) @ basis
+        length2 = np.vdot(w, w).real
+        if length2 < 0.5 * before:
             w -= (basis @ w) @ basis
+            length2 = np.vdot(w, w).real
         if j == n - 1:
             break
-        length2 = np.vdot(w, w).real
         if length2 ** 0.5 <= exhausted:
             return alpha[: j + 1], beta[:j]  # the Krylov space is exhausted: exact with fewer steps
         b2 = w @ w
