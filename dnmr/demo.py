@@ -36,7 +36,7 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print) -> dict:
         raise InputError(f"{outdir} already exists and is not empty; choose a new folder or pass --overwrite",
                          where="OUTDIR")
     outdir.mkdir(parents=True, exist_ok=True)
-    model_file = demo_data_dir() / "model.toml"
+    model_file = demo_data_dir() / "truth_model.toml"
     model = load_model(model_file)
     written = {"model": atomic_write_bytes(outdir / "model.toml", model_file.read_bytes(), overwrite=overwrite)}
     echo(f"demo: {model.title}")
