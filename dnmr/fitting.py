@@ -1,0 +1,1209 @@
+"""Exchange rates from one measured spectrum: lineshape fitting with honest uncertainties.
+
+The fitted spectrum is the engine's complex lineshape S = A - i D (A absorption, D dispersion, both
+per Hz) of the model, with nuisance terms a measured spectrum needs:
+
+    y(nu) = amplitude * Re[exp(i phi(nu)) S(nu - offset)] + sum_j baseline_j x^j
+          = amplitude * [cos(phi) A + sin(phi) D] + baseline,
+
+    phi(nu) = phase0 + phase1 (nu - nu_centre) / span,   x = (nu - nu_centre) / (span / 2),
+
+nu in Hz, nu_centre and span the centre and width of the fitted region (x runs from -1 at its
+low-ppm end to +1 at its high-ppm end).  ``phase0_deg`` is therefore the phase *error* the data carry
+(a positive value mixes in positive dispersion, which is positive on the high-frequency side of a
+line); ``phase1_deg`` is the change of that error across the region; a positive ``offset_hz`` moves
+every line to higher frequency.
+
+Parameters (lmfit, one per quantity; each can be fixed, bounded or tied by an lmfit expression):
+``log10_k_<process>`` (rates are fitted on a log scale), ``amplitude``, ``baseline_0..3``,
+``phase0_deg``, ``phase1_deg``, ``offset_hz``, ``linewidth_hz_<state>``, ``population_<state>``,
+``shift_ppm_<state>_<spin>``.  Names are the model's names with anything but letters, digits and _
+turned into _.
+
+Method
+------
+1. *Noise*: the standard deviation of the points in signal-free parts of the spectrum (given as
+   ``noise_ppm``, else the spectrum outside the fitted region, else the outer eighths of the region),
+   detrended in short segments and estimated robustly (from the median absolute residual, then the
+   standard deviation of the points within 3.5 of those, corrected for the clipping).  Points of
+   processed spectra are often correlated (zero filling, apodisation); the correlation factor
+   c = 1 + 2 sum_k rho_k over the significant lags of the noise autocorrelation counts how many points
+   carry one point's worth of information.
+2. *Coarse scan*: log k is scanned over ``rate_scan_per_s`` (default 1e-2 to 1e7 s^-1, 37 points).
+   At every point the amplitude, zero-order phase and baseline enter linearly and are solved by linear
+   least squares, and the frequency offset is found by cross-correlation, so the scan needs no start
+   value for any of them.  The best scan point, the second-best local minimum and a start value from
+   the caller (a neighbouring temperature) are each refined, and the best refinement is kept.
+3. *Refinement*: lmfit ``least_squares`` (trust region, bounds) on residuals divided by the noise.
+4. *Uncertainties*: chi-square = sum ((data - fit) / noise)^2.  The covariance is (J^T J)^-1 of those
+   residuals multiplied by the error scale s = c x (reduced chi-square if the fit is significantly
+   worse than the noise, else 1).  lmfit's ``scale_covar`` is not used: rescaling by the reduced
+   chi-square always would shrink the errors of a fit that looks better than the noise and hide a
+   model that does not describe the data.
+5. *Identifiability*: for every fitted rate, chi-square is profiled over log k (every other free
+   parameter re-optimised at each point) out to where it has risen by s (the 68 % interval).  If the
+   profile never rises that far towards slow exchange (down to ``rate_limits_per_s[0]``) the data only
+   give an upper bound (lines too narrow to show the exchange broadening); if it stays flat towards
+   fast exchange the data give a lower bound (the averaged line's excess width is below what the noise
+   resolves).  Either way the standard error is left empty.  A two-sided interval far from symmetric
+   about the best fit, or from the quadratic error, is reported as an interval instead of an error bar.
+   A one-sided bound at this level is an 84 % confidence limit.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import lmfit
+import numpy as np
+from scipy import signal, stats
+
+from .engine import default_window_ppm, lineshape_terms
+from .errors import InputError, did_you_mean
+from .model import Model
+from .readers import MeasuredSpectrum, read_spectrum
+
+PHASE_MODES = ("none", "zero-order", "first-order")
+LINEWIDTH_MODES = ("fixed", "shared", "per-state")
+POPULATION_MODES = ("fixed", "free")
+SHIFT_MODES = ("fixed", "free")
+SETTING_KEYS = ("value", "vary", "min", "max", "expr")
+
+NOISE_SEGMENT_POINTS = 64
+"""Points per segment when detrending signal-free regions for the noise estimate."""
+MIN_NOISE_POINTS = 32
+"""Fewest signal-free points from which the noise is estimated."""
+EDGE_FRACTION = 0.125
+"""Share of the fitted region at each end used for the noise when nothing better is available."""
+MAX_NOISE_LAG = 16
+"""Longest lag (points) of the noise autocorrelation counted in the correlation factor."""
+MISFIT_SIGMAS = 3.0
+"""Reduced chi-square this many standard deviations above 1 counts as a misfit."""
+SECOND_START_RATIO = 2.0
+"""A second local minimum of the scan is refined too when its chi-square is within this factor of the best."""
+ASYMMETRY_LIMIT = 1.5
+"""Half-widths of the profile interval differing by more than this ratio make it an interval."""
+MAD_TO_SIGMA = 1.4826
+"""Median absolute deviation to standard deviation, for normal noise."""
+CLIP_SIGMAS = 3.5
+"""Noise points further than this many (rough) standard deviations out are taken for signal."""
+
+
+# --------------------------------------------------------------------------------------------------
+# options
+
+
+def _pair(value, where: str) -> tuple[float, float] | None:
+    if value is None:
+        return None
+    try:
+        lo, hi = sorted(float(v) for v in value)
+    except (TypeError, ValueError):
+        raise InputError(f"expected two numbers, got {value!r}", where=where) from None
+    if not (math.isfinite(lo) and math.isfinite(hi)) or lo == hi or len(tuple(value)) != 2:
+        raise InputError(f"expected two different finite numbers, got {value!r}", where=where)
+    return lo, hi
+
+
+def _regions(value, where: str) -> tuple[tuple[float, float], ...]:
+    """One [lo, hi] pair or a list of them."""
+    if value is None or (isinstance(value, (list, tuple)) and len(value) == 0):
+        return ()
+    items = list(value)
+    if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in items):
+        return (_pair(items, where),)
+    return tuple(_pair(v, f"{where}[{i}]") for i, v in enumerate(items))
+
+
+def _choice(value: str, allowed: tuple[str, ...], where: str) -> str:
+    if value not in allowed:
+        raise InputError(f'expected one of {", ".join(allowed)}, got {value!r}{did_you_mean(str(value), allowed)}',
+                         where=where)
+    return value
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """How a spectrum is fitted.
+
+    Parameters
+    ----------
+    region_ppm : (float, float), optional
+        Part of the spectrum fitted (ppm, either order); default the model's window.
+    noise_ppm : sequence of (float, float)
+        Signal-free regions (ppm) for the noise estimate; default the spectrum outside the region.
+    noise : float, optional
+        Known noise standard deviation (intensity units); replaces the estimate.
+    baseline_order : int
+        Order of the polynomial baseline, 0 to 3.
+    phase : {"none", "zero-order", "first-order"}
+        Which phase errors are fitted.
+    frequency_offset : bool
+        Fit a frequency offset of the whole spectrum (referencing drift at other temperatures).
+    max_offset_hz : float, optional
+        Bound on the offset (Hz); default a tenth of the region's width.
+    linewidth : {"shared", "per-state", "fixed"}
+        Intrinsic linewidth: one fitted width for all states, one per state, or the model's.
+    populations : {"fixed", "free"}
+        Keep the model's populations or fit them.
+    shifts : {"fixed", "free"}
+        Keep the model's shifts (needed in fast exchange, where the spectrum does not fix them) or fit
+        them.  Free shifts fix the frequency offset (the two would be degenerate).
+    rate_scan_per_s : (float, float)
+        Range of the coarse scan over the rate (s^-1).
+    rate_limits_per_s : (float, float)
+        Bounds of every fitted rate (s^-1); the profile runs out to them.
+    scan_points : int
+        Points of the coarse scan.
+    profile : bool
+        Profile chi-square over every rate to find bounds (on by default; off only for speed).
+    parameters : mapping
+        Settings by parameter name: ``{"linewidth_hz_a": {"value": 1.2, "vary": False}}``; keys
+        value, vary, min, max, expr.
+    """
+
+    region_ppm: tuple[float, float] | None = None
+    noise_ppm: tuple[tuple[float, float], ...] = ()
+    noise: float | None = None
+    baseline_order: int = 1
+    phase: str = "zero-order"
+    frequency_offset: bool = True
+    max_offset_hz: float | None = None
+    linewidth: str = "shared"
+    populations: str = "fixed"
+    shifts: str = "fixed"
+    rate_scan_per_s: tuple[float, float] = (1e-2, 1e7)
+    rate_limits_per_s: tuple[float, float] = (1e-3, 1e9)
+    scan_points: int = 37
+    profile: bool = True
+    parameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+
+    def __post_init__(self):
+        set_ = lambda name, value: object.__setattr__(self, name, value)  # noqa: E731
+        set_("region_ppm", _pair(self.region_ppm, "region_ppm"))
+        set_("noise_ppm", _regions(self.noise_ppm, "noise_ppm"))
+        if self.noise is not None and not (isinstance(self.noise, (int, float)) and self.noise > 0
+                                           and math.isfinite(self.noise)):
+            raise InputError(f"noise must be a positive number, got {self.noise!r}", where="noise")
+        if isinstance(self.baseline_order, bool) or self.baseline_order not in (0, 1, 2, 3):
+            raise InputError(f"baseline_order must be 0, 1, 2 or 3, got {self.baseline_order!r}",
+                             where="baseline_order")
+        _choice(self.phase, PHASE_MODES, "phase")
+        _choice(self.linewidth, LINEWIDTH_MODES, "linewidth")
+        _choice(self.populations, POPULATION_MODES, "populations")
+        _choice(self.shifts, SHIFT_MODES, "shifts")
+        if not isinstance(self.frequency_offset, bool):
+            raise InputError(f"frequency_offset must be true or false, got {self.frequency_offset!r}",
+                             where="frequency_offset")
+        if self.max_offset_hz is not None and not (self.max_offset_hz > 0 and math.isfinite(self.max_offset_hz)):
+            raise InputError(f"max_offset_hz must be a positive number of Hz, got {self.max_offset_hz!r}",
+                             where="max_offset_hz")
+        for name in ("rate_scan_per_s", "rate_limits_per_s"):
+            lo, hi = _pair(getattr(self, name), name)
+            if lo <= 0:
+                raise InputError(f"rates must be positive (s^-1), got {lo:g}", where=name)
+            set_(name, (lo, hi))
+        if isinstance(self.scan_points, bool) or not (isinstance(self.scan_points, int) and 5 <= self.scan_points <= 400):
+            raise InputError(f"scan_points must be a whole number from 5 to 400, got {self.scan_points!r}",
+                             where="scan_points")
+        set_("parameters", _checked_settings(self.parameters))
+
+    def replace(self, **changes) -> "FitOptions":
+        """A copy with some options changed."""
+        return dataclasses.replace(self, **changes)
+
+    def to_dict(self) -> dict:
+        """The options as plain data (JSON-ready)."""
+        out = dataclasses.asdict(self)
+        out["parameters"] = {k: dict(v) for k, v in self.parameters.items()}
+        return out
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "FitOptions":
+        """Options from :meth:`to_dict` (or a ``[fit]`` table); unknown keys are an InputError."""
+        known = {f.name for f in dataclasses.fields(cls)}
+        for key in data:
+            if key not in known:
+                raise InputError(f'unknown fit option "{key}"{did_you_mean(key, known)}', where=key)
+        return cls(**dict(data))
+
+
+def _checked_settings(settings: Mapping) -> dict[str, dict[str, Any]]:
+    if not isinstance(settings, Mapping):
+        raise InputError("expected a table of parameter settings", where="parameters")
+    out = {}
+    for name, setting in settings.items():
+        where = f"parameters.{name}"
+        if not isinstance(setting, Mapping):
+            raise InputError("expected a table such as { value = 1.0, vary = false }", where=where)
+        for key, value in setting.items():
+            if key not in SETTING_KEYS:
+                raise InputError(f'unknown setting "{key}"{did_you_mean(key, SETTING_KEYS)}; '
+                                 f'allowed: {", ".join(SETTING_KEYS)}', where=f"{where}.{key}")
+            ok = {"vary": isinstance(value, bool), "expr": isinstance(value, str)}.get(
+                key, isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
+            if not ok:
+                raise InputError(f"not a valid {key}: {value!r}", where=f"{where}.{key}")
+        out[str(name)] = dict(setting)
+    return out
+
+
+# --------------------------------------------------------------------------------------------------
+# noise
+
+
+@dataclass(frozen=True)
+class NoiseEstimate:
+    """Noise of a spectrum.
+
+    Attributes
+    ----------
+    sigma : float
+        Standard deviation of one point (intensity units).
+    correlation_factor : float
+        1 + 2 sum of the significant autocorrelations of the noise (1 for independent points).
+    points : int
+        Signal-free points used (0 when the noise was given).
+    method : str
+        Where the estimate comes from.
+    """
+
+    sigma: float
+    correlation_factor: float
+    points: int
+    method: str
+
+    def to_dict(self) -> dict:
+        """Plain data (JSON-ready)."""
+        return dataclasses.asdict(self)
+
+
+def _runs(mask: np.ndarray) -> list[np.ndarray]:
+    """Index arrays of the contiguous runs of True in `mask`."""
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return []
+    return np.split(idx, np.flatnonzero(np.diff(idx) > 1) + 1)
+
+
+def _detrended_segments(y: np.ndarray, runs: list[np.ndarray]) -> list[np.ndarray]:
+    """Residuals of a straight line through each segment (about 64 points) of each run."""
+    out = []
+    for run in runs:
+        n_seg = max(1, run.size // NOISE_SEGMENT_POINTS)
+        for seg in np.array_split(run, n_seg):
+            if seg.size < 8:
+                continue
+            t = np.arange(seg.size, dtype=float)
+            coef = np.polyfit(t, y[seg], 1)
+            out.append((y[seg] - np.polyval(coef, t)) * math.sqrt(seg.size / (seg.size - 2)))
+    return out
+
+
+def _correlation_factor(segments: list[np.ndarray], sigma: float) -> float:
+    """1 + 2 sum_k rho_k over the leading lags whose autocorrelation is significant (> 2/sqrt(n))."""
+    quiet = [s for s in segments if np.max(np.abs(s)) < 5.0 * sigma]  # segments holding a line are skipped
+    n = sum(s.size for s in quiet)
+    if n < MIN_NOISE_POINTS:
+        return 1.0
+    power = sum(float(s @ s) for s in quiet)
+    total = 0.0
+    for lag in range(1, MAX_NOISE_LAG + 1):
+        rho = sum(float(s[lag:] @ s[:-lag]) for s in quiet if s.size > lag) / power
+        if rho < 2.0 / math.sqrt(n):
+            break
+        total += rho
+    return max(1.0, 1.0 + 2.0 * total)
+
+
+def _clipped_sigma(residuals: np.ndarray) -> float:
+    """Standard deviation of normal noise among outliers: the median absolute residual gives a first
+    value, the points within CLIP_SIGMAS of it give the final one (corrected for the clipping)."""
+    rough = MAD_TO_SIGMA * float(np.median(np.abs(residuals)))
+    kept = residuals[np.abs(residuals) < CLIP_SIGMAS * rough]
+    c = CLIP_SIGMAS
+    retained = 1.0 - 2.0 * c * stats.norm.pdf(c) / (2.0 * stats.norm.cdf(c) - 1.0)  # variance of the clipped normal
+    return math.sqrt(float(kept @ kept) / max(kept.size, 1) / retained) if kept.size else rough
+
+
+def estimate_noise(
+    spectrum: MeasuredSpectrum,
+    region_ppm: tuple[float, float],
+    noise_ppm=(),
+    noise: float | None = None,
+) -> NoiseEstimate:
+    """Noise standard deviation of a spectrum from its signal-free points.
+
+    Parameters
+    ----------
+    spectrum : MeasuredSpectrum
+        The whole spectrum as read.
+    region_ppm : (float, float)
+        The fitted region (ppm).
+    noise_ppm : sequence of (float, float)
+        Signal-free regions (ppm); default the spectrum within two region widths outside the region,
+        else the outer eighths of the region.
+    noise : float, optional
+        A known noise level (intensity units), returned as it is.
+
+    Returns
+    -------
+    NoiseEstimate
+    """
+    if noise is not None:
+        return NoiseEstimate(float(noise), 1.0, 0, "given")
+    ppm, y = spectrum.ppm, spectrum.intensity
+    lo, hi = sorted(region_ppm)
+    regions = _regions(noise_ppm, "noise_ppm")
+    if regions:
+        mask = np.zeros(ppm.size, bool)
+        for a, b in regions:
+            mask |= (ppm >= a) & (ppm <= b)
+        method = "noise region " + ", ".join(f"{a:g} to {b:g} ppm" for a, b in regions)
+    else:
+        width = hi - lo
+        mask = ((ppm < lo) & (ppm >= lo - 2 * width)) | ((ppm > hi) & (ppm <= hi + 2 * width))
+        method = "spectrum outside the fitted region"
+        if mask.sum() < 2 * MIN_NOISE_POINTS:
+            inside = np.flatnonzero((ppm >= lo) & (ppm <= hi))
+            edge = max(8, int(EDGE_FRACTION * inside.size))
+            mask = np.zeros(ppm.size, bool)
+            mask[inside[:edge]] = mask[inside[-edge:]] = True
+            method = "edges of the fitted region (give noise_ppm for a signal-free region)"
+    segments = _detrended_segments(y, _runs(mask))
+    n = sum(s.size for s in segments)
+    if n < MIN_NOISE_POINTS:
+        raise InputError(f"only {n} signal-free points to estimate the noise from ({method}); give noise_ppm "
+                         "covering a flat part of the spectrum, or noise", source=spectrum.source, where="noise_ppm")
+    sigma = _clipped_sigma(np.concatenate(segments))
+    if not sigma > 0:
+        raise InputError(f"the signal-free points ({method}) have no noise at all; give noise",
+                         source=spectrum.source, where="noise_ppm")
+    return NoiseEstimate(sigma, _correlation_factor(segments, sigma), n, method)
+
+
+# --------------------------------------------------------------------------------------------------
+# parameters
+
+
+def _identifier(text: str) -> str:
+    name = re.sub(r"\W", "_", str(text))
+    return name if name and not name[0].isdigit() else f"_{name}"
+
+
+@dataclass(frozen=True)
+class ParameterLayout:
+    """Which lmfit parameter stands for which quantity of a model.
+
+    Build with :meth:`for_model`; :meth:`parameters` gives the default lmfit Parameters and
+    :meth:`model_from` turns parameter values back into a :class:`~dnmr.model.Model`.
+    """
+
+    model: Model
+    options: FitOptions
+    rate_names: tuple[str, ...]
+    linewidth_names: tuple[str, ...]
+    population_names: tuple[str, ...]
+    shift_names: tuple[tuple[str, ...], ...]
+    baseline_names: tuple[str, ...]
+
+    @classmethod
+    def for_model(cls, model: Model, options: FitOptions) -> "ParameterLayout":
+        """The layout of `model` under `options`."""
+        used: set[str] = set()
+
+        def unique(name: str) -> str:
+            base, n = name, 1
+            while name in used:
+                n += 1
+                name = f"{base}_{n}"
+            used.add(name)
+            return name
+
+        names = lambda prefix, items: tuple(unique(f"{prefix}{_identifier(x)}") for x in items)  # noqa: E731
+        return cls(
+            model, options,
+            rate_names=names("log10_k_", model.process_names()),
+            linewidth_names=names("linewidth_hz_", model.state_names),
+            population_names=names("population_", model.state_names) if len(model.states) > 1 else (),
+            shift_names=tuple(names(f"shift_ppm_{_identifier(s.name)}_", model.spins) for s in model.states),
+            baseline_names=tuple(unique(f"baseline_{j}") for j in range(options.baseline_order + 1)),
+        )
+
+    def parameters(self, span_hz: float) -> lmfit.Parameters:
+        """Default lmfit Parameters (start values from the model) for a region `span_hz` wide (Hz)."""
+        opt, model = self.options, self.model
+        params = lmfit.Parameters()
+        lo, hi = np.log10(opt.rate_limits_per_s)
+        for name, k in zip(self.rate_names, model.rates()):
+            params.add(name, value=float(np.clip(np.log10(max(k, 1e-300)), lo, hi)), min=lo, max=hi)
+        params.add("amplitude", value=1.0, min=0.0)
+        for name in self.baseline_names:
+            params.add(name, value=0.0)
+        params.add("phase0_deg", value=0.0, min=-180.0, max=180.0, vary=opt.phase != "none")
+        params.add("phase1_deg", value=0.0, min=-360.0, max=360.0, vary=opt.phase == "first-order")
+        max_offset = opt.max_offset_hz or 0.1 * span_hz
+        params.add("offset_hz", value=0.0, min=-max_offset, max=max_offset,
+                   vary=opt.frequency_offset and opt.shifts == "fixed")
+        for i, (name, width) in enumerate(zip(self.linewidth_names, model.linewidths_hz())):
+            tied = opt.linewidth == "shared" and i > 0
+            params.add(name, value=float(width), min=1e-3, max=max(span_hz / 4, 2 * width),
+                       vary=opt.linewidth != "fixed" and not tied,
+                       expr=self.linewidth_names[0] if tied else None)
+        populations = model.populations()
+        free = opt.populations == "free"
+        for name, p in zip(self.population_names, populations):
+            params.add(name, value=float(p), min=1e-4, max=1 - 1e-4, vary=free)
+        if free:  # fractions: the first state's is what the others leave
+            params[self.population_names[0]].set(expr="1 - " + " - ".join(self.population_names[1:]))
+        sf = model.spectrometer.frequency_mhz
+        for state, names in zip(model.states, self.shift_names):
+            for spin, name in zip(model.spins, names):
+                value = state.shifts_ppm[spin]
+                params.add(name, value=value, min=value - span_hz / sf, max=value + span_hz / sf,
+                           vary=opt.shifts == "free")
+        apply_settings(params, opt.parameters)
+        return params
+
+    def model_from(self, values: Mapping[str, float]) -> Model:
+        """The model with the parameter `values` (rates, linewidths, populations, shifts) put in."""
+        states = []
+        for i, state in enumerate(self.model.states):
+            changes: dict[str, Any] = {
+                "linewidth_hz": float(values[self.linewidth_names[i]]),
+                "shifts_ppm": {spin: float(values[n]) for spin, n in zip(self.model.spins, self.shift_names[i])},
+            }
+            if self.population_names and self.options.populations == "free":
+                changes.update(population=float(values[self.population_names[i]]), free_energy_kj_mol=None)
+            states.append(dataclasses.replace(state, **changes))
+        rates = [10.0 ** float(values[n]) for n in self.rate_names]
+        return self.model.replace(states=tuple(states)).with_rates(rates)
+
+
+def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> None:
+    """Apply per-parameter settings (value, vary, min, max, expr) to lmfit `params` in place."""
+    for name, setting in settings.items():
+        if name not in params:
+            raise InputError(f'no fit parameter "{name}"{did_you_mean(name, params)}; parameters are '
+                             f'{", ".join(params)}', where=f"parameters.{name}")
+        par = params[name]
+        try:
+            if "expr" in setting:
+                par.set(expr=setting["expr"])
+            for key in ("min", "max", "value", "vary"):
+                if key in setting:
+                    par.set(**{key: setting[key]})
+        except Exception as err:  # lmfit raises NameError/SyntaxError for a bad expression
+            raise InputError(f"cannot apply {dict(setting)}: {err}", where=f"parameters.{name}") from None
+    try:
+        params.update_constraints()
+    except Exception as err:
+        raise InputError(f"a parameter expression cannot be evaluated: {err}", where="parameters") from None
+
+
+def fit_parameters(model: Model, region_ppm: tuple[float, float] | None = None,
+                   options: FitOptions | None = None) -> lmfit.Parameters:
+    """The default lmfit Parameters of a fit, to inspect or edit and pass to :func:`fit_spectrum`.
+
+    Parameters
+    ----------
+    model : Model
+        The spin model.
+    region_ppm : (float, float), optional
+        Fitted region (ppm); default the options' region or the model's window.
+    options : FitOptions, optional
+        Fit options (default ones if not given).
+    """
+    options = options or FitOptions()
+    lo, hi = region_ppm or options.region_ppm or model.window_ppm or default_window_ppm(model)
+    return ParameterLayout.for_model(model, options).parameters(abs(hi - lo) * model.spectrometer.frequency_mhz)
+
+
+# --------------------------------------------------------------------------------------------------
+# the fitted function
+
+
+class _Problem:
+    """Data, noise and the model function of one fit."""
+
+    def __init__(self, layout: ParameterLayout, ppm: np.ndarray, data: np.ndarray, noise: NoiseEstimate):
+        self.layout = layout
+        self.hz = ppm * layout.model.spectrometer.frequency_mhz
+        self.data = data
+        self.noise = noise
+        self.centre = 0.5 * (self.hz[0] + self.hz[-1])
+        self.span = float(self.hz[-1] - self.hz[0])
+        x = (self.hz - self.centre) / (0.5 * self.span)
+        self.powers = x[:, None] ** np.arange(len(layout.baseline_names))
+        self.nfev = 0
+        step = np.diff(self.hz)
+        self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=1e-3) else None
+
+    def shape(self, values: Mapping[str, float], offset_hz: float | None = None) -> np.ndarray:
+        """Complex spectrum S = A - i D of the model at the data's frequencies."""
+        self.nfev += 1
+        offset = values["offset_hz"] if offset_hz is None else offset_hz
+        return lineshape_terms(self.layout.model_from(values)).evaluate(self.hz - offset)
+
+    def phase(self, values: Mapping[str, float], zero_order: bool = True) -> np.ndarray:
+        """phi(nu) in radians."""
+        first = values["phase1_deg"] * (self.hz - self.centre) / self.span
+        return np.radians(first + (values["phase0_deg"] if zero_order else 0.0))
+
+    def baseline(self, values: Mapping[str, float]) -> np.ndarray:
+        return self.powers @ np.array([values[n] for n in self.layout.baseline_names])
+
+    def predict(self, values: Mapping[str, float]) -> np.ndarray:
+        phased = (np.exp(1j * self.phase(values)) * self.shape(values)).real
+        return values["amplitude"] * phased + self.baseline(values)
+
+    def residual(self, params: lmfit.Parameters) -> np.ndarray:
+        try:
+            return (self.predict(params.valuesdict()) - self.data) / self.noise.sigma
+        except InputError:  # parameters outside what a model allows (e.g. a negative population)
+            return np.full(self.data.size, 1e3)
+
+    # --- linear part, for the scan and starting values -----------------------------------
+    def linear_solve(self, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
+        """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
+
+        Only parameters that vary freely (no expression) are solved for; `values` holds the others.
+        Returns chi-square and `values` updated with the solution.
+        """
+        free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
+        base = np.exp(1j * self.phase(values, zero_order=False)) * self.shape(values)
+        turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
+        columns, target = [], self.data.copy()
+        if free("amplitude") and free("phase0_deg"):
+            columns += [base.real, -base.imag]  # amplitude x (cos phi0, sin phi0)
+        elif free("amplitude"):
+            columns.append(turned)
+        else:
+            target -= values["amplitude"] * turned
+        free_baseline = [j for j, n in enumerate(self.layout.baseline_names) if free(n)]
+        for j, n in enumerate(self.layout.baseline_names):
+            if j not in free_baseline:
+                target -= values[n] * self.powers[:, j]
+        columns += [self.powers[:, j] for j in free_baseline]
+        values = dict(values)
+        if columns:
+            design = np.column_stack(columns)
+            coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+            target = target - design @ coef
+            if free("amplitude"):
+                if free("phase0_deg"):
+                    values["amplitude"] = float(max(math.hypot(coef[0], coef[1]), 1e-300))
+                    values["phase0_deg"] = float(np.degrees(math.atan2(coef[1], coef[0])))
+                else:
+                    values["amplitude"] = float(max(coef[0], 1e-300))
+            for j, c in zip(free_baseline, coef[len(coef) - len(free_baseline):]):
+                values[self.layout.baseline_names[j]] = float(c)
+        return float(target @ target) / self.noise.sigma ** 2, values
+
+    def coarse_offset(self, params: lmfit.Parameters, values: dict) -> dict:
+        """Values with the offset moved to the best cross-correlation of model and data (uniform grids)."""
+        par = params["offset_hz"]
+        if not par.vary or par.expr or self.uniform_step is None:
+            return values
+        shape = self.shape(values, offset_hz=0.0).real
+        corr = signal.correlate(self.data - self.data.mean(), shape - shape.mean(), mode="full", method="fft")
+        lags = signal.correlation_lags(self.data.size, shape.size, mode="full") * self.uniform_step
+        allowed = (lags >= par.min) & (lags <= par.max)
+        return {**values, "offset_hz": float(lags[allowed][np.argmax(corr[allowed])])}
+
+
+# --------------------------------------------------------------------------------------------------
+# scan, refinement, profile
+
+
+def _scan(problem: _Problem, params: lmfit.Parameters) -> tuple[list[dict], dict]:
+    """Coarse scan over log k of each varying rate in turn; returns starting points and the scan curves."""
+    opt = problem.layout.options
+    grid = np.linspace(*np.log10(opt.rate_scan_per_s), opt.scan_points)
+    values = params.valuesdict()
+    curves: dict[str, np.ndarray] = {}
+    varying = [n for n in problem.layout.rate_names if params[n].vary and not params[n].expr]
+    starts: list[dict] = []
+    for name in varying:
+        points = []
+        for x in grid:
+            trial = problem.coarse_offset(params, {**values, name: float(x)})
+            points.append(problem.linear_solve(params, trial))
+        chi = np.array([c for c, _ in points])
+        curves[name] = chi
+        order = np.argsort(chi)
+        values = points[order[0]][1]
+        minima = [i for i in order if (i == 0 or chi[i] <= chi[i - 1]) and (i == len(chi) - 1 or chi[i] <= chi[i + 1])]
+        starts = [points[i][1] for i in minima[:2] if chi[i] <= SECOND_START_RATIO * chi[order[0]]]
+    if not varying:
+        starts = [problem.linear_solve(params, problem.coarse_offset(params, values))[1]]
+    return starts, curves
+
+
+def _with_values(params: lmfit.Parameters, values: Mapping[str, float]) -> lmfit.Parameters:
+    out = params.copy()
+    for name, value in values.items():
+        par = out[name]
+        if par.vary and not par.expr:
+            lo, hi = par.min, par.max
+            par.value = float(np.clip(value, lo, hi))
+    out.update_constraints()
+    return out
+
+
+def _minimize(problem: _Problem, params: lmfit.Parameters, tolerance: float = 1e-8) -> lmfit.minimizer.MinimizerResult:
+    minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
+    return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance)
+
+
+def _refine(problem: _Problem, params: lmfit.Parameters, starts: list[dict]) -> lmfit.minimizer.MinimizerResult:
+    best = None
+    for start in starts:
+        result = _minimize(problem, _with_values(params, start))
+        if best is None or result.chisqr < best.chisqr:
+            best = result
+    return best
+
+
+@dataclass(frozen=True)
+class Profile:
+    """Chi-square profiled over log10 k of one process (other free parameters re-optimised).
+
+    Attributes
+    ----------
+    log10_rate : ndarray
+        Points of the profile (log10 of s^-1), ascending.
+    delta_chi_square : ndarray
+        Rise of chi-square above the best fit at each point.
+    lower, upper : float
+        log10 k where the rise reaches the threshold (NaN when it never does on that side).
+    threshold : float
+        The rise that defines the interval (the error scale s).
+    """
+
+    log10_rate: np.ndarray
+    delta_chi_square: np.ndarray
+    lower: float
+    upper: float
+    threshold: float
+
+
+class _BetterMinimum(Exception):
+    """The profile found parameters better than the 'best' fit."""
+
+    def __init__(self, result):
+        super().__init__("better minimum")
+        self.result = result
+
+
+def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float) -> Profile:
+    """Profile chi-square over the parameter `name` (log10 k) on both sides of the best fit."""
+    x0, chi0 = best.params[name].value, best.chisqr
+    lo_lim, hi_lim = best.params[name].min, best.params[name].max
+    points = {x0: 0.0}
+    fits = {x0: best.params}
+
+    def rise(x: float) -> float:
+        nearest = min(fits, key=lambda v: abs(v - x))
+        trial = fits[nearest].copy()
+        trial[name].set(value=x, vary=False)
+        result = _minimize(problem, trial, tolerance=1e-6)
+        if result.chisqr < chi0 - 0.05 * threshold:
+            params = result.params.copy()
+            params[name].set(vary=True)
+            raise _BetterMinimum(_minimize(problem, params))
+        points[x] = result.chisqr - chi0
+        fits[x] = result.params
+        return points[x] - threshold
+
+    def crossing(a: float, b: float) -> float:
+        """Where the rise reaches the threshold between a (below) and b (above): interpolation in
+        sqrt(delta chi-square), exact for a parabola, with a bisection whenever one end stalls."""
+        moved = []
+        for _ in range(16):
+            ra, rb = math.sqrt(max(points[a], 0.0)), math.sqrt(points[b])
+            x = a + (b - a) * (math.sqrt(threshold) - ra) / (rb - ra)
+            if abs(b - a) < 1e-4:
+                return x
+            if moved[-2:] in (["a", "a"], ["b", "b"]):
+                x = 0.5 * (a + b)
+            excess = rise(x)
+            if abs(excess) < 0.05 * threshold:
+                return x
+            if excess < 0:
+                a = x
+                moved.append("a")
+            else:
+                b = x
+                moved.append("b")
+        return x
+
+    def side(direction: int) -> float:
+        limit = hi_lim if direction > 0 else lo_lim
+        step = float(np.clip(1.2 * stderr if np.isfinite(stderr) else 0.1, 1e-3, 0.5))
+        x = x0
+        while (limit - x) * direction > 1e-9:
+            x_new = x + direction * step
+            x_new = min(x_new, limit) if direction > 0 else max(x_new, limit)
+            if rise(x_new) >= 0:
+                return crossing(x, x_new)
+            x, step = x_new, step * 2.0
+        return math.nan
+
+    lower, upper = side(-1), side(+1)
+    xs = np.array(sorted(points))
+    return Profile(xs, np.array([points[x] for x in xs]), lower, upper, threshold)
+
+
+# --------------------------------------------------------------------------------------------------
+# results
+
+
+RATE_STATUSES = ("determined", "interval", "upper-bound", "lower-bound", "undetermined", "fixed")
+
+
+@dataclass(frozen=True)
+class RateEstimate:
+    """What one spectrum says about the rate of one exchange process.
+
+    Attributes
+    ----------
+    process : str
+        The exchange name (or its index when unnamed).
+    rate_per_s : float
+        Best-fit forward rate constant (s^-1).
+    rate_stderr : float
+        Standard error (s^-1, from the covariance of log10 k); NaN unless the status is "determined".
+    rate_lower, rate_upper : float
+        Bounds (s^-1) when the data only bound the rate (NaN otherwise).
+    interval_per_s : (float, float)
+        Ends of the profile's 68 % interval (NaN where it is open).
+    log10_rate, log10_stderr : float
+        The same on the log10 scale the fit works in.
+    status : str
+        "determined", "interval" (two-sided bound), "upper-bound" (slow-exchange limit),
+        "lower-bound" (fast-exchange limit), "undetermined" or "fixed".
+    reason : str
+        Why a bound and not an error bar, in words.
+    profile : Profile or None
+        The chi-square profile.
+    """
+
+    process: str
+    rate_per_s: float
+    rate_stderr: float
+    rate_lower: float
+    rate_upper: float
+    interval_per_s: tuple[float, float]
+    log10_rate: float
+    log10_stderr: float
+    status: str
+    reason: str = ""
+    profile: Profile | None = None
+
+    def describe(self) -> str:
+        """One line: ``k = 123 ± 5 s^-1`` or ``k < 3.1 s^-1 (upper bound)``."""
+        k = self.rate_per_s
+        if self.status == "determined":
+            return f"k = {_num(k)} ± {_num(self.rate_stderr, 2)} s^-1   (log10 k = {self.log10_rate:.3f} ± {self.log10_stderr:.3f})"
+        if self.status == "interval":
+            return f"k = {_num(k)} s^-1, 68 % interval {_num(self.rate_lower)} to {_num(self.rate_upper)} s^-1"
+        if self.status == "upper-bound":
+            return f"k < {_num(self.rate_upper)} s^-1 (upper bound; best fit {_num(k)})"
+        if self.status == "lower-bound":
+            return f"k > {_num(self.rate_lower)} s^-1 (lower bound; best fit {_num(k)})"
+        if self.status == "fixed":
+            return f"k = {_num(k)} s^-1 (fixed)"
+        return f"k not determined (best fit {_num(k)} s^-1)"
+
+    def to_dict(self) -> dict:
+        """Plain data (JSON-ready; NaN stays NaN, write it as null)."""
+        out = {k: v for k, v in dataclasses.asdict(self).items() if k != "profile"}
+        out["interval_per_s"] = list(self.interval_per_s)
+        if self.profile is not None:
+            out["profile"] = {"log10_rate": self.profile.log10_rate.tolist(),
+                              "delta_chi_square": self.profile.delta_chi_square.tolist(),
+                              "threshold": self.profile.threshold}
+        return out
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "RateEstimate":
+        """Inverse of :meth:`to_dict`."""
+        data = {k: (math.nan if v is None else v) if not isinstance(v, (dict, list, str)) else v
+                for k, v in data.items()}
+        prof = data.pop("profile", None)
+        profile = None
+        if prof:
+            profile = Profile(np.array(prof["log10_rate"], float), np.array(prof["delta_chi_square"], float),
+                              math.nan, math.nan, float(prof["threshold"]))
+        data["interval_per_s"] = tuple(math.nan if v is None else v for v in data["interval_per_s"])
+        return cls(**data, profile=profile)
+
+
+def _or(value, default):
+    """`value`, or `default` where JSON had null."""
+    return default if value is None else value
+
+
+def _num(x: float, digits: int = 3) -> str:
+    return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
+
+
+def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profile | None,
+              shifts_fixed: bool) -> RateEstimate:
+    """Turn the best fit and the profile of one rate into an estimate, an interval or a bound."""
+    par = params[name]
+    x, s = par.value, _stderr(par)
+    k = 10.0 ** x
+
+    def estimate(status: str, stderr: float = math.nan, lower: float = math.nan, upper: float = math.nan,
+                 reason: str = "", interval=(math.nan, math.nan)) -> RateEstimate:
+        return RateEstimate(process, k, stderr, lower, upper, interval, x, s, status, reason, profile)
+
+    if not par.vary or par.expr:
+        return estimate("fixed", reason=f"tied: {par.expr}" if par.expr else "held fixed")
+    if profile is None:
+        return estimate("determined" if np.isfinite(s) else "undetermined", stderr=k * math.log(10) * s,
+                        reason="no profile computed: the error bar assumes a parabolic chi-square")
+    lo, hi = profile.lower, profile.upper
+    interval = (10.0 ** lo if np.isfinite(lo) else math.nan, 10.0 ** hi if np.isfinite(hi) else math.nan)
+    level = f"delta chi-square < {profile.threshold:.3g}"
+    if np.isfinite(lo) and np.isfinite(hi):
+        down, up = x - lo, hi - x
+        parabolic = np.isfinite(s) and s > 0 and all(1 / ASYMMETRY_LIMIT <= h / s <= ASYMMETRY_LIMIT for h in (down, up))
+        if parabolic:
+            return estimate("determined", stderr=k * math.log(10) * s, interval=interval)
+        return estimate("interval", lower=interval[0], upper=interval[1], interval=interval,
+                        reason=f"the 68 % interval runs {down:.2f} decades below and {up:.2f} above the best fit "
+                               f"(parabolic error {s:.2f}): chi-square is far from a parabola, so no error bar")
+    if np.isfinite(hi):
+        return estimate("upper-bound", upper=interval[1], interval=interval,
+                        reason=f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
+                               "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
+                               "under the bound")
+    if np.isfinite(lo):
+        known = " with the shifts fixed at the values given (the bound depends on them)" if shifts_fixed else ""
+        return estimate("lower-bound", lower=interval[0], interval=interval,
+                        reason=f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
+                               "s^-1; the excess width of the averaged line is below what the noise resolves for any "
+                               f"k over the bound{known}")
+    return estimate("undetermined", reason=f"the spectrum does not constrain this rate ({level} over the whole range)")
+
+
+@dataclass
+class SpectrumFit:
+    """The fit of one spectrum.
+
+    Attributes
+    ----------
+    rates : list of RateEstimate
+        One per exchange process, in model order.
+    parameters : lmfit.Parameters
+        Every parameter with its value, standard error (scaled as described in the module notes),
+        bounds and expression.
+    chi_square, reduced_chi_square : float
+        sum ((data - fit)/noise)^2 and that over the degrees of freedom.
+    degrees_of_freedom : int
+        Points minus free parameters.
+    noise : NoiseEstimate
+        The noise the residuals are weighed with.
+    error_scale : float
+        s: the factor on the covariance (correlation factor, times the reduced chi-square on a misfit).
+    flags : list of str
+        Short machine-readable remarks ("misfit", "at-bound:offset_hz", ...).
+    notes : list of str
+        The same and more in words.
+    ppm, data, fitted, baseline : ndarray
+        The fitted region (ppm ascending), the data, the fitted spectrum and its baseline part.
+    best_model : Model
+        The model with the fitted rates, linewidths, populations and shifts.
+    source : str
+        Spectrum file.
+    temperature_k : float or None
+        Sample temperature (K) when known.
+    frequency_mhz : float
+        Spectrometer frequency (MHz).
+    function_evaluations : int
+        Lineshape evaluations used (scan, refinement and profiles).
+    options : FitOptions
+        The options used.
+    """
+
+    rates: list[RateEstimate]
+    parameters: lmfit.Parameters
+    chi_square: float
+    reduced_chi_square: float
+    degrees_of_freedom: int
+    noise: NoiseEstimate
+    error_scale: float
+    flags: list[str]
+    notes: list[str]
+    ppm: np.ndarray
+    data: np.ndarray
+    fitted: np.ndarray
+    baseline: np.ndarray
+    best_model: Model
+    source: str = ""
+    temperature_k: float | None = None
+    frequency_mhz: float = math.nan
+    function_evaluations: int = 0
+    options: FitOptions = field(default_factory=FitOptions)
+
+    @property
+    def residuals(self) -> np.ndarray:
+        """data - fit (intensity units)."""
+        return self.data - self.fitted
+
+    def rate(self, process: str | int = 0) -> RateEstimate:
+        """The estimate for one process, by name or index."""
+        if isinstance(process, int):
+            return self.rates[process]
+        for r in self.rates:
+            if r.process == process:
+                return r
+        raise InputError(f"no process {process!r}; processes are {[r.process for r in self.rates]}")
+
+    def report(self) -> str:
+        """A readable account of the fit."""
+        where = f" at {self.temperature_k:g} K" if self.temperature_k else ""
+        lines = [f"Fit of {Path(self.source).name or 'spectrum'}{where}: {self.ppm.size} points, "
+                 f"{self.ppm[0]:.3f} to {self.ppm[-1]:.3f} ppm, {self.frequency_mhz:.6g} MHz", ""]
+        width = max(len(r.process) for r in self.rates) if self.rates else 0
+        for r in self.rates:
+            lines.append(f"  {r.process:<{width}}  {r.describe()}")
+            if r.reason and r.status not in ("determined", "fixed"):
+                lines.append(f"  {'':<{width}}  {r.reason}")
+        lines += ["", f"chi-square {self.chi_square:.1f} on {self.degrees_of_freedom} degrees of freedom "
+                      f"(reduced {self.reduced_chi_square:.3f})",
+                  f"noise {self.noise.sigma:.4g} per point from the {self.noise.method} "
+                  f"({self.noise.points} points, correlation factor {self.noise.correlation_factor:.2f}); "
+                  f"error scale {self.error_scale:.3g}", "", "parameters:"]
+        for par in self.parameters.values():
+            state = "fixed" if not par.vary and not par.expr else (f"= {par.expr}" if par.expr else "")
+            err = "" if par.stderr is None or not np.isfinite(par.stderr) or state else f"± {par.stderr:.4g}"
+            bounds = "" if state else f"[{par.min:.4g}, {par.max:.4g}]"
+            lines.append(f"  {par.name:<26} {par.value:>13.6g} {err:<13} {bounds:<22} {state}")
+        if self.notes:
+            lines += ["", "notes:"] + [f"  - {n}" for n in self.notes]
+        return "\n".join(lines)
+
+    def plot(self, figure=None):
+        """Data, fit and residuals against ppm (high to low); returns the matplotlib Figure."""
+        from .plotting import plot_spectrum_fit
+
+        return plot_spectrum_fit(self, figure=figure)
+
+    def curves(self) -> dict:
+        """The arrays of the fit (ppm, data, fit, baseline) as lists."""
+        return {"ppm": self.ppm.tolist(), "data": self.data.tolist(), "fit": self.fitted.tolist(),
+                "baseline": self.baseline.tolist()}
+
+    def to_dict(self) -> dict:
+        """Everything but the arrays, as plain data (see :meth:`curves` for those)."""
+        return {
+            "source": self.source,
+            "temperature_k": self.temperature_k,
+            "frequency_mhz": self.frequency_mhz,
+            "region_ppm": [float(self.ppm[0]), float(self.ppm[-1])],
+            "points": int(self.ppm.size),
+            "rates": [r.to_dict() for r in self.rates],
+            "parameters": {p.name: {"value": p.value, "stderr": math.nan if p.stderr is None else p.stderr,
+                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr}
+                           for p in self.parameters.values()},
+            "chi_square": self.chi_square,
+            "reduced_chi_square": self.reduced_chi_square,
+            "degrees_of_freedom": self.degrees_of_freedom,
+            "noise": self.noise.to_dict(),
+            "error_scale": self.error_scale,
+            "flags": list(self.flags),
+            "notes": list(self.notes),
+            "function_evaluations": self.function_evaluations,
+            "options": self.options.to_dict(),
+        }
+
+    @classmethod
+    def from_dict(cls, data: Mapping, curves: Mapping, model: Model) -> "SpectrumFit":
+        """Rebuild a fit from :meth:`to_dict` and :meth:`curves`; `model` is the model that was fitted."""
+        options = FitOptions.from_dict(data["options"])
+        params = lmfit.Parameters()
+        for name, p in data["parameters"].items():
+            params.add(name, value=p["value"], min=_or(p["min"], -np.inf), max=_or(p["max"], np.inf))
+            params[name].vary = p["vary"]
+            params[name].stderr = _or(p["stderr"], math.nan)
+        layout = ParameterLayout.for_model(model, options)
+        fitted = np.array(curves["fit"], float)
+        return cls(
+            rates=[RateEstimate.from_dict(r) for r in data["rates"]], parameters=params,
+            chi_square=data["chi_square"], reduced_chi_square=data["reduced_chi_square"],
+            degrees_of_freedom=data["degrees_of_freedom"], noise=NoiseEstimate(**data["noise"]),
+            error_scale=data["error_scale"], flags=list(data["flags"]), notes=list(data["notes"]),
+            ppm=np.array(curves["ppm"], float), data=np.array(curves["data"], float), fitted=fitted,
+            baseline=np.array(curves["baseline"], float), best_model=layout.model_from(params.valuesdict()),
+            source=data["source"], temperature_k=data["temperature_k"], frequency_mhz=data["frequency_mhz"],
+            function_evaluations=data["function_evaluations"], options=options,
+        )
+
+
+# --------------------------------------------------------------------------------------------------
+# the fit
+
+
+def _prepared(spectrum, model: Model) -> MeasuredSpectrum:
+    sf = model.spectrometer.frequency_mhz
+    if isinstance(spectrum, (str, Path)):
+        return read_spectrum(spectrum, frequency_mhz=sf)
+    if spectrum.frequency_mhz is not None and abs(spectrum.frequency_mhz - sf) > 1e-3 * sf:
+        raise InputError(f"the spectrum was recorded at {spectrum.frequency_mhz:.6g} MHz but the model is for "
+                         f"{sf:.6g} MHz; check the nucleus and the spectrometer", source=spectrum.source)
+    return spectrum
+
+
+def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tuple[float, float]:
+    region = options.region_ppm or model.window_ppm or default_window_ppm(model)
+    lo, hi = sorted(region)
+    return max(lo, float(spectrum.ppm[0])), min(hi, float(spectrum.ppm[-1]))
+
+
+def _error_scale(chi2: float, dof: int, noise: NoiseEstimate) -> tuple[float, list[str], list[str]]:
+    """Covariance factor s, with flags and notes on the fit quality."""
+    c = noise.correlation_factor
+    red = chi2 / max(dof, 1)
+    spread = MISFIT_SIGMAS * math.sqrt(2.0 * c / max(dof, 1))
+    flags, notes = [], []
+    scale = c
+    if c > 1.0:
+        flags.append("correlated-noise")
+        notes.append(f"neighbouring points of the noise are correlated (factor {c:.2f}); errors are widened by "
+                     f"sqrt({c:.2f})")
+    if red > 1.0 + spread:
+        scale *= red
+        flags.append("misfit")
+        notes.append(f"reduced chi-square {red:.2f} is well above 1: the model does not describe the data to the "
+                     "noise level (baseline, impurity, wrong model?); errors are widened by its square root")
+    elif red < 1.0 - spread:
+        flags.append("noise-overestimated")
+        notes.append(f"reduced chi-square {red:.2f} is well below 1: the noise estimate is probably too high "
+                     "(signal in the noise region?); errors are left as they are, on the safe side")
+    return scale, flags, notes
+
+
+def _bound_flags(params: lmfit.Parameters, rate_names) -> tuple[list[str], list[str]]:
+    flags, notes = [], []
+    for par in params.values():
+        if not par.vary or par.expr or par.name in rate_names:
+            continue
+        span = par.max - par.min
+        if np.isfinite(span) and (par.value - par.min < 1e-6 * span or par.max - par.value < 1e-6 * span):
+            flags.append(f"at-bound:{par.name}")
+            notes.append(f"{par.name} ended at its bound ({par.value:.4g}); widen the bound or fix it")
+    return flags, notes
+
+
+def fit_spectrum(
+    spectrum: MeasuredSpectrum | str | Path,
+    model: Model,
+    *,
+    temperature_k: float | None = None,
+    options: FitOptions | None = None,
+    parameters: lmfit.Parameters | None = None,
+    start: Mapping[str, float] | None = None,
+    **option_changes,
+) -> SpectrumFit:
+    """Fit the exchange model to one measured spectrum.
+
+    Parameters
+    ----------
+    spectrum : MeasuredSpectrum or path
+        The spectrum (read with :func:`dnmr.readers.read_spectrum` when a path is given).
+    model : Model
+        The spin model; its rates, linewidths, populations and shifts are the starting values.
+    temperature_k : float, optional
+        Sample temperature (K): sets the model's temperature (Eyring rates and Boltzmann populations
+        of a model given in energies) and is reported.
+    options : FitOptions, optional
+        How to fit; keyword arguments (``baseline_order=2``, ``linewidth="fixed"``...) change single
+        options.
+    parameters : lmfit.Parameters, optional
+        Full control: parameters from :func:`fit_parameters`, edited (fixed, bounded, tied).
+    start : mapping, optional
+        Starting values by parameter name (e.g. from a neighbouring temperature); the coarse scan is
+        still done and guards against a bad start.
+
+    Returns
+    -------
+    SpectrumFit
+    """
+    options = (options or FitOptions()).replace(**option_changes) if option_changes else (options or FitOptions())
+    if temperature_k is not None:
+        model = model.at_temperature(temperature_k)
+    spectrum = _prepared(spectrum, model)
+    lo, hi = _region(spectrum, model, options)
+    part = spectrum.region(lo, hi)
+    noise = estimate_noise(spectrum, (lo, hi), options.noise_ppm, options.noise)
+    layout = ParameterLayout.for_model(model, options)
+    problem = _Problem(layout, part.ppm, part.intensity, noise)
+    params = layout.parameters(problem.span)
+    if parameters is not None:
+        missing = [n for n in params if n not in parameters]
+        if missing:
+            raise InputError(f"the parameters lack {', '.join(missing)}; start from fit_parameters(model, region, "
+                             "options) with the same options", where="parameters")
+        params = parameters.copy()
+    flags, notes = [], []
+    if options.shifts == "free" and options.frequency_offset:
+        notes.append("the frequency offset is held at its start value because the shifts are free")
+    if start:
+        params = _with_values(params, {k: v for k, v in start.items() if k in params})
+    starts, _ = _scan(problem, params)
+    if start:
+        starts.append(problem.linear_solve(params, params.valuesdict())[1])
+    best = _refine(problem, params, starts)
+    n_free = best.nvarys
+    dof = part.ppm.size - n_free
+    profiles: dict[str, Profile] = {}
+    for _ in range(3):  # a profile that finds a better minimum restarts from it
+        scale, quality_flags, quality_notes = _error_scale(best.chisqr, dof, noise)
+        try:
+            profiles = {n: _profile(problem, best, n, scale, _stderr(best.params[n]) * math.sqrt(scale))
+                        for n in layout.rate_names
+                        if options.profile and best.params[n].vary and not best.params[n].expr}
+            break
+        except _BetterMinimum as better:
+            best = better.result
+    else:
+        notes.append("the chi-square profile kept finding better fits; the result may not be the best one")
+        flags.append("unstable")
+    for par in best.params.values():  # errors as described in the module notes
+        if par.stderr is not None:
+            par.stderr *= math.sqrt(scale)
+    flags += quality_flags
+    notes += quality_notes
+    more_flags, more_notes = _bound_flags(best.params, layout.rate_names)
+    flags += more_flags
+    notes += more_notes
+    if best.covar is None and n_free:
+        flags.append("singular")
+        notes.append("the parameters are not all determined (singular covariance): fix or tie some of them")
+    values = best.params.valuesdict()
+    rates = [_classify(n, proc, best.params, profiles.get(n), options.shifts == "fixed")
+             for n, proc in zip(layout.rate_names, model.process_names())]
+    for r in rates:
+        if r.status in ("upper-bound", "lower-bound", "interval", "undetermined"):
+            flags.append(f"{r.status}:{r.process}")
+    return SpectrumFit(
+        rates=rates, parameters=best.params, chi_square=float(best.chisqr),
+        reduced_chi_square=float(best.chisqr / max(dof, 1)), degrees_of_freedom=int(dof), noise=noise,
+        error_scale=float(scale), flags=flags, notes=notes, ppm=part.ppm.copy(), data=part.intensity.copy(),
+        fitted=problem.predict(values), baseline=problem.baseline(values), best_model=layout.model_from(values),
+        source=str(spectrum.source), temperature_k=temperature_k, frequency_mhz=model.spectrometer.frequency_mhz,
+        function_evaluations=problem.nfev, options=options,
+    )
+
+
+def _stderr(par: lmfit.Parameter) -> float:
+    return math.nan if par.stderr is None else float(par.stderr)
