@@ -1,0 +1,969 @@
+"""Before the experiment: where signals coalesce, which temperatures to run, and whether the solvent copes.
+
+Coalescence from the engine
+    For every exchanging pair (:func:`dnmr.timescale.exchanging_pairs`) the pair is simulated on its own:
+    the two states of its process (one for a mutual exchange) with the spins that the process permutes
+    together with it (one spin for a plain site exchange, both spins of an AB pair that swaps, ...),
+    their couplings among themselves, the model's populations and linewidths, and only that process
+    running (the other processes off, so that each pair's coalescence belongs to its own process).
+    Spins outside that cluster are left out: their couplings split both signals alike into multiplet
+    components, each of which coalesces with its partner at the same rate when the coupling is the same
+    in both places.  The coalescence rate is the forward rate constant of the process (as the model
+    file defines it) at which the spectrum, on the closed interval between the two shifts, goes from two
+    maxima to one.  For two sites this is where the minimum between the lines meets the smaller maximum
+    (Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956); Shanan-Atidi & Bar-Eli, J. Phys. Chem. 74, 961
+    (1970)); for an AB pair the interval holds the two inner lines of the quartet and the count drops
+    when the centre turns from a minimum into a maximum (Kurland, Rubin & Wise, J. Chem. Phys. 40, 2426
+    (1964)).  It is found by a scan over six decades of rate and bisection on log k, once with the
+    model's linewidths and once in the narrow-line limit (widths 1e-6 of the separation), to show how a
+    finite linewidth moves it.
+
+Prediction
+    Given activation parameters, the coalescence temperature solves k_Eyring(T) = k_c at each field
+    (shifts in Hz scale with the field; couplings and linewidths do not); populations from free energies
+    follow the temperature, which is then found by repeated substitution.
+
+Plan
+    Each spectrum carries Fisher information about ln k: F = sum_i (d y_i / d ln k)^2 / sigma^2 over the
+    points of the spectrum (finite differences of the engine spectrum, at a dozen temperatures and
+    interpolated between them), with the overall intensity scale
+    fitted too (its information is projected out).  sigma, the rms noise per point, is the tallest point
+    of the spectrum without exchange divided by the signal-to-noise ratio.  Through the Eyring equation
+    d ln k / d dH‡ = -1/(RT) and d ln k / d dS‡ = 1/R, so a set of temperatures gives an information
+    matrix for (dH‡, dS‡); the plan picks the set with the largest determinant (D-optimal design: a
+    greedy start and exchange passes) among candidate temperatures inside the solvent's liquid range and
+    the probe's range, at least a minimum step apart.  The resulting standard errors are lower bounds
+    (noise only); the temperature dependence of shifts and linewidths and thermometer calibration add to
+    them (Shoup, Becker & McNeel, J. Phys. Chem. 76, 71 (1972)).  dG‡ is quoted at the harmonic mean
+    temperature, where it is uncorrelated with dH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from itertools import combinations
+
+import numpy as np
+
+from .engine import frequency_grid_ppm, lineshape_terms
+from .errors import InputError
+from .kinetics import GAS_CONSTANT
+from .model import Exchange, Model, State, coupling_key
+from .solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
+from .timescale import (
+    DEFAULT_DETECTABLE_FRACTION,
+    REGIMES,
+    ActivationParameters,
+    ExchangingPair,
+    PairAtField,
+    PairTimescale,
+    at_field,
+    checked_fields,
+    exchanging_pairs,
+    model_at,
+    pair_timescales,
+    populations_follow_temperature,
+    process_activations,
+    rate_window,
+    solve_temperature,
+)
+
+#: Points on the interval between the two shifts where maxima are counted.
+REGION_POINTS = 4001
+#: Linewidth (fraction of the shift difference) that stands for the narrow-line limit.
+NARROW_LIMIT_FRACTION = 1e-6
+#: Rates scanned, relative to sqrt(2) pi sqrt(dnu^2 + 6 J^2) / (sum of exit factors), before bisection.
+SCAN_DECADES = 3
+SCAN_PER_DECADE = 8
+#: Relative precision of the coalescence rate.
+RATE_PRECISION = 1e-9
+#: Step in ln k of the (forward) finite differences for the Fisher information.
+LN_RATE_STEP = 1e-4
+#: A typical range of a variable-temperature probe, -100 to +150 deg C (check your probe's rating).
+DEFAULT_PROBE_RANGE_K = (173.15, 423.15)
+DEFAULT_SIGNAL_TO_NOISE = 100.0
+DEFAULT_SPECTRA = 8
+DEFAULT_MIN_STEP_K = 5.0
+#: Candidates reach this far (K) beyond the measurable window on both sides.
+CANDIDATE_MARGIN_K = 15.0
+MAX_CANDIDATES = 150
+#: The information is computed from the engine at this many temperatures (evenly spread in 1/T), then
+#: at midpoints next to nodes where its logarithm bends by more than INFORMATION_BEND, in up to
+#: INFORMATION_ROUNDS rounds; in between it is interpolated. The chosen temperatures are computed exactly.
+INFORMATION_NODES = 9
+INFORMATION_BEND = 0.2
+INFORMATION_ROUNDS = 4
+#: The information sums run over at most this many points; a finer model grid is resampled and the sum
+#: scaled by the ratio of point counts (the noise stays per point of the model's grid).
+MAX_INFORMATION_POINTS = 8192
+
+CAUTIONS = (
+    "Heating a sealed or capped NMR tube above the boiling point of its solvent builds pressure: the tube"
+    " can burst. Work above the boiling point only with tubes made for it and under your facility's procedures.",
+    "Freezing the sample can crack the tube; a broken tube in the probe is costly and can be dangerous.",
+    "Stay inside the probe's rated temperature range, change the temperature in small steps and let it"
+    " settle (ramp slowly); use the gas flow and settings your facility prescribes.",
+    "Low temperatures use liquid nitrogen or other cryogens: they cause cold burns, and their boil-off can"
+    " suffocate in closed or poorly ventilated rooms. Wear the protective equipment required.",
+    "The magnet's field is always on: keep ferromagnetic tools and objects away, and people with pacemakers"
+    " or other implants outside the marked field limits.",
+    "These notes do not replace training: follow your facility's rules, its trained staff and local codes.",
+)
+
+PLAN_CAVEAT = (
+    "Standard errors are lower bounds from noise alone (Cramer-Rao), with linewidths, shifts and temperatures"
+    " taken as known; their temperature dependence and the thermometer calibration add to them"
+    " (Shoup, Becker & McNeel 1972)."
+)
+
+
+# --- coalescence ---------------------------------------------------------------------------
+
+def pair_model(model: Model, pair: ExchangingPair, linewidth_hz: float | None = None) -> Model:
+    """The pair on its own: its process alone (rate 0 here), the states it joins, the spins of its cluster.
+
+    Parameters
+    ----------
+    model : Model
+        The full model (its populations and field are used).
+    pair : ExchangingPair
+    linewidth_hz : float, optional
+        Intrinsic linewidth (FWHM, Hz) for every state; default each state's own.
+    """
+    populations = model.populations()
+    keep = pair.cluster
+    states = []
+    for name in dict.fromkeys((pair.first[0], pair.second[0])):
+        s = model.states[model.state_index(name)]
+        couplings = {coupling_key(x, y): s.coupling(x, y) for x, y in combinations(keep, 2) if s.coupling(x, y)}
+        states.append(State(name, {x: s.shifts_ppm[x] for x in keep}, couplings,
+                            linewidth_hz if linewidth_hz is not None else s.linewidth_hz,
+                            population=populations[model.state_index(name)]))
+    moves = {x: y for x, y in pair.mapping.items() if x != y}
+    exchange = Exchange(pair.first[0], pair.second[0], moves, rate_per_s=0.0, name=pair.process_name)
+    return Model(model.spectrometer, tuple(states), (exchange,), title=pair.label)
+
+
+def count_maxima(values: np.ndarray, tolerance: float = 1e-12) -> int:
+    """Local maxima of samples on a closed interval; an end counts when the curve falls away from it.
+
+    Steps smaller than `tolerance` times the largest value count as flat.
+    """
+    steps = np.diff(np.asarray(values, dtype=float))
+    steps = steps[np.abs(steps) > tolerance * np.abs(values).max()]
+    if steps.size == 0:
+        return 1
+    rising = steps > 0
+    return int(np.sum(rising[:-1] & ~rising[1:]) + (not rising[0]) + rising[-1])
+
+
+def _exchange_scale(model: Model, pair: ExchangingPair) -> float:
+    """A rate (s^-1) near coalescence: sqrt(2) pi sqrt(dnu^2 + 6 J^2) divided by the sum of exit factors."""
+    dnu = pair.shift_difference_hz(model)
+    couplings = [abs(s.coupling(x, y)) for s in model.states for x, y in combinations(pair.cluster, 2)]
+    j = max(couplings, default=0.0)
+    return math.sqrt(2.0) * math.pi * math.hypot(dnu, math.sqrt(6.0) * j) / sum(pair.exit_factors(model))
+
+
+def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = False) -> tuple[float | None, str]:
+    """Forward rate constant (s^-1) of the pair's process at which its two maxima become one.
+
+    Parameters
+    ----------
+    model : Model
+        The full model at the field and temperature of interest.
+    pair : ExchangingPair
+    narrow_limit : bool
+        Use linewidths of 1e-6 of the shift difference instead of the model's.
+
+    Returns
+    -------
+    (rate, note) : (float or None, str)
+        None with the reason when the pair shows no merging of two maxima into one.
+    """
+    dnu = pair.shift_difference_hz(model)
+    sub = pair_model(model, pair, abs(dnu) * NARROW_LIMIT_FRACTION if narrow_limit else None)
+    sf = model.spectrometer.frequency_mhz
+    ends = sorted((sub.states[0].shifts_ppm[pair.first[1]] * sf,
+                   sub.states[-1].shifts_ppm[pair.second[1]] * sf))
+    grid = np.linspace(*ends, REGION_POINTS)
+
+    def maxima(rate: float) -> int:
+        return count_maxima(lineshape_terms(sub.with_rates([rate])).evaluate(grid).real)
+
+    scale = _exchange_scale(model, pair)
+    rates = scale * np.logspace(-SCAN_DECADES, SCAN_DECADES, 2 * SCAN_DECADES * SCAN_PER_DECADE + 1)
+    counts = [maxima(k) for k in rates]
+    if counts[0] < 2:
+        return None, (f"no two maxima even in slow exchange (k = {rates[0]:.3g} s^-1): the signals are too close"
+                      " for their linewidth, or one is too weak to show as a peak")
+    last = max(i for i, c in enumerate(counts) if c >= 2)
+    if last == len(rates) - 1:
+        return None, f"still more than one maximum at k = {rates[-1]:.3g} s^-1: the signals do not merge into one"
+    low, high = rates[last], rates[last + 1]
+    while high / low > 1 + RATE_PRECISION:
+        mid = math.sqrt(low * high)
+        low, high = (mid, high) if maxima(mid) >= 2 else (low, mid)
+    return math.sqrt(low * high), ""
+
+
+@dataclass(frozen=True)
+class Coalescence(PairAtField):
+    """Coalescence of one exchanging pair at one field (see :class:`~dnmr.timescale.PairAtField`).
+
+    Attributes
+    ----------
+    populations : (float, float)
+        Fractions at the two places (two-site view) where the rate applies.
+    rate_per_s : float or None
+        Forward rate constant of the process at coalescence with the model's linewidths (s^-1).
+    narrow_limit_rate_per_s : float or None
+        The same as the linewidths go to zero (s^-1).
+    temperature_k, narrow_limit_temperature_k : float or None
+        Where the activation parameters reach those rates (K).
+    note : str
+        Why a rate is missing, if one is.
+    """
+
+    populations: tuple[float, float]
+    rate_per_s: float | None
+    narrow_limit_rate_per_s: float | None
+    temperature_k: float | None = None
+    narrow_limit_temperature_k: float | None = None
+    note: str = ""
+
+    @property
+    def linewidth_effect(self) -> float | None:
+        """Relative change of the coalescence rate caused by the finite linewidth (k_c / k_c(narrow) - 1)."""
+        if self.rate_per_s is None or self.narrow_limit_rate_per_s is None:
+            return None
+        return self.rate_per_s / self.narrow_limit_rate_per_s - 1.0
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready): `process`, `frequency_mhz` (1H), `rate_per_s`, `temperature_k` and more."""
+        return {**super().to_dict(), "rate_per_s": self.rate_per_s, "temperature_k": self.temperature_k,
+                "populations": [float(p) for p in self.populations],
+                "narrow_limit_rate_per_s": self.narrow_limit_rate_per_s,
+                "narrow_limit_temperature_k": self.narrow_limit_temperature_k,
+                "linewidth_effect": self.linewidth_effect, "note": self.note}
+
+
+def _coalescence_of(model: Model, pair: ExchangingPair, activation: ActivationParameters | None) -> Coalescence:
+    """Coalescence of `pair` with the model's linewidths and in the narrow limit (temperatures with `activation`)."""
+    follows = activation is not None and populations_follow_temperature(model)
+    found = []
+    for narrow in (False, True):
+        last: dict = {}
+
+        def rate(t, narrow=narrow, last=last):
+            here = model if t is None else model.at_temperature(t)
+            last["rate"], last["note"] = coalescence_rate(here, pair, narrow)
+            last["populations"] = pair.populations(here)
+            return last["rate"]
+
+        if activation is None:
+            rate(None)
+            temperature = None
+        else:
+            temperature = solve_temperature(activation, rate, follows)
+        found.append((last["rate"], temperature, last["note"], last["populations"]))
+    (k, t, note, populations), (k0, t0, note0, _) = found
+    return Coalescence(pair, model.spectrometer.proton_mhz, model.spectrometer.frequency_mhz,
+                       pair.shift_difference_hz(model), populations, k, k0, t, t0, note or note0)
+
+
+def predict_coalescence(model: Model, activation: ActivationParameters | None = None, *,
+                        frequencies_mhz: Sequence[float] | None = None,
+                        process: str | None = None) -> list[Coalescence]:
+    """Coalescence rate (s^-1) and, with activation parameters, temperature (K) of every pair at every field.
+
+    Parameters
+    ----------
+    model : Model
+        The model.
+    activation : ActivationParameters, optional
+        For `process` (default: every process); otherwise those in the model file; without any, only rates.
+    frequencies_mhz : sequence of float, optional
+        Fields as 1H frequencies (MHz); default the model's.
+    process : str, optional
+        The process `activation` belongs to.
+
+    Returns
+    -------
+    list of Coalescence
+        Field by field, pair by pair.
+    """
+    return _coalescences(model, process_activations(model, activation, process), frequencies_mhz)
+
+
+def coalescence(model: Model, *, frequencies_mhz: Sequence[float] | None = None) -> list[Coalescence]:
+    """Coalescence rates (s^-1) of every exchanging pair at the model's field (or at the given 1H MHz).
+
+    The populations are the model's; no temperatures are solved for (see :func:`predict_coalescence`).
+    """
+    return _coalescences(model, {}, frequencies_mhz)
+
+
+def _coalescences(model: Model, activations: dict[int, ActivationParameters],
+                  frequencies_mhz: Sequence[float] | None) -> list[Coalescence]:
+    out = []
+    for mhz in checked_fields(model, frequencies_mhz):
+        here = at_field(model, mhz)
+        out += [_coalescence_of(here, pair, activations.get(pair.process)) for pair in exchanging_pairs(here)]
+    return out
+
+
+# --- information about ln k, and the choice of temperatures ---------------------------------
+
+def _spectrum(model: Model, hz: np.ndarray) -> np.ndarray:
+    return lineshape_terms(model).evaluate(hz).real
+
+
+def information_grid(model: Model) -> tuple[np.ndarray, float]:
+    """Frequencies (Hz) over which information is summed, and the weight of each of them.
+
+    The model's grid, or at most MAX_INFORMATION_POINTS evenly spread over its window, each then
+    standing for (model points / points used) points of the model's grid.
+    """
+    grid = frequency_grid_ppm(model) * model.spectrometer.frequency_mhz
+    if grid.size <= MAX_INFORMATION_POINTS:
+        return grid, 1.0
+    return np.linspace(grid[0], grid[-1], MAX_INFORMATION_POINTS), grid.size / MAX_INFORMATION_POINTS
+
+
+def noise_level(model: Model, hz: np.ndarray, signal_to_noise: float) -> float:
+    """rms noise per point: the tallest point of the spectrum without exchange over `signal_to_noise`."""
+    static = model.with_rates(np.zeros(len(model.exchanges)))
+    return float(_spectrum(static, hz).max()) / signal_to_noise
+
+
+def ln_rate_information(model: Model, processes: Sequence[int], hz: np.ndarray, noise: float) -> np.ndarray:
+    """Fisher information matrix about the ln k of `processes` carried by one spectrum.
+
+    Parameters
+    ----------
+    model : Model
+        At the temperature (and rates) of the spectrum.
+    processes : sequence of int
+        Process indices whose ln k are estimated.
+    hz : ndarray
+        Frequencies of the spectrum's points (Hz).
+    noise : float
+        rms noise per point (same units as the absorption, Hz^-1).
+
+    Returns
+    -------
+    ndarray (P, P)
+        Information about (ln k_1, ..., ln k_P) with the intensity scale fitted alongside (projected out).
+    """
+    rates = model.rates()
+    base = _spectrum(model, hz)
+    columns = []
+    for p in processes:
+        moved = rates.copy()
+        moved[p] = rates[p] * math.exp(LN_RATE_STEP)
+        columns.append((_spectrum(model.with_rates(moved), hz) - base) / LN_RATE_STEP)
+    columns.append(base)  # d y / d ln(scale)
+    design = np.array(columns).T / noise
+    full = design.T @ design
+    rate_block, cross, scale = full[:-1, :-1], full[:-1, -1:], full[-1, -1]
+    return rate_block - cross @ cross.T / scale
+
+
+def eyring_jacobian(temperature_k: float, n_processes: int) -> np.ndarray:
+    """d ln k_p / d (dH‡_q [kJ/mol], dS‡_q [J/(mol K)]): array (P, 2P), one (dH‡, dS‡) pair per process."""
+    g = np.zeros((n_processes, 2 * n_processes))
+    for p in range(n_processes):
+        g[p, 2 * p] = -1e3 / (GAS_CONSTANT * temperature_k)
+        g[p, 2 * p + 1] = 1.0 / GAS_CONSTANT
+    return g
+
+
+def eyring_information(temperature_k: float, rate_information: np.ndarray) -> np.ndarray:
+    """Information about (dH‡, dS‡) of every process (kJ/mol, J/(mol K)) from information about their ln k."""
+    g = eyring_jacobian(temperature_k, rate_information.shape[0])
+    return g.T @ rate_information @ g
+
+
+def information_profile(information_at, low_k: float, high_k: float) -> tuple[list[float], list[np.ndarray]]:
+    """Temperatures (K) and information matrices that resolve how the information changes from `low_k`
+    to `high_k` (K): a few nodes, refined at midpoints where the information bends (see INFORMATION_BEND).
+
+    Parameters
+    ----------
+    information_at : callable
+        Information matrix at a temperature (K).
+    low_k, high_k : float
+        The range (K).
+    """
+    start = [low_k] if high_k <= low_k else 1.0 / np.linspace(1.0 / high_k, 1.0 / low_k, INFORMATION_NODES)
+    found = {float(t): information_at(float(t)) for t in start}
+    for _ in range(INFORMATION_ROUNDS):
+        temps = sorted(found)
+        new = set()
+        for i in _bends(temps, [float(np.trace(found[t])) for t in temps]):
+            new.update(0.5 * (temps[j] + temps[j + 1]) for j in (i - 1, i) if temps[j + 1] - temps[j] > 1.0)
+        if not new:
+            break
+        found.update({t: information_at(t) for t in new})
+    temps = sorted(found)
+    return temps, [found[t] for t in temps]
+
+
+def _bends(temps: Sequence[float], sizes: Sequence[float]) -> list[int]:
+    """Interior nodes whose log size lies off the straight line through its neighbours by > INFORMATION_BEND."""
+    logs = np.log(np.maximum(sizes, 1e-300))
+    out = []
+    for i in range(1, len(temps) - 1):
+        a, b, c = temps[i - 1:i + 2]
+        line = logs[i - 1] + (logs[i + 1] - logs[i - 1]) * (b - a) / (c - a)
+        if abs(logs[i] - line) > INFORMATION_BEND:
+            out.append(i)
+    return out
+
+
+def interpolated_information(nodes_k: Sequence[float], information: Sequence[np.ndarray],
+                             temperatures_k: Sequence[float]) -> list[np.ndarray]:
+    """Information matrices at `temperatures_k` (K) from those at `nodes_k` (K), interpolated element by
+    element with a monotone cubic (no overshoot), kept symmetric and positive semi-definite."""
+    from scipy.interpolate import PchipInterpolator
+
+    order = np.argsort(nodes_k)
+    stack = np.asarray(information)[order]
+    if len(order) < 2:
+        return [stack[0]] * len(temperatures_k)
+    values = PchipInterpolator(np.asarray(nodes_k)[order], stack, axis=0)(np.asarray(temperatures_k, dtype=float))
+    out = []
+    for m in values:
+        w, v = np.linalg.eigh(0.5 * (m + m.T))
+        out.append((v * np.clip(w, 0.0, None)) @ v.T)
+    return out
+
+
+def _log_det(matrices: Sequence[np.ndarray], chosen: Sequence[int]) -> float:
+    sign, value = np.linalg.slogdet(sum(matrices[i] for i in chosen))
+    return value if sign > 0 else -math.inf
+
+
+def _improving_swap(information: Sequence[np.ndarray], chosen: list[int], fits) -> list[int] | None:
+    """`chosen` with one temperature swapped for another that raises the determinant, or None."""
+    best = _log_det(information, chosen)
+    for pos in range(len(chosen)):
+        rest = chosen[:pos] + chosen[pos + 1:]
+        for j in range(len(information)):
+            if fits(rest, j) and _log_det(information, rest + [j]) > best + 1e-9:
+                return rest + [j]
+    return None
+
+
+def d_optimal_temperatures(candidates_k: Sequence[float], information: Sequence[np.ndarray], count: int,
+                           min_step_k: float) -> list[int]:
+    """Indices of at most `count` candidates, each `min_step_k` (K) apart, maximising det(sum of information).
+
+    The best pair is found by trying all, then temperatures are added greedily and swapped one at a time
+    while the determinant grows.
+    """
+    t = np.asarray(candidates_k, dtype=float)
+
+    def fits(chosen, j):
+        return j not in chosen and all(abs(t[j] - t[i]) >= min_step_k - 1e-9 for i in chosen)
+
+    pairs = [(i, j) for i, j in combinations(range(len(t)), 2) if fits([i], j)]
+    scored = [(_log_det(information, pair), pair) for pair in pairs]
+    if not scored or max(scored)[0] == -math.inf:
+        return []
+    chosen = list(max(scored)[1])
+    while len(chosen) < count:
+        options = [j for j in range(len(t)) if fits(chosen, j)]
+        if not options:
+            break
+        chosen.append(max(options, key=lambda j: _log_det(information, chosen + [j])))
+    while (swapped := _improving_swap(information, chosen, fits)) is not None:
+        chosen = swapped
+    return sorted(chosen, key=lambda i: t[i])
+
+
+@dataclass(frozen=True)
+class PredictedErrors:
+    """Standard errors (noise only) of one process' activation parameters from a planned series.
+
+    Attributes
+    ----------
+    process : str
+    enthalpy_stderr : float
+        Of dH‡ (kJ/mol).
+    entropy_stderr : float
+        Of dS‡ (J/(mol K)).
+    harmonic_mean_k : float
+        Harmonic mean of the planned temperatures (K).
+    gibbs_stderr : float
+        Of dG‡ at the harmonic mean temperature (kJ/mol).
+    correlation : float
+        Correlation of dH‡ and dS‡.
+    """
+
+    process: str
+    enthalpy_stderr: float
+    entropy_stderr: float
+    harmonic_mean_k: float
+    gibbs_stderr: float
+    correlation: float
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        return {"process": self.process, "enthalpy_stderr": self.enthalpy_stderr,
+                "entropy_stderr": self.entropy_stderr, "harmonic_mean_k": self.harmonic_mean_k,
+                "gibbs_at_harmonic_mean_stderr": self.gibbs_stderr, "correlation": self.correlation}
+
+    def describe(self) -> str:
+        """One line."""
+        return (f"{self.process}: dH‡ ± {self.enthalpy_stderr:.2g} kJ/mol, dS‡ ± {self.entropy_stderr:.2g} J/(mol K)"
+                f" (correlation {self.correlation:.3f}), dG‡({self.harmonic_mean_k:.0f} K) ± {self.gibbs_stderr:.2g} kJ/mol")
+
+
+def predicted_errors(covariance: np.ndarray, names: Sequence[str], temperatures_k: Sequence[float]) -> list[PredictedErrors]:
+    """Standard errors per process from the covariance of (dH‡, dS‡) pairs (kJ/mol, J/(mol K))."""
+    t_hm = len(temperatures_k) / sum(1.0 / t for t in temperatures_k)
+    out = []
+    for p, name in enumerate(names):
+        c = covariance[2 * p:2 * p + 2, 2 * p:2 * p + 2]
+        var_g = c[0, 0] + (t_hm / 1e3) ** 2 * c[1, 1] - 2 * (t_hm / 1e3) * c[0, 1]
+        out.append(PredictedErrors(name, math.sqrt(c[0, 0]), math.sqrt(c[1, 1]), t_hm, math.sqrt(max(var_g, 0.0)),
+                                   c[0, 1] / math.sqrt(c[0, 0] * c[1, 1])))
+    return out
+
+
+@dataclass(frozen=True)
+class PlannedTemperature:
+    """One temperature of the plan and why it is there.
+
+    Attributes
+    ----------
+    temperature_k : float
+    rates_per_s : dict of str to float
+        Predicted forward rate of each planned process.
+    regimes : dict of str to str
+        Regime of each exchanging pair (``"process: signals"``).
+    ln_rate_stderr : dict of str to float
+        Standard error of ln k that this spectrum alone gives, per process.
+    enthalpy_error_growth : float
+        Relative growth of the largest dH‡ standard error if this spectrum were left out.
+    solvent_warning : SolventWarning or None
+    reason : str
+    """
+
+    temperature_k: float
+    rates_per_s: dict
+    regimes: dict
+    ln_rate_stderr: dict
+    enthalpy_error_growth: float
+    solvent_warning: SolventWarning | None
+    reason: str
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        return {"temperature_k": self.temperature_k, "rates_per_s": self.rates_per_s, "regimes": self.regimes,
+                "ln_rate_stderr": self.ln_rate_stderr, "enthalpy_error_growth": self.enthalpy_error_growth,
+                "solvent_warning": None if self.solvent_warning is None else self.solvent_warning.message,
+                "reason": self.reason}
+
+
+@dataclass(frozen=True)
+class FieldPlan:
+    """The recommended temperatures at one field.
+
+    Attributes
+    ----------
+    proton_mhz : float
+        Field as its 1H frequency (MHz).
+    frequency_mhz : float
+        Frequency of the observed nucleus (MHz).
+    temperatures : list of PlannedTemperature
+    candidate_range_k : (float, float) or None
+        The temperatures searched (K), None when nothing was usable.
+    errors : list of PredictedErrors
+    noise : float
+        rms noise per point assumed (Hz^-1).
+    notes : list of str
+    """
+
+    proton_mhz: float
+    frequency_mhz: float
+    temperatures: list[PlannedTemperature]
+    candidate_range_k: tuple[float, float] | None
+    errors: list[PredictedErrors]
+    noise: float
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def temperatures_k(self) -> list[float]:
+        """The planned temperatures (K), ascending."""
+        return [p.temperature_k for p in self.temperatures]
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        return {"frequency_mhz": self.proton_mhz, "observed_frequency_mhz": self.frequency_mhz,
+                "temperatures_k": self.temperatures_k, "temperatures": [p.to_dict() for p in self.temperatures],
+                "candidate_range_k": None if self.candidate_range_k is None else list(self.candidate_range_k),
+                "predicted_stderr": [e.to_dict() for e in self.errors], "noise_per_point": self.noise,
+                "notes": self.notes}
+
+
+def _nearest_coalescence(temperature_k: float, coalescences: Sequence[Coalescence]) -> str:
+    known = [c for c in coalescences if c.temperature_k is not None]
+    if not known:
+        return ""
+    c = min(known, key=lambda c: abs(c.temperature_k - temperature_k))
+    gap = temperature_k - c.temperature_k
+    which = f" of {c.pair.label}" if len(known) > 1 else ""
+    if abs(gap) < 1.0:
+        return f"at coalescence{which}"
+    return f"{abs(gap):.0f} K {'above' if gap > 0 else 'below'} coalescence{which}"
+
+
+def _precision_text(ln_rate_stderr: dict) -> str:
+    """``fixes k to about ±3 %`` (one process) or ``fixes k(rot) to about ±3 %, k(flip) ...`` (several)."""
+    def one(sd):
+        return f"to about ±{100 * sd:.2g} %" if sd < 1 else "hardly at all (±100 % or worse)"
+
+    if len(ln_rate_stderr) == 1:
+        return "fixes k " + one(next(iter(ln_rate_stderr.values())))
+    return "fixes " + ", ".join(f"k({name}) {one(sd)}" for name, sd in ln_rate_stderr.items())
+
+
+def _reason(planned: PlannedTemperature, coalescences: Sequence[Coalescence], end: str) -> str:
+    """Why a temperature is in the plan, in words."""
+    kinds = sorted(set(planned.regimes.values()), key=REGIMES.index)
+    parts = [f"{kinds[0]} exchange" if len(kinds) == 1 else "mixed " + "/".join(kinds) + " exchange"]
+    near = _nearest_coalescence(planned.temperature_k, coalescences)
+    if near:
+        parts.append(near)
+    parts.append("this spectrum alone " + _precision_text(planned.ln_rate_stderr))
+    if end:
+        parts.append(f"sets the {end} end of the 1/T span (leverage on dH‡)")
+    parts.append(f"without it the dH‡ error grows by {100 * planned.enthalpy_error_growth:.0f} %")
+    return "; ".join(parts)
+
+
+def _enthalpy_errors(information: Sequence[np.ndarray]) -> np.ndarray:
+    covariance = np.linalg.inv(sum(information))
+    return np.sqrt(np.diag(covariance)[0::2])
+
+
+def _candidate_range(windows: Sequence[PairTimescale], limits: tuple[float, float]) -> tuple[tuple[float, float] | None, str]:
+    """Temperatures (K) worth searching: the measurable windows widened a little, inside `limits`."""
+    ends = [t for w in windows for t in (w.slow_below_k, w.fast_above_k) if t is not None]
+    if not ends:
+        return None, "no temperature reaches the measurable window between 20 and 2000 K"
+    low, high = min(ends) - CANDIDATE_MARGIN_K, max(ends) + CANDIDATE_MARGIN_K
+    usable = (max(low, limits[0]), min(high, limits[1]))
+    if usable[0] >= usable[1]:
+        return None, (f"the measurable window ({min(ends):.0f}-{max(ends):.0f} K) lies outside the usable range"
+                      f" {limits[0]:.0f}-{limits[1]:.0f} K (solvent and probe); choose another solvent or field")
+    return usable, ""
+
+
+def _plan_field(model: Model, activations: dict[int, ActivationParameters], windows: Sequence[PairTimescale],
+                coalescences: Sequence[Coalescence], limits: tuple[float, float], settings: dict,
+                solvent: Solvent | None) -> FieldPlan:
+    """The D-optimal temperatures at the field of `model` (see the module notes)."""
+    processes = sorted(activations)
+    names = [model.process_names()[p] for p in processes]
+    sf = model.spectrometer.frequency_mhz
+    usable, why = _candidate_range(windows, limits)
+    hz, per_point = information_grid(model)
+    noise = noise_level(model, hz, settings["signal_to_noise"])
+    if usable is None:
+        return FieldPlan(model.spectrometer.proton_mhz, sf, [], None, [], noise, [why])
+    step = max(1.0, math.ceil((usable[1] - usable[0]) / MAX_CANDIDATES))
+    candidates = np.arange(math.ceil(usable[0]), math.floor(usable[1]) + 1e-9, step)
+
+    def exact(t):
+        return per_point * ln_rate_information(model_at(model, t, activations), processes, hz, noise)
+
+    nodes, node_info = information_profile(exact, candidates[0], candidates[-1])
+    rate_info = interpolated_information(nodes, node_info, candidates)
+    chosen = d_optimal_temperatures(candidates, [eyring_information(t, f) for t, f in zip(candidates, rate_info)],
+                                    settings["spectra"], settings["min_step_k"])
+    notes = [] if len(chosen) >= settings["spectra"] else [
+        f"only {len(chosen)} temperatures fit {settings['min_step_k']:g} K apart in {usable[0]:.0f}-{usable[1]:.0f} K"]
+    if len(chosen) < 2:
+        return FieldPlan(model.spectrometer.proton_mhz, sf, [], usable, [], noise,
+                         notes + ["the spectra carry too little information to determine dH‡ and dS‡"])
+    temperatures = [float(candidates[i]) for i in chosen]
+    exact_info = [exact(t) for t in temperatures]
+    picked = [eyring_information(t, f) for t, f in zip(temperatures, exact_info)]
+    full = _enthalpy_errors(picked)
+    planned = []
+    for n, (t, f) in enumerate(zip(temperatures, exact_info)):
+        others = picked[:n] + picked[n + 1:]
+        growth = float(np.max(_enthalpy_errors(others) / full) - 1.0) if len(others) >= 2 else math.inf
+        entry = _planned_temperature(model_at(model, t, activations), processes, f, growth, solvent, settings)
+        end = "low-temperature" if n == 0 else "high-temperature" if n == len(chosen) - 1 else ""
+        planned.append(dataclasses.replace(entry, reason=_reason(entry, coalescences, end)))
+    errors = predicted_errors(np.linalg.inv(sum(picked)), names, temperatures)
+    return FieldPlan(model.spectrometer.proton_mhz, sf, planned, usable, errors, noise, notes)
+
+
+def _planned_temperature(model: Model, processes: Sequence[int], rate_info: np.ndarray, growth: float,
+                         solvent: Solvent | None, settings: dict) -> PlannedTemperature:
+    """A planned temperature (the model's) without its reason: rates, regimes, precision, solvent check."""
+    names = model.process_names()
+    rates = model.rates()
+    regimes = {f"{p.process_name}: {p.label}": rate_window(model, p, settings["detectable_fraction"]).regime(rates[p.process])
+               for p in exchanging_pairs(model)}
+    sd = np.sqrt(np.diag(np.linalg.pinv(rate_info)))
+    t = model.temperature_k
+    return PlannedTemperature(t, {names[p]: float(rates[p]) for p in processes}, regimes,
+                              dict(zip((names[p] for p in processes), sd.tolist())), growth,
+                              None if solvent is None else check_temperature(solvent, t, settings["margin_k"]), "")
+
+
+@dataclass(frozen=True)
+class ExperimentPlan:
+    """Everything to know before booking the magnet.
+
+    Attributes
+    ----------
+    model : Model
+    activations : dict of str to ActivationParameters
+        Per process name.
+    coalescence : list of Coalescence
+        Per field and exchanging pair.
+    windows : list of PairTimescale
+        Measurable window (intermediate exchange) per field and pair.
+    fields : list of FieldPlan
+        The recommended temperatures per field.
+    solvent : Solvent or None
+    solvent_warnings : list of SolventWarning
+        For coalescence temperatures outside or near the edges of the liquid range.
+    covering_solvents : list of str
+        Solvents liquid around every coalescence temperature (T_c +/- 20 K, with the margin).
+    usable_range_k : (float, float)
+        Probe range cut to the solvent's liquid range (with the margin).
+    settings : dict
+        signal_to_noise, spectra, min_step_k, detectable_fraction, margin_k, probe_range_k.
+    notes : list of str
+    cautions : tuple of str
+    """
+
+    model: Model
+    activations: dict
+    coalescence: list[Coalescence]
+    windows: list[PairTimescale]
+    fields: list[FieldPlan]
+    solvent: Solvent | None
+    solvent_warnings: list[SolventWarning]
+    covering_solvents: list[str]
+    usable_range_k: tuple[float, float]
+    settings: dict
+    notes: list[str]
+    cautions: tuple[str, ...] = CAUTIONS
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready) with the contract key ``coalescence``."""
+        return {
+            "title": self.model.title,
+            "nucleus": self.model.spectrometer.nucleus,
+            "activation": {n: a.to_dict() for n, a in self.activations.items()},
+            "coalescence": [c.to_dict() for c in self.coalescence],
+            "measurable_window": [w.to_dict() for w in self.windows],
+            "plan": [f.to_dict() for f in self.fields],
+            "solvent": None if self.solvent is None else {
+                **self.solvent.to_dict(), "warnings": [w.to_dict() for w in self.solvent_warnings]},
+            "covering_solvents": self.covering_solvents,
+            "usable_range_k": list(self.usable_range_k),
+            "settings": {k: list(v) if isinstance(v, tuple) else v for k, v in self.settings.items()},
+            "notes": self.notes + [PLAN_CAVEAT],
+            "cautions": list(self.cautions),
+        }
+
+    def report(self) -> str:
+        """A readable report: coalescence, measurable window, plan per field, solvent check, cautions."""
+        nucleus = self.model.spectrometer.nucleus
+        lines = [f"Experiment plan{': ' + self.model.title if self.model.title else ''}",
+                 f"Observed nucleus {nucleus}; fields are quoted as 1H frequencies."]
+        lines += [f"  {name}: {act.describe()}" for name, act in self.activations.items()]
+        lines += ["", "Coalescence (two maxima become one; k is the forward rate constant of the process)",
+                  f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'dnu/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
+                  f"   {'narrow-line k_c':>15} {'T_c/K':>7}"]
+        for c in self.coalescence:
+            lines.append(f"  {c.proton_mhz:7.1f} {c.frequency_mhz:9.2f}  {c.pair.process_name + ': ' + c.pair.label:<34}"
+                         f" {c.shift_difference_hz:9.2f} {_number(c.rate_per_s, '10.4g')} {_number(c.temperature_k, '7.1f')}"
+                         f"   {_number(c.narrow_limit_rate_per_s, '15.4g')} {_number(c.narrow_limit_temperature_k, '7.1f')}")
+            if c.note:
+                lines.append(f"      note: {c.note}")
+        f = self.settings["detectable_fraction"]
+        lines += ["", f"Measurable window (exchange broadening from {f:g} x the linewidth on the slow side to an"
+                  f" excess width of {f:g} x the linewidth on the fast side)"]
+        for w in self.windows:
+            lines.append(f"  {w.proton_mhz:7.1f} MHz  {w.pair.process_name}: {w.pair.label}:"
+                         f" k {w.window.slow_rate_per_s:.3g}-{w.window.fast_rate_per_s:.3g} s^-1,"
+                         f" T {_number(w.slow_below_k, '.1f')}-{_number(w.fast_above_k, '.1f')} K"
+                         + ("  (empty: the signals are too close for their linewidth)" if w.window.is_empty else ""))
+        for plan in self.fields:
+            lines += ["", f"Plan at {plan.proton_mhz:g} MHz ({nucleus} at {plan.frequency_mhz:.2f} MHz;"
+                      f" S/N {self.settings['signal_to_noise']:g}, D-optimal for dH‡ and dS‡)"]
+            for p in plan.temperatures:
+                lines.append(f"  {p.temperature_k:6.1f} K ({p.temperature_k - 273.15:6.1f} °C)  {_rates_text(p.rates_per_s)}")
+                lines.append(f"           {p.reason}")
+                if p.solvent_warning is not None:
+                    lines.append(f"           warning: {p.solvent_warning.message}")
+            lines += [f"  predicted (noise only): {e.describe()}" for e in plan.errors]
+            lines += [f"  note: {n}" for n in plan.notes]
+        lines += ["", self._solvent_report()]
+        lines += [f"Note: {n}" for n in self.notes + [PLAN_CAVEAT]]
+        lines += ["", "Cautions:"] + [f"  - {c}" for c in self.cautions]
+        return "\n".join(lines)
+
+    def _solvent_report(self) -> str:
+        lo, hi = self.usable_range_k
+        if self.solvent is None:
+            text = [f"Solvent: none given; temperatures kept inside the probe range {lo:.0f}-{hi:.0f} K only."]
+        else:
+            s = self.solvent
+            text = [f"Solvent: {s.name} (mp {s.melting_point_k:.1f} K, bp {s.boiling_point_k:.1f} K; {s.source});"
+                    f" usable {lo:.0f}-{hi:.0f} K with {self.settings['margin_k']:g} K margins and the probe range."]
+            text += [f"  warning: {w.message}" for w in self.solvent_warnings]
+        if self.covering_solvents:
+            text.append("  liquid around every coalescence temperature: " + ", ".join(self.covering_solvents))
+        return "\n".join(text)
+
+    def plot(self, figure=None):
+        """Predicted VT stack at the planned temperatures, one panel per field."""
+        return plot_planned_stack(self, figure=figure)
+
+
+def _rates_text(rates_per_s: dict) -> str:
+    """``k = 12.3 s^-1`` for one process, ``k: rotation 12.3 s^-1, inversion 4.5 s^-1`` for several."""
+    if len(rates_per_s) == 1:
+        return f"k = {next(iter(rates_per_s.values())):.3g} s^-1"
+    return "k: " + ", ".join(f"{n} {k:.3g} s^-1" for n, k in rates_per_s.items())
+
+
+def _number(value: float | None, spec: str) -> str:
+    width = "".join(ch for ch in spec.split(".")[0] if ch.isdigit())
+    return f"{'-':>{width or 1}}" if value is None else format(value, spec)
+
+
+def _checked_settings(signal_to_noise: float, spectra: int, min_step_k: float, detectable_fraction: float,
+                      margin_k: float, probe_range_k: Sequence[float]) -> dict:
+    checks = (
+        (signal_to_noise > 0, "signal_to_noise", "must be positive"),
+        (int(spectra) == spectra and spectra >= 2, "spectra", "must be a whole number of at least 2"),
+        (min_step_k >= 0, "min_step_k", "must not be negative (K)"),
+        (0 < detectable_fraction < 1, "detectable_fraction", "must lie between 0 and 1"),
+        (margin_k >= 0, "margin_k", "must not be negative (K)"),
+        (len(probe_range_k) == 2 and 0 < probe_range_k[0] < probe_range_k[1], "probe_range_k",
+         "needs two temperatures, low then high (K)"),
+    )
+    for ok, key, message in checks:
+        if not ok:
+            raise InputError(f"{key} {message}", where=key)
+    return {"signal_to_noise": float(signal_to_noise), "spectra": int(spectra), "min_step_k": float(min_step_k),
+            "detectable_fraction": float(detectable_fraction), "margin_k": float(margin_k),
+            "probe_range_k": tuple(float(t) for t in probe_range_k)}
+
+
+def plan_experiment(model: Model, activation: ActivationParameters | None = None, *,
+                    frequencies_mhz: Sequence[float] | None = None, process: str | None = None,
+                    solvent: Solvent | None = None, probe_range_k: Sequence[float] = DEFAULT_PROBE_RANGE_K,
+                    signal_to_noise: float = DEFAULT_SIGNAL_TO_NOISE, spectra: int = DEFAULT_SPECTRA,
+                    min_step_k: float = DEFAULT_MIN_STEP_K,
+                    detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION,
+                    margin_k: float = DEFAULT_MARGIN_K) -> ExperimentPlan:
+    """Coalescence temperatures per field, the measurable window, and the temperatures to run.
+
+    Parameters
+    ----------
+    model : Model
+        The model (shifts, couplings, linewidths, populations; its field is the default).
+    activation : ActivationParameters, optional
+        For `process` (default: every process); otherwise those in the model file.
+    frequencies_mhz : sequence of float, optional
+        Fields as 1H frequencies (MHz).
+    process : str, optional
+        The process `activation` belongs to.
+    solvent : Solvent, optional
+        Its liquid range (less `margin_k` at both ends) bounds the plan.
+    probe_range_k : (float, float)
+        The probe's rated range (K); default -100 to +150 deg C, a typical range: check yours.
+    signal_to_noise : float
+        Tallest point of the spectrum without exchange over the rms noise per point.
+    spectra : int
+        How many temperatures to plan.
+    min_step_k : float
+        Smallest step between planned temperatures (K).
+    detectable_fraction : float
+        Exchange broadening, as a fraction of the linewidth, that bounds the measurable window.
+    margin_k : float
+        Distance (K) kept from the solvent's melting and boiling points.
+
+    Returns
+    -------
+    ExperimentPlan
+    """
+    settings = _checked_settings(signal_to_noise, spectra, min_step_k, detectable_fraction, margin_k, probe_range_k)
+    activations = process_activations(model, activation, process)
+    if not activations:
+        raise InputError("the plan needs activation parameters: give a barrier (dG‡) or dH‡ and dS‡,"
+                         " or put them in the model file", where="activation")
+    fields = checked_fields(model, frequencies_mhz)
+    limits = settings["probe_range_k"]
+    if solvent is not None:
+        liquid = solvent.liquid_range_k(margin_k)
+        limits = (max(limits[0], liquid[0]), min(limits[1], liquid[1]))
+    found = _coalescences(model, activations, fields)
+    windows = pair_timescales(model, activations, fields, detectable_fraction)
+    plans = []
+    for mhz in fields:
+        here = [w for w in windows if w.proton_mhz == mhz and w.pair.process in activations]
+        plans.append(_plan_field(at_field(model, mhz), activations, here,
+                                 [c for c in found if c.proton_mhz == mhz], limits, settings, solvent))
+    coalescence_k = [c.temperature_k for c in found if c.temperature_k is not None]
+    notes = [] if solvent is not None else ["no solvent given: the temperatures are not checked against a liquid range"]
+    warnings = [] if solvent is None else [w for w in (check_temperature(solvent, t, margin_k) for t in coalescence_k) if w]
+    covering = [s.name for s in solvents_covering(min(coalescence_k) - 20.0, max(coalescence_k) + 20.0, margin_k,
+                                                  [solvent] if solvent is not None else [])] if coalescence_k else []
+    outside = [t for t in coalescence_k if not limits[0] <= t <= limits[1]]
+    if outside:
+        notes.append(f"coalescence at {', '.join(f'{t:.0f}' for t in outside)} K lies outside the usable range"
+                     f" {limits[0]:.0f}-{limits[1]:.0f} K")
+    names = model.process_names()
+    return ExperimentPlan(model, {names[i]: a for i, a in activations.items()}, found, windows, plans, solvent,
+                          warnings, list(dict.fromkeys(covering)), limits, settings, notes)
+
+
+def plot_planned_stack(plan: ExperimentPlan, figure=None):
+    """Simulated spectra at the planned temperatures, stacked (lowest at the bottom), one panel per field.
+
+    Parameters
+    ----------
+    plan : ExperimentPlan
+    figure : matplotlib Figure, optional
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .plotting import plot_stack, plt
+    from .spectrum import simulate
+
+    shown = [f for f in plan.fields if f.temperatures]
+    if not shown:
+        raise InputError("the plan has no temperatures to draw", where="plot")
+    tallest = max(len(f.temperatures) for f in shown)
+    fig = figure if figure is not None else plt.figure(figsize=(5.0 * len(shown), 1.2 + 0.8 * tallest))
+    axes = fig.subplots(1, len(shown), squeeze=False)[0]
+    index = {n: i for i, n in enumerate(plan.model.process_names())}
+    activations = {index[n]: a for n, a in plan.activations.items()}
+    for ax, field_plan in zip(axes, shown):
+        model = at_field(plan.model, field_plan.proton_mhz)
+        grid = frequency_grid_ppm(model)
+        spectra = [simulate(model_at(model, p.temperature_k, activations), grid) for p in field_plan.temperatures]
+        labels = [f"{p.temperature_k:.0f} K, {_rates_text(p.rates_per_s)}" for p in field_plan.temperatures]
+        plot_stack(spectra, labels, ax=ax, title=f"predicted, {field_plan.proton_mhz:g} MHz (1H)")
+    fig.tight_layout()
+    return fig
