@@ -194,6 +194,116 @@ def demo(outdir: Path, overwrite: bool) -> None:
     run_demo(outdir, overwrite=overwrite, echo=click.echo)
 
 
+def _with_options(options):
+    """Apply a tuple of click options (shared by several commands)."""
+    def apply(command):
+        for option in reversed(options):
+            command = option(command)
+        return command
+    return apply
+
+
+_TIMESCALE_OPTIONS = (
+    click.option("--barrier-kj-mol", type=float, help="Free energy of activation dG‡ (kJ/mol), the same at every temperature."),
+    click.option("--enthalpy-kj-mol", type=float, help="dH‡ (kJ/mol); give --entropy-j-mol-k with it."),
+    click.option("--entropy-j-mol-k", type=float, help="dS‡ (J/(mol K)); give --enthalpy-kj-mol with it."),
+    click.option("--process", help="Exchange process the activation parameters belong to (default: every process)."),
+    click.option("--frequencies-mhz", help="Fields as 1H frequencies (MHz), comma separated (default: the model's)."),
+    click.option("--detectable-fraction", type=float,
+                 help="Exchange broadening, as a fraction of the linewidth, that ends slow and begins fast"
+                      " exchange (default 0.1)."),
+    click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
+    click.option("--overwrite", is_flag=True, help="Replace an existing image."),
+)
+
+
+def _activation_from_options(barrier: float | None, enthalpy: float | None, entropy: float | None):
+    """ActivationParameters from the command-line options (None when none were given)."""
+    from .timescale import ActivationParameters
+
+    if barrier is not None and (enthalpy is not None or entropy is not None):
+        raise InputError("give --barrier-kj-mol or --enthalpy-kj-mol with --entropy-j-mol-k, not both",
+                         where="--barrier-kj-mol")
+    if (enthalpy is None) != (entropy is None):
+        raise InputError("--enthalpy-kj-mol and --entropy-j-mol-k go together",
+                         where="--entropy-j-mol-k" if entropy is None else "--enthalpy-kj-mol")
+    if barrier is not None:
+        return ActivationParameters.from_gibbs(barrier)
+    return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+
+
+def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> None:
+    """Print a result's report or JSON, and draw its figure."""
+    from .output import save_figure
+
+    if plot_file:
+        save_figure(result.plot(), plot_file, overwrite=overwrite)
+    if as_json:
+        print_json(result.to_dict())
+    else:
+        click.echo(result.report())
+    if plot_file:
+        click.echo(f"wrote {plot_file}", err=as_json)
+
+
+@cli.command()
+@click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
+@_with_options(_TIMESCALE_OPTIONS)
+@click.option("--solvent", "solvent_name", help="Solvent by name or formula (CDCl3, toluene-d8 ...), or the name of yours.")
+@click.option("--solvent-file", type=click.Path(dir_okay=False, path_type=Path),
+              help="TOML file of your own solvents ([[solvent]] name, melting_point_k, boiling_point_k).")
+@click.option("--melting-point-k", type=float, help="Melting point of your solvent (K).")
+@click.option("--boiling-point-k", type=float, help="Boiling point of your solvent (K).")
+@click.option("--probe-range-k", help="Rated temperature range of the probe (K) as low,high (default -100 to +150 °C).")
+@click.option("--signal-to-noise", type=float,
+              help="Tallest point of the spectrum without exchange over the rms noise (default 100).")
+@click.option("--spectra", type=int, help="Number of temperatures to plan (default 8).")
+@click.option("--min-step-k", type=float, help="Smallest step between temperatures (K; default 5).")
+@click.option("--margin-k", type=float,
+              help="Distance kept from the solvent's melting and boiling points (K; default 10).")
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Draw the predicted VT stack at the planned temperatures (PNG, SVG or PDF).")
+def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
+         detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
+         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file) -> None:
+    """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
+    from . import load_model
+    from .planning import plan_experiment
+    from .solvents import solvent_from_options
+
+    model = load_model(model_file)
+    given = {"probe_range_k": _parse_list(probe_range_k, "--probe-range-k") if probe_range_k else None,
+             "signal_to_noise": signal_to_noise, "spectra": spectra, "min_step_k": min_step_k,
+             "detectable_fraction": detectable_fraction, "margin_k": margin_k}
+    result = plan_experiment(
+        model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
+        frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
+        process=process, solvent=solvent_from_options(solvent_name, solvent_file, melting_point_k, boiling_point_k),
+        **{key: value for key, value in given.items() if value is not None})
+    _emit(result, as_json, plot_file, overwrite)
+
+
+@cli.command()
+@click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
+@_with_options(_TIMESCALE_OPTIONS)
+@click.option("--temperature-k", type=float, help="Report regimes and the averaged spin system at this temperature (K).")
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
+def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
+              detectable_fraction, as_json, overwrite, temperature_k, plot_file) -> None:
+    """Slow, intermediate and fast exchange per pair and field, and what becomes equivalent when fast."""
+    from . import load_model
+    from .timescale import timescale_view
+
+    model = load_model(model_file)
+    result = timescale_view(
+        model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
+        frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
+        process=process, temperature_k=temperature_k,
+        **({} if detectable_fraction is None else {"detectable_fraction": detectable_fraction}))
+    _emit(result, as_json, plot_file, overwrite)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point of the ``dnmr`` console script."""
     try:

@@ -1,0 +1,242 @@
+"""Regimes of exchange, the fast-exchange averaged spin system and its equivalences, `dnmr timescale`.
+
+References: the slow- and fast-exchange limits of the McConnell equations and the A2 spectrum
+(tests/closed_forms.py), the Eyring equation with CODATA constants from scipy, and the definitions of
+chemical and magnetic equivalence (Pople, Schneider & Bernstein, High-resolution NMR (1959)).
+"""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from scipy import constants
+from scipy.optimize import brentq, minimize_scalar
+
+from closed_forms import (a2_line, fast_exchange_excess_width, lorentzian_lines, mcconnell_two_site,
+                          slow_exchange_broadening)
+from dnmr import simulate
+from dnmr.cli import cli
+from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.timescale import (ActivationParameters, exchanging_pairs, fast_exchange_limit, rate_window,
+                            timescale_view, window_temperatures)
+
+SF = 400.0
+
+
+def ab_swap(j_hz=-14.0, rate=10.0, width=1.0):
+    """Invented AB pair whose spins trade places (mutual exchange)."""
+    return Model(Spectrometer(SF), (State("s", {"A": 3.0, "B": 3.25}, {"A-B": j_hz}, width, 1.0),),
+                 (Exchange("s", "s", {"A": "B", "B": "A"}, rate_per_s=rate, name="swap"),))
+
+
+def two_sites(p_a=0.7, dnu=100.0, width=1.0):
+    """Invented two-site exchange of one spin, site b `dnu` Hz above site a."""
+    return Model(Spectrometer(SF), (State("a", {"H": 3.0}, linewidth_hz=width, population=p_a),
+                                    State("b", {"H": 3.0 + dnu / SF}, linewidth_hz=width, population=1 - p_a)),
+                 (Exchange("a", "b", rate_per_s=10.0, name="hop"),))
+
+
+def fwhm(absorption, low, high):
+    """Position and full width at half height (Hz) of the one maximum of `absorption` in [low, high]."""
+    peak = minimize_scalar(lambda f: -absorption(f), bounds=(low, high), method="bounded",
+                           options={"xatol": 1e-9}).x
+    half = absorption(peak) / 2
+    return peak, brentq(lambda f: absorption(f) - half, peak, high) - brentq(lambda f: absorption(f) - half, low, peak)
+
+
+def engine_absorption(model):
+    return lambda f: float(simulate(model, np.array([f / SF, f / SF + 1e-9])).intensity[0])
+
+
+# --- fast-exchange limit of an AB pair: the A2 spectrum ---------------------------------------
+
+def test_averaged_ab_pair_is_a2_one_line_and_hides_its_coupling():
+    # Pople, Schneider & Bernstein (1959): two equivalent coupled spins give one line at their shift,
+    # whatever J.
+    limit = fast_exchange_limit(ab_swap(j_hz=-14.0))
+    (state,) = limit.model.states
+    assert state.shifts_ppm == pytest.approx({"A": 3.125, "B": 3.125})
+    (group,) = limit.groups
+    assert group.magnetically_equivalent and group.by_exchange
+    (hidden,) = limit.hidden_couplings
+    assert hidden.spins == ("A", "B") and hidden.coupling_hz == pytest.approx(-14.0)
+    hz = np.linspace(1220.0, 1280.0, 2001) + 0.01
+    positions, intensities = a2_line(3.125 * SF)
+    expected = lorentzian_lines(hz, positions, intensities, 1.0).real
+    assert simulate(limit.model, hz / SF).intensity == pytest.approx(expected, rel=1e-9, abs=1e-12)
+
+
+def test_engine_at_high_rates_converges_to_the_averaged_spectrum():
+    # The McConnell fast limit: the excess width falls as 1/k, so the difference from the averaged
+    # (A2) spectrum falls tenfold per decade of rate.
+    hz = np.linspace(1220.0, 1280.0, 2001) + 0.01
+    averaged = simulate(fast_exchange_limit(ab_swap()).model, hz / SF).intensity
+    gaps = [np.abs(simulate(ab_swap(rate=k), hz / SF).intensity - averaged).max() / averaged.max()
+            for k in (1e6, 1e7, 1e8)]
+    assert gaps[2] < 1e-3
+    assert gaps[1] / gaps[0] == pytest.approx(0.1, rel=0.05)
+    assert gaps[2] / gaps[1] == pytest.approx(0.1, rel=0.05)
+
+
+def test_averaged_two_site_line_sits_at_the_population_weighted_shift():
+    # McConnell (1958), fast limit: one line at p_a nu_a + p_b nu_b.
+    limit = fast_exchange_limit(two_sites(0.7, dnu=100.0))
+    (state,) = limit.model.states
+    assert state.shifts_ppm["H"] * SF == pytest.approx(0.7 * 1200.0 + 0.3 * 1300.0, rel=1e-12)
+    peak, _ = fwhm(lambda f: mcconnell_two_site(np.array([f]), 1200.0, 1300.0, 1e7, 0.7, 1.0, 1.0).real[0],
+                   1220.0, 1240.0)
+    assert peak == pytest.approx(state.shifts_ppm["H"] * SF, abs=1e-3)
+
+
+# --- equivalence -------------------------------------------------------------------------------
+
+def aa_xx_model():
+    """Invented A2X2-type fragment in two conformers that interconvert, relabelling A1/A2 and X1/X2."""
+    shifts = {"A1": 3.0, "A2": 3.2, "X1": 1.0, "X2": 1.1}
+    couplings = {"A1-A2": -12.0, "X1-X2": -13.0, "A1-X1": 7.0, "A2-X2": 7.0, "A1-X2": 2.0, "A2-X1": 2.0}
+    return Model(Spectrometer(SF), (State("c", shifts, couplings, 1.0, 1.0),),
+                 (Exchange("c", "c", {"A1": "A2", "A2": "A1", "X1": "X2", "X2": "X1"}, rate_per_s=1.0, name="flip"),))
+
+
+def test_equal_shifts_with_unequal_couplings_are_only_chemically_equivalent():
+    # Pople, Schneider & Bernstein (1959): A1 and A2 share their shift but couple differently to X1
+    # (7 and 2 Hz), so they are chemically, not magnetically, equivalent (an AA'XX' system), and
+    # their coupling J(A1,A2) still shapes the spectrum.
+    limit = fast_exchange_limit(aa_xx_model())
+    groups = {g.spins: g for g in limit.groups}
+    assert set(groups) == {("A1", "A2"), ("X1", "X2")}
+    assert not groups[("A1", "A2")].magnetically_equivalent
+    assert groups[("A1", "A2")].magnetic_classes == (("A1",), ("A2",))
+    assert limit.hidden_couplings == ()
+    (state,) = limit.model.states
+    changed = state.__class__(state.name, state.shifts_ppm, {**state.couplings_hz, "A1-A2": -3.0},
+                              state.linewidth_hz, state.population)
+    grid = np.linspace(0.5, 3.6, 8001)
+    a = simulate(limit.model, grid).intensity
+    b = simulate(limit.model.replace(states=(changed,)), grid).intensity
+    assert np.abs(a - b).max() > 1e-3 * a.max()
+
+
+def test_coupling_within_magnetically_equivalent_nuclei_does_not_show():
+    # Pople, Schneider & Bernstein (1959): the coupling among magnetically equivalent nuclei leaves the
+    # spectrum unchanged (here an A2X spectrum with J(A,A) from 0 to -14 Hz).
+    model = Model(Spectrometer(SF), (State("s", {"A": 3.0, "B": 3.25, "X": 1.0}, {"A-B": -14.0, "A-X": 6.0,
+                                                                                  "B-X": 2.0}, 1.0, 1.0),),
+                  (Exchange("s", "s", {"A": "B", "B": "A"}, rate_per_s=1.0),))
+    limit = fast_exchange_limit(model)
+    (group,) = limit.groups
+    assert group.spins == ("A", "B") and group.magnetically_equivalent
+    assert [h.spins for h in limit.hidden_couplings] == [("A", "B")]
+    (state,) = limit.model.states
+    assert state.coupling("A", "X") == pytest.approx(4.0) and state.coupling("B", "X") == pytest.approx(4.0)
+    without = state.__class__(state.name, state.shifts_ppm, {"A-X": 4.0, "B-X": 4.0}, 1.0, 1.0)
+    grid = np.linspace(0.8, 3.3, 8001)
+    assert simulate(limit.model, grid).intensity == pytest.approx(
+        simulate(limit.model.replace(states=(without,)), grid).intensity, rel=1e-8, abs=1e-12)
+
+
+def test_three_site_rotation_makes_three_equivalent_spins():
+    # A threefold rotation averages three shifts to their mean (fast limit of the exchange).
+    model = Model(Spectrometer(SF), (State("s", {"H1": 1.0, "H2": 1.2, "H3": 1.5}, {}, 1.0, 1.0),),
+                  (Exchange("s", "s", {"H1": "H2", "H2": "H3", "H3": "H1"}, rate_per_s=1.0),))
+    limit = fast_exchange_limit(model)
+    (group,) = limit.groups
+    assert group.spins == ("H1", "H2", "H3") and group.magnetically_equivalent
+    assert group.shift_ppm == pytest.approx((1.0 + 1.2 + 1.5) / 3)
+
+
+def test_coincident_shifts_are_not_equivalent_by_exchange():
+    model = Model(Spectrometer(SF), (
+        State("a", {"H": 3.0, "M": 1.5}, {}, 1.0, 0.5), State("b", {"H": 3.2, "M": 1.5}, {}, 1.0, 0.5)),
+        (Exchange("a", "b", rate_per_s=1.0),))
+    assert [p.second[1] for p in exchanging_pairs(model)] == ["H"]  # M does not move
+    limit = fast_exchange_limit(model.replace(states=(
+        State("a", {"H": 1.4, "M": 1.5}, {}, 1.0, 0.5), State("b", {"H": 1.6, "M": 1.5}, {}, 1.0, 0.5))))
+    (group,) = limit.groups
+    assert group.spins == ("H", "M") and not group.by_exchange
+
+
+# --- regime boundaries -----------------------------------------------------------------------
+
+def test_slow_threshold_is_the_slow_exchange_broadening():
+    # McConnell (1958), slow limit: a line broadens by k_out / pi; at the threshold the faster-leaving
+    # (minor) site broadens by the detectable fraction of its width; the engine agrees.
+    model = two_sites(0.7, dnu=100.0, width=2.0)
+    (pair,) = exchanging_pairs(model)
+    window = rate_window(model, pair, 0.1)
+    k_ba = window.slow_rate_per_s * 0.7 / 0.3
+    assert slow_exchange_broadening(k_ba) == pytest.approx(0.1 * 2.0, rel=1e-12)
+    _, width = fwhm(engine_absorption(model.with_rates([window.slow_rate_per_s])), 1280.0, 1320.0)
+    assert width - 2.0 == pytest.approx(0.2, rel=0.02)
+
+
+def test_fast_threshold_is_the_fast_exchange_excess_width():
+    # McConnell (1958), fast limit: excess width p_a p_b (2 pi dnu)^2 / (pi (k_ab + k_ba)).
+    model = two_sites(0.7, dnu=100.0, width=2.0)
+    (pair,) = exchanging_pairs(model)
+    window = rate_window(model, pair, 0.1)
+    assert fast_exchange_excess_width(100.0, window.fast_rate_per_s, 0.7) == pytest.approx(0.2, rel=1e-12)
+    _, width = fwhm(engine_absorption(model.with_rates([window.fast_rate_per_s])), 1220.0, 1240.0)
+    assert width - 2.0 == pytest.approx(0.2, rel=0.02)
+    assert window.regime(0.5 * window.slow_rate_per_s) == "slow"
+    assert window.regime(2.0 * window.fast_rate_per_s) == "fast"
+    assert window.regime(math.sqrt(window.slow_rate_per_s * window.fast_rate_per_s)) == "intermediate"
+
+
+def test_regime_temperatures_follow_eyring():
+    # Eyring equation, transmission 1, CODATA constants (scipy.constants).
+    model = two_sites(0.5, dnu=100.0)
+    (pair,) = exchanging_pairs(model)
+    t_slow, t_fast = window_temperatures(model, pair, ActivationParameters.from_gibbs(60.0))
+    window = rate_window(model, pair)
+    for t, k in ((t_slow, window.slow_rate_per_s), (t_fast, window.fast_rate_per_s)):
+        assert constants.k * t / constants.h * math.exp(-60e3 / (constants.R * t)) == pytest.approx(k, rel=1e-5)
+
+
+def test_fast_threshold_rises_with_field():
+    # The fast-exchange excess width grows with dnu^2, so fast exchange needs higher rates at higher field.
+    view = timescale_view(two_sites(0.5), ActivationParameters.from_gibbs(60.0), frequencies_mhz=[300, 600])
+    low, high = view.pairs
+    assert high.window.fast_rate_per_s == pytest.approx(4 * low.window.fast_rate_per_s, rel=1e-9)
+    assert high.fast_above_k > low.fast_above_k
+    assert high.slow_below_k == pytest.approx(low.slow_below_k)
+
+
+def test_view_at_a_high_temperature_averages_the_fast_process():
+    view = timescale_view(ab_swap(), ActivationParameters.from_gibbs(50.0), temperature_k=420.0)
+    (snap,) = view.snapshots
+    assert snap.regimes == {"swap": "fast"}
+    assert snap.averaged.averaged_processes == ("swap",)
+    assert "does not show" in view.report()
+
+
+def test_cli_timescale_json_and_figure(tmp_path):
+    path = tmp_path / "model.toml"
+    path.write_text("""
+[spectrometer]
+frequency_mhz = 400.0
+[[state]]
+name = "s"
+population = 1
+shifts_ppm = { A = 3.0, B = 3.25 }
+couplings_hz = { "A-B" = -14.0 }
+[[exchange]]
+name = "swap"
+from = "s"
+to = "s"
+spins = { A = "B", B = "A" }
+rate_per_s = 5.0
+""")
+    figure = tmp_path / "bands.png"
+    result = CliRunner().invoke(cli, ["timescale", str(path), "--barrier-kj-mol", "60", "--json",
+                                      "--frequencies-mhz", "300,600", "--plot", str(figure)])
+    assert result.exit_code == 0, result.output
+    out = json.loads(result.stdout)
+    assert [p["frequency_mhz"] for p in out["pairs"]] == [300.0, 600.0]
+    assert out["fast_limit"]["hidden_couplings"][0]["spins"] == ["A", "B"]
+    assert figure.stat().st_size > 0
+    bad = CliRunner().invoke(cli, ["timescale", str(path), "--enthalpy-kj-mol", "60"])
+    assert bad.exit_code == 2 and len(bad.stderr.strip().splitlines()) == 1
