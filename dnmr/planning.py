@@ -788,7 +788,9 @@ class ExperimentPlan:
         lines += [f"  {name}: {act.describe()}" for name, act in self.activations.items()]
         lines += ["", "Coalescence (two maxima become one; k is the forward rate constant of the process)",
                   f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'dnu/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
-                  f"   {'narrow-line k_c':>15} {'T_c/K':>7}"]
+                  f"   {'narrow-line k_c':>15} {'T_c/K':>7}",
+                  "  (each pair on its own: only its process running, spins outside its exchanging cluster left"
+                  " out; narrow-line: intrinsic linewidths -> 0)"]
         for c in self.coalescence:
             lines.append(f"  {c.proton_mhz:7.1f} {c.frequency_mhz:9.2f}  {c.pair.process_name + ': ' + c.pair.label:<34}"
                          f" {c.shift_difference_hz:9.2f} {_number(c.rate_per_s, '10.4g')} {_number(c.temperature_k, '7.1f')}"
