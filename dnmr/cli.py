@@ -305,11 +305,23 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
 
 
 def main(argv: list[str] | None = None) -> None:
-    """Entry point of the ``dnmr`` console script."""
+    """Entry point of the ``dnmr`` console script: exit 0 on success, 2 on bad input or usage, 1 otherwise."""
     try:
-        cli.main(args=argv, prog_name="dnmr", standalone_mode=True)
-    except SystemExit:
-        raise
-    except Exception:  # pragma: no cover - last resort, keeps exit status 1
+        status = cli.main(args=argv, prog_name="dnmr", standalone_mode=False)
+    except click.UsageError as err:  # wrong options: one line, like every other input error
+        hint = f" (see: dnmr {err.ctx.command_path.partition(' ')[2]} --help)".replace("  ", " ") if err.ctx else ""
+        click.echo(f"dnmr: error: {err.format_message()}{hint}", err=True)
+        sys.exit(2)
+    except click.exceptions.Exit as done:
+        sys.exit(done.exit_code)
+    except click.Abort:
+        click.echo("dnmr: interrupted", err=True)
+        sys.exit(1)
+    except click.ClickException as err:
+        click.echo(f"dnmr: error: {err.format_message()}", err=True)
+        sys.exit(err.exit_code)
+    except Exception:  # last resort: a bug, not bad input; keep exit status 1
         traceback.print_exc()
         sys.exit(1)
+    if isinstance(status, int) and status:  # click returns the status of ctx.exit() here
+        sys.exit(status)
