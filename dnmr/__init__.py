@@ -14,7 +14,10 @@ from .errors import InputError
 from .model import Exchange, Model, Spectrometer, State
 from .modelfile import load_model
 from .readers import MeasuredSpectrum, read_spectrum
+from .planning import coalescence, plan_experiment, predict_coalescence
+from .solvents import Solvent, load_solvents, solvent
 from .spectrum import Spectrum, simulate, simulate_over
+from .timescale import ActivationParameters, averaged_model, fast_exchange_limit, timescale_view
 from .thermometry import (
     fit_temperature_calibration,
     read_temperature_calibration,
@@ -32,6 +35,9 @@ __all__ = [
     "MeasuredSpectrum", "read_spectrum",
     # activation parameters
     "EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates",
+    # planning and the NMR timescale
+    "ActivationParameters", "Solvent", "averaged_model", "coalescence", "fast_exchange_limit", "load_solvents",
+    "plan_experiment", "predict_coalescence", "solvent", "timescale_view",
     # sample temperature
     "fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
     "temperature_from_spectrum", "thermometer_reading",
