@@ -168,7 +168,13 @@ def _exchange_scale(model: Model, pair: ExchangingPair) -> float:
 
 
 def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = False) -> tuple[float | None, str]:
-    """Forward rate constant (s^-1) of the pair's process at which its two maxima become one.
+    """Forward rate constant (s^-1) of the pair's process at which its signals coalesce.
+
+    Between the two exchanging shifts the spectrum shows two maxima in slow exchange and one in fast
+    exchange for an uncoupled pair or an AB pair (Gutowsky-Holm, Kurland-Rubin-Wise); where couplings to
+    other spins keep a multiplet in the averaged spectrum, the fast-exchange spectrum itself has more than
+    one maximum there.  Coalescence is the rate at which the count first falls to its fast-exchange value:
+    the two signals have merged into the averaged one.
 
     Parameters
     ----------
@@ -196,16 +202,15 @@ def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = Fa
     scale = _exchange_scale(model, pair)
     rates = scale * np.logspace(-SCAN_DECADES, SCAN_DECADES, 2 * SCAN_DECADES * SCAN_PER_DECADE + 1)
     counts = [maxima(k) for k in rates]
-    if counts[0] < 2:
-        return None, (f"no two maxima even in slow exchange (k = {rates[0]:.3g} s^-1): the signals are too close"
-                      " for their linewidth, or one is too weak to show as a peak")
-    last = max(i for i, c in enumerate(counts) if c >= 2)
-    if last == len(rates) - 1:
-        return None, f"still more than one maximum at k = {rates[-1]:.3g} s^-1: the signals do not merge into one"
+    merged = counts[-1]  # maxima left in fast exchange
+    if counts[0] <= merged:
+        return None, (f"no more maxima in slow exchange (k = {rates[0]:.3g} s^-1) than in fast exchange: the"
+                      " signals are too close for their linewidth, or one is too weak to show as a peak")
+    last = max(i for i, c in enumerate(counts) if c > merged)
     low, high = rates[last], rates[last + 1]
     while high / low > 1 + RATE_PRECISION:
         mid = math.sqrt(low * high)
-        low, high = (mid, high) if maxima(mid) >= 2 else (low, mid)
+        low, high = (mid, high) if maxima(mid) > merged else (low, mid)
     return math.sqrt(low * high), ""
 
 
@@ -786,7 +791,7 @@ class ExperimentPlan:
         lines = [f"Experiment plan{': ' + self.model.title if self.model.title else ''}",
                  f"Observed nucleus {nucleus}; fields are quoted as 1H frequencies."]
         lines += [f"  {name}: {act.describe()}" for name, act in self.activations.items()]
-        lines += ["", "Coalescence (two maxima become one; k is the forward rate constant of the process)",
+        lines += ["", "Coalescence (the pair merges into its averaged signal: two maxima become one for an uncoupled or AB pair; k is the forward rate constant of the process)",
                   f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'dnu/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
                   f"   {'narrow-line k_c':>15} {'T_c/K':>7}",
                   "  (each pair on its own: only its process running, spins outside its exchanging cluster left"

@@ -298,3 +298,32 @@ def test_cli_plan_bad_option_is_one_line_and_exit_2(model_file, options):
     assert result.exit_code == 2
     assert len(result.stderr.strip().splitlines()) == 1
     assert "Traceback" not in result.stderr
+
+
+def test_coalescence_of_pairs_whose_averaged_signal_is_still_a_multiplet():
+    """Two unequally populated AB rotamers swapped by the exchange: the averaged spectrum is again an AB
+    quartet, so the exchanging pair merges into a doublet, not a single maximum.  The coalescence rate must
+    exist and approach Shanan-Atidi & Bar-Eli (J. Phys. Chem. 74, 961 (1970)) for the uncoupled pair as the
+    geminal coupling goes to zero (common practice: weak couplings barely move coalescence)."""
+    from closed_forms import shanan_atidi_bar_eli_rates
+
+    import dnmr
+    from dnmr.planning import coalescence_rate
+    from dnmr.timescale import exchanging_pairs
+
+    def rotamers(j_hz):
+        states = [dnmr.State("syn", {"Ha": 4.62, "Hb": 4.47}, {"Ha-Hb": j_hz}, 1.0, population=0.64),
+                  dnmr.State("anti", {"Ha": 4.38, "Hb": 4.71}, {"Ha-Hb": j_hz}, 1.0, population=0.36)]
+        return dnmr.Model(dnmr.Spectrometer(400.0), states,
+                          [dnmr.Exchange("syn", "anti", {"Ha": "Hb", "Hb": "Ha"}, rate_per_s=1.0)])
+
+    model = rotamers(-15.0)
+    pair = exchanging_pairs(model)[0]
+    k_coupled, note = coalescence_rate(model, pair, narrow_limit=True)
+    assert k_coupled is not None, note
+    weak = rotamers(-0.01)
+    k_weak, _ = coalescence_rate(weak, exchanging_pairs(weak)[0], narrow_limit=True)
+    dnu = abs(pair.shift_difference_hz(weak))
+    k_ab, _ = shanan_atidi_bar_eli_rates(0.28, dnu)
+    assert k_weak == pytest.approx(k_ab, rel=2e-2)
+    assert k_coupled != pytest.approx(k_weak, rel=1e-3)  # the coupling does move it
