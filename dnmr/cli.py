@@ -117,6 +117,33 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 
 
 @cli.command()
+@click.argument("series_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
+              help="Folder for rates.csv, results.json and the figures.")
+@click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
+@click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
+@click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
+@click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
+@click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.pass_context
+def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
+        workers: int | None, quiet: bool) -> None:
+    """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
+
+    Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
+    file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
+    """
+    from .series import fit_series
+
+    result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
+                        progress=False if quiet else None)
+    click.echo(result.report())
+    for failed in result.failures:
+        click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
+    ctx.exit(result.exit_status)
+
+
+@cli.command()
 @click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),

@@ -84,6 +84,8 @@ MAX_NOISE_LAG = 16
 """Longest lag (points) of the noise autocorrelation counted in the correlation factor."""
 MISFIT_SIGMAS = 3.0
 """Reduced chi-square this many standard deviations above 1 counts as a misfit."""
+MAX_EVALUATIONS = 60
+"""Largest number of lineshape evaluations of one local refinement, per free parameter."""
 SECOND_START_RATIO = 2.0
 """A second local minimum of the scan is refined too when its chi-square is within this factor of the best."""
 ASYMMETRY_LIMIT = 1.5
@@ -542,7 +544,8 @@ class _Problem:
         self.powers = x[:, None] ** np.arange(len(layout.baseline_names))
         self.nfev = 0
         step = np.diff(self.hz)
-        self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=1e-3) else None
+        # points written with a few decimals are uniform to within their rounding
+        self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=0.02) else None
 
     def shape(self, values: Mapping[str, float], offset_hz: float | None = None) -> np.ndarray:
         """Complex spectrum S = A - i D of the model at the data's frequencies."""
@@ -657,8 +660,11 @@ def _with_values(params: lmfit.Parameters, values: Mapping[str, float]) -> lmfit
 
 
 def _minimize(problem: _Problem, params: lmfit.Parameters, tolerance: float = 1e-8) -> lmfit.minimizer.MinimizerResult:
+    """Local least squares (trust region with bounds) from `params`; at most MAX_EVALUATIONS per free parameter."""
     minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
-    return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance)
+    n_free = sum(p.vary and not p.expr for p in params.values())
+    return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
+                              max_nfev=MAX_EVALUATIONS * (n_free + 1))
 
 
 def _refine(problem: _Problem, params: lmfit.Parameters, starts: list[dict]) -> lmfit.minimizer.MinimizerResult:
@@ -712,7 +718,7 @@ def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float
         nearest = min(fits, key=lambda v: abs(v - x))
         trial = fits[nearest].copy()
         trial[name].set(value=x, vary=False)
-        result = _minimize(problem, trial, tolerance=1e-6)
+        result = _minimize(problem, trial, tolerance=1e-5)
         if result.chisqr < chi0 - 0.05 * threshold:
             params = result.params.copy()
             params[name].set(vary=True)
