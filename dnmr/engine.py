@@ -21,10 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .kinetics import Jump, exchange_jumps
 from .liouville import (
     CoherenceBlock,
-    coherence_blocks,
     coupling_terms,
     detection_vector,
     permutation_map,
@@ -32,30 +30,10 @@ from .liouville import (
 )
 from .model import Model
 from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
+from .spinsystems import SpinParameters, spin_systems  # a model as independent spin systems
 
 
 # --- assembling the Liouvillian -------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class SpinParameters:
-    """Numbers that fill the Liouvillian: per state shifts (Hz), couplings (Hz, per pair), widths (Hz)."""
-
-    shifts_hz: np.ndarray
-    couplings_hz: np.ndarray
-    linewidths_hz: np.ndarray
-    populations: np.ndarray
-    jumps: tuple[Jump, ...]
-
-    @classmethod
-    def from_model(cls, model: Model) -> "SpinParameters":
-        """Collect the numbers of `model` (jumps include reverse processes by detailed balance)."""
-        return cls(model.shifts_hz(), model.couplings_matrix_hz(), model.linewidths_hz(), model.populations(),
-                   tuple(exchange_jumps(model)))
-
-    @property
-    def topology(self) -> tuple:
-        """What fixes the sparsity pattern: number of states and each jump's states and permutation."""
-        return len(self.linewidths_hz), tuple((j.source, j.target, j.permutation) for j in self.jumps)
 
 
 @dataclass(frozen=True, eq=False)
@@ -147,18 +125,18 @@ def block_liouvillian(pattern: BlockPattern, params: SpinParameters) -> np.ndarr
 
 
 def block_start(pattern: BlockPattern, populations: np.ndarray) -> np.ndarray:
-    """Starting coherence 2 rho0 of one block (the 2 makes one spin integrate to 1)."""
+    """Starting coherence 2 rho0 of one block, rho0 = sum_c p_c F- / (D/2) with D the Hilbert-space
+    dimension (2^N for N spins-1/2; the 2 makes one spin integrate to 1)."""
     u = pattern.detect[: pattern.block.size]
-    return np.outer(populations, u).ravel() * (2.0 / 2.0 ** (pattern.block.n_spins - 1))
+    return np.outer(populations, u).ravel() * (4.0 / pattern.block.dimension)
 
 
 def lineshape_terms(model: Model) -> LineshapeTerms:
     """Decompose the spectrum of `model` into Lorentzian terms and directly evaluated blocks."""
-    params = SpinParameters.from_model(model)
-    topology = params.topology
-    roots = np.sqrt(params.populations)
     results = []
-    for block in coherence_blocks(len(model.spins)):
+    for params, block in ((p, b) for p in spin_systems(model) for b in p.blocks):  # independent systems
+        topology = params.topology
+        roots = np.sqrt(params.populations)
         pattern = block_pattern(block, topology)
         L = block_liouvillian(pattern, params)
         start = block_start(pattern, params.populations)
@@ -171,8 +149,7 @@ def lineshape_terms(model: Model) -> LineshapeTerms:
 def default_window_ppm(model: Model) -> tuple[float, float]:
     """A window (ppm, low to high) that holds every line of every state with a margin."""
     shifts = model.shifts_hz()
-    couplings = np.abs(model.couplings_matrix_hz())
-    span_j = couplings.sum(axis=1).max() if couplings.size else 0.0
+    span_j = model.coupling_span_hz().max()  # groups and heteronuclei spread multiplets further
     width = model.linewidths_hz().max()
     lo, hi = shifts.min(), shifts.max()
     margin = span_j + 25.0 * width + 0.1 * (hi - lo) + 10.0

@@ -83,7 +83,7 @@ class Jump:
     """One elementary, directed exchange: state `source` -> state `target` at `rate_per_s` (s^-1).
 
     `permutation[i]` is the index of the spin that spin `i` of the source state becomes in the target
-    state (spins indexed in the model's order, ``model.spins``).  `process` is the index of the model's exchange process it belongs to and
+    state (spins indexed in the model's order, ``model.all_spins``: observed spins, then heteronuclei).  `process` is the index of the model's exchange process it belongs to and
     `forward` is False for the reverse (detailed balance) or inverse-permutation partner.
     """
 
@@ -96,7 +96,7 @@ class Jump:
 
 
 def _permutation(model: "Model", ex) -> tuple[int, ...]:
-    spins = model.spins  # one spin order for every state
+    spins = model.all_spins  # one spin order for every state
     return tuple(spins.index(ex.spins.get(name, name)) for name in spins)
 
 

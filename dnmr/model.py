@@ -115,7 +115,9 @@ class State:
     shifts_ppm : mapping of str to float
         Chemical shift (ppm) of each named spin.
     couplings_hz : mapping of str to float
-        Scalar couplings (Hz) keyed ``"A-B"``; strong coupling is treated exactly.
+        Scalar couplings (Hz) keyed ``"A-B"``; strong coupling is treated exactly.  A name may be an
+        equivalent group (the coupling of each member) or a heteronucleus of the model; the model
+        checks that every name is known.
     linewidth_hz : float
         Intrinsic full width at half height (Hz) without exchange.
     population : float, optional
@@ -137,19 +139,13 @@ class State:
         if not self.shifts_ppm:
             raise InputError("a state needs at least one spin", where="shifts_ppm")
         shifts = {str(k): _finite(v, f"shifts_ppm.{k}") for k, v in self.shifts_ppm.items()}
+        order = {name: (0, i, "") for i, name in enumerate(shifts)}  # then heteronuclei by name
         couplings: dict[str, float] = {}
         for key, value in self.couplings_hz.items():
             a, b = parse_coupling_key(key)
-            for spin in (a, b):
-                if spin not in shifts:
-                    raise InputError(
-                        f'coupling "{key}" names spin "{spin}", which has no shift in this state;'
-                        f" known spins: {', '.join(shifts)}",
-                        where=f"couplings_hz.{key}",
-                    )
             if a == b:
                 raise InputError(f'coupling "{key}" joins a spin to itself', where=f"couplings_hz.{key}")
-            canon = coupling_key(*sorted((a, b), key=list(shifts).index))
+            canon = coupling_key(*sorted((a, b), key=lambda name: order.get(name, (1, 0, name))))
             if canon in couplings:
                 raise InputError(f'coupling between {a} and {b} given twice', where=f"couplings_hz.{key}")
             couplings[canon] = _finite(value, f"couplings_hz.{key}")
@@ -266,6 +262,14 @@ class Model:
         Number of points in the window; default resolves the narrowest line.
     title : str
         Free text.
+    groups : mapping of str to int, optional
+        Magnetically equivalent groups: spin name -> number of nuclei it stands for (``{"Me": 3}``).
+        The group is equivalent in every state and moved as a whole; shifts and couplings name it like
+        one spin (a coupling to a group is the coupling of each member).
+    heteronuclei : mapping of str to str, optional
+        Nuclei of other isotopes coupled to the observed spins (``{"F1": "19F"}``), in the weak-coupling
+        limit; they have no shift in the observed spectrum, only couplings.  A heteronucleus may be a
+        group too.
     """
 
     spectrometer: Spectrometer
@@ -275,6 +279,8 @@ class Model:
     window_ppm: tuple[float, float] | None = None
     points: int | None = None
     title: str = ""
+    groups: Mapping[str, int] = field(default_factory=dict)
+    heteronuclei: Mapping[str, str] = field(default_factory=dict)
 
     def __post_init__(self):
         object.__setattr__(self, "states", tuple(self.states))
@@ -290,13 +296,63 @@ class Model:
             object.__setattr__(self, "window_ppm", (lo, hi))
         if self.points is not None and (int(self.points) != self.points or not 16 <= self.points <= 2**22):
             raise InputError(f"points must be a whole number from 16 to {2**22}, got {self.points!r}", where="window.points")
+        object.__setattr__(self, "heteronuclei", self._checked_heteronuclei())
         self._check_states()
+        object.__setattr__(self, "groups", self._checked_groups())
+        self._check_couplings()
         self._check_exchanges()
         populations = self.populations()
         if self.exchanges:
             check_stationary(rate_matrix(len(self.states), exchange_jumps(self)), populations)
 
     # --- checks -------------------------------------------------------------------------------
+    def _checked_heteronuclei(self) -> dict[str, str]:
+        observed = self.spectrometer.isotope.symbol
+        checked = {}
+        for name, symbol in self.heteronuclei.items():
+            where = f"heteronuclei.{name}"
+            if not isinstance(symbol, str):
+                raise InputError(f'expected an isotope such as "19F", got {symbol!r}', where=where)
+            try:
+                isotope = nucleus(symbol)
+            except InputError as err:
+                raise err.located(where=where) from None
+            if isotope.symbol == observed:
+                raise InputError(
+                    f"{observed} is the observed nucleus; give {name} a shift in shifts_ppm so that its"
+                    " couplings are treated exactly", where=where)
+            for i, state in enumerate(self.states):
+                if name in state.shifts_ppm:
+                    raise InputError(
+                        f'heteronucleus "{name}" has no shift in the {observed} spectrum; leave it out of'
+                        " shifts_ppm and give only its couplings", where=f"state[{i}].shifts_ppm.{name}")
+            checked[str(name)] = isotope.symbol
+        return checked
+
+    def _checked_groups(self) -> dict[str, int]:
+        known = self.all_spins
+        checked = {}
+        for name, count in self.groups.items():
+            where = f"groups.{name}"
+            if name not in known:
+                raise InputError(f'unknown spin "{name}"; spins are {", ".join(known)}', where=where)
+            if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 1:
+                raise InputError(f"expected the number of nuclei in the group (1 or more), got {count!r}",
+                                 where=where)
+            checked[str(name)] = int(count)
+        return checked
+
+    def _check_couplings(self) -> None:
+        known = self.all_spins
+        for i, state in enumerate(self.states):
+            for key in state.couplings_hz:
+                for spin in parse_coupling_key(key):
+                    if spin not in known:
+                        raise InputError(
+                            f'coupling "{key}" names spin "{spin}", which has no shift in this state and is'
+                            f" not a heteronucleus; known spins: {', '.join(known)}",
+                            where=f"state[{i}].couplings_hz.{key}")
+
     def _check_states(self) -> None:
         names = [s.name for s in self.states]
         spins = set(self.states[0].spins)
@@ -323,11 +379,12 @@ class Model:
                     raise InputError(
                         f'unknown state "{state}"; states are {", ".join(names)}', where=f"{where}.{key}"
                     )
-            spins = names[ex.from_state].spins
+            spins = names[ex.from_state].spins + list(self.heteronuclei)
             for src, dst in ex.spins.items():
                 if src not in spins or dst not in spins:
                     bad = src if src not in spins else dst
                     raise InputError(f'unknown spin "{bad}"; spins are {", ".join(spins)}', where=f"{where}.spins")
+                self._check_same_kind(src, dst, f"{where}.spins.{src}")
             images = [ex.spins.get(s, s) for s in spins]
             if len(set(images)) != len(images):
                 clash = sorted({x for x in images if images.count(x) > 1})
@@ -345,11 +402,44 @@ class Model:
                     "activation parameters need conditions.temperature_k", where=f"{where}.barrier_kj_mol"
                 )
 
+    def _kind(self, spin: str) -> str:
+        """What a spin is, in words: observed or which heteronucleus, and how many nuclei."""
+        isotope = self.heteronuclei.get(spin, self.spectrometer.isotope.symbol)
+        count = self.group_size(spin)
+        role = "observed" if spin not in self.heteronuclei else "heteronucleus"
+        return f"{role} {isotope}" + (f", a group of {count}" if count > 1 else "")
+
+    def _check_same_kind(self, src: str, dst: str, where: str) -> None:
+        """A mapping keeps each spin's kind: observed or the same heteronucleus, and the group size."""
+        if self._kind(src) != self._kind(dst):
+            raise InputError(
+                f'maps "{src}" ({self._kind(src)}) onto "{dst}" ({self._kind(dst)}); exchange moves a spin'
+                " only onto one of the same kind (a group onto a group of the same size)", where=where)
+
     # --- derived quantities -----------------------------------------------------------------
     @property
     def spins(self) -> list[str]:
-        """Spin names in the order of the first state."""
+        """Observed spin names (a group counts as one) in the order of the first state."""
         return self.states[0].spins
+
+    @property
+    def all_spins(self) -> list[str]:
+        """Observed spins, then heteronuclei: the order of the permutations of exchange jumps."""
+        return self.spins + list(self.heteronuclei)
+
+    def group_size(self, spin: str) -> int:
+        """Number of nuclei that `spin` stands for (1 unless it is a group)."""
+        return self.groups.get(spin, 1)
+
+    @property
+    def observed_nuclei(self) -> int:
+        """Number of observed nuclei, counting each member of a group: the spectrum's integral per state."""
+        return sum(self.group_size(spin) for spin in self.spins)
+
+    @property
+    def is_plain(self) -> bool:
+        """True when every spin is a single observed spin-1/2 (no groups, no heteronuclei)."""
+        return not self.heteronuclei and all(count == 1 for count in self.groups.values())
 
     @property
     def state_names(self) -> list[str]:
@@ -390,6 +480,25 @@ class Model:
         """Scalar couplings (Hz), array (n_states, n_pairs) over the pairs i < j of ``self.spins``."""
         pairs = list(combinations(self.spins, 2))
         return np.array([[s.coupling(a, b) for a, b in pairs] for s in self.states]).reshape(len(self.states), len(pairs))
+
+    def largest_m(self, spin: str) -> float:
+        """The largest total magnetic quantum number of `spin`: its nuclear spin times the group size."""
+        isotope = self.heteronuclei.get(spin, self.spectrometer.nucleus)
+        return self.group_size(spin) * nucleus(isotope).spin
+
+    def coupling_span_hz(self) -> np.ndarray:
+        """Per state, a bound (Hz) on how far couplings spread an observed multiplet from its shift.
+
+        The sum, over pairs with an observed spin, of |J| x 2 max(m_a, m_b) with m the largest total
+        magnetic quantum number of each (:meth:`largest_m`); that is |J| per pair of spins-1/2.
+        """
+        observed = set(self.spins)
+        spans = []
+        for state in self.states:
+            pairs = ((parse_coupling_key(key), j) for key, j in state.couplings_hz.items())
+            spans.append(sum(abs(j) * 2.0 * max(self.largest_m(a), self.largest_m(b))
+                             for (a, b), j in pairs if a in observed or b in observed))
+        return np.array(spans, dtype=float)
 
     def linewidths_hz(self) -> np.ndarray:
         """Intrinsic linewidth (FWHM, Hz) of each state."""

@@ -21,7 +21,7 @@ else:  # pragma: no cover
 
 MAX_FILE_BYTES = 8 * 2**20
 
-TOP_KEYS = {"title", "spectrometer", "window", "conditions", "state", "exchange"}
+TOP_KEYS = {"title", "spectrometer", "window", "conditions", "state", "exchange", "groups", "heteronuclei"}
 SPECTROMETER_KEYS = {"nucleus", "frequency_mhz"}
 WINDOW_KEYS = {"ppm", "points"}
 CONDITIONS_KEYS = {"temperature_k"}
@@ -113,6 +113,33 @@ def _array_of_tables(data: dict, key: str) -> list[dict]:
     return value
 
 
+def _named_table(data: dict, key: str, example: str) -> dict:
+    value = data.get(key, {})
+    if not isinstance(value, dict):
+        raise InputError(f"expected a table of names, e.g. [{key}] then {example}", where=key)
+    return value
+
+
+def parse_groups(data: dict) -> dict[str, int]:
+    """The ``[groups]`` table: spin name -> number of magnetically equivalent nuclei (a whole number)."""
+    table = _named_table(data, "groups", "Me = 3")
+    for name, count in table.items():
+        if isinstance(count, bool) or not isinstance(count, int):
+            raise InputError(f"expected the number of nuclei in the group, e.g. {name} = 3, got {count!r}",
+                             where=f"groups.{name}")
+    return dict(table)
+
+
+def parse_heteronuclei(data: dict) -> dict[str, str]:
+    """The ``[heteronuclei]`` table: spin name -> isotope in isotope notation (``F1 = "19F"``)."""
+    table = _named_table(data, "heteronuclei", 'F1 = "19F"')
+    for name, symbol in table.items():
+        if not isinstance(symbol, str):
+            raise InputError(f'expected an isotope in quotes, e.g. {name} = "19F", got {symbol!r}',
+                             where=f"heteronuclei.{name}")
+    return dict(table)
+
+
 def parse_state(table: dict, index: int) -> State:
     """One ``[[state]]`` table into a :class:`State`."""
     where = f"state[{index}]"
@@ -190,6 +217,8 @@ def model_from_dict(data: dict) -> Model:
         window_ppm=None if window_ppm is None else tuple(window_ppm),
         points=points,
         title=title,
+        groups=parse_groups(data),
+        heteronuclei=parse_heteronuclei(data),
     )
 
 
