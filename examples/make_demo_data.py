@@ -3,7 +3,7 @@
 Scenario (invented): DX-7 is an N-aryl lactam whose ring CH2 protons (Ha, Hb) are diastereotopic.
 Rotation about the N-aryl bond interconverts a syn and an anti rotamer (about 64 : 36 at room
 temperature) and swaps the environments of Ha and Hb.  A chemist ran 1H spectra at 400.13 MHz in
-toluene-d8 from 265 to 375 K (probe set-points) and calibrated the probe with methanol and ethylene
+toluene-d8 from 250 to 375 K (probe set-points) and calibrated the probe with methanol and ethylene
 glycol thermometers.
 
 Everything here is invented and stated; `dnmr demo` fits these spectra and compares the recovered
@@ -31,7 +31,8 @@ import dnmr
 HERE = Path(__file__).resolve().parent
 DEMO = HERE.parent / "dnmr" / "data" / "demo"
 SEED = 20261201
-SETPOINTS_K = [265, 280, 290, 300, 305, 310, 315, 320, 325, 330, 340, 350, 362, 375]
+SETPOINTS_K = [250, 258, 265, 272, 280, 290, 300, 305, 310, 315, 320, 325, 330, 340, 350, 362, 375]
+SLOW_EXCHANGE_BELOW_K = 276  # set-points whose spectra fix the shifts and their temperature trend
 SHIFT_SLOPES_PPM_PER_K = {"syn": {"Ha": -2.0e-4, "Hb": 1.2e-4}, "anti": {"Ha": 1.5e-4, "Hb": -1.0e-4}}
 REFERENCE_K = 298.15
 NOISE_FRACTION = 1 / 400
@@ -64,7 +65,10 @@ def main() -> None:
     sigma = NOISE_FRACTION * 1.0e6
     (DEMO / "spectra").mkdir(exist_ok=True)
     series = ['# VT series of the invented demo compound DX-7 (made by examples/make_demo_data.py)',
-              'model = "model.toml"', "", "[fit]", f"region_ppm = [{REGION_PPM[0]}, {REGION_PPM[1]}]", ""]
+              'model = "model.toml"', "", "[fit]", f"region_ppm = [{REGION_PPM[0]}, {REGION_PPM[1]}]",
+              '# the shifts drift with temperature; in fast exchange the spectrum cannot show them, so take them',
+              '# (with their trend) from the slow-exchange spectra; the rotamer populations are fitted too', 'shifts = "slow-exchange-trend"', 'populations = "free"',
+              f"slow_exchange_below_k = {SLOW_EXCHANGE_BELOW_K}", ""]
     for setpoint in SETPOINTS_K:
         t_true = true_temperature(setpoint)
         spectrum = dnmr.simulate(model_at(base, t_true), ppm)
