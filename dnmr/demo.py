@@ -1,28 +1,52 @@
-"""The bundled demo: an invented N-aryl lactam ("DX-7") whose rotamers interconvert.
+"""The bundled demo: the whole job on an invented N-aryl lactam ("DX-7") whose rotamers interconvert.
 
-`run_demo(outdir)` runs the main job on the bundled demo data and writes everything into `outdir`.
+`run_demo(outdir)` fits the bundled VT series, calibrates the temperatures, runs the Eyring analysis,
+plans a follow-up study and shows the NMR timescale, writes a report, and compares the recovered barrier
+with the invented truth the demo spectra were made from (`dnmr/data/demo/truth.toml`, written by
+`examples/make_demo_data.py`).
 """
 from __future__ import annotations
 
+import sys
 from importlib import resources
 from pathlib import Path
 
+from .activation import eyring_fit_file, results_to_dict
 from .errors import InputError
-from .modelfile import load_model
-from .output import atomic_write_bytes, save_figure
-from .plotting import plot_stack
-from .spectrum import simulate_over
+from .modelfile import load_model, read_toml
+from .output import atomic_write_text, save_figure
+from .planning import plan_experiment
+from .series import fit_series
+from .solvents import solvent
+from .thermometry import read_temperature_calibration
+from .timescale import ActivationParameters, timescale_view
 
-DEMO_TEMPERATURES_K = (270.0, 290.0, 305.0, 320.0, 330.0, 340.0, 355.0, 375.0)
+DEMO_SOLVENT = "toluene-d8"
+DEMO_FIELDS_MHZ = (400.0, 600.0)
 
 
 def demo_data_dir() -> Path:
-    """Folder of the bundled demo files (model, series, spectra)."""
+    """Folder of the bundled demo files (model, series, spectra, calibration, truth)."""
     return Path(str(resources.files("dnmr") / "data" / "demo"))
 
 
-def run_demo(outdir: str | Path, overwrite: bool = False, echo=print) -> dict:
-    """Run the demo into `outdir`; returns the paths written.
+def _json(obj) -> str:
+    import json
+
+    from .cli import _json_safe
+
+    return json.dumps(_json_safe(obj), indent=2) + "\n"
+
+
+def _new_folder(outdir: Path, overwrite: bool) -> None:
+    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
+        raise InputError(f"{outdir} already exists and is not empty; choose a new folder or pass --overwrite",
+                         where="OUTDIR")
+    outdir.mkdir(parents=True, exist_ok=True)
+
+
+def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: bool | None = None) -> dict:
+    """Run the whole job on the demo data into `outdir`; returns what was written and the comparison.
 
     Parameters
     ----------
@@ -30,22 +54,57 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print) -> dict:
         New folder for the results (refused if it exists and is not empty, unless `overwrite`).
     echo : callable
         Where progress lines go.
+    progress : bool, optional
+        Show a progress bar during the series fit (default: when stderr is a terminal).
     """
     outdir = Path(outdir)
-    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
-        raise InputError(f"{outdir} already exists and is not empty; choose a new folder or pass --overwrite",
-                         where="OUTDIR")
-    outdir.mkdir(parents=True, exist_ok=True)
-    model_file = demo_data_dir() / "truth_model.toml"
-    model = load_model(model_file)
-    written = {"model": atomic_write_bytes(outdir / "model.toml", model_file.read_bytes(), overwrite=overwrite)}
+    _new_folder(outdir, overwrite)
+    data = demo_data_dir()
+    model = load_model(data / "model.toml")
+    truth = read_toml(data / "truth.toml")
     echo(f"demo: {model.title}")
-    spectra, labels = simulate_over(model, temperatures_k=list(DEMO_TEMPERATURES_K))
-    for t, spectrum in zip(DEMO_TEMPERATURES_K, spectra):
-        path = spectrum.to_csv(outdir / f"simulated_{t:.0f}K.csv", overwrite=overwrite)
-        written[f"spectrum_{t:.0f}K"] = path
-    ax = plot_stack(spectra, labels, title="DX-7, 400 MHz: predicted VT series")
-    written["stack"] = save_figure(ax.figure, outdir / "vt_stack.png", overwrite=overwrite)
+    echo("  1/4 fitting the VT series (17 spectra) ...")
+    fitted = fit_series(data / "series.toml", outdir / "fit", overwrite=overwrite,
+                        progress=sys.stderr.isatty() if progress is None else progress)
+    written = {"rates": outdir / "fit" / "rates.csv", "fit results": outdir / "fit" / "results.json"}
+    del fitted
+
+    echo("  2/4 Eyring analysis on calibrated sample temperatures ...")
+    calibration = read_temperature_calibration(data / "calibration.csv")
+    results = eyring_fit_file(outdir / "fit" / "rates.csv", calibration=calibration)
+    eyring = results[0]
+    written["eyring report"] = atomic_write_text(outdir / "eyring.txt", eyring.report() + "\n", overwrite)
+    written["eyring json"] = atomic_write_text(outdir / "eyring.json", _json(results_to_dict(results)), overwrite)
+    written["eyring plot"] = save_figure(eyring.plot(), outdir / "eyring.png", overwrite=overwrite)
+
+    echo("  3/4 planning a follow-up study and the NMR timescale ...")
+    activation = ActivationParameters(eyring.enthalpy_kj_mol, eyring.entropy_j_mol_k)
+    plan = plan_experiment(model, activation, frequencies_mhz=DEMO_FIELDS_MHZ, solvent=solvent(DEMO_SOLVENT))
+    written["plan"] = atomic_write_text(outdir / "plan.txt", plan.report() + "\n", overwrite)
+    view = timescale_view(model, activation, frequencies_mhz=DEMO_FIELDS_MHZ)
+    written["timescale"] = atomic_write_text(outdir / "timescale.txt", view.report() + "\n", overwrite)
+    written["timescale plot"] = save_figure(view.plot(), outdir / "timescale.png", overwrite=overwrite)
+
+    echo("  4/4 writing the report ...")
+    try:
+        from .report import write_report
+    except ImportError:  # the report module is optional in a partial install
+        write_report = None
+    if write_report is not None:
+        written["report"] = write_report(outdir / "fit", calibration=data / "calibration.csv",
+                                         output=outdir / "report.html", overwrite=overwrite)
+
+    comparison = {
+        "enthalpy_kj_mol": (eyring.enthalpy_kj_mol, eyring.enthalpy_stderr, truth["enthalpy_kj_mol"]),
+        "entropy_j_mol_k": (eyring.entropy_j_mol_k, eyring.entropy_stderr, truth["entropy_j_mol_k"]),
+        "gibbs_298_kj_mol": (*eyring.gibbs(298.15), truth["gibbs_298_kj_mol"]),
+    }
+    echo("")
+    echo("recovered against the invented truth of the demo spectra:")
+    for key, (value, err, true) in comparison.items():
+        sigmas = abs(value - true) / err if err else float("nan")
+        echo(f"  {key:<18} {value:9.3f} ± {err:.3f}   truth {true:9.3f}   ({sigmas:.1f} standard errors off)")
+    echo("")
     for key, path in written.items():
-        echo(f"  {key:>16}: {path}")
-    return written
+        echo(f"  {key:>15}: {path}")
+    return {"written": written, "comparison": comparison}
