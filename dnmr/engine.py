@@ -10,7 +10,10 @@ restricted to the observable single-quantum coherences and split into independen
 
     S(nu) = 2 < F+ | (i 2 pi nu - L)^-1 | rho0 >,   rho0 = sum_c p_c F-_c / 2^(N-1),
 
-so that the absorption Re S integrates to sum_c p_c N over all frequencies, whatever the rates.
+so that the absorption Re S integrates to sum_c p_c N over all frequencies, whatever the rates.  (For
+spins-1/2 the 2^(N-1) counts the transitions of each spin; a system with magnetically equivalent groups or
+heteronuclear partners is first cut into independent spin systems by :mod:`dnmr.spinsystems`, each weighted
+by its share of the full spin space, which keeps the same normalisation.)
 
 This module assembles each block's Liouvillian; :mod:`dnmr.resolvent` turns it into a spectrum by the
 best exact route for the block (eigen-lines, Schur form, or a Krylov continued fraction for large blocks).
