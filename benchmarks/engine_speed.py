@@ -4,7 +4,10 @@
     same grid (goal <= 1.0);
 (b) six coupled spins with mutual exchange at 8192 points: ``dnmr.simulate`` / dense eigendecomposition
     of the whole, unfactored single-quantum Liouvillian (goal <= 0.1);
-(c) peak memory of a seven-spin simulation (tracemalloc, numpy allocations included).
+(c) time and peak memory of a seven-spin simulation (tracemalloc, numpy allocations included);
+(d) an N,N-dimethyl-type model (two CH3 groups swapped by rotation, coupled to one more spin): the
+    model with magnetically equivalent groups / the same model written as seven individual spins
+    (goal <= 1/20), and the peak memory of each.
 
 Run:  python benchmarks/engine_speed.py
 """
@@ -126,7 +129,46 @@ def bench_memory_seven() -> None:
     print(f"(c) seven spins, {POINTS} points: {elapsed:.2f} s, peak memory {peak / 2**20:.0f} MiB")
 
 
+def dimethyl_models() -> tuple[dnmr.Model, dnmr.Model]:
+    """An invented N,N-dimethyl amide: MeE and MeZ swap by C-N rotation; both couple weakly to Hf."""
+    spec = dnmr.Spectrometer(400.0)
+    exchange_groups = dnmr.Exchange("amide", "amide", {"MeE": "MeZ", "MeZ": "MeE"}, rate_per_s=25.0)
+    grouped = dnmr.Model(spec, [dnmr.State("amide", {"MeE": 2.94, "MeZ": 3.05, "Hf": 8.02},
+                                           {"MeE-Hf": 0.6, "MeZ-Hf": 0.3}, linewidth_hz=0.8, population=1)],
+                         [exchange_groups], groups={"MeE": 3, "MeZ": 3}, window_ppm=(2.7, 8.3), points=POINTS)
+    e = [f"E{i}" for i in range(3)]
+    z = [f"Z{i}" for i in range(3)]
+    shifts = {**{n: 2.94 for n in e}, **{n: 3.05 for n in z}, "Hf": 8.02}
+    couplings = {**{f"{n}-Hf": 0.6 for n in e}, **{f"{n}-Hf": 0.3 for n in z}}
+    swap = {**dict(zip(e, z)), **dict(zip(z, e))}
+    spins = dnmr.Model(spec, [dnmr.State("amide", shifts, couplings, linewidth_hz=0.8, population=1)],
+                       [dnmr.Exchange("amide", "amide", swap, rate_per_s=25.0)], window_ppm=(2.7, 8.3), points=POINTS)
+    return grouped, spins
+
+
+def peak_memory_mib(fn) -> float:
+    tracemalloc.start()
+    fn()
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return peak / 2**20
+
+
+def bench_groups() -> float:
+    grouped, spins = dimethyl_models()
+    a, b = dnmr.simulate(grouped), dnmr.simulate(spins)
+    err = np.abs(a.intensity - b.intensity).max() / b.intensity.max()
+    t_groups, t_spins = best_times([lambda: dnmr.simulate(grouped), lambda: dnmr.simulate(spins)], 2, 1)
+    m_groups = peak_memory_mib(lambda: dnmr.simulate(grouped))
+    m_spins = peak_memory_mib(lambda: dnmr.simulate(spins))
+    print(f"(d) N,N-dimethyl type: groups {t_groups * 1e3:.1f} ms ({m_groups:.1f} MiB), seven spins"
+          f" {t_spins * 1e3:.0f} ms ({m_spins:.0f} MiB), ratio {t_groups / t_spins:.4f} (goal <= 0.05);"
+          f" max difference {err:.1e}")
+    return t_groups / t_spins
+
+
 if __name__ == "__main__":
     bench_two_site()
     bench_six_spins()
     bench_memory_seven()
+    bench_groups()
