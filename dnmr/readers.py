@@ -253,6 +253,16 @@ def _assemble(
             "the axis is not strictly monotonic; remove the duplicate point",
             where=locate(second),
         )
+    steps = np.diff(ppm[np.argsort(order)])  # in file order again; no step is zero now
+    turns = np.flatnonzero(np.sign(steps) != np.sign(steps[0]))
+    if turns.size:  # an axis that runs back on itself: two spectra pasted together, or damaged
+        i = int(turns[0])
+        before, after = ppm[order == i][0], ppm[order == i + 1][0]
+        raise InputError(
+            f"the axis runs {'up' if steps[0] > 0 else 'down'} and then turns back ({before:.10g} ppm, then "
+            f"{after:.10g} ppm), so it is not monotonic; keep one spectrum with its points in order",
+            where=locate(i + 1),
+        )
     return MeasuredSpectrum(ppm, intensity, frequency_mhz, str(source), fmt, metadata)
 
 

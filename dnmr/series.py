@@ -191,11 +191,20 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions) -> Ser
     if axis is not None and axis not in ("ppm", "hz"):
         raise InputError(f'axis must be "ppm" or "hz", got {axis!r}', where=f"{where}.axis")
     options = _options({k: v for k, v in table.items() if k in SPECTRUM_OPTION_KEYS}, base, where)
+    if not (folder / file).exists():  # a slip in the path: say so before any result is written
+        raise InputError(f'no spectrum "{file}" in {folder}; check the path (relative to the series file)',
+                         where=f"{where}.file")
     return SeriesSpectrum((folder / file).resolve(), float(temperature), options,
                           None if frequency is None else float(frequency), axis, where)
 
 
 def _flag_duplicates(spectra: list[SeriesSpectrum]) -> tuple[list[SeriesSpectrum], list[str]]:
+    """Flag replicate temperatures (different files at one temperature); refuse one file listed twice."""
+    for i, s in enumerate(spectra):
+        first = next((o for o in spectra[:i] if o.file == s.file), None)
+        if first is not None:
+            raise InputError(f"{s.file.name} is already {first.where} ({first.temperature_k:g} K); one file is one "
+                             "spectrum: give each [[spectrum]] its own file", where=f"{s.where}.file")
     temperatures = [s.temperature_k for s in spectra]
     notes, out = [], []
     for s in spectra:
@@ -253,13 +262,19 @@ def load_series(path: str | Path) -> Series:
     except InputError as err:
         raise err.located(source=path) from None
     model_file = (folder / data["model"]).resolve()
+    if not model_file.is_file():
+        raise InputError(f'no model file "{data["model"]}" in {folder}; check the path (relative to the series file)',
+                         source=path, where="model")
     model = load_model(model_file)
     for s in spectra:  # parameter settings must name parameters the model has
         try:
             fit_parameters(model, s.options.region_ppm, s.options)
         except InputError as err:
             raise InputError(err.message, source=path, where=f"{s.where}.{err.where}" if err.where else s.where) from None
-    spectra, notes = _flag_duplicates(spectra)
+    try:
+        spectra, notes = _flag_duplicates(spectra)
+    except InputError as err:
+        raise err.located(source=path) from None
     return Series(path.resolve(), model_file, model, options, shifts, None if below is None else float(below),
                   tuple(spectra), tuple(notes))
 

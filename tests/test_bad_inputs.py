@@ -1,9 +1,21 @@
 """The bad-input corpus: every malformed file ends with exit status 2 and one line naming the file, its
 place and the fix — no traceback, nothing written next to the input, earlier results untouched
-(CONTRACT.md section 5; the project's rules on bad input)."""
+(CONTRACT.md sections 3-5; the project's rules on bad input).
+
+Folders of tests/bad_inputs/ and the command each kind of file goes through:
+
+- ``model/``: model files (CONTRACT.md section 1), through ``dnmr simulate``;
+- ``spectrum/``: spectrum files (two-column text, JCAMP-DX after McDonald & Wilks 1988), through the
+  spectrum reader of ``dnmr thermometer methanol --spectrum FILE``;
+- ``series/``: series files (CONTRACT.md section 3), through ``dnmr fit``; the valid model and spectra
+  they point at are in ``series/_shared/``, which the corpus glob skips (it is a folder);
+- ``rates/``: rate tables (CONTRACT.md section 4), through ``dnmr eyring`` with a plot to draw.
+"""
 from __future__ import annotations
 
 import hashlib
+import time
+import tracemalloc
 from pathlib import Path
 
 import pytest
@@ -22,6 +34,12 @@ def command_for(path: Path, out: Path) -> list[str]:
     kind = path.parent.name
     if kind == "model":
         return ["simulate", str(path), "-o", str(out / "spectrum.csv")]
+    if kind == "spectrum":
+        return ["thermometer", "methanol", "--spectrum", str(path)]
+    if kind == "series":  # a fresh results folder inside `out`: it must not even be created
+        return ["fit", str(path), "-o", str(out / "fit"), "--serial", "--quiet"]
+    if kind == "rates":
+        return ["eyring", str(path), "--plot", str(out / "eyring.png")]
     raise AssertionError(f"no command for corpus folder {kind}")
 
 
@@ -29,7 +47,9 @@ CASES = sorted(p for p in CORPUS.glob("*/*") if p.is_file() and p.suffix != ".md
 
 
 def test_corpus_is_large_enough():
-    assert len(CASES) >= 30
+    # issue 6: at least 50 malformed inputs, of every kind a chemist hands over
+    assert len(CASES) >= 50
+    assert {p.parent.name for p in CASES} == {"model", "spectrum", "series", "rates"}
 
 
 @pytest.mark.parametrize("path", CASES, ids=lambda p: f"{p.parent.name}/{p.name}")
@@ -45,3 +65,59 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
     assert path.name in message, message
     assert digest(path.parent) == before  # the input folder is untouched
     assert [p.name for p in out.iterdir()] == ["earlier.txt"] and (out / "earlier.txt").read_text() == "an earlier result"
+
+
+def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
+    # the corpus must fail for the slip it is named after, not because the shared inputs are broken
+    from dnmr.readers import read_spectrum
+    from dnmr.series import load_series
+
+    shared = CORPUS / "series" / "_shared"
+    series = tmp_path / "series.toml"
+    series.write_text(f'model = "{shared / "model.toml"}"\n'
+                      + "".join(f'[[spectrum]]\nfile = "{shared / name}"\ntemperature_k = {t}\n'
+                                for name, t in (("t250.csv", 250.0), ("t270.csv", 270.0))))
+    loaded = load_series(series)
+    assert [s.temperature_k for s in loaded.spectra] == [250.0, 270.0]
+    assert read_spectrum(shared / "t250.csv").ppm.size == 512
+
+
+def test_replicate_temperatures_stay_allowed(tmp_path):
+    # two files at one temperature may be replicates: flagged, not refused (only one file twice is refused)
+    from dnmr.series import load_series
+
+    shared = CORPUS / "series" / "_shared"
+    series = tmp_path / "series.toml"
+    series.write_text(f'model = "{shared / "model.toml"}"\n'
+                      + "".join(f'[[spectrum]]\nfile = "{shared / name}"\ntemperature_k = 250.0\n'
+                                for name in ("t250.csv", "t270.csv")))
+    assert all("duplicate-temperature" in s.flags for s in load_series(series).spectra)
+
+
+def test_hostile_jcamp_point_count_fails_fast_in_bounded_memory(tmp_path):
+    # A JCAMP-DX header is free text (McDonald & Wilks 1988): ##NPOINTS=10^12 must be refused before any
+    # array of that size is allocated (it would need 8 TB).
+    path = CORPUS / "spectrum" / "jcamp_absurd_npoints.jdx"
+    assert "##NPOINTS=1000000000000" in path.read_text()
+    tracemalloc.start()
+    start = time.perf_counter()
+    result = CliRunner().invoke(cli, command_for(path, tmp_path))
+    elapsed = time.perf_counter() - start
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert result.exit_code == 2 and "NPOINTS" in result.output
+    assert elapsed < 5.0 and peak < 50 * 2**20, (elapsed, peak)
+
+
+def test_oversized_text_spectrum_is_refused_unread(tmp_path):
+    # a file larger than any 1D spectrum (a sparse 10 GB file costs no disk) is refused from its size
+    path = tmp_path / "huge.csv"
+    with open(path, "wb") as handle:
+        handle.write(b"ppm,intensity\n")
+        handle.truncate(10 * 2**30)
+    tracemalloc.start()
+    result = CliRunner().invoke(cli, ["thermometer", "methanol", "--spectrum", str(path)])
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert result.exit_code == 2 and "huge.csv" in result.output and "bytes" in result.output, result.output
+    assert peak < 50 * 2**20
