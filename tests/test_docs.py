@@ -6,7 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from dnmr import modelfile
+from dnmr import modelfile, series
+from dnmr.cli import cli as dnmr_cli
 
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 
@@ -36,3 +37,75 @@ def test_documented_example_model_loads(tmp_path):
     path.write_text(example)
     model = modelfile.load_model(path)
     assert model.state_names == ["syn", "anti"]
+
+
+# --------------------------------------------------------------------------------------------------
+# docs/cli.md and docs/series-file.md against the code (the issue's "generated or checked against the
+# code": a command or option added without its description fails here)
+
+
+def cli_sections() -> dict[str, str]:
+    """The text of docs/cli.md under each "## `dnmr <command>`" heading, by command name."""
+    text = (DOCS / "cli.md").read_text()
+    parts = re.split(r"^## `dnmr ?([a-z-]*)`\s*$", text, flags=re.M)
+    return {name: body for name, body in zip(parts[1::2], parts[2::2])}
+
+
+def test_cli_reference_has_every_command():
+    from dnmr.cli import cli
+
+    sections = cli_sections()
+    assert set(cli.commands) | {""} == set(sections), "docs/cli.md sections differ from the commands dnmr has"
+
+
+@pytest.mark.parametrize("name", sorted(dnmr_cli.commands) + [""])
+def test_cli_reference_has_every_option(name):
+    from dnmr.cli import cli
+
+    command = cli.commands[name] if name else cli
+    body = cli_sections()[name]
+    documented = set(re.findall(r"^\| `([^`]+)`(?:, `([^`]+)`)? \|", body, flags=re.M))
+    names = {n for pair in documented for n in pair if n}
+    for param in command.params:
+        if param.param_type_name == "argument":
+            assert param.name.upper() in names, f"dnmr {name}: argument {param.name.upper()} not in docs/cli.md"
+        else:
+            for opt in param.opts:
+                assert opt in names, f"dnmr {name}: option {opt} not in its table in docs/cli.md"
+    assert "```\ndnmr " in body, f"dnmr {name}: no example in docs/cli.md"
+
+
+def test_cli_examples_name_real_commands_and_options():
+    # every example line must be accepted by click's parser (parsing only: the files need not exist)
+    from dnmr.cli import cli
+
+    for name, body in cli_sections().items():
+        for block in re.findall(r"```\n(.*?)```", body, flags=re.S):
+            for line in block.strip().splitlines():
+                words = line.split()[1:]
+                while words and words[0].startswith("--") and words[0] in {o for p in cli.params for o in p.opts}:
+                    words = words[1:]
+                command = cli.commands[words[0]]
+                context = command.make_context(words[0], words[1:])
+                assert context.params is not None, line
+
+
+@pytest.mark.parametrize("section, keys", [
+    ("top level", series.SERIES_KEYS),
+    ("fit", series.SERIES_FIT_KEYS),
+    ("spectrum", series.SPECTRUM_KEYS),
+    ("rates.csv", set(series.RATE_COLUMNS) | set(series.TAIL_COLUMNS)),
+])
+def test_every_series_key_and_output_column_is_documented(section, keys):
+    documented = set(re.findall(r"`\[*([a-z0-9_]+)\]*`", (DOCS / "series-file.md").read_text()))
+    missing = set(keys) - documented
+    assert not missing, f"{section} keys missing from docs/series-file.md: {sorted(missing)}"
+
+
+def test_series_reference_lists_the_contract_columns():
+    # CONTRACT.md section 3: rates.csv has at least temperature_k, process, rate_per_s, rate_stderr,
+    # and rate_lower / rate_upper for a rate the data only bound
+    text = (DOCS / "series-file.md").read_text()
+    table = text.split("## Output: `rates.csv`", 1)[1].split("## ", 1)[0]
+    for column in ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper"):
+        assert f"| `{column}` |" in table, column
