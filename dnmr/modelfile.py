@@ -46,7 +46,7 @@ def read_toml(path: str | Path) -> dict[str, Any]:
     except UnicodeDecodeError:
         raise InputError("is not UTF-8 text; save it as a plain-text TOML file", source=path) from None
     if not text.strip():
-        raise InputError("is empty; see the model file reference in docs/", source=path)
+        raise InputError("is empty; see the file references in docs/ (model-file.md, series-file.md)", source=path)
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
