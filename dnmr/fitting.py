@@ -51,6 +51,7 @@ Method
 """
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import math
 import re
@@ -1110,6 +1111,20 @@ def _bound_flags(params: lmfit.Parameters, rate_names) -> tuple[list[str], list[
     return flags, notes
 
 
+def single_threaded_blas():
+    """Limit BLAS (OpenBLAS, MKL) to one thread in this process, for as long as the returned object lives.
+
+    The lineshape blocks are small matrices, where BLAS threads only contend: with them a series fit
+    ran about twice as slowly on two cores, serially and in parallel alike (benchmarks/fit_speed.py).
+    Uses threadpoolctl when it is installed; without it, BLAS keeps its own setting.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # optional: only speed is lost
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 def fit_spectrum(
     spectrum: MeasuredSpectrum | str | Path,
     model: Model,
@@ -1145,6 +1160,13 @@ def fit_spectrum(
     SpectrumFit
     """
     options = (options or FitOptions()).replace(**option_changes) if option_changes else (options or FitOptions())
+    with single_threaded_blas():
+        return _fit(spectrum, model, temperature_k, options, parameters, start)
+
+
+def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOptions,
+         parameters: lmfit.Parameters | None, start: Mapping[str, float] | None) -> SpectrumFit:
+    """The work of :func:`fit_spectrum`."""
     if temperature_k is not None:
         model = model.at_temperature(temperature_k)
     spectrum = _prepared(spectrum, model)

@@ -20,7 +20,8 @@ Fitting a series
 Spectra are fitted in parallel (one worker process per core), each seeded from the spectra already
 finished: rates from an Eyring line through their rates (ln(k/T) linear in 1/T), the other parameters
 from the nearest temperature.  The coarse rate scan of every fit still guards against a bad seed, so the
-results do not depend on the order in which fits finish beyond the optimiser's tolerance.
+results do not depend on the order in which fits finish beyond the optimiser's tolerance.  BLAS is
+held to one thread in every process (the matrices are small; threads only contend).
 
 With ``shifts = "slow-exchange-trend"`` the shifts of the fast-exchange spectra, which the spectra
 themselves do not determine, are taken from the slow-exchange ones: the spectra in slow exchange
@@ -68,7 +69,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
-from .fitting import FitOptions, SpectrumFit, fit_parameters, fit_spectrum
+from .fitting import FitOptions, SpectrumFit, fit_parameters, fit_spectrum, single_threaded_blas
 from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
 from .modelfile import check_keys, load_model, read_toml
@@ -635,7 +636,7 @@ class _Runner:
 
     def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
-        self.pool = futures.ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
+        self.pool = futures.ProcessPoolExecutor(max_workers=workers, initializer=_worker_start) if workers > 1 else None
 
     def close(self) -> None:
         if self.pool is not None:
@@ -712,6 +713,15 @@ class _Runner:
         if self.pool is None:
             return [function(*args) for args in calls]
         return [f.result() for f in [self.pool.submit(function, *args) for args in calls]]
+
+
+_WORKER_BLAS_LIMIT = None
+
+
+def _worker_start() -> None:
+    """Initialise a worker process: BLAS on one thread for the life of the process."""
+    global _WORKER_BLAS_LIMIT
+    _WORKER_BLAS_LIMIT = single_threaded_blas()
 
 
 def _future_result(future) -> dict:
@@ -944,7 +954,7 @@ def fit_series(
     hashes["model"] = file_sha256(series.model_file)
     runner = _Runner(series, outdir, workers, _progress(progress), resume)
     try:
-        with runner.progress:
+        with runner.progress, single_threaded_blas():
             jobs = [_job(series, i, STAGE_MAIN, s.options, hashes) for i, s in enumerate(series.spectra)]
             outcomes = {i: _outcome(series, i, r, STAGE_MAIN) for i, r in runner.run(jobs, "fitting spectra").items()}
             trend, notes = (None, [])
