@@ -544,15 +544,16 @@ class SeriesFit:
     def report(self) -> str:
         """A table of the rates, bounds and failures."""
         fitted = sum(o.fitted for o in self.outcomes)
+        width = max([12] + [len(p) for p in self.series.model.process_names()])
         lines = [f"{self.series.source.name}: {len(self.outcomes)} spectra, {fitted} fitted"
                  + (f", {len(self.failures)} failed" if self.failures else "") + f"; results in {self.outdir}", "",
-                 f"  {'T / K':>7}  {'process':<12} {'rate':<48} {'red. chi2':>9}  flags"]
+                 f"  {'T / K':>7}  {'process':<{width}} {'rate':<48} {'red. chi2':>9}  flags"]
         for o in self.by_temperature():
             for i, process in enumerate(self.series.model.process_names()):
                 text = o.fit.rates[i].describe().split("   ")[0] if o.fitted else "failed (see below)"
                 chi = f"{o.fit.reduced_chi_square:9.3f}" if o.fitted else ""
                 flags = ";".join((list(o.fit.flags) if o.fitted else ["failed"]) + list(o.spectrum.flags))
-                lines.append(f"  {o.spectrum.temperature_k:>7.2f}  {process:<12} {text:<48} {chi:>9}  {flags}")
+                lines.append(f"  {o.spectrum.temperature_k:>7.2f}  {process:<{width}} {text:<48} {chi:>9}  {flags}")
         for o in self.failures:
             lines.append(f"  failed: {o.spectrum.where} ({o.spectrum.file.name}): {o.error}")
         if self.shift_trend is not None:
@@ -570,7 +571,8 @@ class SeriesFit:
 
         done = [o for o in self.by_temperature() if o.fitted]
         return plot_fit_stack([o.fit for o in done], [f"{o.spectrum.temperature_k:g} K" for o in done],
-                              figure=figure, title=self.series.model.title or self.series.source.name)
+                              figure=figure, title=f"{self.series.model.title or self.series.source.name}\n"
+                                                   "measured (black) and fitted (red)")
 
 
 def _cell(value) -> str | float:
