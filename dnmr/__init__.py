@@ -11,13 +11,14 @@ from __future__ import annotations
 
 from .activation import EyringResult, coalescence_barrier, eyring_fit, eyring_fit_file, read_rates
 from .errors import InputError
+from .fitting import FitOptions, RateEstimate, SpectrumFit, fit_parameters, fit_spectrum
 from .model import Exchange, Model, Spectrometer, State
 from .modelfile import load_model
 from .readers import MeasuredSpectrum, read_spectrum
 from .planning import coalescence, plan_experiment, predict_coalescence
+from .series import Series, SeriesFit, fit_series, load_series
 from .solvents import Solvent, load_solvents, solvent
 from .spectrum import Spectrum, simulate, simulate_over
-from .timescale import ActivationParameters, averaged_model, fast_exchange_limit, timescale_view
 from .thermometry import (
     fit_temperature_calibration,
     read_temperature_calibration,
@@ -25,6 +26,7 @@ from .thermometry import (
     temperature_from_spectrum,
     thermometer_reading,
 )
+from .timescale import ActivationParameters, averaged_model, fast_exchange_limit, timescale_view
 
 __version__ = "0.1.0"
 __all__ = [
@@ -33,6 +35,9 @@ __all__ = [
     "load_model", "simulate", "simulate_over",
     # measured spectra
     "MeasuredSpectrum", "read_spectrum",
+    # rates from measured spectra
+    "FitOptions", "RateEstimate", "Series", "SeriesFit", "SpectrumFit", "fit_parameters", "fit_series",
+    "fit_spectrum", "load_series",
     # activation parameters
     "EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates",
     # planning and the NMR timescale
