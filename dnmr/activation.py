@@ -69,7 +69,10 @@ if TYPE_CHECKING:  # pragma: no cover
     from .thermometry import TemperatureCalibration
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
-RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process")
+RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
+                         "ci68_low_per_s", "ci68_high_per_s")
+#: Fit statuses (``dnmr fit``) whose rows carry no rate information at all.
+STATUS_WITHOUT_RATE = ("failed", "undetermined")
 NARROW_SPAN_K = 30.0  # common practice: a narrower span leaves dS‡ poorly determined
 FEW_RATES = 4
 OUTLIER_THRESHOLD = 3.0  # common practice for studentised residuals
@@ -110,6 +113,8 @@ class RateSeries:
         File the series was read from.
     lines : tuple of int or None
         File line of each row.
+    notes : tuple of str
+        What was done with rows of a fit table that are not plain values (left out, or an interval used).
     """
 
     process: str
@@ -121,6 +126,7 @@ class RateSeries:
     temperature_covariance: np.ndarray
     source: str | None = None
     lines: tuple[int, ...] | None = None
+    notes: tuple[str, ...] = ()
 
     def __len__(self) -> int:
         return len(self.temperature_k)
@@ -212,9 +218,11 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None) -> lis
         t_err = np.full(len(table), 0.0 if temperature_stderr is None else float(temperature_stderr))
         _check_temperature_stderr(t_err, table.source, lambda i: "--temperature-stderr")
     processes = table.text("process") if table.has("process") else ("",) * len(table)
+    status = table.text("status") if table.has("status") else ("",) * len(table)
+    notes = _apply_fit_status(table, status, numbers)
     series = []
     for name in dict.fromkeys(processes):
-        rows = np.array([p == name for p in processes])
+        rows = np.array([p == name for p in processes]) & ~np.isin(status, STATUS_WITHOUT_RATE)
         one = RateSeries(
             process=name,
             temperature_k=numbers["temperature_k"][rows],
@@ -225,10 +233,35 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None) -> lis
             temperature_covariance=np.diag(t_err[rows] ** 2),
             source=table.source,
             lines=tuple(np.array(table.lines)[rows].tolist()),
+            notes=tuple(note for process, note in notes if process == name),
         )
         check_rate_series(one)
         series.append(one)
     return series
+
+
+def _apply_fit_status(table, status, numbers) -> list[tuple[str, str]]:
+    """Rows of a ``dnmr fit`` table that are not plain values: left out, or a 68 % interval used as a value.
+
+    A profile interval (status ``interval``) is a measurement with an asymmetric error, not a bound: it is
+    used with the standard error of ln k taken as half the interval's width in ln k.  Rows whose fit failed
+    or left the rate undetermined carry nothing and are left out.  Returns (process, note) pairs.
+    """
+    processes = table.text("process") if table.has("process") else ("",) * len(table)
+    notes = []
+    for i, state in enumerate(status):
+        where = f"{table.where(i)} ({numbers['temperature_k'][i]:.2f} K)"
+        if state in STATUS_WITHOUT_RATE:
+            notes.append((processes[i], f"{where}: left out, the fit is {state}"))
+        elif state == "interval" and table.has("ci68_low_per_s") and table.has("ci68_high_per_s"):
+            low = table.numbers("ci68_low_per_s", allow_empty=True)[i]
+            high = table.numbers("ci68_high_per_s", allow_empty=True)[i]
+            if 0 < low < high and np.isfinite(numbers["rate_per_s"][i]):
+                numbers["rate_stderr"][i] = numbers["rate_per_s"][i] * 0.5 * np.log(high / low)
+                numbers["rate_lower"][i] = numbers["rate_upper"][i] = np.nan
+                notes.append((processes[i], f"{where}: 68 % interval {low:.3g}-{high:.3g} s^-1 used as a value,"
+                                            " with the error of ln k from its width"))
+    return notes
 
 
 def check_rate_series(series: RateSeries) -> None:
@@ -865,7 +898,7 @@ def eyring_fit_series(
         outliers=_outlier_flags(x, y, eyring.weights, extra_var, known, outlier_threshold),
         bounds=bounds,
     )
-    return replace(result, warnings=tuple(_warnings(result)))
+    return replace(result, warnings=tuple(series.notes) + tuple(_warnings(result)))
 
 
 def eyring_fit_file(

@@ -506,3 +506,20 @@ def test_cli_eyring_bad_file_exits_2_with_one_line(tmp_path):
     assert "line 3" in run.stderr and "Traceback" not in run.stderr
     missing = CliRunner().invoke(cli, ["eyring", str(tmp_path / "nothing.csv")])
     assert missing.exit_code == 2 and "file not found" in missing.stderr
+
+
+def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path):
+    """`dnmr fit` writes a status per row (CONTRACT.md section 3 plus our own columns): failed or
+    undetermined rows carry no rate and are left out with a note; a 68 % profile interval is a measurement
+    and is used with sigma(ln k) = half its width in ln k (common practice for asymmetric errors)."""
+    from dnmr.activation import eyring_fit_file
+
+    path = tmp_path / "rates.csv"
+    path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s\n"
+                    "250,p,10,1,,,determined,9,11\n260,p,25,,,,interval,22,28\n270,p,,,,,failed,,\n"
+                    "280,p,140,10,,,determined,130,150\n290,p,300,30,,,determined,270,330\n")
+    (result,) = eyring_fit_file(path)
+    assert len(result.series) == 4 and result.used.all()
+    assert result.series.rate_stderr[1] == pytest.approx(25 * 0.5 * np.log(28 / 22))
+    assert any("left out, the fit is failed" in w for w in result.warnings)
+    assert any("used as a value" in w for w in result.warnings)
