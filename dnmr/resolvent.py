@@ -186,13 +186,14 @@ def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
     amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the amplitudes
     against their sum (large terms that cancel).
     """
-    lam, _, V, info = _zgeev(L, compute_vl=0, compute_vr=1)
+    work = 66 * len(L)  # room for LAPACK's blocked algorithms (the wrappers' minimum is unblocked and slow)
+    lam, _, V, info = _zgeev(L, compute_vl=0, compute_vr=1, lwork=work)
     if info != 0:
         return None
     lu, piv, info = _zgetrf(V)
     if info != 0:
         return None  # singular eigenvector matrix: defective
-    V_inv, info = _zgetri(lu, piv)
+    V_inv, info = _zgetri(lu, piv, lwork=work)
     condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
     if not condition < EIGENBASIS_CONDITION_LIMIT:
         return None
