@@ -331,6 +331,20 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
     _emit(result, as_json, plot_file, overwrite)
 
 
+@cli.command()
+@click.argument("outdir", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the Eyring analysis.")
+@click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
+              help="HTML file to write (default OUTDIR/report.html).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing report.")
+def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool) -> None:
+    """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched)."""
+    from .report import write_report
+
+    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite)}")
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point of the ``dnmr`` console script: exit 0 on success, 2 on bad input or usage, 1 otherwise."""
     try:

@@ -1,0 +1,611 @@
+"""One self-contained HTML report of a series fit (``dnmr report OUTDIR``).
+
+:func:`write_report` reads the ``results.json`` and ``rates.csv`` that ``dnmr fit`` wrote into OUTDIR,
+runs the Eyring analysis on the rates and writes ONE HTML file (default ``OUTDIR/report.html``) with
+every figure embedded as a base64 PNG data URI and the style inline: the file makes no request of any
+kind (no scripts, fonts, style sheets or images from elsewhere) and prints on paper as it shows on screen.
+
+Sections: summary (activation parameters in kJ/mol with kcal/mol alongside, their correlation), the
+model, the rate table, identifiability notes (which rates are only bounds, and why), the fit at every
+temperature with its residuals, the Eyring plot and analysis, warnings, safety cautions, and the exact
+inputs (SHA-256 of every file) and software versions.
+
+Temperatures
+------------
+Neither the series file nor ``results.json`` records a temperature calibration: the rates carry the
+temperatures the series file gives.  The Eyring analysis therefore uses a calibration only when one is
+passed (``calibration=`` or ``--calibration CAL.csv``); the temperatures in rates.csv are then taken as
+set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.thermometry`).  The report
+states which of the two was done.
+
+Text taken from the input files is always HTML-escaped.  The input folder is only read; the report
+is written atomically and an existing file is never replaced unless ``overwrite``.
+"""
+from __future__ import annotations
+
+import base64
+import csv
+import html
+import io
+import json
+import platform
+import time
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .activation import EyringResult, eyring_fit_file, format_with_error
+from .errors import InputError
+from .kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
+from .model import Model
+from .modelfile import load_model
+from .output import atomic_write_text
+from .planning import CAUTIONS
+from .series import file_sha256
+from .thermometry import TemperatureCalibration, read_temperature_calibration
+
+REPORT_NAME = "report.html"
+INPUT_NAMES = ("results.json", "rates.csv")
+BOUND_STATUSES = ("upper-bound", "lower-bound", "interval", "undetermined")
+FIGURE_DPI = 110
+
+STYLE = """
+body { font-family: "DejaVu Sans", "Liberation Sans", Arial, sans-serif; color: #111; background: #fff;
+       max-width: 68rem; margin: 1.5rem auto; padding: 0 1rem; line-height: 1.4; }
+h1 { font-size: 1.6rem; border-bottom: 2px solid #333; padding-bottom: .3rem; }
+h2 { font-size: 1.25rem; border-bottom: 1px solid #999; margin-top: 2rem; }
+h3 { font-size: 1.05rem; margin-bottom: .3rem; }
+table { border-collapse: collapse; margin: .5rem 0 1rem; font-size: .9rem; }
+th, td { border: 1px solid #bbb; padding: .2rem .5rem; text-align: left; vertical-align: top; }
+th { background: #eee; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+pre { background: #f6f6f6; border: 1px solid #ddd; padding: .5rem; font-size: .8rem; overflow-x: auto;
+      white-space: pre-wrap; }
+figure { margin: .5rem 0 1.5rem; }
+figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
+figcaption { font-size: .85rem; color: #333; }
+.warn { color: #8a3b00; }
+.muted { color: #555; font-size: .85rem; }
+@media print {
+  body { max-width: none; margin: 0; font-size: 10pt; }
+  h2 { page-break-after: avoid; }
+  figure, table, pre { page-break-inside: avoid; }
+  pre { white-space: pre-wrap; }
+}
+"""
+
+
+# --------------------------------------------------------------------------------------------------
+# reading OUTDIR
+
+
+@dataclass
+class ReportInputs:
+    """What the report is made from.
+
+    Attributes
+    ----------
+    outdir : Path
+        The folder of the series fit.
+    results : dict
+        The parsed ``results.json``.
+    rates : list of dict
+        The rows of ``rates.csv`` (text values, as written).
+    model : Model or None
+        The model file named in results.json, when it can still be read.
+    calibration : TemperatureCalibration or None
+        Set-point calibration applied to the rates' temperatures.
+    calibration_file : Path or None
+        Where the calibration came from (None when passed as an object).
+    eyring : list of EyringResult
+        One per process (empty when the analysis could not be run).
+    warnings : list of str
+        Problems met while gathering the inputs (model changed, Eyring analysis impossible ...).
+    """
+
+    outdir: Path
+    results: dict
+    rates: list[dict]
+    model: Model | None = None
+    calibration: TemperatureCalibration | None = None
+    calibration_file: Path | None = None
+    eyring: list[EyringResult] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+def read_results(outdir: Path) -> dict:
+    """Parse ``OUTDIR/results.json`` of ``dnmr fit``.
+
+    Raises
+    ------
+    InputError
+        When the file is missing, is not valid JSON, or is not the output of a series fit.
+    """
+    path = outdir / "results.json"
+    if not path.is_file():
+        raise InputError(f"no results.json here: run `dnmr fit SERIES.toml -o {outdir}` first, or name the "
+                         "folder it wrote", str(outdir))
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise InputError("not a text file: expected the results.json written by `dnmr fit`", str(path)) from None
+    except json.JSONDecodeError as err:
+        raise InputError(f"not valid JSON ({err.msg}); the file is damaged: fit the series again",
+                         str(path), f"line {err.lineno} column {err.colno}") from None
+    if not isinstance(data, dict) or not isinstance(data.get("spectra"), list):
+        raise InputError("not the results.json of `dnmr fit` (no list of spectra)", str(path), "spectra")
+    return data
+
+
+def read_rate_rows(outdir: Path) -> list[dict]:
+    """Rows of ``OUTDIR/rates.csv`` as dicts of text (InputError when the file is missing)."""
+    path = outdir / "rates.csv"
+    if not path.is_file():
+        raise InputError("no rates.csv next to results.json: the series fit did not finish; fit it again",
+                         str(outdir))
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def _model(results: dict) -> tuple[Model | None, list[str]]:
+    """The model named in results.json, and warnings when it is gone or has changed since the fit."""
+    entry = results.get("model") or {}
+    path = Path(str(entry.get("file", "")))
+    if not entry.get("file") or not path.is_file():
+        return None, [f"the model file {path} is no longer there: the model section lists only its states and processes"]
+    warnings = []
+    if file_sha256(path) != entry.get("sha256"):
+        warnings.append(f"the model file {path} has changed since the fit (SHA-256 differs): the model section "
+                        "shows the file as it is now")
+    try:
+        return load_model(path), warnings
+    except InputError as err:
+        return None, warnings + [f"the model file cannot be read any more: {err}"]
+
+
+def _calibration(calibration: TemperatureCalibration | str | Path | None) -> tuple[TemperatureCalibration | None, Path | None]:
+    if calibration is None or isinstance(calibration, TemperatureCalibration):
+        return calibration, None
+    return read_temperature_calibration(calibration), Path(calibration)
+
+
+def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None) -> ReportInputs:
+    """Read OUTDIR, the model and the calibration, and run the Eyring analysis.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        Folder written by ``dnmr fit``.
+    calibration : TemperatureCalibration, str or Path, optional
+        Set-point calibration (object or CSV with setpoint_k, temperature_k; degree 1).
+
+    Returns
+    -------
+    ReportInputs
+        An Eyring analysis that cannot be run (too few rates, for example) becomes a warning.
+    """
+    outdir = Path(outdir)
+    results = read_results(outdir)
+    inputs = ReportInputs(outdir, results, read_rate_rows(outdir))
+    inputs.calibration, inputs.calibration_file = _calibration(calibration)
+    inputs.model, inputs.warnings = _model(results)
+    try:
+        inputs.eyring = eyring_fit_file(outdir / "rates.csv", calibration=inputs.calibration)
+    except InputError as err:
+        inputs.warnings.append(f"no Eyring analysis: {err}")
+    return inputs
+
+
+# --------------------------------------------------------------------------------------------------
+# HTML pieces
+
+
+def esc(value) -> str:
+    """Text of `value`, HTML-escaped (quotes too)."""
+    return html.escape(str(value), quote=True)
+
+
+def _number(text, fmt: str = ".4g") -> str:
+    """A number from rates.csv (text) formatted, or '' when empty."""
+    if text in ("", None):
+        return ""
+    try:
+        return format(float(text), fmt)
+    except ValueError:
+        return str(text)
+
+
+def table(headers: Sequence[str], rows: Iterable[Sequence], numeric: Sequence[bool] = ()) -> str:
+    """An HTML table; every header and cell is escaped. `numeric` right-aligns columns."""
+    head = "".join(f"<th>{esc(h)}</th>" for h in headers)
+    body = []
+    for row in rows:
+        cells = [f'<td class="num">{esc(c)}</td>' if i < len(numeric) and numeric[i] else f"<td>{esc(c)}</td>"
+                 for i, c in enumerate(row)]
+        body.append("<tr>" + "".join(cells) + "</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def bullets(items: Iterable[str], css: str = "") -> str:
+    """An escaped bullet list ('' when empty)."""
+    items = list(items)
+    cls = f' class="{css}"' if css else ""
+    return f"<ul{cls}>" + "".join(f"<li>{esc(i)}</li>" for i in items) + "</ul>" if items else ""
+
+
+def png_data_uri(data: bytes) -> str:
+    """``data:image/png;base64,...`` URI of PNG bytes."""
+    return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
+
+
+def figure_html(data: bytes, caption: str, alt: str) -> str:
+    """A <figure> with the PNG embedded and an escaped caption."""
+    return (f'<figure><img src="{png_data_uri(data)}" alt="{esc(alt)}">'
+            f"<figcaption>{esc(caption)}</figcaption></figure>")
+
+
+def figure_from_file(path: Path, caption: str, alt: str) -> str:
+    """Embed the PNG at `path`, or say that it is missing."""
+    if not path.is_file():
+        return f'<p class="warn">figure {esc(path.name)} not found in {esc(path.parent)}</p>'
+    return figure_html(path.read_bytes(), caption, alt)
+
+
+def figure_png(fig) -> bytes:
+    """Render a matplotlib figure to PNG bytes (no software tag) and close it."""
+    import matplotlib.pyplot as plt
+
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=FIGURE_DPI, bbox_inches="tight", metadata={"Software": None})
+    plt.close(fig)
+    return buffer.getvalue()
+
+
+def section(anchor: str, title: str, body: str) -> str:
+    """A <section> with an <h2>."""
+    return f'<section id="{esc(anchor)}"><h2>{esc(title)}</h2>{body}</section>'
+
+
+def _pre(text: str) -> str:
+    return f"<pre>{esc(text)}</pre>"
+
+
+# --------------------------------------------------------------------------------------------------
+# sections
+
+
+PARAMETER_ROWS = (
+    # label, key, unit, converted unit (kcal) or None
+    ("dH‡", "enthalpy", "kJ/mol", "kcal/mol"),
+    ("dS‡", "entropy", "J/(mol K)", "cal/(mol K)"),
+    ("dG‡(298.15 K)", "gibbs_298", "kJ/mol", "kcal/mol"),
+    ("dG‡(T_hm)", "gibbs_hm", "kJ/mol", "kcal/mol"),
+    ("Ea (Arrhenius)", "activation_energy", "kJ/mol", None),
+)
+
+
+def _value_key(key: str) -> str:
+    return {"enthalpy": "enthalpy_kj_mol", "entropy": "entropy_j_mol_k", "gibbs_298": "gibbs_298_kj_mol",
+            "gibbs_hm": "gibbs_hm_kj_mol", "activation_energy": "activation_energy_kj_mol"}[key]
+
+
+def _parameter_cell(key: str, value: float, stderr: float) -> str:
+    """A table cell showing 'value ± error' and carrying the exact numbers in data attributes."""
+    return (f'<td class="num" data-key="{esc(key)}" data-value="{value!r}" data-stderr="{stderr!r}">'
+            f"{esc(format_with_error(value, stderr))}</td>")
+
+
+def parameter_table(result: EyringResult) -> str:
+    """Activation parameters of one process with errors, kJ/mol and kcal/mol side by side."""
+    d = result.to_dict()
+    rows = []
+    for label, key, unit, unit2 in PARAMETER_ROWS:
+        if key == "gibbs_hm":
+            label = f"dG‡({d['harmonic_mean_temperature_k']:.1f} K, harmonic mean)"
+        value, stderr = d[_value_key(key)], d[key + "_stderr"]
+        converted = (f'<td class="num">{esc(format_with_error(value * KCAL_PER_KJ, stderr * KCAL_PER_KJ))} '
+                     f"{esc(unit2)}</td>") if unit2 else "<td></td>"
+        rows.append(f"<tr><th>{esc(label)}</th>{_parameter_cell(_value_key(key), value, stderr)}"
+                    f"<td>{esc(unit)}</td>{converted}</tr>")
+    rows.append(f'<tr><th>corr(dH‡, dS‡)</th><td class="num" data-key="correlation_enthalpy_entropy" '
+                f'data-value="{result.correlation!r}">{result.correlation:.4f}</td><td></td><td></td></tr>')
+    rows.append(f"<tr><th>corr(dG‡(T_hm), dH‡)</th><td class=\"num\">{d['correlation_gibbs_hm_enthalpy']:+.3f}</td>"
+                "<td></td><td></td></tr>")
+    head = "<tr><th>quantity</th><th>value ± standard error</th><th>unit</th><th>in kcal/mol or cal/(mol K)</th></tr>"
+    return (f'<table class="parameters" data-process="{esc(result.process)}"><thead>{head}</thead>'
+            f"<tbody>{''.join(rows)}</tbody></table>")
+
+
+def _temperature_basis(inputs: ReportInputs) -> str:
+    if inputs.calibration is None:
+        return ("Temperatures: as given in the series file (taken as sample temperatures; no calibration was "
+                "applied — pass --calibration CAL.csv to correct set-points).")
+    origin = f" from {inputs.calibration_file}" if inputs.calibration_file else ""
+    return (f"Temperatures: the series' set-points, corrected by the calibration{origin}; its uncertainty is "
+            "carried into the errors.")
+
+
+def summary_section(inputs: ReportInputs) -> str:
+    """Title block: what was fitted and the activation parameters of each process."""
+    r = inputs.results
+    spectra = r["spectra"]
+    fitted = sum(s.get("status") == "fitted" for s in spectra)
+    parts = [f"<p>{esc(len(spectra))} spectra, {esc(fitted)} fitted; series file "
+             f"{esc(Path(str((r.get('series') or {}).get('file', '?'))).name)}; fit written "
+             f"{esc(r.get('written_utc', '?'))}.</p>", f"<p>{esc(_temperature_basis(inputs))}</p>"]
+    for result in inputs.eyring:
+        t = result.temperature_k
+        parts.append(f"<h3>Process {esc(result.process or '(unnamed)')}</h3>"
+                     f"<p>{esc(int(result.used.sum()))} rates from {t.min():.1f} to {t.max():.1f} K"
+                     f"{esc(f' (+ {len(result.bounds)} bounds, not fitted)' if result.bounds else '')}; "
+                     f"errors from {esc(result.error_basis)}.</p>" + parameter_table(result))
+    if not inputs.eyring:
+        parts.append('<p class="warn">No activation parameters: see the warnings.</p>')
+    return section("summary", "Summary", "".join(parts))
+
+
+def _state_rows(model: Model) -> list[list[str]]:
+    try:
+        populations = [f"{p:.4f}" for p in model.populations()]
+    except InputError:
+        populations = ["" for _ in model.states]
+    rows = []
+    for state, population in zip(model.states, populations):
+        shifts = ", ".join(f"{spin} {ppm:.4f}" for spin, ppm in state.shifts_ppm.items())
+        couplings = ", ".join(f"{pair} {hz:+.2f}" for pair, hz in state.couplings_hz.items())
+        energy = "" if state.free_energy_kj_mol is None else f"{state.free_energy_kj_mol:g}"
+        rows.append([state.name, population, energy, f"{state.linewidth_hz:g}", shifts, couplings])
+    return rows
+
+
+def _exchange_start(exchange) -> str:
+    if exchange.rate_per_s is not None:
+        return f"k = {exchange.rate_per_s:g} s^-1"
+    if exchange.barrier_kj_mol is not None:
+        return f"dG‡ = {exchange.barrier_kj_mol:g} kJ/mol"
+    return f"dH‡ = {exchange.enthalpy_kj_mol:g} kJ/mol, dS‡ = {exchange.entropy_j_mol_k:g} J/(mol K)"
+
+
+def model_section(inputs: ReportInputs) -> str:
+    """States (shifts, couplings, populations) and exchange processes with their spin mappings."""
+    entry = inputs.results.get("model") or {}
+    model = inputs.model
+    if model is None:
+        body = (f"<p>States: {esc(', '.join(map(str, entry.get('states', []))))}; processes: "
+                f"{esc(', '.join(map(str, entry.get('processes', []))))}.</p>")
+        return section("model", "Model", body)
+    temperature = f" at {model.temperature_k:g} K" if model.temperature_k is not None else ""
+    body = [f"<p>{esc(model.title or Path(str(entry.get('file', ''))).name)} — nucleus "
+            f"{esc(model.spectrometer.nucleus)}, {model.spectrometer.frequency_mhz:g} MHz.</p>",
+            table(["state", f"population{temperature}", "free energy / (kJ/mol)", "linewidth / Hz",
+                   "shifts / ppm", "couplings / Hz"], _state_rows(model), numeric=[False, True, True, True]),
+            table(["process", "from → to", "spin mapping", "kind", "start value in the model file"],
+                  [[name, f"{ex.from_state} → {ex.to_state}",
+                    ", ".join(f"{a} → {b}" for a, b in ex.spins.items()) or "(spins keep their names)",
+                    "mutual" if ex.is_mutual else "between states", _exchange_start(ex)]
+                   for name, ex in zip(model.process_names(), model.exchanges)])]
+    body.append('<p class="muted">The fit refines the rate at every temperature (and, depending on the options, '
+                "shifts, linewidths and populations); the values above are the model file's.</p>")
+    return section("model", "Model", "".join(body))
+
+
+def _rate_text(row: dict) -> str:
+    """'k ± err', '< upper', '> lower' or the interval, from a rates.csv row."""
+    status, k = row.get("status", ""), _number(row.get("rate_per_s"))
+    if status == "determined":
+        return f"{k} ± {_number(row.get('rate_stderr'), '.2g')}"
+    if status == "upper-bound":
+        return f"< {_number(row.get('rate_upper'))} (best {k})"
+    if status == "lower-bound":
+        return f"> {_number(row.get('rate_lower'))} (best {k})"
+    if status == "interval":
+        return f"{_number(row.get('rate_lower'))} to {_number(row.get('rate_upper'))} (best {k})"
+    return k if status != "failed" else "fit failed"
+
+
+def rate_section(inputs: ReportInputs) -> str:
+    """The rate table of rates.csv."""
+    rows = [[_number(row.get("temperature_k"), ".2f"), row.get("process", ""), _rate_text(row), row.get("status", ""),
+             _number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")] for row in inputs.rates]
+    body = table(["T / K", "process", "rate k / s^-1", "status", "reduced chi-square", "flags"], rows,
+                 numeric=[True, False, True, False, True])
+    return section("rates", "Rates", body + '<p class="muted">Errors are one standard error; bounds are the '
+                   "limits the chi-square profile allows (68 %). The temperatures are those of the series file.</p>")
+
+
+def bound_notes(results: dict) -> list[str]:
+    """Each rate that is only a bound (or not determined), with the fit's reason."""
+    notes = []
+    for s in sorted(results["spectra"], key=lambda s: s.get("temperature_k") or 0.0):
+        for rate in ((s.get("fit") or {}).get("rates") or []):
+            if rate.get("status") in BOUND_STATUSES:
+                reason = rate.get("reason") or "no reason recorded"
+                notes.append(f"{s.get('temperature_k')} K, {rate.get('process')}: {rate.get('status')} — {reason}")
+    return notes
+
+
+def identifiability_section(inputs: ReportInputs) -> str:
+    """Which rates are only bounds, and why; the bounds' check against the Eyring line."""
+    notes = bound_notes(inputs.results)
+    body = bullets(notes) if notes else "<p>Every fitted rate is determined with an error bar; none is only a bound.</p>"
+    checks = [b.describe() for r in inputs.eyring for b in r.bounds]
+    if checks:
+        body += "<p>Bounds against the Eyring line of the determined rates:</p>" + bullets(checks)
+    trend = inputs.results.get("shift_trend")
+    if trend:
+        body += ("<p>The shifts of the faster spectra, which those spectra do not determine, were taken from a linear "
+                 "trend through the slow-exchange spectra at "
+                 f"{esc(', '.join(f'{t:g}' for t in trend.get('temperatures_k', [])))} K:</p>")
+        body += table(["shift", "ppm at mean T", "mean T / K", "slope / (ppm/K)"],
+                      [[name, f"{line['ppm_at_mean']:.4f}", f"{line['mean_temperature_k']:.1f}",
+                        f"{line['ppm_per_k']:+.3e}"] for name, line in trend.get("lines", {}).items()],
+                      numeric=[False, True, True, True])
+    return section("identifiability", "Identifiability", body)
+
+
+def fit_figure_path(outdir: Path, spectrum: dict) -> Path:
+    """Where ``dnmr fit`` drew the spectrum's data, fit and residuals (figures/NNN_<name>.png)."""
+    return outdir / "figures" / f"{int(spectrum['index']):03d}_{Path(str(spectrum['file'])).stem}.png"
+
+
+def _spectrum_block(outdir: Path, s: dict) -> str:
+    name = Path(str(s.get("file", "?"))).name
+    head = f"<h3>{esc(s.get('temperature_k'))} K — {esc(name)}</h3>"
+    if s.get("status") != "fitted":
+        return head + f"<p class=\"warn\">not fitted: {esc(s.get('error') or 'no reason recorded')}</p>"
+    fit = s.get("fit") or {}
+    rates = "; ".join(f"{r.get('process')}: {r.get('status')}" for r in fit.get("rates", []))
+    facts = (f"<p>reduced chi-square {_number(fit.get('reduced_chi_square'), '.3f')}; {esc(rates)}; "
+             f"flags: {esc(', '.join(fit.get('flags', []) + s.get('flags', [])) or 'none')}.</p>")
+    notes = bullets(list(s.get("notes", [])) + list(fit.get("notes", [])), "muted")
+    return head + facts + notes + figure_from_file(fit_figure_path(outdir, s), f"{name}: data, fit and residuals",
+                                                   f"fit of {name}")
+
+
+def fits_section(inputs: ReportInputs) -> str:
+    """The series stack and, per temperature, the fit with its residuals."""
+    spectra = sorted(inputs.results["spectra"], key=lambda s: s.get("temperature_k") or 0.0)
+    body = figure_from_file(inputs.outdir / "series_fits.png", "The series by temperature: measured spectra with the fitted lineshapes",
+                            "series of fits")
+    return section("fits", "Fits at each temperature", body + "".join(_spectrum_block(inputs.outdir, s) for s in spectra))
+
+
+def eyring_section(inputs: ReportInputs) -> str:
+    """Eyring plot made here, the calibration and the full analysis of each process."""
+    if not inputs.eyring:
+        return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
+    from .plotting import plot_eyring
+
+    body = figure_html(figure_png(plot_eyring(inputs.eyring)),
+                       "Eyring plot: ln(k/T) against 1000/T with the fitted line, its 95 % band and the residuals",
+                       "Eyring plot")
+    body += f"<p>{esc(_temperature_basis(inputs))}</p>"
+    if inputs.calibration is not None:
+        body += _pre(inputs.calibration.report())
+    body += "".join(_pre(r.report()) for r in inputs.eyring)
+    body += (f'<p class="muted">dG‡ is least correlated with dH‡ at the weighted harmonic-mean temperature '
+             f"(Grieger, Hunter &amp; Krug 1976); {STANDARD_TEMPERATURE_K} K is quoted for comparison.</p>")
+    return section("eyring", "Eyring analysis", body)
+
+
+def collect_warnings(inputs: ReportInputs) -> list[str]:
+    """Warnings from the series fit (notes, failures, flagged fits), the Eyring analysis and the inputs."""
+    out = list(inputs.warnings) + [str(n) for n in inputs.results.get("notes", [])]
+    for s in sorted(inputs.results["spectra"], key=lambda s: s.get("temperature_k") or 0.0):
+        where = f"{s.get('temperature_k')} K ({Path(str(s.get('file', '?'))).name})"
+        if s.get("status") != "fitted":
+            out.append(f"{where}: not fitted: {s.get('error')}")
+            continue
+        flags = list((s.get("fit") or {}).get("flags", [])) + list(s.get("flags", []))
+        if flags:
+            out.append(f"{where}: flagged {', '.join(flags)}")
+    out += [f"Eyring{f' ({r.process})' if r.process else ''}: {w}" for r in inputs.eyring for w in r.warnings]
+    return out
+
+
+def warnings_section(inputs: ReportInputs) -> str:
+    """Everything the reader should check before quoting the numbers."""
+    items = collect_warnings(inputs)
+    return section("warnings", "Warnings", bullets(items, "warn") if items else "<p>None.</p>")
+
+
+def cautions_section() -> str:
+    """Safety cautions for variable-temperature work (dnmr.planning.CAUTIONS)."""
+    return section("cautions", "Safety cautions", bullets(CAUTIONS))
+
+
+def _input_rows(inputs: ReportInputs) -> list[list[str]]:
+    r = inputs.results
+    rows = [["series", str((r.get("series") or {}).get("file", "")), "", str((r.get("series") or {}).get("sha256", ""))],
+            ["model", str((r.get("model") or {}).get("file", "")), "", str((r.get("model") or {}).get("sha256", ""))]]
+    rows += [[f"spectrum {s.get('index')}", str(s.get("file", "")), f"{s.get('temperature_k')}", str(s.get("sha256", ""))]
+             for s in r["spectra"]]
+    if inputs.calibration_file is not None:
+        rows.append(["calibration", str(inputs.calibration_file), "", str(file_sha256(inputs.calibration_file))])
+    return rows
+
+
+def _report_versions() -> dict:
+    import matplotlib
+    import numpy
+
+    from . import __version__
+
+    return {"dnmr": __version__, "python": platform.python_version(), "numpy": numpy.__version__,
+            "matplotlib": matplotlib.__version__}
+
+
+def inputs_section(inputs: ReportInputs) -> str:
+    """Exact inputs (files with SHA-256), fit options and the software of the fit and of this report."""
+    r = inputs.results
+    options = {"shifts": r.get("shifts"), "slow_exchange_below_k": r.get("slow_exchange_below_k"),
+               "options": r.get("options")}
+    body = table(["input", "file", "T / K", "SHA-256"], _input_rows(inputs))
+    body += "<h3>Fit options</h3>" + _pre(json.dumps(options, indent=1, sort_keys=True))
+    body += "<h3>Software</h3>" + table(
+        ["used for", "package", "version"],
+        [["series fit", k, v] for k, v in (r.get("versions") or {}).items()]
+        + [["this report", k, v] for k, v in _report_versions().items()])
+    body += (f"<p class=\"muted\">Fit program: {esc(r.get('program', '?'))}, written {esc(r.get('written_utc', '?'))}; "
+             f"report written {esc(time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime()))} from {esc(inputs.outdir)}.</p>")
+    return section("inputs", "Inputs and software", body)
+
+
+def render_report(inputs: ReportInputs) -> str:
+    """The whole HTML document (self-contained: inline style, embedded figures, no scripts or links)."""
+    model_title = inputs.model.title if inputs.model is not None and inputs.model.title else ""
+    title = f"dnmr report: {model_title or inputs.outdir.name}"
+    sections = [summary_section(inputs), model_section(inputs), rate_section(inputs), identifiability_section(inputs),
+                fits_section(inputs), eyring_section(inputs), warnings_section(inputs), cautions_section(),
+                inputs_section(inputs)]
+    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            f"<title>{esc(title)}</title><style>{STYLE}</style></head><body>"
+            f"<h1>{esc(title)}</h1>{''.join(sections)}</body></html>\n")
+
+
+def _refuse_inputs(path: Path, outdir: Path) -> None:
+    for name in INPUT_NAMES:
+        if path.resolve() == (outdir / name).resolve():
+            raise InputError(f"the report would replace the input {name}; choose another file name", where="--output")
+
+
+def write_report(
+    outdir: str | Path,
+    *,
+    calibration: TemperatureCalibration | str | Path | None = None,
+    output: str | Path | None = None,
+    overwrite: bool = False,
+) -> Path:
+    """Write one self-contained HTML report of the series fit in `outdir`.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        Folder written by ``dnmr fit`` (results.json, rates.csv, figures/, series_fits.png).
+    calibration : TemperatureCalibration, str or Path, optional
+        Set-point calibration for the Eyring analysis (object, or CSV with setpoint_k and temperature_k,
+        fitted with degree 1).  Without it the rates' temperatures are used as they are: neither the
+        series file nor results.json records a calibration.
+    output : str or Path, optional
+        HTML file to write (default ``OUTDIR/report.html``).
+    overwrite : bool
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+        The file written.
+
+    Raises
+    ------
+    InputError
+        When OUTDIR has no valid results.json or rates.csv, the calibration cannot be read, or the output
+        exists (without `overwrite`) or would replace an input.
+    """
+    outdir = Path(outdir)
+    path = Path(output) if output is not None else outdir / REPORT_NAME
+    _refuse_inputs(path, outdir)
+    if path.exists() and not overwrite:
+        raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
+    inputs = gather_inputs(outdir, calibration)
+    return atomic_write_text(path, render_report(inputs), overwrite=overwrite)
