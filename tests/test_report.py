@@ -1,0 +1,196 @@
+"""The HTML report (dnmr.report and `dnmr report`) of a small invented series fitted here.
+
+The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py,
+through test_series.write_series) at rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935))
+for invented activation parameters; the coldest spectrum is so slow that its rate is only an upper bound.
+The activation parameters the report shows are checked against dnmr.activation.eyring_fit_file on the same
+rates.csv, and the recovered dH‡ against the invented truth.
+"""
+from __future__ import annotations
+
+import base64
+import json
+import shutil
+import subprocess
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from dnmr.activation import eyring_fit_file, format_with_error
+from dnmr.cli import cli
+from dnmr.errors import InputError
+from dnmr.report import write_report
+from dnmr.series import fit_series
+from test_series import ENTHALPY_J_MOL, write_series
+
+TEMPERATURES = [190.0, 270.0, 290.0, 310.0]  # k(190 K) ~ 1e-4 s^-1: far below the linewidth, a bound
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+
+
+class _Page(HTMLParser):
+    """Collects the img sources, every src/href value and the activation-parameter cells."""
+
+    def __init__(self):
+        super().__init__()
+        self.images: list[str] = []
+        self.links: list[str] = []
+        self.parameters: dict[str, tuple[float, str]] = {}
+        self._key: tuple[str, float] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        self.links += [attrs[a] for a in ("src", "href") if a in attrs]
+        if tag == "img":
+            self.images.append(attrs.get("src", ""))
+        if "data-key" in attrs:
+            self._key = (attrs["data-key"], float(attrs["data-value"]))
+
+    def handle_data(self, data):
+        if self._key is not None:
+            key, value = self._key
+            self.parameters[key] = (value, data)
+            self._key = None
+
+
+def parse(text: str) -> _Page:
+    page = _Page()
+    page.feed(text)
+    page.close()
+    return page
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory) -> Path:
+    folder = tmp_path_factory.mktemp("report")
+    result = fit_series(write_series(folder, TEMPERATURES), folder / "out", workers=1, progress=False)
+    assert result.exit_status == 0
+    return folder / "out"
+
+
+@pytest.fixture(scope="module")
+def report(fitted) -> Path:
+    return write_report(fitted)
+
+
+def test_report_embeds_every_figure_as_png_data(fitted, report):
+    page = parse(report.read_text(encoding="utf-8"))
+    figures = len(list((fitted / "figures").glob("*.png")))
+    assert figures == len(TEMPERATURES)
+    assert len(page.images) == figures + 2  # + the series stack and the Eyring plot made by the report
+    for src in page.images:
+        assert src.startswith("data:image/png;base64,")
+        assert base64.b64decode(src.split(",", 1)[1], validate=True).startswith(PNG_SIGNATURE)
+
+
+def test_report_makes_no_external_reference(report):
+    text = report.read_text(encoding="utf-8")
+    page = parse(text)
+    assert page.links and all(link.startswith("data:") for link in page.links)
+    assert not any(word in text for word in ("http://", "https://", "<script", "<link", "@import", "url("))
+
+
+def test_parameters_shown_are_those_of_eyring_fit_file(fitted, report):
+    expected = eyring_fit_file(fitted / "rates.csv")[0].to_dict()
+    shown = parse(report.read_text(encoding="utf-8")).parameters
+    for key in ("enthalpy_kj_mol", "entropy_j_mol_k", "gibbs_298_kj_mol", "gibbs_hm_kj_mol"):
+        value, text = shown[key]
+        assert value == pytest.approx(expected[key], rel=1e-12)
+        stderr_key = key.replace("_kj_mol", "_stderr").replace("_j_mol_k", "_stderr")
+        assert text == format_with_error(expected[key], expected[stderr_key])
+    assert shown["correlation_enthalpy_entropy"][0] == pytest.approx(expected["correlation_enthalpy_entropy"], rel=1e-12)
+    # the invented truth (Eyring 1935 rates for dH‡ = 60 kJ/mol) is recovered within 4 standard errors
+    assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_J_MOL / 1e3) < 4 * expected["enthalpy_stderr"]
+
+
+def test_report_names_the_bound_its_reason_inputs_and_cautions(fitted, report):
+    text = report.read_text(encoding="utf-8")
+    results = json.loads((fitted / "results.json").read_text())
+    coldest = min(results["spectra"], key=lambda s: s["temperature_k"])
+    assert coldest["fit"]["rates"][0]["status"] == "upper-bound"
+    assert "190.0 K, flip: upper-bound" in text
+    for s in results["spectra"]:
+        assert s["sha256"] in text
+    assert "Safety cautions" in text and "liquid nitrogen" in text
+
+
+def test_text_from_files_is_escaped(fitted, tmp_path):
+    copy = tmp_path / "out"
+    shutil.copytree(fitted, copy)
+    results = json.loads((copy / "results.json").read_text())
+    results["notes"] = ['<script>alert("x")</script> & <img src=x>']
+    (copy / "results.json").write_text(json.dumps(results))
+    text = write_report(copy, output=tmp_path / "escaped.html").read_text(encoding="utf-8")
+    assert "&lt;script&gt;alert(&quot;x&quot;)&lt;/script&gt; &amp; &lt;img src=x&gt;" in text
+    assert "<script" not in text and len(parse(text).images) == len(TEMPERATURES) + 2
+
+
+def test_refuses_to_overwrite(fitted, report):
+    before = report.read_bytes()
+    with pytest.raises(InputError, match="already exists"):
+        write_report(fitted)
+    assert report.read_bytes() == before
+    result = CliRunner().invoke(cli, ["report", str(fitted)])
+    assert result.exit_code == 2 and "--overwrite" in result.output
+
+
+def test_refuses_to_write_over_an_input(fitted):
+    with pytest.raises(InputError, match="rates.csv"):
+        write_report(fitted, output=fitted / "rates.csv", overwrite=True)
+
+
+def test_calibration_moves_the_temperatures(fitted, tmp_path):
+    cal = tmp_path / "cal.csv"
+    cal.write_text("setpoint_k,temperature_k\n180,182.5\n250,251.5\n300,301.0\n350,350.5\n")
+    text = write_report(fitted, calibration=cal, output=tmp_path / "r.html").read_text(encoding="utf-8")
+    from dnmr.thermometry import read_temperature_calibration
+
+    expected = eyring_fit_file(fitted / "rates.csv", calibration=read_temperature_calibration(cal))[0]
+    assert parse(text).parameters["enthalpy_kj_mol"][0] == pytest.approx(expected.enthalpy_kj_mol, rel=1e-12)
+    assert "corrected by the calibration" in text
+
+
+@pytest.mark.parametrize("content", [None, '{"spectra": [', "[1, 2]", b"\xff\xfe\x00binary"])
+def test_bad_outdir_is_one_line_exit_2(tmp_path, content):
+    if isinstance(content, bytes):
+        (tmp_path / "results.json").write_bytes(content)
+    elif content is not None:
+        (tmp_path / "results.json").write_text(content)
+    proc = subprocess.run([sys.executable, "-c", "from dnmr.cli import main; main()", "report", str(tmp_path)],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert proc.stderr.count("\n") == 1 and "results.json" in proc.stderr and "Traceback" not in proc.stderr
+    assert not (tmp_path / "report.html").exists()
+
+
+def _chromium() -> str | None:
+    return next((p for p in (shutil.which("chromium"), "/usr/bin/chromium", shutil.which("chromium-browser"))
+                 if p and Path(p).exists()), None)
+
+
+def test_report_renders_in_headless_chromium(fitted, report, tmp_path):
+    browser = _chromium()
+    if browser is None:
+        pytest.skip("chromium not installed: .ci/run installs Debian's chromium when apt-get is available")
+    base = [browser, *CHROMIUM_FLAGS, f"--user-data-dir={tmp_path / 'profile'}"]
+    shot = tmp_path / "shot.png"
+    subprocess.run(base + [f"--screenshot={shot}", "--window-size=1200,3000", report.as_uri()],
+                   capture_output=True, timeout=90, check=True)
+    dom = subprocess.run(base + ["--dump-dom", report.as_uri()], capture_output=True, text=True, timeout=90,
+                         check=True).stdout
+    page = parse(dom)
+    assert len(page.images) == len(TEMPERATURES) + 2
+    assert all(src.startswith("data:image/png;base64,") for src in page.images)
+    assert shot.read_bytes().startswith(PNG_SIGNATURE)
+    import matplotlib.image
+
+    pixels = matplotlib.image.imread(shot)[..., :3]
+    assert pixels.shape[:2] == (3000, 1200)
+    dark = (pixels.mean(axis=2) < 0.5).mean()
+    assert 0.005 < dark < 0.5, f"the screenshot is {dark:.1%} dark: not a rendered report"
+    assert np.ptp(pixels) > 0.5
