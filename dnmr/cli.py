@@ -125,9 +125,18 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
 @click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.option("--global", "global_fit", is_flag=True,
+              help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
+@click.option("--shifts", type=click.Choice(["constant", "linear"]), default="constant", show_default=True,
+              help="With --global: shifts the same at every temperature, or linear in T.")
+@click.option("--linewidth", type=click.Choice(["per-spectrum", "linear"]), default="per-spectrum", show_default=True,
+              help="With --global: linewidths per spectrum, or linear in T.")
+@click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="With --global: set-point calibration table (CSV: setpoint_k, temperature_k).")
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool) -> None:
+        workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str,
+        calibration_file: Path | None) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
@@ -135,12 +144,30 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     """
     from .series import fit_series
 
+    if global_fit:
+        _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet, shifts, linewidth,
+                    calibration_file)
+        return
     result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                         progress=False if quiet else None)
     click.echo(result.report())
     for failed in result.failures:
         click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
     ctx.exit(result.exit_status)
+
+
+def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
+                shifts: str, linewidth: str, calibration_file: Path | None) -> None:
+    """`dnmr fit --global`: the global fit (dnmr.globalfit) and its report."""
+    from .globalfit import fit_series_global
+    from .thermometry import read_temperature_calibration
+
+    if resume:
+        raise InputError("--resume is not available with --global", where="--resume")
+    calibration = read_temperature_calibration(calibration_file) if calibration_file else None
+    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, shifts=shifts,
+                               linewidth=linewidth, workers=workers, progress=False if quiet else None)
+    click.echo(result.report())
 
 
 @cli.command()

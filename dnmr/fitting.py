@@ -1042,6 +1042,9 @@ class SpectrumFit:
             params.add(name, value=p["value"], min=_or(p["min"], -np.inf), max=_or(p["max"], np.inf))
             params[name].vary = p["vary"]
             params[name].stderr = _or(p["stderr"], math.nan)
+        for name, p in data["parameters"].items():  # ties last: they may name parameters added later
+            if p.get("expr"):
+                params[name].set(expr=p["expr"])
         layout = ParameterLayout.for_model(model, options)
         fitted = np.array(curves["fit"], float)
         return cls(

@@ -1,0 +1,130 @@
+"""Global fit of a VT series (dnmr.globalfit and `dnmr fit --global`) on an invented two-site series.
+
+The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py),
+not by dnmr's engine, with rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935)) with
+CODATA constants from scipy.constants, for invented activation parameters, plus normal noise.
+"""
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from scipy import constants
+
+from closed_forms import mcconnell_two_site
+from dnmr.cli import cli
+from dnmr.errors import InputError
+from dnmr.globalfit import fit_series_global
+
+SF = 400.0
+ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 55.0, -12.0  # invented
+TEMPERATURES = [262.0, 272.0, 282.0, 292.0, 302.0, 312.0]
+PPM = np.linspace(2.55, 3.45, 1000)
+NOISE = 0.03
+
+MODEL = """title = "invented two-site test system"
+[spectrometer]
+nucleus = "1H"
+frequency_mhz = 400.0
+[[state]]
+name = "a"
+population = 0.5
+linewidth_hz = 1.5
+shifts_ppm = { H = 2.92 }
+[[state]]
+name = "b"
+population = 0.5
+linewidth_hz = 1.5
+shifts_ppm = { H = 3.08 }
+[[exchange]]
+name = "flip"
+from = "a"
+to = "b"
+rate_per_s = 100.0
+"""
+
+
+def eyring_rate(temperature_k: float) -> float:
+    """k = (kB T / h) exp(dS/R) exp(-dH/(R T)), s^-1 (Eyring 1935; CODATA constants)."""
+    t = temperature_k
+    return constants.k * t / constants.h * math.exp(ENTROPY_J_MOL_K / constants.R
+                                                    - ENTHALPY_KJ_MOL * 1e3 / (constants.R * t))
+
+
+@pytest.fixture(scope="module")
+def series_file(tmp_path_factory) -> Path:
+    folder = tmp_path_factory.mktemp("vt")
+    (folder / "model.toml").write_text(MODEL)
+    lines = ['model = "model.toml"', "[fit]", "region_ppm = [2.7, 3.3]", 'linewidth = "shared"']
+    rng = np.random.default_rng(20240611)
+    for t in TEMPERATURES:
+        s = mcconnell_two_site(PPM * SF, 2.92 * SF, 3.08 * SF, eyring_rate(t), 0.5, 1.5, 1.5)
+        y = 40.0 * s.real + 0.1 + rng.normal(0.0, NOISE, PPM.size)
+        name = f"t{t:.0f}.txt"
+        (folder / name).write_text("ppm\tintensity\n" + "\n".join(f"{p:.6f}\t{v:.7f}" for p, v in zip(PPM, y)) + "\n")
+        lines += ["[[spectrum]]", f'file = "{name}"', f"temperature_k = {t}"]
+    (folder / "series.toml").write_text("\n".join(lines) + "\n")
+    return folder / "series.toml"
+
+
+@pytest.fixture(scope="module")
+def result(series_file, tmp_path_factory):
+    return fit_series_global(series_file, tmp_path_factory.mktemp("out") / "g", workers=2, progress=False)
+
+
+def test_recovers_activation_parameters_within_errors(result):
+    # truth: the invented dH‡/dS‡ the spectra were made with (Eyring 1935, CODATA constants)
+    a = result.activation[0]
+    assert abs(a.enthalpy_kj_mol - ENTHALPY_KJ_MOL) < 3 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - ENTROPY_J_MOL_K) < 3 * a.entropy_stderr
+    g, se = a.gibbs(constants.zero_Celsius + 25.0)
+    assert abs(g - (ENTHALPY_KJ_MOL - 298.15 * ENTROPY_J_MOL_K / 1e3)) < 3 * se
+
+
+def test_agrees_with_two_step_eyring(result):
+    # the two routes analyse the same spectra: they must agree within the (larger) error of either
+    a, e = result.activation[0], result.two_step[0]
+    assert abs(a.enthalpy_kj_mol - e.enthalpy_kj_mol) < max(a.enthalpy_stderr, e.enthalpy_stderr)
+    assert abs(a.entropy_j_mol_k - e.entropy_j_mol_k) < max(a.entropy_stderr, e.entropy_stderr)
+
+
+def test_enthalpy_entropy_correlation_near_one(result):
+    # Grieger, Hunter & Krug, Nature 261, 566 (1976): dH‡ and dS‡ of one series correlate close to +1
+    assert result.activation[0].correlation > 0.95
+    # and dG‡ at the harmonic-mean temperature is much better determined than at 298.15 K
+    a = result.activation[0]
+    assert a.gibbs(result.harmonic_mean_temperature_k)[1] < a.gibbs(298.15)[1]
+
+
+def test_outputs_written(result):
+    data = json.loads((result.outdir / "global.json").read_text())
+    for key in ("enthalpy_kj_mol", "enthalpy_stderr", "entropy_j_mol_k", "entropy_stderr", "gibbs_298_kj_mol",
+                "gibbs_298_stderr"):
+        assert math.isfinite(data[key])
+    assert data["enthalpy_kj_mol"] == pytest.approx(result.activation[0].enthalpy_kj_mol)
+    assert {r["quantity"] for r in data["comparison"]} >= {"enthalpy_kj_mol", "entropy_j_mol_k"}
+    assert "two-step" in (result.outdir / "global.txt").read_text()
+    assert (result.outdir / "global_fits.png").stat().st_size > 0
+    assert (result.outdir / "two-step" / "rates.csv").exists()
+
+
+def test_refuses_existing_outdir_and_bad_choice(result, series_file):
+    with pytest.raises(InputError):
+        fit_series_global(series_file, result.outdir)
+    with pytest.raises(InputError):
+        fit_series_global(series_file, result.outdir.parent / "other", shifts="cubic")
+
+
+def test_cli_global(series_file, tmp_path):
+    out = tmp_path / "cli"
+    run = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global", "--quiet",
+                                   "--shifts", "linear", "--linewidth", "linear"])
+    assert run.exit_code == 0, run.output
+    assert json.loads((out / "global.json").read_text())["options"]["shifts"] == "linear"
+    again = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global"])
+    assert again.exit_code == 2
+    assert len(again.output.strip().splitlines()) == 1
