@@ -16,6 +16,7 @@ from .errors import InputError
 from .modelfile import load_model, read_toml
 from .output import atomic_write_text, save_figure
 from .planning import plan_experiment
+from .report import write_report
 from .series import fit_series
 from .solvents import solvent
 from .thermometry import read_temperature_calibration
@@ -64,10 +65,9 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     truth = read_toml(data / "truth.toml")
     echo(f"demo: {model.title}")
     echo("  1/4 fitting the VT series (17 spectra) ...")
-    fitted = fit_series(data / "series.toml", outdir / "fit", overwrite=overwrite,
-                        progress=sys.stderr.isatty() if progress is None else progress)
+    fit_series(data / "series.toml", outdir / "fit", overwrite=overwrite,
+               progress=sys.stderr.isatty() if progress is None else progress)
     written = {"rates": outdir / "fit" / "rates.csv", "fit results": outdir / "fit" / "results.json"}
-    del fitted
 
     echo("  2/4 Eyring analysis on calibrated sample temperatures ...")
     calibration = read_temperature_calibration(data / "calibration.csv")
@@ -86,13 +86,8 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     written["timescale plot"] = save_figure(view.plot(), outdir / "timescale.png", overwrite=overwrite)
 
     echo("  4/4 writing the report ...")
-    try:
-        from .report import write_report
-    except ImportError:  # the report module is optional in a partial install
-        write_report = None
-    if write_report is not None:
-        written["report"] = write_report(outdir / "fit", calibration=data / "calibration.csv",
-                                         output=outdir / "report.html", overwrite=overwrite)
+    written["report"] = write_report(outdir / "fit", calibration=data / "calibration.csv",
+                                     output=outdir / "report.html", overwrite=overwrite)
 
     comparison = {
         "enthalpy_kj_mol": (eyring.enthalpy_kj_mol, eyring.enthalpy_stderr, truth["enthalpy_kj_mol"]),
