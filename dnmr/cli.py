@@ -75,19 +75,33 @@ def _parse_list(text: str, option: str) -> list[float]:
               help="Also draw the spectrum to this image (PNG, SVG or PDF).")
 @click.option("--points", type=click.IntRange(16, 2**22), help="Number of points (overrides the model file).")
 @click.option("--overwrite", is_flag=True, help="Replace existing output files.")
-def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int | None, overwrite: bool) -> None:
+@click.option("--quiet", is_flag=True, help="Print nothing on success.")
+@click.option("--verbose", is_flag=True, help="Also say how the engine evaluated each block, and how long it took.")
+def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int | None, overwrite: bool,
+             quiet: bool, verbose: bool) -> None:
     """Simulate the exchange-broadened spectrum of MODEL_FILE."""
+    import time
+
     from . import load_model, simulate as run
     from .output import save_figure
 
     model = load_model(model_file)
+    started = time.perf_counter()
     spectrum = run(model, points=points)
+    elapsed = time.perf_counter() - started
     spectrum.to_csv(output, overwrite=overwrite)
-    click.echo(f"wrote {output} ({len(spectrum.ppm)} points, {spectrum.ppm.min():.3f}-{spectrum.ppm.max():.3f} ppm)")
+    if verbose:
+        for route in spectrum.terms.routes:
+            click.echo(f"  block: {route}")
+        click.echo(f"  simulated in {elapsed:.3f} s; integral over the window {spectrum.integral():.6g}"
+                   " (population x observed nuclei, less the tails outside the window)")
+    if not quiet:
+        click.echo(f"wrote {output} ({len(spectrum.ppm)} points, {spectrum.ppm.min():.3f}-{spectrum.ppm.max():.3f} ppm)")
     if plot_file:
         ax = spectrum.plot()
         save_figure(ax.figure, plot_file, overwrite=overwrite)
-        click.echo(f"wrote {plot_file}")
+        if not quiet:
+            click.echo(f"wrote {plot_file}")
 
 
 @cli.command()
