@@ -113,11 +113,14 @@ class LineshapeTerms:
         Complex weight of each line (normalisation included).
     direct : list
         Blocks evaluated directly (:class:`SchurBlock`, :class:`ContinuedFraction`).
+    routes : tuple of str
+        How each block was evaluated (for verbose output).
     """
 
     poles: np.ndarray
     amplitudes: np.ndarray
     direct: list = field(default_factory=list)
+    routes: tuple[str, ...] = ()
 
     def evaluate(self, hz: np.ndarray) -> np.ndarray:
         """Complex spectrum S at frequencies `hz` (Hz from 0 ppm): absorption = Re S, dispersion = -Im S."""
@@ -299,15 +302,20 @@ def block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray, weights: n
 
 def combine(blocks) -> LineshapeTerms:
     """Gather the per-block results of :func:`block_terms` into one :class:`LineshapeTerms`."""
-    poles, amps, direct = [], [], []
+    poles, amps, direct, routes = [], [], [], []
     for kind, value in blocks:
         if kind == "lines":
             poles.append(value[0])
             amps.append(value[1])
+            routes.append(f"{len(value[0])} coherences: eigen-lines")
+        elif isinstance(value, SchurBlock):
+            direct.append(value)
+            routes.append(f"{len(value.triangle)} coherences: Schur form (eigenbasis ill-conditioned)")
         else:
             direct.append(value)
+            routes.append(f"Krylov continued fraction, {len(value.alpha)} Lanczos steps")
     if poles:
         p, a = prune(np.concatenate(poles), np.concatenate(amps))
     else:
         p, a = np.zeros(0, complex), np.zeros(0, complex)
-    return LineshapeTerms(p, a, direct)
+    return LineshapeTerms(p, a, direct, tuple(routes))
