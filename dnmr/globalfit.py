@@ -56,7 +56,7 @@ import lmfit
 import numpy as np
 from scipy import optimize, sparse
 
-from .activation import EyringResult, eyring_fit_file
+from .activation import EyringResult, eyring_fit_file, format_with_error
 from .errors import InputError
 from .fitting import (
     NoiseEstimate,
@@ -457,16 +457,16 @@ class GlobalFit:
         for a in self.activation:
             g298, g_hm = a.gibbs(STANDARD_TEMPERATURE_K), a.gibbs(t_hm)
             lines += [f"process {a.process}:",
-                      f"  dH‡ = {a.enthalpy_kj_mol:.2f} ± {a.enthalpy_stderr:.2f} kJ/mol "
-                      f"({a.enthalpy_kj_mol * KCAL_PER_KJ:.2f} ± {a.enthalpy_stderr * KCAL_PER_KJ:.2f} kcal/mol)",
-                      f"  dS‡ = {a.entropy_j_mol_k:.1f} ± {a.entropy_stderr:.1f} J/(mol K)",
+                      f"  dH‡ = {format_with_error(a.enthalpy_kj_mol, a.enthalpy_stderr)} kJ/mol "
+                      f"({format_with_error(a.enthalpy_kj_mol * KCAL_PER_KJ, a.enthalpy_stderr * KCAL_PER_KJ)} kcal/mol)",
+                      f"  dS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
                       f"  correlation of dH‡ and dS‡: {a.correlation:.4f}",
-                      f"  dG‡(298.15 K) = {g298[0]:.2f} ± {g298[1]:.2f} kJ/mol",
-                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {g_hm[0]:.2f} ± {g_hm[1]:.2f} kJ/mol", ""]
+                      f"  dG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
+                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol", ""]
         lines += ["global against two-step (per-temperature rates, then Eyring):",
                   f"  {'process':<14} {'quantity':<30} {'global':>20} {'two-step':>20} {'difference':>11}"]
         for row in self.comparison():
-            fmt = lambda v, s: f"{v:.4g}" + ("" if not math.isfinite(s) else f" ± {s:.2g}")  # noqa: E731
+            fmt = lambda v, s: format_with_error(v, s) if math.isfinite(s) else f"{v:.4f}"  # noqa: E731
             lines.append(f"  {row['process']:<14} {row['quantity']:<30} {fmt(row['global'], row['global_stderr']):>20} "
                          f"{fmt(row['two_step'], row['two_step_stderr']):>20} {row['difference']:>11.3g}")
         lines += ["", "rates from the global fit:", f"  {'T set / K':>9} {'T / K':>8}  {'process':<14} "
