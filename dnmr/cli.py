@@ -146,11 +146,13 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--linewidth", type=click.Choice(["per-spectrum", "linear"]), default="per-spectrum", show_default=True,
               help="With --global: linewidths per spectrum, or linear in T.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
-              help="With --global: set-point calibration table (CSV: setpoint_k, temperature_k).")
+              help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the report's Eyring analysis"
+                   " and the global fit.")
+@click.option("--no-report", is_flag=True, help="Do not write OUTDIR/report.html after the fit.")
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str,
-        calibration_file: Path | None) -> None:
+        calibration_file: Path | None, no_report: bool) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
@@ -167,6 +169,13 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     click.echo(result.report())
     for failed in result.failures:
         click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
+    if not no_report:
+        from .report import write_report
+
+        try:  # the report is derived from the fit: rewritten with each run into this folder
+            click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
+        except InputError as err:
+            click.echo(f"dnmr: warning: no report written: {err}", err=True)
     ctx.exit(result.exit_status)
 
 
