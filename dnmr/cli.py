@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 import sys
 import traceback
+from contextlib import contextmanager
 from pathlib import Path
 
 import click
@@ -67,6 +68,30 @@ def _parse_list(text: str, option: str) -> list[float]:
     return values
 
 
+@contextmanager
+def _block_progress(enabled: bool):
+    """A progress bar over the engine's blocks on stderr, shown only on a terminal and for large systems."""
+    if not (enabled and sys.stderr.isatty()):
+        yield None
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    with Progress(TextColumn("simulating"), BarColumn(), TextColumn("{task.completed}/{task.total} coherences"),
+                  TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
+        task = bar.add_task("simulate", total=None)
+
+        def advance(done: int, total: int) -> None:
+            if total >= LARGE_SYSTEM_COHERENCES:
+                bar.update(task, completed=done, total=total)
+
+        yield advance
+
+
+#: Simulations with at least this many coherences show a progress bar.
+LARGE_SYSTEM_COHERENCES = 2000
+
+
 @cli.command()
 @click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path), required=True,
@@ -87,7 +112,8 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
 
     model = load_model(model_file)
     started = time.perf_counter()
-    spectrum = run(model, points=points)
+    with _block_progress(enabled=not quiet) as progress:
+        spectrum = run(model, points=points, progress=progress)
     elapsed = time.perf_counter() - started
     spectrum.to_csv(output, overwrite=overwrite)
     if verbose:

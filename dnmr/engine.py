@@ -20,6 +20,7 @@ best exact route for the block (eigen-lines, Schur form, or a Krylov continued f
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -134,16 +135,30 @@ def block_start(pattern: BlockPattern, populations: np.ndarray) -> np.ndarray:
     return np.outer(populations, u).ravel() * (4.0 / pattern.block.dimension)
 
 
-def lineshape_terms(model: Model) -> LineshapeTerms:
-    """Decompose the spectrum of `model` into Lorentzian terms and directly evaluated blocks."""
+def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = None) -> LineshapeTerms:
+    """Decompose the spectrum of `model` into Lorentzian terms and directly evaluated blocks.
+
+    Parameters
+    ----------
+    model : Model
+        The model.
+    progress : callable, optional
+        Called as ``progress(done, total)`` (coherences) after each block, for long simulations.
+    """
+    work = [(p, b) for p in spin_systems(model) for b in p.blocks]  # blocks of the independent systems
+    total = sum(b.size * len(p.populations) for p, b in work)
+    done = 0
     results = []
-    for params, block in ((p, b) for p in spin_systems(model) for b in p.blocks):  # independent systems
+    for params, block in work:
         topology = params.topology
         roots = np.sqrt(params.populations)
         pattern = block_pattern(block, topology)
         L = block_liouvillian(pattern, params)
         start = block_start(pattern, params.populations)
         results.append(block_terms(L, pattern.detect, start, np.repeat(roots, block.size)))
+        done += block.size * len(params.populations)
+        if progress is not None:
+            progress(done, total)
     return combine(results)
 
 

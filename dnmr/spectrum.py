@@ -85,6 +85,7 @@ def simulate(
     *,
     window_ppm: tuple[float, float] | None = None,
     points: int | None = None,
+    progress=None,
 ) -> Spectrum:
     """Simulate the exchange-broadened spectrum of `model`.
 
@@ -98,6 +99,8 @@ def simulate(
         Override the model's window (ppm, either order).
     points : int, optional
         Override the number of points.
+    progress : callable, optional
+        ``progress(done, total)`` after each block of coherences (for a progress bar on large systems).
 
     Returns
     -------
@@ -110,7 +113,7 @@ def simulate(
         grid = grid[::-1]
     if np.any(grid[1:] <= grid[:-1]):
         grid = np.unique(grid)
-    terms = lineshape_terms(model)
+    terms = lineshape_terms(model, progress)
     return Spectrum(grid, terms.absorption(grid * sf), sf, model.title, terms)
 
 

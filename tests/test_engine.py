@@ -296,3 +296,13 @@ def test_krylov_and_eigen_routes_agree_on_six_coupled_spins(monkeypatch):
     eigen = engine.lineshape_terms(model)
     assert not eigen.direct
     assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-9
+
+
+def test_progress_reports_every_coherence_once():
+    """The progress callback (for long simulations) ends at the total number of coherences,
+    C(2N, N-1) per state for N spins-1/2 (PHYSICS.md: 792 for six spins)."""
+    calls = []
+    names = [f"H{i}" for i in range(6)]
+    state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)}, linewidth_hz=1.0, population=1)
+    engine.lineshape_terms(dnmr.Model(dnmr.Spectrometer(SF), [state]), progress=lambda d, t: calls.append((d, t)))
+    assert calls[-1] == (792, 792) and [d for d, _ in calls] == sorted(d for d, _ in calls)
