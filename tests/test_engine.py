@@ -303,6 +303,7 @@ def test_progress_reports_every_coherence_once():
     C(2N, N-1) per state for N spins-1/2 (PHYSICS.md: 792 for six spins)."""
     calls = []
     names = [f"H{i}" for i in range(6)]
-    state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)}, linewidth_hz=1.0, population=1)
+    chain = {f"{a}-{b}": 7.0 for a, b in zip(names, names[1:])}  # coupled: one system, not six
+    state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)}, chain, linewidth_hz=1.0, population=1)
     engine.lineshape_terms(dnmr.Model(dnmr.Spectrometer(SF), [state]), progress=lambda d, t: calls.append((d, t)))
     assert calls[-1] == (792, 792) and [d for d, _ in calls] == sorted(d for d, _ in calls)
