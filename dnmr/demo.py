@@ -12,9 +12,8 @@ from importlib import resources
 from pathlib import Path
 
 from .activation import eyring_fit_file, results_to_dict
-from .errors import InputError
 from .modelfile import load_model, read_toml
-from .output import atomic_write_text, save_figure
+from .output import atomic_write_text, new_output_folder, save_figure
 from .planning import plan_experiment
 from .report import write_report
 from .series import fit_series
@@ -39,13 +38,6 @@ def _json(obj) -> str:
     return json.dumps(_json_safe(obj), indent=2) + "\n"
 
 
-def _new_folder(outdir: Path, overwrite: bool) -> None:
-    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
-        raise InputError(f"{outdir} already exists and is not empty; choose a new folder or pass --overwrite",
-                         where="OUTDIR")
-    outdir.mkdir(parents=True, exist_ok=True)
-
-
 def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: bool | None = None) -> dict:
     """Run the whole job on the demo data into `outdir`; returns what was written and the comparison.
 
@@ -59,7 +51,7 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
         Show a progress bar during the series fit (default: when stderr is a terminal).
     """
     outdir = Path(outdir)
-    _new_folder(outdir, overwrite)
+    new_output_folder(outdir, overwrite)
     data = demo_data_dir()
     model = load_model(data / "model.toml")
     truth = read_toml(data / "truth.toml")

@@ -45,3 +45,24 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150) 
     buf = io.BytesIO()
     fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
     return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+
+
+def new_output_folder(path: str | Path, overwrite: bool = False, inputs=()) -> Path:
+    """Create `path` as a folder for results.
+
+    Refuses a folder that already holds files (unless `overwrite`), a file, and a folder inside any of
+    the folders in `inputs` (results are never written among the inputs).
+    """
+    path = Path(path).resolve()
+    for folder in inputs:
+        folder = Path(folder).resolve()
+        if folder == path or folder in path.parents:
+            raise InputError(f"{path} lies inside {folder}, among the inputs; name an output folder elsewhere",
+                             where="output")
+    if path.exists() and not path.is_dir():
+        raise InputError(f"{path} is a file; name a folder for the results", where="output")
+    if path.is_dir() and any(path.iterdir()) and not overwrite:
+        raise InputError(f"{path} already exists and is not empty; choose a new folder or pass --overwrite",
+                         where="output")
+    path.mkdir(parents=True, exist_ok=True)
+    return path

@@ -101,7 +101,7 @@ def test_script_refuses_a_folder_that_holds_files(tmp_path):
     (out / "result.txt").write_text("an earlier result\n")
     done = run_script(script_of("two_site_unequal"), str(out), cwd=tmp_path)
     assert done.returncode == 2
-    assert "already exists and is not an empty folder" in done.stderr and "Traceback" not in done.stderr
+    assert "already exists and is not empty" in done.stderr and "Traceback" not in done.stderr
     assert [p.name for p in out.iterdir()] == ["result.txt"]
     assert (out / "result.txt").read_text() == "an earlier result\n"
 

@@ -12,28 +12,19 @@
 # Run:  python conformers_couplings.py [OUTDIR]     (default: ./conformers_couplings-output, a new folder)
 
 # %%
-# Where the results go: the folder named on the command line, checked before anything is computed.
+# Where the results go: the folder named on the command line (default below), which must be new or empty.
 import sys
 from pathlib import Path
 
+from dnmr.errors import InputError
+from dnmr.output import new_output_folder
+
 HERE = Path(__file__).resolve().parent if "__file__" in globals() else Path.cwd()
-INPUTS = HERE.parent if HERE.parent.name == "examples" else HERE  # never write among the inputs
-
-
-def output_folder(default: str) -> Path:
-    """The folder named on the command line (else ./`default`): new or empty, and not among the inputs."""
-    out = Path(sys.argv[1] if len(sys.argv) > 1 and not sys.argv[1].startswith("-") else default).resolve()
-    problem = (f"lies inside {INPUTS}, among the inputs" if INPUTS in (out, *out.parents) else
-               "already exists and is not an empty folder" if out.exists() and not (out.is_dir() and not any(out.iterdir())) else "")
-    if problem:
-        print(f"error: {out} {problem}; name a new output folder elsewhere (on the command line,"
-              " or in the call below)", file=sys.stderr)
-        sys.exit(2)
-    out.mkdir(parents=True, exist_ok=True)
-    return out
-
-
-OUT = output_folder("conformers_couplings-output")
+try:  # never among the inputs, never over earlier results
+    OUT = new_output_folder(sys.argv[1] if len(sys.argv) > 1 else "conformers_couplings-output", inputs=[HERE.parent])
+except InputError as err:
+    print(f"error: {err}", file=sys.stderr)
+    sys.exit(2)
 
 # %%
 import shutil
