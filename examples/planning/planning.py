@@ -20,7 +20,8 @@ from dnmr.output import new_output_folder
 
 HERE = Path(__file__).resolve().parent if "__file__" in globals() else Path.cwd()
 try:  # never among the inputs, never over earlier results
-    OUT = new_output_folder(sys.argv[1] if len(sys.argv) > 1 else "planning-output", inputs=[HERE.parent])
+    arg = sys.argv[1] if len(sys.argv) > 1 and not sys.argv[1].startswith("-") else None  # notebooks pass -f
+    OUT = new_output_folder(arg or "planning-output", inputs=[HERE] if "__file__" in globals() else [])
 except InputError as err:
     print(f"error: {err}", file=sys.stderr)
     sys.exit(2)
