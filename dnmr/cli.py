@@ -14,6 +14,7 @@ from pathlib import Path
 import click
 
 from .errors import InputError
+from .output import json_ready
 
 
 class _Group(click.Group):
@@ -40,22 +41,8 @@ def cli(ctx: click.Context, debug: bool) -> None:
 
 
 def print_json(obj) -> None:
-    """Print one JSON object on stdout (NaN written as null)."""
-    click.echo(json.dumps(_json_safe(obj), indent=2))
-
-
-def _json_safe(obj):
-    if isinstance(obj, dict):
-        return {str(k): _json_safe(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_json_safe(v) for v in obj]
-    if hasattr(obj, "item") and not isinstance(obj, (str, bytes)):
-        obj = obj.item()
-    if isinstance(obj, float) and obj != obj:
-        return None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
+    """Print one JSON object on stdout (NaN and infinities written as null)."""
+    click.echo(json.dumps(json_ready(obj), indent=2))
 
 
 def _parse_list(text: str, option: str) -> list[float]:

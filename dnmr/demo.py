@@ -7,13 +7,14 @@ with the invented truth the demo spectra were made from (`dnmr/data/demo/truth.t
 """
 from __future__ import annotations
 
+import json
 import sys
 from importlib import resources
 from pathlib import Path
 
 from .activation import eyring_fit_file, results_to_dict
 from .modelfile import load_model, read_toml
-from .output import atomic_write_text, new_output_folder, save_figure
+from .output import atomic_write_text, json_ready, new_output_folder, save_figure
 from .planning import plan_experiment
 from .report import write_report
 from .series import fit_series
@@ -31,11 +32,7 @@ def demo_data_dir() -> Path:
 
 
 def _json(obj) -> str:
-    import json
-
-    from .cli import _json_safe
-
-    return json.dumps(_json_safe(obj), indent=2) + "\n"
+    return json.dumps(json_ready(obj), indent=2) + "\n"
 
 
 def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: bool | None = None) -> dict:

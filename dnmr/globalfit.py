@@ -74,8 +74,8 @@ from .kinetics import (
     boltzmann_populations,
     eyring_rate_from_enthalpy,
 )
-from .output import atomic_write_text, save_figure
-from .series import Series, SeriesFit, _plain, fit_series, load_series
+from .output import atomic_write_text, json_ready, save_figure
+from .series import Series, SeriesFit, fit_series, load_series
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -554,7 +554,7 @@ def _write(result: GlobalFit, overwrite: bool) -> None:
     import matplotlib.pyplot as plt
 
     outdir = result.outdir
-    atomic_write_text(outdir / "global.json", json.dumps(_plain(result.to_dict()), indent=1, allow_nan=False) + "\n",
+    atomic_write_text(outdir / "global.json", json.dumps(json_ready(result.to_dict()), indent=1, allow_nan=False) + "\n",
                       overwrite=overwrite)
     atomic_write_text(outdir / "global.txt", result.report() + "\n", overwrite=overwrite)
     fig = result.plot()

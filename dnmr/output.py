@@ -1,9 +1,13 @@
 """Writing results safely: atomically, and never over an existing file unless asked."""
 from __future__ import annotations
 
+import math
 import os
 import tempfile
+from collections.abc import Mapping
 from pathlib import Path
+
+import numpy as np
 
 from .errors import InputError
 
@@ -66,3 +70,20 @@ def new_output_folder(path: str | Path, overwrite: bool = False, inputs=()) -> P
                          where="output")
     path.mkdir(parents=True, exist_ok=True)
     return path
+
+
+def json_ready(obj):
+    """JSON-ready: numpy scalars and arrays to Python, NaN and infinities to None, paths and tuples plain."""
+    if isinstance(obj, Mapping):
+        return {str(k): json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_ready(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return json_ready(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj

@@ -73,7 +73,7 @@ from .fitting import FitOptions, SpectrumFit, fit_parameters, fit_spectrum, sing
 from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
 from .modelfile import check_keys, load_model, read_toml
-from .output import atomic_write_text, save_figure
+from .output import atomic_write_text, json_ready, save_figure
 from .readers import read_spectrum
 from .tables import check_kelvin
 
@@ -320,7 +320,7 @@ def _job(series: Series, index: int, stage: str, options: FitOptions, hashes: Ma
     identity = {"spectrum": hashes[index], "file": str(s.file), "temperature_k": s.temperature_k,
                 "frequency_mhz": s.frequency_mhz, "axis": s.axis, "options": options.to_dict(),
                 "model": hashes["model"], "stage": stage, "dnmr": __version__}
-    key = hashlib.sha256(json.dumps(_plain(identity), sort_keys=True).encode()).hexdigest()
+    key = hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
     return _Job(index, stage, s, options, key)
 
 
@@ -611,25 +611,8 @@ def _rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) ->
 # running a series
 
 
-def _plain(obj):
-    """JSON-ready: numpy scalars to Python, NaN and infinities to None, paths and tuples plain."""
-    if isinstance(obj, Mapping):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _plain(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
-
-
 def _write_json(path: Path, data) -> None:
-    atomic_write_text(path, json.dumps(_plain(data), indent=1, allow_nan=False) + "\n", overwrite=True)
+    atomic_write_text(path, json.dumps(json_ready(data), indent=1, allow_nan=False) + "\n", overwrite=True)
 
 
 class _Runner:
