@@ -77,6 +77,7 @@ NARROW_SPAN_K = 30.0  # common practice: a narrower span leaves dS‡ poorly det
 FEW_RATES = 4
 OUTLIER_THRESHOLD = 3.0  # common practice for studentised residuals
 MAX_RELATIVE_TEMPERATURE_ERROR = 0.2
+LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its residual cannot be judged
 
 
 class Estimate(NamedTuple):
@@ -986,20 +987,26 @@ def _studentised(x: np.ndarray, y: np.ndarray, w: np.ndarray, extra_var: np.ndar
 
     With known errors e / sqrt((1/w + extra_var)(1 - h)) (extra_var: a point's temperature error seen
     in y); otherwise externally studentised, e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter
-    without point i.
+    without point i. A point of leverage h = 1 (each of two points, or one whose weight dwarfs the
+    others') fixes the line through itself: its residual is zero whatever the data, has no variance
+    left (1 - h is zero, or a rounding error either side of it) and cannot be judged, so it gets NaN.
     """
     a, b = _line(x, y, w)
     e = y - a - b * x
     normal = _normal_covariance(x, w)
     keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
+    judged = keep > LEVERAGE_TOLERANCE
+    out = np.full_like(e, np.nan)
     if known:
-        return e / np.sqrt((1.0 / w + extra_var) * keep)
+        out[judged] = e[judged] / np.sqrt((1.0 / w + extra_var)[judged] * keep[judged])
+        return out
     dof = len(x) - 3
     if dof <= 0:
-        return np.full_like(e, np.nan)
-    deleted_ss = (w * e**2).sum() - w * e**2 / keep
+        return out
+    deleted_ss = (w * e**2).sum() - w[judged] * e[judged] ** 2 / keep[judged]
     with np.errstate(divide="ignore", invalid="ignore"):  # exact data: 0/0, no residual to judge
-        return e * np.sqrt(w) / np.sqrt(deleted_ss / dof * keep)
+        out[judged] = e[judged] * np.sqrt(w[judged]) / np.sqrt(deleted_ss / dof * keep[judged])
+    return out
 
 
 def _outlier_flags(x: np.ndarray, y: np.ndarray, w: np.ndarray, extra_var: np.ndarray, known: bool, threshold: float) -> np.ndarray:

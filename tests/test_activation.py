@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -161,6 +162,20 @@ def test_studentised_residuals_with_given_errors_match_whitened_statsmodels():
     ref = sm.OLS(y * w, x * w[:, None]).fit()
     hat = OLSInfluence(ref).hat_matrix_diag
     assert result.studentised_residuals == pytest.approx(ref.resid / np.sqrt(1 - hat), rel=1e-8)
+
+
+def test_points_that_fix_the_line_have_no_studentised_residual_and_no_warning():
+    # reference library: statsmodels gives leverage h = 1 to both points of a two-point line (the hat
+    # values sum to the 2 parameters), so 1 - h = 0 and the residual cannot be studentised; dnmr must say
+    # NaN without a numpy warning, with and without rate errors
+    t = np.array([250.0, 290.0])
+    k = eyring_k(TRUE_DH, TRUE_DS, t) * np.array([1.03, 0.98])
+    x, y = _design(t, k)
+    assert OLSInfluence(sm.OLS(y, x).fit()).hat_matrix_diag == pytest.approx([1.0, 1.0])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        for errors in (0.05 * k, None):
+            assert np.isnan(eyring_fit(t, k, errors).studentised_residuals).all()
 
 
 # ---------------------------------------------------------------------------------------------
