@@ -37,7 +37,7 @@ from scipy.optimize import brentq
 
 from .errors import InputError
 from .kinetics import KCAL_PER_KJ, exchange_jumps, eyring_rate_from_enthalpy
-from .model import Exchange, Model, Spectrometer, State, coupling_key
+from .model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
 DEFAULT_DETECTABLE_FRACTION = 0.1
@@ -389,6 +389,8 @@ class EquivalenceGroup:
         The group split into sets that also couple alike to every other spin (magnetic equivalence).
     by_exchange : bool
         True when exchange carries the spins into one another; False when the shifts merely coincide.
+    nuclei : int
+        Number of nuclei in the group, each member of an equivalent group (``Model.groups``) counted.
     """
 
     state: str
@@ -396,6 +398,7 @@ class EquivalenceGroup:
     shift_ppm: float
     magnetic_classes: tuple[tuple[str, ...], ...]
     by_exchange: bool
+    nuclei: int
 
     @property
     def magnetically_equivalent(self) -> bool:
@@ -410,11 +413,11 @@ class EquivalenceGroup:
         else:
             classes = "; ".join(", ".join(c) for c in self.magnetic_classes)
             kind = f"chemically equivalent only (magnetically equivalent sets: {classes})"
-        return f"{', '.join(self.spins)} at {self.shift_ppm:.4f} ppm: {kind}, {how}"
+        return f"{', '.join(self.spins)} ({self.nuclei} nuclei) at {self.shift_ppm:.4f} ppm: {kind}, {how}"
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready)."""
-        return {"state": self.state, "spins": list(self.spins), "shift_ppm": self.shift_ppm,
+        return {"state": self.state, "spins": list(self.spins), "nuclei": self.nuclei, "shift_ppm": self.shift_ppm,
                 "magnetically_equivalent": self.magnetically_equivalent,
                 "magnetic_classes": [list(c) for c in self.magnetic_classes], "by_exchange": self.by_exchange}
 
@@ -540,15 +543,26 @@ def _weights(configs: Iterable[tuple[int, tuple]], populations: np.ndarray) -> d
 
 
 def _magnetic_classes(spins: Sequence[str], all_spins: Sequence[str], coupling) -> tuple[tuple[str, ...], ...]:
-    """Split chemically equivalent `spins` into sets coupling alike to every spin outside the pair."""
-    def alike(x, y):
-        return all(abs(coupling(x, z) - coupling(y, z)) <= COUPLING_TOLERANCE_HZ for z in all_spins if z not in (x, y))
+    """Split chemically equivalent `spins` into the largest sets whose members couple alike to every spin
+    outside their set (magnetic equivalence); couplings inside a set do not matter.
 
-    classes: list[list[str]] = []
-    for spin in spins:
-        home = next((c for c in classes if alike(c[0], spin)), None)
-        (home.append(spin) if home is not None else classes.append([spin]))
-    return tuple(tuple(c) for c in classes)
+    The sets start as one and are split by the couplings to the spins outside each set until no set
+    splits any more.
+    """
+    classes: list[list[str]] = [list(spins)]
+    while True:
+        refined: list[list[str]] = []
+        for cls in classes:
+            outside = [z for z in all_spins if z not in cls]
+            parts: list[list[str]] = []
+            for spin in cls:
+                home = next((p for p in parts if all(abs(coupling(p[0], z) - coupling(spin, z)) <= COUPLING_TOLERANCE_HZ
+                                                     for z in outside)), None)
+                (home.append(spin) if home is not None else parts.append([spin]))
+            refined += parts
+        if len(refined) == len(classes):
+            return tuple(tuple(c) for c in refined)
+        classes = refined
 
 
 def _shift_groups(shifts: dict[str, float]) -> list[list[str]]:
@@ -561,11 +575,17 @@ def _shift_groups(shifts: dict[str, float]) -> list[list[str]]:
 
 
 def _averaged_state(model: Model, configs: dict, weights: dict, name: str) -> tuple[State, dict]:
-    """The averaged State of one group of configurations, and each spin's orbit (set of places)."""
-    spins = model.spins
+    """The averaged State of one group of configurations, and each spin's orbit (set of places).
+
+    Relabellings run over ``model.all_spins`` (observed spins, then heteronuclei), so couplings to
+    heteronuclei are followed through the mappings and averaged like any other coupling; only observed
+    spins have shifts.
+    """
+    spins, observed = model.all_spins, len(model.spins)
     shifts, couplings, widths = model.shifts_hz(), model.states, model.linewidths_hz()
     sf = model.spectrometer.frequency_mhz
-    avg_shift = {x: sum(w * shifts[a][sigma[i]] for (a, sigma), w in weights.items()) / sf for i, x in enumerate(spins)}
+    avg_shift = {x: sum(w * shifts[a][sigma[i]] for (a, sigma), w in weights.items()) / sf
+                 for i, x in enumerate(spins[:observed])}
     avg_coupling, largest = {}, {}
     for (i, x), (j, y) in combinations(enumerate(spins), 2):
         values = [(w, couplings[a].coupling(spins[sigma[i]], spins[sigma[j]])) for (a, sigma), w in weights.items()]
@@ -581,18 +601,25 @@ def _averaged_state(model: Model, configs: dict, weights: dict, name: str) -> tu
     return state, {"orbits": orbits, "largest": largest, "averaged": avg_coupling}
 
 
-def _equivalences(state: State, spins: Sequence[str], extra: dict) -> tuple[list[EquivalenceGroup], list[HiddenCoupling]]:
+def _equivalences(model: Model, state: State, extra: dict) -> tuple[list[EquivalenceGroup], list[HiddenCoupling]]:
+    """Equivalent spins of an averaged `state` of `model` and the couplings that no longer show.
+
+    Magnetic equivalence compares the couplings to every other spin, heteronuclei included (two protons
+    that couple differently to one fluorine are not magnetically equivalent).  A coupling that averages
+    to zero is reported only where it joins an observed spin (couplings among heteronuclei never show).
+    """
     groups, hidden = [], []
     for members in _shift_groups(dict(state.shifts_ppm)):
-        classes = _magnetic_classes(members, spins, state.coupling)
+        classes = _magnetic_classes(members, model.all_spins, state.coupling)
         by_exchange = len({extra["orbits"][m] for m in members}) == 1
-        groups.append(EquivalenceGroup(state.name, tuple(members), state.shifts_ppm[members[0]], classes, by_exchange))
+        groups.append(EquivalenceGroup(state.name, tuple(members), state.shifts_ppm[members[0]], classes, by_exchange,
+                                       sum(model.group_size(m) for m in members)))
         for cls in classes:
             hidden += [HiddenCoupling(state.name, (x, y), state.coupling(x, y), "equivalent nuclei")
                        for x, y in combinations(cls, 2) if abs(state.coupling(x, y)) > COUPLING_TOLERANCE_HZ]
     for key, value in extra["averaged"].items():
-        if abs(value) <= COUPLING_TOLERANCE_HZ < extra["largest"][key]:
-            x, y = key.split("-", 1)
+        x, y = parse_coupling_key(key)
+        if abs(value) <= COUPLING_TOLERANCE_HZ < extra["largest"][key] and (x in state.shifts_ppm or y in state.shifts_ppm):
             hidden.append(HiddenCoupling(state.name, (x, y), 0.0, "averages to zero"))
     return groups, hidden
 
@@ -623,12 +650,12 @@ def fast_exchange_limit(model: Model, processes: Iterable[int] | None = None) ->
     for start in range(len(model.states)):
         if start in done:
             continue
-        configs = _configurations(start, jumps, len(model.spins))
+        configs = _configurations(start, jumps, len(model.all_spins))
         members = sorted({a for a, _ in configs})
         done.update(members)
         label = "+".join(model.states[a].name for a in members)
         state, extra = _averaged_state(model, configs, _weights(configs, populations), label)
-        found, gone = _equivalences(state, model.spins, extra)
+        found, gone = _equivalences(model, state, extra)
         states.append(state), merged.append(tuple(model.states[a].name for a in members))
         groups += found
         hidden += gone
@@ -657,7 +684,8 @@ class PairAtField:
     frequency_mhz : float
         Frequency of the observed nucleus (MHz).
     shift_difference_hz : float
-        Separation of the two signals (Hz).
+        Shift of the place the nucleus arrives at minus that of the place it leaves (Hz); the sign says
+        which signal lies higher.  Reports quote its magnitude, :attr:`separation_hz`.
     """
 
     pair: ExchangingPair
@@ -665,10 +693,16 @@ class PairAtField:
     frequency_mhz: float
     shift_difference_hz: float
 
+    @property
+    def separation_hz(self) -> float:
+        """Separation |dnu| of the two signals (Hz)."""
+        return abs(self.shift_difference_hz)
+
     def to_dict(self) -> dict:
-        """Plain dict (JSON-ready); `frequency_mhz` is the field as its 1H frequency."""
+        """Plain dict (JSON-ready); `frequency_mhz` is the field as its 1H frequency, `shift_difference_hz`
+        is signed (arriving minus leaving) and `separation_hz` its magnitude."""
         return {**self.pair.to_dict(), "frequency_mhz": self.proton_mhz, "observed_frequency_mhz": self.frequency_mhz,
-                "shift_difference_hz": self.shift_difference_hz}
+                "shift_difference_hz": self.shift_difference_hz, "separation_hz": self.separation_hz}
 
 
 @dataclass(frozen=True)
@@ -793,11 +827,11 @@ class TimescaleView:
         lines = [f"NMR timescale (criterion: exchange broadening of {f:g} x the intrinsic linewidth)"]
         for name, act in self.activations.items():
             lines.append(f"  {name}: {act.describe()}")
-        lines.append(f"  {'1H MHz':>7}  {'signals':<34} {'dnu/Hz':>9} {'slow k<':>10} {'fast k>':>10}"
+        lines.append(f"  {'1H MHz':>7}  {'signals':<34} {'|dnu|/Hz':>9} {'slow k<':>10} {'fast k>':>10}"
                      f" {'slow T<':>8} {'fast T>':>8}")
         for p in self.pairs:
             lines.append(f"  {p.proton_mhz:7.1f}  {p.pair.process_name + ': ' + p.pair.label:<34}"
-                         f" {p.shift_difference_hz:9.2f} {p.window.slow_rate_per_s:10.3g} {p.window.fast_rate_per_s:10.3g}"
+                         f" {p.separation_hz:9.2f} {p.window.slow_rate_per_s:10.3g} {p.window.fast_rate_per_s:10.3g}"
                          f" {_kelvin(p.slow_below_k):>8} {_kelvin(p.fast_above_k):>8}"
                          + ("  (no intermediate window)" if p.window.is_empty else ""))
         lines += ["  rates are forward rate constants in s^-1; temperatures in K", ""]

@@ -240,3 +240,132 @@ rate_per_s = 5.0
     assert figure.stat().st_size > 0
     bad = CliRunner().invoke(cli, ["timescale", str(path), "--enthalpy-kj-mol", "60"])
     assert bad.exit_code == 2 and len(bad.stderr.strip().splitlines()) == 1
+
+
+# --- heteronuclear partners and equivalent groups in the averaged system --------------------------
+
+def hetero_hop(rate=10.0):
+    """Invented proton hopping between two conformers with different couplings to a 19F and a 31P."""
+    return Model(Spectrometer(SF), (State("a", {"H": 3.0}, {"H-F": 40.0, "H-P": 8.0}, 1.0, 0.6),
+                                    State("b", {"H": 3.5}, {"H-F": 10.0, "H-P": 12.0}, 1.0, 0.4)),
+                 (Exchange("a", "b", rate_per_s=rate, name="hop"),), heteronuclei={"F": "19F", "P": "31P"})
+
+
+def test_averaged_model_keeps_and_averages_heteronuclear_couplings():
+    # McConnell (1958) fast limit for each heteronuclear spin configuration (m is conserved across
+    # nuclei in the weak-coupling limit): one line at the weighted shift, split by the weighted couplings;
+    # a doublet of doublets of four equal lines (first-order multiplet, common practice).
+    (state,) = averaged_model(hetero_hop()).states
+    j_hf, j_hp = 0.6 * 40.0 + 0.4 * 10.0, 0.6 * 8.0 + 0.4 * 12.0
+    assert state.coupling("H", "F") == pytest.approx(j_hf, rel=1e-12)
+    assert state.coupling("H", "P") == pytest.approx(j_hp, rel=1e-12)
+    hz = np.linspace(1230.0, 1330.0, 4001) + 0.01
+    centre = 0.6 * 1200.0 + 0.4 * 1400.0
+    positions = [centre + sf * j_hf / 2 + sp * j_hp / 2 for sf in (-1, 1) for sp in (-1, 1)]
+    expected = lorentzian_lines(hz, positions, [0.25] * 4, 1.0).real
+    averaged = simulate(averaged_model(hetero_hop()), hz / SF).intensity
+    assert averaged == pytest.approx(expected, rel=1e-9, abs=1e-12)
+    # the exact engine far into fast exchange (k = 1e8 s^-1) approaches it: excess width ~1e-3 Hz
+    exact = simulate(hetero_hop(rate=1e8), hz / SF).intensity
+    assert np.abs(exact - averaged).max() < 3e-3 * averaged.max()
+
+
+def hetero_aa_xx(j_aa=-3.0, rate=1.0):
+    """Invented A2X2 fragment, X = 19F: the exchange swaps A1/A2 and F1/F2 together."""
+    couplings = {"A1-A2": j_aa, "A1-F1": 50.0, "A2-F2": 50.0, "A1-F2": 5.0, "A2-F1": 5.0}
+    return Model(Spectrometer(SF), (State("c", {"A1": 3.0, "A2": 3.2}, couplings, 1.0, 1.0),),
+                 (Exchange("c", "c", {"A1": "A2", "A2": "A1", "F1": "F2", "F2": "F1"}, rate_per_s=rate,
+                           name="flip"),), heteronuclei={"F1": "19F", "F2": "19F"})
+
+
+def test_couplings_to_heteronuclei_decide_magnetic_equivalence():
+    # Pople, Schneider & Bernstein (1959): A1 and A2 share their averaged shift but couple differently to
+    # F1 (50 and 5 Hz), so they are only chemically equivalent (AA'XX'), and J(A1,A2) still shows.
+    limit = fast_exchange_limit(hetero_aa_xx())
+    (group,) = limit.groups
+    assert group.spins == ("A1", "A2") and group.nuclei == 2
+    assert group.magnetic_classes == (("A1",), ("A2",))
+    assert limit.hidden_couplings == ()
+    (state,) = limit.model.states
+    assert state.coupling("A1", "F1") == pytest.approx(50.0) and state.coupling("A1", "F2") == pytest.approx(5.0)
+    grid = np.linspace(2.9, 3.3, 4001)
+    averaged = simulate(limit.model, grid).intensity
+    other = simulate(averaged_model(hetero_aa_xx(j_aa=-9.0)), grid).intensity
+    assert np.abs(averaged - other).max() > 1e-2 * averaged.max()
+    # the exact engine far into fast exchange agrees with the averaged system
+    exact = simulate(hetero_aa_xx(rate=1e8), grid).intensity
+    assert np.abs(exact - averaged).max() < 3e-3 * averaged.max()
+
+
+def methyl_conformers(rate=10.0):
+    """Invented CH3-CH fragment in two conformers (0.7 / 0.3) with different vicinal couplings."""
+    return Model(Spectrometer(SF), (State("a", {"Me": 1.0, "H": 6.9}, {"Me-H": 7.0}, 1.0, 0.7),
+                                    State("b", {"Me": 1.2, "H": 7.1}, {"Me-H": 5.0}, 1.0, 0.3)),
+                 (Exchange("a", "b", rate_per_s=rate, name="turn"),), groups={"Me": 3})
+
+
+def test_averaged_methyl_next_to_one_proton_is_a_quartet_and_a_doublet():
+    # First-order multiplets (common practice): the proton a 1:3:3:1 quartet spaced by the averaged
+    # J = 0.7 * 7 + 0.3 * 5 Hz, the methyl a 1:1 doublet of intensity 3, at the weighted shifts
+    # (McConnell (1958) fast limit).  J / dnu = 0.003 here: second-order line shifts (J^2 / dnu ~ 0.02 Hz)
+    # and the roof effect (~J / dnu in the intensities) bound the agreement.
+    from dnmr.engine import lineshape_terms
+
+    model = averaged_model(methyl_conformers())
+    (state,) = model.states
+    j = 0.7 * 7.0 + 0.3 * 5.0
+    assert state.coupling("Me", "H") == pytest.approx(j, rel=1e-12)
+    terms = lineshape_terms(model)
+    freq, area = terms.line_frequencies_hz, terms.amplitudes.real / 2
+    for centre, offsets, areas in ((0.7 * 6.9 + 0.3 * 7.1, [-1.5, -0.5, 0.5, 1.5], np.array([1, 3, 3, 1]) / 8),
+                                   (0.7 * 1.0 + 0.3 * 1.2, [-0.5, 0.5], [1.5, 1.5])):
+        expected = centre * SF + j * np.array(offsets)
+        near = (area > 1e-6) & (np.abs(freq - centre * SF) < 3 * j)
+        assert np.abs(freq[near][:, None] - expected[None, :]).min(axis=1).max() < 0.05
+        bins = [area[near & (np.abs(freq - f) < 0.05)].sum() for f in expected]
+        assert np.allclose(bins, areas, rtol=0.03)
+    # and the exact engine far into fast exchange agrees
+    grid = np.linspace(0.9, 7.2, 20001)
+    averaged = simulate(model, grid).intensity
+    exact = simulate(methyl_conformers(rate=1e9), grid).intensity
+    assert np.abs(exact - averaged).max() < 3e-3 * averaged.max()
+
+
+def test_methyl_groups_give_the_timescale_of_the_same_system_written_spin_by_spin():
+    # Invented N,N-dimethyl fragment: MeE and MeZ trade places, MeE couples 1.2 Hz to a 19F.  Written
+    # nucleus by nucleus (tests/test_groups.py) it is six protons; the pairs, their windows and the
+    # averaged system must agree (its six protons equivalent, counted as six nuclei either way).
+    from test_groups import written_out_model
+
+    state = State("s", {"MeE": 2.94, "MeZ": 3.05}, {"MeE-F": 1.2}, 0.8, 1.0)
+    grouped = Model(Spectrometer(SF), (state,), (Exchange("s", "s", {"MeE": "MeZ", "MeZ": "MeE"}, rate_per_s=1.0),),
+                    groups={"MeE": 3, "MeZ": 3}, heteronuclei={"F": "19F"})
+    spins = written_out_model(grouped.replace(heteronuclei={}, states=(State("s", state.shifts_ppm, {}, 0.8, 1.0),)))
+    member_couplings = {**spins.states[0].couplings_hz, **{f"MeE{i}-F": 1.2 for i in (1, 2, 3)}}
+    spins = spins.replace(states=(State("s", spins.states[0].shifts_ppm, member_couplings, 0.8, 1.0),),
+                          heteronuclei={"F": "19F"})
+    (pair,) = exchanging_pairs(grouped)
+    windows = {(rate_window(spins, p).slow_rate_per_s, rate_window(spins, p).fast_rate_per_s)
+               for p in exchanging_pairs(spins)}
+    assert windows == {(rate_window(grouped, pair).slow_rate_per_s, rate_window(grouped, pair).fast_rate_per_s)}
+    limit, limit_spins = fast_exchange_limit(grouped), fast_exchange_limit(spins)
+    (group,), (group_spins,) = limit.groups, limit_spins.groups
+    assert group.nuclei == group_spins.nuclei == 6
+    assert group.magnetically_equivalent and group_spins.magnetically_equivalent
+    assert "(6 nuclei)" in limit.report()
+    grid = np.linspace(2.9, 3.1, 2001)
+    assert simulate(limit.model, grid).intensity == pytest.approx(simulate(limit_spins.model, grid).intensity,
+                                                                  rel=1e-8, abs=1e-10)
+
+
+def test_report_quotes_the_separation_as_a_magnitude():
+    # A shift difference quoted to a chemist is the separation |dnu| in Hz (common practice); the JSON
+    # keeps the signed value (arriving minus leaving) beside it.
+    view = timescale_view(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0))
+    (pair,) = view.pairs
+    assert pair.shift_difference_hz == pytest.approx(-100.0) and pair.separation_hz == pytest.approx(100.0)
+    row = next(line for line in view.report().splitlines() if pair.pair.label in line)
+    assert " 100.00 " in row and "-100.00" not in row
+    assert "|dnu|/Hz" in view.report()
+    out = view.to_dict()["pairs"][0]
+    assert out["separation_hz"] == pytest.approx(100.0) and out["shift_difference_hz"] == pytest.approx(-100.0)
