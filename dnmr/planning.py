@@ -6,11 +6,14 @@ Coalescence from the engine
     together with it (one spin for a plain site exchange, both spins of an AB pair that swaps, ...),
     their couplings among themselves, the model's populations and linewidths, and only that process
     running (the other processes off, so that each pair's coalescence belongs to its own process).
-    Spins outside that cluster are left out: their couplings split both signals alike into multiplet
+    A spin of the cluster that is an equivalent group (``Model.groups``, a CH3 say) stays a group, so
+    the couplings among the cluster keep their multiplet structure.  Spins outside that cluster,
+    heteronuclei included, are left out: their couplings split both signals alike into multiplet
     components, each of which coalesces with its partner at the same rate when the coupling is the same
-    in both places.  The coalescence rate is the forward rate constant of the process (as the model
-    file defines it) at which the spectrum, on the closed interval between the two shifts, goes from two
-    maxima to one.  For two sites this is where the minimum between the lines meets the smaller maximum
+    in both places; where it is not, the components have different shift differences and coalesce at
+    different rates, and the result carries a note naming those couplings.  The coalescence rate is the
+    forward rate constant of the process (as the model file defines it) at which the spectrum, on the
+    closed interval between the two shifts, goes from two maxima to one.  For two sites this is where the minimum between the lines meets the smaller maximum
     (Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956); Shanan-Atidi & Bar-Eli, J. Phys. Chem. 74, 961
     (1970)); for an AB pair the interval holds the two inner lines of the quartet and the count drops
     when the centre turns from a minimum into a maximum (Kurland, Rubin & Wise, J. Chem. Phys. 40, 2426
@@ -143,7 +146,32 @@ def pair_model(model: Model, pair: ExchangingPair, linewidth_hz: float | None = 
                             population=populations[model.state_index(name)]))
     moves = {x: y for x, y in pair.mapping.items() if x != y}
     exchange = Exchange(pair.first[0], pair.second[0], moves, rate_per_s=0.0, name=pair.process_name)
-    return Model(model.spectrometer, tuple(states), (exchange,), title=pair.label)
+    groups = {x: model.group_size(x) for x in keep if model.group_size(x) > 1}
+    return Model(model.spectrometer, tuple(states), (exchange,), title=pair.label, groups=groups)
+
+
+def unequal_outside_couplings(model: Model, pair: ExchangingPair, tolerance_hz: float = 1e-6) -> list[str]:
+    """Couplings from the pair's cluster to spins left out of :func:`pair_model` that differ between the
+    two places (Hz), as ``"Ha-F 40 -> 10 Hz"``; heteronuclei count as outside spins.
+
+    Parameters
+    ----------
+    model : Model
+    pair : ExchangingPair
+    tolerance_hz : float
+        Couplings closer than this (Hz) count as equal.
+    """
+    exchange = model.exchanges[pair.process]
+    start, end = (model.states[model.state_index(name)] for name in (pair.first[0], pair.second[0]))
+    out = []
+    for x in pair.cluster:
+        for z in model.all_spins:
+            if z in pair.cluster:
+                continue
+            before, after = start.coupling(x, z), end.coupling(pair.mapping[x], exchange.spins.get(z, z))
+            if abs(before - after) > tolerance_hz:
+                out.append(f"{x}-{z} {before:g} -> {after:g} Hz")
+    return out
 
 
 def count_maxima(values: np.ndarray, tolerance: float = 1e-12) -> int:
@@ -229,7 +257,7 @@ class Coalescence(PairAtField):
     temperature_k, narrow_limit_temperature_k : float or None
         Where the activation parameters reach those rates (K).
     note : str
-        Why a rate is missing, if one is.
+        Why a rate is missing, if one is, or what the rate leaves out (see :func:`unequal_outside_couplings`).
     """
 
     populations: tuple[float, float]
@@ -275,8 +303,14 @@ def _coalescence_of(model: Model, pair: ExchangingPair, activation: ActivationPa
             temperature = solve_temperature(activation, rate, follows)
         found.append((last["rate"], temperature, last["note"], last["populations"]))
     (k, t, note, populations), (k0, t0, note0, _) = found
+    notes = [note or note0]
+    unequal = unequal_outside_couplings(model, pair)
+    if unequal:
+        notes.append(f"couplings to spins left out differ between the two places ({', '.join(unequal)}): their"
+                     " multiplet components have different shift differences and coalesce at different rates;"
+                     " the rate given is for the exchanging spins alone")
     return Coalescence(pair, model.spectrometer.proton_mhz, model.spectrometer.frequency_mhz,
-                       pair.shift_difference_hz(model), populations, k, k0, t, t0, note or note0)
+                       pair.shift_difference_hz(model), populations, k, k0, t, t0, "; ".join(filter(None, notes)))
 
 
 def predict_coalescence(model: Model, activation: ActivationParameters | None = None, *,
@@ -792,13 +826,13 @@ class ExperimentPlan:
                  f"Observed nucleus {nucleus}; fields are quoted as 1H frequencies."]
         lines += [f"  {name}: {act.describe()}" for name, act in self.activations.items()]
         lines += ["", "Coalescence (the pair merges into its averaged signal: two maxima become one for an uncoupled or AB pair; k is the forward rate constant of the process)",
-                  f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'dnu/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
+                  f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'|dnu|/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
                   f"   {'narrow-line k_c':>15} {'T_c/K':>7}",
                   "  (each pair on its own: only its process running, spins outside its exchanging cluster left"
                   " out; narrow-line: intrinsic linewidths -> 0)"]
         for c in self.coalescence:
             lines.append(f"  {c.proton_mhz:7.1f} {c.frequency_mhz:9.2f}  {c.pair.process_name + ': ' + c.pair.label:<34}"
-                         f" {c.shift_difference_hz:9.2f} {_number(c.rate_per_s, '10.4g')} {_number(c.temperature_k, '7.1f')}"
+                         f" {c.separation_hz:9.2f} {_number(c.rate_per_s, '10.4g')} {_number(c.temperature_k, '7.1f')}"
                          f"   {_number(c.narrow_limit_rate_per_s, '15.4g')} {_number(c.narrow_limit_temperature_k, '7.1f')}")
             if c.note:
                 lines.append(f"      note: {c.note}")

@@ -327,3 +327,59 @@ def test_coalescence_of_pairs_whose_averaged_signal_is_still_a_multiplet():
     k_ab, _ = shanan_atidi_bar_eli_rates(0.28, dnu)
     assert k_weak == pytest.approx(k_ab, rel=2e-2)
     assert k_coupled != pytest.approx(k_weak, rel=1e-3)  # the coupling does move it
+
+
+# --- equivalent groups and heteronuclear partners ----------------------------------------------
+
+def swapping_ch2_groups(j_hz=7.0, dnu=30.0):
+    """Invented X-CH2-CH2-Y fragment whose two CH2 groups (equivalent pairs) trade places, J = 7 Hz."""
+    state = State("s", {"A": 3.0, "B": 3.0 + dnu / SF}, {"A-B": j_hz}, 1.0, 1.0)
+    return Model(Spectrometer(SF), (state,), (Exchange("s", "s", {"A": "B", "B": "A"}, rate_per_s=1.0, name="swap"),),
+                 groups={"A": 2, "B": 2})
+
+
+def test_coalescence_of_coupled_groups_matches_the_system_written_spin_by_spin():
+    # Coalescence is where two maxima between the shifts become one (Gutowsky & Holm 1956; Kurland,
+    # Rubin & Wise 1964).  For two coupled CH2 groups (A2B2, not AB) the exact spectrum of the same
+    # system written nucleus by nucleus (tests/test_groups.py) must show that change at the rate found.
+    from test_groups import written_out_model
+
+    from dnmr import simulate
+    from dnmr.planning import count_maxima
+
+    model = swapping_ch2_groups()
+    (c,) = coalescence(model)
+    spins = written_out_model(model)
+    hz = np.linspace(3.0 * SF, 3.0 * SF + 30.0, 4001)
+
+    def maxima(k):
+        return count_maxima(simulate(spins.with_rates([k]), hz / SF).intensity)
+
+    assert maxima(0.995 * c.rate_per_s) == 2 and maxima(1.005 * c.rate_per_s) == 1
+    # the A2B2 rate differs from the AB pair's (Kurland, Rubin & Wise) by more than the test's resolution
+    assert c.narrow_limit_rate_per_s != pytest.approx(kurland_rubin_wise_rate(30.0, 7.0), rel=0.02)
+
+
+def test_unequal_couplings_to_a_heteronucleus_are_named_in_the_note():
+    # A proton hopping between sites whose couplings to a 19F differ (40 and 10 Hz): in first order each
+    # fluorine component has its own shift difference, dnu +/- (J_b - J_a)/2 (common practice), so no
+    # single rate describes the coalescence; the rate given is that of the shifts alone (Gutowsky & Holm).
+    model = Model(Spectrometer(SF), (State("a", {"H": 3.0}, {"H-F": 40.0}, 1.0, 0.5),
+                                     State("b", {"H": 3.25}, {"H-F": 10.0}, 1.0, 0.5)),
+                  (Exchange("a", "b", rate_per_s=1.0, name="hop"),), heteronuclei={"F": "19F"}, points=2048)
+    (c,) = coalescence(model)
+    assert "H-F 40 -> 10 Hz" in c.note
+    assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(100.0), rel=1e-4)
+    same = model.replace(states=tuple(s.__class__(s.name, s.shifts_ppm, {"H-F": 40.0}, 1.0, 0.5)
+                                      for s in model.states))
+    assert coalescence(same)[0].note == ""
+
+
+def test_plan_report_quotes_the_separation_as_a_magnitude():
+    # The shift difference a chemist quotes is the separation |dnu| (Hz; common practice).
+    plan = plan_experiment(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0), spectra=3)
+    (c,) = plan.coalescence
+    assert c.shift_difference_hz == pytest.approx(-100.0)
+    row = next(line for line in plan.report().splitlines() if c.pair.label in line and "MHz" not in line)
+    assert " 100.00 " in row and "-100.00" not in row
+    assert plan.to_dict()["coalescence"][0]["separation_hz"] == pytest.approx(100.0)
