@@ -16,6 +16,7 @@ from scipy import constants
 
 from closed_forms import (gutowsky_holm_rate, kurland_rubin_wise_rate, mcconnell_two_site,
                           shanan_atidi_bar_eli_rates)
+from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.model import Exchange, Model, Spectrometer, State
@@ -44,11 +45,6 @@ def ab_swap(dnu=100.0, j_hz=10.0, width=1.0):
     """Invented AB pair under mutual exchange (the two spins trade places)."""
     return Model(Spectrometer(SF), (State("s", {"A": 3.0, "B": 3.0 + dnu / SF}, {"A-B": j_hz}, width, 1.0),),
                  (Exchange("s", "s", {"A": "B", "B": "A"}, rate_per_s=10.0, name="swap"),), points=2048)
-
-
-def eyring_k(gibbs_kj_mol, t):
-    """Eyring equation, transmission 1, CODATA constants (scipy.constants)."""
-    return constants.k * t / constants.h * math.exp(-gibbs_kj_mol * 1e3 / (constants.R * t))
 
 
 # --- coalescence rates against the published conditions (narrow-line limit) -----------------
@@ -124,7 +120,7 @@ def test_coalescence_temperature_rises_with_field_and_obeys_eyring():
         t, dnu = c.narrow_limit_temperature_k, c.shift_difference_hz
         gibbs = constants.R * t * math.log(math.sqrt(2) * constants.k * t / (math.pi * constants.h * dnu)) / 1e3
         assert gibbs == pytest.approx(60.0, abs=1e-3)
-        assert eyring_k(60.0, c.temperature_k) == pytest.approx(c.rate_per_s, rel=1e-4)
+        assert eyring_rate(c.temperature_k, 60.0) == pytest.approx(c.rate_per_s, rel=1e-4)
 
 
 def test_populations_follow_temperature_at_coalescence():
@@ -134,15 +130,15 @@ def test_populations_follow_temperature_at_coalescence():
     p_b = 1.0 / (1.0 + math.exp(2000.0 / (constants.R * t)))
     k_ab, _ = shanan_atidi_bar_eli_rates(1 - 2 * p_b, 100.0)
     assert c.narrow_limit_rate_per_s == pytest.approx(k_ab, rel=1e-3)
-    assert eyring_k(55.0, t) == pytest.approx(c.narrow_limit_rate_per_s, rel=1e-3)
+    assert eyring_rate(t, 55.0) == pytest.approx(c.narrow_limit_rate_per_s, rel=1e-3)
 
 
 def test_enthalpy_and_entropy_give_the_gibbs_energy_at_coalescence():
-    # Eyring with dG = dH - T dS (CODATA constants).
+    # Eyring with dH‡ and dS‡ (tests/reference_eyring.py).
     act = ActivationParameters(50.0, -20.0)
     (c,) = predict_coalescence(two_sites(0.5, dnu=100.0), act)
     t = c.temperature_k
-    assert eyring_k(50.0 - t * (-20.0) / 1e3, t) == pytest.approx(c.rate_per_s, rel=1e-4)
+    assert eyring_rate(t, 50.0, -20.0) == pytest.approx(c.rate_per_s, rel=1e-4)
 
 
 # --- information and design ------------------------------------------------------------------
@@ -273,7 +269,7 @@ def test_cli_plan_json_has_the_contract_keys(model_file):
         # Kurland, Rubin & Wise (1964) in the narrow-line limit; dnu = 0.2 ppm at this field.
         krw = kurland_rubin_wise_rate(0.2 * c["frequency_mhz"], 12.0)
         assert c["narrow_limit_rate_per_s"] == pytest.approx(krw, rel=1e-4)
-        assert eyring_k(60.0, c["temperature_k"]) == pytest.approx(c["rate_per_s"], rel=1e-4)
+        assert eyring_rate(c["temperature_k"], 60.0) == pytest.approx(c["rate_per_s"], rel=1e-4)
     assert {"plan", "solvent", "cautions", "measurable_window"} <= set(out)
     assert out["solvent"]["name"] == "toluene-d8"
 

@@ -8,21 +8,20 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 from pathlib import Path
 
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from scipy import constants
 
 from closed_forms import mcconnell_two_site
+from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.series import fit_series, load_series
 
 SF = 400.0
-ENTHALPY_J_MOL, ENTROPY_J_MOL_K = 60.0e3, 0.0  # invented
+ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 60.0, 0.0  # invented
 TEMPERATURES = [250.0, 270.0, 290.0, 310.0]
 PPM = np.linspace(2.5, 3.5, 800)
 
@@ -48,12 +47,6 @@ rate_per_s = 1000.0
 """
 
 
-def eyring(temperature_k: float) -> float:
-    """k = (kB T / h) exp(dS/R - dH/(R T)), s^-1 (Eyring 1935; CODATA constants)."""
-    t = temperature_k
-    return constants.k * t / constants.h * math.exp(ENTROPY_J_MOL_K / constants.R - ENTHALPY_J_MOL / (constants.R * t))
-
-
 def write_spectrum(path: Path, k: float, seed: int, site_a: float = 2.9, site_b: float = 3.1) -> None:
     s = mcconnell_two_site(PPM * SF, site_a * SF, site_b * SF, k, 0.5, 1.2, 1.2)
     y = 50.0 * s.real + 0.2 + np.random.default_rng(seed).normal(0.0, 0.02, PPM.size)
@@ -66,7 +59,8 @@ def write_series(folder: Path, temperatures, fit_table: str = 'region_ppm = [2.7
     (folder / "model.toml").write_text(MODEL.format(a=2.9, b=3.1))
     lines = ['model = "model.toml"', "[fit]", fit_table]
     for i, t in enumerate(temperatures):
-        write_spectrum(folder / "spectra" / f"t{t:.0f}.txt", eyring(t), seed=100 + i, site_a=sites(t)[0], site_b=sites(t)[1])
+        write_spectrum(folder / "spectra" / f"t{t:.0f}.txt", eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K),
+                       seed=100 + i, site_a=sites(t)[0], site_b=sites(t)[1])
         lines += ["[[spectrum]]", f'file = "spectra/t{t:.0f}.txt"', f"temperature_k = {t}"]
     (folder / "series.toml").write_text("\n".join(lines) + "\n")
     return folder / "series.toml"
@@ -102,7 +96,7 @@ def test_series_through_the_cli_recovers_the_rates(run):
     for r in rows:
         assert r["process"] == "flip" and r["status"] == "determined"
         k, err = float(r["rate_per_s"]), float(r["rate_stderr"])
-        assert abs(k - eyring(float(r["temperature_k"]))) <= 4 * err
+        assert abs(k - eyring_rate(float(r["temperature_k"]), ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K)) <= 4 * err
         assert r["rate_lower"] == r["rate_upper"] == ""
     assert digests(folder / "inputs") == before  # inputs never modified
 
@@ -205,8 +199,8 @@ def test_fast_spectra_take_their_shifts_from_the_slow_exchange_trend(tmp_path):
         with_model = next(o for o in fixed.outcomes if o.spectrum.temperature_k == t)
         assert with_trend.stage == "trend-shifts"
         r = with_trend.fit.rate(0)
-        assert abs(r.rate_per_s - eyring(t)) <= 4 * r.rate_stderr
+        assert abs(r.rate_per_s - eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K)) <= 4 * r.rate_stderr
         # both fit equally well (the fast spectrum cannot tell the shifts), but only one rate is right
         assert with_trend.fit.chi_square == pytest.approx(with_model.fit.chi_square, rel=0.01)
         biased = with_model.fit.rate(0)
-        assert abs(biased.rate_per_s - eyring(t)) > 4 * biased.rate_stderr
+        assert abs(biased.rate_per_s - eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K)) > 4 * biased.rate_stderr

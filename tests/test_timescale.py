@@ -1,7 +1,7 @@
 """Regimes of exchange, the fast-exchange averaged spin system and its equivalences, `dnmr timescale`.
 
 References: the slow- and fast-exchange limits of the McConnell equations and the A2 spectrum
-(tests/closed_forms.py), the Eyring equation with CODATA constants from scipy, and the definitions of
+(tests/closed_forms.py), the Eyring equation with CODATA constants (tests/reference_eyring.py), and the definitions of
 chemical and magnetic equivalence (Pople, Schneider & Bernstein, High-resolution NMR (1959)).
 """
 from __future__ import annotations
@@ -12,11 +12,11 @@ import math
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from scipy import constants
 from scipy.optimize import brentq, minimize_scalar
 
 from closed_forms import (a2_line, fast_exchange_excess_width, lorentzian_lines, mcconnell_two_site,
                           slow_exchange_broadening)
+from reference_eyring import eyring_rate
 from dnmr import simulate
 from dnmr.cli import cli
 from dnmr.model import Exchange, Model, Spectrometer, State
@@ -193,7 +193,7 @@ def test_regime_temperatures_follow_eyring():
     t_slow, t_fast = window_temperatures(model, pair, ActivationParameters.from_gibbs(60.0))
     window = rate_window(model, pair)
     for t, k in ((t_slow, window.slow_rate_per_s), (t_fast, window.fast_rate_per_s)):
-        assert constants.k * t / constants.h * math.exp(-60e3 / (constants.R * t)) == pytest.approx(k, rel=1e-5)
+        assert eyring_rate(t, 60.0) == pytest.approx(k, rel=1e-5)
 
 
 def test_fast_threshold_rises_with_field():
