@@ -413,7 +413,7 @@ class EquivalenceGroup:
         else:
             classes = "; ".join(", ".join(c) for c in self.magnetic_classes)
             kind = f"chemically equivalent only (magnetically equivalent sets: {classes})"
-        return f"{', '.join(self.spins)} ({self.nuclei} nuclei) at {self.shift_ppm:.4f} ppm: {kind}, {how}"
+        return f"{', '.join(self.spins)} at {self.shift_ppm:.4f} ppm: {kind}, {how} ({self.nuclei} nuclei)"
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready)."""
