@@ -16,6 +16,7 @@ from click.testing import CliRunner
 from scipy import constants
 
 from closed_forms import mcconnell_two_site
+from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.globalfit import fit_series_global
@@ -48,13 +49,6 @@ rate_per_s = 100.0
 """
 
 
-def eyring_rate(temperature_k: float) -> float:
-    """k = (kB T / h) exp(dS/R) exp(-dH/(R T)), s^-1 (Eyring 1935; CODATA constants)."""
-    t = temperature_k
-    return constants.k * t / constants.h * math.exp(ENTROPY_J_MOL_K / constants.R
-                                                    - ENTHALPY_KJ_MOL * 1e3 / (constants.R * t))
-
-
 @pytest.fixture(scope="module")
 def series_file(tmp_path_factory) -> Path:
     folder = tmp_path_factory.mktemp("vt")
@@ -62,7 +56,8 @@ def series_file(tmp_path_factory) -> Path:
     lines = ['model = "model.toml"', "[fit]", "region_ppm = [2.7, 3.3]", 'linewidth = "shared"']
     rng = np.random.default_rng(20240611)
     for t in TEMPERATURES:
-        s = mcconnell_two_site(PPM * SF, 2.92 * SF, 3.08 * SF, eyring_rate(t), 0.5, 1.5, 1.5)
+        k = eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K)
+        s = mcconnell_two_site(PPM * SF, 2.92 * SF, 3.08 * SF, k, 0.5, 1.5, 1.5)
         y = 40.0 * s.real + 0.1 + rng.normal(0.0, NOISE, PPM.size)
         name = f"t{t:.0f}.txt"
         (folder / name).write_text("ppm\tintensity\n" + "\n".join(f"{p:.6f}\t{v:.7f}" for p, v in zip(PPM, y)) + "\n")
