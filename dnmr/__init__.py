@@ -16,6 +16,7 @@ from .model import Exchange, Model, Spectrometer, State
 from .modelfile import load_model
 from .readers import MeasuredSpectrum, read_spectrum
 from .planning import coalescence, plan_experiment, predict_coalescence
+from .posterior import Posterior, sample_eyring_posterior, sample_spectrum_posterior
 from .series import Series, SeriesFit, fit_series, load_series
 from .solvents import Solvent, load_solvents, solvent
 from .spectrum import Spectrum, simulate, simulate_over
@@ -40,6 +41,8 @@ __all__ = [
     "fit_spectrum", "load_series",
     # activation parameters
     "EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates",
+    # Bayesian errors (needs emcee)
+    "Posterior", "sample_eyring_posterior", "sample_spectrum_posterior",
     # planning and the NMR timescale
     "ActivationParameters", "Solvent", "averaged_model", "coalescence", "fast_exchange_limit", "load_solvents",
     "plan_experiment", "predict_coalescence", "solvent", "timescale_view",

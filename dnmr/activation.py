@@ -66,6 +66,7 @@ from .tables import check_kelvin, read_table
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
+    from .posterior import Posterior
     from .thermometry import TemperatureCalibration
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
@@ -752,6 +753,13 @@ class EyringResult:
         from .plotting import plot_eyring
 
         return plot_eyring([self], figure=figure)
+
+    def sample_posterior(self, **settings) -> "Posterior":
+        """Posterior samples of dH‡, dS‡ and dG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
+        for the method and the settings (steps, walkers, burn, thin, seed)."""
+        from .posterior import sample_eyring_posterior
+
+        return sample_eyring_posterior(self, **settings)
 
 
 BASIS_GIVEN = "given rate errors"

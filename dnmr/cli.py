@@ -6,6 +6,7 @@ Every command turns :class:`dnmr.errors.InputError` into one line on stderr and 
 from __future__ import annotations
 
 import json
+import re
 import sys
 import traceback
 from contextlib import contextmanager
@@ -220,34 +221,60 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
 @click.option("--calibration-degree", type=click.IntRange(1, 3), default=1, show_default=True,
               help="Polynomial degree of the calibration.")
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
+@click.option("--posterior", is_flag=True,
+              help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its corner figure too.")
+@click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=5000, show_default=True,
+              help="With --posterior: steps of each of the 32 walkers (a quarter is burn-in).")
+@click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, transmission: float, calibration_file: Path | None,
-           calibration_degree: int, overwrite: bool) -> None:
+           calibration_degree: int, overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
     """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
 
     With --json the first (or only) process's results are at the top level and, for several processes,
-    all of them are listed under "processes".
+    all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
     from .activation import eyring_fit_file, results_to_dict
     from .output import save_figure
     from .plotting import plot_eyring
     from .thermometry import read_temperature_calibration
 
+    if posterior:
+        from .posterior import require_emcee
+
+        require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
     results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
                               transmission=transmission, calibration=calibration)
+    posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
+    figures = [plot_file] + [_corner_path(plot_file, r.process, len(results)) for r in results[:len(posteriors)]] \
+        if plot_file else []
+    for figure in figures if not overwrite else ():  # refuse before writing any of them
+        if figure.exists():
+            raise InputError(f"{figure} already exists; choose another name or pass --overwrite", where="--plot")
     if plot_file:
         save_figure(plot_eyring(results), plot_file, overwrite=overwrite)
+        for post, figure in zip(posteriors, figures[1:]):
+            save_figure(post.plot(), figure, overwrite=overwrite)
     if as_json:
         out = results_to_dict(results)
+        pairs = list(zip(out.get("processes", []), posteriors))
+        for entry, post in ([(out, posteriors[0])] if posteriors else []) + pairs:
+            entry["posterior"] = post.to_dict()
         if calibration is not None:
             out["calibration"] = calibration.to_dict()
         print_json(out)
     else:
         parts = ([calibration.report()] if calibration is not None else []) + [r.report() for r in results]
-        click.echo("\n\n".join(parts))
-    if plot_file:
-        click.echo(f"wrote {plot_file}", err=as_json)
+        click.echo("\n\n".join(parts + [post.report() for post in posteriors]))
+    for figure in figures:
+        click.echo(f"wrote {figure}", err=as_json)
+
+
+def _corner_path(plot_file: Path, process: str, processes: int) -> Path:
+    """The corner figure beside --plot FILE: FILE_posterior.png, or FILE_posterior_<process>.png for several."""
+    tag = "_" + re.sub(r"\W", "_", process) if processes > 1 else ""
+    return plot_file.with_name(f"{plot_file.stem}_posterior{tag}{plot_file.suffix}")
 
 
 @cli.command()

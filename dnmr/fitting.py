@@ -58,7 +58,7 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import lmfit
 import numpy as np
@@ -68,6 +68,9 @@ from .engine import default_window_ppm, lineshape_terms
 from .errors import InputError, did_you_mean
 from .model import Model
 from .readers import MeasuredSpectrum, read_spectrum
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .posterior import Posterior
 
 PHASE_MODES = ("none", "zero-order", "first-order")
 LINEWIDTH_MODES = ("fixed", "shared", "per-state")
@@ -1004,6 +1007,14 @@ class SpectrumFit:
         from .plotting import plot_spectrum_fit
 
         return plot_spectrum_fit(self, figure=figure)
+
+    def sample_posterior(self, **settings) -> "Posterior":
+        """Posterior samples of the free parameters (needs emcee); see
+        :func:`dnmr.posterior.sample_spectrum_posterior` for the method and the settings (steps, walkers,
+        burn, thin, seed, progress)."""
+        from .posterior import sample_spectrum_posterior
+
+        return sample_spectrum_posterior(self, **settings)
 
     def curves(self) -> dict:
         """The arrays of the fit (ppm, data, fit, baseline) as lists."""

@@ -238,3 +238,116 @@ def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
         ax.spines[side].set_visible(False)
     ax.set_title(title or "measured (black) and fitted (red)", fontsize=10)
     return fig
+
+
+# --- posterior samples: corner figure ----------------------------------------------------------
+
+def _credible_levels(density: np.ndarray, masses=(0.95, 0.68)) -> list[float]:
+    """Density levels enclosing `masses` of a 2-D histogram (highest-density regions), ascending."""
+    flat = np.sort(density.ravel())[::-1]
+    cumulative = np.cumsum(flat) / flat.sum()
+    levels = [float(flat[min(np.searchsorted(cumulative, m), flat.size - 1)]) for m in masses]
+    return sorted(set(levels))
+
+
+def _marks_1d(ax, x: np.ndarray, one_sided: str | None) -> str:
+    """Median and 68 % interval (dashed), or the one-sided 95 % bound (dotted); returns the panel title."""
+    if one_sided in ("upper-bound", "lower-bound"):
+        bound = float(np.percentile(x, 95.0 if one_sided == "upper-bound" else 5.0))
+        ax.axvline(bound, color="k", ls=":", lw=1.2)
+        return f"{'<' if one_sided == 'upper-bound' else '>'} {bound:.3g} (95 %)"
+    low, median, high = np.percentile(x, [15.87, 50.0, 84.13])
+    ax.axvline(median, color="k", lw=1.0)
+    for v in (low, high):
+        ax.axvline(v, color="k", ls="--", lw=0.8)
+    return f"{median:.4g} (+{high - median:.2g} / −{median - low:.2g})"
+
+
+def plot_corner(samples, labels, *, truths=None, one_sided=None, bins: int | None = None, figure=None):
+    """Corner figure of posterior samples: 1-D histograms on the diagonal, 2-D below it.
+
+    Parameters
+    ----------
+    samples : (n, p) array
+        Samples of p quantities (2 to 6 read best).
+    labels : sequence of str
+        Axis label (with unit) of each quantity.
+    truths : sequence of float or None, optional
+        Known values to mark (grey lines; None to mark none for that quantity).
+    one_sided : sequence of str or None, optional
+        Per quantity "upper-bound" or "lower-bound" to mark only the one-sided 95 % bound (dotted) instead
+        of the median and 68 % interval.
+    bins : int, optional
+        Histogram bins (default from the number of samples, 20 to 50).
+    figure : matplotlib Figure, optional
+        Figure to draw into (default: a new one).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Diagonal: histogram, median (solid) and 68 % central interval (dashed), the median and interval
+        above it.  Below: 2-D histogram with the 68 % and 95 % highest-density contours.
+    """
+    from scipy.ndimage import gaussian_filter
+
+    x = np.atleast_2d(np.asarray(samples, dtype=float))
+    n, p = x.shape
+    if len(labels) != p:
+        raise ValueError(f"{p} quantities but {len(labels)} labels")
+    truths = [None] * p if truths is None else list(truths)
+    one_sided = [None] * p if one_sided is None else list(one_sided)
+    labels = [label.replace(" / ", "\n/ ", 1) if len(label) > 16 else label for label in labels]  # unit below
+    bins = bins or int(np.clip(np.sqrt(n) / 2, 20, 50))
+    size = 2.0 * p + 0.8
+    fig = figure if figure is not None else plt.figure(figsize=(size, size))
+    axes = np.atleast_2d(fig.subplots(p, p, squeeze=False))
+    ranges = []
+    for j in range(p):
+        lo, hi = np.percentile(x[:, j], [0.2, 99.8])
+        pad = 0.05 * (hi - lo) if hi > lo else max(abs(lo) * 1e-3, 1e-12)
+        ranges.append((lo - pad, hi + pad))
+    for i in range(p):
+        for j in range(p):
+            ax = axes[i, j]
+            if j > i:
+                ax.set_visible(False)
+                continue
+            if i == j:
+                ax.hist(x[:, j], bins=bins, range=ranges[j], histtype="step", color="k", lw=1.0)
+                ax.set_title(_marks_1d(ax, x[:, j], one_sided[j]), fontsize=8)
+                ax.set_yticks([])
+                if truths[j] is not None:
+                    ax.axvline(truths[j], color="tab:blue", lw=1.2)
+            else:
+                hist, xe, ye = np.histogram2d(x[:, j], x[:, i], bins=bins, range=[ranges[j], ranges[i]])
+                density = gaussian_filter(hist.T, 1.0)
+                ax.pcolormesh(xe, ye, density, cmap="Greys", shading="flat", rasterized=True)
+                levels = _credible_levels(density)
+                if len(levels) == 2 and levels[0] < levels[1] < density.max():
+                    centres = 0.5 * (xe[1:] + xe[:-1]), 0.5 * (ye[1:] + ye[:-1])
+                    ax.contour(*centres, density, levels=levels, colors="k", linewidths=[0.8, 1.2])
+                if truths[j] is not None:
+                    ax.axvline(truths[j], color="tab:blue", lw=1.0)
+                if truths[i] is not None:
+                    ax.axhline(truths[i], color="tab:blue", lw=1.0)
+                if truths[i] is not None and truths[j] is not None:
+                    ax.plot(truths[j], truths[i], "s", color="tab:blue", ms=4)
+                ax.set_ylim(ranges[i])
+            ax.set_xlim(ranges[j])
+            ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
+            if i < p - 1:
+                ax.set_xticklabels([])
+            else:
+                ax.set_xlabel(labels[j])
+                ax.tick_params(axis="x", labelrotation=45, labelsize=8)
+            if i != j:
+                ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
+                if j > 0:
+                    ax.set_yticklabels([])
+                else:
+                    ax.set_ylabel(labels[i])
+                    ax.tick_params(axis="y", labelsize=8)
+    fig.subplots_adjust(hspace=0.06, wspace=0.06)
+    fig.text(0.99, 0.99, "lines: median and 68 % interval (dotted: one-sided 95 % bound)\n"
+                         "contours: 68 % and 95 % of the samples", ha="right", va="top", fontsize=8)
+    return fig

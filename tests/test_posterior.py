@@ -1,0 +1,249 @@
+"""Posterior samples (dnmr.posterior): the Eyring line, one spectrum, the corner figure, the CLI.
+
+References: Gelman et al., Bayesian Data Analysis, 3rd ed. (2013), section 14.2 (linear regression with
+the noninformative prior: the posterior of the coefficients is normal about the weighted least-squares
+estimate with covariance (X^T W X)^-1 for known errors, Student t with n - k degrees of freedom and scale
+s^2 (X^T W X)^-1 for errors of unknown scale), with statsmodels WLS as the reference library; the
+McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py) for the synthetic spectra,
+never dnmr's engine.  Rate series follow the Eyring equation written out with scipy.constants for
+invented activation parameters.  Chains are short (fixed seeds); every tolerance is a few Monte Carlo
+standard errors, from the chain's own effective sample size.
+"""
+from __future__ import annotations
+
+import json
+import math
+import sys
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from click.testing import CliRunner
+from scipy import constants
+
+from closed_forms import mcconnell_two_site
+from dnmr.activation import eyring_fit
+from dnmr.cli import cli
+from dnmr.errors import InputError
+from dnmr.fitting import fit_spectrum
+from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
+from dnmr.readers import MeasuredSpectrum
+
+R, KB, H = constants.R, constants.k, constants.h
+TRUE_DH, TRUE_DS = 55.0, -12.0  # kJ/mol, J/(mol K): invented
+TEMPS = np.linspace(230.0, 300.0, 8)
+SF, SITE_A, SITE_B = 400.0, 2.90, 3.10  # MHz, ppm (80 Hz apart)
+PPM = np.linspace(2.5, 3.5, 1000)
+REGION = (2.7, 3.3)
+
+
+def eyring_k(t: np.ndarray) -> np.ndarray:
+    """Eyring equation k = kB T/h exp(dS/R) exp(-dH/RT), written out with scipy.constants."""
+    return KB * t / H * np.exp(TRUE_DS / R) * np.exp(-TRUE_DH * 1e3 / (R * t))
+
+
+def noisy_rates(seed: int) -> np.ndarray:
+    return eyring_k(TEMPS) * np.exp(np.random.default_rng(seed).normal(0.0, 0.05, TEMPS.size))
+
+
+def line_samples(post) -> np.ndarray:
+    """(intercept, slope) of ln(k/T) = a + b / T from the (dH‡, dS‡) samples."""
+    dh, ds = post.column("enthalpy_kj_mol"), post.column("entropy_j_mol_k")
+    return np.column_stack([ds / R + math.log(KB / H), -dh * 1e3 / R])
+
+
+# --- the Eyring line: a linear Gaussian model with flat priors -------------------------------------
+
+@pytest.mark.parametrize("errors_given", [True, False])
+def test_eyring_posterior_is_the_weighted_least_squares_line(errors_given):
+    # Gelman et al. (BDA3, section 14.2): with flat priors the posterior of (intercept, slope) is normal
+    # about the WLS estimate with covariance (X^T W X)^-1 (known errors); with errors of unknown scale
+    # (prior p(sigma) ~ 1/sigma) it is Student t with n - 2 degrees of freedom and scale matrix
+    # s^2 (X^T W X)^-1, whose covariance is (n - 2)/(n - 4) times that.  Reference: statsmodels WLS.
+    k = noisy_rates(5)
+    k_err = k * np.linspace(0.03, 0.08, TEMPS.size)
+    result = eyring_fit(TEMPS, k, k_err if errors_given else None)
+    post = result.sample_posterior(steps=3000, walkers=16, seed=1)
+    x, y = sm.add_constant(1.0 / TEMPS), np.log(k / TEMPS)
+    weights = (k / k_err) ** 2 if errors_given else np.ones(TEMPS.size)
+    wls = sm.WLS(y, x, weights=weights).fit(**({"cov_type": "fixed scale"} if errors_given else {}))
+    dof = TEMPS.size - 2
+    covariance = wls.cov_params() * (1.0 if errors_given else dof / (dof - 2))
+    samples = line_samples(post)
+    std = np.sqrt(np.diag(covariance))
+    ess = min(post.summary("enthalpy_kj_mol").effective_samples, post.summary("entropy_j_mol_k").effective_samples)
+    assert ess > 300
+    # Monte Carlo error of a mean: std / sqrt(ESS); of a (co)variance: about sqrt(2 / ESS) relative (normal)
+    assert np.all(np.abs(samples.mean(axis=0) - wls.params) < 4.0 * std / math.sqrt(ess))
+    relative = np.cov(samples.T) / np.outer(std, std) - covariance / np.outer(std, std)
+    tails = 1.0 if errors_given else 2.0  # the t's fourth moment makes its sample variance noisier
+    assert np.abs(relative).max() < 4.0 * tails * math.sqrt(2.0 / ess)
+    d = post.to_dict()
+    assert d["correlation_enthalpy_entropy"] == pytest.approx(result.correlation, abs=0.01)
+    assert set(d["quantities"]) >= {"enthalpy_kj_mol", "entropy_j_mol_k", "gibbs_298_kj_mol", "gibbs_hm_kj_mol"}
+    # dG‡ at the harmonic-mean temperature: dH‡ - T dS‡ of each sample (the definition)
+    g_hm = post.column("enthalpy_kj_mol") - result.harmonic_mean_temperature_k * post.column("entropy_j_mol_k") / 1e3
+    assert post.summary("gibbs_hm_kj_mol").median == pytest.approx(float(np.median(g_hm)), rel=1e-12)
+
+
+def test_eyring_posterior_with_temperature_errors_and_bounds():
+    # Latent temperatures with the temperatures' covariance: for small temperature errors the posterior
+    # width of dH‡ matches the least-squares error that propagates them (Monte Carlo over temperatures,
+    # a linearisation), within the chain's Monte Carlo error.  Bound rows are left out, and the
+    # posterior says how probable it is that the line respects each.
+    t = np.append(TEMPS, 200.0)
+    k = np.append(noisy_rates(7), np.nan)
+    k_err = np.append(0.05 * k[:-1], np.nan)
+    upper = np.append(np.full(TEMPS.size, np.nan), 2.0 * eyring_k(np.array([200.0]))[0])
+    result = eyring_fit(t, k, k_err, temperature_stderr=0.5, rate_upper=upper)
+    post = sample_eyring_posterior(result, steps=2500, walkers=32, seed=3)
+    s = post.summary("enthalpy_kj_mol")
+    half_width = 0.5 * (s.ci68[1] - s.ci68[0])
+    assert half_width == pytest.approx(result.enthalpy_stderr, rel=4.0 * math.sqrt(0.5 / s.effective_samples) + 0.05)
+    assert "latent" in post.likelihood
+    assert any("200 K" in n and "probability" in n for n in post.notes)
+
+
+def test_two_rates_without_errors_have_no_posterior():
+    # Gelman et al. (BDA3, 14.2): the noninformative-prior posterior is proper only for n > k (here 2)
+    result = eyring_fit(TEMPS[:2], eyring_k(TEMPS[:2]))
+    with pytest.raises(InputError, match="improper"):
+        sample_eyring_posterior(result, steps=100)
+
+
+# --- one spectrum ------------------------------------------------------------------------------------
+
+def two_site_model(linewidth: float = 1.2) -> Model:
+    return Model(Spectrometer(SF),
+                 (State("a", {"H": SITE_A}, linewidth_hz=linewidth, population=0.5),
+                  State("b", {"H": SITE_B}, linewidth_hz=linewidth, population=0.5)),
+                 (Exchange("a", "b", rate_per_s=1e5, name="flip"),))
+
+
+def mcconnell_spectrum(k_true: float, sigma: float, seed: int) -> MeasuredSpectrum:
+    """50 x the McConnell (1958) absorption (1.2 Hz lines) plus normal noise of standard deviation `sigma`."""
+    s = mcconnell_two_site(PPM * SF, SITE_A * SF, SITE_B * SF, k_true, 0.5, 1.2, 1.2)
+    y = 50.0 * s.real + np.random.default_rng(seed).normal(0.0, sigma, PPM.size)
+    return MeasuredSpectrum(PPM, y, SF, "synthetic.csv", "text")
+
+
+# a small problem keeps the chains short: linear baseline of order 0, no phase, no offset
+SMALL = {"region_ppm": REGION, "baseline_order": 0, "phase": "none", "frequency_offset": False}
+
+
+def test_well_determined_rate_posterior_matches_least_squares():
+    # McConnell (1958) spectrum near coalescence (k = 120 s^-1, k_c = pi 80 / sqrt 2 = 178 s^-1,
+    # Gutowsky & Holm 1956), noise sigma = 0.1 known.  For a well-determined rate the posterior is close
+    # to normal (Laplace approximation), so its 95 % interval is about 2 x 1.96 least-squares errors.
+    k_true = 120.0
+    fit = fit_spectrum(mcconnell_spectrum(k_true, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    assert fit.rate(0).status == "determined"
+    post = sample_spectrum_posterior(fit, steps=500, walkers=12, seed=1)
+    s = post.summary("log10_k_flip")
+    assert s.kind == "interval"
+    assert s.ci95[0] < math.log10(k_true) < s.ci95[1]
+    width, laplace = s.ci95[1] - s.ci95[0], 2 * 1.959964 * fit.rate(0).log10_stderr
+    assert width == pytest.approx(laplace, rel=0.3)
+    rate = post.summary("rate_per_s_flip")  # the same quantiles in s^-1
+    assert rate.ci95 == pytest.approx(tuple(10.0 ** v for v in s.ci95), rel=1e-6)  # up to interpolation
+    assert rate.median == pytest.approx(10.0 ** s.median, rel=1e-6)
+    assert any("autocorrelation times" in n and "emcee advises" in n for n in post.notes)  # 375 kept steps
+    d = json.loads(json.dumps(post.to_dict()))
+    assert d["quantities"]["log10_k_flip"]["kind"] == "interval" and d["walkers"] == 12
+    assert "error scale" in post.report() and "flip" in post.report()
+
+
+def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
+    # k = 0.005 s^-1 broadens the lines by k/pi = 0.002 Hz (slow limit of McConnell 1958), far below
+    # what this noise resolves while the linewidth is fitted: the profile gives an upper bound (this
+    # noise draw; tests/test_fitting.py shows it is the usual outcome).  The posterior, flat in log10 k,
+    # follows the prior below the bound (no lower limit) and gives a one-sided 95 % bound.
+    fit = fit_spectrum(mcconnell_spectrum(0.005, 0.1, 0), two_site_model(), linewidth="shared", **SMALL)
+    rate = fit.rate(0)
+    assert rate.status == "upper-bound"
+    post = sample_spectrum_posterior(fit, steps=700, walkers=12, seed=2)
+    s = post.summary("log10_k_flip")
+    assert s.kind == "upper-bound" and math.isnan(s.median) and math.isnan(s.ci68[0])
+    x = post.column("log10_k_flip")
+    profile_bound = math.log10(rate.rate_upper)
+    # the profile's bound is where chi-square has risen by s (one standard error of a normal likelihood):
+    # beyond it a likelihood rising like a half-normal from the plateau's end leaves 31.7 % of the mass
+    # (normal tail P(Z > 1) / P(Z > 0)), and a plateau of prior below only lowers that share
+    assert np.mean(x > profile_bound) < 0.317
+    assert abs(s.bound_95 - profile_bound) < 1.0  # same order of magnitude; the posterior's depends on the prior
+    assert math.log10(0.005) < s.bound_95 < math.log10(math.pi * 1.2)  # broadening as large as the line's is seen
+    low = s.prior_range[0]
+    below = x[x < s.bound_95]
+    # no lower limit: the lower half of the stretch from the prior's end to the bound keeps a fair share
+    # of the mass (a posterior with a lower limit would leave it nearly empty)
+    assert np.mean(below < 0.5 * (low + s.bound_95)) > 0.3
+    assert "upper bound" in post.summary("rate_per_s_flip").describe()
+    assert post.summary("rate_per_s_flip").bound_95 == pytest.approx(10.0 ** s.bound_95, rel=1e-6)
+
+
+# --- the corner figure ---------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("p", [2, 4, 6])
+def test_corner_figure_panels_and_labels(p):
+    # common practice: p histograms on the diagonal, p (p - 1) / 2 pair panels below, the upper triangle empty
+    from dnmr.plotting import plot_corner
+
+    samples = np.random.default_rng(0).normal(size=(4000, p))
+    labels = [f"q{i} / Hz" for i in range(p)]
+    fig = plot_corner(samples, labels, truths=[0.0] * p)
+    visible = [ax for ax in fig.axes if ax.get_visible()]
+    assert len(visible) == p * (p + 1) // 2
+    grid = np.array(fig.axes).reshape(p, p)
+    assert [ax.get_xlabel() for ax in grid[-1]] == labels
+    assert [grid[i, 0].get_ylabel() for i in range(1, p)] == labels[1:]
+    assert all(ax.get_title() for ax in np.diag(grid))  # median and 68 % interval above each histogram
+    assert all(len(grid[i, j].collections) >= 2 for i in range(1, p) for j in range(i))  # histogram + contours
+
+
+def test_posterior_plot_marks_a_bound_one_sided():
+    result = eyring_fit(TEMPS, noisy_rates(2), 0.05 * noisy_rates(2))
+    post = sample_eyring_posterior(result, steps=300, walkers=8, seed=0)
+    fig = post.plot()
+    grid = np.array(fig.axes).reshape(4, 4)
+    assert grid[-1, 0].get_xlabel().startswith("ΔH‡") and "kJ" in grid[-1, 0].get_xlabel()
+    assert grid[1, 0].get_ylabel().startswith("ΔS‡")
+    with pytest.raises(InputError, match="no quantity"):
+        post.plot(names=["enthalpy"])
+
+
+# --- command line ----------------------------------------------------------------------------------------
+
+def write_rates(tmp_path, seed: int = 4):
+    k = noisy_rates(seed)
+    path = tmp_path / "rates.csv"
+    path.write_text("temperature_k,rate_per_s,rate_stderr\n"
+                    + "".join(f"{float(t)!r},{float(r)!r},{0.05 * float(r)!r}\n" for t, r in zip(TEMPS, k)))
+    return path
+
+
+def test_cli_eyring_posterior_json_and_figure(tmp_path):
+    rates = write_rates(tmp_path)
+    plot = tmp_path / "eyring.png"
+    args = ["eyring", str(rates), "--json", "--posterior", "--posterior-steps", "400", "--posterior-seed", "3",
+            "--plot", str(plot)]
+    result = CliRunner().invoke(cli, args)
+    assert result.exit_code == 0, result.output
+    out = json.loads(result.stdout)
+    assert {"enthalpy_kj_mol", "enthalpy_stderr", "gibbs_298_stderr"} <= set(out)  # the contract's keys stay
+    post = out["posterior"]
+    assert post["steps"] == 400 and post["seed"] == 3
+    assert {"enthalpy_kj_mol", "entropy_j_mol_k", "gibbs_298_kj_mol", "gibbs_hm_kj_mol"} <= set(post["quantities"])
+    assert -1 <= post["correlation_enthalpy_entropy"] <= 1
+    corner = tmp_path / "eyring_posterior.png"
+    assert plot.exists() and corner.exists()
+    again = CliRunner().invoke(cli, args)  # never over an existing figure without --overwrite
+    assert again.exit_code == 2 and "already exists" in again.stderr
+
+
+def test_cli_without_emcee_is_one_line_exit_2(tmp_path, monkeypatch):
+    monkeypatch.setitem(sys.modules, "emcee", None)  # import emcee now raises ImportError
+    result = CliRunner().invoke(cli, ["eyring", str(write_rates(tmp_path)), "--posterior"])
+    assert result.exit_code == 2
+    assert result.stderr.strip().count("\n") == 0 and 'pip install "dnmr[bayes]"' in result.stderr
+    assert INSTALL_HINT in result.stderr and "Traceback" not in result.output
