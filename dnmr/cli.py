@@ -163,10 +163,17 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
               help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the report's Eyring analysis"
                    " and the global fit.")
 @click.option("--no-report", is_flag=True, help="Do not write OUTDIR/report.html after the fit.")
+@click.option("--posterior", is_flag=True,
+              help="After the fits, sample each spectrum's posterior (needs emcee). SLOW: 32 walkers x the steps "
+                   "lineshape evaluations per spectrum, a minute or more per spectrum at the default steps.")
+@click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
+              help="With --posterior: steps of each of the 32 walkers (a quarter is burn-in).")
+@click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str,
-        calibration_file: Path | None, no_report: bool) -> None:
+        calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
+        posterior_seed: int) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
@@ -174,12 +181,20 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     """
     from .series import fit_series
 
+    if posterior and global_fit:
+        raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
+                         where="--posterior")
+    if posterior:
+        from .posterior import require_emcee
+
+        require_emcee(where="--posterior")
     if global_fit:
         _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet, shifts, linewidth,
                     calibration_file)
         return
     result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
-                        progress=False if quiet else None)
+                        progress=False if quiet else None,
+                        posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
     click.echo(result.report())
     for failed in result.failures:
         click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
@@ -223,7 +238,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
 @click.option("--posterior", is_flag=True,
               help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its corner figure too.")
-@click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=5000, show_default=True,
+@click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each of the 32 walkers (a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,

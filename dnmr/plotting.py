@@ -263,6 +263,11 @@ def _marks_1d(ax, x: np.ndarray, one_sided: str | None) -> str:
     return f"{median:.4g} (+{high - median:.2g} / −{median - low:.2g})"
 
 
+def _two_lines(label: str) -> str:
+    """A long axis label on two lines: after "name:", else before "/ unit"."""
+    return label.replace(": ", ":\n", 1) if ": " in label else label.replace(" / ", "\n/ ", 1)
+
+
 def plot_corner(samples, labels, *, truths=None, one_sided=None, bins: int | None = None, figure=None):
     """Corner figure of posterior samples: 1-D histograms on the diagonal, 2-D below it.
 
@@ -296,7 +301,7 @@ def plot_corner(samples, labels, *, truths=None, one_sided=None, bins: int | Non
         raise ValueError(f"{p} quantities but {len(labels)} labels")
     truths = [None] * p if truths is None else list(truths)
     one_sided = [None] * p if one_sided is None else list(one_sided)
-    labels = [label.replace(" / ", "\n/ ", 1) if len(label) > 16 else label for label in labels]  # unit below
+    labels = [_two_lines(label) if len(label) > 16 else label for label in labels]
     bins = bins or int(np.clip(np.sqrt(n) / 2, 20, 50))
     size = 2.0 * p + 0.8
     fig = figure if figure is not None else plt.figure(figsize=(size, size))

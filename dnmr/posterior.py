@@ -382,7 +382,7 @@ def _ball(rng: np.random.Generator, centre: np.ndarray, covariance: np.ndarray, 
 def _label(name: str) -> tuple[str, str]:
     """Axis label and unit of a fit parameter (see the parameter names in :mod:`dnmr.fitting`)."""
     patterns = (
-        (r"log10_k_(.+)", "log10(k / s⁻¹) {0}", ""),
+        (r"log10_k_(.+)", "{0}: log10(k / s⁻¹)", ""),
         (r"linewidth_hz_(.+)", "linewidth {0} / Hz", "Hz"),
         (r"shift_ppm_(.+)", "shift {0} / ppm", "ppm"),
         (r"population_(.+)", "population {0}", ""),
@@ -419,7 +419,7 @@ def _fit_covariance(fit: "SpectrumFit", names: Sequence[str]) -> np.ndarray:
 def sample_spectrum_posterior(
     fit: "SpectrumFit",
     *,
-    steps: int = 2000,
+    steps: int = 4000,
     walkers: int = 32,
     burn: int | None = None,
     thin: int = 1,
@@ -508,7 +508,7 @@ def sample_spectrum_posterior(
         q = quantities[j]
         reason = r.reason if kind != "interval" else ""
         quantities[j] = Quantity(q.name, q.label, q.unit, kind, q.prior_range, reason)
-        quantities.append(Quantity(f"rate_per_s_{n[len('log10_k_'):]}", f"k / s⁻¹ {r.process}", "s^-1", kind,
+        quantities.append(Quantity(f"rate_per_s_{n[len('log10_k_'):]}", f"{r.process}: k / s⁻¹", "s^-1", kind,
                                    (10.0 ** q.prior_range[0], 10.0 ** q.prior_range[1]), reason, flat_prior=False))
         derived.append(10.0 ** chain[:, :, j])
     full = np.concatenate([chain] + [d[:, :, None] for d in derived], axis=2) if derived else chain
@@ -543,7 +543,7 @@ def _most_correlated(samples: np.ndarray, names: Sequence[str], first: Sequence[
 def sample_eyring_posterior(
     result: "EyringResult",
     *,
-    steps: int = 5000,
+    steps: int = 10000,
     walkers: int = 32,
     burn: int | None = None,
     thin: int = 1,
@@ -562,7 +562,7 @@ def sample_eyring_posterior(
     result : EyringResult
         The least-squares Eyring analysis (:func:`dnmr.activation.eyring_fit` and friends).
     steps, walkers, burn, thin, seed
-        As for :func:`sample_spectrum_posterior` (default 5000 steps, 32 walkers).
+        As for :func:`sample_spectrum_posterior` (default 10000 steps, 32 walkers: a few seconds).
 
     Returns
     -------

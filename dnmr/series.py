@@ -337,14 +337,37 @@ def _run_job(model: Model, job: _Job, start: Mapping[str, float] | None) -> dict
         return {"status": "failed", "bad_input": False, "error": f"{type(err).__name__}: {err}"}
 
 
-def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
-    """Draw and save the figure of one fit (in a worker process)."""
+def _fit_from(model: Model, fit_data: dict, curves: dict) -> SpectrumFit:
+    """A stored fit (plain data) as a SpectrumFit of `model` at the fit's temperature."""
+    return SpectrumFit.from_dict(fit_data, curves, model.at_temperature(fit_data["temperature_k"]))
+
+
+def _save_and_close(fig, path: Path) -> str:
     import matplotlib.pyplot as plt
 
-    fig = SpectrumFit.from_dict(fit_data, curves, model.at_temperature(fit_data["temperature_k"])).plot()
     save_figure(fig, path, overwrite=True)
     plt.close(fig)
     return str(path)
+
+
+def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
+    """Draw and save the figure of one fit (in a worker process)."""
+    return _save_and_close(_fit_from(model, fit_data, curves).plot(), path)
+
+
+def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path) -> dict:
+    """Sample the posterior of one fit and save its corner figure (in a worker process); never raises:
+    a failure comes back as {"error": ...}."""
+    from .posterior import sample_spectrum_posterior
+
+    try:
+        posterior = sample_spectrum_posterior(_fit_from(model, fit_data, curves), **settings)
+        _save_and_close(posterior.plot(), path)
+        return {**posterior.to_dict(), "figure": str(path)}
+    except InputError as err:
+        return {"error": str(err)}
+    except Exception as err:  # one spectrum's sampling failing must not lose the others
+        return {"error": f"{type(err).__name__}: {err}"}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -414,6 +437,9 @@ class SpectrumOutcome:
         True when a completed fit was taken over from an earlier run (resume).
     notes : list of str
         Remarks of the series fit on this spectrum (shift trend used...).
+    posterior : dict or None
+        The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
+        sampling failed) when it was sampled.
     """
 
     spectrum: SeriesSpectrum
@@ -423,6 +449,14 @@ class SpectrumOutcome:
     stage: str = STAGE_MAIN
     reused: bool = False
     notes: list[str] = field(default_factory=list)
+    posterior: dict | None = None
+
+    def posterior_rate(self, i: int) -> dict | None:
+        """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
+        if not self.fitted or not self.posterior or "quantities" not in self.posterior:
+            return None
+        names = [n for n in self.fit.parameters if n.startswith("log10_k_")]  # in process order
+        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_k_"):])
 
     @property
     def fitted(self) -> bool:
@@ -490,6 +524,9 @@ def shift_trend(fits: Sequence[tuple[float, SpectrumFit]]) -> ShiftTrend:
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
                 "log10_rate", "log10_rate_stderr", "ci68_low_per_s", "ci68_high_per_s")
 TAIL_COLUMNS = ("offset_hz", "phase0_deg", "chi_square", "reduced_chi_square", "noise", "spectrum", "flags", "note")
+POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "posterior_ci95_high_per_s",
+                     "posterior_bound95_per_s")
+"""Added at the end of rates.csv when the posteriors were sampled (``dnmr fit --posterior``)."""
 
 
 @dataclass
@@ -562,8 +599,28 @@ class SeriesFit:
             for name, line in self.shift_trend.lines.items():
                 lines.append(f"  {name}: {line['ppm_at_mean']:.4f} ppm at {line['mean_temperature_k']:.1f} K, "
                              f"{line['ppm_per_k'] * 1e3:+.3f} ppm per 1000 K")
+        lines += self._posterior_lines(width)
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)
+
+    def _posterior_lines(self, width: int) -> list[str]:
+        """The posterior rates of the report (when sampled)."""
+        sampled = [o for o in self.by_temperature() if o.posterior is not None]
+        if not sampled:
+            return []
+        lines = ["", "posterior of the rates (emcee; corner figures figures/NNN_<name>_posterior.png):"]
+        for o in sampled:
+            t = f"  {o.spectrum.temperature_k:>7.2f}"
+            if "error" in o.posterior:
+                lines.append(f"{t}  not sampled: {o.posterior['error']}")
+                continue
+            short = " [chain short for its autocorrelation time: run more steps]" if any(
+                "emcee advises" in n for n in o.posterior["notes"]) else ""
+            for i, process in enumerate(self.series.model.process_names()):
+                q = o.posterior_rate(i)
+                if q is not None:
+                    lines.append(f"{t}  {process:<{width}} {_posterior_rate_text(q)}{short}")
+        return lines
 
     def plot(self, figure=None):
         """Measured and fitted spectra of the series, stacked by temperature; returns the Figure."""
@@ -573,6 +630,17 @@ class SeriesFit:
         return plot_fit_stack([o.fit for o in done], [f"{o.spectrum.temperature_k:g} K" for o in done],
                               figure=figure, title=f"{self.series.model.title or self.series.source.name}\n"
                                                    "measured (black) and fitted (red)")
+
+
+def _posterior_rate_text(q: Mapping) -> str:
+    """One posterior rate (a PosteriorSummary as plain data) in words."""
+    if q["kind"] == "upper-bound":
+        return f"k < {q['bound_95']:.3g} s^-1 (95 % upper bound)"
+    if q["kind"] == "lower-bound":
+        return f"k > {q['bound_95']:.3g} s^-1 (95 % lower bound)"
+    if q["kind"] == "undetermined":
+        return "k not determined (the posterior is the prior)"
+    return f"k = {q['median']:.3g} s^-1, 95 % interval {q['ci95'][0]:.3g} to {q['ci95'][1]:.3g}"
 
 
 def _cell(value) -> str | float:
@@ -604,6 +672,9 @@ def _rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) ->
                reduced_chi_square=fit.reduced_chi_square, noise=fit.noise.sigma, spectrum=str(s.file),
                flags=";".join(list(fit.flags) + list(s.flags)),
                note=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
+    post = outcome.posterior_rate(i)
+    if post is not None:
+        row.update(zip(POSTERIOR_COLUMNS, (post["median"], *post["ci95"], post["bound_95"])))
     return {k: _cell(v) for k, v in row.items()}
 
 
@@ -693,11 +764,26 @@ class _Runner:
                 collect(index, _future_result(running.pop(index)))
         return records
 
-    def map(self, function: Callable, calls: list[tuple]) -> list:
-        """Run `function(*args)` for every tuple of `calls` in the pool (or here)."""
+    def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
+        """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
+        progress bar counts the calls done."""
+        task = self.progress.add_task(label, total=len(calls)) if label else None
+
+        def advance() -> None:
+            if task is not None:
+                self.progress.advance(task)
+                self.progress.refresh()
+
         if self.pool is None:
-            return [function(*args) for args in calls]
-        return [f.result() for f in [self.pool.submit(function, *args) for args in calls]]
+            out = []
+            for args in calls:
+                out.append(function(*args))
+                advance()
+            return out
+        pending = [self.pool.submit(function, *args) for args in calls]
+        for _ in futures.as_completed(pending):
+            advance()
+        return [f.result() for f in pending]
 
 
 _WORKER_BLAS_LIMIT = None
@@ -856,11 +942,12 @@ def _versions() -> dict:
 def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
     outdir, series = result.outdir, result.series
     rows = result.rate_rows()
-    extra = sorted({k for row in rows for k in row} - set(RATE_COLUMNS) - set(TAIL_COLUMNS),
+    present = {k for row in rows for k in row}
+    extra = sorted(present - set(RATE_COLUMNS) - set(TAIL_COLUMNS) - set(POSTERIOR_COLUMNS),
                    key=lambda k: (not k.startswith("linewidth"), not k.startswith("shift"), k))
+    tail = list(TAIL_COLUMNS) + [c for c in POSTERIOR_COLUMNS if c in present]
     buffer = io.StringIO()
-    writer = csv.DictWriter(buffer, fieldnames=list(RATE_COLUMNS) + extra + list(TAIL_COLUMNS), restval="",
-                            lineterminator="\n")
+    writer = csv.DictWriter(buffer, fieldnames=list(RATE_COLUMNS) + extra + tail, restval="", lineterminator="\n")
     writer.writeheader()
     for row in rows:
         writer.writerow({k: repr(v) if isinstance(v, float) else v for k, v in row.items()})
@@ -883,7 +970,7 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
                  "temperature_k": o.spectrum.temperature_k, "status": "fitted" if o.fitted else "failed",
                  "stage": o.stage, "reused": o.reused, "flags": list(o.spectrum.flags), "notes": o.notes,
                  "error": o.error or None, "bad_input": o.bad_input,
-                 "fit": o.fit.to_dict() if o.fitted else None}
+                 "fit": o.fit.to_dict() if o.fitted else None, "posterior": o.posterior}
         spectra.append(entry)
     _write_json(outdir / "results.json", {
         "program": "dnmr fit", "versions": _versions(),
@@ -898,6 +985,17 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
     })
 
 
+def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict) -> None:
+    """Sample the posterior of every fitted spectrum (in the pool) and draw its corner figure."""
+    fitted = [(i, o) for i, o in enumerate(result.outcomes) if o.fitted]
+    calls = [(result.series.model, o.fit.to_dict(), o.fit.curves(), settings,
+              result.outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}_posterior.png") for i, o in fitted]
+    for (i, o), posterior in zip(fitted, runner.map(_posterior_job, calls, label="sampling posteriors")):
+        o.posterior = posterior
+        if "error" in posterior:
+            o.notes.append(f"posterior not sampled: {posterior['error']}")
+
+
 def fit_series(
     series: Series | str | Path,
     outdir: str | Path,
@@ -906,6 +1004,7 @@ def fit_series(
     resume: bool = False,
     workers: int | None = None,
     progress: bool | None = None,
+    posterior: Mapping | None = None,
 ) -> SeriesFit:
     """Fit every spectrum of a variable-temperature series and write the results to `outdir`.
 
@@ -925,12 +1024,22 @@ def fit_series(
         Worker processes (default one per core; 1 fits in this process).
     progress : bool, optional
         Show a progress bar on stderr (default: when stderr is a terminal).
+    posterior : mapping, optional
+        Also sample the posterior of every fitted spectrum (needs emcee; slow: about walkers x steps
+        lineshape evaluations per spectrum) with these settings of
+        :func:`dnmr.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
+        the defaults).  The summaries go into results.json and at the end of rates.csv, a corner figure
+        per spectrum into ``figures/NNN_<name>_posterior.png``.  Sampled again on every run (resume too).
 
     Returns
     -------
     SeriesFit
         With ``exit_status`` 0 (all fitted), 2 (a spectrum failed for bad input) or 1 (a fit failed).
     """
+    if posterior is not None:
+        from .posterior import require_emcee
+
+        require_emcee(where="posterior")
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
     _prepare_outdir(outdir, series, overwrite, resume)
@@ -947,6 +1056,8 @@ def fit_series(
                 trend, notes = _trend_stage(series, runner, outcomes, hashes)
             result = SeriesFit(series, outdir, [outcomes[i] for i in range(len(series.spectra))], trend,
                                list(series.notes) + notes)
+            if posterior is not None:
+                _sample_posteriors(result, runner, dict(posterior))
             _write_outputs(result, runner, hashes)
     finally:
         runner.close()

@@ -11,9 +11,11 @@ standard errors, from the chain's own effective sample size.
 """
 from __future__ import annotations
 
+import csv
 import json
 import math
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -247,3 +249,40 @@ def test_cli_without_emcee_is_one_line_exit_2(tmp_path, monkeypatch):
     assert result.exit_code == 2
     assert result.stderr.strip().count("\n") == 0 and 'pip install "dnmr[bayes]"' in result.stderr
     assert INSTALL_HINT in result.stderr and "Traceback" not in result.output
+
+
+def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
+    # two spectra of the series tests (McConnell 1958 spectra, tests/test_series.py); a very short chain:
+    # this checks the outputs, not the numbers (those are checked above)
+    from test_series import write_series
+
+    fit_table = ('region_ppm = [2.7, 3.3]\nlinewidth = "fixed"\nbaseline_order = 0\nphase = "none"\n'
+                 "frequency_offset = false")
+    series = write_series(tmp_path / "inputs", [250.0, 290.0], fit_table=fit_table)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report",
+                                      "--posterior", "--posterior-steps", "40", "--posterior-seed", "5"])
+    assert result.exit_code == 0, result.output + result.stderr
+    data = json.loads((out / "results.json").read_text())
+    for entry in data["spectra"]:
+        post = entry["posterior"]
+        assert post["steps"] == 40 and post["seed"] == 5
+        assert {"log10_k_flip", "rate_per_s_flip"} <= set(post["quantities"])
+        assert (out / "figures" / Path(post["figure"]).name).exists()
+    with open(out / "rates.csv", newline="") as fh:
+        header = next(csv.reader(fh))
+    # the columns of rates.csv stay, in their order; the posterior's are added at the end
+    assert header[-4:] == ["posterior_median_per_s", "posterior_ci95_low_per_s", "posterior_ci95_high_per_s",
+                           "posterior_bound95_per_s"]
+    assert header[:6] == ["temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper"]
+    assert "posterior of the rates" in result.output
+
+
+def test_cli_fit_posterior_without_emcee_stops_before_fitting(tmp_path, monkeypatch):
+    from test_series import write_series
+
+    monkeypatch.setitem(sys.modules, "emcee", None)
+    series = write_series(tmp_path / "inputs", [250.0, 290.0])
+    result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--posterior"])
+    assert result.exit_code == 2 and 'pip install "dnmr[bayes]"' in result.stderr
+    assert result.stderr.strip().count("\n") == 0 and not (tmp_path / "out").exists()
