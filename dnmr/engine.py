@@ -24,6 +24,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from .liouville import (
     CoherenceBlock,
@@ -33,6 +34,7 @@ from .liouville import (
     zeeman_terms,
 )
 from .model import Model
+from . import resolvent
 from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
 from .spinsystems import SpinParameters, spin_systems  # a model as independent spin systems
 
@@ -111,20 +113,37 @@ def block_pattern(block: CoherenceBlock, topology: tuple) -> BlockPattern:
     return pattern
 
 
-def block_liouvillian(pattern: BlockPattern, params: SpinParameters) -> np.ndarray:
-    """Liouvillian (rad/s) of one single-quantum block over all states: (S d) x (S d)."""
+def _block_elements(pattern: BlockPattern, params: SpinParameters):
+    """The block's diagonal and its off-diagonal (row, column, value) lists, rad/s; the flip-flop and
+    exchange lists are each free of duplicates but may meet each other (their values then add)."""
     block = pattern.block
     freq = params.shifts_hz @ zeeman_terms(block) + params.couplings_hz @ coupling_terms(block)[0]
     rates = np.array([j.rate_per_s for j in params.jumps])
     diagonal = (-1j * TWO_PI) * freq.ravel() - np.repeat(np.pi * params.linewidths_hz, block.size)
     if len(rates):
         diagonal += rates @ (pattern.stay - pattern.leave)
+    flips = (-1j * TWO_PI) * pattern.flip_values * params.couplings_hz[pattern.flip_state, pattern.flip_pair]
+    moves = rates @ pattern.move_weights if len(rates) else np.zeros(0)
+    return diagonal, ((pattern.flip_rows, pattern.flip_cols, flips), (pattern.move_rows, pattern.move_cols, moves))
+
+
+def block_liouvillian(pattern: BlockPattern, params: SpinParameters, *, as_sparse: bool = False):
+    """Liouvillian (rad/s) of one single-quantum block over all states: (S d) x (S d).
+
+    A dense ndarray, or with ``as_sparse=True`` a CSR matrix (for the Krylov route on large blocks, whose
+    Liouvillian has about a dozen elements per row).
+    """
+    diagonal, parts = _block_elements(pattern, params)
+    n = diagonal.size
+    if as_sparse:
+        rows = np.concatenate([np.arange(n), *(p[0] for p in parts)])
+        cols = np.concatenate([np.arange(n), *(p[1] for p in parts)])
+        values = np.concatenate([diagonal, *(p[2] for p in parts)])
+        return sparse.csr_matrix((values, (rows, cols)), shape=(n, n))  # repeated entries add
     L = np.diag(diagonal)
-    if len(pattern.flip_rows):
-        L[pattern.flip_rows, pattern.flip_cols] = (-1j * TWO_PI) * pattern.flip_values * params.couplings_hz[
-            pattern.flip_state, pattern.flip_pair]
-    if len(pattern.move_rows):
-        L[pattern.move_rows, pattern.move_cols] += rates @ pattern.move_weights  # unique; may meet couplings
+    for rows, cols, values in parts:
+        if len(rows):
+            L[rows, cols] += values
     return L
 
 
@@ -153,7 +172,7 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
         topology = params.topology
         roots = np.sqrt(params.populations)
         pattern = block_pattern(block, topology)
-        L = block_liouvillian(pattern, params)
+        L = block_liouvillian(pattern, params, as_sparse=resolvent.takes_krylov_route(block.size * len(params.populations)))
         start = block_start(pattern, params.populations)
         results.append(block_terms(L, pattern.detect, start, np.repeat(roots, block.size)))
         done += block.size * len(params.populations)

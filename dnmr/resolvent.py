@@ -8,11 +8,12 @@ Three exact routes, chosen per block; each only moves rounding error:
 - **Schur**: L = Q T Q^H; S by triangular solves at every frequency.  Backward stable; used where the
   eigen route is refused.
 - **Krylov** (large blocks): detailed balance makes D^-1 L D complex symmetric for D = diag(sqrt p), and
-  the detection and start vectors then coincide, so a complex-symmetric Lanczos recursion (with full
-  re-orthogonalisation in the bilinear form) reduces the block to a tridiagonal matrix whose continued
-  fraction is S.  It costs O(n^2) per step instead of the O(n^3) of a dense eigendecomposition; it is
-  refused on a (rare) serious breakdown or when its basis grows ill-conditioned, and the eigen route
-  is used instead.
+  the detection and start vectors then coincide, so a complex-symmetric Lanczos recursion (partial
+  re-orthogonalisation in the bilinear form, on the sparse Liouvillian) reduces the block to a
+  tridiagonal matrix whose continued fraction is S.  A step costs a sparse product (about a dozen
+  elements per row) plus, only when the estimated loss of orthogonality calls for it, a pass over the
+  basis, instead of the O(n^3) of a dense eigendecomposition; it is refused on a (rare) serious
+  breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.
 """
 from __future__ import annotations
 
@@ -31,9 +32,9 @@ EIGENBASIS_CONDITION_LIMIT = 1e6
 #: Lines below this fraction of the tallest peak and of the largest area are dropped (bounds the error).
 LINE_HEIGHT_CUTOFF = 1e-15
 #: Blocks at least this large go the Krylov route (below it a dense eigendecomposition is as quick).
-KRYLOV_MIN_SIZE = 160
+KRYLOV_MIN_SIZE = 80
 #: Blocks at least this large apply the Liouvillian as a sparse matrix inside the Lanczos recursion.
-SPARSE_MATVEC_SIZE = 400
+SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
 
@@ -72,15 +73,35 @@ class ContinuedFraction:
     norm: float
 
     def evaluate(self, omega: np.ndarray) -> np.ndarray:
-        """S at angular frequencies `omega` (rad/s): continued fraction, pivoted solves where it is unsafe."""
-        z = 1j * omega
+        """S at angular frequencies `omega` (rad/s): continued fraction, pivoted solves where it is unsafe.
+
+        The backward recurrence f_j = z - alpha_j - beta_j^2 / f_(j+1) is Gaussian elimination without
+        pivoting; a point is recomputed with pivoting when some |f_j| falls below 1e-8 of the size of its
+        row, max over the grid of |z - alpha_j| + |beta_j| (so the growth of rounding error stays below
+        1e8 ulp).
+        """
+        z = 1j * np.asarray(omega, dtype=float)
+        if z.size == 0:
+            return np.zeros(0, dtype=complex)
+        ends = z[[0, -1]] if z.size > 1 else z[:1]
+        b2 = self.beta ** 2
+        row = np.abs(ends[None, :] - self.alpha[:, None]).max(axis=1)
+        row[:-1] += np.abs(self.beta)
+        floor = 1e-8 * row
         f = z - self.alpha[-1]
-        smallest = np.abs(f)
-        for a, b2 in zip(self.alpha[-2::-1], (self.beta**2)[::-1]):
-            f = z - a - b2 / f
-            smallest = np.minimum(smallest, np.abs(f) / (np.abs(z - a) + abs(b2) ** 0.5))
+        magnitude = np.abs(f)
+        unsafe = magnitude < floor[-1]
+        low = np.empty(z.size, dtype=bool)
+        term = np.empty_like(f)
+        for a, b, tiny in zip(self.alpha[-2::-1].tolist(), b2[::-1].tolist(), floor[-2::-1].tolist()):
+            np.divide(b, f, out=term)
+            np.subtract(z, a, out=f)
+            f -= term
+            np.abs(f, out=magnitude)
+            np.less(magnitude, tiny, out=low)
+            unsafe |= low
         out = self.norm / f
-        unsafe = ~np.isfinite(out) | (smallest < 1e-8)
+        unsafe |= ~np.isfinite(out)
         for i in np.flatnonzero(unsafe):
             out[i] = self.norm * self._pivoted(z[i])
         return out
@@ -212,57 +233,115 @@ def schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurBl
     return SchurBlock(left=detect @ Q, triangle=T, right=Q.conj().T @ start)
 
 
-def symmetrised(L: np.ndarray, weights: np.ndarray) -> np.ndarray | None:
-    """D^-1 L D for D = diag(weights), or None unless it is complex symmetric to rounding error."""
-    S = L * (weights[None, :] / weights[:, None])
-    asymmetry = np.abs(S - S.T).max()
-    if asymmetry > 1e-12 * np.abs(S).max():
+def symmetrised(L, weights: np.ndarray):
+    """D^-1 L D for D = diag(weights) (L dense or sparse, the result alike), or None unless it is complex
+    symmetric to rounding error."""
+    if sparse.issparse(L):
+        S = sparse.diags(1.0 / weights) @ L @ sparse.diags(weights)
+        scale = abs(S).max()
+        asymmetry = abs(S - S.T).max() if S.nnz else 0.0
+    else:
+        S = L * (weights[None, :] / weights[:, None])
+        scale = np.abs(S).max()
+        asymmetry = np.abs(S - S.T).max()
+    if asymmetry > 1e-12 * scale:
         return None
     return 0.5 * (S + S.T)
 
 
-def lanczos(S: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
-    """Complex-symmetric Lanczos with full re-orthogonalisation in the bilinear form x^T y.
+def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Complex-symmetric Lanczos with partial re-orthogonalisation in the bilinear form x^T y.
 
-    Each new vector is projected out of the basis once, and once more when that removed most of it
-    ("twice is enough").  Returns the tridiagonal (alpha, beta) with
+    The loss of orthogonality q_k^T q_j is not measured but estimated by its own three-term recurrence
+    (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
+    the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
+    against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
+    keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy,
+    at O(n) work per step instead of O(n j).  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).
+
+    Parameters
+    ----------
+    S : ndarray or sparse matrix (complex symmetric)
+        The symmetrised block Liouvillian (rad/s).
+    g : ndarray
+        Starting vector (g^T g must not vanish).
     """
     n = len(g)
     Q = np.zeros((n, n), dtype=complex)
     alpha = np.zeros(n, dtype=complex)
     beta = np.zeros(max(n - 1, 0), dtype=complex)
     Q[0] = g / np.sqrt(g @ g)
-    exhausted = 1e-11 * np.abs(S).sum(axis=1).max()
-    operator = sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
+    size = float(abs(S).sum(axis=1).max())
+    exhausted = 1e-11 * size
+    operator = S.tocsr() if sparse.issparse(S) else sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
+    noise = _ROUNDING * size * np.exp(2j * np.pi * np.random.default_rng(0).random(n))
+    omega = np.zeros(n + 1, dtype=complex)       # estimates of q_j^T q_k, k <= j (omega[j] = 1)
+    omega_prev = np.zeros(n + 1, dtype=complex)  # the same for q_(j-1)
+    omega[0] = 1.0
+    again = False
     for j in range(n):
         w = operator @ Q[j]
+        if j:
+            w -= beta[j - 1] * Q[j - 1]
         alpha[j] = Q[j] @ w
-        basis = Q[: j + 1]
-        before = np.vdot(w, w).real
-        w -= (basis @ w) @ basis
-        length2 = np.vdot(w, w).real
-        if length2 < 0.5 * before:
-            w -= (basis @ w) @ basis
-            length2 = np.vdot(w, w).real
+        w -= alpha[j] * Q[j]
         if j == n - 1:
             break
+        length2 = np.vdot(w, w).real
+        b = np.sqrt(w @ w)
+        estimate = _next_orthogonality(omega, omega_prev, alpha, beta, j, b, noise)
+        if again or np.abs(estimate[: j + 1]).max() > _SEMI_ORTHOGONAL:
+            basis = Q[: j + 1]
+            before = length2
+            w -= (basis @ w) @ basis
+            length2 = np.vdot(w, w).real
+            if length2 < 0.5 * before:  # "twice is enough"
+                w -= (basis @ w) @ basis
+                length2 = np.vdot(w, w).real
+            b = np.sqrt(w @ w)
+            estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
+            again = not again
         if length2 ** 0.5 <= exhausted:
             return alpha[: j + 1], beta[:j]  # the Krylov space is exhausted: exact with fewer steps
-        b2 = w @ w
-        if abs(b2) * KRYLOV_GROWTH_LIMIT < length2:
+        if abs(b) ** 2 * KRYLOV_GROWTH_LIMIT < length2:
             return None  # serious breakdown: w is nearly isotropic in the bilinear form
-        beta[j] = np.sqrt(b2)
-        Q[j + 1] = w / beta[j]
+        beta[j] = b
+        Q[j + 1] = w / b
+        omega_prev, omega = omega, estimate
     return alpha, beta
 
 
-def krylov_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
+#: Rounding error of one Lanczos step relative to the size of the operator (unit roundoff).
+_ROUNDING = np.finfo(float).eps
+#: Estimated loss of orthogonality at which the basis is re-orthogonalised (Simon 1984).
+_SEMI_ORTHOGONAL = np.sqrt(np.finfo(float).eps)
+
+
+def _next_orthogonality(omega: np.ndarray, omega_prev: np.ndarray, alpha: np.ndarray, beta: np.ndarray,
+                        j: int, b: complex, noise: np.ndarray) -> np.ndarray:
+    """Estimates of q_(j+1)^T q_k (k <= j+1) from those of q_j and q_(j-1), by Simon's recurrence
+
+    b w_(j+1,k) = beta_k w_(j,k+1) + (alpha_k - alpha_j) w_(j,k) + beta_(k-1) w_(j,k-1) - beta_(j-1) w_(j-1,k),
+
+    with a rounding term of the size of one step's error added to each."""
+    new = np.zeros_like(omega)
+    if j:
+        t = beta[:j] * omega[1:j + 1] + (alpha[:j] - alpha[j]) * omega[:j] - beta[j - 1] * omega_prev[:j]
+        t[1:] += beta[:j - 1] * omega[:j - 1]
+        new[:j] = t
+    new[: j + 1] += noise[: j + 1]
+    new[: j + 1] /= b if b != 0 else 1e-300
+    new[j + 1] = 1.0
+    return new
+
+
+def krylov_block(L, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
     """The Krylov evaluator of a block, or None where it is not safe (see :func:`lanczos`).
 
-    `weights` are sqrt(population) of the state of each coherence; `start` must equal
-    scale x weights^2 x detect (as the engine builds it).
+    `L` is dense or sparse; `weights` are sqrt(population) of the state of each coherence; `start` must
+    equal scale x weights^2 x detect (as the engine builds it).
     """
     if np.any(weights <= 0):
         return None
@@ -288,12 +367,22 @@ def prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.nda
     return poles[keep], amplitudes[keep]
 
 
-def block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
-    """Evaluate one block by the best safe route: ('lines', (poles, amplitudes)) or ('direct', evaluator)."""
-    if len(L) >= KRYLOV_MIN_SIZE:
+def takes_krylov_route(size: int) -> bool:
+    """Whether a block of `size` coherences goes the Krylov route first (its Liouvillian then built sparse)."""
+    return size >= KRYLOV_MIN_SIZE
+
+
+def block_terms(L, detect: np.ndarray, start: np.ndarray, weights: np.ndarray):
+    """Evaluate one block by the best safe route: ('lines', (poles, amplitudes)) or ('direct', evaluator).
+
+    `L` is dense, or sparse for a block that goes the Krylov route (made dense if that route is refused).
+    """
+    if takes_krylov_route(L.shape[0]):
         fraction = krylov_block(L, detect, start, weights)
         if fraction is not None:
             return "direct", fraction
+    if sparse.issparse(L):
+        L = L.toarray()
     lines = eigen_lines(L, detect, start)
     if lines is None:
         return "direct", schur_block(L, detect, start)
