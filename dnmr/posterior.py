@@ -476,7 +476,8 @@ def sample_spectrum_posterior(
         calls[0] += 1
         if progress is not None and calls[0] % walkers == 1 and calls[0] > 1:
             progress(min(calls[0] // walkers, steps), steps)
-        return problem.residual(p) / root_scale
+        r = problem.residual(p)
+        return r / root_scale if np.isfinite(r).all() else np.full(r.size, 1e3)  # as for a model out of range
 
     rng = np.random.default_rng(seed)
     low = np.array([params[n].min for n in free], float)
