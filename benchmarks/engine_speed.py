@@ -147,6 +147,8 @@ def run_alone(n_spins: int) -> tuple[float, float]:
 
 
 def bench_seven_and_eight(six_spin_time_s: float) -> None:
+    _, m6 = run_alone(6)
+    print(f"(b) six spins alone: peak memory {m6:.0f} MiB")
     t7, m7 = run_alone(7)
     print(f"(c) seven spins, {POINTS} points: {t7:.2f} s ({t7 / six_spin_time_s:.1f} x six spins; goal < 1 s),"
           f" peak memory {m7:.0f} MiB")
