@@ -25,7 +25,7 @@ from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.report import write_report
 from dnmr.series import fit_series
-from test_series import ENTHALPY_J_MOL, write_series
+from test_series import ENTHALPY_KJ_MOL, write_series
 
 TEMPERATURES = [190.0, 270.0, 290.0, 310.0]  # k(190 K) ~ 1e-4 s^-1: far below the linewidth, a bound
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
@@ -105,7 +105,7 @@ def test_parameters_shown_are_those_of_eyring_fit_file(fitted, report):
         assert text == format_with_error(expected[key], expected[stderr_key])
     assert shown["correlation_enthalpy_entropy"][0] == pytest.approx(expected["correlation_enthalpy_entropy"], rel=1e-12)
     # the invented truth (Eyring 1935 rates for dH‡ = 60 kJ/mol) is recovered within 4 standard errors
-    assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_J_MOL / 1e3) < 4 * expected["enthalpy_stderr"]
+    assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_KJ_MOL) < 4 * expected["enthalpy_stderr"]
 
 
 def test_report_names_the_bound_its_reason_inputs_and_cautions(fitted, report):
