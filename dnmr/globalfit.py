@@ -30,14 +30,26 @@ Method
    its per-spectrum results seed every parameter, the Eyring fit of its rates
    (:func:`dnmr.activation.eyring_fit_file`, with the calibration) seeds dH‡ and dS‡.
 2. All residuals (data - fit) / (sigma_i sqrt(s_i)) are minimised together (scipy ``least_squares``,
-   trust region; the Jacobian's block structure, spectra sharing only the global parameters, is
-   given as its sparsity).  sigma_i is each spectrum's own noise estimate and s_i its error scale
-   from the single fit (noise correlation factor, times the reduced chi-square of a misfit), as in
-   :mod:`dnmr.fitting`.
+   trust region, exact subproblem on the dense Jacobian).  sigma_i is each spectrum's own noise estimate
+   and s_i its error scale from the single fit (noise correlation factor, times the reduced chi-square of
+   a misfit), as in :mod:`dnmr.fitting`.  The Jacobian is built spectrum by spectrum (spectra share only
+   the global parameters), in worker processes (``workers``): amplitude, phases and baseline exactly from
+   the spectrum's complex lineshape, the other columns by forward differences of that spectrum alone,
+   where parameters that move its own parameters in the same direction (dH‡ and dS‡ its rate, a shift and
+   its slope that shift) share one lineshape evaluation.  The fit stops once a step lowers chi-square by
+   less than 0.01^2, i.e. moves the parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, widened by the global reduced chi-square when that is
-   significantly above 1 (same rule as a single fit).  dG‡(T) = dH‡ - T dS‡ with its error from the
-   joint covariance, at 298.15 K and at the harmonic mean of the temperatures.  The calibration's own
-   uncertainty is not propagated into the global errors (the two-step Eyring comparison carries it).
+   significantly above 1 (same rule as a single fit).
+4. With a calibration, its uncertainty is added.  The calibration gives the sample temperatures T with a
+   covariance C_T (K^2): the curve's coefficient covariance, shared by all spectra, plus the scatter of
+   its points about the curve on the diagonal (:meth:`dnmr.thermometry.TemperatureCalibration.true_temperature`,
+   as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
+   equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
+   only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
+   by the chi-square).  The temperatures enter each spectrum through its rate, its shift and linewidth
+   trends and its Boltzmann populations, so this share can exceed the two-step one, which moves only the
+   Eyring plot's points.  dG‡(T) = dH‡ - T dS‡ with its error from the joint covariance, at 298.15 K and
+   at the harmonic mean of the temperatures; the calibration's share of each error is reported.
 
 Outputs (OUTDIR, atomic writes): ``global.json``, ``global.txt``, ``global_fits.png``, plus the
 two-step results in ``OUTDIR/two-step``.
@@ -47,14 +59,16 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
-from collections.abc import Sequence
+import os
+from collections.abc import Callable, Mapping, Sequence
+from concurrent import futures
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import lmfit
 import numpy as np
-from scipy import optimize, sparse
+from scipy import optimize
 
 from .activation import EyringResult, eyring_fit_file, format_with_error
 from .errors import InputError
@@ -74,6 +88,7 @@ from .kinetics import (
     boltzmann_populations,
     eyring_rate_from_enthalpy,
 )
+from .model import Model
 from .output import atomic_write_text, json_ready, save_figure
 from .series import Series, SeriesFit, fit_series, load_series
 
@@ -90,6 +105,8 @@ NUISANCE = ("amplitude", "phase0_deg", "phase1_deg", "offset_hz")
 ENTHALPY_BOUNDS_KJ_MOL = (0.0, 400.0)
 ENTROPY_BOUNDS_J_MOL_K = (-400.0, 400.0)
 FREE_ENERGY_BOUND_KJ_MOL = 50.0
+STEP_TOLERANCE_SE = 0.01  # the joint fit stops once its last step was below this many standard errors
+XTOL = GTOL = 1e-12  # backstops only: relative to |x| and to the gradient, they mean nothing in standard errors
 
 
 # --------------------------------------------------------------------------------------------------
@@ -108,8 +125,8 @@ class _Member:
     weight: float  # 1 / sqrt(s_i)
 
 
-def _member(index: int, temperature_k: float, fit: SpectrumFit, series: Series) -> _Member:
-    layout = ParameterLayout.for_model(series.model.at_temperature(temperature_k), fit.options)
+def _member(index: int, temperature_k: float, fit: SpectrumFit, model: Model) -> _Member:
+    layout = ParameterLayout.for_model(model.at_temperature(temperature_k), fit.options)
     problem = _Problem(layout, fit.ppm, fit.data, fit.noise)
     return _Member(index, temperature_k, fit, layout, problem, 1.0 / math.sqrt(fit.error_scale))
 
@@ -131,19 +148,43 @@ def _free(par: lmfit.Parameter) -> bool:
     return bool(par.vary and not par.expr)
 
 
-class _GlobalProblem:
-    """Global parameters, the map from them to each spectrum's parameters, and the residuals."""
+def _nuisance_column(name: str, values: Mapping[str, float], turned: np.ndarray, p: _Problem) -> np.ndarray | None:
+    """d(prediction)/d(`name`) of one spectrum for its amplitude, phases and baseline (exact), or None for a
+    parameter of the lineshape. `turned` is exp(i phi) S, the prediction is amplitude Re(turned) + baseline."""
+    if name == "amplitude":
+        return turned.real
+    if name == "phase0_deg":
+        return -values["amplitude"] * turned.imag * (math.pi / 180.0)
+    if name == "phase1_deg":
+        return -values["amplitude"] * turned.imag * np.radians((p.hz - p.centre) / p.span)
+    if name in p.layout.baseline_names:
+        return p.powers[:, p.layout.baseline_names.index(name)]
+    return None
 
-    def __init__(self, members: list[_Member], shifts: str, linewidth: str, fit_populations: bool,
-                 start: dict[str, tuple[float, float]]):
-        self.members, self.shifts, self.linewidth = members, shifts, linewidth
+
+def _proportion(delta: dict[str, float], other: dict[str, float]) -> float | None:
+    """c with `delta` = c `other` (changes of one spectrum's own parameters), or None when not parallel."""
+    if delta.keys() != other.keys():
+        return None
+    a = np.array(list(delta.values()))
+    b = np.array([other[n] for n in delta])
+    c = float(a @ b / (b @ b))
+    return c if np.allclose(a, c * b, rtol=1e-9, atol=0.0) else None
+
+
+class _GlobalProblem:
+    """Global parameters, the map from them to each spectrum's parameters, residuals and Jacobian blocks."""
+
+    def __init__(self, members: list[_Member], model: Model, shifts: str, linewidth: str, fit_populations: bool,
+                 start: dict[str, tuple[float, float]], mapper: Callable = map):
+        self.members, self.model, self.shifts, self.linewidth = members, model, shifts, linewidth
         self.fit_populations = fit_populations
         first = members[0].layout
         self.processes = [n[len("log10_k_"):] for n in first.rate_names]
         self.params = lmfit.Parameters()
         self._add_activation(start)
         g = self.params.valuesdict()
-        self.members = members = [_reseeded(m, self.log10_rates(g, m.temperature_k)) for m in members]
+        self.members = members = list(mapper(_reseeded, members, [self.log10_rates(g, m.temperature_k) for m in members]))
         temps = np.array([m.temperature_k for m in members])
         self.reference_k = float(temps.mean())
         self._add_shifts()
@@ -151,8 +192,13 @@ class _GlobalProblem:
         self._add_populations()
         self._add_nuisance()
         self.free = [n for n, p in self.params.items() if p.vary]
+        self.upper = np.array([self.params[n].max for n in self.free])
         sizes = [m.problem.data.size for m in members]
         self.rows = np.cumsum([0] + sizes)
+        self._fixed = self.params.valuesdict()
+        self._own = {m.index: m.fit.parameters.valuesdict() for m in members}
+        owners = [self._owner(n) for n in self.free]
+        self.columns = [np.array([j for j, o in enumerate(owners) if o is None or o == m.index]) for m in members]
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add_activation(self, start: dict[str, tuple[float, float]]) -> None:
@@ -208,6 +254,11 @@ class _GlobalProblem:
                 vary = _free(par) and n != "offset_hz"  # offsets held: the shifts are fitted (see notes)
                 self.params.add(f"s{m.index}_{n}", value=par.value, min=par.min, max=par.max, vary=vary)
 
+    def _owner(self, name: str) -> int | None:
+        """Index of the spectrum a ``s<i>_`` parameter belongs to; None for a global parameter."""
+        head = name.split("_", 1)[0]
+        return int(head[1:]) if head[0] == "s" and head[1:].isdigit() else None
+
     # ---- from global to one spectrum -------------------------------------------------------------------
     def _at(self, g: dict, name: str, t: float) -> float:
         """Value of a trend parameter `name` at temperature `t` (K)."""
@@ -221,7 +272,7 @@ class _GlobalProblem:
     def member_values(self, m: _Member, g: dict) -> dict[str, float]:
         """Every parameter of spectrum `m`'s own fit, from the global values `g`."""
         lay, t = m.layout, m.temperature_k
-        values = m.fit.parameters.valuesdict()
+        values = dict(self._own[m.index])
         values.update(zip(lay.rate_names, self.log10_rates(g, t)))
         for n in [n for names in lay.shift_names for n in names]:
             values[n] = self._at(g, n, t)
@@ -242,50 +293,166 @@ class _GlobalProblem:
             values[n] = g[f"s{m.index}_{n}"]
         return values
 
-    # ---- residuals ---------------------------------------------------------------------------------
+    # ---- residuals and derivatives ---------------------------------------------------------------------
     def values(self, x: np.ndarray) -> dict[str, float]:
         """All global parameter values with the free ones from `x`."""
-        g = self.params.valuesdict()
+        g = dict(self._fixed)
         g.update(zip(self.free, (float(v) for v in x)))
         return g
 
-    def residual(self, x: np.ndarray) -> np.ndarray:
-        """(fit - data) / (sigma_i sqrt(s_i)) of every spectrum, one after the other."""
-        g = self.values(x)
-        parts = []
-        for m in self.members:
-            try:
-                pred = m.problem.predict(self.member_values(m, g))
-                parts.append((pred - m.problem.data) / m.problem.noise.sigma * m.weight)
-            except InputError:  # parameters outside what a model allows
-                parts.append(np.full(m.problem.data.size, 1e3))
-        return np.concatenate(parts)
+    def member_residual(self, m: _Member, g: dict) -> np.ndarray:
+        """(fit - data) / (sigma_i sqrt(s_i)) of spectrum `m` at the global values `g`."""
+        try:
+            pred = m.problem.predict(self.member_values(m, g))
+        except InputError:  # parameters outside what a model allows
+            return np.full(m.problem.data.size, 1e3)
+        return (pred - m.problem.data) * (m.weight / m.problem.noise.sigma)
 
-    def sparsity(self) -> sparse.lil_matrix:
-        """Which residuals each free parameter can change (global ones: all; ``s<i>_`` ones: spectrum i's)."""
-        out = sparse.lil_matrix((int(self.rows[-1]), len(self.free)), dtype=int)
-        owner = {f"s{m.index}_": k for k, m in enumerate(self.members)}
-        for col, name in enumerate(self.free):
-            prefix = name.split("_", 1)[0] + "_"
-            k = owner.get(prefix) if prefix[0] == "s" and prefix[1:-1].isdigit() else None
-            lo, hi = (0, self.rows[-1]) if k is None else (self.rows[k], self.rows[k + 1])
-            out[lo:hi, col] = 1
+    def member_jacobian(self, k: int, x: np.ndarray) -> np.ndarray:
+        """d residual / d x of spectrum `k` in its columns ``self.columns[k]`` (the global parameters and its own).
+
+        Amplitude, phases and baseline are exact. The others are forward differences (step as scipy's,
+        sqrt(eps) max(1, |x|), turned back at an upper bound); parameters that move the spectrum's own
+        parameters in the same direction share one lineshape evaluation (dH‡ and dS‡ move only its
+        rate, a shift and its slope only that shift)."""
+        m, p = self.members[k], self.members[k].problem
+        g = self.values(x)
+        values = self.member_values(m, g)
+        out = np.zeros((p.data.size, len(self.columns[k])))
+        try:
+            turned = np.exp(1j * p.phase(values)) * p.shape(values)
+        except InputError:
+            return out
+        pred = values["amplitude"] * turned.real + p.baseline(values)
+        prefix = f"s{m.index}_"
+        evaluated: list[tuple[dict[str, float], np.ndarray]] = []  # (change of own parameters, of prediction)
+        for c, j in enumerate(self.columns[k]):
+            name = self.free[j]
+            exact = _nuisance_column(name[len(prefix):], values, turned, p) if name.startswith(prefix) else None
+            if exact is not None:
+                out[:, c] = exact
+                continue
+            h = _EPS_ROOT * max(1.0, abs(x[j]))
+            h = -h if x[j] + h > self.upper[j] else h
+            moved = self.member_values(m, {**g, name: g[name] + h})
+            delta = {n: moved[n] - values[n] for n in values if moved[n] != values[n]}
+            if not delta:
+                continue
+            for other, change in evaluated:
+                ratio = _proportion(delta, other)
+                if ratio is not None:
+                    out[:, c] = ratio * change / h
+                    break
+            else:
+                try:
+                    change = p.predict(moved) - pred
+                except InputError:
+                    continue
+                evaluated.append((delta, change))
+                out[:, c] = change / h
+        return out * (m.weight / p.noise.sigma)
+
+    def temperature_derivative(self, k: int, x: np.ndarray, step_k: float = 0.01) -> np.ndarray:
+        """d residual / d T_k of spectrum `k` (central difference, `step_k` K; T_ref held)."""
+        m, g = self.members[k], self.values(x)
+        moved = [self.member_residual(_member(m.index, m.temperature_k + s, m.fit, self.model), g)
+                 for s in (step_k, -step_k)]
+        return (moved[0] - moved[1]) / (2.0 * step_k)
+
+
+_EPS_ROOT = float(np.sqrt(np.finfo(float).eps))
+_WORKER_PROBLEM: _GlobalProblem | None = None
+_WORKER_BLAS = None
+
+
+def _start_worker(problem: _GlobalProblem | None = None) -> None:
+    """Initialise a worker process: BLAS on one thread, and the problem it evaluates (if any)."""
+    global _WORKER_PROBLEM, _WORKER_BLAS
+    _WORKER_BLAS = single_threaded_blas()
+    _WORKER_PROBLEM = problem
+
+
+def _blocks(problem: _GlobalProblem, kind: str, x: np.ndarray, ks: Sequence[int]) -> list[np.ndarray]:
+    """Residuals, Jacobian blocks or temperature derivatives (`kind`) of spectra `ks` at `x`."""
+    if kind == "residual":
+        g = problem.values(x)
+        return [problem.member_residual(problem.members[k], g) for k in ks]
+    if kind == "jacobian":
+        return [problem.member_jacobian(k, x) for k in ks]
+    return [problem.temperature_derivative(k, x) for k in ks]
+
+
+def _worker_blocks(kind: str, x: np.ndarray, ks: Sequence[int]) -> list[np.ndarray]:
+    return _blocks(_WORKER_PROBLEM, kind, x, ks)
+
+
+class _Evaluator:
+    """Evaluates a :class:`_GlobalProblem` spectrum by spectrum, in this process or in `workers` processes."""
+
+    def __init__(self, problem: _GlobalProblem, workers: int):
+        self.problem = problem
+        n = len(problem.members)
+        self.workers = max(1, min(workers, n))
+        self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
+        self.pool = (futures.ProcessPoolExecutor(self.workers, initializer=_start_worker, initargs=(problem,))
+                     if self.workers > 1 else None)
+        self.njev = 0
+
+    def close(self) -> None:
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+
+    def _each(self, kind: str, x: np.ndarray) -> list[np.ndarray]:
+        """Blocks of every spectrum, in order."""
+        if self.pool is None:
+            parts = [_blocks(self.problem, kind, x, c) for c in self.chunks]
+        else:
+            parts = list(self.pool.map(_worker_blocks, [kind] * len(self.chunks), [x] * len(self.chunks), self.chunks))
+        out: list = [None] * len(self.problem.members)
+        for chunk, blocks in zip(self.chunks, parts):
+            for k, b in zip(chunk, blocks):
+                out[k] = b
         return out
 
-    def solve(self) -> tuple[optimize.OptimizeResult, np.ndarray | None]:
-        """Least squares from the two-step start; returns the result and the covariance (None if singular)."""
-        lower = np.array([self.params[n].min for n in self.free])
-        upper = np.array([self.params[n].max for n in self.free])
-        x0 = np.clip([self.params[n].value for n in self.free], lower, upper)
-        result = optimize.least_squares(self.residual, x0, bounds=(lower, upper), jac_sparsity=self.sparsity(),
-                                        x_scale="jac", ftol=1e-10, xtol=1e-10, gtol=1e-10, method="trf",
-                                        max_nfev=200 * (len(self.free) + 1))
-        jac = result.jac.toarray() if sparse.issparse(result.jac) else np.asarray(result.jac)
-        try:
-            covariance = np.linalg.inv(jac.T @ jac)
-        except np.linalg.LinAlgError:
-            covariance = None
-        return result, covariance
+    def residual(self, x: np.ndarray) -> np.ndarray:
+        """Residuals of every spectrum, one after the other."""
+        return np.concatenate(self._each("residual", x))
+
+    def jacobian(self, x: np.ndarray) -> np.ndarray:
+        """The full (dense) Jacobian, assembled from the spectra's blocks."""
+        self.njev += 1
+        rows = self.problem.rows
+        out = np.zeros((int(rows[-1]), len(self.problem.free)))
+        for k, block in enumerate(self._each("jacobian", x)):
+            out[rows[k]:rows[k + 1], self.problem.columns[k]] = block
+        return out
+
+    def temperature_jacobian(self, x: np.ndarray) -> np.ndarray:
+        """d residuals / d T (one column per spectrum, K^-1)."""
+        rows = self.problem.rows
+        out = np.zeros((int(rows[-1]), len(self.problem.members)))
+        for k, column in enumerate(self._each("temperature", x)):
+            out[rows[k]:rows[k + 1], k] = column
+        return out
+
+
+def _solve(problem: _GlobalProblem, evaluator: _Evaluator) -> tuple[optimize.OptimizeResult, np.ndarray | None]:
+    """Least squares from the two-step start; returns the result and (J^T J)^-1 (None if singular)."""
+    lower = np.array([problem.params[n].min for n in problem.free])
+    x0 = np.clip([problem.params[n].value for n in problem.free], lower, problem.upper)
+    # A Gauss-Newton step that lowers the cost (chi-square / 2) by dF moved the parameters by about sqrt(2 dF)
+    # joint standard errors, so stop when dF < STEP_TOLERANCE_SE^2 / 2: as a fraction of the cost, at most
+    # that over the starting cost (steps then converge quickly: the next is smaller still).
+    start = evaluator.residual(x0)
+    ftol = max(0.5 * STEP_TOLERANCE_SE ** 2 / max(0.5 * float(start @ start), 1e-300), float(np.finfo(float).eps))
+    result = optimize.least_squares(evaluator.residual, x0, jac=evaluator.jacobian, bounds=(lower, problem.upper),
+                                    x_scale="jac", ftol=min(ftol, 1e-4), xtol=XTOL, gtol=GTOL, method="trf",
+                                    max_nfev=200 * (len(problem.free) + 1))
+    try:
+        covariance = np.linalg.inv(result.jac.T @ result.jac)
+    except np.linalg.LinAlgError:
+        covariance = None
+    return result, covariance
 
 
 # --------------------------------------------------------------------------------------------------
@@ -303,13 +470,16 @@ class ActivationEstimate:
     enthalpy_kj_mol, entropy_j_mol_k : float
         dH‡ (kJ/mol) and dS‡ (J/(mol K)).
     covariance : ndarray
-        2x2 covariance of (dH‡ in kJ/mol, dS‡ in J/(mol K)).
+        2x2 covariance of (dH‡ in kJ/mol, dS‡ in J/(mol K)), the temperature calibration's part included.
+    calibration_covariance : ndarray or None
+        The part of `covariance` that the temperature calibration brings in (None: no calibration).
     """
 
     process: str
     enthalpy_kj_mol: float
     entropy_j_mol_k: float
     covariance: np.ndarray
+    calibration_covariance: np.ndarray | None = None
 
     @property
     def enthalpy_stderr(self) -> float:
@@ -331,6 +501,14 @@ class ActivationEstimate:
         grad = np.array([1.0, -temperature_k / 1e3])
         return (self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3,
                 float(math.sqrt(grad @ self.covariance @ grad)))
+
+    def calibration_stderr(self, temperature_k: float) -> dict[str, float]:
+        """The calibration's share of the standard errors (what it alone contributes, in quadrature) of
+        dH‡ (kJ/mol), dS‡ (J/(mol K)) and dG‡ at `temperature_k` (K, kJ/mol); NaN without a calibration."""
+        cov = np.full((2, 2), math.nan) if self.calibration_covariance is None else self.calibration_covariance
+        grad = np.array([1.0, -temperature_k / 1e3])
+        return {"enthalpy_kj_mol": float(math.sqrt(cov[0, 0])), "entropy_j_mol_k": float(math.sqrt(cov[1, 1])),
+                "gibbs_kj_mol": float(math.sqrt(grad @ cov @ grad))}
 
     def ln_rate(self, temperature_k: float) -> tuple[float, float]:
         """ln(k / s^-1) and its standard error at `temperature_k` (K)."""
@@ -371,6 +549,8 @@ class GlobalFit:
         shifts, linewidth, populations, calibration used.
     notes : list of str
         Remarks.
+    function_evaluations, jacobian_evaluations : int
+        Residual and Jacobian evaluations of the joint least squares (all spectra each).
     """
 
     series: Series
@@ -387,6 +567,8 @@ class GlobalFit:
     error_scale: float
     options: dict
     notes: list[str] = field(default_factory=list)
+    function_evaluations: int = 0
+    jacobian_evaluations: int = 0
 
     @property
     def harmonic_mean_temperature_k(self) -> float:
@@ -403,7 +585,14 @@ class GlobalFit:
                "correlation_enthalpy_entropy": a.correlation,
                "enthalpy_kcal_mol": a.enthalpy_kj_mol * KCAL_PER_KJ, "enthalpy_kcal_stderr": a.enthalpy_stderr * KCAL_PER_KJ,
                "entropy_cal_mol_k": a.entropy_j_mol_k * KCAL_PER_KJ, "entropy_cal_stderr": a.entropy_stderr * KCAL_PER_KJ,
-               "gibbs_298_kcal_mol": g298[0] * KCAL_PER_KJ, "gibbs_298_kcal_stderr": g298[1] * KCAL_PER_KJ}
+               "gibbs_298_kcal_mol": g298[0] * KCAL_PER_KJ, "gibbs_298_kcal_stderr": g298[1] * KCAL_PER_KJ,
+               "calibration_error_included": a.calibration_covariance is not None}
+        if a.calibration_covariance is not None:
+            share, share_hm = a.calibration_stderr(STANDARD_TEMPERATURE_K), a.calibration_stderr(t_hm)
+            out["calibration_share_stderr"] = {"enthalpy_kj_mol": share["enthalpy_kj_mol"],
+                                               "entropy_j_mol_k": share["entropy_j_mol_k"],
+                                               "gibbs_298_kj_mol": share["gibbs_kj_mol"],
+                                               "gibbs_hm_kj_mol": share_hm["gibbs_kj_mol"]}
         k = self.activation.index(a)
         out["rates"] = []
         for t, t_set, fit in zip(self.temperatures_k, self.setpoints_k, self.fits):
@@ -440,6 +629,7 @@ class GlobalFit:
             "two_step_folder": str(self.outdir / TWO_STEP_FOLDER), "options": self.options,
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom, "error_scale": self.error_scale,
+            "function_evaluations": self.function_evaluations, "jacobian_evaluations": self.jacobian_evaluations,
             "parameters": self.parameters, "notes": self.notes,
             "spectra": [{"file": f.source, "setpoint_k": float(s), "temperature_k": float(t)}
                         for f, s, t in zip(self.fits, self.setpoints_k, self.temperatures_k)],
@@ -462,7 +652,16 @@ class GlobalFit:
                       f"  dS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
                       f"  correlation of dH‡ and dS‡: {a.correlation:.4f}",
                       f"  dG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
-                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol", ""]
+                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
+            if a.calibration_covariance is not None:
+                share, share_hm = a.calibration_stderr(STANDARD_TEMPERATURE_K), a.calibration_stderr(t_hm)
+                lines.append(f"  of these errors the temperature calibration alone gives: dH‡ ± "
+                             f"{share['enthalpy_kj_mol']:.2g} kJ/mol, dS‡ ± {share['entropy_j_mol_k']:.2g} J/(mol K), "
+                             f"dG‡(298.15 K) ± {share['gibbs_kj_mol']:.2g}, dG‡({t_hm:.1f} K) ± "
+                             f"{share_hm['gibbs_kj_mol']:.2g} kJ/mol")
+            else:
+                lines.append("  temperatures taken as exact: no calibration error included")
+            lines.append("")
         lines += ["global against two-step (per-temperature rates, then Eyring):",
                   f"  {'process':<14} {'quantity':<30} {'global':>20} {'two-step':>20} {'difference':>11}"]
         for row in self.comparison():
@@ -509,32 +708,44 @@ def _prepare(outdir: Path, overwrite: bool) -> None:
         raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
 
 
-def _true_temperatures(series: Series, calibration: "TemperatureCalibration | None", used: list[int]) -> np.ndarray:
+def _true_temperatures(series: Series, calibration: "TemperatureCalibration | None",
+                       used: list[int]) -> tuple[np.ndarray, np.ndarray | None]:
+    """Sample temperatures (K) of the spectra `used` and their covariance (K^2; None without a calibration)."""
     setpoints = np.array([series.spectra[i].temperature_k for i in used])
     if calibration is None:
-        return setpoints
+        return setpoints, None
     where = [f"{series.spectra[i].where}.temperature_k" for i in used]
-    return calibration.true_temperature(setpoints, source=str(series.source), where=where).temperature_k
+    true = calibration.true_temperature(setpoints, source=str(series.source), where=where)
+    return true.temperature_k, true.covariance
 
 
-def _stderr_table(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None, scale: float) -> dict:
+def _calibration_covariance(evaluator: _Evaluator, x: np.ndarray, jac: np.ndarray, inverse: np.ndarray,
+                            temperature_covariance: np.ndarray) -> np.ndarray:
+    """Covariance of the free parameters that the temperatures' covariance (K^2) brings in.
+
+    The optimum x(T) moves with the sample temperatures: differentiating J^T r = 0 gives
+    dx/dT = -(J^T J)^-1 J^T dr/dT (first order, as the covariance itself), so the temperatures add
+    (dx/dT) C_T (dx/dT)^T. Not widened by the chi-square: it is the calibration's own uncertainty."""
+    sensitivity = -inverse @ (jac.T @ evaluator.temperature_jacobian(x))
+    return sensitivity @ temperature_covariance @ sensitivity.T
+
+
+def _stderr_table(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None) -> dict:
     g = problem.values(x)
-    errors = {} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance) * scale)))
+    errors = {} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance))))
     return {n: {"value": v, "stderr": float(errors.get(n, math.nan)), "vary": n in problem.free} for n, v in g.items()}
 
 
-def _activation(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None, scale: float,
-                names: list[str]) -> list[ActivationEstimate]:
+def _activation(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None,
+                from_calibration: np.ndarray | None, names: list[str]) -> list[ActivationEstimate]:
     g = problem.values(x)
     out = []
     for ident, name in zip(problem.processes, names):
         keys = [f"enthalpy_kj_mol_{ident}", f"entropy_j_mol_k_{ident}"]
-        if covariance is None:
-            cov = np.full((2, 2), math.nan)
-        else:
-            idx = [problem.free.index(k) for k in keys]
-            cov = covariance[np.ix_(idx, idx)] * scale
-        out.append(ActivationEstimate(name, g[keys[0]], g[keys[1]], cov))
+        idx = np.ix_(*[[problem.free.index(k) for k in keys]] * 2)
+        cov = np.full((2, 2), math.nan) if covariance is None else covariance[idx]
+        calib = None if from_calibration is None else from_calibration[idx]
+        out.append(ActivationEstimate(name, g[keys[0]], g[keys[1]], cov, calib))
     return out
 
 
@@ -586,13 +797,13 @@ def fit_series_global(
         Replace earlier results in `outdir`.
     calibration : TemperatureCalibration, optional
         The series' temperatures are set-points: the global fit uses the calibrated sample temperatures
-        (and so does the two-step Eyring comparison, with the calibration's error).
+        and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
     shifts : {"constant", "linear"}
         Shifts the same at every temperature, or linear in T.
     linewidth : {"per-spectrum", "linear"}
         Intrinsic linewidths fitted per spectrum, or linear in T.
     workers : int, optional
-        Worker processes for the two-step fit.
+        Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process).
     progress : bool, optional
         Progress bar of the two-step fit.
 
@@ -605,48 +816,69 @@ def fit_series_global(
     outdir = Path(outdir)
     _prepare(outdir, overwrite)
     two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    return _global_from_two_step(series, two, outdir, overwrite, calibration, shifts, linewidth)
+    result = _global_fit(series, two, outdir, calibration, shifts, linewidth, workers)
+    _write(result, overwrite)
+    return result
 
 
-def _global_from_two_step(series: Series, two: SeriesFit, outdir: Path, overwrite: bool,
-                          calibration: "TemperatureCalibration | None", shifts: str, linewidth: str) -> GlobalFit:
-    """The global fit seeded from a finished two-step fit `two`, and its outputs."""
+def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "TemperatureCalibration | None",
+                shifts: str, linewidth: str, workers: int | None) -> GlobalFit:
+    """The global fit seeded from a finished two-step fit `two` (its rates.csv in `outdir`/two-step)."""
     used = [i for i, o in enumerate(two.outcomes) if o.fitted]
     if len(used) < 3:
         raise InputError(f"only {len(used)} spectra could be fitted; a global fit needs at least 3", where="--global")
-    temps = _true_temperatures(series, calibration, used)
+    temps, temperature_covariance = _true_temperatures(series, calibration, used)
     names = series.model.process_names()
     eyring = eyring_fit_file(outdir / TWO_STEP_FOLDER / "rates.csv", calibration=calibration)
-    members = [_member(i, float(t), two.outcomes[i].fit, series) for i, t in zip(used, temps)]
+    members = [_member(i, float(t), two.outcomes[i].fit, series.model) for i, t in zip(used, temps)]
     idents = [n[len("log10_k_"):] for n in members[0].layout.rate_names]
     fit_populations = series.options.populations == "free" and len(series.model.states) > 1
-    problem = _GlobalProblem(members, shifts, linewidth, fit_populations, _eyring_start(eyring, names, idents))
+    start = _eyring_start(eyring, names, idents)
+    workers = max(1, min(workers or os.cpu_count() or 1, len(members)))
     with single_threaded_blas():
-        solution, covariance = problem.solve()
+        if workers > 1:
+            with futures.ProcessPoolExecutor(workers, initializer=_start_worker) as pool:
+                problem = _GlobalProblem(members, series.model, shifts, linewidth, fit_populations, start, pool.map)
+        else:
+            problem = _GlobalProblem(members, series.model, shifts, linewidth, fit_populations, start)
+        evaluator = _Evaluator(problem, workers)
+        try:
+            solution, inverse = _solve(problem, evaluator)
+            from_calibration = (None if temperature_covariance is None or inverse is None else
+                                _calibration_covariance(evaluator, solution.x, solution.jac, inverse,
+                                                        temperature_covariance))
+        finally:
+            evaluator.close()
     chi2 = float(2.0 * solution.cost)
     dof = int(problem.rows[-1]) - len(problem.free)
     scale, _, notes = _error_scale(chi2, dof, NoiseEstimate(1.0, 1.0, 0, "per-spectrum estimates"))
+    covariance = None if inverse is None else inverse * scale
     if covariance is None:
         notes.append("the joint covariance is singular: some parameters are not determined; errors are not given")
+    elif from_calibration is not None:
+        covariance = covariance + from_calibration
     if not solution.success:
         notes.append(f"the optimiser stopped without converging: {solution.message}")
-    if calibration is not None:
-        notes.append("temperatures are calibrated sample temperatures; the calibration's uncertainty is carried "
-                     "by the two-step comparison only")
+    activation = _activation(problem, solution.x, covariance, from_calibration, names)
+    if from_calibration is not None:
+        notes.append("temperatures are calibrated sample temperatures; the calibration's uncertainty (curve and "
+                     "scatter of its points) is included in the errors, propagated through the fit's optimum "
+                     "(its share is listed with each process)")
+    elif calibration is None:
+        notes.append("no temperature calibration given: temperatures taken as exact (no calibration error included)")
     g = problem.values(solution.x)
     fits = [dataclasses.replace(m.fit, fitted=m.problem.predict(problem.member_values(m, g))) for m in members]
-    result = GlobalFit(
-        series=series, outdir=outdir, activation=_activation(problem, solution.x, covariance, scale, names),
-        two_step=eyring, temperatures_k=temps,
+    return GlobalFit(
+        series=series, outdir=outdir, activation=activation, two_step=eyring, temperatures_k=temps,
         setpoints_k=np.array([series.spectra[i].temperature_k for i in used]), fits=fits,
-        parameters=_stderr_table(problem, solution.x, covariance, scale), chi_square=chi2,
+        parameters=_stderr_table(problem, solution.x, covariance), chi_square=chi2,
         reduced_chi_square=chi2 / max(dof, 1), degrees_of_freedom=dof, error_scale=float(scale),
         options={"shifts": shifts, "linewidth": linewidth,
                  "populations": "free energies fitted" if fit_populations else "from the model",
                  "calibration": None if calibration is None else calibration.to_dict(),
+                 "calibration_error_included": from_calibration is not None,
                  "reference_temperature_k": problem.reference_k},
         notes=list(two.notes) + notes + [f"{o.spectrum.where} left out: its two-step fit failed"
                                          for o in two.failures],
+        function_evaluations=int(solution.nfev), jacobian_evaluations=int(solution.njev),
     )
-    _write(result, overwrite)
-    return result

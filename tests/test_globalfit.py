@@ -6,6 +6,7 @@ CODATA constants from scipy.constants, for invented activation parameters, plus 
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from pathlib import Path
@@ -19,7 +20,9 @@ from closed_forms import mcconnell_two_site
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.globalfit import fit_series_global
+from dnmr.globalfit import _global_fit, fit_series_global
+from dnmr.series import fit_series, load_series
+from dnmr.thermometry import fit_temperature_calibration
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 55.0, -12.0  # invented
@@ -123,3 +126,58 @@ def test_cli_global(series_file, tmp_path):
     again = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global"])
     assert again.exit_code == 2
     assert len(again.output.strip().splitlines()) == 1
+
+
+# invented calibration points (set-point, true sample temperature), K: a VT unit reading about 1.5 K high
+CALIBRATION_SETPOINTS = [255.0, 265.0, 275.0, 285.0, 295.0, 305.0, 315.0, 325.0]
+CALIBRATION_TRUE = [253.3, 263.8, 273.4, 283.6, 293.2, 303.7, 313.3, 323.6]
+
+
+@pytest.fixture(scope="module")
+def calibrated(series_file, tmp_path_factory):
+    """The global fit with a calibration whose points lie on its curve (scatter 0): its whole temperature
+    covariance is the curve's, V C_theta V^T, which two coefficient directions span."""
+    cal = fit_temperature_calibration(CALIBRATION_SETPOINTS, CALIBRATION_TRUE)
+    cal = dataclasses.replace(cal, scatter_k=0.0)
+    return cal, fit_series_global(series_file, tmp_path_factory.mktemp("cal") / "g", calibration=cal, workers=2,
+                                  progress=False)
+
+
+def test_calibration_error_matches_refits_at_perturbed_calibrations(calibrated):
+    # Brute force against the propagated covariance: refit at the calibration's coefficients moved by
+    # +-2 along each column L_j of the Cholesky factor of their covariance; for a response linear over
+    # that range sum_j d_j d_j^T, d_j = (x(+) - x(-)) / 4, is exactly the propagated covariance
+    # (first-order error propagation, common practice).
+    cal, result = calibrated
+    series = load_series(result.series.source)
+    two = fit_series(series, result.outdir / "two-step", resume=True, workers=1, progress=False)
+    chol = np.linalg.cholesky(cal.coefficient_covariance)
+    brute = np.zeros((2, 2))
+    for j in range(chol.shape[1]):
+        ends = []
+        for sign in (2.0, -2.0):
+            moved = dataclasses.replace(cal, coefficients=cal.coefficients + sign * chol[:, j])
+            a = _global_fit(series, two, result.outdir, moved, "constant", "per-spectrum", 2).activation[0]
+            ends.append(np.array([a.enthalpy_kj_mol, a.entropy_j_mol_k]))
+        d = (ends[0] - ends[1]) / 4.0
+        brute += np.outer(d, d)
+    a = result.activation[0]
+    propagated = a.calibration_covariance
+    assert np.sqrt(np.diag(propagated)) == pytest.approx(np.sqrt(np.diag(brute)), rel=0.05)
+    assert propagated[0, 1] / np.sqrt(propagated[0, 0] * propagated[1, 1]) == pytest.approx(
+        brute[0, 1] / np.sqrt(brute[0, 0] * brute[1, 1]), abs=0.02)
+    # the reported errors hold the fit's part and the calibration's: both are positive
+    assert np.all(np.diag(a.covariance) > np.diag(propagated)) and np.all(np.diag(propagated) > 0)
+
+
+def test_calibration_error_reported(calibrated, result):
+    _, fit = calibrated
+    data = json.loads((fit.outdir / "global.json").read_text())
+    assert data["calibration_error_included"] is True and data["options"]["calibration_error_included"] is True
+    share = data["calibration_share_stderr"]
+    assert 0 < share["enthalpy_kj_mol"] < data["enthalpy_stderr"]
+    assert 0 < share["gibbs_298_kj_mol"] < data["gibbs_298_stderr"]
+    assert "calibration alone gives" in (fit.outdir / "global.txt").read_text()
+    # without a calibration nothing is claimed
+    plain = json.loads((result.outdir / "global.json").read_text())
+    assert plain["calibration_error_included"] is False and "calibration_share_stderr" not in plain
