@@ -21,6 +21,7 @@ import numpy as np
 
 from .errors import InputError
 from .kinetics import (
+    Jump,
     boltzmann_populations,
     check_stationary,
     exchange_jumps,
@@ -301,9 +302,8 @@ class Model:
         object.__setattr__(self, "groups", self._checked_groups())
         self._check_couplings()
         self._check_exchanges()
-        populations = self.populations()
         if self.exchanges:
-            check_stationary(rate_matrix(len(self.states), exchange_jumps(self)), populations)
+            check_stationary(rate_matrix(len(self.states), self.jumps()), self.populations())
 
     # --- checks -------------------------------------------------------------------------------
     def _checked_heteronuclei(self) -> dict[str, str]:
@@ -455,7 +455,23 @@ class Model:
         return [ex.name if ex.name else str(i) for i, ex in enumerate(self.exchanges)]
 
     def populations(self) -> np.ndarray:
-        """Equilibrium populations of the states (sum 1)."""
+        """Equilibrium populations of the states (sum 1); worked out once per model (a model is immutable)."""
+        cached = self.__dict__.get("_populations")
+        if cached is None:
+            cached = self._equilibrium_populations()
+            object.__setattr__(self, "_populations", cached)
+        return cached.copy()
+
+    def jumps(self) -> tuple[Jump, ...]:
+        """All elementary jumps at the model's rates, reverses included (:func:`dnmr.kinetics.exchange_jumps`);
+        worked out once per model."""
+        cached = self.__dict__.get("_jumps")
+        if cached is None:
+            cached = tuple(exchange_jumps(self))
+            object.__setattr__(self, "_jumps", cached)
+        return cached
+
+    def _equilibrium_populations(self) -> np.ndarray:
         if self.states[0].population is None:
             if self.temperature_k is None:
                 raise InputError(

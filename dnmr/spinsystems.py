@@ -43,7 +43,7 @@ from math import comb
 
 import numpy as np
 
-from .kinetics import Jump, exchange_jumps
+from .kinetics import Jump
 from .liouville import CoherenceBlock, coherence_blocks
 from .model import Model
 from .nuclei import nucleus
@@ -91,7 +91,7 @@ class SpinParameters:
         if not model.is_plain:
             raise ValueError("a model with groups or heteronuclei is a sum of spin systems: use spin_systems")
         return cls(model.shifts_hz(), model.couplings_matrix_hz(), model.linewidths_hz(), model.populations(),
-                   tuple(exchange_jumps(model)))
+                   model.jumps())
 
     @property
     def topology(self) -> tuple:
@@ -342,7 +342,7 @@ def spin_systems(model: Model) -> list[SpinParameters]:
 
     Systems that carry no population (states of population 0) are left out.
     """
-    jumps = exchange_jumps(model)
+    jumps = model.jumps()
     couplings = coupling_array(model)
     populations = model.populations()
     numbers = (model.shifts_hz(), couplings, model.linewidths_hz(), populations, jumps)
