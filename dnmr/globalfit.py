@@ -502,19 +502,27 @@ class ActivationEstimate:
         return (self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3,
                 float(math.sqrt(grad @ self.covariance @ grad)))
 
-    def calibration_stderr(self, temperature_k: float) -> dict[str, float]:
-        """The calibration's share of the standard errors (what it alone contributes, in quadrature) of
-        dH‡ (kJ/mol), dS‡ (J/(mol K)) and dG‡ at `temperature_k` (K, kJ/mol); NaN without a calibration."""
-        cov = np.full((2, 2), math.nan) if self.calibration_covariance is None else self.calibration_covariance
-        grad = np.array([1.0, -temperature_k / 1e3])
-        return {"enthalpy_kj_mol": float(math.sqrt(cov[0, 0])), "entropy_j_mol_k": float(math.sqrt(cov[1, 1])),
-                "gibbs_kj_mol": float(math.sqrt(grad @ cov @ grad))}
+    def error_shares(self) -> dict[str, np.ndarray]:
+        """The two parts of `covariance` (2x2, as it): ``"spectra"`` (the fit's own) and ``"calibration"``
+        (what the temperature calibration adds); NaN without a calibration."""
+        calibration = (np.full((2, 2), math.nan) if self.calibration_covariance is None
+                       else self.calibration_covariance)
+        return {"spectra": self.covariance - np.nan_to_num(calibration), "calibration": calibration}
 
     def ln_rate(self, temperature_k: float) -> tuple[float, float]:
         """ln(k / s^-1) and its standard error at `temperature_k` (K)."""
         grad = np.array([-1e3 / (GAS_CONSTANT * temperature_k), 1.0 / GAS_CONSTANT])
         value = math.log(eyring_rate_from_enthalpy(self.enthalpy_kj_mol, self.entropy_j_mol_k, temperature_k))
         return value, float(math.sqrt(grad @ self.covariance @ grad))
+
+
+def _share(covariance: np.ndarray, harmonic_mean_k: float) -> dict[str, float]:
+    """Standard errors from a 2x2 covariance of (dH‡ kJ/mol, dS‡ J/(mol K)): dH‡, dS‡, dG‡ at 298.15 K and
+    at `harmonic_mean_k` (K)."""
+    gibbs = [np.array([1.0, -t / 1e3]) for t in (STANDARD_TEMPERATURE_K, harmonic_mean_k)]
+    return {"enthalpy_kj_mol": float(math.sqrt(covariance[0, 0])), "entropy_j_mol_k": float(math.sqrt(covariance[1, 1])),
+            "gibbs_298_kj_mol": float(math.sqrt(gibbs[0] @ covariance @ gibbs[0])),
+            "gibbs_hm_kj_mol": float(math.sqrt(gibbs[1] @ covariance @ gibbs[1]))}
 
 
 @dataclass
@@ -588,11 +596,8 @@ class GlobalFit:
                "gibbs_298_kcal_mol": g298[0] * KCAL_PER_KJ, "gibbs_298_kcal_stderr": g298[1] * KCAL_PER_KJ,
                "calibration_error_included": a.calibration_covariance is not None}
         if a.calibration_covariance is not None:
-            share, share_hm = a.calibration_stderr(STANDARD_TEMPERATURE_K), a.calibration_stderr(t_hm)
-            out["calibration_share_stderr"] = {"enthalpy_kj_mol": share["enthalpy_kj_mol"],
-                                               "entropy_j_mol_k": share["entropy_j_mol_k"],
-                                               "gibbs_298_kj_mol": share["gibbs_kj_mol"],
-                                               "gibbs_hm_kj_mol": share_hm["gibbs_kj_mol"]}
+            for part, cov in a.error_shares().items():
+                out[f"{part}_share_stderr"] = _share(cov, t_hm)
         k = self.activation.index(a)
         out["rates"] = []
         for t, t_set, fit in zip(self.temperatures_k, self.setpoints_k, self.fits):
@@ -654,11 +659,13 @@ class GlobalFit:
                       f"  dG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
                       f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
             if a.calibration_covariance is not None:
-                share, share_hm = a.calibration_stderr(STANDARD_TEMPERATURE_K), a.calibration_stderr(t_hm)
-                lines.append(f"  of these errors the temperature calibration alone gives: dH‡ ± "
-                             f"{share['enthalpy_kj_mol']:.2g} kJ/mol, dS‡ ± {share['entropy_j_mol_k']:.2g} J/(mol K), "
-                             f"dG‡(298.15 K) ± {share['gibbs_kj_mol']:.2g}, dG‡({t_hm:.1f} K) ± "
-                             f"{share_hm['gibbs_kj_mol']:.2g} kJ/mol")
+                for part, cov in a.error_shares().items():
+                    share = _share(cov, t_hm)
+                    lines.append(f"  errors from the {'spectra' if part == 'spectra' else 'temperature calibration'} "
+                                 f"alone: dH‡ ± {share['enthalpy_kj_mol']:.2g} kJ/mol, dS‡ ± "
+                                 f"{share['entropy_j_mol_k']:.2g} J/(mol K), dG‡(298.15 K) ± "
+                                 f"{share['gibbs_298_kj_mol']:.2g}, dG‡({t_hm:.1f} K) ± "
+                                 f"{share['gibbs_hm_kj_mol']:.2g} kJ/mol")
             else:
                 lines.append("  temperatures taken as exact: no calibration error included")
             lines.append("")
@@ -859,6 +866,9 @@ def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "Temp
         covariance = covariance + from_calibration
     if not solution.success:
         notes.append(f"the optimiser stopped without converging: {solution.message}")
+    if scale > 1.0 and shifts == "constant":
+        notes.append("the spectra do not fit with the same shifts at every temperature; if the slow-exchange "
+                     "spectra show the shifts moving, fit them linear in T (--shifts linear, shifts=\"linear\")")
     activation = _activation(problem, solution.x, covariance, from_calibration, names)
     if from_calibration is not None:
         notes.append("temperatures are calibrated sample temperatures; the calibration's uncertainty (curve and "

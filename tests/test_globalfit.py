@@ -174,10 +174,11 @@ def test_calibration_error_reported(calibrated, result):
     _, fit = calibrated
     data = json.loads((fit.outdir / "global.json").read_text())
     assert data["calibration_error_included"] is True and data["options"]["calibration_error_included"] is True
-    share = data["calibration_share_stderr"]
-    assert 0 < share["enthalpy_kj_mol"] < data["enthalpy_stderr"]
-    assert 0 < share["gibbs_298_kj_mol"] < data["gibbs_298_stderr"]
-    assert "calibration alone gives" in (fit.outdir / "global.txt").read_text()
+    share, own = data["calibration_share_stderr"], data["spectra_share_stderr"]
+    for key, total in (("enthalpy_kj_mol", "enthalpy_stderr"), ("gibbs_298_kj_mol", "gibbs_298_stderr")):
+        assert 0 < share[key] < data[total]
+        assert math.hypot(share[key], own[key]) == pytest.approx(data[total])  # the parts add in quadrature
+    assert "temperature calibration alone" in (fit.outdir / "global.txt").read_text()
     # without a calibration nothing is claimed
     plain = json.loads((result.outdir / "global.json").read_text())
     assert plain["calibration_error_included"] is False and "calibration_share_stderr" not in plain
