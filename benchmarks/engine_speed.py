@@ -130,31 +130,34 @@ def bench_six_spins() -> tuple[float, float]:
     return t_engine / t_dense, t_engine
 
 
-def run_alone(n_spins: int) -> tuple[float, float]:
-    """CPU time (s) and peak resident memory (MiB) of one simulation of the n-spin chain, in a fresh process
-    (so the peak belongs to that simulation alone and no tracing slows it down)."""
+def run_alone(n_spins: int) -> tuple[float, float, float]:
+    """CPU time (s), peak resident memory (MiB) and the resident memory before the simulation (MiB: Python
+    and the imported libraries) of one simulation of the n-spin chain, in a fresh process (so the peak
+    belongs to that simulation alone and no tracing slows it down)."""
     code = (
         "import resource, sys, time; sys.path.insert(0, %r)\n"
         "from threadpoolctl import threadpool_limits\n"
         "import dnmr, engine_speed\n"
         "model = engine_speed.six_spin_model(%d)\n"
+        "before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024\n"
         "with threadpool_limits(%r):\n"
         "    t0 = time.process_time(); dnmr.simulate(model); t = time.process_time() - t0\n"
-        "print(t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)\n"
+        "print(t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, before)\n"
     ) % (str(Path(__file__).parent), n_spins, THREADS)
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
-    return float(out[0]), float(out[1])
+    return float(out[0]), float(out[1]), float(out[2])
 
 
 def bench_seven_and_eight(six_spin_time_s: float) -> None:
-    _, m6 = run_alone(6)
-    print(f"(b) six spins alone: peak memory {m6:.0f} MiB")
-    t7, m7 = run_alone(7)
+    _, m6, base = run_alone(6)
+    print(f"    peak resident memory of a process that simulates six spins: {m6:.0f} MiB"
+          f" ({base:.0f} MiB of it Python and the libraries before the simulation)")
+    t7, m7, base = run_alone(7)
     print(f"(c) seven spins, {POINTS} points: {t7:.2f} s ({t7 / six_spin_time_s:.1f} x six spins; goal < 1 s),"
-          f" peak memory {m7:.0f} MiB")
-    t8, m8 = run_alone(8)
+          f" peak memory {m7:.0f} MiB ({base:.0f} MiB before the simulation)")
+    t8, m8, base = run_alone(8)
     print(f"(e) eight spins, {POINTS} points: {t8:.1f} s (goal: a few minutes), peak memory {m8:.0f} MiB"
-          f" (goal <= 24 GB)")
+          f" ({base:.0f} MiB before the simulation; goal <= 24 GB)")
 
 
 def dimethyl_models() -> tuple[dnmr.Model, dnmr.Model]:
