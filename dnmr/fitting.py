@@ -47,7 +47,12 @@ Method
    fast exchange the data give a lower bound (the averaged line's excess width is below what the noise
    resolves).  Either way the standard error is left empty.  A two-sided interval far from symmetric
    about the best fit, or from the quadratic error, is reported as an interval instead of an error bar.
-   A one-sided bound at this level is an 84 % confidence limit.
+   A one-sided bound at this level is an 84 % confidence limit.  An error bar that would reach past a
+   limit of the allowed range is never quoted: the range, not the data, cut it.  A profile that finds
+   a better fit restarts the fit from there (up to ``PROFILE_RESTARTS`` times); the last profile keeps
+   going, counts the rise from the lowest chi-square it found (which can only widen the interval), and
+   the fit is flagged "unstable" with its rates given as intervals or bounds.  Without a profile a rate
+   within its error of a limit is "undetermined".
 """
 from __future__ import annotations
 
@@ -94,6 +99,9 @@ SECOND_START_RATIO = 2.0
 """A second local minimum of the scan is refined too when its chi-square is within this factor of the best."""
 ASYMMETRY_LIMIT = 1.5
 """Half-widths of the profile interval differing by more than this ratio make it an interval."""
+PROFILE_RESTARTS = 3
+"""Times the fit is restarted from a better minimum the profile found; the profile after the last
+restart keeps what it finds and reports the rate as unstable."""
 MAD_TO_SIGMA = 1.4826
 """Median absolute deviation to standard deviation, for normal noise."""
 CLIP_SIGMAS = 3.5
@@ -694,6 +702,10 @@ class Profile:
         log10 k where the rise reaches the threshold (NaN when it never does on that side).
     threshold : float
         The rise that defines the interval (the error scale s).
+    unstable : bool
+        The profile found a fit better than the best one (by more than a twentieth of the threshold);
+        then `delta_chi_square` is negative there and the rise to the threshold is counted from the
+        lowest chi-square found, which widens the interval (the side is never narrower than it should be).
     """
 
     log10_rate: np.ndarray
@@ -701,6 +713,12 @@ class Profile:
     lower: float
     upper: float
     threshold: float
+    unstable: bool = False
+
+    @property
+    def best_log10_rate(self) -> float:
+        """log10 k (s^-1) of the lowest chi-square on the profile."""
+        return float(self.log10_rate[np.argmin(self.delta_chi_square)])
 
 
 class _BetterMinimum(Exception):
@@ -711,8 +729,12 @@ class _BetterMinimum(Exception):
         self.result = result
 
 
-def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float) -> Profile:
-    """Profile chi-square over the parameter `name` (log10 k) on both sides of the best fit."""
+def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float, restart: bool = True) -> Profile:
+    """Profile chi-square over the parameter `name` (log10 k) on both sides of the best fit.
+
+    A point better than the best fit raises :class:`_BetterMinimum` (refined from there) when `restart`;
+    otherwise the profile goes on, counting the rise from the lowest chi-square found so far.
+    """
     x0, chi0 = best.params[name].value, best.chisqr
     lo_lim, hi_lim = best.params[name].min, best.params[name].max
     points = {x0: 0.0}
@@ -723,20 +745,21 @@ def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float
         trial = fits[nearest].copy()
         trial[name].set(value=x, vary=False)
         result = _minimize(problem, trial, tolerance=1e-5)
-        if result.chisqr < chi0 - 0.05 * threshold:
+        if restart and result.chisqr < chi0 - 0.05 * threshold:
             params = result.params.copy()
             params[name].set(vary=True)
             raise _BetterMinimum(_minimize(problem, params))
         points[x] = result.chisqr - chi0
         fits[x] = result.params
-        return points[x] - threshold
+        return points[x] - min(points.values()) - threshold
 
     def crossing(a: float, b: float) -> float:
         """Where the rise reaches the threshold between a (below) and b (above): interpolation in
         sqrt(delta chi-square), exact for a parabola, with a bisection whenever one end stalls."""
         moved = []
         for _ in range(16):
-            ra, rb = math.sqrt(max(points[a], 0.0)), math.sqrt(points[b])
+            floor = min(points.values())
+            ra, rb = math.sqrt(max(points[a] - floor, 0.0)), math.sqrt(points[b] - floor)
             x = a + (b - a) * (math.sqrt(threshold) - ra) / (rb - ra)
             if abs(b - a) < 1e-4:
                 return x
@@ -767,7 +790,8 @@ def _profile(problem: _Problem, best, name: str, threshold: float, stderr: float
 
     lower, upper = side(-1), side(+1)
     xs = np.array(sorted(points))
-    return Profile(xs, np.array([points[x] for x in xs]), lower, upper, threshold)
+    rises = np.array([points[x] for x in xs])
+    return Profile(xs, rises, lower, upper, threshold, bool(rises.min() < -0.05 * threshold))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -838,7 +862,7 @@ class RateEstimate:
         if self.profile is not None:
             out["profile"] = {"log10_rate": self.profile.log10_rate.tolist(),
                               "delta_chi_square": self.profile.delta_chi_square.tolist(),
-                              "threshold": self.profile.threshold}
+                              "threshold": self.profile.threshold, "unstable": self.profile.unstable}
         return out
 
     @classmethod
@@ -850,7 +874,7 @@ class RateEstimate:
         profile = None
         if prof:
             profile = Profile(np.array(prof["log10_rate"], float), np.array(prof["delta_chi_square"], float),
-                              math.nan, math.nan, float(prof["threshold"]))
+                              math.nan, math.nan, float(prof["threshold"]), bool(prof.get("unstable", False)))
         data["interval_per_s"] = tuple(math.nan if v is None else v for v in data["interval_per_s"])
         return cls(**data, profile=profile)
 
@@ -877,32 +901,48 @@ def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profil
 
     if not par.vary or par.expr:
         return estimate("fixed", reason=f"tied: {par.expr}" if par.expr else "held fixed")
+    # an error bar reaching past a limit of the allowed range is no error bar: the range cut it
+    inside = np.isfinite(s) and s > 0 and par.min + s < x < par.max - s
     if profile is None:
-        return estimate("determined" if np.isfinite(s) else "undetermined", stderr=k * math.log(10) * s,
-                        reason="no profile computed: the error bar assumes a parabolic chi-square")
+        if inside:
+            return estimate("determined", stderr=k * math.log(10) * s,
+                            reason="no profile computed: the error bar assumes a parabolic chi-square")
+        side = ("fast-exchange (upper)" if par.max - x < x - par.min else "slow-exchange (lower)")
+        why = (f"the best fit lies within its error of the {side} limit of the allowed range "
+               f"({10 ** par.min:.3g} to {10 ** par.max:.3g} s^-1)" if np.isfinite(s) and s > 0
+               else "the covariance gives no error")
+        return estimate("undetermined", reason=f"{why}; without the chi-square profile (profile off) the spectrum "
+                                               "gives no bound: fit with the profile on")
     lo, hi = profile.lower, profile.upper
     interval = (10.0 ** lo if np.isfinite(lo) else math.nan, 10.0 ** hi if np.isfinite(hi) else math.nan)
     level = f"delta chi-square < {profile.threshold:.3g}"
+    unstable = (f" The profile found a better fit at log10 k = {profile.best_log10_rate:.3f} (chi-square lower by "
+                f"{-profile.delta_chi_square.min():.3g}), so the bound is counted from that fit."
+                if profile.unstable else "")
     if np.isfinite(lo) and np.isfinite(hi):
         down, up = x - lo, hi - x
-        parabolic = np.isfinite(s) and s > 0 and all(1 / ASYMMETRY_LIMIT <= h / s <= ASYMMETRY_LIMIT for h in (down, up))
-        if parabolic:
+        parabolic = inside and all(1 / ASYMMETRY_LIMIT <= h / s <= ASYMMETRY_LIMIT for h in (down, up))
+        if parabolic and not profile.unstable:
             return estimate("determined", stderr=k * math.log(10) * s, interval=interval)
         return estimate("interval", lower=interval[0], upper=interval[1], interval=interval,
                         reason=f"the 68 % interval runs {down:.2f} decades below and {up:.2f} above the best fit "
-                               f"(parabolic error {s:.2f}): chi-square is far from a parabola, so no error bar")
+                               f"(parabolic error {s:.2f}): " + (
+                                   "the profile is unstable, so no error bar." if profile.unstable else
+                                   "chi-square is far from a parabola or cut by a limit of the allowed range, so no "
+                                   "error bar.") + unstable)
     if np.isfinite(hi):
         return estimate("upper-bound", upper=interval[1], interval=interval,
                         reason=f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
                                "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
-                               "under the bound")
+                               "under the bound." + unstable)
     if np.isfinite(lo):
         known = " with the shifts fixed at the values given (the bound depends on them)" if shifts_fixed else ""
         return estimate("lower-bound", lower=interval[0], interval=interval,
                         reason=f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
                                "s^-1; the excess width of the averaged line is below what the noise resolves for any "
-                               f"k over the bound{known}")
-    return estimate("undetermined", reason=f"the spectrum does not constrain this rate ({level} over the whole range)")
+                               f"k over the bound{known}." + unstable)
+    return estimate("undetermined", reason=f"the spectrum does not constrain this rate ({level} over the whole "
+                                           f"range).{unstable}")
 
 
 @dataclass
@@ -1208,18 +1248,23 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
     n_free = best.nvarys
     dof = part.ppm.size - n_free
     profiles: dict[str, Profile] = {}
-    for _ in range(3):  # a profile that finds a better minimum restarts from it
+    for attempt in range(PROFILE_RESTARTS + 1):  # a profile that finds a better minimum restarts from it
         scale, quality_flags, quality_notes = _error_scale(best.chisqr, dof, noise)
         try:
-            profiles = {n: _profile(problem, best, n, scale, _stderr(best.params[n]) * math.sqrt(scale))
+            profiles = {n: _profile(problem, best, n, scale, _stderr(best.params[n]) * math.sqrt(scale),
+                                    restart=attempt < PROFILE_RESTARTS)
                         for n in layout.rate_names
                         if options.profile and best.params[n].vary and not best.params[n].expr}
             break
         except _BetterMinimum as better:
             best = better.result
-    else:
-        notes.append("the chi-square profile kept finding better fits; the result may not be the best one")
+    unstable = [(n, p) for n, p in profiles.items() if p.unstable]
+    if unstable:
         flags.append("unstable")
+        notes.append("the chi-square profile kept finding better fits ("
+                     + ", ".join(f"{n} by {-p.delta_chi_square.min():.3g} at {p.best_log10_rate:.3f}" for n, p in unstable)
+                     + "); the result may not be the best one, so its rates are given as intervals or bounds "
+                     "from the profile (taken from the best chi-square it found), not as error bars")
     for par in best.params.values():  # errors as described in the module notes
         if par.stderr is not None:
             par.stderr *= math.sqrt(scale)

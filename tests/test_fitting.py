@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 
 from closed_forms import fast_exchange_excess_width, mcconnell_two_site
+from dnmr import fitting
 from dnmr.errors import InputError
 from dnmr.fitting import FitOptions, estimate_noise, fit_parameters, fit_spectrum
 from dnmr.model import Exchange, Model, Spectrometer, State
@@ -168,6 +169,14 @@ def test_noise_estimate_for_white_and_correlated_noise():
 
 # --- bounds where the data cannot determine the rate ----------------------------------------------
 
+def fast_limit_obvious_rate() -> float:
+    """Rate (s^-1) whose fast-exchange excess width (McConnell 1958 fast limit) is twice the natural width."""
+    k = 1.0
+    while fast_exchange_excess_width(80.0, k, 0.5) > 2 * 1.2:
+        k *= 1.1
+    return k
+
+
 def limit_fits(k_true, linewidth, seeds=range(10)):
     """Fits of ten noise draws (S/N about 130) of a McConnell (1958) spectrum at rate k_true."""
     return [fit_spectrum(measured(50.0 * mcconnell(k_true).real + np.random.default_rng(seed).normal(0, 0.1, PPM.size)),
@@ -197,15 +206,55 @@ def test_fast_limit_gives_a_lower_bound_not_an_error_bar():
     rates = [fit.rate(0) for fit in fits]
     bounds = [r for r in rates if r.status == "lower-bound"]
     assert len(bounds) >= 6
-    obvious = 1.0
-    while fast_exchange_excess_width(80.0, obvious, 0.5) > 2 * 1.2:
-        obvious *= 1.1
+    obvious = fast_limit_obvious_rate()
     for r in bounds:
         assert math.isnan(r.rate_stderr) and math.isnan(r.rate_upper)
         assert "fast-exchange" in r.reason
         assert r.rate_lower > obvious
     assert sum(r.rate_lower > 1e8 for r in bounds) <= 2  # an 84 % one-sided limit
     assert "lower-bound:flip" in fits[[r.status for r in rates].index("lower-bound")].flags
+
+
+def reported_limit_fit(k_true, **changes):
+    """The reported case: McConnell (1958) at rate k_true, seed-0 noise (S/N about 130), intrinsic width
+    given, baseline order 0, no phase and no frequency offset fitted."""
+    y = 50.0 * mcconnell(k_true).real + np.random.default_rng(0).normal(0.0, 0.1, PPM.size)
+    return fit_spectrum(measured(y), two_site_model(linewidth=1.2), region_ppm=REGION, linewidth="fixed",
+                        baseline_order=0, phase="none", frequency_offset=False, **changes)
+
+
+@pytest.mark.parametrize("k_true, status, regime", [(1e8, "lower-bound", "fast-exchange"),
+                                                    (1e-3, "upper-bound", "slow-exchange")])
+def test_rate_at_a_limit_of_its_range_is_a_bound_not_an_error_bar(k_true, status, regime):
+    # Reported: at k = 1e8 the profile kept finding better minima, was dropped, and the rate came out
+    # "determined" at log10 k = 8.999 +- 0.016, on the 1e9 s^-1 limit.  The slow twin, k = 1e-3 s^-1
+    # (broadening k/pi = 3e-4 Hz, slow limit of McConnell 1958), sits on the 1e-3 s^-1 limit.
+    fit = reported_limit_fit(k_true)
+    r = fit.rate("flip")
+    assert r.status == status, r.describe()
+    assert math.isnan(r.rate_stderr) and regime in r.reason
+    if status == "lower-bound":
+        assert fast_limit_obvious_rate() < r.rate_lower < 1e9
+    else:
+        assert 1e-3 < r.rate_upper < math.pi * 1.2  # broadening as large as the natural width would be seen
+    # without a profile there is no bound to give, and the covariance error must not stand in for one
+    blind = reported_limit_fit(k_true, profile=False).rate("flip")
+    assert blind.status == "undetermined" and math.isnan(blind.rate_stderr)
+    assert "limit of the allowed range" in blind.reason
+
+
+def test_unstable_profile_says_so_and_bounds_from_the_best_it_found(monkeypatch):
+    # With no restart allowed, the reported case's first profile finds fits better than the refined one
+    # (the fast-exchange chi-square keeps falling slowly towards the limit): it must say so and still
+    # bound the rate, counting from the best chi-square it saw, rather than quote the covariance error.
+    monkeypatch.setattr(fitting, "PROFILE_RESTARTS", 0)
+    fit = reported_limit_fit(1e8)
+    r = fit.rate("flip")
+    assert "unstable" in fit.flags and r.profile.unstable
+    assert r.profile.delta_chi_square.min() < 0
+    assert r.status == "lower-bound" and math.isnan(r.rate_stderr)
+    assert "better fit" in r.reason and any("better fits" in n for n in fit.notes)
+    assert fast_limit_obvious_rate() < r.rate_lower < 1e9
 
 
 # --- interface -------------------------------------------------------------------------------------
