@@ -396,7 +396,6 @@ class _Evaluator:
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
         self.pool = (futures.ProcessPoolExecutor(self.workers, initializer=_start_worker, initargs=(problem,))
                      if self.workers > 1 else None)
-        self.njev = 0
 
     def close(self) -> None:
         if self.pool is not None:
@@ -420,7 +419,6 @@ class _Evaluator:
 
     def jacobian(self, x: np.ndarray) -> np.ndarray:
         """The full (dense) Jacobian, assembled from the spectra's blocks."""
-        self.njev += 1
         rows = self.problem.rows
         out = np.zeros((int(rows[-1]), len(self.problem.free)))
         for k, block in enumerate(self._each("jacobian", x)):
