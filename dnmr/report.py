@@ -8,7 +8,10 @@ kind (no scripts, fonts, style sheets or images from elsewhere) and prints on pa
 Sections: summary (activation parameters in kJ/mol with kcal/mol alongside, their correlation), the
 model, the rate table, identifiability notes (which rates are only bounds, and why), the fit at every
 temperature with its residuals, the Eyring plot and analysis, warnings, safety cautions, and the exact
-inputs (SHA-256 of every file) and software versions.
+inputs (SHA-256 of every file) and software versions.  When ``dnmr fit --posterior`` sampled the
+posteriors, the rate table adds the posterior rate and every fit shows its posterior (median with 68 %
+and 95 % intervals, or the one-sided 95 % bound of a bound rate, beside the least-squares result; the
+sampler's notes; the corner figure).
 
 Temperatures
 ------------
@@ -28,6 +31,7 @@ import csv
 import html
 import io
 import json
+import math
 import platform
 import time
 from collections.abc import Iterable, Sequence
@@ -403,14 +407,30 @@ def _rate_text(row: dict) -> str:
     return k if status != "failed" else "fit failed"
 
 
+def _posterior_rate_text(row: dict) -> str:
+    """The posterior rate of a rates.csv row: median with its 95 % interval, or the one-sided 95 % bound."""
+    if row.get("posterior_bound95_per_s"):
+        return f"{'<' if row.get('status') == 'upper-bound' else '>'} {_number(row['posterior_bound95_per_s'])}"
+    if row.get("posterior_median_per_s"):
+        return (f"{_number(row['posterior_median_per_s'])} ({_number(row.get('posterior_ci95_low_per_s'))} to "
+                f"{_number(row.get('posterior_ci95_high_per_s'))})")
+    return ""
+
+
 def rate_section(inputs: ReportInputs) -> str:
-    """The rate table of rates.csv."""
+    """The rate table of rates.csv (with the posterior rates when ``dnmr fit --posterior`` sampled them)."""
+    sampled = any("posterior_median_per_s" in row for row in inputs.rates)
     rows = [[_number(row.get("temperature_k"), ".2f"), row.get("process", ""), _rate_text(row), row.get("status", ""),
-             _number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")] for row in inputs.rates]
-    body = table(["T / K", "process", "rate k / s^-1", "status", "reduced chi-square", "flags"], rows,
-                 numeric=[True, False, True, False, True])
+             _number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")]
+            + ([_posterior_rate_text(row)] if sampled else []) for row in inputs.rates]
+    body = table(["T / K", "process", "rate k / s^-1", "status", "reduced chi-square", "flags"]
+                 + (["posterior k / s^-1: median (95 %) or 95 % bound"] if sampled else []), rows,
+                 numeric=[True, False, True, False, True, False, True])
+    posterior = (" The posterior column gives the median and central 95 % interval of the posterior samples, or "
+                 "the posterior's one-sided 95 % bound of a rate the spectrum only bounds.") if sampled else ""
     return section("rates", "Rates", body + '<p class="muted">Errors are one standard error; bounds are the '
-                   "limits the chi-square profile allows (68 %). The temperatures are those of the series file.</p>")
+                   "limits the chi-square profile allows (68 %). The temperatures are those of the series file."
+                   f"{posterior}</p>")
 
 
 def bound_notes(results: dict) -> list[str]:
@@ -448,6 +468,65 @@ def fit_figure_path(outdir: Path, spectrum: dict) -> Path:
     return outdir / "figures" / f"{int(spectrum['index']):03d}_{Path(str(spectrum['file'])).stem}.png"
 
 
+def posterior_figure_path(outdir: Path, spectrum: dict) -> Path:
+    """Where ``dnmr fit --posterior`` drew the spectrum's corner figure (figures/NNN_<name>_posterior.png)."""
+    fit_figure = fit_figure_path(outdir, spectrum)
+    return fit_figure.with_name(f"{fit_figure.stem}_posterior.png")
+
+
+def _least_squares_text(name: str, fit: dict) -> str:
+    """The least-squares result of one posterior quantity: the rate as in the rate table for
+    ``rate_per_s_<process>`` and ``log10_k_<process>`` (no error bar for a bound), else value ± error."""
+    rate_names = [n for n in fit.get("parameters", {}) if n.startswith("log10_k_")]
+    rates = dict(zip(rate_names, fit.get("rates", [])))
+    rate = rates.get("log10_k_" + name[len("rate_per_s_"):]) if name.startswith("rate_per_s_") else None
+    if rate is not None:
+        return _rate_text(rate)
+    par = fit.get("parameters", {}).get(name) or {}
+    value, stderr = par.get("value"), par.get("stderr")
+    if value is None:
+        return ""
+    if name in rates and rates[name].get("status") != "determined":
+        return f"{value:.4g} ({rates[name].get('status')}: no error bar)"
+    return format_with_error(value, math.nan if stderr is None else stderr)
+
+
+def _posterior_cells(q: dict) -> list[str]:
+    """Posterior median, 68 % and 95 % intervals, or the one-sided 95 % bound, of one quantity."""
+    kind = q.get("kind")
+    if kind in ("upper-bound", "lower-bound"):
+        sign = "<" if kind == "upper-bound" else ">"
+        return ["", "", "", f"{sign} {_number(q.get('bound_95'))}"]
+    if kind == "undetermined":
+        return ["not determined: the posterior is the prior", "", "", ""]
+    span = lambda pair: f"{_number(pair[0])} to {_number(pair[1])}" if pair else ""  # noqa: E731
+    return [_number(q.get("median")), span(q.get("ci68")), span(q.get("ci95")), ""]
+
+
+def posterior_block(outdir: Path, s: dict) -> str:
+    """The posterior of one spectrum's fit beside its least-squares result, its notes and its corner
+    figure ('' when no posterior was sampled)."""
+    post = s.get("posterior")
+    if not post:
+        return ""
+    name = Path(str(s.get("file", "?"))).name
+    head = "<h4>Posterior (emcee)</h4>"
+    if "error" in post:
+        return head + f"<p class=\"warn\">not sampled: {esc(post['error'])}</p>"
+    fit = s.get("fit") or {}
+    rows = [[q.get("label", n), _least_squares_text(n, fit), *_posterior_cells(q), q.get("reason", "")]
+            for n, q in (post.get("quantities") or {}).items()]
+    body = (f"<p>{esc(post.get('walkers'))} walkers × {esc(post.get('steps'))} steps, burn-in {esc(post.get('burn'))}, "
+            f"thin {esc(post.get('thin'))}, seed {esc(post.get('seed'))}: {esc(post.get('samples'))} samples; "
+            f"acceptance {_number(post.get('acceptance_fraction'), '.2f')}. Likelihood "
+            f"{esc(post.get('likelihood', ''))}.</p>")
+    body += table(["quantity", "least squares", "posterior median", "68 % interval", "95 % interval",
+                   "one-sided 95 % bound", "why a bound"], rows, numeric=[False, True, True, True, True, True])
+    body += bullets(post.get("notes", []), "muted")
+    return head + body + figure_from_file(posterior_figure_path(outdir, s),
+                                          f"{name}: posterior samples (corner figure)", f"posterior of {name}")
+
+
 def _spectrum_block(outdir: Path, s: dict) -> str:
     name = Path(str(s.get("file", "?"))).name
     head = f"<h3>{esc(s.get('temperature_k'))} K — {esc(name)}</h3>"
@@ -458,8 +537,8 @@ def _spectrum_block(outdir: Path, s: dict) -> str:
     facts = (f"<p>reduced chi-square {_number(fit.get('reduced_chi_square'), '.3f')}; {esc(rates)}; "
              f"flags: {esc(', '.join(fit.get('flags', []) + s.get('flags', [])) or 'none')}.</p>")
     notes = bullets(list(s.get("notes", [])) + list(fit.get("notes", [])), "muted")
-    return head + facts + notes + figure_from_file(fit_figure_path(outdir, s), f"{name}: data, fit and residuals",
-                                                   f"fit of {name}")
+    return (head + facts + notes + figure_from_file(fit_figure_path(outdir, s), f"{name}: data, fit and residuals",
+                                                    f"fit of {name}") + posterior_block(outdir, s))
 
 
 def fits_section(inputs: ReportInputs) -> str:

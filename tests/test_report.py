@@ -9,6 +9,7 @@ rates.csv, and the recovered dH‡ against the invented truth.
 from __future__ import annotations
 
 import base64
+import html
 import json
 import shutil
 import subprocess
@@ -23,7 +24,7 @@ from click.testing import CliRunner
 from dnmr.activation import eyring_fit_file, format_with_error
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.report import write_report
+from dnmr.report import _rate_text, write_report
 from dnmr.series import fit_series
 from test_series import ENTHALPY_KJ_MOL, write_series
 
@@ -34,24 +35,38 @@ CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic
 
 
 class _Page(HTMLParser):
-    """Collects the img sources, every src/href value and the activation-parameter cells."""
+    """Collects the img sources, every src/href value, the activation-parameter cells and the text of
+    every table row."""
 
     def __init__(self):
         super().__init__()
         self.images: list[str] = []
         self.links: list[str] = []
         self.parameters: dict[str, tuple[float, str]] = {}
+        self.rows: list[list[str]] = []  # text of the cells of every table row
         self._key: tuple[str, float] | None = None
+        self._cell: list[str] | None = None
 
     def handle_starttag(self, tag, attrs):
         attrs = dict(attrs)
         self.links += [attrs[a] for a in ("src", "href") if a in attrs]
         if tag == "img":
             self.images.append(attrs.get("src", ""))
+        if tag == "tr":
+            self.rows.append([])
+        if tag in ("td", "th"):
+            self._cell = []
         if "data-key" in attrs:
             self._key = (attrs["data-key"], float(attrs["data-value"]))
 
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None:
+            self.rows[-1].append("".join(self._cell))
+            self._cell = None
+
     def handle_data(self, data):
+        if self._cell is not None:
+            self._cell.append(data)
         if self._key is not None:
             key, value = self._key
             self.parameters[key] = (value, data)
@@ -76,6 +91,18 @@ def fitted(tmp_path_factory) -> Path:
 @pytest.fixture(scope="module")
 def report(fitted) -> Path:
     return write_report(fitted)
+
+
+@pytest.fixture(scope="module")
+def sampled(fitted, tmp_path_factory) -> Path:
+    """The same fits (reused by resume) with every spectrum's posterior sampled, and its report.  A very
+    short chain: this checks what the report shows, not the numbers (tests/test_posterior.py does)."""
+    out = tmp_path_factory.mktemp("bayes") / "out"
+    shutil.copytree(fitted, out, ignore=shutil.ignore_patterns("report.html"))
+    result = fit_series(fitted.parent / "series.toml", out, resume=True, workers=1, progress=False,
+                        posterior={"steps": 40, "walkers": 16, "seed": 5})
+    assert result.exit_status == 0 and all(o.reused for o in result.outcomes)
+    return write_report(out)
 
 
 def test_report_embeds_every_figure_as_png_data(fitted, report):
@@ -117,6 +144,37 @@ def test_report_names_the_bound_its_reason_inputs_and_cautions(fitted, report):
     for s in results["spectra"]:
         assert s["sha256"] in text
     assert "Safety cautions" in text and "liquid nitrogen" in text
+
+
+def test_report_shows_each_posterior_beside_the_least_squares_result(sampled):
+    text = sampled.read_text(encoding="utf-8")
+    page = parse(text)
+    results = json.loads((sampled.parent / "results.json").read_text())
+    figures = sorted((sampled.parent / "figures").glob("*_posterior.png"))
+    assert len(figures) == len(TEMPERATURES)
+    assert len(page.images) == 2 * len(TEMPERATURES) + 2  # fits, corner figures, series stack, Eyring plot
+    embedded = {base64.b64decode(src.split(",", 1)[1]) for src in page.images}
+    assert all(f.read_bytes() in embedded for f in figures)
+    cells = [row for row in page.rows if len(row) == 7]  # the posterior tables
+    for s in results["spectra"]:
+        ls, post = s["fit"]["rates"][0], s["posterior"]["quantities"]["rate_per_s_flip"]
+        row = next(r for r in cells if r[0] == post["label"] and r[1].startswith(_rate_text(ls)))
+        if ls["status"] == "upper-bound":  # the coldest spectrum: only the one-sided bound, no median
+            assert post["kind"] == "upper-bound"
+            assert row[2:6] == ["", "", "", f"< {post['bound_95']:.4g}"] and "slow-exchange" in row[6]
+        else:
+            assert row[2] == f"{post['median']:.4g}"
+            assert row[3] == f"{post['ci68'][0]:.4g} to {post['ci68'][1]:.4g}"
+            assert row[4] == f"{post['ci95'][0]:.4g} to {post['ci95'][1]:.4g}"
+        for note in s["posterior"]["notes"]:
+            assert html.escape(note, quote=True) in text
+    # the rate table adds the posterior rate from rates.csv
+    assert "posterior k / s^-1: median (95 %) or 95 % bound" in text
+
+
+def test_report_without_posteriors_says_nothing_of_them(report):
+    text = report.read_text(encoding="utf-8")
+    assert "posterior" not in text.lower()
 
 
 def test_text_from_files_is_escaped(fitted, tmp_path):
