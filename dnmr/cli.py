@@ -164,10 +164,10 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
                    " and the global fit.")
 @click.option("--no-report", is_flag=True, help="Do not write OUTDIR/report.html after the fit.")
 @click.option("--posterior", is_flag=True,
-              help="After the fits, sample each spectrum's posterior (needs emcee). SLOW: 32 walkers x the steps "
+              help="After the fits, sample each spectrum's posterior (needs emcee). SLOW: walkers (32 or more) x the steps "
                    "lineshape evaluations per spectrum, a minute or more per spectrum at the default steps.")
 @click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
-              help="With --posterior: steps of each of the 32 walkers (a quarter is burn-in).")
+              help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
@@ -239,7 +239,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
 @click.option("--posterior", is_flag=True,
               help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its corner figure too.")
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
-              help="With --posterior: steps of each of the 32 walkers (a quarter is burn-in).")
+              help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, transmission: float, calibration_file: Path | None,

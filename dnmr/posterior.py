@@ -309,8 +309,10 @@ def _num(x: float, digits: int = 3) -> str:
     return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
 
 
-def _settings(steps: int, walkers: int, burn: int | None, thin: int, dimensions: int) -> int:
-    """Check the sampler settings; returns the burn-in (default a quarter of the steps)."""
+def _settings(steps: int, walkers: int | None, burn: int | None, thin: int, dimensions: int) -> tuple[int, int]:
+    """Check the sampler settings; returns the walkers (default 32, or two per sampled parameter and two more
+    where that is more) and the burn-in (default a quarter of the steps)."""
+    walkers = max(DEFAULT_WALKERS, 2 * dimensions + 2) if walkers is None else walkers
     for name, value, low in (("steps", steps, 10), ("walkers", walkers, 2 * dimensions), ("thin", thin, 1)):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
             why = f" (twice the {dimensions} sampled parameters)" if name == "walkers" else ""
@@ -318,7 +320,11 @@ def _settings(steps: int, walkers: int, burn: int | None, thin: int, dimensions:
     burn = steps // 4 if burn is None else burn
     if isinstance(burn, bool) or not isinstance(burn, (int, np.integer)) or not 0 <= burn <= steps - 10:
         raise InputError(f"burn must be a whole number from 0 to steps - 10 = {steps - 10}, got {burn!r}", where="burn")
-    return int(burn)
+    return int(walkers), int(burn)
+
+
+#: Walkers of the ensemble unless a problem has more than 15 sampled parameters (then 2 per parameter + 2).
+DEFAULT_WALKERS = 32
 
 
 def _from_chain(full: np.ndarray, quantities: Sequence[Quantity], *, acceptance: float, walkers: int, steps: int,
@@ -420,7 +426,7 @@ def sample_spectrum_posterior(
     fit: "SpectrumFit",
     *,
     steps: int = 4000,
-    walkers: int = 32,
+    walkers: int | None = None,
     burn: int | None = None,
     thin: int = 1,
     seed: int | None = 0,
@@ -439,8 +445,9 @@ def sample_spectrum_posterior(
         bounds are taken.
     steps : int
         Steps of every walker (burn-in included).
-    walkers : int
-        Walkers of the ensemble (at least twice the free parameters).
+    walkers : int, optional
+        Walkers of the ensemble (at least twice the free parameters; default 32, or two per free
+        parameter and two more where that is more).
     burn : int, optional
         Steps discarded at the start (default steps // 4).
     thin : int
@@ -468,7 +475,7 @@ def sample_spectrum_posterior(
     free = [n for n, p in params.items() if p.vary and not p.expr]
     if not free:
         raise InputError("the fit has no free parameters to sample", where="parameters")
-    burn = _settings(steps, walkers, burn, thin, len(free))
+    walkers, burn = _settings(steps, walkers, burn, thin, len(free))
     root_scale = math.sqrt(fit.error_scale)
     calls = [0]
 
@@ -545,7 +552,7 @@ def sample_eyring_posterior(
     result: "EyringResult",
     *,
     steps: int = 10000,
-    walkers: int = 32,
+    walkers: int | None = None,
     burn: int | None = None,
     thin: int = 1,
     seed: int | None = 0,
@@ -563,7 +570,8 @@ def sample_eyring_posterior(
     result : EyringResult
         The least-squares Eyring analysis (:func:`dnmr.activation.eyring_fit` and friends).
     steps, walkers, burn, thin, seed
-        As for :func:`sample_spectrum_posterior` (default 10000 steps, 32 walkers: a few seconds).
+        As for :func:`sample_spectrum_posterior` (default 10000 steps: a few seconds; latent temperatures
+        count as sampled parameters for the default number of walkers).
 
     Returns
     -------
@@ -589,7 +597,7 @@ def sample_eyring_posterior(
     keep = vals > 1e-12 * max(float(vals.max(initial=0.0)), 1e-300)
     latent = vecs[:, keep] * np.sqrt(vals[keep])  # T = t_obs + latent @ z
     ndim = 2 + int(scaled) + latent.shape[1]
-    burn = _settings(steps, walkers, burn, thin, ndim)
+    walkers, burn = _settings(steps, walkers, burn, thin, ndim)
     ln_k = np.log(k)
     kappa_term = math.log(result.transmission * BOLTZMANN / PLANCK)
     r_kj = GAS_CONSTANT / 1e3
@@ -648,6 +656,14 @@ def sample_eyring_posterior(
             inside &= ln_line <= math.log(b.rate_upper)
         notes.append(f"the bound at {b.temperature_k:g} K ({b.where}) is respected by the line with posterior "
                      f"probability {inside.mean():.2f}")
+    off_diagonal = cov_t - np.diag(np.diag(cov_t))
+    if np.abs(off_diagonal).max(initial=0.0) > 1e-9 * max(float(np.abs(cov_t).max(initial=0.0)), 1e-300):
+        notes.append(
+            "the temperature errors are correlated (a calibration): through the straightness of the Eyring line the "
+            "rates pin part of that common error, so this posterior can be narrower than the least-squares errors "
+            f"(dH‡ ± {result.enthalpy_stderr:.2g} kJ/mol, dS‡ ± {result.entropy_stderr:.2g} J/(mol K)), which do "
+            "not use it; quote those unless the line is known to be straight (no heat capacity of activation, "
+            "no tunnelling)")
     errors = "rate errors as given" if not scaled else (
         "rate errors times a common factor f, p(f) ~ 1/f" if errors_given else "equal errors on ln k of unknown size f, p(f) ~ 1/f")
     temperature = (f"temperatures latent, normal about the measured ones with their covariance ({latent.shape[1]} "
