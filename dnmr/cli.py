@@ -113,7 +113,7 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
         click.echo(f"wrote {output} ({len(spectrum.ppm)} points, {spectrum.ppm.min():.3f}-{spectrum.ppm.max():.3f} ppm)")
     if plot_file:
         ax = spectrum.plot()
-        save_figure(ax.figure, plot_file, overwrite=overwrite)
+        save_figure(ax.figure, plot_file, overwrite=overwrite, close=True)
         if not quiet:
             click.echo(f"wrote {plot_file}")
 
@@ -140,7 +140,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
     else:
         spectra, labels = simulate_over(model, temperatures_k=_parse_list(temperatures, "--temperatures"))
     ax = plot_stack(spectra, labels, title=model.title)
-    save_figure(ax.figure, output, overwrite=overwrite)
+    save_figure(ax.figure, output, overwrite=overwrite, close=True)
     click.echo(f"wrote {output}")
 
 
@@ -268,9 +268,9 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
         if figure.exists():
             raise InputError(f"{figure} already exists; choose another name or pass --overwrite", where="--plot")
     if plot_file:
-        save_figure(plot_eyring(results), plot_file, overwrite=overwrite)
+        save_figure(plot_eyring(results), plot_file, overwrite=overwrite, close=True)
         for post, figure in zip(posteriors, figures[1:]):
-            save_figure(post.plot(), figure, overwrite=overwrite)
+            save_figure(post.plot(), figure, overwrite=overwrite, close=True)
     if as_json:
         out = results_to_dict(results)
         pairs = list(zip(out.get("processes", []), posteriors))
@@ -369,7 +369,7 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
     from .output import save_figure
 
     if plot_file:
-        save_figure(result.plot(), plot_file, overwrite=overwrite)
+        save_figure(result.plot(), plot_file, overwrite=overwrite, close=True)
     if as_json:
         print_json(result.to_dict())
     else:

@@ -64,7 +64,7 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     eyring = results[0]
     written["eyring report"] = atomic_write_text(outdir / "eyring.txt", eyring.report() + "\n", overwrite)
     written["eyring json"] = atomic_write_text(outdir / "eyring.json", _json(results_to_dict(results)), overwrite)
-    written["eyring plot"] = save_figure(eyring.plot(), outdir / "eyring.png", overwrite=overwrite)
+    written["eyring plot"] = save_figure(eyring.plot(), outdir / "eyring.png", overwrite=overwrite, close=True)
 
     echo("  3/4 planning a follow-up study and the NMR timescale ...")
     activation = ActivationParameters(eyring.enthalpy_kj_mol, eyring.entropy_j_mol_k)
@@ -72,7 +72,7 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     written["plan"] = atomic_write_text(outdir / "plan.txt", plan.report() + "\n", overwrite)
     view = timescale_view(model, activation, frequencies_mhz=DEMO_FIELDS_MHZ)
     written["timescale"] = atomic_write_text(outdir / "timescale.txt", view.report() + "\n", overwrite)
-    written["timescale plot"] = save_figure(view.plot(), outdir / "timescale.png", overwrite=overwrite)
+    written["timescale plot"] = save_figure(view.plot(), outdir / "timescale.png", overwrite=overwrite, close=True)
 
     echo("  4/4 writing the report ...")
     written["report"] = write_report(outdir / "fit", calibration=data / "calibration.csv",

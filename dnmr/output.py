@@ -41,14 +41,35 @@ def atomic_write_text(path: str | Path, text: str, overwrite: bool = False) -> P
     return atomic_write_bytes(path, text.encode("utf-8"), overwrite=overwrite)
 
 
-def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150) -> Path:
-    """Save a matplotlib figure atomically (format from the file suffix)."""
+def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False) -> Path:
+    """Save a matplotlib figure atomically (format from the file suffix).
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+        The figure.
+    path : str or Path
+        File to write (PNG, SVG, PDF...).
+    overwrite : bool
+        Replace an existing file.
+    dpi : int
+        Resolution (dots per inch) of raster formats.
+    close : bool
+        Close the figure afterwards (also when writing fails), as the command line does with the figures
+        it only saves; a figure that a notebook goes on showing stays open (the default).
+    """
     import io
 
     path = Path(path)
-    buf = io.BytesIO()
-    fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
-    return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+    try:
+        buf = io.BytesIO()
+        fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
+        return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+    finally:
+        if close:
+            import matplotlib.pyplot as plt
+
+            plt.close(fig)
 
 
 def new_output_folder(path: str | Path, overwrite: bool = False, inputs=()) -> Path:

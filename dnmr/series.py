@@ -343,11 +343,7 @@ def _fit_from(model: Model, fit_data: dict, curves: dict) -> SpectrumFit:
 
 
 def _save_and_close(fig, path: Path) -> str:
-    import matplotlib.pyplot as plt
-
-    save_figure(fig, path, overwrite=True)
-    plt.close(fig)
-    return str(path)
+    return str(save_figure(fig, path, overwrite=True, close=True))
 
 
 def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
@@ -959,11 +955,7 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
             draws.append((series.model, o.fit.to_dict(), o.fit.curves(), path))
     runner.map(_draw_job, draws)
     if any(o.fitted for o in result.outcomes):
-        import matplotlib.pyplot as plt
-
-        fig = result.plot()
-        save_figure(fig, outdir / "series_fits.png", overwrite=True)
-        plt.close(fig)
+        _save_and_close(result.plot(), outdir / "series_fits.png")
     spectra = []
     for i, o in enumerate(result.outcomes):
         entry = {"index": i, "where": o.spectrum.where, "file": str(o.spectrum.file), "sha256": hashes[i],

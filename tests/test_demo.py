@@ -5,6 +5,7 @@ to end, not a check of accuracy: accuracy is tested against independent referenc
 """
 from __future__ import annotations
 
+import matplotlib.pyplot as plt
 from click.testing import CliRunner
 
 from dnmr.cli import cli
@@ -12,8 +13,10 @@ from dnmr.cli import cli
 
 def test_demo_writes_the_whole_job(tmp_path):
     out = tmp_path / "demo"
+    before = set(plt.get_fignums())
     result = CliRunner().invoke(cli, ["demo", str(out)])
     assert result.exit_code == 0, result.output
+    assert set(plt.get_fignums()) == before  # the figures it saved are closed
     for name in ("fit/rates.csv", "fit/results.json", "fit/series_fits.png", "eyring.txt", "eyring.json",
                  "eyring.png", "plan.txt", "timescale.txt", "timescale.png", "report.html"):
         assert (out / name).stat().st_size > 100, name

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 
+import matplotlib.pyplot as plt
 import numpy as np
 import pytest
 
@@ -267,6 +268,7 @@ def test_report_plot_and_round_trip():
     assert "flip" in text and "±" in text and "251 K" in text and "reduced" in text
     fig = fit.plot()
     assert all(ax.xaxis_inverted() for ax in fig.axes)  # ppm high to low (common practice)
+    plt.close(fig)
     again = type(fit).from_dict(fit.to_dict(), fit.curves(), model.at_temperature(251.0))
     assert again.rate(0).rate_per_s == fit.rate(0).rate_per_s
     assert np.array_equal(again.fitted, fit.fitted)
