@@ -496,7 +496,7 @@ class ParameterLayout:
                 changes.update(population=float(values[self.population_names[i]]), free_energy_kj_mol=None)
             states.append(dataclasses.replace(state, **changes))
         rates = [10.0 ** float(values[n]) for n in self.rate_names]
-        return self.model.replace(states=tuple(states)).with_rates(rates)
+        return self.model.replace(states=tuple(states), exchanges=self.model.exchanges_at_rates(rates))
 
 
 def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> None:

@@ -534,6 +534,11 @@ class Model:
 
         `rates_per_s` is a sequence (one per process) or a mapping from process name to rate.
         """
+        return self.replace(exchanges=self.exchanges_at_rates(rates_per_s))
+
+    def exchanges_at_rates(self, rates_per_s) -> tuple[Exchange, ...]:
+        """The exchange processes with the given forward rates (s^-1; a sequence in process order or a
+        mapping from process name to rate), for :meth:`replace` together with other changes."""
         names = self.process_names()
         if isinstance(rates_per_s, Mapping):
             unknown = set(rates_per_s) - set(names)
@@ -544,13 +549,12 @@ class Model:
             values = list(rates_per_s)
             if len(values) != len(names):
                 raise InputError(f"expected {len(names)} rates, one per exchange process, got {len(values)}")
-        exchanges = tuple(
+        return tuple(
             ex if k is None else dataclasses.replace(
                 ex, rate_per_s=float(k), barrier_kj_mol=None, enthalpy_kj_mol=None, entropy_j_mol_k=None
             )
             for ex, k in zip(self.exchanges, values)
         )
-        return self.replace(exchanges=exchanges)
 
     def with_populations(self, populations) -> "Model":
         """A copy with the given relative populations, one per state in order."""
