@@ -1134,7 +1134,10 @@ def _error_scale(chi2: float, dof: int, noise: NoiseEstimate) -> tuple[float, li
     """Covariance factor s, with flags and notes on the fit quality."""
     c = noise.correlation_factor
     red = chi2 / max(dof, 1)
-    spread = MISFIT_SIGMAS * math.sqrt(2.0 * c / max(dof, 1))
+    # red = (chi^2_dof / dof) (sigma / sigma_est)^2: both factors scatter, by 2c/dof and, for a noise
+    # estimated from `points` signal-free points, by 2c/points in relative variance
+    estimated = 2.0 * c / noise.points if noise.points else 0.0
+    spread = MISFIT_SIGMAS * math.sqrt(2.0 * c / max(dof, 1) + estimated)
     flags, notes = [], []
     scale = c
     if c > 1.0:

@@ -302,3 +302,16 @@ def test_bad_input_is_one_clear_error():
         FitOptions(baseline_order=5)
     with pytest.raises(InputError, match='did you mean "per-state"'):
         FitOptions(linewidth="per_state")
+
+
+@pytest.mark.parametrize("points, reduced, misfit", [(400, 1.21, False), (400, 1.5, True), (0, 1.21, True)])
+def test_misfit_threshold_counts_the_uncertainty_of_the_noise_estimate(points, reduced, misfit):
+    # A reduced chi-square divides by an estimated sigma^2: a chi-square variable of N degrees of freedom
+    # over N has relative variance 2/N, so with sigma from 400 signal-free points and 3000 residual degrees
+    # of freedom the reduced chi-square scatters by sqrt(2/3000 + 2/400) = 0.075 (statistics, common
+    # practice); 1.21 is then within 3 standard deviations, 1.5 is not.  A given sigma (points = 0) has
+    # only the first term (0.026).
+    dof = 3000
+    noise = fitting.NoiseEstimate(1.0, 1.0, points, "test")
+    _, flags, _ = fitting._error_scale(reduced * dof, dof, noise)
+    assert ("misfit" in flags) is misfit
