@@ -20,6 +20,10 @@ Coalescence from the engine
     (1964)).  It is found by a scan over six decades of rate and bisection on log k, once with the
     model's linewidths and once in the narrow-line limit (widths 1e-6 of the separation), to show how a
     finite linewidth moves it.
+    A coupling-averaging pair (equal shifts, changed couplings; see :mod:`dnmr.timescale`) keeps the
+    partners whose couplings change (heteronuclei too) in its own model, and the maxima are counted over
+    the spin's whole multiplet: coalescence is where their number falls to its fast-exchange value, for
+    two fluorines swapping places under a proton the Gutowsky-Holm rate of |J(H,F1) - J(H,F2)|.
 
 Prediction
     Given activation parameters, the coalescence temperature solves k_Eyring(T) = k_c at each field
@@ -56,6 +60,7 @@ from .kinetics import GAS_CONSTANT
 from .model import Exchange, Model, State, coupling_key
 from .solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
 from .timescale import (
+    COUPLING_PAIR_NOTE,
     DEFAULT_DETECTABLE_FRACTION,
     REGIMES,
     ActivationParameters,
@@ -136,18 +141,20 @@ def pair_model(model: Model, pair: ExchangingPair, linewidth_hz: float | None = 
         Intrinsic linewidth (FWHM, Hz) for every state; default each state's own.
     """
     populations = model.populations()
-    keep = pair.cluster
+    keep = tuple(pair.mapping)
     states = []
     for name in dict.fromkeys((pair.first[0], pair.second[0])):
         s = model.states[model.state_index(name)]
         couplings = {coupling_key(x, y): s.coupling(x, y) for x, y in combinations(keep, 2) if s.coupling(x, y)}
-        states.append(State(name, {x: s.shifts_ppm[x] for x in keep}, couplings,
+        states.append(State(name, {x: s.shifts_ppm[x] for x in keep if x in s.shifts_ppm}, couplings,
                             linewidth_hz if linewidth_hz is not None else s.linewidth_hz,
                             population=populations[model.state_index(name)]))
     moves = {x: y for x, y in pair.mapping.items() if x != y}
     exchange = Exchange(pair.first[0], pair.second[0], moves, rate_per_s=0.0, name=pair.process_name)
     groups = {x: model.group_size(x) for x in keep if model.group_size(x) > 1}
-    return Model(model.spectrometer, tuple(states), (exchange,), title=pair.label, groups=groups)
+    heteronuclei = {x: model.heteronuclei[x] for x in keep if x in model.heteronuclei}
+    return Model(model.spectrometer, tuple(states), (exchange,), title=pair.label, groups=groups,
+                 heteronuclei=heteronuclei)
 
 
 def unequal_outside_couplings(model: Model, pair: ExchangingPair, tolerance_hz: float = 1e-6) -> list[str]:
@@ -166,7 +173,7 @@ def unequal_outside_couplings(model: Model, pair: ExchangingPair, tolerance_hz: 
     out = []
     for x in pair.cluster:
         for z in model.all_spins:
-            if z in pair.cluster:
+            if z in pair.mapping:
                 continue
             before, after = start.coupling(x, z), end.coupling(pair.mapping[x], exchange.spins.get(z, z))
             if abs(before - after) > tolerance_hz:
@@ -189,10 +196,23 @@ def count_maxima(values: np.ndarray, tolerance: float = 1e-12) -> int:
 
 def _exchange_scale(model: Model, pair: ExchangingPair) -> float:
     """A rate (s^-1) near coalescence: sqrt(2) pi sqrt(dnu^2 + 6 J^2) divided by the sum of exit factors."""
-    dnu = pair.shift_difference_hz(model)
+    dnu = pair.frequency_difference_hz(model)
     couplings = [abs(s.coupling(x, y)) for s in model.states for x, y in combinations(pair.cluster, 2)]
     j = max(couplings, default=0.0)
     return math.sqrt(2.0) * math.pi * math.hypot(dnu, math.sqrt(6.0) * j) / sum(pair.exit_factors(model))
+
+
+def _counting_interval_hz(sub: Model, pair: ExchangingPair) -> tuple[float, float]:
+    """Where maxima are counted (Hz) in the pair's own model `sub`: between the two shifts, or for a
+    coupling-averaging pair the whole multiplet of its spin (its couplings times the partners' largest m
+    in either state) widened by the component shift on both sides."""
+    sf = sub.spectrometer.frequency_mhz
+    x = pair.first[1]
+    if not pair.coupling_changes:
+        return tuple(sorted((sub.states[0].shifts_ppm[x] * sf, sub.states[-1].shifts_ppm[pair.second[1]] * sf)))
+    reach = max(sum(abs(s.coupling(x, z)) * sub.largest_m(z) for z in sub.all_spins if z != x) for s in sub.states)
+    centre, half = sub.states[0].shifts_ppm[x] * sf, reach + pair.component_shift_hz
+    return centre - half, centre + half
 
 
 def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = False) -> tuple[float | None, str]:
@@ -201,7 +221,9 @@ def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = Fa
     Between the two exchanging shifts the spectrum shows two maxima in slow exchange and one in fast
     exchange for an uncoupled pair or an AB pair (Gutowsky-Holm, Kurland-Rubin-Wise); where couplings to
     other spins keep a multiplet in the averaged spectrum, the fast-exchange spectrum itself has more than
-    one maximum there.  Coalescence is the rate at which the count first falls to its fast-exchange value:
+    one maximum there.  For a coupling-averaging pair the maxima are counted over the spin's whole
+    multiplet (a doublet of doublets that becomes a 1:2:1 triplet: four maxima, then three).
+    Coalescence is the rate at which the count first falls to its fast-exchange value:
     the two signals have merged into the averaged one.
 
     Parameters
@@ -210,19 +232,17 @@ def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = Fa
         The full model at the field and temperature of interest.
     pair : ExchangingPair
     narrow_limit : bool
-        Use linewidths of 1e-6 of the shift difference instead of the model's.
+        Use linewidths of 1e-6 of the frequency difference (shift difference or component shift) instead
+        of the model's.
 
     Returns
     -------
     (rate, note) : (float or None, str)
         None with the reason when the pair shows no merging of two maxima into one.
     """
-    dnu = pair.shift_difference_hz(model)
+    dnu = pair.frequency_difference_hz(model)
     sub = pair_model(model, pair, abs(dnu) * NARROW_LIMIT_FRACTION if narrow_limit else None)
-    sf = model.spectrometer.frequency_mhz
-    ends = sorted((sub.states[0].shifts_ppm[pair.first[1]] * sf,
-                   sub.states[-1].shifts_ppm[pair.second[1]] * sf))
-    grid = np.linspace(*ends, REGION_POINTS)
+    grid = np.linspace(*_counting_interval_hz(sub, pair), REGION_POINTS)
 
     def maxima(rate: float) -> int:
         return count_maxima(lineshape_terms(sub.with_rates([rate])).evaluate(grid).real)
@@ -828,14 +848,15 @@ class ExperimentPlan:
         lines += ["", "Coalescence (the pair merges into its averaged signal: two maxima become one for an uncoupled or AB pair; k is the forward rate constant of the process)",
                   f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'|dnu|/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
                   f"   {'narrow-line k_c':>15} {'T_c/K':>7}",
-                  "  (each pair on its own: only its process running, spins outside its exchanging cluster left"
-                  " out; narrow-line: intrinsic linewidths -> 0)"]
+                  "  (each pair on its own: only its process running, spins outside its exchanging cluster and its"
+                  " named coupling partners left out; narrow-line: intrinsic linewidths -> 0)"]
         for c in self.coalescence:
             lines.append(f"  {c.proton_mhz:7.1f} {c.frequency_mhz:9.2f}  {c.pair.process_name + ': ' + c.pair.label:<34}"
                          f" {c.separation_hz:9.2f} {_number(c.rate_per_s, '10.4g')} {_number(c.temperature_k, '7.1f')}"
                          f"   {_number(c.narrow_limit_rate_per_s, '15.4g')} {_number(c.narrow_limit_temperature_k, '7.1f')}")
             if c.note:
                 lines.append(f"      note: {c.note}")
+        lines += [f"  ({COUPLING_PAIR_NOTE})"] * any(c.pair.coupling_changes for c in self.coalescence)
         f = self.settings["detectable_fraction"]
         lines += ["", f"Measurable window (exchange broadening from {f:g} x the linewidth on the slow side to an"
                   f" excess width of {f:g} x the linewidth on the fast side)"]

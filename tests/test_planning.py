@@ -379,3 +379,60 @@ def test_plan_report_quotes_the_separation_as_a_magnitude():
     row = next(line for line in plan.report().splitlines() if c.pair.label in line and "MHz" not in line)
     assert " 100.00 " in row and "-100.00" not in row
     assert plan.to_dict()["coalescence"][0]["separation_hz"] == pytest.approx(100.0)
+
+
+# --- coupling-averaging exchange: equal shifts, changed couplings -----------------------------------
+
+def test_coalescence_of_a_fluorine_swap_is_gutowsky_holm_of_the_coupling_difference():
+    # The swap interconverts the inner components +-(J1 - J2)/2 of the proton doublet of doublets (first
+    # order, common practice): Gutowsky & Holm (1956) with dnu = |J1 - J2| = 40 Hz.  The exact engine on
+    # the full model shows four maxima (dd) just below the rate found and three (1:2:1 triplet) above it.
+    from test_timescale import fluorine_swap
+
+    from dnmr import simulate
+    from dnmr.planning import count_maxima
+
+    model = fluorine_swap()
+    (c,) = coalescence(model)
+    assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(40.0), rel=1e-4)
+    assert c.separation_hz == pytest.approx(40.0) and c.shift_difference_hz == 0.0 and c.note == ""
+    assert c.to_dict()["kind"] == "coupling"
+    hz = np.linspace(3.0 * SF - 40.0, 3.0 * SF + 40.0, 8001)
+
+    def maxima(k):
+        return count_maxima(simulate(model.with_rates([k]), hz / SF).intensity)
+
+    assert maxima(0.995 * c.rate_per_s) == 4 and maxima(1.005 * c.rate_per_s) == 3
+
+
+def test_coalescence_of_a_coupling_that_differs_between_sites_of_equal_shift():
+    # One shift, two sites whose coupling to a 19F is 40 and 10 Hz: each fluorine component is a two-site
+    # exchange across |dJ| / 2 = 15 Hz (first order, common practice).  Their McConnell (1958) lineshapes
+    # (tests/closed_forms.py) turn from four maxima into two at the rate found.
+    from dnmr.planning import count_maxima
+
+    model = Model(Spectrometer(SF), (State("a", {"H": 3.0}, {"H-F": 40.0}, 1.0, 0.5),
+                                     State("b", {"H": 3.0}, {"H-F": 10.0}, 1.0, 0.5)),
+                  (Exchange("a", "b", rate_per_s=1.0, name="hop"),), heteronuclei={"F": "19F"})
+    (c,) = coalescence(model)
+    assert c.separation_hz == pytest.approx(15.0)
+    hz = np.linspace(-40.0, 40.0, 8001)
+
+    def maxima(k):
+        return count_maxima(sum(mcconnell_two_site(hz, m * 20.0, m * 5.0, k, 0.5, 1.0, 1.0).real for m in (1, -1)))
+
+    assert maxima(0.995 * c.rate_per_s) == 4 and maxima(1.005 * c.rate_per_s) == 2
+
+
+def test_plan_covers_an_exchange_that_only_swaps_fluorines():
+    # Eyring (tests/reference_eyring.py) at the coalescence temperature gives back the coalescence rate.
+    from test_timescale import fluorine_swap
+
+    plan = plan_experiment(fluorine_swap(barrier=60.0), spectra=3)
+    (c,) = plan.coalescence
+    assert eyring_rate(c.temperature_k, 60.0) == pytest.approx(c.rate_per_s, rel=1e-4)
+    (window,) = plan.windows
+    assert window.slow_below_k < c.temperature_k < window.fast_above_k
+    (field_plan,) = plan.fields
+    assert len(field_plan.temperatures_k) == 3
+    assert "H(s) (J to F1, F2)" in plan.report()

@@ -369,3 +369,71 @@ def test_report_quotes_the_separation_as_a_magnitude():
     assert "|dnu|/Hz" in view.report()
     out = view.to_dict()["pairs"][0]
     assert out["separation_hz"] == pytest.approx(100.0) and out["shift_difference_hz"] == pytest.approx(-100.0)
+
+
+# --- coupling-averaging exchange: equal shifts, changed couplings -----------------------------------
+
+def fluorine_swap(rate=10.0, j1=50.0, j2=10.0, barrier=None):
+    """Invented CHF2-type fragment: a rotation swaps F1 and F2, coupled j1 and j2 Hz to the proton; with a
+    barrier (kJ/mol) the rate is Eyring's at 298.15 K."""
+    kinetics = {"rate_per_s": rate} if barrier is None else {"barrier_kj_mol": barrier}
+    return Model(Spectrometer(SF), (State("s", {"H": 3.0}, {"H-F1": j1, "H-F2": j2}, 1.0, 1.0),),
+                 (Exchange("s", "s", {"F1": "F2", "F2": "F1"}, name="swap", **kinetics),),
+                 heteronuclei={"F1": "19F", "F2": "19F"}, temperature_k=None if barrier is None else 298.15,
+                 points=2048)
+
+
+def test_swap_of_two_fluorines_is_a_pair_whose_regimes_use_the_coupling_difference():
+    # First order (common practice): the proton doublet of doublets has components at +-(J1 + J2)/2, which
+    # the swap leaves in place, and at +-(J1 - J2)/2, which it interconverts: two sites |dJ| = 40 Hz apart,
+    # equal populations, so the McConnell (1958) slow and fast limits apply with dnu = |dJ|.  (Large J1, J2
+    # keep the unmoved lines 110 Hz away, so that their tails do not widen the lines measured.)
+    model = fluorine_swap(j1=150.0, j2=110.0)
+    (pair,) = exchanging_pairs(model)
+    assert pair.shift_difference_hz(model) == 0.0 and pair.component_shift_hz == pytest.approx(40.0)
+    assert [c.difference_hz for c in pair.coupling_changes] == [-40.0, 40.0]
+    window = rate_window(model, pair, 0.1)
+    assert slow_exchange_broadening(window.slow_rate_per_s) == pytest.approx(0.1, rel=1e-12)
+    assert fast_exchange_excess_width(40.0, window.fast_rate_per_s, 0.5) == pytest.approx(0.1, rel=1e-12)
+    # the exact engine: an inner component broadened by 0.1 Hz at the slow threshold, the merged
+    # central line 0.1 Hz wider than the intrinsic width at the fast one
+    _, slow = fwhm(engine_absorption(model.with_rates([window.slow_rate_per_s])), 1215.0, 1225.0)
+    _, fast = fwhm(engine_absorption(model.with_rates([window.fast_rate_per_s])), 1195.0, 1205.0)
+    assert slow - 1.0 == pytest.approx(0.1, rel=0.02) and fast - 1.0 == pytest.approx(0.1, rel=0.02)
+
+
+def test_timescale_view_reports_the_fluorine_swap_and_averages_it_to_a_triplet_when_fast():
+    # Fast limit (McConnell 1958, per fluorine configuration): both couplings average to (J1 + J2)/2 = 30 Hz,
+    # a 1:2:1 triplet (first-order multiplet, common practice), which the exact engine approaches at 1e8 s^-1.
+    view = timescale_view(fluorine_swap(), ActivationParameters.from_gibbs(50.0), temperature_k=420.0)
+    (row,) = view.pairs
+    assert row.separation_hz == pytest.approx(40.0) and row.shift_difference_hz == 0.0
+    out = view.to_dict()["pairs"][0]
+    assert out["kind"] == "coupling" and out["separation_hz"] == pytest.approx(40.0)
+    assert [c["partner"] for c in out["coupling_changes"]] == ["F1", "F2"]
+    (snap,) = view.snapshots
+    assert snap.regimes == {"swap": "fast"} and snap.averaged.averaged_processes == ("swap",)
+    (state,) = snap.averaged.model.states
+    assert state.coupling("H", "F1") == pytest.approx(30.0) and state.coupling("H", "F2") == pytest.approx(30.0)
+    hz = np.linspace(1150.0, 1250.0, 4001) + 0.01
+    averaged = simulate(snap.averaged.model, hz / SF).intensity
+    expected = lorentzian_lines(hz, [1170.0, 1200.0, 1230.0], [0.25, 0.5, 0.25], 1.0).real
+    assert averaged == pytest.approx(expected, rel=1e-9, abs=1e-12)
+    exact = simulate(fluorine_swap(rate=1e8), hz / SF).intensity
+    assert np.abs(exact - averaged).max() < 3e-3 * averaged.max()
+    assert "H(s) (J to F1, F2)" in view.report()
+
+
+def test_equal_shift_spins_that_trade_couplings_give_coupling_averaging_pairs():
+    # A1 and A2 share a shift but couple 7 and 2 Hz to X; swapping them moves each A doublet component by
+    # |dJ| / 2 = 2.5 Hz and the inner components of the X doublet of doublets by |dJ| = 5 Hz (first order,
+    # common practice); fast exchange leaves X a 1:2:1 triplet of spacing 4.5 Hz.
+    model = Model(Spectrometer(SF), (State("s", {"A1": 3.0, "A2": 3.0, "X": 1.0}, {"A1-X": 7.0, "A2-X": 2.0}, 1.0, 1.0),),
+                  (Exchange("s", "s", {"A1": "A2", "A2": "A1"}, rate_per_s=1.0, name="swap"),))
+    pairs = {p.first[1]: p for p in exchanging_pairs(model)}
+    assert set(pairs) == {"A1", "X"}
+    assert pairs["A1"].second == ("s", "A2") and pairs["A1"].component_shift_hz == pytest.approx(2.5)
+    assert pairs["X"].component_shift_hz == pytest.approx(5.0)
+    assert pairs["X"].exit_factors(model) == (1.0, 1.0)
+    (state,) = averaged_model(model).states
+    assert state.coupling("A1", "X") == pytest.approx(4.5) and state.coupling("A2", "X") == pytest.approx(4.5)
