@@ -295,10 +295,10 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         if again or np.abs(estimate[: j + 1]).max() > _SEMI_ORTHOGONAL:
             basis = Q[: j + 1]
             before = length2
-            w -= (basis @ w) @ basis
+            w -= _projection(basis, w)
             length2 = np.vdot(w, w).real
             if length2 < 0.5 * before:  # "twice is enough"
-                w -= (basis @ w) @ basis
+                w -= _projection(basis, w)
                 length2 = np.vdot(w, w).real
             b = np.sqrt(w @ w)
             estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
@@ -313,6 +313,20 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     return alpha, beta
 
 
+def _projection(basis: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """sum_k q_k (q_k^T w) over the rows q_k of `basis` (classical Gram-Schmidt in the bilinear form),
+    taken in slices of rows that stay in cache between their two products, so the basis is read from
+    memory once instead of twice."""
+    rows = max(16, _CACHE_BYTES // (basis.itemsize * basis.shape[1]))
+    out = np.zeros_like(w)
+    for start in range(0, len(basis), rows):
+        part = basis[start:start + rows]
+        out += (part @ w) @ part
+    return out
+
+
+#: Bytes of basis vectors handled at once by :func:`_projection` (a quarter of a core's L2 cache: measured best at 256-512 KiB).
+_CACHE_BYTES = 1 << 19
 #: Rounding error of one Lanczos step relative to the size of the operator (unit roundoff).
 _ROUNDING = np.finfo(float).eps
 #: Estimated loss of orthogonality at which the basis is re-orthogonalised (Simon 1984).
