@@ -130,19 +130,29 @@ def bench_six_spins() -> tuple[float, float]:
     return t_engine / t_dense, t_engine
 
 
+def resident_mib(field: str) -> float:
+    """Resident memory (MiB) of this process from /proc/self/status: VmRSS now, VmHWM its peak.  (Unlike
+    getrusage's maxrss, which Linux carries over from the parent through fork and exec, these belong to
+    this process alone.)"""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith(field + ":"):
+            return float(line.split()[1]) / 1024
+    raise RuntimeError(f"no {field} in /proc/self/status (the memory figures need Linux)")
+
+
 def run_alone(n_spins: int) -> tuple[float, float, float]:
     """CPU time (s), peak resident memory (MiB) and the resident memory before the simulation (MiB: Python
     and the imported libraries) of one simulation of the n-spin chain, in a fresh process (so the peak
     belongs to that simulation alone and no tracing slows it down)."""
     code = (
-        "import resource, sys, time; sys.path.insert(0, %r)\n"
+        "import sys, time; sys.path.insert(0, %r)\n"
         "from threadpoolctl import threadpool_limits\n"
         "import dnmr, engine_speed\n"
         "model = engine_speed.six_spin_model(%d)\n"
-        "before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024\n"
+        "before = engine_speed.resident_mib('VmRSS')\n"
         "with threadpool_limits(%r):\n"
         "    t0 = time.process_time(); dnmr.simulate(model); t = time.process_time() - t0\n"
-        "print(t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, before)\n"
+        "print(t, engine_speed.resident_mib('VmHWM'), before)\n"
     ) % (str(Path(__file__).parent), n_spins, THREADS)
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
     return float(out[0]), float(out[1]), float(out[2])
@@ -150,7 +160,7 @@ def run_alone(n_spins: int) -> tuple[float, float, float]:
 
 def bench_seven_and_eight(six_spin_time_s: float) -> None:
     _, m6, base = run_alone(6)
-    print(f"    peak resident memory of a process that simulates six spins: {m6:.0f} MiB"
+    print(f"    six spins alone: peak resident memory {m6:.0f} MiB"
           f" ({base:.0f} MiB of it Python and the libraries before the simulation)")
     t7, m7, base = run_alone(7)
     print(f"(c) seven spins, {POINTS} points: {t7:.2f} s ({t7 / six_spin_time_s:.1f} x six spins; goal < 1 s),"
