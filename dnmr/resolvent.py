@@ -256,8 +256,9 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
     the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
     against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
-    keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy,
-    at O(n) work per step instead of O(n j).  Returns the tridiagonal (alpha, beta) with
+    keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy;
+    a step costs a sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and
+    then (about one step in ten for six to eight spins).  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).
 
@@ -325,7 +326,8 @@ def _projection(basis: np.ndarray, w: np.ndarray) -> np.ndarray:
     return out
 
 
-#: Bytes of basis vectors handled at once by :func:`_projection` (a quarter of a core's L2 cache: measured best at 256-512 KiB).
+#: Bytes of basis vectors handled at once by :func:`_projection` (a quarter of a 2 MiB L2 cache; 256 to
+#: 512 KiB measured best on seven spins).
 _CACHE_BYTES = 1 << 19
 #: Rounding error of one Lanczos step relative to the size of the operator (unit roundoff).
 _ROUNDING = np.finfo(float).eps
