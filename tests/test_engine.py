@@ -308,6 +308,24 @@ def test_sparse_and_dense_block_liouvillians_are_the_same():
         assert np.array_equal(engine.block_liouvillian(pattern, params, as_sparse=True).toarray(), dense)
 
 
+def test_a_sparse_block_that_the_krylov_route_refuses_goes_the_dense_way(krylov_everywhere):
+    """A block handed over sparse (as the engine does for the Krylov route) but refused by it (here: a
+    state of zero weight, so D^-1 L D does not exist) is evaluated densely, with the same result."""
+    states, exchanges = random_model(np.random.default_rng(32), 2, 2)
+    params = engine.SpinParameters.from_model(model_from_reference(states, exchanges))
+    pattern = engine.block_pattern(coherence_blocks(2)[0], params.topology)
+    dense = engine.block_liouvillian(pattern, params)
+    start = engine.block_start(pattern, params.populations)
+    weights = np.zeros(len(dense))  # refused by krylov_block
+    kind, lines = resolvent.block_terms(engine.block_liouvillian(pattern, params, as_sparse=True), pattern.detect,
+                                        start, weights)
+    assert kind == "lines"
+    expected = resolvent.eigen_lines(dense, pattern.detect, start)
+    hz = np.linspace(-200, 1400, 400)
+    assert relative_error(resolvent.LineshapeTerms(*lines).evaluate(hz),
+                          resolvent.LineshapeTerms(*expected).evaluate(hz)) < 1e-12
+
+
 def test_partial_reorthogonalisation_matches_dense_eigendecomposition_on_seven_spins(monkeypatch):
     """Seven coupled spins (blocks of 735 and 1225 coherences): the Lanczos recursion re-orthogonalises
     only now and then, yet agrees with LAPACK's dense eigendecomposition of every block to 1e-8."""
