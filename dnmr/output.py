@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import math
 import os
+import sys
 import tempfile
 from collections.abc import Mapping
 from pathlib import Path
@@ -91,6 +92,22 @@ def new_output_folder(path: str | Path, overwrite: bool = False, inputs=()) -> P
                          where="output")
     path.mkdir(parents=True, exist_ok=True)
     return path
+
+
+def script_output_folder(default: str, script: str | None) -> Path:
+    """The results folder of an example script run as ``python script.py [OUTDIR]`` or cell by cell in a
+    notebook (whose kernel passes options such as ``-f``, not an OUTDIR).
+
+    New or empty (:func:`new_output_folder`), and never inside the folder of `script` (the script's
+    ``__file__``, None in a notebook), which holds its inputs.  Bad input is one line on stderr and exit
+    status 2.
+    """
+    arg = sys.argv[1] if len(sys.argv) > 1 and not sys.argv[1].startswith("-") else None
+    try:
+        return new_output_folder(arg or default, inputs=[Path(script).resolve().parent] if script else [])
+    except InputError as err:
+        print(f"error: {err}", file=sys.stderr)
+        raise SystemExit(2) from None
 
 
 def json_ready(obj):

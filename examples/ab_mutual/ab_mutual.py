@@ -11,19 +11,13 @@
 
 # %%
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
-import sys
 from pathlib import Path
 
-from dnmr.errors import InputError
-from dnmr.output import new_output_folder
+from dnmr.output import script_output_folder
 
-HERE = Path(__file__).resolve().parent if "__file__" in globals() else Path.cwd()
-try:  # never among the inputs, never over earlier results
-    arg = sys.argv[1] if len(sys.argv) > 1 and not sys.argv[1].startswith("-") else None  # notebooks pass -f
-    OUT = new_output_folder(arg or "ab_mutual-output", inputs=[HERE] if "__file__" in globals() else [])
-except InputError as err:
-    print(f"error: {err}", file=sys.stderr)
-    sys.exit(2)
+SCRIPT = globals().get("__file__")  # None in a notebook
+HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
+OUT = script_output_folder("ab_mutual-output", SCRIPT)  # never among the inputs, never over earlier results
 
 # %%
 import math
