@@ -43,7 +43,7 @@ import numpy as np
 from scipy.optimize import brentq
 
 from .errors import InputError
-from .kinetics import KCAL_PER_KJ, exchange_jumps, eyring_rate_from_enthalpy
+from .kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
 from .model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
@@ -719,7 +719,7 @@ def fast_exchange_limit(model: Model, processes: Iterable[int] | None = None) ->
     """
     names = model.process_names()
     fast = set(range(len(names)) if processes is None else processes)
-    jumps = [j for j in exchange_jumps(model) if j.process in fast]
+    jumps = [j for j in model.jumps() if j.process in fast]
     populations = model.populations()
     done: set[int] = set()
     states, merged, groups, hidden = [], [], [], []
