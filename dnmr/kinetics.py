@@ -107,21 +107,16 @@ def _inverse(perm: tuple[int, ...]) -> tuple[int, ...]:
     return tuple(inv)
 
 
-def exchange_jumps(model: "Model", rates_per_s: np.ndarray | None = None) -> list[Jump]:
+def exchange_jumps(model: "Model") -> list[Jump]:
     """All elementary jumps of a model, with reverse processes implied by detailed balance.
 
     For a process a -> b (a != b) at rate k the reverse b -> a runs at k p_a / p_b; a mutual exchange
     (a == b) implies its inverse permutation at the same rate.  A reverse that the model lists itself
     must agree with this (relative tolerance 1e-6), and is then not added twice.
 
-    Parameters
-    ----------
-    model : Model
-        The model.
-    rates_per_s : array, optional
-        Forward rates (s^-1) per process; default ``model.rates()``.
+    The forward rates are the model's (``model.rates()``, s^-1); :meth:`Model.jumps` keeps the result.
     """
-    rates = model.rates() if rates_per_s is None else np.asarray(rates_per_s, dtype=float)
+    rates = model.rates()
     pop = model.populations()
     listed = []
     for i, ex in enumerate(model.exchanges):
