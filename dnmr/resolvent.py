@@ -73,36 +73,41 @@ class ContinuedFraction:
     norm: float
 
     def evaluate(self, omega: np.ndarray) -> np.ndarray:
-        """S at angular frequencies `omega` (rad/s): continued fraction, pivoted solves where it is unsafe.
+        """S at angular frequencies `omega` (rad/s), by the determinant recurrence of the continued fraction.
 
-        The backward recurrence f_j = z - alpha_j - beta_j^2 / f_(j+1) is Gaussian elimination without
-        pivoting; a point is recomputed with pivoting when some |f_j| falls below 1e-8 of the size of its
-        row, max over the grid of |z - alpha_j| + |beta_j| (so the growth of rounding error stays below
-        1e8 ulp).
+        With q_j = det(z - T[j:, j:]) (q_(m+1) = 1, q_(m+2) = 0) the recurrence
+
+            q_j = (z - alpha_j) q_(j+1) - beta_j^2 q_(j+2),      S = norm q_2 / q_1,
+
+        is the continued fraction f_j = q_j / q_(j+1) = z - alpha_j - beta_j^2 / f_(j+1) without its
+        divisions.  Every rounding error of a step (in z - alpha_j, in either product, in their difference)
+        is a relative error of z - alpha_j or of beta_j^2, so the computed q are exact for a tridiagonal
+        whose entries are perturbed by a few ulp each, and no pivot test is needed (the argument of Kahan's
+        analysis of Sturm counts, Stanford report CS41, 1966; cited from memory).  Every few levels both q are rescaled
+        by a power of two (exact) so that they never overflow; a point whose q_1 still ends up zero or not
+        finite is solved with pivoting.
         """
         z = 1j * np.asarray(omega, dtype=float)
         if z.size == 0:
             return np.zeros(0, dtype=complex)
-        ends = z[[0, -1]] if z.size > 1 else z[:1]
+        ends = z[[0, -1]]
         b2 = self.beta ** 2
-        row = np.abs(ends[None, :] - self.alpha[:, None]).max(axis=1)
-        row[:-1] += np.abs(self.beta)
-        floor = 1e-8 * row
-        f = z - self.alpha[-1]
-        magnitude = np.abs(f)
-        unsafe = magnitude < floor[-1]
-        low = np.empty(z.size, dtype=bool)
-        term = np.empty_like(f)
-        for a, b, tiny in zip(self.alpha[-2::-1].tolist(), b2[::-1].tolist(), floor[-2::-1].tolist()):
-            np.divide(b, f, out=term)
-            np.subtract(z, a, out=f)
-            f -= term
-            np.abs(f, out=magnitude)
-            np.less(magnitude, tiny, out=low)
-            unsafe |= low
-        out = self.norm / f
-        unsafe |= ~np.isfinite(out)
-        for i in np.flatnonzero(unsafe):
+        growth = float(np.abs(ends[None, :] - self.alpha[:, None]).max() + np.abs(b2).max(initial=0.0))
+        every = max(1, int(900 // np.log2(max(2.0 * growth, 2.0))))  # levels a factor 2^900 covers
+        after = np.ones_like(z)        # q_(j+2), then q_2
+        head = z - self.alpha[-1]      # q_(j+1), then q_1
+        spare = np.empty_like(z)
+        for level, (a, b) in enumerate(zip(self.alpha[-2::-1].tolist(), b2[::-1].tolist()), start=1):
+            np.subtract(z, a, out=spare)
+            spare *= head
+            after *= b
+            np.subtract(spare, after, out=after)
+            head, after, spare = after, head, spare
+            if level % every == 0:
+                _rescale(head, after)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = self.norm * after / head
+        for i in np.flatnonzero(~np.isfinite(out)):
             out[i] = self.norm * self._pivoted(z[i])
         return out
 
@@ -120,6 +125,16 @@ class ContinuedFraction:
     def weight(self) -> complex:
         """Integral of S over angular frequency / pi: the block's <detect|start>."""
         return complex(self.norm)
+
+
+def _rescale(*values: np.ndarray) -> None:
+    """Divide complex arrays, in place and pointwise, by the power of two that brings the largest of them
+    below 1 (an exact operation: only exponents change)."""
+    size = np.maximum.reduce([np.abs(v.real) + np.abs(v.imag) for v in values])
+    _, exponent = np.frexp(size)
+    for v in values:
+        pairs = v.view(float).reshape(-1, 2)
+        np.ldexp(pairs, -exponent[:, None], out=pairs)
 
 
 @dataclass
@@ -237,16 +252,27 @@ def symmetrised(L, weights: np.ndarray):
     """D^-1 L D for D = diag(weights) (L dense or sparse, the result alike), or None unless it is complex
     symmetric to rounding error."""
     if sparse.issparse(L):
-        S = sparse.diags(1.0 / weights) @ L @ sparse.diags(weights)
-        scale = abs(S).max()
-        asymmetry = abs(S - S.T).max() if S.nnz else 0.0
+        S = sparse.csr_matrix(L, dtype=complex, copy=True)
+        S.sum_duplicates()  # canonical: sorted, no repeats
+        S.data *= weights[S.indices] / np.repeat(weights, np.diff(S.indptr))
+        T = S.T.tocsr()
+        T.sum_duplicates()
+        scale = np.abs(S.data).max(initial=0.0)
+        if np.array_equal(S.indptr, T.indptr) and np.array_equal(S.indices, T.indices):
+            asymmetry = np.abs(S.data - T.data).max(initial=0.0)  # same pattern: compare element for element
+            S.data += T.data
+            S.data *= 0.5
+        else:
+            asymmetry = abs(S - T).max()
+            S = 0.5 * (S + T)
     else:
-        S = L * (weights[None, :] / weights[:, None])
-        scale = np.abs(S).max()
-        asymmetry = np.abs(S - S.T).max()
+        D = L * (weights[None, :] / weights[:, None])
+        scale = np.abs(D).max()
+        asymmetry = np.abs(D - D.T).max()
+        S = 0.5 * (D + D.T)
     if asymmetry > 1e-12 * scale:
         return None
-    return 0.5 * (S + S.T)
+    return S
 
 
 def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:

@@ -298,6 +298,42 @@ def test_krylov_and_eigen_routes_agree_on_six_coupled_spins(monkeypatch):
     assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-9
 
 
+def banded_reference(fraction: resolvent.ContinuedFraction, omega: np.ndarray) -> np.ndarray:
+    """norm e1 (i omega - T)^-1 e1 by LAPACK's banded solver with partial pivoting, point by point."""
+    import scipy.linalg as sla
+    m = len(fraction.alpha)
+    bands = np.zeros((3, m), dtype=complex)
+    bands[0, 1:] = bands[2, :-1] = -fraction.beta
+    out = []
+    for w in omega:
+        bands[1] = 1j * w - fraction.alpha
+        out.append(sla.solve_banded((1, 1), bands, np.eye(m, 1).ravel().astype(complex))[0])
+    return fraction.norm * np.array(out)
+
+
+def test_continued_fraction_through_vanishing_pivots_and_huge_growth(monkeypatch):
+    """The division-free recurrence against pivoted LAPACK solves (gbsv) on a tridiagonal built to be hard:
+    trailing determinants that vanish exactly on grid points (where an unpivoted continued fraction
+    divides by zero) and entries of 1e6 rad/s over 600 levels (whose determinants overflow unless rescaled)."""
+    fallbacks = []
+    monkeypatch.setattr(resolvent.ContinuedFraction, "_pivoted", lambda self, z: fallbacks.append(z) or np.nan)
+    rng = np.random.default_rng(41)
+    omega = np.linspace(-2000.0, 2000.0, 801)
+    alpha = -rng.uniform(1.0, 30.0, 40) + 1j * rng.choice(omega, 40)
+    alpha[-1] = 1j * omega[400]             # q_m = 0 at that point
+    alpha[-3] = 1j * omega[123]
+    alpha[-3::] = alpha[-3::].imag * 1j     # undamped, so the zero pivots fall on grid points
+    beta = rng.uniform(50.0, 400.0, 39) * np.exp(0.3j * rng.standard_normal(39))
+    hard = resolvent.ContinuedFraction(alpha, beta, 2.5)
+    assert relative_error(hard.evaluate(omega), banded_reference(hard, omega)) < 1e-12
+    assert not fallbacks  # no point needed the pivoted solve
+    big = resolvent.ContinuedFraction(-rng.uniform(1e3, 1e5, 600) + 1j * rng.uniform(-1e6, 1e6, 600),
+                                      rng.uniform(1e5, 1e6, 599) * np.exp(0.2j * rng.standard_normal(599)), 1.0)
+    wide = np.linspace(-1.2e6, 1.2e6, 301)
+    assert relative_error(big.evaluate(wide), banded_reference(big, wide)) < 1e-11
+    assert not fallbacks
+
+
 def test_sparse_and_dense_block_liouvillians_are_the_same():
     """The Krylov route builds its Liouvillian sparse; element for element it is the dense one."""
     states, exchanges = random_model(np.random.default_rng(31), 3, 2)
