@@ -324,6 +324,9 @@ def _coalescence_of(model: Model, pair: ExchangingPair, activation: ActivationPa
         found.append((last["rate"], temperature, last["note"], last["populations"]))
     (k, t, note, populations), (k0, t0, note0, _) = found
     notes = [note or note0]
+    if len(pair.component_moves_hz) > 1:
+        notes.append(f"its multiplet components move by {', '.join(f'{v:g}' for v in pair.component_moves_hz)} Hz"
+                     " and merge at different rates; the rate given is the one at which the last of them has merged")
     unequal = unequal_outside_couplings(model, pair)
     if unequal:
         notes.append(f"couplings to spins left out differ between the two places ({', '.join(unequal)}): their"

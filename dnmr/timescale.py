@@ -298,6 +298,17 @@ class ExchangingPair:
         sum over the changed couplings of |dJ| times the partner's largest m (0 for a shift pair)."""
         return sum(abs(c.difference_hz) * c.largest_m for c in self.coupling_changes)
 
+    @property
+    def component_moves_hz(self) -> tuple[float, ...]:
+        """The distinct distances (Hz) by which multiplet components move when only couplings change:
+        |sum over the changed couplings of dJ m| over the partners' m values, zero left out (first order).
+        More than one means the components merge at different rates (empty for a shift pair)."""
+        moves = {0.0}
+        for c in self.coupling_changes:
+            ms = np.arange(-c.largest_m, c.largest_m + 0.5)
+            moves = {v + c.difference_hz * m for v in moves for m in ms}
+        return tuple(sorted({round(abs(float(v)), 9) for v in moves if abs(v) > COUPLING_TOLERANCE_HZ}))
+
     def frequency_difference_hz(self, model: Model) -> float:
         """The frequency difference (Hz) the exchange averages: the shift difference, or the component
         shift of a coupling-averaging pair (field-independent)."""
@@ -341,7 +352,8 @@ class ExchangingPair:
                 "from": {"state": self.first[0], "spin": self.first[1]},
                 "to": {"state": self.second[0], "spin": self.second[1]},
                 "kind": "coupling" if self.coupling_changes else "shift",
-                "coupling_changes": [c.to_dict() for c in self.coupling_changes]}
+                "coupling_changes": [c.to_dict() for c in self.coupling_changes],
+                "component_moves_hz": list(self.component_moves_hz)}
 
 
 def _cycle(mapping: dict, spin: str) -> tuple[str, ...]:

@@ -424,6 +424,23 @@ def test_coalescence_of_a_coupling_that_differs_between_sites_of_equal_shift():
     assert maxima(0.995 * c.rate_per_s) == 4 and maxima(1.005 * c.rate_per_s) == 2
 
 
+def test_components_that_move_by_different_amounts_are_noted():
+    # A proton coupled 12 and 2 Hz to two CF3 groups that trade places: its quartet-of-quartets components
+    # (m_a, m_b) go to (m_b, m_a), a move of |dJ (m_b - m_a)| = 10, 20 or 30 Hz (first order, common
+    # practice), so they merge at different rates and the plan must say which one it gives.
+    model = Model(Spectrometer(SF), (State("s", {"H": 3.0}, {"H-Fa": 12.0, "H-Fb": 2.0}, 1.0, 1.0),),
+                  (Exchange("s", "s", {"Fa": "Fb", "Fb": "Fa"}, rate_per_s=1.0, name="rot"),),
+                  groups={"Fa": 3, "Fb": 3}, heteronuclei={"Fa": "19F", "Fb": "19F"})
+    (c,) = coalescence(model)
+    assert c.pair.component_moves_hz == (10.0, 20.0, 30.0)
+    assert "move by 10, 20, 30 Hz" in c.note and "last of them" in c.note
+    assert c.to_dict()["component_moves_hz"] == [10.0, 20.0, 30.0]
+    from test_timescale import fluorine_swap
+
+    (single,) = coalescence(fluorine_swap())  # one move only (40 Hz): no such note
+    assert single.pair.component_moves_hz == (40.0,) and single.note == ""
+
+
 def test_plan_covers_an_exchange_that_only_swaps_fluorines():
     # Eyring (tests/reference_eyring.py) at the coalescence temperature gives back the coalescence rate.
     from test_timescale import fluorine_swap
