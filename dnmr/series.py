@@ -351,15 +351,19 @@ def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
     return _save_and_close(_fit_from(model, fit_data, curves).plot(), path)
 
 
-def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path) -> dict:
-    """Sample the posterior of one fit and save its corner figure (in a worker process); never raises:
-    a failure comes back as {"error": ...}."""
+def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path,
+                   record: tuple[Path, str]) -> dict:
+    """Sample the posterior of one fit, save its corner figure and store the summary in record[0] under
+    the key record[1] (what ``--resume`` reuses; in a worker process); never raises: a failure comes back
+    as {"error": ...} and is not stored."""
     from .posterior import sample_spectrum_posterior
 
     try:
         posterior = sample_spectrum_posterior(_fit_from(model, fit_data, curves), **settings)
         _save_and_close(posterior.plot(), path)
-        return {**posterior.to_dict(), "figure": str(path)}
+        summary = {**posterior.to_dict(), "figure": str(path)}
+        _write_json(record[0], {"key": record[1], "posterior": summary})
+        return summary
     except InputError as err:
         return {"error": str(err)}
     except Exception as err:  # one spectrum's sampling failing must not lose the others
@@ -977,15 +981,40 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
     })
 
 
-def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict) -> None:
-    """Sample the posterior of every fitted spectrum (in the pool) and draw its corner figure."""
-    fitted = [(i, o) for i, o in enumerate(result.outcomes) if o.fitted]
-    calls = [(result.series.model, o.fit.to_dict(), o.fit.curves(), settings,
-              result.outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}_posterior.png") for i, o in fitted]
-    for (i, o), posterior in zip(fitted, runner.map(_posterior_job, calls, label="sampling posteriors")):
+def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict, hashes: Mapping) -> None:
+    """Sample the posterior of every fitted spectrum (in the pool) and draw its corner figure; on resume,
+    a posterior stored for the same spectrum, model, fit and settings (and its figure) is reused."""
+    from . import __version__
+
+    calls, where = [], []
+    for i, o in enumerate(result.outcomes):
+        if not o.fitted:
+            continue
+        figure = result.outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}_posterior.png"
+        stored = result.outdir / "fits" / f"{i:03d}_posterior.json"
+        identity = {"spectrum": hashes[i], "model": hashes["model"], "stage": o.stage, "fit": o.fit.to_dict(),
+                    "settings": settings, "dnmr": __version__}
+        key = hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
+        reused = _stored_posterior(stored, key, figure) if runner.resume else None
+        if reused is not None:
+            o.posterior = reused
+            o.notes.append("posterior reused from the earlier run")
+            continue
+        calls.append((result.series.model, o.fit.to_dict(), o.fit.curves(), settings, figure, (stored, key)))
+        where.append(o)
+    for o, posterior in zip(where, runner.map(_posterior_job, calls, label="sampling posteriors")):
         o.posterior = posterior
         if "error" in posterior:
             o.notes.append(f"posterior not sampled: {posterior['error']}")
+
+
+def _stored_posterior(path: Path, key: str, figure: Path) -> dict | None:
+    """The posterior summary stored at `path` under `key`, when its corner figure is still there."""
+    try:
+        data = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+    return data.get("posterior") if data.get("key") == key and figure.exists() else None
 
 
 def fit_series(
@@ -1021,7 +1050,8 @@ def fit_series(
         lineshape evaluations per spectrum) with these settings of
         :func:`dnmr.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
         the defaults).  The summaries go into results.json and at the end of rates.csv, a corner figure
-        per spectrum into ``figures/NNN_<name>_posterior.png``.  Sampled again on every run (resume too).
+        per spectrum into ``figures/NNN_<name>_posterior.png``.  On `resume`, a posterior stored for the
+        same spectrum, model, fit and settings is reused.
 
     Returns
     -------
@@ -1049,7 +1079,7 @@ def fit_series(
             result = SeriesFit(series, outdir, [outcomes[i] for i in range(len(series.spectra))], trend,
                                list(series.notes) + notes)
             if posterior is not None:
-                _sample_posteriors(result, runner, dict(posterior))
+                _sample_posteriors(result, runner, dict(posterior), hashes)
             _write_outputs(result, runner, hashes)
     finally:
         runner.close()

@@ -317,6 +317,20 @@ def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
                            "posterior_bound95_per_s"]
     assert header[:6] == ["temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper"]
     assert "posterior of the rates" in result.output
+    # --resume reuses each stored posterior while spectrum, model, fit and settings are unchanged, and
+    # samples again when the settings change
+    args = ["fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report", "--resume", "--posterior",
+            "--posterior-steps", "40"]
+    again = CliRunner().invoke(cli, args + ["--posterior-seed", "5"])
+    assert again.exit_code == 0, again.output + again.stderr
+    resumed = json.loads((out / "results.json").read_text())
+    for before, after in zip(data["spectra"], resumed["spectra"]):
+        assert after["posterior"] == before["posterior"]
+        assert "posterior reused from the earlier run" in after["notes"]
+    other = CliRunner().invoke(cli, args + ["--posterior-seed", "6"])
+    assert other.exit_code == 0, other.output + other.stderr
+    for entry in json.loads((out / "results.json").read_text())["spectra"]:
+        assert entry["posterior"]["seed"] == 6 and "posterior reused from the earlier run" not in entry["notes"]
 
 
 def test_cli_fit_posterior_without_emcee_stops_before_fitting(tmp_path, monkeypatch):
