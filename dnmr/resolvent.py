@@ -83,9 +83,9 @@ class ContinuedFraction:
         divisions.  Every rounding error of a step (in z - alpha_j, in either product, in their difference)
         is a relative error of z - alpha_j or of beta_j^2, so the computed q are exact for a tridiagonal
         whose entries are perturbed by a few ulp each, and no pivot test is needed (the argument of Kahan's
-        analysis of Sturm counts, Stanford report CS41, 1966; cited from memory).  Every few levels both q are rescaled
-        by a power of two (exact) so that they never overflow; a point whose q_1 still ends up zero or not
-        finite is solved with pivoting.
+        analysis of Sturm counts, Stanford report CS41, 1966; cited from memory).  Every few levels both q
+        are rescaled by a power of two (exact) so that they never overflow; a point whose q_1 still ends up
+        zero or not finite is solved with pivoting.
         """
         z = 1j * np.asarray(omega, dtype=float)
         if z.size == 0:
