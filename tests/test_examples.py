@@ -32,6 +32,7 @@ EXPECTED = {
     "planning": ["planned_stacks.png", "regimes.png", "plan_cdcl3.txt", "plan_toluene-d8.txt", "timescale.txt"],
     "temperature_calibration": ["calibration.csv", "rates.csv", "methanol_250K.txt", "eyring_calibrated.txt",
                                 "eyring_calibrated.png", "comparison.txt"],
+    "heteronuclear_groups": ["vt_stack.png", "summary.txt"],
 }
 
 #: Lines each script prints that carry its point (a check that the README's claims still hold).
@@ -43,6 +44,10 @@ CLAIMS = {
     "conformers_couplings": [r"chair flip  k = [\d.]+ ± [\d.]+ s\^-1"],
     "planning": [r"above the boiling point of chloroform-d", r"Cautions:"],
     "temperature_calibration": [r"methanol is toxic", r"calibrated temperatures +5[12]\.\d\d ±"],
+    # binomial 1:3:3:1 (common practice); groups against the nuclei written out; the H-F coupling kept
+    "heteronuclear_groups": [r"largest difference from 1 : 3 : 3 : 1: \d\.\de-(1[0-9]|0[89])|: 0\.0e\+00",
+                             r"nucleus by nucleus .* largest difference \d\.\de-1[2-9]",
+                             r"spacing 9\.20 Hz: the H-F coupling of 9\.2 Hz stays"],
 }
 
 
