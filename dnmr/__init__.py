@@ -9,25 +9,45 @@ Quick start::
 """
 from __future__ import annotations
 
-from .activation import EyringResult, coalescence_barrier, eyring_fit, eyring_fit_file, read_rates
-from .errors import InputError
-from .fitting import FitOptions, RateEstimate, SpectrumFit, fit_parameters, fit_spectrum
-from .model import Exchange, Model, Spectrometer, State
-from .modelfile import load_model
-from .readers import MeasuredSpectrum, read_spectrum
-from .planning import coalescence, plan_experiment, predict_coalescence
-from .posterior import Posterior, sample_eyring_posterior, sample_spectrum_posterior
-from .series import Series, SeriesFit, fit_series, load_series
-from .solvents import Solvent, load_solvents, solvent
-from .spectrum import Spectrum, simulate, simulate_over
-from .thermometry import (
-    fit_temperature_calibration,
-    read_temperature_calibration,
-    temperature_from_file,
-    temperature_from_spectrum,
-    thermometer_reading,
-)
-from .timescale import ActivationParameters, averaged_model, fast_exchange_limit, timescale_view
+import importlib
+import importlib.util
+
+#: Where each public name lives.  Imported on first use (PEP 562), so that ``import dnmr`` and every
+#: ``dnmr`` command load only the modules they need (fitting pulls in lmfit, statistics scipy.stats).
+_HOMES = {
+    "activation": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
+    "errors": ("InputError",),
+    "fitting": ("FitOptions", "RateEstimate", "SpectrumFit", "fit_parameters", "fit_spectrum"),
+    "model": ("Exchange", "Model", "Spectrometer", "State"),
+    "modelfile": ("load_model",),
+    "readers": ("MeasuredSpectrum", "read_spectrum"),
+    "planning": ("coalescence", "plan_experiment", "predict_coalescence"),
+    "posterior": ("Posterior", "sample_eyring_posterior", "sample_spectrum_posterior"),
+    "series": ("Series", "SeriesFit", "fit_series", "load_series"),
+    "solvents": ("Solvent", "load_solvents", "solvent"),
+    "spectrum": ("Spectrum", "simulate", "simulate_over"),
+    "thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
+                    "temperature_from_spectrum", "thermometer_reading"),
+    "timescale": ("ActivationParameters", "averaged_model", "fast_exchange_limit", "timescale_view"),
+}
+_HOME_OF = {name: module for module, names in _HOMES.items() for name in names}
+
+
+def __getattr__(name: str):
+    """A public name (or a submodule, ``dnmr.engine``) imported on first use."""
+    if name in _HOME_OF:
+        value = getattr(importlib.import_module(f".{_HOME_OF[name]}", __name__), name)
+    elif not name.startswith("__") and importlib.util.find_spec(f".{name}", __name__) is not None:
+        value = importlib.import_module(f".{name}", __name__)
+    else:
+        raise AttributeError(f"module 'dnmr' has no attribute {name!r}")
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))
+
 
 __version__ = "0.1.0"
 __all__ = [
