@@ -20,6 +20,7 @@ best exact route for the block (eigen-lines, Schur form, or a Krylov continued f
 """
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -33,6 +34,7 @@ from .liouville import (
     permutation_map,
     zeeman_terms,
 )
+from .errors import InputError
 from .model import Model
 from . import resolvent
 from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
@@ -165,6 +167,7 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
         Called as ``progress(done, total)`` (coherences) after each block, for long simulations.
     """
     work = [(p, b) for p in spin_systems(model) for b in p.blocks]  # blocks of the independent systems
+    check_memory(max((b.size * len(p.populations) for p, b in work), default=0))
     total = sum(b.size * len(p.populations) for p, b in work)
     done = 0
     results = []
@@ -179,6 +182,36 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
         if progress is not None:
             progress(done, total)
     return combine(results)
+
+
+#: Share of the machine's physical memory that the Lanczos basis of one block may take.
+MEMORY_SHARE = 0.5
+
+
+def physical_memory_bytes() -> int | None:
+    """This machine's physical memory (bytes), or None where the system does not tell."""
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (AttributeError, OSError, ValueError):
+        return None
+
+
+def check_memory(largest_block: int) -> None:
+    """Refuse, with one clear line, a model whose largest block (coherences) would need more than
+    `MEMORY_SHARE` of the physical memory for its Lanczos basis (n^2 complex numbers)."""
+    need = resolvent.krylov_basis_bytes(largest_block)
+    total = physical_memory_bytes()
+    if total and need > MEMORY_SHARE * total:
+        raise InputError(
+            f"the largest coupled spin system gives a block of {largest_block} coherences, whose Lanczos basis"
+            f" needs {_size_text(need)}, more than {MEMORY_SHARE:.0%} of this machine's {_size_text(total)}"
+            " (and long computing): declare magnetically equivalent nuclei as"
+            " [groups] and nuclei of another isotope as [heteronuclei], or leave out spins whose couplings"
+            " barely matter", where="model")
+
+
+def _size_text(size: int) -> str:
+    return f"{size / 2**30:.1f} GiB" if size >= 2**30 else f"{size / 2**20:.0f} MiB"
 
 
 # --- frequency grid --------------------------------------------------------------------------

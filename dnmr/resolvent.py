@@ -409,6 +409,11 @@ def prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.nda
     return poles[keep], amplitudes[keep]
 
 
+def krylov_basis_bytes(size: int) -> int:
+    """Memory (bytes) of the Lanczos basis of a block of `size` coherences (none below the Krylov size)."""
+    return 16 * size * size if takes_krylov_route(size) else 0
+
+
 def takes_krylov_route(size: int) -> bool:
     """Whether a block of `size` coherences goes the Krylov route first (its Liouvillian then built sparse)."""
     return size >= KRYLOV_MIN_SIZE

@@ -391,6 +391,33 @@ def test_partial_reorthogonalisation_matches_dense_eigendecomposition_on_seven_s
     assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-8
 
 
+def test_a_model_too_large_for_memory_is_refused_in_one_line(monkeypatch, tmp_path):
+    """Ten coupled spins-1/2 have a block of C(10,5) C(10,4) = 52920 coherences: 16 n^2 bytes of Lanczos
+    basis (42 GiB) is refused before any work on a machine with less than twice that, with one line and
+    exit status 2 from the command line."""
+    from click.testing import CliRunner
+
+    from dnmr.cli import cli
+
+    assert resolvent.krylov_basis_bytes(52920) == 16 * 52920**2
+    monkeypatch.setattr(engine, "physical_memory_bytes", lambda: 64 * 2**30)
+    names = [f"H{i}" for i in range(10)]
+    state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)},
+                       {f"{a}-{b}": 7.0 for a, b in zip(names, names[1:])}, linewidth_hz=1.0, population=1)
+    model = dnmr.Model(dnmr.Spectrometer(SF), [state], [dnmr.Exchange("s", "s", {"H0": "H9", "H9": "H0"}, rate_per_s=5.0)])
+    with pytest.raises(dnmr.InputError, match=r"block of 52920 coherences.*41\.7 GiB.*\[groups\]"):
+        dnmr.simulate(model)
+    path = tmp_path / "ten.toml"
+    shifts = ", ".join(f"{n} = {1.0 + 0.3 * i}" for i, n in enumerate(names))
+    couplings = ", ".join(f'"{a}-{b}" = 7.0' for a, b in zip(names, names[1:]))
+    path.write_text(f'[spectrometer]\nnucleus = "1H"\nfrequency_mhz = 400.0\n[[state]]\nname = "s"\npopulation = 1\n'
+                    f'linewidth_hz = 1.0\nshifts_ppm = {{ {shifts} }}\ncouplings_hz = {{ {couplings} }}\n')
+    monkeypatch.setattr(engine, "physical_memory_bytes", lambda: 2**30)
+    result = CliRunner().invoke(cli, ["simulate", str(path), "-o", str(tmp_path / "out.csv")])
+    assert result.exit_code == 2 and result.stderr.strip().count("\n") == 0
+    assert "Lanczos basis needs" in result.stderr and "Traceback" not in result.output
+
+
 def test_progress_reports_every_coherence_once():
     """The progress callback (for long simulations) ends at the total number of coherences,
     C(2N, N-1) per state for N spins-1/2 (PHYSICS.md: 792 for six spins)."""
