@@ -320,8 +320,12 @@ def _job(series: Series, index: int, stage: str, options: FitOptions, hashes: Ma
     identity = {"spectrum": hashes[index], "file": str(s.file), "temperature_k": s.temperature_k,
                 "frequency_mhz": s.frequency_mhz, "axis": s.axis, "options": options.to_dict(),
                 "model": hashes["model"], "stage": stage, "dnmr": __version__}
-    key = hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
-    return _Job(index, stage, s, options, key)
+    return _Job(index, stage, s, options, _identity_key(identity))
+
+
+def _identity_key(identity: Mapping) -> str:
+    """SHA-256 of everything a stored result depends on (what --resume compares)."""
+    return hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
 
 
 def _run_job(model: Model, job: _Job, start: Mapping[str, float] | None) -> dict:
@@ -994,7 +998,7 @@ def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict, hashe
         stored = result.outdir / "fits" / f"{i:03d}_posterior.json"
         identity = {"spectrum": hashes[i], "model": hashes["model"], "stage": o.stage, "fit": o.fit.to_dict(),
                     "settings": settings, "dnmr": __version__}
-        key = hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
+        key = _identity_key(identity)
         reused = _stored_posterior(stored, key, figure) if runner.resume else None
         if reused is not None:
             o.posterior = reused
