@@ -12,8 +12,9 @@ from __future__ import annotations
 import importlib
 import importlib.util
 
-#: Where each public name lives.  Imported on first use (PEP 562), so that ``import dnmr`` and every
-#: ``dnmr`` command load only the modules they need (fitting pulls in lmfit, statistics scipy.stats).
+#: The public names (``__all__``) by the module each lives in.  Imported on first use (PEP 562), so that
+#: ``import dnmr`` and every ``dnmr`` command load only the modules they need (fitting pulls in lmfit,
+#: statistics scipy.stats).
 _HOMES = {
     "activation": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
     "errors": ("InputError",),
@@ -50,24 +51,4 @@ def __dir__() -> list[str]:
 
 
 __version__ = "0.1.0"
-__all__ = [
-    # spin model and simulation
-    "Exchange", "InputError", "Model", "Spectrometer", "Spectrum", "State",
-    "load_model", "simulate", "simulate_over",
-    # measured spectra
-    "MeasuredSpectrum", "read_spectrum",
-    # rates from measured spectra
-    "FitOptions", "RateEstimate", "Series", "SeriesFit", "SpectrumFit", "fit_parameters", "fit_series",
-    "fit_spectrum", "load_series",
-    # activation parameters
-    "EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates",
-    # Bayesian errors (needs emcee)
-    "Posterior", "sample_eyring_posterior", "sample_spectrum_posterior",
-    # planning and the NMR timescale
-    "ActivationParameters", "Solvent", "averaged_model", "coalescence", "fast_exchange_limit", "load_solvents",
-    "plan_experiment", "predict_coalescence", "solvent", "timescale_view",
-    # sample temperature
-    "fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
-    "temperature_from_spectrum", "thermometer_reading",
-    "__version__",
-]
+__all__ = [*_HOME_OF, "__version__"]
