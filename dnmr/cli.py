@@ -237,7 +237,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
               help="Polynomial degree of the calibration.")
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
 @click.option("--posterior", is_flag=True,
-              help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its corner figure too.")
+              help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
@@ -262,7 +262,7 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
     results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
                               transmission=transmission, calibration=calibration)
     posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
-    figures = [plot_file] + [_corner_path(plot_file, r.process, len(results)) for r in results[:len(posteriors)]] \
+    figures = [plot_file] + [_posterior_figure_path(plot_file, r.process, len(results)) for r in results[:len(posteriors)]] \
         if plot_file else []
     for figure in figures if not overwrite else ():  # refuse before writing any of them
         if figure.exists():
@@ -286,8 +286,8 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
         click.echo(f"wrote {figure}", err=as_json)
 
 
-def _corner_path(plot_file: Path, process: str, processes: int) -> Path:
-    """The corner figure beside --plot FILE: FILE_posterior.png, or FILE_posterior_<process>.png for several."""
+def _posterior_figure_path(plot_file: Path, process: str, processes: int) -> Path:
+    """The pairwise posterior figure beside --plot FILE: FILE_posterior.png, or FILE_posterior_<process>.png for several."""
     tag = "_" + re.sub(r"\W", "_", process) if processes > 1 else ""
     return plot_file.with_name(f"{plot_file.stem}_posterior{tag}{plot_file.suffix}")
 

@@ -1,8 +1,19 @@
 """Figures. Every spectrum axis follows NMR convention: ppm running high to low, left to right.
 
 matplotlib is used with the non-interactive Agg backend unless the caller already chose one.
+
+Colours
+-------
+Every colour in dnmr's figures comes from :data:`PALETTE`, dnmr's own: five hues and four neutrals.
+The hues were chosen so that every two of them stay apart for readers with a red-green or blue-yellow
+colour-vision deficiency (simulated dichromacy) and so that they differ in lightness (CIE L* about 30,
+42, 55, 68 and 81), which keeps them apart in a grey-scale print; tests/test_figures.py checks both.
+Lines take the hues in :data:`SERIES` order (the light gold last: it is meant for fills rather than
+thin lines).
 """
 from __future__ import annotations
+
+import re
 
 import matplotlib
 
@@ -11,6 +22,51 @@ if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.b
 
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+
+from .errors import InputError  # noqa: E402
+
+#: dnmr's palette: the only colours its figures use (sRGB hex).
+PALETTE = {
+    "indigo": "#074587",     # CIE L* 29.5
+    "plum": "#9e4371",       # L* 42.0
+    "vermilion": "#d95b3c",  # L* 54.6
+    "teal": "#4bb5a5",       # L* 67.5
+    "gold": "#f4c442",       # L* 81.3
+    "ink": "#000000",        # text, axes, measured data
+    "grey": "#a3a3a3",       # baselines, zero lines, references
+    "pale": "#e6e6e6",       # background bands (noise)
+    "paper": "#ffffff",      # background
+}
+#: The order in which series (processes, quantities) take the hues.
+SERIES = ("indigo", "vermilion", "plum", "teal", "gold")
+INK, GREY, PALE = PALETTE["ink"], PALETTE["grey"], PALETTE["pale"]
+FIT_COLOUR = PALETTE["vermilion"]  # a fitted spectrum beside the measured one (ink)
+#: Exchange regimes of ``dnmr timescale --plot``: dark to light from slow to fast.
+REGIME_COLOURS = {"slow": PALETTE["indigo"], "intermediate": PALETTE["vermilion"], "fast": PALETTE["gold"]}
+
+
+def series_colour(index: int) -> str:
+    """Hue of the `index`-th series (0-based), cycling through :data:`SERIES`."""
+    return PALETTE[SERIES[index % len(SERIES)]]
+
+
+_SUPERSCRIPT = str.maketrans("⁻⁰¹²³⁴⁵⁶⁷⁸⁹", "-0123456789")
+_FIGURE_SYMBOLS = ((re.compile(r"\bd([HSG])‡"), r"Δ\1‡"), (re.compile(r"\bdnu\b"), "Δν"),
+                   (re.compile(r"\blog10\("), r"log$_{10}$("), (re.compile(r"<->"), "↔"),
+                   (re.compile(r"\b(1|2|13|15|17|19|29|31)(H|C|N|O|F|Si|P)\b"), r"$^{\1}$\2"),
+                   (re.compile(r"\^(-?\d+)"), r"$^{\1}$"),
+                   (re.compile(r"\b(\d(?:\.\d+)?)e\+?(-?)0*(\d+)\b"), r"\1×10$^{\2\3}$"),
+                   (re.compile(r"[⁻⁰¹²³⁴⁵⁶⁷⁸⁹]+"), lambda m: f"$^{{{m.group().translate(_SUPERSCRIPT)}}}$"))
+
+
+def figure_text(text: str) -> str:
+    """Plain report text made fit for a figure: real superscripts (``s^-1``, ``s⁻¹`` -> s$^{-1}$), a
+    subscript in log$_{10}$, 1.2×10$^{4}$ for 1.2e+04, ΔH‡/ΔS‡/ΔG‡ for dH‡/dS‡/dG‡, Δν for dnu, ↔ for
+    <->, a nucleus as $^{13}$C; a literal $ stays one."""
+    text = text.replace("$", r"\$")
+    for pattern, replacement in _FIGURE_SYMBOLS:
+        text = pattern.sub(replacement, text)
+    return text
 
 
 def nmr_axis(ax, label: str = "chemical shift / ppm") -> None:
@@ -21,14 +77,18 @@ def nmr_axis(ax, label: str = "chemical shift / ppm") -> None:
 
 
 def plot_spectrum(spectrum, ax=None, **line_kwargs):
-    """Absorption of a spectrum against ppm (high to low); returns the Axes."""
+    """Absorption of a spectrum against ppm (high to low); returns the Axes.
+
+    Without a ``color``, each spectrum drawn into the same Axes takes the next hue of :data:`SERIES`.
+    """
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 3.5))
+    line_kwargs.setdefault("color", series_colour(len(ax.lines)))
     ax.plot(spectrum.ppm, spectrum.intensity, lw=1.0, **line_kwargs)
     nmr_axis(ax)
     ax.set_ylabel("intensity / Hz$^{-1}$")
     if spectrum.title:
-        ax.set_title(spectrum.title)
+        ax.set_title(figure_text(spectrum.title))
     return ax
 
 
@@ -49,15 +109,15 @@ def plot_stack(spectra, labels, ax=None, title: str = ""):
     for i, (s, label) in enumerate(zip(spectra, labels)):
         scale = peak / max(float(s.intensity.max()), 1e-300)
         scale = min(scale, 8.0)  # broad traces are enlarged, at most eightfold, to stay readable
-        ax.plot(s.ppm, i * step + s.intensity * scale, color="k", lw=0.9)
-        note = label if scale == 1.0 else f"{label}  (x{scale:.1f})"
+        ax.plot(s.ppm, i * step + s.intensity * scale, color=INK, lw=0.9)
+        note = figure_text(label) + ("" if scale == 1.0 else f"  (×{scale:.1f})")
         ax.text(s.ppm.min(), i * step + 0.25 * step, " " + note, va="center", ha="left", fontsize=8)
     nmr_axis(ax)
     ax.set_yticks([])
     for side in ("left", "right", "top"):
         ax.spines[side].set_visible(False)
     if title:
-        ax.set_title(title)
+        ax.set_title(figure_text(title))
     return ax
 
 
@@ -95,7 +155,7 @@ def _draw_activation_series(ax, result, colour, x_of, y_of, residual_ax=None) ->
     ln_k, sigma = np.log(result.rate_per_s), result.ln_rate_stderr
     y = y_of(ln_k, t)
     bars = [y - y_of(ln_k - sigma, t), y_of(ln_k + sigma, t) - y]
-    label = result.process or "rates"
+    label = figure_text(result.process) if result.process else "rates"
     ax.errorbar(x_of(t), y, yerr=bars, fmt="o", color=colour, ms=5, capsize=2, label=label)
     t_all = np.concatenate([t, [b.temperature_k for b in result.bounds]])
     grid = np.linspace(t_all.min(), t_all.max(), 200)
@@ -106,7 +166,7 @@ def _draw_activation_series(ax, result, colour, x_of, y_of, residual_ax=None) ->
         ax.fill_between(x_of(grid), y_of(fit - q * se, grid), y_of(fit + q * se, grid), color=colour, alpha=0.18, lw=0)
     out = result.outliers
     if out.any():
-        ax.plot(x_of(t[out]), y[out], "o", ms=12, mfc="none", mec="crimson", mew=1.5)
+        ax.plot(x_of(t[out]), y[out], "o", ms=12, mfc="none", mec=INK, mew=1.2)
     _draw_bounds(ax, result.bounds, x_of, y_of, colour)
     if residual_ax is not None:
         residual_ax.errorbar(x_of(t), result.eyring.residuals, yerr=sigma, fmt="o", color=colour, ms=4, capsize=2)
@@ -136,11 +196,11 @@ def plot_eyring(results, *, figure=None):
     fig = figure if figure is not None else plt.figure(figsize=(6.4, 6.4))
     ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.08})
     for i, result in enumerate(results):
-        _draw_activation_series(ax, result, f"C{i}", _kilo_reciprocal, _eyring_ordinate, residual_ax=res)
+        _draw_activation_series(ax, result, series_colour(i), _kilo_reciprocal, _eyring_ordinate, residual_ax=res)
     ax.set_ylabel(r"ln($k$ / $T$)   ($k$ in s$^{-1}$, $T$ in K)")
     top = ax.secondary_xaxis("top", functions=(_kilo_reciprocal, _kilo_reciprocal))
     top.set_xlabel(r"$T$ / K")
-    res.axhline(0.0, color="0.5", lw=0.8)
+    res.axhline(0.0, color=GREY, lw=0.8)
     res.set_ylabel("residual")
     res.set_xlabel(r"1000 / $T$  (K$^{-1}$)")
     ax.legend(frameon=False)
@@ -163,7 +223,7 @@ def plot_rates(results, *, figure=None):
     fig = figure if figure is not None else plt.figure(figsize=(6.4, 4.8))
     ax = fig.subplots()
     for i, result in enumerate(results):
-        _draw_activation_series(ax, result, f"C{i}", lambda t: t, _rate_ordinate)
+        _draw_activation_series(ax, result, series_colour(i), lambda t: t, _rate_ordinate)
     ax.set_yscale("log")
     ax.set_xlabel(r"$T$ / K")
     ax.set_ylabel(r"$k$ / s$^{-1}$")
@@ -186,32 +246,32 @@ def plot_spectrum_fit(fit, *, figure=None):
     Returns
     -------
     matplotlib.figure.Figure
-        Upper panel: data (black), fit (red), baseline (grey, dashed); lower panel: data - fit with the
-        band of +/- 2 noise standard deviations.
+        Upper panel: data (black), fit (vermilion), baseline (grey, dashed); lower panel: data - fit
+        with the band of ±2 noise standard deviations.
     """
     fig = figure if figure is not None else plt.figure(figsize=(7.0, 4.8))
     ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.06})
-    ax.plot(fit.ppm, fit.data, color="k", lw=0.8, label="data")
-    ax.plot(fit.ppm, fit.fitted, color="tab:red", lw=1.1, label="fit")
-    ax.plot(fit.ppm, fit.baseline, color="0.55", lw=0.8, ls="--", label="baseline")
+    ax.plot(fit.ppm, fit.data, color=INK, lw=0.8, label="data")
+    ax.plot(fit.ppm, fit.fitted, color=FIT_COLOUR, lw=1.1, label="fit")
+    ax.plot(fit.ppm, fit.baseline, color=GREY, lw=0.8, ls="--", label="baseline")
     ax.set_ylabel("intensity")
     ax.legend(frameon=False, fontsize=8, loc="upper right")
-    text = "\n".join(f"{r.process}: {r.describe().split('   ')[0]}" for r in fit.rates)
+    text = "\n".join(figure_text(f"{r.process}: {r.describe().split('   ')[0]}") for r in fit.rates)
     ax.text(0.01, 0.97, text, transform=ax.transAxes, va="top", ha="left", fontsize=8)
     band = 2.0 * fit.noise.sigma
-    res.axhspan(-band, band, color="0.88", lw=0)
-    res.plot(fit.ppm, fit.residuals, color="k", lw=0.6)
+    res.axhspan(-band, band, color=PALE, lw=0)
+    res.plot(fit.ppm, fit.residuals, color=INK, lw=0.6)
     res.set_ylabel("residual")
     nmr_axis(res)
     from pathlib import Path
 
     name = Path(fit.source).name if fit.source else "spectrum"
-    ax.set_title(f"{name}" + (f", {fit.temperature_k:g} K" if fit.temperature_k else ""), fontsize=10)
+    ax.set_title(figure_text(name) + (f", {fit.temperature_k:g} K" if fit.temperature_k else ""), fontsize=10)
     return fig
 
 
 def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
-    """Measured (black) and fitted (red) spectra of a series, stacked bottom to top.
+    """Measured (black) and fitted (vermilion) spectra of a series, stacked bottom to top.
 
     Parameters
     ----------
@@ -229,18 +289,29 @@ def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
     for i, (fit, label) in enumerate(zip(fits, labels)):
         baseline = fit.baseline
         height = max(float(np.max(fit.fitted - baseline)), 1e-300)
-        ax.plot(fit.ppm, i + (fit.data - baseline) / height * 0.85, color="k", lw=0.7)
-        ax.plot(fit.ppm, i + (fit.fitted - baseline) / height * 0.85, color="tab:red", lw=0.9)
-        ax.text(fit.ppm.max(), i + 0.3, " " + label, va="center", ha="left", fontsize=8)
+        ax.plot(fit.ppm, i + (fit.data - baseline) / height * 0.85, color=INK, lw=0.7)
+        ax.plot(fit.ppm, i + (fit.fitted - baseline) / height * 0.85, color=FIT_COLOUR, lw=0.9)
+        ax.text(fit.ppm.max(), i + 0.3, " " + figure_text(label), va="center", ha="left", fontsize=8)
     nmr_axis(ax)
     ax.set_yticks([])
     for side in ("left", "right", "top"):
         ax.spines[side].set_visible(False)
-    ax.set_title(title or "measured (black) and fitted (red)", fontsize=10)
+    ax.set_title(figure_text(title) if title else "measured (black) and fitted (vermilion)", fontsize=10)
     return fig
 
 
-# --- posterior samples: corner figure ----------------------------------------------------------
+# --- posterior samples: the pairwise posterior figure -------------------------------------------
+
+PAIRS_HUE = PALETTE["indigo"]  # credible regions and marginal densities
+TRUE_VALUE_COLOUR = PALETTE["vermilion"]
+REGION_ALPHA = {0.95: 0.28, 0.68: 0.7}  # lighter: the 95 % region; darker: the 68 % region inside it
+MARGINAL_ALPHA = (0.22, 0.55)  # a marginal density; its 95 % interval (or the side of its one-sided bound)
+#: The key printed under the figure.
+PAIRS_KEY = ("pairs: 68 % (dark) and 95 % (light) credible regions;  ● medians\n"
+             "diagonal: density, 95 % interval (or the side of a one-sided 95 % bound) darker;  | median or bound\n"
+             "r: correlation coefficient;  ◆ ▲ true values")
+KEY_HEIGHT_IN, LABELS_HEIGHT_IN = 0.45, 1.0  # room under the panels for the axis labels and the key
+
 
 def _credible_levels(density: np.ndarray, masses=(0.95, 0.68)) -> list[float]:
     """Density levels enclosing `masses` of a 2-D histogram (highest-density regions), ascending."""
@@ -250,17 +321,86 @@ def _credible_levels(density: np.ndarray, masses=(0.95, 0.68)) -> list[float]:
     return sorted(set(levels))
 
 
-def _marks_1d(ax, x: np.ndarray, one_sided: str | None) -> str:
-    """Median and 68 % interval (dashed), or the one-sided 95 % bound (dotted); returns the panel title."""
+def _fixed(value: float, decimals: int) -> str:
+    return f"{value:.{decimals}f}".replace("-", "−")
+
+
+def _marginal_numbers(x: np.ndarray, one_sided: str | None) -> tuple[tuple[float, float], float, str]:
+    """The shaded range of a marginal, where its tick goes, and its text: the 95 % central interval with
+    the median (rounded to two significant digits of the interval's half-width), or the one-sided 95 %
+    bound (the range from the lowest or to the highest sample)."""
     if one_sided in ("upper-bound", "lower-bound"):
-        bound = float(np.percentile(x, 95.0 if one_sided == "upper-bound" else 5.0))
-        ax.axvline(bound, color="k", ls=":", lw=1.2)
-        return f"{'<' if one_sided == 'upper-bound' else '>'} {bound:.3g} (95 %)"
-    low, median, high = np.percentile(x, [15.87, 50.0, 84.13])
-    ax.axvline(median, color="k", lw=1.0)
-    for v in (low, high):
-        ax.axvline(v, color="k", ls="--", lw=0.8)
-    return f"{median:.4g} (+{high - median:.2g} / −{median - low:.2g})"
+        upper = one_sided == "upper-bound"
+        bound = float(np.percentile(x, 95.0 if upper else 5.0))
+        shaded = (float(x.min()), bound) if upper else (bound, float(x.max()))
+        return shaded, bound, f"{'<' if upper else '>'} {bound:.3g}".replace("-", "−") + "\n(95 % bound)"
+    low, median, high = (float(v) for v in np.percentile(x, [2.5, 50.0, 97.5]))
+    half = 0.5 * (high - low)
+    decimals = int(max(0, 1 - np.floor(np.log10(half)))) if half > 0 else 3
+    numbers = f"{_fixed(median, decimals)}\n95 %: {_fixed(low, decimals)} to {_fixed(high, decimals)}"
+    return (low, high), median, numbers
+
+
+def _draw_marginal(ax, x: np.ndarray, span: tuple[float, float], bins: int, one_sided: str | None) -> None:
+    """Smoothed density filled lightly, its 95 % interval (or bound side) darker, the median (or bound)
+    as a tick, the numbers in the upper left."""
+    from scipy.ndimage import gaussian_filter1d
+
+    counts, edges = np.histogram(x, bins=2 * bins, range=span, density=True)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    density = gaussian_filter1d(counts, 1.5)
+    (low, high), tick, text = _marginal_numbers(x, one_sided)
+    ax.fill_between(centres, density, color=PAIRS_HUE, alpha=MARGINAL_ALPHA[0], lw=0)
+    inside = (centres >= low) & (centres <= high)
+    ax.fill_between(centres, density, where=inside, color=PAIRS_HUE, alpha=MARGINAL_ALPHA[1], lw=0,
+                    interpolate=True)
+    ax.plot(centres, density, color=PAIRS_HUE, lw=0.9)
+    ax.plot([tick, tick], [0.0, float(np.interp(tick, centres, density))], color=INK, lw=1.2)
+    ax.set_ylim(0.0, 1.55 * float(density.max()))
+    ax.text(0.03, 0.96, text, transform=ax.transAxes, ha="left", va="top", fontsize=7.5, color=INK)
+
+
+def _draw_pair(ax, xs: np.ndarray, ys: np.ndarray, spans, bins: int) -> None:
+    """68 % and 95 % highest-density regions of two quantities, filled, with their median as a dot."""
+    from scipy.ndimage import gaussian_filter
+
+    hist, xe, ye = np.histogram2d(xs, ys, bins=bins, range=spans)
+    density = gaussian_filter(hist.T, 1.0)
+    centres = 0.5 * (xe[1:] + xe[:-1]), 0.5 * (ye[1:] + ye[:-1])
+    levels = _credible_levels(density)
+    top = float(density.max())
+    if len(levels) == 2 and levels[0] < levels[1] < top:
+        for level, mass in zip(levels, (0.95, 0.68)):
+            ax.contourf(*centres, density, levels=[level, top * 1.01], colors=[PAIRS_HUE],
+                        alpha=REGION_ALPHA[mass])
+        ax.contour(*centres, density, levels=levels[:1], colors=[PAIRS_HUE], linewidths=0.8)
+    else:  # too few distinct samples for regions: show the samples themselves
+        ax.plot(xs, ys, ".", color=PAIRS_HUE, ms=1.5, alpha=0.4)
+    ax.plot(np.median(xs), np.median(ys), "o", color=INK, ms=3)
+
+
+def _mark_true_values(ax, x_true: float | None, y_true: float | None) -> None:
+    """A diamond where both true values are known; else a triangle on the axis of the one that is."""
+    style = {"color": TRUE_VALUE_COLOUR, "mec": INK, "mew": 0.6, "clip_on": False, "zorder": 5}
+    if x_true is not None and y_true is not None:
+        ax.plot(x_true, y_true, "D", ms=6, **style)
+    elif x_true is not None:
+        ax.plot(x_true, 0.0, "^", ms=7, transform=ax.get_xaxis_transform(), **style)
+    elif y_true is not None:
+        ax.plot(0.0, y_true, ">", ms=7, transform=ax.get_yaxis_transform(), **style)
+
+
+def _correlation_text(r: float) -> str:
+    """``r = −0.97``; three decimals from |r| = 0.99 on, where two would round to ±1."""
+    return f"r = {r:+.{3 if abs(r) >= 0.99 else 2}f}".replace("-", "−")
+
+
+def _show_correlation(ax, r: float) -> None:
+    """The correlation coefficient of a pair, in the cell mirroring its panel."""
+    ax.set_axis_off()
+    weight = "bold" if abs(r) >= 0.9 else "normal"
+    ax.text(0.5, 0.5, _correlation_text(r), transform=ax.transAxes, ha="center", va="center",
+            fontsize=10, color=INK, fontweight=weight)
 
 
 def _two_lines(label: str) -> str:
@@ -268,91 +408,114 @@ def _two_lines(label: str) -> str:
     return label.replace(": ", ":\n", 1) if ": " in label else label.replace(" / ", "\n/ ", 1)
 
 
-def plot_corner(samples, labels, *, truths=None, one_sided=None, bins: int | None = None, figure=None):
-    """Corner figure of posterior samples: 1-D histograms on the diagonal, 2-D below it.
+def _spans(x: np.ndarray) -> list[tuple[float, float]]:
+    """Axis range of each column: the central 99.6 % of its samples, padded by 5 %."""
+    spans = []
+    for column in x.T:
+        lo, hi = np.percentile(column, [0.2, 99.8])
+        pad = 0.05 * (hi - lo) if hi > lo else max(abs(lo) * 1e-3, 1e-12)
+        spans.append((float(lo - pad), float(hi + pad)))
+    return spans
+
+
+def _label_axes(grid, labels: list[str]) -> None:
+    """Tick labels and axis labels on the outer panels of the lower triangle only."""
+    p = len(labels)
+    for i in range(p):
+        for j in range(i + 1):
+            ax = grid[i, j]
+            ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
+            ax.tick_params(labelsize=8, colors=INK)
+            if i < p - 1:
+                ax.set_xticklabels([])
+            else:
+                ax.set_xlabel(labels[j])
+                ax.tick_params(axis="x", labelrotation=45)
+            if i == j:
+                ax.set_yticks([])
+                for side in ("left", "right", "top"):
+                    ax.spines[side].set_visible(False)
+                continue
+            ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
+            if j > 0:
+                ax.set_yticklabels([])
+            else:
+                ax.set_ylabel(labels[i])
+
+
+def plot_posterior_pairs(samples, labels, *, true_values=None, one_sided=None, bins: int | None = None,
+                         figure=None, **renamed):
+    """Pairwise posterior figure: every quantity's density, every pair's credible regions, correlations.
 
     Parameters
     ----------
     samples : (n, p) array
-        Samples of p quantities (2 to 6 read best).
+        Samples of p quantities (2 to 6 read best), in their units.
     labels : sequence of str
         Axis label (with unit) of each quantity.
-    truths : sequence of float or None, optional
-        Known values to mark (grey lines; None to mark none for that quantity).
+    true_values : sequence of float or None, optional
+        Known values to mark (None for a quantity without one): a diamond on the pairs where both are
+        known, a triangle on the axis otherwise.
     one_sided : sequence of str or None, optional
-        Per quantity "upper-bound" or "lower-bound" to mark only the one-sided 95 % bound (dotted) instead
-        of the median and 68 % interval.
+        Per quantity "upper-bound" or "lower-bound" to shade and state only its one-sided 95 % bound
+        instead of the median and 95 % interval.
     bins : int, optional
-        Histogram bins (default from the number of samples, 20 to 50).
+        Bins per axis of the 2-D densities (default from the number of samples, 20 to 50).
     figure : matplotlib Figure, optional
         Figure to draw into (default: a new one).
 
     Returns
     -------
     matplotlib.figure.Figure
-        Diagonal: histogram, median (solid) and 68 % central interval (dashed), the median and interval
-        above it.  Below: 2-D histogram with the 68 % and 95 % highest-density contours.
+        A p x p grid: on the diagonal each quantity's smoothed density with its 95 % central interval
+        shaded darker, a tick at the median and the numbers; below it, each pair's 68 % and 95 %
+        highest-density regions, filled, with the medians as a dot; above it, each pair's correlation
+        coefficient r.  A key under the figure says what is drawn.
     """
-    from scipy.ndimage import gaussian_filter
-
+    _refuse_renamed(renamed, {"truths": "true_values"})
     x = np.atleast_2d(np.asarray(samples, dtype=float))
     n, p = x.shape
     if len(labels) != p:
-        raise ValueError(f"{p} quantities but {len(labels)} labels")
-    truths = [None] * p if truths is None else list(truths)
+        raise InputError(f"{p} quantities but {len(labels)} labels", where="labels")
+    true_values = [None] * p if true_values is None else list(true_values)
     one_sided = [None] * p if one_sided is None else list(one_sided)
-    labels = [_two_lines(label) if len(label) > 16 else label for label in labels]
+    labels = [_two_lines(figure_text(label)) if len(label) > 16 else figure_text(label) for label in labels]
     bins = bins or int(np.clip(np.sqrt(n) / 2, 20, 50))
+    spans = _spans(x)
     size = 2.0 * p + 0.8
-    fig = figure if figure is not None else plt.figure(figsize=(size, size))
-    axes = np.atleast_2d(fig.subplots(p, p, squeeze=False))
-    ranges = []
-    for j in range(p):
-        lo, hi = np.percentile(x[:, j], [0.2, 99.8])
-        pad = 0.05 * (hi - lo) if hi > lo else max(abs(lo) * 1e-3, 1e-12)
-        ranges.append((lo - pad, hi + pad))
+    fig = figure if figure is not None else plt.figure(figsize=(size, size + KEY_HEIGHT_IN))
+    grid = np.atleast_2d(fig.subplots(p, p, squeeze=False))
+    correlation = np.corrcoef(x, rowvar=False) if p > 1 else np.ones((1, 1))
     for i in range(p):
         for j in range(p):
-            ax = axes[i, j]
+            ax = grid[i, j]
             if j > i:
-                ax.set_visible(False)
+                _show_correlation(ax, float(correlation[i, j]))
                 continue
             if i == j:
-                ax.hist(x[:, j], bins=bins, range=ranges[j], histtype="step", color="k", lw=1.0)
-                ax.set_title(_marks_1d(ax, x[:, j], one_sided[j]), fontsize=8)
-                ax.set_yticks([])
-                if truths[j] is not None:
-                    ax.axvline(truths[j], color="tab:blue", lw=1.2)
+                _draw_marginal(ax, x[:, j], spans[j], bins, one_sided[j])
+                _mark_true_values(ax, true_values[j], None)
             else:
-                hist, xe, ye = np.histogram2d(x[:, j], x[:, i], bins=bins, range=[ranges[j], ranges[i]])
-                density = gaussian_filter(hist.T, 1.0)
-                ax.pcolormesh(xe, ye, density, cmap="Greys", shading="flat", rasterized=True)
-                levels = _credible_levels(density)
-                if len(levels) == 2 and levels[0] < levels[1] < density.max():
-                    centres = 0.5 * (xe[1:] + xe[:-1]), 0.5 * (ye[1:] + ye[:-1])
-                    ax.contour(*centres, density, levels=levels, colors="k", linewidths=[0.8, 1.2])
-                if truths[j] is not None:
-                    ax.axvline(truths[j], color="tab:blue", lw=1.0)
-                if truths[i] is not None:
-                    ax.axhline(truths[i], color="tab:blue", lw=1.0)
-                if truths[i] is not None and truths[j] is not None:
-                    ax.plot(truths[j], truths[i], "s", color="tab:blue", ms=4)
-                ax.set_ylim(ranges[i])
-            ax.set_xlim(ranges[j])
-            ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
-            if i < p - 1:
-                ax.set_xticklabels([])
-            else:
-                ax.set_xlabel(labels[j])
-                ax.tick_params(axis="x", labelrotation=45, labelsize=8)
-            if i != j:
-                ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4, prune="both"))
-                if j > 0:
-                    ax.set_yticklabels([])
-                else:
-                    ax.set_ylabel(labels[i])
-                    ax.tick_params(axis="y", labelsize=8)
-    fig.subplots_adjust(hspace=0.06, wspace=0.06)
-    fig.text(0.99, 0.99, "lines: median and 68 % interval (dotted: one-sided 95 % bound)\n"
-                         "contours: 68 % and 95 % of the samples", ha="right", va="top", fontsize=8)
+                _draw_pair(ax, x[:, j], x[:, i], [spans[j], spans[i]], bins)
+                _mark_true_values(ax, true_values[j], true_values[i])
+                ax.set_ylim(spans[i])
+            ax.set_xlim(spans[j])
+    _label_axes(grid, labels)
+    height = fig.get_figheight()
+    fig.subplots_adjust(hspace=0.08, wspace=0.08, bottom=(KEY_HEIGHT_IN + LABELS_HEIGHT_IN) / height)
+    fig.text(0.5, 0.1 / height, PAIRS_KEY, ha="center", va="bottom", fontsize=7, color=INK, linespacing=1.4)
     return fig
+
+
+def _refuse_renamed(given: dict, renamed: dict[str, str]) -> None:
+    """An :class:`InputError` naming the new name of a keyword that was renamed; a TypeError for others."""
+    for old in given:
+        if old in renamed:
+            raise InputError(f"the keyword {old!r} was renamed to {renamed[old]!r}", where=old)
+        raise TypeError(f"unexpected keyword argument {old!r}")
+
+
+def plot_corner(*args, **kwargs):
+    """Renamed to :func:`plot_posterior_pairs` (its keyword ``truths`` to ``true_values``)."""
+    raise InputError("dnmr.plotting.plot_corner was renamed to plot_posterior_pairs (and its keyword "
+                     "'truths' to 'true_values'); the figure's look changed too", where="plot_corner")

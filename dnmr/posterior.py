@@ -70,7 +70,7 @@ MIN_ACCEPTANCE = 0.2  # Foreman-Mackey et al. 2013 advise 0.2-0.5; above is usua
 BOUND_KINDS = ("upper-bound", "lower-bound")
 KINDS = ("interval", "upper-bound", "lower-bound", "undetermined")
 PRIOR_EDGE = 0.1  # a 95 % interval ending this close (as a share of its width) to the prior's end reaches it
-CORNER_MAX = 6
+PAIRS_MAX = 6
 EXTRA_LABELS = {"harmonic_mean_temperature_k": "harmonic-mean T / K", "correlation_enthalpy_entropy": "corr(ΔH‡, ΔS‡)"}
 
 
@@ -186,7 +186,7 @@ class Posterior:
     likelihood : str
         The likelihood and priors, in words.
     shown : tuple of str
-        The quantities the corner figure shows by default.
+        The quantities the pairwise posterior figure shows by default.
     notes : list of str
         What to know about the chain and the numbers.
     extra : dict
@@ -283,26 +283,28 @@ class Posterior:
                 "quantities": {s.name: s.to_dict() for s in self.summaries()}, **self.extra,
                 "notes": list(self.notes)}
 
-    def plot(self, names: Sequence[str] | None = None, truths: Sequence[float | None] | None = None,
-             figure: "Figure | None" = None) -> "Figure":
-        """Corner figure of `names` (default :attr:`shown`); see :func:`dnmr.plotting.plot_corner`.
+    def plot(self, names: Sequence[str] | None = None, true_values: Sequence[float | None] | None = None,
+             figure: "Figure | None" = None, **renamed) -> "Figure":
+        """Pairwise posterior figure of `names` (default :attr:`shown`); see
+        :func:`dnmr.plotting.plot_posterior_pairs`.
 
         Parameters
         ----------
         names : sequence of str, optional
             Quantities to show (2 to 6 read best).
-        truths : sequence of float or None, optional
-            Known values to mark, one per shown quantity (None for none).
+        true_values : sequence of float or None, optional
+            Known values to mark, one per shown quantity (None for none), in the quantities' units.
         figure : matplotlib Figure, optional
             Figure to draw into.
         """
-        from .plotting import plot_corner
+        from .plotting import plot_posterior_pairs
 
         names = list(names or self.shown)
         index = [self._index(n) for n in names]
         kinds = [self.quantities[i].kind for i in index]
-        return plot_corner(self.samples[:, index], [self.quantities[i].label for i in index], truths=truths,
-                           one_sided=[k if k in BOUND_KINDS else None for k in kinds], figure=figure)
+        return plot_posterior_pairs(self.samples[:, index], [self.quantities[i].label for i in index],
+                                    true_values=true_values, one_sided=[k if k in BOUND_KINDS else None for k in kinds],
+                                    figure=figure, **renamed)
 
 
 def _num(x: float, digits: int = 3) -> str:
@@ -534,14 +536,14 @@ def sample_spectrum_posterior(
 
 
 def _most_correlated(samples: np.ndarray, names: Sequence[str], first: Sequence[str]) -> tuple[str, ...]:
-    """The names `first`, then the others by their largest |correlation| with them, CORNER_MAX in all."""
+    """The names `first`, then the others by their largest |correlation| with them, PAIRS_MAX in all."""
     if not first:
-        return tuple(names[:CORNER_MAX])
+        return tuple(names[:PAIRS_MAX])
     corr = np.nan_to_num(np.corrcoef(samples.T)) if samples.shape[1] > 1 else np.ones((1, 1))
     corr = np.atleast_2d(corr)
     idx = [names.index(n) for n in first]
     others = sorted((j for j in range(len(names)) if j not in idx), key=lambda j: -np.abs(corr[idx, j]).max())
-    return tuple(names[j] for j in (idx + others)[:CORNER_MAX])
+    return tuple(names[j] for j in (idx + others)[:PAIRS_MAX])
 
 
 # --------------------------------------------------------------------------------------------------

@@ -11,7 +11,7 @@ temperature with its residuals, the Eyring plot and analysis, warnings, safety c
 inputs (SHA-256 of every file) and software versions.  When ``dnmr fit --posterior`` sampled the
 posteriors, the rate table adds the posterior rate and every fit shows its posterior (median with 68 %
 and 95 % intervals, or the one-sided 95 % bound of a bound rate, beside the least-squares result; the
-sampler's notes; the corner figure).
+sampler's notes; the pairwise posterior figure).
 
 Temperatures
 ------------
@@ -469,7 +469,7 @@ def fit_figure_path(outdir: Path, spectrum: dict) -> Path:
 
 
 def posterior_figure_path(outdir: Path, spectrum: dict) -> Path:
-    """Where ``dnmr fit --posterior`` drew the spectrum's corner figure (figures/NNN_<name>_posterior.png)."""
+    """Where ``dnmr fit --posterior`` drew the spectrum's pairwise posterior figure (figures/NNN_<name>_posterior.png)."""
     fit_figure = fit_figure_path(outdir, spectrum)
     return fit_figure.with_name(f"{fit_figure.stem}_posterior.png")
 
@@ -504,7 +504,7 @@ def _posterior_cells(q: dict) -> list[str]:
 
 
 def posterior_block(outdir: Path, s: dict) -> str:
-    """The posterior of one spectrum's fit beside its least-squares result, its notes and its corner
+    """The posterior of one spectrum's fit beside its least-squares result, its notes and its pairwise
     figure ('' when no posterior was sampled)."""
     post = s.get("posterior")
     if not post:
@@ -524,7 +524,7 @@ def posterior_block(outdir: Path, s: dict) -> str:
                    "one-sided 95 % bound", "why a bound"], rows, numeric=[False, True, True, True, True, True])
     body += bullets(post.get("notes", []), "muted")
     return head + body + figure_from_file(posterior_figure_path(outdir, s),
-                                          f"{name}: posterior samples (corner figure)", f"posterior of {name}")
+                                          f"{name}: posterior samples (pairwise posterior figure)", f"posterior of {name}")
 
 
 def _spectrum_block(outdir: Path, s: dict) -> str:

@@ -357,7 +357,7 @@ def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
 
 def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path,
                    record: tuple[Path, str]) -> dict:
-    """Sample the posterior of one fit, save its corner figure and store the summary in record[0] under
+    """Sample the posterior of one fit, save its pairwise posterior figure and store the summary in record[0] under
     the key record[1] (what ``--resume`` reuses; in a worker process); never raises: a failure comes back
     as {"error": ...} and is not stored."""
     from .posterior import sample_spectrum_posterior
@@ -612,7 +612,7 @@ class SeriesFit:
         sampled = [o for o in self.by_temperature() if o.posterior is not None]
         if not sampled:
             return []
-        lines = ["", "posterior of the rates (emcee; corner figures figures/NNN_<name>_posterior.png):"]
+        lines = ["", "posterior of the rates (emcee; pairwise posterior figures figures/NNN_<name>_posterior.png):"]
         for o in sampled:
             t = f"  {o.spectrum.temperature_k:>7.2f}"
             if "error" in o.posterior:
@@ -986,7 +986,7 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
 
 
 def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict, hashes: Mapping) -> None:
-    """Sample the posterior of every fitted spectrum (in the pool) and draw its corner figure; on resume,
+    """Sample the posterior of every fitted spectrum (in the pool) and draw its pairwise posterior figure; on resume,
     a posterior stored for the same spectrum, model, fit and settings (and its figure) is reused."""
     from . import __version__
 
@@ -1013,7 +1013,7 @@ def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict, hashe
 
 
 def _stored_posterior(path: Path, key: str, figure: Path) -> dict | None:
-    """The posterior summary stored at `path` under `key`, when its corner figure is still there."""
+    """The posterior summary stored at `path` under `key`, when its pairwise posterior figure is still there."""
     try:
         data = json.loads(path.read_text())
     except (OSError, ValueError):
@@ -1053,7 +1053,7 @@ def fit_series(
         Also sample the posterior of every fitted spectrum (needs emcee; slow: about walkers x steps
         lineshape evaluations per spectrum) with these settings of
         :func:`dnmr.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
-        the defaults).  The summaries go into results.json and at the end of rates.csv, a corner figure
+        the defaults).  The summaries go into results.json and at the end of rates.csv, a pairwise posterior figure
         per spectrum into ``figures/NNN_<name>_posterior.png``.  On `resume`, a posterior stored for the
         same spectrum, model, fit and settings is reused.
 

@@ -998,9 +998,6 @@ def timescale_view(model: Model, activation: ActivationParameters | None = None,
     )
 
 
-REGIME_COLOURS = {"slow": "#4C72B0", "intermediate": "#DD8452", "fast": "#C44E52"}
-
-
 def plot_regimes(pairs: Sequence[PairTimescale], figure=None):
     """Bands of slow, intermediate and fast exchange against temperature: one panel per field, one row per pair.
 
@@ -1014,7 +1011,7 @@ def plot_regimes(pairs: Sequence[PairTimescale], figure=None):
     -------
     matplotlib.figure.Figure
     """
-    from .plotting import plt
+    from .plotting import INK, REGIME_COLOURS, figure_text, plt
 
     shown = [p for p in pairs if p.slow_below_k is not None and p.fast_above_k is not None]
     if not shown:
@@ -1032,11 +1029,12 @@ def plot_regimes(pairs: Sequence[PairTimescale], figure=None):
             spans = {"slow": (low, t_slow - low), "intermediate": (t_slow, t_fast - t_slow),
                      "fast": (t_fast, high - t_fast)}
             for regime, span in spans.items():
-                ax.broken_barh([span], (row - 0.35, 0.7), color=REGIME_COLOURS[regime],
-                               label=regime if row == 0 else None)
-        ax.set_yticks(range(len(here)), [f"{p.pair.process_name}: {p.pair.label}" for p in here], fontsize=8)
+                ax.broken_barh([span], (row - 0.35, 0.7), facecolor=REGIME_COLOURS[regime], edgecolor=INK,
+                               linewidth=0.5, label=regime if row == 0 else None)
+        ax.set_yticks(range(len(here)), [figure_text(f"{p.pair.process_name}: {p.pair.label}") for p in here],
+                      fontsize=8)
         ax.set_ylim(-0.6, len(here) - 0.4)
-        ax.set_title(f"{mhz:g} MHz (1H)", fontsize=9, loc="left")
+        ax.set_title(figure_text(f"{mhz:g} MHz (1H)"), fontsize=9, loc="left")
     axes[0].legend(ncol=3, fontsize=8, frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0))
     axes[-1].set_xlim(low, high)
     axes[-1].set_xlabel("temperature / K")

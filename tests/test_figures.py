@@ -1,4 +1,11 @@
-"""Figures the command line only saves are closed after saving; figures the Python API returns stay open.
+"""dnmr's figures: drawn only in dnmr's own palette, which stays apart for colour-blind readers and in grey
+scale; closed after the command line saved them, left open when the Python API returns them.
+
+The palette checks use tests/colour_vision.py: CIELAB from the sRGB standard (IEC 61966-2-1) and CIE 15,
+and dichromat vision simulated with the matrices of Machado, Oliveira & Fernandes, IEEE TVCG 15, 1291
+(2009) (values from memory).  The thresholds are dnmr's design targets; for scale, a CIE 1976 colour
+difference of about 2.3 is just noticeable (Sharma, Digital Color Imaging Handbook, 2003; from memory).
+
 
 (matplotlib keeps every pyplot figure until it is closed and warns beyond 20; a command that writes a
 figure file has no further use for it, a notebook user shows and edits the one returned.)  The model is
@@ -7,14 +14,24 @@ the invented AB pair of tests/test_planning.py; the rates for `dnmr eyring` foll
 """
 from __future__ import annotations
 
+import itertools
+
 import matplotlib.pyplot as plt
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from matplotlib.collections import Collection
+from matplotlib.colors import to_hex, to_rgba_array
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
+from matplotlib.text import Text
 
 import dnmr
+import dnmr.output
+from colour_vision import MACHADO_2009, colour_difference, lightness
 from dnmr.cli import cli
 from dnmr.output import save_figure
+from dnmr.plotting import PALETTE, REGIME_COLOURS, SERIES
 from reference_eyring import eyring_rate
 from test_planning import MODEL_TOML
 
@@ -42,14 +59,19 @@ COMMANDS = {  # command line (MODEL, RATES and OUT replaced), figure files it wr
 }
 
 
+def run(command: str, inputs, tmp_path):
+    """Run one of COMMANDS; returns the click result."""
+    model, rates = inputs
+    swap = {"MODEL": str(model), "RATES": str(rates)}
+    args = [swap.get(w, w.replace("OUT", str(tmp_path))) for w in COMMANDS[command][0]]
+    return CliRunner().invoke(cli, args)
+
+
 @pytest.mark.parametrize("command", sorted(COMMANDS))
 def test_cli_closes_the_figures_it_saves(command, inputs, tmp_path):
-    model, rates = inputs
-    words, written = COMMANDS[command]
-    swap = {"MODEL": str(model), "RATES": str(rates)}
-    args = [swap.get(w, w.replace("OUT", str(tmp_path))) for w in words]
+    written = COMMANDS[command][1]
     before = set(plt.get_fignums())
-    result = CliRunner().invoke(cli, args)
+    result = run(command, inputs, tmp_path)
     assert result.exit_code == 0, result.output
     assert all((tmp_path / name).stat().st_size > 1000 for name in written)
     assert set(plt.get_fignums()) == before
@@ -63,3 +85,107 @@ def test_figures_returned_to_python_stay_open(inputs, tmp_path):
     with pytest.raises(dnmr.InputError, match="already exists"):  # a refused write still closes when asked
         save_figure(ax.figure, tmp_path / "kept.png", close=True)
     assert ax.figure.number not in plt.get_fignums()
+
+
+# --- the palette ---------------------------------------------------------------------------------------
+
+HUES = [PALETTE[name] for name in SERIES]
+MIN_LIGHTNESS_STEP = 12.0  # CIE L* between any two hues: they stay apart in a grey-scale print
+MIN_REGIME_LIGHTNESS_STEP = 20.0  # the three regime bands, side by side in one figure
+MIN_DICHROMAT_DIFFERENCE = 20.0  # CIE 1976 Delta E between any two hues, also against the white paper
+
+
+def test_palette_hues_differ_in_lightness():
+    steps = np.diff(sorted(lightness(c) for c in HUES))
+    assert steps.min() >= MIN_LIGHTNESS_STEP, steps
+    regimes = sorted(lightness(c) for c in REGIME_COLOURS.values())
+    assert np.diff(regimes).min() >= MIN_REGIME_LIGHTNESS_STEP
+    assert [lightness(REGIME_COLOURS[r]) for r in ("slow", "intermediate", "fast")] == sorted(regimes)
+
+
+@pytest.mark.parametrize("deficiency", [None, *MACHADO_2009])
+def test_palette_hues_stay_apart_for_colour_blind_readers(deficiency):
+    for first, second in itertools.combinations(HUES + [PALETTE["paper"]], 2):
+        assert colour_difference(first, second, deficiency) >= MIN_DICHROMAT_DIFFERENCE, (first, second)
+
+
+def test_lightness_and_dichromat_simulation_match_published_values():
+    # CIE L* of the sRGB mid grey #808080 is 53.59 and of pure red 53.24 (CIE 15 with IEC 61966-2-1;
+    # common practice, from memory); a dichromat simulation keeps greys grey (Machado et al. 2009).
+    assert lightness("#808080") == pytest.approx(53.59, abs=0.02)
+    assert lightness("#ff0000") == pytest.approx(53.24, abs=0.02)
+    for deficiency in MACHADO_2009:
+        assert colour_difference("#808080", "#ffffff", deficiency) == pytest.approx(
+            colour_difference("#808080", "#ffffff"), abs=1e-3)  # matrices given to 6 decimals
+    assert lightness("#ffffff") == pytest.approx(100.0, abs=0.01)
+
+
+# --- every figure in the palette ------------------------------------------------------------------------
+
+def colours_of(fig) -> set[str]:
+    """Every colour a visible artist of `fig` draws with (RGB hex; fully transparent ones left out)."""
+    fig.canvas.draw()  # maps data to colours (colour-mapped meshes, contours) as a saved file would
+    found = []
+    for artist in fig.findobj(lambda a: a.get_visible()):
+        if isinstance(artist, Line2D):
+            found += [artist.get_color(), artist.get_markerfacecolor(), artist.get_markeredgecolor()]
+        elif isinstance(artist, Patch):
+            found += [artist.get_facecolor(), artist.get_edgecolor()]
+        elif isinstance(artist, Collection):
+            found += list(artist.get_facecolor()) + list(artist.get_edgecolor())
+        elif isinstance(artist, Text) and artist.get_text():
+            found.append(artist.get_color())
+        elif hasattr(artist, "get_cmap"):
+            raise AssertionError(f"{type(artist).__name__} draws with a colour map")
+    rgba = to_rgba_array([c for c in found if not (isinstance(c, str) and c == "none")])
+    return {to_hex(c[:3]) for c in rgba if c[3] > 0}
+
+
+def api_figures(inputs):
+    """One figure from every plotting function the command line does not already draw."""
+    from dnmr.activation import eyring_fit
+    from dnmr.fitting import fit_spectrum
+    from dnmr.plotting import plot_fit_stack, plot_posterior_pairs, plot_rates
+    from test_fitting import REGION, measured, mcconnell, two_site_model
+
+    rng = np.random.default_rng(3)
+    y = 50.0 * mcconnell(120.0).real + rng.normal(0.0, 0.05, 1000)  # McConnell (1958), tests/closed_forms.py
+    fit = fit_spectrum(measured(y), two_site_model(rate=100.0, linewidth=1.2), region_ppm=REGION,
+                       linewidth="fixed", baseline_order=0, phase="none", frequency_offset=False)
+    k = eyring_rate(TEMPERATURES_K, 60.0, -5.0) * np.exp(rng.normal(0.0, 0.05, TEMPERATURES_K.size))
+    lines = [eyring_fit(TEMPERATURES_K, k * scale, 0.05 * k * scale, process=name)
+             for scale, name in ((1.0, "flip"), (30.0, "turn"))]
+    samples = rng.multivariate_normal([60.0, -5.0], [[4.0, 11.0], [11.0, 36.0]], 4000)
+    return {"fit": fit.plot(), "fit stack": plot_fit_stack([fit, fit], ["250 K", "260 K"]),
+            "rates": plot_rates(lines), "eyring, two processes": dnmr.plotting.plot_eyring(lines),
+            "posterior pairs": plot_posterior_pairs(samples, ["dH‡ / kJ mol^-1", "dS‡ / J mol^-1 K^-1"],
+                                                    true_values=[60.0, None], one_sided=[None, "lower-bound"]),
+            "spectra overlaid": overlaid(inputs[0])}
+
+
+def overlaid(model_file):
+    """Several spectra drawn into one Axes: each takes the next palette hue."""
+    spectrum = dnmr.simulate(dnmr.load_model(model_file))
+    ax = spectrum.plot()
+    for _ in SERIES:
+        spectrum.plot(ax=ax)
+    return ax.figure
+
+
+def test_every_figure_uses_only_the_palette(inputs, tmp_path, monkeypatch):
+    palette = {to_hex(c) for c in PALETTE.values()}
+    figures = api_figures(inputs)
+    keep = dnmr.output.save_figure
+
+    def recording(fig, path, **options):
+        figures[path.name] = fig
+        options["close"] = False
+        keep(fig, path, **options)
+
+    monkeypatch.setattr(dnmr.output, "save_figure", recording)
+    for command in COMMANDS:
+        assert run(command, inputs, tmp_path).exit_code == 0
+    assert {"bands.png", "plan.png", "eyring_posterior.png"} <= set(figures)
+    for name, fig in figures.items():
+        assert colours_of(fig) <= palette, name
+        plt.close(fig)

@@ -1,4 +1,4 @@
-"""Posterior samples (dnmr.posterior): the Eyring line, one spectrum, the corner figure, the CLI.
+"""Posterior samples (dnmr.posterior): the Eyring line, one spectrum, the pairwise figure, the CLI.
 
 References: Gelman et al., Bayesian Data Analysis, 3rd ed. (2013), section 14.2 (linear regression with
 the noninformative prior: the posterior of the coefficients is normal about the weighted least-squares
@@ -17,6 +17,7 @@ import math
 import sys
 from pathlib import Path
 
+import matplotlib.pyplot as plt
 import numpy as np
 import pytest
 import statsmodels.api as sm
@@ -225,23 +226,54 @@ def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
     assert post.summary("rate_per_s_flip").bound_95 == pytest.approx(10.0 ** s.bound_95, rel=1e-6)
 
 
-# --- the corner figure ---------------------------------------------------------------------------------
+# --- the pairwise posterior figure -------------------------------------------------------------------
 
 @pytest.mark.parametrize("p", [2, 4, 6])
-def test_corner_figure_panels_and_labels(p):
-    # common practice: p histograms on the diagonal, p (p - 1) / 2 pair panels below, the upper triangle empty
-    from dnmr.plotting import plot_corner
+def test_pairs_figure_panels_labels_and_numbers(p):
+    # p densities on the diagonal, p (p - 1) / 2 pair panels below, the correlation coefficients above
+    # (Pearson's r, checked against numpy.corrcoef), the median and 95 % interval of each quantity
+    from dnmr.plotting import plot_posterior_pairs
 
-    samples = np.random.default_rng(0).normal(size=(4000, p))
+    rng = np.random.default_rng(0)
+    samples = rng.normal(size=(4000, p)) @ np.triu(np.full((p, p), 0.5)) + np.arange(p)
     labels = [f"q{i} / Hz" for i in range(p)]
-    fig = plot_corner(samples, labels, truths=[0.0] * p)
-    visible = [ax for ax in fig.axes if ax.get_visible()]
-    assert len(visible) == p * (p + 1) // 2
+    fig = plot_posterior_pairs(samples, labels, true_values=[0.0] * p)
     grid = np.array(fig.axes).reshape(p, p)
     assert [ax.get_xlabel() for ax in grid[-1]] == labels
     assert [grid[i, 0].get_ylabel() for i in range(1, p)] == labels[1:]
-    assert all(ax.get_title() for ax in np.diag(grid))  # median and 68 % interval above each histogram
-    assert all(len(grid[i, j].collections) >= 2 for i in range(1, p) for j in range(i))  # histogram + contours
+    r = np.corrcoef(samples, rowvar=False)
+    for i in range(p):
+        for j in range(i + 1, p):
+            digits = 3 if abs(r[i, j]) >= 0.99 else 2
+            assert grid[i, j].texts[0].get_text() == f"r = {r[i, j]:+.{digits}f}".replace("-", "−")
+    low, median, high = np.percentile(samples[:, 0], [2.5, 50, 97.5])
+    numbers = grid[0, 0].texts[0].get_text().replace("−", "-")
+    assert [float(v) for v in numbers.replace("95 %:", "").replace(" to ", " ").split()] == pytest.approx(
+        [median, low, high], abs=0.05)  # rounded to two digits of the interval's half-width (about 1)
+    assert all(len(grid[i, j].collections) >= 2 for i in range(1, p) for j in range(i))  # filled regions
+    plt.close(fig)
+
+
+def test_pairs_figure_old_names_say_what_they_became():
+    from dnmr.plotting import plot_corner, plot_posterior_pairs
+
+    with pytest.raises(InputError, match="renamed to plot_posterior_pairs"):
+        plot_corner(np.zeros((10, 2)), ["a", "b"])
+    with pytest.raises(InputError, match="renamed to 'true_values'"):
+        plot_posterior_pairs(np.zeros((10, 2)), ["a", "b"], truths=[0.0, 0.0])
+
+
+def test_pairs_figure_states_a_one_sided_bound_not_a_median():
+    # a rate the data only bound is shown by its one-sided 95 % bound (common practice: no error bar)
+    from dnmr.plotting import plot_posterior_pairs
+
+    rng = np.random.default_rng(1)
+    samples = np.c_[rng.uniform(-2.0, 1.0, 5000), rng.normal(2.0, 0.2, 5000)]
+    fig = plot_posterior_pairs(samples, ["log10(k / s^-1)", "width / Hz"], one_sided=["upper-bound", None])
+    grid = np.array(fig.axes).reshape(2, 2)
+    assert grid[0, 0].texts[0].get_text() == f"< {np.percentile(samples[:, 0], 95):.3g}\n(95 % bound)"
+    assert grid[1, 0].get_xlabel() == "log$_{10}$(k / s$^{-1}$)"  # a real superscript and subscript
+    plt.close(fig)
 
 
 def test_posterior_plot_marks_a_bound_one_sided():
@@ -253,6 +285,9 @@ def test_posterior_plot_marks_a_bound_one_sided():
     assert grid[1, 0].get_ylabel().startswith("ΔS‡")
     with pytest.raises(InputError, match="no quantity"):
         post.plot(names=["enthalpy"])
+    with pytest.raises(InputError, match="renamed to 'true_values'"):
+        post.plot(truths=[55.0, None, None, None])
+    plt.close(fig)
 
 
 # --- command line ----------------------------------------------------------------------------------------
@@ -278,8 +313,8 @@ def test_cli_eyring_posterior_json_and_figure(tmp_path):
     assert post["steps"] == 400 and post["seed"] == 3
     assert {"enthalpy_kj_mol", "entropy_j_mol_k", "gibbs_298_kj_mol", "gibbs_hm_kj_mol"} <= set(post["quantities"])
     assert -1 <= post["correlation_enthalpy_entropy"] <= 1
-    corner = tmp_path / "eyring_posterior.png"
-    assert plot.exists() and corner.exists()
+    pairs = tmp_path / "eyring_posterior.png"
+    assert plot.exists() and pairs.exists()
     again = CliRunner().invoke(cli, args)  # never over an existing figure without --overwrite
     assert again.exit_code == 2 and "already exists" in again.stderr
 
