@@ -246,7 +246,7 @@ def plot_spectrum_fit(fit, *, figure=None):
     Returns
     -------
     matplotlib.figure.Figure
-        Upper panel: data (black), fit (vermilion), baseline (grey, dashed); lower panel: data - fit
+        Upper panel: data (black), fit (orange-red), baseline (grey, dashed); lower panel: data - fit
         with the band of ±2 noise standard deviations.
     """
     fig = figure if figure is not None else plt.figure(figsize=(7.0, 4.8))
@@ -271,7 +271,7 @@ def plot_spectrum_fit(fit, *, figure=None):
 
 
 def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
-    """Measured (black) and fitted (vermilion) spectra of a series, stacked bottom to top.
+    """Measured (black) and fitted (orange-red) spectra of a series, stacked bottom to top.
 
     Parameters
     ----------
@@ -296,7 +296,7 @@ def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
     ax.set_yticks([])
     for side in ("left", "right", "top"):
         ax.spines[side].set_visible(False)
-    ax.set_title(figure_text(title) if title else "measured (black) and fitted (vermilion)", fontsize=10)
+    ax.set_title(figure_text(title) if title else "measured (black) and fitted (orange-red)", fontsize=10)
     return fig
 
 
