@@ -1,6 +1,6 @@
 """Bayesian errors: posterior samples of one spectrum's parameters and of activation parameters.
 
-Optional: needs the emcee package (``pip install "dnmr[bayes]"``).  Both samplers use emcee's
+Optional: needs the emcee package (``pip install emcee``, or the ``bayes`` extra).  Both samplers use emcee's
 affine-invariant ensemble (Goodman & Weare, Comm. Appl. Math. Comp. Sci. 5, 65 (2010); Foreman-Mackey
 et al., PASP 125, 306 (2013)).
 
@@ -63,7 +63,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from .activation import EyringResult
     from .fitting import SpectrumFit
 
-INSTALL_HINT = 'posterior sampling needs the emcee package: pip install "dnmr[bayes]"'
+INSTALL_HINT = 'posterior sampling needs the emcee package: pip install emcee (or pip install ".[bayes]" in dnmr\'s folder)'
 MIN_AUTOCORRELATION_TIMES = 50  # emcee's documentation: trust tau (and the quantiles) from chains this long
 MIN_BURN_AUTOCORRELATION_TIMES = 2
 MIN_ACCEPTANCE = 0.2  # Foreman-Mackey et al. 2013 advise 0.2-0.5; above is usual in few dimensions
