@@ -20,6 +20,9 @@ Formats
     the jcamp package (``XYPOINTS=(XY..XY)``).  The axis is taken in the file's ``##XUNITS``; a Hz
     axis is turned into ppm with ``##.OBSERVE FREQUENCY`` and referenced by
     ``##.SHIFT REFERENCE``, else ``##$OFFSET`` (ppm of the first point), else 0 Hz = 0 ppm.
+``bruker-fid``, ``varian-fid``, ``nmrpipe``
+    Raw 1D FIDs of the two major vendors, processed inside dnmr, and NMRPipe's processed 1D spectra:
+    see :mod:`dnmr.processing`.
 ``bruker-pdata``
     A processed 1D folder (``pdata/N`` holding ``procs`` and ``1r``) or the experiment folder that
     contains ``pdata/1``, read by nmrglue with the intensity scale ``2**NC_proc`` applied.  The first
@@ -129,7 +132,7 @@ class MeasuredSpectrum:
 
 
 def read_spectrum(
-    path: str | Path, *, frequency_mhz: float | None = None, axis: str | None = None
+    path: str | Path, *, frequency_mhz: float | None = None, axis: str | None = None, processing=None
 ) -> MeasuredSpectrum:
     """Read a measured 1D spectrum from a text file, a JCAMP-DX file or a processed-data folder.
 
@@ -144,6 +147,9 @@ def read_spectrum(
     axis : {"ppm", "hz"}, optional
         Unit of the axis column of a text file without a header naming it (default ppm).  Other
         formats record their own unit.
+    processing : dnmr.processing.ProcessingOptions or mapping, optional
+        How to process a raw FID (line broadening in Hz, zero filling, phases in degrees, DC correction,
+        referencing in ppm); raw FIDs only.  See :mod:`dnmr.processing`.
 
     Returns
     -------
@@ -162,14 +168,22 @@ def read_spectrum(
         if not path.exists():
             raise InputError("no such file or folder")
         fmt = detect_format(path)
+        if processing is not None or fmt in RAW_FORMATS:
+            return _read_raw(path, fmt, frequency_mhz, processing)
         return _READERS[fmt](path, frequency_mhz, axis)
     except InputError as err:
         raise err.located(source=path) from None
 
 
 def detect_format(path: str | Path) -> str:
-    """Name the format of `path`: ``"bruker-pdata"``, ``"jcamp-dx"`` or ``"text"``."""
+    """Name the format of `path`: a raw FID or NMRPipe format of :func:`dnmr.processing.raw_format`,
+    ``"bruker-pdata"``, ``"jcamp-dx"`` or ``"text"``."""
+    from .processing import raw_format
+
     path = Path(path)
+    fmt = raw_format(path)
+    if fmt is not None:
+        return fmt
     if path.is_dir() or path.name == "1r":
         return "bruker-pdata"
     if path.suffix.lower() in JCAMP_SUFFIXES:
@@ -781,8 +795,26 @@ def _read_pdata(path: Path, frequency_mhz: float | None, axis: str | None) -> Me
                      "bruker-pdata", metadata, lambda i: f"1r point {i + 1}")
 
 
+def _read_raw(path: Path, fmt: str, frequency_mhz: float | None, processing) -> MeasuredSpectrum:
+    """A raw FID read and processed by :mod:`dnmr.processing`; processing options are refused elsewhere."""
+    from .processing import read_raw
+
+    if fmt not in RAW_FORMATS:
+        raise InputError(f"processing options apply to raw FIDs, and this is a {fmt} file", where="processing")
+    return read_raw(path, frequency_mhz, processing)
+
+
+def _read_pipe(path: Path, frequency_mhz: float | None, axis: str | None) -> MeasuredSpectrum:
+    from .processing import read_pipe
+
+    return read_pipe(path, frequency_mhz, axis)
+
+
+RAW_FORMATS = ("bruker-fid", "varian-fid")
+"""Raw FID formats, read and processed by :mod:`dnmr.processing`."""
 _READERS: dict[str, Callable[[Path, float | None, str | None], MeasuredSpectrum]] = {
     "text": _read_text,
     "jcamp-dx": _read_jcamp,
     "bruker-pdata": _read_pdata,
+    "nmrpipe": _read_pipe,
 }
