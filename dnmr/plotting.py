@@ -20,14 +20,15 @@ def nmr_axis(ax, label: str = "chemical shift / ppm") -> None:
         ax.invert_xaxis()
 
 
-def plot_spectrum(spectrum, ax=None, **line_kwargs):
-    """Absorption of a spectrum against ppm (high to low); returns the Axes."""
+def plot_spectrum(spectrum, ax=None, ylabel: str = "intensity / Hz$^{-1}$", **line_kwargs):
+    """Absorption of a spectrum against ppm (high to low), titled with its title if it has one; returns
+    the Axes."""
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 3.5))
     ax.plot(spectrum.ppm, spectrum.intensity, lw=1.0, **line_kwargs)
     nmr_axis(ax)
-    ax.set_ylabel("intensity / Hz$^{-1}$")
-    if spectrum.title:
+    ax.set_ylabel(ylabel)
+    if getattr(spectrum, "title", ""):
         ax.set_title(spectrum.title)
     return ax
 

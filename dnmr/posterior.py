@@ -56,6 +56,7 @@ import numpy as np
 
 from .errors import InputError
 from .kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
+from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -164,7 +165,7 @@ class Quantity:
 
 
 @dataclass
-class Posterior:
+class Posterior(NotebookView):
     """Posterior samples of some quantities, with their summaries and the sampler's diagnostics.
 
     Attributes

@@ -43,6 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .notebook import NotebookView
 
 MAX_POINTS = 2**21
 """Largest number of points a spectrum may have (2,097,152)."""
@@ -57,7 +58,7 @@ JCAMP_SUFFIXES = {".jdx", ".dx", ".jcamp", ".jcm"}
 
 
 @dataclass(frozen=True, eq=False)
-class MeasuredSpectrum:
+class MeasuredSpectrum(NotebookView):
     """A measured 1D spectrum on a strictly ascending ppm axis.
 
     Attributes
@@ -120,6 +121,26 @@ class MeasuredSpectrum:
                 where="region",
             )
         return replace(self, ppm=self.ppm[keep], intensity=self.intensity[keep])
+
+    def report(self) -> str:
+        """What the spectrum is, and for a processed raw FID each processing step and the notes."""
+        lines = [str(self)]
+        processing = self.metadata.get("processing")
+        if processing:
+            lines.append("processing:")
+            for step in processing["steps"]:
+                details = ", ".join(f"{k} {v}" for k, v in step.items() if k != "step")
+                lines.append(f"  {step['step']}: {details}")
+            lines += [f"  note: {n}" for n in processing["notes"]]
+        return "\n".join(lines)
+
+    def plot(self, ax=None, **line_kwargs):
+        """Draw the intensity against ppm (high to low); returns the matplotlib Axes."""
+        from .plotting import plot_spectrum
+
+        ax = plot_spectrum(self, ax=ax, ylabel="intensity", **line_kwargs)
+        ax.set_title(Path(self.source).name)
+        return ax
 
     def __str__(self) -> str:
         freq = "frequency unknown" if self.frequency_mhz is None else f"{self.frequency_mhz:.6g} MHz"

@@ -77,6 +77,7 @@ from .modelfile import check_keys, load_model, read_toml
 from .output import atomic_write_text, json_ready, save_figure
 from .readers import read_spectrum
 from .tables import check_kelvin
+from .notebook import NotebookView
 
 SHIFT_MODES = ("fixed", "free", "slow-exchange-trend")
 FIT_OPTION_KEYS = {f.name for f in dataclasses.fields(FitOptions)}
@@ -565,7 +566,7 @@ POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "post
 
 
 @dataclass
-class SeriesFit:
+class SeriesFit(NotebookView):
     """The fit of a whole series.
 
     Attributes
