@@ -62,6 +62,7 @@ from .kinetics import (
     eyring_barrier,
 )
 from .tables import check_kelvin, read_table
+from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -490,7 +491,7 @@ def _check_bound(line: LineFit, t: float, lower: float, upper: float, where: str
 
 
 @dataclass(frozen=True)
-class EyringResult:
+class EyringResult(NotebookView):
     """Eyring (and Arrhenius) analysis of one exchange process.
 
     Energies in kJ/mol, entropies in J/(mol K); the ``*_kcal_*`` keys of :meth:`to_dict` give kcal/mol

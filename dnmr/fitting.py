@@ -73,6 +73,7 @@ from .engine import default_window_ppm, lineshape_terms
 from .errors import InputError, did_you_mean
 from .model import Model
 from .readers import MeasuredSpectrum, read_spectrum
+from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from .posterior import Posterior
@@ -946,7 +947,7 @@ def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profil
 
 
 @dataclass
-class SpectrumFit:
+class SpectrumFit(NotebookView):
     """The fit of one spectrum.
 
     Attributes

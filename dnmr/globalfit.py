@@ -91,6 +91,7 @@ from .kinetics import (
 from .model import Model
 from .output import atomic_write_text, json_ready, save_figure
 from .series import Series, SeriesFit, fit_series, load_series
+from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -524,7 +525,7 @@ def _share(covariance: np.ndarray, harmonic_mean_k: float) -> dict[str, float]:
 
 
 @dataclass
-class GlobalFit:
+class GlobalFit(NotebookView):
     """The global fit of a series.
 
     Attributes

@@ -58,6 +58,7 @@ from .engine import frequency_grid_ppm, lineshape_terms
 from .errors import InputError
 from .kinetics import GAS_CONSTANT
 from .model import Exchange, Model, State, coupling_key
+from .notebook import NotebookView
 from .solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
 from .timescale import (
     COUPLING_PAIR_NOTE,
@@ -784,7 +785,7 @@ def _planned_temperature(model: Model, processes: Sequence[int], rate_info: np.n
 
 
 @dataclass(frozen=True)
-class ExperimentPlan:
+class ExperimentPlan(NotebookView):
     """Everything to know before booking the magnet.
 
     Attributes

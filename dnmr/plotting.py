@@ -76,8 +76,9 @@ def nmr_axis(ax, label: str = "chemical shift / ppm") -> None:
         ax.invert_xaxis()
 
 
-def plot_spectrum(spectrum, ax=None, **line_kwargs):
-    """Absorption of a spectrum against ppm (high to low); returns the Axes.
+def plot_spectrum(spectrum, ax=None, ylabel: str = "intensity / Hz$^{-1}$", **line_kwargs):
+    """Absorption of a spectrum against ppm (high to low), titled with its title if it has one; returns
+    the Axes.
 
     Without a ``color``, each spectrum drawn into the same Axes takes the next hue of :data:`SERIES`.
     """
@@ -86,8 +87,8 @@ def plot_spectrum(spectrum, ax=None, **line_kwargs):
     line_kwargs.setdefault("color", series_colour(len(ax.lines)))
     ax.plot(spectrum.ppm, spectrum.intensity, lw=1.0, **line_kwargs)
     nmr_axis(ax)
-    ax.set_ylabel("intensity / Hz$^{-1}$")
-    if spectrum.title:
+    ax.set_ylabel(ylabel)
+    if getattr(spectrum, "title", ""):
         ax.set_title(figure_text(spectrum.title))
     return ax
 

@@ -1,6 +1,6 @@
 """Bayesian errors: posterior samples of one spectrum's parameters and of activation parameters.
 
-Optional: needs the emcee package (``pip install "dnmr[bayes]"``).  Both samplers use emcee's
+Optional: needs the emcee package (``pip install emcee``, or the ``bayes`` extra).  Both samplers use emcee's
 affine-invariant ensemble (Goodman & Weare, Comm. Appl. Math. Comp. Sci. 5, 65 (2010); Foreman-Mackey
 et al., PASP 125, 306 (2013)).
 
@@ -56,6 +56,7 @@ import numpy as np
 
 from .errors import InputError
 from .kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
+from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -63,7 +64,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from .activation import EyringResult
     from .fitting import SpectrumFit
 
-INSTALL_HINT = 'posterior sampling needs the emcee package: pip install "dnmr[bayes]"'
+INSTALL_HINT = 'posterior sampling needs the emcee package: pip install emcee (or pip install ".[bayes]" in dnmr\'s folder)'
 MIN_AUTOCORRELATION_TIMES = 50  # emcee's documentation: trust tau (and the quantiles) from chains this long
 MIN_BURN_AUTOCORRELATION_TIMES = 2
 MIN_ACCEPTANCE = 0.2  # Foreman-Mackey et al. 2013 advise 0.2-0.5; above is usual in few dimensions
@@ -164,7 +165,7 @@ class Quantity:
 
 
 @dataclass
-class Posterior:
+class Posterior(NotebookView):
     """Posterior samples of some quantities, with their summaries and the sampler's diagnostics.
 
     Attributes

@@ -20,6 +20,9 @@ Formats
     the jcamp package (``XYPOINTS=(XY..XY)``).  The axis is taken in the file's ``##XUNITS``; a Hz
     axis is turned into ppm with ``##.OBSERVE FREQUENCY`` and referenced by
     ``##.SHIFT REFERENCE``, else ``##$OFFSET`` (ppm of the first point), else 0 Hz = 0 ppm.
+``bruker-fid``, ``varian-fid``, ``nmrpipe``
+    Raw 1D FIDs of the two major vendors, processed inside dnmr, and NMRPipe's processed 1D spectra:
+    see :mod:`dnmr.processing`.
 ``bruker-pdata``
     A processed 1D folder (``pdata/N`` holding ``procs`` and ``1r``) or the experiment folder that
     contains ``pdata/1``, read by nmrglue with the intensity scale ``2**NC_proc`` applied.  The first
@@ -40,6 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .notebook import NotebookView
 
 MAX_POINTS = 2**21
 """Largest number of points a spectrum may have (2,097,152)."""
@@ -54,7 +58,7 @@ JCAMP_SUFFIXES = {".jdx", ".dx", ".jcamp", ".jcm"}
 
 
 @dataclass(frozen=True, eq=False)
-class MeasuredSpectrum:
+class MeasuredSpectrum(NotebookView):
     """A measured 1D spectrum on a strictly ascending ppm axis.
 
     Attributes
@@ -118,6 +122,26 @@ class MeasuredSpectrum:
             )
         return replace(self, ppm=self.ppm[keep], intensity=self.intensity[keep])
 
+    def report(self) -> str:
+        """What the spectrum is, and for a processed raw FID each processing step and the notes."""
+        lines = [str(self)]
+        processing = self.metadata.get("processing")
+        if processing:
+            lines.append("processing:")
+            for step in processing["steps"]:
+                details = ", ".join(f"{k} {v}" for k, v in step.items() if k != "step")
+                lines.append(f"  {step['step']}: {details}")
+            lines += [f"  note: {n}" for n in processing["notes"]]
+        return "\n".join(lines)
+
+    def plot(self, ax=None, **line_kwargs):
+        """Draw the intensity against ppm (high to low); returns the matplotlib Axes."""
+        from .plotting import plot_spectrum
+
+        ax = plot_spectrum(self, ax=ax, ylabel="intensity", **line_kwargs)
+        ax.set_title(Path(self.source).name)
+        return ax
+
     def __str__(self) -> str:
         freq = "frequency unknown" if self.frequency_mhz is None else f"{self.frequency_mhz:.6g} MHz"
         nucleus = self.metadata.get("nucleus")
@@ -129,7 +153,7 @@ class MeasuredSpectrum:
 
 
 def read_spectrum(
-    path: str | Path, *, frequency_mhz: float | None = None, axis: str | None = None
+    path: str | Path, *, frequency_mhz: float | None = None, axis: str | None = None, processing=None
 ) -> MeasuredSpectrum:
     """Read a measured 1D spectrum from a text file, a JCAMP-DX file or a processed-data folder.
 
@@ -144,6 +168,9 @@ def read_spectrum(
     axis : {"ppm", "hz"}, optional
         Unit of the axis column of a text file without a header naming it (default ppm).  Other
         formats record their own unit.
+    processing : dnmr.processing.ProcessingOptions or mapping, optional
+        How to process a raw FID (line broadening in Hz, zero filling, phases in degrees, DC correction,
+        referencing in ppm); raw FIDs only.  See :mod:`dnmr.processing`.
 
     Returns
     -------
@@ -162,14 +189,22 @@ def read_spectrum(
         if not path.exists():
             raise InputError("no such file or folder")
         fmt = detect_format(path)
+        if processing is not None or fmt in RAW_FORMATS:
+            return _read_raw(path, fmt, frequency_mhz, processing)
         return _READERS[fmt](path, frequency_mhz, axis)
     except InputError as err:
         raise err.located(source=path) from None
 
 
 def detect_format(path: str | Path) -> str:
-    """Name the format of `path`: ``"bruker-pdata"``, ``"jcamp-dx"`` or ``"text"``."""
+    """Name the format of `path`: a raw FID or NMRPipe format of :func:`dnmr.processing.raw_format`,
+    ``"bruker-pdata"``, ``"jcamp-dx"`` or ``"text"``."""
+    from .processing import raw_format
+
     path = Path(path)
+    fmt = raw_format(path)
+    if fmt is not None:
+        return fmt
     if path.is_dir() or path.name == "1r":
         return "bruker-pdata"
     if path.suffix.lower() in JCAMP_SUFFIXES:
@@ -781,8 +816,26 @@ def _read_pdata(path: Path, frequency_mhz: float | None, axis: str | None) -> Me
                      "bruker-pdata", metadata, lambda i: f"1r point {i + 1}")
 
 
+def _read_raw(path: Path, fmt: str, frequency_mhz: float | None, processing) -> MeasuredSpectrum:
+    """A raw FID read and processed by :mod:`dnmr.processing`; processing options are refused elsewhere."""
+    from .processing import read_raw
+
+    if fmt not in RAW_FORMATS:
+        raise InputError(f"processing options apply to raw FIDs, and this is a {fmt} file", where="processing")
+    return read_raw(path, frequency_mhz, processing)
+
+
+def _read_pipe(path: Path, frequency_mhz: float | None, axis: str | None) -> MeasuredSpectrum:
+    from .processing import read_pipe
+
+    return read_pipe(path, frequency_mhz, axis)
+
+
+RAW_FORMATS = ("bruker-fid", "varian-fid")
+"""Raw FID formats, read and processed by :mod:`dnmr.processing`."""
 _READERS: dict[str, Callable[[Path, float | None, str | None], MeasuredSpectrum]] = {
     "text": _read_text,
     "jcamp-dx": _read_jcamp,
     "bruker-pdata": _read_pdata,
+    "nmrpipe": _read_pipe,
 }

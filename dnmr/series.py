@@ -14,6 +14,7 @@ Series file (TOML; the first four keys are fixed by the project's interface cont
     temperature_k = 240.0
     # optional per spectrum: frequency_mhz, axis, and the fit options region_ppm, noise_ppm, noise,
     # baseline_order, phase, frequency_offset, max_offset_hz, linewidth, parameters
+    processing = { line_broadening_hz = 0.5 }   # raw FIDs only (dnmr.processing); also series-wide as [processing]
 
 Fitting a series
 ----------------
@@ -76,14 +77,15 @@ from .modelfile import check_keys, load_model, read_toml
 from .output import atomic_write_text, json_ready, save_figure
 from .readers import read_spectrum
 from .tables import check_kelvin
+from .notebook import NotebookView
 
 SHIFT_MODES = ("fixed", "free", "slow-exchange-trend")
 FIT_OPTION_KEYS = {f.name for f in dataclasses.fields(FitOptions)}
-SERIES_KEYS = {"model", "fit", "spectrum"}
+SERIES_KEYS = {"model", "fit", "spectrum", "processing"}
 SERIES_FIT_KEYS = FIT_OPTION_KEYS | {"slow_exchange_below_k"}
 SPECTRUM_OPTION_KEYS = {"region_ppm", "noise_ppm", "noise", "baseline_order", "phase", "frequency_offset",
                         "max_offset_hz", "linewidth", "parameters"}
-SPECTRUM_KEYS = {"file", "temperature_k", "frequency_mhz", "axis"} | SPECTRUM_OPTION_KEYS
+SPECTRUM_KEYS = {"file", "temperature_k", "frequency_mhz", "axis", "processing"} | SPECTRUM_OPTION_KEYS
 SLOW_EXCHANGE_FRACTION = 0.25
 """A spectrum counts as slow exchange when its rate is under this fraction of the coalescence rate."""
 OUTPUT_FILES = ("rates.csv", "results.json", "series_fits.png", "series.json")
@@ -116,6 +118,8 @@ class SeriesSpectrum:
         Its place in the series file (``spectrum[3]``).
     flags : tuple of str
         Remarks found when reading the series (``duplicate-temperature``).
+    processing : dict or None
+        How to process a raw FID (:class:`dnmr.processing.ProcessingOptions` as plain data).
     """
 
     file: Path
@@ -125,6 +129,7 @@ class SeriesSpectrum:
     axis: str | None = None
     where: str = ""
     flags: tuple[str, ...] = ()
+    processing: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -176,7 +181,23 @@ def _options(table: Mapping, base: FitOptions | None, where: str) -> FitOptions:
         raise InputError(f"bad value ({err})", where=where) from None
 
 
-def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions) -> SeriesSpectrum:
+def _processing(table: Mapping, base: dict | None, where: str) -> dict | None:
+    """Processing options of a raw FID (merged over the series' `base`), checked, as plain data."""
+    from .processing import ProcessingOptions
+
+    if "processing" not in table:
+        return base
+    changes = table["processing"]
+    try:
+        if not isinstance(changes, dict):
+            raise InputError("expected a table of processing options")
+        return ProcessingOptions.from_mapping({**(base or {}), **changes}).to_dict()
+    except InputError as err:
+        raise InputError(err.message, where=f"{where}processing" + (f".{err.where}" if err.where else "")) from None
+
+
+def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions, processing: dict | None = None
+              ) -> SeriesSpectrum:
     where = f"spectrum[{index}]"
     check_keys(table, SPECTRUM_KEYS, where, required=("file", "temperature_k"))
     file, temperature = table["file"], table["temperature_k"]
@@ -196,7 +217,8 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions) -> Ser
         raise InputError(f'no spectrum "{file}" in {folder}; check the path (relative to the series file)',
                          where=f"{where}.file")
     return SeriesSpectrum((folder / file).resolve(), float(temperature), options,
-                          None if frequency is None else float(frequency), axis, where)
+                          None if frequency is None else float(frequency), axis, where,
+                          processing=_processing(table, processing, f"{where}."))
 
 
 def _flag_duplicates(spectra: list[SeriesSpectrum]) -> tuple[list[SeriesSpectrum], list[str]]:
@@ -259,7 +281,8 @@ def load_series(path: str | Path) -> Series:
         if not isinstance(tables, list) or not tables or not all(isinstance(t, dict) for t in tables):
             raise InputError("expected one [[spectrum]] table per spectrum", where="spectrum")
         folder = path.resolve().parent
-        spectra = [_spectrum(t, i, folder, options) for i, t in enumerate(tables)]
+        processing = _processing(data, None, "")
+        spectra = [_spectrum(t, i, folder, options, processing) for i, t in enumerate(tables)]
     except InputError as err:
         raise err.located(source=path) from None
     model_file = (folder / data["model"]).resolve()
@@ -320,6 +343,8 @@ def _job(series: Series, index: int, stage: str, options: FitOptions, hashes: Ma
     identity = {"spectrum": hashes[index], "file": str(s.file), "temperature_k": s.temperature_k,
                 "frequency_mhz": s.frequency_mhz, "axis": s.axis, "options": options.to_dict(),
                 "model": hashes["model"], "stage": stage, "dnmr": __version__}
+    if s.processing is not None:
+        identity["processing"] = s.processing
     return _Job(index, stage, s, options, _identity_key(identity))
 
 
@@ -332,9 +357,13 @@ def _run_job(model: Model, job: _Job, start: Mapping[str, float] | None) -> dict
     """Fit one spectrum (in a worker process); never raises: a failure comes back as data."""
     s = job.spectrum
     try:
-        spectrum = read_spectrum(s.file, frequency_mhz=s.frequency_mhz or model.spectrometer.frequency_mhz, axis=s.axis)
+        spectrum = read_spectrum(s.file, frequency_mhz=s.frequency_mhz or model.spectrometer.frequency_mhz, axis=s.axis,
+                                 processing=s.processing)
         fit = fit_spectrum(spectrum, model, temperature_k=s.temperature_k, options=job.options, start=start)
-        return {"status": "fitted", "fit": fit.to_dict(), "curves": fit.curves()}
+        processing = spectrum.metadata.get("processing")
+        if processing:  # the apodization's exact addition to every linewidth, said beside the fit
+            fit.notes.extend(n for n in processing["notes"] if n not in fit.notes)
+        return {"status": "fitted", "fit": fit.to_dict(), "curves": fit.curves(), "processing": processing}
     except InputError as err:
         return {"status": "failed", "bad_input": True, "error": str(err.located(source=s.file))}
     except Exception as err:  # a failed fit is reported for this spectrum; the others go on
@@ -444,6 +473,8 @@ class SpectrumOutcome:
     posterior : dict or None
         The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
         sampling failed) when it was sampled.
+    processing : dict or None
+        How a raw FID was processed (:func:`dnmr.processing.process`'s record), for raw FIDs.
     """
 
     spectrum: SeriesSpectrum
@@ -454,6 +485,7 @@ class SpectrumOutcome:
     reused: bool = False
     notes: list[str] = field(default_factory=list)
     posterior: dict | None = None
+    processing: dict | None = None
 
     def posterior_rate(self, i: int) -> dict | None:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
@@ -534,7 +566,7 @@ POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "post
 
 
 @dataclass
-class SeriesFit:
+class SeriesFit(NotebookView):
     """The fit of a whole series.
 
     Attributes
@@ -858,7 +890,7 @@ def _outcome(series: Series, index: int, record: dict, stage: str) -> SpectrumOu
     if record["status"] != "fitted":
         return SpectrumOutcome(s, None, record["error"], record.get("bad_input", False), stage)
     fit = SpectrumFit.from_dict(record["fit"], record["curves"], series.model.at_temperature(s.temperature_k))
-    return SpectrumOutcome(s, fit, stage=stage, reused=record.get("reused", False))
+    return SpectrumOutcome(s, fit, stage=stage, reused=record.get("reused", False), processing=record.get("processing"))
 
 
 def _coalescence_rate(model: Model) -> float:
@@ -971,6 +1003,8 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
                  "stage": o.stage, "reused": o.reused, "flags": list(o.spectrum.flags), "notes": o.notes,
                  "error": o.error or None, "bad_input": o.bad_input,
                  "fit": o.fit.to_dict() if o.fitted else None, "posterior": o.posterior}
+        if o.processing is not None:
+            entry["processing"] = o.processing
         spectra.append(entry)
     _write_json(outdir / "results.json", {
         "program": "dnmr fit", "versions": _versions(),

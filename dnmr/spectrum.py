@@ -11,10 +11,11 @@ from .engine import frequency_grid_ppm, lineshape_terms
 from .resolvent import LineshapeTerms
 from .model import Model
 from .output import atomic_write_text
+from .notebook import NotebookView
 
 
 @dataclass(frozen=True)
-class Spectrum:
+class Spectrum(NotebookView):
     """A simulated spectrum on a ppm grid.
 
     Attributes
@@ -63,6 +64,13 @@ class Spectrum:
 
         peaks, _ = find_peaks(self.intensity, prominence=prominence * self.intensity.max())
         return self.ppm[peaks][::-1]
+
+    def report(self) -> str:
+        """One line: title, points, range (ppm), frequency (MHz), integral, maxima (ppm)."""
+        maxima = ", ".join(f"{p:.3f}" for p in self.maxima_ppm())
+        return (f"{self.title or 'simulated spectrum'}: {self.ppm.size} points, {self.ppm[-1]:.3f} to "
+                f"{self.ppm[0]:.3f} ppm at {self.frequency_mhz:g} MHz; integral {self.integral():.4g}; "
+                f"maxima at {maxima} ppm")
 
     def to_csv(self, path: str | Path, overwrite: bool = False) -> Path:
         """Write columns ppm, hz, intensity, dispersion (high ppm first, full precision), atomically."""

@@ -27,6 +27,7 @@ from scipy.signal import find_peaks, peak_widths
 
 from .errors import InputError, did_you_mean
 from .tables import check_kelvin, read_table
+from .notebook import NotebookView
 
 THERMOMETER_CAUTIONS = (
     "Cautions: methanol is toxic (by swallowing, breathing its vapour and through the skin) and highly "
@@ -386,7 +387,7 @@ class CalibratedTemperatures(NamedTuple):
 
 
 @dataclass(frozen=True)
-class TemperatureCalibration:
+class TemperatureCalibration(NotebookView):
     """Polynomial from the VT unit's set-point to the true sample temperature.
 
     Attributes

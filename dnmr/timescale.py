@@ -45,6 +45,7 @@ from scipy.optimize import brentq
 from .errors import InputError
 from .kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
 from .model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
+from .notebook import NotebookView
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
 DEFAULT_DETECTABLE_FRACTION = 0.1
@@ -888,7 +889,7 @@ def snapshot(model: Model, proton_mhz: float, temperature_k: float | None = None
 
 
 @dataclass(frozen=True)
-class TimescaleView:
+class TimescaleView(NotebookView):
     """Where each exchanging pair is slow, intermediate or fast, and the averaged spin system.
 
     Attributes

@@ -323,7 +323,7 @@ def test_cli_without_emcee_is_one_line_exit_2(tmp_path, monkeypatch):
     monkeypatch.setitem(sys.modules, "emcee", None)  # import emcee now raises ImportError
     result = CliRunner().invoke(cli, ["eyring", str(write_rates(tmp_path)), "--posterior"])
     assert result.exit_code == 2
-    assert result.stderr.strip().count("\n") == 0 and 'pip install "dnmr[bayes]"' in result.stderr
+    assert result.stderr.strip().count("\n") == 0 and 'pip install emcee' in result.stderr
     assert INSTALL_HINT in result.stderr and "Traceback" not in result.output
 
 
@@ -374,5 +374,5 @@ def test_cli_fit_posterior_without_emcee_stops_before_fitting(tmp_path, monkeypa
     monkeypatch.setitem(sys.modules, "emcee", None)
     series = write_series(tmp_path / "inputs", [250.0, 290.0])
     result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--posterior"])
-    assert result.exit_code == 2 and 'pip install "dnmr[bayes]"' in result.stderr
+    assert result.exit_code == 2 and 'pip install emcee' in result.stderr
     assert result.stderr.strip().count("\n") == 0 and not (tmp_path / "out").exists()
