@@ -31,11 +31,17 @@ Any parameter the series file fixes in ``[fit.parameters]`` (``vary = false``) i
 
 Method
 ------
-1. The ordinary two-step fit (:func:`dnmr.series.fit_series`) runs first into ``OUTDIR/two-step``.  Its
-   Eyring line (:func:`dnmr.activation.eyring_fit_file`, with the calibration) starts dH‡ and dS‡; lines
-   through its per-spectrum values start the trends (shifts as the line positions it found, shift plus
-   frequency offset); nothing else is taken over: each spectrum's amplitude, phase, baseline and offset
-   are refitted at these start values before the joint fit.
+1. The ordinary two-step fit (:func:`dnmr.series.fit_series`) runs first into ``OUTDIR/two-step``: the
+   result to compare with, and the data, noise estimate, region and fit options of every spectrum.  The
+   start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
+   is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
+   coldest third of the spectra, taken to be in slow exchange, and the shift trends start from lines
+   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); dH‡ and
+   dS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
+   spectrum with a clear minimum (at least three; else the two-step Eyring line, else a line through its
+   best-fit rates).  Every offset starts at 0; each spectrum's amplitude, phase and baseline (started at
+   its two-step values) and offset are refitted alone, then all of them jointly with the rest: none is
+   held at a two-step value.
 2. All residuals (fit - data) / sigma_i are minimised together (scipy ``least_squares``, trust region).
    sigma_i is each spectrum's measured noise: the weights never depend on how well a spectrum fits.
    Every quantity of a spectrum's lineshape is an affine function of the global parameters, so its
@@ -109,6 +115,7 @@ MIN_LINEWIDTH_HZ = 1e-3
 STEP_TOLERANCE_SE = 0.01  # the joint fit stops once its last step was below this many standard errors
 XTOL = GTOL = 1e-12  # backstops only: relative to |x| and to the gradient, they mean nothing in standard errors
 SCAN_HALF_WIDTH_HZ = 15.0  # the start's scan of each shift in the coldest spectra reaches this far (Hz)
+SCAN_MIN_WIDTH_HZ = 0.5  # narrowest line the shift scans use (their grid step is a quarter of it)
 SCAN_RISE = 25.0  # a rate scan's minimum counts when chi-square rises by this much on both sides
 GAUGE_HZ = 1e-3  # scale of the offsets' gauge residuals (any positive value gives the same fit and errors)
 DIFFERENCE_STEP = {"rate": 1e-5, "shift": 1e-4, "linewidth": 1e-4, "coupling": 1e-4, "population": 1e-5,
@@ -365,17 +372,16 @@ class _GlobalProblem:
 
     def _gauge(self) -> np.ndarray:
         """Rows (over the free parameters) anchoring the offsets: a change of every offset by a polynomial
-        in T of a degree the shift trends have, with every shift moved back by it, changes no spectrum."""
-        shift_params = [n for n in self.names if n.startswith("shift_ppm_")]
+        in T of a degree that every shift trend has free, with every shift moved back by it, changes no
+        spectrum; those changes are ruled out (none when an offset or a shift is held)."""
+        shifts = [q.name for q in self.quantities if q.family == "shift"]
         offsets = [f"{m.prefix}offset_hz" for m in self.members]
         if not all(n in self.free for n in offsets):
             return np.zeros((0, len(self.free)))
         temps = np.array([m.temperature_k for m in self.members]) - self.reference_k
         rows = []
         for j in range(TREND_DEGREES[self.treatment.shifts] + 1):
-            level = [n for n in shift_params if n.endswith(TREND_SUFFIXES[j]) and
-                     (j > 0 or not n.endswith(TREND_SUFFIXES[1:]))]
-            if not level or not all(n in self.free for n in level):
+            if not shifts or not all(n + TREND_SUFFIXES[j] in self.free for n in shifts):
                 break
             row = np.zeros(len(self.free))
             row[[self.free.index(n) for n in offsets]] = temps ** j
@@ -678,10 +684,10 @@ def _scanned_lines(problem: _GlobalProblem, cold: Sequence[int], g: np.ndarray) 
     """Shift quantities (ppm) in each spectrum of `cold` (coldest first) and the linewidth (Hz) in the
     coldest, in the slow-exchange limit: each shift scanned in turn (two passes) over +-SCAN_HALF_WIDTH_HZ
     (at least 5 linewidths) around where the previous spectrum had it, at the model's first-guess
-    linewidth; then the linewidth over 0.05-20 Hz."""
+    linewidth (at least SCAN_MIN_WIDTH_HZ), on a grid of a quarter of it; then the linewidth over 0.05-20 Hz."""
     shifts, widths, rates = _rows(problem, "shift"), _rows(problem, "linewidth"), _rows(problem, "rate")
     sf = problem.model.spectrometer.frequency_mhz
-    guess = float(np.max(problem.model.linewidths_hz()))
+    guess = max(float(np.max(problem.model.linewidths_hz())), SCAN_MIN_WIDTH_HZ)
     grid = np.arange(-max(SCAN_HALF_WIDTH_HZ, 5 * guess), max(SCAN_HALF_WIDTH_HZ, 5 * guess) + 1e-9, guess / 4) / sf
     found, previous, width = [], None, guess
     for k in cold:
