@@ -155,10 +155,12 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--quiet", is_flag=True, help="No progress bar.")
 @click.option("--global", "global_fit", is_flag=True,
               help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
-@click.option("--shifts", type=click.Choice(["constant", "linear"]), default="constant", show_default=True,
-              help="With --global: shifts the same at every temperature, or linear in T.")
-@click.option("--linewidth", type=click.Choice(["per-spectrum", "linear"]), default="per-spectrum", show_default=True,
-              help="With --global: linewidths per spectrum, or linear in T.")
+@click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
+              help="With --global: temperature trend of the chemical shifts.")
+@click.option("--linewidth", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
+              show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
+@click.option("--couplings", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
+              help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the report's Eyring analysis"
                    " and the global fit.")
@@ -171,7 +173,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str,
+        workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
         posterior_seed: int) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
@@ -189,8 +191,8 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
 
         require_emcee(where="--posterior")
     if global_fit:
-        _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet, shifts, linewidth,
-                    calibration_file)
+        _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet,
+                    {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
         return
     result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                         progress=False if quiet else None,
@@ -198,28 +200,35 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     click.echo(result.report())
     for failed in result.failures:
         click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-    if not no_report:
-        from .report import write_report
-
-        try:  # the report is derived from the fit: rewritten with each run into this folder
-            click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
-        except InputError as err:
-            click.echo(f"dnmr: warning: no report written: {err}", err=True)
+    _write_report_after_fit(outdir, calibration_file, no_report)
     ctx.exit(result.exit_status)
 
 
 def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
-                shifts: str, linewidth: str, calibration_file: Path | None) -> None:
-    """`dnmr fit --global`: the global fit (dnmr.globalfit) and its report."""
+                treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
+    """`dnmr fit --global`: the global fit (dnmr.globalfit), its text report and report.html."""
     from .globalfit import fit_series_global
     from .thermometry import read_temperature_calibration
 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, shifts=shifts,
-                               linewidth=linewidth, workers=workers, progress=False if quiet else None)
+    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
+                               progress=False if quiet else None, **treatment)
     click.echo(result.report())
+    _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
+
+
+def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_report: bool) -> None:
+    """report.html of the fit just written into `outdir` (rewritten with each run), unless `no_report`."""
+    if no_report:
+        return
+    from .report import write_report
+
+    try:
+        click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
+    except InputError as err:
+        click.echo(f"dnmr: warning: no report written: {err}", err=True)
 
 
 @cli.command()

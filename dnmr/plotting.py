@@ -285,20 +285,53 @@ def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
     -------
     matplotlib.figure.Figure
     """
-    fig = figure if figure is not None else plt.figure(figsize=(6.5, 1.2 + 0.9 * len(fits)))
-    ax = fig.subplots()
+    fig, ax = _stack_axes(figure, len(fits), 0.9)
     for i, (fit, label) in enumerate(zip(fits, labels)):
         baseline = fit.baseline
         height = max(float(np.max(fit.fitted - baseline)), 1e-300)
         ax.plot(fit.ppm, i + (fit.data - baseline) / height * 0.85, color=INK, lw=0.7)
         ax.plot(fit.ppm, i + (fit.fitted - baseline) / height * 0.85, color=FIT_COLOUR, lw=0.9)
         ax.text(fit.ppm.max(), i + 0.3, " " + figure_text(label), va="center", ha="left", fontsize=8)
+    return _finish_stack(fig, ax, title or "measured (black) and fitted (orange-red)")
+
+
+def _stack_axes(figure, traces: int, inches_per_trace: float):
+    """The figure (a new one unless given) and its one axes for `traces` stacked traces."""
+    fig = figure if figure is not None else plt.figure(figsize=(6.5, 1.2 + inches_per_trace * traces))
+    return fig, fig.subplots()
+
+
+def _finish_stack(fig, ax, title: str):
+    """A ppm axis (high to low), no y axis or frame but the bottom, and the title; returns `fig`."""
     nmr_axis(ax)
     ax.set_yticks([])
     for side in ("left", "right", "top"):
         ax.spines[side].set_visible(False)
-    ax.set_title(figure_text(title) if title else "measured (black) and fitted (orange-red)", fontsize=10)
+    ax.set_title(figure_text(title), fontsize=10)
     return fig
+
+
+def plot_residual_stack(fits, labels, *, figure=None, title: str = ""):
+    """Residuals over the noise, (data - fit) / sigma, of a series' spectra, stacked bottom to top.
+
+    Parameters
+    ----------
+    fits : sequence of SpectrumFit
+        One per trace, drawn from the bottom up, each divided by its own noise (``fit.noise.sigma``),
+        clipped at +-5 and drawn 10 units above the last; a pale band marks +-3.
+    labels : sequence of str
+        Text beside each trace (its temperature).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    fig, ax = _stack_axes(figure, len(fits), 0.7)
+    for i, (fit, label) in enumerate(zip(fits, labels)):
+        ax.axhspan(10 * i - 3, 10 * i + 3, color=PALE, lw=0)
+        ax.plot(fit.ppm, 10 * i + np.clip(fit.residuals / fit.noise.sigma, -5, 5), color=INK, lw=0.5)
+        ax.text(fit.ppm.max(), 10 * i, " " + figure_text(label), va="center", ha="left", fontsize=8)
+    return _finish_stack(fig, ax, title or "residuals over the noise (grey: within 3σ; clipped at 5)")
 
 
 # --- posterior samples: the pairwise posterior figure -------------------------------------------
