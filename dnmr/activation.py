@@ -413,9 +413,9 @@ def _check_row(series: RateSeries, i: int, t_err: float, bound: bool) -> None:
     if not (0.0 <= t_err <= MAX_RELATIVE_TEMPERATURE_ERROR * t):
         _fail(series, i, f"temperature_stderr = {t_err:g} K is not a plausible standard error (0 to {MAX_RELATIVE_TEMPERATURE_ERROR * t:.0f} K)")
     for name in ("rate_lower", "rate_upper"):
-        bound = getattr(series, name)[i]
-        if np.isfinite(bound) and bound <= 0:
-            _fail(series, i, f"{name} must be positive (s^-1), got {bound:g}")
+        limit = getattr(series, name)[i]
+        if np.isfinite(limit) and limit <= 0:
+            _fail(series, i, f"{name} must be positive (s^-1), got {limit:g}")
     if bound:
         if series.rate_lower[i] >= series.rate_upper[i]:
             _fail(series, i, "rate_lower must be smaller than rate_upper")
