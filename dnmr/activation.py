@@ -677,7 +677,7 @@ class EyringResult:
     """Eyring (and Arrhenius) analysis of one exchange process.
 
     Energies in kJ/mol, entropies in J/(mol K); the ``*_kcal_*`` keys of :meth:`to_dict` give kcal/mol
-    and cal/(mol K). Use :meth:`gibbs` for dG‡ at any temperature, :meth:`report` (or ``print``) for a
+    and cal/(mol K). Use :meth:`gibbs` for ΔG‡ at any temperature, :meth:`report` (or ``print``) for a
     readable summary, :meth:`plot` for the figures.
 
     Attributes
@@ -748,27 +748,27 @@ class EyringResult:
     # ---- activation parameters --------------------------------------------------------------------
     @property
     def enthalpy_kj_mol(self) -> float:
-        """dH‡, kJ/mol."""
+        """ΔH‡, kJ/mol."""
         return self.eyring.energy.value
 
     @property
     def enthalpy_stderr(self) -> float:
-        """Standard error of dH‡, kJ/mol."""
+        """Standard error of ΔH‡, kJ/mol."""
         return self.eyring.energy.stderr
 
     @property
     def entropy_j_mol_k(self) -> float:
-        """dS‡, J/(mol K)."""
+        """ΔS‡, J/(mol K)."""
         return GAS_CONSTANT * (self.eyring.intercept - self._kappa_term)
 
     @property
     def entropy_stderr(self) -> float:
-        """Standard error of dS‡, J/(mol K)."""
+        """Standard error of ΔS‡, J/(mol K)."""
         return GAS_CONSTANT * math.sqrt(self.eyring.covariance[0, 0])
 
     @property
     def correlation(self) -> float:
-        """Correlation coefficient of dH‡ and dS‡ (close to +1 for any single series)."""
+        """Correlation coefficient of ΔH‡ and ΔS‡ (close to +1 for any single series)."""
         c = self.eyring.covariance
         return float(-c[0, 1] / math.sqrt(c[0, 0] * c[1, 1]))
 
@@ -776,14 +776,14 @@ class EyringResult:
     def harmonic_mean_temperature_k(self) -> float:
         """Harmonic mean of the fitted temperatures, weighted as in the fit, K.
 
-        Here dG‡ is statistically uncorrelated with dH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
+        Here ΔG‡ is statistically uncorrelated with ΔH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
         """
         w = self.eyring.weights
         return float(w.sum() / (w / self.temperature_k).sum())
 
     @property
     def uncorrelated_temperature_k(self) -> float:
-        """Temperature (K) at which dG‡ is uncorrelated with dH‡ under the full covariance.
+        """Temperature (K) at which ΔG‡ is uncorrelated with ΔH‡ under the full covariance.
 
         Equals :attr:`harmonic_mean_temperature_k` when the temperatures are exact; temperature errors
         move it a little.
@@ -792,15 +792,15 @@ class EyringResult:
         return float(-c[1, 1] / c[0, 1])
 
     def gibbs(self, temperature_k: float | np.ndarray = STANDARD_TEMPERATURE_K) -> Estimate:
-        """dG‡ = dH‡ - T dS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
+        """ΔG‡ = ΔH‡ - T ΔS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
         t = np.asarray(temperature_k, dtype=float)
         value = self.enthalpy_kj_mol - t * self.entropy_j_mol_k / 1e3
-        c = self.eyring.covariance  # dG‡ = -R (slope + T (intercept - const)): gradient -R (T, 1)
+        c = self.eyring.covariance  # ΔG‡ = -R (slope + T (intercept - const)): gradient -R (T, 1)
         stderr = GAS_CONSTANT / 1e3 * np.sqrt(c[0, 0] * t * t + 2 * c[0, 1] * t + c[1, 1])
         return Estimate(float(value), float(stderr)) if t.ndim == 0 else Estimate(value, stderr)
 
     def gibbs_enthalpy_correlation(self, temperature_k: float) -> float:
-        """Correlation coefficient of dG‡ at `temperature_k` (K) with dH‡."""
+        """Correlation coefficient of ΔG‡ at `temperature_k` (K) with ΔH‡."""
         c = self.eyring.covariance
         cov = c[1, 1] + temperature_k * c[0, 1]  # cov(b + T a, b), in units of R^2
         return float(cov / math.sqrt(c[1, 1] * (c[1, 1] + 2 * temperature_k * c[0, 1] + temperature_k**2 * c[0, 0])))
@@ -976,7 +976,7 @@ class EyringResult:
         return plot_eyring([self], figure=figure)
 
     def sample_posterior(self, **settings) -> "Posterior":
-        """Posterior samples of dH‡, dS‡ and dG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
+        """Posterior samples of ΔH‡, ΔS‡ and ΔG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
         for the method and the settings (steps, walkers, burn, thin, seed)."""
         from .posterior import sample_eyring_posterior
 
@@ -1282,7 +1282,13 @@ def _warnings(result: EyringResult) -> list[str]:
             "(scale_errors=True) to widen them by the scatter"
         )
     if result.error_basis == BASIS_GIVEN and p > 0.99 and result.eyring.dof >= 3:
-        out.append(f"the rates scatter much less than their errors (reduced chi-square {red:.2f}); the errors may be overstated")
+        scatter_share = result.error_shares()["enthalpy"].get(SHARE_TEMPERATURES, 0.0)
+        why = (f": {100 * scatter_share:.0f} % of the variance of ΔH‡ comes from independent temperature errors "
+               "(temperature_stderr, or a calibration's scatter about its curve, taken as run-to-run scatter) — "
+               "overstated if the sample temperatures do not stray that much from run to run"
+               if scatter_share > 0.25 else "")
+        out.append(f"the rates scatter much less than their errors (reduced chi-square {red:.2f}); the errors may be "
+                   f"overstated{why}")
     for t, r in zip(result.temperature_k[result.outliers], result.studentised_residuals[result.outliers]):
         out.append(f"possible outlier at {t:g} K (studentised residual {r:+.1f})")
     out.extend(b.describe() for b in result.bounds if b.violated)
@@ -1314,7 +1320,8 @@ def _report(r: EyringResult) -> str:
     lines = _heading(f"Eyring analysis — process {r.process!r}" if r.process else "Eyring analysis", "=")
     lines += _summary_lines(r, d) + [""]
     lines += _heading("Activation parameters") + _parameter_lines(r, d) + [""]
-    lines += _heading("Where the errors come from") + _share_lines(r) + [""]
+    if len(r.eyring.covariance_parts) > 1:
+        lines += _heading("Where the errors come from") + _share_lines(r) + [""]
     lines += _heading("Arrhenius")
     lines.append(f"  {'Ea':<16}{format_with_error(d['activation_energy_kj_mol'], d['activation_energy_stderr']):>18} kJ/mol")
     lines.append(f"  {'ln(A / s⁻¹)':<16}{format_with_error(d['ln_prefactor'], d['ln_prefactor_stderr']):>18}")
@@ -1421,7 +1428,7 @@ COALESCENCE_CAVEAT = (
 
 @dataclass(frozen=True)
 class CoalescenceEstimate:
-    """dG‡ at the coalescence temperature of two equally populated, uncoupled sites.
+    """ΔG‡ at the coalescence temperature of two equally populated, uncoupled sites.
 
     Attributes
     ----------
@@ -1432,7 +1439,7 @@ class CoalescenceEstimate:
     rate_per_s : float
         Rate constant at coalescence, k_c = pi dnu / sqrt(2), s^-1.
     gibbs_kj_mol : float
-        dG‡ at T_c, kJ/mol.
+        ΔG‡ at T_c, kJ/mol.
     gibbs_stderr : float
         Its standard error from the given errors of T_c and dnu, kJ/mol (0 when none were given).
     transmission : float
@@ -1473,9 +1480,9 @@ class CoalescenceEstimate:
         return "\n".join(
             [
                 "Coalescence estimate (equal populations)",
-                f"  T_c = {self.coalescence_temperature_k:g} K, dnu = {self.shift_difference_hz:g} Hz",
-                f"  k_c = {self.rate_per_s:.4g} s^-1",
-                f"  dG‡(T_c) = {g} kJ/mol ({g_kcal} kcal/mol)",
+                f"  T_c = {self.coalescence_temperature_k:g} K, Δν = {self.shift_difference_hz:g} Hz",
+                f"  k_c = {self.rate_per_s:.4g} s⁻¹",
+                f"  ΔG‡(T_c) = {g} kJ/mol ({g_kcal} kcal/mol)",
                 f"  Caveat: {self.caveat}",
             ]
         )
@@ -1492,9 +1499,9 @@ def coalescence_barrier(
     shift_difference_stderr: float = 0.0,
     transmission: float = 1.0,
 ) -> CoalescenceEstimate:
-    """Quick dG‡ (kJ/mol) from a coalescence temperature (K) and a shift difference (Hz), equal populations.
+    """Quick ΔG‡ (kJ/mol) from a coalescence temperature (K) and a shift difference (Hz), equal populations.
 
-    dG‡_c = R T_c ln( sqrt(2) kB T_c / (pi h dnu) ): the Gutowsky-Holm rate at coalescence
+    ΔG‡_c = R T_c ln( sqrt(2) kB T_c / (pi h dnu) ): the Gutowsky-Holm rate at coalescence
     k_c = pi dnu / sqrt(2) put into the Eyring equation. See :data:`COALESCENCE_CAVEAT`.
 
     Parameters
