@@ -2,34 +2,55 @@
 
 Method
 ------
-The Eyring equation k = kappa (kB T / h) exp(dS‡/R) exp(-dH‡/RT) is a straight line
+The Eyring equation k = kappa (kB T / h) exp(ΔS‡/R) exp(-ΔH‡/RT) is a straight line
 
-    ln(k/T) = [ln(kappa kB / h) + dS‡/R] - (dH‡/R) (1/T),
+    ln(k/T) = [ln(kappa kB / h) + ΔS‡/R] - (ΔH‡/R) (1/T),
 
-fitted by weighted least squares with weights 1/sigma^2, sigma = rate_stderr / rate (the standard error
-of ln k). dH‡ = -R * slope, dS‡ = R * (intercept - ln(kappa kB/h)); dG‡(T) = dH‡ - T dS‡ with its
-standard error from the full covariance of slope and intercept. The Arrhenius line ln k = ln A - Ea/(RT)
-is fitted the same way. Energies in kJ/mol (kcal/mol alongside), entropies in J/(mol K).
+fitted by generalised least squares: the residuals of ln(k/T) have the covariance
 
-Standard errors
----------------
-* Rate errors given (every rate has ``rate_stderr``): the errors are taken at face value (covariance
-  (X^T W X)^-1, not rescaled) and the reduced chi-square is reported with its p-value; a poor value
-  raises a warning. ``scale_errors=True`` multiplies the covariance by the reduced chi-square instead.
-* No rate errors: unit weights, and the errors come from the residual scatter about the line
-  (ordinary least squares; needs at least 3 rates, with 2 the errors are reported as not determined).
+    V = diag(sigma_i^2) + G C_T G,   sigma_i = rate_stderr_i / rate_i (the standard error of ln k_i),
+
+where C_T is the covariance of the temperatures (K^2) and G = diag(dr_i/dT_i), dr/dT = -1/T + slope/T^2
+the change of a point's residual with its temperature (linearised; iterated with the slope, effective
+variance). The estimate is (X^T V^-1 X)^-1 X^T V^-1 y with covariance (X^T V^-1 X)^-1, and the
+goodness of fit is chi-square = r^T V^-1 r with n - 2 degrees of freedom. ΔH‡ = -R * slope,
+ΔS‡ = R * (intercept - ln(kappa kB/h)); ΔG‡(T) = ΔH‡ - T ΔS‡ with its standard error from the full
+covariance of slope and intercept. The Arrhenius line ln k = ln A - Ea/(RT) is fitted the same way.
+Energies in kJ/mol (kcal/mol alongside), entropies in J/(mol K).
 
 Temperature errors
 ------------------
-Temperature uncertainties (per point, one value for all, or a full covariance from a calibration in
-which the errors of different points are correlated) are propagated by Monte Carlo: the temperatures
-are redrawn ``monte_carlo_draws`` times from their normal distribution (``seed`` fixes the generator;
-the default seed makes reports reproducible), each draw is refitted with the same weights, and the
-covariance of the refitted intercept and slope is added to the covariance from the rates. Random and
-systematic (calibration) temperature errors are both covered. Without rate errors the residual scatter
-already contains the random part of the temperature errors, so that part is counted twice there
-(conservative). The reduced chi-square counts each point's temperature error through its effect on the
-residual (effective variance).
+C_T = diag(independent^2) + F F^T: an independent error per point (a ``temperature_stderr`` column or
+value, the scatter of a calibration's points about its curve) plus a few *shared* columns F — the
+uncertainty of a calibration curve (one column per coefficient) and an unknown probe offset
+(``temperature_offset_stderr``: one column, the same in every row). A shared error moves every point
+together; it is not scatter and does not inflate the chi-square. C_T is never formed as a dense n x n
+matrix: V^-1 is applied by the Woodbury identity, so a table of thousands of rows costs a few vectors.
+Because the estimate is linear in the data, its covariance splits exactly into the shares of the rates,
+of the independent temperature errors and of each shared source (``error_shares``).
+
+Standard errors
+---------------
+* Rate errors given (every rate has ``rate_stderr``): the errors are taken at face value (covariance not
+  rescaled) and the reduced chi-square is reported with its p-value; a poor value raises a warning.
+  ``scale_errors=True`` multiplies the covariance by the reduced chi-square instead.
+* No rate errors: ordinary least squares, and the rate part of the errors comes from the residual scatter
+  (needs at least 3 rates; with 2 the errors are reported as not determined). That scatter already holds
+  the independent temperature errors, so only the shared ones are added (through the same linear map).
+
+Rows of a fit table
+-------------------
+A ``rates.csv`` of ``dnmr fit`` says how each rate was obtained. Rows whose fit failed or left the rate
+undetermined carry nothing and are left out. A rate with a 68 % profile interval instead of a symmetric
+error (status ``interval``) is used as a value with the standard error of ln k taken as the *larger* of
+the interval's two half-widths in ln k (never smaller than the stated error): conservative on the side
+the line may fall. A row whose spectrum was a misfit (flag ``misfit``) or whose fit left a nuisance
+parameter at a limit of its range (flag ``at-bound:<parameter>``; its interval is then shaped by the
+limit) is *flagged*: by default it is set aside (``flagged_rows="exclude"``), listed in the report and
+compared with the line, but not fitted, because a model that does not describe the spectrum biases the
+rate by more than any widening of its error covers. ``flagged_rows="widen"`` fits it instead, with the
+error ``dnmr fit`` wrote — already widened by sqrt(reduced chi-square) for a misfit — and the larger
+half-width of its interval. Either way the report names the rows and what was done.
 
 Bounds, outliers, warnings
 --------------------------
@@ -38,7 +59,7 @@ fit; they are reported and checked against the fitted line (a bound the line vio
 Outliers are flagged by studentised residuals (beyond 3 standard deviations by default, common
 practice; judged one at a time so that one gross outlier does not make its neighbours look bad), never
 removed.
-Warnings are raised for a temperature span under 30 K (dS‡ poorly determined, common practice) and for
+Warnings are raised for a temperature span under 30 K (ΔS‡ poorly determined, common practice) and for
 fewer than 4 rates.
 """
 from __future__ import annotations
@@ -63,6 +84,7 @@ from .kinetics import (
 )
 from .tables import check_kelvin, read_table
 from .notebook import NotebookView
+from .thermometry import TemperatureErrors
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
@@ -72,14 +94,21 @@ if TYPE_CHECKING:  # pragma: no cover
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
-                         "ci68_low_per_s", "ci68_high_per_s")
+                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square")
 #: Fit statuses (``dnmr fit``) whose rows carry no rate information at all.
 STATUS_WITHOUT_RATE = ("failed", "undetermined")
-NARROW_SPAN_K = 30.0  # common practice: a narrower span leaves dS‡ poorly determined
+#: What to do with rows a fit flagged as a misfit or as shaped by a nuisance parameter at its limit.
+FLAGGED_ROW_POLICIES = ("exclude", "widen")
+MISFIT_FLAG = "misfit"
+NUISANCE_AT_LIMIT_FLAG = "at-bound:"
+NARROW_SPAN_K = 30.0  # common practice: a narrower span leaves ΔS‡ poorly determined
 FEW_RATES = 4
 OUTLIER_THRESHOLD = 3.0  # common practice for studentised residuals
 MAX_RELATIVE_TEMPERATURE_ERROR = 0.2
 LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its residual cannot be judged
+SLOPE_TOLERANCE = 1e-9  # relative change of the slope that ends the effective-variance iteration (rounding
+# leaves about 1e-10 on tens of thousands of rows)
+MAX_ITERATIONS = 50
 
 
 class Estimate(NamedTuple):
@@ -92,6 +121,31 @@ class Estimate(NamedTuple):
 # --------------------------------------------------------------------------------------------------
 # Input: a series of rates of one process
 # --------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class SetAsideRow:
+    """A rate of a fit table that was not fitted because its fit is flagged (see the module notes).
+
+    Attributes
+    ----------
+    temperature_k : float
+        Temperature of the row, K.
+    rate_per_s : float
+        Its rate, s^-1.
+    ln_rate_stderr : float
+        Standard error of ln k it would have been fitted with (NaN when none).
+    where : str
+        The row ('line N').
+    reason : str
+        Why it was set aside, in words.
+    """
+
+    temperature_k: float
+    rate_per_s: float
+    ln_rate_stderr: float
+    where: str
+    reason: str
 
 
 @dataclass(frozen=True)
@@ -110,14 +164,16 @@ class RateSeries:
         Standard error of the rate, s^-1 (NaN where not given).
     rate_lower, rate_upper : ndarray
         Bounds of the rate, s^-1, for rows the data only bound (NaN where not given).
-    temperature_covariance : ndarray
-        Covariance of the temperatures, K^2 (zeros when the temperatures are taken as exact).
+    temperature_errors : TemperatureErrors
+        Errors of the temperatures, independent and shared (none when the temperatures are taken as exact).
     source : str or None
         File the series was read from.
     lines : tuple of int or None
         File line of each row.
     notes : tuple of str
-        What was done with rows of a fit table that are not plain values (left out, or an interval used).
+        What was done with rows of a fit table that are not plain values (left out, set aside, widened).
+    set_aside : tuple of SetAsideRow
+        Rows with a rate that were not fitted because their fit is flagged.
     """
 
     process: str
@@ -126,18 +182,24 @@ class RateSeries:
     rate_stderr: np.ndarray
     rate_lower: np.ndarray
     rate_upper: np.ndarray
-    temperature_covariance: np.ndarray
+    temperature_errors: TemperatureErrors
     source: str | None = None
     lines: tuple[int, ...] | None = None
     notes: tuple[str, ...] = ()
+    set_aside: tuple[SetAsideRow, ...] = ()
 
     def __len__(self) -> int:
         return len(self.temperature_k)
 
     @property
     def temperature_stderr(self) -> np.ndarray:
-        """Standard error of each temperature, K."""
-        return np.sqrt(np.diag(self.temperature_covariance))
+        """Standard error of each temperature (independent and shared parts), K."""
+        return self.temperature_errors.stderr
+
+    @property
+    def temperature_covariance(self) -> np.ndarray:
+        """Dense covariance of the temperatures, K^2 (n x n: for short series only)."""
+        return self.temperature_errors.covariance
 
     @property
     def is_bound(self) -> np.ndarray:
@@ -148,16 +210,20 @@ class RateSeries:
         """Where a row is, for messages: 'line N' of the file, or 'row N' for arrays."""
         return f"line {self.lines[row]}" if self.lines else f"row {row + 1}"
 
-    def with_temperatures(self, temperature_k: np.ndarray, covariance: np.ndarray) -> "RateSeries":
-        """Copy with new temperatures (K) whose covariance (K^2) adds to the present one.
+    def with_temperatures(self, temperature_k: np.ndarray, errors: TemperatureErrors) -> "RateSeries":
+        """Copy with new temperatures (K) whose errors add to the present ones.
 
         Used to replace set-point temperatures by calibrated sample temperatures.
         """
-        return replace(
-            self,
-            temperature_k=np.asarray(temperature_k, dtype=float),
-            temperature_covariance=self.temperature_covariance + np.asarray(covariance, dtype=float),
-        )
+        return replace(self, temperature_k=np.asarray(temperature_k, dtype=float),
+                       temperature_errors=self.temperature_errors.plus(errors))
+
+    def with_offset(self, offset_stderr_k: float) -> "RateSeries":
+        """Copy with an unknown probe offset (standard error in K) shared by every temperature."""
+        if not 0.0 <= offset_stderr_k <= MAX_RELATIVE_TEMPERATURE_ERROR * float(self.temperature_k.min()):
+            raise InputError(f"must be a plausible standard error in K (zero or positive), got {offset_stderr_k:g}",
+                             self.source, "temperature_offset_stderr")
+        return replace(self, temperature_errors=self.temperature_errors.with_offset(offset_stderr_k))
 
 
 def _vector(values, name: str, n: int | None = None, *, scalar: bool = False, fill: float = np.nan) -> np.ndarray:
@@ -185,19 +251,26 @@ def _checked_covariance(matrix, n: int) -> np.ndarray:
     return c
 
 
-def read_rates(path: str | Path, temperature_stderr: float | None = None) -> list[RateSeries]:
+def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
+               flagged_rows: str = "exclude") -> list[RateSeries]:
     """Read a rates table (CSV) into one :class:`RateSeries` per process, in order of appearance.
 
     Columns: ``temperature_k`` and ``rate_per_s`` (required); ``rate_stderr``, ``temperature_stderr``,
-    ``rate_lower``, ``rate_upper``, ``process`` (optional); other columns are ignored. This is the
-    ``rates.csv`` that ``dnmr fit`` writes, or a table of your own.
+    ``rate_lower``, ``rate_upper``, ``process`` (optional); the ``status``, ``ci68_low_per_s``,
+    ``ci68_high_per_s``, ``flags`` and ``reduced_chi_square`` columns of ``dnmr fit`` are read as the
+    module notes say; other columns are ignored. This is the ``rates.csv`` that ``dnmr fit`` writes, or a
+    table of your own.
 
     Parameters
     ----------
     path : str or Path
         The CSV file.
     temperature_stderr : float, optional
-        One standard error (K) for every temperature, when the table has no temperature_stderr column.
+        One standard error (K) for every temperature, independent between rows, when the table has no
+        temperature_stderr column.
+    flagged_rows : {"exclude", "widen"}
+        Rows flagged ``misfit`` or ``at-bound:<parameter>``: set aside (default), or fitted with widened
+        errors.
 
     Raises
     ------
@@ -205,6 +278,8 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None) -> lis
         Missing column, non-numeric cell, a temperature that looks like degrees Celsius, a negative rate,
         a rate with neither value nor bounds... naming the file and line.
     """
+    if flagged_rows not in FLAGGED_ROW_POLICIES:
+        raise InputError(f"must be one of {', '.join(FLAGGED_ROW_POLICIES)}, got {flagged_rows!r}", where="flagged_rows")
     table = read_table(path, RATE_COLUMNS_REQUIRED, RATE_COLUMNS_OPTIONAL)
     if temperature_stderr is not None and table.has("temperature_stderr"):
         raise InputError(
@@ -212,7 +287,7 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None) -> lis
             table.source,
         )
     numbers = {name: table.numbers(name, allow_empty=name != "temperature_k") for name in RATE_COLUMNS_REQUIRED}
-    for name in ("rate_stderr", "rate_lower", "rate_upper"):
+    for name in ("rate_stderr", "rate_lower", "rate_upper", "ci68_low_per_s", "ci68_high_per_s", "reduced_chi_square"):
         numbers[name] = table.numbers(name, allow_empty=True) if table.has(name) else np.full(len(table), np.nan)
     if table.has("temperature_stderr"):
         t_err = table.numbers("temperature_stderr")
@@ -222,56 +297,105 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None) -> lis
         _check_temperature_stderr(t_err, table.source, lambda i: "--temperature-stderr")
     processes = table.text("process") if table.has("process") else ("",) * len(table)
     status = table.text("status") if table.has("status") else ("",) * len(table)
-    notes = _apply_fit_status(table, status, numbers)
+    flags = table.text("flags") if table.has("flags") else ("",) * len(table)
+    rows = [_FitRow.read(table, i, numbers, status[i], flags[i], flagged_rows) for i in range(len(table))]
     series = []
     for name in dict.fromkeys(processes):
-        rows = np.array([p == name for p in processes]) & ~np.isin(status, STATUS_WITHOUT_RATE)
+        mine = [i for i, p in enumerate(processes) if p == name]
+        kept = np.array([i for i in mine if rows[i].kept], dtype=int)
         one = RateSeries(
             process=name,
-            temperature_k=numbers["temperature_k"][rows],
-            rate_per_s=numbers["rate_per_s"][rows],
-            rate_stderr=numbers["rate_stderr"][rows],
-            rate_lower=numbers["rate_lower"][rows],
-            rate_upper=numbers["rate_upper"][rows],
-            temperature_covariance=np.diag(t_err[rows] ** 2),
+            temperature_k=numbers["temperature_k"][kept],
+            rate_per_s=numbers["rate_per_s"][kept],
+            rate_stderr=numbers["rate_stderr"][kept],
+            rate_lower=numbers["rate_lower"][kept],
+            rate_upper=numbers["rate_upper"][kept],
+            temperature_errors=TemperatureErrors(t_err[kept], np.zeros((len(kept), 0))),
             source=table.source,
-            lines=tuple(np.array(table.lines)[rows].tolist()),
-            notes=tuple(note for process, note in notes if process == name),
+            lines=tuple(np.array(table.lines)[kept].tolist()),
+            notes=tuple(rows[i].note for i in mine if rows[i].note),
+            set_aside=tuple(rows[i].set_aside for i in mine if rows[i].set_aside is not None),
         )
+        _check_enough_rates(one)
         check_rate_series(one)
         series.append(one)
     return series
 
 
-def _apply_fit_status(table, status, numbers) -> list[tuple[str, str]]:
-    """Rows of a ``dnmr fit`` table that are not plain values: left out, or a 68 % interval used as a value.
+@dataclass
+class _FitRow:
+    """What one row of a fit table becomes: kept (perhaps with a widened error), left out or set aside."""
 
-    A profile interval (status ``interval``) is a measurement with an asymmetric error, not a bound: it is
-    used with the standard error of ln k taken as half the interval's width in ln k.  Rows whose fit failed
-    or left the rate undetermined carry nothing and are left out.  Returns (process, note) pairs.
-    """
-    processes = table.text("process") if table.has("process") else ("",) * len(table)
-    notes = []
-    for i, state in enumerate(status):
-        where = f"{table.where(i)} ({numbers['temperature_k'][i]:.2f} K)"
-        if state in STATUS_WITHOUT_RATE:
-            notes.append((processes[i], f"{where}: left out, the fit is {state}"))
-        elif state == "interval" and table.has("ci68_low_per_s") and table.has("ci68_high_per_s"):
-            low = table.numbers("ci68_low_per_s", allow_empty=True)[i]
-            high = table.numbers("ci68_high_per_s", allow_empty=True)[i]
-            if 0 < low < high and np.isfinite(numbers["rate_per_s"][i]):
-                numbers["rate_stderr"][i] = numbers["rate_per_s"][i] * 0.5 * np.log(high / low)
-                numbers["rate_lower"][i] = numbers["rate_upper"][i] = np.nan
-                notes.append((processes[i], f"{where}: 68 % interval {low:.3g}-{high:.3g} s^-1 used as a value,"
-                                            " with the error of ln k from its width"))
-    return notes
+    kept: bool = True
+    note: str = ""
+    set_aside: SetAsideRow | None = None
+
+    @classmethod
+    def read(cls, table, i: int, numbers: dict, status: str, flags: str, policy: str) -> "_FitRow":
+        """Apply the status and flags of row `i` (editing `numbers` in place where the error is widened)."""
+        t, k = numbers["temperature_k"][i], numbers["rate_per_s"][i]
+        where = f"{table.where(i)} ({t:.2f} K)"
+        if status in STATUS_WITHOUT_RATE:
+            return cls(False, f"{where}: left out, the fit is {status}")
+        problems = _flag_problems(flags.split(";"), numbers["reduced_chi_square"][i])
+        low, high = numbers["ci68_low_per_s"][i], numbers["ci68_high_per_s"][i]
+        interval = 0 < low < high and np.isfinite(k) and k > 0
+        done = []
+        if interval and (status == "interval" or problems):
+            sigma = _larger_half_width(k, low, high, numbers["rate_stderr"][i] / k)
+            numbers["rate_stderr"][i] = k * sigma
+            numbers["rate_lower"][i] = numbers["rate_upper"][i] = np.nan
+            done.append(f"68 % interval {low:.3g}–{high:.3g} s⁻¹ used with σ(ln k) = {sigma:.3g}, the larger of its "
+                        "half-widths in ln k")
+        if not problems:
+            return cls(True, f"{where}: " + "; ".join(done) if done else "")
+        what = " and ".join(problems)
+        if policy == "exclude":
+            sigma = numbers["rate_stderr"][i] / k if np.isfinite(k) else math.nan
+            row = SetAsideRow(float(t), float(k), float(sigma), table.where(i), what) if np.isfinite(k) else None
+            return cls(False, f"{where}: set aside, {what} (pass --flagged-rows widen, or flagged_rows='widen', "
+                              "to fit it with a widened error)", row)
+        if MISFIT_FLAG in what:
+            done.insert(0, "its error is the one dnmr fit widened by sqrt(reduced chi-square)")
+        return cls(True, f"{where}: fitted although {what}: " + "; ".join(done or ["its error as given"]))
+
+
+def _flag_problems(flags: Sequence[str], reduced_chi_square: float) -> list[str]:
+    """The flags of a fit that make its rate doubtful, in words."""
+    problems = []
+    if MISFIT_FLAG in flags:
+        chi = f" (reduced chi-square {reduced_chi_square:.3g})" if np.isfinite(reduced_chi_square) else ""
+        problems.append(f"its spectrum is a misfit{chi}")
+    limits = [f.removeprefix(NUISANCE_AT_LIMIT_FLAG) for f in flags if f.startswith(NUISANCE_AT_LIMIT_FLAG)]
+    if limits:
+        problems.append(f"{', '.join(limits)} ended at a limit of its range")
+    return problems
+
+
+def _larger_half_width(rate: float, low: float, high: float, stated: float) -> float:
+    """Standard error of ln k from a 68 % interval: its larger half-width in ln k, at least `stated` (NaN ignored)."""
+    half = max(math.log(high / rate), math.log(rate / low))
+    return max(half, stated) if np.isfinite(stated) else half
+
+
+def _check_enough_rates(series: RateSeries) -> None:
+    """A series whose flagged rows were set aside may be left with too few values: say how to go on."""
+    values = ~series.is_bound
+    if series.set_aside and len(np.unique(series.temperature_k[values])) < 2:
+        raise InputError(
+            f"process {series.process or '(unnamed)'}: {len(series.set_aside)} of its rates come from flagged fits "
+            f"({series.set_aside[0].reason}, ...) and were set aside, leaving fewer than 2 temperatures; refit the "
+            "spectra (see the notes in the table) or pass --flagged-rows widen to fit them with widened errors",
+            series.source,
+        )
 
 
 def check_rate_series(series: RateSeries) -> None:
     """Check a series row by row; raise :class:`InputError` naming the first bad row."""
+    t_err, bound = series.temperature_stderr, series.is_bound  # once: each is a pass over every row
     for i in range(len(series)):
-        _check_row(series, i)
-    values = ~series.is_bound
+        _check_row(series, i, t_err[i], bound[i])
+    values = ~bound
     with_error = np.isfinite(series.rate_stderr) & values
     if with_error.any() and not with_error[values].all():
         i = int(np.flatnonzero(values & ~with_error)[0])
@@ -284,17 +408,16 @@ def check_rate_series(series: RateSeries) -> None:
         )
 
 
-def _check_row(series: RateSeries, i: int) -> None:
+def _check_row(series: RateSeries, i: int, t_err: float, bound: bool) -> None:
     t = series.temperature_k[i]
     check_kelvin(t, "temperature_k", series.source, series.where(i))
-    t_err = series.temperature_stderr[i]
     if not (0.0 <= t_err <= MAX_RELATIVE_TEMPERATURE_ERROR * t):
         _fail(series, i, f"temperature_stderr = {t_err:g} K is not a plausible standard error (0 to {MAX_RELATIVE_TEMPERATURE_ERROR * t:.0f} K)")
     for name in ("rate_lower", "rate_upper"):
-        bound = getattr(series, name)[i]
-        if np.isfinite(bound) and bound <= 0:
-            _fail(series, i, f"{name} must be positive (s^-1), got {bound:g}")
-    if series.is_bound[i]:
+        limit = getattr(series, name)[i]
+        if np.isfinite(limit) and limit <= 0:
+            _fail(series, i, f"{name} must be positive (s^-1), got {limit:g}")
+    if bound:
         if series.rate_lower[i] >= series.rate_upper[i]:
             _fail(series, i, "rate_lower must be smaller than rate_upper")
         return
@@ -312,17 +435,66 @@ def _fail(series: RateSeries, i: int, message: str) -> None:
 
 
 # --------------------------------------------------------------------------------------------------
-# Straight-line fits in 1/T
+# Straight-line fits in 1/T: generalised least squares with a diagonal-plus-shared covariance
 # --------------------------------------------------------------------------------------------------
 
 
+@dataclass(frozen=True)
+class ResidualCovariance:
+    """Covariance of the residuals, diag(diagonal) + shared @ shared.T, applied without forming it.
+
+    Attributes
+    ----------
+    diagonal : ndarray
+        (n,) independent variances (positive).
+    shared : ndarray
+        (n, m) factor of the shared part, m small.
+    """
+
+    diagonal: np.ndarray
+    shared: np.ndarray
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """V^-1 rhs by the Woodbury identity: O(n m^2), never an n x n matrix."""
+        d_rhs = rhs / (self.diagonal[:, None] if rhs.ndim == 2 else self.diagonal)
+        if not self.shared.shape[1]:
+            return d_rhs
+        d_u = self.shared / self.diagonal[:, None]
+        core = np.eye(self.shared.shape[1]) + self.shared.T @ d_u
+        return d_rhs - d_u @ np.linalg.solve(core, self.shared.T @ d_rhs)
+
+    def variances(self) -> np.ndarray:
+        """Diagonal of V."""
+        return self.diagonal + (self.shared**2).sum(axis=1)
+
+
+class _Gls(NamedTuple):
+    """One generalised least-squares solution: coefficients, (X^T V^-1 X)^-1, the linear map A with
+    coefficients = A y, residuals and chi-square r^T V^-1 r."""
+
+    beta: np.ndarray
+    normal: np.ndarray
+    linear_map: np.ndarray
+    residuals: np.ndarray
+    chi_square: float
+
+
+def _gls(design: np.ndarray, y: np.ndarray, covariance: ResidualCovariance) -> _Gls:
+    weighted = covariance.solve(design)
+    normal = np.linalg.inv(design.T @ weighted)
+    linear_map = normal @ weighted.T
+    beta = linear_map @ y
+    residuals = y - design @ beta
+    return _Gls(beta, normal, linear_map, residuals, float(residuals @ covariance.solve(residuals)))
+
+
 def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Weighted least-squares intercept and slope of y = a + b x along the last axis."""
+    """Weighted least-squares intercept and slope of y = a + b x."""
     sw = w.sum(-1)
     xm = (w * x).sum(-1) / sw
     ym = (w * y).sum(-1) / sw
-    dx = x - xm[..., None]
-    slope = (w * dx * (y - ym[..., None])).sum(-1) / (w * dx * dx).sum(-1)
+    dx = x - xm
+    slope = (w * dx * (y - ym)).sum(-1) / (w * dx * dx).sum(-1)
     return ym - slope * xm, slope
 
 
@@ -334,24 +506,33 @@ def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
     return np.array([[1 / sw + xm**2 / sxx, -xm / sxx], [-xm / sxx, 1 / sxx]])
 
 
+SHARE_RATES = "rates"
+SHARE_SCATTER = "scatter"
+SHARE_TEMPERATURES = "temperature scatter"
+
+
 @dataclass(frozen=True)
 class LineFit:
-    """Weighted least-squares line y = intercept + slope * (1/T), with y = ln k - power * ln T.
+    """Least-squares line y = intercept + slope * (1/T), with y = ln k - power * ln T.
 
     Attributes
     ----------
     intercept, slope : float
         Fitted coefficients (slope in K).
     covariance : ndarray
-        Total 2 x 2 covariance of (intercept, slope): from the rates plus from the temperatures.
-    rate_covariance, temperature_covariance : ndarray
-        The two parts of `covariance`.
+        Total 2 x 2 covariance of (intercept, slope).
+    covariance_parts : dict of str to ndarray
+        `covariance` split by source (they add up to it): "rates" (or "scatter" when the errors come from
+        the scatter about the line), "temperature scatter" (independent temperature errors) and one entry
+        per shared temperature error ("calibration", "probe offset", "given covariance").
     residuals : ndarray
         y - fitted y of each point (ln units).
     weights : ndarray
-        Weights of the fit (1/sigma^2 of ln k; ones without rate errors).
+        1/sigma^2 of ln k from the rate errors alone (ones without rate errors).
+    residual_covariance : ResidualCovariance
+        Covariance V of the residuals the line was fitted with (rates and temperatures).
     chi_square : float
-        Sum of squared residuals over their effective variances (NaN without rate errors).
+        r^T V^-1 r, the shared temperature errors counted as correlated (NaN without rate errors).
     dof : int
         Degrees of freedom, n - 2.
     scatter : float
@@ -362,17 +543,17 @@ class LineFit:
     intercept: float
     slope: float
     covariance: np.ndarray
-    rate_covariance: np.ndarray
-    temperature_covariance: np.ndarray
+    covariance_parts: dict
     residuals: np.ndarray
     weights: np.ndarray
+    residual_covariance: ResidualCovariance
     chi_square: float
     dof: int
     scatter: float
 
     @property
     def energy(self) -> Estimate:
-        """-R * slope with its standard error, kJ/mol: dH‡ of the Eyring line, Ea of the Arrhenius line."""
+        """-R * slope with its standard error, kJ/mol: ΔH‡ of the Eyring line, Ea of the Arrhenius line."""
         return Estimate(-GAS_CONSTANT * self.slope / 1e3, GAS_CONSTANT * math.sqrt(self.covariance[1, 1]) / 1e3)
 
     def predict(self, temperature_k: float | np.ndarray) -> Estimate:
@@ -383,50 +564,52 @@ class LineFit:
         return Estimate(self.intercept + self.slope * x, np.sqrt(var))
 
 
-def _fit_line(
-    series: RateSeries,
-    temperature_draws: np.ndarray | None,
-    power: int,
-    scaled: bool,
-) -> LineFit:
-    """Fit y = ln k - power ln T against 1/T over the rows of `series` that are values."""
+def _shared_parts(linear_map: np.ndarray, shared: np.ndarray, sources: Sequence[str]) -> dict:
+    """Covariance of the coefficients from each shared temperature source (columns grouped by name)."""
+    parts = {}
+    for name in dict.fromkeys(sources):
+        columns = linear_map @ shared[:, [j for j, s in enumerate(sources) if s == name]]
+        parts[name] = columns @ columns.T
+    return parts
+
+
+def _fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
+    """Fit y = ln k - power ln T against 1/T over the rows of `series` (all values, no bounds)."""
     t, k = series.temperature_k, series.rate_per_s
-    sigma = series.rate_stderr / k
-    have_errors = bool(np.isfinite(sigma).all())
-    w = 1.0 / sigma**2 if have_errors else np.ones_like(t)
     x, y = 1.0 / t, np.log(k) - power * np.log(t)
-    intercept, slope = _line(x, y, w)
-    residuals = y - intercept - slope * x
+    design = np.column_stack([np.ones_like(x), x])
+    errors = series.temperature_errors
+    sigma2 = (series.rate_stderr / k) ** 2
+    have_errors = bool(np.isfinite(sigma2).all())
+    w = 1.0 / sigma2 if have_errors else np.ones_like(t)
     dof = len(t) - 2
-    weighted_ss = float((w * residuals**2).sum())
+    slope = float(_line(x, y, w)[1])
+    for _ in range(MAX_ITERATIONS):
+        gradient = -power / t + slope / t**2  # d(residual)/dT
+        shared = gradient[:, None] * errors.shared_k
+        independent = (gradient * errors.independent_k) ** 2
+        # without rate errors the scatter holds the independent errors of rates and temperatures alike
+        covariance = ResidualCovariance(sigma2 + independent if have_errors else np.ones_like(t), shared)
+        fit = _gls(design, y, covariance if have_errors else ResidualCovariance(np.ones_like(t), shared[:, :0]))
+        converged = abs(fit.beta[1] - slope) <= SLOPE_TOLERANCE * abs(slope)
+        slope = float(fit.beta[1])
+        if converged or not errors.any:
+            break
+    weighted_ss = float((w * fit.residuals**2).sum())
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
-    normal = _normal_covariance(x, w)
-    rate_cov = normal * (scatter**2 if scaled else 1.0)
-    if temperature_draws is None:
-        temp_cov = np.zeros((2, 2))
-        chi_square = weighted_ss if have_errors else math.nan
+    a = fit.linear_map
+    if have_errors:
+        parts = {SHARE_RATES: (a * sigma2) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
+        chi_square = fit.chi_square
     else:
-        a, b = _line(1.0 / temperature_draws, np.log(k) - power * np.log(temperature_draws), w)
-        temp_cov = np.cov(np.vstack([a, b]))
-        slope_in_t = -power / t + slope / t**2  # d(residual)/dT
-        effective = sigma**2 + (slope_in_t * series.temperature_stderr) ** 2
-        chi_square = float((residuals**2 / effective).sum()) if have_errors else math.nan
-    if scaled and have_errors and temperature_draws is not None and dof > 0:
-        # scale the total covariance by the reduced chi-square that includes the temperature errors
-        factor = chi_square / dof
-        rate_cov, temp_cov = normal * factor, temp_cov * factor
-    return LineFit(
-        float(intercept),
-        float(slope),
-        rate_cov + temp_cov,
-        rate_cov,
-        temp_cov,
-        residuals,
-        w,
-        chi_square,
-        dof,
-        scatter,
-    )
+        parts = {SHARE_SCATTER: fit.normal * scatter**2}
+        chi_square = math.nan
+    parts.update(_shared_parts(a, shared, errors.sources))
+    if scaled and have_errors and dof > 0:
+        parts = {name: part * chi_square / dof for name, part in parts.items()}
+    parts = {name: part for name, part in parts.items() if part.any() or name in (SHARE_RATES, SHARE_SCATTER)}
+    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance,
+                   chi_square, dof, scatter)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -495,7 +678,7 @@ class EyringResult(NotebookView):
     """Eyring (and Arrhenius) analysis of one exchange process.
 
     Energies in kJ/mol, entropies in J/(mol K); the ``*_kcal_*`` keys of :meth:`to_dict` give kcal/mol
-    and cal/(mol K). Use :meth:`gibbs` for dG‡ at any temperature, :meth:`report` (or ``print``) for a
+    and cal/(mol K). Use :meth:`gibbs` for ΔG‡ at any temperature, :meth:`report` (or ``print``) for a
     readable summary, :meth:`plot` for the figures.
 
     Attributes
@@ -510,10 +693,8 @@ class EyringResult(NotebookView):
         Transmission coefficient kappa.
     error_basis : str
         Where the standard errors come from.
-    monte_carlo_draws : int
-        Temperature draws used (0 when the temperatures were taken as exact).
-    seed : int or None
-        Seed of the Monte Carlo draws.
+    flagged_rows : str
+        What was done with rows whose fit is flagged ("exclude" or "widen"; see the module notes).
     studentised_residuals : ndarray
         Studentised residual of each fitted point (NaN where it cannot be formed).
     outliers : ndarray of bool
@@ -530,8 +711,7 @@ class EyringResult(NotebookView):
     arrhenius: LineFit
     transmission: float
     error_basis: str
-    monte_carlo_draws: int
-    seed: int | None
+    flagged_rows: str
     studentised_residuals: np.ndarray
     outliers: np.ndarray
     bounds: tuple[BoundCheck, ...]
@@ -569,27 +749,27 @@ class EyringResult(NotebookView):
     # ---- activation parameters --------------------------------------------------------------------
     @property
     def enthalpy_kj_mol(self) -> float:
-        """dH‡, kJ/mol."""
+        """ΔH‡, kJ/mol."""
         return self.eyring.energy.value
 
     @property
     def enthalpy_stderr(self) -> float:
-        """Standard error of dH‡, kJ/mol."""
+        """Standard error of ΔH‡, kJ/mol."""
         return self.eyring.energy.stderr
 
     @property
     def entropy_j_mol_k(self) -> float:
-        """dS‡, J/(mol K)."""
+        """ΔS‡, J/(mol K)."""
         return GAS_CONSTANT * (self.eyring.intercept - self._kappa_term)
 
     @property
     def entropy_stderr(self) -> float:
-        """Standard error of dS‡, J/(mol K)."""
+        """Standard error of ΔS‡, J/(mol K)."""
         return GAS_CONSTANT * math.sqrt(self.eyring.covariance[0, 0])
 
     @property
     def correlation(self) -> float:
-        """Correlation coefficient of dH‡ and dS‡ (close to +1 for any single series)."""
+        """Correlation coefficient of ΔH‡ and ΔS‡ (close to +1 for any single series)."""
         c = self.eyring.covariance
         return float(-c[0, 1] / math.sqrt(c[0, 0] * c[1, 1]))
 
@@ -597,14 +777,14 @@ class EyringResult(NotebookView):
     def harmonic_mean_temperature_k(self) -> float:
         """Harmonic mean of the fitted temperatures, weighted as in the fit, K.
 
-        Here dG‡ is statistically uncorrelated with dH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
+        Here ΔG‡ is statistically uncorrelated with ΔH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
         """
         w = self.eyring.weights
         return float(w.sum() / (w / self.temperature_k).sum())
 
     @property
     def uncorrelated_temperature_k(self) -> float:
-        """Temperature (K) at which dG‡ is uncorrelated with dH‡ under the full covariance.
+        """Temperature (K) at which ΔG‡ is uncorrelated with ΔH‡ under the full covariance.
 
         Equals :attr:`harmonic_mean_temperature_k` when the temperatures are exact; temperature errors
         move it a little.
@@ -613,15 +793,15 @@ class EyringResult(NotebookView):
         return float(-c[1, 1] / c[0, 1])
 
     def gibbs(self, temperature_k: float | np.ndarray = STANDARD_TEMPERATURE_K) -> Estimate:
-        """dG‡ = dH‡ - T dS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
+        """ΔG‡ = ΔH‡ - T ΔS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
         t = np.asarray(temperature_k, dtype=float)
         value = self.enthalpy_kj_mol - t * self.entropy_j_mol_k / 1e3
-        c = self.eyring.covariance  # dG‡ = -R (slope + T (intercept - const)): gradient -R (T, 1)
+        c = self.eyring.covariance  # ΔG‡ = -R (slope + T (intercept - const)): gradient -R (T, 1)
         stderr = GAS_CONSTANT / 1e3 * np.sqrt(c[0, 0] * t * t + 2 * c[0, 1] * t + c[1, 1])
         return Estimate(float(value), float(stderr)) if t.ndim == 0 else Estimate(value, stderr)
 
     def gibbs_enthalpy_correlation(self, temperature_k: float) -> float:
-        """Correlation coefficient of dG‡ at `temperature_k` (K) with dH‡."""
+        """Correlation coefficient of ΔG‡ at `temperature_k` (K) with ΔH‡."""
         c = self.eyring.covariance
         cov = c[1, 1] + temperature_k * c[0, 1]  # cov(b + T a, b), in units of R^2
         return float(cov / math.sqrt(c[1, 1] * (c[1, 1] + 2 * temperature_k * c[0, 1] + temperature_k**2 * c[0, 0])))
@@ -705,9 +885,11 @@ class EyringResult(NotebookView):
             "reduced_chi_square": line.chi_square / line.dof if line.dof > 0 else math.nan,
             "chi_square_p_value": self._chi_square_p_value(),
             "ln_rate_scatter": line.scatter if not self._errors_given else math.nan,
-            "temperature_errors": "monte carlo" if self.monte_carlo_draws else "none",
-            "monte_carlo_draws": self.monte_carlo_draws,
-            "seed": self.seed,
+            "temperature_errors": self._temperature_error_text(),
+            "temperature_error_sources": list(self.temperature_error_sources),
+            "error_shares": self.error_shares(),
+            "flagged_rows": self.flagged_rows,
+            "set_aside": [self._set_aside_point(row) for row in self.series.set_aside],
             "points": [self._point(i) for i in range(int(self.used.sum()))],
             "bounds": [
                 {
@@ -736,6 +918,45 @@ class EyringResult(NotebookView):
             "outlier": bool(self.outliers[i]),
         }
 
+    @property
+    def temperature_error_sources(self) -> tuple[str, ...]:
+        """The shared temperature errors carried into the fit ("calibration", "probe offset" ...)."""
+        return tuple(dict.fromkeys(self.series.temperature_errors.sources))
+
+    def _temperature_error_text(self) -> str:
+        errors = self.series.temperature_errors.subset(self.used)
+        if not errors.any:
+            return "none"
+        kinds = (["independent"] if errors.independent_k.any() else []) + [
+            f"shared ({name})" for name in self.temperature_error_sources]
+        return " and ".join(kinds)
+
+    def error_shares(self) -> dict:
+        """Share of each source in the variance of ΔH‡, ΔS‡ and ΔG‡(298.15 K): fractions adding up to 1.
+
+        Sources: "rates" (or "scatter" when the errors come from the scatter about the line),
+        "temperature scatter" and each shared temperature error ("calibration", "probe offset", ...).
+        """
+        t = STANDARD_TEMPERATURE_K
+        contrasts = {"enthalpy": np.array([0.0, 1.0]), "entropy": np.array([1.0, 0.0]),
+                     "gibbs_298": np.array([t, 1.0])}
+        out = {}
+        for quantity, c in contrasts.items():
+            variances = {name: float(c @ part @ c) for name, part in self.eyring.covariance_parts.items()}
+            total = sum(variances.values())
+            out[quantity] = {name: v / total if total > 0 else math.nan for name, v in variances.items()}
+        return out
+
+    def set_aside_deviation(self, row: SetAsideRow) -> float:
+        """How far a set-aside rate lies from the line, in standard errors of both (NaN without an error)."""
+        ln_fit, se = self.ln_rate(row.temperature_k)
+        return float((math.log(row.rate_per_s) - ln_fit) / math.hypot(row.ln_rate_stderr, se))
+
+    def _set_aside_point(self, row: SetAsideRow) -> dict:
+        return {"temperature_k": row.temperature_k, "rate_per_s": row.rate_per_s, "where": row.where,
+                "reason": row.reason, "fitted_rate_per_s": float(np.exp(self.ln_rate(row.temperature_k).value)),
+                "deviation_sigma": self.set_aside_deviation(row)}
+
     def _chi_square_p_value(self) -> float:
         line = self.eyring
         if not np.isfinite(line.chi_square) or line.dof <= 0:
@@ -756,7 +977,7 @@ class EyringResult(NotebookView):
         return plot_eyring([self], figure=figure)
 
     def sample_posterior(self, **settings) -> "Posterior":
-        """Posterior samples of dH‡, dS‡ and dG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
+        """Posterior samples of ΔH‡, ΔS‡ and ΔG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
         for the method and the settings (steps, walkers, burn, thin, seed)."""
         from .posterior import sample_eyring_posterior
 
@@ -779,6 +1000,7 @@ def eyring_fit(
     rate_stderr: Sequence[float] | np.ndarray | None = None,
     *,
     temperature_stderr: float | Sequence[float] | np.ndarray | None = None,
+    temperature_offset_stderr: float | None = None,
     temperature_covariance: np.ndarray | None = None,
     rate_lower: Sequence[float] | np.ndarray | None = None,
     rate_upper: Sequence[float] | np.ndarray | None = None,
@@ -796,17 +1018,19 @@ def eyring_fit(
     rate_stderr : array, optional
         Standard errors of the rates, s^-1 (NaN in bound rows); omit to let the scatter set the errors.
     temperature_stderr : float or array, optional
-        Standard error of the temperatures, K (one for all, or one per rate; independent).
+        Standard error of the temperatures, K (one for all, or one per rate; independent between rates).
+    temperature_offset_stderr : float, optional
+        Standard error (K) of an unknown offset of the probe's temperature, the same for every rate (one
+        shared error, not scatter).
     temperature_covariance : (n, n) array, optional
-        Full covariance of the temperatures, K^2, e.g. from a :mod:`dnmr.thermometry` calibration;
-        adds to `temperature_stderr`.
+        Full covariance of the temperatures, K^2, for errors correlated in some other way; adds to the
+        others.
     rate_lower, rate_upper : array, optional
         Bounds (s^-1) of rows the data only bound (NaN elsewhere); such rows are not fitted but checked.
     process : str
         Name of the exchange process, for reports.
     **options
-        Passed to :func:`eyring_fit_series` (transmission, scale_errors, monte_carlo_draws, seed,
-        outlier_threshold).
+        Passed to :func:`eyring_fit_series` (transmission, scale_errors, outlier_threshold).
 
     Returns
     -------
@@ -827,10 +1051,12 @@ def eyring_fit(
     }
     stderr = np.broadcast_to(_vector(temperature_stderr, "temperature_stderr", n, scalar=True, fill=0.0), (n,))
     _check_temperature_stderr(stderr, None, lambda i: f"temperature_stderr[{i}]")
-    covariance = np.diag(stderr**2)
+    errors = TemperatureErrors(np.array(stderr, dtype=float), np.zeros((n, 0)))
     if temperature_covariance is not None:
-        covariance = covariance + _checked_covariance(temperature_covariance, n)
-    series = RateSeries(process, t, temperature_covariance=covariance, **columns)
+        errors = errors.plus(TemperatureErrors.from_covariance(_checked_covariance(temperature_covariance, n)))
+    series = RateSeries(process, t, temperature_errors=errors, **columns)
+    if temperature_offset_stderr is not None:
+        series = series.with_offset(temperature_offset_stderr)
     check_rate_series(series)
     return eyring_fit_series(series, **options)
 
@@ -840,29 +1066,26 @@ def eyring_fit_series(
     *,
     transmission: float = 1.0,
     scale_errors: bool | None = None,
-    monte_carlo_draws: int = 4000,
-    seed: int | None = 0,
     outlier_threshold: float = OUTLIER_THRESHOLD,
+    flagged_rows: str = "exclude",
 ) -> EyringResult:
     """Eyring and Arrhenius analysis of one :class:`RateSeries`.
 
     Parameters
     ----------
     series : RateSeries
-        Rates of one process (from :func:`read_rates` or :func:`rate_series`).
+        Rates of one process (from :func:`read_rates`).
     transmission : float
-        Transmission coefficient kappa (0 < kappa <= 1); changes dS‡ (by R ln kappa), not dH‡.
+        Transmission coefficient kappa (0 < kappa <= 1); changes ΔS‡ (by R ln kappa), not ΔH‡.
     scale_errors : bool, optional
         Scale the covariance by the reduced chi-square. Default: no when rate errors are given,
         yes (errors from the scatter) when they are not.
-    monte_carlo_draws : int
-        Number of temperature draws for propagating temperature errors.
-    seed : int or None
-        Seed of the random generator of those draws (None: fresh each call).
     outlier_threshold : float
         Flag a point whose studentised residual is as improbable as a normal deviate beyond this many
         standard deviations (for residuals judged on the scatter: the Student-t quantile of that tail
         probability). Points are judged one at a time, the worst set aside first. Nothing is removed.
+    flagged_rows : {"exclude", "widen"}
+        The policy the series was read with (:func:`read_rates`), for the report.
 
     Returns
     -------
@@ -875,8 +1098,6 @@ def eyring_fit_series(
     """
     if not 0.0 < transmission <= 1.0:
         raise InputError(f"transmission coefficient must be in (0, 1], got {transmission:g}", where="transmission")
-    if monte_carlo_draws < 100:
-        raise InputError("use at least 100 Monte Carlo draws", where="monte_carlo_draws")
     used = ~series.is_bound
     fitted = _subset(series, used)
     errors_given = bool(np.isfinite(fitted.rate_stderr).all())
@@ -884,13 +1105,8 @@ def eyring_fit_series(
         raise InputError("without rate_stderr the errors can only come from the scatter; give rate errors", where="scale_errors")
     scaled = (not errors_given) or bool(scale_errors)
     basis = BASIS_SCATTER if not errors_given else (BASIS_SCALED if scaled else BASIS_GIVEN)
-    draws = _temperature_draws(fitted, monte_carlo_draws, seed)
-    eyring = _fit_line(fitted, draws, power=1, scaled=scaled)
-    arrhenius = _fit_line(fitted, draws, power=0, scaled=scaled)
-    t = fitted.temperature_k
-    x, y = 1.0 / t, np.log(fitted.rate_per_s / t)
-    extra_var = ((-1.0 / t + eyring.slope / t**2) * fitted.temperature_stderr) ** 2
-    known = basis == BASIS_GIVEN
+    eyring = _fit_line(fitted, power=1, scaled=scaled)
+    arrhenius = _fit_line(fitted, power=0, scaled=scaled)
     bounds = tuple(
         _check_bound(eyring, series.temperature_k[i], series.rate_lower[i], series.rate_upper[i], series.where(i))
         for i in np.flatnonzero(~used)
@@ -902,10 +1118,9 @@ def eyring_fit_series(
         arrhenius=arrhenius,
         transmission=float(transmission),
         error_basis=basis,
-        monte_carlo_draws=0 if draws is None else int(monte_carlo_draws),
-        seed=seed,
-        studentised_residuals=_studentised(x, y, eyring.weights, extra_var, known),
-        outliers=_outlier_flags(x, y, eyring.weights, extra_var, known, outlier_threshold),
+        flagged_rows=flagged_rows,
+        studentised_residuals=_studentised(fitted, basis),
+        outliers=_outlier_flags(fitted, basis, outlier_threshold),
         bounds=bounds,
     )
     return replace(result, warnings=tuple(series.notes) + tuple(_warnings(result)))
@@ -916,7 +1131,9 @@ def eyring_fit_file(
     *,
     process: str | None = None,
     temperature_stderr: float | None = None,
+    temperature_offset_stderr: float | None = None,
     calibration: "TemperatureCalibration | None" = None,
+    flagged_rows: str = "exclude",
     **options,
 ) -> list[EyringResult]:
     """Eyring analysis of every process (or one) in a rates table (CSV).
@@ -928,10 +1145,16 @@ def eyring_fit_file(
     process : str, optional
         Analyse only this process.
     temperature_stderr : float, optional
-        One standard error (K) for all temperatures, for tables without a temperature_stderr column.
+        One standard error (K) for all temperatures, independent between rows, for tables without a
+        temperature_stderr column.
+    temperature_offset_stderr : float, optional
+        Standard error (K) of an unknown offset of the probe's temperature, shared by every row.
     calibration : TemperatureCalibration, optional
         The table's temperatures are set-points; replace them by calibrated sample temperatures and carry
-        the calibration's (correlated) uncertainty into the fit (see :mod:`dnmr.thermometry`).
+        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.thermometry`).
+    flagged_rows : {"exclude", "widen"}
+        Rows whose fit is flagged as a misfit or as shaped by a nuisance parameter at a limit: set aside
+        (default) or fitted with widened errors (see the module notes).
     **options
         Passed to :func:`eyring_fit_series`.
 
@@ -940,7 +1163,7 @@ def eyring_fit_file(
     list of EyringResult
         One per process, in the order the table first names them.
     """
-    series = read_rates(path, temperature_stderr)
+    series = read_rates(path, temperature_stderr, flagged_rows=flagged_rows)
     if process is not None:
         names = [s.process for s in series]
         if process not in names:
@@ -958,7 +1181,9 @@ def eyring_fit_file(
             )
             for s in series
         ]
-    return [eyring_fit_series(s, **options) for s in series]
+    if temperature_offset_stderr is not None:
+        series = [s.with_offset(temperature_offset_stderr) for s in series]
+    return [eyring_fit_series(s, flagged_rows=flagged_rows, **options) for s in series]
 
 
 def results_to_dict(results: Sequence[EyringResult]) -> dict:
@@ -978,37 +1203,34 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         rate_stderr=series.rate_stderr[rows],
         rate_lower=series.rate_lower[rows],
         rate_upper=series.rate_upper[rows],
-        temperature_covariance=series.temperature_covariance[np.ix_(rows, rows)],
+        temperature_errors=series.temperature_errors.subset(rows),
         lines=None if series.lines is None else tuple(np.array(series.lines)[rows].tolist()),
     )
 
 
-def _temperature_draws(series: RateSeries, draws: int, seed: int | None) -> np.ndarray | None:
-    cov = series.temperature_covariance
-    if not cov.any():
-        return None
-    rng = np.random.default_rng(seed)
-    return rng.multivariate_normal(series.temperature_k, cov, size=draws, method="eigh")
+def _studentised(series: RateSeries, basis: str) -> np.ndarray:
+    """Studentised residuals of the Eyring line through the rows of `series` (all values).
 
-
-def _studentised(x: np.ndarray, y: np.ndarray, w: np.ndarray, extra_var: np.ndarray, known: bool) -> np.ndarray:
-    """Studentised residuals of the weighted line through (x, y).
-
-    With known errors e / sqrt((1/w + extra_var)(1 - h)) (extra_var: a point's temperature error seen
-    in y); otherwise externally studentised, e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter
-    without point i. A point of leverage h = 1 (each of two points, or one whose weight dwarfs the
-    others') fixes the line through itself: its residual is zero whatever the data, has no variance
-    left (1 - h is zero, or a rounding error either side of it) and cannot be judged, so it gets NaN.
+    With known errors e_i / sqrt(Var e_i), Var e = V - X C X^T (V the residual covariance with the
+    temperature errors, C the covariance of the line); otherwise externally studentised,
+    e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter without point i. A point of leverage h = 1 (each
+    of two points, or one whose weight dwarfs the others') fixes the line through itself: its residual
+    is zero whatever the data, has no variance left (1 - h is zero, or a rounding error either side of
+    it) and cannot be judged, so it gets NaN.
     """
-    a, b = _line(x, y, w)
-    e = y - a - b * x
+    line = _fit_line(series, power=1, scaled=basis != BASIS_GIVEN)
+    x, e, w = 1.0 / series.temperature_k, line.residuals, line.weights
+    out = np.full_like(e, np.nan)
+    if basis == BASIS_GIVEN:
+        variance = line.residual_covariance.variances()
+        c = line.covariance
+        keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
+        judged = keep > LEVERAGE_TOLERANCE
+        out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])
+        return out
     normal = _normal_covariance(x, w)
     keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
     judged = keep > LEVERAGE_TOLERANCE
-    out = np.full_like(e, np.nan)
-    if known:
-        out[judged] = e[judged] / np.sqrt((1.0 / w + extra_var)[judged] * keep[judged])
-        return out
     dof = len(x) - 3
     if dof <= 0:
         return out
@@ -1018,18 +1240,19 @@ def _studentised(x: np.ndarray, y: np.ndarray, w: np.ndarray, extra_var: np.ndar
     return out
 
 
-def _outlier_flags(x: np.ndarray, y: np.ndarray, w: np.ndarray, extra_var: np.ndarray, known: bool, threshold: float) -> np.ndarray:
+def _outlier_flags(series: RateSeries, basis: str, threshold: float) -> np.ndarray:
     """Flag outliers one at a time: the worst point beyond the limit is set aside and the rest judged again.
 
     The limit is `threshold` for normal (known-error) residuals, and the Student-t quantile of the same
     tail probability for externally studentised ones. Setting points aside only for the judging keeps
     one gross outlier from dragging the line and making its neighbours look bad.
     """
-    flags = np.zeros(len(x), dtype=bool)
+    known = basis == BASIS_GIVEN
+    flags = np.zeros(len(series), dtype=bool)
     tail = stats.norm.sf(threshold)
     while (~flags).sum() >= (3 if known else 4):
         keep = np.flatnonzero(~flags)
-        r = np.abs(np.nan_to_num(_studentised(x[keep], y[keep], w[keep], extra_var[keep], known)))
+        r = np.abs(np.nan_to_num(_studentised(_subset(series, keep), basis)))
         limit = threshold if known else stats.t.isf(tail, len(keep) - 3)
         worst = int(np.argmax(r))
         if r[worst] <= limit:
@@ -1046,8 +1269,8 @@ def _warnings(result: EyringResult) -> list[str]:
         out.append(f"only {n} rates: the errors rest on very few points and outliers cannot be judged; aim for 4 or more")
     if span < NARROW_SPAN_K:
         out.append(
-            f"the temperatures span only {span:.1f} K (< {NARROW_SPAN_K:g} K): dS‡ and dH‡ are poorly "
-            "determined; quote dG‡ at the harmonic-mean temperature"
+            f"the temperatures span only {span:.1f} K (< {NARROW_SPAN_K:g} K): ΔS‡ and ΔH‡ are poorly "
+            "determined; quote ΔG‡ at the harmonic-mean temperature"
         )
     if result.error_basis != BASIS_GIVEN and result.eyring.dof == 0:
         out.append("2 rates without rate errors: the line passes through both and its errors cannot be estimated")
@@ -1056,10 +1279,17 @@ def _warnings(result: EyringResult) -> list[str]:
     if result.error_basis == BASIS_GIVEN and p < 0.01:
         out.append(
             f"the rates scatter more than their errors allow (reduced chi-square {red:.2f}, p = {p:.2g}); "
-            "the quoted errors are probably too small: check the rate errors or use scale_errors"
+            "the quoted errors are probably too small: check the rate errors, or pass --scale-errors "
+            "(scale_errors=True) to widen them by the scatter"
         )
     if result.error_basis == BASIS_GIVEN and p > 0.99 and result.eyring.dof >= 3:
-        out.append(f"the rates scatter much less than their errors (reduced chi-square {red:.2f}); the errors may be overstated")
+        scatter_share = result.error_shares()["enthalpy"].get(SHARE_TEMPERATURES, 0.0)
+        why = (f": {100 * scatter_share:.0f} % of the variance of ΔH‡ comes from independent temperature errors "
+               "(temperature_stderr, or a calibration's scatter about its curve, taken as run-to-run scatter) — "
+               "overstated if the sample temperatures do not stray that much from run to run"
+               if scatter_share > 0.25 else "")
+        out.append(f"the rates scatter much less than their errors (reduced chi-square {red:.2f}); the errors may be "
+                   f"overstated{why}")
     for t, r in zip(result.temperature_k[result.outliers], result.studentised_residuals[result.outliers]):
         out.append(f"possible outlier at {t:g} K (studentised residual {r:+.1f})")
     out.extend(b.describe() for b in result.bounds if b.violated)
@@ -1081,69 +1311,107 @@ def format_with_error(value: float, stderr: float, digits: int = 2) -> str:
     return f"{value:.{decimals}f} ± {stderr:.{decimals}f}"
 
 
+def _heading(text: str, rule: str = "-") -> list[str]:
+    """A heading underlined with `rule` (the setext style of Markdown: '=' for the title, '-' for sections)."""
+    return [text, rule * len(text)]
+
+
 def _report(r: EyringResult) -> str:
     d = r.to_dict()
-    title = f"Eyring analysis — process {r.process!r}" if r.process else "Eyring analysis"
+    lines = _heading(f"Eyring analysis — process {r.process!r}" if r.process else "Eyring analysis", "=")
+    lines += _summary_lines(r, d) + [""]
+    lines += _heading("Activation parameters") + _parameter_lines(r, d) + [""]
+    if len(r.eyring.covariance_parts) > 1:
+        lines += _heading("Where the errors come from") + _share_lines(r) + [""]
+    lines += _heading("Arrhenius")
+    lines.append(f"  {'Ea':<16}{format_with_error(d['activation_energy_kj_mol'], d['activation_energy_stderr']):>18} kJ/mol")
+    lines.append(f"  {'ln(A / s⁻¹)':<16}{format_with_error(d['ln_prefactor'], d['ln_prefactor_stderr']):>18}")
+    lines += [""] + _heading("Rates fitted") + _point_lines(d)
+    if r.series.set_aside:
+        lines += [""] + _heading("Rates set aside (flagged fits, not fitted)")
+        lines.append(f"  {'T / K':>9} {'k / s⁻¹':>11} {'line k':>11} {'off by':>8}  why")
+        for row, p in zip(r.series.set_aside, d["set_aside"]):
+            off = f"{p['deviation_sigma']:+7.1f}σ" if np.isfinite(p["deviation_sigma"]) else f"{'':>8}"
+            lines.append(f"  {row.temperature_k:9.2f} {row.rate_per_s:11.4g} {p['fitted_rate_per_s']:11.4g} {off}  "
+                         f"{row.where}: {row.reason}")
+    if r.bounds:
+        lines += [""] + _heading("Bounds (not fitted)") + [f"  {'T / K':>9} {'lower':>11} {'upper':>11} {'line k':>11}"]
+        for b in r.bounds:
+            lo = f"{b.rate_lower:11.4g}" if np.isfinite(b.rate_lower) else f"{'–':>11}"
+            hi = f"{b.rate_upper:11.4g}" if np.isfinite(b.rate_upper) else f"{'–':>11}"
+            lines.append(f"  {b.temperature_k:9.2f} {lo} {hi} {b.fitted_rate_per_s:11.4g}  "
+                         + ("VIOLATED" if b.violated else "respected"))
+    if r.warnings:
+        lines += [""] + _heading("Warnings and notes") + [f"  - {w}" for w in r.warnings]
+    return "\n".join(lines)
+
+
+def _summary_lines(r: EyringResult, d: dict) -> list[str]:
     t = r.temperature_k
-    lines = [title, "=" * len(title)]
-    lines.append(f"  rates fitted         {d['n_rates']}" + (f" (+ {d['n_bounds']} bound{'s' if d['n_bounds'] > 1 else ''}, not fitted)" if r.bounds else ""))
-    lines.append(f"  temperatures         {t.min():.2f} – {t.max():.2f} K (span {np.ptp(t):.1f} K)")
-    lines.append(f"  errors from          {r.error_basis}")
+    bounds = f" (+ {d['n_bounds']} bound{'s' if d['n_bounds'] > 1 else ''}, not fitted)" if r.bounds else ""
+    aside = len(r.series.set_aside)
+    lines = [f"  rates fitted         {d['n_rates']}{bounds}",
+             f"  temperatures         {t.min():.2f} – {t.max():.2f} K (span {np.ptp(t):.1f} K)",
+             f"  errors from          {r.error_basis}"]
     if r.error_basis == BASIS_SCATTER:
         lines.append(f"  scatter of ln k      {r.eyring.scatter:.3g} (about {100 * r.eyring.scatter:.2g} % in k)")
     elif r.eyring.dof > 0:
-        lines.append(
-            f"  reduced chi-square   {d['reduced_chi_square']:.3g} ({r.eyring.dof} degrees of freedom, p = {d['chi_square_p_value']:.2g})"
-        )
-    if r.monte_carlo_draws:
-        lines.append(f"  temperature errors   propagated by Monte Carlo ({r.monte_carlo_draws} draws, seed {r.seed})")
-        if r.error_basis == BASIS_SCATTER:
-            lines.append("                       (their random part is in the scatter too: counted twice, conservative)")
-    else:
+        shared = " (shared temperature errors counted as correlated)" if r.temperature_error_sources else ""
+        lines.append(f"  reduced chi-square   {d['reduced_chi_square']:.3g} ({r.eyring.dof} degrees of freedom, "
+                     f"p = {d['chi_square_p_value']:.2g}){shared}")
+    if d["temperature_errors"] == "none":
         lines.append("  temperature errors   none given: temperatures taken as exact (no calibration error included)")
+    else:
+        lines.append(f"  temperature errors   {d['temperature_errors']}, by generalised least squares")
+    if aside or r.flagged_rows == "widen":
+        what = (f"{aside} set aside (see below)" if r.flagged_rows == "exclude"
+                else "fitted with widened errors (see the notes)")
+        lines.append(f"  flagged fits         {what}; policy '{r.flagged_rows}'")
     if r.transmission != 1.0:
-        lines.append(f"  transmission coeff.  {r.transmission:g}")
+        lines.append(f"  transmission κ       {r.transmission:g}")
+    return lines
+
+
+def _parameter_lines(r: EyringResult, d: dict) -> list[str]:
     t_hm = d["harmonic_mean_temperature_k"]
-    lines += ["", "[[Activation parameters]]"]
     rows = [
-        ("dH‡", "kJ/mol", d["enthalpy_kj_mol"], d["enthalpy_stderr"], "kcal/mol"),
-        ("dS‡", "J/(mol K)", d["entropy_j_mol_k"], d["entropy_stderr"], "cal/(mol K)"),
-        ("dG‡(298.15 K)", "kJ/mol", d["gibbs_298_kj_mol"], d["gibbs_298_stderr"], "kcal/mol"),
-        (f"dG‡({t_hm:.1f} K)", "kJ/mol", d["gibbs_hm_kj_mol"], d["gibbs_hm_stderr"], "kcal/mol"),
+        ("ΔH‡", "kJ/mol", d["enthalpy_kj_mol"], d["enthalpy_stderr"], "kcal/mol"),
+        ("ΔS‡", "J/(mol K)", d["entropy_j_mol_k"], d["entropy_stderr"], "cal/(mol K)"),
+        ("ΔG‡(298.15 K)", "kJ/mol", d["gibbs_298_kj_mol"], d["gibbs_298_stderr"], "kcal/mol"),
+        (f"ΔG‡({t_hm:.1f} K)", "kJ/mol", d["gibbs_hm_kj_mol"], d["gibbs_hm_stderr"], "kcal/mol"),
     ]
-    for name, unit, value, err, unit2 in rows:
-        lines.append(
-            f"  {name:<16}{format_with_error(value, err):>18} {unit:<11}"
-            f"({format_with_error(value * KCAL_PER_KJ, err * KCAL_PER_KJ)} {unit2})"
-        )
-    lines.append(f"  corr(dH‡, dS‡)  {r.correlation:>18.4f}")
-    lines.append(
-        f"  {t_hm:.1f} K = weighted harmonic mean of the temperatures, where dG‡ is least entangled with "
-        f"dH‡: corr(dG‡, dH‡) = {d['correlation_gibbs_hm_enthalpy']:+.3f}"
-    )
+    lines = [f"  {name:<16}{format_with_error(value, err):>18} {unit:<11}"
+             f"({format_with_error(value * KCAL_PER_KJ, err * KCAL_PER_KJ)} {unit2})"
+             for name, unit, value, err, unit2 in rows]
+    lines.append(f"  corr(ΔH‡, ΔS‡)  {r.correlation:>18.4f}")
+    lines.append(f"  {t_hm:.1f} K = weighted harmonic mean of the temperatures, where ΔG‡ is least entangled with "
+                 f"ΔH‡: corr(ΔG‡, ΔH‡) = {d['correlation_gibbs_hm_enthalpy']:+.3f}")
     if abs(d["correlation_gibbs_hm_enthalpy"]) > 0.1:
         lines.append(f"  with the temperature errors, the uncorrelated point moves to {d['uncorrelated_temperature_k']:.1f} K")
-    lines += ["", "[[Arrhenius]]"]
-    lines.append(f"  {'Ea':<16}{format_with_error(d['activation_energy_kj_mol'], d['activation_energy_stderr']):>18} kJ/mol")
-    lines.append(f"  {'ln(A / s^-1)':<16}{format_with_error(d['ln_prefactor'], d['ln_prefactor_stderr']):>18}")
-    lines += ["", "[[Points]]", f"  {'T / K':>9} {'± T':>6} {'k / s^-1':>11} {'± k':>10} {'fit k':>11} {'stud. res.':>10}"]
+    return lines
+
+
+def _share_lines(r: EyringResult) -> list[str]:
+    """Percentages of each parameter's variance by source."""
+    shares = r.error_shares()
+    names = list(r.eyring.covariance_parts)
+    width = max(len(n) for n in names) + 2
+    lines = ["  share of the variance of " + "".join(f"{n:>{width}}" for n in names)]
+    for quantity, label in (("enthalpy", "ΔH‡"), ("entropy", "ΔS‡"), ("gibbs_298", "ΔG‡(298.15 K)")):
+        cells = "".join(f"{100 * shares[quantity][n]:>{width - 2}.0f} %" if np.isfinite(shares[quantity][n])
+                        else f"{'n.d.':>{width}}" for n in names)
+        lines.append(f"  {label:<24}{cells}")
+    return lines
+
+
+def _point_lines(d: dict) -> list[str]:
+    lines = [f"  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
     for p in d["points"]:
-        flag = "  outlier?" if p["outlier"] else ""
         err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
-        lines.append(
-            f"  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
-            f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}{flag}"
-        )
-    if r.bounds:
-        lines += ["", "[[Bounds (not fitted)]]", f"  {'T / K':>9} {'lower':>11} {'upper':>11} {'fit k':>11}"]
-        for b in r.bounds:
-            lo = f"{b.rate_lower:11.4g}" if np.isfinite(b.rate_lower) else f"{'-':>11}"
-            hi = f"{b.rate_upper:11.4g}" if np.isfinite(b.rate_upper) else f"{'-':>11}"
-            status = "  VIOLATED" if b.violated else "  ok"
-            lines.append(f"  {b.temperature_k:9.2f} {lo} {hi} {b.fitted_rate_per_s:11.4g}{status}")
-    if r.warnings:
-        lines += ["", "[[Warnings]]"] + [f"  - {w}" for w in r.warnings]
-    return "\n".join(lines)
+        lines.append(f"  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
+                     f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}"
+                     + ("  outlier?" if p["outlier"] else ""))
+    return lines
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1161,7 +1429,7 @@ COALESCENCE_CAVEAT = (
 
 @dataclass(frozen=True)
 class CoalescenceEstimate:
-    """dG‡ at the coalescence temperature of two equally populated, uncoupled sites.
+    """ΔG‡ at the coalescence temperature of two equally populated, uncoupled sites.
 
     Attributes
     ----------
@@ -1172,7 +1440,7 @@ class CoalescenceEstimate:
     rate_per_s : float
         Rate constant at coalescence, k_c = pi dnu / sqrt(2), s^-1.
     gibbs_kj_mol : float
-        dG‡ at T_c, kJ/mol.
+        ΔG‡ at T_c, kJ/mol.
     gibbs_stderr : float
         Its standard error from the given errors of T_c and dnu, kJ/mol (0 when none were given).
     transmission : float
@@ -1213,9 +1481,9 @@ class CoalescenceEstimate:
         return "\n".join(
             [
                 "Coalescence estimate (equal populations)",
-                f"  T_c = {self.coalescence_temperature_k:g} K, dnu = {self.shift_difference_hz:g} Hz",
-                f"  k_c = {self.rate_per_s:.4g} s^-1",
-                f"  dG‡(T_c) = {g} kJ/mol ({g_kcal} kcal/mol)",
+                f"  T_c = {self.coalescence_temperature_k:g} K, Δν = {self.shift_difference_hz:g} Hz",
+                f"  k_c = {self.rate_per_s:.4g} s⁻¹",
+                f"  ΔG‡(T_c) = {g} kJ/mol ({g_kcal} kcal/mol)",
                 f"  Caveat: {self.caveat}",
             ]
         )
@@ -1232,9 +1500,9 @@ def coalescence_barrier(
     shift_difference_stderr: float = 0.0,
     transmission: float = 1.0,
 ) -> CoalescenceEstimate:
-    """Quick dG‡ (kJ/mol) from a coalescence temperature (K) and a shift difference (Hz), equal populations.
+    """Quick ΔG‡ (kJ/mol) from a coalescence temperature (K) and a shift difference (Hz), equal populations.
 
-    dG‡_c = R T_c ln( sqrt(2) kB T_c / (pi h dnu) ): the Gutowsky-Holm rate at coalescence
+    ΔG‡_c = R T_c ln( sqrt(2) kB T_c / (pi h dnu) ): the Gutowsky-Holm rate at coalescence
     k_c = pi dnu / sqrt(2) put into the Eyring equation. See :data:`COALESCENCE_CAVEAT`.
 
     Parameters

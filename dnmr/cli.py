@@ -238,7 +238,16 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
               help="Draw the Eyring plot with residuals to this image (PNG, SVG or PDF).")
 @click.option("--process", help="Analyse only this exchange process (default: each process in the table).")
 @click.option("--temperature-stderr", type=float,
-              help="Standard error of every temperature, K (for tables without a temperature_stderr column).")
+              help="Standard error of every temperature, K, independent from row to row (for tables without a "
+                   "temperature_stderr column).")
+@click.option("--temperature-offset-stderr", type=float,
+              help="Standard error of an unknown offset of the probe's temperature, K: one error shared by every "
+                   "row, not scatter (e.g. 1.0 for a probe read to about ± 1 K).")
+@click.option("--flagged-rows", type=click.Choice(["exclude", "widen"]), default="exclude", show_default=True,
+              help="Rows whose fit is flagged misfit or at-bound:<parameter> (rates.csv of dnmr fit): set them aside, "
+                   "or fit them with widened errors.")
+@click.option("--scale-errors", is_flag=True,
+              help="Scale the given rate errors by the reduced chi-square of the Eyring line.")
 @click.option("--transmission", type=float, default=1.0, show_default=True, help="Transmission coefficient kappa.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Set-point calibration table (CSV: setpoint_k, temperature_k); the rates' temperatures are set-points.")
@@ -251,8 +260,9 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
-           temperature_stderr: float | None, transmission: float, calibration_file: Path | None,
-           calibration_degree: int, overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
+           temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
+           scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
+           overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
     """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
 
     With --json the first (or only) process's results are at the top level and, for several processes,
@@ -269,7 +279,8 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
     results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
-                              transmission=transmission, calibration=calibration)
+                              temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
+                              scale_errors=scale_errors or None, transmission=transmission, calibration=calibration)
     posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
     figures = [plot_file] + [_posterior_figure_path(plot_file, r.process, len(results)) for r in results[:len(posteriors)]] \
         if plot_file else []

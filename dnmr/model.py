@@ -271,6 +271,11 @@ class Model:
         Nuclei of other isotopes coupled to the observed spins (``{"F1": "19F"}``), in the weak-coupling
         limit; they have no shift in the observed spectrum, only couplings.  A heteronucleus may be a
         group too.
+    source : str, optional
+        The model file, for messages.
+
+    A model whose rates or populations are given as energies may leave `temperature_k` out; it then
+    needs one (:meth:`at_temperature`) before it can be simulated.
     """
 
     spectrometer: Spectrometer
@@ -282,6 +287,7 @@ class Model:
     title: str = ""
     groups: Mapping[str, int] = field(default_factory=dict)
     heteronuclei: Mapping[str, str] = field(default_factory=dict)
+    source: str | None = field(default=None, compare=False)
 
     def __post_init__(self):
         object.__setattr__(self, "states", tuple(self.states))
@@ -302,7 +308,7 @@ class Model:
         object.__setattr__(self, "groups", self._checked_groups())
         self._check_couplings()
         self._check_exchanges()
-        if self.exchanges:
+        if self.exchanges and not self.lacks_temperature:
             check_stationary(rate_matrix(len(self.states), self.jumps()), self.populations())
 
     # --- checks -------------------------------------------------------------------------------
@@ -397,10 +403,6 @@ class Model:
                 raise InputError(
                     "a mutual exchange (from == to) must move at least one spin", where=f"{where}.spins"
                 )
-            if ex.needs_temperature and self.temperature_k is None:
-                raise InputError(
-                    "activation parameters need conditions.temperature_k", where=f"{where}.barrier_kj_mol"
-                )
 
     def _kind(self, spin: str) -> str:
         """What a spin is, in words: observed or which heteronucleus, and how many nuclei."""
@@ -471,12 +473,25 @@ class Model:
             object.__setattr__(self, "_jumps", cached)
         return cached
 
+    @property
+    def depends_on_temperature(self) -> bool:
+        """True when some rate or the populations are given as energies, so that they change with T."""
+        return any(ex.needs_temperature for ex in self.exchanges) or self.states[0].population is None
+
+    @property
+    def lacks_temperature(self) -> bool:
+        """True when rates or populations are given as energies and no temperature is set."""
+        return self.depends_on_temperature and self.temperature_k is None
+
+    def _no_temperature(self, what: str, where: str) -> InputError:
+        return InputError(f"{what} needs a temperature: add [conditions] temperature_k = <K> to the model file, "
+                          "or give the temperatures (dnmr stack --temperatures; Model.at_temperature in Python)",
+                          self.source, where)
+
     def _equilibrium_populations(self) -> np.ndarray:
         if self.states[0].population is None:
             if self.temperature_k is None:
-                raise InputError(
-                    "free_energy_kj_mol needs conditions.temperature_k", where="conditions.temperature_k"
-                )
+                raise self._no_temperature("free_energy_kj_mol (populations from free energies)", "state[0].free_energy_kj_mol")
             return boltzmann_populations([s.free_energy_kj_mol for s in self.states], self.temperature_k)
         p = np.array([s.population for s in self.states], dtype=float)
         if p.sum() <= 0:
@@ -485,6 +500,10 @@ class Model:
 
     def rates(self) -> np.ndarray:
         """Forward rate constant (s^-1) of each exchange process at the model temperature."""
+        if self.temperature_k is None:
+            for i, ex in enumerate(self.exchanges):
+                if ex.needs_temperature:
+                    raise self._no_temperature("a rate given by activation parameters", f"exchange[{i}]")
         return np.array([ex.rate_at(self.temperature_k) for ex in self.exchanges], dtype=float)
 
     def shifts_hz(self) -> np.ndarray:

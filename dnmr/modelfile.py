@@ -179,8 +179,9 @@ def _with_place(where: str, error: InputError) -> InputError:
     return InputError(error.message, where=f"{where}.{inner}" if inner else where)
 
 
-def model_from_dict(data: dict) -> Model:
-    """Build a :class:`Model` from the parsed TOML tables (raises InputError naming the key)."""
+def model_from_dict(data: dict, source: str | None = None) -> Model:
+    """Build a :class:`Model` from the parsed TOML tables (raises InputError naming the key); `source` is
+    the file, kept for later messages."""
     check_keys(data, TOP_KEYS, "", required=("spectrometer", "state"))
     spec = check_keys(data["spectrometer"], SPECTROMETER_KEYS, "spectrometer", required=("frequency_mhz",))
     window = check_keys(data.get("window", {}), WINDOW_KEYS, "window")
@@ -219,6 +220,7 @@ def model_from_dict(data: dict) -> Model:
         title=title,
         groups=parse_groups(data),
         heteronuclei=parse_heteronuclei(data),
+        source=source,
     )
 
 
@@ -237,6 +239,6 @@ def load_model(path: str | Path) -> Model:
     """
     data = read_toml(path)
     try:
-        return model_from_dict(data)
+        return model_from_dict(data, source=str(path))
     except InputError as err:
         raise err.located(source=path) from None

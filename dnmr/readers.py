@@ -13,7 +13,9 @@ Formats
     Lines starting with ``#`` are comments.  Axis in either direction.  The axis unit comes from
     the header, else from the ``axis`` argument, else ppm is assumed.  A Hz axis is converted with
     ``ppm = hz / frequency_mhz`` (0 ppm is 0 Hz) and so needs the frequency.  With a semicolon
-    separator a decimal comma is accepted.
+    separator a decimal comma is accepted; decimal commas with other separators, and a file without
+    header whose assumed ppm axis lies beyond ±1000 ppm (a Hz axis, by all odds), are refused with the
+    fix.
 ``jcamp-dx``
     JCAMP-DX 1D NMR spectra (IUPAC open standard), parsed by nmrglue (``XYDATA=(X++(Y..Y))`` in
     AFFN or compressed ASDF form, ``NTUPLES`` with real and imaginary pages: real part used) or by
@@ -326,6 +328,9 @@ def _read_bounded_text(path: Path) -> str:
 # ---------------------------------------------------------------------------------------------
 # two-column text
 
+HZ_SUSPECT_PPM = 1000.0
+"""A headerless axis read as ppm whose values all lie beyond this (or span more) is taken to be in Hz."""
+_DECIMAL_COMMA_ROW = re.compile(r"^\s*[-+]?\d+,\d+(?:[eE][-+]?\d+)?(?:\s+[-+]?\d+,\d+(?:[eE][-+]?\d+)?)+\s*$")
 _INTENSITY_WORDS = {"intensity", "int", "intens", "real", "re", "amplitude", "signal", "y", "absorption"}
 
 
@@ -393,9 +398,13 @@ def _text_layout(text: str) -> _TextLayout:
     first = next(content, None)
     if first is None:
         raise InputError("the file holds no data lines (only blank lines or # comments)")
-    start, header = first, None
+    start, header, second = first, None, next(content, None)
+    for i in (first, second):  # a decimal comma in the first data line, or in the one after a header
+        if i is not None and _DECIMAL_COMMA_ROW.match(lines[i]):
+            raise InputError("the numbers use a decimal comma: separate the columns with semicolons (a decimal "
+                             "comma is read then) or export with decimal points", where=f"line {i + 1}")
     if not all(_is_number(f) for f in _split(lines[first], _delimiter(lines[first]))):
-        start = next(content, None)
+        start = second
         if start is None:
             raise InputError("the file has a header but no data lines", where=f"line {first + 1}")
     sep = _delimiter(lines[start])
@@ -516,6 +525,11 @@ def _read_text(path: Path, frequency_mhz: float | None, axis: str | None) -> Mea
         recorded = _frequency_from_columns(table[:, roles.index("ppm")], table[:, roles.index("hz")])
         frequency_mhz = _reconcile_frequency(recorded, frequency_mhz, "header")
         metadata["frequency_from"] = "ppm and hz columns" if recorded else None
+    if unit_source.startswith("default") and (np.abs(x).min() >= HZ_SUSPECT_PPM or np.ptp(x) > HZ_SUSPECT_PPM):
+        raise InputError(
+            f"the file has no header, so its axis was read as ppm, but it runs from {x.min():.6g} to {x.max():.6g}: "
+            'a Hz axis by all odds; add a header line "hz,intensity" (or "ppm,intensity" if it really is ppm), '
+            'or give axis = "hz" (series file [[spectrum]] axis, read_spectrum(..., axis="hz"))')
     if unit == "hz":
         if frequency_mhz is None:
             raise InputError(

@@ -134,7 +134,8 @@ def simulate_over(
     """Simulate `model` over a list of rates (first process, s^-1) or of temperatures (K), on one grid.
 
     Returns the spectra and a label for each ("k = 120 s^-1" or "250 K").  Temperatures need rates given
-    as activation parameters (or populations as free energies) for anything to change.
+    as activation parameters (or populations as free energies) for anything to change, and are refused
+    otherwise; they stand in for the model's own temperature, which may then be absent.
     """
     from .errors import InputError
 
@@ -146,13 +147,18 @@ def simulate_over(
         for k in rates_per_s:
             if not (k >= 0 and np.isfinite(k)):
                 raise InputError(f"rates must be finite and not negative, got {k!r}", where="--rates")
-        others = list(model.rates())[1:]
+        others = list(model.rates())[1:] if len(model.exchanges) > 1 else []  # a lone process needs no temperature
         models = [model.with_rates([k, *others]) for k in rates_per_s]
         labels = [f"k = {k:.3g} s$^{{-1}}$" for k in rates_per_s]
     else:
         for t in temperatures_k:
             if not (t > 0 and np.isfinite(t)):
                 raise InputError(f"temperatures must be positive kelvin, got {t!r}", where="--temperatures")
+        if not model.depends_on_temperature:
+            raise InputError("every trace would be the same: the model's rates (rate_per_s) and populations do not "
+                             "depend on temperature; give activation parameters in [[exchange]] (barrier_kj_mol, or "
+                             "enthalpy_kj_mol with entropy_j_mol_k) or vary the rate with --rates",
+                             model.source, "--temperatures")
         models = [model.at_temperature(t) for t in temperatures_k]
         labels = [f"{t:.0f} K" for t in temperatures_k]
     grid = frequency_grid_ppm(models[0])

@@ -374,16 +374,91 @@ def _doubts(groups: list[_Line], alkyl: _Line, hydroxyl: _Line, ratio: float, th
 # --------------------------------------------------------------------------------------------------
 
 
+def covariance_factor(covariance: np.ndarray) -> np.ndarray:
+    """F with F F^T = `covariance` (a small positive semi-definite matrix): eigenvectors times sqrt(eigenvalue),
+    the columns of negligible eigenvalues dropped."""
+    values, vectors = np.linalg.eigh(np.asarray(covariance, dtype=float))
+    keep = values > 1e-12 * max(float(values.max(initial=0.0)), 1e-300)
+    return vectors[:, keep] * np.sqrt(values[keep])
+
+
+@dataclass(frozen=True)
+class TemperatureErrors:
+    """Uncertainty of a set of sample temperatures: independent errors plus a few shared ones.
+
+    The covariance is ``diag(independent_k**2) + shared_k @ shared_k.T`` (K^2). Each column of `shared_k`
+    is one error common to the points (a probe offset: the same value in every row; a calibration curve:
+    one column per coefficient), so the covariance of thousands of temperatures stays a vector and a few
+    columns instead of a dense matrix.
+
+    Attributes
+    ----------
+    independent_k : ndarray
+        Standard error of each temperature that no other point shares, K.
+    shared_k : ndarray
+        (n, m) factor of the shared part, K.
+    sources : tuple of str
+        What each column of `shared_k` is ("calibration", "probe offset", "given covariance").
+    """
+
+    independent_k: np.ndarray
+    shared_k: np.ndarray
+    sources: tuple[str, ...] = ()
+
+    @classmethod
+    def from_covariance(cls, covariance: np.ndarray, source: str = "given covariance") -> "TemperatureErrors":
+        """A full (small) covariance matrix (K^2) as shared columns: its eigenvectors scaled by sqrt(eigenvalue)."""
+        columns = covariance_factor(covariance)
+        return cls(np.zeros(len(columns)), columns, (source,) * columns.shape[1])
+
+    def __len__(self) -> int:
+        return len(self.independent_k)
+
+    @property
+    def stderr(self) -> np.ndarray:
+        """Standard error of each temperature (independent and shared parts together), K."""
+        return np.sqrt(self.independent_k**2 + (self.shared_k**2).sum(axis=1))
+
+    @property
+    def covariance(self) -> np.ndarray:
+        """The dense n x n covariance, K^2 (for a handful of points only: it grows as n^2)."""
+        return np.diag(self.independent_k**2) + self.shared_k @ self.shared_k.T
+
+    @property
+    def any(self) -> bool:
+        """True when some temperature has an error."""
+        return bool(self.independent_k.any() or self.shared_k.any())
+
+    def plus(self, other: "TemperatureErrors") -> "TemperatureErrors":
+        """Both sets of errors on the same points (independent parts add in quadrature)."""
+        return TemperatureErrors(np.hypot(self.independent_k, other.independent_k),
+                                 np.hstack([self.shared_k, other.shared_k]), self.sources + other.sources)
+
+    def with_offset(self, offset_stderr_k: float) -> "TemperatureErrors":
+        """Add an unknown probe offset (K), one error shared by every point."""
+        column = np.full((len(self), 1), float(offset_stderr_k))
+        return self.plus(TemperatureErrors(np.zeros(len(self)), column, ("probe offset",)))
+
+    def subset(self, rows: np.ndarray) -> "TemperatureErrors":
+        """The errors of the selected points."""
+        return TemperatureErrors(self.independent_k[rows], self.shared_k[rows], self.sources)
+
+
 class CalibratedTemperatures(NamedTuple):
-    """True sample temperatures (K) and their covariance (K^2)."""
+    """True sample temperatures (K) and their errors."""
 
     temperature_k: np.ndarray
-    covariance: np.ndarray
+    errors: TemperatureErrors
 
     @property
     def stderr(self) -> np.ndarray:
         """Standard error of each temperature, K."""
-        return np.sqrt(np.diag(self.covariance))
+        return self.errors.stderr
+
+    @property
+    def covariance(self) -> np.ndarray:
+        """Their dense covariance, K^2 (see :attr:`TemperatureErrors.covariance`)."""
+        return self.errors.covariance
 
 
 @dataclass(frozen=True)
@@ -420,11 +495,12 @@ class TemperatureCalibration(NotebookView):
     def true_temperature(
         self, setpoint_k: Sequence[float] | np.ndarray, *, source: str | None = None, where: Sequence[str] | None = None
     ) -> CalibratedTemperatures:
-        """True temperatures (K) at `setpoint_k` (K) with their covariance (K^2).
+        """True temperatures (K) at `setpoint_k` (K) with their errors.
 
-        The covariance is the curve's own uncertainty (shared, hence correlated, between set-points) plus
-        the scatter of the calibration points about the curve on the diagonal: a new run at a set-point
-        is taken to stray from the curve as the calibration runs did.
+        The errors are the curve's own uncertainty (shared, hence correlated, between set-points: one
+        shared column per coefficient) plus the scatter of the calibration points about the curve as an
+        independent error: a new run at a set-point is taken to stray from the curve as the calibration
+        runs did.
 
         Parameters
         ----------
@@ -451,8 +527,9 @@ class TemperatureCalibration(NotebookView):
                     where[i] if where is not None else None,
                 )
         v = self._design(s)
-        covariance = v @ self.coefficient_covariance @ v.T + self.scatter_k**2 * np.eye(len(s))
-        return CalibratedTemperatures(v @ self.coefficients, covariance)
+        curve = v @ covariance_factor(self.coefficient_covariance)  # v C v^T = curve curve^T
+        errors = TemperatureErrors(np.full(len(s), self.scatter_k), curve, ("calibration",) * curve.shape[1])
+        return CalibratedTemperatures(v @ self.coefficients, errors)
 
     def _design(self, setpoint_k: np.ndarray) -> np.ndarray:
         return np.vander(setpoint_k - self.centre_k, self.degree + 1, increasing=True)

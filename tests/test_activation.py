@@ -229,7 +229,7 @@ def test_temperature_errors_are_carried_into_the_coverage():
     for _ in range(REPLICAS):
         k = noisy_series(rng, 0.03)
         nominal = TEMPS + rng.normal(0.0, 1.5, len(TEMPS))
-        with_t.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_stderr=1.5, monte_carlo_draws=1000, seed=None)))
+        with_t.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_stderr=1.5)))
         without_t.append(_parameters(eyring_fit(nominal, k, 0.03 * k)))
     assert _coverage(with_t, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
     assert (_coverage(without_t, TRUTHS) < 0.683 - TOLERANCE).all()
@@ -243,17 +243,79 @@ def test_correlated_temperature_offset_is_carried():
     for _ in range(REPLICAS):
         k = noisy_series(rng, 0.03)
         nominal = TEMPS + rng.normal(0.0, 1.0)
-        fits.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_covariance=cov, monte_carlo_draws=1000, seed=None)))
+        fits.append(_parameters(eyring_fit(nominal, k, 0.03 * k, temperature_covariance=cov)))
     assert _coverage(fits, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
 
 
-def test_fixed_seed_makes_monte_carlo_reproducible():
+def test_probe_offset_option_is_one_shared_error_and_covers():
+    # an unknown probe offset (1 K standard deviation) given as temperature_offset_stderr: the same as a
+    # covariance of ones, and the errors cover 68 % (normal distribution) over replicas with such offsets
     k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
-    a = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=5)
-    b = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=5)
-    c = eyring_fit(TEMPS, k, 0.05 * k, temperature_stderr=1.0, seed=6)
-    assert a.enthalpy_stderr == b.enthalpy_stderr != c.enthalpy_stderr
-    assert a.enthalpy_stderr > eyring_fit(TEMPS, k, 0.05 * k).enthalpy_stderr
+    by_option = eyring_fit(TEMPS, k, 0.03 * k, temperature_offset_stderr=1.0)
+    by_matrix = eyring_fit(TEMPS, k, 0.03 * k, temperature_covariance=np.ones((8, 8)))
+    assert np.asarray(by_option.eyring.covariance) == pytest.approx(by_matrix.eyring.covariance, rel=1e-9)
+    assert by_option.temperature_error_sources == ("probe offset",)
+    assert by_option.enthalpy_stderr > eyring_fit(TEMPS, k, 0.03 * k).enthalpy_stderr
+    rng = np.random.default_rng(25)
+    fits = []
+    for _ in range(REPLICAS):
+        fits.append(_parameters(eyring_fit(TEMPS + rng.normal(0.0, 1.0), noisy_series(rng, 0.03),
+                                           0.03 * noisy_series(rng, 0.0), temperature_offset_stderr=1.0)))
+    assert _coverage(fits, TRUTHS) == pytest.approx([0.683] * 3, abs=TOLERANCE)
+
+
+def test_shared_temperature_error_is_not_counted_as_scatter():
+    # A shared offset moves every point together: it must not make the chi-square small. E[chi^2/dof] = 1
+    # for a correct error model (chi-square distribution, statistics); the mean of REPLICAS reduced
+    # chi-squares of 6 degrees of freedom scatters by sqrt(2/6/REPLICAS) = 0.03, allow 4 of them.
+    rng = np.random.default_rng(26)
+    reduced, warned = [], 0
+    for _ in range(REPLICAS):
+        k = noisy_series(rng, 0.03)
+        result = eyring_fit(TEMPS + rng.normal(0.0, 2.0), k, 0.03 * k, temperature_offset_stderr=2.0)
+        reduced.append(result.to_dict()["reduced_chi_square"])
+        warned += any("much less than their errors" in w for w in result.warnings)
+    assert np.mean(reduced) == pytest.approx(1.0, abs=4 * math.sqrt(2 / 6 / REPLICAS))
+    assert warned < 0.03 * REPLICAS  # the warning fires at p > 0.99: about 1 % of honest series
+
+
+def test_full_temperature_covariance_matches_statsmodels_gls():
+    # reference library: statsmodels GLS with the residual covariance
+    # V = diag(sigma_ln k^2) + G C_T G, G = diag(-1/T + slope/T^2) (linearised effective variance),
+    # C_T = diag(independent^2) + (probe offset)^2 * ones; covariance not rescaled ("fixed scale")
+    rng = np.random.default_rng(27)
+    k, k_err = _with_uneven_errors(28, 0.02, 0.06)
+    independent = rng.uniform(0.2, 0.8, len(TEMPS))
+    result = eyring_fit(TEMPS, k, k_err, temperature_stderr=independent, temperature_offset_stderr=1.0)
+    g = -1.0 / TEMPS + result.eyring.slope / TEMPS**2
+    c_t = np.diag(independent**2) + np.ones((8, 8))
+    x, y = _design(TEMPS, k)
+    ref = sm.GLS(y, x, sigma=np.diag((k_err / k) ** 2) + np.outer(g, g) * c_t).fit(cov_type="fixed scale")
+    assert [result.eyring.intercept, result.eyring.slope] == pytest.approx(ref.params, rel=1e-9)
+    assert np.sqrt(np.diag(result.eyring.covariance)) == pytest.approx(ref.bse, rel=1e-8)
+    assert result.eyring.chi_square == pytest.approx(float((ref.wresid**2).sum()), rel=1e-8)
+    # the variance splits exactly into the shares of the sources
+    shares = result.error_shares()
+    assert set(shares["enthalpy"]) == {"rates", "temperature scatter", "probe offset"}
+    assert all(sum(q.values()) == pytest.approx(1.0, rel=1e-12) for q in shares.values())
+    # scaled by the reduced chi-square: statsmodels GLS default
+    scaled = eyring_fit(TEMPS, k, k_err, temperature_stderr=independent, temperature_offset_stderr=1.0, scale_errors=True)
+    default = sm.GLS(y, x, sigma=np.diag((k_err / k) ** 2) + np.outer(g, g) * c_t).fit()
+    assert np.sqrt(np.diag(scaled.eyring.covariance)) == pytest.approx(default.bse, rel=1e-8)
+
+
+def test_long_table_with_shared_errors_needs_no_dense_covariance():
+    # 20,000 rates with a probe offset: a dense 20,000 x 20,000 covariance would take 3.2 GB
+    import tracemalloc
+
+    temps = np.linspace(220.0, 320.0, 20_000)
+    k = eyring_k(TRUE_DH, TRUE_DS, temps) * np.exp(np.random.default_rng(29).normal(0.0, 0.05, temps.size))
+    tracemalloc.start()
+    result = eyring_fit(temps, k, 0.05 * k, temperature_stderr=0.3, temperature_offset_stderr=1.0)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert peak < 100e6
+    assert result.enthalpy_kj_mol == pytest.approx(TRUE_DH, abs=4 * result.enthalpy_stderr)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -510,7 +572,8 @@ def test_cli_eyring_several_processes_and_plot(tmp_path):
     again = CliRunner().invoke(cli, ["eyring", str(path), "--plot", str(image)])
     assert again.exit_code == 2 and "already exists" in again.stderr
     text_run = CliRunner().invoke(cli, ["eyring", str(path), "--process", "b"])
-    assert text_run.exit_code == 0 and "process 'b'" in text_run.stdout and "[[Activation parameters]]" in text_run.stdout
+    assert text_run.exit_code == 0 and "process 'b'" in text_run.stdout
+    assert "Activation parameters\n---------------------\n  ΔH‡" in text_run.stdout and "[[" not in text_run.stdout
 
 
 def test_cli_eyring_bad_file_exits_2_with_one_line(tmp_path):
@@ -526,15 +589,77 @@ def test_cli_eyring_bad_file_exits_2_with_one_line(tmp_path):
 def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path):
     """`dnmr fit` writes a status per row (CONTRACT.md section 3 plus our own columns): failed or
     undetermined rows carry no rate and are left out with a note; a 68 % profile interval is a measurement
-    and is used with sigma(ln k) = half its width in ln k (common practice for asymmetric errors)."""
-    from dnmr.activation import eyring_fit_file
-
+    and is used with sigma(ln k) = the larger of its half-widths in ln k (conservative; common practice
+    for asymmetric errors when the side the line falls on is not known in advance)."""
     path = tmp_path / "rates.csv"
     path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s\n"
                     "250,p,10,1,,,determined,9,11\n260,p,25,,,,interval,22,28\n270,p,,,,,failed,,\n"
                     "280,p,140,10,,,determined,130,150\n290,p,300,30,,,determined,270,330\n")
     (result,) = eyring_fit_file(path)
     assert len(result.series) == 4 and result.used.all()
-    assert result.series.rate_stderr[1] == pytest.approx(25 * 0.5 * np.log(28 / 22))
+    assert result.series.rate_stderr[1] == pytest.approx(25 * np.log(25 / 22))
     assert any("left out, the fit is failed" in w for w in result.warnings)
-    assert any("used as a value" in w for w in result.warnings)
+    assert any("line 3 (260.00 K): 68 % interval 22–28 s⁻¹ used with σ(ln k) = 0.128" in w for w in result.warnings)
+
+
+FIT_HEADER = "temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s,reduced_chi_square,flags\n"
+
+
+def _fit_table(tmp_path, flags: dict[int, str], chi: dict[int, float] | None = None):
+    """A rates.csv as dnmr fit writes it, exact Eyring rates with 3 % errors, `flags` by row."""
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    rows = []
+    for i, (t, v) in enumerate(zip(TEMPS, k)):
+        value = float(v) * (2.0 if flags.get(i) == "misfit" else 1.0)  # a misfit spectrum: a rate twice too high
+        red = (chi or {}).get(i, 1.0)
+        rows.append(f"{t},p,{value!r},{0.03 * value!r},,,determined,{0.97 * value!r},{1.04 * value!r},{red},{flags.get(i, '')}")
+    return _write(tmp_path, FIT_HEADER + "\n".join(rows) + "\n")
+
+
+def test_misfit_and_nuisance_at_limit_rows_are_set_aside_by_default(tmp_path):
+    path = _fit_table(tmp_path, {2: "misfit", 5: "at-bound:linewidth_hz_a;correlated-noise"}, {2: 9.0})
+    (result,) = eyring_fit_file(path)
+    assert result.used.sum() == 6 and result.flagged_rows == "exclude"
+    assert result.enthalpy_kj_mol == pytest.approx(TRUE_DH, rel=1e-6)  # the biased rate did not enter
+    assert [row.where for row in result.series.set_aside] == ["line 4", "line 7"]
+    assert any("line 4 (250.00 K): set aside, its spectrum is a misfit (reduced chi-square 9)" in w for w in result.warnings)
+    assert any("line 7 (280.00 K): set aside, linewidth_hz_a ended at a limit of its range" in w for w in result.warnings)
+    text = result.report()
+    assert "Rates set aside (flagged fits, not fitted)" in text and "line 4: its spectrum is a misfit" in text
+    aside = result.to_dict()["set_aside"]
+    assert aside[0]["deviation_sigma"] == pytest.approx(math.log(2.0) / math.hypot(math.log(1.04), result.ln_rate(TEMPS[2]).stderr), rel=1e-6)
+
+
+def test_flagged_rows_can_be_fitted_with_widened_errors(tmp_path):
+    path = _fit_table(tmp_path, {2: "misfit", 5: "at-bound:linewidth_hz_a"}, {2: 9.0})
+    (result,) = eyring_fit_file(path, flagged_rows="widen")
+    assert result.used.sum() == 8 and not result.series.set_aside
+    # the larger half-width of the 68 % interval, 0.97 to 1.04 of the rate: ln 1.04 = 0.039 > 0.03
+    assert result.series.rate_stderr[5] / result.series.rate_per_s[5] == pytest.approx(math.log(1.04), rel=1e-12)
+    assert any("line 4 (250.00 K): fitted although its spectrum is a misfit" in w for w in result.warnings)
+    assert "flagged fits         fitted with widened errors" in result.report()
+    run = CliRunner().invoke(cli, ["eyring", str(path), "--flagged-rows", "widen", "--json"])
+    assert run.exit_code == 0, run.output
+    assert json.loads(run.stdout)["n_rates"] == 8
+
+
+def test_all_rows_flagged_is_one_line_naming_the_option(tmp_path):
+    path = _fit_table(tmp_path, {i: "misfit" for i in range(8)})
+    run = CliRunner().invoke(cli, ["eyring", str(path)])
+    assert run.exit_code == 2 and run.stderr.strip().count("\n") == 0
+    assert "set aside" in run.stderr and "--flagged-rows widen" in run.stderr
+
+
+def test_cli_probe_offset_and_error_shares(tmp_path):
+    k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
+    path = _write(tmp_path, _table(TEMPS, k, 0.03 * k))
+    run = CliRunner().invoke(cli, ["eyring", str(path), "--temperature-offset-stderr", "1.0", "--json"])
+    assert run.exit_code == 0, run.output
+    out = json.loads(run.stdout)
+    assert CONTRACT_KEYS <= set(out)
+    assert out["temperature_error_sources"] == ["probe offset"]
+    assert set(out["error_shares"]["enthalpy"]) == {"rates", "probe offset"}
+    text = CliRunner().invoke(cli, ["eyring", str(path), "--temperature-offset-stderr", "1.0"]).stdout
+    assert "Where the errors come from" in text and "probe offset" in text
+    bad = CliRunner().invoke(cli, ["eyring", str(path), "--temperature-offset-stderr", "-1"])
+    assert bad.exit_code == 2 and "temperature_offset_stderr" in bad.stderr

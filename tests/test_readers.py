@@ -164,8 +164,23 @@ def test_hz_axis_from_argument_for_headerless_file(tmp_path):
     np.savetxt(path, np.column_stack([hz, invented_lines(hz / SF_MHZ)]), fmt="%.17g")
     spectrum = read_spectrum(path, axis="Hz", frequency_mhz=SF_MHZ)
     np.testing.assert_allclose(spectrum.ppm, hz / SF_MHZ, rtol=1e-15)
-    # without the argument the axis is taken as ppm (documented default)
-    assert read_spectrum(path).ppm[0] == 1000.0
+    # without the argument the axis would be taken as ppm (documented default), but 1000-1600 "ppm" is a Hz
+    # axis by all odds: refused with the fix
+    with pytest.raises(InputError, match=r'read as ppm, but it runs from 1000 to 1600: a Hz axis.*"hz,intensity".*axis = "hz"'):
+        read_spectrum(path)
+    near_zero = tmp_path / "ppm.txt"
+    np.savetxt(near_zero, np.column_stack([hz / SF_MHZ, invented_lines(hz / SF_MHZ)]), fmt="%.17g")
+    assert read_spectrum(near_zero).ppm[0] == pytest.approx(1000.0 / SF_MHZ)
+
+
+@pytest.mark.parametrize("header, row, line", [("", "2,5013\t0,0001\n", 1), ("", "2,5013 0,0001\n", 1),
+                                               ("ppm\tintensity\n", "2,5013\t0,0001\n", 2)])
+def test_decimal_comma_without_semicolons_names_the_fix(tmp_path, header, row, line):
+    # common practice: a decimal comma reads only with semicolons between the columns (as spreadsheets export it)
+    path = tmp_path / "comma.txt"
+    path.write_text(header + row * 10)
+    with pytest.raises(InputError, match=rf"line {line}: the numbers use a decimal comma: separate the columns with semicolons"):
+        read_spectrum(path)
 
 
 def test_hz_axis_without_frequency_says_what_to_add(tmp_path):

@@ -9,6 +9,7 @@ rule with binomial intensities (textbook). Calibration statistics are checked ag
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 import pytest
@@ -260,7 +261,8 @@ def test_calibration_is_carried_into_the_eyring_analysis(tmp_path):
     assert calibrated.enthalpy_kj_mol == pytest.approx(50.0, rel=1e-9)
     assert abs(plain.enthalpy_kj_mol - 50.0) > 0.5  # set-points taken as sample temperatures: biased
     assert calibrated.enthalpy_stderr > plain.enthalpy_stderr
-    assert calibrated.monte_carlo_draws > 0
+    assert calibrated.temperature_error_sources == ("calibration",)
+    assert calibrated.error_shares()["gibbs_298"]["calibration"] > 0
     beyond = tmp_path / "beyond.csv"
     beyond.write_text("temperature_k,rate_per_s\n240,1.0\n260,5.0\n335,900\n")
     with pytest.raises(InputError, match=r"beyond.csv: line 4: set-point 335 K is outside the calibrated range"):
@@ -292,3 +294,27 @@ def test_cli_thermometer_out_of_range_exits_2_with_one_line():
     assert run.stderr.strip().count("\n") == 0 and "outside its calibrated range" in run.stderr
     nothing = CliRunner().invoke(cli, ["thermometer", "methanol"])
     assert nothing.exit_code == 2 and "--shift-difference" in nothing.stderr
+
+
+def test_calibration_error_is_shared_not_scatter(tmp_path):
+    # The sample temperatures stray from the calibration curve as the calibration says (its curve error is
+    # shared by all set-points, its scatter is not); rates 3 % noisy. With the shared part counted as
+    # correlated the reduced chi-square averages 1 (chi-square distribution, statistics): over 150 series
+    # of 7 - 2 degrees of freedom its mean scatters by sqrt(2/5/150) = 0.05, allow 4 of them. Counted as
+    # independent scatter it would average well below 1 and warn that the rates scatter too little.
+    cal = fit_temperature_calibration(SETPOINTS, MEASURED + np.array([0.0, 1.5, -1.2, 0.4, 1.1, -1.6]))
+    setpoints = np.linspace(225.0, 315.0, 7)
+    applied = cal.true_temperature(setpoints)
+    rng = np.random.default_rng(5)
+    rates = tmp_path / "rates.csv"
+    reduced, warned = [], 0
+    for _ in range(150):
+        true_t = rng.multivariate_normal(applied.temperature_k, applied.covariance)
+        k = _eyring_rates(true_t) * np.exp(rng.normal(0.0, 0.03, true_t.size))
+        rates.write_text("temperature_k,rate_per_s,rate_stderr\n"
+                         + "\n".join(f"{s},{float(v)!r},{0.03 * float(v)!r}" for s, v in zip(setpoints, k)) + "\n")
+        (result,) = eyring_fit_file(rates, calibration=cal)
+        reduced.append(result.to_dict()["reduced_chi_square"])
+        warned += any("much less than their errors" in w for w in result.warnings)
+    assert np.mean(reduced) == pytest.approx(1.0, abs=4 * math.sqrt(2 / 5 / 150))
+    assert warned <= 6  # the warning fires at p > 0.99: about 1 % of honest series
