@@ -223,6 +223,20 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
 
 
 @cli.command()
+@click.argument("experiment_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
+              help="Folder for rates.csv and results.json.")
+@click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
+def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
+    """Rates of slow exchange from a magnetisation-transfer experiment (selective inversion, saturation
+    transfer or 2D exchange) described by EXPERIMENT_FILE, into OUTDIR."""
+    from .transfer import run_transfer
+
+    click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
+    click.echo(f"wrote {outdir / 'rates.csv'} and {outdir / 'results.json'}")
+
+
+@cli.command()
 @click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
