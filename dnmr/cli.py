@@ -225,7 +225,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
 @cli.command()
 @click.argument("experiment_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
-              help="Folder for rates.csv and results.json.")
+              help="Folder for rates.csv, results.json and fit.png.")
 @click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
 def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
     """Rates of slow exchange from a magnetisation-transfer experiment (selective inversion, saturation
@@ -233,7 +233,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
     from .transfer import run_transfer
 
     click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
-    click.echo(f"wrote {outdir / 'rates.csv'} and {outdir / 'results.json'}")
+    click.echo(f"wrote rates.csv, results.json and fit.png into {outdir}")
 
 
 @cli.command()

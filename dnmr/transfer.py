@@ -60,7 +60,7 @@ from .fitting import (
 from .longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
 from .model import Model
 from .modelfile import check_keys, load_model, read_toml
-from .output import atomic_write_text, json_ready, new_output_folder
+from .output import atomic_write_text, json_ready, new_output_folder, save_figure
 from .series import RATE_COLUMNS
 from .tables import check_kelvin, read_table
 
@@ -457,11 +457,11 @@ class _TransferProblem:
             return np.full(len(self.observed), values["m_eq_scale"])
         return np.array([values[self.m_eq_name(self.labels[i])] / self.equilibrium[i] for i in self.observed])
 
-    def predict(self, values: Mapping[str, float]) -> np.ndarray:
-        """The model's integrals (or volumes) at the data's times."""
+    def predict(self, values: Mapping[str, float], times_s: np.ndarray | None = None) -> np.ndarray:
+        """The model's integrals (or volumes) at the data's times (or at `times_s`, s)."""
         self.nfev += 1
         system = self.system(values)
-        times = self.experiment.data.times_s
+        times = self.experiment.data.times_s if times_s is None else np.asarray(times_s, dtype=float)
         if self.kind == "exchange-2d":
             return values["m_eq_scale"] * system.volumes(times)
         options = self.experiment.options
@@ -578,6 +578,16 @@ class TransferFit:
     def residuals(self) -> np.ndarray:
         """Data minus fit, shaped like the data."""
         return self.experiment.data.values - self.fitted
+
+    def curve(self, times_s: Sequence[float]) -> np.ndarray:
+        """The fitted model at any times (s), shaped like the data with those times."""
+        return _TransferProblem(self.experiment).predict(self.parameters.valuesdict(), np.asarray(times_s, dtype=float))
+
+    def plot(self, figure=None):
+        """Data, fitted curves and residuals (:func:`dnmr.plotting.plot_transfer_fit`)."""
+        from .plotting import plot_transfer_fit
+
+        return plot_transfer_fit(self, figure=figure)
 
     def relaxation(self) -> dict[str, tuple[float, float]]:
         """R1 (s^-1) and its standard error for each site (error NaN where fixed or tied)."""
@@ -897,7 +907,7 @@ def _matrix_checks(rates: np.ndarray, stderr: np.ndarray, m_eq: np.ndarray, conn
 
 
 def write_transfer(fit: TransferFit, outdir: str | Path, overwrite: bool = False) -> Path:
-    """Write ``rates.csv`` and ``results.json`` of `fit` into the new folder `outdir` (atomically; an
+    """Write ``rates.csv``, ``results.json`` and ``fit.png`` of `fit` into the new folder `outdir` (atomically; an
     existing non-empty folder only with `overwrite`).  Returns the folder."""
     outdir = new_output_folder(outdir, overwrite=overwrite)
     rows = fit.rate_rows()
@@ -909,6 +919,7 @@ def write_transfer(fit: TransferFit, outdir: str | Path, overwrite: bool = False
     atomic_write_text(outdir / "rates.csv", buffer.getvalue(), overwrite=overwrite)
     atomic_write_text(outdir / "results.json", json.dumps(json_ready(fit.to_dict()), indent=1, allow_nan=False) + "\n",
                       overwrite=overwrite)
+    save_figure(fit.plot(), outdir / "fit.png", overwrite=overwrite, close=True)
     return outdir
 
 

@@ -229,6 +229,20 @@ def test_exchange_2d_checks_flag_cross_relaxation_of_opposite_sign():
     assert any("negative" in c and "cross-relaxation" in c for c in checks)
 
 
+def test_exchange_2d_checks_flag_broken_detailed_balance():
+    # volumes from a rate matrix with k(a->b) M_eq,a != k(b->a) M_eq,b (scipy's expm): the check says so
+    m_eq = np.array([0.6, 0.4])
+    L = np.array([[0.8 + 1.0, -0.3], [-1.0, 1.5 + 0.3]])  # k(a->b) = 1.0, k(b->a) = 0.3: flows 0.6 and 0.12
+    mixing = np.array([0.2, 0.5])
+    volumes = np.array([expm(-L * t) @ np.diag(100 * m_eq) for t in mixing])
+    exp = Experiment(two_site(k=1.0), 240.0, "exchange-2d", TransferData(mixing, ("a", "b"), volumes, None, "syn"),
+                     TransferOptions(volume_stderr=0.01, monte_carlo_draws=100))
+    fit = fit_transfer(exp)
+    checks = [c for m in fit.matrix_method for c in m.checks]
+    assert any("detailed balance fails between a and b" in c for c in checks), checks
+    np.testing.assert_allclose(fit.matrix_method[0].rates_per_s[1, 0], 1.0, rtol=1e-3)  # k(a -> b) at [b, a]
+
+
 def test_error_bars_cover_the_truth_over_noise_replicas():
     # coverage of the stated 68 % errors: 100 noise replicas of a saturation build-up (Forsén & Hoffman
     # 1963); a correct error covers the truth in 68 % of them (binomial 1.7 sigma band: 60 to 76 %)
@@ -322,7 +336,7 @@ def test_command_writes_the_rates_table_that_eyring_reads(tmp_path):
     rows = list(csv.DictReader(open(tmp_path / "out" / "rates.csv")))
     assert list(rows[0])[:len(RATE_COLUMNS)] == list(RATE_COLUMNS) and rows[0]["method"] == "inversion"
     assert abs(float(rows[0]["rate_per_s"]) - 2.0) < 4 * float(rows[0]["rate_stderr"])
-    assert (tmp_path / "out" / "results.json").is_file()
+    assert (tmp_path / "out" / "results.json").is_file() and (tmp_path / "out" / "fit.png").stat().st_size > 0
     # a second temperature, and the two tables joined as the Eyring analysis reads them
     experiment.write_text(experiment.read_text().replace("temperature_k = 240.0", "temperature_k = 250.0"))
     assert CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out250")]).exit_code == 0
