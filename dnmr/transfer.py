@@ -142,6 +142,8 @@ class TransferOptions:
                 or not 20 <= self.monte_carlo_draws <= 10**6:
             raise InputError(f"expected a whole number from 20 to 1000000, got {self.monte_carlo_draws!r}",
                              where="options.monte_carlo_draws")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise InputError(f"expected a whole number of 0 or more, got {self.seed!r}", where="options.seed")
         lo, hi = self.rate_limits_per_s
         if not (0 < lo < hi and math.isfinite(hi)):
             raise InputError(f"expected two positive rates, low then high, got {self.rate_limits_per_s!r}",
@@ -625,9 +627,6 @@ class TransferFit:
         if combined is not None:
             for r, k, s in zip(self.rates, combined.process_rates, combined.process_stderr):
                 lines.append(f"  matrix method {r.process}: k = {_num(k)} ± {_num(s, 2)} s^-1")
-            for m in self.matrix_method:
-                lines += [f"  check ({'all mixing times' if np.isnan(m.mixing_s) else f'{m.mixing_s:g} s'}): {c}"
-                          for c in m.checks]
         lines += [f"  note: {n}" for n in self.notes]
         return "\n".join(lines)
 
@@ -747,6 +746,10 @@ def _fit(experiment: Experiment) -> TransferFit:
     if experiment.experiment == "exchange-2d":
         sigma = None if experiment.data.stderr is not None and given is None else float(problem.sigma.flat[0])
         fit.matrix_method = matrix_method(experiment, values["m_eq_scale"], sigma)
+        remarks = [f"matrix method at {m.mixing_s:g} s: {c}" for m in fit.matrix_method for c in m.checks]
+        if remarks:
+            fit.flags.append("matrix-method-remarks")
+            fit.notes.extend(remarks)
     return fit
 
 
