@@ -19,6 +19,7 @@ _HOMES = {
     "activation": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
     "errors": ("InputError",),
     "fitting": ("FitOptions", "RateEstimate", "SpectrumFit", "fit_parameters", "fit_spectrum"),
+    "longitudinal": ("LongitudinalSystem",),
     "model": ("Exchange", "Model", "Spectrometer", "State"),
     "modelfile": ("load_model",),
     "readers": ("MeasuredSpectrum", "read_spectrum"),
@@ -29,6 +30,7 @@ _HOMES = {
     "spectrum": ("Spectrum", "simulate", "simulate_over"),
     "thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
                     "temperature_from_spectrum", "thermometer_reading"),
+    "transfer": ("Experiment", "TransferFit", "fit_transfer", "load_experiment", "run_transfer"),
     "timescale": ("ActivationParameters", "averaged_model", "fast_exchange_limit", "timescale_view"),
 }
 _HOME_OF = {name: module for module, names in _HOMES.items() for name in names}

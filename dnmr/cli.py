@@ -232,6 +232,20 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
 
 
 @cli.command()
+@click.argument("experiment_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
+              help="Folder for rates.csv, results.json and fit.png.")
+@click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
+def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
+    """Rates of slow exchange from a magnetisation-transfer experiment (selective inversion, saturation
+    transfer or 2D exchange) described by EXPERIMENT_FILE, into OUTDIR."""
+    from .transfer import run_transfer
+
+    click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
+    click.echo(f"wrote rates.csv, results.json and fit.png into {outdir}")
+
+
+@cli.command()
 @click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),

@@ -125,6 +125,10 @@ class State:
         Relative weight (normalised over states); give this or `free_energy_kj_mol`.
     free_energy_kj_mol : float, optional
         Relative free energy (kJ/mol); populations then follow Boltzmann at the model temperature.
+    r1_per_s : float or mapping of str to float, optional
+        Longitudinal relaxation rate R1 = 1/T1 (s^-1) of the z-magnetisation of this state's spins, one
+        number for all of them or one per spin (every spin named); used by magnetisation transfer
+        (:mod:`dnmr.longitudinal`), not by lineshapes.
     """
 
     name: str
@@ -133,6 +137,7 @@ class State:
     linewidth_hz: float = 1.0
     population: float | None = None
     free_energy_kj_mol: float | None = None
+    r1_per_s: float | Mapping[str, float] | None = None
 
     def __post_init__(self):
         if not str(self.name):
@@ -159,6 +164,24 @@ class State:
             _finite(self.free_energy_kj_mol, "free_energy_kj_mol")
         object.__setattr__(self, "shifts_ppm", shifts)
         object.__setattr__(self, "couplings_hz", couplings)
+        object.__setattr__(self, "r1_per_s", self._checked_r1())
+
+    def _checked_r1(self) -> float | dict[str, float] | None:
+        """R1 (s^-1): None, one positive number, or a positive number for every spin of the state."""
+        if self.r1_per_s is None or not isinstance(self.r1_per_s, Mapping):
+            return None if self.r1_per_s is None else _finite(self.r1_per_s, "r1_per_s", positive=True)
+        rates = {str(k): _finite(v, f"r1_per_s.{k}", positive=True) for k, v in self.r1_per_s.items()}
+        unknown = sorted(set(rates) - set(self.shifts_ppm))
+        missing = [spin for spin in self.shifts_ppm if spin not in rates]
+        if unknown or missing:
+            bad = f'unknown spin "{unknown[0]}"' if unknown else f'no rate for spin "{missing[0]}"'
+            raise InputError(f"{bad}; give one number for the state or one per spin of {', '.join(self.shifts_ppm)}",
+                             where="r1_per_s")
+        return rates
+
+    def r1_of(self, spin: str) -> float | None:
+        """Longitudinal relaxation rate R1 (s^-1) of `spin` in this state, None when not given."""
+        return self.r1_per_s.get(spin) if isinstance(self.r1_per_s, Mapping) else self.r1_per_s
 
     @property
     def spins(self) -> list[str]:

@@ -25,7 +25,7 @@ TOP_KEYS = {"title", "spectrometer", "window", "conditions", "state", "exchange"
 SPECTROMETER_KEYS = {"nucleus", "frequency_mhz"}
 WINDOW_KEYS = {"ppm", "points"}
 CONDITIONS_KEYS = {"temperature_k"}
-STATE_KEYS = {"name", "population", "free_energy_kj_mol", "linewidth_hz", "shifts_ppm", "couplings_hz"}
+STATE_KEYS = {"name", "population", "free_energy_kj_mol", "linewidth_hz", "shifts_ppm", "couplings_hz", "r1_per_s"}
 EXCHANGE_KEYS = {"name", "from", "to", "spins", "rate_per_s", "barrier_kj_mol", "enthalpy_kj_mol", "entropy_j_mol_k"}
 
 
@@ -151,6 +151,8 @@ def parse_state(table: dict, index: int) -> State:
         linewidth_hz=_number(table, "linewidth_hz", where, 1.0),
         population=_number(table, "population", where),
         free_energy_kj_mol=_number(table, "free_energy_kj_mol", where),
+        r1_per_s=(_table_of(table, "r1_per_s", where, float) if isinstance(table.get("r1_per_s"), dict)
+                  else _number(table, "r1_per_s", where)),
     )
 
 

@@ -271,6 +271,61 @@ def plot_spectrum_fit(fit, *, figure=None):
     return fig
 
 
+#: Colours of the sites (or peaks) in magnetisation-transfer figures.
+TRANSFER_COLOURS = ("#1f3b73", "#b2412c", "#2e7d4f", "#7a3e8f", "#a8701a", "#4d5d6e", "#1a8a8a", "#c2185b",
+                    "#6b8e23")
+
+
+def plot_transfer_fit(fit, *, figure=None):
+    """Integrals (or 2D volumes) against delay, saturation or mixing time, the fitted curves and residuals.
+
+    Parameters
+    ----------
+    fit : TransferFit
+        The fit (see :func:`dnmr.transfer.fit_transfer`).
+    figure : matplotlib Figure, optional
+        Figure to draw into (default: a new one).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Upper panel: the data of each site (or peak) as points, the fitted model as a line; lower panel:
+        data - fit.
+    """
+    exp = fit.experiment
+    times = exp.data.times_s
+    fig = figure if figure is not None else plt.figure(figsize=(6.8, 5.0))
+    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.06})
+    grid = np.linspace(0.0, float(times.max()), 300)
+    dense, data, residuals = fit.curve(grid), exp.data.values, fit.residuals
+    if exp.experiment == "exchange-2d":
+        n = len(exp.data.sites)
+        pairs = [(i, j) for i in range(n) for j in range(n)]
+        labels = [f"{exp.data.sites[j]} → {exp.data.sites[i]}" for i, j in pairs]
+        dense, data, residuals = (a.reshape(a.shape[0], n * n) for a in (dense, data, residuals))
+    else:
+        labels = list(exp.data.sites)
+    two_d = exp.experiment == "exchange-2d"
+    for c, label in enumerate(labels):
+        colour = TRANSFER_COLOURS[c % len(TRANSFER_COLOURS)]
+        marker = "s" if two_d and c % (len(exp.data.sites) + 1) == 0 else "o"  # diagonal peaks as squares
+        ax.plot(grid, dense[:, c], color=colour, lw=1.1)
+        ax.plot(times, data[:, c], marker, color=colour, ms=4, label=label)
+        res.plot(times, residuals[:, c], marker, color=colour, ms=3)
+    res.axhline(0.0, color="0.5", lw=0.8)
+    axis = {"inversion": "delay", "saturation": "saturation time", "exchange-2d": "mixing time"}[exp.experiment]
+    res.set_xlabel(f"{axis} / s")
+    res.set_ylabel("residual")
+    ax.set_ylabel("peak volume" if exp.experiment == "exchange-2d" else "integral")
+    if two_d:
+        ax.legend(frameon=False, fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    else:
+        ax.legend(frameon=False, fontsize=8, loc="lower right")
+    text = "\n".join(f"{r.process}: {r.describe().split('   ')[0]}" for r in fit.rates)
+    ax.set_title(f"{exp.experiment}, {exp.temperature_k:g} K\n{text}", fontsize=9)
+    return fig
+
+
 def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
     """Measured (black) and fitted (orange-red) spectra of a series, stacked bottom to top.
 

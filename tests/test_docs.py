@@ -14,7 +14,7 @@ DOCS = Path(__file__).resolve().parent.parent / "docs"
 
 def documented_keys(*pages: str) -> set[str]:
     text = "\n".join((DOCS / p).read_text() for p in pages if (DOCS / p).exists())
-    return set(re.findall(r"`\[*([a-z_]+)\]*`", text))
+    return set(re.findall(r"`\[*([a-z0-9_]+)\]*`", text))
 
 
 @pytest.mark.parametrize("section, keys", [
@@ -109,3 +109,16 @@ def test_series_reference_lists_the_contract_columns():
     table = text.split("## Output: `rates.csv`", 1)[1].split("## ", 1)[0]
     for column in ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper"):
         assert f"| `{column}` |" in table, column
+
+
+@pytest.mark.parametrize("section, keys", [
+    ("experiment file", "EXPERIMENT_KEYS"),
+    ("options", "OPTION_KEYS"),
+    ("rates.csv", "TRANSFER_COLUMNS"),
+])
+def test_every_transfer_key_and_column_is_documented(section, keys):
+    from dnmr import transfer
+
+    documented = set(re.findall(r"`\[*([a-z0-9_]+)\]*`", (DOCS / "transfer-file.md").read_text()))
+    missing = set(getattr(transfer, keys)) - documented
+    assert not missing, f"{section} keys missing from docs/transfer-file.md: {sorted(missing)}"

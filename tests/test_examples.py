@@ -33,6 +33,9 @@ EXPECTED = {
     "temperature_calibration": ["calibration.csv", "rates.csv", "methanol_250K.txt", "eyring_calibrated.txt",
                                 "eyring_calibrated.png", "comparison.txt"],
     "heteronuclear_groups": ["vt_stack.png", "summary.txt"],
+    "transfer_and_lineshape": ["data/model.toml", "data/series.toml", "data/truth.csv", "data/inversion_252K.toml",
+                               "data/inversion_252K.csv", "si-252K/rates.csv", "si-252K/results.json",
+                               "lineshape-fit/rates.csv", "all_rates.csv", "summary.txt"],
 }
 
 #: Lines each script prints that carry its point (a check that the README's claims still hold).
@@ -44,6 +47,8 @@ CLAIMS = {
     "conformers_couplings": [r"chair flip  k = [\d.]+ ± [\d.]+ s\^-1"],
     "planning": [r"above the boiling point of chloroform-d", r"Cautions:"],
     "temperature_calibration": [r"methanol is toxic", r"calibrated temperatures +5[12]\.\d\d ±"],
+    "transfer_and_lineshape": [r"inversion and lineshapes \(8 rates\): dH‡ = 6\d\.\d\d ± 0\.\d\d kJ/mol",
+                               r"the error of dS‡ shrinks \d\.\d-fold"],
     # binomial 1:3:3:1 (common practice); groups against the nuclei written out; the H-F coupling kept
     "heteronuclear_groups": [r"largest difference from 1 : 3 : 3 : 1: \d\.\de-(1[0-9]|0[89])|: 0\.0e\+00",
                              r"nucleus by nucleus .* largest difference \d\.\de-1[2-9]",
