@@ -271,11 +271,6 @@ def plot_spectrum_fit(fit, *, figure=None):
     return fig
 
 
-#: Colours of the sites (or peaks) in magnetisation-transfer figures.
-TRANSFER_COLOURS = ("#1f3b73", "#b2412c", "#2e7d4f", "#7a3e8f", "#a8701a", "#4d5d6e", "#1a8a8a", "#c2185b",
-                    "#6b8e23")
-
-
 def plot_transfer_fit(fit, *, figure=None):
     """Integrals (or 2D volumes) against delay, saturation or mixing time, the fitted curves and residuals.
 
@@ -307,12 +302,12 @@ def plot_transfer_fit(fit, *, figure=None):
         labels = list(exp.data.sites)
     two_d = exp.experiment == "exchange-2d"
     for c, label in enumerate(labels):
-        colour = TRANSFER_COLOURS[c % len(TRANSFER_COLOURS)]
+        colour = series_colour(c)
         marker = "s" if two_d and c % (len(exp.data.sites) + 1) == 0 else "o"  # diagonal peaks as squares
         ax.plot(grid, dense[:, c], color=colour, lw=1.1)
         ax.plot(times, data[:, c], marker, color=colour, ms=4, label=label)
         res.plot(times, residuals[:, c], marker, color=colour, ms=3)
-    res.axhline(0.0, color="0.5", lw=0.8)
+    res.axhline(0.0, color=GREY, lw=0.8)
     axis = {"inversion": "delay", "saturation": "saturation time", "exchange-2d": "mixing time"}[exp.experiment]
     res.set_xlabel(f"{axis} / s")
     res.set_ylabel("residual")
