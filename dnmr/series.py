@@ -629,6 +629,10 @@ class SpectrumOutcome:
         "fitted", "trend", "model", "reference-line" or "user".
     reference : dict or None
         The fit of the reference line (width, its error, flags) when the series names one.
+    flags : list of str
+        Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
+        (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
+        slow-exchange temperature, whose drift with temperature is unknown and not in the error).
     posterior : dict or None
         The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
         sampling failed) when it was sampled.
@@ -644,6 +648,7 @@ class SpectrumOutcome:
     posterior: dict | None = None
     treatment: dict[str, str] = field(default_factory=dict)
     reference: dict | None = None
+    flags: list[str] = field(default_factory=list)
 
     def posterior_rate(self, i: int) -> dict | None:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
@@ -753,11 +758,20 @@ class StaticTrend:
         The population every van 't Hoff line is relative to.
     notes : tuple of str
         How the trends were made (which spectra, a single temperature...).
+    differences : dict of str to ParameterTrend
+        Every shift but the first as its difference from the first (``first_shift``), regressed the same
+        way.  These give the errors of the held shifts: a shift common to all lines (referencing, which
+        in the slow-exchange fits moves every shift alike) is taken up by the frequency offset of the
+        held fits, so only the differences carry an error into the rates.
+    first_shift : str or None
+        The shift the differences are taken from.
     """
 
     lines: dict[str, ParameterTrend]
     first_population: str | None = None
     notes: tuple[str, ...] = ()
+    differences: dict[str, ParameterTrend] = field(default_factory=dict)
+    first_shift: str | None = None
 
     def held(self, temperature_k: float, kinds: Sequence[str] = ("shift", "coupling", "population", "linewidth")
              ) -> dict[str, dict]:
@@ -777,6 +791,8 @@ class StaticTrend:
                 continue
             if name.startswith(PARAMETER_PREFIX["linewidth"]):
                 value = max(value, MIN_HELD_LINEWIDTH_HZ)
+            if name.startswith(PARAMETER_PREFIX["shift"]):  # only differences of shifts matter (see above)
+                stderr = self.differences[name].at(temperature_k)[1] if name in self.differences else 0.0
             out[name] = _held_setting(value, stderr)
         if ratios:
             weights = {name: math.exp(v) for name, (v, _) in ratios.items()}
@@ -801,7 +817,9 @@ class StaticTrend:
     def to_dict(self) -> dict:
         """Plain data."""
         return {"lines": {n: line.to_dict() for n, line in self.lines.items()},
-                "first_population": self.first_population, "notes": list(self.notes)}
+                "first_population": self.first_population, "notes": list(self.notes),
+                "differences": {n: line.to_dict() for n, line in self.differences.items()},
+                "first_shift": self.first_shift}
 
 
 def _held_setting(value: float, stderr: float) -> dict:
@@ -857,7 +875,8 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
         Which of "shift", "coupling", "population", "linewidth" to regress.
     """
     lines: dict[str, ParameterTrend] = {}
-    first = None
+    differences: dict[str, ParameterTrend] = {}
+    first = first_shift = None
     if slow:
         params = slow[0][1].parameters
         free = [n for n, p in params.items() if p.vary and not p.expr]
@@ -865,6 +884,14 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
             if kind in kinds:
                 for name in (n for n in free if n.startswith(PARAMETER_PREFIX[kind])):
                     lines[name] = regress_trend(name, "linear-in-T", *_parameter_points(slow, name))
+        shifts = [n for n in free if n.startswith(PARAMETER_PREFIX["shift"])] if "shift" in kinds else []
+        if shifts:
+            first_shift = shifts[0]
+            base = _parameter_points(slow, first_shift)
+            for name in shifts[1:]:
+                temps, values, errors = _parameter_points(slow, name)
+                differences[name] = regress_trend(name, "linear-in-T", temps, np.subtract(values, base[1]),
+                                                  np.hypot(errors, base[2]))
         populations = [n for n in params if n.startswith(PARAMETER_PREFIX["population"])]
         if "population" in kinds and populations and any(params[n].vary for n in populations):
             first = populations[0]
@@ -873,7 +900,7 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
     if "linewidth" in kinds and quiet:
         name = next(n for n in quiet[0][1].parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
         lines[name] = regress_trend(name, "linear-in-T", *_parameter_points(quiet, name, widen=_exchange_width))
-    return StaticTrend(lines, first)
+    return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
 
 
 def _exchange_width(fit: SpectrumFit) -> float:
@@ -1051,12 +1078,11 @@ def _rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) ->
         if name.startswith(("linewidth_hz_", "shift_ppm_", "coupling_hz_", "population_")):
             row[name] = par.value
     p = fit.parameters
-    treated = [f"{how}-{quantity}" for quantity, how in outcome.treatment.items() if how in ("trend", "reference-line")]
     row.update(offset_hz=p["offset_hz"].value, phase0_deg=p["phase0_deg"].value, chi_square=fit.chi_square,
                reduced_chi_square=fit.reduced_chi_square, noise=fit.noise.sigma,
                log10_rate_stderr_held=r.log10_stderr_held if r.log10_stderr_held > 0 else math.nan,
                treatment=";".join(f"{q}={how}" for q, how in outcome.treatment.items()), spectrum=str(s.file),
-               flags=";".join(list(fit.flags) + treated + list(s.flags)),
+               flags=";".join(list(fit.flags) + outcome.flags + list(s.flags)),
                note=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
     post = outcome.posterior_rate(i)
     if post is not None:
@@ -1399,8 +1425,15 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
         else:
             out[quantity] = "model"
     outcome.treatment = out
+    outcome.flags += [f"{how}-{quantity}" for quantity, how in out.items() if how in ("trend", "reference-line")]
     if out:
         outcome.notes.append(_treatment_note(out))
+    held = [n for n, p in (fit.parameters.items() if fit else ()) if trend and n in trend.lines and not p.vary]
+    if any(trend.lines[n].constant for n in held):
+        outcome.flags.append("trend-one-temperature")
+        outcome.notes.append("the held values come from one slow-exchange temperature: their drift with temperature "
+                             "is unknown and not in the error; colder spectra, slow_exchange_below_k or a reference "
+                             "line would give it")
 
 
 def _treatment_note(treatment: Mapping[str, str]) -> str:
@@ -1450,6 +1483,7 @@ def _write_outputs(result: SeriesFit, runner: _Runner, hashes: Mapping) -> None:
                  "temperature_k": o.spectrum.temperature_k, "status": "fitted" if o.fitted else "failed",
                  "stage": o.stage, "reused": o.reused, "flags": list(o.spectrum.flags), "notes": o.notes,
                  "error": o.error or None, "bad_input": o.bad_input, "treatment": o.treatment,
+                 "series_flags": o.flags,
                  "reference_line": o.reference,
                  "fit": o.fit.to_dict() if o.fitted else None, "posterior": o.posterior}
         spectra.append(entry)
