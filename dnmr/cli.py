@@ -429,9 +429,12 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
               help="Distance kept from the solvent's melting and boiling points (K; default 10).")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the predicted VT stack at the planned temperatures (PNG, SVG or PDF).")
+@click.option("--series", "series_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Also write a series file for dnmr fit with the planned temperatures (first field) and the "
+                   "linewidth treatment the precision assumes.")
 def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
          detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
-         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file) -> None:
+         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file, series_file) -> None:
     """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
     from . import load_model
     from .planning import plan_experiment
@@ -447,6 +450,14 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
         process=process, solvent=solvent_from_options(solvent_name, solvent_file, melting_point_k, boiling_point_k),
         **{key: value for key, value in given.items() if value is not None})
     _emit(result, as_json, plot_file, overwrite)
+    if series_file:
+        import os
+
+        from .output import atomic_write_text
+
+        relative = os.path.relpath(model_file.resolve(), series_file.resolve().parent)
+        atomic_write_text(series_file, result.series_text(Path(relative).as_posix()), overwrite=overwrite)
+        click.echo(f"wrote {series_file}", err=as_json)
 
 
 @cli.command()
