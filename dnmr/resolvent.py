@@ -13,7 +13,9 @@ Three exact routes, chosen per block; each only moves rounding error:
   tridiagonal matrix whose continued fraction is S.  A step costs a sparse product (about a dozen
   elements per row) plus, only when the estimated loss of orthogonality calls for it, a pass over the
   basis, instead of the O(n^3) of a dense eigendecomposition; it is refused on a (rare) serious
-  breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.
+  breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.  Where numba is
+  installed (the optional extra ``fast``) the Lanczos recursion and the continued fraction run as the
+  compiled loops of :mod:`dnmr.kernels`, the same algorithms step for step.
 """
 from __future__ import annotations
 
@@ -342,7 +344,8 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
     keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy;
     a step costs a sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and
-    then (about one step in ten for six to eight spins).  Returns the tridiagonal (alpha, beta) with
+    then (about one step in ten for six to eight spins).  The compiled loop (:func:`dnmr.kernels.lanczos`)
+    is taken where available.  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).
 
