@@ -83,7 +83,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, did_you_mean
-from .fitting import (FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum,
+from .fitting import (FitOptions, ParameterLayout, RateEstimate, SpectrumFit, _pair, fit_parameters, fit_spectrum,
                       single_threaded_blas)
 from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
@@ -662,6 +662,12 @@ class SpectrumOutcome:
         Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
         (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
         slow-exchange temperature, whose drift with temperature is unknown and not in the error).
+    shared_errors : list of dict of str to float
+        Per process, the part of the error of log10 k shared with other spectra: the held values come
+        from one trend line each, so their errors move every held rate together.  Each entry maps a
+        component ("<parameter>:1", "<parameter>:2", one per direction of the line's coefficient
+        covariance) to the change of log10 k for one standard deviation of it; the sum of squares is
+        the rate's held share, and rates loading on the same component are correlated through it.
     posterior : dict or None
         The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
         sampling failed) when it was sampled.
@@ -681,6 +687,7 @@ class SpectrumOutcome:
     treatment: dict[str, str] = field(default_factory=dict)
     reference: dict | None = None
     flags: list[str] = field(default_factory=list)
+    shared_errors: list[dict[str, float]] = field(default_factory=list)
 
     def posterior_rate(self, i: int) -> dict | None:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
@@ -835,6 +842,36 @@ class StaticTrend:
                 out[name] = _held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
         return out
 
+    def line_of_error(self, name: str) -> ParameterTrend | None:
+        """The line whose covariance gives the error of held parameter `name` (see :meth:`held`)."""
+        if name.startswith(PARAMETER_PREFIX["shift"]):
+            return self.differences.get(name)
+        return self.lines.get(name)
+
+    def shared_errors(self, rate: RateEstimate, temperature_k: float) -> dict[str, float]:
+        """The error of `rate` (log10 k) from the held values, split into the components shared with the
+        other spectra held at the same lines (see :attr:`SpectrumOutcome.shared_errors`).
+
+        A held value at T is f (a + b (x - x0)) to first order (f = 1 but for populations), its error
+        f sqrt(d C d^T) with d = (1, x - x0) and C the line's covariance = L L^T, so a rate moving by s for
+        one such error moves by s (d L)_j / sqrt(d C d^T) for one standard deviation of component j.
+        """
+        out: dict[str, float] = {}
+        for name, share in rate.held_shares.items():
+            line = self.line_of_error(name)
+            if line is None or share == 0.0:
+                continue
+            d = np.array([1.0, line.x(temperature_k) - line.x0])
+            cov = np.array(line.covariance)
+            sd = math.sqrt(max(float(d @ cov @ d), 0.0))
+            if not sd > 0:
+                continue
+            values, vectors = np.linalg.eigh(cov)
+            factor = vectors * np.sqrt(np.clip(values, 0.0, None))
+            for j, v in enumerate(d @ factor, start=1):
+                out[f"{name}:{j}"] = float(share * v / sd)
+        return out
+
     def shift_lines(self) -> dict[str, dict[str, float]]:
         """The shift lines in the form results.json has always had (ppm at the mean T, ppm per K)."""
         out = {}
@@ -901,8 +938,8 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
     slow : sequence of (temperature_k, SpectrumFit)
         The slow-exchange fits with those parameters free: shifts, couplings and populations come from them.
     quiet : sequence of (temperature_k, SpectrumFit)
-        The fits whose exchange broadening is negligible (the rate only an upper bound): the linewidth
-        comes from them, its error widened by (k_upper - k)/pi (what the unresolved exchange could take).
+        The fits with the linewidth free the linewidth's line comes from, jointly with their rates (see
+        :func:`linewidth_trend`).
     kinds : sequence of str
         Which of "shift", "coupling", "population", "linewidth" to regress.
     """
@@ -931,8 +968,83 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
                 lines[name] = regress_trend(name, "van-t-hoff", *_log_ratio_points(slow, name, first))
     if "linewidth" in kinds and quiet:
         name = next(n for n in quiet[0][1].parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
-        lines[name] = regress_trend(name, "linear-in-T", *_parameter_points(quiet, name, widen=_exchange_width))
+        lines[name] = linewidth_trend(quiet, name)
     return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
+
+
+def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> ParameterTrend:
+    """The linewidth's line in T, fitted jointly with an Eyring line of every process's rate.
+
+    In slow exchange the intrinsic linewidth w and the exchange broadening trade against each other, so
+    each spectrum's w alone is poorly known and its line in T extrapolates badly.  The rates of a process
+    follow Eyring's equation, log10(k/T) = c + d (1/T - 1/T0), so one generalised least-squares fit of
+    w = a + b (T - T0) and of those lines to the pairs (w, log10 k) of every spectrum, weighted by each
+    spectrum's covariance of the pair (its errors and correlation), separates the two.  A rate that is
+    only a bound, or a process with fewer than two determined rates, gives no rate point; then the
+    linewidth's error is widened by what the unresolved exchange could take (``_exchange_width``).  The
+    covariance of (a, b) is widened by the reduced chi-square when that is above 1.  Without rate points
+    this is :func:`regress_trend` of the linewidths.
+    """
+    temps, values, errors = _parameter_points(fits, name)
+    pairs = [_rate_points(fit) for _, fit in fits]
+    counts: dict[str, int] = {}
+    for points in pairs:
+        for rate in points:
+            counts[rate] = counts.get(rate, 0) + 1
+    processes = [rate for rate, n in counts.items() if n >= 2]
+    if len(set(temps)) < 2 or not processes:
+        return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=_exchange_width))
+    rows, targets = [], []
+    size = 2 + 2 * len(processes)
+    t0 = float(np.mean(temps))
+    u0 = 1.0 / t0
+    for (t, fit), w, sw, points in zip(fits, values, errors, pairs):
+        used = [r for r in processes if r in points]
+        if not used:
+            sw = math.hypot(sw, _exchange_width(fit))
+        design = np.zeros((1 + len(used), size))
+        design[0, :2] = 1.0, t - t0
+        obs = [w]
+        sd = [sw]
+        for row, rate in enumerate(used, start=1):
+            j = 2 + 2 * processes.index(rate)
+            design[row, j:j + 2] = 1.0, 1.0 / t - u0
+            obs.append(points[rate][0] - math.log10(t))
+            sd.append(points[rate][1])
+        corr = np.eye(len(obs))
+        for a, first in enumerate([name] + used):
+            for b, second in enumerate([name] + used):
+                if a != b:
+                    rho = fit.correlation(first, second)
+                    corr[a, b] = rho if math.isfinite(rho) else 0.0
+        cov = corr * np.outer(sd, sd)
+        whiten = np.linalg.inv(np.linalg.cholesky(cov))
+        rows.append(whiten @ design)
+        targets.append(whiten @ np.array(obs))
+    design, target = np.vstack(rows), np.concatenate(targets)
+    coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+    cov = np.linalg.pinv(design.T @ design)
+    dof = target.size - size
+    chi2 = float(np.sum((target - design @ coef) ** 2))
+    red = chi2 / dof if dof > 0 else math.nan
+    if dof > 0 and red > 1.0:
+        cov = cov * red
+    return ParameterTrend(name, "linear-in-T", tuple(temps), tuple(values), tuple(errors), t0,
+                          (float(coef[0]), float(coef[1])),
+                          tuple(tuple(float(v) for v in row) for row in cov[:2, :2]), red)
+
+
+def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
+    """(log10 k, its standard error) of every determined rate of `fit`, by fit parameter, for rates fitted
+    with a finite error and a known correlation with the other free parameters."""
+    out = {}
+    names = [n for n in fit.parameters if n.startswith("log10_k_")]
+    for name, rate in zip(names, fit.rates):
+        par = fit.parameters[name]
+        if (rate.status == "determined" and par.vary and not par.expr and par.stderr is not None
+                and math.isfinite(par.stderr) and par.stderr > 0 and par.correl):
+            out[name] = (float(par.value), float(par.stderr))
+    return out
 
 
 def _exchange_width(fit: SpectrumFit) -> float:
@@ -952,6 +1064,7 @@ def _exchange_width(fit: SpectrumFit) -> float:
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
                 "log10_rate", "log10_rate_stderr", "ci68_low_per_s", "ci68_high_per_s")
 TAIL_COLUMNS = ("offset_hz", "phase0_deg", "chi_square", "reduced_chi_square", "noise", "log10_rate_stderr_held",
+                "log10_rate_shared",
                 "treatment", "spectrum", "flags", "note")
 POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "posterior_ci95_high_per_s",
                      "posterior_bound95_per_s")
@@ -1085,6 +1198,11 @@ def _posterior_rate_text(q: Mapping) -> str:
     return f"k = {q['median']:.3g} s^-1, 95 % interval {q['ci95'][0]:.3g} to {q['ci95'][1]:.3g}"
 
 
+def _shared_text(loadings: Mapping[str, float]) -> str:
+    """The shared error components of a rate as written in rates.csv: ``name=value`` joined by ``;``."""
+    return ";".join(f"{name}={value:.6g}" for name, value in loadings.items() if value != 0.0)
+
+
 def _cell(value) -> str | float:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return ""
@@ -1113,6 +1231,7 @@ def _rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) ->
     row.update(offset_hz=p["offset_hz"].value, phase0_deg=p["phase0_deg"].value, chi_square=fit.chi_square,
                reduced_chi_square=fit.reduced_chi_square, noise=fit.noise.sigma,
                log10_rate_stderr_held=r.log10_stderr_held if r.log10_stderr_held > 0 else math.nan,
+               log10_rate_shared=_shared_text(outcome.shared_errors[i] if outcome.shared_errors else {}),
                treatment=";".join(f"{q}={how}" for q, how in outcome.treatment.items()), spectrum=str(s.file),
                flags=";".join(list(fit.flags) + outcome.flags + list(s.flags)),
                note=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
@@ -1385,13 +1504,13 @@ def _slow_stage(series: Series, runner: _Runner, hashes, references) -> tuple[di
 
 
 def _linewidth_spectra(series: Series, outcomes, slow: list[int]) -> tuple[list[int], list[str]]:
-    """The slow spectra the linewidth trend comes from: those whose exchange broadening is unresolved;
-    when there are none, the whole slow run (where the linewidth trades with the rate), with a note."""
-    quiet = [i for i in slow if _is_quiet(outcomes[i].fit)]
-    if quiet or not slow:
-        return quiet, []
+    """The slow spectra the linewidth trend comes from: the whole slow run (see :func:`linewidth_trend`),
+    with a note when the exchange broadening is resolved in every one of them."""
+    if not slow or any(_is_quiet(outcomes[i].fit) for i in slow):
+        return slow, []
     return slow, ["no slow-exchange spectrum is free of resolved exchange broadening, so the linewidth trend comes "
-                  "from spectra where linewidth and rate trade against each other (its error includes that); a "
+                  "from spectra where linewidth and rate trade against each other; it is fitted jointly with an "
+                  "Eyring line of their rates, which separates the two (its error includes what remains); a "
                   'reference line (linewidth = "reference-line") avoids it']
 
 
@@ -1457,6 +1576,9 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
         else:
             out[quantity] = "model"
     outcome.treatment = out
+    if trend is not None and fit is not None:
+        outcome.shared_errors = [trend.shared_errors(rate, outcome.spectrum.temperature_k)
+                                 if rate.status == "determined" else {} for rate in fit.rates]
     outcome.flags += [f"{how}-{quantity}" for quantity, how in out.items() if how in ("trend", "reference-line")]
     if out:
         outcome.notes.append(_treatment_note(out))
