@@ -94,7 +94,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
-                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square", "log10_rate_shared")
+                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square")
 #: Fit statuses (``dnmr fit``) whose rows carry no rate information at all.
 STATUS_WITHOUT_RATE = ("failed", "undetermined")
 #: What to do with rows a fit flagged as a misfit or as shaped by a nuisance parameter at its limit.
@@ -174,10 +174,6 @@ class RateSeries:
         What was done with rows of a fit table that are not plain values (left out, set aside, widened).
     set_aside : tuple of SetAsideRow
         Rows with a rate that were not fitted because their fit is flagged.
-    rate_shared : ndarray or None
-        (n, m) parts of the ln k errors shared between rows (``log10_rate_shared`` of ``dnmr fit``: values
-        held at one trend line move every rate held at it); they are part of `rate_stderr` and are
-        counted as correlated in the fit (None: the rate errors are independent).
     """
 
     process: str
@@ -191,7 +187,6 @@ class RateSeries:
     lines: tuple[int, ...] | None = None
     notes: tuple[str, ...] = ()
     set_aside: tuple[SetAsideRow, ...] = ()
-    rate_shared: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.temperature_k)
@@ -320,7 +315,6 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
             lines=tuple(np.array(table.lines)[kept].tolist()),
             notes=tuple(rows[i].note for i in mine if rows[i].note),
             set_aside=tuple(rows[i].set_aside for i in mine if rows[i].set_aside is not None),
-            rate_shared=_read_shared_rate_errors(table, kept),
         )
         _check_enough_rates(one)
         check_rate_series(one)
@@ -512,12 +506,9 @@ def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
     return np.array([[1 / sw + xm**2 / sxx, -xm / sxx], [-xm / sxx, 1 / sxx]])
 
 
-MIN_OWN_RATE_VARIANCE = 1e-4
-"""Smallest independent share of a rate's variance kept when its shared parts are taken out."""
 SHARE_RATES = "rates"
 SHARE_SCATTER = "scatter"
 SHARE_TEMPERATURES = "temperature scatter"
-SHARE_HELD = "held values"
 
 
 @dataclass(frozen=True)
@@ -582,41 +573,6 @@ def _shared_parts(linear_map: np.ndarray, shared: np.ndarray, sources: Sequence[
     return parts
 
 
-def _read_shared_rate_errors(table, kept: np.ndarray) -> np.ndarray | None:
-    """The ``log10_rate_shared`` column (``component=value`` joined by ``;``, log10 k per standard deviation
-    of each shared component) of the rows `kept`, as an (n, m) matrix in ln k; None without the column
-    or without any shared component."""
-    if not table.has("log10_rate_shared"):
-        return None
-    cells = [table.text("log10_rate_shared")[i] for i in kept]
-    rows = []
-    for i, cell in zip(kept, cells):
-        loadings = {}
-        for item in filter(None, (part.strip() for part in cell.split(";"))):
-            name, _, value = item.partition("=")
-            try:
-                loadings[name.strip()] = float(value)
-            except ValueError:
-                raise InputError(f"log10_rate_shared must be 'component=number' items joined by ';', got {item!r}",
-                                 table.source, table.where(i)) from None
-        rows.append(loadings)
-    names = list(dict.fromkeys(name for loadings in rows for name in loadings))
-    if not names:
-        return None
-    return math.log(10.0) * np.array([[loadings.get(n, 0.0) for n in names] for loadings in rows], float)
-
-
-def _shared_rate_errors(series: RateSeries, sigma2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Split the ln k variances `sigma2` into the independent part and the (n, m) factor of the part the
-    rows share (:attr:`RateSeries.rate_shared`).  The independent part keeps at least
-    MIN_OWN_RATE_VARIANCE of each variance (a rate error widened after the split keeps its widening)."""
-    if series.rate_shared is None or not series.rate_shared.shape[1]:
-        return sigma2, np.zeros((len(sigma2), 0))
-    held = series.rate_shared
-    own = np.maximum(sigma2 - (held**2).sum(axis=1), MIN_OWN_RATE_VARIANCE * sigma2)
-    return own, held
-
-
 def _fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     """Fit y = ln k - power ln T against 1/T over the rows of `series` (all values, no bounds)."""
     t, k = series.temperature_k, series.rate_per_s
@@ -628,13 +584,12 @@ def _fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     w = 1.0 / sigma2 if have_errors else np.ones_like(t)
     dof = len(t) - 2
     slope = float(_line(x, y, w)[1])
-    own, held = _shared_rate_errors(series, sigma2) if have_errors else (sigma2, np.zeros((len(t), 0)))
     for _ in range(MAX_ITERATIONS):
         gradient = -power / t + slope / t**2  # d(residual)/dT
         shared = gradient[:, None] * errors.shared_k
         independent = (gradient * errors.independent_k) ** 2
         # without rate errors the scatter holds the independent errors of rates and temperatures alike
-        covariance = ResidualCovariance(own + independent if have_errors else np.ones_like(t), np.hstack([shared, held]))
+        covariance = ResidualCovariance(sigma2 + independent if have_errors else np.ones_like(t), shared)
         fit = _gls(design, y, covariance if have_errors else ResidualCovariance(np.ones_like(t), shared[:, :0]))
         converged = abs(fit.beta[1] - slope) <= SLOPE_TOLERANCE * abs(slope)
         slope = float(fit.beta[1])
@@ -644,9 +599,7 @@ def _fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
     a = fit.linear_map
     if have_errors:
-        parts = {SHARE_RATES: (a * own) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
-        if held.shape[1]:
-            parts[SHARE_HELD] = (a @ held) @ (a @ held).T
+        parts = {SHARE_RATES: (a * sigma2) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
         chi_square = fit.chi_square
     else:
         parts = {SHARE_SCATTER: fit.normal * scatter**2}
@@ -1251,7 +1204,6 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         rate_lower=series.rate_lower[rows],
         rate_upper=series.rate_upper[rows],
         temperature_errors=series.temperature_errors.subset(rows),
-        rate_shared=None if series.rate_shared is None else series.rate_shared[rows],
         lines=None if series.lines is None else tuple(np.array(series.lines)[rows].tolist()),
     )
 

@@ -83,7 +83,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, did_you_mean
-from .fitting import (FitOptions, ParameterLayout, RateEstimate, SpectrumFit, _pair, fit_parameters, fit_spectrum,
+from .fitting import (FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum,
                       single_threaded_blas)
 from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
@@ -662,17 +662,6 @@ class SpectrumOutcome:
         Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
         (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
         slow-exchange temperature, whose drift with temperature is unknown and not in the error).
-    shared_errors : list of dict of str to float
-        Per process, the part of the error of log10 k shared with other spectra: the held values come
-        from one trend line each, so their errors move every held rate together.  Each entry maps a
-        component ("<parameter>:1", "<parameter>:2", one per direction of the line's coefficient
-        covariance) to the change of log10 k for one standard deviation of it; the sum of squares is
-        the rate's held share, and rates loading on the same component are correlated through it.
-    posterior : dict or None
-        The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
-        sampling failed) when it was sampled.
-    processing : dict or None
-        How a raw FID was processed (:func:`dnmr.processing.process`'s record), for raw FIDs.
     """
 
     spectrum: SeriesSpectrum
@@ -687,7 +676,6 @@ class SpectrumOutcome:
     treatment: dict[str, str] = field(default_factory=dict)
     reference: dict | None = None
     flags: list[str] = field(default_factory=list)
-    shared_errors: list[dict[str, float]] = field(default_factory=list)
 
     def posterior_rate(self, i: int) -> dict | None:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
@@ -840,36 +828,6 @@ class StaticTrend:
             for name, (_, stderr) in ratios.items():
                 p = weights[name] / total
                 out[name] = _held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
-        return out
-
-    def line_of_error(self, name: str) -> ParameterTrend | None:
-        """The line whose covariance gives the error of held parameter `name` (see :meth:`held`)."""
-        if name.startswith(PARAMETER_PREFIX["shift"]):
-            return self.differences.get(name)
-        return self.lines.get(name)
-
-    def shared_errors(self, rate: RateEstimate, temperature_k: float) -> dict[str, float]:
-        """The error of `rate` (log10 k) from the held values, split into the components shared with the
-        other spectra held at the same lines (see :attr:`SpectrumOutcome.shared_errors`).
-
-        A held value at T is f (a + b (x - x0)) to first order (f = 1 but for populations), its error
-        f sqrt(d C d^T) with d = (1, x - x0) and C the line's covariance = L L^T, so a rate moving by s for
-        one such error moves by s (d L)_j / sqrt(d C d^T) for one standard deviation of component j.
-        """
-        out: dict[str, float] = {}
-        for name, share in rate.held_shares.items():
-            line = self.line_of_error(name)
-            if line is None or share == 0.0:
-                continue
-            d = np.array([1.0, line.x(temperature_k) - line.x0])
-            cov = np.array(line.covariance)
-            sd = math.sqrt(max(float(d @ cov @ d), 0.0))
-            if not sd > 0:
-                continue
-            values, vectors = np.linalg.eigh(cov)
-            factor = vectors * np.sqrt(np.clip(values, 0.0, None))
-            for j, v in enumerate(d @ factor, start=1):
-                out[f"{name}:{j}"] = float(share * v / sd)
         return out
 
     def shift_lines(self) -> dict[str, dict[str, float]]:
@@ -1064,7 +1022,6 @@ def _exchange_width(fit: SpectrumFit) -> float:
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
                 "log10_rate", "log10_rate_stderr", "ci68_low_per_s", "ci68_high_per_s")
 TAIL_COLUMNS = ("offset_hz", "phase0_deg", "chi_square", "reduced_chi_square", "noise", "log10_rate_stderr_held",
-                "log10_rate_shared",
                 "treatment", "spectrum", "flags", "note")
 POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "posterior_ci95_high_per_s",
                      "posterior_bound95_per_s")
@@ -1198,11 +1155,6 @@ def _posterior_rate_text(q: Mapping) -> str:
     return f"k = {q['median']:.3g} s^-1, 95 % interval {q['ci95'][0]:.3g} to {q['ci95'][1]:.3g}"
 
 
-def _shared_text(loadings: Mapping[str, float]) -> str:
-    """The shared error components of a rate as written in rates.csv: ``name=value`` joined by ``;``."""
-    return ";".join(f"{name}={value:.6g}" for name, value in loadings.items() if value != 0.0)
-
-
 def _cell(value) -> str | float:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return ""
@@ -1231,7 +1183,6 @@ def _rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) ->
     row.update(offset_hz=p["offset_hz"].value, phase0_deg=p["phase0_deg"].value, chi_square=fit.chi_square,
                reduced_chi_square=fit.reduced_chi_square, noise=fit.noise.sigma,
                log10_rate_stderr_held=r.log10_stderr_held if r.log10_stderr_held > 0 else math.nan,
-               log10_rate_shared=_shared_text(outcome.shared_errors[i] if outcome.shared_errors else {}),
                treatment=";".join(f"{q}={how}" for q, how in outcome.treatment.items()), spectrum=str(s.file),
                flags=";".join(list(fit.flags) + outcome.flags + list(s.flags)),
                note=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
@@ -1576,9 +1527,6 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
         else:
             out[quantity] = "model"
     outcome.treatment = out
-    if trend is not None and fit is not None:
-        outcome.shared_errors = [trend.shared_errors(rate, outcome.spectrum.temperature_k)
-                                 if rate.status == "determined" else {} for rate in fit.rates]
     outcome.flags += [f"{how}-{quantity}" for quantity, how in out.items() if how in ("trend", "reference-line")]
     if out:
         outcome.notes.append(_treatment_note(out))
