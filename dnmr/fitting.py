@@ -1139,6 +1139,11 @@ class SpectrumFit(NotebookView):
                 return r
         raise InputError(f"no process {process!r}; processes are {[r.process for r in self.rates]}")
 
+    def correlation(self, first: str, second: str) -> float:
+        """Correlation of the estimates of two free parameters (NaN when the covariance gave none)."""
+        value = (self.parameters[first].correl or {}).get(second)
+        return math.nan if value is None else float(value)
+
     def report(self) -> str:
         """A readable account of the fit."""
         where = f" at {self.temperature_k:g} K" if self.temperature_k else ""
@@ -1192,7 +1197,8 @@ class SpectrumFit(NotebookView):
             "points": int(self.ppm.size),
             "rates": [r.to_dict() for r in self.rates],
             "parameters": {p.name: {"value": p.value, "stderr": math.nan if p.stderr is None else p.stderr,
-                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr}
+                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr,
+                                    "correlations": dict(p.correl or {})}
                            for p in self.parameters.values()},
             "chi_square": self.chi_square,
             "reduced_chi_square": self.reduced_chi_square,
@@ -1214,6 +1220,7 @@ class SpectrumFit(NotebookView):
             params.add(name, value=p["value"], min=_or(p["min"], -np.inf), max=_or(p["max"], np.inf))
             params[name].vary = p["vary"]
             params[name].stderr = _or(p["stderr"], math.nan)
+            params[name].correl = dict(p.get("correlations") or {}) or None
         for name, p in data["parameters"].items():  # ties last: they may name parameters added later
             if p.get("expr"):
                 params[name].set(expr=p["expr"])

@@ -662,11 +662,6 @@ class SpectrumOutcome:
         Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
         (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
         slow-exchange temperature, whose drift with temperature is unknown and not in the error).
-    posterior : dict or None
-        The posterior of the fit (:meth:`dnmr.posterior.Posterior.to_dict`, or ``{"error": ...}`` when
-        sampling failed) when it was sampled.
-    processing : dict or None
-        How a raw FID was processed (:func:`dnmr.processing.process`'s record), for raw FIDs.
     """
 
     spectrum: SeriesSpectrum
@@ -901,8 +896,8 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
     slow : sequence of (temperature_k, SpectrumFit)
         The slow-exchange fits with those parameters free: shifts, couplings and populations come from them.
     quiet : sequence of (temperature_k, SpectrumFit)
-        The fits whose exchange broadening is negligible (the rate only an upper bound): the linewidth
-        comes from them, its error widened by (k_upper - k)/pi (what the unresolved exchange could take).
+        The fits with the linewidth free the linewidth's line comes from, jointly with their rates (see
+        :func:`linewidth_trend`).
     kinds : sequence of str
         Which of "shift", "coupling", "population", "linewidth" to regress.
     """
@@ -931,8 +926,83 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
                 lines[name] = regress_trend(name, "van-t-hoff", *_log_ratio_points(slow, name, first))
     if "linewidth" in kinds and quiet:
         name = next(n for n in quiet[0][1].parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
-        lines[name] = regress_trend(name, "linear-in-T", *_parameter_points(quiet, name, widen=_exchange_width))
+        lines[name] = linewidth_trend(quiet, name)
     return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
+
+
+def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> ParameterTrend:
+    """The linewidth's line in T, fitted jointly with an Eyring line of every process's rate.
+
+    In slow exchange the intrinsic linewidth w and the exchange broadening trade against each other, so
+    each spectrum's w alone is poorly known and its line in T extrapolates badly.  The rates of a process
+    follow Eyring's equation, log10(k/T) = c + d (1/T - 1/T0), so one generalised least-squares fit of
+    w = a + b (T - T0) and of those lines to the pairs (w, log10 k) of every spectrum, weighted by each
+    spectrum's covariance of the pair (its errors and correlation), separates the two.  A rate that is
+    only a bound, or a process with fewer than two determined rates, gives no rate point; then the
+    linewidth's error is widened by what the unresolved exchange could take (``_exchange_width``).  The
+    covariance of (a, b) is widened by the reduced chi-square when that is above 1.  Without rate points
+    this is :func:`regress_trend` of the linewidths.
+    """
+    temps, values, errors = _parameter_points(fits, name)
+    pairs = [_rate_points(fit) for _, fit in fits]
+    counts: dict[str, int] = {}
+    for points in pairs:
+        for rate in points:
+            counts[rate] = counts.get(rate, 0) + 1
+    processes = [rate for rate, n in counts.items() if n >= 2]
+    if len(set(temps)) < 2 or not processes:
+        return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=_exchange_width))
+    rows, targets = [], []
+    size = 2 + 2 * len(processes)
+    t0 = float(np.mean(temps))
+    u0 = 1.0 / t0
+    for (t, fit), w, sw, points in zip(fits, values, errors, pairs):
+        used = [r for r in processes if r in points]
+        if not used:
+            sw = math.hypot(sw, _exchange_width(fit))
+        design = np.zeros((1 + len(used), size))
+        design[0, :2] = 1.0, t - t0
+        obs = [w]
+        sd = [sw]
+        for row, rate in enumerate(used, start=1):
+            j = 2 + 2 * processes.index(rate)
+            design[row, j:j + 2] = 1.0, 1.0 / t - u0
+            obs.append(points[rate][0] - math.log10(t))
+            sd.append(points[rate][1])
+        corr = np.eye(len(obs))
+        for a, first in enumerate([name] + used):
+            for b, second in enumerate([name] + used):
+                if a != b:
+                    rho = fit.correlation(first, second)
+                    corr[a, b] = rho if math.isfinite(rho) else 0.0
+        cov = corr * np.outer(sd, sd)
+        whiten = np.linalg.inv(np.linalg.cholesky(cov))
+        rows.append(whiten @ design)
+        targets.append(whiten @ np.array(obs))
+    design, target = np.vstack(rows), np.concatenate(targets)
+    coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+    cov = np.linalg.pinv(design.T @ design)
+    dof = target.size - size
+    chi2 = float(np.sum((target - design @ coef) ** 2))
+    red = chi2 / dof if dof > 0 else math.nan
+    if dof > 0 and red > 1.0:
+        cov = cov * red
+    return ParameterTrend(name, "linear-in-T", tuple(temps), tuple(values), tuple(errors), t0,
+                          (float(coef[0]), float(coef[1])),
+                          tuple(tuple(float(v) for v in row) for row in cov[:2, :2]), red)
+
+
+def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
+    """(log10 k, its standard error) of every determined rate of `fit`, by fit parameter, for rates fitted
+    with a finite error and a known correlation with the other free parameters."""
+    out = {}
+    names = [n for n in fit.parameters if n.startswith("log10_k_")]
+    for name, rate in zip(names, fit.rates):
+        par = fit.parameters[name]
+        if (rate.status == "determined" and par.vary and not par.expr and par.stderr is not None
+                and math.isfinite(par.stderr) and par.stderr > 0 and par.correl):
+            out[name] = (float(par.value), float(par.stderr))
+    return out
 
 
 def _exchange_width(fit: SpectrumFit) -> float:
@@ -1385,13 +1455,13 @@ def _slow_stage(series: Series, runner: _Runner, hashes, references) -> tuple[di
 
 
 def _linewidth_spectra(series: Series, outcomes, slow: list[int]) -> tuple[list[int], list[str]]:
-    """The slow spectra the linewidth trend comes from: those whose exchange broadening is unresolved;
-    when there are none, the whole slow run (where the linewidth trades with the rate), with a note."""
-    quiet = [i for i in slow if _is_quiet(outcomes[i].fit)]
-    if quiet or not slow:
-        return quiet, []
+    """The slow spectra the linewidth trend comes from: the whole slow run (see :func:`linewidth_trend`),
+    with a note when the exchange broadening is resolved in every one of them."""
+    if not slow or any(_is_quiet(outcomes[i].fit) for i in slow):
+        return slow, []
     return slow, ["no slow-exchange spectrum is free of resolved exchange broadening, so the linewidth trend comes "
-                  "from spectra where linewidth and rate trade against each other (its error includes that); a "
+                  "from spectra where linewidth and rate trade against each other; it is fitted jointly with an "
+                  "Eyring line of their rates, which separates the two (its error includes what remains); a "
                   'reference line (linewidth = "reference-line") avoids it']
 
 
