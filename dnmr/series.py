@@ -697,8 +697,9 @@ class ParameterTrend:
     ``y = a + b (x - x0)`` by weighted least squares (weights 1/stderr^2), with x = T (K) for shifts,
     couplings and the linewidth, and for a population x = 1/T, y = ln(p_state / p_first) (van 't Hoff).
     The covariance of (a, b) is widened by the reduced chi-square of the line when that is above 1
-    (scatter beyond the errors).  From one temperature the line is a constant (b = 0, no slope error:
-    ``constant`` is true).
+    (scatter beyond the errors).  From one temperature (``constant`` is true) a shift, coupling or
+    linewidth is held constant (b = 0), and a population ratio keeps its free-energy difference
+    (b = a / x0: ln K proportional to 1/T, dS° = 0).
 
     Attributes
     ----------
@@ -757,8 +758,14 @@ def regress_trend(name: str, kind: str, temperatures_k, values, stderrs) -> Para
     if len(set(temps.tolist())) < 2:
         mean = float(np.average(y, weights=w))
         var = 1.0 / w.sum() if known else (float(np.var(y, ddof=1)) / y.size if y.size > 1 else math.nan)
+        # A population ratio from one temperature keeps its free-energy difference (dS° = 0, so ln K is
+        # proportional to 1/T; common practice), not its ratio: the line runs through x = 0.
+        slope = mean / x0 if kind == "van-t-hoff" else 0.0
+        d = np.array([1.0, slope / mean if mean else 0.0])
+        cov = var * np.outer(d, d)
         return ParameterTrend(name, kind, tuple(temps.tolist()), tuple(y.tolist()), tuple(err.tolist()), x0,
-                              (mean, 0.0), ((var, 0.0), (0.0, 0.0)), math.nan, constant=True)
+                              (mean, slope), tuple(tuple(float(v) for v in row) for row in cov), math.nan,
+                              constant=True)
     design = np.column_stack([np.ones_like(x), x - x0]) * np.sqrt(w)[:, None]
     coef, *_ = np.linalg.lstsq(design, y * np.sqrt(w), rcond=None)
     cov = np.linalg.inv(design.T @ design)
@@ -1486,8 +1493,9 @@ def _trend_stages(series: Series, runner: _Runner, hashes, references) -> tuple[
                      + ", ".join(f"{q} from it" for q, k in TREATMENT_KIND.items() if k in kinds and k != "linewidth")
                      + (f"; linewidth from {len(lw_from)} of them ({_span([temp(i) for i in lw_from])})" if lw_from else ""))
         if len({temp(i) for i in slow}) == 1:
-            notes.append("only one slow-exchange temperature: its values are used at every temperature without a trend, "
-                         "so any drift with temperature is not followed; more cold spectra would give the trend")
+            notes.append("only one slow-exchange temperature: its values are used at every temperature without a trend "
+                         "(populations at its free-energy difference), so any drift with temperature is not followed; "
+                         "more cold spectra would give the trend")
     else:
         notes.append("no spectrum is in slow exchange (every rate at or above a quarter of the coalescence rate, or a "
                      "static parameter undetermined), so the " + ", ".join(k + "s" for k in kinds)
