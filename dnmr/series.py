@@ -74,6 +74,8 @@ from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
 from .modelfile import check_keys, load_model, read_toml
 from .output import atomic_write_text, json_ready, save_figure
+from .inputfiles import regular_file_size
+from .nuclei import check_frequency_mhz
 from .readers import read_spectrum
 from .tables import check_kelvin
 
@@ -186,8 +188,8 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions) -> Ser
         raise InputError(f"expected a temperature in kelvin, got {temperature!r}", where=f"{where}.temperature_k")
     check_kelvin(float(temperature), "temperature_k", where=f"{where}.temperature_k")
     frequency = table.get("frequency_mhz")
-    if frequency is not None and (isinstance(frequency, bool) or not isinstance(frequency, (int, float)) or frequency <= 0):
-        raise InputError(f"expected a positive number of MHz, got {frequency!r}", where=f"{where}.frequency_mhz")
+    if frequency is not None:
+        check_frequency_mhz(frequency, where=f"{where}.frequency_mhz")
     axis = table.get("axis")
     if axis is not None and axis not in ("ppm", "hz"):
         raise InputError(f'axis must be "ppm" or "hz", got {axis!r}', where=f"{where}.axis")
@@ -195,6 +197,11 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions) -> Ser
     if not (folder / file).exists():  # a slip in the path: say so before any result is written
         raise InputError(f'no spectrum "{file}" in {folder}; check the path (relative to the series file)',
                          where=f"{where}.file")
+    if not (folder / file).is_dir():  # a named pipe or a device would block or never end
+        try:
+            regular_file_size(folder / file, "spectrum file")
+        except InputError as err:
+            raise InputError(f'"{file}" {err.message}', where=f"{where}.file") from None
     return SeriesSpectrum((folder / file).resolve(), float(temperature), options,
                           None if frequency is None else float(frequency), axis, where)
 

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, did_you_mean
+from .kinetics import MAX_TEMPERATURE_K
 
 
 @dataclass(frozen=True)
@@ -176,8 +177,9 @@ def check_kelvin(value: float, name: str, source: str | None = None, where: str 
     InputError
         Naming `name`, the file and the place, and giving the kelvin value the number would be in Celsius.
     """
-    if not np.isfinite(value):
-        raise InputError(f"{name} must be a finite temperature in kelvin", source, where)
+    if not np.isfinite(value) or value > MAX_TEMPERATURE_K:
+        raise InputError(f"{name} must be a finite temperature in kelvin, at most {MAX_TEMPERATURE_K:g} K",
+                         source, where)
     if value < CELSIUS_SUSPECT_BELOW_K:
         raise InputError(
             f"{name} = {value:g} looks like degrees Celsius; give the temperature in kelvin "
