@@ -385,9 +385,13 @@ def _activation_from_options(barrier: float | None, enthalpy: float | None, entr
     if (enthalpy is None) != (entropy is None):
         raise InputError("--enthalpy-kj-mol and --entropy-j-mol-k go together",
                          where="--entropy-j-mol-k" if entropy is None else "--enthalpy-kj-mol")
-    if barrier is not None:
-        return ActivationParameters.from_gibbs(barrier)
-    return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    try:
+        if barrier is not None:
+            return ActivationParameters.from_gibbs(barrier)
+        return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    except InputError as err:  # name the option the value came from
+        option = "--barrier-kj-mol" if barrier is not None else "--" + (err.where or "").replace("_", "-")
+        raise InputError(err.message, where=option) from None
 
 
 def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> None:

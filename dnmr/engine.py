@@ -230,7 +230,7 @@ def check_memory(largest_block: int) -> None:
 
 
 def _size_text(size: int) -> str:
-    return f"{size / 2**30:.1f} GiB" if size >= 2**30 else f"{size / 2**20:.0f} MiB"
+    return f"{size / 2**30:.3g} GiB" if size >= 2**30 else f"{size / 2**20:.0f} MiB"
 
 
 # --- frequency grid --------------------------------------------------------------------------

@@ -6,6 +6,8 @@ Frequency ratios Xi (in %) are the IUPAC 2001 recommendations (Harris et al., Pu
 """
 from __future__ import annotations
 
+import math
+import numbers
 from dataclasses import dataclass
 
 from .errors import InputError
@@ -24,11 +26,8 @@ def check_frequency_mhz(value, where: str) -> float:
     InputError
         Naming `where` (a key, record or option).
     """
-    try:
-        mhz = float(value)
-    except (TypeError, ValueError):
-        mhz = float("nan")
-    if isinstance(value, bool) or not 0 < mhz <= MAX_FREQUENCY_MHZ:  # also refuses nan
+    mhz = float(value) if isinstance(value, numbers.Real) and not isinstance(value, bool) else math.nan
+    if not 0 < mhz <= MAX_FREQUENCY_MHZ:  # also refuses nan
         raise InputError(f"expected a spectrometer frequency above 0 and at most {MAX_FREQUENCY_MHZ:g} MHz, "
                          f"got {value!r}", where=where)
     return mhz

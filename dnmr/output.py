@@ -110,8 +110,8 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     """
     import io
 
-    path = check_output_file(path, overwrite, "output", figure=True)
     try:
+        path = check_output_file(path, overwrite, "output", figure=True)
         buf = io.BytesIO()
         fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
         return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)

@@ -276,7 +276,10 @@ def load_series(path: str | Path) -> Series:
     if not model_file.is_file():
         raise InputError(f'no model file "{data["model"]}" in {folder}; check the path (relative to the series file)',
                          source=path, where="model")
-    model = load_model(model_file)
+    try:
+        model = load_model(model_file)
+    except InputError as err:  # name the series file too: that is the file the user gave
+        raise InputError(str(err), source=path, where="model") from None
     for s in spectra:  # parameter settings must name parameters the model has
         try:
             fit_parameters(model, s.options.region_ppm, s.options)
