@@ -29,6 +29,28 @@ class _Group(click.Group):
                 traceback.print_exc()
             click.echo(f"dnmr: error: {err}", err=True)
             ctx.exit(2)
+        except OSError as err:  # a fault of the disk or the system (full, read-only, gone): not bad input
+            if ctx.obj and ctx.obj.get("debug"):
+                traceback.print_exc()
+            click.echo(f"dnmr: error: {_os_error_text(err)}", err=True)
+            ctx.exit(1)
+        except MemoryError:
+            click.echo("dnmr: error: out of memory; close other programs or make the problem smaller "
+                       "(fewer points, fewer coupled spins)", err=True)
+            ctx.exit(1)
+
+
+def _os_error_text(err: OSError) -> str:
+    """One line for a failed file operation: the file, what went wrong, and what to do."""
+    import errno
+
+    what = err.strerror or type(err).__name__
+    place = err.filename if err.filename is not None else "a file"
+    advice = {errno.ENOSPC: "free some space and run again", errno.EDQUOT: "free some space and run again",
+              errno.EROFS: "write the results to another folder", errno.EACCES: "check the permissions or "
+              "write the results elsewhere", errno.EPERM: "check the permissions or write the results elsewhere"}
+    hint = advice.get(err.errno, "check the disk and the path")
+    return f"{place}: {what}; {hint} (nothing half-written is left behind)"
 
 
 @click.group(cls=_Group)
@@ -96,8 +118,12 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
     import time
 
     from . import load_model, simulate as run
-    from .output import save_figure
+    from .output import check_output_file, save_figure
 
+    check_output_file(output, overwrite, "--output")  # before any work: nothing is written half-way
+    check_output_file(plot_file, overwrite, "--plot", figure=True)
+    if plot_file is not None and Path(plot_file).resolve() == Path(output).resolve():
+        raise InputError("--plot names the same file as --output; give the figure its own name", where="--plot")
     model = load_model(model_file)
     started = time.perf_counter()
     with _block_progress(enabled=not quiet) as progress:
@@ -393,9 +419,13 @@ def _activation_from_options(barrier: float | None, enthalpy: float | None, entr
     if (enthalpy is None) != (entropy is None):
         raise InputError("--enthalpy-kj-mol and --entropy-j-mol-k go together",
                          where="--entropy-j-mol-k" if entropy is None else "--enthalpy-kj-mol")
-    if barrier is not None:
-        return ActivationParameters.from_gibbs(barrier)
-    return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    try:
+        if barrier is not None:
+            return ActivationParameters.from_gibbs(barrier)
+        return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    except InputError as err:  # name the option the value came from
+        option = "--barrier-kj-mol" if barrier is not None else "--" + (err.where or "").replace("_", "-")
+        raise InputError(err.message, where=option) from None
 
 
 def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> None:

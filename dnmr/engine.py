@@ -31,6 +31,7 @@ from .liouville import (
     CoherenceBlock,
     coupling_terms,
     detection_vector,
+    largest_block_size,
     permutation_map,
     zeeman_terms,
 )
@@ -38,7 +39,7 @@ from .errors import InputError
 from .model import Model
 from . import resolvent
 from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
-from .spinsystems import SpinParameters, spin_systems  # a model as independent spin systems
+from .spinsystems import SpinParameters, largest_block_bound, spin_systems  # a model as independent spin systems
 
 
 # --- assembling the Liouvillian -------------------------------------------------------------------
@@ -166,8 +167,9 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
     progress : callable, optional
         Called as ``progress(done, total)`` (coherences) after each block, for long simulations.
     """
-    work = [(p, b) for p in spin_systems(model) for b in p.blocks]  # blocks of the independent systems
-    check_memory(max((b.size * len(p.populations) for p, b in work), default=0))
+    systems = spin_systems(model)
+    check_memory(max((largest_block_size(p.levels) * len(p.populations) for p in systems), default=0))
+    work = [(p, b) for p in systems for b in p.blocks]  # blocks of the independent systems (enumerated)
     total = sum(b.size * len(p.populations) for p, b in work)
     done = 0
     results = []
@@ -274,11 +276,28 @@ MEMORY_SHARE = 0.5
 
 
 def physical_memory_bytes() -> int | None:
-    """This machine's physical memory (bytes), or None where the system does not tell."""
+    """The memory this process may use (bytes): the machine's physical memory, or less when a resource
+    limit on the address space or data is set; None where the system does not tell."""
     try:
-        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (AttributeError, OSError, ValueError):
-        return None
+        total = None
+    limits = []
+    try:
+        import resource
+
+        limits = [resource.getrlimit(r)[0] for r in (resource.RLIMIT_AS, resource.RLIMIT_DATA)]
+        limits = [v for v in limits if v != resource.RLIM_INFINITY]
+    except (ImportError, AttributeError, OSError, ValueError):  # not a POSIX system
+        pass
+    return min([v for v in [total, *limits] if v and v > 0], default=None)
+
+
+def check_model_size(model: Model) -> None:
+    """Refuse a model too large to simulate from its counts of spins and groups alone, before any rate,
+    temperature or basis state is needed (:func:`check_memory` of
+    :func:`~dnmr.spinsystems.largest_block_bound`)."""
+    check_memory(largest_block_bound(model))
 
 
 def check_memory(largest_block: int) -> None:
@@ -289,14 +308,14 @@ def check_memory(largest_block: int) -> None:
     if total and need > MEMORY_SHARE * total:
         raise InputError(
             f"the largest coupled spin system gives a block of {largest_block} coherences, whose Lanczos basis"
-            f" needs {_size_text(need)}, more than {MEMORY_SHARE:.0%} of this machine's {_size_text(total)}"
+            f" needs {_size_text(need)}, more than {MEMORY_SHARE:.0%} of the {_size_text(total)} this process may use"
             " (and long computing): declare magnetically equivalent nuclei as"
             " [groups] and nuclei of another isotope as [heteronuclei], or leave out spins whose couplings"
-            " barely matter", where="model")
+            " barely matter")
 
 
 def _size_text(size: int) -> str:
-    return f"{size / 2**30:.1f} GiB" if size >= 2**30 else f"{size / 2**20:.0f} MiB"
+    return f"{size / 2**30:.3g} GiB" if size >= 2**30 else f"{size / 2**20:.0f} MiB"
 
 
 # --- frequency grid --------------------------------------------------------------------------

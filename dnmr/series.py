@@ -21,11 +21,13 @@ Series file (TOML; the first four keys are fixed by the project's interface cont
 
 Fitting a series
 ----------------
-Spectra are fitted in parallel (one worker process per core), each seeded from the spectra already
-finished: rates from an Eyring line through their rates (ln(k/T) linear in 1/T), the other parameters
-from the nearest temperature.  The coarse rate scan of every fit still guards against a bad seed, so the
-results do not depend on the order in which fits finish beyond the optimiser's tolerance.  BLAS is
-held to one thread in every process (the matrices are small; threads only contend).
+Spectra are fitted in parallel (one worker process per core), each seeded from spectra fitted before it
+in a fixed order: the coldest and the hottest first, then the middle temperature, then the middles of
+the halves, and so on; a spectrum takes its rates from an Eyring line through the rates of the spectra
+of earlier rounds (ln(k/T) linear in 1/T), the other parameters from the nearest of them.  The seeds
+never depend on which fit finishes first, so the same inputs give the same numbers, serial or parallel.
+BLAS is held to one thread in every process (the matrices are small; threads only contend), and worker
+processes end with the process that started them.
 
 Static spectral parameters (shifts, couplings, populations of states joined by an exchange, the
 intrinsic linewidth) are by default taken from the slow-exchange spectra ("slow-exchange-trend"):
@@ -75,6 +77,7 @@ import json
 import math
 import os
 import platform
+import sys
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -89,6 +92,8 @@ from .kinetics import eyring_barrier, eyring_rate
 from .model import Model
 from .modelfile import check_keys, load_model, read_toml
 from .output import atomic_write_text, json_ready, save_figure
+from .inputfiles import regular_file_size
+from .nuclei import check_frequency_mhz
 from .readers import read_spectrum
 from .tables import check_kelvin
 from .notebook import NotebookView
@@ -363,8 +368,8 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions, proces
         raise InputError(f"expected a temperature in kelvin, got {temperature!r}", where=f"{where}.temperature_k")
     check_kelvin(float(temperature), "temperature_k", where=f"{where}.temperature_k")
     frequency = table.get("frequency_mhz")
-    if frequency is not None and (isinstance(frequency, bool) or not isinstance(frequency, (int, float)) or frequency <= 0):
-        raise InputError(f"expected a positive number of MHz, got {frequency!r}", where=f"{where}.frequency_mhz")
+    if frequency is not None:
+        check_frequency_mhz(frequency, where=f"{where}.frequency_mhz")
     axis = table.get("axis")
     if axis is not None and axis not in ("ppm", "hz"):
         raise InputError(f'axis must be "ppm" or "hz", got {axis!r}', where=f"{where}.axis")
@@ -372,6 +377,11 @@ def _spectrum(table: Mapping, index: int, folder: Path, base: FitOptions, proces
     if not (folder / file).exists():  # a slip in the path: say so before any result is written
         raise InputError(f'no spectrum "{file}" in {folder}; check the path (relative to the series file)',
                          where=f"{where}.file")
+    if not (folder / file).is_dir():  # a named pipe or a device would block or never end
+        try:
+            regular_file_size(folder / file, "spectrum file")
+        except InputError as err:
+            raise InputError(f'"{file}" {err.message}', where=f"{where}.file") from None
     return SeriesSpectrum((folder / file).resolve(), float(temperature), options,
                           None if frequency is None else float(frequency), axis, where,
                           processing=_processing(table, processing, f"{where}."))
@@ -458,7 +468,10 @@ def load_series(path: str | Path) -> Series:
     if not model_file.is_file():
         raise InputError(f'no model file "{data["model"]}" in {folder}; check the path (relative to the series file)',
                          source=path, where="model")
-    model = load_model(model_file)
+    try:
+        model = load_model(model_file)
+    except InputError as err:  # name the series file too: that is the file the user gave
+        raise InputError(str(err), source=path, where="model") from None
     if not _populations_matter(model) and treatments["populations"] != "fixed":
         treatments["populations"] = "fixed"  # no exchange between different states: nothing to fit
         spectra = [dataclasses.replace(s, options=s.options.replace(populations="fixed")) for s in spectra]
@@ -619,13 +632,23 @@ def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectru
     return start
 
 
-def _next_index(todo: list[int], series: Series, started: list[int], finished: list[int]) -> int:
-    """The spectrum to fit next: nearest in temperature to a finished one; before any has finished the
-    coldest, then the hottest (so that the first seeds bracket the series)."""
-    temp = lambda i: series.spectra[i].temperature_k  # noqa: E731
-    if finished:
-        return min(todo, key=lambda i: (min(abs(temp(i) - temp(j)) for j in finished), temp(i)))
-    return max(todo, key=temp) if started else min(todo, key=temp)
+def _seed_levels(series: Series, indices: Sequence[int]) -> dict[int, int]:
+    """The level of each spectrum in a fixed seeding order: the coldest and hottest first (level 0), then
+    the middle one in temperature, then the middles of the halves, and so on.  A spectrum is seeded only
+    from the spectra of lower levels, so its starting values, and hence its fit, do not depend on which
+    fits happen to finish first: serial and parallel runs give the same numbers."""
+    order = sorted(indices, key=lambda i: (series.spectra[i].temperature_k, i))
+    levels = {i: 0 for i in order[:1] + order[-1:]}
+    spans, depth = [(0, len(order) - 1)], 1
+    while spans:
+        halves = []
+        for lo, hi in spans:
+            if hi - lo >= 2:
+                mid = (lo + hi) // 2
+                levels[order[mid]] = depth
+                halves += [(lo, mid), (mid, hi)]
+        spans, depth = halves, depth + 1
+    return levels
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1213,7 +1236,8 @@ class _Runner:
 
     def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
-        self.pool = futures.ProcessPoolExecutor(max_workers=workers, initializer=_worker_start) if workers > 1 else None
+        self.pool = futures.ProcessPoolExecutor(max_workers=workers, initializer=_worker_start,
+                                              initargs=(os.getpid(),)) if workers > 1 else None
 
     def close(self) -> None:
         if self.pool is not None:
@@ -1252,14 +1276,17 @@ class _Runner:
                 todo.append(job)
         self.progress.refresh()
         by_index = {j.index: j for j in todo}
-        finished = [i for i, r in records.items() if r["status"] == "fitted"]
-        started: list[int] = []
+        levels = _seed_levels(self.series, [j.index for j in jobs])
+        waiting = sorted(by_index, key=lambda i: (levels[i], self.series.spectra[i].temperature_k, i))
         running: dict = {}
 
-        def submit() -> None:
-            index = _next_index([i for i in by_index if i not in started], self.series, started, finished)
-            started.append(index)
-            done = [(self.series.spectra[i], records[i]["fit"]) for i in finished]
+        def ready(index: int) -> bool:  # every spectrum of a lower level has finished
+            return all(j in records for j in levels if levels[j] < levels[index])
+
+        def submit(index: int) -> None:
+            waiting.remove(index)
+            done = [(self.series.spectra[j], records[j]["fit"]) for j in sorted(levels)
+                    if levels[j] < levels[index] and records[j]["status"] == "fitted"]
             start = _start_values(self.series.spectra[index], done)
             if self.pool is None:
                 running[index] = _run_job(self.series.model, by_index[index], start)
@@ -1268,14 +1295,12 @@ class _Runner:
 
         def collect(index: int, result: dict) -> None:
             records[index] = self._store(by_index[index], result)
-            if result["status"] == "fitted":
-                finished.append(index)
             self.progress.advance(task)
             self.progress.refresh()
 
-        while len(started) < len(by_index) or running:
-            while len(started) < len(by_index) and len(running) < self.workers:
-                submit()
+        while waiting or running:
+            for index in [i for i in waiting if ready(i)][: max(0, self.workers - len(running))]:
+                submit(index)
             if self.pool is None:
                 index, result = running.popitem()
                 collect(index, result)
@@ -1310,10 +1335,40 @@ class _Runner:
 _WORKER_BLAS_LIMIT = None
 
 
-def _worker_start() -> None:
-    """Initialise a worker process: BLAS on one thread for the life of the process."""
+def _worker_start(parent_pid: int) -> None:
+    """Initialise a worker process: it dies with the process that started it (`parent_pid`), and BLAS
+    runs on one thread for the life of the process."""
     global _WORKER_BLAS_LIMIT
+    _die_with_parent(parent_pid)
     _WORKER_BLAS_LIMIT = single_threaded_blas()
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """End this worker when its parent ends, so that no orphan goes on computing and holding the parent's
+    stdout and stderr open (a caller reading them would wait for ever).
+
+    On Linux the kernel sends SIGKILL on the parent's death (prctl PR_SET_PDEATHSIG); everywhere a
+    watchdog thread also checks once a second that the parent is still the one that started us.
+    """
+    import signal
+    import threading
+
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1: PR_SET_PDEATHSIG
+        except (OSError, AttributeError):  # no libc to call: the watchdog alone
+            pass
+    if os.getppid() != parent_pid:  # the parent ended before the request above took effect
+        os._exit(1)
+
+    def watch() -> None:
+        while os.getppid() == parent_pid:
+            time.sleep(1.0)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="dnmr-parent-watchdog", daemon=True).start()
 
 
 def _future_result(future) -> dict:
@@ -1333,8 +1388,79 @@ def _progress(show: bool | None):
                     console=console, auto_refresh=False, disable=not enabled, transient=False)
 
 
-def _prepare_outdir(outdir: Path, series: Series, overwrite: bool, resume: bool) -> None:
-    """Refuse to overwrite or to write over inputs; clear earlier results when asked; create folders."""
+LOCK_FILE = ".dnmr-lock"
+"""Held (an advisory lock) by the run writing into a results folder; a second run is refused meanwhile."""
+STAGES = (STAGE_MAIN, STAGE_SLOW, STAGE_HELD, "posterior")
+
+
+def _result_names(series: Series) -> list[str]:
+    """Every file (relative to OUTDIR) a fit of `series` may write: what a later --overwrite removes."""
+    names = list(OUTPUT_FILES) + ["report.html"]
+    for i, s in enumerate(series.spectra):
+        names += [f"fits/{i:03d}_{stage}.json" for stage in STAGES]
+        names += [f"figures/{i:03d}_{s.file.stem}.png", f"figures/{i:03d}_{s.file.stem}_posterior.png"]
+    return names
+
+
+def _lock(outdir: Path):
+    """Take the lock of `outdir` (an open file holding an exclusive advisory lock, released when closed
+    or when this process ends), or refuse when another run holds it."""
+    import fcntl
+
+    handle = open(outdir / LOCK_FILE, "a+")
+    try:
+        fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        handle.seek(0)
+        holder = handle.read().strip() or "another process"
+        handle.close()
+        raise InputError(f"{outdir} is being written by another dnmr run ({holder}); wait for it to finish or "
+                         "choose another folder", where="--output") from None
+    handle.seek(0)
+    handle.truncate()
+    handle.write(f"dnmr fit, process {os.getpid()}\n")
+    handle.flush()
+    return handle
+
+
+def _unlock(handle) -> None:
+    """Release the lock taken by :func:`_lock` and remove its file."""
+    Path(handle.name).unlink(missing_ok=True)
+    handle.close()
+
+
+def _earlier_manifest(outdir: Path) -> dict | None:
+    """The manifest (series.json) of an earlier dnmr fit in `outdir`, or None when there is none."""
+    manifest = outdir / "series.json"
+    if manifest.is_symlink() or not manifest.is_file():
+        return None
+    try:
+        data = json.loads(manifest.read_text())
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and data.get("program") == "dnmr fit" else None
+
+
+def _remove_earlier_results(outdir: Path, names: Sequence[str]) -> None:
+    """Remove the files of an earlier fit named in `names`, and only those: regular files (a link is
+    never followed out of `outdir`) inside `outdir` itself."""
+    root = outdir.resolve()
+    for name in names:
+        path = outdir / name
+        if not isinstance(name, str) or ".." in Path(name).parts or Path(name).is_absolute():
+            continue
+        if path.is_symlink() or not path.is_file() or not path.resolve().is_relative_to(root):
+            continue
+        path.unlink()
+
+
+def _prepare_outdir(outdir: Path, series: Series, overwrite: bool, resume: bool):
+    """Refuse to overwrite or to write over inputs; clear earlier results when asked; create folders.
+
+    Returns the lock of `outdir` (see :func:`_lock`), to be released with :func:`_unlock` after the run.
+    With `overwrite`, only the files an earlier dnmr fit wrote are removed (named in its series.json);
+    a folder holding anything else is refused.
+    """
     if overwrite and resume:
         raise InputError("--overwrite discards earlier fits and --resume keeps them: choose one", where="--overwrite")
     if outdir.exists() and not outdir.is_dir():
@@ -1346,28 +1472,35 @@ def _prepare_outdir(outdir: Path, series: Series, overwrite: bool, resume: bool)
         if Path(p).resolve() in ours or inside:
             raise InputError(f"the input {p} would be overwritten by the results; choose another output folder",
                              where="--output")
-    manifest = outdir / "series.json"
-    if outdir.exists() and any(outdir.iterdir()):
-        if resume:
-            if not manifest.exists():
-                raise InputError(f"{outdir} holds no dnmr fit results to resume; choose another folder", where="--resume")
-            earlier = json.loads(manifest.read_text()).get("series")
-            if earlier != str(series.source):
-                raise InputError(f"{outdir} holds the results of another series ({earlier}); use another folder "
-                                 "or --overwrite", where="--resume")
-        elif overwrite:
-            for name in OUTPUT_FILES:
-                (outdir / name).unlink(missing_ok=True)
-            for folder in RESULT_FOLDERS:
-                for p in (outdir / folder).glob("*"):
-                    if p.suffix in (".json", ".png") and p.is_file():
-                        p.unlink()
-        else:
-            raise InputError(f"{outdir} already exists; pass --overwrite to replace its results or --resume to "
-                             "continue them", where="--output")
     for folder in RESULT_FOLDERS:
-        (outdir / folder).mkdir(parents=True, exist_ok=True)
-    _write_json(manifest, {"program": "dnmr fit", "series": str(series.source)})
+        if (outdir / folder).is_symlink() or (outdir / folder).exists() and not (outdir / folder).is_dir():
+            raise InputError(f"{outdir / folder} is a link or a file, not a folder of dnmr's; dnmr writes only "
+                             "inside the results folder: remove it or choose another folder", where="--output")
+    existed = outdir.exists() and any(p.name != LOCK_FILE for p in outdir.iterdir())
+    if existed and not (resume or overwrite):
+        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results or --resume to "
+                         "continue them", where="--output")
+    earlier = _earlier_manifest(outdir) if existed else None
+    if existed and earlier is None:
+        raise InputError(f"{outdir} holds no dnmr fit results (no series.json of dnmr's), so there is nothing of "
+                         f"dnmr's to {'resume' if resume else 'replace'}; choose a new folder",
+                         where="--resume" if resume else "--output")
+    if resume and earlier.get("series") != str(series.source):
+        raise InputError(f"{outdir} holds the results of another series ({earlier.get('series')}); use another "
+                         "folder or --overwrite", where="--resume")
+    outdir.mkdir(parents=True, exist_ok=True)
+    lock = _lock(outdir)
+    try:
+        if existed and overwrite:
+            _remove_earlier_results(outdir, list(earlier.get("files") or []) + _result_names(series))
+        for folder in RESULT_FOLDERS:
+            (outdir / folder).mkdir(exist_ok=True)
+        names = sorted(set(_result_names(series)) | set((earlier or {}).get("files") or [] if resume else ()))
+        _write_json(outdir / "series.json", {"program": "dnmr fit", "series": str(series.source), "files": names})
+    except BaseException:
+        _unlock(lock)
+        raise
+    return lock
 
 
 def _outcome(series: Series, index: int, record: dict, stage: str) -> SpectrumOutcome:
@@ -1706,7 +1839,16 @@ def fit_series(
         require_emcee(where="posterior")
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
-    _prepare_outdir(outdir, series, overwrite, resume)
+    lock = _prepare_outdir(outdir, series, overwrite, resume)
+    try:
+        return _fit_into(series, outdir, resume, workers, progress, posterior)
+    finally:
+        _unlock(lock)
+
+
+def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, progress: bool | None,
+              posterior: Mapping | None) -> SeriesFit:
+    """Fit the series into the prepared, locked `outdir` (see :func:`fit_series`)."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(series.spectra)))
     hashes = {i: file_sha256(s.file) for i, s in enumerate(series.spectra)}
     hashes["model"] = file_sha256(series.model_file)
