@@ -27,7 +27,7 @@ Every spectrum i of the series (sample temperature T_i, K; its region, noise and
   and, for linear (quadratic) shift trends, to no linear (and quadratic) trend in T -- a gauge
   condition (two extra residuals) that changes nothing the spectra determine.
 
-Any parameter the series file fixes in ``[fit.parameters]`` (``vary = false``) is held at its value.
+Any parameter the series file fixes in ``[fit.parameters]`` (``fixed = true``) is held at its ``start`` value.
 
 Method
 ------
@@ -251,10 +251,10 @@ class _GlobalProblem:
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
-        """Add a parameter; the series' ``[fit.parameters]`` may fix it (vary = false) at its value."""
+        """Add a parameter; the series' ``[fit.parameters]`` may fix it (fixed = true) at its start value."""
         setting = self.settings.get(name, {})
-        if setting.get("vary") is False:
-            value, vary = float(setting.get("value", value)), False
+        if setting.get("fixed") is True:
+            value, vary = float(setting.get("start", value)), False
         self.params.add(name, value=float(np.clip(value, lower, upper)), min=lower, max=upper, vary=vary)
 
     def _quantity(self, name: str, family: str, terms: list[tuple[str, tuple]], step: float,
@@ -267,7 +267,7 @@ class _GlobalProblem:
                lower: float = -np.inf, fixed_value: float | None = None) -> None:
         """Quantity `name` as a polynomial of `degree` in T - T_ref started from a line through `values`
         (one per spectrum, NaN where unknown), or held at `fixed_value` (or the series' setting)."""
-        if fixed_value is not None or self.settings.get(name, {}).get("vary") is False:
+        if fixed_value is not None or self.settings.get(name, {}).get("fixed") is True:
             self._add(name, values[0] if fixed_value is None else fixed_value, lower, vary=False)
             self._quantity(name, family, [(name, ("power", 0))], step)
             return
@@ -312,7 +312,7 @@ class _GlobalProblem:
         cold = np.argsort([m.temperature_k for m in self.members])[:max(1, len(self.members) // 3)]
         for name in dict.fromkeys(self._linewidth_keys()):
             state = self.model.states[self.layout.linewidth_names.index(name)]
-            fixed = held or self.settings.get(name, {}).get("vary") is False
+            fixed = held or self.settings.get(name, {}).get("fixed") is True
             if self.treatment.linewidth == "per-spectrum" and not fixed:
                 for m in self.members:
                     self._add(f"{m.prefix}{name}", m.fit.parameters[name].value, MIN_LINEWIDTH_HZ)
@@ -363,7 +363,7 @@ class _GlobalProblem:
                                 vary=bool(par.vary and not par.expr))
             par = m.fit.parameters["offset_hz"]
             self.params.add(f"{m.prefix}offset_hz", value=0.0, min=par.min, max=par.max,
-                            vary=m.fit.options.frequency_offset and self.settings.get("offset_hz", {}).get("vary", True))
+                            vary=m.fit.options.frequency_offset and not self.settings.get("offset_hz", {}).get("fixed", False))
         self._quantity("offset_hz", "offset", [], DIFFERENCE_STEP["offset"])
 
     def _owner(self, name: str) -> int | None:
@@ -1015,7 +1015,7 @@ class GlobalFit(NotebookView):
     fits : list of SpectrumFit
         Each fitted spectrum with the global fit's curve (``fitted``) in place of its own.
     parameters : dict
-        Every global parameter: value, stderr, vary.
+        Every global parameter: estimate, stderr, fixed.
     chi_square, reduced_chi_square : float
         Of the weighted residuals; degrees of freedom `degrees_of_freedom`.
     degrees_of_freedom : int
@@ -1219,7 +1219,7 @@ def _calibration_covariance(evaluator: _Evaluator, x: np.ndarray, jac: np.ndarra
 def _stderr_table(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None) -> dict:
     g = problem.values(x)
     errors = {} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance))))
-    return {n: {"value": v, "stderr": float(errors.get(n, math.nan)), "vary": n in problem.free} for n, v in g.items()}
+    return {n: {"estimate": v, "stderr": float(errors.get(n, math.nan)), "fixed": n not in problem.free} for n, v in g.items()}
 
 
 def _activation(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None,
@@ -1262,7 +1262,7 @@ def _van_t_hoff(series: Series, temperatures_k: np.ndarray) -> bool:
     if len(model.states) < 2:
         return False
     settings = series.options.parameters
-    if any(n.startswith("population_") and s.get("vary") is False for n, s in settings.items()):
+    if any(n.startswith("population_") and s.get("fixed") is True for n, s in settings.items()):
         return False
     populations = model.at_temperature(float(np.mean(temperatures_k))).populations()
     return series.options.populations == "free" or bool(np.ptp(populations) > 1e-9)

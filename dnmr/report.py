@@ -488,7 +488,7 @@ def _least_squares_text(name: str, fit: dict) -> str:
     if rate is not None:
         return _rate_text(rate)
     par = fit.get("parameters", {}).get(name) or {}
-    value, stderr = par.get("value"), par.get("stderr")
+    value, stderr = par.get("estimate"), par.get("stderr")
     if value is None:
         return ""
     if name in rates and rates[name].get("status") != "determined":
@@ -766,7 +766,7 @@ def quality_section(outdir: Path, g: dict) -> str:
 
 def global_parameters_section(g: dict) -> str:
     """The global parameters (trends, activation and van 't Hoff parameters) with their errors."""
-    rows = [[name, f"{p['value']:.6g}", "" if not p["vary"] else f"{p['stderr']:.3g}", "fitted" if p["vary"] else "held"]
+    rows = [[name, f"{p['estimate']:.6g}", "" if p["fixed"] else f"{p['stderr']:.3g}", "held" if p["fixed"] else "fitted"]
             for name, p in g.get("parameters", {}).items() if not (name[0] == "s" and name.split("_", 1)[0][1:].isdigit())]
     body = table(["parameter", "value", "standard error", ""], rows, numeric=[False, True, True, False])
     body += ('<p class="muted">Trend parameters: the value at the reference temperature, then _per_k (per K) and '

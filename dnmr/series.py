@@ -11,7 +11,7 @@ Series file (TOML; the first four keys are fixed by the project's interface cont
     [fit.reference_line]              # optional: a signal in no exchange whose width is the linewidth
     ppm = 0.0
     [fit.parameters]                  # optional: fix, bound or tie parameters by name
-    linewidth_hz_anti = { value = 1.1, vary = false }
+    linewidth_hz_anti = { start = 1.1, fixed = true }
     [[spectrum]]
     file = "spectra/t240.csv"         # two-column text, JCAMP-DX, or a processed-data folder
     temperature_k = 240.0
@@ -620,7 +620,7 @@ def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectru
     if not finished:
         return {}
     nearest = min(finished, key=lambda f: abs(f[0].temperature_k - target.temperature_k))[1]
-    start = {name: p["value"] for name, p in nearest["parameters"].items()
+    start = {name: p["estimate"] for name, p in nearest["parameters"].items()
              if not name.startswith(("log10_k_", "amplitude", "baseline_"))}
     rate_names = [n for n in nearest["parameters"] if n.startswith("log10_k_")]  # in process order
     for i, name in enumerate(rate_names):
@@ -833,7 +833,7 @@ class StaticTrend:
     def held(self, temperature_k: float, kinds: Sequence[str] = ("shift", "coupling", "population", "linewidth")
              ) -> dict[str, dict]:
         """Parameter settings holding the trended parameters of `kinds` at `temperature_k` (K), each with
-        its value, ``vary = False`` and the standard error of the line there (which the fit carries into
+        its value as ``start``, ``fixed = True`` and the standard error of the line there (which the fit carries into
         the rates).  Populations come back normalised, the error on each but the first (the reference of
         the van 't Hoff lines) as the error of its relative weight."""
         out: dict[str, dict] = {}
@@ -854,7 +854,7 @@ class StaticTrend:
         if ratios:
             weights = {name: math.exp(v) for name, (v, _) in ratios.items()}
             total = 1.0 + sum(weights.values())
-            out[self.first_population] = {"value": 1.0 / total, "vary": False}
+            out[self.first_population] = {"start": 1.0 / total, "fixed": True}
             for name, (_, stderr) in ratios.items():
                 p = weights[name] / total
                 out[name] = _held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
@@ -880,7 +880,7 @@ class StaticTrend:
 
 
 def _held_setting(value: float, stderr: float) -> dict:
-    setting = {"value": float(value), "vary": False}
+    setting = {"start": float(value), "fixed": True}
     if math.isfinite(stderr) and stderr > 0:
         setting["stderr"] = float(stderr)
     return setting

@@ -157,7 +157,7 @@ def test_bad_series_files_are_one_line_errors(tmp_path):
         "Celsius": text.replace("temperature_k = 250.0", "temperature_k = 25.0"),
         'did you mean "temperature_k"': text.replace("temperature_k = 270.0", "temperatur_k = 270.0"),
         'no fit parameter "linewidth_hz_c"': text.replace(
-            'linewidth = "fixed"', 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { value = 1.0 } }'),
+            'linewidth = "fixed"', 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { start = 1.0 } }'),
         "slow-exchange-trend": text.replace('linewidth = "fixed"', 'shifts = "trend"'),
     }
     for expected, content in cases.items():
