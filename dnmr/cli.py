@@ -58,20 +58,21 @@ def _parse_list(text: str, option: str) -> list[float]:
 
 @contextmanager
 def _block_progress(enabled: bool):
-    """A progress bar over the engine's blocks on stderr, shown only on a terminal and for large systems."""
-    if not (enabled and sys.stderr.isatty()):
-        yield None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+    """Progress over the engine's blocks on stderr, for large systems: a bar on a terminal, else plain lines."""
+    from .progress import PLAIN_INTERVAL_S, ProgressReport
 
-    with Progress(TextColumn("simulating"), BarColumn(), TextColumn("{task.completed}/{task.total} coherences"),
-                  TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
-        task = bar.add_task("simulate", total=None)
+    with ProgressReport(enabled) as report:
+        task, shown = None, 0
 
         def advance(done: int, total: int) -> None:
-            if total >= LARGE_SYSTEM_COHERENCES:
-                bar.update(task, completed=done, total=total)
+            nonlocal task, shown
+            if total < LARGE_SYSTEM_COHERENCES:
+                return
+            if task is None:
+                task = report.add_task("simulating", total, unit="coherences", interval_s=PLAIN_INTERVAL_S)
+            report.advance(task, steps=done - shown)
+            report.refresh()
+            shown = done
 
         yield advance
 
@@ -152,7 +153,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.option("--quiet", is_flag=True, help="No progress report on stderr (a bar on a terminal, else plain lines).")
 @click.option("--global", "global_fit", is_flag=True,
               help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
@@ -353,11 +354,12 @@ def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tupl
 @cli.command()
 @click.argument("outdir", required=False, default="dnmr-demo", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--overwrite", is_flag=True, help="Write into an existing, non-empty folder.")
-def demo(outdir: Path, overwrite: bool) -> None:
+@click.option("--quiet", is_flag=True, help="No progress report of the series fit on stderr.")
+def demo(outdir: Path, overwrite: bool, quiet: bool) -> None:
     """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
     from .demo import run_demo
 
-    run_demo(outdir, overwrite=overwrite, echo=click.echo)
+    run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
 
 
 def _with_options(options):
