@@ -2,6 +2,8 @@
 that are only implausible are warned about, not refused (the project's rules on bad input)."""
 from __future__ import annotations
 
+import json
+
 import pytest
 from click.testing import CliRunner
 
@@ -31,3 +33,31 @@ def test_a_slip_in_a_spectrum_parameters_is_reported_at_that_spectrum(tmp_path):
     with pytest.raises(InputError) as caught:
         load_series(series)
     assert caught.value.where == "spectrum[1].parameters.linewidth_hz_c"
+
+
+def test_a_region_the_user_never_wrote_says_where_it_came_from(tmp_path):
+    # the model's shifts (1.9, 2.1 ppm) lie outside the spectra (2.5-3.5 ppm) and no region_ppm is given:
+    # the message names the window about the model's shifts as the source, and what the spectrum covers
+    series = write_series(tmp_path, TEMPERATURES[:1], fit_table='linewidth = "fixed"')
+    model = tmp_path / "model.toml"
+    model.write_text(model.read_text().replace("H = 2.9", "H = 1.9").replace("H = 3.1", "H = 2.1"))
+    result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--serial", "--quiet",
+                                      "--no-report"])
+    assert result.exit_code == 2
+    [line] = [x for x in result.stderr.splitlines() if x.startswith("dnmr: error:")]
+    assert "spectrum[0]" in line and "region_ppm: the fit region 1.78 to 2.22 ppm comes from a window about the " \
+        "model's shifts (no region_ppm, no [window])" in line and "covers 2.5 to 3.5 ppm" in line, line
+    model.write_text(model.read_text() + "[window]\nppm = [1.5, 2.4]\n")
+    again = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--overwrite", "--serial",
+                                     "--quiet", "--no-report"])
+    assert "from the model's [window] (no region_ppm given)" in again.stderr, again.stderr
+
+
+def test_shifts_outside_a_given_region_are_flagged(tmp_path):
+    series = write_series(tmp_path, TEMPERATURES[:1], fit_table='region_ppm = [3.3, 3.5]\nlinewidth = "fixed"')
+    result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--serial", "--quiet",
+                                      "--no-report"])
+    assert "shifts-outside-region" in result.output
+    [spectrum] = json.loads((tmp_path / "out" / "results.json").read_text())["spectra"]
+    assert ("none of the model's shifts (2.9 to 3.1 ppm) lies in the fitted region 3.3 to 3.5 ppm (from region_ppm); "
+            "check the region or the model's shifts") in spectrum["fit"]["notes"]
