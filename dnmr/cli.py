@@ -11,11 +11,15 @@ import sys
 import traceback
 from contextlib import contextmanager
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import click
 
 from .errors import InputError
 from .output import json_ready
+
+if TYPE_CHECKING:
+    from .series import Series
 
 
 class _Group(click.Group):
@@ -182,7 +186,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from .series import fit_series
+    from .series import fit_series, load_series
 
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
@@ -191,11 +195,14 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         from .posterior import require_emcee
 
         require_emcee(where="--posterior")
+    series = load_series(series_file)
+    for warning in series.warnings:
+        click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
     if global_fit:
-        _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet,
+        _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
                     {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
         return
-    result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
+    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                         progress=False if quiet else None,
                         posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
     click.echo(result.report())
@@ -205,7 +212,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     ctx.exit(result.exit_status)
 
 
-def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
+def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
     """`dnmr fit --global`: the global fit (dnmr.globalfit), its text report and report.html."""
     from .globalfit import fit_series_global
@@ -214,7 +221,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
+    result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
                                progress=False if quiet else None, **treatment)
     click.echo(result.report())
     _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration

@@ -91,7 +91,7 @@ from .modelfile import check_keys, load_model, read_toml
 from .output import atomic_write_text, json_ready, save_figure
 from .readers import read_spectrum
 from .progress import ProgressReport
-from .tables import check_kelvin
+from .tables import celsius_hints, check_kelvin
 from .notebook import NotebookView
 
 TREND = "slow-exchange-trend"
@@ -304,6 +304,9 @@ class Series:
         joins different states; otherwise they are "fixed".
     reference_line : ReferenceLine or None
         The signal whose width gives the intrinsic linewidth.
+    warnings : tuple of str
+        Hints on input that is accepted but implausible (temperatures that look like degrees Celsius);
+        also among the `notes`, and printed on stderr by ``dnmr fit``.
     """
 
     source: Path
@@ -317,6 +320,7 @@ class Series:
     treatments: Mapping[str, str] = field(default_factory=lambda: {"shifts": "fixed", "couplings": "fixed",
                                                                    "populations": "fixed", "linewidth": "shared"})
     reference_line: ReferenceLine | None = None
+    warnings: tuple[str, ...] = ()
 
     def trended(self) -> list[str]:
         """The kinds of parameter ("shift", "coupling", "population", "linewidth") taken from the slow-exchange trend."""
@@ -479,8 +483,10 @@ def load_series(path: str | Path) -> Series:
         spectra, notes = _flag_duplicates(spectra)
     except InputError as err:
         raise err.located(source=path) from None
+    hints = celsius_hints([s.temperature_k for s in spectra], model.temperature_k)
     return Series(path.resolve(), model_file, model, options, treatments["shifts"],
-                  None if below is None else float(below), tuple(spectra), tuple(notes), treatments, reference)
+                  None if below is None else float(below), tuple(spectra), tuple(hints + notes), treatments, reference,
+                  tuple(hints))
 
 
 def _populations_matter(model: Model) -> bool:

@@ -10,6 +10,7 @@ from click.testing import CliRunner
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.series import load_series
+from dnmr.tables import celsius_hints
 from test_series import TEMPERATURES, write_series
 
 SERIES_PARAMETERS = 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { value = 1.0 } }'
@@ -61,3 +62,26 @@ def test_shifts_outside_a_given_region_are_flagged(tmp_path):
     [spectrum] = json.loads((tmp_path / "out" / "results.json").read_text())["spectra"]
     assert ("none of the model's shifts (2.9 to 3.1 ppm) lies in the fitted region 3.3 to 3.5 ppm (from region_ppm); "
             "check the region or the model's shifts") in spectrum["fit"]["notes"]
+
+
+def test_celsius_hints_rule():
+    # 0 °C = 273.15 K (SI Brochure, 9th ed., 2019); the 200 K line is a rule of thumb (common practice)
+    assert celsius_hints([250.0, 190.0]) == []  # one cold spectrum among warm ones: no hint
+    assert celsius_hints([]) == []
+    [hint] = celsius_hints([107.0, 117.0, 127.0], 298.0)
+    assert hint.startswith("every temperature_k is below 200 K (107 to 127 K) while the model's [conditions] "
+                           "temperature_k is 298 K")
+    assert "107 °C = 380.15 K" in hint and hint.endswith("fitted as kelvin")
+    assert "model" not in celsius_hints([150.0, 160.0])[0]  # no model temperature to compare with
+
+
+def test_celsius_looking_series_is_warned_about_not_refused(tmp_path):
+    series = write_series(tmp_path, [117.0, 127.0])  # °C values typed as kelvin (rates made at those numbers)
+    assert load_series(series).warnings == tuple(celsius_hints([117.0, 127.0]))
+    result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--serial", "--quiet",
+                                      "--no-report"])
+    assert result.exit_code == 0, result.stderr
+    [warning] = result.stderr.splitlines()
+    assert warning.startswith(f"dnmr: warning: {series}: every temperature_k is below 200 K (117 to 127 K)")
+    assert "note: every temperature_k is below 200 K" in result.stdout  # in the report as well
+    assert load_series(write_series(tmp_path / "warm", TEMPERATURES)).warnings == ()
