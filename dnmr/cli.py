@@ -11,11 +11,15 @@ import sys
 import traceback
 from contextlib import contextmanager
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import click
 
 from .errors import InputError
 from .output import json_ready
+
+if TYPE_CHECKING:
+    from .series import Series
 
 
 class _Group(click.Group):
@@ -80,20 +84,21 @@ def _parse_list(text: str, option: str) -> list[float]:
 
 @contextmanager
 def _block_progress(enabled: bool):
-    """A progress bar over the engine's blocks on stderr, shown only on a terminal and for large systems."""
-    if not (enabled and sys.stderr.isatty()):
-        yield None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+    """Progress over the engine's blocks on stderr, for large systems: a bar on a terminal, else plain lines."""
+    from .progress import PLAIN_INTERVAL_S, ProgressReport
 
-    with Progress(TextColumn("simulating"), BarColumn(), TextColumn("{task.completed}/{task.total} coherences"),
-                  TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
-        task = bar.add_task("simulate", total=None)
+    with ProgressReport(enabled) as report:
+        task, shown = None, 0
 
         def advance(done: int, total: int) -> None:
-            if total >= LARGE_SYSTEM_COHERENCES:
-                bar.update(task, completed=done, total=total)
+            nonlocal task, shown
+            if total < LARGE_SYSTEM_COHERENCES:
+                return
+            if task is None:
+                task = report.add_task("simulating", total, unit="coherences", interval_s=PLAIN_INTERVAL_S)
+            report.advance(task, steps=done - shown)
+            report.refresh()
+            shown = done
 
         yield advance
 
@@ -178,7 +183,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.option("--quiet", is_flag=True, help="No progress report on stderr (a bar on a terminal, else plain lines).")
 @click.option("--global", "global_fit", is_flag=True,
               help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
@@ -207,7 +212,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from .series import fit_series
+    from .series import fit_series, load_series
 
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
@@ -216,11 +221,14 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         from .posterior import require_emcee
 
         require_emcee(where="--posterior")
+    series = load_series(series_file)
+    for warning in series.warnings:
+        click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
     if global_fit:
-        _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet,
+        _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
                     {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
         return
-    result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
+    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                         progress=False if quiet else None,
                         posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
     click.echo(result.report())
@@ -230,7 +238,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     ctx.exit(result.exit_status)
 
 
-def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
+def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
     """`dnmr fit --global`: the global fit (dnmr.globalfit), its text report and report.html."""
     from .globalfit import fit_series_global
@@ -239,7 +247,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
+    result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
                                progress=False if quiet else None, **treatment)
     click.echo(result.report())
     _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
@@ -379,11 +387,12 @@ def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tupl
 @cli.command()
 @click.argument("outdir", required=False, default="dnmr-demo", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--overwrite", is_flag=True, help="Write into an existing, non-empty folder.")
-def demo(outdir: Path, overwrite: bool) -> None:
+@click.option("--quiet", is_flag=True, help="No progress report of the series fit on stderr.")
+def demo(outdir: Path, overwrite: bool, quiet: bool) -> None:
     """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
     from .demo import run_demo
 
-    run_demo(outdir, overwrite=overwrite, echo=click.echo)
+    run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
 
 
 def _with_options(options):

@@ -82,7 +82,7 @@ from scipy import signal, stats
 from .engine import default_window_ppm, lineshape_terms
 from .errors import InputError, did_you_mean
 from .model import Model, parse_coupling_key
-from .readers import MeasuredSpectrum, read_spectrum
+from .readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
 from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -1448,10 +1448,36 @@ def _prepared(spectrum, model: Model) -> MeasuredSpectrum:
     return spectrum
 
 
-def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tuple[float, float]:
-    region = options.region_ppm or model.window_ppm or default_window_ppm(model)
+def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tuple[float, float, str]:
+    """The fitted region (ppm, cut to the spectrum) and where it came from: the options' region_ppm, else
+    the model's [window], else a window about the model's shifts.  Refused, naming that source, when fewer
+    than MIN_POINTS points of the spectrum lie in it."""
+    if options.region_ppm:
+        region, origin = options.region_ppm, "region_ppm"
+    elif model.window_ppm:
+        region, origin = model.window_ppm, "the model's [window] (no region_ppm given)"
+    else:
+        region, origin = default_window_ppm(model), "a window about the model's shifts (no region_ppm, no [window])"
     lo, hi = sorted(region)
-    return max(lo, float(spectrum.ppm[0])), min(hi, float(spectrum.ppm[-1]))
+    first, last = float(spectrum.ppm.min()), float(spectrum.ppm.max())
+    inside = int(((spectrum.ppm >= lo) & (spectrum.ppm <= hi)).sum())
+    if inside < MIN_POINTS:
+        shifts = model.shifts_hz() / model.spectrometer.frequency_mhz
+        raise InputError(f"the fit region {lo:g} to {hi:g} ppm comes from {origin} and holds {inside} points of the "
+                         f"spectrum, which covers {first:g} to {last:g} ppm (the model's shifts: "
+                         f"{shifts.min():g} to {shifts.max():g} ppm); give region_ppm within the spectrum, or check "
+                         "the model's shifts and the spectrum's referencing", source=spectrum.source, where="region_ppm")
+    return max(lo, first), min(hi, last), origin
+
+
+def _shifts_outside(model: Model, lo: float, hi: float, origin: str) -> list[str]:
+    """A note when none of the model's shifts lies in the fitted region `lo`-`hi` ppm (a slip in the region
+    or in the shifts: the fit would then describe only the tails of the lines)."""
+    shifts = model.shifts_hz() / model.spectrometer.frequency_mhz
+    if ((shifts >= lo) & (shifts <= hi)).any():
+        return []
+    return [f"none of the model's shifts ({shifts.min():g} to {shifts.max():g} ppm) lies in the fitted region "
+            f"{lo:g} to {hi:g} ppm (from {origin}); check the region or the model's shifts"]
 
 
 def _error_scale(chi2: float, dof: int, noise: NoiseEstimate, held: Sequence[str] = ()) -> tuple[float, list[str], list[str]]:
@@ -1555,7 +1581,7 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
     if temperature_k is not None:
         model = model.at_temperature(temperature_k)
     spectrum = _prepared(spectrum, model)
-    lo, hi = _region(spectrum, model, options)
+    lo, hi, origin = _region(spectrum, model, options)
     part = spectrum.region(lo, hi)
     noise = estimate_noise(spectrum, (lo, hi), options.noise_ppm, options.noise)
     layout = ParameterLayout.for_model(model, options)
@@ -1566,7 +1592,8 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
         edited = _checked_settings({name: p.setting() for name, p in parameters.items()})
         apply_settings(params, edited)
         settings.update(edited)
-    flags, notes = [], []
+    notes = _shifts_outside(model, lo, hi, origin)
+    flags = ["shifts-outside-region"] if notes else []
     held = held_errors(params, settings)
     if options.shifts == "free" and options.frequency_offset:
         notes.append("the frequency offset is held at its start value because the shifts are free")

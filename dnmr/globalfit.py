@@ -91,6 +91,7 @@ from .fitting import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, 
 from .kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy
 from .model import Model, parse_coupling_key
 from .output import atomic_write_text, json_ready, save_figure
+from .progress import PLAIN_INTERVAL_S, ProgressReport
 from .series import Series, SeriesFit, fit_series, load_series
 from .notebook import NotebookView
 
@@ -579,10 +580,11 @@ def _refit_nuisance_of(problem: _GlobalProblem, k: int, x: np.ndarray) -> np.nda
 
 
 class _Evaluator:
-    """Evaluates a :class:`_GlobalProblem` spectrum by spectrum, in this process or in `workers` processes."""
+    """Evaluates a :class:`_GlobalProblem` spectrum by spectrum, in this process or in `workers` processes;
+    `step` is called at every evaluation of the residuals (for the progress report)."""
 
-    def __init__(self, problem: _GlobalProblem, workers: int):
-        self.problem = problem
+    def __init__(self, problem: _GlobalProblem, workers: int, step: Callable[[], None] | None = None):
+        self.problem, self.step = problem, step
         n = len(problem.members)
         self.workers = max(1, min(workers, n))
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
@@ -607,6 +609,8 @@ class _Evaluator:
 
     def residual(self, x: np.ndarray) -> np.ndarray:
         """Residuals of every spectrum, one after the other, then the offsets' gauge rows."""
+        if self.step is not None:
+            self.step()
         return np.concatenate(self.each("residual", x) + [self.problem.gauge @ x])
 
     def jacobian(self, x: np.ndarray) -> np.ndarray:
@@ -1315,7 +1319,8 @@ def fit_series_global(
     workers : int, optional
         Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process).
     progress : bool, optional
-        Progress bar of the two-step fit.
+        False: no progress report.  Otherwise progress of the two-step fit and of the global fit on stderr
+        (a live bar on a terminal, plain lines when stderr is a file or a pipe).
 
     Returns
     -------
@@ -1326,13 +1331,13 @@ def fit_series_global(
     outdir = Path(outdir)
     _prepare(outdir, overwrite)
     two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    result = _global_fit(series, two, outdir, calibration, treatment, workers)
+    result = _global_fit(series, two, outdir, calibration, treatment, workers, progress)
     _write(result, overwrite)
     return result
 
 
 def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "TemperatureCalibration | None",
-                treatment: Treatment, workers: int | None) -> GlobalFit:
+                treatment: Treatment, workers: int | None, progress: bool | None = None) -> GlobalFit:
     """The global fit seeded from a finished two-step fit `two` (its rates.csv in `outdir`/two-step)."""
     used = [i for i, o in enumerate(two.outcomes) if o.fitted]
     if len(used) < 3:
@@ -1349,10 +1354,13 @@ def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "Temp
     problem = _GlobalProblem(members, series.model, treatment, van_t_hoff,
                              _eyring_start(two, eyring, names, idents, used, temps))
     workers = max(1, min(workers or os.cpu_count() or 1, len(members)))
-    with single_threaded_blas():
-        evaluator = _Evaluator(problem, workers)
+    with single_threaded_blas(), ProgressReport(progress) as report:
+        task = report.add_task(f"global fit of {len(members)} spectra", unit="evaluations of all spectra",
+                              interval_s=PLAIN_INTERVAL_S)
+        evaluator = _Evaluator(problem, workers, step=lambda: report.advance(task))
         try:
             solution, inverse = _solve(problem, evaluator)
+            report.finish(task)
             from_calibration = (None if temperature_covariance is None or inverse is None else
                                 _calibration_covariance(evaluator, solution.x, solution.jac, inverse,
                                                         temperature_covariance))
