@@ -246,7 +246,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
 
 
 @cli.command()
-@click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("rates_files", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the Eyring plot with residuals to this image (PNG, SVG or PDF).")
@@ -273,12 +273,15 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
-def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
+def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
            overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
-    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
+    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
+    or tables of your own).
 
+    Several tables are fitted together, process by process: lineshape rates and magnetisation-transfer
+    rates on one Eyring line, each rate keeping its method (column `method`; lineshape where absent).
     With --json the first (or only) process's results are at the top level and, for several processes,
     all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
@@ -292,7 +295,7 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
 
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
-    results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
+    results = eyring_fit_file(list(rates_files), process=process, temperature_stderr=temperature_stderr,
                               temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
                               scale_errors=scale_errors or None, transmission=transmission, calibration=calibration)
     posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
@@ -477,11 +480,15 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write (default OUTDIR/report.html).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing report.")
-def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool) -> None:
+@click.option("--transfer", "transfer_folders", multiple=True, type=click.Path(file_okay=False, path_type=Path),
+              help="A folder written by `dnmr transfer` (repeat for several): its fit is shown beside the lineshape "
+                   "fits and its rates join the Eyring analysis.")
+def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool,
+           transfer_folders: tuple[Path, ...]) -> None:
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched)."""
     from .report import write_report
 
-    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite)}")
+    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite, transfer=transfer_folders)}")
 
 
 def main(argv: list[str] | None = None) -> None:
