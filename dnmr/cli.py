@@ -383,6 +383,9 @@ _TIMESCALE_OPTIONS = (
                       " exchange (default 0.1)."),
     click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
     click.option("--overwrite", is_flag=True, help="Replace an existing image."),
+    click.option("--r1-per-s", type=float,
+                 help="R1 (s^-1) for the magnetisation-transfer window (default: the model's r1_per_s, else a typical"
+                      " 1 s^-1)."),
 )
 
 
@@ -432,10 +435,14 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
               help="Distance kept from the solvent's melting and boiling points (K; default 10).")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the predicted VT stack at the planned temperatures (PNG, SVG or PDF).")
+@click.option("--transfer-runs", type=click.IntRange(0, 50),
+              help="Temperatures to plan for magnetisation transfer per process (default 4; 0 for none).")
 def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-         detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
-         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file) -> None:
-    """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
+         detectable_fraction, as_json, overwrite, r1_per_s, solvent_name, solvent_file, melting_point_k,
+         boiling_point_k, probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file,
+         transfer_runs) -> None:
+    """Before booking the magnet: coalescence per field, temperatures to run for lineshapes and, below them,
+    for magnetisation transfer (with delays and mixing times), solvent check and cautions."""
     from . import load_model
     from .planning import plan_experiment
     from .solvents import solvent_from_options
@@ -443,7 +450,8 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
     model = load_model(model_file)
     given = {"probe_range_k": _parse_list(probe_range_k, "--probe-range-k") if probe_range_k else None,
              "signal_to_noise": signal_to_noise, "spectra": spectra, "min_step_k": min_step_k,
-             "detectable_fraction": detectable_fraction, "margin_k": margin_k}
+             "detectable_fraction": detectable_fraction, "margin_k": margin_k, "r1_per_s": r1_per_s,
+             "transfer_runs": transfer_runs}
     result = plan_experiment(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
@@ -459,8 +467,9 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
 def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-              detectable_fraction, as_json, overwrite, temperature_k, plot_file) -> None:
-    """Slow, intermediate and fast exchange per pair and field, and what becomes equivalent when fast."""
+              detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
+    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
+    lineshapes, and what becomes equivalent when fast."""
     from . import load_model
     from .timescale import timescale_view
 
@@ -468,7 +477,7 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
     result = timescale_view(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
-        process=process, temperature_k=temperature_k,
+        process=process, temperature_k=temperature_k, r1_per_s=r1_per_s,
         **({} if detectable_fraction is None else {"detectable_fraction": detectable_fraction}))
     _emit(result, as_json, plot_file, overwrite)
 

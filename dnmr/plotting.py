@@ -43,6 +43,8 @@ INK, GREY, PALE = PALETTE["ink"], PALETTE["grey"], PALETTE["pale"]
 FIT_COLOUR = PALETTE["vermilion"]  # a fitted spectrum beside the measured one (ink)
 #: Exchange regimes of ``dnmr timescale --plot``: dark to light from slow to fast.
 REGIME_COLOURS = {"slow": PALETTE["indigo"], "intermediate": PALETTE["vermilion"], "fast": PALETTE["gold"]}
+#: The window of magnetisation transfer in the same figure.
+TRANSFER_COLOUR = PALETTE["teal"]
 
 
 def series_colour(index: int) -> str:
