@@ -420,14 +420,11 @@ def _joined(process: str, parts: list[RateSeries]) -> RateSeries:
     """The rows of several series of one process as one series (each row keeps its method and file)."""
     if len(parts) == 1:
         return replace(parts[0], process=process)
-    column = lambda name: np.concatenate([getattr(p, name) for p in parts])  # noqa: E731
+    columns = {name: np.concatenate([getattr(p, name) for p in parts])
+               for name in ("temperature_k", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper")}
     return RateSeries(
         process=process,
-        temperature_k=column("temperature_k"),
-        rate_per_s=column("rate_per_s"),
-        rate_stderr=column("rate_stderr"),
-        rate_lower=column("rate_lower"),
-        rate_upper=column("rate_upper"),
+        **columns,
         temperature_errors=TemperatureErrors(np.concatenate([p.temperature_errors.independent_k for p in parts]),
                                              np.zeros((sum(len(p) for p in parts), 0))),
         source=", ".join(dict.fromkeys(str(p.source) for p in parts)),
