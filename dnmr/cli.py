@@ -280,7 +280,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
 
 
 @cli.command()
-@click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("rates_files", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the Eyring plot with residuals to this image (PNG, SVG or PDF).")
@@ -307,12 +307,15 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
-def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
+def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
            overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
-    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
+    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
+    or tables of your own).
 
+    Several tables are fitted together, process by process: lineshape rates and magnetisation-transfer
+    rates on one Eyring line, each rate keeping its method (column `method`; lineshape where absent).
     With --json the first (or only) process's results are at the top level and, for several processes,
     all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
@@ -326,7 +329,7 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
 
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
-    results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
+    results = eyring_fit_file(list(rates_files), process=process, temperature_stderr=temperature_stderr,
                               temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
                               scale_errors=scale_errors or None, transmission=transmission, calibration=calibration)
     posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
@@ -415,6 +418,9 @@ _TIMESCALE_OPTIONS = (
                       " exchange (default 0.1)."),
     click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
     click.option("--overwrite", is_flag=True, help="Replace an existing image."),
+    click.option("--r1-per-s", type=float,
+                 help="R1 (s^-1) for the magnetisation-transfer window (default: the model's r1_per_s, else a typical"
+                      " 1 s^-1)."),
 )
 
 
@@ -471,10 +477,14 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
 @click.option("--series", "series_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write a series file for dnmr fit with the planned temperatures (first field) and the "
                    "linewidth treatment the precision assumes.")
+@click.option("--transfer-runs", type=click.IntRange(0, 50),
+              help="Temperatures to plan for magnetisation transfer per process (default 4; 0 for none).")
 def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-         detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
-         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file, series_file) -> None:
-    """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
+         detectable_fraction, as_json, overwrite, r1_per_s, solvent_name, solvent_file, melting_point_k,
+         boiling_point_k, probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file,
+         series_file, transfer_runs) -> None:
+    """Before booking the magnet: coalescence per field, temperatures to run for lineshapes and, below them,
+    for magnetisation transfer (with delays and mixing times), solvent check and cautions."""
     from . import load_model
     from .planning import plan_experiment
     from .solvents import solvent_from_options
@@ -482,7 +492,8 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
     model = load_model(model_file)
     given = {"probe_range_k": _parse_list(probe_range_k, "--probe-range-k") if probe_range_k else None,
              "signal_to_noise": signal_to_noise, "spectra": spectra, "min_step_k": min_step_k,
-             "detectable_fraction": detectable_fraction, "margin_k": margin_k}
+             "detectable_fraction": detectable_fraction, "margin_k": margin_k, "r1_per_s": r1_per_s,
+             "transfer_runs": transfer_runs}
     result = plan_experiment(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
@@ -506,8 +517,9 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
 def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-              detectable_fraction, as_json, overwrite, temperature_k, plot_file) -> None:
-    """Slow, intermediate and fast exchange per pair and field, and what becomes equivalent when fast."""
+              detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
+    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
+    lineshapes, and what becomes equivalent when fast."""
     from . import load_model
     from .timescale import timescale_view
 
@@ -515,7 +527,7 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
     result = timescale_view(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
-        process=process, temperature_k=temperature_k,
+        process=process, temperature_k=temperature_k, r1_per_s=r1_per_s,
         **({} if detectable_fraction is None else {"detectable_fraction": detectable_fraction}))
     _emit(result, as_json, plot_file, overwrite)
 
@@ -527,11 +539,15 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write (default OUTDIR/report.html).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing report.")
-def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool) -> None:
+@click.option("--transfer", "transfer_folders", multiple=True, type=click.Path(file_okay=False, path_type=Path),
+              help="A folder written by `dnmr transfer` (repeat for several): its fit is shown beside the lineshape "
+                   "fits and its rates join the Eyring analysis.")
+def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool,
+           transfer_folders: tuple[Path, ...]) -> None:
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched)."""
     from .report import write_report
 
-    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite)}")
+    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite, transfer=transfer_folders)}")
 
 
 def main(argv: list[str] | None = None) -> None:

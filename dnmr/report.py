@@ -13,6 +13,15 @@ posteriors, the rate table adds the posterior rate and every fit shows its poste
 and 95 % intervals, or the one-sided 95 % bound of a bound rate, beside the least-squares result; the
 sampler's notes; the pairwise posterior figure).
 
+Magnetisation transfer
+----------------------
+Rates too slow for lineshapes come from ``dnmr transfer`` (selective inversion, saturation transfer,
+2D exchange), one folder per experiment.  Name those folders (``transfer=[...]``, or ``dnmr report OUTDIR
+--transfer DIR`` once per folder): the report then shows each transfer fit (its rates, R1, remarks and the
+figure of data, fit and residuals that ``dnmr transfer`` drew) in a section beside the lineshape fits,
+and the Eyring analysis fits the rates of OUTDIR and of every transfer folder together (one line, each
+rate marked by its method).  Without them the report is the lineshape fits' alone.
+
 A folder of ``dnmr fit --global`` (it holds global.json) gets the global fit's report instead: its
 treatment and dH‡, dS‡, the comparison with the two-step result (activation parameters and rates), each
 spectrum's chi-square per point against the measured noise beside its two-step fit, the stacked fits
@@ -120,6 +129,7 @@ class ReportInputs:
     calibration_file: Path | None = None
     eyring: list[EyringResult] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    transfer: list["TransferFolder"] = field(default_factory=list)
 
 
 def read_results(outdir: Path) -> dict:
@@ -178,7 +188,8 @@ def _calibration(calibration: TemperatureCalibration | str | Path | None) -> tup
     return read_temperature_calibration(calibration), Path(calibration)
 
 
-def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None) -> ReportInputs:
+def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None,
+                  transfer: Sequence[str | Path] = ()) -> ReportInputs:
     """Read OUTDIR, the model and the calibration, and run the Eyring analysis.
 
     Parameters
@@ -187,6 +198,9 @@ def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str 
         Folder written by ``dnmr fit``.
     calibration : TemperatureCalibration, str or Path, optional
         Set-point calibration (object or CSV with setpoint_k, temperature_k; degree 1).
+    transfer : sequence of str or Path
+        Folders written by ``dnmr transfer``: shown beside the lineshape fits, their rates fitted with
+        OUTDIR's in the Eyring analysis.
 
     Returns
     -------
@@ -198,8 +212,9 @@ def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str 
     inputs = ReportInputs(outdir, results, read_rate_rows(outdir))
     inputs.calibration, inputs.calibration_file = _calibration(calibration)
     inputs.model, inputs.warnings = _model(results)
+    inputs.transfer = [read_transfer_folder(Path(folder)) for folder in transfer]
     try:
-        inputs.eyring = eyring_fit_file(outdir / "rates.csv", calibration=inputs.calibration)
+        inputs.eyring = eyring_fit_file(rate_tables(inputs), calibration=inputs.calibration)
     except InputError as err:
         inputs.warnings.append(f"no Eyring analysis: {err}")
     return inputs
@@ -640,11 +655,82 @@ def render_report(inputs: ReportInputs) -> str:
     model_title = inputs.model.title if inputs.model is not None and inputs.model.title else ""
     title = f"dnmr report: {model_title or inputs.outdir.name}"
     sections = [summary_section(inputs), model_section(inputs), rate_section(inputs), identifiability_section(inputs),
-                fits_section(inputs), eyring_section(inputs), warnings_section(inputs), cautions_section(),
+                fits_section(inputs), transfer_section(inputs), eyring_section(inputs), warnings_section(inputs), cautions_section(),
                 inputs_section(inputs)]
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{esc(title)}</title><style>{STYLE}</style></head><body>"
             f"<h1>{esc(title)}</h1>{''.join(sections)}</body></html>\n")
+
+
+# --------------------------------------------------------------------------------------------------
+# magnetisation-transfer fits (dnmr transfer) beside the lineshape fits
+
+
+@dataclass(frozen=True)
+class TransferFolder:
+    """A folder written by ``dnmr transfer``.
+
+    Attributes
+    ----------
+    folder : Path
+        The folder.
+    results : dict
+        Its parsed ``results.json``.
+    rates : list of dict
+        The rows of its ``rates.csv`` (text values, as written).
+    """
+
+    folder: Path
+    results: dict
+    rates: list[dict]
+
+
+def read_transfer_folder(folder: Path) -> TransferFolder:
+    """Read a ``dnmr transfer`` folder (InputError when it is not one, or is damaged)."""
+    path = folder / "results.json"
+    if not path.is_file():
+        raise InputError(f"no results.json here: run `dnmr transfer EXPERIMENT.toml -o {folder}` first, or name the "
+                         "folder it wrote", str(folder), "--transfer")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError):
+        raise InputError("not the results.json of `dnmr transfer` (not valid JSON); fit the experiment again",
+                         str(path), "--transfer") from None
+    if not isinstance(data, dict) or data.get("experiment") not in ("inversion", "saturation", "exchange-2d"):
+        raise InputError("not the results.json of `dnmr transfer` (no experiment named)", str(path), "--transfer")
+    if not (folder / "rates.csv").is_file():
+        raise InputError("no rates.csv next to results.json; fit the experiment again", str(folder), "--transfer")
+    return TransferFolder(folder, data, read_rate_rows(folder))
+
+
+def rate_tables(inputs: ReportInputs) -> list[Path]:
+    """The rates tables of the Eyring analysis: OUTDIR's, then each transfer folder's."""
+    return [inputs.outdir / "rates.csv"] + [t.folder / "rates.csv" for t in inputs.transfer]
+
+
+def _transfer_block(t: TransferFolder) -> str:
+    r = t.results
+    data = Path(str(r.get("data", "?"))).name
+    head = f"<h3>{esc(r.get('experiment'))} at {esc(r.get('temperature_k'))} K — {esc(data)}</h3>"
+    rows = [[row.get("process", ""), _rate_text(row), row.get("status", ""), row.get("flags", "")] for row in t.rates]
+    relaxation = "; ".join(f"{site} {_number((v or {}).get('value'), '.4g')} s^-1"
+                           for site, v in (r.get("relaxation_per_s") or {}).items())
+    facts = (f"<p>chi-square {_number(r.get('chi_square'))} for {esc(r.get('degrees_of_freedom'))} degrees of freedom "
+             f"(reduced {_number(r.get('reduced_chi_square'), '.3f')}); R1: {esc(relaxation or 'not recorded')}.</p>")
+    notes = bullets([str(n) for n in r.get("notes", [])], "muted")
+    figure = figure_from_file(t.folder / "fit.png", f"{data}: data, fitted curves and residuals", f"transfer fit of {data}")
+    return (head + table(["process", "rate k / s^-1", "status", "flags"], rows, numeric=[False, True, False, False])
+            + facts + notes + figure)
+
+
+def transfer_section(inputs: ReportInputs) -> str:
+    """The magnetisation-transfer fits named with ``--transfer``, by temperature ('' when none)."""
+    if not inputs.transfer:
+        return ""
+    folders = sorted(inputs.transfer, key=lambda t: float(t.results.get("temperature_k") or 0.0))
+    intro = (f"<p>{len(folders)} experiment{'s' if len(folders) > 1 else ''} by magnetisation transfer (dnmr transfer); "
+             "their rates join the lineshape rates in the Eyring analysis, marked by method.</p>")
+    return section("transfer", "Magnetisation-transfer fits", intro + "".join(_transfer_block(t) for t in folders))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -818,6 +904,7 @@ def write_report(
     calibration: TemperatureCalibration | str | Path | None = None,
     output: str | Path | None = None,
     overwrite: bool = False,
+    transfer: Sequence[str | Path] = (),
 ) -> Path:
     """Write one self-contained HTML report of the series fit in `outdir`.
 
@@ -836,6 +923,9 @@ def write_report(
         HTML file to write (default ``OUTDIR/report.html``).
     overwrite : bool
         Replace an existing file.
+    transfer : sequence of str or Path
+        Folders written by ``dnmr transfer``: their fits are shown beside the lineshape fits and their
+        rates join the Eyring analysis (not for a global fit).
 
     Returns
     -------
@@ -854,6 +944,9 @@ def write_report(
     if path.exists() and not overwrite:
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
     if (outdir / GLOBAL_NAME).is_file():
+        if transfer:
+            raise InputError("magnetisation-transfer folders go with the report of a spectrum-by-spectrum fit; name "
+                             f"{outdir / 'two-step'} instead", where="--transfer")
         return atomic_write_text(path, _global_document(outdir, calibration), overwrite=overwrite)
-    inputs = gather_inputs(outdir, calibration)
+    inputs = gather_inputs(outdir, calibration, transfer)
     return atomic_write_text(path, render_report(inputs), overwrite=overwrite)
