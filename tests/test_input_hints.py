@@ -13,7 +13,7 @@ from dnmr.series import load_series
 from dnmr.tables import celsius_hints
 from test_series import TEMPERATURES, write_series
 
-SERIES_PARAMETERS = 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { value = 1.0 } }'
+SERIES_PARAMETERS = 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { start = 1.0 } }'
 
 
 def test_a_slip_in_fit_parameters_is_reported_there(tmp_path):
@@ -30,7 +30,7 @@ def test_a_slip_in_fit_parameters_is_reported_there(tmp_path):
 
 def test_a_slip_in_a_spectrum_parameters_is_reported_at_that_spectrum(tmp_path):
     series = write_series(tmp_path, TEMPERATURES[:2])
-    series.write_text(series.read_text() + "parameters = { linewidth_hz_c = { value = 1.0 } }\n")  # the last [[spectrum]]
+    series.write_text(series.read_text() + "parameters = { linewidth_hz_c = { start = 1.0 } }\n")  # the last [[spectrum]]
     with pytest.raises(InputError) as caught:
         load_series(series)
     assert caught.value.where == "spectrum[1].parameters.linewidth_hz_c"
