@@ -174,6 +174,9 @@ class RateSeries:
         What was done with rows of a fit table that are not plain values (left out, set aside, widened).
     set_aside : tuple of SetAsideRow
         Rows with a rate that were not fitted because their fit is flagged.
+    setpoint_k : ndarray or None
+        The temperatures the table gave, K, when a calibration turned them into the sample temperatures
+        of `temperature_k` (None otherwise).
     """
 
     process: str
@@ -187,6 +190,7 @@ class RateSeries:
     lines: tuple[int, ...] | None = None
     notes: tuple[str, ...] = ()
     set_aside: tuple[SetAsideRow, ...] = ()
+    setpoint_k: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.temperature_k)
@@ -216,7 +220,8 @@ class RateSeries:
         Used to replace set-point temperatures by calibrated sample temperatures.
         """
         return replace(self, temperature_k=np.asarray(temperature_k, dtype=float),
-                       temperature_errors=self.temperature_errors.plus(errors))
+                       temperature_errors=self.temperature_errors.plus(errors),
+                       setpoint_k=self.temperature_k if self.setpoint_k is None else self.setpoint_k)
 
     def with_offset(self, offset_stderr_k: float) -> "RateSeries":
         """Copy with an unknown probe offset (standard error in K) shared by every temperature."""
@@ -908,7 +913,9 @@ class EyringResult(NotebookView):
 
     def _point(self, i: int) -> dict:
         t = float(self.temperature_k[i])
+        setpoint = math.nan if self.series.setpoint_k is None else float(self.series.setpoint_k[self.used][i])
         return {
+            "setpoint_k": setpoint,
             "temperature_k": t,
             "temperature_stderr": float(self.series.temperature_stderr[self.used][i]),
             "rate_per_s": float(self.rate_per_s[i]),
@@ -1205,6 +1212,7 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         rate_upper=series.rate_upper[rows],
         temperature_errors=series.temperature_errors.subset(rows),
         lines=None if series.lines is None else tuple(np.array(series.lines)[rows].tolist()),
+        setpoint_k=None if series.setpoint_k is None else series.setpoint_k[rows],
     )
 
 
@@ -1405,12 +1413,18 @@ def _share_lines(r: EyringResult) -> list[str]:
 
 
 def _point_lines(d: dict) -> list[str]:
-    lines = [f"  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
+    calibrated = any(np.isfinite(p["setpoint_k"]) for p in d["points"])
+    head = f"  {'T set / K':>9}" if calibrated else ""
+    lines = [f"{head}  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
     for p in d["points"]:
         err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
-        lines.append(f"  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
+        setpoint = f"  {p['setpoint_k']:9.2f}" if calibrated else ""
+        lines.append(f"{setpoint}  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
                      f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}"
                      + ("  outlier?" if p["outlier"] else ""))
+    if calibrated:
+        lines.append("  T set: the table's set-point; T: the sample temperature through the calibration, ± T its "
+                     "standard error")
     return lines
 
 
