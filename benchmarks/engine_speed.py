@@ -5,14 +5,16 @@
 (b) six coupled spins with mutual exchange at 8192 points: ``dnmr.simulate`` / dense eigendecomposition
     of the whole, unfactored single-quantum Liouvillian (goal <= 0.02), and the share of that time spent
     only evaluating the reduced blocks on the grid;
-(c) time and peak memory (resident, in a fresh process) of a seven-spin simulation (goal < 1 s), with its
-    ratio to the six-spin time;
+(c) time and peak memory (resident, in a fresh process) of a seven-spin simulation (goal <= 0.3 s), with
+    its ratio to the six-spin time;
 (d) an N,N-dimethyl-type model (two CH3 groups swapped by rotation, coupled to one more spin): the
     model with magnetically equivalent groups / the same model written as seven individual spins
     (goal <= 1/20), and the peak memory of each;
-(e) time and peak memory of an eight-spin simulation (goals: a few minutes, within 24 GB).
+(e) time and peak memory of an eight-spin simulation (goals: <= 10 s, within 24 GB).
 
-All with one BLAS thread (THREADS), so that the ratios compare work.
+(b), (c) and (e) are measured twice: with the compiled loops of the Krylov route (``dnmr.kernels``, the
+optional extra ``pip install ".[fast]"``) where numba is installed, and with the numpy loops that every
+installation has.  All with one BLAS thread (THREADS), so that the ratios compare work.
 
 Run:  python benchmarks/engine_speed.py
 """
@@ -28,6 +30,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 import dnmr
+from dnmr import resolvent
 from dnmr.engine import SpinParameters, block_liouvillian, block_pattern, block_start, lineshape_terms
 from dnmr.liouville import coherence_blocks
 from dnmr.resolvent import ContinuedFraction
@@ -121,20 +124,31 @@ def dense_unfactored(model: dnmr.Model, hz: np.ndarray) -> np.ndarray:
     return out
 
 
-def bench_six_spins() -> tuple[float, float]:
+def kernels_in_use() -> str:
+    """Which loops the Krylov route runs in this process (the compiled ones are loaded here if present)."""
+    kernels = resolvent.compiled_kernels()
+    if kernels is None:
+        return "numpy loops" + ("" if resolvent.USE_COMPILED else " (compiled loops switched off)")
+    import numba
+    return f"compiled loops (numba {numba.__version__})"
+
+
+def bench_six_spins() -> float:
+    """(b) in this process, with the loops that `resolvent.USE_COMPILED` selects; returns simulate's time (s)."""
     model = six_spin_model()
-    spectrum = dnmr.simulate(model)
+    spectrum = dnmr.simulate(model)  # also loads (or compiles) the compiled loops once, outside the timing
     ref = dense_unfactored(model, spectrum.hz)
     err = np.abs(spectrum.intensity - ref.real).max() / ref.real.max()
     terms = lineshape_terms(model)
     t_engine, t_dense, t_evaluate = best_times([lambda: dnmr.simulate(model), lambda: dense_unfactored(model, spectrum.hz),
                                                 lambda: terms.absorption(spectrum.hz)], 3, 1)
-    print(f"(b) six spins, mutual exchange, {POINTS} points: simulate {t_engine * 1e3:.0f} ms, dense unfactored"
-          f" {t_dense * 1e3:.0f} ms, ratio {t_engine / t_dense:.3f} (goal <= 0.02); max difference {err:.1e}")
+    print(f"(b) six spins, mutual exchange, {POINTS} points, {kernels_in_use()}: simulate {t_engine * 1e3:.0f} ms,"
+          f" dense unfactored {t_dense * 1e3:.0f} ms, ratio {t_engine / t_dense:.3f} (goal <= 0.02);"
+          f" max difference {err:.1e}")
     levels = sum(len(b.alpha) for b in terms.direct if isinstance(b, ContinuedFraction))
     print(f"    of which evaluating the reduced blocks ({levels} continued-fraction levels x {POINTS} points, the work"
           f" of any exact evaluation without poles): {t_evaluate * 1e3:.0f} ms, {t_evaluate / t_dense:.3f} of the dense route")
-    return t_engine / t_dense, t_engine
+    return t_engine
 
 
 def resident_mib(field: str) -> float:
@@ -147,16 +161,18 @@ def resident_mib(field: str) -> float:
     raise RuntimeError(f"no {field} in /proc/self/status (the memory figures need Linux)")
 
 
-def run_alone(n_spins: int) -> tuple[float, float, float, float]:
+def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float]:
     """CPU times (s) of a first and a second simulation of the n-spin chain in a fresh process (the first
     includes the index work that is cached for later simulations of the same spin topology, as in every
-    evaluation of a fit after the first), the peak resident memory (MiB) and the resident memory before the
-    simulations (MiB: Python and the imported libraries); in a fresh process so that the peak belongs to
-    these simulations alone and no tracing slows them down."""
+    evaluation of a fit after the first, and loading the compiled loops from numba's on-disk cache), the
+    peak resident memory (MiB) and the resident memory before the simulations (MiB: Python and the imported
+    libraries); in a fresh process so that the peak belongs to these simulations alone and no tracing slows
+    them down."""
     code = (
         "import sys, time; sys.path.insert(0, %r)\n"
         "from threadpoolctl import threadpool_limits\n"
         "import dnmr, engine_speed\n"
+        "dnmr.resolvent.USE_COMPILED = %r\n"
         "model = engine_speed.six_spin_model(%d)\n"
         "before = engine_speed.resident_mib('VmRSS')\n"
         "times = []\n"
@@ -165,21 +181,23 @@ def run_alone(n_spins: int) -> tuple[float, float, float, float]:
         "        t0 = time.process_time(); dnmr.simulate(model.with_rates([rate]))\n"
         "        times.append(time.process_time() - t0)\n"
         "print(*times, engine_speed.resident_mib('VmHWM'), before)\n"
-    ) % (str(Path(__file__).parent), n_spins, THREADS)
+    ) % (str(Path(__file__).parent), compiled, n_spins, THREADS)
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
     return float(out[0]), float(out[1]), float(out[2]), float(out[3])
 
 
 def bench_seven_and_eight(six_spin_time_s: float) -> None:
-    _, _, m6, base = run_alone(6)
+    """(c) and (e), each in a fresh process, with the loops that `resolvent.USE_COMPILED` selects."""
+    compiled = resolvent.USE_COMPILED
+    _, _, m6, base = run_alone(6, compiled)
     print(f"    six spins alone: peak resident memory {m6:.0f} MiB"
           f" ({base:.0f} MiB of it Python and the libraries before the simulation)")
-    first, second, m7, base = run_alone(7)
+    first, second, m7, base = run_alone(7, compiled)
     print(f"(c) seven spins, {POINTS} points: {first:.2f} s first, {second:.2f} s again with the index work cached"
-          f" ({second / six_spin_time_s:.1f} x six spins; goal < 1 s), peak memory {m7:.0f} MiB ({base:.0f} MiB"
+          f" ({second / six_spin_time_s:.1f} x six spins; goal <= 0.3 s), peak memory {m7:.0f} MiB ({base:.0f} MiB"
           " before the simulation)")
-    first, second, m8, base = run_alone(8)
-    print(f"(e) eight spins, {POINTS} points: {first:.1f} s first, {second:.1f} s again (goal: a few minutes),"
+    first, second, m8, base = run_alone(8, compiled)
+    print(f"(e) eight spins, {POINTS} points: {first:.1f} s first, {second:.1f} s again (goal <= 10 s),"
           f" peak memory {m8:.0f} MiB ({base:.0f} MiB before the simulation; goal <= 24 GB)")
 
 
@@ -225,6 +243,13 @@ if __name__ == "__main__":
     print(f"BLAS threads: {THREADS} (engine and baselines alike)")
     with threadpool_limits(THREADS):
         bench_two_site()
-        _, six_spin_time = bench_six_spins()
         bench_groups()
-    bench_seven_and_eight(six_spin_time)
+    for compiled in (True, False):
+        resolvent.USE_COMPILED = compiled
+        print(f"--- Krylov route: {kernels_in_use()}")
+        with threadpool_limits(THREADS):
+            six_spin_time = bench_six_spins()
+        bench_seven_and_eight(six_spin_time)
+        if resolvent.compiled_kernels() is None and compiled:
+            print("    (numba is not installed: the compiled loops were not measured)")
+            break

@@ -15,7 +15,7 @@ from pathlib import Path
 import click
 
 from .errors import InputError
-from .output import FIGURE_FORMATS, figures_as, json_ready
+from .output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
 
 
 class _Group(click.Group):
@@ -29,6 +29,28 @@ class _Group(click.Group):
                 traceback.print_exc()
             click.echo(f"dnmr: error: {err}", err=True)
             ctx.exit(2)
+        except OSError as err:  # a fault of the disk or the system (full, read-only, gone): not bad input
+            if ctx.obj and ctx.obj.get("debug"):
+                traceback.print_exc()
+            click.echo(f"dnmr: error: {_os_error_text(err)}", err=True)
+            ctx.exit(1)
+        except MemoryError:
+            click.echo("dnmr: error: out of memory; close other programs or make the problem smaller "
+                       "(fewer points, fewer coupled spins)", err=True)
+            ctx.exit(1)
+
+
+def _os_error_text(err: OSError) -> str:
+    """One line for a failed file operation: the file, what went wrong, and what to do."""
+    import errno
+
+    what = err.strerror or type(err).__name__
+    place = err.filename if err.filename is not None else "a file"
+    advice = {errno.ENOSPC: "free some space and run again", errno.EDQUOT: "free some space and run again",
+              errno.EROFS: "write the results to another folder", errno.EACCES: "check the permissions or "
+              "write the results elsewhere", errno.EPERM: "check the permissions or write the results elsewhere"}
+    hint = advice.get(err.errno, "check the disk and the path")
+    return f"{place}: {what}; {hint} (nothing half-written is left behind)"
 
 
 @click.group(cls=_Group)
@@ -81,7 +103,7 @@ LARGE_SYSTEM_COHERENCES = 2000
 
 #: The option of every command that writes figures under names of its own.
 FIGURE_FORMAT_OPTION = click.option(
-    "--figure-format", type=click.Choice(FIGURE_FORMATS), default="png", show_default=True,
+    "--figure-format", type=click.Choice(FIGURE_FORMAT_CHOICES), default="png", show_default=True,
     help="Format of the figures this command writes: PNG, or SVG or PDF (vector, for print).")
 
 
@@ -101,8 +123,12 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
     import time
 
     from . import load_model, simulate as run
-    from .output import save_figure
+    from .output import check_output_file, save_figure
 
+    check_output_file(output, overwrite, "--output")  # before any work: nothing is written half-way
+    check_output_file(plot_file, overwrite, "--plot", figure=True)
+    if plot_file is not None and Path(plot_file).resolve() == Path(output).resolve():
+        raise InputError("--plot names the same file as --output; give the figure its own name", where="--plot")
     model = load_model(model_file)
     started = time.perf_counter()
     with _block_progress(enabled=not quiet) as progress:
@@ -463,9 +489,13 @@ def _activation_from_options(barrier: float | None, enthalpy: float | None, entr
     if (enthalpy is None) != (entropy is None):
         raise InputError("--enthalpy-kj-mol and --entropy-j-mol-k go together",
                          where="--entropy-j-mol-k" if entropy is None else "--enthalpy-kj-mol")
-    if barrier is not None:
-        return ActivationParameters.from_gibbs(barrier)
-    return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    try:
+        if barrier is not None:
+            return ActivationParameters.from_gibbs(barrier)
+        return None if enthalpy is None else ActivationParameters(enthalpy, entropy)
+    except InputError as err:  # name the option the value came from
+        option = "--barrier-kj-mol" if barrier is not None else "--" + (err.where or "").replace("_", "-")
+        raise InputError(err.message, where=option) from None
 
 
 def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> None:
@@ -499,9 +529,12 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
               help="Distance kept from the solvent's melting and boiling points (K; default 10).")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the predicted VT stack at the planned temperatures (PNG, SVG or PDF).")
+@click.option("--series", "series_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Also write a series file for dnmr fit with the planned temperatures (first field) and the "
+                   "linewidth treatment the precision assumes.")
 def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
          detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
-         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file) -> None:
+         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file, series_file) -> None:
     """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
     from . import load_model
     from .planning import plan_experiment
@@ -517,6 +550,14 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
         process=process, solvent=solvent_from_options(solvent_name, solvent_file, melting_point_k, boiling_point_k),
         **{key: value for key, value in given.items() if value is not None})
     _emit(result, as_json, plot_file, overwrite)
+    if series_file:
+        import os
+
+        from .output import atomic_write_text
+
+        relative = os.path.relpath(model_file.resolve(), series_file.resolve().parent)
+        atomic_write_text(series_file, result.series_text(Path(relative).as_posix()), overwrite=overwrite)
+        click.echo(f"wrote {series_file}", err=as_json)
 
 
 @cli.command()

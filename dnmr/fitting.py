@@ -17,8 +17,8 @@ every line to higher frequency.
 Parameters (lmfit, one per quantity; each can be fixed, bounded or tied by an lmfit expression):
 ``log10_k_<process>`` (rates are fitted on a log scale), ``amplitude``, ``baseline_0..3``,
 ``phase0_deg``, ``phase1_deg``, ``offset_hz``, ``linewidth_hz_<state>``, ``population_<state>``,
-``shift_ppm_<state>_<spin>``.  Names are the model's names with anything but letters, digits and _
-turned into _.
+``shift_ppm_<state>_<spin>``, ``coupling_hz_<state>_<spin>_<spin>`` (one per coupling the model file
+gives).  Names are the model's names with anything but letters, digits and _ turned into _.
 
 Method
 ------
@@ -52,7 +52,17 @@ Method
    a better fit restarts the fit from there (up to ``PROFILE_RESTARTS`` times); the last profile keeps
    going, counts the rise from the lowest chi-square it found (which can only widen the interval), and
    the fit is flagged "unstable" with its rates given as intervals or bounds.  Without a profile a rate
-   within its error of a limit is "undetermined".
+   within its error of a limit is "undetermined".  A free nuisance parameter that ends at a bound of
+   its range (a linewidth at its lower limit) cuts the profile too: the rate is then given as an
+   interval, never as an error bar.
+6. *Held parameters with an uncertainty*: a parameter held fixed with a ``stderr`` setting (a shift
+   from the slow-exchange trend, a linewidth from a reference line) carries that error into every rate.
+   The optimum x of the free parameters moves with a held parameter theta as
+   dx/dtheta = -(Jx^T Jx)^-1 Jx^T Jtheta (implicit differentiation of the normal equations at the
+   optimum; Jacobians by central differences), and var(log10 k) gains sum_theta (dlog10k/dtheta
+   stderr_theta)^2 (held parameters taken as independent).  The same amount widens each side of the
+   profile interval in quadrature.  Each rate keeps the split (``log10_stderr_spectrum``,
+   ``log10_stderr_held`` and the share of every held parameter).
 """
 from __future__ import annotations
 
@@ -60,7 +70,7 @@ import contextlib
 import dataclasses
 import math
 import re
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -71,7 +81,7 @@ from scipy import signal, stats
 
 from .engine import default_window_ppm, lineshape_terms
 from .errors import InputError, did_you_mean
-from .model import Model
+from .model import Model, parse_coupling_key
 from .readers import MeasuredSpectrum, read_spectrum
 from .notebook import NotebookView
 
@@ -82,7 +92,8 @@ PHASE_MODES = ("none", "zero-order", "first-order")
 LINEWIDTH_MODES = ("fixed", "shared", "per-state")
 POPULATION_MODES = ("fixed", "free")
 SHIFT_MODES = ("fixed", "free")
-SETTING_KEYS = ("value", "vary", "min", "max", "expr")
+COUPLING_MODES = ("fixed", "free")
+SETTING_KEYS = ("value", "vary", "min", "max", "expr", "stderr")
 
 NOISE_SEGMENT_POINTS = 64
 """Points per segment when detrending signal-free regions for the noise estimate."""
@@ -103,6 +114,12 @@ ASYMMETRY_LIMIT = 1.5
 PROFILE_RESTARTS = 3
 """Times the fit is restarted from a better minimum the profile found; the profile after the last
 restart keeps what it finds and reports the rate as unstable."""
+SHIFT_SEARCH_HZ = 12.0
+"""With free shifts, each is first searched this far (Hz) either side of its start value."""
+SHIFT_SEARCH_MIN_STEP_HZ = 0.2
+"""Finest step (Hz) of that search (else a third of the narrowest linewidth)."""
+COUPLING_REACH_HZ = 2.0
+"""A free coupling may move this far (Hz) from the model's value, or a quarter of it when larger."""
 MAD_TO_SIGMA = 1.4826
 """Median absolute deviation to standard deviation, for normal noise."""
 CLIP_SIGMAS = 3.5
@@ -169,6 +186,8 @@ class FitOptions:
     shifts : {"fixed", "free"}
         Keep the model's shifts (needed in fast exchange, where the spectrum does not fix them) or fit
         them.  Free shifts fix the frequency offset (the two would be degenerate).
+    couplings : {"fixed", "free"}
+        Keep the model's scalar couplings or fit them (``coupling_hz_<state>_<a>_<b>``).
     rate_scan_per_s : (float, float)
         Range of the coarse scan over the rate (s^-1).
     rate_limits_per_s : (float, float)
@@ -179,7 +198,8 @@ class FitOptions:
         Profile chi-square over every rate to find bounds (on by default; off only for speed).
     parameters : mapping
         Settings by parameter name: ``{"linewidth_hz_a": {"value": 1.2, "vary": False}}``; keys
-        value, vary, min, max, expr.
+        value, vary, min, max, expr, and stderr: the standard error of a held value, carried into
+        the rates.
     """
 
     region_ppm: tuple[float, float] | None = None
@@ -192,6 +212,7 @@ class FitOptions:
     linewidth: str = "shared"
     populations: str = "fixed"
     shifts: str = "fixed"
+    couplings: str = "fixed"
     rate_scan_per_s: tuple[float, float] = (1e-2, 1e7)
     rate_limits_per_s: tuple[float, float] = (1e-3, 1e9)
     scan_points: int = 37
@@ -212,6 +233,7 @@ class FitOptions:
         _choice(self.linewidth, LINEWIDTH_MODES, "linewidth")
         _choice(self.populations, POPULATION_MODES, "populations")
         _choice(self.shifts, SHIFT_MODES, "shifts")
+        _choice(self.couplings, COUPLING_MODES, "couplings")
         if not isinstance(self.frequency_offset, bool):
             raise InputError(f"frequency_offset must be true or false, got {self.frequency_offset!r}",
                              where="frequency_offset")
@@ -262,7 +284,7 @@ def _checked_settings(settings: Mapping) -> dict[str, dict[str, Any]]:
                                  f'allowed: {", ".join(SETTING_KEYS)}', where=f"{where}.{key}")
             ok = {"vary": isinstance(value, bool), "expr": isinstance(value, str)}.get(
                 key, isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
-            if not ok:
+            if not ok or (key == "stderr" and value < 0):
                 raise InputError(f"not a valid {key}: {value!r}", where=f"{where}.{key}")
         out[str(name)] = dict(setting)
     return out
@@ -426,6 +448,8 @@ class ParameterLayout:
     population_names: tuple[str, ...]
     shift_names: tuple[tuple[str, ...], ...]
     baseline_names: tuple[str, ...]
+    coupling_names: tuple[dict[str, str], ...] = ()
+    """Per state, parameter name -> the model's coupling key ("A-B") of every coupling it gives."""
 
     @classmethod
     def for_model(cls, model: Model, options: FitOptions) -> "ParameterLayout":
@@ -448,6 +472,9 @@ class ParameterLayout:
             population_names=names("population_", model.state_names) if len(model.states) > 1 else (),
             shift_names=tuple(names(f"shift_ppm_{_identifier(s.name)}_", model.spins) for s in model.states),
             baseline_names=tuple(unique(f"baseline_{j}") for j in range(options.baseline_order + 1)),
+            coupling_names=tuple(
+                {unique(f"coupling_hz_{_identifier(s.name)}_" + "_".join(_identifier(x) for x in parse_coupling_key(key))): key
+                 for key in s.couplings_hz} for s in model.states),
         )
 
     def parameters(self, span_hz: float) -> lmfit.Parameters:
@@ -482,18 +509,26 @@ class ParameterLayout:
                 value = state.shifts_ppm[spin]
                 params.add(name, value=value, min=value - span_hz / sf, max=value + span_hz / sf,
                            vary=opt.shifts == "free")
+        for state, names in zip(model.states, self.coupling_names):
+            for name, key in names.items():
+                value = float(state.couplings_hz[key])
+                reach = max(COUPLING_REACH_HZ, 0.25 * abs(value))
+                params.add(name, value=value, min=value - reach, max=value + reach, vary=opt.couplings == "free")
         apply_settings(params, opt.parameters)
         return params
 
     def model_from(self, values: Mapping[str, float]) -> Model:
-        """The model with the parameter `values` (rates, linewidths, populations, shifts) put in."""
+        """The model with the parameter `values` (rates, linewidths, populations, shifts, couplings) put in."""
         states = []
         for i, state in enumerate(self.model.states):
             changes: dict[str, Any] = {
                 "linewidth_hz": float(values[self.linewidth_names[i]]),
                 "shifts_ppm": {spin: float(values[n]) for spin, n in zip(self.model.spins, self.shift_names[i])},
             }
-            if self.population_names and self.options.populations == "free":
+            if self.coupling_names and self.coupling_names[i]:
+                changes["couplings_hz"] = {**state.couplings_hz,
+                                           **{key: float(values[n]) for n, key in self.coupling_names[i].items()}}
+            if self.population_names:  # the model's populations unless fitted or held at other values
                 changes.update(population=float(values[self.population_names[i]]), free_energy_kj_mol=None)
             states.append(dataclasses.replace(state, **changes))
         rates = [10.0 ** float(values[n]) for n in self.rate_names]
@@ -501,7 +536,11 @@ class ParameterLayout:
 
 
 def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> None:
-    """Apply per-parameter settings (value, vary, min, max, expr) to lmfit `params` in place."""
+    """Apply per-parameter settings (value, vary, min, max, expr) to lmfit `params` in place.
+
+    A held parameter (``vary = False``) keeps any value given: its bounds are widened to hold it.  The
+    setting ``stderr`` (the uncertainty of a held value) is read by the fit, not here.
+    """
     for name, setting in settings.items():
         if name not in params:
             raise InputError(f'no fit parameter "{name}"{did_you_mean(name, params)}; parameters are '
@@ -513,6 +552,9 @@ def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str,
             for key in ("min", "max", "value", "vary"):
                 if key in setting:
                     par.set(**{key: setting[key]})
+            if "value" in setting and not par.vary and not par.expr:
+                par.set(min=min(par.min, setting["value"]), max=max(par.max, setting["value"]),
+                        value=setting["value"])
         except Exception as err:  # lmfit raises NameError/SyntaxError for a bad expression
             raise InputError(f"cannot apply {dict(setting)}: {err}", where=f"parameters.{name}") from None
     try:
@@ -637,8 +679,13 @@ class _Problem:
 # scan, refinement, profile
 
 
-def _scan(problem: _Problem, params: lmfit.Parameters) -> tuple[list[dict], dict]:
-    """Coarse scan over log k of each varying rate in turn; returns starting points and the scan curves."""
+def _scan(problem: _Problem, params: lmfit.Parameters, slow_start: bool = False) -> tuple[list[dict], dict]:
+    """Coarse scan over log k of each varying rate in turn; returns starting points and the scan curves.
+
+    With `slow_start` the slowest scan point is a start too: with free shifts or couplings that are a few
+    Hz off, a faster rate can broaden misplaced lines into a better scan point than the right, slow one,
+    and a refinement from there may end in a false minimum.
+    """
     opt = problem.layout.options
     grid = np.linspace(*np.log10(opt.rate_scan_per_s), opt.scan_points)
     values = params.valuesdict()
@@ -656,9 +703,35 @@ def _scan(problem: _Problem, params: lmfit.Parameters) -> tuple[list[dict], dict
         values = points[order[0]][1]
         minima = [i for i in order if (i == 0 or chi[i] <= chi[i - 1]) and (i == len(chi) - 1 or chi[i] <= chi[i + 1])]
         starts = [points[i][1] for i in minima[:2] if chi[i] <= SECOND_START_RATIO * chi[order[0]]]
+        if slow_start and 0 not in minima[:2]:
+            starts.append(points[0][1])
     if not varying:
         starts = [problem.linear_solve(params, problem.coarse_offset(params, values))[1]]
     return starts, curves
+
+
+def _shift_search(problem: _Problem, params: lmfit.Parameters, values: dict) -> dict:
+    """Values with every free shift moved to the best point of a coarse search within SHIFT_SEARCH_HZ of
+    its start (amplitude, phase and baseline solved linearly at each point), spin by spin, twice over.
+
+    A first-guess shift a few Hz off is further than a narrow line is wide: a local refinement from it
+    can settle on a false minimum (a line fitted by the wrong partner), which this search avoids.
+    """
+    sf = problem.layout.model.spectrometer.frequency_mhz
+    names = [n for names in problem.layout.shift_names for n in names if params[n].vary and not params[n].expr]
+    widths = [values[n] for n in problem.layout.linewidth_names]
+    step = max(SHIFT_SEARCH_MIN_STEP_HZ, min(widths) / 3.0) / sf
+    grid = np.arange(-SHIFT_SEARCH_HZ / sf, SHIFT_SEARCH_HZ / sf + 0.5 * step, step)
+    chi, values = problem.linear_solve(params, values)
+    for _ in range(2):
+        for name in names:
+            par, centre = params[name], values[name]
+            for x in centre + grid:
+                if par.min <= x <= par.max:
+                    trial_chi, trial = problem.linear_solve(params, {**values, name: float(x)})
+                    if trial_chi < chi:
+                        chi, values = trial_chi, trial
+    return values
 
 
 def _with_values(params: lmfit.Parameters, values: Mapping[str, float]) -> lmfit.Parameters:
@@ -819,7 +892,7 @@ class RateEstimate:
     interval_per_s : (float, float)
         Ends of the profile's 68 % interval (NaN where it is open).
     log10_rate, log10_stderr : float
-        The same on the log10 scale the fit works in.
+        The same on the log10 scale the fit works in (the error includes the held parameters' share).
     status : str
         "determined", "interval" (two-sided bound), "upper-bound" (slow-exchange limit),
         "lower-bound" (fast-exchange limit), "undetermined" or "fixed".
@@ -827,6 +900,12 @@ class RateEstimate:
         Why a bound and not an error bar, in words.
     profile : Profile or None
         The chi-square profile.
+    log10_stderr_spectrum : float
+        The part of the error from this spectrum's noise (log10 decades).
+    log10_stderr_held : float
+        The part from the errors of held parameters (a trend, a reference line); 0 when none.
+    held_shares : dict
+        Per held parameter, the change of log10 k for one standard error of it.
     """
 
     process: str
@@ -840,6 +919,9 @@ class RateEstimate:
     status: str
     reason: str = ""
     profile: Profile | None = None
+    log10_stderr_spectrum: float = math.nan
+    log10_stderr_held: float = 0.0
+    held_shares: Mapping[str, float] = field(default_factory=dict)
 
     def describe(self) -> str:
         """One line: ``k = 123 ± 5 s^-1`` or ``k < 3.1 s^-1 (upper bound)``."""
@@ -889,32 +971,59 @@ def _num(x: float, digits: int = 3) -> str:
     return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
 
 
+@dataclass(frozen=True)
+class _RateContext:
+    """What the whole fit tells the classification of each rate."""
+
+    shifts_fixed: bool = False
+    linewidth_free: bool = False
+    at_bound: tuple[str, ...] = ()
+    """Free nuisance parameters that ended at a bound of their range."""
+
+
+def _widen(x: float, end: float, extra: float, limit: float) -> float:
+    """An end of the profile interval moved out by `extra` in quadrature; NaN (open) when that reaches the
+    range limit `limit`."""
+    if not np.isfinite(end):
+        return end
+    moved = x + math.copysign(math.hypot(end - x, extra), end - x)
+    return math.nan if (moved - limit) * (end - x) >= 0 else moved
+
+
 def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profile | None,
-              shifts_fixed: bool) -> RateEstimate:
-    """Turn the best fit and the profile of one rate into an estimate, an interval or a bound."""
+              context: _RateContext, shares: Mapping[str, float]) -> RateEstimate:
+    """Turn the best fit and the profile of one rate into an estimate, an interval or a bound; `shares`
+    (log10 k per standard error of each held parameter) widen the error and the interval."""
     par = params[name]
-    x, s = par.value, _stderr(par)
+    x, own = par.value, _stderr(par)
+    held = math.sqrt(sum(v * v for v in shares.values()))
+    s = math.hypot(own, held) if np.isfinite(own) else own
     k = 10.0 ** x
 
     def estimate(status: str, stderr: float = math.nan, lower: float = math.nan, upper: float = math.nan,
                  reason: str = "", interval=(math.nan, math.nan)) -> RateEstimate:
-        return RateEstimate(process, k, stderr, lower, upper, interval, x, s, status, reason, profile)
+        return RateEstimate(process, k, stderr, lower, upper, interval, x, s, status, reason, profile,
+                            log10_stderr_spectrum=own, log10_stderr_held=held, held_shares=dict(shares))
 
     if not par.vary or par.expr:
         return estimate("fixed", reason=f"tied: {par.expr}" if par.expr else "held fixed")
+    held_text = (f" The held parameters add {held:.3f} decades in quadrature (widening the interval too)."
+                 if held > 0 else "")
     # an error bar reaching past a limit of the allowed range is no error bar: the range cut it
     inside = np.isfinite(s) and s > 0 and par.min + s < x < par.max - s
     if profile is None:
-        if inside:
+        if inside and not context.at_bound:
             return estimate("determined", stderr=k * math.log(10) * s,
                             reason="no profile computed: the error bar assumes a parabolic chi-square")
         side = ("fast-exchange (upper)" if par.max - x < x - par.min else "slow-exchange (lower)")
         why = (f"the best fit lies within its error of the {side} limit of the allowed range "
                f"({10 ** par.min:.3g} to {10 ** par.max:.3g} s^-1)" if np.isfinite(s) and s > 0
                else "the covariance gives no error")
+        if inside:
+            why = f"{', '.join(context.at_bound)} ended at a bound of its range"
         return estimate("undetermined", reason=f"{why}; without the chi-square profile (profile off) the spectrum "
                                                "gives no bound: fit with the profile on")
-    lo, hi = profile.lower, profile.upper
+    lo, hi = _widen(x, profile.lower, held, par.min), _widen(x, profile.upper, held, par.max)
     interval = (10.0 ** lo if np.isfinite(lo) else math.nan, 10.0 ** hi if np.isfinite(hi) else math.nan)
     level = f"delta chi-square < {profile.threshold:.3g}"
     unstable = (f" The profile found a better fit at log10 k = {profile.best_log10_rate:.3f} (chi-square lower by "
@@ -923,25 +1032,36 @@ def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profil
     if np.isfinite(lo) and np.isfinite(hi):
         down, up = x - lo, hi - x
         parabolic = inside and all(1 / ASYMMETRY_LIMIT <= h / s <= ASYMMETRY_LIMIT for h in (down, up))
-        if parabolic and not profile.unstable:
-            return estimate("determined", stderr=k * math.log(10) * s, interval=interval)
+        if parabolic and not profile.unstable and not context.at_bound:
+            return estimate("determined", stderr=k * math.log(10) * s, interval=interval,
+                            reason=held_text.strip())
+        if context.at_bound and not profile.unstable:
+            cause = (f"{', '.join(context.at_bound)} ended at a bound of its range, which cuts the profile and biases "
+                     "the best fit, so no error bar (see the notes).")
+        elif profile.unstable:
+            cause = "the profile is unstable, so no error bar."
+        else:
+            cause = "chi-square is far from a parabola or cut by a limit of the allowed range, so no error bar."
         return estimate("interval", lower=interval[0], upper=interval[1], interval=interval,
                         reason=f"the 68 % interval runs {down:.2f} decades below and {up:.2f} above the best fit "
-                               f"(parabolic error {s:.2f}): " + (
-                                   "the profile is unstable, so no error bar." if profile.unstable else
-                                   "chi-square is far from a parabola or cut by a limit of the allowed range, so no "
-                                   "error bar.") + unstable)
+                               f"(parabolic error {s:.2f}): {cause}{unstable}{held_text}")
     if np.isfinite(hi):
         return estimate("upper-bound", upper=interval[1], interval=interval,
                         reason=f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
                                "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
-                               "under the bound." + unstable)
+                               "under the bound." + unstable + held_text)
     if np.isfinite(lo):
-        known = " with the shifts fixed at the values given (the bound depends on them)" if shifts_fixed else ""
+        if context.linewidth_free:
+            why = ("the intrinsic linewidth is free in this fit and trades against the exchange broadening past "
+                   "coalescence, so a wider line and a slower rate fit as well as a faster rate; hold the linewidth "
+                   '(series file: linewidth = "slow-exchange-trend" or "reference-line"; one spectrum: fix '
+                   "linewidth_hz_<state> in parameters) to get a value")
+        else:
+            known = " with the shifts fixed at the values given (the bound depends on them)" if context.shifts_fixed else ""
+            why = f"the excess width of the averaged line is below what the noise resolves for any k over the bound{known}"
         return estimate("lower-bound", lower=interval[0], interval=interval,
                         reason=f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
-                               "s^-1; the excess width of the averaged line is below what the noise resolves for any "
-                               f"k over the bound{known}." + unstable)
+                               f"s^-1; {why}." + unstable + held_text)
     return estimate("undetermined", reason=f"the spectrum does not constrain this rate ({level} over the whole "
                                            f"range).{unstable}")
 
@@ -1019,6 +1139,11 @@ class SpectrumFit(NotebookView):
                 return r
         raise InputError(f"no process {process!r}; processes are {[r.process for r in self.rates]}")
 
+    def correlation(self, first: str, second: str) -> float:
+        """Correlation of the estimates of two free parameters (NaN when the covariance gave none)."""
+        value = (self.parameters[first].correl or {}).get(second)
+        return math.nan if value is None else float(value)
+
     def report(self) -> str:
         """A readable account of the fit."""
         where = f" at {self.temperature_k:g} K" if self.temperature_k else ""
@@ -1072,7 +1197,8 @@ class SpectrumFit(NotebookView):
             "points": int(self.ppm.size),
             "rates": [r.to_dict() for r in self.rates],
             "parameters": {p.name: {"value": p.value, "stderr": math.nan if p.stderr is None else p.stderr,
-                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr}
+                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr,
+                                    "correlations": dict(p.correl or {})}
                            for p in self.parameters.values()},
             "chi_square": self.chi_square,
             "reduced_chi_square": self.reduced_chi_square,
@@ -1094,6 +1220,7 @@ class SpectrumFit(NotebookView):
             params.add(name, value=p["value"], min=_or(p["min"], -np.inf), max=_or(p["max"], np.inf))
             params[name].vary = p["vary"]
             params[name].stderr = _or(p["stderr"], math.nan)
+            params[name].correl = dict(p.get("correlations") or {}) or None
         for name, p in data["parameters"].items():  # ties last: they may name parameters added later
             if p.get("expr"):
                 params[name].set(expr=p["expr"])
@@ -1131,8 +1258,9 @@ def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tu
     return max(lo, float(spectrum.ppm[0])), min(hi, float(spectrum.ppm[-1]))
 
 
-def _error_scale(chi2: float, dof: int, noise: NoiseEstimate) -> tuple[float, list[str], list[str]]:
-    """Covariance factor s, with flags and notes on the fit quality."""
+def _error_scale(chi2: float, dof: int, noise: NoiseEstimate, held: Sequence[str] = ()) -> tuple[float, list[str], list[str]]:
+    """Covariance factor s, with flags and notes on the fit quality; `held` names the parameters held at
+    values from elsewhere (a trend, a reference line), the first suspects of a misfit."""
     c = noise.correlation_factor
     red = chi2 / max(dof, 1)
     # red = (chi^2_dof / dof) (sigma / sigma_est)^2: both factors scatter, by 2c/dof and, for a noise
@@ -1148,8 +1276,10 @@ def _error_scale(chi2: float, dof: int, noise: NoiseEstimate) -> tuple[float, li
     if red > 1.0 + spread:
         scale *= red
         flags.append("misfit")
+        cause = (f"the values held from elsewhere ({', '.join(held)}) may not match the lines of this spectrum, "
+                 "or a baseline, impurity or wrong model" if held else "baseline, impurity, wrong model?")
         notes.append(f"reduced chi-square {red:.2f} is well above 1: the model does not describe the data to the "
-                     "noise level (baseline, impurity, wrong model?); errors are widened by its square root")
+                     f"noise level ({cause}); errors are widened by its square root")
     elif red < 1.0 - spread:
         flags.append("noise-overestimated")
         notes.append(f"reduced chi-square {red:.2f} is well below 1: the noise estimate is probably too high "
@@ -1241,11 +1371,14 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
                              "options) with the same options", where="parameters")
         params = parameters.copy()
     flags, notes = [], []
+    held = held_errors(params, options.parameters)
     if options.shifts == "free" and options.frequency_offset:
         notes.append("the frequency offset is held at its start value because the shifts are free")
     if start:
         params = _with_values(params, {k: v for k, v in start.items() if k in params})
-    starts, _ = _scan(problem, params)
+    starts, _ = _scan(problem, params, slow_start=options.shifts == "free" or options.couplings == "free")
+    if options.shifts == "free":
+        starts = [_shift_search(problem, params, s) for s in starts]
     if start:
         starts.append(problem.linear_solve(params, params.valuesdict())[1])
     best = _refine(problem, params, starts)
@@ -1253,7 +1386,7 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
     dof = part.ppm.size - n_free
     profiles: dict[str, Profile] = {}
     for attempt in range(PROFILE_RESTARTS + 1):  # a profile that finds a better minimum restarts from it
-        scale, quality_flags, quality_notes = _error_scale(best.chisqr, dof, noise)
+        scale, quality_flags, quality_notes = _error_scale(best.chisqr, dof, noise, held=list(held))
         try:
             profiles = {n: _profile(problem, best, n, scale, _stderr(best.params[n]) * math.sqrt(scale),
                                     restart=attempt < PROFILE_RESTARTS)
@@ -1281,7 +1414,12 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
         flags.append("singular")
         notes.append("the parameters are not all determined (singular covariance): fix or tie some of them")
     values = best.params.valuesdict()
-    rates = [_classify(n, proc, best.params, profiles.get(n), options.shifts == "fixed")
+    shares = _held_shares(problem, best.params, layout.rate_names, held) if held else {}
+    context = _RateContext(shifts_fixed=options.shifts == "fixed",
+                           linewidth_free=any(best.params[n].vary and not best.params[n].expr
+                                              for n in layout.linewidth_names),
+                           at_bound=tuple(f.split(":", 1)[1] for f in more_flags))
+    rates = [_classify(n, proc, best.params, profiles.get(n), context, shares.get(n, {}))
              for n, proc in zip(layout.rate_names, model.process_names())]
     for r in rates:
         if r.status in ("upper-bound", "lower-bound", "interval", "undetermined"):
@@ -1298,3 +1436,45 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
 
 def _stderr(par: lmfit.Parameter) -> float:
     return math.nan if par.stderr is None else float(par.stderr)
+
+
+def held_errors(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> dict[str, float]:
+    """Standard errors of the parameters held fixed with a ``stderr`` setting (positive ones only)."""
+    return {name: float(s["stderr"]) for name, s in settings.items()
+            if s.get("stderr", 0) > 0 and name in params and not params[name].vary and not params[name].expr}
+
+
+def _residual_slope(problem: _Problem, params: lmfit.Parameters, name: str, step: float) -> np.ndarray:
+    """d residual / d parameter `name` by a central difference of `step`, kept within its bounds."""
+    par = params[name]
+    lo, hi = max(par.value - step, par.min), min(par.value + step, par.max)
+    ends = []
+    for x in (lo, hi):
+        trial = params.copy()
+        trial[name].value = x
+        ends.append(problem.residual(trial))
+    return (ends[1] - ends[0]) / (hi - lo)
+
+
+def _held_shares(problem: _Problem, params: lmfit.Parameters, rate_names, held: Mapping[str, float]
+                 ) -> dict[str, dict[str, float]]:
+    """How far (log10 k) each free rate moves for one standard error of each held parameter.
+
+    dx/dtheta = -(Jx^T Jx)^-1 Jx^T Jtheta at the optimum (x the free parameters, theta the held ones),
+    solved by least squares so that a degenerate direction does not blow up.
+    """
+    free = [n for n, p in params.items() if p.vary and not p.expr]
+    rates = [n for n in rate_names if n in free]
+    if not rates:
+        return {}
+    step = lambda name, size: size if size > 0 else 1e-4 * max(1.0, abs(params[name].value))  # noqa: E731
+    jx = np.column_stack([_residual_slope(problem, params, n, step(n, 0.1 * _finite_or_zero(_stderr(params[n]))))
+                          for n in free])
+    jt = np.column_stack([_residual_slope(problem, params, n, step(n, 0.1 * s)) for n, s in held.items()])
+    dx, *_ = np.linalg.lstsq(jx, -jt, rcond=None)
+    sigma = np.array(list(held.values()))
+    return {r: {h: float(dx[free.index(r), j] * sigma[j]) for j, h in enumerate(held)} for r in rates}
+
+
+def _finite_or_zero(x: float) -> float:
+    return x if np.isfinite(x) else 0.0

@@ -22,6 +22,14 @@ PLANCK = constants.h  # J s
 GAS_CONSTANT = constants.R  # J/(mol K)
 KCAL_PER_KJ = 1.0 / 4.184  # thermochemical calorie
 STANDARD_TEMPERATURE_K = 298.15
+MAX_TEMPERATURE_K = 2000.0
+"""Hottest temperature accepted (K): far above any NMR probe; a larger number is a slip or damage."""
+
+
+def rate_ceiling_per_s(temperature_k: float) -> float:
+    """kB T / h (s^-1) at `temperature_k` (K): the Eyring rate of a zero free-energy barrier, above
+    which no first-order rate constant lies (about 6.2e12 s^-1 at 298.15 K)."""
+    return BOLTZMANN * float(temperature_k) / PLANCK
 
 
 def eyring_rate(

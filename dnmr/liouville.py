@@ -115,6 +115,20 @@ def coherence_blocks(n_spins: int, levels: tuple[int, ...] | None = None) -> tup
     )
 
 
+def largest_block_size(levels: tuple[int, ...]) -> int:
+    """Coherences of the largest single-quantum block of particles with 2 S + 1 = `levels`, counted
+    without enumerating a basis state: the manifold sizes are the coefficients of
+    prod_i (1 + x + ... + x^(levels_i - 1)), and block q pairs manifolds q + 1 and q."""
+    sizes = [1]
+    for n in levels:
+        grown = [0] * (len(sizes) + n - 1)
+        for k, c in enumerate(sizes):
+            for d in range(n):
+                grown[k + d] += c
+        sizes = grown
+    return max((a * b for a, b in zip(sizes[1:], sizes)), default=0)
+
+
 def _index_in_block(block: CoherenceBlock, r: np.ndarray, s: np.ndarray) -> np.ndarray:
     """Coherence indices of the pairs (r, s), which must belong to `block`."""
     return np.searchsorted(block.r_states, r) * len(block.s_states) + np.searchsorted(block.s_states, s)

@@ -21,21 +21,31 @@ import numpy as np
 
 from .errors import InputError
 from .kinetics import (
+    MAX_TEMPERATURE_K,
+    STANDARD_TEMPERATURE_K,
     Jump,
     boltzmann_populations,
     check_stationary,
     exchange_jumps,
     eyring_rate,
     eyring_rate_from_enthalpy,
+    rate_ceiling_per_s,
     rate_matrix,
 )
-from .nuclei import Nucleus, nucleus
+from .nuclei import Nucleus, check_frequency_mhz, nucleus
 
 
-def _finite(value, where: str, *, positive: bool = False, nonnegative: bool = False) -> float:
+#: Largest magnitude accepted for each kind of number of a model (a larger one is a slip or damage,
+#: and would overflow the arithmetic): shifts in ppm (heavy-nucleus shift ranges span about 2e4 ppm),
+#: couplings and linewidths in Hz, relative populations, energies in kJ/mol, entropies in J/(mol K).
+LIMITS = {"ppm": 1e5, "hz": 1e6, "weight": 1e15, "kj_mol": 1e3, "j_mol_k": 1e3}
+
+
+def _finite(value, where: str, *, positive: bool = False, nonnegative: bool = False,
+            limit: str | None = None) -> float:
     try:
         x = float(value)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise InputError(f"expected a number, got {value!r}", where=where) from None
     if isinstance(value, bool) or not math.isfinite(x):
         raise InputError(f"expected a finite number, got {value!r}", where=where)
@@ -43,6 +53,9 @@ def _finite(value, where: str, *, positive: bool = False, nonnegative: bool = Fa
         raise InputError(f"must be greater than 0, got {value!r}", where=where)
     if nonnegative and x < 0:
         raise InputError(f"must not be negative, got {value!r}", where=where)
+    if limit is not None and abs(x) > LIMITS[limit]:
+        raise InputError(f"{x:g} is out of range: at most {LIMITS[limit]:g} {limit.replace('_', '/')} in size;"
+                         " check the value and its unit", where=where)
     return x
 
 
@@ -75,7 +88,7 @@ class Spectrometer:
     nucleus: str = "1H"
 
     def __post_init__(self):
-        _finite(self.frequency_mhz, "spectrometer.frequency_mhz", positive=True)
+        check_frequency_mhz(self.frequency_mhz, "spectrometer.frequency_mhz")
         iso = self.isotope
         if iso.spin != 0.5:
             raise InputError(
@@ -144,7 +157,7 @@ class State:
             raise InputError("every state needs a non-empty name", where="name")
         if not self.shifts_ppm:
             raise InputError("a state needs at least one spin", where="shifts_ppm")
-        shifts = {str(k): _finite(v, f"shifts_ppm.{k}") for k, v in self.shifts_ppm.items()}
+        shifts = {str(k): _finite(v, f"shifts_ppm.{k}", limit="ppm") for k, v in self.shifts_ppm.items()}
         order = {name: (0, i, "") for i, name in enumerate(shifts)}  # then heteronuclei by name
         couplings: dict[str, float] = {}
         for key, value in self.couplings_hz.items():
@@ -154,14 +167,14 @@ class State:
             canon = coupling_key(*sorted((a, b), key=lambda name: order.get(name, (1, 0, name))))
             if canon in couplings:
                 raise InputError(f'coupling between {a} and {b} given twice', where=f"couplings_hz.{key}")
-            couplings[canon] = _finite(value, f"couplings_hz.{key}")
-        _finite(self.linewidth_hz, "linewidth_hz", positive=True)
+            couplings[canon] = _finite(value, f"couplings_hz.{key}", limit="hz")
+        _finite(self.linewidth_hz, "linewidth_hz", positive=True, limit="hz")
         if (self.population is None) == (self.free_energy_kj_mol is None):
             raise InputError("give either population or free_energy_kj_mol", where="population")
         if self.population is not None:
-            _finite(self.population, "population", nonnegative=True)
+            _finite(self.population, "population", nonnegative=True, limit="weight")
         else:
-            _finite(self.free_energy_kj_mol, "free_energy_kj_mol")
+            _finite(self.free_energy_kj_mol, "free_energy_kj_mol", limit="kj_mol")
         object.__setattr__(self, "shifts_ppm", shifts)
         object.__setattr__(self, "couplings_hz", couplings)
         object.__setattr__(self, "r1_per_s", self._checked_r1())
@@ -236,13 +249,13 @@ class Exchange:
         if self.rate_per_s is not None:
             _finite(self.rate_per_s, "rate_per_s", nonnegative=True)
         if self.barrier_kj_mol is not None:
-            _finite(self.barrier_kj_mol, "barrier_kj_mol")
+            _finite(self.barrier_kj_mol, "barrier_kj_mol", limit="kj_mol")
         if given[2]:
             if self.enthalpy_kj_mol is None or self.entropy_j_mol_k is None:
                 missing = "entropy_j_mol_k" if self.entropy_j_mol_k is None else "enthalpy_kj_mol"
                 raise InputError("enthalpy_kj_mol and entropy_j_mol_k go together", where=missing)
-            _finite(self.enthalpy_kj_mol, "enthalpy_kj_mol")
-            _finite(self.entropy_j_mol_k, "entropy_j_mol_k")
+            _finite(self.enthalpy_kj_mol, "enthalpy_kj_mol", limit="kj_mol")
+            _finite(self.entropy_j_mol_k, "entropy_j_mol_k", limit="j_mol_k")
         object.__setattr__(self, "spins", {str(k): str(v) for k, v in self.spins.items()})
 
     @property
@@ -319,8 +332,11 @@ class Model:
             raise InputError("a model needs at least one [[state]]", where="state")
         if self.temperature_k is not None:
             _finite(self.temperature_k, "conditions.temperature_k", positive=True)
+            if self.temperature_k > MAX_TEMPERATURE_K:
+                raise InputError(f"{self.temperature_k:g} K is above the {MAX_TEMPERATURE_K:g} K dnmr accepts",
+                                 where="conditions.temperature_k")
         if self.window_ppm is not None:
-            lo, hi = sorted(_finite(v, "window.ppm") for v in self.window_ppm)
+            lo, hi = sorted(_finite(v, "window.ppm", limit="ppm") for v in self.window_ppm)
             if lo == hi:
                 raise InputError("the window needs two different limits", where="window.ppm")
             object.__setattr__(self, "window_ppm", (lo, hi))
@@ -426,6 +442,21 @@ class Model:
                 raise InputError(
                     "a mutual exchange (from == to) must move at least one spin", where=f"{where}.spins"
                 )
+            self._check_rate(ex, where)
+
+    def _check_rate(self, ex: "Exchange", where: str) -> None:
+        """Refuse a rate above kB T/h, the Eyring rate of a zero barrier: no first-order process is faster
+        (and the lineshape of far faster rates loses its promised integral to rounding)."""
+        temperature = self.temperature_k or STANDARD_TEMPERATURE_K
+        rate, ceiling = ex.rate_at(temperature), rate_ceiling_per_s(temperature)
+        if rate <= ceiling:
+            return
+        key = "rate_per_s" if ex.rate_per_s is not None else "barrier_kj_mol" if ex.barrier_kj_mol is not None \
+            else "enthalpy_kj_mol"
+        at = f"{temperature:g} K" + ("" if self.temperature_k else " (no conditions.temperature_k given)")
+        raise InputError(f"gives a rate of {rate:.3g} s^-1, above kB T/h = {ceiling:.3g} s^-1 at {at}, the fastest"
+                         " any first-order process can be (the Eyring rate of a zero barrier); check the value"
+                         " and its unit", where=f"{where}.{key}")
 
     def _kind(self, spin: str) -> str:
         """What a spin is, in words: observed or which heteronucleus, and how many nuclei."""

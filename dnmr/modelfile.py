@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError, did_you_mean
+from .inputfiles import read_input_bytes
 from .model import Exchange, Model, Spectrometer, State
 
 if sys.version_info >= (3, 11):
@@ -32,15 +33,7 @@ EXCHANGE_KEYS = {"name", "from", "to", "spins", "rate_per_s", "barrier_kj_mol", 
 def read_toml(path: str | Path) -> dict[str, Any]:
     """Parse a TOML file; syntax errors and unreadable files become one-line InputErrors."""
     path = Path(path)
-    try:
-        size = path.stat().st_size
-    except OSError as err:
-        raise InputError(f"cannot read the file ({err.strerror}); check the path", source=path) from None
-    if path.is_dir():
-        raise InputError("is a folder, expected a TOML file", source=path)
-    if size > MAX_FILE_BYTES:
-        raise InputError(f"is {size / 2**20:.0f} MiB, far too large for a TOML input file", source=path)
-    raw = path.read_bytes()
+    raw = read_input_bytes(path, MAX_FILE_BYTES, "TOML file")
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
@@ -49,6 +42,9 @@ def read_toml(path: str | Path) -> dict[str, Any]:
         raise InputError("is empty; see the file references in docs/ (model-file.md, series-file.md)", source=path)
     try:
         return tomllib.loads(text)
+    except RecursionError:  # tables or arrays nested thousands deep
+        raise InputError("is nested too deeply (tables or arrays inside each other); a dnmr input file is "
+                         "at most a few levels deep", source=path) from None
     except tomllib.TOMLDecodeError as err:
         msg = str(err)
         m = re.search(r"\(at line (\d+), column (\d+)\)", msg)
@@ -239,8 +235,12 @@ def load_model(path: str | Path) -> Model:
     InputError
         With the file name and the offending key, for any problem.
     """
+    from .engine import check_model_size
+
     data = read_toml(path)
     try:
-        return model_from_dict(data, source=str(path))
+        model = model_from_dict(data, source=str(path))
+        check_model_size(model)
     except InputError as err:
         raise err.located(source=path) from None
+    return model

@@ -6,9 +6,31 @@ Frequency ratios Xi (in %) are the IUPAC 2001 recommendations (Harris et al., Pu
 """
 from __future__ import annotations
 
+import math
+import numbers
 from dataclasses import dataclass
 
 from .errors import InputError
+
+MAX_FREQUENCY_MHZ = 3000.0
+"""Highest spectrometer frequency accepted (MHz): far above any NMR magnet built (1H near 1.2 GHz at
+28.2 T, from memory); a larger number is a slip (Hz or kHz for MHz) or damage."""
+
+
+def check_frequency_mhz(value, where: str) -> float:
+    """`value` as a spectrometer frequency (MHz), refused unless finite, positive and at most
+    :data:`MAX_FREQUENCY_MHZ`.
+
+    Raises
+    ------
+    InputError
+        Naming `where` (a key, record or option).
+    """
+    mhz = float(value) if isinstance(value, numbers.Real) and not isinstance(value, bool) else math.nan
+    if not 0 < mhz <= MAX_FREQUENCY_MHZ:  # also refuses nan
+        raise InputError(f"expected a spectrometer frequency above 0 and at most {MAX_FREQUENCY_MHZ:g} MHz, "
+                         f"got {value!r}", where=where)
+    return mhz
 
 
 @dataclass(frozen=True)

@@ -15,25 +15,74 @@ from .errors import InputError
 
 
 def _refuse_existing(path: Path, overwrite: bool) -> None:
-    if path.exists() and not overwrite:
+    if (path.exists() or path.is_symlink()) and not overwrite:
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
 
 
+def file_mode() -> int:
+    """The permissions a new file gets under the current umask (0666 less the umask), so that results
+    on a shared disk are as readable as any other file the user writes there."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+FIGURE_FORMATS = ("png", "svg", "pdf", "jpg", "jpeg", "tif", "tiff", "eps", "ps", "webp")
+"""Image formats a figure may be written in (from the file suffix)."""
+
+
+def check_output_file(path: str | Path | None, overwrite: bool, where: str, figure: bool = False) -> Path | None:
+    """Refuse, before any work, an output file that cannot be written: an empty name, a folder, an
+    existing file (unless `overwrite`), a figure whose suffix names no image format, or a folder to
+    write into that does not exist.  Returns `path` as a Path (None stays None).
+
+    Raises
+    ------
+    InputError
+        Naming the option `where` (``-o``, ``--plot``...).
+    """
+    if path is None:
+        return None
+    if not str(path).strip():
+        raise InputError("the file name is empty; name the file to write", where=where)
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{path} is a folder; name a file to write", where=where)
+    if figure and path.suffix.lower().lstrip(".") not in FIGURE_FORMATS:
+        raise InputError(f'"{path.suffix or path.name}" is not an image format; end the file name in '
+                         f"{', '.join('.' + f for f in FIGURE_FORMATS[:3])}", where=where)
+    if not path.parent.is_dir() and path.parent.exists():
+        raise InputError(f"{path.parent} is not a folder", where=where)
+    if (path.exists() or path.is_symlink()) and not overwrite:
+        raise InputError(f"{path} already exists; choose another name or pass --overwrite", where=where)
+    return path
+
+
 def atomic_write_bytes(path: str | Path, data: bytes, overwrite: bool = False) -> Path:
-    """Write `data` to `path` through a temporary file in the same folder and an atomic rename."""
+    """Write `data` to `path` through a temporary file in the same folder and an atomic rename.
+
+    The file gets the permissions of :func:`file_mode` (the umask's); a link at `path` is replaced by
+    the file, never followed.  A failure (a full disk) leaves no partial file behind.
+    """
     path = Path(path)
     _refuse_existing(path, overwrite)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")
+    except OSError as err:
+        raise OSError(err.errno, err.strerror, str(path)) from None
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, file_mode())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as err:
         if os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(err, OSError):  # name the file the user asked for, not the temporary one
+            raise OSError(err.errno, err.strerror, str(path)) from None
         raise
     return path
 
@@ -43,8 +92,8 @@ def atomic_write_text(path: str | Path, text: str, overwrite: bool = False) -> P
     return atomic_write_bytes(path, text.encode("utf-8"), overwrite=overwrite)
 
 
-#: Formats a figure can be written in: raster PNG, or vector SVG and PDF for print.
-FIGURE_FORMATS = ("png", "svg", "pdf")
+#: Formats dnmr's own figure files can be chosen in (--figure-format): raster PNG, or vector SVG and PDF for print.
+FIGURE_FORMAT_CHOICES = ("png", "svg", "pdf")
 #: The environment variable that carries the format chosen by :func:`figures_as` into worker processes.
 FIGURE_FORMAT_VARIABLE = "DNMR_FIGURE_FORMAT"
 
@@ -52,8 +101,9 @@ FIGURE_FORMAT_VARIABLE = "DNMR_FIGURE_FORMAT"
 def chosen_figure_format() -> str:
     """The format of the figures dnmr names itself (png, svg or pdf): png unless :func:`figures_as` chose another."""
     value = os.environ.get(FIGURE_FORMAT_VARIABLE, "png").strip().lower() or "png"
-    if value not in FIGURE_FORMATS:
-        raise InputError(f"figure format {value!r} is not one of {', '.join(FIGURE_FORMATS)}", where=FIGURE_FORMAT_VARIABLE)
+    if value not in FIGURE_FORMAT_CHOICES:
+        raise InputError(f"figure format {value!r} is not one of {', '.join(FIGURE_FORMAT_CHOICES)}",
+                         where=FIGURE_FORMAT_VARIABLE)
     return value
 
 
@@ -72,8 +122,8 @@ def figures_as(figure_format: str):
         The format.
     """
     figure_format = figure_format.strip().lower()
-    if figure_format not in FIGURE_FORMATS:
-        raise InputError(f"figure format {figure_format!r} is not one of {', '.join(FIGURE_FORMATS)}",
+    if figure_format not in FIGURE_FORMAT_CHOICES:
+        raise InputError(f"figure format {figure_format!r} is not one of {', '.join(FIGURE_FORMAT_CHOICES)}",
                          where="--figure-format")
     before = os.environ.get(FIGURE_FORMAT_VARIABLE)
     os.environ[FIGURE_FORMAT_VARIABLE] = figure_format
@@ -112,8 +162,8 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     """
     import io
 
-    path = figure_file(path)
     try:
+        path = check_output_file(figure_file(path), overwrite, "output", figure=True)
         buf = io.BytesIO()
         fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
         return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)

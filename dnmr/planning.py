@@ -121,6 +121,19 @@ CAUTIONS = (
     "These notes do not replace training: follow your facility's rules, its trained staff and local codes.",
 )
 
+PLAN_LINEWIDTH = "slow-exchange-trend"
+"""The linewidth treatment of ``dnmr fit`` that the plan's precision assumes (and writes into its series file)."""
+LINEWIDTH_ASSUMPTION = (
+    "The predicted precision takes the intrinsic linewidth as known in every spectrum, as dnmr fit holds it by"
+    ' default (series file: linewidth = "slow-exchange-trend", from the slow-exchange spectra of the plan) or from'
+    ' a signal in no exchange (linewidth = "reference-line" with [fit.reference_line]); with the linewidth fitted in'
+    ' every spectrum (linewidth = "shared") the rates past coalescence are only lower bounds and these errors do not'
+    " hold."
+)
+SLOW_FRACTION = 0.25
+"""A planned spectrum is in slow exchange when its rate is under this fraction of the coalescence rate
+(what ``dnmr fit`` asks of the spectra its trends come from)."""
+
 PLAN_CAVEAT = (
     "Standard errors are lower bounds from noise alone (Cramer-Rao), with linewidths, shifts and temperatures"
     " taken as known; their temperature dependence and the thermometer calibration add to them"
@@ -767,6 +780,7 @@ def _plan_field(model: Model, activations: dict[int, ActivationParameters], wind
         end = "low-temperature" if n == 0 else "high-temperature" if n == len(chosen) - 1 else ""
         planned.append(dataclasses.replace(entry, reason=_reason(entry, coalescences, end)))
     errors = predicted_errors(np.linalg.inv(sum(picked)), names, temperatures)
+    notes += _slow_note(planned, coalescences)
     return FieldPlan(model.spectrometer.proton_mhz, sf, planned, usable, errors, noise, notes)
 
 
@@ -839,6 +853,7 @@ class ExperimentPlan(NotebookView):
             "covering_solvents": self.covering_solvents,
             "usable_range_k": list(self.usable_range_k),
             "settings": {k: list(v) if isinstance(v, tuple) else v for k, v in self.settings.items()},
+            "linewidth_treatment": PLAN_LINEWIDTH, "linewidth_assumption": LINEWIDTH_ASSUMPTION,
             "notes": self.notes + [PLAN_CAVEAT],
             "cautions": list(self.cautions),
         }
@@ -880,7 +895,7 @@ class ExperimentPlan(NotebookView):
             lines += [f"  predicted (noise only): {e.describe()}" for e in plan.errors]
             lines += [f"  note: {n}" for n in plan.notes]
         lines += ["", self._solvent_report()]
-        lines += [f"Note: {n}" for n in self.notes + [PLAN_CAVEAT]]
+        lines += [f"Note: {n}" for n in self.notes + [PLAN_CAVEAT, LINEWIDTH_ASSUMPTION]]
         lines += ["", "Cautions:"] + [f"  - {c}" for c in self.cautions]
         return "\n".join(lines)
 
@@ -900,6 +915,49 @@ class ExperimentPlan(NotebookView):
     def plot(self, figure=None):
         """Predicted VT stack at the planned temperatures, one panel per field."""
         return plot_planned_stack(self, figure=figure)
+
+    def series_text(self, model_file: str, proton_mhz: float | None = None) -> str:
+        """A series file (TOML) for ``dnmr fit`` listing the planned temperatures at one field.
+
+        Parameters
+        ----------
+        model_file : str
+            Path of the model file as the series file should name it (relative to the series file).
+        proton_mhz : float, optional
+            The field (1H MHz) whose plan is written; default the first.
+        """
+        plans = [f for f in self.fields if proton_mhz is None or f.proton_mhz == proton_mhz]
+        if not plans or not plans[0].temperatures:
+            raise InputError("the plan has no temperatures at that field to write a series file for",
+                             where="--series")
+        plan = plans[0]
+        lines = [f"# planned by dnmr plan at {plan.proton_mhz:g} MHz: record each spectrum at its temperature and save",
+                 "# it under the file named here (or change the names), then run dnmr fit on this file",
+                 f"model = {_toml_string(model_file)}", "", "[fit]",
+                 f"linewidth = {_toml_string(PLAN_LINEWIDTH)}   # what the plan's precision assumes; a reference line"
+                 " ([fit.reference_line] ppm = ...) measures it instead", ""]
+        for p in plan.temperatures:
+            lines += ["[[spectrum]]", f'file = "spectra/t{p.temperature_k:.1f}K.csv"',
+                      f"temperature_k = {p.temperature_k:.1f}", ""]
+        return "\n".join(lines)
+
+
+def _toml_string(text: str) -> str:
+    return '"' + str(text).replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+def _slow_note(planned: Sequence[PlannedTemperature], coalescences: Sequence[Coalescence]) -> list[str]:
+    """A note when fewer than two planned spectra are in slow exchange, where dnmr fit takes its trends."""
+    rates = [c.rate_per_s for c in coalescences if c.rate_per_s is not None]
+    if not rates:
+        return []
+    limit = SLOW_FRACTION * min(rates)
+    slow = [p for p in planned if all(k < limit for k in p.rates_per_s.values())]
+    if len(slow) >= 2:
+        return []
+    return [f"only {len(slow)} planned spectra are in slow exchange (k under {SLOW_FRACTION:g} x the coalescence rate), "
+            "where dnmr fit takes the trend of shifts, couplings and linewidth: add two colder spectra, or name a "
+            "reference line for the linewidth ([fit.reference_line]) and set the shifts you know"]
 
 
 def _rates_text(rates_per_s: dict) -> str:

@@ -45,7 +45,9 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .inputfiles import read_input_bytes, regular_file_size
 from .notebook import NotebookView
+from .nuclei import check_frequency_mhz
 
 MAX_POINTS = 2**21
 """Largest number of points a spectrum may have (2,097,152)."""
@@ -190,6 +192,8 @@ def read_spectrum(
         axis = _checked_axis(axis)
         if not path.exists():
             raise InputError("no such file or folder")
+        if not path.is_dir():
+            regular_file_size(path, "spectrum file")  # never open a pipe or a device
         fmt = detect_format(path)
         if processing is not None or fmt in RAW_FORMATS:
             return _read_raw(path, fmt, frequency_mhz, processing)
@@ -220,19 +224,8 @@ def detect_format(path: str | Path) -> str:
 # checks shared by every format
 
 
-def _checked_frequency(frequency_mhz: float | None) -> float | None:
-    if frequency_mhz is None:
-        return None
-    try:
-        value = float(frequency_mhz)
-    except (TypeError, ValueError):
-        value = float("nan")
-    if not np.isfinite(value) or value <= 0:
-        raise InputError(
-            f"frequency_mhz must be a positive number of MHz, not {frequency_mhz!r}",
-            where="frequency_mhz",
-        )
-    return value
+def _checked_frequency(frequency_mhz: float | None, where: str = "frequency_mhz") -> float | None:
+    return None if frequency_mhz is None else check_frequency_mhz(frequency_mhz, where)
 
 
 def _checked_axis(axis: str | None) -> str | None:
@@ -305,7 +298,7 @@ def _assemble(
 
 def _read_bounded_text(path: Path) -> str:
     """The text of a file no larger than MAX_FILE_BYTES that is not binary."""
-    size = path.stat().st_size
+    size = regular_file_size(path, "spectrum file")
     if size == 0:
         raise InputError("the file is empty; give a spectrum with an axis and an intensity column")
     if size > MAX_FILE_BYTES:
@@ -313,7 +306,7 @@ def _read_bounded_text(path: Path) -> str:
             f"the file holds {size} bytes, more than the {MAX_FILE_BYTES // 2**20} MiB a 1D "
             "spectrum file may have; crop the spectrum or export fewer points"
         )
-    raw = path.read_bytes()
+    raw = read_input_bytes(path, MAX_FILE_BYTES, "spectrum file")
     if b"\x00" in raw:
         raise InputError(
             "this is a binary file, not text: give a two-column text file, a JCAMP-DX file or a "
@@ -432,8 +425,7 @@ def _choose_columns(header: list[str] | None, ncols: int, axis: str | None) -> t
     roles = [_column_role(name) for name in header]
     intensity_cols = [i for i, r in enumerate(roles) if r == "intensity"]
     if len(intensity_cols) > 1:
-        names = ", ".join(header[i] for i in intensity_cols)
-        raise InputError(f"several intensity columns ({names}); keep one", where="header")
+        raise InputError(f"several intensity columns ({_names(header[i] for i in intensity_cols)}); keep one", where="header")
     unit_cols = {}  # unit -> its first column
     for i, role in enumerate(roles):
         if role in ("ppm", "hz"):
@@ -452,7 +444,7 @@ def _choose_columns(header: list[str] | None, ncols: int, axis: str | None) -> t
         unit, source = axis or "ppm", "argument" if axis else "default (ppm)"
     else:
         raise InputError(
-            f"none of the columns ({', '.join(header)}) is named ppm or hz; name the axis column",
+            f"none of the columns ({_names(header)}) is named ppm or hz; name the axis column",
             where="header",
         )
     others = [i for i in range(ncols) if i != axis_col and roles[i] not in ("ppm", "hz")]
@@ -462,7 +454,7 @@ def _choose_columns(header: list[str] | None, ncols: int, axis: str | None) -> t
         intensity_col = others[0]
     else:
         raise InputError(
-            f"cannot tell which of the columns ({', '.join(header)}) holds the intensity; "
+            f"cannot tell which of the columns ({_names(header)}) holds the intensity; "
             'name it "intensity"',
             where="header",
         )
@@ -492,11 +484,22 @@ def _first_bad_line(layout: _TextLayout) -> InputError | None:
             )
         bad = next((f for f in fields[: layout.ncols] if not _is_number(f)), None)
         if bad is not None:
-            return InputError(
-                f'"{bad}" is not a number; fix or remove the line (comments start with #)',
-                where=f"line {lineno}",
-            )
+            return InputError(f"{_excerpt(bad)} is not a number; fix or remove the line (comments start with #)",
+                              where=f"line {lineno}")
     return None
+
+
+def _excerpt(field: str) -> str:
+    """A value of the file to quote in a message: short printable ones as they are, else only its length
+    (a message must not carry the contents of a file that is no spectrum into logs and results)."""
+    if len(field) <= 16 and field.isprintable() and field.isascii():
+        return f'"{field}"'
+    return f"a value of {len(field)} characters"
+
+
+def _names(fields) -> str:
+    """Column names to quote in a message (see :func:`_excerpt`)."""
+    return ", ".join(_excerpt(f) for f in fields)
 
 
 def _frequency_from_columns(ppm: np.ndarray, hz: np.ndarray) -> float | None:
@@ -561,9 +564,9 @@ def _check_jcamp_budget(text: str) -> None:
     for match in _COUNT_LABEL.finditer(text):
         for value in match.group(2).split(","):
             value = value.strip()
-            if not value.isdigit() or not 0 < int(value) <= MAX_POINTS:
+            if not (value.isascii() and value.isdigit() and len(value.lstrip("0")) <= 9 and 0 < int(value) <= MAX_POINTS):
                 raise InputError(
-                    f"{value!r} is not a point count between 1 and {MAX_POINTS}; the file is "
+                    f"{_excerpt(value)} is not a point count between 1 and {MAX_POINTS}; the file is "
                     "damaged or not a 1D spectrum",
                     where=f"##{match.group(1).upper()}",
                 )
@@ -596,7 +599,7 @@ def _record_float(dic: dict, key: str, label: str) -> float | None:
     try:
         return float(value if "." in value else value.replace(",", "."))  # tolerate a decimal comma
     except ValueError:
-        raise InputError(f'"{value}" is not a number', where=f"##{label}") from None
+        raise InputError(f"{_excerpt(value)} is not a number", where=f"##{label}") from None
 
 
 def _ntuple_field(dic: dict, key: str, index: int) -> str | None:
@@ -625,7 +628,7 @@ def _jcamp_axis(dic: dict, npoints_read: int) -> tuple[np.ndarray, str]:
     try:
         first_x, last_x = float(first), float(last)
     except ValueError:
-        raise InputError(f'"{first}" or "{last}" is not a number', where=f"##{labels[0]}") from None
+        raise InputError(f"{_excerpt(first)} or {_excerpt(last)} is not a number", where=f"##{labels[0]}") from None
     _check_count(int(count), npoints_read, labels[2])
     return np.linspace(first_x, last_x, npoints_read), unit.upper()
 
@@ -644,7 +647,7 @@ def _jcamp_ppm(x: np.ndarray, unit: str, frequency_mhz: float | None, dic: dict)
     if unit == "PPM":
         return x, "XUNITS=PPM"
     if unit not in ("HZ", "HERTZ"):
-        raise InputError(f'XUNITS="{unit}" is not an NMR axis; export the spectrum in Hz or ppm',
+        raise InputError(f'XUNITS={_excerpt(unit)} is not an NMR axis; export the spectrum in Hz or ppm',
                          where="##XUNITS")
     if frequency_mhz is None:
         raise InputError(
@@ -668,7 +671,7 @@ def _shift_reference(text: str, npoints: int) -> tuple[int, float]:
     try:
         point, shift = int(parts[2]), float(parts[3])
     except (IndexError, ValueError):
-        raise InputError(f'"{text}" is not (type, compound, point, ppm)',
+        raise InputError(f"{_excerpt(text)} is not (type, compound, point, ppm)",
                          where="##.SHIFT REFERENCE") from None
     if not 1 <= point <= npoints:
         raise InputError(f"reference point {point} lies outside the {npoints} points",
@@ -719,7 +722,8 @@ def _xypoints_block(dic: dict) -> dict | None:
 def _read_jcamp(path: Path, frequency_mhz: float | None, axis: str | None) -> MeasuredSpectrum:
     _check_jcamp_budget(_read_bounded_text(path))
     dic, intensity, x = _jcamp_values(path)
-    recorded = _record_float(dic, ".OBSERVEFREQUENCY", ".OBSERVE FREQUENCY")
+    recorded = _checked_frequency(_record_float(dic, ".OBSERVEFREQUENCY", ".OBSERVE FREQUENCY"),
+                                  "##.OBSERVE FREQUENCY")
     frequency_mhz = _reconcile_frequency(recorded, frequency_mhz, "##.OBSERVE FREQUENCY")
     if x is None:
         x, unit = _jcamp_axis(dic, intensity.size)
@@ -815,7 +819,7 @@ def _read_pdata(path: Path, frequency_mhz: float | None, axis: str | None) -> Me
         dic, data = bruker.read_pdata(str(folder), scale_data=True)  # applies 2**NC_proc
     si, sf, offset, sw_p = procs["SI"], procs["SF"], procs["OFFSET"], procs["SW_p"]
     ppm = offset - np.arange(si) * (sw_p / (sf * si))
-    frequency_mhz = _reconcile_frequency(float(sf), frequency_mhz, "procs SF")
+    frequency_mhz = _reconcile_frequency(_checked_frequency(sf, "procs SF"), frequency_mhz, "procs SF")
     acqus = dic.get("acqus", {})
     metadata = {
         "folder": str(folder),

@@ -263,9 +263,9 @@ def figure_html(data: bytes, caption: str, alt: str) -> str:
 
 def written_figure(path: Path) -> Path | None:
     """The figure asked for at `path` as written: with the suffix of any figure format (PNG first), or None."""
-    from .output import FIGURE_FORMATS
+    from .output import FIGURE_FORMAT_CHOICES
 
-    found = [path.with_suffix("." + f) for f in FIGURE_FORMATS if path.with_suffix("." + f).is_file()]
+    found = [path.with_suffix("." + f) for f in FIGURE_FORMAT_CHOICES if path.with_suffix("." + f).is_file()]
     return found[0] if found else None
 
 

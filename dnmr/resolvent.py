@@ -13,10 +13,13 @@ Three exact routes, chosen per block; each only moves rounding error:
   tridiagonal matrix whose continued fraction is S.  A step costs a sparse product (about a dozen
   elements per row) plus, only when the estimated loss of orthogonality calls for it, a pass over the
   basis, instead of the O(n^3) of a dense eigendecomposition; it is refused on a (rare) serious
-  breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.
+  breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.  Where numba is
+  installed (the optional extra ``fast``) the Lanczos recursion and the continued fraction run as the
+  compiled loops of :mod:`dnmr.kernels`, the same algorithms step for step.
 """
 from __future__ import annotations
 
+import importlib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,6 +40,27 @@ KRYLOV_MIN_SIZE = 80
 SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
+#: Use the compiled loops of :mod:`dnmr.kernels` on the Krylov route where numba is installed (set to
+#: False to force the numpy loops, which are the reference).
+USE_COMPILED = True
+
+_KERNELS: list = []  # the imported dnmr.kernels, or None without numba, once looked for
+
+
+def compiled_kernels():
+    """:mod:`dnmr.kernels` when numba is installed and :data:`USE_COMPILED` is set, else None.
+
+    Imported on first use, that is only when a block goes the Krylov route, so that simulations of small
+    systems (and every command's start) never load numba."""
+    if not USE_COMPILED:
+        return None
+    if not _KERNELS:
+        try:
+            kernels = importlib.import_module(f"{__package__}.kernels")
+        except ImportError:  # numba is an optional extra
+            kernels = None
+        _KERNELS.append(kernels)
+    return _KERNELS[0]
 
 
 @dataclass(frozen=True)
@@ -49,13 +73,7 @@ class SchurBlock:
 
     def evaluate(self, omega: np.ndarray) -> np.ndarray:
         """S at angular frequencies `omega` (rad/s), by back substitution vectorised over omega."""
-        T = self.triangle
-        n = T.shape[0]
-        z = 1j * omega
-        x = np.empty((n, omega.size), dtype=complex)
-        for i in range(n - 1, -1, -1):
-            x[i] = (self.right[i] + T[i, i + 1:] @ x[i + 1:]) / (z - T[i, i])
-        return self.left @ x
+        return self.left @ _shifted_triangular_solve(self.triangle, self.right, 1j * np.asarray(omega, dtype=float))
 
     @property
     def weight(self) -> complex:
@@ -87,13 +105,26 @@ class ContinuedFraction:
         are rescaled by a power of two (exact) so that they never overflow; a point whose q_1 still ends up
         zero or not finite is solved with pivoting.
         """
-        z = 1j * np.asarray(omega, dtype=float)
+        omega = np.ascontiguousarray(omega, dtype=float)
+        z = 1j * omega
         if z.size == 0:
             return np.zeros(0, dtype=complex)
         ends = z[[0, -1]]
         b2 = self.beta ** 2
         growth = float(np.abs(ends[None, :] - self.alpha[:, None]).max() + np.abs(b2).max(initial=0.0))
         every = max(1, int(900 // np.log2(max(2.0 * growth, 2.0))))  # levels a factor 2^900 covers
+        kernels = compiled_kernels()
+        if kernels is None:
+            out = self._recurrence(z, b2, every)
+        else:
+            out = kernels.continued_fraction(omega, np.ascontiguousarray(self.alpha, dtype=complex),
+                                             np.ascontiguousarray(b2, dtype=complex), self.norm, every)
+        for i in np.flatnonzero(~np.isfinite(out)):
+            out[i] = self.norm * self._pivoted(z[i])
+        return out
+
+    def _recurrence(self, z: np.ndarray, b2: np.ndarray, every: int) -> np.ndarray:
+        """norm q_2 / q_1 at the points `z` = i omega (numpy: one array operation per level)."""
         after = np.ones_like(z)        # q_(j+2), then q_2
         head = z - self.alpha[-1]      # q_(j+1), then q_1
         spare = np.empty_like(z)
@@ -106,10 +137,7 @@ class ContinuedFraction:
             if level % every == 0:
                 _rescale(head, after)
         with np.errstate(divide="ignore", invalid="ignore"):
-            out = self.norm * after / head
-        for i in np.flatnonzero(~np.isfinite(out)):
-            out[i] = self.norm * self._pivoted(z[i])
-        return out
+            return self.norm * after / head
 
     def _pivoted(self, z: complex) -> complex:
         m = len(self.alpha)
@@ -218,6 +246,40 @@ def _sum_of_absorption_lines(omega: np.ndarray, poles: np.ndarray, amplitudes: n
     return out
 
 
+def _shifted_triangular_solve(T: np.ndarray, rhs: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """(z - T)^-1 rhs for an upper triangular T at every point of `z` (one column each), by back
+    substitution vectorised over the points."""
+    n = T.shape[0]
+    x = np.empty((n, z.size), dtype=complex)
+    for i in range(n - 1, -1, -1):
+        x[i] = (rhs[i] + T[i, i + 1:] @ x[i + 1:]) / (z - T[i, i])
+    return x
+
+
+def resolvent_derivatives(L: np.ndarray, detect: np.ndarray, start: np.ndarray, changes: list,
+                          omega: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A block's S = detect . (z - L)^-1 . start and, for each dL in `changes`, its exact derivative
+
+        dS = detect . (z - L)^-1 dL (z - L)^-1 . start,        z = i omega (omega in rad/s),
+
+    (the derivative of the resolvent, d(z - L)^-1 = (z - L)^-1 dL (z - L)^-1).  By the Schur form
+    L = Q T Q^H, backward stable whatever the conditioning of L's eigenvectors: x = (z - T)^-1 Q^H start by
+    back substitution, y = (z - T)^-T Q^T detect by the same on the reversed transpose (upper triangular
+    again), and dS = y . (Q^H dL Q) x at every point.  Cost: O(n^3) once, O(n^2) per point and derivative.
+
+    Returns S (points,) and the derivatives (len(changes), points).
+    """
+    T, Q = sla.schur(np.asarray(L, dtype=complex), output="complex")
+    z = 1j * np.asarray(omega, dtype=float)
+    left = detect @ Q
+    x = _shifted_triangular_solve(T, Q.conj().T @ start, z)
+    y = _shifted_triangular_solve(T.T[::-1, ::-1], left[::-1], z)[::-1]
+    slopes = np.zeros((len(changes), z.size), dtype=complex)
+    for i, change in enumerate(changes):
+        slopes[i] = np.einsum("ip,ip->p", y, (Q.conj().T @ (change @ Q)) @ x)
+    return left @ x, slopes
+
+
 def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
     """Poles and amplitudes from an eigendecomposition, or None when the eigenbasis is ill-conditioned.
 
@@ -282,7 +344,8 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
     keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy;
     a step costs a sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and
-    then (about one step in ten for six to eight spins).  Returns the tridiagonal (alpha, beta) with
+    then (about one step in ten for six to eight spins).  The compiled loop (:func:`dnmr.kernels.lanczos`)
+    is taken where available.  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).
 
@@ -294,14 +357,21 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         Starting vector (g^T g must not vanish).
     """
     n = len(g)
+    q0 = g / np.sqrt(g @ g)
+    size = float(abs(S).sum(axis=1).max())
+    exhausted = 1e-11 * size
+    noise = _ROUNDING * size * np.exp(2j * np.pi * np.random.default_rng(0).random(n))
+    kernels = compiled_kernels()
+    if kernels is not None:
+        csr = sparse.csr_matrix(S, dtype=complex)
+        alpha, beta, steps, ok = kernels.lanczos(csr.indptr, csr.indices, csr.data, q0.astype(complex), noise,
+                                                 exhausted, KRYLOV_GROWTH_LIMIT, _SEMI_ORTHOGONAL, _slice_rows(n))
+        return (alpha[:steps], beta[:steps - 1]) if ok else None
     Q = np.zeros((n, n), dtype=complex)
     alpha = np.zeros(n, dtype=complex)
     beta = np.zeros(max(n - 1, 0), dtype=complex)
-    Q[0] = g / np.sqrt(g @ g)
-    size = float(abs(S).sum(axis=1).max())
-    exhausted = 1e-11 * size
+    Q[0] = q0
     operator = S.tocsr() if sparse.issparse(S) else sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
-    noise = _ROUNDING * size * np.exp(2j * np.pi * np.random.default_rng(0).random(n))
     omega = np.zeros(n + 1, dtype=complex)       # estimates of q_j^T q_k, k <= j (omega[j] = 1)
     omega_prev = np.zeros(n + 1, dtype=complex)  # the same for q_(j-1)
     omega[0] = 1.0
@@ -342,12 +412,17 @@ def _projection(basis: np.ndarray, w: np.ndarray) -> np.ndarray:
     """sum_k q_k (q_k^T w) over the rows q_k of `basis` (classical Gram-Schmidt in the bilinear form),
     taken in slices of rows that stay in cache between their two products, so the basis is read from
     memory once instead of twice."""
-    rows = max(16, _CACHE_BYTES // (basis.itemsize * basis.shape[1]))
+    rows = _slice_rows(basis.shape[1])
     out = np.zeros_like(w)
     for start in range(0, len(basis), rows):
         part = basis[start:start + rows]
         out += (part @ w) @ part
     return out
+
+
+def _slice_rows(n: int) -> int:
+    """Basis vectors of length `n` (complex) handled at once by :func:`_projection`."""
+    return max(16, _CACHE_BYTES // (16 * n))
 
 
 #: Bytes of basis vectors handled at once by :func:`_projection` (a quarter of a 2 MiB L2 cache; 256 to

@@ -43,8 +43,8 @@ from math import comb
 
 import numpy as np
 
-from .kinetics import Jump
-from .liouville import CoherenceBlock, coherence_blocks
+from .kinetics import Jump, _permutation
+from .liouville import CoherenceBlock, coherence_blocks, largest_block_size
 from .model import Model
 from .nuclei import nucleus
 
@@ -348,3 +348,13 @@ def spin_systems(model: Model) -> list[SpinParameters]:
     numbers = (model.shifts_hz(), couplings, model.linewidths_hz(), populations, jumps)
     return [layout.fill(*numbers) for layout in system_layouts(model, couplings, jumps)
             if populations[layout.states].sum() > 0]
+
+
+def largest_block_bound(model: Model) -> int:
+    """A lower bound on the coherences of the largest block of `model`, from the counts of spins and
+    groups alone (no rate, no temperature, no basis state enumerated): the coupled clusters with every
+    group in its largest total-spin sector."""
+    moves = [Jump(0, 0, _permutation(model, ex), 0.0, i) for i, ex in enumerate(model.exchanges)]
+    names = model.all_spins
+    return max((largest_block_size(tuple(model.group_size(names[i]) + 1 for i in cluster))
+                for cluster in clusters(model, coupling_array(model), moves)), default=0)

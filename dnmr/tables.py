@@ -16,6 +16,11 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, did_you_mean
+from .inputfiles import read_input_bytes
+from .kinetics import MAX_TEMPERATURE_K
+
+MAX_TABLE_BYTES = 64 * 2**20
+"""Largest CSV table read (bytes): far more than any table of rates or temperatures."""
 
 
 @dataclass(frozen=True)
@@ -123,12 +128,12 @@ def read_table(path: str | Path, required: Sequence[str], optional: Sequence[str
 
 
 def _data_rows(path: Path, source: str) -> list[tuple[int, list[str]]]:
+    if not path.exists():
+        raise InputError("file not found", source)
+    if path.is_dir():
+        raise InputError("is a folder, expected a CSV file", source)
     try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError("file not found", source) from None
-    except IsADirectoryError:
-        raise InputError("is a folder, expected a CSV file", source) from None
+        text = read_input_bytes(path, MAX_TABLE_BYTES, "CSV table").decode("utf-8-sig")
     except UnicodeDecodeError:
         raise InputError("not a UTF-8 text file; save the table as CSV text", source) from None
     except OSError as err:
@@ -176,8 +181,9 @@ def check_kelvin(value: float, name: str, source: str | None = None, where: str 
     InputError
         Naming `name`, the file and the place, and giving the kelvin value the number would be in Celsius.
     """
-    if not np.isfinite(value):
-        raise InputError(f"{name} must be a finite temperature in kelvin", source, where)
+    if not np.isfinite(value) or value > MAX_TEMPERATURE_K:
+        raise InputError(f"{name} must be a finite temperature in kelvin, at most {MAX_TEMPERATURE_K:g} K",
+                         source, where)
     if value < CELSIUS_SUSPECT_BELOW_K:
         raise InputError(
             f"{name} = {value:g} looks like degrees Celsius; give the temperature in kelvin "

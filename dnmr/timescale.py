@@ -44,7 +44,7 @@ from scipy.optimize import brentq
 
 from .errors import InputError
 from .kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
-from .model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
+from .model import LIMITS, Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
 from .notebook import NotebookView
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
@@ -90,6 +90,12 @@ class ActivationParameters:
         if not self.transmission > 0:
             raise InputError(f"the transmission coefficient must be positive, got {self.transmission!r}",
                              where="transmission")
+        if not 0 < self.enthalpy_kj_mol <= LIMITS["kj_mol"]:  # else faster than kB T/h: no barrier at all
+            raise InputError(f"the barrier (dG‡, or dH‡ with dS‡) must be above 0 and at most {LIMITS['kj_mol']:g}"
+                             f" kJ/mol, got {self.enthalpy_kj_mol!r}", where="enthalpy_kj_mol")
+        if abs(self.entropy_j_mol_k) > LIMITS["j_mol_k"]:
+            raise InputError(f"dS‡ must be at most {LIMITS['j_mol_k']:g} J/(mol K) in size, got "
+                             f"{self.entropy_j_mol_k!r}", where="entropy_j_mol_k")
 
     @classmethod
     def from_gibbs(cls, gibbs_kj_mol: float, transmission: float = 1.0) -> "ActivationParameters":

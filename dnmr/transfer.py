@@ -48,6 +48,7 @@ from .fitting import (
     Profile,
     RateEstimate,
     _BetterMinimum,
+    _RateContext,
     _classify,
     _error_scale,
     _identifier,
@@ -736,7 +737,7 @@ def _fit(experiment: Experiment) -> TransferFit:
             and best.params["inversion_efficiency"].value > 1.0 - 1e-6:
         flags.append("at-bound:inversion_efficiency")
         notes.append("the inversion efficiency ended at 1, a perfect inversion (its upper limit)")
-    rates = [_transfer_estimate(_classify(n, p, best.params, profiles.get(n), False), problem, best.params)
+    rates = [_transfer_estimate(_classify(n, p, best.params, profiles.get(n), _RateContext(), {}), problem, best.params)
              for n, p in zip(problem.rate_names, experiment.model.process_names())]
     flags += [f"{r.status}:{r.process}" for r in rates if r.status in ("upper-bound", "lower-bound", "interval",
                                                                        "undetermined")]

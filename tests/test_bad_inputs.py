@@ -45,10 +45,59 @@ def command_for(path: Path, out: Path) -> list[str]:
 
 CASES = sorted(p for p in CORPUS.glob("*/*") if p.is_file() and p.suffix != ".md")
 
+MEMORY_LIMIT = 2 * 2**30  # bytes: no input may make dnmr take more (issue 13)
+TIME_LIMIT = 60  # s of processor time for one input: a refusal takes well under a second
+
+
+@pytest.fixture(scope="module", autouse=True)
+def warm_imports():
+    """Import what the commands import lazily once here, so that each forked child does not again."""
+    import matplotlib.pyplot  # noqa: F401
+
+    import dnmr.activation, dnmr.plotting, dnmr.report, dnmr.series, dnmr.thermometry  # noqa: F401, E401
+
+
+def run_limited(args: list[str]) -> tuple[str, int, str]:
+    """Run the command line in a forked child under a limit of MEMORY_LIMIT of data and TIME_LIMIT
+    seconds of processor time (and twice that of wall time, against a blocking read).
+
+    Returns (how it ended: "exit" or the signal's name, exit status, output)."""
+    import json
+    import os
+    import resource
+    import signal
+
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: limits, the command, its outcome as JSON on the pipe
+        os.close(read)
+        status, output = 1, ""
+        try:
+            resource.setrlimit(resource.RLIMIT_DATA, (MEMORY_LIMIT, MEMORY_LIMIT))
+            resource.setrlimit(resource.RLIMIT_CPU, (TIME_LIMIT, TIME_LIMIT))
+            signal.alarm(2 * TIME_LIMIT)
+            result = CliRunner().invoke(cli, args)
+            status, output = result.exit_code, result.output
+            if result.exception is not None and not isinstance(result.exception, SystemExit):
+                output += f"\nTraceback: {type(result.exception).__name__}: {result.exception}"
+        finally:
+            os.write(write, json.dumps({"status": status, "output": output}).encode())
+            os._exit(0)
+    os.close(write)
+    chunks = []
+    while chunk := os.read(read, 1 << 16):
+        chunks.append(chunk)
+    os.close(read)
+    _, code = os.waitpid(pid, 0)
+    if os.WIFSIGNALED(code):
+        return signal.Signals(os.WTERMSIG(code)).name, -1, b"".join(chunks).decode(errors="replace")
+    outcome = json.loads(b"".join(chunks) or b'{"status": -1, "output": "no outcome"}')
+    return "exit", outcome["status"], outcome["output"]
+
 
 def test_corpus_is_large_enough():
-    # issue 6: at least 50 malformed inputs, of every kind a chemist hands over
-    assert len(CASES) >= 50
+    # issue 6: at least 50 malformed inputs, of every kind a chemist hands over; issue 13: at least 150
+    assert len(CASES) >= 150
     assert {p.parent.name for p in CASES} == {"model", "spectrum", "series", "rates"}
 
 
@@ -58,9 +107,10 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
     out = tmp_path / "out"
     out.mkdir()
     (out / "earlier.txt").write_text("an earlier result")
-    result = CliRunner().invoke(cli, command_for(path, out))
-    message = result.output.strip()
-    assert result.exit_code == 2, message
+    ended, status, output = run_limited(command_for(path, out))
+    message = output.strip()
+    assert ended == "exit", f"killed by {ended} (memory or time limit): {message}"
+    assert status == 2, message
     assert "Traceback" not in message and len(message.splitlines()) == 1, message
     assert path.name in message, message
     assert digest(path.parent) == before  # the input folder is untouched

@@ -92,7 +92,7 @@ def test_notebook_recovers_the_invented_barrier(executed):
     dG‡(298.15 K) within a few tenths of a kJ/mol of it."""
     truth = read_toml(demo_data_dir() / "truth.toml")
     text = cell_html(executed, "eyring")
-    found = re.search(r"dG‡\(298\.15 K\)\s+([\d.]+) ± ([\d.]+) kJ/mol", text.replace("&#x27;", "'"))
+    found = re.search(r"[dΔ]G‡\(298\.15 K\)\s+([\d.]+) ± ([\d.]+) kJ/mol", text.replace("&#x27;", "'"))
     assert found, "the Eyring report shows dG‡ at 298.15 K"
     value, error = map(float, found.groups())
     assert abs(value - truth["gibbs_298_kj_mol"]) < max(4 * error, 0.3)

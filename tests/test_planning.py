@@ -283,6 +283,23 @@ def test_cli_plan_report_and_figure(model_file, tmp_path):
     assert figure.stat().st_size > 0
 
 
+def test_cli_plan_writes_a_series_file_with_the_linewidth_treatment_it_assumes(model_file, tmp_path):
+    from dnmr.modelfile import read_toml
+
+    series = tmp_path / "plan" / "series.toml"
+    series.parent.mkdir()
+    result = CliRunner().invoke(cli, ["plan", str(model_file), "--barrier-kj-mol", "60", "--spectra", "5",
+                                      "--series", str(series), "--json"])
+    assert result.exit_code == 0, result.output
+    out = json.loads(result.stdout)
+    assert out["linewidth_treatment"] == "slow-exchange-trend" and "linewidth" in out["linewidth_assumption"]
+    data = read_toml(series)
+    assert data["model"] == "../model.toml" and data["fit"]["linewidth"] == out["linewidth_treatment"]
+    assert [s["temperature_k"] for s in data["spectrum"]] == pytest.approx(out["plan"][0]["temperatures_k"], abs=0.05)
+    again = CliRunner().invoke(cli, ["plan", str(model_file), "--barrier-kj-mol", "60", "--series", str(series)])
+    assert again.exit_code == 2  # an existing file is not overwritten without --overwrite
+
+
 @pytest.mark.parametrize("options", [
     ["--barrier-kj-mol", "60", "--solvent", "no-such-solvent"],
     ["--barrier-kj-mol", "60", "--frequencies-mhz", "400,abc"],

@@ -1,0 +1,163 @@
+"""Compiled inner loops of the Krylov route (optional: needs numba, ``pip install ".[fast]"``).
+
+Two loops dominate the Krylov route (:mod:`dnmr.resolvent`) and pay numpy's call overhead at every step:
+the Lanczos recursion (a sparse product, Simon's orthogonality estimates and a few dot products per step,
+each a separate numpy call) and the continued fraction (four array operations per level and point).  This
+module holds the same two algorithms, step for step, as numba-compiled loops; :mod:`dnmr.resolvent`
+imports it only when a block goes the Krylov route and numba is installed, and otherwise keeps its numpy
+loops, which remain the reference (the tests check the two against each other to 1e-10).
+
+Compiled code is cached on disk (``cache=True``), so only the first use on a machine pays for the
+compilation (a few seconds); later processes load it.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+#: Points evaluated together by :func:`continued_fraction` (their four running values stay in L1 cache).
+_CHUNK = 256
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def continued_fraction(omega, alpha, b2, norm, every):  # pragma: no cover - compiled
+    """norm q_2 / q_1 at each angular frequency by the determinant recurrence of
+    :meth:`dnmr.resolvent.ContinuedFraction.evaluate` (same order of operations, same exact power-of-two
+    rescaling every `every` levels).  Points where q_1 is zero or not finite come back not finite (the
+    caller solves them with pivoting)."""
+    n = omega.size
+    m = alpha.size
+    out = np.empty(n, dtype=np.complex128)
+    hr = np.empty(_CHUNK)
+    hi = np.empty(_CHUNK)
+    ar = np.empty(_CHUNK)
+    ai = np.empty(_CHUNK)
+    for first in range(0, n, _CHUNK):
+        size = min(_CHUNK, n - first)
+        w = omega[first:first + size]
+        last = alpha[m - 1]
+        for p in range(size):
+            hr[p] = -last.real          # q_(j+1) = z - alpha_m, z = i omega
+            hi[p] = w[p] - last.imag
+            ar[p] = 1.0                 # q_(j+2)
+            ai[p] = 0.0
+        for level in range(1, m):
+            a = alpha[m - 1 - level]
+            br = b2[m - 1 - level].real
+            bi = b2[m - 1 - level].imag
+            for p in range(size):
+                sr = -a.real
+                si = w[p] - a.imag
+                nr = (sr * hr[p] - si * hi[p]) - (ar[p] * br - ai[p] * bi)
+                ni = (sr * hi[p] + si * hr[p]) - (ar[p] * bi + ai[p] * br)
+                ar[p] = hr[p]
+                ai[p] = hi[p]
+                hr[p] = nr
+                hi[p] = ni
+            if level % every == 0:
+                for p in range(size):
+                    biggest = max(abs(hr[p]) + abs(hi[p]), abs(ar[p]) + abs(ai[p]))
+                    exponent = math.frexp(biggest)[1]
+                    hr[p] = math.ldexp(hr[p], -exponent)
+                    hi[p] = math.ldexp(hi[p], -exponent)
+                    ar[p] = math.ldexp(ar[p], -exponent)
+                    ai[p] = math.ldexp(ai[p], -exponent)
+        for p in range(size):
+            out[first + p] = norm * complex(ar[p], ai[p]) / complex(hr[p], hi[p])
+    return out
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orthogonal, slice_rows):  # pragma: no cover
+    """The recursion of :func:`dnmr.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
+    step for step: the sparse product, Simon's estimates of the loss of orthogonality, and classical
+    Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` (at
+    that step and the next).  Returns (alpha, beta, steps, ok): the first `steps` entries of alpha and
+    `steps` - 1 of beta hold the tridiagonal; ok is False on a serious breakdown."""
+    n = q0.size
+    Q = np.zeros((n, n), dtype=np.complex128)
+    alpha = np.zeros(n, dtype=np.complex128)
+    beta = np.zeros(max(n - 1, 1), dtype=np.complex128)
+    omega = np.zeros(n + 1, dtype=np.complex128)       # estimates of q_j^T q_k, k <= j
+    omega_prev = np.zeros(n + 1, dtype=np.complex128)  # the same for q_(j-1)
+    new = np.zeros(n + 1, dtype=np.complex128)
+    w = np.empty(n, dtype=np.complex128)
+    Q[0] = q0
+    omega[0] = 1.0
+    again = False
+    for j in range(n):
+        q = Q[j]
+        for r in range(n):
+            s = 0j
+            for p in range(indptr[r], indptr[r + 1]):
+                s += data[p] * q[indices[p]]
+            w[r] = s
+        if j:
+            w -= beta[j - 1] * Q[j - 1]
+        alpha[j] = _bilinear(q, w)
+        w -= alpha[j] * q
+        if j == n - 1:
+            break
+        length2 = _norm2(w)
+        b = np.sqrt(_bilinear(w, w))
+        divisor = b if b != 0 else 1e-300
+        new[:] = 0.0
+        for k in range(j):
+            t = beta[k] * omega[k + 1] + (alpha[k] - alpha[j]) * omega[k] - beta[j - 1] * omega_prev[k]
+            if k:
+                t += beta[k - 1] * omega[k - 1]
+            new[k] = t
+        largest = 0.0
+        for k in range(j + 1):
+            new[k] = (new[k] + noise[k]) / divisor
+            largest = max(largest, abs(new[k]))
+        new[j + 1] = 1.0
+        if again or largest > semi_orthogonal:
+            before = length2
+            _project_out(Q, j + 1, w, slice_rows)
+            length2 = _norm2(w)
+            if length2 < 0.5 * before:  # "twice is enough"
+                _project_out(Q, j + 1, w, slice_rows)
+                length2 = _norm2(w)
+            b = np.sqrt(_bilinear(w, w))
+            scale = max(abs(b), 1e-300)
+            for k in range(j + 1):
+                new[k] = noise[k] / scale
+            again = not again
+        if length2 ** 0.5 <= exhausted:
+            return alpha, beta, j + 1, True  # the Krylov space is exhausted: exact with fewer steps
+        if abs(b) ** 2 * growth_limit < length2:
+            return alpha, beta, j + 1, False  # serious breakdown
+        beta[j] = b
+        Q[j + 1] = w / b
+        omega_prev, omega, new = omega, new, omega_prev
+    return alpha, beta, n, True
+
+
+@njit(cache=True, nogil=True)
+def _bilinear(x, y):  # pragma: no cover - compiled
+    s = 0j
+    for i in range(x.size):
+        s += x[i] * y[i]
+    return s
+
+
+@njit(cache=True, nogil=True)
+def _norm2(x):  # pragma: no cover - compiled
+    s = 0.0
+    for i in range(x.size):
+        s += x[i].real * x[i].real + x[i].imag * x[i].imag
+    return s
+
+
+@njit(cache=True, nogil=True)
+def _project_out(Q, rows, w, slice_rows):  # pragma: no cover - compiled
+    """w -= sum_k q_k (q_k^T w) over the first `rows` rows of Q (classical Gram-Schmidt in the bilinear
+    form), in slices of rows read from memory once for both of their products (BLAS gemv)."""
+    out = np.zeros_like(w)
+    for start in range(0, rows, slice_rows):
+        part = Q[start:min(rows, start + slice_rows)]
+        out += np.dot(np.dot(part, w), part)
+    w -= out

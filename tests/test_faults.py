@@ -1,0 +1,305 @@
+"""Faults of the surroundings rather than of the input files (issue 13): special files given as inputs,
+a full or read-only disk, a second run into the same folder, --overwrite on folders dnmr did not write,
+permissions on a shared disk, interrupted runs, orphaned workers, and serial against parallel results.
+
+Every command is checked for the contract's exit statuses (CONTRACT.md section 5): 2 for bad input, 1
+for a fault such as a full disk, and one line on stderr without a traceback either way.
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from test_bad_inputs import CORPUS, run_limited
+
+SHARED = CORPUS / "series" / "_shared"
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def series_file(folder: Path, names=("t250.csv", "t270.csv"), temperatures=(250.0, 270.0)) -> Path:
+    """A valid two-spectrum series on the corpus' shared model and spectra (they fit in a second)."""
+    path = folder / "series.toml"
+    path.write_text(f'model = "{SHARED / "model.toml"}"\n[fit]\nregion_ppm = [2.7, 3.2]\n'
+                    + "".join(f'[[spectrum]]\nfile = "{folder / n}"\ntemperature_k = {t}\n'
+                              for n, t in zip(names, temperatures)))
+    for name in names:
+        if not (folder / name).exists():
+            shutil.copy(SHARED / ("t250.csv" if name.endswith("250.csv") else "t270.csv"), folder / name)
+    return path
+
+
+def dnmr(*args: str, cwd: Path | None = None, timeout: float = 120) -> subprocess.CompletedProcess:
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
+    return subprocess.run([sys.executable, "-m", "dnmr", *args], capture_output=True, text=True, env=env,
+                          cwd=cwd, timeout=timeout)
+
+
+def one_line(text: str) -> str:
+    text = text.strip()
+    assert "Traceback" not in text and len(text.splitlines()) == 1, text
+    return text
+
+
+# --- special files as inputs --------------------------------------------------------------------------
+
+def special_files(tmp_path: Path) -> dict[str, Path]:
+    """A named pipe, a link to an endless device and a folder, each where a file is expected."""
+    pipe = tmp_path / "pipe.toml"
+    os.mkfifo(pipe)
+    endless = tmp_path / "endless.toml"
+    endless.symlink_to("/dev/zero")
+    folder = tmp_path / "folder.toml"
+    folder.mkdir()
+    return {"named pipe": pipe, "endless device": endless, "folder": folder}
+
+
+ROLES = ["model", "spectrum", "series", "rates", "spectrum in a series"]
+
+
+@pytest.mark.parametrize("kind, role", [(k, r) for k in ("named pipe", "endless device") for r in ROLES]
+                         + [("folder", "spectrum")])
+def test_special_file_is_refused_unread(kind, role, tmp_path):
+    # a named pipe blocks a reader for ever and /dev/zero never ends: both refused before reading
+    # (a folder where a file is expected is refused by the command line itself, except for a spectrum,
+    # which may be a processed-data folder)
+    path = special_files(tmp_path)[kind]
+    out = tmp_path / "out"
+    if role == "model":
+        args = ["simulate", str(path), "-o", str(out / "s.csv")]
+    elif role == "spectrum":
+        args = ["thermometer", "methanol", "--spectrum", str(path)]
+    elif role == "series":
+        args = ["fit", str(path), "-o", str(out), "--serial", "--quiet"]
+    elif role == "rates":
+        args = ["eyring", str(path)]
+    else:
+        series = series_file(tmp_path)
+        series.write_text(series.read_text().replace(str(tmp_path / "t270.csv"), str(path)))
+        args = ["fit", str(series), "-o", str(out), "--serial", "--quiet"]
+    ended, status, output = run_limited(args)
+    assert ended == "exit", f"killed by {ended}: {output}"
+    assert status == 2, output
+    assert path.name in one_line(output)
+    assert not out.exists()
+
+
+# --- a full and a read-only disk ------------------------------------------------------------------------
+
+def in_small_filesystem(script: str, tmp_path: Path, read_only: bool = False) -> subprocess.CompletedProcess:
+    """Run `script` (sh) with a 64 KiB tmpfs mounted at tmp_path/disk, in a private mount namespace
+    (unshare), so that nothing of the mount is seen outside; skips where that is not allowed."""
+    disk = tmp_path / "disk"
+    disk.mkdir()
+    remount = f"mount -o remount,ro {disk} && " if read_only else ""
+    command = f"mount -t tmpfs -o size=64k tmpfs {disk} && {remount}{script}"
+    if shutil.which("unshare") is None:
+        pytest.skip("no unshare to make a private, size-limited file system")
+    probe = subprocess.run(["unshare", "-m", "--propagation", "private", "true"], capture_output=True)
+    if probe.returncode != 0:
+        pytest.skip("mount namespaces are not allowed here (needs root or user namespaces)")
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg", "DISK": str(disk), "PY": sys.executable}
+    return subprocess.run(["unshare", "-m", "--propagation", "private", "sh", "-c", command],
+                          capture_output=True, text=True, env=env, timeout=300)
+
+
+@pytest.mark.parametrize("read_only", [False, True], ids=["full", "read-only"])
+def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
+    model = SHARED / "model.toml"
+    series = series_file(tmp_path)
+    rates = tmp_path / "rates.csv"
+    rates.write_text("temperature_k,rate_per_s\n250,12.0\n260,40.0\n270,95.0\n280,210.0\n")
+    commands = [f'"$PY" -m dnmr simulate {model} -o "$DISK/s.csv" --points 32768',
+                f'"$PY" -m dnmr fit {series} -o "$DISK/fit" --serial --quiet',
+                f'"$PY" -m dnmr eyring {rates} --plot "$DISK/eyring.png"',
+                f'"$PY" -m dnmr demo "$DISK/demo"']
+    script = " ; ".join(f'{c} >/dev/null 2>"{tmp_path}/err{i}"; echo $? >"{tmp_path}/rc{i}"' for i, c in enumerate(commands))
+    done = in_small_filesystem(script + f'; ls -A -R "$DISK" > "{tmp_path}/left"', tmp_path, read_only)
+    assert done.returncode == 0, done.stderr
+    for i, command in enumerate(commands):
+        status = int((tmp_path / f"rc{i}").read_text())
+        message = one_line((tmp_path / f"err{i}").read_text())
+        assert status == 1, (command, message)
+        assert ("Read-only" if read_only else "No space left") in message, message
+    assert ".part" not in (tmp_path / "left").read_text()  # nothing half-written is left behind
+
+
+# --- the results folder ---------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory) -> tuple[Path, Path]:
+    """A series and the folder of its fit (copy the folder before changing it)."""
+    folder = tmp_path_factory.mktemp("fitted")
+    series = series_file(folder)
+    done = dnmr("fit", str(series), "-o", str(folder / "out"), "--serial", "--quiet", "--no-report")
+    assert done.returncode == 0, done.stderr
+    return series, folder / "out"
+
+
+def copy_of(fitted, tmp_path: Path) -> tuple[Path, Path]:
+    series, out = fitted
+    shutil.copytree(out, tmp_path / "out", symlinks=True)
+    return series, tmp_path / "out"
+
+
+def test_overwrite_keeps_what_dnmr_did_not_write(fitted, tmp_path):
+    series, out = copy_of(fitted, tmp_path)
+    mine = [out / "figures" / "my_drawing.png", out / "fits" / "my_notes.json", out / "notes.txt"]
+    for path in mine:
+        path.write_text("the user's own")
+    again = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report", "--overwrite")
+    assert again.returncode == 0, again.stderr
+    assert all(p.read_text() == "the user's own" for p in mine)
+    assert (out / "rates.csv").exists() and (out / "fits" / "000_main.json").exists()
+
+
+def test_overwrite_refuses_a_folder_dnmr_never_wrote(tmp_path):
+    series = series_file(tmp_path)
+    out = tmp_path / "theirs"
+    (out / "figures").mkdir(parents=True)
+    (out / "figures" / "plot.png").write_text("a figure of the user's")
+    (out / "rates.csv").write_text("their own table")
+    done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--overwrite")
+    assert done.returncode == 2 and "no dnmr fit results" in one_line(done.stderr)
+    assert (out / "rates.csv").read_text() == "their own table"
+    assert (out / "figures" / "plot.png").read_text() == "a figure of the user's"
+
+
+def test_a_linked_result_folder_is_never_followed(fitted, tmp_path):
+    series, out = copy_of(fitted, tmp_path)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "000_t250.png").write_text("not dnmr's")
+    shutil.rmtree(out / "figures")
+    (out / "figures").symlink_to(elsewhere)
+    done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--overwrite")
+    assert done.returncode == 2 and "link" in one_line(done.stderr)
+    assert (elsewhere / "000_t250.png").read_text() == "not dnmr's"
+
+
+def test_a_folder_being_written_is_locked(fitted, tmp_path):
+    import fcntl
+
+    series, out = copy_of(fitted, tmp_path)
+    stored = sorted((out / "fits").iterdir())
+    with open(out / ".dnmr-lock", "a") as held:  # as a running fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--overwrite")
+    assert done.returncode == 2 and "another dnmr run" in one_line(done.stderr)
+    assert sorted((out / "fits").iterdir()) == stored  # the running fit's results are untouched
+
+
+def test_outputs_honour_the_umask(tmp_path):
+    series = series_file(tmp_path)
+    out = tmp_path / "out"
+    old = os.umask(0o022)
+    try:
+        done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet")
+        simulated = dnmr("simulate", str(SHARED / "model.toml"), "-o", str(tmp_path / "s.csv"))
+    finally:
+        os.umask(old)
+    assert done.returncode == 0 and simulated.returncode == 0
+    for path in [out / "rates.csv", out / "results.json", out / "report.html", tmp_path / "s.csv",
+                 *(out / "fits").iterdir(), *(out / "figures").iterdir()]:
+        assert path.stat().st_mode & 0o777 == 0o644, path  # readable by colleagues, as the umask allows
+
+
+def test_simulate_checks_every_output_before_writing(tmp_path):
+    model = SHARED / "model.toml"
+    bad_figure = dnmr("simulate", str(model), "-o", str(tmp_path / "s.csv"), "--plot", str(tmp_path / "s.xyz"))
+    assert bad_figure.returncode == 2 and "--plot" in one_line(bad_figure.stderr)
+    empty = dnmr("simulate", str(model), "-o", "", "--overwrite")
+    assert empty.returncode == 2 and "--output" in one_line(empty.stderr)
+    assert list(tmp_path.iterdir()) == []
+
+
+# --- interrupts, orphans, reproducibility ------------------------------------------------------------------
+
+def test_interrupted_fit_resumes_with_its_finished_fits(tmp_path):
+    names = tuple(f"t{t}.csv" for t in (250, 255, 260, 265, 270))
+    series = series_file(tmp_path, names, (250.0, 255.0, 260.0, 265.0, 270.0))
+    out = tmp_path / "out"
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
+    run = subprocess.Popen([sys.executable, "-m", "dnmr", "fit", str(series), "-o", str(out), "--serial", "--quiet"],
+                           env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and run.poll() is None and not list(out.glob("fits/*.json")):
+        time.sleep(0.05)
+    run.send_signal(signal.SIGINT)
+    _, err = run.communicate(timeout=60)
+    assert "Traceback" not in err, err
+    finished = {p.name for p in (out / "fits").glob("*.json")}
+    assert finished and not (out / ".dnmr-lock").exists()
+    resumed = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--resume", "--no-report")
+    assert resumed.returncode == 0, resumed.stderr
+    import json
+
+    reused = {s["index"] for s in json.loads((out / "results.json").read_text())["spectra"] if s["reused"]}
+    assert reused == {int(name[:3]) for name in finished if name.endswith("_main.json")}
+
+
+def test_workers_end_with_their_parent(tmp_path):
+    # the parent is killed outright (no clean-up of its own); its workers must not outlive it
+    code = ("import os, sys, time\n"
+            "from dnmr.series import _Runner, load_series\n"
+            "from dnmr.series import _progress\n"
+            f"runner = _Runner(load_series({str(series_file(tmp_path))!r}), None, 2, _progress(False), False)\n"
+            "futures = [runner.pool.submit(time.sleep, 300) for _ in range(2)]\n"
+            "time.sleep(1.0)\n"
+            "print(' '.join(str(p) for p in runner.pool._processes), flush=True)\n"
+            "time.sleep(300)\n")
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
+    parent = subprocess.Popen([sys.executable, "-c", code], env=env, stdout=subprocess.PIPE, text=True)
+    workers = [int(p) for p in parent.stdout.readline().split()]
+    assert len(workers) == 2
+    parent.kill()
+    parent.wait(timeout=30)
+    deadline = time.monotonic() + 10
+    alive = workers
+    while alive and time.monotonic() < deadline:
+        alive = [p for p in workers if Path(f"/proc/{p}").exists() and "Z" not in _state(p)]
+        time.sleep(0.1)
+    assert not alive, f"workers {alive} outlived their parent"
+
+
+def _state(pid: int) -> str:
+    try:
+        return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return "Z"
+
+
+def test_serial_and_parallel_fits_give_identical_rates(tmp_path):
+    names = ("t250.csv", "t255.csv", "t260.csv", "t270.csv")
+    series = series_file(tmp_path, names, (250.0, 255.0, 260.0, 270.0))
+    serial = dnmr("fit", str(series), "-o", str(tmp_path / "serial"), "--serial", "--quiet", "--no-report")
+    parallel = dnmr("fit", str(series), "-o", str(tmp_path / "parallel"), "--workers", "2", "--quiet", "--no-report")
+    assert serial.returncode == 0 and parallel.returncode == 0, serial.stderr + parallel.stderr
+    assert (tmp_path / "serial" / "rates.csv").read_bytes() == (tmp_path / "parallel" / "rates.csv").read_bytes()
+
+
+# --- values out of range given as options ------------------------------------------------------------------
+
+MODEL = str(SHARED / "model.toml")
+OUT_OF_RANGE = [
+    ["plan", MODEL, "--barrier-kj-mol", "-5"],  # faster than kB T/h at every temperature
+    ["plan", MODEL, "--barrier-kj-mol", "-1e5"],
+    ["plan", MODEL, "--enthalpy-kj-mol", "50", "--entropy-j-mol-k", "1e300"],
+    ["plan", MODEL, "--barrier-kj-mol", "60", "--frequencies-mhz", "1e300"],
+    ["timescale", MODEL, "--barrier-kj-mol", "60", "--temperature-k", "1e300"],
+    ["timescale", MODEL, "--barrier-kj-mol", "nan"],
+    ["thermometer", "methanol", "--spectrum", str(SHARED / "t250.csv"), "--frequency-mhz", "1e300"],
+]
+
+
+@pytest.mark.parametrize("args", OUT_OF_RANGE, ids=lambda a: " ".join(a[2:] if a[0] != "thermometer" else a[-2:]))
+def test_values_out_of_range_are_refused(args):
+    ended, status, output = run_limited(args)
+    assert ended == "exit" and status == 2, output
+    one_line(output)

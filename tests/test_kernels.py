@@ -1,0 +1,151 @@
+"""The compiled loops of the Krylov route (dnmr.kernels, optional numba) against the numpy loops, which are
+the reference, and against LAPACK.
+
+The numpy path is what a user without numba runs; it is checked against QuTiP, McConnell and LAPACK in
+test_engine.py.  Here the compiled path must give the same spectra to 1e-10, and numba must stay out of
+every process that does not take the Krylov route.
+"""
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from test_engine import banded_reference  # LAPACK's pivoted banded solver, point by point
+
+import dnmr
+from dnmr import engine, resolvent
+
+SF = 400.0  # MHz
+
+
+def relative_error(a, b):
+    return np.abs(a - b).max() / np.abs(b).max()
+
+
+@pytest.fixture
+def compiled():
+    """Skip without numba (an optional extra); otherwise the compiled kernels."""
+    pytest.importorskip("numba", reason="numba is an optional extra (pip install '.[fast]')")
+    kernels = resolvent.compiled_kernels()
+    assert kernels is not None
+    return kernels
+
+
+def chain_model(n_spins: int, seed: int, *, states: int = 1) -> dnmr.Model:
+    """A coupled chain whose ends swap (one state), or which also moves to a second, less populated
+    state (two states: unequal populations, so the symmetrising weights differ)."""
+    rng = np.random.default_rng(seed)
+    names = [f"H{i}" for i in range(n_spins)]
+    couplings = {f"{a}-{b}": float(rng.uniform(-12, 12)) for i, a in enumerate(names) for b in names[i + 1:i + 3]}
+    flip = dict(zip(names, reversed(names)))
+    if states == 1:
+        shifts = {n: float(v) for n, v in zip(names, rng.uniform(1.0, 2.4, n_spins))}
+        state = dnmr.State("s", shifts, couplings, linewidth_hz=1.2, population=1)
+        return dnmr.Model(dnmr.Spectrometer(SF), [state], [dnmr.Exchange("s", "s", flip, rate_per_s=35.0)])
+    one = dnmr.State("a", {n: float(v) for n, v in zip(names, rng.uniform(1.0, 2.4, n_spins))}, couplings,
+                     linewidth_hz=1.0, population=0.7)
+    two = dnmr.State("b", {n: float(v) for n, v in zip(names, rng.uniform(1.0, 2.4, n_spins))}, couplings,
+                     linewidth_hz=1.6, population=0.3)
+    return dnmr.Model(dnmr.Spectrometer(SF), [one, two], [dnmr.Exchange("a", "b", rate_per_s=60.0)])
+
+
+@pytest.mark.parametrize("n_spins, states", [(6, 1), (5, 2)])
+def test_compiled_and_numpy_krylov_routes_give_the_same_spectrum(compiled, monkeypatch, n_spins, states):
+    """Six spins (blocks of 300 and 90) and five spins in two states (blocks of 100 and 200, weights
+    from unequal populations): the compiled route equals the numpy route to 1e-10, and both equal LAPACK's
+    dense eigendecomposition of every block (zgeev) to 1e-9."""
+    model = chain_model(n_spins, seed=3 + n_spins, states=states)
+    hz = np.linspace(0.6 * SF, 2.8 * SF, 6000)
+    fast = engine.lineshape_terms(model)
+    assert fast.direct and all(isinstance(b, resolvent.ContinuedFraction) for b in fast.direct)
+    monkeypatch.setattr(resolvent, "USE_COMPILED", False)
+    reference = engine.lineshape_terms(model)
+    assert relative_error(fast.evaluate(hz), reference.evaluate(hz)) < 1e-10
+    monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 10**9)
+    dense = engine.lineshape_terms(model)
+    assert not dense.direct
+    assert relative_error(fast.evaluate(hz), dense.evaluate(hz)) < 1e-9
+
+
+def test_compiled_lanczos_keeps_the_tridiagonal_of_the_numpy_recursion(compiled, monkeypatch):
+    """Step for step the same recursion: the moments g^T S^k g = (g^T g) (T^k)_11 of the two tridiagonals
+    agree for k up to 12 (relative to ||S||^k), and each is the Krylov projection of the block."""
+    model = chain_model(5, seed=11)
+    captured = []
+    recursion = resolvent.lanczos
+    monkeypatch.setattr(resolvent, "lanczos", lambda S, g: captured.append((S, g)) or recursion(S, g))
+    engine.lineshape_terms(model)
+    S, g = max(captured, key=lambda c: len(c[1]))
+    a_fast, b_fast = recursion(S, g)
+    monkeypatch.setattr(resolvent, "USE_COMPILED", False)
+    a_ref, b_ref = recursion(S, g)
+    assert len(a_fast) == len(a_ref) == len(g)
+    size = float(abs(S).sum(axis=1).max())
+    x = g / np.sqrt(g @ g)
+    for k in range(1, 13):
+        moment = moment_of(S, x, k)
+        for alpha, beta in ((a_fast, b_fast), (a_ref, b_ref)):
+            T = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
+            assert abs(np.linalg.matrix_power(T, k)[0, 0] - moment) < 1e-12 * size**k
+
+
+def moment_of(S, x, k):
+    y = x
+    for _ in range(k):
+        y = S @ y
+    return x @ y
+
+
+def test_compiled_continued_fraction_through_huge_growth_and_zero_pivots(compiled, monkeypatch):
+    """The compiled recurrence against pivoted LAPACK solves (gbsv) and the numpy recurrence: entries of
+    1e6 rad/s over 600 levels (determinants that overflow unless rescaled) and a trailing determinant that
+    vanishes exactly on a grid point (handed back as not finite and solved with pivoting)."""
+    rng = np.random.default_rng(43)
+    big = resolvent.ContinuedFraction(-rng.uniform(1e3, 1e5, 600) + 1j * rng.uniform(-1e6, 1e6, 600),
+                                      rng.uniform(1e5, 1e6, 599) * np.exp(0.2j * rng.standard_normal(599)), 1.0)
+    wide = np.linspace(-1.2e6, 1.2e6, 301)
+    fast = big.evaluate(wide)
+    assert relative_error(fast, banded_reference(big, wide)) < 1e-11
+    omega = np.linspace(-2000.0, 2000.0, 801)
+    alpha = -rng.uniform(1.0, 30.0, 40) + 1j * rng.choice(omega, 40)
+    alpha[-1] = 1j * omega[400]  # q_m = 0 there: q_1 / q_2 is fine, but a plain fraction divides by zero
+    alpha[0] = 1j * omega[17]
+    alpha[:2] = alpha[:2].imag * 1j
+    beta = rng.uniform(50.0, 400.0, 39) * np.exp(0.3j * rng.standard_normal(39))
+    hard = resolvent.ContinuedFraction(alpha, beta, 2.5)
+    hard_fast = hard.evaluate(omega)
+    assert relative_error(hard_fast, banded_reference(hard, omega)) < 1e-12
+    monkeypatch.setattr(resolvent, "USE_COMPILED", False)
+    assert relative_error(fast, big.evaluate(wide)) < 1e-12
+    assert relative_error(hard_fast, hard.evaluate(omega)) < 1e-12
+
+
+def test_without_numba_the_numpy_route_is_taken(monkeypatch):
+    """A machine without the optional extra: the import fails quietly and the numpy loops run."""
+    monkeypatch.setitem(sys.modules, "numba", None)  # makes `import numba` raise ImportError
+    monkeypatch.setitem(sys.modules, "dnmr.kernels", None)
+    monkeypatch.setattr(resolvent, "_KERNELS", [])
+    assert resolvent.compiled_kernels() is None
+    spectrum = dnmr.simulate(chain_model(5, seed=2), points=2048)
+    assert spectrum.intensity.max() > 0
+
+
+def imported_after(code: str) -> bool:
+    """Whether numba is imported after running `code` in a fresh interpreter."""
+    probe = code + "\nimport sys; print('numba' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    return out.stdout.split()[-1] == "True"
+
+
+def test_numba_is_loaded_only_when_a_block_takes_the_krylov_route(compiled):
+    """The command line and small systems never load numba (nor compile anything); a large block does."""
+    assert not imported_after("import dnmr.cli")
+    small = ("import dnmr\nstate = dnmr.State('s', {'A': 2.0, 'B': 2.4}, {'A-B': 7.0}, linewidth_hz=1, population=1)\n"
+             "dnmr.simulate(dnmr.Model(dnmr.Spectrometer(400.0), [state], [dnmr.Exchange('s', 's', {'A': 'B', 'B': 'A'},"
+             " rate_per_s=5.0)]))")
+    assert not imported_after(small)
+    large = small.replace("{'A': 2.0, 'B': 2.4}, {'A-B': 7.0}",
+                          "{n: 1 + 0.3 * i for i, n in enumerate('ABCDEF')}, {a + '-' + b: 7.0 for a, b in zip('ABCDE', 'BCDEF')}")
+    assert imported_after(large)
