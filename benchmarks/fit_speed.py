@@ -100,7 +100,7 @@ def main() -> None:
             a = fit.activation[0]
             print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "
                   f"{fit.jacobian_evaluations} Jacobian evaluations, "
-                  f"{sum(p['vary'] for p in fit.parameters.values())} free parameters; "
+                  f"{sum(not p['fixed'] for p in fit.parameters.values())} free parameters; "
                   f"dH = {a.enthalpy_kj_mol:.3f} kJ/mol, dS = {a.entropy_j_mol_k:.3f} J/(mol K)")
         print(f"  speed-up {times[1] / times[cores]:.2f}")
     finally:

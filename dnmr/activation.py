@@ -52,6 +52,19 @@ rate by more than any widening of its error covers. ``flagged_rows="widen"`` fit
 error ``dnmr fit`` wrote — already widened by sqrt(reduced chi-square) for a misfit — and the larger
 half-width of its interval. Either way the report names the rows and what was done.
 
+Several tables, several methods
+-------------------------------
+Rates of one process measured in different ways — lineshapes (``dnmr fit``) where exchange broadens the
+lines, magnetisation transfer (``dnmr transfer``: selective inversion, saturation transfer, 2D exchange)
+where it is too slow for that — lie on one Eyring line and are best fitted together: the wider the
+temperature range, the better ΔS‡ and ΔH‡ are determined. :func:`read_rates` and
+:func:`eyring_fit_file` take several tables and join the rows of each process (by the ``process``
+column; a table without one joins the only process the others name). Each row keeps its ``method``
+(the column of that name; ``lineshape`` where it is absent or empty), which the report, the JSON output
+and the figure show; the fit itself treats every row alike, by its stated error. A shared temperature
+error (``temperature_offset_stderr``, a calibration) is applied to the joined rows: one probe, one
+offset.
+
 Bounds, outliers, warnings
 --------------------------
 Rows that are bounds (empty ``rate_stderr``, ``rate_lower`` and/or ``rate_upper`` filled) never enter the
@@ -94,7 +107,9 @@ if TYPE_CHECKING:  # pragma: no cover
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
-                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square")
+                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square", "method")
+#: The method of a row without a ``method`` column or cell: a lineshape fit (``dnmr fit``).
+DEFAULT_METHOD = "lineshape"
 #: Fit statuses (``dnmr fit``) whose rows carry no rate information at all.
 STATUS_WITHOUT_RATE = ("failed", "undetermined")
 #: What to do with rows a fit flagged as a misfit or as shaped by a nuisance parameter at its limit.
@@ -104,6 +119,7 @@ NUISANCE_AT_LIMIT_FLAG = "at-bound:"
 NARROW_SPAN_K = 30.0  # common practice: a narrower span leaves ΔS‡ poorly determined
 FEW_RATES = 4
 OUTLIER_THRESHOLD = 3.0  # common practice for studentised residuals
+METHOD_DISAGREEMENT_SIGMA = 3.0  # an offset between methods beyond this many standard errors is warned
 MAX_RELATIVE_TEMPERATURE_ERROR = 0.2
 LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its residual cannot be judged
 SLOPE_TOLERANCE = 1e-9  # relative change of the slope that ends the effective-variance iteration (rounding
@@ -177,6 +193,11 @@ class RateSeries:
     setpoint_k : ndarray or None
         The temperatures the table gave, K, when a calibration turned them into the sample temperatures
         of `temperature_k` (None otherwise).
+    row_methods : tuple of str or None
+        How each row's rate was measured ("lineshape", "inversion", "saturation", "exchange-2d" or a name
+        of the user's); None: every row is a lineshape rate.
+    row_files : tuple of str or None
+        The file of each row, when the series joins several tables (None for one table or arrays).
     """
 
     process: str
@@ -191,9 +212,25 @@ class RateSeries:
     notes: tuple[str, ...] = ()
     set_aside: tuple[SetAsideRow, ...] = ()
     setpoint_k: np.ndarray | None = None
+    row_methods: tuple[str, ...] | None = None
+    row_files: tuple[str, ...] | None = None
 
     def __len__(self) -> int:
         return len(self.temperature_k)
+
+    @property
+    def methods(self) -> np.ndarray:
+        """The method of each row (str array; "lineshape" where none was given)."""
+        return np.array(self.row_methods if self.row_methods is not None else (DEFAULT_METHOD,) * len(self), dtype=str)
+
+    @property
+    def method_names(self) -> tuple[str, ...]:
+        """The distinct methods, in order of first appearance."""
+        return tuple(dict.fromkeys(self.methods.tolist()))
+
+    def row_source(self, row: int) -> str | None:
+        """The file a row comes from (the series' source for one table)."""
+        return self.row_files[row] if self.row_files is not None else self.source
 
     @property
     def temperature_stderr(self) -> np.ndarray:
@@ -211,8 +248,14 @@ class RateSeries:
         return ~np.isfinite(self.rate_stderr) & (np.isfinite(self.rate_lower) | np.isfinite(self.rate_upper))
 
     def where(self, row: int) -> str:
-        """Where a row is, for messages: 'line N' of the file, or 'row N' for arrays."""
-        return f"line {self.lines[row]}" if self.lines else f"row {row + 1}"
+        """Where a row is, for messages: 'line N' of the file ('FILE line N' when the series joins several
+        tables), or 'row N' for arrays."""
+        line = self.location(row)[1]
+        return f"{self.row_files[row]} {line}" if self.row_files is not None else line
+
+    def location(self, row: int) -> tuple[str | None, str]:
+        """(file, 'line N') of a row for an :class:`InputError` ('row N' and no file for arrays)."""
+        return self.row_source(row), f"line {self.lines[row]}" if self.lines else f"row {row + 1}"
 
     def with_temperatures(self, temperature_k: np.ndarray, errors: TemperatureErrors) -> "RateSeries":
         """Copy with new temperatures (K) whose errors add to the present ones.
@@ -256,26 +299,33 @@ def _checked_covariance(matrix, n: int) -> np.ndarray:
     return c
 
 
-def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
+def read_rates(paths: str | Path | Sequence[str | Path], temperature_stderr: float | None = None, *,
                flagged_rows: str = "exclude") -> list[RateSeries]:
-    """Read a rates table (CSV) into one :class:`RateSeries` per process, in order of appearance.
+    """Read one rates table (CSV), or several joined, into one :class:`RateSeries` per process.
 
     Columns: ``temperature_k`` and ``rate_per_s`` (required); ``rate_stderr``, ``temperature_stderr``,
-    ``rate_lower``, ``rate_upper``, ``process`` (optional); the ``status``, ``ci68_low_per_s``,
+    ``rate_lower``, ``rate_upper``, ``process``, ``method`` (optional); the ``status``, ``ci68_low_per_s``,
     ``ci68_high_per_s``, ``flags`` and ``reduced_chi_square`` columns of ``dnmr fit`` are read as the
-    module notes say; other columns are ignored. This is the ``rates.csv`` that ``dnmr fit`` writes, or a
-    table of your own.
+    module notes say; other columns are ignored. This is the ``rates.csv`` that ``dnmr fit`` or ``dnmr
+    transfer`` writes, or a table of your own.
 
     Parameters
     ----------
-    path : str or Path
-        The CSV file.
+    paths : str or Path, or a sequence of them
+        The CSV file, or several: their rows are joined process by process (a table without a
+        ``process`` column joins the only process the others name), each row keeping its ``method``
+        ("lineshape" where the table gives none).
     temperature_stderr : float, optional
-        One standard error (K) for every temperature, independent between rows, when the table has no
+        One standard error (K) for every temperature, independent between rows, for tables without a
         temperature_stderr column.
     flagged_rows : {"exclude", "widen"}
         Rows flagged ``misfit`` or ``at-bound:<parameter>``: set aside (default), or fitted with widened
         errors.
+
+    Returns
+    -------
+    list of RateSeries
+        One per process, in order of first appearance.
 
     Raises
     ------
@@ -285,6 +335,31 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
     """
     if flagged_rows not in FLAGGED_ROW_POLICIES:
         raise InputError(f"must be one of {', '.join(FLAGGED_ROW_POLICIES)}, got {flagged_rows!r}", where="flagged_rows")
+    paths = _path_list(paths)
+    tables = [_read_one_table(path, temperature_stderr, flagged_rows, len(paths) > 1) for path in paths]
+    series = _join_processes(tables)
+    for one in series:
+        _check_enough_rates(one)
+        check_rate_series(one)
+    return series
+
+
+def _path_list(paths: str | Path | Sequence[str | Path]) -> list[Path]:
+    """One path or several as a list (at least one; the same file twice is refused)."""
+    out = [Path(paths)] if isinstance(paths, (str, Path)) else [Path(p) for p in paths]
+    if not out:
+        raise InputError("no rates table given; name at least one", where="rates")
+    seen = set()
+    for path in out:
+        if path.resolve() in seen:
+            raise InputError("named twice: each table joins the analysis once", str(path))
+        seen.add(path.resolve())
+    return out
+
+
+def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: str, several: bool) -> list[RateSeries]:
+    """One table into a series per process, not yet checked (a table may hold a single temperature
+    that joins others)."""
     table = read_table(path, RATE_COLUMNS_REQUIRED, RATE_COLUMNS_OPTIONAL)
     if temperature_stderr is not None and table.has("temperature_stderr"):
         raise InputError(
@@ -300,15 +375,18 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
     else:
         t_err = np.full(len(table), 0.0 if temperature_stderr is None else float(temperature_stderr))
         _check_temperature_stderr(t_err, table.source, lambda i: "--temperature-stderr")
-    processes = table.text("process") if table.has("process") else ("",) * len(table)
-    status = table.text("status") if table.has("status") else ("",) * len(table)
-    flags = table.text("flags") if table.has("flags") else ("",) * len(table)
-    rows = [_FitRow.read(table, i, numbers, status[i], flags[i], flagged_rows) for i in range(len(table))]
+    n = len(table)
+    processes = table.text("process") if table.has("process") else ("",) * n
+    status = table.text("status") if table.has("status") else ("",) * n
+    flags = table.text("flags") if table.has("flags") else ("",) * n
+    methods = tuple(m.strip() or DEFAULT_METHOD for m in (table.text("method") if table.has("method") else ("",) * n))
+    where = (lambda i: f"{table.source} {table.where(i)}") if several else table.where
+    rows = [_FitRow.read(where(i), i, numbers, status[i], flags[i], flagged_rows) for i in range(n)]
     series = []
     for name in dict.fromkeys(processes):
         mine = [i for i, p in enumerate(processes) if p == name]
         kept = np.array([i for i in mine if rows[i].kept], dtype=int)
-        one = RateSeries(
+        series.append(RateSeries(
             process=name,
             temperature_k=numbers["temperature_k"][kept],
             rate_per_s=numbers["rate_per_s"][kept],
@@ -320,11 +398,47 @@ def read_rates(path: str | Path, temperature_stderr: float | None = None, *,
             lines=tuple(np.array(table.lines)[kept].tolist()),
             notes=tuple(rows[i].note for i in mine if rows[i].note),
             set_aside=tuple(rows[i].set_aside for i in mine if rows[i].set_aside is not None),
-        )
-        _check_enough_rates(one)
-        check_rate_series(one)
-        series.append(one)
+            row_methods=tuple(methods[i] for i in kept) if table.has("method") else None,
+            row_files=(table.source,) * len(kept) if several else None,
+        ))
     return series
+
+
+def _join_processes(tables: list[list[RateSeries]]) -> list[RateSeries]:
+    """The series of several tables joined by process; a table without process names joins the only one
+    the others name."""
+    if len(tables) == 1:
+        return tables[0]
+    named = list(dict.fromkeys(s.process for table in tables for s in table if s.process))
+    groups: dict[str, list[RateSeries]] = {}
+    for table in tables:
+        for s in table:
+            if not s.process and len(named) > 1:
+                raise InputError(f"the table has no process column but the other tables name processes "
+                                 f"{', '.join(repr(n) for n in named)}; add a process column saying which process "
+                                 "each rate belongs to", s.source)
+            groups.setdefault(s.process or (named[0] if named else ""), []).append(s)
+    return [_joined(name, parts) for name, parts in groups.items()]
+
+
+def _joined(process: str, parts: list[RateSeries]) -> RateSeries:
+    """The rows of several series of one process as one series (each row keeps its method and file)."""
+    if len(parts) == 1:
+        return replace(parts[0], process=process)
+    columns = {name: np.concatenate([getattr(p, name) for p in parts])
+               for name in ("temperature_k", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper")}
+    return RateSeries(
+        process=process,
+        **columns,
+        temperature_errors=TemperatureErrors(np.concatenate([p.temperature_errors.independent_k for p in parts]),
+                                             np.zeros((sum(len(p) for p in parts), 0))),
+        source=", ".join(dict.fromkeys(str(p.source) for p in parts)),
+        lines=tuple(line for p in parts for line in p.lines),
+        notes=tuple(note for p in parts for note in p.notes),
+        set_aside=tuple(row for p in parts for row in p.set_aside),
+        row_methods=tuple(m for p in parts for m in p.methods.tolist()),
+        row_files=tuple(f for p in parts for f in p.row_files),
+    )
 
 
 @dataclass
@@ -336,10 +450,11 @@ class _FitRow:
     set_aside: SetAsideRow | None = None
 
     @classmethod
-    def read(cls, table, i: int, numbers: dict, status: str, flags: str, policy: str) -> "_FitRow":
-        """Apply the status and flags of row `i` (editing `numbers` in place where the error is widened)."""
+    def read(cls, line: str, i: int, numbers: dict, status: str, flags: str, policy: str) -> "_FitRow":
+        """Apply the status and flags of row `i`, at `line` of its table (editing `numbers` in place where
+        the error is widened)."""
         t, k = numbers["temperature_k"][i], numbers["rate_per_s"][i]
-        where = f"{table.where(i)} ({t:.2f} K)"
+        where = f"{line} ({t:.2f} K)"
         if status in STATUS_WITHOUT_RATE:
             return cls(False, f"{where}: left out, the fit is {status}")
         problems = _flag_problems(flags.split(";"), numbers["reduced_chi_square"][i])
@@ -357,7 +472,7 @@ class _FitRow:
         what = " and ".join(problems)
         if policy == "exclude":
             sigma = numbers["rate_stderr"][i] / k if np.isfinite(k) else math.nan
-            row = SetAsideRow(float(t), float(k), float(sigma), table.where(i), what) if np.isfinite(k) else None
+            row = SetAsideRow(float(t), float(k), float(sigma), line, what) if np.isfinite(k) else None
             return cls(False, f"{where}: set aside, {what} (pass --flagged-rows widen, or flagged_rows='widen', "
                               "to fit it with a widened error)", row)
         if MISFIT_FLAG in what:
@@ -415,7 +530,7 @@ def check_rate_series(series: RateSeries) -> None:
 
 def _check_row(series: RateSeries, i: int, t_err: float, bound: bool) -> None:
     t = series.temperature_k[i]
-    check_kelvin(t, "temperature_k", series.source, series.where(i))
+    check_kelvin(t, "temperature_k", *series.location(i))
     if not (0.0 <= t_err <= MAX_RELATIVE_TEMPERATURE_ERROR * t):
         _fail(series, i, f"temperature_stderr = {t_err:g} K is not a plausible standard error (0 to {MAX_RELATIVE_TEMPERATURE_ERROR * t:.0f} K)")
     for name in ("rate_lower", "rate_upper"):
@@ -436,7 +551,7 @@ def _check_row(series: RateSeries, i: int, t_err: float, bound: bool) -> None:
 
 
 def _fail(series: RateSeries, i: int, message: str) -> None:
-    raise InputError(message, series.source, series.where(i))
+    raise InputError(message, *series.location(i))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -653,6 +768,7 @@ class BoundCheck:
     violated: bool
     sigma: float
     where: str
+    method: str = DEFAULT_METHOD
 
     def describe(self) -> str:
         """One line: the bound and whether the line respects it."""
@@ -737,6 +853,26 @@ class EyringResult(NotebookView):
     def rate_per_s(self) -> np.ndarray:
         """Fitted rates, s^-1."""
         return self.series.rate_per_s[self.used]
+
+    @property
+    def methods(self) -> np.ndarray:
+        """Method of each fitted rate ("lineshape", "inversion", ...)."""
+        return self.series.methods[self.used]
+
+    @property
+    def method_names(self) -> tuple[str, ...]:
+        """The distinct methods of the rows (fitted and bounds), in order of first appearance."""
+        return self.series.method_names
+
+    def method_offsets(self) -> dict[str, Estimate]:
+        """How far each method's rates lie from the line through the others', in ln k (see :func:`method_offset`).
+
+        Empty for a single method; for two, only the second (the first is its mirror image).
+        """
+        names = list(dict.fromkeys(self.methods.tolist()))
+        if len(names) < 2:
+            return {}
+        return {name: method_offset(self, name) for name in (names[1:] if len(names) == 2 else names)}
 
     @property
     def ln_rate_stderr(self) -> np.ndarray:
@@ -882,6 +1018,9 @@ class EyringResult(NotebookView):
             "transmission": self.transmission,
             "n_rates": int(self.used.sum()),
             "n_bounds": len(self.bounds),
+            "methods": {m: int((self.methods == m).sum()) for m in self.method_names},
+            "method_offsets": {m: {"ln_rate_offset": e.value, "ln_rate_offset_stderr": e.stderr}
+                               for m, e in self.method_offsets().items()},
             "temperature_min_k": float(self.temperature_k.min()),
             "temperature_max_k": float(self.temperature_k.max()),
             "error_basis": self.error_basis,
@@ -904,6 +1043,7 @@ class EyringResult(NotebookView):
                     "fitted_rate_per_s": b.fitted_rate_per_s,
                     "violated": b.violated,
                     "sigma": b.sigma,
+                    "method": b.method,
                 }
                 for b in self.bounds
             ],
@@ -923,6 +1063,7 @@ class EyringResult(NotebookView):
             "fitted_rate_per_s": float(np.exp(self.ln_rate(t).value)),
             "studentised_residual": float(self.studentised_residuals[i]),
             "outlier": bool(self.outliers[i]),
+            "method": str(self.methods[i]),
         }
 
     @property
@@ -991,6 +1132,46 @@ class EyringResult(NotebookView):
         return sample_eyring_posterior(self, **settings)
 
 
+def method_offset(result: EyringResult, method: str) -> Estimate:
+    """Offset of one method's rates from the Eyring line through the other rates, in ln k, with its error.
+
+    The line is refitted with one more coefficient, a constant added to ln k for the rows of `method`
+    (generalised least squares with the covariance of the fit: rate and temperature errors); the
+    coefficient and its standard error say whether the methods agree (a systematic difference between
+    them shows as an offset several standard errors from zero). Without rate errors the error comes from
+    the scatter about the three-coefficient fit alone (NaN with fewer than 4 rates). NaN when the rows cannot
+    separate an offset from the line (all rows of the method at one temperature and all others at another).
+
+    Parameters
+    ----------
+    result : EyringResult
+        A joint analysis.
+    method : str
+        One of its methods.
+
+    Returns
+    -------
+    Estimate
+        Offset of ln(k / s^-1) and its standard error (0.1 is about 10 % in k).
+    """
+    line = result.eyring
+    x = 1.0 / result.temperature_k
+    y = np.log(result.rate_per_s) - np.log(result.temperature_k)
+    design = np.column_stack([np.ones_like(x), x, (result.methods == method).astype(float)])
+    if np.linalg.matrix_rank(design) < 3:
+        return Estimate(math.nan, math.nan)
+    scatter = result.error_basis == BASIS_SCATTER
+    fit = _gls(design, y, ResidualCovariance(np.ones_like(x), np.zeros((len(x), 0))) if scatter
+               else line.residual_covariance)
+    variance = fit.normal[2, 2]
+    dof = len(x) - 3
+    if scatter:
+        variance = variance * fit.chi_square / dof if dof > 0 else math.nan
+    elif result.error_basis == BASIS_SCALED and dof > 0:
+        variance *= fit.chi_square / dof
+    return Estimate(float(fit.beta[2]), math.sqrt(variance))
+
+
 BASIS_GIVEN = "given rate errors"
 BASIS_SCALED = "given rate errors, scaled by the reduced chi-square"
 BASIS_SCATTER = "scatter of the rates about the line"
@@ -1012,6 +1193,7 @@ def eyring_fit(
     rate_lower: Sequence[float] | np.ndarray | None = None,
     rate_upper: Sequence[float] | np.ndarray | None = None,
     process: str = "",
+    method: str | Sequence[str] | None = None,
     **options,
 ) -> EyringResult:
     """Eyring analysis of rates given as arrays.
@@ -1036,6 +1218,9 @@ def eyring_fit(
         Bounds (s^-1) of rows the data only bound (NaN elsewhere); such rows are not fitted but checked.
     process : str
         Name of the exchange process, for reports.
+    method : str or sequence of str, optional
+        How the rates were measured (one for all, or one per rate: "lineshape", "inversion", "saturation",
+        "exchange-2d" or a name of your own); default "lineshape".
     **options
         Passed to :func:`eyring_fit_series` (transmission, scale_errors, outlier_threshold).
 
@@ -1061,7 +1246,10 @@ def eyring_fit(
     errors = TemperatureErrors(np.array(stderr, dtype=float), np.zeros((n, 0)))
     if temperature_covariance is not None:
         errors = errors.plus(TemperatureErrors.from_covariance(_checked_covariance(temperature_covariance, n)))
-    series = RateSeries(process, t, temperature_errors=errors, **columns)
+    methods = None if method is None else (method,) * n if isinstance(method, str) else tuple(str(m) for m in method)
+    if methods is not None and len(methods) != n:
+        raise InputError(f"must be one method, or {n}, one per rate", where="method")
+    series = RateSeries(process, t, temperature_errors=errors, row_methods=methods, **columns)
     if temperature_offset_stderr is not None:
         series = series.with_offset(temperature_offset_stderr)
     check_rate_series(series)
@@ -1114,8 +1302,10 @@ def eyring_fit_series(
     basis = BASIS_SCATTER if not errors_given else (BASIS_SCALED if scaled else BASIS_GIVEN)
     eyring = _fit_line(fitted, power=1, scaled=scaled)
     arrhenius = _fit_line(fitted, power=0, scaled=scaled)
+    methods = series.methods
     bounds = tuple(
-        _check_bound(eyring, series.temperature_k[i], series.rate_lower[i], series.rate_upper[i], series.where(i))
+        replace(_check_bound(eyring, series.temperature_k[i], series.rate_lower[i], series.rate_upper[i],
+                             series.where(i)), method=str(methods[i]))
         for i in np.flatnonzero(~used)
     )
     result = EyringResult(
@@ -1134,7 +1324,7 @@ def eyring_fit_series(
 
 
 def eyring_fit_file(
-    path: str | Path,
+    path: str | Path | Sequence[str | Path],
     *,
     process: str | None = None,
     temperature_stderr: float | None = None,
@@ -1147,8 +1337,10 @@ def eyring_fit_file(
 
     Parameters
     ----------
-    path : str or Path
-        Rates table: ``rates.csv`` from ``dnmr fit`` or a table of your own (see :func:`read_rates`).
+    path : str or Path, or a sequence of them
+        Rates table: ``rates.csv`` from ``dnmr fit`` or ``dnmr transfer``, or a table of your own (see
+        :func:`read_rates`); several tables are joined process by process and fitted together, each rate
+        keeping its method (lineshape, inversion, saturation, exchange-2d ...).
     process : str, optional
         Analyse only this process.
     temperature_stderr : float, optional
@@ -1168,7 +1360,7 @@ def eyring_fit_file(
     Returns
     -------
     list of EyringResult
-        One per process, in the order the table first names them.
+        One per process, in the order the tables first name them.
     """
     series = read_rates(path, temperature_stderr, flagged_rows=flagged_rows)
     if process is not None:
@@ -1177,7 +1369,7 @@ def eyring_fit_file(
             raise InputError(
                 f"no process {process!r} in the table{did_you_mean(process, names)}; it has "
                 f"{', '.join(repr(n) for n in names)}",
-                str(path),
+                ", ".join(str(p) for p in _path_list(path)),
                 "--process",
             )
         series = [s for s in series if s.process == process]
@@ -1213,6 +1405,8 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         temperature_errors=series.temperature_errors.subset(rows),
         lines=None if series.lines is None else tuple(np.array(series.lines)[rows].tolist()),
         setpoint_k=None if series.setpoint_k is None else series.setpoint_k[rows],
+        row_methods=None if series.row_methods is None else tuple(series.methods[rows].tolist()),
+        row_files=None if series.row_files is None else tuple(np.array(series.row_files)[rows].tolist()),
     )
 
 
@@ -1298,6 +1492,11 @@ def _warnings(result: EyringResult) -> list[str]:
                if scatter_share > 0.25 else "")
         out.append(f"the rates scatter much less than their errors (reduced chi-square {red:.2f}); the errors may be "
                    f"overstated{why}")
+    for method, e in result.method_offsets().items():
+        if np.isfinite(e.stderr) and abs(e.value) > METHOD_DISAGREEMENT_SIGMA * e.stderr:
+            out.append(f"the {method} rates lie {e.value / e.stderr:+.1f} standard errors off the line through the other "
+                       f"rates (about {100 * math.expm1(e.value):+.0f} % in k): the methods disagree; check each "
+                       "method's temperatures (calibration), and the model behind each fit")
     for t, r in zip(result.temperature_k[result.outliers], result.studentised_residuals[result.outliers]):
         out.append(f"possible outlier at {t:g} K (studentised residual {r:+.1f})")
     out.extend(b.describe() for b in result.bounds if b.violated)
@@ -1335,6 +1534,8 @@ def _report(r: EyringResult) -> str:
     lines.append(f"  {'Ea':<16}{format_with_error(d['activation_energy_kj_mol'], d['activation_energy_stderr']):>18} kJ/mol")
     lines.append(f"  {'ln(A / s⁻¹)':<16}{format_with_error(d['ln_prefactor'], d['ln_prefactor_stderr']):>18}")
     lines += [""] + _heading("Rates fitted") + _point_lines(d)
+    if len(d["method_offsets"]):
+        lines += [""] + _heading("Agreement of the methods") + _offset_lines(d)
     if r.series.set_aside:
         lines += [""] + _heading("Rates set aside (flagged fits, not fitted)")
         lines.append(f"  {'T / K':>9} {'k / s⁻¹':>11} {'line k':>11} {'off by':>8}  why")
@@ -1358,8 +1559,10 @@ def _summary_lines(r: EyringResult, d: dict) -> list[str]:
     t = r.temperature_k
     bounds = f" (+ {d['n_bounds']} bound{'s' if d['n_bounds'] > 1 else ''}, not fitted)" if r.bounds else ""
     aside = len(r.series.set_aside)
-    lines = [f"  rates fitted         {d['n_rates']}{bounds}",
-             f"  temperatures         {t.min():.2f} – {t.max():.2f} K (span {np.ptp(t):.1f} K)",
+    lines = [f"  rates fitted         {d['n_rates']}{bounds}"]
+    if r.method_names != (DEFAULT_METHOD,):
+        lines.append("  methods              " + ", ".join(_method_span(r, m) for m in r.method_names))
+    lines += [f"  temperatures         {t.min():.2f} – {t.max():.2f} K (span {np.ptp(t):.1f} K)",
              f"  errors from          {r.error_basis}"]
     if r.error_basis == BASIS_SCATTER:
         lines.append(f"  scatter of ln k      {r.eyring.scatter:.3g} (about {100 * r.eyring.scatter:.2g} % in k)")
@@ -1378,6 +1581,14 @@ def _summary_lines(r: EyringResult, d: dict) -> list[str]:
     if r.transmission != 1.0:
         lines.append(f"  transmission κ       {r.transmission:g}")
     return lines
+
+
+def _method_span(r: EyringResult, method: str) -> str:
+    """'inversion 4 (246–264 K)': a method's fitted rates and their temperatures (bounds counted apart)."""
+    t = r.temperature_k[r.methods == method]
+    bounds = sum(b.method == method for b in r.bounds)
+    extra = f" + {bounds} bound{'s' if bounds > 1 else ''}" if bounds else ""
+    return f"{method} {len(t)}{extra}" + (f" ({t.min():.0f}–{t.max():.0f} K)" if len(t) else "")
 
 
 def _parameter_lines(r: EyringResult, d: dict) -> list[str]:
@@ -1413,18 +1624,43 @@ def _share_lines(r: EyringResult) -> list[str]:
 
 
 def _point_lines(d: dict) -> list[str]:
+    """The fitted rates; by method (each under its name, by temperature) when there are several.  With a
+    calibration each row starts with the table's set-point."""
     calibrated = any(np.isfinite(p["setpoint_k"]) for p in d["points"])
     head = f"  {'T set / K':>9}" if calibrated else ""
     lines = [f"{head}  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
-    for p in d["points"]:
-        err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
-        setpoint = f"  {p['setpoint_k']:9.2f}" if calibrated else ""
-        lines.append(f"{setpoint}  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
-                     f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}"
-                     + ("  outlier?" if p["outlier"] else ""))
+    methods = d["methods"]
+    if len(methods) == 1:
+        lines += [_point_line(p, calibrated) for p in d["points"]]
+    else:
+        for method, count in methods.items():
+            if count:
+                lines.append(f"  {method} ({count} rate{'s' if count > 1 else ''})")
+                mine = sorted((p for p in d["points"] if p["method"] == method), key=lambda p: p["temperature_k"])
+                lines += [_point_line(p, calibrated) for p in mine]
     if calibrated:
         lines.append("  T set: the table's set-point; T: the sample temperature through the calibration, ± T its "
                      "standard error")
+    return lines
+
+
+def _point_line(p: dict, calibrated: bool = False) -> str:
+    err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
+    setpoint = f"  {p['setpoint_k']:9.2f}" if calibrated else ""
+    return (f"{setpoint}  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
+            f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}" + ("  outlier?" if p["outlier"] else ""))
+
+
+def _offset_lines(d: dict) -> list[str]:
+    """Each method's offset from the line through the other rates (ln k, and in percent of k)."""
+    lines = ["  offset of ln k from the line through the other rates (refitted with a constant for the method)"]
+    for method, e in d["method_offsets"].items():
+        value, err = e["ln_rate_offset"], e["ln_rate_offset_stderr"]
+        if not np.isfinite(value):
+            lines.append(f"  {method:<14} not determined: the rows cannot separate an offset from the line")
+            continue
+        sigma = f" ({value / err:+.1f}σ)" if np.isfinite(err) and err > 0 else ""
+        lines.append(f"  {method:<14} {format_with_error(value, err):>18}{sigma}, about {100 * math.expm1(value):+.0f} % in k")
     return lines
 
 

@@ -11,11 +11,15 @@ import sys
 import traceback
 from contextlib import contextmanager
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import click
 
 from .errors import InputError
 from .output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
+
+if TYPE_CHECKING:
+    from .series import Series
 
 
 class _Group(click.Group):
@@ -80,20 +84,21 @@ def _parse_list(text: str, option: str) -> list[float]:
 
 @contextmanager
 def _block_progress(enabled: bool):
-    """A progress bar over the engine's blocks on stderr, shown only on a terminal and for large systems."""
-    if not (enabled and sys.stderr.isatty()):
-        yield None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+    """Progress over the engine's blocks on stderr, for large systems: a bar on a terminal, else plain lines."""
+    from .progress import PLAIN_INTERVAL_S, ProgressReport
 
-    with Progress(TextColumn("simulating"), BarColumn(), TextColumn("{task.completed}/{task.total} coherences"),
-                  TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
-        task = bar.add_task("simulate", total=None)
+    with ProgressReport(enabled) as report:
+        task, shown = None, 0
 
         def advance(done: int, total: int) -> None:
-            if total >= LARGE_SYSTEM_COHERENCES:
-                bar.update(task, completed=done, total=total)
+            nonlocal task, shown
+            if total < LARGE_SYSTEM_COHERENCES:
+                return
+            if task is None:
+                task = report.add_task("simulating", total, unit="coherences", interval_s=PLAIN_INTERVAL_S)
+            report.advance(task, steps=done - shown)
+            report.refresh()
+            shown = done
 
         yield advance
 
@@ -183,7 +188,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
-@click.option("--quiet", is_flag=True, help="No progress bar.")
+@click.option("--quiet", is_flag=True, help="No progress report on stderr (a bar on a terminal, else plain lines).")
 @click.option("--global", "global_fit", is_flag=True,
               help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
@@ -213,7 +218,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from .series import fit_series
+    from .series import fit_series, load_series
 
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
@@ -222,12 +227,15 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         from .posterior import require_emcee
 
         require_emcee(where="--posterior")
+    series = load_series(series_file)
+    for warning in series.warnings:
+        click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
     with figures_as(figure_format):
         if global_fit:
-            _fit_global(series_file, outdir, overwrite, resume, 1 if serial else workers, quiet,
+            _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
                         {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
             return
-        result = fit_series(series_file, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
+        result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                             progress=False if quiet else None,
                             posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
         click.echo(result.report())
@@ -237,7 +245,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     ctx.exit(result.exit_status)
 
 
-def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
+def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
     """`dnmr fit --global`: the global fit (dnmr.globalfit), its text report and report.html."""
     from .globalfit import fit_series_global
@@ -246,7 +254,7 @@ def _fit_global(series_file: Path, outdir: Path, overwrite: bool, resume: bool, 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series_file, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
+    result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
                                progress=False if quiet else None, **treatment)
     click.echo(result.report())
     _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
@@ -281,7 +289,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format
 
 
 @cli.command()
-@click.argument("rates_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("rates_files", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report.")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the Eyring plot with residuals to this image (PNG, SVG or PDF).")
@@ -310,12 +318,15 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
-def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str | None,
+def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
            overwrite: bool, tables_folder: Path | None, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
-    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILE (rates.csv of `dnmr fit`, or your own table).
+    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
+    or tables of your own).
 
+    Several tables are fitted together, process by process: lineshape rates and magnetisation-transfer
+    rates on one Eyring line, each rate keeping its method (column `method`; lineshape where absent).
     With --json the first (or only) process's results are at the top level and, for several processes,
     all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
@@ -329,7 +340,7 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
 
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
-    results = eyring_fit_file(rates_file, process=process, temperature_stderr=temperature_stderr,
+    results = eyring_fit_file(list(rates_files), process=process, temperature_stderr=temperature_stderr,
                               temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
                               scale_errors=scale_errors or None, transmission=transmission, calibration=calibration)
     posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
@@ -356,12 +367,12 @@ def eyring(rates_file: Path, as_json: bool, plot_file: Path | None, process: str
     for figure in figures:
         click.echo(f"wrote {figure}", err=as_json)
     if tables_folder is not None:
-        _write_eyring_tables(tables_folder, rates_file, results, calibration, transmission, overwrite, as_json)
+        _write_eyring_tables(tables_folder, rates_files, results, calibration, transmission, overwrite, as_json)
 
 
-def _write_eyring_tables(folder: Path, rates_file: Path, results, calibration, transmission: float, overwrite: bool,
-                         as_json: bool) -> None:
-    """`dnmr eyring --tables`: the supporting-information tables of the rate table and its analysis."""
+def _write_eyring_tables(folder: Path, rates_files: tuple[Path, ...], results, calibration, transmission: float,
+                         overwrite: bool, as_json: bool) -> None:
+    """`dnmr eyring --tables`: the supporting-information tables of the rate tables and their analysis."""
     import csv
 
     from .supporting import activation_rows, rate_rows_from_table, write_supporting_tables
@@ -369,8 +380,10 @@ def _write_eyring_tables(folder: Path, rates_file: Path, results, calibration, t
     if transmission != 1.0:
         raise InputError("the tables give ΔG‡ at each temperature with transmission coefficient 1; drop "
                          "--transmission or --tables", where="--tables")
-    with open(rates_file, newline="", encoding="utf-8-sig") as fh:
-        rows = [row for row in csv.DictReader(line for line in fh if not line.lstrip().startswith("#"))]
+    rows = []
+    for rates_file in rates_files:
+        with open(rates_file, newline="", encoding="utf-8-sig") as fh:
+            rows += list(csv.DictReader(line for line in fh if not line.lstrip().startswith("#")))
     written = write_supporting_tables(folder, rate_rows_from_table(rows, calibration), activation_rows(results),
                                       overwrite=overwrite)
     click.echo(f"wrote {', '.join(str(p) for p in written)}", err=as_json)
@@ -447,13 +460,14 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
 @cli.command()
 @click.argument("outdir", required=False, default="dnmr-demo", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--overwrite", is_flag=True, help="Write into an existing, non-empty folder.")
+@click.option("--quiet", is_flag=True, help="No progress report of the series fit on stderr.")
 @FIGURE_FORMAT_OPTION
-def demo(outdir: Path, overwrite: bool, figure_format: str) -> None:
+def demo(outdir: Path, overwrite: bool, quiet: bool, figure_format: str) -> None:
     """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
     from .demo import run_demo
 
     with figures_as(figure_format):
-        run_demo(outdir, overwrite=overwrite, echo=click.echo)
+        run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
 
 
 def _with_options(options):
@@ -476,6 +490,9 @@ _TIMESCALE_OPTIONS = (
                       " exchange (default 0.1)."),
     click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
     click.option("--overwrite", is_flag=True, help="Replace an existing image."),
+    click.option("--r1-per-s", type=float,
+                 help="R1 (s^-1) for the magnetisation-transfer window (default: the model's r1_per_s, else a typical"
+                      " 1 s^-1)."),
 )
 
 
@@ -532,10 +549,14 @@ def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> Non
 @click.option("--series", "series_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write a series file for dnmr fit with the planned temperatures (first field) and the "
                    "linewidth treatment the precision assumes.")
+@click.option("--transfer-runs", type=click.IntRange(0, 50),
+              help="Temperatures to plan for magnetisation transfer per process (default 4; 0 for none).")
 def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-         detectable_fraction, as_json, overwrite, solvent_name, solvent_file, melting_point_k, boiling_point_k,
-         probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file, series_file) -> None:
-    """Before booking the magnet: coalescence per field, temperatures to run, solvent check and cautions."""
+         detectable_fraction, as_json, overwrite, r1_per_s, solvent_name, solvent_file, melting_point_k,
+         boiling_point_k, probe_range_k, signal_to_noise, spectra, min_step_k, margin_k, plot_file,
+         series_file, transfer_runs) -> None:
+    """Before booking the magnet: coalescence per field, temperatures to run for lineshapes and, below them,
+    for magnetisation transfer (with delays and mixing times), solvent check and cautions."""
     from . import load_model
     from .planning import plan_experiment
     from .solvents import solvent_from_options
@@ -543,7 +564,8 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
     model = load_model(model_file)
     given = {"probe_range_k": _parse_list(probe_range_k, "--probe-range-k") if probe_range_k else None,
              "signal_to_noise": signal_to_noise, "spectra": spectra, "min_step_k": min_step_k,
-             "detectable_fraction": detectable_fraction, "margin_k": margin_k}
+             "detectable_fraction": detectable_fraction, "margin_k": margin_k, "r1_per_s": r1_per_s,
+             "transfer_runs": transfer_runs}
     result = plan_experiment(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
@@ -567,8 +589,9 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
 def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
-              detectable_fraction, as_json, overwrite, temperature_k, plot_file) -> None:
-    """Slow, intermediate and fast exchange per pair and field, and what becomes equivalent when fast."""
+              detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
+    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
+    lineshapes, and what becomes equivalent when fast."""
     from . import load_model
     from .timescale import timescale_view
 
@@ -576,7 +599,7 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
     result = timescale_view(
         model, _activation_from_options(barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k),
         frequencies_mhz=_parse_list(frequencies_mhz, "--frequencies-mhz") if frequencies_mhz else None,
-        process=process, temperature_k=temperature_k,
+        process=process, temperature_k=temperature_k, r1_per_s=r1_per_s,
         **({} if detectable_fraction is None else {"detectable_fraction": detectable_fraction}))
     _emit(result, as_json, plot_file, overwrite)
 
@@ -588,16 +611,20 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write (default OUTDIR/report.html).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing report and its supporting-information tables.")
+@click.option("--transfer", "transfer_folders", multiple=True, type=click.Path(file_okay=False, path_type=Path),
+              help="A folder written by `dnmr transfer` (repeat for several): its fit is shown beside the lineshape "
+                   "fits and its rates join the Eyring analysis.")
 @FIGURE_FORMAT_OPTION
-def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool, figure_format: str) -> None:
+def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool,
+           transfer_folders: tuple[Path, ...], figure_format: str) -> None:
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched), and
     beside it supporting-information/: the rates and activation parameters as CSV, Markdown and LaTeX
     tables, and the Eyring figure in --figure-format."""
-    from .report import write_report
+    from .report import supporting_folder, write_report
 
     written = write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite,
-                           figure_format=figure_format)
-    click.echo(f"wrote {written} and the tables in {written.parent / 'supporting-information'}")
+                           transfer=transfer_folders, figure_format=figure_format)
+    click.echo(f"wrote {written} and the tables in {supporting_folder(written)}")
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -8,7 +8,6 @@ with the invented truth the demo spectra were made from (`dnmr/data/demo/truth.t
 from __future__ import annotations
 
 import json
-import sys
 from importlib import resources
 from pathlib import Path
 
@@ -45,7 +44,8 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     echo : callable
         Where progress lines go.
     progress : bool, optional
-        Show a progress bar during the series fit (default: when stderr is a terminal).
+        False: no progress report of the series fit; otherwise a live bar on a terminal, plain lines on
+        stderr when it is a file or a pipe.
     """
     outdir = Path(outdir)
     new_output_folder(outdir, overwrite)
@@ -54,8 +54,7 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
     truth = read_toml(data / "truth.toml")
     echo(f"demo: {model.title}")
     echo("  1/4 fitting the VT series (17 spectra) ...")
-    fit_series(data / "series.toml", outdir / "fit", overwrite=overwrite,
-               progress=sys.stderr.isatty() if progress is None else progress)
+    fit_series(data / "series.toml", outdir / "fit", overwrite=overwrite, progress=progress)
     written = {"rates": outdir / "fit" / "rates.csv", "fit results": outdir / "fit" / "results.json"}
 
     echo("  2/4 Eyring analysis on calibrated sample temperatures ...")

@@ -82,7 +82,7 @@ from scipy import signal, stats
 from .engine import default_window_ppm, lineshape_terms
 from .errors import InputError, did_you_mean
 from .model import Model, parse_coupling_key
-from .readers import MeasuredSpectrum, read_spectrum
+from .readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
 from .notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -93,7 +93,17 @@ LINEWIDTH_MODES = ("fixed", "shared", "per-state")
 POPULATION_MODES = ("fixed", "free")
 SHIFT_MODES = ("fixed", "free")
 COUPLING_MODES = ("fixed", "free")
-SETTING_KEYS = ("value", "vary", "min", "max", "expr", "stderr")
+SETTING_KEYS = ("start", "fixed", "lower", "upper", "same_as", "times", "plus", "stderr")
+RENAMED_SETTINGS = {
+    "value": "start",
+    "vary": "fixed (with the opposite sense: vary = false is now fixed = true)",
+    "min": "lower",
+    "max": "upper",
+    "expr": 'same_as = "<parameter name>", optionally with times and plus (no formulas)',
+}
+"""Setting keys of earlier releases and what replaced them (refused with a "renamed to" line)."""
+TIE_KEYS = ("times", "plus")
+"""Keys that only make sense beside ``same_as``: the tie is  this = times * other + plus."""
 
 NOISE_SEGMENT_POINTS = 64
 """Points per segment when detrending signal-free regions for the noise estimate."""
@@ -197,9 +207,10 @@ class FitOptions:
     profile : bool
         Profile chi-square over every rate to find bounds (on by default; off only for speed).
     parameters : mapping
-        Settings by parameter name: ``{"linewidth_hz_a": {"value": 1.2, "vary": False}}``; keys
-        value, vary, min, max, expr, and stderr: the standard error of a held value, carried into
-        the rates.
+        Settings by parameter name: ``{"linewidth_hz_a": {"start": 1.2, "fixed": True}}``; keys
+        start, fixed, lower, upper, same_as (the name of another parameter this one equals, with
+        optional times and plus: this = times * other + plus), and stderr: the standard error of a
+        held value, carried into the rates.  See :class:`FitParameter`.
     """
 
     region_ppm: tuple[float, float] | None = None
@@ -271,24 +282,44 @@ class FitOptions:
 
 
 def _checked_settings(settings: Mapping) -> dict[str, dict[str, Any]]:
+    """The settings by parameter name, each checked on its own (names are checked by :func:`apply_settings`)."""
     if not isinstance(settings, Mapping):
         raise InputError("expected a table of parameter settings", where="parameters")
-    out = {}
-    for name, setting in settings.items():
-        where = f"parameters.{name}"
-        if not isinstance(setting, Mapping):
-            raise InputError("expected a table such as { value = 1.0, vary = false }", where=where)
-        for key, value in setting.items():
-            if key not in SETTING_KEYS:
-                raise InputError(f'unknown setting "{key}"{did_you_mean(key, SETTING_KEYS)}; '
-                                 f'allowed: {", ".join(SETTING_KEYS)}', where=f"{where}.{key}")
-            ok = {"vary": isinstance(value, bool), "expr": isinstance(value, str)}.get(
-                key, isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
-            if not ok or (key == "stderr" and value < 0):
-                raise InputError(f"not a valid {key}: {value!r}", where=f"{where}.{key}")
-        out[str(name)] = dict(setting)
-    return out
+    return {str(name): _checked_setting(setting, f"parameters.{name}") for name, setting in settings.items()}
 
+
+def _checked_setting(setting: Any, where: str) -> dict[str, Any]:
+    """One parameter's setting: known keys, values of the right kind, a tie only in its closed form."""
+    if not isinstance(setting, Mapping):
+        raise InputError("expected a table such as { start = 1.0, fixed = true }", where=where)
+    for key, value in setting.items():
+        if key in RENAMED_SETTINGS:
+            raise InputError(f'"{key}" was renamed to {RENAMED_SETTINGS[key]}', where=f"{where}.{key}")
+        if key not in SETTING_KEYS:
+            raise InputError(f'unknown setting "{key}"{did_you_mean(str(key), SETTING_KEYS)}; '
+                             f'allowed: {", ".join(SETTING_KEYS)}', where=f"{where}.{key}")
+        if key == "same_as":
+            if not (isinstance(value, str) and re.fullmatch(r"[A-Za-z_]\w*", value)):
+                raise InputError(f"same_as takes the name of one parameter (letters, digits and _), not a formula; "
+                                 f"got {str(value)[:40]!r}; use times and plus for a factor and an offset",
+                                 where=f"{where}.{key}")
+        elif key == "fixed":
+            if not isinstance(value, bool):
+                raise InputError(f"fixed must be true or false, got {str(value)[:40]!r}", where=f"{where}.{key}")
+        elif not (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)):
+            raise InputError(f"{key} must be a finite number, got {str(value)[:40]!r}", where=f"{where}.{key}")
+        elif key == "stderr" and value < 0:
+            raise InputError(f"stderr must not be negative, got {value!r}", where=f"{where}.{key}")
+    if any(k in setting for k in TIE_KEYS) and "same_as" not in setting:
+        raise InputError("times and plus belong to a tie: give same_as too", where=where)
+    if "same_as" in setting and ("fixed" in setting or "start" in setting):
+        raise InputError("a tied parameter (same_as) follows the other one: leave out fixed and start", where=where)
+    if "lower" in setting and "upper" in setting and not setting["lower"] < setting["upper"]:
+        raise InputError(f"lower ({setting['lower']!r}) must be below upper ({setting['upper']!r})", where=where)
+    if "times" in setting and setting["times"] == 0:
+        raise InputError("times = 0 ties to nothing: hold the parameter with start and fixed = true instead",
+                         where=f"{where}.times")
+    return {key: (value if key in ("same_as", "fixed") else float(value)) for key, value in setting.items()}
 
 # --------------------------------------------------------------------------------------------------
 # noise
@@ -536,36 +567,184 @@ class ParameterLayout:
 
 
 def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> None:
-    """Apply per-parameter settings (value, vary, min, max, expr) to lmfit `params` in place.
+    """Apply per-parameter settings (:data:`SETTING_KEYS`, checked by :func:`_checked_settings`) to
+    lmfit `params` in place.
 
-    A held parameter (``vary = False``) keeps any value given: its bounds are widened to hold it.  The
-    setting ``stderr`` (the uncertainty of a held value) is read by the fit, not here.
+    A held parameter (``fixed = true``) keeps any start value given: its bounds are widened to hold it.
+    A tie (``same_as``, ``times``, ``plus``) is checked against the parameter names and for cycles, then
+    written as a product and a sum of that one name and two numbers: nothing from the input is
+    evaluated.  The setting ``stderr`` (the uncertainty of a held value) is read by the fit, not here.
     """
-    for name, setting in settings.items():
+    for name in settings:
         if name not in params:
             raise InputError(f'no fit parameter "{name}"{did_you_mean(name, params)}; parameters are '
                              f'{", ".join(params)}', where=f"parameters.{name}")
-        par = params[name]
-        try:
-            if "expr" in setting:
-                par.set(expr=setting["expr"])
-            for key in ("min", "max", "value", "vary"):
-                if key in setting:
-                    par.set(**{key: setting[key]})
-            if "value" in setting and not par.vary and not par.expr:
-                par.set(min=min(par.min, setting["value"]), max=max(par.max, setting["value"]),
-                        value=setting["value"])
-        except Exception as err:  # lmfit raises NameError/SyntaxError for a bad expression
-            raise InputError(f"cannot apply {dict(setting)}: {err}", where=f"parameters.{name}") from None
-    try:
-        params.update_constraints()
-    except Exception as err:
-        raise InputError(f"a parameter expression cannot be evaluated: {err}", where="parameters") from None
+    _check_ties(params, settings)
+    for name, setting in settings.items():
+        par, where = params[name], f"parameters.{name}"
+        par.set(min=setting.get("lower"), max=setting.get("upper"))
+        if "fixed" in setting:
+            par.set(expr="")
+            par.set(vary=not setting["fixed"])
+        if "start" in setting:
+            if par.expr:
+                raise InputError(f"{name} follows {_tie_text(par)} in this fit: hold it with fixed = true beside "
+                                 "start, or free it with fixed = false", where=where)
+            value = setting["start"]
+            if not par.vary:  # a held value stays what was given: widen the range to hold it
+                par.set(min=min(par.min, value), max=max(par.max, value))
+            par.set(value=value)
+        if "same_as" in setting:
+            par.set(expr=_tie_expression(setting["same_as"], setting.get("times", 1.0), setting.get("plus", 0.0)))
+        if not par.min < par.max and not par.min == par.max == par.value:
+            raise InputError(f"lower {par.min:g} is not below upper {par.max:g}", where=where)
+    params.update_constraints()
+
+
+def _tie_expression(name: str, times: float, plus: float) -> str:
+    """The lmfit constraint of a tie: built from a checked name and two numbers, never from input text."""
+    text = name if times == 1.0 else f"{float(times)!r} * {name}"
+    return text if plus == 0.0 else f"{text} + {float(plus)!r}"
+
+
+_TIE = re.compile(r"(?:(?P<times>[-+0-9.e]+) \* )?(?P<name>[A-Za-z_]\w*)(?: \+ (?P<plus>[-+0-9.e]+))?")
+
+
+def _tie_targets(params: lmfit.Parameters, name: str, settings: Mapping[str, Mapping[str, Any]]) -> set[str]:
+    """The parameters `name` follows once `settings` are applied (a user tie, else the layout's own)."""
+    setting = settings.get(name, {})
+    if "same_as" in setting:
+        return {setting["same_as"]}
+    if "fixed" in setting or not params[name].expr:
+        return set()
+    return set(re.findall(r"[A-Za-z_]\w*", params[name].expr)) & set(params)
+
+
+def _check_ties(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> None:
+    """Refuse a tie to an unknown parameter, to itself, or round a circle (one line naming the tie)."""
+    for name, setting in settings.items():
+        other = setting.get("same_as")
+        if other is None:
+            continue
+        where = f"parameters.{name}.same_as"
+        if other == name:
+            raise InputError(f"{name} cannot be tied to itself; hold it with fixed = true instead", where=where)
+        if other not in params:
+            raise InputError(f'no fit parameter "{other}"{did_you_mean(other, params)} to tie to', where=where)
+        circle = _tie_path(params, other, name, settings)
+        if circle:
+            raise InputError("the ties go round in a circle (" + " -> ".join([name] + circle)
+                             + "): tie the parameters of the circle to one that is free or fixed", where=where)
+
+
+def _tie_path(params: lmfit.Parameters, start: str, goal: str, settings: Mapping[str, Mapping[str, Any]]
+              ) -> list[str]:
+    """The chain of ties from `start` that reaches `goal` (empty when none does)."""
+    stack, seen = [[start]], set()
+    while stack:
+        path = stack.pop()
+        if path[-1] == goal:
+            return path
+        if path[-1] not in seen:
+            seen.add(path[-1])
+            stack += [path + [t] for t in sorted(_tie_targets(params, path[-1], settings))]
+    return []
+
+
+@dataclass
+class FitParameter:
+    """How one fit parameter is handled: where it starts, whether it is fixed, its range, or a tie.
+
+    Attributes
+    ----------
+    start : float
+        Starting value (or the held value when fixed), in `unit`.
+    fixed : bool
+        Held at `start` instead of fitted.
+    lower, upper : float
+        Range the fit keeps the parameter in (`unit`; infinite where unbounded).
+    same_as : str or None
+        Name of the parameter this one equals: this = times * same_as + plus.
+    times, plus : float
+        Factor and offset (`unit`) of the tie.
+    stderr : float or None
+        Standard error of a held value (`unit`), carried into the rates.
+    rule : str
+        A relation dnmr keeps itself (e.g. the first population is 1 minus the others); read only.
+    unit : str
+        Unit of the parameter (ppm, Hz, deg, log10(s^-1); empty for amplitudes and fractions).
+    """
+
+    start: float
+    fixed: bool = False
+    lower: float = -math.inf
+    upper: float = math.inf
+    same_as: str | None = None
+    times: float = 1.0
+    plus: float = 0.0
+    stderr: float | None = None
+    rule: str = ""
+    unit: str = ""
+
+    def setting(self) -> dict[str, Any]:
+        """The setting (as in a series file's ``[fit.parameters]``) that gives this handling."""
+        out: dict[str, Any] = {k: float(v) for k, v in (("lower", self.lower), ("upper", self.upper))
+                               if math.isfinite(v)}
+        if self.same_as:
+            out.update(same_as=self.same_as, times=float(self.times), plus=float(self.plus))
+        elif self.fixed or not self.rule:
+            out.update(start=float(self.start), fixed=bool(self.fixed))
+        if self.stderr is not None:
+            out["stderr"] = float(self.stderr)
+        return out
+
+
+UNITS = (("log10_k_", "log10(s^-1)"), ("r1_per_s", "s^-1"), ("linewidth_hz_", "Hz"), ("coupling_hz_", "Hz"), ("offset_hz", "Hz"),
+         ("shift_ppm_", "ppm"), ("phase", "deg"))
+
+
+def parameter_unit(name: str) -> str:
+    """The unit of fit parameter `name` from its prefix (empty for amplitudes, baselines and fractions)."""
+    return next((unit for prefix, unit in UNITS if name.startswith(prefix)), "")
+
+
+def _tie_text(par: lmfit.Parameter) -> str:
+    """A parameter's constraint in words."""
+    tie = _tie_of(par)
+    if "rule" in tie:
+        return par.expr
+    return " ".join(filter(None, (f"{tie['times']:g} x" if tie["times"] != 1 else "", tie["same_as"],
+                                                     f"+ {tie['plus']:g}" if tie["plus"] else "")))
+
+
+def _tie_of(par: lmfit.Parameter) -> dict[str, Any]:
+    """A constraint of `par` as a tie (same_as, times, plus), or as a read-only rule when it is no tie."""
+    if not par.expr:
+        return {}
+    tie = _TIE.fullmatch(par.expr)
+    if tie is None:
+        return {"rule": f"{par.name} = {par.expr}"}
+    return {"same_as": tie["name"], "times": float(tie["times"] or 1.0), "plus": float(tie["plus"] or 0.0)}
+
+
+def parameter_record(par: lmfit.Parameter) -> dict[str, Any]:
+    """One fitted parameter as plain data (JSON-ready): estimate, stderr, range, fixed, tie and unit."""
+    return {"estimate": float(par.value), "stderr": _stderr(par), "lower": float(par.min), "upper": float(par.max),
+            "fixed": not par.vary and not par.expr, **_tie_of(par), "unit": parameter_unit(par.name),
+            "correlations": {k: float(v) for k, v in (par.correl or {}).items()}}
+
+
+def _public(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]) -> dict[str, FitParameter]:
+    """dnmr's view of lmfit `params` (with the held errors of `settings`)."""
+    return {name: FitParameter(start=float(par.value), fixed=not par.vary and not par.expr, lower=float(par.min),
+                               upper=float(par.max), stderr=settings.get(name, {}).get("stderr"),
+                               unit=parameter_unit(name), **_tie_of(par))
+            for name, par in params.items()}
 
 
 def fit_parameters(model: Model, region_ppm: tuple[float, float] | None = None,
-                   options: FitOptions | None = None) -> lmfit.Parameters:
-    """The default lmfit Parameters of a fit, to inspect or edit and pass to :func:`fit_spectrum`.
+                   options: FitOptions | None = None) -> dict[str, FitParameter]:
+    """The parameters of a fit and how each is handled, to inspect or edit and pass to :func:`fit_spectrum`.
 
     Parameters
     ----------
@@ -574,12 +753,21 @@ def fit_parameters(model: Model, region_ppm: tuple[float, float] | None = None,
     region_ppm : (float, float), optional
         Fitted region (ppm); default the options' region or the model's window.
     options : FitOptions, optional
-        Fit options (default ones if not given).
+        Fit options (default ones if not given; their ``parameters`` settings are applied).
+
+    Returns
+    -------
+    dict of str to FitParameter
+        By parameter name, in the fit's order; edit the entries (``p["phase0_deg"].fixed = True``).
     """
     options = options or FitOptions()
+    return _public(_default_parameters(model, region_ppm, options), options.parameters)
+
+
+def _default_parameters(model: Model, region_ppm: tuple[float, float] | None, options: FitOptions) -> lmfit.Parameters:
+    """The lmfit Parameters of a fit of `model` over `region_ppm` (ppm) under `options`."""
     lo, hi = region_ppm or options.region_ppm or model.window_ppm or default_window_ppm(model)
     return ParameterLayout.for_model(model, options).parameters(abs(hi - lo) * model.spectrometer.frequency_mhz)
-
 
 # --------------------------------------------------------------------------------------------------
 # the fitted function
@@ -1006,7 +1194,7 @@ def _classify(name: str, process: str, params: lmfit.Parameters, profile: Profil
                             log10_stderr_spectrum=own, log10_stderr_held=held, held_shares=dict(shares))
 
     if not par.vary or par.expr:
-        return estimate("fixed", reason=f"tied: {par.expr}" if par.expr else "held fixed")
+        return estimate("fixed", reason=f"tied: {_tie_text(par)}" if par.expr else "held fixed")
     held_text = (f" The held parameters add {held:.3f} decades in quadrature (widening the interval too)."
                  if held > 0 else "")
     # an error bar reaching past a limit of the allowed range is no error bar: the range cut it
@@ -1160,7 +1348,7 @@ class SpectrumFit(NotebookView):
                   f"({self.noise.points} points, correlation factor {self.noise.correlation_factor:.2f}); "
                   f"error scale {self.error_scale:.3g}", "", "parameters:"]
         for par in self.parameters.values():
-            state = "fixed" if not par.vary and not par.expr else (f"= {par.expr}" if par.expr else "")
+            state = "fixed" if not par.vary and not par.expr else (f"= {_tie_text(par)}" if par.expr else "")
             err = "" if par.stderr is None or not np.isfinite(par.stderr) or state else f"± {par.stderr:.4g}"
             bounds = "" if state else f"[{par.min:.4g}, {par.max:.4g}]"
             lines.append(f"  {par.name:<26} {par.value:>13.6g} {err:<13} {bounds:<22} {state}")
@@ -1196,10 +1384,7 @@ class SpectrumFit(NotebookView):
             "region_ppm": [float(self.ppm[0]), float(self.ppm[-1])],
             "points": int(self.ppm.size),
             "rates": [r.to_dict() for r in self.rates],
-            "parameters": {p.name: {"value": p.value, "stderr": math.nan if p.stderr is None else p.stderr,
-                                    "min": p.min, "max": p.max, "vary": p.vary, "expr": p.expr,
-                                    "correlations": dict(p.correl or {})}
-                           for p in self.parameters.values()},
+            "parameters": {p.name: parameter_record(p) for p in self.parameters.values()},
             "chi_square": self.chi_square,
             "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom,
@@ -1215,16 +1400,8 @@ class SpectrumFit(NotebookView):
     def from_dict(cls, data: Mapping, curves: Mapping, model: Model) -> "SpectrumFit":
         """Rebuild a fit from :meth:`to_dict` and :meth:`curves`; `model` is the model that was fitted."""
         options = FitOptions.from_dict(data["options"])
-        params = lmfit.Parameters()
-        for name, p in data["parameters"].items():
-            params.add(name, value=p["value"], min=_or(p["min"], -np.inf), max=_or(p["max"], np.inf))
-            params[name].vary = p["vary"]
-            params[name].stderr = _or(p["stderr"], math.nan)
-            params[name].correl = dict(p.get("correlations") or {}) or None
-        for name, p in data["parameters"].items():  # ties last: they may name parameters added later
-            if p.get("expr"):
-                params[name].set(expr=p["expr"])
         layout = ParameterLayout.for_model(model, options)
+        params = _parameters_from_records(data["parameters"], layout)
         fitted = np.array(curves["fit"], float)
         return cls(
             rates=[RateEstimate.from_dict(r) for r in data["rates"]], parameters=params,
@@ -1236,6 +1413,25 @@ class SpectrumFit(NotebookView):
             source=data["source"], temperature_k=data["temperature_k"], frequency_mhz=data["frequency_mhz"],
             function_evaluations=data["function_evaluations"], options=options,
         )
+
+
+def _parameters_from_records(records: Mapping[str, Mapping], layout: ParameterLayout) -> lmfit.Parameters:
+    """lmfit Parameters from :func:`parameter_record` records; a rule is the layout's own, a tie is rebuilt
+    from its checked name and numbers (nothing stored is evaluated)."""
+    own = layout.parameters(1.0)
+    params = lmfit.Parameters()
+    for name, p in records.items():
+        params.add(name, value=p["estimate"], min=_or(p["lower"], -np.inf), max=_or(p["upper"], np.inf),
+                   vary=not p["fixed"])
+        params[name].stderr = _or(p["stderr"], math.nan)
+        params[name].correl = dict(p.get("correlations") or {}) or None
+    for name, p in records.items():  # ties last: they may name parameters added later
+        if p.get("same_as"):
+            _check_ties(params, {name: {"same_as": p["same_as"]}})
+            params[name].set(expr=_tie_expression(p["same_as"], p["times"], p["plus"]))
+        elif p.get("rule") and name in own and own[name].expr:
+            params[name].set(expr=own[name].expr)
+    return params
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1252,10 +1448,36 @@ def _prepared(spectrum, model: Model) -> MeasuredSpectrum:
     return spectrum
 
 
-def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tuple[float, float]:
-    region = options.region_ppm or model.window_ppm or default_window_ppm(model)
+def _region(spectrum: MeasuredSpectrum, model: Model, options: FitOptions) -> tuple[float, float, str]:
+    """The fitted region (ppm, cut to the spectrum) and where it came from: the options' region_ppm, else
+    the model's [window], else a window about the model's shifts.  Refused, naming that source, when fewer
+    than MIN_POINTS points of the spectrum lie in it."""
+    if options.region_ppm:
+        region, origin = options.region_ppm, "region_ppm"
+    elif model.window_ppm:
+        region, origin = model.window_ppm, "the model's [window] (no region_ppm given)"
+    else:
+        region, origin = default_window_ppm(model), "a window about the model's shifts (no region_ppm, no [window])"
     lo, hi = sorted(region)
-    return max(lo, float(spectrum.ppm[0])), min(hi, float(spectrum.ppm[-1]))
+    first, last = float(spectrum.ppm.min()), float(spectrum.ppm.max())
+    inside = int(((spectrum.ppm >= lo) & (spectrum.ppm <= hi)).sum())
+    if inside < MIN_POINTS:
+        shifts = model.shifts_hz() / model.spectrometer.frequency_mhz
+        raise InputError(f"the fit region {lo:g} to {hi:g} ppm comes from {origin} and holds {inside} points of the "
+                         f"spectrum, which covers {first:g} to {last:g} ppm (the model's shifts: "
+                         f"{shifts.min():g} to {shifts.max():g} ppm); give region_ppm within the spectrum, or check "
+                         "the model's shifts and the spectrum's referencing", source=spectrum.source, where="region_ppm")
+    return max(lo, first), min(hi, last), origin
+
+
+def _shifts_outside(model: Model, lo: float, hi: float, origin: str) -> list[str]:
+    """A note when none of the model's shifts lies in the fitted region `lo`-`hi` ppm (a slip in the region
+    or in the shifts: the fit would then describe only the tails of the lines)."""
+    shifts = model.shifts_hz() / model.spectrometer.frequency_mhz
+    if ((shifts >= lo) & (shifts <= hi)).any():
+        return []
+    return [f"none of the model's shifts ({shifts.min():g} to {shifts.max():g} ppm) lies in the fitted region "
+            f"{lo:g} to {hi:g} ppm (from {origin}); check the region or the model's shifts"]
 
 
 def _error_scale(chi2: float, dof: int, noise: NoiseEstimate, held: Sequence[str] = ()) -> tuple[float, list[str], list[str]]:
@@ -1319,7 +1541,7 @@ def fit_spectrum(
     *,
     temperature_k: float | None = None,
     options: FitOptions | None = None,
-    parameters: lmfit.Parameters | None = None,
+    parameters: Mapping[str, FitParameter] | None = None,
     start: Mapping[str, float] | None = None,
     **option_changes,
 ) -> SpectrumFit:
@@ -1337,8 +1559,9 @@ def fit_spectrum(
     options : FitOptions, optional
         How to fit; keyword arguments (``baseline_order=2``, ``linewidth="fixed"``...) change single
         options.
-    parameters : lmfit.Parameters, optional
-        Full control: parameters from :func:`fit_parameters`, edited (fixed, bounded, tied).
+    parameters : mapping of str to FitParameter, optional
+        Full control: parameters from :func:`fit_parameters`, edited (fixed, bounded, tied); applied
+        after the options' own ``parameters`` settings.
     start : mapping, optional
         Starting values by parameter name (e.g. from a neighbouring temperature); the coarse scan is
         still done and guards against a bad start.
@@ -1353,25 +1576,25 @@ def fit_spectrum(
 
 
 def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOptions,
-         parameters: lmfit.Parameters | None, start: Mapping[str, float] | None) -> SpectrumFit:
+         parameters: Mapping[str, FitParameter] | None, start: Mapping[str, float] | None) -> SpectrumFit:
     """The work of :func:`fit_spectrum`."""
     if temperature_k is not None:
         model = model.at_temperature(temperature_k)
     spectrum = _prepared(spectrum, model)
-    lo, hi = _region(spectrum, model, options)
+    lo, hi, origin = _region(spectrum, model, options)
     part = spectrum.region(lo, hi)
     noise = estimate_noise(spectrum, (lo, hi), options.noise_ppm, options.noise)
     layout = ParameterLayout.for_model(model, options)
     problem = _Problem(layout, part.ppm, part.intensity, noise)
     params = layout.parameters(problem.span)
+    settings = dict(options.parameters)
     if parameters is not None:
-        missing = [n for n in params if n not in parameters]
-        if missing:
-            raise InputError(f"the parameters lack {', '.join(missing)}; start from fit_parameters(model, region, "
-                             "options) with the same options", where="parameters")
-        params = parameters.copy()
-    flags, notes = [], []
-    held = held_errors(params, options.parameters)
+        edited = _checked_settings({name: p.setting() for name, p in parameters.items()})
+        apply_settings(params, edited)
+        settings.update(edited)
+    notes = _shifts_outside(model, lo, hi, origin)
+    flags = ["shifts-outside-region"] if notes else []
+    held = held_errors(params, settings)
     if options.shifts == "free" and options.frequency_offset:
         notes.append("the frequency offset is held at its start value because the shifts are free")
     if start:

@@ -27,7 +27,7 @@ Every spectrum i of the series (sample temperature T_i, K; its region, noise and
   and, for linear (quadratic) shift trends, to no linear (and quadratic) trend in T -- a gauge
   condition (two extra residuals) that changes nothing the spectra determine.
 
-Any parameter the series file fixes in ``[fit.parameters]`` (``vary = false``) is held at its value.
+Any parameter the series file fixes in ``[fit.parameters]`` (``fixed = true``) is held at its ``start`` value.
 
 Method
 ------
@@ -91,6 +91,7 @@ from .fitting import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, 
 from .kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy
 from .model import Model, parse_coupling_key
 from .output import atomic_write_text, json_ready, save_figure
+from .progress import PLAIN_INTERVAL_S, ProgressReport
 from .series import Series, SeriesFit, fit_series, load_series
 from .notebook import NotebookView
 
@@ -251,10 +252,10 @@ class _GlobalProblem:
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
-        """Add a parameter; the series' ``[fit.parameters]`` may fix it (vary = false) at its value."""
+        """Add a parameter; the series' ``[fit.parameters]`` may fix it (fixed = true) at its start value."""
         setting = self.settings.get(name, {})
-        if setting.get("vary") is False:
-            value, vary = float(setting.get("value", value)), False
+        if setting.get("fixed") is True:
+            value, vary = float(setting.get("start", value)), False
         self.params.add(name, value=float(np.clip(value, lower, upper)), min=lower, max=upper, vary=vary)
 
     def _quantity(self, name: str, family: str, terms: list[tuple[str, tuple]], step: float,
@@ -267,7 +268,7 @@ class _GlobalProblem:
                lower: float = -np.inf, fixed_value: float | None = None) -> None:
         """Quantity `name` as a polynomial of `degree` in T - T_ref started from a line through `values`
         (one per spectrum, NaN where unknown), or held at `fixed_value` (or the series' setting)."""
-        if fixed_value is not None or self.settings.get(name, {}).get("vary") is False:
+        if fixed_value is not None or self.settings.get(name, {}).get("fixed") is True:
             self._add(name, values[0] if fixed_value is None else fixed_value, lower, vary=False)
             self._quantity(name, family, [(name, ("power", 0))], step)
             return
@@ -312,7 +313,7 @@ class _GlobalProblem:
         cold = np.argsort([m.temperature_k for m in self.members])[:max(1, len(self.members) // 3)]
         for name in dict.fromkeys(self._linewidth_keys()):
             state = self.model.states[self.layout.linewidth_names.index(name)]
-            fixed = held or self.settings.get(name, {}).get("vary") is False
+            fixed = held or self.settings.get(name, {}).get("fixed") is True
             if self.treatment.linewidth == "per-spectrum" and not fixed:
                 for m in self.members:
                     self._add(f"{m.prefix}{name}", m.fit.parameters[name].value, MIN_LINEWIDTH_HZ)
@@ -363,7 +364,7 @@ class _GlobalProblem:
                                 vary=bool(par.vary and not par.expr))
             par = m.fit.parameters["offset_hz"]
             self.params.add(f"{m.prefix}offset_hz", value=0.0, min=par.min, max=par.max,
-                            vary=m.fit.options.frequency_offset and self.settings.get("offset_hz", {}).get("vary", True))
+                            vary=m.fit.options.frequency_offset and not self.settings.get("offset_hz", {}).get("fixed", False))
         self._quantity("offset_hz", "offset", [], DIFFERENCE_STEP["offset"])
 
     def _owner(self, name: str) -> int | None:
@@ -579,10 +580,11 @@ def _refit_nuisance_of(problem: _GlobalProblem, k: int, x: np.ndarray) -> np.nda
 
 
 class _Evaluator:
-    """Evaluates a :class:`_GlobalProblem` spectrum by spectrum, in this process or in `workers` processes."""
+    """Evaluates a :class:`_GlobalProblem` spectrum by spectrum, in this process or in `workers` processes;
+    `step` is called at every evaluation of the residuals (for the progress report)."""
 
-    def __init__(self, problem: _GlobalProblem, workers: int):
-        self.problem = problem
+    def __init__(self, problem: _GlobalProblem, workers: int, step: Callable[[], None] | None = None):
+        self.problem, self.step = problem, step
         n = len(problem.members)
         self.workers = max(1, min(workers, n))
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
@@ -607,6 +609,8 @@ class _Evaluator:
 
     def residual(self, x: np.ndarray) -> np.ndarray:
         """Residuals of every spectrum, one after the other, then the offsets' gauge rows."""
+        if self.step is not None:
+            self.step()
         return np.concatenate(self.each("residual", x) + [self.problem.gauge @ x])
 
     def jacobian(self, x: np.ndarray) -> np.ndarray:
@@ -1015,7 +1019,7 @@ class GlobalFit(NotebookView):
     fits : list of SpectrumFit
         Each fitted spectrum with the global fit's curve (``fitted``) in place of its own.
     parameters : dict
-        Every global parameter: value, stderr, vary.
+        Every global parameter: estimate, stderr, fixed.
     chi_square, reduced_chi_square : float
         Of the weighted residuals; degrees of freedom `degrees_of_freedom`.
     degrees_of_freedom : int
@@ -1225,7 +1229,7 @@ def _calibration_covariance(evaluator: _Evaluator, x: np.ndarray, jac: np.ndarra
 def _stderr_table(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None) -> dict:
     g = problem.values(x)
     errors = {} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance))))
-    return {n: {"value": v, "stderr": float(errors.get(n, math.nan)), "vary": n in problem.free} for n, v in g.items()}
+    return {n: {"estimate": v, "stderr": float(errors.get(n, math.nan)), "fixed": n not in problem.free} for n, v in g.items()}
 
 
 def _activation(problem: _GlobalProblem, x: np.ndarray, covariance: np.ndarray | None,
@@ -1268,7 +1272,7 @@ def _van_t_hoff(series: Series, temperatures_k: np.ndarray) -> bool:
     if len(model.states) < 2:
         return False
     settings = series.options.parameters
-    if any(n.startswith("population_") and s.get("vary") is False for n, s in settings.items()):
+    if any(n.startswith("population_") and s.get("fixed") is True for n, s in settings.items()):
         return False
     populations = model.at_temperature(float(np.mean(temperatures_k))).populations()
     return series.options.populations == "free" or bool(np.ptp(populations) > 1e-9)
@@ -1321,7 +1325,8 @@ def fit_series_global(
     workers : int, optional
         Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process).
     progress : bool, optional
-        Progress bar of the two-step fit.
+        False: no progress report.  Otherwise progress of the two-step fit and of the global fit on stderr
+        (a live bar on a terminal, plain lines when stderr is a file or a pipe).
 
     Returns
     -------
@@ -1332,13 +1337,13 @@ def fit_series_global(
     outdir = Path(outdir)
     _prepare(outdir, overwrite)
     two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    result = _global_fit(series, two, outdir, calibration, treatment, workers)
+    result = _global_fit(series, two, outdir, calibration, treatment, workers, progress)
     _write(result, overwrite)
     return result
 
 
 def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "TemperatureCalibration | None",
-                treatment: Treatment, workers: int | None) -> GlobalFit:
+                treatment: Treatment, workers: int | None, progress: bool | None = None) -> GlobalFit:
     """The global fit seeded from a finished two-step fit `two` (its rates.csv in `outdir`/two-step)."""
     used = [i for i, o in enumerate(two.outcomes) if o.fitted]
     if len(used) < 3:
@@ -1355,10 +1360,13 @@ def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "Temp
     problem = _GlobalProblem(members, series.model, treatment, van_t_hoff,
                              _eyring_start(two, eyring, names, idents, used, temps))
     workers = max(1, min(workers or os.cpu_count() or 1, len(members)))
-    with single_threaded_blas():
-        evaluator = _Evaluator(problem, workers)
+    with single_threaded_blas(), ProgressReport(progress) as report:
+        task = report.add_task(f"global fit of {len(members)} spectra", unit="evaluations of all spectra",
+                              interval_s=PLAIN_INTERVAL_S)
+        evaluator = _Evaluator(problem, workers, step=lambda: report.advance(task))
         try:
             solution, inverse = _solve(problem, evaluator)
+            report.finish(task)
             from_calibration = (None if temperature_covariance is None or inverse is None else
                                 _calibration_covariance(evaluator, solution.x, solution.jac, inverse,
                                                         temperature_covariance))

@@ -43,13 +43,27 @@ Plan
     (noise only); the temperature dependence of shifts and linewidths and thermometer calibration add to
     them (Shoup, Becker & McNeel, J. Phys. Chem. 76, 71 (1972)).  dG‡ is quoted at the harmonic mean
     temperature, where it is uncorrelated with dH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
+
+Magnetisation transfer
+    Below the lineshape window the same sample is measured by magnetisation transfer (``dnmr transfer``),
+    which determines k from about R1/5 to a few tens s^-1 (:func:`dnmr.timescale.transfer_windows`).  The
+    plan puts a few temperatures evenly in 1/T over that window (inside the usable range) and gives, at
+    each, the times to record: the mixing time of a 2D exchange spectrum (or the delay at which a selective
+    inversion shows the most transfer), where the cross peak of two-site exchange with equal R1,
+    exp(-R1 t) (1 - exp(-K t)) (Macura & Ernst, Mol. Phys. 41, 95 (1980); from memory), is largest:
+    t = ln((R1 + K) / R1) / K, K = k_forward + k_reverse (near 1/(k + R1) while k is below R1, about
+    ln(K/R1)/K when exchange is faster); the delays of a selective
+    inversion recovery, log-spaced from a twentieth of that time to 5 T1 (full recovery, common practice);
+    and the saturation time that reaches the steady state of a saturation transfer, 5 / (R1 + K).  The
+    transfer window joined with the lineshape window (the union over the fields of the measurable windows)
+    gives the whole range one study covers.
 """
 from __future__ import annotations
 
 import dataclasses
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from itertools import combinations
 
 import numpy as np
@@ -74,9 +88,11 @@ from .timescale import (
     model_at,
     pair_timescales,
     populations_follow_temperature,
+    TransferWindow,
     process_activations,
     rate_window,
     solve_temperature,
+    transfer_windows,
 )
 
 #: Points on the interval between the two shifts where maxima are counted.
@@ -824,6 +840,8 @@ class ExperimentPlan(NotebookView):
         signal_to_noise, spectra, min_step_k, detectable_fraction, margin_k, probe_range_k.
     notes : list of str
     cautions : tuple of str
+    transfer : list of TransferPlan
+        Magnetisation transfer below the lineshape window, per process.
     """
 
     model: Model
@@ -838,6 +856,7 @@ class ExperimentPlan(NotebookView):
     settings: dict
     notes: list[str]
     cautions: tuple[str, ...] = CAUTIONS
+    transfer: list["TransferPlan"] = field(default_factory=list)
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready) with the contract key ``coalescence``."""
@@ -856,6 +875,7 @@ class ExperimentPlan(NotebookView):
             "linewidth_treatment": PLAN_LINEWIDTH, "linewidth_assumption": LINEWIDTH_ASSUMPTION,
             "notes": self.notes + [PLAN_CAVEAT],
             "cautions": list(self.cautions),
+            "magnetisation_transfer": [t.to_dict() for t in self.transfer],
         }
 
     def report(self) -> str:
@@ -894,6 +914,7 @@ class ExperimentPlan(NotebookView):
                     lines.append(f"           warning: {p.solvent_warning.message}")
             lines += [f"  predicted (noise only): {e.describe()}" for e in plan.errors]
             lines += [f"  note: {n}" for n in plan.notes]
+        lines += transfer_report_lines(self.transfer)
         lines += ["", self._solvent_report()]
         lines += [f"Note: {n}" for n in self.notes + [PLAN_CAVEAT, LINEWIDTH_ASSUMPTION]]
         lines += ["", "Cautions:"] + [f"  - {c}" for c in self.cautions]
@@ -997,7 +1018,8 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
                     signal_to_noise: float = DEFAULT_SIGNAL_TO_NOISE, spectra: int = DEFAULT_SPECTRA,
                     min_step_k: float = DEFAULT_MIN_STEP_K,
                     detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION,
-                    margin_k: float = DEFAULT_MARGIN_K) -> ExperimentPlan:
+                    margin_k: float = DEFAULT_MARGIN_K, r1_per_s: float | None = None,
+                    transfer_runs: int | None = None) -> ExperimentPlan:
     """Coalescence temperatures per field, the measurable window, and the temperatures to run.
 
     Parameters
@@ -1024,6 +1046,11 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
         Exchange broadening, as a fraction of the linewidth, that bounds the measurable window.
     margin_k : float
         Distance (K) kept from the solvent's melting and boiling points.
+    r1_per_s : float, optional
+        R1 (s^-1) for the magnetisation-transfer part instead of the model's ``r1_per_s`` (default: the
+        model's, else a typical 1 s^-1, stated in the plan).
+    transfer_runs : int, optional
+        Temperatures to plan for magnetisation transfer per process (default 4; 0 for none).
 
     Returns
     -------
@@ -1056,8 +1083,235 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
         notes.append(f"coalescence at {', '.join(f'{t:.0f}' for t in outside)} K lies outside the usable range"
                      f" {limits[0]:.0f}-{limits[1]:.0f} K")
     names = model.process_names()
+    transfer = plan_transfer(model, activations, windows, limits, r1_per_s,
+                             DEFAULT_TRANSFER_RUNS if transfer_runs is None else transfer_runs, settings["min_step_k"])
     return ExperimentPlan(model, {names[i]: a for i, a in activations.items()}, found, windows, plans, solvent,
-                          warnings, list(dict.fromkeys(covering)), limits, settings, notes)
+                          warnings, list(dict.fromkeys(covering)), limits, settings, notes, transfer=transfer)
+
+
+# --------------------------------------------------------------------------------------------------
+# Magnetisation transfer: temperatures and times below the lineshape window
+
+#: Temperatures planned for magnetisation transfer per process (evenly in 1/T over its window).
+DEFAULT_TRANSFER_RUNS = 4
+#: Delays of a selective inversion recovery: log-spaced from this fraction of the best mixing time ...
+FIRST_DELAY_FRACTION = 0.05
+#: ... to this many T1 (full recovery; common practice), in this many steps.
+RECOVERY_T1 = 5.0
+INVERSION_DELAYS = 12
+#: A study should span this much (K) for dS‡ (common practice: the wider, the better).
+WIDE_SPAN_K = 60.0
+
+
+def exchange_sum_rate(model: Model, index: int) -> float:
+    """K = k_forward + k_reverse (s^-1) of process `index` taken as two-site exchange at the model's rates:
+    the reverse rate by detailed balance (k p_from / p_to) for a site exchange, k itself for a mutual one."""
+    ex, k = model.exchanges[index], float(model.rates()[index])
+    if ex.from_state == ex.to_state:
+        return 2.0 * k
+    p = model.populations()
+    return k * (1.0 + p[model.state_index(ex.from_state)] / p[model.state_index(ex.to_state)])
+
+
+def best_mixing_time(r1_per_s: float, exchange_sum_per_s: float) -> float:
+    """Mixing time (s) at which the cross peak of two-site exchange, exp(-R1 t) (1 - exp(-K t)), is largest:
+    ln((R1 + K) / R1) / K (see the module notes)."""
+    r1, k = float(r1_per_s), float(exchange_sum_per_s)
+    return math.log1p(k / r1) / k if k > 0 else 1.0 / r1
+
+
+def _round_times(times_s: np.ndarray) -> tuple[float, ...]:
+    """Times (s) rounded to two significant figures, duplicates dropped."""
+    return tuple(dict.fromkeys(float(f"{t:.2g}") for t in times_s))
+
+
+@dataclass(frozen=True)
+class TransferRun:
+    """One temperature for magnetisation transfer and the times to record there.
+
+    Attributes
+    ----------
+    temperature_k : float
+    rate_per_s : float
+        Predicted forward rate (s^-1).
+    exchange_sum_per_s : float
+        k_forward + k_reverse (s^-1).
+    mixing_time_s : float
+        Best mixing time of a 2D exchange spectrum (s), also where an inverted site's partner dips most.
+    inversion_delays_s : tuple of float
+        Delays of a selective inversion recovery (s).
+    saturation_s : float
+        Saturation time that reaches the steady state of a saturation transfer (s).
+    """
+
+    temperature_k: float
+    rate_per_s: float
+    exchange_sum_per_s: float
+    mixing_time_s: float
+    inversion_delays_s: tuple[float, ...]
+    saturation_s: float
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        return {"temperature_k": self.temperature_k, "rate_per_s": self.rate_per_s,
+                "exchange_sum_per_s": self.exchange_sum_per_s, "mixing_time_s": self.mixing_time_s,
+                "inversion_delays_s": list(self.inversion_delays_s), "saturation_s": self.saturation_s}
+
+    def describe(self) -> str:
+        """Two lines: the temperature and rate with the mixing and saturation times, then the delays."""
+        delays = ", ".join(f"{d:g}" for d in self.inversion_delays_s)
+        return (f"  {self.temperature_k:6.1f} K ({self.temperature_k - 273.15:6.1f} °C)  k = {self.rate_per_s:.3g} s^-1;"
+                f" mixing time {self.mixing_time_s:.2g} s, steady-state saturation {self.saturation_s:.2g} s\n"
+                f"           inversion delays (s): {delays}")
+
+
+@dataclass(frozen=True)
+class TransferPlan:
+    """Magnetisation transfer for one process: its window, the temperatures and times, and how it joins
+    the lineshape window.
+
+    Attributes
+    ----------
+    window : TransferWindow
+    runs : list of TransferRun
+    lineshape_range_k : (float, float) or None
+        Where lineshapes measure the process (the union over fields of its measurable windows, inside the
+        usable range), K.
+    notes : list of str
+    """
+
+    window: TransferWindow
+    runs: list[TransferRun]
+    lineshape_range_k: tuple[float, float] | None
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def transfer_range_k(self) -> tuple[float, float] | None:
+        """The planned transfer temperatures' range (K)."""
+        return (self.runs[0].temperature_k, self.runs[-1].temperature_k) if self.runs else None
+
+    @property
+    def combined_range_k(self) -> tuple[float, float] | None:
+        """From the lowest transfer temperature to the top of the lineshape window (K)."""
+        ends = [r for r in (self.transfer_range_k, self.lineshape_range_k) if r is not None]
+        return (min(r[0] for r in ends), max(r[1] for r in ends)) if ends else None
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        combined = self.combined_range_k
+        return {**self.window.to_dict(), "runs": [r.to_dict() for r in self.runs],
+                "transfer_range_k": None if self.transfer_range_k is None else list(self.transfer_range_k),
+                "lineshape_range_k": None if self.lineshape_range_k is None else list(self.lineshape_range_k),
+                "combined_range_k": None if combined is None else list(combined),
+                "combined_span_k": None if combined is None else combined[1] - combined[0], "notes": self.notes}
+
+
+def _lineshape_range(windows: Sequence[PairTimescale], process: int,
+                     limits: tuple[float, float]) -> tuple[float, float] | None:
+    """The union over fields of the process's measurable windows, cut to `limits` (K)."""
+    ends = [(w.slow_below_k, w.fast_above_k) for w in windows if w.pair.process == process
+            and w.slow_below_k is not None and w.fast_above_k is not None and not w.window.is_empty]
+    if not ends:
+        return None
+    low, high = max(min(e[0] for e in ends), limits[0]), min(max(e[1] for e in ends), limits[1])
+    return (low, high) if low < high else None
+
+
+def _transfer_temperatures(low_k: float, high_k: float, runs: int, min_step_k: float) -> list[float]:
+    """`runs` temperatures (K, whole kelvin) evenly in 1/T from `low_k` to `high_k`, fewer when they would
+    lie closer than `min_step_k`."""
+    if runs <= 0:
+        return []
+    count = max(1, min(runs, int((high_k - low_k) // max(min_step_k, 1e-9)) + 1))
+    return sorted({float(round(1.0 / x)) for x in np.linspace(1.0 / low_k, 1.0 / high_k, count)})
+
+
+def plan_transfer(model: Model, activations: dict[int, ActivationParameters], windows: Sequence[PairTimescale],
+                  limits: tuple[float, float], r1_per_s: float | None = None, runs: int = DEFAULT_TRANSFER_RUNS,
+                  min_step_k: float = DEFAULT_MIN_STEP_K) -> list[TransferPlan]:
+    """Magnetisation transfer below the lineshape window, for every process with activation parameters.
+
+    Parameters
+    ----------
+    model : Model
+    activations : dict of int to ActivationParameters
+        Per process index.
+    windows : sequence of PairTimescale
+        The lineshape windows (per field and pair) to join with.
+    limits : (float, float)
+        Usable temperatures (K): probe and solvent.
+    r1_per_s : float, optional
+        R1 (s^-1) instead of the model's (see :func:`dnmr.timescale.relaxation_rate`).
+    runs : int
+        Temperatures per process (0: windows and ranges only).
+    min_step_k : float
+        Smallest step between them (K).
+
+    Returns
+    -------
+    list of TransferPlan
+    """
+    if int(runs) != runs or runs < 0:
+        raise InputError("must be a whole number, 0 or more", where="transfer_runs")
+    out = []
+    for index, window in zip(sorted(activations), transfer_windows(model, activations, r1_per_s)):
+        notes, temps = [], []
+        if window.is_empty or window.low_k is None or window.high_k is None:
+            notes.append("no temperature between 20 and 2000 K gives a rate in the transfer window")
+        else:
+            low, high = max(window.low_k, limits[0]), min(window.high_k, limits[1])
+            if low >= high:
+                notes.append(f"the transfer window {window.low_k:.0f}-{window.high_k:.0f} K lies outside the usable"
+                             f" range {limits[0]:.0f}-{limits[1]:.0f} K")
+            else:
+                temps = _transfer_temperatures(low, high, int(runs), min_step_k)
+        plan = TransferPlan(window, [_transfer_run(model, activations, index, t, window.r1_per_s) for t in temps],
+                            _lineshape_range(windows, index, limits), notes)
+        out.append(replace(plan, notes=notes + _joining_notes(plan, activations[index])))
+    return out
+
+
+def _transfer_run(model: Model, activations: dict[int, ActivationParameters], index: int, temperature_k: float,
+                  r1: float) -> TransferRun:
+    at_t = model_at(model, temperature_k, activations)
+    total = exchange_sum_rate(at_t, index)
+    mixing = best_mixing_time(r1, total)
+    delays = np.geomspace(FIRST_DELAY_FRACTION * mixing, RECOVERY_T1 / r1, INVERSION_DELAYS)
+    return TransferRun(float(temperature_k), float(at_t.rates()[index]), total, mixing, _round_times(delays),
+                       RECOVERY_T1 / (r1 + total))
+
+
+def _joining_notes(plan: TransferPlan, activation: ActivationParameters) -> list[str]:
+    """Whether the transfer and lineshape windows meet, and how wide the two together are."""
+    combined, transfer, lineshape = plan.combined_range_k, plan.transfer_range_k, plan.lineshape_range_k
+    notes = []
+    if transfer and lineshape and transfer[1] < lineshape[0]:
+        notes.append(f"a gap between the methods, {transfer[1]:.0f}-{lineshape[0]:.0f} K (k {activation.rate_at(transfer[1]):.2g}"
+                     f"-{activation.rate_at(lineshape[0]):.2g} s^-1): neither measures it well")
+    if combined and combined[1] - combined[0] < WIDE_SPAN_K:
+        notes.append(f"together the methods span {combined[1] - combined[0]:.0f} K, under {WIDE_SPAN_K:g} K: dS‡ stays"
+                     " poorly determined; widen the usable range (solvent, probe) if you can")
+    return notes
+
+
+def transfer_report_lines(plans: Sequence[TransferPlan]) -> list[str]:
+    """Report lines of the magnetisation-transfer plans ([] when there are none)."""
+    if not plans:
+        return []
+    lines = ["", "Magnetisation transfer below the lineshape window (selective inversion, saturation transfer or"
+             " 2D exchange, then dnmr transfer)"]
+    for plan in plans:
+        lines.append(f"  {plan.window.describe()}")
+        lines += [run.describe() for run in plan.runs]
+        if plan.lineshape_range_k:
+            lo, hi = plan.lineshape_range_k
+            lines.append(f"  lineshapes: {lo:.0f}-{hi:.0f} K (measurable window, all fields)")
+        if plan.combined_range_k:
+            lo, hi = plan.combined_range_k
+            lines.append(f"  together: {lo:.0f}-{hi:.0f} K, a span of {hi - lo:.0f} K for one Eyring analysis"
+                         " (dnmr eyring with the rates tables of both)")
+        lines += [f"  note: {n}" for n in plan.notes]
+    return lines
 
 
 def plot_planned_stack(plan: ExperimentPlan, figure=None):

@@ -13,6 +13,15 @@ posteriors, the rate table adds the posterior rate and every fit shows its poste
 and 95 % intervals, or the one-sided 95 % bound of a bound rate, beside the least-squares result; the
 sampler's notes; the pairwise posterior figure).
 
+Magnetisation transfer
+----------------------
+Rates too slow for lineshapes come from ``dnmr transfer`` (selective inversion, saturation transfer,
+2D exchange), one folder per experiment.  Name those folders (``transfer=[...]``, or ``dnmr report OUTDIR
+--transfer DIR`` once per folder): the report then shows each transfer fit (its rates, R1, remarks and the
+figure of data, fit and residuals that ``dnmr transfer`` drew) in a section beside the lineshape fits,
+and the Eyring analysis fits the rates of OUTDIR and of every transfer folder together (one line, each
+rate marked by its method).  Without them the report is the lineshape fits' alone.
+
 A folder of ``dnmr fit --global`` (it holds global.json) gets the global fit's report instead: its
 treatment and dH‡, dS‡, the comparison with the two-step result (activation parameters and rates), each
 spectrum's chi-square per point against the measured noise beside its two-step fit, the stacked fits
@@ -128,6 +137,7 @@ class ReportInputs:
     calibration_file: Path | None = None
     eyring: list[EyringResult] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    transfer: list["TransferFolder"] = field(default_factory=list)
 
 
 def read_results(outdir: Path) -> dict:
@@ -186,7 +196,8 @@ def _calibration(calibration: TemperatureCalibration | str | Path | None) -> tup
     return read_temperature_calibration(calibration), Path(calibration)
 
 
-def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None) -> ReportInputs:
+def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None,
+                  transfer: Sequence[str | Path] = ()) -> ReportInputs:
     """Read OUTDIR, the model and the calibration, and run the Eyring analysis.
 
     Parameters
@@ -195,6 +206,9 @@ def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str 
         Folder written by ``dnmr fit``.
     calibration : TemperatureCalibration, str or Path, optional
         Set-point calibration (object or CSV with setpoint_k, temperature_k; degree 1).
+    transfer : sequence of str or Path
+        Folders written by ``dnmr transfer``: shown beside the lineshape fits, their rates fitted with
+        OUTDIR's in the Eyring analysis.
 
     Returns
     -------
@@ -206,8 +220,9 @@ def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str 
     inputs = ReportInputs(outdir, results, read_rate_rows(outdir))
     inputs.calibration, inputs.calibration_file = _calibration(calibration)
     inputs.model, inputs.warnings = _model(results)
+    inputs.transfer = [read_transfer_folder(Path(folder)) for folder in transfer]
     try:
-        inputs.eyring = eyring_fit_file(outdir / "rates.csv", calibration=inputs.calibration)
+        inputs.eyring = eyring_fit_file(rate_tables(inputs), calibration=inputs.calibration)
     except InputError as err:
         inputs.warnings.append(f"no Eyring analysis: {err}")
     return inputs
@@ -514,7 +529,7 @@ def _least_squares_text(name: str, fit: dict) -> str:
     if rate is not None:
         return _rate_text(rate)
     par = fit.get("parameters", {}).get(name) or {}
-    value, stderr = par.get("value"), par.get("stderr")
+    value, stderr = par.get("estimate"), par.get("stderr")
     if value is None:
         return ""
     if name in rates and rates[name].get("status") != "determined":
@@ -668,11 +683,83 @@ def render_report(inputs: ReportInputs) -> str:
     model_title = inputs.model.title if inputs.model is not None and inputs.model.title else ""
     title = f"dnmr report: {model_title or inputs.outdir.name}"
     sections = [summary_section(inputs), model_section(inputs), rate_section(inputs), identifiability_section(inputs),
-                fits_section(inputs), eyring_section(inputs), supporting_section(supporting_rows(inputs)),
-                warnings_section(inputs), cautions_section(inputs.calibration is not None), inputs_section(inputs)]
+                fits_section(inputs), transfer_section(inputs), eyring_section(inputs),
+                supporting_section(supporting_rows(inputs)), warnings_section(inputs),
+                cautions_section(inputs.calibration is not None), inputs_section(inputs)]
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{esc(title)}</title><style>{STYLE}</style></head><body>"
             f"<h1>{esc(title)}</h1>{''.join(sections)}</body></html>\n")
+
+
+# --------------------------------------------------------------------------------------------------
+# magnetisation-transfer fits (dnmr transfer) beside the lineshape fits
+
+
+@dataclass(frozen=True)
+class TransferFolder:
+    """A folder written by ``dnmr transfer``.
+
+    Attributes
+    ----------
+    folder : Path
+        The folder.
+    results : dict
+        Its parsed ``results.json``.
+    rates : list of dict
+        The rows of its ``rates.csv`` (text values, as written).
+    """
+
+    folder: Path
+    results: dict
+    rates: list[dict]
+
+
+def read_transfer_folder(folder: Path) -> TransferFolder:
+    """Read a ``dnmr transfer`` folder (InputError when it is not one, or is damaged)."""
+    path = folder / "results.json"
+    if not path.is_file():
+        raise InputError(f"no results.json here: run `dnmr transfer EXPERIMENT.toml -o {folder}` first, or name the "
+                         "folder it wrote", str(folder), "--transfer")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError):
+        raise InputError("not the results.json of `dnmr transfer` (not valid JSON); fit the experiment again",
+                         str(path), "--transfer") from None
+    if not isinstance(data, dict) or data.get("experiment") not in ("inversion", "saturation", "exchange-2d"):
+        raise InputError("not the results.json of `dnmr transfer` (no experiment named)", str(path), "--transfer")
+    if not (folder / "rates.csv").is_file():
+        raise InputError("no rates.csv next to results.json; fit the experiment again", str(folder), "--transfer")
+    return TransferFolder(folder, data, read_rate_rows(folder))
+
+
+def rate_tables(inputs: ReportInputs) -> list[Path]:
+    """The rates tables of the Eyring analysis: OUTDIR's, then each transfer folder's."""
+    return [inputs.outdir / "rates.csv"] + [t.folder / "rates.csv" for t in inputs.transfer]
+
+
+def _transfer_block(t: TransferFolder) -> str:
+    r = t.results
+    data = Path(str(r.get("data", "?"))).name
+    head = f"<h3>{esc(r.get('experiment'))} at {esc(r.get('temperature_k'))} K — {esc(data)}</h3>"
+    rows = [[row.get("process", ""), _rate_text(row), row.get("status", ""), row.get("flags", "")] for row in t.rates]
+    relaxation = "; ".join(f"{site} {_number((v or {}).get('value'), '.4g')} s^-1"
+                           for site, v in (r.get("relaxation_per_s") or {}).items())
+    facts = (f"<p>chi-square {_number(r.get('chi_square'))} for {esc(r.get('degrees_of_freedom'))} degrees of freedom "
+             f"(reduced {_number(r.get('reduced_chi_square'), '.3f')}); R1: {esc(relaxation or 'not recorded')}.</p>")
+    notes = bullets([str(n) for n in r.get("notes", [])], "muted")
+    figure = figure_from_file(t.folder / "fit.png", f"{data}: data, fitted curves and residuals", f"transfer fit of {data}")
+    return (head + table(["process", "rate k / s^-1", "status", "flags"], rows, numeric=[False, True, False, False])
+            + facts + notes + figure)
+
+
+def transfer_section(inputs: ReportInputs) -> str:
+    """The magnetisation-transfer fits named with ``--transfer``, by temperature ('' when none)."""
+    if not inputs.transfer:
+        return ""
+    folders = sorted(inputs.transfer, key=lambda t: float(t.results.get("temperature_k") or 0.0))
+    intro = (f"<p>{len(folders)} experiment{'s' if len(folders) > 1 else ''} by magnetisation transfer (dnmr transfer); "
+             "their rates join the lineshape rates in the Eyring analysis, marked by method.</p>")
+    return section("transfer", "Magnetisation-transfer fits", intro + "".join(_transfer_block(t) for t in folders))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -794,7 +881,7 @@ def quality_section(outdir: Path, g: dict) -> str:
 
 def global_parameters_section(g: dict) -> str:
     """The global parameters (trends, activation and van 't Hoff parameters) with their errors."""
-    rows = [[name, f"{p['value']:.6g}", "" if not p["vary"] else f"{p['stderr']:.3g}", "fitted" if p["vary"] else "held"]
+    rows = [[name, f"{p['estimate']:.6g}", "" if p["fixed"] else f"{p['stderr']:.3g}", "held" if p["fixed"] else "fitted"]
             for name, p in g.get("parameters", {}).items() if not (name[0] == "s" and name.split("_", 1)[0][1:].isdigit())]
     body = table(["parameter", "value", "standard error", ""], rows, numeric=[False, True, True, False])
     body += ('<p class="muted">Trend parameters: the value at the reference temperature, then _per_k (per K) and '
@@ -846,6 +933,7 @@ def write_report(
     calibration: TemperatureCalibration | str | Path | None = None,
     output: str | Path | None = None,
     overwrite: bool = False,
+    transfer: Sequence[str | Path] = (),
     figure_format: str | None = None,
 ) -> Path:
     """Write one self-contained HTML report of the series fit in `outdir`.
@@ -865,6 +953,9 @@ def write_report(
         HTML file to write (default ``OUTDIR/report.html``).
     overwrite : bool
         Replace an existing file (the report and its supporting-information tables).
+    transfer : sequence of str or Path
+        Folders written by ``dnmr transfer``: their fits are shown beside the lineshape fits and their
+        rates join the Eyring analysis and the supporting-information tables (not for a global fit).
     figure_format : {"png", "svg", "pdf"}, optional
         Format of the Eyring figure written beside the supporting-information tables (default: the one
         :func:`dnmr.output.figures_as` chose, else PNG).
@@ -872,7 +963,8 @@ def write_report(
     Returns
     -------
     Path
-        The file written.  Beside it, in ``supporting-information/``, the supporting-information tables
+        The file written.  Beside it, in ``supporting-information/`` (see :func:`supporting_folder`), the
+        supporting-information tables
         (:mod:`dnmr.supporting`: si_rates.csv, si_activation.csv, si_tables.md, si_tables.tex) and, for a
         series fit, the Eyring figure.  The report names every file relative to its own folder.
 
@@ -889,12 +981,15 @@ def write_report(
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
     with figures_as(figure_format or chosen_figure_format()):
         if (outdir / GLOBAL_NAME).is_file():
+            if transfer:
+                raise InputError("magnetisation-transfer folders go with the report of a spectrum-by-spectrum fit; "
+                                 f"name {outdir / 'two-step'} instead", where="--transfer")
             document = _global_document(outdir, calibration)
-            write_supporting_files(path.parent, global_supporting_rows(read_global(outdir)), [], overwrite)
+            write_supporting_files(supporting_folder(path), global_supporting_rows(read_global(outdir)), [], overwrite)
         else:
-            inputs = gather_inputs(outdir, calibration)
+            inputs = gather_inputs(outdir, calibration, transfer)
             document = render_report(inputs)
-            write_supporting_files(path.parent, supporting_rows(inputs), inputs.eyring, overwrite)
+            write_supporting_files(supporting_folder(path), supporting_rows(inputs), inputs.eyring, overwrite)
     return atomic_write_text(path, relative_paths(document, path.parent), overwrite=overwrite)
 
 
@@ -943,13 +1038,17 @@ class SupportingRows:
 
 
 def supporting_rows(inputs: ReportInputs) -> SupportingRows:
-    """The supporting-information tables of a series fit: its rates.csv (sample temperatures through the
-    calibration when one is given) and its Eyring analysis."""
+    """The supporting-information tables of a series fit: its rates.csv and those of the transfer folders
+    (sample temperatures through the calibration when one is given), and its Eyring analysis."""
     from .supporting import activation_rows, rate_rows_from_table
 
-    calibration = inputs.calibration if _calibrated_temperatures(inputs) is not None else None
+    rows = list(inputs.rates) + [row for t in inputs.transfer for row in t.rates]
     title = inputs.model.title if inputs.model is not None and inputs.model.title else inputs.outdir.resolve().name
-    return SupportingRows(rate_rows_from_table(inputs.rates, calibration), activation_rows(inputs.eyring), title)
+    try:
+        rates = rate_rows_from_table(rows, inputs.calibration)
+    except InputError:  # a set-point outside the calibration: the warnings say so; the table says "no calibration"
+        rates = rate_rows_from_table(rows)
+    return SupportingRows(rates, activation_rows(inputs.eyring), title)
 
 
 def global_supporting_rows(g: dict) -> SupportingRows:
@@ -962,28 +1061,36 @@ def global_supporting_rows(g: dict) -> SupportingRows:
 
 def supporting_section(rows: SupportingRows) -> str:
     """The supporting-information tables as the report shows them, and the files that hold them."""
-    from .supporting import (ACTIVATION_STEM, RATES_STEM, SUPPORTING_FOLDER, TABLES_STEM, rate_table_cells,
-                             rates_note)
+    from .supporting import ACTIVATION_STEM, RATES_STEM, SUPPORTING_FOLDER, TABLES_STEM, rate_table_cells, rates_note
 
     calibrated = any(math.isfinite(r.setpoint_k) for r in rows.rates)
     header, cells = rate_table_cells(rows.rates, calibrated)
     body = table(header, cells, numeric=[False] + [True] * (len(header) - 1))
     body += f'<p class="muted">{esc(rates_note(calibrated))}</p>'
     body += "".join(f"<p>{esc(a.sentence())}</p>" for a in rows.activation)
-    names = [f"{SUPPORTING_FOLDER}/{n}" for n in (f"{RATES_STEM}.csv", f"{ACTIVATION_STEM}.csv", f"{TABLES_STEM}.md",
-                                                  f"{TABLES_STEM}.tex")]
-    body += f'<p class="muted">Written beside this report as CSV, Markdown and LaTeX: {esc(", ".join(names))}.</p>'
+    names = ", ".join((f"{RATES_STEM}.csv", f"{ACTIVATION_STEM}.csv", f"{TABLES_STEM}.md", f"{TABLES_STEM}.tex"))
+    body += (f'<p class="muted">Written beside this report as CSV, Markdown and LaTeX ({esc(names)}, and the Eyring '
+             f"figure) in the folder {esc(SUPPORTING_FOLDER)}/ (for a report not called {esc(REPORT_NAME)}: "
+             f"&lt;its name&gt;-{esc(SUPPORTING_FOLDER)}/).</p>")
     return section("supporting", "Supporting-information tables", body)
 
 
-def write_supporting_files(folder: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
-    """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into
-    ``folder/supporting-information``."""
+def supporting_folder(report: Path) -> Path:
+    """The folder of a report's supporting-information tables: ``supporting-information`` beside report.html,
+    ``<name>-supporting-information`` beside a report of another name (each report keeps its own)."""
+    from .supporting import SUPPORTING_FOLDER
+
+    name = SUPPORTING_FOLDER if report.name == REPORT_NAME else f"{report.stem}-{SUPPORTING_FOLDER}"
+    return report.parent / name
+
+
+def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
+    """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into the
+    folder `target`."""
     from .output import save_figure
     from .plotting import plot_eyring
-    from .supporting import SUPPORTING_FOLDER, write_supporting_tables
+    from .supporting import write_supporting_tables
 
-    target = folder / SUPPORTING_FOLDER
     figure = target / "eyring.png"
     if eyring and figure_file(figure).exists() and not overwrite:
         raise InputError(f"{figure_file(figure)} already exists; pass --overwrite to replace it", where="output")

@@ -11,7 +11,7 @@ Series file (TOML; the first four keys are fixed by the project's interface cont
     [fit.reference_line]              # optional: a signal in no exchange whose width is the linewidth
     ppm = 0.0
     [fit.parameters]                  # optional: fix, bound or tie parameters by name
-    linewidth_hz_anti = { value = 1.1, vary = false }
+    linewidth_hz_anti = { start = 1.1, fixed = true }
     [[spectrum]]
     file = "spectra/t240.csv"         # two-column text, JCAMP-DX, or a processed-data folder
     temperature_k = 240.0
@@ -95,7 +95,8 @@ from .output import atomic_write_text, json_ready, save_figure
 from .inputfiles import regular_file_size
 from .nuclei import check_frequency_mhz
 from .readers import read_spectrum
-from .tables import check_kelvin
+from .progress import ProgressReport
+from .tables import celsius_hints, check_kelvin
 from .notebook import NotebookView
 
 TREND = "slow-exchange-trend"
@@ -308,6 +309,9 @@ class Series:
         joins different states; otherwise they are "fixed".
     reference_line : ReferenceLine or None
         The signal whose width gives the intrinsic linewidth.
+    warnings : tuple of str
+        Hints on input that is accepted but implausible (temperatures that look like degrees Celsius);
+        also among the `notes`, and printed on stderr by ``dnmr fit``.
     """
 
     source: Path
@@ -321,6 +325,7 @@ class Series:
     treatments: Mapping[str, str] = field(default_factory=lambda: {"shifts": "fixed", "couplings": "fixed",
                                                                    "populations": "fixed", "linewidth": "shared"})
     reference_line: ReferenceLine | None = None
+    warnings: tuple[str, ...] = ()
 
     def trended(self) -> list[str]:
         """The kinds of parameter ("shift", "coupling", "population", "linewidth") taken from the slow-exchange trend."""
@@ -480,17 +485,21 @@ def load_series(path: str | Path) -> Series:
         treatments["couplings"] = "fixed"  # the model has no couplings
         spectra = [dataclasses.replace(s, options=s.options.replace(couplings="fixed")) for s in spectra]
         options = options.replace(couplings="fixed")
-    for s in spectra:  # parameter settings must name parameters the model has
+    # parameter settings must name parameters the model has: those of [fit.parameters] are checked (and
+    # reported) there, before those a [[spectrum]] adds
+    for where, opts in [("fit", options)] + [(s.where, s.options) for s in spectra]:
         try:
-            fit_parameters(model, s.options.region_ppm, s.options)
+            fit_parameters(model, opts.region_ppm, opts)
         except InputError as err:
-            raise InputError(err.message, source=path, where=f"{s.where}.{err.where}" if err.where else s.where) from None
+            raise InputError(err.message, source=path, where=f"{where}.{err.where}" if err.where else where) from None
     try:
         spectra, notes = _flag_duplicates(spectra)
     except InputError as err:
         raise err.located(source=path) from None
+    hints = celsius_hints([s.temperature_k for s in spectra], model.temperature_k)
     return Series(path.resolve(), model_file, model, options, treatments["shifts"],
-                  None if below is None else float(below), tuple(spectra), tuple(notes), treatments, reference)
+                  None if below is None else float(below), tuple(spectra), tuple(hints + notes), treatments, reference,
+                  tuple(hints))
 
 
 def _populations_matter(model: Model) -> bool:
@@ -620,7 +629,7 @@ def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectru
     if not finished:
         return {}
     nearest = min(finished, key=lambda f: abs(f[0].temperature_k - target.temperature_k))[1]
-    start = {name: p["value"] for name, p in nearest["parameters"].items()
+    start = {name: p["estimate"] for name, p in nearest["parameters"].items()
              if not name.startswith(("log10_k_", "amplitude", "baseline_"))}
     rate_names = [n for n in nearest["parameters"] if n.startswith("log10_k_")]  # in process order
     for i, name in enumerate(rate_names):
@@ -833,7 +842,7 @@ class StaticTrend:
     def held(self, temperature_k: float, kinds: Sequence[str] = ("shift", "coupling", "population", "linewidth")
              ) -> dict[str, dict]:
         """Parameter settings holding the trended parameters of `kinds` at `temperature_k` (K), each with
-        its value, ``vary = False`` and the standard error of the line there (which the fit carries into
+        its value as ``start``, ``fixed = True`` and the standard error of the line there (which the fit carries into
         the rates).  Populations come back normalised, the error on each but the first (the reference of
         the van 't Hoff lines) as the error of its relative weight."""
         out: dict[str, dict] = {}
@@ -854,7 +863,7 @@ class StaticTrend:
         if ratios:
             weights = {name: math.exp(v) for name, (v, _) in ratios.items()}
             total = 1.0 + sum(weights.values())
-            out[self.first_population] = {"value": 1.0 / total, "vary": False}
+            out[self.first_population] = {"start": 1.0 / total, "fixed": True}
             for name, (_, stderr) in ratios.items():
                 p = weights[name] / total
                 out[name] = _held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
@@ -880,7 +889,7 @@ class StaticTrend:
 
 
 def _held_setting(value: float, stderr: float) -> dict:
-    setting = {"value": float(value), "vary": False}
+    setting = {"start": float(value), "fixed": True}
     if math.isfinite(stderr) and stderr > 0:
         setting["stderr"] = float(stderr)
     return setting
@@ -1271,7 +1280,7 @@ class _Runner:
             reused = self._reuse(job)
             if reused is not None:
                 records[job.index] = {**reused, "reused": True}
-                self.progress.advance(task)
+                self.progress.advance(task, f"{job.spectrum.temperature_k:g} K, from the earlier run")
             else:
                 todo.append(job)
         self.progress.refresh()
@@ -1295,7 +1304,7 @@ class _Runner:
 
         def collect(index: int, result: dict) -> None:
             records[index] = self._store(by_index[index], result)
-            self.progress.advance(task)
+            self.progress.advance(task, f"{self.series.spectra[index].temperature_k:g} K")
             self.progress.refresh()
 
         while waiting or running:
@@ -1376,16 +1385,6 @@ def _future_result(future) -> dict:
         return future.result()
     except Exception as err:  # the worker process died (out of memory, killed...)
         return {"status": "failed", "bad_input": False, "error": f"worker failed: {type(err).__name__}: {err}"}
-
-
-def _progress(show: bool | None):
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
-
-    console = Console(stderr=True)
-    enabled = console.is_terminal if show is None else bool(show)
-    return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-                    console=console, auto_refresh=False, disable=not enabled, transient=False)
 
 
 LOCK_FILE = ".dnmr-lock"
@@ -1819,7 +1818,8 @@ def fit_series(
     workers : int, optional
         Worker processes (default one per core; 1 fits in this process).
     progress : bool, optional
-        Show a progress bar on stderr (default: when stderr is a terminal).
+        False: no progress report.  Otherwise progress on stderr: a live bar on a terminal, plain lines
+        (``fitting spectra: 3 of 17 done (260 K), 12 s elapsed``) when stderr is a file or a pipe.
     posterior : mapping, optional
         Also sample the posterior of every fitted spectrum (needs emcee; slow: about walkers x steps
         lineshape evaluations per spectrum) with these settings of
@@ -1852,7 +1852,7 @@ def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, p
     workers = max(1, min(workers or os.cpu_count() or 1, len(series.spectra)))
     hashes = {i: file_sha256(s.file) for i, s in enumerate(series.spectra)}
     hashes["model"] = file_sha256(series.model_file)
-    runner = _Runner(series, outdir, workers, _progress(progress), resume)
+    runner = _Runner(series, outdir, workers, ProgressReport(progress), resume)
     try:
         with runner.progress, single_threaded_blas():
             references, notes = _reference_fits(series)

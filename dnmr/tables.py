@@ -191,3 +191,24 @@ def check_kelvin(value: float, name: str, source: str | None = None, where: str 
             source,
             where,
         )
+
+
+#: Every temperature of a series below this (K) is worth a second look: cold VT work exists (CD2Cl2,
+#: freon mixtures), but such a list is as often degrees Celsius typed as kelvin (common practice).
+CELSIUS_HINT_BELOW_K = 200.0
+
+
+def celsius_hints(temperatures_k: Sequence[float], model_temperature_k: float | None = None) -> list[str]:
+    """Warnings (not refusals) for temperatures (K) that may be degrees Celsius typed as kelvin.
+
+    One warning when every temperature is below :data:`CELSIUS_HINT_BELOW_K` (values from 100 to 200,
+    which :func:`check_kelvin` lets through), naming the model's [conditions] temperature_k (K) when that
+    is at or above it; none otherwise.
+    """
+    t = np.asarray(temperatures_k, float)
+    if t.size == 0 or t.max() >= CELSIUS_HINT_BELOW_K:
+        return []
+    model = (f" while the model's [conditions] temperature_k is {model_temperature_k:g} K"
+             if model_temperature_k is not None and model_temperature_k >= CELSIUS_HINT_BELOW_K else "")
+    return [f"every temperature_k is below {CELSIUS_HINT_BELOW_K:g} K ({t.min():g} to {t.max():g} K){model}: if they "
+            f"are degrees Celsius, give kelvin ({t.min():g} °C = {t.min() + 273.15:.2f} K); fitted as kelvin"]

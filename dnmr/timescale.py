@@ -22,6 +22,16 @@ Regimes (quantitative criteria, for each pair on its own as two sites)
     which a lineshape fit measures the rate.  f defaults to 0.1: a choice, about the broadening a careful
     fit resolves at good signal-to-noise; for a shift pair couplings are left out of these thresholds.
 
+Magnetisation transfer (below the lineshape window)
+    When exchange is too slow to broaden the lines it still carries z-magnetisation from site to site
+    within T1: selective inversion, saturation transfer and 2D exchange (``dnmr transfer``) measure k
+    from about R1/5 (slower, relaxation erases the transfer before it shows) to a few tens s^-1 (faster,
+    the sites equalise within the shortest practical delays and the lines begin to broaden, where the
+    lineshapes take over); both are common practice.  R1 is the mean of the model file's ``r1_per_s``
+    over its sites, a value given instead, or else a typical 1 s^-1 (T1 about 1 s, 1H of small molecules
+    in mobile solvents; from memory) — stated in every report, since the window's lower end moves with
+    it.  R1 is taken as the same at every temperature.
+
 Fast-exchange limit
     When exchange is fast, every nucleus feels the average of the Hamiltonians of the places it visits.
     The molecule wanders over configurations (state, relabelling of the spins); at equilibrium it spends
@@ -765,6 +775,99 @@ def averaged_model(model: Model, processes: Iterable[int] | None = None) -> Mode
     return fast_exchange_limit(model, processes).model
 
 
+# --- magnetisation transfer: the window below the lineshapes ---------------------------------
+
+#: R1 (s^-1) used when the model gives none: typical of 1H in small molecules in mobile solvents
+#: (T1 about 1 s; from memory).  Give ``r1_per_s`` in the model file, or override it, for your sample.
+TYPICAL_R1_PER_S = 1.0
+#: Magnetisation transfer determines k from about this fraction of R1 (common practice) ...
+TRANSFER_SLOW_FRACTION_OF_R1 = 0.2
+#: ... up to a few tens s^-1 (common practice).
+TRANSFER_FAST_RATE_PER_S = 30.0
+
+
+def relaxation_rate(model: Model, r1_per_s: float | None = None) -> tuple[float, str]:
+    """R1 (s^-1) for the transfer window and where it comes from: `r1_per_s` if given, else the mean of
+    the model's ``r1_per_s`` over its sites, else :data:`TYPICAL_R1_PER_S`."""
+    from .longitudinal import site_relaxation_rates
+
+    if r1_per_s is not None:
+        if not (math.isfinite(r1_per_s) and r1_per_s > 0):
+            raise InputError(f"R1 must be a positive rate (s^-1), got {r1_per_s!r}", where="r1_per_s")
+        return float(r1_per_s), "given"
+    try:
+        rates = site_relaxation_rates(model)
+    except InputError:
+        return TYPICAL_R1_PER_S, ("a typical value (the model file gives no r1_per_s for every site; give it, or"
+                                  " --r1-per-s, for your sample)")
+    return float(np.mean(rates)), "the model file (mean r1_per_s of its sites)"
+
+
+@dataclass(frozen=True)
+class TransferWindow:
+    """Where magnetisation transfer determines the forward rate of one process.
+
+    Attributes
+    ----------
+    process : str
+        Name of the exchange process.
+    r1_per_s : float
+        Longitudinal relaxation rate R1 used (s^-1).
+    r1_source : str
+        Where R1 comes from, in words.
+    slow_rate_per_s, fast_rate_per_s : float
+        Forward rates (s^-1) bounding the window: R1/5 and a few tens s^-1.
+    low_k, high_k : float or None
+        Temperatures (K) at which the process reaches those rates (None outside 20-2000 K).
+    """
+
+    process: str
+    r1_per_s: float
+    r1_source: str
+    slow_rate_per_s: float
+    fast_rate_per_s: float
+    low_k: float | None
+    high_k: float | None
+
+    @property
+    def is_empty(self) -> bool:
+        """True when R1 is so fast that no rate is left between R1/5 and the upper limit."""
+        return self.fast_rate_per_s <= self.slow_rate_per_s
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready)."""
+        return {"process": self.process, "r1_per_s": self.r1_per_s, "r1_source": self.r1_source,
+                "slow_rate_per_s": self.slow_rate_per_s, "fast_rate_per_s": self.fast_rate_per_s,
+                "low_k": self.low_k, "high_k": self.high_k, "window_empty": self.is_empty}
+
+    def describe(self) -> str:
+        """One line: the rates and temperatures of the window."""
+        if self.is_empty:
+            return f"{self.process}: no window (R1 = {self.r1_per_s:.3g} s^-1 is too fast)"
+        return (f"{self.process}: k {self.slow_rate_per_s:.3g}-{self.fast_rate_per_s:.3g} s^-1,"
+                f" T {_kelvin(self.low_k)}-{_kelvin(self.high_k)} K (R1 = {self.r1_per_s:.3g} s^-1 from {self.r1_source})")
+
+
+def transfer_windows(model: Model, activations: dict[int, ActivationParameters],
+                     r1_per_s: float | None = None) -> list[TransferWindow]:
+    """The magnetisation-transfer window of every process with activation parameters (see module notes).
+
+    Parameters
+    ----------
+    model : Model
+        The model (its ``r1_per_s``, if any).
+    activations : dict of int to ActivationParameters
+        Per process index.
+    r1_per_s : float, optional
+        R1 (s^-1) to use instead of the model's (or the typical value).
+    """
+    r1, source = relaxation_rate(model, r1_per_s)
+    slow, fast = TRANSFER_SLOW_FRACTION_OF_R1 * r1, TRANSFER_FAST_RATE_PER_S
+    names = model.process_names()
+    return [TransferWindow(names[i], r1, source, slow, fast, act.temperature_at(slow), act.temperature_at(fast))
+            for i, act in sorted(activations.items())]
+
+
 # --- the timescale view ----------------------------------------------------------------------
 
 @dataclass(frozen=True)
@@ -910,6 +1013,8 @@ class TimescaleView(NotebookView):
         Activation parameters used, per process name.
     detectable_fraction : float
         The fraction of the linewidth that defines the thresholds.
+    transfer : list of TransferWindow
+        Where magnetisation transfer measures each process (below the lineshape window).
     """
 
     pairs: list[PairTimescale]
@@ -917,6 +1022,7 @@ class TimescaleView(NotebookView):
     snapshots: list[ConditionSnapshot]
     activations: dict
     detectable_fraction: float
+    transfer: list[TransferWindow] = field(default_factory=list)
 
     def report(self) -> str:
         """Readable tables: thresholds per pair and field, regimes now, the averaged system."""
@@ -933,6 +1039,7 @@ class TimescaleView(NotebookView):
                          + ("  (no intermediate window)" if p.window.is_empty else ""))
         lines += ["  rates are forward rate constants in s^-1; temperatures in K"]
         lines += [f"  {COUPLING_PAIR_NOTE}"] * any(p.pair.coupling_changes for p in self.pairs) + [""]
+        lines += transfer_lines(self.transfer)
         for snap in self.snapshots:
             when = f"{snap.temperature_k:.1f} K" if snap.temperature_k is not None else "the model's rates"
             regimes = ", ".join(f"{n} {r} (k = {snap.rates_per_s[n]:.3g} s^-1)" for n, r in snap.regimes.items())
@@ -948,11 +1055,22 @@ class TimescaleView(NotebookView):
                 "activation": {n: a.to_dict() for n, a in self.activations.items()},
                 "pairs": [p.to_dict() for p in self.pairs],
                 "conditions": [s.to_dict() for s in self.snapshots],
-                "fast_limit": self.fast_limit.to_dict()}
+                "fast_limit": self.fast_limit.to_dict(),
+                "magnetisation_transfer": [w.to_dict() for w in self.transfer]}
 
     def plot(self, figure=None):
-        """Regime bands against temperature, one panel per field (see :func:`plot_regimes`)."""
-        return plot_regimes(self.pairs, figure=figure)
+        """Regime bands against temperature, one panel per field, with the magnetisation-transfer window
+        (see :func:`plot_regimes`)."""
+        return plot_regimes(self.pairs, figure=figure, transfer=self.transfer)
+
+
+def transfer_lines(windows: Sequence[TransferWindow]) -> list[str]:
+    """Report lines of the magnetisation-transfer windows ([] when there are none)."""
+    if not windows:
+        return []
+    return (["Magnetisation transfer (selective inversion, saturation transfer, 2D exchange; dnmr transfer) measures"
+             f" k from R1/5 to about {TRANSFER_FAST_RATE_PER_S:g} s^-1, below the lineshape window:"]
+            + [f"  {w.describe()}" for w in windows] + [""])
 
 
 def _kelvin(value: float | None) -> str:
@@ -966,7 +1084,8 @@ def _indent(text: str, by: str = "  ") -> str:
 def timescale_view(model: Model, activation: ActivationParameters | None = None, *,
                    frequencies_mhz: Sequence[float] | None = None, process: str | None = None,
                    temperature_k: float | None = None,
-                   detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION) -> TimescaleView:
+                   detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION,
+                   r1_per_s: float | None = None) -> TimescaleView:
     """Slow, intermediate and fast exchange of every exchanging pair, and the averaged spin system.
 
     Parameters
@@ -983,6 +1102,9 @@ def timescale_view(model: Model, activation: ActivationParameters | None = None,
         Temperature (K) at which to report regimes and the averaged system; default the model's rates.
     detectable_fraction : float
         Exchange broadening, as a fraction of the intrinsic linewidth, that marks the regime edges.
+    r1_per_s : float, optional
+        R1 (s^-1) for the magnetisation-transfer window instead of the model's ``r1_per_s`` (or, without
+        it, the typical value).
 
     Returns
     -------
@@ -1002,31 +1124,37 @@ def timescale_view(model: Model, activation: ActivationParameters | None = None,
         [snapshot(model, mhz, temperature_k, activations, detectable_fraction) for mhz in fields],
         {names[i]: a for i, a in activations.items()},
         detectable_fraction,
+        transfer_windows(model, activations, r1_per_s),
     )
 
 
-def plot_regimes(pairs: Sequence[PairTimescale], figure=None):
-    """Bands of slow, intermediate and fast exchange against temperature: one panel per field, one row per pair.
+def plot_regimes(pairs: Sequence[PairTimescale], figure=None, transfer: Sequence[TransferWindow] = ()):
+    """Bands of slow, intermediate and fast exchange against temperature: one panel per field, one row per
+    pair, and a row per process for the magnetisation-transfer window.
 
     Parameters
     ----------
     pairs : sequence of PairTimescale
         With temperatures (activation parameters known).
     figure : matplotlib Figure, optional
+    transfer : sequence of TransferWindow
+        Windows of magnetisation transfer (the same at every field), drawn under the pairs.
 
     Returns
     -------
     matplotlib.figure.Figure
+        Intermediate exchange is the lineshape window; the transfer window is a bar of its own hue.
     """
-    from .plotting import INK, REGIME_COLOURS, figure_text, plt
+    from .plotting import INK, REGIME_COLOURS, TRANSFER_COLOUR, figure_text, plt
 
     shown = [p for p in pairs if p.slow_below_k is not None and p.fast_above_k is not None]
     if not shown:
         raise InputError("the regime figure needs activation parameters (give a barrier)", where="plot")
+    bars = [w for w in transfer if w.low_k is not None and w.high_k is not None and not w.is_empty]
     fields = sorted({p.proton_mhz for p in shown})
-    low = min(p.slow_below_k for p in shown) - 30.0
+    low = min([p.slow_below_k for p in shown] + [w.low_k for w in bars]) - 30.0
     high = max(p.fast_above_k for p in shown) + 30.0
-    rows = max(sum(p.proton_mhz == f for p in shown) for f in fields)
+    rows = max(sum(p.proton_mhz == f for p in shown) for f in fields) + len(bars)
     fig = figure if figure is not None else plt.figure(figsize=(7.0, 1.2 + len(fields) * (0.5 + 0.45 * rows)))
     axes = np.atleast_1d(fig.subplots(len(fields), 1, sharex=True, squeeze=False)[:, 0])
     for ax, mhz in zip(axes, fields):
@@ -1038,11 +1166,14 @@ def plot_regimes(pairs: Sequence[PairTimescale], figure=None):
             for regime, span in spans.items():
                 ax.broken_barh([span], (row - 0.35, 0.7), facecolor=REGIME_COLOURS[regime], edgecolor=INK,
                                linewidth=0.5, label=regime if row == 0 else None)
-        ax.set_yticks(range(len(here)), [figure_text(f"{p.pair.process_name}: {p.pair.label}") for p in here],
-                      fontsize=8)
-        ax.set_ylim(-0.6, len(here) - 0.4)
+        for row, w in enumerate(bars, start=len(here)):
+            ax.broken_barh([(w.low_k, w.high_k - w.low_k)], (row - 0.35, 0.7), facecolor=TRANSFER_COLOUR,
+                           edgecolor=INK, linewidth=0.5, label="magnetisation transfer" if row == len(here) else None)
+        labels = [f"{p.pair.process_name}: {p.pair.label}" for p in here] + [f"{w.process}: transfer" for w in bars]
+        ax.set_yticks(range(len(labels)), [figure_text(text) for text in labels], fontsize=8)
+        ax.set_ylim(-0.6, len(labels) - 0.4)
         ax.set_title(figure_text(f"{mhz:g} MHz (1H)"), fontsize=9, loc="left")
-    axes[0].legend(ncol=3, fontsize=8, frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0))
+    axes[0].legend(ncol=2 if bars else 3, fontsize=8, frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0))
     axes[-1].set_xlim(low, high)
     axes[-1].set_xlabel("temperature / K")
     fig.tight_layout()

@@ -55,6 +55,7 @@ from .fitting import (
     _minimize,
     _num,
     _profile,
+    parameter_record,
     _stderr,
     PROFILE_RESTARTS,
 )
@@ -661,8 +662,7 @@ class TransferFit:
             "sites": [s.label for s in model_sites(exp.model)], "observed_sites": list(exp.data.sites),
             "rates": [r.to_dict() for r in self.rates],
             "relaxation_per_s": {k: {"value": v, "stderr": e} for k, (v, e) in self.relaxation().items()},
-            "parameters": {n: {"value": p.value, "stderr": _stderr(p), "vary": p.vary, "expr": p.expr,
-                               "min": p.min, "max": p.max} for n, p in self.parameters.items()},
+            "parameters": {n: parameter_record(p) for n, p in self.parameters.items()},
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom, "error_scale": self.error_scale,
             "flags": self.flags, "notes": self.notes,

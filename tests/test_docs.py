@@ -122,3 +122,31 @@ def test_every_transfer_key_and_column_is_documented(section, keys):
     documented = set(re.findall(r"`\[*([a-z0-9_]+)\]*`", (DOCS / "transfer-file.md").read_text()))
     missing = set(getattr(transfer, keys)) - documented
     assert not missing, f"{section} keys missing from docs/transfer-file.md: {sorted(missing)}"
+
+
+def test_parameter_settings_have_one_set_of_names_in_docs_and_code():
+    # the settings keys of the code are the ones the reference documents, and no page, example or
+    # demo file still writes a setting in the spellings of earlier releases (value, vary, min, max, expr)
+    from dnmr import fitting
+
+    text = (DOCS / "series-file.md").read_text()
+    table = text.split("#### Parameter settings", 1)[1].split("\n\n", 2)[1]
+    first_cells = [line.split("|")[1] for line in table.splitlines() if line.startswith("| `")]
+    assert {k for cell in first_cells for k in re.findall(r"`([a-z_]+)`", cell)} == set(fitting.SETTING_KEYS)
+    root = DOCS.parent
+    files = [*DOCS.glob("*.md"), root / "README.md", *root.glob("examples/**/*.toml"), *root.glob("examples/**/*.py"),
+             *root.glob("dnmr/data/**/*.toml"), *root.glob("dnmr/*.py")]
+    old = re.compile(r"\{[^}\n]*\b(value|vary|min|max|expr)\s*=[^}\n]*\}")
+    stale = [f"{p.name}: {m.group(0)}" for p in files if p.exists() for m in old.finditer(p.read_text())]
+    assert not stale, stale
+    # and results.json names every key of a fitted parameter's record, a tie's and a rule's too
+    import lmfit
+
+    params = lmfit.Parameters()
+    params.add("population_b", 0.4)
+    params.add("population_a", expr="1 - population_b")
+    params.add("linewidth_hz_a", 1.0)
+    params.add("linewidth_hz_b", expr="2.0 * linewidth_hz_a + 0.5")
+    keys = {k for p in params.values() for k in fitting.parameter_record(p)}
+    documented = set(re.findall(r"`([a-z_]+)`", (DOCS / "cli.md").read_text()))
+    assert {"same_as", "times", "plus", "rule"} <= keys and keys <= documented, keys - documented

@@ -156,7 +156,7 @@ def test_overwrite_keeps_what_dnmr_did_not_write(fitted, tmp_path):
     again = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report", "--overwrite")
     assert again.returncode == 0, again.stderr
     assert all(p.read_text() == "the user's own" for p in mine)
-    assert (out / "rates.csv").exists() and (out / "fits" / "000_main.json").exists()
+    assert (out / "rates.csv").exists() and list((out / "fits").glob("000_*.json"))
 
 
 def test_overwrite_refuses_a_folder_dnmr_never_wrote(tmp_path):
@@ -241,7 +241,9 @@ def test_interrupted_fit_resumes_with_its_finished_fits(tmp_path):
     import json
 
     reused = {s["index"] for s in json.loads((out / "results.json").read_text())["spectra"] if s["reused"]}
-    assert reused == {int(name[:3]) for name in finished if name.endswith("_main.json")}
+    # every spectrum taken from the earlier run had its fit stored before the interrupt (the stage names
+    # depend on the series: slow-exchange, held or main)
+    assert reused and reused <= {int(name[:3]) for name in finished}
 
 
 def test_workers_end_with_their_parent(tmp_path):

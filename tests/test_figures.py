@@ -155,9 +155,12 @@ def api_figures(inputs):
     k = eyring_rate(TEMPERATURES_K, 60.0, -5.0) * np.exp(rng.normal(0.0, 0.05, TEMPERATURES_K.size))
     lines = [eyring_fit(TEMPERATURES_K, k * scale, 0.05 * k * scale, process=name)
              for scale, name in ((1.0, "flip"), (30.0, "turn"))]
+    methods = ["inversion"] * 2 + ["lineshape"] * 2 + ["saturation"]  # rates by magnetisation transfer joined
+    joint = eyring_fit(TEMPERATURES_K, k, 0.05 * k, process="flip", method=methods)
     samples = rng.multivariate_normal([60.0, -5.0], [[4.0, 11.0], [11.0, 36.0]], 4000)
     return {"fit": fit.plot(), "fit stack": plot_fit_stack([fit, fit], ["250 K", "260 K"]),
             "rates": plot_rates(lines), "eyring, two processes": dnmr.plotting.plot_eyring(lines),
+            "eyring, three methods": dnmr.plotting.plot_eyring([joint, lines[1]]),
             "posterior pairs": plot_posterior_pairs(samples, ["dH‡ / kJ mol^-1", "dS‡ / J mol^-1 K^-1"],
                                                     true_values=[60.0, None], one_sided=[None, "lower-bound"]),
             "spectra overlaid": overlaid(inputs[0])}

@@ -277,25 +277,66 @@ def test_report_plot_and_round_trip():
 
 def test_parameters_can_be_fixed_tied_and_bounded():
     y = 50.0 * mcconnell(120.0).real + np.random.default_rng(6).normal(0.0, 0.02, PPM.size)
-    settings = {"linewidth_hz_b": {"expr": "linewidth_hz_a"}, "offset_hz": {"value": 0.0, "vary": False},
-                "log10_k_flip": {"min": 1.0, "max": 3.0}}
+    settings = {"linewidth_hz_b": {"same_as": "linewidth_hz_a", "times": 2.0, "plus": 0.5},
+                "offset_hz": {"start": 0.0, "fixed": True}, "log10_k_flip": {"lower": 1.0, "upper": 3.0}}
     options = FitOptions(region_ppm=REGION, linewidth="per-state", parameters=settings)
     fit = fit_spectrum(measured(y), two_site_model(), options=options)
-    p = fit.parameters
-    assert p["linewidth_hz_b"].value == p["linewidth_hz_a"].value
-    assert p["offset_hz"].value == 0.0 and not p["offset_hz"].vary
-    assert (p["log10_k_flip"].min, p["log10_k_flip"].max) == (1.0, 3.0)
+    p = fit.to_dict()["parameters"]
+    assert p["linewidth_hz_b"]["estimate"] == pytest.approx(2.0 * p["linewidth_hz_a"]["estimate"] + 0.5, rel=1e-12)
+    assert (p["linewidth_hz_b"]["same_as"], p["linewidth_hz_b"]["times"], p["linewidth_hz_b"]["plus"]) == (
+        "linewidth_hz_a", 2.0, 0.5)
+    assert p["offset_hz"]["estimate"] == 0.0 and p["offset_hz"]["fixed"] and p["offset_hz"]["unit"] == "Hz"
+    assert (p["log10_k_flip"]["lower"], p["log10_k_flip"]["upper"]) == (1.0, 3.0)
+    assert not {"value", "vary", "min", "max", "expr"} & {k for record in p.values() for k in record}
     params = fit_parameters(two_site_model(), REGION, options)
-    params["phase0_deg"].set(value=0.0, vary=False)
+    assert isinstance(params["phase0_deg"], fitting.FitParameter) and params["phase0_deg"].unit == "deg"
+    params["phase0_deg"].fixed = True
+    params["phase0_deg"].start = 3.0
     again = fit_spectrum(measured(y), two_site_model(), options=options, parameters=params)
-    assert again.parameters["phase0_deg"].value == 0.0
+    assert again.to_dict()["parameters"]["phase0_deg"]["estimate"] == 3.0
+    assert again.to_dict()["parameters"]["linewidth_hz_b"]["same_as"] == "linewidth_hz_a"
+    stored = type(again).from_dict(again.to_dict(), again.curves(), two_site_model())
+    assert stored.to_dict()["parameters"] == again.to_dict()["parameters"]
+
+
+def test_shared_linewidth_and_free_populations_show_as_a_tie_and_a_rule():
+    params = fit_parameters(two_site_model(), REGION, FitOptions(linewidth="shared", populations="free"))
+    assert params["linewidth_hz_b"].same_as == "linewidth_hz_a"
+    assert params["population_a"].rule == "population_a = 1 - population_b" and not params["population_a"].fixed
+    # editing nothing and handing the parameters back keeps both relations
+    settings = fitting._checked_settings({n: p.setting() for n, p in params.items()})
+    assert "fixed" not in settings["population_a"] and "start" not in settings["linewidth_hz_b"]
+
+
+@pytest.mark.parametrize("setting, message", [
+    ({"offset_hz": {"expr": "__import__('os').getcwd()"}}, '"expr" was renamed to same_as'),
+    ({"offset_hz": {"value": 1.0}}, '"value" was renamed to start'),
+    ({"offset_hz": {"vary": False}}, '"vary" was renamed to fixed'),
+    ({"offset_hz": {"min": -1.0}}, '"min" was renamed to lower'),
+    ({"offset_hz": {"max": 1.0}}, '"max" was renamed to upper'),
+    ({"offset_hz": {"same_as": "phase0_deg * 2"}}, "not a formula"),
+    ({"offset_hz": {"same_as": "open('/etc/hostname').read()"}}, "not a formula"),
+    ({"offset_hz": {"start": "1 + 1"}}, "start must be a finite number"),
+    ({"offset_hz": {"same_as": "offset_hz"}}, "cannot be tied to itself"),
+    ({"offset_hz": {"same_as": "ofset_hz_q"}}, 'no fit parameter "ofset_hz_q"'),
+    ({"offset_hz": {"same_as": "phase0_deg"}, "phase0_deg": {"same_as": "offset_hz"}}, "round in a circle"),
+    # the layout's own tie (shared linewidth: b follows a) closes the circle
+    ({"linewidth_hz_a": {"same_as": "linewidth_hz_b"}}, r"linewidth_hz_a -> linewidth_hz_b -> linewidth_hz_a"),
+    ({"offset_hz": {"plus": 1.0}}, "give same_as too"),
+    ({"offset_hz": {"same_as": "phase0_deg", "fixed": True}}, "leave out fixed and start"),
+])
+def test_hostile_or_stale_parameter_settings_are_refused_in_one_line(setting, message):
+    # issue 13: a tie is parsed (one name, two numbers), never evaluated
+    with pytest.raises(InputError, match=message) as err:
+        fit_parameters(two_site_model(), REGION, FitOptions(linewidth="shared", parameters=setting))
+    assert len(str(err.value).splitlines()) == 1 and "parameters." in str(err.value)
 
 
 def test_bad_input_is_one_clear_error():
     y = 50.0 * mcconnell(120.0).real
     with pytest.raises(InputError, match=r'no fit parameter "linewidth_hz_q" \(did you mean'):
         fit_spectrum(measured(y), two_site_model(), options=FitOptions(
-            region_ppm=REGION, parameters={"linewidth_hz_q": {"value": 1.0}}))
+            region_ppm=REGION, parameters={"linewidth_hz_q": {"start": 1.0}}))
     with pytest.raises(InputError, match="500 MHz"):
         fit_spectrum(MeasuredSpectrum(PPM, y, 500.0, "x.csv", "text"), two_site_model())
     with pytest.raises(InputError, match="baseline_order"):

@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -123,9 +124,12 @@ def test_refuses_existing_outdir_and_bad_choice(result, series_file):
 
 def test_cli_global(series_file, tmp_path):
     out = tmp_path / "cli"
-    run = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global", "--quiet",
+    run = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global",
                                    "--shifts", "linear", "--linewidth", "linear"])
     assert run.exit_code == 0, run.output
+    # stderr is not a terminal here: plain progress lines of the two-step fit and of the global fit
+    assert re.search(r": \d+ of \d+ done \(\d+ K\), \d+ s elapsed", run.stderr), run.stderr
+    assert f"global fit of {len(TEMPERATURES)} spectra: finished after " in run.stderr, run.stderr
     assert json.loads((out / "global.json").read_text())["options"]["shifts"] == "linear"
     assert (out / "report.html").is_file() and "report:" in run.output
     again = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global"])

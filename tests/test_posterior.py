@@ -362,8 +362,10 @@ def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
     for before, after in zip(data["spectra"], resumed["spectra"]):
         assert after["posterior"] == before["posterior"]
         assert "posterior reused from the earlier run" in after["notes"]
-    other = CliRunner().invoke(cli, args + ["--posterior-seed", "6"])
+    other = CliRunner().invoke(cli, [a for a in args if a != "--quiet"] + ["--posterior-seed", "6"])
     assert other.exit_code == 0, other.output + other.stderr
+    assert "sampling posteriors: 2 of 2 done" in other.stderr  # plain progress lines off a terminal
+    assert "elapsed" not in again.stderr  # --quiet
     for entry in json.loads((out / "results.json").read_text())["spectra"]:
         assert entry["posterior"]["seed"] == 6 and "posterior reused from the earlier run" not in entry["notes"]
 

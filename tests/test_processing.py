@@ -253,7 +253,7 @@ def test_series_of_raw_fids_gives_rates_and_linewidths_that_include_lb(tmp_path)
         assert entry["status"] == "fitted"
         fit = entry["fit"]
         assert fit["rates"][0]["rate_per_s"] == pytest.approx(k, rel=0.02)
-        width = next(p["value"] for name, p in fit["parameters"].items() if name.startswith("linewidth_hz"))
+        width = next(p["estimate"] for name, p in fit["parameters"].items() if name.startswith("linewidth_hz"))
         assert width == pytest.approx(1.0 + 1.0, abs=0.02)
         assert entry["processing"]["added_linewidth_hz"] == 1.0
         assert any("adds exactly 1 Hz" in n for n in fit["notes"])

@@ -280,7 +280,7 @@ def test_calibrated_report_shows_sample_temperature_beside_set_point(fitted, tmp
         assert any(r[:2] == [f"{setpoint:.2f}", format_with_error(t, err)] for r in page.rows)
     assert html.escape(THERMOMETER_CAUTIONS, quote=True) in text
     # the supporting-information tables beside the report carry the same sample temperatures
-    si = tmp_path / "supporting-information"
+    si = tmp_path / "r-supporting-information"  # beside r.html, named after it
     rows = list(__import__("csv").DictReader((si / "si_rates.csv").open(encoding="utf-8")))
     assert [float(r["setpoint_k"]) for r in rows] == TEMPERATURES
     assert [float(r["temperature_k"]) for r in rows] == pytest.approx(true.temperature_k, rel=1e-12)
@@ -322,3 +322,52 @@ def test_report_embeds_svg_figures_and_writes_the_chosen_format(fitted, tmp_path
     page = parse((copy / "report.html").read_text(encoding="utf-8"))
     assert sum(src.startswith("data:image/svg+xml;base64,") for src in page.images) == len(TEMPERATURES)
     assert (copy / "supporting-information" / "eyring.pdf").read_bytes().startswith(b"%PDF")
+
+
+# --- magnetisation-transfer fits beside the lineshape fits -----------------------------------------------
+
+def _transfer_folders(folder: Path) -> list[Path]:
+    """Two selective-inversion fits (dnmr transfer) of the same invented process ("flip") below the series'
+    range: integrals from the McConnell (1958) biexponential (tests/reference_transfer.py) at rates from the
+    Eyring equation (tests/reference_eyring.py) for the series' activation parameters."""
+    from reference_eyring import eyring_rate
+    from test_series import ENTROPY_J_MOL_K
+    from test_transfer import DELAYS, MODEL_TOML, inversion_data
+
+    from dnmr.transfer import run_transfer
+
+    (folder / "model.toml").write_text(MODEL_TOML.replace('name = "rotation"', 'name = "flip"'))
+    out = []
+    for t in (236.0, 246.0):
+        y = inversion_data(eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K), seed=int(t))
+        (folder / f"si{t:.0f}.csv").write_text("delay_s,syn,anti\n" + "".join(
+            f"{float(d)!r},{float(a)!r},{float(b)!r}\n" for d, (a, b) in zip(DELAYS, y)))
+        (folder / f"si{t:.0f}.toml").write_text(
+            f'model = "model.toml"\ntemperature_k = {t}\nexperiment = "inversion"\ndata = "si{t:.0f}.csv"\n'
+            '[options]\ninverted = ["syn"]\n')
+        run_transfer(folder / f"si{t:.0f}.toml", folder / f"si{t:.0f}")
+        out.append(folder / f"si{t:.0f}")
+    return out
+
+
+def test_transfer_fits_are_shown_and_join_the_eyring_analysis(fitted, tmp_path):
+    transfer = _transfer_folders(tmp_path)
+    path = write_report(fitted, output=tmp_path / "joint.html", transfer=transfer)
+    text = path.read_text(encoding="utf-8")
+    page = parse(text)
+    assert len(page.images) == len(TEMPERATURES) + 2 + len(transfer)  # + each transfer fit's fit.png
+    assert "Magnetisation-transfer fits" in text and "inversion at 236.0 K" in text and "inversion at 246.0 K" in text
+    assert text.index('id="fits"') < text.index('id="transfer"') < text.index('id="eyring"')
+    expected = eyring_fit_file([fitted / "rates.csv"] + [f / "rates.csv" for f in transfer])[0].to_dict()
+    assert expected["methods"]["inversion"] == 2
+    value, shown = parse(text).parameters["enthalpy_kj_mol"]
+    assert value == pytest.approx(expected["enthalpy_kj_mol"], rel=1e-12)
+    assert shown == format_with_error(expected["enthalpy_kj_mol"], expected["enthalpy_stderr"])
+    assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_KJ_MOL) < 4 * expected["enthalpy_stderr"]
+    assert "inversion (2 rates)" in html.unescape(text)
+    si = list(__import__("csv").DictReader((tmp_path / "joint-supporting-information" / "si_rates.csv").open()))
+    assert sorted(float(r["temperature_k"]) for r in si) == sorted(TEMPERATURES + [236.0, 246.0])  # transfer rates too
+    run = CliRunner().invoke(cli, ["report", str(fitted), "--transfer", str(transfer[0]), "-o", str(tmp_path / "c.html")])
+    assert run.exit_code == 0 and (tmp_path / "c.html").is_file()
+    bad = CliRunner().invoke(cli, ["report", str(fitted), "--transfer", str(tmp_path), "-o", str(tmp_path / "d.html")])
+    assert bad.exit_code == 2 and "dnmr transfer" in bad.output and len(bad.output.strip().splitlines()) == 1

@@ -91,6 +91,7 @@ def run(tmp_path_factory):
 def test_series_through_the_cli_recovers_the_rates(run):
     folder, series, before, result = run
     assert result.exit_code == 0, result.output + result.stderr
+    assert "elapsed" not in result.stderr  # --quiet: no progress lines either
     rows = read_rates(folder / "out" / "rates.csv")
     assert list(rows[0])[:6] == ["temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper"]
     assert [float(r["temperature_k"]) for r in rows] == TEMPERATURES
@@ -125,8 +126,12 @@ def test_existing_output_folder_is_refused_then_resumed(run, tmp_path):
     first = read_rates(out / "rates.csv")
     stored = sorted((out / "fits").glob("*.json"))
     stored[1].unlink()  # as if the run had been interrupted before this fit finished
-    resumed = CliRunner().invoke(cli, ["fit", str(series), "-o", str(out), "--resume", "--serial", "--quiet"])
+    resumed = CliRunner().invoke(cli, ["fit", str(series), "-o", str(out), "--resume", "--serial"])
     assert resumed.exit_code == 0, resumed.stderr
+    # stderr is not a terminal here: plain progress lines, one per fit, saying which were kept
+    progress = [line for line in resumed.stderr.splitlines() if line.endswith(" elapsed")]
+    kept = [line for line in progress if "K, from the earlier run)" in line]
+    assert len(progress) >= 4 and 1 <= len(progress) - len(kept) < len(progress), resumed.stderr
     reused = [s["reused"] for s in json.loads((out / "results.json").read_text())["spectra"]]
     assert reused == [True, False, True, True]
     again = read_rates(out / "rates.csv")
@@ -157,7 +162,7 @@ def test_bad_series_files_are_one_line_errors(tmp_path):
         "Celsius": text.replace("temperature_k = 250.0", "temperature_k = 25.0"),
         'did you mean "temperature_k"': text.replace("temperature_k = 270.0", "temperatur_k = 270.0"),
         'no fit parameter "linewidth_hz_c"': text.replace(
-            'linewidth = "fixed"', 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { value = 1.0 } }'),
+            'linewidth = "fixed"', 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { start = 1.0 } }'),
         "slow-exchange-trend": text.replace('linewidth = "fixed"', 'shifts = "trend"'),
     }
     for expected, content in cases.items():

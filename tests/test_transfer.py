@@ -337,14 +337,12 @@ def test_command_writes_the_rates_table_that_eyring_reads(tmp_path):
     assert list(rows[0])[:len(RATE_COLUMNS)] == list(RATE_COLUMNS) and rows[0]["method"] == "inversion"
     assert abs(float(rows[0]["rate_per_s"]) - 2.0) < 4 * float(rows[0]["rate_stderr"])
     assert (tmp_path / "out" / "results.json").is_file() and (tmp_path / "out" / "fit.png").stat().st_size > 0
-    # a second temperature, and the two tables joined as the Eyring analysis reads them
+    # a second temperature, and the two tables joined by the Eyring analysis
     experiment.write_text(experiment.read_text().replace("temperature_k = 240.0", "temperature_k = 250.0"))
     assert CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out250")]).exit_code == 0
-    lines = (tmp_path / "out" / "rates.csv").read_text().splitlines()
-    lines += (tmp_path / "out250" / "rates.csv").read_text().splitlines()[1:]
-    (tmp_path / "joined.csv").write_text("\n".join(lines) + "\n")
-    series = read_rates(tmp_path / "joined.csv")
+    series = read_rates([tmp_path / "out" / "rates.csv", tmp_path / "out250" / "rates.csv"])
     assert series[0].process == "rotation" and series[0].temperature_k.tolist() == [240.0, 250.0]
+    assert series[0].methods.tolist() == ["inversion", "inversion"]
     again = CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out")])
     assert again.exit_code == 2 and "--overwrite" in again.output
     assert CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out"),
@@ -413,7 +411,9 @@ def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
         r = fit_transfer(inversion_experiment(y)).rate(0)
         assert r.status == "determined"
         temps.append(t), rates.append(r.rate_per_s), errors.append(r.rate_stderr), methods.append("inversion")
-    line = eyring_fit(temps, rates, errors)
+    line = eyring_fit(temps, rates, errors, method=methods)
+    offset = line.method_offsets()["inversion"]  # the two methods agree within their errors
+    assert abs(offset.value) < 3 * offset.stderr and offset.stderr < 0.2
     assert abs(line.enthalpy_kj_mol - 60.0) < 3 * line.enthalpy_stderr
     assert abs(line.entropy_j_mol_k + 12.0) < 3 * line.entropy_stderr
     assert np.all(np.abs(line.studentised_residuals) < 3.0), list(zip(methods, line.studentised_residuals))

@@ -23,7 +23,6 @@ HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
 OUT = script_output_folder("transfer_and_lineshape-output", SCRIPT)  # never among the inputs
 
 # %%
-import csv
 import shutil
 
 import numpy as np
@@ -100,32 +99,25 @@ print(lineshapes.report(), "\n")
 tables.append(OUT / "lineshape-fit" / "rates.csv")
 
 # %% [markdown]
-# ## 4. One table for one Eyring analysis
-# The rows of all tables under one header (the union of their columns; a lineshape row gets method
-# "lineshape").  `dnmr eyring all_rates.csv` then fits the Eyring line through both regimes.
+# ## 4. One Eyring analysis over both methods
+# `eyring_fit_file` takes every rates table at once (the lineshape table and each inversion table) and
+# fits the rows together; each rate keeps its method (lineshape where the table names none), which the
+# report lists and the figure marks.  On the command line:
+# `dnmr eyring lineshape-fit/rates.csv si-*/rates.csv --plot eyring.png`.
 
 # %%
-rows, columns = [], []
-for path in tables:
-    with open(path, newline="") as fh:
-        reader = csv.DictReader(fh)
-        columns += [c for c in reader.fieldnames if c not in columns]
-        rows += [{**row, "method": row.get("method") or "lineshape"} for row in reader]
-columns += [] if "method" in columns else ["method"]
-with open(OUT / "all_rates.csv", "w", newline="") as fh:
-    writer = csv.DictWriter(fh, fieldnames=columns, restval="", lineterminator="\n")
-    writer.writeheader()
-    writer.writerows(rows)
+from dnmr.output import save_figure
 
-both = dnmr.eyring_fit_file(OUT / "all_rates.csv")[0]
+both = dnmr.eyring_fit_file(tables)[0]
 print(both.report())
+save_figure(both.plot(), OUT / "eyring.png")
 lineshape_only = dnmr.eyring_fit_file(OUT / "lineshape-fit" / "rates.csv")[0]
 summary = [
     "RX-4 (invented): dH‡ and dS‡ of the aryl rotation; truth 60.0 kJ/mol and -12.0 J/(mol K)",
-    f"lineshapes alone ({len(hot_k)} temperatures):    dH‡ = {lineshape_only.enthalpy_kj_mol:.2f} ± "
+    f"lineshapes alone ({len(lineshape_only.rate_per_s)} rates):        dH‡ = {lineshape_only.enthalpy_kj_mol:.2f} ± "
     f"{lineshape_only.enthalpy_stderr:.2f} kJ/mol, dS‡ = {lineshape_only.entropy_j_mol_k:.1f} ± "
     f"{lineshape_only.entropy_stderr:.1f} J/(mol K)",
-    f"inversion and lineshapes ({len(rows)} rates): dH‡ = {both.enthalpy_kj_mol:.2f} ± {both.enthalpy_stderr:.2f} "
+    f"inversion and lineshapes ({len(both.rate_per_s)} rates): dH‡ = {both.enthalpy_kj_mol:.2f} ± {both.enthalpy_stderr:.2f} "
     f"kJ/mol, dS‡ = {both.entropy_j_mol_k:.1f} ± {both.entropy_stderr:.1f} J/(mol K)",
     f"the error of dS‡ shrinks {lineshape_only.entropy_stderr / both.entropy_stderr:.1f}-fold",
 ]
