@@ -190,6 +190,9 @@ class RateSeries:
         What was done with rows of a fit table that are not plain values (left out, set aside, widened).
     set_aside : tuple of SetAsideRow
         Rows with a rate that were not fitted because their fit is flagged.
+    setpoint_k : ndarray or None
+        The temperatures the table gave, K, when a calibration turned them into the sample temperatures
+        of `temperature_k` (None otherwise).
     row_methods : tuple of str or None
         How each row's rate was measured ("lineshape", "inversion", "saturation", "exchange-2d" or a name
         of the user's); None: every row is a lineshape rate.
@@ -208,6 +211,7 @@ class RateSeries:
     lines: tuple[int, ...] | None = None
     notes: tuple[str, ...] = ()
     set_aside: tuple[SetAsideRow, ...] = ()
+    setpoint_k: np.ndarray | None = None
     row_methods: tuple[str, ...] | None = None
     row_files: tuple[str, ...] | None = None
 
@@ -259,7 +263,8 @@ class RateSeries:
         Used to replace set-point temperatures by calibrated sample temperatures.
         """
         return replace(self, temperature_k=np.asarray(temperature_k, dtype=float),
-                       temperature_errors=self.temperature_errors.plus(errors))
+                       temperature_errors=self.temperature_errors.plus(errors),
+                       setpoint_k=self.temperature_k if self.setpoint_k is None else self.setpoint_k)
 
     def with_offset(self, offset_stderr_k: float) -> "RateSeries":
         """Copy with an unknown probe offset (standard error in K) shared by every temperature."""
@@ -1048,7 +1053,9 @@ class EyringResult(NotebookView):
 
     def _point(self, i: int) -> dict:
         t = float(self.temperature_k[i])
+        setpoint = math.nan if self.series.setpoint_k is None else float(self.series.setpoint_k[self.used][i])
         return {
+            "setpoint_k": setpoint,
             "temperature_k": t,
             "temperature_stderr": float(self.series.temperature_stderr[self.used][i]),
             "rate_per_s": float(self.rate_per_s[i]),
@@ -1397,6 +1404,7 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         rate_upper=series.rate_upper[rows],
         temperature_errors=series.temperature_errors.subset(rows),
         lines=None if series.lines is None else tuple(np.array(series.lines)[rows].tolist()),
+        setpoint_k=None if series.setpoint_k is None else series.setpoint_k[rows],
         row_methods=None if series.row_methods is None else tuple(series.methods[rows].tolist()),
         row_files=None if series.row_files is None else tuple(np.array(series.row_files)[rows].tolist()),
     )
@@ -1616,22 +1624,30 @@ def _share_lines(r: EyringResult) -> list[str]:
 
 
 def _point_lines(d: dict) -> list[str]:
-    """The fitted rates; by method (each under its name, by temperature) when there are several."""
-    lines = [f"  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
+    """The fitted rates; by method (each under its name, by temperature) when there are several.  With a
+    calibration each row starts with the table's set-point."""
+    calibrated = any(np.isfinite(p["setpoint_k"]) for p in d["points"])
+    head = f"  {'T set / K':>9}" if calibrated else ""
+    lines = [f"{head}  {'T / K':>9} {'± T':>6} {'k / s⁻¹':>11} {'± k':>10} {'line k':>11} {'stud. res.':>10}"]
     methods = d["methods"]
     if len(methods) == 1:
-        return lines + [_point_line(p) for p in d["points"]]
-    for method, count in methods.items():
-        if count:
-            lines.append(f"  {method} ({count} rate{'s' if count > 1 else ''})")
-            mine = sorted((p for p in d["points"] if p["method"] == method), key=lambda p: p["temperature_k"])
-            lines += [_point_line(p) for p in mine]
+        lines += [_point_line(p, calibrated) for p in d["points"]]
+    else:
+        for method, count in methods.items():
+            if count:
+                lines.append(f"  {method} ({count} rate{'s' if count > 1 else ''})")
+                mine = sorted((p for p in d["points"] if p["method"] == method), key=lambda p: p["temperature_k"])
+                lines += [_point_line(p, calibrated) for p in mine]
+    if calibrated:
+        lines.append("  T set: the table's set-point; T: the sample temperature through the calibration, ± T its "
+                     "standard error")
     return lines
 
 
-def _point_line(p: dict) -> str:
+def _point_line(p: dict, calibrated: bool = False) -> str:
     err = f"{p['rate_stderr']:10.3g}" if np.isfinite(p["rate_stderr"]) else f"{'':>10}"
-    return (f"  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
+    setpoint = f"  {p['setpoint_k']:9.2f}" if calibrated else ""
+    return (f"{setpoint}  {p['temperature_k']:9.2f} {p['temperature_stderr']:6.2f} {p['rate_per_s']:11.4g} {err} "
             f"{p['fitted_rate_per_s']:11.4g} {p['studentised_residual']:10.2f}" + ("  outlier?" if p["outlier"] else ""))
 
 

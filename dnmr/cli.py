@@ -16,7 +16,7 @@ from typing import TYPE_CHECKING
 import click
 
 from .errors import InputError
-from .output import json_ready
+from .output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
 
 if TYPE_CHECKING:
     from .series import Series
@@ -105,6 +105,11 @@ def _block_progress(enabled: bool):
 
 #: Simulations with at least this many coherences show a progress bar.
 LARGE_SYSTEM_COHERENCES = 2000
+
+#: The option of every command that writes figures under names of its own.
+FIGURE_FORMAT_OPTION = click.option(
+    "--figure-format", type=click.Choice(FIGURE_FORMAT_CHOICES), default="png", show_default=True,
+    help="Format of the figures this command writes: PNG, or SVG or PDF (vector, for print).")
 
 
 @cli.command()
@@ -202,11 +207,12 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
+@FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
-        posterior_seed: int) -> None:
+        posterior_seed: int, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
@@ -224,17 +230,18 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     series = load_series(series_file)
     for warning in series.warnings:
         click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
-    if global_fit:
-        _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
-                    {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
-        return
-    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
-                        progress=False if quiet else None,
-                        posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
-    click.echo(result.report())
-    for failed in result.failures:
-        click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-    _write_report_after_fit(outdir, calibration_file, no_report)
+    with figures_as(figure_format):
+        if global_fit:
+            _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
+                        {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
+            return
+        result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
+                            progress=False if quiet else None,
+                            posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
+        click.echo(result.report())
+        for failed in result.failures:
+            click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
+        _write_report_after_fit(outdir, calibration_file, no_report)
     ctx.exit(result.exit_status)
 
 
@@ -270,13 +277,15 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
 @click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
               help="Folder for rates.csv, results.json and fit.png.")
 @click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
-def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
+@FIGURE_FORMAT_OPTION
+def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format: str) -> None:
     """Rates of slow exchange from a magnetisation-transfer experiment (selective inversion, saturation
     transfer or 2D exchange) described by EXPERIMENT_FILE, into OUTDIR."""
     from .transfer import run_transfer
 
-    click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
-    click.echo(f"wrote rates.csv, results.json and fit.png into {outdir}")
+    with figures_as(figure_format):
+        click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
+    click.echo(f"wrote rates.csv, results.json and fit.{figure_format} into {outdir}")
 
 
 @cli.command()
@@ -301,7 +310,9 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
               help="Set-point calibration table (CSV: setpoint_k, temperature_k); the rates' temperatures are set-points.")
 @click.option("--calibration-degree", type=click.IntRange(1, 3), default=1, show_default=True,
               help="Polynomial degree of the calibration.")
-@click.option("--overwrite", is_flag=True, help="Replace an existing image.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing image or tables.")
+@click.option("--tables", "tables_folder", type=click.Path(file_okay=False, path_type=Path),
+              help="Also write the supporting-information tables (CSV, Markdown, LaTeX) into this folder.")
 @click.option("--posterior", is_flag=True,
               help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
@@ -310,7 +321,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool) -> None:
 def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None, process: str | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
-           overwrite: bool, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
+           overwrite: bool, tables_folder: Path | None, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
     """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
     or tables of your own).
 
@@ -355,6 +366,27 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
         click.echo("\n\n".join(parts + [post.report() for post in posteriors]))
     for figure in figures:
         click.echo(f"wrote {figure}", err=as_json)
+    if tables_folder is not None:
+        _write_eyring_tables(tables_folder, rates_files, results, calibration, transmission, overwrite, as_json)
+
+
+def _write_eyring_tables(folder: Path, rates_files: tuple[Path, ...], results, calibration, transmission: float,
+                         overwrite: bool, as_json: bool) -> None:
+    """`dnmr eyring --tables`: the supporting-information tables of the rate tables and their analysis."""
+    import csv
+
+    from .supporting import activation_rows, rate_rows_from_table, write_supporting_tables
+
+    if transmission != 1.0:
+        raise InputError("the tables give ΔG‡ at each temperature with transmission coefficient 1; drop "
+                         "--transmission or --tables", where="--tables")
+    rows = []
+    for rates_file in rates_files:
+        with open(rates_file, newline="", encoding="utf-8-sig") as fh:
+            rows += list(csv.DictReader(line for line in fh if not line.lstrip().startswith("#")))
+    written = write_supporting_tables(folder, rate_rows_from_table(rows, calibration), activation_rows(results),
+                                      overwrite=overwrite)
+    click.echo(f"wrote {', '.join(str(p) for p in written)}", err=as_json)
 
 
 def _posterior_figure_path(plot_file: Path, process: str, processes: int) -> Path:
@@ -370,14 +402,29 @@ def _posterior_figure_path(plot_file: Path, process: str, processes: int) -> Pat
 @click.option("--spectrum", "spectra", type=click.Path(path_type=Path), multiple=True,
               help="Thermometer spectrum (text, JCAMP-DX or processed folder); repeat for several.")
 @click.option("--frequency-mhz", type=float, help="Spectrometer frequency, MHz (for spectra with a Hz axis).")
+@click.option("--calibrate", "spectrum_list", type=click.Path(dir_okay=False, path_type=Path),
+              help="Build a set-point calibration from the thermometer spectra this CSV lists (columns setpoint_k, file).")
+@click.option("--degree", type=click.IntRange(1, 3), default=1, show_default=True,
+              help="With --calibrate: degree of the calibration polynomial.")
+@click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
+              help="With --calibrate: the calibration table to write (CSV for --calibration of fit, eyring and report).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing calibration table.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object.")
-def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tuple[Path, ...],
-                frequency_mhz: float | None, as_json: bool) -> None:
-    """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982)."""
+@click.pass_context
+def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float, ...], spectra: tuple[Path, ...],
+                frequency_mhz: float | None, spectrum_list: Path | None, degree: int, output: Path | None,
+                overwrite: bool, as_json: bool) -> None:
+    """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
+    or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
     from .thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
 
+    if spectrum_list is not None:
+        _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
+        return
+    if output is not None:
+        raise InputError("-o writes the calibration table of --calibrate LIST.csv; give that list", where="--output")
     if not shift_differences and not spectra:
-        raise InputError("give --shift-difference PPM or --spectrum FILE", where="thermometer")
+        raise InputError("give --shift-difference PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
     readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
     readings += [temperature_from_file(path, liquid, frequency_mhz=frequency_mhz) for path in spectra]
     if as_json:
@@ -387,15 +434,40 @@ def thermometer(liquid: str, shift_differences: tuple[float, ...], spectra: tupl
         click.echo(THERMOMETER_CAUTIONS)
 
 
+def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int, frequency_mhz: float | None,
+               output: Path | None, overwrite: bool, as_json: bool) -> None:
+    """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
+    a spectrum of the list could not be used (the others are kept)."""
+    from .output import atomic_write_text
+    from .thermometry import THERMOMETER_CAUTIONS, calibration_from_spectra
+
+    result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
+    if output is not None:
+        atomic_write_text(output, result.table_csv(), overwrite=overwrite)
+    if as_json:
+        print_json(result.to_dict())
+    else:
+        click.echo(result.report())
+        click.echo(THERMOMETER_CAUTIONS)
+    if output is not None:
+        click.echo(f"wrote {output}", err=as_json)
+    if result.skipped:
+        click.echo(f"dnmr: error: {len(result.skipped)} thermometer spectra not used (see above); the calibration "
+                   "rests on the others", err=True)
+        ctx.exit(2)
+
+
 @cli.command()
 @click.argument("outdir", required=False, default="dnmr-demo", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--overwrite", is_flag=True, help="Write into an existing, non-empty folder.")
 @click.option("--quiet", is_flag=True, help="No progress report of the series fit on stderr.")
-def demo(outdir: Path, overwrite: bool, quiet: bool) -> None:
+@FIGURE_FORMAT_OPTION
+def demo(outdir: Path, overwrite: bool, quiet: bool, figure_format: str) -> None:
     """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
     from .demo import run_demo
 
-    run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
+    with figures_as(figure_format):
+        run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
 
 
 def _with_options(options):
@@ -538,16 +610,21 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
               help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the Eyring analysis.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write (default OUTDIR/report.html).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing report.")
+@click.option("--overwrite", is_flag=True, help="Replace an existing report and its supporting-information tables.")
 @click.option("--transfer", "transfer_folders", multiple=True, type=click.Path(file_okay=False, path_type=Path),
               help="A folder written by `dnmr transfer` (repeat for several): its fit is shown beside the lineshape "
                    "fits and its rates join the Eyring analysis.")
+@FIGURE_FORMAT_OPTION
 def report(outdir: Path, calibration_file: Path | None, output: Path | None, overwrite: bool,
-           transfer_folders: tuple[Path, ...]) -> None:
-    """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched)."""
-    from .report import write_report
+           transfer_folders: tuple[Path, ...], figure_format: str) -> None:
+    """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched), and
+    beside it supporting-information/: the rates and activation parameters as CSV, Markdown and LaTeX
+    tables, and the Eyring figure in --figure-format."""
+    from .report import supporting_folder, write_report
 
-    click.echo(f"wrote {write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite, transfer=transfer_folders)}")
+    written = write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite,
+                           transfer=transfer_folders, figure_format=figure_format)
+    click.echo(f"wrote {written} and the tables in {supporting_folder(written)}")
 
 
 def main(argv: list[str] | None = None) -> None:

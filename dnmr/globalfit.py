@@ -1034,6 +1034,8 @@ class GlobalFit(NotebookView):
         Remarks.
     function_evaluations, jacobian_evaluations : int
         Residual and Jacobian evaluations of the joint least squares (all spectra each).
+    temperature_stderr_k : ndarray or None
+        Standard error of each sample temperature from the calibration, K (None without a calibration).
     """
 
     series: Series
@@ -1053,6 +1055,7 @@ class GlobalFit(NotebookView):
     notes: list[str] = field(default_factory=list)
     function_evaluations: int = 0
     jacobian_evaluations: int = 0
+    temperature_stderr_k: np.ndarray | None = None
 
     @property
     def harmonic_mean_temperature_k(self) -> float:
@@ -1076,10 +1079,13 @@ class GlobalFit(NotebookView):
                 out[f"{part}_share_stderr"] = _share(cov, t_hm)
         k = self.activation.index(a)
         out["rates"] = []
-        for t, t_set, fit in zip(self.temperatures_k, self.setpoints_k, self.fits):
+        t_errors = (np.full(len(self.temperatures_k), math.nan) if self.temperature_stderr_k is None
+                    else self.temperature_stderr_k)
+        for t, t_err, t_set, fit in zip(self.temperatures_k, t_errors, self.setpoints_k, self.fits):
             ln_k, se = a.ln_rate(float(t))
             own = fit.rates[k]
-            out["rates"].append({"temperature_k": float(t), "setpoint_k": float(t_set), "rate_per_s": math.exp(ln_k),
+            out["rates"].append({"temperature_k": float(t), "temperature_stderr": float(t_err),
+                                 "setpoint_k": float(t_set), "rate_per_s": math.exp(ln_k),
                                  "rate_stderr": math.exp(ln_k) * se, "two_step_rate_per_s": own.rate_per_s,
                                  "two_step_status": own.status})
         return out
@@ -1401,6 +1407,7 @@ def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "Temp
     return GlobalFit(
         series=series, outdir=outdir, activation=activation, two_step=eyring, temperatures_k=temps,
         setpoints_k=np.array([series.spectra[i].temperature_k for i in used]), fits=fits,
+        temperature_stderr_k=None if temperature_covariance is None else np.sqrt(np.diag(temperature_covariance)),
         parameters=_stderr_table(problem, solution.x, covariance), chi_square=chi2,
         reduced_chi_square=chi2 / max(dof, 1), degrees_of_freedom=dof, error_scale=float(scale),
         options={"shifts": treatment.shifts, "linewidth": treatment.linewidth, "couplings": treatment.couplings,

@@ -6,6 +6,7 @@ import os
 import sys
 import tempfile
 from collections.abc import Mapping
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -91,8 +92,59 @@ def atomic_write_text(path: str | Path, text: str, overwrite: bool = False) -> P
     return atomic_write_bytes(path, text.encode("utf-8"), overwrite=overwrite)
 
 
+#: Formats dnmr's own figure files can be chosen in (--figure-format): raster PNG, or vector SVG and PDF for print.
+FIGURE_FORMAT_CHOICES = ("png", "svg", "pdf")
+#: The environment variable that carries the format chosen by :func:`figures_as` into worker processes.
+FIGURE_FORMAT_VARIABLE = "DNMR_FIGURE_FORMAT"
+
+
+def chosen_figure_format() -> str:
+    """The format of the figures dnmr names itself (png, svg or pdf): png unless :func:`figures_as` chose another."""
+    value = os.environ.get(FIGURE_FORMAT_VARIABLE, "png").strip().lower() or "png"
+    if value not in FIGURE_FORMAT_CHOICES:
+        raise InputError(f"figure format {value!r} is not one of {', '.join(FIGURE_FORMAT_CHOICES)}",
+                         where=FIGURE_FORMAT_VARIABLE)
+    return value
+
+
+@contextmanager
+def figures_as(figure_format: str):
+    """Within this block, every figure dnmr names itself (``*.png``) is written as `figure_format` instead.
+
+    The one place that decides the format of dnmr's own figure files (fit figures, the series stack, the
+    global fit's figures, the magnetisation-transfer fit, the demo's): :func:`save_figure` writes a path
+    ending in ``.png`` with the chosen suffix.  The choice travels in :data:`FIGURE_FORMAT_VARIABLE`, so
+    worker processes started inside the block follow it too.
+
+    Parameters
+    ----------
+    figure_format : {"png", "svg", "pdf"}
+        The format.
+    """
+    figure_format = figure_format.strip().lower()
+    if figure_format not in FIGURE_FORMAT_CHOICES:
+        raise InputError(f"figure format {figure_format!r} is not one of {', '.join(FIGURE_FORMAT_CHOICES)}",
+                         where="--figure-format")
+    before = os.environ.get(FIGURE_FORMAT_VARIABLE)
+    os.environ[FIGURE_FORMAT_VARIABLE] = figure_format
+    try:
+        yield figure_format
+    finally:
+        if before is None:
+            os.environ.pop(FIGURE_FORMAT_VARIABLE, None)
+        else:
+            os.environ[FIGURE_FORMAT_VARIABLE] = before
+
+
+def figure_file(path: str | Path) -> Path:
+    """Where :func:`save_figure` writes a figure asked for at `path`: a ``.png`` path takes the chosen format's
+    suffix (see :func:`figures_as`); any other suffix is kept."""
+    path = Path(path)
+    return path.with_suffix("." + chosen_figure_format()) if path.suffix.lower() == ".png" else path
+
+
 def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False) -> Path:
-    """Save a matplotlib figure atomically (format from the file suffix).
+    """Save a matplotlib figure atomically (format from the file suffix; ``.png`` follows :func:`figures_as`).
 
     Parameters
     ----------
@@ -111,7 +163,7 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     import io
 
     try:
-        path = check_output_file(path, overwrite, "output", figure=True)
+        path = check_output_file(figure_file(path), overwrite, "output", figure=True)
         buf = io.BytesIO()
         fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
         return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)

@@ -119,6 +119,12 @@ def plot_spectrum(spectrum, ax=None, ylabel: str = "intensity / Hz$^{-1}$", **li
     return ax
 
 
+def scale_note(scale: float) -> str:
+    """'  (×3.2)' beside a stacked trace drawn `scale` times taller than it is; '' for a trace drawn as it is
+    (within 5 %)."""
+    return "" if abs(scale - 1.0) < 0.05 else f"  (×{scale:.1f})"
+
+
 def plot_stack(spectra, labels, ax=None, title: str = ""):
     """Spectra stacked bottom to top with a label beside each (the usual VT or rate series figure).
 
@@ -137,7 +143,7 @@ def plot_stack(spectra, labels, ax=None, title: str = ""):
         scale = peak / max(float(s.intensity.max()), 1e-300)
         scale = min(scale, 8.0)  # broad traces are enlarged, at most eightfold, to stay readable
         ax.plot(s.ppm, i * step + s.intensity * scale, color=INK, lw=0.9)
-        note = figure_text(label) + ("" if scale == 1.0 else f"  (×{scale:.1f})")
+        note = figure_text(label) + scale_note(scale)
         ax.text(s.ppm.min(), i * step + 0.25 * step, " " + note, va="center", ha="left", fontsize=8)
     nmr_axis(ax)
     ax.set_yticks([])
@@ -204,7 +210,8 @@ def _draw_activation_series(ax, result, colour, x_of, y_of, residual_ax=None, *,
     q = result.band_quantile
     ax.plot(x_of(grid), y_of(fit, grid), line_style, color=colour, lw=1.2, label=line_label)
     if np.isfinite(q) and np.isfinite(se).all():
-        ax.fill_between(x_of(grid), y_of(fit - q * se, grid), y_of(fit + q * se, grid), color=colour, alpha=0.18, lw=0)
+        ax.fill_between(x_of(grid), y_of(fit - q * se, grid), y_of(fit + q * se, grid), color=colour, alpha=0.18, lw=0,
+                        label=f"{label}: 95 % confidence band")
     out = result.outliers
     if out.any():
         ax.plot(x_of(t[out]), y[out], "o", ms=12, mfc="none", mec=INK, mew=1.2)
@@ -318,6 +325,7 @@ def plot_spectrum_fit(fit, *, figure=None):
     ax.text(0.01, 0.97, text, transform=ax.transAxes, va="top", ha="left", fontsize=8)
     band = 2.0 * fit.noise.sigma
     res.axhspan(-band, band, color=PALE, lw=0)
+    label_band(res, "±2σ of the noise")
     res.plot(fit.ppm, fit.residuals, color=INK, lw=0.6)
     res.set_ylabel("residual")
     nmr_axis(res)
@@ -393,13 +401,22 @@ def plot_fit_stack(fits, labels, *, figure=None, title: str = ""):
     matplotlib.figure.Figure
     """
     fig, ax = _stack_axes(figure, len(fits), 0.9)
-    for i, (fit, label) in enumerate(zip(fits, labels)):
+    heights = [max(float(np.max(fit.fitted - fit.baseline)), 1e-300) for fit in fits]
+    for i, (fit, label, height) in enumerate(zip(fits, labels, heights)):
         baseline = fit.baseline
-        height = max(float(np.max(fit.fitted - baseline)), 1e-300)
         ax.plot(fit.ppm, i + (fit.data - baseline) / height * 0.85, color=INK, lw=0.7)
         ax.plot(fit.ppm, i + (fit.fitted - baseline) / height * 0.85, color=FIT_COLOUR, lw=0.9)
-        ax.text(fit.ppm.max(), i + 0.3, " " + figure_text(label), va="center", ha="left", fontsize=8)
-    return _finish_stack(fig, ax, title or "measured (black) and fitted (orange-red)")
+        note = figure_text(label) + scale_note(max(heights) / height)
+        ax.text(fit.ppm.max(), i + 0.3, " " + note, va="center", ha="left", fontsize=8)
+    return _finish_stack(fig, ax, title or "measured (black) and fitted (orange-red); ×: enlarged against the tallest trace")
+
+
+def label_band(ax, text: str) -> None:
+    """A key entry naming the pale residual band of `ax` (what the band spans)."""
+    from matplotlib.patches import Patch
+
+    ax.legend(handles=[Patch(facecolor=PALE, edgecolor=GREY, lw=0.5, label=figure_text(text))], frameon=False,
+              fontsize=7, loc="upper right", borderaxespad=0.1)
 
 
 def _stack_axes(figure, traces: int, inches_per_trace: float):
@@ -434,6 +451,7 @@ def plot_residual_stack(fits, labels, *, figure=None, title: str = ""):
     matplotlib.figure.Figure
     """
     fig, ax = _stack_axes(figure, len(fits), 0.7)
+    label_band(ax, "±3σ of the noise")
     for i, (fit, label) in enumerate(zip(fits, labels)):
         ax.axhspan(10 * i - 3, 10 * i + 3, color=PALE, lw=0)
         ax.plot(fit.ppm, 10 * i + np.clip(fit.residuals / fit.noise.sigma, -5, 5), color=INK, lw=0.5)

@@ -35,6 +35,12 @@ passed (``calibration=`` or ``--calibration CAL.csv``); the temperatures in rate
 set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.thermometry`).  The report
 states which of the two was done.
 
+Beside the report, ``supporting-information/`` receives the supporting-information tables of
+:mod:`dnmr.supporting` (CSV, Markdown, LaTeX) and the Eyring figure in the chosen figure format; the
+report shows the rates table too.  With a calibration every table shows the set-point beside the sample
+temperature and its error, and the cautions add the thermometer liquids'.  The report names files relative
+to its own folder: no absolute path of the user's machine is written into it.
+
 Text taken from the input files is always HTML-escaped.  The input folder is only read; the report
 is written atomically and an existing file is never replaced unless ``overwrite``.
 """
@@ -46,7 +52,9 @@ import html
 import io
 import json
 import math
+import os
 import platform
+import re
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -57,10 +65,10 @@ from .errors import InputError
 from .kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from .model import Model
 from .modelfile import load_model
-from .output import atomic_write_text
+from .output import atomic_write_text, chosen_figure_format, figure_file, figures_as
 from .planning import CAUTIONS
 from .series import file_sha256
-from .thermometry import TemperatureCalibration, read_temperature_calibration
+from .thermometry import THERMOMETER_CAUTIONS, TemperatureCalibration, read_temperature_calibration
 
 REPORT_NAME = "report.html"
 INPUT_NAMES = ("results.json", "rates.csv", "global.json")
@@ -268,11 +276,27 @@ def figure_html(data: bytes, caption: str, alt: str) -> str:
             f"<figcaption>{esc(caption)}</figcaption></figure>")
 
 
+def written_figure(path: Path) -> Path | None:
+    """The figure asked for at `path` as written: with the suffix of any figure format (PNG first), or None."""
+    from .output import FIGURE_FORMAT_CHOICES
+
+    found = [path.with_suffix("." + f) for f in FIGURE_FORMAT_CHOICES if path.with_suffix("." + f).is_file()]
+    return found[0] if found else None
+
+
 def figure_from_file(path: Path, caption: str, alt: str) -> str:
-    """Embed the PNG at `path`, or say that it is missing."""
-    if not path.is_file():
-        return f'<p class="warn">figure {esc(path.name)} not found in {esc(path.parent)}</p>'
-    return figure_html(path.read_bytes(), caption, alt)
+    """Embed the figure asked for at `path` (``.png``) in whichever format it was written (PNG or SVG
+    embedded; a PDF named by its place beside the report), or say that it is missing."""
+    found = written_figure(path)
+    if found is None:
+        return f'<p class="warn">figure {esc(path.name)} not found in {esc(path.parent.name)}</p>'
+    if found.suffix == ".pdf":
+        return (f'<p class="muted">{esc(caption)}: written as PDF, {esc(found.parent.name)}/{esc(found.name)} '
+                "(open it beside this report)</p>")
+    if found.suffix == ".svg":
+        uri = "data:image/svg+xml;base64," + base64.b64encode(found.read_bytes()).decode("ascii")
+        return f'<figure><img src="{uri}" alt="{esc(alt)}"><figcaption>{esc(caption)}</figcaption></figure>'
+    return figure_html(found.read_bytes(), caption, alt)
 
 
 def figure_png(fig) -> bytes:
@@ -440,16 +464,18 @@ def _posterior_rate_text(row: dict) -> str:
 def rate_section(inputs: ReportInputs) -> str:
     """The rate table of rates.csv (with the posterior rates when ``dnmr fit --posterior`` sampled them)."""
     sampled = any("posterior_median_per_s" in row for row in inputs.rates)
-    rows = [[_number(row.get("temperature_k"), ".2f"), row.get("process", ""), _rate_text(row), row.get("status", ""),
+    temperatures = sample_temperature_cells(inputs)
+    rows = [temperature + [row.get("process", ""), _rate_text(row), row.get("status", ""),
              _number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")]
-            + ([_posterior_rate_text(row)] if sampled else []) for row in inputs.rates]
-    body = table(["T / K", "process", "rate k / s^-1", "status", "reduced chi-square", "flags"]
+            + ([_posterior_rate_text(row)] if sampled else []) for row, temperature in zip(inputs.rates, temperatures)]
+    heads = ["T set / K", "sample T / K"] if inputs.calibration is not None else ["T / K"]
+    body = table(heads + ["process", "rate k / s^-1", "status", "reduced chi-square", "flags"]
                  + (["posterior k / s^-1: median (95 %) or 95 % bound"] if sampled else []), rows,
-                 numeric=[True, False, True, False, True, False, True])
+                 numeric=[True] * len(heads) + [False, True, False, True, False, True])
     posterior = (" The posterior column gives the median and central 95 % interval of the posterior samples, or "
                  "the posterior's one-sided 95 % bound of a rate the spectrum only bounds.") if sampled else ""
     return section("rates", "Rates", body + '<p class="muted">Errors are one standard error; bounds are the '
-                   "limits the chi-square profile allows (68 %). The temperatures are those of the series file."
+                   f"limits the chi-square profile allows (68 %). {esc(_temperature_columns_text(inputs))}"
                    f"{posterior}</p>")
 
 
@@ -608,9 +634,10 @@ def warnings_section(inputs: ReportInputs) -> str:
     return section("warnings", "Warnings", bullets(items, "warn") if items else "<p>None.</p>")
 
 
-def cautions_section() -> str:
-    """Safety cautions for variable-temperature work (dnmr.planning.CAUTIONS)."""
-    return section("cautions", "Safety cautions", bullets(CAUTIONS))
+def cautions_section(thermometer: bool = False) -> str:
+    """Safety cautions for variable-temperature work (dnmr.planning.CAUTIONS), and those of the thermometer
+    liquids when a temperature calibration was used."""
+    return section("cautions", "Safety cautions", bullets(CAUTIONS + ((THERMOMETER_CAUTIONS,) if thermometer else ())))
 
 
 def _input_rows(inputs: ReportInputs) -> list[list[str]]:
@@ -646,7 +673,8 @@ def inputs_section(inputs: ReportInputs) -> str:
         [["series fit", k, v] for k, v in (r.get("versions") or {}).items()]
         + [["this report", k, v] for k, v in _report_versions().items()])
     body += (f"<p class=\"muted\">Fit program: {esc(r.get('program', '?'))}, written {esc(r.get('written_utc', '?'))}; "
-             f"report written {esc(time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime()))} from {esc(inputs.outdir)}.</p>")
+             f"report written {esc(time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime()))} from the folder "
+             f"{esc(inputs.outdir.resolve().name)}; file names relative to the report.</p>")
     return section("inputs", "Inputs and software", body)
 
 
@@ -655,8 +683,9 @@ def render_report(inputs: ReportInputs) -> str:
     model_title = inputs.model.title if inputs.model is not None and inputs.model.title else ""
     title = f"dnmr report: {model_title or inputs.outdir.name}"
     sections = [summary_section(inputs), model_section(inputs), rate_section(inputs), identifiability_section(inputs),
-                fits_section(inputs), transfer_section(inputs), eyring_section(inputs), warnings_section(inputs), cautions_section(),
-                inputs_section(inputs)]
+                fits_section(inputs), transfer_section(inputs), eyring_section(inputs),
+                supporting_section(supporting_rows(inputs)), warnings_section(inputs),
+                cautions_section(inputs.calibration is not None), inputs_section(inputs)]
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{esc(title)}</title><style>{STYLE}</style></head><body>"
             f"<h1>{esc(title)}</h1>{''.join(sections)}</body></html>\n")
@@ -867,11 +896,11 @@ def render_global_report(outdir: Path, g: dict, two_step: ReportInputs | None) -
     warnings = [str(n) for n in g.get("notes", [])] + (two_step.warnings if two_step is not None else [
         "the two-step folder cannot be read: no model or input section"])
     sections = [global_summary_section(g), comparison_section(g), quality_section(outdir, g),
-                global_parameters_section(g)]
+                global_parameters_section(g), supporting_section(global_supporting_rows(g))]
     if two_step is not None:
         sections.append(model_section(two_step))
     sections += [section("warnings", "Warnings", bullets(warnings, "warn") if warnings else "<p>None.</p>"),
-                 cautions_section()]
+                 cautions_section(bool(g.get("calibration_error_included")))]
     if two_step is not None:
         sections.append(inputs_section(two_step))
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
@@ -905,6 +934,7 @@ def write_report(
     output: str | Path | None = None,
     overwrite: bool = False,
     transfer: Sequence[str | Path] = (),
+    figure_format: str | None = None,
 ) -> Path:
     """Write one self-contained HTML report of the series fit in `outdir`.
 
@@ -922,15 +952,21 @@ def write_report(
     output : str or Path, optional
         HTML file to write (default ``OUTDIR/report.html``).
     overwrite : bool
-        Replace an existing file.
+        Replace an existing file (the report and its supporting-information tables).
     transfer : sequence of str or Path
         Folders written by ``dnmr transfer``: their fits are shown beside the lineshape fits and their
-        rates join the Eyring analysis (not for a global fit).
+        rates join the Eyring analysis and the supporting-information tables (not for a global fit).
+    figure_format : {"png", "svg", "pdf"}, optional
+        Format of the Eyring figure written beside the supporting-information tables (default: the one
+        :func:`dnmr.output.figures_as` chose, else PNG).
 
     Returns
     -------
     Path
-        The file written.
+        The file written.  Beside it, in ``supporting-information/`` (see :func:`supporting_folder`), the
+        supporting-information tables
+        (:mod:`dnmr.supporting`: si_rates.csv, si_activation.csv, si_tables.md, si_tables.tex) and, for a
+        series fit, the Eyring figure.  The report names every file relative to its own folder.
 
     Raises
     ------
@@ -943,10 +979,145 @@ def write_report(
     _refuse_inputs(path, outdir)
     if path.exists() and not overwrite:
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
-    if (outdir / GLOBAL_NAME).is_file():
-        if transfer:
-            raise InputError("magnetisation-transfer folders go with the report of a spectrum-by-spectrum fit; name "
-                             f"{outdir / 'two-step'} instead", where="--transfer")
-        return atomic_write_text(path, _global_document(outdir, calibration), overwrite=overwrite)
-    inputs = gather_inputs(outdir, calibration, transfer)
-    return atomic_write_text(path, render_report(inputs), overwrite=overwrite)
+    with figures_as(figure_format or chosen_figure_format()):
+        if (outdir / GLOBAL_NAME).is_file():
+            if transfer:
+                raise InputError("magnetisation-transfer folders go with the report of a spectrum-by-spectrum fit; "
+                                 f"name {outdir / 'two-step'} instead", where="--transfer")
+            document = _global_document(outdir, calibration)
+            write_supporting_files(supporting_folder(path), global_supporting_rows(read_global(outdir)), [], overwrite)
+        else:
+            inputs = gather_inputs(outdir, calibration, transfer)
+            document = render_report(inputs)
+            write_supporting_files(supporting_folder(path), supporting_rows(inputs), inputs.eyring, overwrite)
+    return atomic_write_text(path, relative_paths(document, path.parent), overwrite=overwrite)
+
+
+# --------------------------------------------------------------------------------------------------
+# sample temperatures, supporting-information tables, paths relative to the report
+
+
+def _calibrated_temperatures(inputs: ReportInputs):
+    """Sample temperatures (K) and their standard errors of every rates.csv row through the calibration
+    (None without one, or when a set-point lies outside it: the warnings say so)."""
+    if inputs.calibration is None:
+        return None
+    try:
+        true = inputs.calibration.true_temperature([float(row.get("temperature_k")) for row in inputs.rates])
+    except (InputError, TypeError, ValueError):
+        return None
+    return true.temperature_k, true.stderr
+
+
+def sample_temperature_cells(inputs: ReportInputs) -> list[list[str]]:
+    """The temperature cells of each rates.csv row: [T] as given, or with a calibration [set-point, sample
+    T ± its standard error]."""
+    if inputs.calibration is None:
+        return [[_number(row.get("temperature_k"), ".2f")] for row in inputs.rates]
+    true = _calibrated_temperatures(inputs)
+    if true is None:
+        return [[_number(row.get("temperature_k"), ".2f"), "outside the calibration"] for row in inputs.rates]
+    return [[_number(row.get("temperature_k"), ".2f"), format_with_error(t, e)]
+            for row, t, e in zip(inputs.rates, *true)]
+
+
+def _temperature_columns_text(inputs: ReportInputs) -> str:
+    if inputs.calibration is None:
+        return "The temperatures are those of the series file (no calibration applied)."
+    return ("T set is the series file's set-point; the sample temperature comes through the calibration, with its "
+            "standard error (the curve's uncertainty, shared by all rows, and the scatter of the calibration points).")
+
+
+@dataclass
+class SupportingRows:
+    """The rows of the supporting-information tables (see :mod:`dnmr.supporting`)."""
+
+    rates: list
+    activation: list
+    title: str = ""
+
+
+def supporting_rows(inputs: ReportInputs) -> SupportingRows:
+    """The supporting-information tables of a series fit: its rates.csv and those of the transfer folders
+    (sample temperatures through the calibration when one is given), and its Eyring analysis."""
+    from .supporting import activation_rows, rate_rows_from_table
+
+    rows = list(inputs.rates) + [row for t in inputs.transfer for row in t.rates]
+    title = inputs.model.title if inputs.model is not None and inputs.model.title else inputs.outdir.resolve().name
+    try:
+        rates = rate_rows_from_table(rows, inputs.calibration)
+    except InputError:  # a set-point outside the calibration: the warnings say so; the table says "no calibration"
+        rates = rate_rows_from_table(rows)
+    return SupportingRows(rates, activation_rows(inputs.eyring), title)
+
+
+def global_supporting_rows(g: dict) -> SupportingRows:
+    """The supporting-information tables of a global fit (global.json): the global line's rate at each
+    sample temperature, and the global activation parameters."""
+    from .supporting import activation_rows, rate_rows_from_global
+
+    return SupportingRows(rate_rows_from_global(g), activation_rows(g["processes"]), "global fit")
+
+
+def supporting_section(rows: SupportingRows) -> str:
+    """The supporting-information tables as the report shows them, and the files that hold them."""
+    from .supporting import ACTIVATION_STEM, RATES_STEM, SUPPORTING_FOLDER, TABLES_STEM, rate_table_cells, rates_note
+
+    calibrated = any(math.isfinite(r.setpoint_k) for r in rows.rates)
+    header, cells = rate_table_cells(rows.rates, calibrated)
+    body = table(header, cells, numeric=[False] + [True] * (len(header) - 1))
+    body += f'<p class="muted">{esc(rates_note(calibrated))}</p>'
+    body += "".join(f"<p>{esc(a.sentence())}</p>" for a in rows.activation)
+    names = ", ".join((f"{RATES_STEM}.csv", f"{ACTIVATION_STEM}.csv", f"{TABLES_STEM}.md", f"{TABLES_STEM}.tex"))
+    body += (f'<p class="muted">Written beside this report as CSV, Markdown and LaTeX ({esc(names)}, and the Eyring '
+             f"figure) in the folder {esc(SUPPORTING_FOLDER)}/ (for a report not called {esc(REPORT_NAME)}: "
+             f"&lt;its name&gt;-{esc(SUPPORTING_FOLDER)}/).</p>")
+    return section("supporting", "Supporting-information tables", body)
+
+
+def supporting_folder(report: Path) -> Path:
+    """The folder of a report's supporting-information tables: ``supporting-information`` beside report.html,
+    ``<name>-supporting-information`` beside a report of another name (each report keeps its own)."""
+    from .supporting import SUPPORTING_FOLDER
+
+    name = SUPPORTING_FOLDER if report.name == REPORT_NAME else f"{report.stem}-{SUPPORTING_FOLDER}"
+    return report.parent / name
+
+
+def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
+    """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into the
+    folder `target`."""
+    from .output import save_figure
+    from .plotting import plot_eyring
+    from .supporting import write_supporting_tables
+
+    figure = target / "eyring.png"
+    if eyring and figure_file(figure).exists() and not overwrite:
+        raise InputError(f"{figure_file(figure)} already exists; pass --overwrite to replace it", where="output")
+    written = write_supporting_tables(target, rows.rates, rows.activation, title=rows.title, overwrite=overwrite)
+    if eyring:
+        written.append(save_figure(plot_eyring(list(eyring)), figure, overwrite=overwrite, close=True))
+    return written
+
+
+_DATA_URI = re.compile(r'(data:[^"\s]+)')
+_ABSOLUTE_PATH = re.compile(r'(?<![\w.~/\\-])(/[^\s"<>&;,()\']+)')
+
+
+def relative_paths(document: str, base: Path) -> str:
+    """`document` with every absolute path of this machine written relative to `base` (the report's folder).
+
+    Embedded figures (data URIs) are left alone; a path counts as one of this machine when its first part
+    is a folder here (``/home``, ``/tmp`` ...), so that units such as ``/ K`` are never touched.
+    """
+    base = base.resolve()
+
+    def swap(match: re.Match) -> str:
+        text = match.group(1)
+        top = text.split("/")[1]
+        if not top or not Path("/" + top).is_dir():
+            return text
+        return os.path.relpath(text.rstrip("."), base) + ("." if text.endswith(".") else "")
+
+    parts = _DATA_URI.split(document)
+    return "".join(part if i % 2 else _ABSOLUTE_PATH.sub(swap, part) for i, part in enumerate(parts))

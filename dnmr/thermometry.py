@@ -655,3 +655,121 @@ def read_temperature_calibration(
     else:
         raise InputError("the table needs a temperature_k or a shift_difference_ppm column", table.source)
     return fit_temperature_calibration(setpoints, temperatures, degree, source=table.source)
+
+
+# --------------------------------------------------------------------------------------------------
+# A calibration from thermometer spectra
+# --------------------------------------------------------------------------------------------------
+
+CALIBRATION_LIST_COLUMNS = ("setpoint_k", "file")
+
+
+@dataclass(frozen=True)
+class CalibrationFromSpectra(NotebookView):
+    """A set-point calibration built from thermometer spectra, one per set-point.
+
+    Attributes
+    ----------
+    setpoint_k : ndarray
+        Set-points of the spectra that were read, K.
+    readings : tuple of ThermometerReading
+        The thermometer reading of each of them.
+    calibration : TemperatureCalibration
+        The polynomial fitted through (set-point, sample temperature).
+    skipped : tuple of str
+        Spectra that could not be read or lie outside the thermometer's range, with the reason.
+    source : str
+        The list file.
+    """
+
+    setpoint_k: np.ndarray
+    readings: tuple[ThermometerReading, ...]
+    calibration: TemperatureCalibration
+    skipped: tuple[str, ...]
+    source: str
+
+    def table_csv(self) -> str:
+        """The calibration table (CSV) that :func:`read_temperature_calibration` reads: setpoint_k,
+        temperature_k, shift_difference_ppm, thermometer and file; skipped spectra as comment lines."""
+        lines = [f"# temperature calibration from {len(self.readings)} {self.readings[0].thermometer.name} thermometer "
+                 f"spectra ({self.readings[0].thermometer.reference}); list {Path(self.source).name}"]
+        lines += [f"# not used: {reason}" for reason in self.skipped]
+        lines.append("setpoint_k,temperature_k,shift_difference_ppm,thermometer,file")
+        lines += [f"{s!r},{r.temperature_k!r},{r.shift_difference_ppm!r},{r.thermometer.name},{_csv_cell(r.source)}"
+                  for s, r in zip(self.setpoint_k.tolist(), self.readings)]
+        return "\n".join(lines) + "\n"
+
+    def to_dict(self) -> dict:
+        """Plain dict (JSON-ready): the readings with their set-points, the fitted calibration, the cautions."""
+        out = readings_to_dict(list(self.readings))
+        for entry, setpoint in zip(out["readings"], self.setpoint_k.tolist()):
+            entry["setpoint_k"] = setpoint
+        out.update(calibration_fit=self.calibration.to_dict(), skipped=list(self.skipped), source=self.source)
+        return out
+
+    def report(self) -> str:
+        """The readings, the fitted calibration and what was skipped."""
+        lines = [r.report() for r in self.readings] + ["", self.calibration.report()]
+        lines += [f"not used: {reason}" for reason in self.skipped]
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self.report()
+
+
+def _csv_cell(text: str | None) -> str:
+    text = text or ""
+    return '"' + text.replace('"', '""') + '"' if any(c in text for c in ',"\n') else text
+
+
+def calibration_from_spectra(
+    list_path: str | Path,
+    thermometer: str | ShiftThermometer = "methanol",
+    degree: int = 1,
+    *,
+    frequency_mhz: float | None = None,
+) -> CalibrationFromSpectra:
+    """Read the thermometer spectra a list names, one per set-point, and fit the set-point calibration.
+
+    Parameters
+    ----------
+    list_path : str or Path
+        CSV with the columns ``setpoint_k`` (K) and ``file`` (a thermometer spectrum: text, JCAMP-DX or a
+        processed folder, relative to the list).
+    thermometer : str or ShiftThermometer
+        'methanol' or 'glycol' (see :data:`THERMOMETER_CAUTIONS` before using either).
+    degree : int
+        Degree of the calibration polynomial (1-3).
+    frequency_mhz : float, optional
+        Spectrometer frequency, MHz (for spectra with a Hz axis).
+
+    Returns
+    -------
+    CalibrationFromSpectra
+        A spectrum that cannot be read, or reads outside the thermometer's range, is skipped with the
+        reason; the others are kept.
+
+    Raises
+    ------
+    InputError
+        A bad list (missing column, set-point in degrees Celsius), or too few spectra left for the degree.
+    """
+    table = read_table(list_path, CALIBRATION_LIST_COLUMNS)
+    thermo = get_thermometer(thermometer)
+    folder = Path(list_path).parent
+    setpoints, readings, skipped = [], [], []
+    for i, (value, name) in enumerate(zip(table.numbers("setpoint_k"), table.text("file"))):
+        check_kelvin(value, "setpoint_k", table.source, table.where(i))
+        if not name:
+            raise InputError("empty file cell; name the thermometer spectrum", table.source, table.where(i))
+        try:
+            readings.append(temperature_from_file(folder / name, thermo, frequency_mhz=frequency_mhz))
+            setpoints.append(value)
+        except InputError as err:
+            skipped.append(f"{table.where(i)} ({name}): {err}")
+    if not readings:
+        raise InputError(f"no thermometer spectrum could be read; first problem: {skipped[0]}", table.source)
+    setpoint_k = np.array(setpoints)
+    calibration = fit_temperature_calibration(setpoint_k, [r.temperature_k for r in readings], degree,
+                                              source=table.source)
+    return CalibrationFromSpectra(setpoint_k, tuple(readings), calibration, tuple(skipped), table.source)

@@ -192,3 +192,57 @@ def test_every_figure_uses_only_the_palette(inputs, tmp_path, monkeypatch):
     for name, fig in figures.items():
         assert colours_of(fig) <= palette, name
         plt.close(fig)
+
+
+def _chosen_format_in_a_worker() -> str:
+    from dnmr.output import chosen_figure_format
+
+    return chosen_figure_format()
+
+
+def test_figure_format_is_decided_in_one_place(tmp_path):
+    from concurrent.futures import ProcessPoolExecutor
+
+    from dnmr.output import figures_as
+
+    fig = plt.figure()
+    with figures_as("pdf"):
+        written = save_figure(fig, tmp_path / "fit.png")  # a name dnmr chooses: follows the format
+        kept = save_figure(fig, tmp_path / "mine.svg")  # a name the user chose: kept as it is
+        with ProcessPoolExecutor(1) as pool:  # worker processes of a series fit follow it too
+            assert pool.submit(_chosen_format_in_a_worker).result() == "pdf"
+    plt.close(fig)
+    assert written.name == "fit.pdf" and written.read_bytes().startswith(b"%PDF")
+    assert kept.name == "mine.svg" and b"<svg" in kept.read_bytes()
+    assert _chosen_format_in_a_worker() == "png"  # restored after the block
+
+
+def _fake_fit(height: float, rng):
+    """A stand-in for a SpectrumFit: one Lorentzian (Bloch slow-motion lineshape) of the given height."""
+    from types import SimpleNamespace
+
+    ppm = np.linspace(0.0, 4.0, 400)
+    line = height / (1 + ((ppm - 2.0) / 0.05) ** 2)
+    data = line + 0.01 * height * rng.normal(size=ppm.size)
+    return SimpleNamespace(ppm=ppm, data=data, fitted=line, baseline=np.zeros_like(ppm), residuals=data - line,
+                           noise=SimpleNamespace(sigma=0.01 * height), rates=[], source="x.csv", temperature_k=250.0)
+
+
+def _texts(fig) -> list[str]:
+    return [t.get_text() for t in fig.findobj(Text)]
+
+
+def test_stacked_fits_show_their_scale_factors_and_residual_bands_are_labelled():
+    from dnmr.plotting import plot_fit_stack, plot_residual_stack, plot_spectrum_fit
+
+    rng = np.random.default_rng(3)
+    fits = [_fake_fit(1.0, rng), _fake_fit(0.25, rng)]
+    stack = plot_fit_stack(fits, ["250 K", "300 K"])
+    texts = _texts(stack)
+    assert any(t.strip() == "300 K  (×4.0)" for t in texts) and any(t.strip() == "250 K" for t in texts)
+    residuals = plot_residual_stack(fits, ["250 K", "300 K"])
+    assert any("±3σ of the noise" in t for t in _texts(residuals))
+    single = plot_spectrum_fit(fits[0])
+    assert any("±2σ of the noise" in t for t in _texts(single))
+    for fig in (stack, residuals, single):
+        plt.close(fig)

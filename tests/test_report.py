@@ -98,7 +98,7 @@ def sampled(fitted, tmp_path_factory) -> Path:
     """The same fits (reused by resume) with every spectrum's posterior sampled, and its report.  A very
     short chain: this checks what the report shows, not the numbers (tests/test_posterior.py does)."""
     out = tmp_path_factory.mktemp("bayes") / "out"
-    shutil.copytree(fitted, out, ignore=shutil.ignore_patterns("report.html"))
+    shutil.copytree(fitted, out, ignore=shutil.ignore_patterns("report.html", "supporting-information"))
     result = fit_series(fitted.parent / "series.toml", out, resume=True, workers=1, progress=False,
                         posterior={"steps": 40, "walkers": 16, "seed": 5})
     assert result.exit_status == 0 and all(o.reused for o in result.outcomes)
@@ -254,6 +254,76 @@ def test_report_renders_in_headless_chromium(fitted, report, tmp_path):
     assert np.ptp(pixels) > 0.5
 
 
+# ---------------------------------------------------------------------------------------------
+# sample temperatures, supporting-information tables, figure formats, no absolute paths
+# ---------------------------------------------------------------------------------------------
+
+CALIBRATION = "setpoint_k,temperature_k\n180,182.5\n250,251.5\n300,301.0\n350,350.5\n"
+
+
+def _text_outside_figures(text: str) -> str:
+    import re
+
+    return re.sub(r'data:[^"]+', "", text)
+
+
+def test_calibrated_report_shows_sample_temperature_beside_set_point(fitted, tmp_path):
+    from dnmr.thermometry import THERMOMETER_CAUTIONS, read_temperature_calibration
+
+    (tmp_path / "cal.csv").write_text(CALIBRATION)
+    text = write_report(fitted, calibration=tmp_path / "cal.csv", output=tmp_path / "r.html").read_text(encoding="utf-8")
+    page = parse(text)
+    true = read_temperature_calibration(tmp_path / "cal.csv").true_temperature(TEMPERATURES)
+    header = next(r for r in page.rows if r[:2] == ["T set / K", "sample T / K"])
+    assert header[2] == "process"
+    for setpoint, t, err in zip(TEMPERATURES, true.temperature_k, true.stderr):
+        assert any(r[:2] == [f"{setpoint:.2f}", format_with_error(t, err)] for r in page.rows)
+    assert html.escape(THERMOMETER_CAUTIONS, quote=True) in text
+    # the supporting-information tables beside the report carry the same sample temperatures
+    si = tmp_path / "r-supporting-information"  # beside r.html, named after it
+    rows = list(__import__("csv").DictReader((si / "si_rates.csv").open(encoding="utf-8")))
+    assert [float(r["setpoint_k"]) for r in rows] == TEMPERATURES
+    assert [float(r["temperature_k"]) for r in rows] == pytest.approx(true.temperature_k, rel=1e-12)
+    bound = next(r for r in rows if r["status"] == "upper-bound")
+    assert bound["gibbs_stderr"] == "" and float(bound["gibbs_lower_kj_mol"]) > 0  # a bound, no error bar
+    md = (si / "si_tables.md").read_text(encoding="utf-8")
+    expected = eyring_fit_file(fitted / "rates.csv", calibration=read_temperature_calibration(tmp_path / "cal.csv"))[0]
+    assert format_with_error(expected.enthalpy_kj_mol, expected.enthalpy_stderr) in md
+    assert (si / "si_tables.tex").is_file() and (si / "eyring.png").read_bytes().startswith(PNG_SIGNATURE)
+
+
+def test_report_holds_no_absolute_path(fitted, report):
+    text = _text_outside_figures(report.read_text(encoding="utf-8"))
+    root = str(fitted.resolve().parents[1])
+    assert root not in text and "/tmp/" not in text
+    results = json.loads((fitted / "results.json").read_text())
+    first = Path(results["spectra"][0]["file"])
+    import os
+
+    assert os.path.relpath(first, fitted.resolve()) in text  # named relative to the results folder
+
+
+def test_report_embeds_svg_figures_and_writes_the_chosen_format(fitted, tmp_path):
+    import matplotlib.pyplot as plt
+
+    from dnmr.output import figures_as, save_figure
+
+    copy = tmp_path / "out"
+    shutil.copytree(fitted, copy, ignore=shutil.ignore_patterns("report.html", "supporting-information"))
+    with figures_as("svg"):  # as `dnmr fit --figure-format svg` draws them
+        for png in (copy / "figures").glob("*.png"):
+            png.unlink()
+            fig = plt.figure()
+            fig.gca().plot([0, 1], [0, 1])
+            save_figure(fig, png, close=True)
+    assert not list((copy / "figures").glob("*.png")) and len(list((copy / "figures").glob("*.svg"))) == 4
+    run = CliRunner().invoke(cli, ["report", str(copy), "--figure-format", "pdf"])
+    assert run.exit_code == 0, run.output
+    page = parse((copy / "report.html").read_text(encoding="utf-8"))
+    assert sum(src.startswith("data:image/svg+xml;base64,") for src in page.images) == len(TEMPERATURES)
+    assert (copy / "supporting-information" / "eyring.pdf").read_bytes().startswith(b"%PDF")
+
+
 # --- magnetisation-transfer fits beside the lineshape fits -----------------------------------------------
 
 def _transfer_folders(folder: Path) -> list[Path]:
@@ -295,6 +365,8 @@ def test_transfer_fits_are_shown_and_join_the_eyring_analysis(fitted, tmp_path):
     assert shown == format_with_error(expected["enthalpy_kj_mol"], expected["enthalpy_stderr"])
     assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_KJ_MOL) < 4 * expected["enthalpy_stderr"]
     assert "inversion (2 rates)" in html.unescape(text)
+    si = list(__import__("csv").DictReader((tmp_path / "joint-supporting-information" / "si_rates.csv").open()))
+    assert sorted(float(r["temperature_k"]) for r in si) == sorted(TEMPERATURES + [236.0, 246.0])  # transfer rates too
     run = CliRunner().invoke(cli, ["report", str(fitted), "--transfer", str(transfer[0]), "-o", str(tmp_path / "c.html")])
     assert run.exit_code == 0 and (tmp_path / "c.html").is_file()
     bad = CliRunner().invoke(cli, ["report", str(fitted), "--transfer", str(tmp_path), "-o", str(tmp_path / "d.html")])

@@ -318,3 +318,58 @@ def test_calibration_error_is_shared_not_scatter(tmp_path):
         warned += any("much less than their errors" in w for w in result.warnings)
     assert np.mean(reduced) == pytest.approx(1.0, abs=4 * math.sqrt(2 / 5 / 150))
     assert warned <= 6  # the warning fires at p > 0.99: about 1 % of honest series
+
+
+# ---------------------------------------------------------------------------------------------
+# A calibration built from thermometer spectra (dnmr thermometer --calibrate)
+# ---------------------------------------------------------------------------------------------
+
+
+def _methanol_dd(temperature_k: float) -> float:
+    """dd (ppm) at which the 1982 methanol formula (from memory) gives `temperature_k`: the positive root of
+    21.85 dd^2 + 36.54 dd - (409.0 - T) = 0 by the quadratic formula, solved here by hand."""
+    return (-36.54 + math.sqrt(36.54**2 + 4 * 21.85 * (409.0 - temperature_k))) / (2 * 21.85)
+
+
+def _write_methanol_spectrum(path, temperature_k: float) -> None:
+    dd = _methanol_dd(temperature_k)
+    y = 3 * lorentzian(AXIS, 3.35, 1.0 / MHZ) + lorentzian(AXIS, 3.35 + dd, 3.0 / MHZ) + 5.0
+    np.savetxt(path, np.column_stack([AXIS[::-1], y[::-1]]), delimiter=",", header="ppm,intensity", comments="")
+
+
+def test_calibration_built_from_thermometer_spectra(tmp_path):
+    # an invented probe: the sample runs at T = 1.02 s - 3.0 K for a set-point s
+    setpoints = [220.0, 240.0, 260.0, 280.0, 300.0]
+    truth = [1.02 * s - 3.0 for s in setpoints]
+    (tmp_path / "spectra").mkdir()
+    for s, t in zip(setpoints, truth):
+        _write_methanol_spectrum(tmp_path / "spectra" / f"meoh_{s:.0f}.csv", t)
+    listing = tmp_path / "thermometer.csv"
+    listing.write_text("setpoint_k,file\n" + "".join(f"{s:g},spectra/meoh_{s:.0f}.csv\n" for s in setpoints))
+    out = tmp_path / "calibration.csv"
+    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(listing), "-o", str(out)])
+    assert run.exit_code == 0, run.output
+    assert THERMOMETER_CAUTIONS in run.output and "Temperature calibration (degree 1, 5 points)" in run.output
+    cal = read_temperature_calibration(out)  # the table the other commands read with --calibration
+    assert cal.temperature_k == pytest.approx(truth, abs=0.05)
+    assert cal.true_temperature([250.0]).temperature_k[0] == pytest.approx(1.02 * 250.0 - 3.0, abs=0.05)
+    again = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(listing), "-o", str(out)])
+    assert again.exit_code == 2 and "--overwrite" in again.output  # never silently over an existing table
+
+
+def test_calibration_from_spectra_keeps_the_others_when_one_fails(tmp_path):
+    setpoints = [230.0, 250.0, 270.0, 290.0]
+    for s in setpoints:
+        _write_methanol_spectrum(tmp_path / f"m{s:.0f}.csv", s + 1.0)
+    listing = tmp_path / "list.csv"
+    listing.write_text("setpoint_k,file\n" + "".join(f"{s:g},m{s:.0f}.csv\n" for s in setpoints) + "310,missing.csv\n")
+    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(listing), "--json"])
+    assert run.exit_code == 2
+    out = json.loads(run.stdout)
+    assert [r["setpoint_k"] for r in out["readings"]] == setpoints
+    assert len(out["skipped"]) == 1 and "line 6 (missing.csv)" in out["skipped"][0]
+    assert out["calibration_fit"]["n_points"] == 4 and out["cautions"] == THERMOMETER_CAUTIONS
+    celsius = tmp_path / "celsius.csv"
+    celsius.write_text("setpoint_k,file\n-20,m230.csv\n")
+    bad = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(celsius)])
+    assert bad.exit_code == 2 and "looks like degrees Celsius" in bad.output
