@@ -72,6 +72,10 @@ def print_json(obj) -> None:
     click.echo(json.dumps(json_ready(obj), indent=2))
 
 
+MAX_STACKED_TRACES = 100
+"""Most traces `dnmr stack` draws in one figure."""
+
+
 def _parse_list(text: str, option: str) -> list[float]:
     try:
         values = [float(v) for v in text.replace(";", ",").split(",") if v.strip()]
@@ -170,11 +174,16 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 
     if (rates is None) == (temperatures is None):
         raise InputError("give either --rates or --temperatures", where="stack")
+    option, text = ("--rates", rates) if rates is not None else ("--temperatures", temperatures)
+    values = _parse_list(text, option)
+    if len(values) > MAX_STACKED_TRACES:
+        raise InputError(f"{len(values)} values: a stacked figure shows at most {MAX_STACKED_TRACES} traces",
+                         where=option)
     model = load_model(model_file)
-    if rates:
-        spectra, labels = simulate_over(model, rates_per_s=_parse_list(rates, "--rates"))
+    if rates is not None:
+        spectra, labels = simulate_over(model, rates_per_s=values)
     else:
-        spectra, labels = simulate_over(model, temperatures_k=_parse_list(temperatures, "--temperatures"))
+        spectra, labels = simulate_over(model, temperatures_k=values)
     ax = plot_stack(spectra, labels, title=model.title)
     save_figure(ax.figure, output, overwrite=overwrite, close=True)
     click.echo(f"wrote {output}")
