@@ -179,5 +179,7 @@ def test_figure_marks_each_method_with_its_marker_and_palette_hue(tmp_path):
     ax = fig.axes[0]
     points = {(line.get_marker(), to_hex(line.get_color())) for line in ax.lines if line.get_linestyle() == "None"}
     assert ("o", PALETTE["indigo"]) in points and ("^", PALETTE["vermilion"]) in points
-    assert sorted(t.get_text() for t in ax.get_legend().get_texts()) == ["inversion", "lineshape"]
+    texts = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert sorted(t for t in texts if "confidence band" not in t) == ["inversion", "lineshape"]
+    assert any("95 % confidence band" in t for t in texts)  # the band is labelled too
     plt.close(fig)
