@@ -107,7 +107,7 @@ def two_step(truth: SeriesTruth, work: Path, tally: Tally, workers: int) -> None
 
 def global_fit(truth: SeriesTruth, work: Path, tally: Tally, workers: int) -> None:
     """``dnmr fit --global`` with no options."""
-    from dnmr.globalfit import fit_series_global
+    from dnmr.fitting.globalfit import fit_series_global
 
     result = fit_series_global(truth.series_file, work / "global", workers=workers, progress=False)
     a = result.activation[0]

@@ -12,7 +12,7 @@
     (goal <= 1/20), and the peak memory of each;
 (e) time and peak memory of an eight-spin simulation (goals: <= 10 s, within 24 GB).
 
-(b), (c) and (e) are measured twice: with the compiled loops of the Krylov route (``dnmr.kernels``, the
+(b), (c) and (e) are measured twice: with the compiled loops of the Krylov route (``dnmr.engine.kernels``, the
 optional extra ``pip install ".[fast]"``) where numba is installed, and with the numpy loops that every
 installation has.  All with one BLAS thread (THREADS), so that the ratios compare work.
 
@@ -30,10 +30,10 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 import dnmr
-from dnmr import resolvent
-from dnmr.engine import SpinParameters, block_liouvillian, block_pattern, block_start, lineshape_terms
-from dnmr.liouville import coherence_blocks
-from dnmr.resolvent import ContinuedFraction
+from dnmr.engine import resolvent
+from dnmr.engine.blocks import SpinParameters, block_liouvillian, block_pattern, block_start, lineshape_terms
+from dnmr.engine.liouville import coherence_blocks
+from dnmr.engine.resolvent import ContinuedFraction
 
 POINTS = 8192
 #: One BLAS thread for everything measured: ratios then compare work, not how many idle cores LAPACK found.
@@ -172,7 +172,7 @@ def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float]
         "import sys, time; sys.path.insert(0, %r)\n"
         "from threadpoolctl import threadpool_limits\n"
         "import dnmr, engine_speed\n"
-        "dnmr.resolvent.USE_COMPILED = %r\n"
+        "dnmr.engine.resolvent.USE_COMPILED = %r\n"
         "model = engine_speed.six_spin_model(%d)\n"
         "before = engine_speed.resident_mib('VmRSS')\n"
         "times = []\n"

@@ -16,28 +16,28 @@ import importlib.util
 #: ``import dnmr`` and every ``dnmr`` command load only the modules they need (fitting pulls in lmfit,
 #: statistics scipy.stats).
 _HOMES = {
-    "activation": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
+    "activation.eyring": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
     "errors": ("InputError",),
-    "fitting": ("FitOptions", "RateEstimate", "SpectrumFit", "fit_parameters", "fit_spectrum"),
-    "longitudinal": ("LongitudinalSystem",),
+    "fitting.spectrumfit": ("FitOptions", "RateEstimate", "SpectrumFit", "fit_parameters", "fit_spectrum"),
+    "engine.longitudinal": ("LongitudinalSystem",),
     "model": ("Exchange", "Model", "Spectrometer", "State"),
-    "modelfile": ("load_model",),
-    "readers": ("MeasuredSpectrum", "read_spectrum"),
-    "planning": ("coalescence", "plan_experiment", "predict_coalescence"),
-    "posterior": ("Posterior", "sample_eyring_posterior", "sample_spectrum_posterior"),
-    "series": ("Series", "SeriesFit", "fit_series", "load_series"),
-    "solvents": ("Solvent", "load_solvents", "solvent"),
-    "spectrum": ("Spectrum", "simulate", "simulate_over"),
-    "thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
+    "io.modelfile": ("load_model",),
+    "io.readers": ("MeasuredSpectrum", "read_spectrum"),
+    "planning.plan": ("coalescence", "plan_experiment", "predict_coalescence"),
+    "fitting.posterior": ("Posterior", "sample_eyring_posterior", "sample_spectrum_posterior"),
+    "fitting.series": ("Series", "SeriesFit", "fit_series", "load_series"),
+    "planning.solvents": ("Solvent", "load_solvents", "solvent"),
+    "engine.spectrum": ("Spectrum", "simulate", "simulate_over"),
+    "activation.thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
                     "temperature_from_spectrum", "thermometer_reading"),
-    "transfer": ("Experiment", "TransferFit", "fit_transfer", "load_experiment", "run_transfer"),
-    "timescale": ("ActivationParameters", "averaged_model", "fast_exchange_limit", "timescale_view"),
+    "fitting.transfer": ("Experiment", "TransferFit", "fit_transfer", "load_experiment", "run_transfer"),
+    "planning.timescale": ("ActivationParameters", "averaged_model", "fast_exchange_limit", "timescale_view"),
 }
 _HOME_OF = {name: module for module, names in _HOMES.items() for name in names}
 
 
 def __getattr__(name: str):
-    """A public name (or a submodule, ``dnmr.engine``) imported on first use."""
+    """A public name (or a submodule, ``dnmr.engine.blocks``) imported on first use."""
     if name in _HOME_OF:
         value = getattr(importlib.import_module(f".{_HOME_OF[name]}", __name__), name)
     elif not name.startswith("__") and importlib.util.find_spec(f".{name}", __name__) is not None:

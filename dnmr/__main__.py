@@ -1,4 +1,4 @@
 """``python -m dnmr`` runs the command line."""
-from .cli import main
+from dnmr.cli import main
 
 main()

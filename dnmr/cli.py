@@ -15,11 +15,11 @@ from typing import TYPE_CHECKING
 
 import click
 
-from .errors import InputError
-from .output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
+from dnmr.errors import InputError
+from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
 
 if TYPE_CHECKING:
-    from .series import Series
+    from dnmr.fitting.series import Series
 
 
 class _Group(click.Group):
@@ -89,7 +89,7 @@ def _parse_list(text: str, option: str) -> list[float]:
 @contextmanager
 def _block_progress(enabled: bool):
     """Progress over the engine's blocks on stderr, for large systems: a bar on a terminal, else plain lines."""
-    from .progress import PLAIN_INTERVAL_S, ProgressReport
+    from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 
     with ProgressReport(enabled) as report:
         task, shown = None, 0
@@ -131,8 +131,8 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
     """Simulate the exchange-broadened spectrum of MODEL_FILE."""
     import time
 
-    from . import load_model, simulate as run
-    from .output import check_output_file, save_figure
+    from dnmr import load_model, simulate as run
+    from dnmr.io.output import check_output_file, save_figure
 
     check_output_file(output, overwrite, "--output")  # before any work: nothing is written half-way
     check_output_file(plot_file, overwrite, "--plot", figure=True)
@@ -167,10 +167,10 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
 def stack(model_file: Path, rates: str | None, temperatures: str | None, output: Path, overwrite: bool) -> None:
     """Draw MODEL_FILE's spectrum over a list of rates or temperatures, stacked (a coalescence figure)."""
-    from . import load_model
-    from .output import save_figure
-    from .plotting import plot_stack
-    from .spectrum import simulate_over
+    from dnmr import load_model
+    from dnmr.io.output import save_figure
+    from dnmr.reporting.plotting import plot_stack
+    from dnmr.engine.spectrum import simulate_over
 
     if (rates is None) == (temperatures is None):
         raise InputError("give either --rates or --temperatures", where="stack")
@@ -227,13 +227,13 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from .series import fit_series, load_series
+    from dnmr.fitting.series import fit_series, load_series
 
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
     if posterior:
-        from .posterior import require_emcee
+        from dnmr.fitting.posterior import require_emcee
 
         require_emcee(where="--posterior")
     series = load_series(series_file)
@@ -256,9 +256,9 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
 
 def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
-    """`dnmr fit --global`: the global fit (dnmr.globalfit), its text report and report.html."""
-    from .globalfit import fit_series_global
-    from .thermometry import read_temperature_calibration
+    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
+    from dnmr.fitting.globalfit import fit_series_global
+    from dnmr.activation.thermometry import read_temperature_calibration
 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
@@ -273,7 +273,7 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
     """report.html of the fit just written into `outdir` (rewritten with each run), unless `no_report`."""
     if no_report:
         return
-    from .report import write_report
+    from dnmr.reporting.report import write_report
 
     try:
         click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
@@ -290,7 +290,7 @@ def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_repo
 def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format: str) -> None:
     """Rates of slow exchange from a magnetisation-transfer experiment (selective inversion, saturation
     transfer or 2D exchange) described by EXPERIMENT_FILE, into OUTDIR."""
-    from .transfer import run_transfer
+    from dnmr.fitting.transfer import run_transfer
 
     with figures_as(figure_format):
         click.echo(run_transfer(experiment_file, outdir, overwrite=overwrite).report())
@@ -339,13 +339,13 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     With --json the first (or only) process's results are at the top level and, for several processes,
     all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
-    from .activation import eyring_fit_file, results_to_dict
-    from .output import save_figure
-    from .plotting import plot_eyring
-    from .thermometry import read_temperature_calibration
+    from dnmr.activation.eyring import eyring_fit_file, results_to_dict
+    from dnmr.io.output import save_figure
+    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.activation.thermometry import read_temperature_calibration
 
     if posterior:
-        from .posterior import require_emcee
+        from dnmr.fitting.posterior import require_emcee
 
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
@@ -384,7 +384,7 @@ def _write_eyring_tables(folder: Path, rates_files: tuple[Path, ...], results, c
     """`dnmr eyring --tables`: the supporting-information tables of the rate tables and their analysis."""
     import csv
 
-    from .supporting import activation_rows, rate_rows_from_table, write_supporting_tables
+    from dnmr.reporting.supporting import activation_rows, rate_rows_from_table, write_supporting_tables
 
     if transmission != 1.0:
         raise InputError("the tables give ΔG‡ at each temperature with transmission coefficient 1; drop "
@@ -425,7 +425,7 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from .thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
@@ -447,8 +447,8 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
                output: Path | None, overwrite: bool, as_json: bool) -> None:
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
-    from .output import atomic_write_text
-    from .thermometry import THERMOMETER_CAUTIONS, calibration_from_spectra
+    from dnmr.io.output import atomic_write_text
+    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, calibration_from_spectra
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:
@@ -473,7 +473,7 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
 @FIGURE_FORMAT_OPTION
 def demo(outdir: Path, overwrite: bool, quiet: bool, figure_format: str) -> None:
     """Run the whole job on the bundled demo data (an invented compound) into OUTDIR (default dnmr-demo)."""
-    from .demo import run_demo
+    from dnmr.demo import run_demo
 
     with figures_as(figure_format):
         run_demo(outdir, overwrite=overwrite, echo=click.echo, progress=False if quiet else None)
@@ -507,7 +507,7 @@ _TIMESCALE_OPTIONS = (
 
 def _activation_from_options(barrier: float | None, enthalpy: float | None, entropy: float | None):
     """ActivationParameters from the command-line options (None when none were given)."""
-    from .timescale import ActivationParameters
+    from dnmr.planning.timescale import ActivationParameters
 
     if barrier is not None and (enthalpy is not None or entropy is not None):
         raise InputError("give --barrier-kj-mol or --enthalpy-kj-mol with --entropy-j-mol-k, not both",
@@ -526,7 +526,7 @@ def _activation_from_options(barrier: float | None, enthalpy: float | None, entr
 
 def _emit(result, as_json: bool, plot_file: Path | None, overwrite: bool) -> None:
     """Print a result's report or JSON, and draw its figure."""
-    from .output import save_figure
+    from dnmr.io.output import save_figure
 
     if plot_file:
         save_figure(result.plot(), plot_file, overwrite=overwrite, close=True)
@@ -566,9 +566,9 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
          series_file, transfer_runs) -> None:
     """Before booking the magnet: coalescence per field, temperatures to run for lineshapes and, below them,
     for magnetisation transfer (with delays and mixing times), solvent check and cautions."""
-    from . import load_model
-    from .planning import plan_experiment
-    from .solvents import solvent_from_options
+    from dnmr import load_model
+    from dnmr.planning.plan import plan_experiment
+    from dnmr.planning.solvents import solvent_from_options
 
     model = load_model(model_file)
     given = {"probe_range_k": _parse_list(probe_range_k, "--probe-range-k") if probe_range_k else None,
@@ -584,7 +584,7 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
     if series_file:
         import os
 
-        from .output import atomic_write_text
+        from dnmr.io.output import atomic_write_text
 
         relative = os.path.relpath(model_file.resolve(), series_file.resolve().parent)
         atomic_write_text(series_file, result.series_text(Path(relative).as_posix()), overwrite=overwrite)
@@ -601,8 +601,8 @@ def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k
               detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
     """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
     lineshapes, and what becomes equivalent when fast."""
-    from . import load_model
-    from .timescale import timescale_view
+    from dnmr import load_model
+    from dnmr.planning.timescale import timescale_view
 
     model = load_model(model_file)
     result = timescale_view(
@@ -629,7 +629,7 @@ def report(outdir: Path, calibration_file: Path | None, output: Path | None, ove
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched), and
     beside it supporting-information/: the rates and activation parameters as CSV, Markdown and LaTeX
     tables, and the Eyring figure in --figure-format."""
-    from .report import supporting_folder, write_report
+    from dnmr.reporting.report import supporting_folder, write_report
 
     written = write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite,
                            transfer=transfer_folders, figure_format=figure_format)

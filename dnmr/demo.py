@@ -11,15 +11,15 @@ import json
 from importlib import resources
 from pathlib import Path
 
-from .activation import eyring_fit_file, results_to_dict
-from .modelfile import load_model, read_toml
-from .output import atomic_write_text, json_ready, new_output_folder, save_figure
-from .planning import plan_experiment
-from .report import write_report
-from .series import fit_series
-from .solvents import solvent
-from .thermometry import read_temperature_calibration
-from .timescale import ActivationParameters, timescale_view
+from dnmr.activation.eyring import eyring_fit_file, results_to_dict
+from dnmr.io.modelfile import load_model, read_toml
+from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
+from dnmr.planning.plan import plan_experiment
+from dnmr.reporting.report import write_report
+from dnmr.fitting.series import fit_series
+from dnmr.planning.solvents import solvent
+from dnmr.activation.thermometry import read_temperature_calibration
+from dnmr.planning.timescale import ActivationParameters, timescale_view
 
 DEMO_SOLVENT = "toluene-d8"
 DEMO_FIELDS_MHZ = (400.0, 600.0)

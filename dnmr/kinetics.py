@@ -12,10 +12,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import constants
 
-from .errors import InputError
+from dnmr.errors import InputError
 
 if TYPE_CHECKING:
-    from .model import Model
+    from dnmr.model import Model
 
 BOLTZMANN = constants.k  # J/K
 PLANCK = constants.h  # J s

@@ -1,7 +1,7 @@
 """The spin model: spectrometer, states (conformers, isomers or sites) and exchange processes.
 
 A :class:`Model` is plain data that a chemist can build in a notebook or load from a TOML file
-(:func:`dnmr.modelfile.load_model`).  Every state carries its own spin Hamiltonian — chemical shifts in
+(:func:`dnmr.io.modelfile.load_model`).  Every state carries its own spin Hamiltonian — chemical shifts in
 ppm and scalar couplings in Hz over the same set of named spins — plus an intrinsic linewidth and a
 population (or a relative free energy).  Exchange processes carry a spin mapping and a forward rate
 (or activation parameters, evaluated by the Eyring equation at the model's temperature).
@@ -19,8 +19,8 @@ from itertools import combinations
 
 import numpy as np
 
-from .errors import InputError
-from .kinetics import (
+from dnmr.errors import InputError
+from dnmr.kinetics import (
     MAX_TEMPERATURE_K,
     STANDARD_TEMPERATURE_K,
     Jump,
@@ -32,7 +32,7 @@ from .kinetics import (
     rate_ceiling_per_s,
     rate_matrix,
 )
-from .nuclei import Nucleus, check_frequency_mhz, nucleus
+from dnmr.nuclei import Nucleus, check_frequency_mhz, nucleus
 
 
 #: Largest magnitude accepted for each kind of number of a model (a larger one is a slip or damage,
@@ -113,7 +113,7 @@ class Spectrometer:
     @classmethod
     def from_proton_mhz(cls, proton_mhz: float, nucleus: str = "1H") -> "Spectrometer":
         """Spectrometer for `nucleus` on a magnet quoted by its 1H frequency `proton_mhz` (MHz)."""
-        from .nuclei import nucleus as lookup
+        from dnmr.nuclei import nucleus as lookup
 
         return cls(frequency_mhz=lookup(nucleus).larmor_mhz(proton_mhz), nucleus=nucleus)
 
@@ -141,7 +141,7 @@ class State:
     r1_per_s : float or mapping of str to float, optional
         Longitudinal relaxation rate R1 = 1/T1 (s^-1) of the z-magnetisation of this state's spins, one
         number for all of them or one per spin (every spin named); used by magnetisation transfer
-        (:mod:`dnmr.longitudinal`), not by lineshapes.
+        (:mod:`dnmr.engine.longitudinal`), not by lineshapes.
     """
 
     name: str

@@ -10,7 +10,7 @@ import math
 import numbers
 from dataclasses import dataclass
 
-from .errors import InputError
+from dnmr.errors import InputError
 
 MAX_FREQUENCY_MHZ = 3000.0
 """Highest spectrometer frequency accepted (MHz): far above any NMR magnet built (1H near 1.2 GHz at

@@ -1,5 +1,5 @@
 """Published closed forms and an independent integrator for longitudinal magnetisation under exchange,
-used as outside references in the tests of dnmr.longitudinal and dnmr.transfer.
+used as outside references in the tests of dnmr.engine.longitudinal and dnmr.fitting.transfer.
 
 Nothing here uses dnmr: site rates are written out by hand, and the equations are the Bloch–McConnell
 equations for z-magnetisation, dM/dt = -R1 (M - M_eq) + exchange in - exchange out.

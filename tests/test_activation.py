@@ -1,4 +1,4 @@
-"""Tests of dnmr.activation: Eyring/Arrhenius analysis, error propagation, bounds, rates tables, CLI.
+"""Tests of dnmr.activation.eyring: Eyring/Arrhenius analysis, error propagation, bounds, rates tables, CLI.
 
 Reference values come from the outside world: scipy.constants (CODATA), statsmodels (weighted least
 squares), the Eyring equation, Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956), and Grieger, Hunter &
@@ -18,7 +18,7 @@ from click.testing import CliRunner
 from scipy import constants, stats
 from statsmodels.stats.outliers_influence import OLSInfluence
 
-from dnmr.activation import (
+from dnmr.activation.eyring import (
     BASIS_GIVEN,
     BASIS_SCALED,
     BASIS_SCATTER,

@@ -54,7 +54,7 @@ def warm_imports():
     """Import what the commands import lazily once here, so that each forked child does not again."""
     import matplotlib.pyplot  # noqa: F401
 
-    import dnmr.activation, dnmr.plotting, dnmr.report, dnmr.series, dnmr.thermometry  # noqa: F401, E401
+    import dnmr.activation.eyring, dnmr.reporting.plotting, dnmr.reporting.report, dnmr.fitting.series, dnmr.activation.thermometry  # noqa: F401, E401
 
 
 def run_limited(args: list[str]) -> tuple[str, int, str]:
@@ -119,8 +119,8 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
 
 def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
     # the corpus must fail for the slip it is named after, not because the shared inputs are broken
-    from dnmr.readers import read_spectrum
-    from dnmr.series import load_series
+    from dnmr.io.readers import read_spectrum
+    from dnmr.fitting.series import load_series
 
     shared = CORPUS / "series" / "_shared"
     series = tmp_path / "series.toml"
@@ -134,7 +134,7 @@ def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
 
 def test_replicate_temperatures_stay_allowed(tmp_path):
     # two files at one temperature may be replicates: flagged, not refused (only one file twice is refused)
-    from dnmr.series import load_series
+    from dnmr.fitting.series import load_series
 
     shared = CORPUS / "series" / "_shared"
     series = tmp_path / "series.toml"

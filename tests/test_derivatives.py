@@ -1,5 +1,5 @@
 """Exact derivatives of the lineshape with respect to exchange rates and linewidths
-(dnmr.engine.lineshape_derivatives), against finite differences.
+(dnmr.engine.blocks.lineshape_derivatives), against finite differences.
 
 The outside reference is McConnell's two-site closed form (J. Chem. Phys. 28, 430 (1958), in
 tests/closed_forms.py), differentiated by fourth-order central differences.  For coupled spins, several processes and
@@ -14,7 +14,7 @@ from closed_forms import mcconnell_two_site
 from threadpoolctl import threadpool_limits
 
 import dnmr
-from dnmr import engine
+from dnmr.engine import blocks
 
 SF = 400.0  # MHz
 
@@ -43,7 +43,7 @@ def test_two_site_derivatives_match_mcconnell(k):
               dnmr.State("b", {"H": 3.25}, linewidth_hz=1.5, population=0.4)]
     model = dnmr.Model(dnmr.Spectrometer(SF), states, [dnmr.Exchange("a", "b", rate_per_s=k)])
     hz = np.linspace(2.8 * SF, 3.45 * SF, 2000)
-    exact = engine.lineshape_derivatives(model, hz)
+    exact = blocks.lineshape_derivatives(model, hz)
 
     def closed(rate=k, w_a=1.0, w_b=1.5):
         return mcconnell_two_site(hz, 3.00 * SF, 3.25 * SF, rate, 0.6, w_a, w_b)
@@ -69,7 +69,7 @@ def coupled_model(rates, widths=(0.9, 1.4)) -> dnmr.Model:
 def test_coupled_two_process_derivatives_match_finite_differences():
     rates = (35.0, 12.0)
     hz = np.linspace(1.9 * SF, 2.9 * SF, 1500)
-    exact = engine.lineshape_derivatives(coupled_model(rates), hz)
+    exact = blocks.lineshape_derivatives(coupled_model(rates), hz)
     ppm = hz / SF
 
     def absorption(model):
@@ -96,7 +96,7 @@ def test_derivatives_with_equivalent_groups_match_finite_differences():
                           [dnmr.Exchange("amide", "amide", {"MeE": "MeZ", "MeZ": "MeE"}, rate_per_s=k)],
                           groups={"MeE": 3, "MeZ": 3})
     hz = np.linspace(2.85 * SF, 3.15 * SF, 1200)
-    exact = engine.lineshape_derivatives(model(20.0), hz)
+    exact = blocks.lineshape_derivatives(model(20.0), hz)
 
     def absorption(k):
         return dnmr.simulate(model(k), window_ppm=(hz[0] / SF, hz[-1] / SF), points=len(hz)).intensity

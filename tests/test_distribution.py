@@ -6,7 +6,7 @@ import re
 from pathlib import Path
 
 import dnmr
-from dnmr.modelfile import read_toml
+from dnmr.io.modelfile import read_toml
 
 ROOT = Path(__file__).resolve().parent.parent
 PYPROJECT = read_toml(ROOT / "pyproject.toml")

@@ -20,8 +20,8 @@ from closed_forms import (
 from reference_qutip import jumps_with_reverse, qutip_spectrum, random_model
 
 import dnmr
-from dnmr import engine, resolvent
-from dnmr.liouville import coherence_blocks, hamiltonian
+from dnmr.engine import blocks, resolvent
+from dnmr.engine.liouville import coherence_blocks, hamiltonian
 
 SF = 400.0  # MHz
 
@@ -72,18 +72,18 @@ def test_defective_point_stays_exact(relative):
 
 
 def test_exactly_defective_block_takes_the_schur_route():
-    terms = engine.lineshape_terms(two_site(np.pi * 100.0))
+    terms = blocks.lineshape_terms(two_site(np.pi * 100.0))
     assert len(terms.direct) == 1 and isinstance(terms.direct[0], resolvent.SchurBlock) and len(terms.poles) == 0
 
 
 def test_schur_and_eigen_routes_agree_on_a_coupled_block():
     model = ab_model(55.0, 30.0, 8.0)
-    params = engine.SpinParameters.from_model(model)
+    params = blocks.SpinParameters.from_model(model)
     hz = np.linspace(1100, 1300, 500)
     for block in coherence_blocks(2):
-        pattern = engine.block_pattern(block, params.topology)
-        L = engine.block_liouvillian(pattern, params)
-        start = engine.block_start(pattern, params.populations)
+        pattern = blocks.block_pattern(block, params.topology)
+        L = blocks.block_liouvillian(pattern, params)
+        start = blocks.block_start(pattern, params.populations)
         lam, amp = resolvent.eigen_lines(L, pattern.detect, start)
         eig_route = resolvent.LineshapeTerms(lam, amp).evaluate(hz)
         schur_route = resolvent.schur_block(L, pattern.detect, start).evaluate(2 * np.pi * hz)
@@ -163,7 +163,7 @@ def test_fast_exchange_single_averaged_line():
 def test_static_ab_quartet(dnu, J):
     """AB quartet: lines at centre +/- J/2 +/- D/2, D = sqrt(dnu^2 + J^2), inner/outer intensity
     (1 + J/D)/(1 - J/D): Pople, Schneider & Bernstein, High-resolution NMR (1959)."""
-    terms = engine.lineshape_terms(ab_model(0.0, dnu, J))
+    terms = blocks.lineshape_terms(ab_model(0.0, dnu, J))
     strong = np.abs(terms.amplitudes) > 1e-9
     got = sorted(zip(terms.line_frequencies_hz[strong], terms.amplitudes[strong].real / 2))
     positions, intensities = ab_quartet(3.0 * SF - dnu / 2, 3.0 * SF + dnu / 2, J)
@@ -178,7 +178,7 @@ def test_a2_gives_one_line_whatever_j(J):
     singlet-triplet transitions forbidden (textbook result, PHYSICS.md)."""
     state = dnmr.State("s", {"H1": 2.0, "H2": 2.0}, {"H1-H2": J}, linewidth_hz=0.8, population=1)
     model = dnmr.Model(dnmr.Spectrometer(SF), [state])
-    terms = engine.lineshape_terms(model)
+    terms = blocks.lineshape_terms(model)
     visible = np.abs(terms.amplitudes) > 1e-12
     assert np.allclose(terms.line_frequencies_hz[visible], 2.0 * SF, atol=1e-9)
     assert terms.amplitudes[visible].real.sum() / 2 == pytest.approx(2.0, abs=1e-12)
@@ -223,7 +223,7 @@ def test_random_models_match_qutip(seed, n_spins, n_states):
     states, exchanges = random_model(np.random.default_rng(seed), n_spins, n_states)
     hz = probe_frequencies(states, 160)
     ref = qutip_spectrum(hz, states, jumps_with_reverse(states, exchanges))
-    got = engine.lineshape_terms(model_from_reference(states, exchanges)).evaluate(hz)
+    got = blocks.lineshape_terms(model_from_reference(states, exchanges)).evaluate(hz)
     assert relative_error(got, ref) < 1e-8
 
 
@@ -236,7 +236,7 @@ def test_three_cycle_implies_inverse_permutation():
     assert len(jumps) == 2
     hz = probe_frequencies(states, 120)
     ref = qutip_spectrum(hz, states, jumps)
-    got = engine.lineshape_terms(model_from_reference(states, exchanges)).evaluate(hz)
+    got = blocks.lineshape_terms(model_from_reference(states, exchanges)).evaluate(hz)
     assert relative_error(got, ref) < 1e-8
 
 
@@ -267,7 +267,7 @@ def test_krylov_route_matches_qutip(krylov_everywhere, seed, n_spins, n_states):
     states, exchanges = random_model(np.random.default_rng(seed), n_spins, n_states)
     hz = probe_frequencies(states, 160)
     ref = qutip_spectrum(hz, states, jumps_with_reverse(states, exchanges))
-    terms = engine.lineshape_terms(model_from_reference(states, exchanges))
+    terms = blocks.lineshape_terms(model_from_reference(states, exchanges))
     assert terms.direct and all(isinstance(b, resolvent.ContinuedFraction) for b in terms.direct)
     assert relative_error(terms.evaluate(hz), ref) < 1e-8
 
@@ -290,10 +290,10 @@ def test_krylov_and_eigen_routes_agree_on_six_coupled_spins(monkeypatch):
     flip = dict(zip(names, reversed(names)))
     model = dnmr.Model(dnmr.Spectrometer(SF), [state], [dnmr.Exchange("s", "s", flip, rate_per_s=25.0)])
     hz = np.linspace(0.8 * SF, 2.4 * SF, 3000)
-    krylov = engine.lineshape_terms(model)
+    krylov = blocks.lineshape_terms(model)
     assert any(isinstance(b, resolvent.ContinuedFraction) for b in krylov.direct)
     monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 10**9)
-    eigen = engine.lineshape_terms(model)
+    eigen = blocks.lineshape_terms(model)
     assert not eigen.direct
     assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-9
 
@@ -337,23 +337,23 @@ def test_continued_fraction_through_vanishing_pivots_and_huge_growth(monkeypatch
 def test_sparse_and_dense_block_liouvillians_are_the_same():
     """The Krylov route builds its Liouvillian sparse; element for element it is the dense one."""
     states, exchanges = random_model(np.random.default_rng(31), 3, 2)
-    params = engine.SpinParameters.from_model(model_from_reference(states, exchanges))
+    params = blocks.SpinParameters.from_model(model_from_reference(states, exchanges))
     for block in coherence_blocks(3):
-        pattern = engine.block_pattern(block, params.topology)
-        dense = engine.block_liouvillian(pattern, params)
-        assert np.array_equal(engine.block_liouvillian(pattern, params, as_sparse=True).toarray(), dense)
+        pattern = blocks.block_pattern(block, params.topology)
+        dense = blocks.block_liouvillian(pattern, params)
+        assert np.array_equal(blocks.block_liouvillian(pattern, params, as_sparse=True).toarray(), dense)
 
 
 def test_a_sparse_block_that_the_krylov_route_refuses_goes_the_dense_way(krylov_everywhere):
     """A block handed over sparse (as the engine does for the Krylov route) but refused by it (here: a
     state of zero weight, so D^-1 L D does not exist) is evaluated densely, with the same result."""
     states, exchanges = random_model(np.random.default_rng(32), 2, 2)
-    params = engine.SpinParameters.from_model(model_from_reference(states, exchanges))
-    pattern = engine.block_pattern(coherence_blocks(2)[0], params.topology)
-    dense = engine.block_liouvillian(pattern, params)
-    start = engine.block_start(pattern, params.populations)
+    params = blocks.SpinParameters.from_model(model_from_reference(states, exchanges))
+    pattern = blocks.block_pattern(coherence_blocks(2)[0], params.topology)
+    dense = blocks.block_liouvillian(pattern, params)
+    start = blocks.block_start(pattern, params.populations)
     weights = np.zeros(len(dense))  # refused by krylov_block
-    kind, lines = resolvent.block_terms(engine.block_liouvillian(pattern, params, as_sparse=True), pattern.detect,
+    kind, lines = resolvent.block_terms(blocks.block_liouvillian(pattern, params, as_sparse=True), pattern.detect,
                                         start, weights)
     assert kind == "lines"
     expected = resolvent.eigen_lines(dense, pattern.detect, start)
@@ -383,11 +383,11 @@ def test_partial_reorthogonalisation_matches_dense_eigendecomposition_on_seven_s
         return omega
 
     monkeypatch.setattr(resolvent, "_next_orthogonality", counted)
-    krylov = engine.lineshape_terms(model)
+    krylov = blocks.lineshape_terms(model)
     assert sum(isinstance(b, resolvent.ContinuedFraction) for b in krylov.direct) >= 3
     assert 0 < sum(passes) < 0.5 * len(passes)  # partial: some steps, far from all
     monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 10**9)
-    eigen = engine.lineshape_terms(model)
+    eigen = blocks.lineshape_terms(model)
     assert not eigen.direct
     assert relative_error(krylov.evaluate(hz), eigen.evaluate(hz)) < 1e-8
 
@@ -426,5 +426,5 @@ def test_progress_reports_every_coherence_once():
     names = [f"H{i}" for i in range(6)]
     chain = {f"{a}-{b}": 7.0 for a, b in zip(names, names[1:])}  # coupled: one system, not six
     state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)}, chain, linewidth_hz=1.0, population=1)
-    engine.lineshape_terms(dnmr.Model(dnmr.Spectrometer(SF), [state]), progress=lambda d, t: calls.append((d, t)))
+    blocks.lineshape_terms(dnmr.Model(dnmr.Spectrometer(SF), [state]), progress=lambda d, t: calls.append((d, t)))
     assert calls[-1] == (792, 792) and [d for d, _ in calls] == sorted(d for d, _ in calls)

@@ -27,11 +27,11 @@ from matplotlib.patches import Patch
 from matplotlib.text import Text
 
 import dnmr
-import dnmr.output
+import dnmr.io.output
 from colour_vision import MACHADO_2009, colour_difference, lightness
 from dnmr.cli import cli
-from dnmr.output import save_figure
-from dnmr.plotting import PALETTE, REGIME_COLOURS, SERIES
+from dnmr.io.output import save_figure
+from dnmr.reporting.plotting import PALETTE, REGIME_COLOURS, SERIES
 from reference_eyring import eyring_rate
 from test_planning import MODEL_TOML
 
@@ -143,9 +143,9 @@ def colours_of(fig) -> set[str]:
 
 def api_figures(inputs):
     """One figure from every plotting function the command line does not already draw."""
-    from dnmr.activation import eyring_fit
-    from dnmr.fitting import fit_spectrum
-    from dnmr.plotting import plot_fit_stack, plot_posterior_pairs, plot_rates
+    from dnmr.activation.eyring import eyring_fit
+    from dnmr.fitting.spectrumfit import fit_spectrum
+    from dnmr.reporting.plotting import plot_fit_stack, plot_posterior_pairs, plot_rates
     from test_fitting import REGION, measured, mcconnell, two_site_model
 
     rng = np.random.default_rng(3)
@@ -159,8 +159,8 @@ def api_figures(inputs):
     joint = eyring_fit(TEMPERATURES_K, k, 0.05 * k, process="flip", method=methods)
     samples = rng.multivariate_normal([60.0, -5.0], [[4.0, 11.0], [11.0, 36.0]], 4000)
     return {"fit": fit.plot(), "fit stack": plot_fit_stack([fit, fit], ["250 K", "260 K"]),
-            "rates": plot_rates(lines), "eyring, two processes": dnmr.plotting.plot_eyring(lines),
-            "eyring, three methods": dnmr.plotting.plot_eyring([joint, lines[1]]),
+            "rates": plot_rates(lines), "eyring, two processes": dnmr.reporting.plotting.plot_eyring(lines),
+            "eyring, three methods": dnmr.reporting.plotting.plot_eyring([joint, lines[1]]),
             "posterior pairs": plot_posterior_pairs(samples, ["dH‡ / kJ mol^-1", "dS‡ / J mol^-1 K^-1"],
                                                     true_values=[60.0, None], one_sided=[None, "lower-bound"]),
             "spectra overlaid": overlaid(inputs[0])}
@@ -178,14 +178,14 @@ def overlaid(model_file):
 def test_every_figure_uses_only_the_palette(inputs, tmp_path, monkeypatch):
     palette = {to_hex(c) for c in PALETTE.values()}
     figures = api_figures(inputs)
-    keep = dnmr.output.save_figure
+    keep = dnmr.io.output.save_figure
 
     def recording(fig, path, **options):
         figures[path.name] = fig
         options["close"] = False
         keep(fig, path, **options)
 
-    monkeypatch.setattr(dnmr.output, "save_figure", recording)
+    monkeypatch.setattr(dnmr.io.output, "save_figure", recording)
     for command in COMMANDS:
         assert run(command, inputs, tmp_path).exit_code == 0
     assert {"bands.png", "plan.png", "eyring_posterior.png"} <= set(figures)
@@ -195,7 +195,7 @@ def test_every_figure_uses_only_the_palette(inputs, tmp_path, monkeypatch):
 
 
 def _chosen_format_in_a_worker() -> str:
-    from dnmr.output import chosen_figure_format
+    from dnmr.io.output import chosen_figure_format
 
     return chosen_figure_format()
 
@@ -203,7 +203,7 @@ def _chosen_format_in_a_worker() -> str:
 def test_figure_format_is_decided_in_one_place(tmp_path):
     from concurrent.futures import ProcessPoolExecutor
 
-    from dnmr.output import figures_as
+    from dnmr.io.output import figures_as
 
     fig = plt.figure()
     with figures_as("pdf"):
@@ -233,7 +233,7 @@ def _texts(fig) -> list[str]:
 
 
 def test_stacked_fits_show_their_scale_factors_and_residual_bands_are_labelled():
-    from dnmr.plotting import plot_fit_stack, plot_residual_stack, plot_spectrum_fit
+    from dnmr.reporting.plotting import plot_fit_stack, plot_residual_stack, plot_spectrum_fit
 
     rng = np.random.default_rng(3)
     fits = [_fake_fit(1.0, rng), _fake_fit(0.25, rng)]

@@ -1,4 +1,4 @@
-"""Single-spectrum fits (dnmr.fitting) against spectra made by independent references.
+"""Single-spectrum fits (dnmr.fitting.spectrumfit) against spectra made by independent references.
 
 Every synthetic spectrum here comes from a stated truth through a route that does not use dnmr's
 engine: the McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py) for
@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 
 from closed_forms import fast_exchange_excess_width, mcconnell_two_site
-from dnmr import fitting
+from dnmr.fitting import spectrumfit as fitting
 from dnmr.errors import InputError
-from dnmr.fitting import FitOptions, estimate_noise, fit_parameters, fit_spectrum
+from dnmr.fitting.spectrumfit import FitOptions, estimate_noise, fit_parameters, fit_spectrum
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.readers import MeasuredSpectrum
+from dnmr.io.readers import MeasuredSpectrum
 from reference_qutip import jumps_with_reverse, qutip_spectrum
 
 SF = 400.0  # MHz

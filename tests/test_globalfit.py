@@ -1,4 +1,4 @@
-"""Global fit of a VT series (dnmr.globalfit and `dnmr fit --global`) on invented series.
+"""Global fit of a VT series (dnmr.fitting.globalfit and `dnmr fit --global`) on invented series.
 
 The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py),
 not by dnmr's engine, with rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935)) with
@@ -25,9 +25,9 @@ from realistic_series import SCENARIOS, write_series
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.globalfit import Treatment, _global_fit, fit_series_global
-from dnmr.series import fit_series, load_series
-from dnmr.thermometry import fit_temperature_calibration
+from dnmr.fitting.globalfit import Treatment, _global_fit, fit_series_global
+from dnmr.fitting.series import fit_series, load_series
+from dnmr.activation.thermometry import fit_temperature_calibration
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 55.0, -12.0  # invented
@@ -144,7 +144,7 @@ def test_cli_global(series_file, tmp_path):
 def test_report_of_global_folder(result):
     # dnmr report on a global-fit folder: the global fit's own numbers, the two-step comparison, the figures
     # embedded, nothing fetched from elsewhere
-    from dnmr.report import write_report
+    from dnmr.reporting.report import write_report
 
     page = write_report(result.outdir, output=result.outdir / "page.html").read_text()
     a = result.activation[0]

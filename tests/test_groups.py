@@ -16,8 +16,8 @@ from model_errors import assert_one_line_error
 from reference_qutip import jumps_with_reverse, qutip_spectrum
 
 import dnmr
-from dnmr.engine import lineshape_terms
-from dnmr.spinsystems import group_sectors, spin_systems
+from dnmr.engine.blocks import lineshape_terms
+from dnmr.engine.spinsystems import group_sectors, spin_systems
 
 SF = 400.0  # MHz
 

@@ -15,7 +15,7 @@ from closed_forms import lorentzian_lines
 from model_errors import assert_one_line_error
 
 import dnmr
-from dnmr.engine import lineshape_terms
+from dnmr.engine.blocks import lineshape_terms
 
 SF = 400.0  # MHz
 HALF, ONE = 0.5, 1.0

@@ -9,8 +9,8 @@ from click.testing import CliRunner
 
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.series import load_series
-from dnmr.tables import celsius_hints
+from dnmr.fitting.series import load_series
+from dnmr.io.tables import celsius_hints
 from test_series import TEMPERATURES, write_series
 
 SERIES_PARAMETERS = 'linewidth = "fixed"\nparameters = { linewidth_hz_c = { start = 1.0 } }'

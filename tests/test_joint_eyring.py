@@ -17,10 +17,10 @@ from click.testing import CliRunner
 from matplotlib.colors import to_hex
 from scipy import constants
 
-from dnmr.activation import eyring_fit_file, method_offset, read_rates
+from dnmr.activation.eyring import eyring_fit_file, method_offset, read_rates
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.plotting import PALETTE, plot_eyring
+from dnmr.reporting.plotting import PALETTE, plot_eyring
 from reference_eyring import eyring_rate
 
 TRUE_DH, TRUE_DS = 60.0, -12.0  # kJ/mol, J/(mol K): invented truths of the synthetic rates

@@ -1,4 +1,4 @@
-"""The compiled loops of the Krylov route (dnmr.kernels, optional numba) against the numpy loops, which are
+"""The compiled loops of the Krylov route (dnmr.engine.kernels, optional numba) against the numpy loops, which are
 the reference, and against LAPACK.
 
 The numpy path is what a user without numba runs; it is checked against QuTiP, McConnell and LAPACK in
@@ -15,7 +15,7 @@ import pytest
 from test_engine import banded_reference  # LAPACK's pivoted banded solver, point by point
 
 import dnmr
-from dnmr import engine, resolvent
+from dnmr.engine import blocks, resolvent
 
 SF = 400.0  # MHz
 
@@ -58,13 +58,13 @@ def test_compiled_and_numpy_krylov_routes_give_the_same_spectrum(compiled, monke
     dense eigendecomposition of every block (zgeev) to 1e-9."""
     model = chain_model(n_spins, seed=3 + n_spins, states=states)
     hz = np.linspace(0.6 * SF, 2.8 * SF, 6000)
-    fast = engine.lineshape_terms(model)
+    fast = blocks.lineshape_terms(model)
     assert fast.direct and all(isinstance(b, resolvent.ContinuedFraction) for b in fast.direct)
     monkeypatch.setattr(resolvent, "USE_COMPILED", False)
-    reference = engine.lineshape_terms(model)
+    reference = blocks.lineshape_terms(model)
     assert relative_error(fast.evaluate(hz), reference.evaluate(hz)) < 1e-10
     monkeypatch.setattr(resolvent, "KRYLOV_MIN_SIZE", 10**9)
-    dense = engine.lineshape_terms(model)
+    dense = blocks.lineshape_terms(model)
     assert not dense.direct
     assert relative_error(fast.evaluate(hz), dense.evaluate(hz)) < 1e-9
 
@@ -76,7 +76,7 @@ def test_compiled_lanczos_keeps_the_tridiagonal_of_the_numpy_recursion(compiled,
     captured = []
     recursion = resolvent.lanczos
     monkeypatch.setattr(resolvent, "lanczos", lambda S, g: captured.append((S, g)) or recursion(S, g))
-    engine.lineshape_terms(model)
+    blocks.lineshape_terms(model)
     S, g = max(captured, key=lambda c: len(c[1]))
     a_fast, b_fast = recursion(S, g)
     monkeypatch.setattr(resolvent, "USE_COMPILED", False)
@@ -125,7 +125,7 @@ def test_compiled_continued_fraction_through_huge_growth_and_zero_pivots(compile
 def test_without_numba_the_numpy_route_is_taken(monkeypatch):
     """A machine without the optional extra: the import fails quietly and the numpy loops run."""
     monkeypatch.setitem(sys.modules, "numba", None)  # makes `import numba` raise ImportError
-    monkeypatch.setitem(sys.modules, "dnmr.kernels", None)
+    monkeypatch.setitem(sys.modules, "dnmr.engine.kernels", None)
     monkeypatch.setattr(resolvent, "_KERNELS", [])
     assert resolvent.compiled_kernels() is None
     spectrum = dnmr.simulate(chain_model(5, seed=2), points=2048)

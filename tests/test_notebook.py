@@ -13,7 +13,7 @@ from nbclient import NotebookClient
 
 import dnmr
 from dnmr.demo import demo_data_dir
-from dnmr.modelfile import read_toml
+from dnmr.io.modelfile import read_toml
 
 ROOT = Path(__file__).resolve().parent.parent
 NOTEBOOK = ROOT / "examples" / "demo_study.ipynb"
@@ -33,7 +33,7 @@ def test_simulated_spectrum_shows_its_summary_and_figure():
 
 
 def test_a_figure_that_cannot_be_drawn_is_said_and_the_text_still_shows():
-    from dnmr.notebook import NotebookView
+    from dnmr.reporting.notebook import NotebookView
 
     class Broken(NotebookView):
         """A result whose figure fails."""

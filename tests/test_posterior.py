@@ -1,4 +1,4 @@
-"""Posterior samples (dnmr.posterior): the Eyring line, one spectrum, the pairwise figure, the CLI.
+"""Posterior samples (dnmr.fitting.posterior): the Eyring line, one spectrum, the pairwise figure, the CLI.
 
 References: Gelman et al., Bayesian Data Analysis, 3rd ed. (2013), section 14.2 (linear regression with
 the noninformative prior: the posterior of the coefficients is normal about the weighted least-squares
@@ -25,13 +25,13 @@ from click.testing import CliRunner
 from scipy import constants
 
 from closed_forms import mcconnell_two_site
-from dnmr.activation import eyring_fit
+from dnmr.activation.eyring import eyring_fit
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.fitting import fit_spectrum
+from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
-from dnmr.readers import MeasuredSpectrum
+from dnmr.fitting.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
+from dnmr.io.readers import MeasuredSpectrum
 
 R, KB, H = constants.R, constants.k, constants.h
 TRUE_DH, TRUE_DS = 55.0, -12.0  # kJ/mol, J/(mol K): invented
@@ -232,7 +232,7 @@ def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
 def test_pairs_figure_panels_labels_and_numbers(p):
     # p densities on the diagonal, p (p - 1) / 2 pair panels below, the correlation coefficients above
     # (Pearson's r, checked against numpy.corrcoef), the median and 95 % interval of each quantity
-    from dnmr.plotting import plot_posterior_pairs
+    from dnmr.reporting.plotting import plot_posterior_pairs
 
     rng = np.random.default_rng(0)
     samples = rng.normal(size=(4000, p)) @ np.triu(np.full((p, p), 0.5)) + np.arange(p)
@@ -255,7 +255,7 @@ def test_pairs_figure_panels_labels_and_numbers(p):
 
 
 def test_pairs_figure_old_names_say_what_they_became():
-    from dnmr.plotting import plot_corner, plot_posterior_pairs
+    from dnmr.reporting.plotting import plot_corner, plot_posterior_pairs
 
     with pytest.raises(InputError, match="renamed to plot_posterior_pairs"):
         plot_corner(np.zeros((10, 2)), ["a", "b"])
@@ -265,7 +265,7 @@ def test_pairs_figure_old_names_say_what_they_became():
 
 def test_pairs_figure_states_a_one_sided_bound_not_a_median():
     # a rate the data only bound is shown by its one-sided 95 % bound (common practice: no error bar)
-    from dnmr.plotting import plot_posterior_pairs
+    from dnmr.reporting.plotting import plot_posterior_pairs
 
     rng = np.random.default_rng(1)
     samples = np.c_[rng.uniform(-2.0, 1.0, 5000), rng.normal(2.0, 0.2, 5000)]

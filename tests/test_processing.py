@@ -20,7 +20,7 @@ from scipy.optimize import curve_fit
 
 from dnmr import read_spectrum
 from dnmr.errors import InputError
-from dnmr.processing import ProcessingOptions, read_fid
+from dnmr.io.processing import ProcessingOptions, read_fid
 
 SW = 5000.0  # Hz
 POINTS = 8192  # complex points: 1.64 s of acquisition, long enough for lines of 1 Hz and more to decay
@@ -237,7 +237,7 @@ def test_series_of_raw_fids_gives_rates_and_linewidths_that_include_lb(tmp_path)
     of the window, and results.json carries every processing step."""
     import json
 
-    from dnmr.series import fit_series
+    from dnmr.fitting.series import fit_series
 
     rates = {250.0: 30.0, 300.0: 400.0}
     lines = ['model = "model.toml"', "[fit]", "region_ppm = [4.5, 5.0]", "[processing]", "line_broadening_hz = 1.0"]
@@ -263,7 +263,7 @@ def test_series_of_raw_fids_gives_rates_and_linewidths_that_include_lb(tmp_path)
 
 
 def test_series_processing_typo_names_its_table(tmp_path):
-    from dnmr.series import load_series
+    from dnmr.fitting.series import load_series
 
     (tmp_path / "model.toml").write_text(EXCHANGE_MODEL)
     write_bruker(tmp_path / "1", exchange_fid(30.0))

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import io
 
-from dnmr import progress as progress_module
-from dnmr.progress import ProgressReport, elapsed_text
+from dnmr.io import progress as progress_module
+from dnmr.io.progress import ProgressReport, elapsed_text
 
 
 class Terminal(io.StringIO):

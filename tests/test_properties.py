@@ -13,7 +13,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import dnmr
-from dnmr.engine import lineshape_terms
+from dnmr.engine.blocks import lineshape_terms
 from dnmr.kinetics import exchange_jumps, rate_matrix
 
 SF = 300.0

@@ -1,4 +1,4 @@
-"""Tests of dnmr.readers on files written by the reference libraries and by the open standard's rules.
+"""Tests of dnmr.io.readers on files written by the reference libraries and by the open standard's rules.
 
 Sources named in the checks:
 - JCAMP-DX, the IUPAC open standard: McDonald & Wilks, Appl. Spectrosc. 42, 151 (1988) (labelled
@@ -28,7 +28,7 @@ import numpy as np
 import pytest
 
 from dnmr.errors import InputError
-from dnmr.readers import MAX_POINTS, MeasuredSpectrum, detect_format, read_spectrum
+from dnmr.io.readers import MAX_POINTS, MeasuredSpectrum, detect_format, read_spectrum
 
 SF_MHZ = 400.13
 

@@ -1,9 +1,9 @@
-"""The HTML report (dnmr.report and `dnmr report`) of a small invented series fitted here.
+"""The HTML report (dnmr.reporting.report and `dnmr report`) of a small invented series fitted here.
 
 The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958); tests/closed_forms.py,
 through test_series.write_series) at rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935))
 for invented activation parameters; the coldest spectrum is so slow that its rate is only an upper bound.
-The activation parameters the report shows are checked against dnmr.activation.eyring_fit_file on the same
+The activation parameters the report shows are checked against dnmr.activation.eyring.eyring_fit_file on the same
 rates.csv, and the recovered dH‡ against the invented truth.
 """
 from __future__ import annotations
@@ -21,11 +21,11 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from dnmr.activation import eyring_fit_file, format_with_error
+from dnmr.activation.eyring import eyring_fit_file, format_with_error
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.report import _rate_text, write_report
-from dnmr.series import fit_series
+from dnmr.reporting.report import _rate_text, write_report
+from dnmr.fitting.series import fit_series
 from test_series import ENTHALPY_KJ_MOL, write_series
 
 TEMPERATURES = [190.0, 270.0, 290.0, 310.0]  # k(190 K) ~ 1e-4 s^-1: far below the linewidth, a bound
@@ -206,7 +206,7 @@ def test_calibration_moves_the_temperatures(fitted, tmp_path):
     cal = tmp_path / "cal.csv"
     cal.write_text("setpoint_k,temperature_k\n180,182.5\n250,251.5\n300,301.0\n350,350.5\n")
     text = write_report(fitted, calibration=cal, output=tmp_path / "r.html").read_text(encoding="utf-8")
-    from dnmr.thermometry import read_temperature_calibration
+    from dnmr.activation.thermometry import read_temperature_calibration
 
     expected = eyring_fit_file(fitted / "rates.csv", calibration=read_temperature_calibration(cal))[0]
     assert parse(text).parameters["enthalpy_kj_mol"][0] == pytest.approx(expected.enthalpy_kj_mol, rel=1e-12)
@@ -268,7 +268,7 @@ def _text_outside_figures(text: str) -> str:
 
 
 def test_calibrated_report_shows_sample_temperature_beside_set_point(fitted, tmp_path):
-    from dnmr.thermometry import THERMOMETER_CAUTIONS, read_temperature_calibration
+    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, read_temperature_calibration
 
     (tmp_path / "cal.csv").write_text(CALIBRATION)
     text = write_report(fitted, calibration=tmp_path / "cal.csv", output=tmp_path / "r.html").read_text(encoding="utf-8")
@@ -306,7 +306,7 @@ def test_report_holds_no_absolute_path(fitted, report):
 def test_report_embeds_svg_figures_and_writes_the_chosen_format(fitted, tmp_path):
     import matplotlib.pyplot as plt
 
-    from dnmr.output import figures_as, save_figure
+    from dnmr.io.output import figures_as, save_figure
 
     copy = tmp_path / "out"
     shutil.copytree(fitted, copy, ignore=shutil.ignore_patterns("report.html", "supporting-information"))
@@ -334,7 +334,7 @@ def _transfer_folders(folder: Path) -> list[Path]:
     from test_series import ENTROPY_J_MOL_K
     from test_transfer import DELAYS, MODEL_TOML, inversion_data
 
-    from dnmr.transfer import run_transfer
+    from dnmr.fitting.transfer import run_transfer
 
     (folder / "model.toml").write_text(MODEL_TOML.replace('name = "rotation"', 'name = "flip"'))
     out = []

@@ -1,4 +1,4 @@
-"""VT series fits (dnmr.series and `dnmr fit`) on tiny invented series written as text files.
+"""VT series fits (dnmr.fitting.series and `dnmr fit`) on tiny invented series written as text files.
 
 The spectra are made from stated truths by the McConnell closed form (J. Chem. Phys. 28, 430 (1958);
 tests/closed_forms.py), not by dnmr's engine; the rates follow the Eyring equation (Eyring, J. Chem.
@@ -19,7 +19,7 @@ from closed_forms import mcconnell_two_site
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.series import fit_series, load_series
+from dnmr.fitting.series import fit_series, load_series
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 60.0, 0.0  # invented

@@ -8,7 +8,7 @@ from __future__ import annotations
 import pytest
 
 from dnmr.errors import InputError
-from dnmr.solvents import (BUILTIN_SOLVENTS, Solvent, check_temperature, check_temperatures, load_solvents, solvent,
+from dnmr.planning.solvents import (BUILTIN_SOLVENTS, Solvent, check_temperature, check_temperatures, load_solvents, solvent,
                            solvent_from_options, solvents_covering)
 
 C = 273.15

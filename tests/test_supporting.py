@@ -1,4 +1,4 @@
-"""Supporting-information tables (dnmr.supporting): ΔG‡ at each sample temperature, bounds, the three formats.
+"""Supporting-information tables (dnmr.reporting.supporting): ΔG‡ at each sample temperature, bounds, the three formats.
 
 References: the Eyring equation with CODATA constants (Eyring, J. Chem. Phys. 3, 107 (1935);
 tests/reference_eyring.py, scipy.constants); first-order propagation of independent errors (JCGM 100:2008,
@@ -16,8 +16,8 @@ import pytest
 import statsmodels.api as sm
 from scipy import constants
 
-from dnmr.activation import eyring_fit
-from dnmr.supporting import (
+from dnmr.activation.eyring import eyring_fit
+from dnmr.reporting.supporting import (
     activation_csv,
     activation_rows,
     gibbs_from_rate,
@@ -29,7 +29,7 @@ from dnmr.supporting import (
     tables_markdown,
     write_supporting_tables,
 )
-from dnmr.thermometry import fit_temperature_calibration
+from dnmr.activation.thermometry import fit_temperature_calibration
 from reference_eyring import eyring_rate
 
 

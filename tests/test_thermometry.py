@@ -1,4 +1,4 @@
-"""Tests of dnmr.thermometry: shift thermometers, reading them from spectra, set-point calibrations.
+"""Tests of dnmr.activation.thermometry: shift thermometers, reading them from spectra, set-point calibrations.
 
 Calibration formulas: Ammann, Meier & Merbach, J. Magn. Reson. 46, 319 (1982) (from memory, as given in
 PHYSICS.md); the older methanol fit of Raiford, Fisk & Becker, Anal. Chem. 51, 2050 (1979) (from memory).
@@ -16,10 +16,10 @@ import pytest
 import statsmodels.api as sm
 from click.testing import CliRunner
 
-from dnmr.activation import eyring_fit_file
+from dnmr.activation.eyring import eyring_fit_file
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.thermometry import (
+from dnmr.activation.thermometry import (
     ETHYLENE_GLYCOL,
     METHANOL,
     THERMOMETER_CAUTIONS,

@@ -20,7 +20,7 @@ from reference_eyring import eyring_rate
 from dnmr import simulate
 from dnmr.cli import cli
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.timescale import (ActivationParameters, averaged_model, exchanging_pairs, fast_exchange_limit,
+from dnmr.planning.timescale import (ActivationParameters, averaged_model, exchanging_pairs, fast_exchange_limit,
                             rate_window, timescale_view, window_temperatures)
 
 SF = 400.0
@@ -309,7 +309,7 @@ def test_averaged_methyl_next_to_one_proton_is_a_quartet_and_a_doublet():
     # J = 0.7 * 7 + 0.3 * 5 Hz, the methyl a 1:1 doublet of intensity 3, at the weighted shifts
     # (McConnell (1958) fast limit).  J / dnu = 0.003 here: second-order line shifts (J^2 / dnu ~ 0.02 Hz)
     # and the roof effect (~J / dnu in the intensities) bound the agreement.
-    from dnmr.engine import lineshape_terms
+    from dnmr.engine.blocks import lineshape_terms
 
     model = averaged_model(methyl_conformers())
     (state,) = model.states

@@ -3,7 +3,7 @@ integrator, and the fits of selective inversion, saturation transfer and 2D exch
 
 Synthetic data come from tests/reference_transfer.py (McConnell 1958 biexponential, Forsén & Hoffman
 1963, scipy's solve_ivp) or scipy.linalg.expm of a rate matrix written out by hand, never from
-dnmr.longitudinal.
+dnmr.engine.longitudinal.
 """
 from __future__ import annotations
 
@@ -14,9 +14,9 @@ import pytest
 from scipy.linalg import expm
 
 from dnmr.errors import InputError
-from dnmr.longitudinal import LongitudinalSystem, model_sites
+from dnmr.engine.longitudinal import LongitudinalSystem, model_sites
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.transfer import (
+from dnmr.fitting.transfer import (
     Experiment,
     TransferData,
     TransferOptions,
@@ -325,9 +325,9 @@ def test_command_writes_the_rates_table_that_eyring_reads(tmp_path):
 
     from click.testing import CliRunner
 
-    from dnmr.activation import read_rates
+    from dnmr.activation.eyring import read_rates
     from dnmr.cli import cli
-    from dnmr.series import RATE_COLUMNS
+    from dnmr.fitting.series import RATE_COLUMNS
 
     experiment = write_inversion_files(tmp_path)
     run = CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out")])
@@ -372,7 +372,7 @@ def test_bad_table_names_the_file_and_line(tmp_path):
     text = (tmp_path / "si.csv").read_text().splitlines()
     text[3] = text[3].replace(",", ",x", 1)
     (tmp_path / "si.csv").write_text("\n".join(text).replace("anti", "antti", 1) + "\n")
-    from dnmr.transfer import load_experiment
+    from dnmr.fitting.transfer import load_experiment
 
     with pytest.raises(InputError, match=r'si.csv: line 1: column "antti" is not a site \(did you mean "anti"\?\)'):
         load_experiment(experiment)
@@ -386,10 +386,10 @@ def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
     # selective inversion at 250-262 K from the McConnell biexponential fitted by dnmr.fit_transfer
     from closed_forms import mcconnell_two_site
 
-    from dnmr.activation import eyring_fit
-    from dnmr.fitting import fit_spectrum
+    from dnmr.activation.eyring import eyring_fit
+    from dnmr.fitting.spectrumfit import fit_spectrum
     from dnmr.kinetics import eyring_rate_from_enthalpy
-    from dnmr.readers import MeasuredSpectrum
+    from dnmr.io.readers import MeasuredSpectrum
 
     true_k = lambda t: eyring_rate_from_enthalpy(60.0, -12.0, t)  # noqa: E731
     rng = np.random.default_rng(7)

@@ -20,7 +20,7 @@ import pytest
 
 from realistic_series import AB_RING_INVERSION, N_METHYL_AMIDE, write_series
 from dnmr import eyring_fit_file
-from dnmr.series import fit_series
+from dnmr.fitting.series import fit_series
 
 REPLICAS = 3
 

@@ -15,7 +15,7 @@
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
 from pathlib import Path
 
-from dnmr.output import script_output_folder
+from dnmr.io.output import script_output_folder
 
 SCRIPT = globals().get("__file__")  # None in a notebook
 HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
@@ -27,8 +27,8 @@ import shutil
 import numpy as np
 
 import dnmr
-from dnmr.fitting import FitOptions, fit_spectrum
-from dnmr.plotting import plot_stack
+from dnmr.fitting.spectrumfit import FitOptions, fit_spectrum
+from dnmr.reporting.plotting import plot_stack
 
 # %% [markdown]
 # ## 1. The model at a few temperatures

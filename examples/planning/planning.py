@@ -14,7 +14,7 @@
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
 from pathlib import Path
 
-from dnmr.output import script_output_folder
+from dnmr.io.output import script_output_folder
 
 SCRIPT = globals().get("__file__")  # None in a notebook
 HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()

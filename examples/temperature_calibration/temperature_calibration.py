@@ -18,7 +18,7 @@
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
 from pathlib import Path
 
-from dnmr.output import script_output_folder
+from dnmr.io.output import script_output_folder
 
 SCRIPT = globals().get("__file__")  # None in a notebook
 HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
@@ -28,7 +28,7 @@ OUT = script_output_folder("temperature_calibration-output", SCRIPT)  # never am
 import numpy as np
 
 import dnmr
-from dnmr.thermometry import THERMOMETER_CAUTIONS, get_thermometer
+from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, get_thermometer
 
 print(THERMOMETER_CAUTIONS)  # read these before using the thermometer tubes
 rng = np.random.default_rng(20261203)

@@ -13,7 +13,7 @@
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
 from pathlib import Path
 
-from dnmr.output import script_output_folder
+from dnmr.io.output import script_output_folder
 
 SCRIPT = globals().get("__file__")  # None in a notebook
 HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
@@ -23,7 +23,7 @@ OUT = script_output_folder("three_site_cyclic-output", SCRIPT)  # never among th
 import numpy as np
 
 import dnmr
-from dnmr.plotting import plot_stack
+from dnmr.reporting.plotting import plot_stack
 
 # %% [markdown]
 # ## 1. The model

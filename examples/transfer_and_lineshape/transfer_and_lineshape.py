@@ -16,7 +16,7 @@
 # Where the results go: the folder named on the command line (default below), which must be new or empty.
 from pathlib import Path
 
-from dnmr.output import script_output_folder
+from dnmr.io.output import script_output_folder
 
 SCRIPT = globals().get("__file__")  # None in a notebook
 HERE = Path(SCRIPT).resolve().parent if SCRIPT else Path.cwd()
@@ -28,9 +28,9 @@ import shutil
 import numpy as np
 
 import dnmr
-from dnmr.longitudinal import LongitudinalSystem
-from dnmr.series import fit_series
-from dnmr.transfer import run_transfer
+from dnmr.engine.longitudinal import LongitudinalSystem
+from dnmr.fitting.series import fit_series
+from dnmr.fitting.transfer import run_transfer
 
 model = dnmr.load_model(HERE / "model.toml")
 data = OUT / "data"
@@ -106,7 +106,7 @@ tables.append(OUT / "lineshape-fit" / "rates.csv")
 # `dnmr eyring lineshape-fit/rates.csv si-*/rates.csv --plot eyring.png`.
 
 # %%
-from dnmr.output import save_figure
+from dnmr.io.output import save_figure
 
 both = dnmr.eyring_fit_file(tables)[0]
 print(both.report())

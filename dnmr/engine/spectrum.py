@@ -7,11 +7,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .engine import frequency_grid_ppm, lineshape_terms
-from .resolvent import LineshapeTerms
-from .model import Model
-from .output import atomic_write_text
-from .notebook import NotebookView
+from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
+from dnmr.engine.resolvent import LineshapeTerms
+from dnmr.model import Model
+from dnmr.io.output import atomic_write_text
+from dnmr.reporting.notebook import NotebookView
 
 
 @dataclass(frozen=True)
@@ -82,7 +82,7 @@ class Spectrum(NotebookView):
 
     def plot(self, ax=None, **line_kwargs):
         """Draw the absorption against ppm (high to low); returns the matplotlib Axes."""
-        from .plotting import plot_spectrum
+        from dnmr.reporting.plotting import plot_spectrum
 
         return plot_spectrum(self, ax=ax, **line_kwargs)
 
@@ -137,7 +137,7 @@ def simulate_over(
     as activation parameters (or populations as free energies) for anything to change, and are refused
     otherwise; they stand in for the model's own temperature, which may then be absent.
     """
-    from .errors import InputError
+    from dnmr.errors import InputError
 
     if (rates_per_s is None) == (temperatures_k is None):
         raise InputError("give either rates or temperatures")

@@ -2,10 +2,10 @@
 
 An *experiment file* (TOML) names a model file, the sample temperature, the kind of experiment, a data
 table (CSV) and options; :func:`fit_transfer` fits the longitudinal exchange model
-(:mod:`dnmr.longitudinal`) to the table and :func:`write_transfer` writes ``rates.csv`` (the columns of
+(:mod:`dnmr.engine.longitudinal`) to the table and :func:`write_transfer` writes ``rates.csv`` (the columns of
 ``dnmr fit`` plus ``method``) and ``results.json``.
 
-Experiments and their tables (site names as in :func:`dnmr.longitudinal.model_sites`):
+Experiments and their tables (site names as in :func:`dnmr.engine.longitudinal.model_sites`):
 
 ``inversion`` (selective inversion recovery)
     ``delay_s`` and one column of integrals per observed site (``<site>_stderr`` optional).  Fitted:
@@ -23,7 +23,7 @@ Experiments and their tables (site names as in :func:`dnmr.longitudinal.model_si
     L = -logm(A M0^-1) / tm at each mixing time (Perrin & Gipe, J. Am. Chem. Soc. 106, 4036 (1984);
     Perrin & Dwyer, Chem. Rev. 90, 935 (1990)) with Monte Carlo errors over the volume errors.
 
-Errors follow :mod:`dnmr.fitting`: chi-square with the stated errors (or, without them, with the scatter
+Errors follow :mod:`dnmr.fitting.spectrumfit`: chi-square with the stated errors (or, without them, with the scatter
 of the residuals), the covariance scaled by the error scale, and a chi-square profile over log10 k of
 each rate.  A rate far below R1 moves too little magnetisation within T1 to be seen: the profile then
 stays flat towards slow exchange and the rate is an upper bound, not a number with an error bar.
@@ -42,8 +42,8 @@ from pathlib import Path
 import lmfit
 import numpy as np
 
-from .errors import InputError, did_you_mean
-from .fitting import (
+from dnmr.errors import InputError, did_you_mean
+from dnmr.fitting.spectrumfit import (
     NoiseEstimate,
     Profile,
     RateEstimate,
@@ -59,12 +59,12 @@ from .fitting import (
     _stderr,
     PROFILE_RESTARTS,
 )
-from .longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
-from .model import Model
-from .modelfile import check_keys, load_model, read_toml
-from .output import atomic_write_text, json_ready, new_output_folder, save_figure
-from .series import RATE_COLUMNS
-from .tables import check_kelvin, read_table
+from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
+from dnmr.model import Model
+from dnmr.io.modelfile import check_keys, load_model, read_toml
+from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
+from dnmr.fitting.series import RATE_COLUMNS
+from dnmr.io.tables import check_kelvin, read_table
 
 EXPERIMENTS = ("inversion", "saturation", "exchange-2d")
 TIME_COLUMNS = {"inversion": "delay_s", "saturation": "saturation_s", "exchange-2d": "mixing_s"}
@@ -588,8 +588,8 @@ class TransferFit:
         return _TransferProblem(self.experiment).predict(self.parameters.valuesdict(), np.asarray(times_s, dtype=float))
 
     def plot(self, figure=None):
-        """Data, fitted curves and residuals (:func:`dnmr.plotting.plot_transfer_fit`)."""
-        from .plotting import plot_transfer_fit
+        """Data, fitted curves and residuals (:func:`dnmr.reporting.plotting.plot_transfer_fit`)."""
+        from dnmr.reporting.plotting import plot_transfer_fit
 
         return plot_transfer_fit(self, figure=figure)
 
@@ -653,7 +653,7 @@ class TransferFit:
         return rows
 
     def to_dict(self) -> dict:
-        """Plain data (JSON-ready after :func:`dnmr.output.json_ready`)."""
+        """Plain data (JSON-ready after :func:`dnmr.io.output.json_ready`)."""
         exp = self.experiment
         return {
             "experiment": exp.experiment, "experiment_file": exp.source, "data": exp.data.source,

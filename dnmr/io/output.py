@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from dnmr.errors import InputError
 
 
 def _refuse_existing(path: Path, overwrite: bool) -> None:

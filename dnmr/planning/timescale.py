@@ -52,10 +52,10 @@ from itertools import combinations
 import numpy as np
 from scipy.optimize import brentq
 
-from .errors import InputError
-from .kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
-from .model import LIMITS, Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
-from .notebook import NotebookView
+from dnmr.errors import InputError
+from dnmr.kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
+from dnmr.model import LIMITS, Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
+from dnmr.reporting.notebook import NotebookView
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
 DEFAULT_DETECTABLE_FRACTION = 0.1
@@ -789,7 +789,7 @@ TRANSFER_FAST_RATE_PER_S = 30.0
 def relaxation_rate(model: Model, r1_per_s: float | None = None) -> tuple[float, str]:
     """R1 (s^-1) for the transfer window and where it comes from: `r1_per_s` if given, else the mean of
     the model's ``r1_per_s`` over its sites, else :data:`TYPICAL_R1_PER_S`."""
-    from .longitudinal import site_relaxation_rates
+    from dnmr.engine.longitudinal import site_relaxation_rates
 
     if r1_per_s is not None:
         if not (math.isfinite(r1_per_s) and r1_per_s > 0):
@@ -1145,7 +1145,7 @@ def plot_regimes(pairs: Sequence[PairTimescale], figure=None, transfer: Sequence
     matplotlib.figure.Figure
         Intermediate exchange is the lineshape window; the transfer window is a bar of its own hue.
     """
-    from .plotting import INK, REGIME_COLOURS, TRANSFER_COLOUR, figure_text, plt
+    from dnmr.reporting.plotting import INK, REGIME_COLOURS, TRANSFER_COLOUR, figure_text, plt
 
     shown = [p for p in pairs if p.slow_below_k is not None and p.fast_above_k is not None]
     if not shown:

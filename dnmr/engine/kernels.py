@@ -1,9 +1,9 @@
 """Compiled inner loops of the Krylov route (optional: needs numba, ``pip install ".[fast]"``).
 
-Two loops dominate the Krylov route (:mod:`dnmr.resolvent`) and pay numpy's call overhead at every step:
+Two loops dominate the Krylov route (:mod:`dnmr.engine.resolvent`) and pay numpy's call overhead at every step:
 the Lanczos recursion (a sparse product, Simon's orthogonality estimates and a few dot products per step,
 each a separate numpy call) and the continued fraction (four array operations per level and point).  This
-module holds the same two algorithms, step for step, as numba-compiled loops; :mod:`dnmr.resolvent`
+module holds the same two algorithms, step for step, as numba-compiled loops; :mod:`dnmr.engine.resolvent`
 imports it only when a block goes the Krylov route and numba is installed, and otherwise keeps its numpy
 loops, which remain the reference (the tests check the two against each other to 1e-10).
 
@@ -24,7 +24,7 @@ _CHUNK = 256
 @njit(cache=True, nogil=True, error_model="numpy")
 def continued_fraction(omega, alpha, b2, norm, every):  # pragma: no cover - compiled
     """norm q_2 / q_1 at each angular frequency by the determinant recurrence of
-    :meth:`dnmr.resolvent.ContinuedFraction.evaluate` (same order of operations, same exact power-of-two
+    :meth:`dnmr.engine.resolvent.ContinuedFraction.evaluate` (same order of operations, same exact power-of-two
     rescaling every `every` levels).  Points where q_1 is zero or not finite come back not finite (the
     caller solves them with pivoting)."""
     n = omega.size
@@ -71,7 +71,7 @@ def continued_fraction(omega, alpha, b2, norm, every):  # pragma: no cover - com
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orthogonal, slice_rows):  # pragma: no cover
-    """The recursion of :func:`dnmr.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
+    """The recursion of :func:`dnmr.engine.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
     step for step: the sparse product, Simon's estimates of the loss of orthogonality, and classical
     Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` (at
     that step and the next).  Returns (alpha, beta, steps, ok): the first `steps` entries of alpha and

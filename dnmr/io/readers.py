@@ -24,7 +24,7 @@ Formats
     ``##.SHIFT REFERENCE``, else ``##$OFFSET`` (ppm of the first point), else 0 Hz = 0 ppm.
 ``bruker-fid``, ``varian-fid``, ``nmrpipe``
     Raw 1D FIDs of the two major vendors, processed inside dnmr, and NMRPipe's processed 1D spectra:
-    see :mod:`dnmr.processing`.
+    see :mod:`dnmr.io.processing`.
 ``bruker-pdata``
     A processed 1D folder (``pdata/N`` holding ``procs`` and ``1r``) or the experiment folder that
     contains ``pdata/1``, read by nmrglue with the intensity scale ``2**NC_proc`` applied.  The first
@@ -44,10 +44,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
-from .inputfiles import read_input_bytes, regular_file_size
-from .notebook import NotebookView
-from .nuclei import check_frequency_mhz
+from dnmr.errors import InputError
+from dnmr.io.inputfiles import read_input_bytes, regular_file_size
+from dnmr.reporting.notebook import NotebookView
+from dnmr.nuclei import check_frequency_mhz
 
 MAX_POINTS = 2**21
 """Largest number of points a spectrum may have (2,097,152)."""
@@ -140,7 +140,7 @@ class MeasuredSpectrum(NotebookView):
 
     def plot(self, ax=None, **line_kwargs):
         """Draw the intensity against ppm (high to low); returns the matplotlib Axes."""
-        from .plotting import plot_spectrum
+        from dnmr.reporting.plotting import plot_spectrum
 
         ax = plot_spectrum(self, ax=ax, ylabel="intensity", **line_kwargs)
         ax.set_title(Path(self.source).name)
@@ -172,9 +172,9 @@ def read_spectrum(
     axis : {"ppm", "hz"}, optional
         Unit of the axis column of a text file without a header naming it (default ppm).  Other
         formats record their own unit.
-    processing : dnmr.processing.ProcessingOptions or mapping, optional
+    processing : dnmr.io.processing.ProcessingOptions or mapping, optional
         How to process a raw FID (line broadening in Hz, zero filling, phases in degrees, DC correction,
-        referencing in ppm); raw FIDs only.  See :mod:`dnmr.processing`.
+        referencing in ppm); raw FIDs only.  See :mod:`dnmr.io.processing`.
 
     Returns
     -------
@@ -203,9 +203,9 @@ def read_spectrum(
 
 
 def detect_format(path: str | Path) -> str:
-    """Name the format of `path`: a raw FID or NMRPipe format of :func:`dnmr.processing.raw_format`,
+    """Name the format of `path`: a raw FID or NMRPipe format of :func:`dnmr.io.processing.raw_format`,
     ``"bruker-pdata"``, ``"jcamp-dx"`` or ``"text"``."""
-    from .processing import raw_format
+    from dnmr.io.processing import raw_format
 
     path = Path(path)
     fmt = raw_format(path)
@@ -835,8 +835,8 @@ def _read_pdata(path: Path, frequency_mhz: float | None, axis: str | None) -> Me
 
 
 def _read_raw(path: Path, fmt: str, frequency_mhz: float | None, processing) -> MeasuredSpectrum:
-    """A raw FID read and processed by :mod:`dnmr.processing`; processing options are refused elsewhere."""
-    from .processing import read_raw
+    """A raw FID read and processed by :mod:`dnmr.io.processing`; processing options are refused elsewhere."""
+    from dnmr.io.processing import read_raw
 
     if fmt not in RAW_FORMATS:
         raise InputError(f"processing options apply to raw FIDs, and this is a {fmt} file", where="processing")
@@ -844,13 +844,13 @@ def _read_raw(path: Path, fmt: str, frequency_mhz: float | None, processing) -> 
 
 
 def _read_pipe(path: Path, frequency_mhz: float | None, axis: str | None) -> MeasuredSpectrum:
-    from .processing import read_pipe
+    from dnmr.io.processing import read_pipe
 
     return read_pipe(path, frequency_mhz, axis)
 
 
 RAW_FORMATS = ("bruker-fid", "varian-fid")
-"""Raw FID formats, read and processed by :mod:`dnmr.processing`."""
+"""Raw FID formats, read and processed by :mod:`dnmr.io.processing`."""
 _READERS: dict[str, Callable[[Path, float | None, str | None], MeasuredSpectrum]] = {
     "text": _read_text,
     "jcamp-dx": _read_jcamp,

@@ -10,7 +10,7 @@ import os
 import stat
 from pathlib import Path
 
-from .errors import InputError
+from dnmr.errors import InputError
 
 
 def _kind(mode: int) -> str:

@@ -15,9 +15,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError, did_you_mean
-from .inputfiles import read_input_bytes
-from .kinetics import MAX_TEMPERATURE_K
+from dnmr.errors import InputError, did_you_mean
+from dnmr.io.inputfiles import read_input_bytes
+from dnmr.kinetics import MAX_TEMPERATURE_K
 
 MAX_TABLE_BYTES = 64 * 2**20
 """Largest CSV table read (bytes): far more than any table of rates or temperatures."""

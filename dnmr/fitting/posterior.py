@@ -12,7 +12,7 @@ known: the log-likelihood is
     ln L = -chi^2 / (2 s),    chi^2 = sum ((data - fit) / sigma)^2,
 
 with sigma the fit's noise estimate and s its error scale (the correlation factor of the noise, times
-the reduced chi-square when the fit is a misfit; see :mod:`dnmr.fitting`).  The curvature of ln L at the
+the reduced chi-square when the fit is a misfit; see :mod:`dnmr.fitting.spectrumfit`).  The curvature of ln L at the
 optimum is then exactly the inverse of the covariance the least-squares fit reports, so for a
 well-determined rate the posterior and the least-squares error agree (Laplace approximation), and where
 they differ the posterior is the better account.  Priors are flat within each parameter's bounds, which
@@ -54,15 +54,15 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .errors import InputError
-from .kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
-from .notebook import NotebookView
+from dnmr.errors import InputError
+from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
+from dnmr.reporting.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
-    from .activation import EyringResult
-    from .fitting import SpectrumFit
+    from dnmr.activation.eyring import EyringResult
+    from dnmr.fitting.spectrumfit import SpectrumFit
 
 INSTALL_HINT = 'posterior sampling needs the emcee package: pip install emcee (or pip install ".[bayes]" in dnmr\'s folder)'
 MIN_AUTOCORRELATION_TIMES = 50  # emcee's documentation: trust tau (and the quantiles) from chains this long
@@ -287,7 +287,7 @@ class Posterior(NotebookView):
     def plot(self, names: Sequence[str] | None = None, true_values: Sequence[float | None] | None = None,
              figure: "Figure | None" = None, **renamed) -> "Figure":
         """Pairwise posterior figure of `names` (default :attr:`shown`); see
-        :func:`dnmr.plotting.plot_posterior_pairs`.
+        :func:`dnmr.reporting.plotting.plot_posterior_pairs`.
 
         Parameters
         ----------
@@ -298,7 +298,7 @@ class Posterior(NotebookView):
         figure : matplotlib Figure, optional
             Figure to draw into.
         """
-        from .plotting import plot_posterior_pairs
+        from dnmr.reporting.plotting import plot_posterior_pairs
 
         names = list(names or self.shown)
         index = [self._index(n) for n in names]
@@ -389,7 +389,7 @@ def _ball(rng: np.random.Generator, centre: np.ndarray, covariance: np.ndarray, 
 
 
 def _label(name: str) -> tuple[str, str]:
-    """Axis label and unit of a fit parameter (see the parameter names in :mod:`dnmr.fitting`)."""
+    """Axis label and unit of a fit parameter (see the parameter names in :mod:`dnmr.fitting.spectrumfit`)."""
     patterns = (
         (r"log10_k_(.+)", "{0}: log10(k / s⁻¹)", ""),
         (r"linewidth_hz_(.+)", "linewidth {0} / Hz", "Hz"),
@@ -444,7 +444,7 @@ def sample_spectrum_posterior(
     Parameters
     ----------
     fit : SpectrumFit
-        The least-squares fit (:func:`dnmr.fitting.fit_spectrum`), from which the data, noise, model and
+        The least-squares fit (:func:`dnmr.fitting.spectrumfit.fit_spectrum`), from which the data, noise, model and
         bounds are taken.
     steps : int
         Steps of every walker (burn-in included).
@@ -469,7 +469,7 @@ def sample_spectrum_posterior(
     """
     import lmfit
 
-    from .fitting import ParameterLayout, _Problem, single_threaded_blas
+    from dnmr.fitting.spectrumfit import ParameterLayout, _Problem, single_threaded_blas
 
     require_emcee()
     layout = ParameterLayout.for_model(fit.best_model, fit.options)
@@ -571,7 +571,7 @@ def sample_eyring_posterior(
     Parameters
     ----------
     result : EyringResult
-        The least-squares Eyring analysis (:func:`dnmr.activation.eyring_fit` and friends).
+        The least-squares Eyring analysis (:func:`dnmr.activation.eyring.eyring_fit` and friends).
     steps, walkers, burn, thin, seed
         As for :func:`sample_spectrum_posterior` (default 10000 steps: a few seconds; latent temperatures
         count as sampled parameters for the default number of walkers).
@@ -583,7 +583,7 @@ def sample_eyring_posterior(
         (and ``error_scale`` when sampled); extra results ``harmonic_mean_temperature_k`` (K) and
         ``correlation_enthalpy_entropy``.
     """
-    from .activation import BASIS_GIVEN
+    from dnmr.activation.eyring import BASIS_GIVEN
 
     emcee = require_emcee()
     t_obs, k = result.temperature_k, result.rate_per_s

@@ -32,9 +32,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg
 
-from .errors import InputError
-from .kinetics import Jump
-from .model import Model
+from dnmr.errors import InputError
+from dnmr.kinetics import Jump
+from dnmr.model import Model
 
 #: Relative asymmetry of K D below which detailed balance is taken to hold (the symmetric route).
 SYMMETRY_TOLERANCE = 1e-10

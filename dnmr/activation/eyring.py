@@ -86,8 +86,8 @@ from typing import TYPE_CHECKING, NamedTuple
 import numpy as np
 from scipy import stats
 
-from .errors import InputError, did_you_mean
-from .kinetics import (
+from dnmr.errors import InputError, did_you_mean
+from dnmr.kinetics import (
     BOLTZMANN,
     GAS_CONSTANT,
     KCAL_PER_KJ,
@@ -95,15 +95,15 @@ from .kinetics import (
     STANDARD_TEMPERATURE_K,
     eyring_barrier,
 )
-from .tables import check_kelvin, read_table
-from .notebook import NotebookView
-from .thermometry import TemperatureErrors
+from dnmr.io.tables import check_kelvin, read_table
+from dnmr.reporting.notebook import NotebookView
+from dnmr.activation.thermometry import TemperatureErrors
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
-    from .posterior import Posterior
-    from .thermometry import TemperatureCalibration
+    from dnmr.fitting.posterior import Posterior
+    from dnmr.activation.thermometry import TemperatureCalibration
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
@@ -1119,15 +1119,15 @@ class EyringResult(NotebookView):
         return self.report()
 
     def plot(self, figure: "Figure | None" = None) -> "Figure":
-        """Eyring plot with fit, 95 % confidence band and residuals (see :func:`dnmr.plotting.plot_eyring`)."""
-        from .plotting import plot_eyring
+        """Eyring plot with fit, 95 % confidence band and residuals (see :func:`dnmr.reporting.plotting.plot_eyring`)."""
+        from dnmr.reporting.plotting import plot_eyring
 
         return plot_eyring([self], figure=figure)
 
     def sample_posterior(self, **settings) -> "Posterior":
-        """Posterior samples of ΔH‡, ΔS‡ and ΔG‡ (needs emcee); see :func:`dnmr.posterior.sample_eyring_posterior`
+        """Posterior samples of ΔH‡, ΔS‡ and ΔG‡ (needs emcee); see :func:`dnmr.fitting.posterior.sample_eyring_posterior`
         for the method and the settings (steps, walkers, burn, thin, seed)."""
-        from .posterior import sample_eyring_posterior
+        from dnmr.fitting.posterior import sample_eyring_posterior
 
         return sample_eyring_posterior(self, **settings)
 
@@ -1350,7 +1350,7 @@ def eyring_fit_file(
         Standard error (K) of an unknown offset of the probe's temperature, shared by every row.
     calibration : TemperatureCalibration, optional
         The table's temperatures are set-points; replace them by calibrated sample temperatures and carry
-        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.thermometry`).
+        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.activation.thermometry`).
     flagged_rows : {"exclude", "widen"}
         Rows whose fit is flagged as a misfit or as shaped by a nuisance parameter at a limit: set aside
         (default) or fitted with widened errors (see the module notes).

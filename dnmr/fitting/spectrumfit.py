@@ -79,14 +79,14 @@ import lmfit
 import numpy as np
 from scipy import signal, stats
 
-from .engine import default_window_ppm, lineshape_terms
-from .errors import InputError, did_you_mean
-from .model import Model, parse_coupling_key
-from .readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
-from .notebook import NotebookView
+from dnmr.engine.blocks import default_window_ppm, lineshape_terms
+from dnmr.errors import InputError, did_you_mean
+from dnmr.model import Model, parse_coupling_key
+from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
+from dnmr.reporting.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .posterior import Posterior
+    from dnmr.fitting.posterior import Posterior
 
 PHASE_MODES = ("none", "zero-order", "first-order")
 LINEWIDTH_MODES = ("fixed", "shared", "per-state")
@@ -1358,15 +1358,15 @@ class SpectrumFit(NotebookView):
 
     def plot(self, figure=None):
         """Data, fit and residuals against ppm (high to low); returns the matplotlib Figure."""
-        from .plotting import plot_spectrum_fit
+        from dnmr.reporting.plotting import plot_spectrum_fit
 
         return plot_spectrum_fit(self, figure=figure)
 
     def sample_posterior(self, **settings) -> "Posterior":
         """Posterior samples of the free parameters (needs emcee); see
-        :func:`dnmr.posterior.sample_spectrum_posterior` for the method and the settings (steps, walkers,
+        :func:`dnmr.fitting.posterior.sample_spectrum_posterior` for the method and the settings (steps, walkers,
         burn, thin, seed, progress)."""
-        from .posterior import sample_spectrum_posterior
+        from dnmr.fitting.posterior import sample_spectrum_posterior
 
         return sample_spectrum_posterior(self, **settings)
 
@@ -1550,7 +1550,7 @@ def fit_spectrum(
     Parameters
     ----------
     spectrum : MeasuredSpectrum or path
-        The spectrum (read with :func:`dnmr.readers.read_spectrum` when a path is given).
+        The spectrum (read with :func:`dnmr.io.readers.read_spectrum` when a path is given).
     model : Model
         The spin model; its rates, linewidths, populations and shifts are the starting values.
     temperature_k : float, optional

@@ -11,9 +11,9 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from .errors import InputError, did_you_mean
-from .inputfiles import read_input_bytes
-from .model import Exchange, Model, Spectrometer, State
+from dnmr.errors import InputError, did_you_mean
+from dnmr.io.inputfiles import read_input_bytes
+from dnmr.model import Exchange, Model, Spectrometer, State
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -235,7 +235,7 @@ def load_model(path: str | Path) -> Model:
     InputError
         With the file name and the offending key, for any problem.
     """
-    from .engine import check_model_size
+    from dnmr.engine.blocks import check_model_size
 
     data = read_toml(path)
     try:

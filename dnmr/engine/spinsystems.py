@@ -1,6 +1,6 @@
 """A model as a sum of independent spin systems: the exact factorisation behind the engine.
 
-The engine (:mod:`dnmr.engine`) builds the Liouvillian of one spin system: particles of given spins over
+The engine (:mod:`dnmr.engine.blocks`) builds the Liouvillian of one spin system: particles of given spins over
 a set of states joined by jumps.  A model is cut into such systems by three exact reductions.
 
 Clusters
@@ -43,10 +43,10 @@ from math import comb
 
 import numpy as np
 
-from .kinetics import Jump, _permutation
-from .liouville import CoherenceBlock, coherence_blocks, largest_block_size
-from .model import Model
-from .nuclei import nucleus
+from dnmr.kinetics import Jump, _permutation
+from dnmr.engine.liouville import CoherenceBlock, coherence_blocks, largest_block_size
+from dnmr.model import Model
+from dnmr.nuclei import nucleus
 
 
 @dataclass(frozen=True)

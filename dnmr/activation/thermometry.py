@@ -10,7 +10,7 @@ J. Magn. Reson. 46, 319 (1982)), with dd = delta(OH) - delta(alkyl) in ppm:
 
 A calibration table (set-point against true temperature) is fitted by a low-order polynomial; applied to
 a series of set-points it gives true temperatures with their covariance — the calibration's errors are
-shared by all points — which :mod:`dnmr.activation` propagates into dH‡, dS‡ and dG‡.
+shared by all points — which :mod:`dnmr.activation.eyring` propagates into dH‡, dS‡ and dG‡.
 
 Read :data:`THERMOMETER_CAUTIONS` before using the thermometer samples.
 """
@@ -25,9 +25,9 @@ from typing import NamedTuple
 import numpy as np
 from scipy.signal import find_peaks, peak_widths
 
-from .errors import InputError, did_you_mean
-from .tables import check_kelvin, read_table
-from .notebook import NotebookView
+from dnmr.errors import InputError, did_you_mean
+from dnmr.io.tables import check_kelvin, read_table
+from dnmr.reporting.notebook import NotebookView
 
 THERMOMETER_CAUTIONS = (
     "Cautions: methanol is toxic (by swallowing, breathing its vapour and through the skin) and highly "
@@ -296,9 +296,9 @@ def temperature_from_file(
 ) -> ThermometerReading:
     """Read a thermometer spectrum file (text, JCAMP-DX or processed folder) and its temperature (K).
 
-    See :func:`temperature_from_spectrum`; the file is read by :func:`dnmr.readers.read_spectrum`.
+    See :func:`temperature_from_spectrum`; the file is read by :func:`dnmr.io.readers.read_spectrum`.
     """
-    from .readers import read_spectrum
+    from dnmr.io.readers import read_spectrum
 
     spectrum = read_spectrum(path, frequency_mhz=frequency_mhz)
     return temperature_from_spectrum(

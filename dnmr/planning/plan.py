@@ -1,7 +1,7 @@
 """Before the experiment: where signals coalesce, which temperatures to run, and whether the solvent copes.
 
 Coalescence from the engine
-    For every exchanging pair (:func:`dnmr.timescale.exchanging_pairs`) the pair is simulated on its own:
+    For every exchanging pair (:func:`dnmr.planning.timescale.exchanging_pairs`) the pair is simulated on its own:
     the two states of its process (one for a mutual exchange) with the spins that the process permutes
     together with it (one spin for a plain site exchange, both spins of an AB pair that swaps, ...),
     their couplings among themselves, the model's populations and linewidths, and only that process
@@ -20,7 +20,7 @@ Coalescence from the engine
     (1964)).  It is found by a scan over six decades of rate and bisection on log k, once with the
     model's linewidths and once in the narrow-line limit (widths 1e-6 of the separation), to show how a
     finite linewidth moves it.
-    A coupling-averaging pair (equal shifts, changed couplings; see :mod:`dnmr.timescale`) keeps the
+    A coupling-averaging pair (equal shifts, changed couplings; see :mod:`dnmr.planning.timescale`) keeps the
     partners whose couplings change (heteronuclei too) in its own model, and the maxima are counted over
     the spin's whole multiplet: coalescence is where their number falls to its fast-exchange value, for
     two fluorines swapping places under a proton the Gutowsky-Holm rate of |J(H,F1) - J(H,F2)|.
@@ -46,7 +46,7 @@ Plan
 
 Magnetisation transfer
     Below the lineshape window the same sample is measured by magnetisation transfer (``dnmr transfer``),
-    which determines k from about R1/5 to a few tens s^-1 (:func:`dnmr.timescale.transfer_windows`).  The
+    which determines k from about R1/5 to a few tens s^-1 (:func:`dnmr.planning.timescale.transfer_windows`).  The
     plan puts a few temperatures evenly in 1/T over that window (inside the usable range) and gives, at
     each, the times to record: the mixing time of a 2D exchange spectrum (or the delay at which a selective
     inversion shows the most transfer), where the cross peak of two-site exchange with equal R1,
@@ -68,13 +68,13 @@ from itertools import combinations
 
 import numpy as np
 
-from .engine import frequency_grid_ppm, lineshape_terms
-from .errors import InputError
-from .kinetics import GAS_CONSTANT
-from .model import Exchange, Model, State, coupling_key
-from .notebook import NotebookView
-from .solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
-from .timescale import (
+from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
+from dnmr.errors import InputError
+from dnmr.kinetics import GAS_CONSTANT
+from dnmr.model import Exchange, Model, State, coupling_key
+from dnmr.reporting.notebook import NotebookView
+from dnmr.planning.solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
+from dnmr.planning.timescale import (
     COUPLING_PAIR_NOTE,
     DEFAULT_DETECTABLE_FRACTION,
     REGIMES,
@@ -294,7 +294,7 @@ def coalescence_rate(model: Model, pair: ExchangingPair, narrow_limit: bool = Fa
 
 @dataclass(frozen=True)
 class Coalescence(PairAtField):
-    """Coalescence of one exchanging pair at one field (see :class:`~dnmr.timescale.PairAtField`).
+    """Coalescence of one exchanging pair at one field (see :class:`~dnmr.planning.timescale.PairAtField`).
 
     Attributes
     ----------
@@ -1241,7 +1241,7 @@ def plan_transfer(model: Model, activations: dict[int, ActivationParameters], wi
     limits : (float, float)
         Usable temperatures (K): probe and solvent.
     r1_per_s : float, optional
-        R1 (s^-1) instead of the model's (see :func:`dnmr.timescale.relaxation_rate`).
+        R1 (s^-1) instead of the model's (see :func:`dnmr.planning.timescale.relaxation_rate`).
     runs : int
         Temperatures per process (0: windows and ranges only).
     min_step_k : float
@@ -1326,8 +1326,8 @@ def plot_planned_stack(plan: ExperimentPlan, figure=None):
     -------
     matplotlib.figure.Figure
     """
-    from .plotting import plot_stack, plt
-    from .spectrum import simulate
+    from dnmr.reporting.plotting import plot_stack, plt
+    from dnmr.engine.spectrum import simulate
 
     shown = [f for f in plan.fields if f.temperatures]
     if not shown:

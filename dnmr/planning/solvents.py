@@ -22,7 +22,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .errors import InputError
+from dnmr.errors import InputError
 
 CELSIUS_ZERO_K = 273.15
 #: Temperatures this close (K) to freezing or boiling get a warning (common practice: keep ~10 K away).
@@ -166,7 +166,7 @@ def load_solvents(path: str | Path) -> list[Solvent]:
     InputError
         Naming the file and the key, for any problem.
     """
-    from .modelfile import check_keys, read_toml
+    from dnmr.io.modelfile import check_keys, read_toml
 
     data = read_toml(path)
     try:

@@ -3,7 +3,7 @@
 Series file (TOML; the first four keys are fixed by the project's interface contract)::
 
     model = "model.toml"              # relative to this file
-    [fit]                             # optional; every option of dnmr.fitting.FitOptions, plus
+    [fit]                             # optional; every option of dnmr.fitting.spectrumfit.FitOptions, plus
     region_ppm = [2.6, 3.8]
     shifts = "slow-exchange-trend"    # the default; "fixed" or "free"; likewise couplings, populations,
     linewidth = "slow-exchange-trend" # and linewidth (also "reference-line", "shared", "per-state")
@@ -17,7 +17,7 @@ Series file (TOML; the first four keys are fixed by the project's interface cont
     temperature_k = 240.0
     # optional per spectrum: frequency_mhz, axis, and the fit options region_ppm, noise_ppm, noise,
     # baseline_order, phase, frequency_offset, max_offset_hz, linewidth, parameters
-    processing = { line_broadening_hz = 0.5 }   # raw FIDs only (dnmr.processing); also series-wide as [processing]
+    processing = { line_broadening_hz = 0.5 }   # raw FIDs only (dnmr.io.processing); also series-wide as [processing]
 
 Fitting a series
 ----------------
@@ -41,7 +41,7 @@ intrinsic linewidth) are by default taken from the slow-exchange spectra ("slow-
    the linewidth on T over the spectra of the run whose rates are only upper bounds (elsewhere the
    linewidth and the exchange broadening k/pi trade against each other);
 3. every other spectrum is fitted with them held at the trend's value at its temperature, and the
-   trend's error there is carried into its rates (:mod:`dnmr.fitting`, held parameters with a stderr).
+   trend's error there is carried into its rates (:mod:`dnmr.fitting.spectrumfit`, held parameters with a stderr).
 
 A reference line (``[fit.reference_line]``, a signal in no exchange) gives the linewidth instead: it is
 fitted in every spectrum and its width held as the intrinsic linewidth, with its error.
@@ -85,19 +85,19 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError, did_you_mean
-from .fitting import (FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum,
+from dnmr.errors import InputError, did_you_mean
+from dnmr.fitting.spectrumfit import (FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum,
                       single_threaded_blas)
-from .kinetics import eyring_barrier, eyring_rate
-from .model import Model
-from .modelfile import check_keys, load_model, read_toml
-from .output import atomic_write_text, json_ready, save_figure
-from .inputfiles import regular_file_size
-from .nuclei import check_frequency_mhz
-from .readers import read_spectrum
-from .progress import ProgressReport
-from .tables import celsius_hints, check_kelvin
-from .notebook import NotebookView
+from dnmr.kinetics import eyring_barrier, eyring_rate
+from dnmr.model import Model
+from dnmr.io.modelfile import check_keys, load_model, read_toml
+from dnmr.io.output import atomic_write_text, json_ready, save_figure
+from dnmr.io.inputfiles import regular_file_size
+from dnmr.nuclei import check_frequency_mhz
+from dnmr.io.readers import read_spectrum
+from dnmr.io.progress import ProgressReport
+from dnmr.io.tables import celsius_hints, check_kelvin
+from dnmr.reporting.notebook import NotebookView
 
 TREND = "slow-exchange-trend"
 REFERENCE_LINE = "reference-line"
@@ -157,7 +157,7 @@ class SeriesSpectrum:
     flags : tuple of str
         Remarks found when reading the series (``duplicate-temperature``).
     processing : dict or None
-        How to process a raw FID (:class:`dnmr.processing.ProcessingOptions` as plain data).
+        How to process a raw FID (:class:`dnmr.io.processing.ProcessingOptions` as plain data).
     """
 
     file: Path
@@ -200,7 +200,7 @@ class ReferenceLine:
     def model(self, spectrometer, linewidth_hz: float) -> Model:
         """The reference line as a model without exchange (its partners as a group of a heteronucleus of
         their spin, which gives the same first-order multiplet)."""
-        from .model import State
+        from dnmr.model import State
 
         count, spin = MULTIPLICITIES[self.multiplicity]
         observed = spectrometer.isotope.symbol
@@ -349,7 +349,7 @@ def _options(table: Mapping, base: FitOptions | None, where: str) -> FitOptions:
 
 def _processing(table: Mapping, base: dict | None, where: str) -> dict | None:
     """Processing options of a raw FID (merged over the series' `base`), checked, as plain data."""
-    from .processing import ProcessingOptions
+    from dnmr.io.processing import ProcessingOptions
 
     if "processing" not in table:
         return base
@@ -542,7 +542,7 @@ def _job(series: Series, index: int, stage: str, options: FitOptions, hashes: Ma
     """The job of spectrum `index` at `stage`; `hashes` holds the SHA-256 of every input (by index, and
     "model"), which with the options and the stage makes the key a stored fit is reused by."""
     s = series.spectra[index]
-    from . import __version__
+    from dnmr import __version__
 
     identity = {"spectrum": hashes[index], "file": str(s.file), "temperature_k": s.temperature_k,
                 "frequency_mhz": s.frequency_mhz, "axis": s.axis, "options": options.to_dict(),
@@ -593,7 +593,7 @@ def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, p
     """Sample the posterior of one fit, save its pairwise posterior figure and store the summary in record[0] under
     the key record[1] (what ``--resume`` reuses; in a worker process); never raises: a failure comes back
     as {"error": ...} and is not stored."""
-    from .posterior import sample_spectrum_posterior
+    from dnmr.fitting.posterior import sample_spectrum_posterior
 
     try:
         posterior = sample_spectrum_posterior(_fit_from(model, fit_data, curves), **settings)
@@ -1160,7 +1160,7 @@ class SeriesFit(NotebookView):
 
     def plot(self, figure=None):
         """Measured and fitted spectra of the series, stacked by temperature; returns the Figure."""
-        from .plotting import plot_fit_stack
+        from dnmr.reporting.plotting import plot_fit_stack
 
         done = [o for o in self.by_temperature() if o.fitted]
         return plot_fit_stack([o.fit for o in done], [f"{o.spectrum.temperature_k:g} K" for o in done],
@@ -1692,7 +1692,7 @@ def _versions() -> dict:
     import lmfit
     import scipy
 
-    from . import __version__
+    from dnmr import __version__
 
     return {"dnmr": __version__, "python": platform.python_version(), "numpy": np.__version__,
             "scipy": scipy.__version__, "lmfit": lmfit.__version__}
@@ -1758,7 +1758,7 @@ def _shift_trend_record(trend: StaticTrend | None) -> dict | None:
 def _sample_posteriors(result: SeriesFit, runner: _Runner, settings: dict, hashes: Mapping) -> None:
     """Sample the posterior of every fitted spectrum (in the pool) and draw its pairwise posterior figure; on resume,
     a posterior stored for the same spectrum, model, fit and settings (and its figure) is reused."""
-    from . import __version__
+    from dnmr import __version__
 
     calls, where = [], []
     for i, o in enumerate(result.outcomes):
@@ -1823,7 +1823,7 @@ def fit_series(
     posterior : mapping, optional
         Also sample the posterior of every fitted spectrum (needs emcee; slow: about walkers x steps
         lineshape evaluations per spectrum) with these settings of
-        :func:`dnmr.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
+        :func:`dnmr.fitting.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
         the defaults).  The summaries go into results.json and at the end of rates.csv, a pairwise posterior figure
         per spectrum into ``figures/NNN_<name>_posterior.png``.  On `resume`, a posterior stored for the
         same spectrum, model, fit and settings is reused.
@@ -1834,7 +1834,7 @@ def fit_series(
         With ``exit_status`` 0 (all fitted), 2 (a spectrum failed for bad input) or 1 (a fit failed).
     """
     if posterior is not None:
-        from .posterior import require_emcee
+        from dnmr.fitting.posterior import require_emcee
 
         require_emcee(where="posterior")
     series = series if isinstance(series, Series) else load_series(series)

@@ -6,16 +6,16 @@ For every state c the density matrix obeys
                  + sum_jumps k (P rho_source P^T  into target)  -  (sum of rates out of c) rho_c,
 
 restricted to the observable single-quantum coherences and split into independent total-m blocks
-(:mod:`dnmr.liouville`).  The spectrum is
+(:mod:`dnmr.engine.liouville`).  The spectrum is
 
     S(nu) = 2 < F+ | (i 2 pi nu - L)^-1 | rho0 >,   rho0 = sum_c p_c F-_c / 2^(N-1),
 
 so that the absorption Re S integrates to sum_c p_c N over all frequencies, whatever the rates.  (For
 spins-1/2 the 2^(N-1) counts the transitions of each spin; a system with magnetically equivalent groups or
-heteronuclear partners is first cut into independent spin systems by :mod:`dnmr.spinsystems`, each weighted
+heteronuclear partners is first cut into independent spin systems by :mod:`dnmr.engine.spinsystems`, each weighted
 by its share of the full spin space, which keeps the same normalisation.)
 
-This module assembles each block's Liouvillian; :mod:`dnmr.resolvent` turns it into a spectrum by the
+This module assembles each block's Liouvillian; :mod:`dnmr.engine.resolvent` turns it into a spectrum by the
 best exact route for the block (eigen-lines, Schur form, or a Krylov continued fraction for large blocks).
 """
 from __future__ import annotations
@@ -27,7 +27,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy import sparse
 
-from .liouville import (
+from dnmr.engine.liouville import (
     CoherenceBlock,
     coupling_terms,
     detection_vector,
@@ -35,11 +35,11 @@ from .liouville import (
     permutation_map,
     zeeman_terms,
 )
-from .errors import InputError
-from .model import Model
-from . import resolvent
-from .resolvent import TWO_PI, LineshapeTerms, block_terms, combine
-from .spinsystems import SpinParameters, largest_block_bound, spin_systems  # a model as independent spin systems
+from dnmr.errors import InputError
+from dnmr.model import Model
+from dnmr.engine import resolvent
+from dnmr.engine.resolvent import TWO_PI, LineshapeTerms, block_terms, combine
+from dnmr.engine.spinsystems import SpinParameters, largest_block_bound, spin_systems  # a model as independent spin systems
 
 
 # --- assembling the Liouvillian -------------------------------------------------------------------
@@ -215,7 +215,7 @@ def lineshape_derivatives(model: Model, hz: np.ndarray) -> LineshapeDerivatives:
 
     The Liouvillian of a block is linear in the rates and in the linewidths, so each derivative dL is the
     block built from that parameter alone (jump rates d(rate)/dk, unit width of one state), and
-    dS = <F+| (z - L)^-1 dL (z - L)^-1 |rho0> (:func:`dnmr.resolvent.resolvent_derivatives`).  Every
+    dS = <F+| (z - L)^-1 dL (z - L)^-1 |rho0> (:func:`dnmr.engine.resolvent.resolvent_derivatives`).  Every
     block is solved densely by its Schur form, which costs O(n^3) per block and O(n^2) per point and
     parameter: meant for models whose blocks have up to a few hundred coherences.
 
@@ -296,7 +296,7 @@ def physical_memory_bytes() -> int | None:
 def check_model_size(model: Model) -> None:
     """Refuse a model too large to simulate from its counts of spins and groups alone, before any rate,
     temperature or basis state is needed (:func:`check_memory` of
-    :func:`~dnmr.spinsystems.largest_block_bound`)."""
+    :func:`~dnmr.engine.spinsystems.largest_block_bound`)."""
     check_memory(largest_block_bound(model))
 
 

@@ -23,7 +23,7 @@ if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.b
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .errors import InputError  # noqa: E402
+from dnmr.errors import InputError  # noqa: E402
 
 #: dnmr's palette: the only colours its figures use (sRGB hex).
 PALETTE = {
@@ -304,7 +304,7 @@ def plot_spectrum_fit(fit, *, figure=None):
     Parameters
     ----------
     fit : SpectrumFit
-        The fit (see :func:`dnmr.fitting.fit_spectrum`).
+        The fit (see :func:`dnmr.fitting.spectrumfit.fit_spectrum`).
     figure : matplotlib Figure, optional
         Figure to draw into (default: a new one).
 
@@ -342,7 +342,7 @@ def plot_transfer_fit(fit, *, figure=None):
     Parameters
     ----------
     fit : TransferFit
-        The fit (see :func:`dnmr.transfer.fit_transfer`).
+        The fit (see :func:`dnmr.fitting.transfer.fit_transfer`).
     figure : matplotlib Figure, optional
         Figure to draw into (default: a new one).
 
@@ -676,5 +676,5 @@ def _refuse_renamed(given: dict, renamed: dict[str, str]) -> None:
 
 def plot_corner(*args, **kwargs):
     """Renamed to :func:`plot_posterior_pairs` (its keyword ``truths`` to ``true_values``)."""
-    raise InputError("dnmr.plotting.plot_corner was renamed to plot_posterior_pairs (and its keyword "
+    raise InputError("dnmr.reporting.plotting.plot_corner was renamed to plot_posterior_pairs (and its keyword "
                      "'truths' to 'true_values'); the figure's look changed too", where="plot_corner")

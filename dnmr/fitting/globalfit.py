@@ -3,7 +3,7 @@
 Model
 -----
 Every spectrum i of the series (sample temperature T_i, K; its region, noise and nuisance terms as in
-:mod:`dnmr.fitting`) is predicted from one set of global parameters:
+:mod:`dnmr.fitting.spectrumfit`) is predicted from one set of global parameters:
 
 * rates: k_p(T_i) = (kB T_i / h) exp(dS‡_p / R) exp(-dH‡_p / (R T_i)) for every process p (Eyring,
   transmission coefficient 1); parameters ``enthalpy_kj_mol_<p>`` (kJ/mol), ``entropy_j_mol_k_<p>``
@@ -31,7 +31,7 @@ Any parameter the series file fixes in ``[fit.parameters]`` (``fixed = true``) i
 
 Method
 ------
-1. The ordinary two-step fit (:func:`dnmr.series.fit_series`) runs first into ``OUTDIR/two-step``: the
+1. The ordinary two-step fit (:func:`dnmr.fitting.series.fit_series`) runs first into ``OUTDIR/two-step``: the
    result to compare with, and the data, noise estimate, region and fit options of every spectrum.  The
    start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
    is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
@@ -50,14 +50,14 @@ Method
    processes.  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
    parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, times the noise correlation factor, widened by the global
-   reduced chi-square when that is significantly above 1 (the rule of :mod:`dnmr.fitting`).  The reduced
+   reduced chi-square when that is significantly above 1 (the rule of :mod:`dnmr.fitting.spectrumfit`).  The reduced
    chi-square is reported against the measured noise; when it is too high, every spectrum that does not
    fit to its noise is named, with what would lower its chi-square most (its shifts, linewidth,
    couplings, rate or populations free in that spectrum alone, each by one Gauss-Newton step) and the
    option that loosens that trend.
 4. With a calibration, its uncertainty is added.  The calibration gives the sample temperatures T with a
    covariance C_T (K^2): the curve's coefficient covariance, shared by all spectra, plus the scatter of
-   its points about the curve on the diagonal (:meth:`dnmr.thermometry.TemperatureCalibration.true_temperature`,
+   its points about the curve on the diagonal (:meth:`dnmr.activation.thermometry.TemperatureCalibration.true_temperature`,
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
@@ -84,21 +84,21 @@ import lmfit
 import numpy as np
 from scipy import optimize
 
-from .activation import EyringResult, eyring_fit_file, format_with_error
-from .engine import lineshape_terms
-from .errors import InputError
-from .fitting import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem, single_threaded_blas
-from .kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy
-from .model import Model, parse_coupling_key
-from .output import atomic_write_text, json_ready, save_figure
-from .progress import PLAIN_INTERVAL_S, ProgressReport
-from .series import Series, SeriesFit, fit_series, load_series
-from .notebook import NotebookView
+from dnmr.activation.eyring import EyringResult, eyring_fit_file, format_with_error
+from dnmr.engine.blocks import lineshape_terms
+from dnmr.errors import InputError
+from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem, single_threaded_blas
+from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy
+from dnmr.model import Model, parse_coupling_key
+from dnmr.io.output import atomic_write_text, json_ready, save_figure
+from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
+from dnmr.fitting.series import Series, SeriesFit, fit_series, load_series
+from dnmr.reporting.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
-    from .thermometry import TemperatureCalibration
+    from dnmr.activation.thermometry import TemperatureCalibration
 
 TREND_DEGREES = {"constant": 0, "linear": 1, "quadratic": 2}
 TREND_SUFFIXES = ("", "_per_k", "_per_k2")
@@ -1176,7 +1176,7 @@ class GlobalFit(NotebookView):
 
     def plot_residuals(self, figure: "Figure | None" = None) -> "Figure":
         """Residuals over each spectrum's noise, (data - fit) / sigma, stacked by temperature."""
-        from .plotting import plot_residual_stack
+        from dnmr.reporting.plotting import plot_residual_stack
 
         order = np.argsort(self.temperatures_k)
         return plot_residual_stack([self.fits[i] for i in order], [f"{self.temperatures_k[i]:.1f} K" for i in order],
@@ -1184,7 +1184,7 @@ class GlobalFit(NotebookView):
 
     def plot(self, figure: "Figure | None" = None) -> "Figure":
         """Every spectrum (black) with the global fit (red), stacked by temperature."""
-        from .plotting import plot_fit_stack
+        from dnmr.reporting.plotting import plot_fit_stack
 
         order = np.argsort(self.temperatures_k)
         return plot_fit_stack([self.fits[i] for i in order], [f"{self.temperatures_k[i]:.1f} K" for i in order],

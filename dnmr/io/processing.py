@@ -57,8 +57,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
-from .readers import MAX_POINTS, MIN_POINTS, RAW_FORMATS, MeasuredSpectrum, _assemble, _reconcile_frequency
+from dnmr.errors import InputError
+from dnmr.io.readers import MAX_POINTS, MIN_POINTS, RAW_FORMATS, MeasuredSpectrum, _assemble, _reconcile_frequency
 
 PIPE_MAGIC = 2.345
 """The number NMRPipe writes as the third float of its header (its byte-order check)."""
@@ -112,7 +112,7 @@ class ProcessingOptions:
     @classmethod
     def from_mapping(cls, table: Mapping) -> "ProcessingOptions":
         """Options from a table of the attribute names (a ``processing`` table of a series file)."""
-        from .modelfile import check_keys
+        from dnmr.io.modelfile import check_keys
 
         allowed = {f.name for f in cls.__dataclass_fields__.values()}
         check_keys(table, allowed, "")

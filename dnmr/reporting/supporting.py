@@ -16,7 +16,7 @@ print them: the error to two significant figures, the value to the same decimal 
 
 :func:`rate_rows_from_table` builds the rates from a rates.csv of ``dnmr fit`` (and a calibration),
 :func:`rate_rows_from_global` from the global fit's global.json; :func:`activation_rows` takes the
-results of :mod:`dnmr.activation` or the processes of global.json (the same keys).
+results of :mod:`dnmr.activation.eyring` or the processes of global.json (the same keys).
 :func:`write_supporting_tables` writes the files (atomically, never over existing ones unless asked).
 """
 from __future__ import annotations
@@ -30,10 +30,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .activation import format_with_error
-from .errors import InputError
-from .kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K
-from .output import atomic_write_text
+from dnmr.activation.eyring import format_with_error
+from dnmr.errors import InputError
+from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K
+from dnmr.io.output import atomic_write_text
 
 #: The folder, inside a results folder, that holds the supporting-information tables.
 SUPPORTING_FOLDER = "supporting-information"
@@ -216,8 +216,8 @@ def rate_rows_from_global(g: dict) -> list[SupportingRate]:
 
 
 def activation_rows(results: Iterable) -> list[SupportingActivation]:
-    """The activation table from :class:`dnmr.activation.EyringResult` objects or from dicts with their
-    :meth:`~dnmr.activation.EyringResult.to_dict` keys (the processes of global.json have them too)."""
+    """The activation table from :class:`dnmr.activation.eyring.EyringResult` objects or from dicts with their
+    :meth:`~dnmr.activation.eyring.EyringResult.to_dict` keys (the processes of global.json have them too)."""
     out = []
     for result in results:
         d = result if isinstance(result, dict) else result.to_dict()

@@ -15,7 +15,7 @@ Three exact routes, chosen per block; each only moves rounding error:
   basis, instead of the O(n^3) of a dense eigendecomposition; it is refused on a (rare) serious
   breakdown or when its basis grows ill-conditioned, and the eigen route is used instead.  Where numba is
   installed (the optional extra ``fast``) the Lanczos recursion and the continued fraction run as the
-  compiled loops of :mod:`dnmr.kernels`, the same algorithms step for step.
+  compiled loops of :mod:`dnmr.engine.kernels`, the same algorithms step for step.
 """
 from __future__ import annotations
 
@@ -40,15 +40,15 @@ KRYLOV_MIN_SIZE = 80
 SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
-#: Use the compiled loops of :mod:`dnmr.kernels` on the Krylov route where numba is installed (set to
+#: Use the compiled loops of :mod:`dnmr.engine.kernels` on the Krylov route where numba is installed (set to
 #: False to force the numpy loops, which are the reference).
 USE_COMPILED = True
 
-_KERNELS: list = []  # the imported dnmr.kernels, or None without numba, once looked for
+_KERNELS: list = []  # the imported dnmr.engine.kernels, or None without numba, once looked for
 
 
 def compiled_kernels():
-    """:mod:`dnmr.kernels` when numba is installed and :data:`USE_COMPILED` is set, else None.
+    """:mod:`dnmr.engine.kernels` when numba is installed and :data:`USE_COMPILED` is set, else None.
 
     Imported on first use, that is only when a block goes the Krylov route, so that simulations of small
     systems (and every command's start) never load numba."""
@@ -344,7 +344,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
     keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy;
     a step costs a sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and
-    then (about one step in ten for six to eight spins).  The compiled loop (:func:`dnmr.kernels.lanczos`)
+    then (about one step in ten for six to eight spins).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
     is taken where available.  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).

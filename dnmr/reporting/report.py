@@ -32,11 +32,11 @@ Temperatures
 Neither the series file nor ``results.json`` records a temperature calibration: the rates carry the
 temperatures the series file gives.  The Eyring analysis therefore uses a calibration only when one is
 passed (``calibration=`` or ``--calibration CAL.csv``); the temperatures in rates.csv are then taken as
-set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.thermometry`).  The report
+set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.activation.thermometry`).  The report
 states which of the two was done.
 
 Beside the report, ``supporting-information/`` receives the supporting-information tables of
-:mod:`dnmr.supporting` (CSV, Markdown, LaTeX) and the Eyring figure in the chosen figure format; the
+:mod:`dnmr.reporting.supporting` (CSV, Markdown, LaTeX) and the Eyring figure in the chosen figure format; the
 report shows the rates table too.  With a calibration every table shows the set-point beside the sample
 temperature and its error, and the cautions add the thermometer liquids'.  The report names files relative
 to its own folder: no absolute path of the user's machine is written into it.
@@ -60,15 +60,15 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .activation import EyringResult, eyring_fit_file, format_with_error
-from .errors import InputError
-from .kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
-from .model import Model
-from .modelfile import load_model
-from .output import atomic_write_text, chosen_figure_format, figure_file, figures_as
-from .planning import CAUTIONS
-from .series import file_sha256
-from .thermometry import THERMOMETER_CAUTIONS, TemperatureCalibration, read_temperature_calibration
+from dnmr.activation.eyring import EyringResult, eyring_fit_file, format_with_error
+from dnmr.errors import InputError
+from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
+from dnmr.model import Model
+from dnmr.io.modelfile import load_model
+from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as
+from dnmr.planning.plan import CAUTIONS
+from dnmr.fitting.series import file_sha256
+from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, TemperatureCalibration, read_temperature_calibration
 
 REPORT_NAME = "report.html"
 INPUT_NAMES = ("results.json", "rates.csv", "global.json")
@@ -278,7 +278,7 @@ def figure_html(data: bytes, caption: str, alt: str) -> str:
 
 def written_figure(path: Path) -> Path | None:
     """The figure asked for at `path` as written: with the suffix of any figure format (PNG first), or None."""
-    from .output import FIGURE_FORMAT_CHOICES
+    from dnmr.io.output import FIGURE_FORMAT_CHOICES
 
     found = [path.with_suffix("." + f) for f in FIGURE_FORMAT_CHOICES if path.with_suffix("." + f).is_file()]
     return found[0] if found else None
@@ -599,7 +599,7 @@ def eyring_section(inputs: ReportInputs) -> str:
     """Eyring plot made here, the calibration and the full analysis of each process."""
     if not inputs.eyring:
         return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
-    from .plotting import plot_eyring
+    from dnmr.reporting.plotting import plot_eyring
 
     body = figure_html(figure_png(plot_eyring(inputs.eyring)),
                        "Eyring plot: ln(k/T) against 1000/T with the fitted line, its 95 % band and the residuals",
@@ -635,7 +635,7 @@ def warnings_section(inputs: ReportInputs) -> str:
 
 
 def cautions_section(thermometer: bool = False) -> str:
-    """Safety cautions for variable-temperature work (dnmr.planning.CAUTIONS), and those of the thermometer
+    """Safety cautions for variable-temperature work (dnmr.planning.plan.CAUTIONS), and those of the thermometer
     liquids when a temperature calibration was used."""
     return section("cautions", "Safety cautions", bullets(CAUTIONS + ((THERMOMETER_CAUTIONS,) if thermometer else ())))
 
@@ -655,7 +655,7 @@ def _report_versions() -> dict:
     import matplotlib
     import numpy
 
-    from . import __version__
+    from dnmr import __version__
 
     return {"dnmr": __version__, "python": platform.python_version(), "numpy": numpy.__version__,
             "matplotlib": matplotlib.__version__}
@@ -958,14 +958,14 @@ def write_report(
         rates join the Eyring analysis and the supporting-information tables (not for a global fit).
     figure_format : {"png", "svg", "pdf"}, optional
         Format of the Eyring figure written beside the supporting-information tables (default: the one
-        :func:`dnmr.output.figures_as` chose, else PNG).
+        :func:`dnmr.io.output.figures_as` chose, else PNG).
 
     Returns
     -------
     Path
         The file written.  Beside it, in ``supporting-information/`` (see :func:`supporting_folder`), the
         supporting-information tables
-        (:mod:`dnmr.supporting`: si_rates.csv, si_activation.csv, si_tables.md, si_tables.tex) and, for a
+        (:mod:`dnmr.reporting.supporting`: si_rates.csv, si_activation.csv, si_tables.md, si_tables.tex) and, for a
         series fit, the Eyring figure.  The report names every file relative to its own folder.
 
     Raises
@@ -1030,7 +1030,7 @@ def _temperature_columns_text(inputs: ReportInputs) -> str:
 
 @dataclass
 class SupportingRows:
-    """The rows of the supporting-information tables (see :mod:`dnmr.supporting`)."""
+    """The rows of the supporting-information tables (see :mod:`dnmr.reporting.supporting`)."""
 
     rates: list
     activation: list
@@ -1040,7 +1040,7 @@ class SupportingRows:
 def supporting_rows(inputs: ReportInputs) -> SupportingRows:
     """The supporting-information tables of a series fit: its rates.csv and those of the transfer folders
     (sample temperatures through the calibration when one is given), and its Eyring analysis."""
-    from .supporting import activation_rows, rate_rows_from_table
+    from dnmr.reporting.supporting import activation_rows, rate_rows_from_table
 
     rows = list(inputs.rates) + [row for t in inputs.transfer for row in t.rates]
     title = inputs.model.title if inputs.model is not None and inputs.model.title else inputs.outdir.resolve().name
@@ -1054,14 +1054,14 @@ def supporting_rows(inputs: ReportInputs) -> SupportingRows:
 def global_supporting_rows(g: dict) -> SupportingRows:
     """The supporting-information tables of a global fit (global.json): the global line's rate at each
     sample temperature, and the global activation parameters."""
-    from .supporting import activation_rows, rate_rows_from_global
+    from dnmr.reporting.supporting import activation_rows, rate_rows_from_global
 
     return SupportingRows(rate_rows_from_global(g), activation_rows(g["processes"]), "global fit")
 
 
 def supporting_section(rows: SupportingRows) -> str:
     """The supporting-information tables as the report shows them, and the files that hold them."""
-    from .supporting import ACTIVATION_STEM, RATES_STEM, SUPPORTING_FOLDER, TABLES_STEM, rate_table_cells, rates_note
+    from dnmr.reporting.supporting import ACTIVATION_STEM, RATES_STEM, SUPPORTING_FOLDER, TABLES_STEM, rate_table_cells, rates_note
 
     calibrated = any(math.isfinite(r.setpoint_k) for r in rows.rates)
     header, cells = rate_table_cells(rows.rates, calibrated)
@@ -1078,7 +1078,7 @@ def supporting_section(rows: SupportingRows) -> str:
 def supporting_folder(report: Path) -> Path:
     """The folder of a report's supporting-information tables: ``supporting-information`` beside report.html,
     ``<name>-supporting-information`` beside a report of another name (each report keeps its own)."""
-    from .supporting import SUPPORTING_FOLDER
+    from dnmr.reporting.supporting import SUPPORTING_FOLDER
 
     name = SUPPORTING_FOLDER if report.name == REPORT_NAME else f"{report.stem}-{SUPPORTING_FOLDER}"
     return report.parent / name
@@ -1087,9 +1087,9 @@ def supporting_folder(report: Path) -> Path:
 def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
     """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into the
     folder `target`."""
-    from .output import save_figure
-    from .plotting import plot_eyring
-    from .supporting import write_supporting_tables
+    from dnmr.io.output import save_figure
+    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.reporting.supporting import write_supporting_tables
 
     figure = target / "eyring.png"
     if eyring and figure_file(figure).exists() and not overwrite:

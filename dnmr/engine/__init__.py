@@ -1,0 +1,3 @@
+"""The engine: Liouville-space building blocks, spin systems, block Liouvillians, the resolvent
+and the simulated spectrum.  Imports only the model layer (dnmr.errors, dnmr.nuclei, dnmr.model,
+dnmr.kinetics)."""

@@ -1,0 +1,2 @@
+"""Figures, the HTML report, supporting-information tables and notebook views.  May import every
+wing below the command line."""
