@@ -401,7 +401,7 @@ def test_a_model_too_large_for_memory_is_refused_in_one_line(monkeypatch, tmp_pa
     from dnmr.cli import cli
 
     assert resolvent.krylov_basis_bytes(52920) == 16 * 52920**2
-    monkeypatch.setattr(engine, "physical_memory_bytes", lambda: 64 * 2**30)
+    monkeypatch.setattr(blocks, "physical_memory_bytes", lambda: 64 * 2**30)
     names = [f"H{i}" for i in range(10)]
     state = dnmr.State("s", {n: 1.0 + 0.3 * i for i, n in enumerate(names)},
                        {f"{a}-{b}": 7.0 for a, b in zip(names, names[1:])}, linewidth_hz=1.0, population=1)
@@ -413,7 +413,7 @@ def test_a_model_too_large_for_memory_is_refused_in_one_line(monkeypatch, tmp_pa
     couplings = ", ".join(f'"{a}-{b}" = 7.0' for a, b in zip(names, names[1:]))
     path.write_text(f'[spectrometer]\nnucleus = "1H"\nfrequency_mhz = 400.0\n[[state]]\nname = "s"\npopulation = 1\n'
                     f'linewidth_hz = 1.0\nshifts_ppm = {{ {shifts} }}\ncouplings_hz = {{ {couplings} }}\n')
-    monkeypatch.setattr(engine, "physical_memory_bytes", lambda: 2**30)
+    monkeypatch.setattr(blocks, "physical_memory_bytes", lambda: 2**30)
     result = CliRunner().invoke(cli, ["simulate", str(path), "-o", str(tmp_path / "out.csv")])
     assert result.exit_code == 2 and result.stderr.strip().count("\n") == 0
     assert "Lanczos basis needs" in result.stderr and "Traceback" not in result.output
