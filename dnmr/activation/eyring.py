@@ -87,6 +87,7 @@ import numpy as np
 from scipy import stats
 
 from dnmr.errors import InputError, did_you_mean
+from dnmr.formatting import format_with_error
 from dnmr.kinetics import (
     BOLTZMANN,
     GAS_CONSTANT,
@@ -1506,16 +1507,6 @@ def _warnings(result: EyringResult) -> list[str]:
 # --------------------------------------------------------------------------------------------------
 # Report
 # --------------------------------------------------------------------------------------------------
-
-
-def format_with_error(value: float, stderr: float, digits: int = 2) -> str:
-    """'value ± stderr' rounded to `digits` significant figures of the error ('± n.d.' if undetermined)."""
-    if not np.isfinite(stderr):
-        return f"{value:.4g} ± n.d."
-    if stderr == 0:
-        return f"{value:.6g} ± 0"
-    decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(stderr)))))
-    return f"{value:.{decimals}f} ± {stderr:.{decimals}f}"
 
 
 def _heading(text: str, rule: str = "-") -> list[str]:

@@ -75,7 +75,6 @@ import json
 import math
 import os
 from collections.abc import Callable, Sequence
-from concurrent import futures
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -84,11 +83,14 @@ import lmfit
 import numpy as np
 from scipy import optimize
 
-from dnmr.activation.eyring import EyringResult, eyring_fit_file, format_with_error
+from dnmr.activation.eyring import EyringResult, eyring_fit_file
+from dnmr.formatting import format_with_error
 from dnmr.engine.blocks import lineshape_terms
+from dnmr.fitting.workers import process_pool, worker_payload
 from dnmr.errors import InputError
-from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem, single_threaded_blas
-from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy
+from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem
+from dnmr.fitting.workers import single_threaded_blas
+from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy)
 from dnmr.model import Model, parse_coupling_key
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
@@ -529,17 +531,6 @@ def _nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p:
     return None
 
 
-_WORKER_PROBLEM: _GlobalProblem | None = None
-_WORKER_BLAS = None
-
-
-def _start_worker(problem: _GlobalProblem | None = None) -> None:
-    """Initialise a worker process: BLAS on one thread, and the problem it evaluates (if any)."""
-    global _WORKER_PROBLEM, _WORKER_BLAS
-    _WORKER_BLAS = single_threaded_blas()
-    _WORKER_PROBLEM = problem
-
-
 def _blocks(problem: _GlobalProblem, kind: str, x: np.ndarray, ks: Sequence[int]) -> list:
     """Residuals, Jacobian blocks, temperature derivatives or nuisance refits (`kind`) of spectra `ks` at `x`."""
     work = {"residual": problem.member_residual, "jacobian": problem.member_jacobian,
@@ -548,7 +539,7 @@ def _blocks(problem: _GlobalProblem, kind: str, x: np.ndarray, ks: Sequence[int]
 
 
 def _worker_blocks(kind: str, x: np.ndarray, ks: Sequence[int]) -> list:
-    return _blocks(_WORKER_PROBLEM, kind, x, ks)
+    return _blocks(worker_payload(), kind, x, ks)
 
 
 def _refit_nuisance_of(problem: _GlobalProblem, k: int, x: np.ndarray) -> np.ndarray:
@@ -588,7 +579,7 @@ class _Evaluator:
         n = len(problem.members)
         self.workers = max(1, min(workers, n))
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
-        self.pool = (futures.ProcessPoolExecutor(self.workers, initializer=_start_worker, initargs=(problem,))
+        self.pool = (process_pool(self.workers, problem)
                      if self.workers > 1 else None)
 
     def close(self) -> None:

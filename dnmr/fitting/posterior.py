@@ -54,6 +54,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from dnmr.formatting import significant
 from dnmr.errors import InputError
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
 from dnmr.reporting.notebook import NotebookView
@@ -133,13 +134,13 @@ class PosteriorSummary:
     def describe(self) -> str:
         """One line: ``median 121 (68 %: 118 to 124; 95 %: 115 to 127)`` or ``< 3.1 (95 % upper bound)``."""
         if self.kind == "upper-bound":
-            return f"< {_num(self.bound_95)} (95 % upper bound from the posterior; no lower limit)"
+            return f"< {significant(self.bound_95)} (95 % upper bound from the posterior; no lower limit)"
         if self.kind == "lower-bound":
-            return f"> {_num(self.bound_95)} (95 % lower bound from the posterior; no upper limit)"
+            return f"> {significant(self.bound_95)} (95 % lower bound from the posterior; no upper limit)"
         if self.kind == "undetermined":
             return "not determined: the posterior is the prior"
-        return (f"{_num(self.median, 5)}   68 %: {_num(self.ci68[0], 5)} to {_num(self.ci68[1], 5)}   "
-                f"95 %: {_num(self.ci95[0], 5)} to {_num(self.ci95[1], 5)}")
+        return (f"{significant(self.median, 5)}   68 %: {significant(self.ci68[0], 5)} to {significant(self.ci68[1], 5)}   "
+                f"95 %: {significant(self.ci95[0], 5)} to {significant(self.ci95[1], 5)}")
 
     def to_dict(self) -> dict:
         """Plain data (JSON-ready; NaN stays NaN, write it as null)."""
@@ -308,10 +309,6 @@ class Posterior(NotebookView):
                                     figure=figure, **renamed)
 
 
-def _num(x: float, digits: int = 3) -> str:
-    return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
-
-
 def _settings(steps: int, walkers: int | None, burn: int | None, thin: int, dimensions: int) -> tuple[int, int]:
     """Check the sampler settings; returns the walkers (default 32, or two per sampled parameter and two more
     where that is more) and the burn-in (default a quarter of the steps)."""
@@ -469,7 +466,8 @@ def sample_spectrum_posterior(
     """
     import lmfit
 
-    from dnmr.fitting.spectrumfit import ParameterLayout, _Problem, single_threaded_blas
+    from dnmr.fitting.spectrumfit import ParameterLayout, _Problem
+    from dnmr.fitting.workers import single_threaded_blas
 
     require_emcee()
     layout = ParameterLayout.for_model(fit.best_model, fit.options)

@@ -77,7 +77,6 @@ import json
 import math
 import os
 import platform
-import sys
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -85,9 +84,10 @@ from pathlib import Path
 
 import numpy as np
 
+from dnmr.fitting.workers import process_pool
 from dnmr.errors import InputError, did_you_mean
-from dnmr.fitting.spectrumfit import (FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum,
-                      single_threaded_blas)
+from dnmr.fitting.spectrumfit import FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum
+from dnmr.fitting.workers import single_threaded_blas
 from dnmr.kinetics import eyring_barrier, eyring_rate
 from dnmr.model import Model
 from dnmr.io.modelfile import check_keys, load_model, read_toml
@@ -1245,8 +1245,7 @@ class _Runner:
 
     def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
-        self.pool = futures.ProcessPoolExecutor(max_workers=workers, initializer=_worker_start,
-                                              initargs=(os.getpid(),)) if workers > 1 else None
+        self.pool = process_pool(workers) if workers > 1 else None
 
     def close(self) -> None:
         if self.pool is not None:
@@ -1339,45 +1338,6 @@ class _Runner:
         for _ in futures.as_completed(pending):
             advance()
         return [f.result() for f in pending]
-
-
-_WORKER_BLAS_LIMIT = None
-
-
-def _worker_start(parent_pid: int) -> None:
-    """Initialise a worker process: it dies with the process that started it (`parent_pid`), and BLAS
-    runs on one thread for the life of the process."""
-    global _WORKER_BLAS_LIMIT
-    _die_with_parent(parent_pid)
-    _WORKER_BLAS_LIMIT = single_threaded_blas()
-
-
-def _die_with_parent(parent_pid: int) -> None:
-    """End this worker when its parent ends, so that no orphan goes on computing and holding the parent's
-    stdout and stderr open (a caller reading them would wait for ever).
-
-    On Linux the kernel sends SIGKILL on the parent's death (prctl PR_SET_PDEATHSIG); everywhere a
-    watchdog thread also checks once a second that the parent is still the one that started us.
-    """
-    import signal
-    import threading
-
-    if sys.platform.startswith("linux"):
-        try:
-            import ctypes
-
-            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1: PR_SET_PDEATHSIG
-        except (OSError, AttributeError):  # no libc to call: the watchdog alone
-            pass
-    if os.getppid() != parent_pid:  # the parent ended before the request above took effect
-        os._exit(1)
-
-    def watch() -> None:
-        while os.getppid() == parent_pid:
-            time.sleep(1.0)
-        os._exit(1)
-
-    threading.Thread(target=watch, name="dnmr-parent-watchdog", daemon=True).start()
 
 
 def _future_result(future) -> dict:

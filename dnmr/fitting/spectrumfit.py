@@ -66,7 +66,6 @@ Method
 """
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import math
 import re
@@ -80,6 +79,8 @@ import numpy as np
 from scipy import signal, stats
 
 from dnmr.engine.blocks import default_window_ppm, lineshape_terms
+from dnmr.fitting.workers import single_threaded_blas
+from dnmr.formatting import significant
 from dnmr.errors import InputError, did_you_mean
 from dnmr.model import Model, parse_coupling_key
 from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
@@ -1115,16 +1116,16 @@ class RateEstimate:
         """One line: ``k = 123 ± 5 s^-1`` or ``k < 3.1 s^-1 (upper bound)``."""
         k = self.rate_per_s
         if self.status == "determined":
-            return f"k = {_num(k)} ± {_num(self.rate_stderr, 2)} s^-1   (log10 k = {self.log10_rate:.3f} ± {self.log10_stderr:.3f})"
+            return f"k = {significant(k)} ± {significant(self.rate_stderr, 2)} s^-1   (log10 k = {self.log10_rate:.3f} ± {self.log10_stderr:.3f})"
         if self.status == "interval":
-            return f"k = {_num(k)} s^-1, 68 % interval {_num(self.rate_lower)} to {_num(self.rate_upper)} s^-1"
+            return f"k = {significant(k)} s^-1, 68 % interval {significant(self.rate_lower)} to {significant(self.rate_upper)} s^-1"
         if self.status == "upper-bound":
-            return f"k < {_num(self.rate_upper)} s^-1 (upper bound; best fit {_num(k)})"
+            return f"k < {significant(self.rate_upper)} s^-1 (upper bound; best fit {significant(k)})"
         if self.status == "lower-bound":
-            return f"k > {_num(self.rate_lower)} s^-1 (lower bound; best fit {_num(k)})"
+            return f"k > {significant(self.rate_lower)} s^-1 (lower bound; best fit {significant(k)})"
         if self.status == "fixed":
-            return f"k = {_num(k)} s^-1 (fixed)"
-        return f"k not determined (best fit {_num(k)} s^-1)"
+            return f"k = {significant(k)} s^-1 (fixed)"
+        return f"k not determined (best fit {significant(k)} s^-1)"
 
     def to_dict(self) -> dict:
         """Plain data (JSON-ready; NaN stays NaN, write it as null)."""
@@ -1153,10 +1154,6 @@ class RateEstimate:
 def _or(value, default):
     """`value`, or `default` where JSON had null."""
     return default if value is None else value
-
-
-def _num(x: float, digits: int = 3) -> str:
-    return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
 
 
 @dataclass(frozen=True)
@@ -1519,20 +1516,6 @@ def _bound_flags(params: lmfit.Parameters, rate_names) -> tuple[list[str], list[
             flags.append(f"at-bound:{par.name}")
             notes.append(f"{par.name} ended at its bound ({par.value:.4g}); widen the bound or fix it")
     return flags, notes
-
-
-def single_threaded_blas():
-    """Limit BLAS (OpenBLAS, MKL) to one thread in this process, for as long as the returned object lives.
-
-    The lineshape blocks are small matrices, where BLAS threads only contend: with them a series fit
-    ran about twice as slowly on two cores, serially and in parallel alike (benchmarks/fit_speed.py).
-    Uses threadpoolctl when it is installed; without it, BLAS keeps its own setting.
-    """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # optional: only speed is lost
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
 
 
 def fit_spectrum(

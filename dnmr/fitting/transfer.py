@@ -53,12 +53,12 @@ from dnmr.fitting.spectrumfit import (
     _error_scale,
     _identifier,
     _minimize,
-    _num,
     _profile,
     parameter_record,
     _stderr,
     PROFILE_RESTARTS,
 )
+from dnmr.formatting import significant
 from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
 from dnmr.model import Model
 from dnmr.io.modelfile import check_keys, load_model, read_toml
@@ -621,14 +621,14 @@ class TransferFit:
             if r.reason and r.status != "determined":
                 lines.append(f"  {'':<{width}}  ({r.reason})")
         for label, (value, err) in self.relaxation().items():
-            lines.append(f"  R1 {label}: {_num(value, 4)} s^-1" + (f" ± {_num(err, 2)}" if np.isfinite(err) else " (fixed or tied)"))
+            lines.append(f"  R1 {label}: {significant(value, 4)} s^-1" + (f" ± {significant(err, 2)}" if np.isfinite(err) else " (fixed or tied)"))
         if "inversion_efficiency" in self.parameters:
             par = self.parameters["inversion_efficiency"]
             lines.append(f"  inversion efficiency {par.value:.3f}" + (f" ± {_stderr(par):.3f}" if par.vary else " (fixed)"))
         combined = self.matrix_method[-1] if self.matrix_method else None
         if combined is not None:
             for r, k, s in zip(self.rates, combined.process_rates, combined.process_stderr):
-                lines.append(f"  matrix method {r.process}: k = {_num(k)} ± {_num(s, 2)} s^-1")
+                lines.append(f"  matrix method {r.process}: k = {significant(k)} ± {significant(s, 2)} s^-1")
         lines += [f"  note: {n}" for n in self.notes]
         return "\n".join(lines)
 
@@ -711,7 +711,7 @@ def _fit(experiment: Experiment) -> TransferFit:
         floor = 1e-12 * float(np.nanmax(np.abs(problem.data)))  # noiseless data: a tiny error, not a division by 0
         sigma = given if given is not None else max(math.sqrt(best.chisqr / dof), floor)
         if given is None:
-            notes.append(f"no errors given: the scatter of the residuals ({_num(sigma)} per point) is taken as the "
+            notes.append(f"no errors given: the scatter of the residuals ({significant(sigma)} per point) is taken as the "
                          "error of each point")
         problem.sigma = np.full_like(problem.data, sigma)
         best = _minimize(problem, best.params)
@@ -760,11 +760,11 @@ def _transfer_estimate(estimate: RateEstimate, problem: _TransferProblem, params
     times = problem.experiment.data.times_s
     longest, shortest = float(times.max()), float(times[times > 0].min()) if np.any(times > 0) else math.nan
     if estimate.status == "upper-bound":
-        reason = (f"slow-exchange limit of magnetisation transfer: k up to {_num(estimate.rate_upper)} s^-1 moves "
-                  f"too little magnetisation within T1 (R1 about {_num(min(r1))} to {_num(max(r1))} s^-1) and the "
+        reason = (f"slow-exchange limit of magnetisation transfer: k up to {significant(estimate.rate_upper)} s^-1 moves "
+                  f"too little magnetisation within T1 (R1 about {significant(min(r1))} to {significant(max(r1))} s^-1) and the "
                   f"longest time ({longest:g} s) for the noise to show it; any smaller k fits as well")
     elif estimate.status == "lower-bound":
-        reason = (f"fast-exchange limit of magnetisation transfer: for any k above {_num(estimate.rate_lower)} s^-1 "
+        reason = (f"fast-exchange limit of magnetisation transfer: for any k above {significant(estimate.rate_lower)} s^-1 "
                   f"the sites have exchanged their magnetisation before the shortest time ({shortest:g} s); "
                   "shorter delays or mixing times would measure it")
     else:
@@ -884,12 +884,12 @@ def _matrix_checks(rates: np.ndarray, stderr: np.ndarray, m_eq: np.ndarray, conn
             if i == j:
                 continue
             k, s = rates[i, j], stderr[i, j]
-            name = f"k({labels[j]} -> {labels[i]}) = {_num(k)} ± {_num(s, 2)} s^-1"
+            name = f"k({labels[j]} -> {labels[i]}) = {significant(k)} ± {significant(s, 2)} s^-1"
             if k < 0:
-                significant = np.isfinite(s) and k < -CHECK_SIGMAS * s
+                clearly_negative = np.isfinite(s) and k < -CHECK_SIGMAS * s
                 checks.append(f"{name} is negative" + (
                     ", beyond its error: a cross peak of opposite sign to the diagonal, as cross-relaxation (NOE) "
-                    "of a small molecule gives; exchange alone cannot make it" if significant else
+                    "of a small molecule gives; exchange alone cannot make it" if clearly_negative else
                     " but within its error of 0: noise on a slow or absent exchange path"))
             elif not connected[i, j] and np.isfinite(s) and k > CHECK_SIGMAS * s:
                 checks.append(f"{name} joins sites that no exchange process of the model joins: an exchange path the "
@@ -900,7 +900,7 @@ def _matrix_checks(rates: np.ndarray, stderr: np.ndarray, m_eq: np.ndarray, conn
                 err = math.hypot(s * m_eq[j], stderr[j, i] * m_eq[i])
                 if np.isfinite(err) and abs(flow_ij - flow_ji) > CHECK_SIGMAS * err:
                     checks.append(f"detailed balance fails between {labels[i]} and {labels[j]}: k M_eq is "
-                                  f"{_num(flow_ij)} one way and {_num(flow_ji)} the other (beyond {CHECK_SIGMAS:g} "
+                                  f"{significant(flow_ij)} one way and {significant(flow_ji)} the other (beyond {CHECK_SIGMAS:g} "
                                   "errors): wrong populations in the model, unequal excitation of the sites, or "
                                   "volumes distorted by overlap or baseline")
     return checks

@@ -60,7 +60,8 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from dnmr.activation.eyring import EyringResult, eyring_fit_file, format_with_error
+from dnmr.activation.eyring import EyringResult, eyring_fit_file
+from dnmr.formatting import format_with_error
 from dnmr.errors import InputError
 from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.model import Model

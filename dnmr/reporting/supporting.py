@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-from dnmr.activation.eyring import format_with_error
+from dnmr.formatting import format_with_error
 from dnmr.errors import InputError
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K
 from dnmr.io.output import atomic_write_text

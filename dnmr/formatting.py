@@ -1,0 +1,21 @@
+"""One home for numbers shown to people: significant figures, and a value with its standard error."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+
+def significant(x: float, digits: int = 3) -> str:
+    """`x` to `digits` significant figures ('nan' where it is not finite)."""
+    return "nan" if not np.isfinite(x) else f"{x:.{digits}g}"
+
+
+def format_with_error(value: float, stderr: float, digits: int = 2) -> str:
+    """'value ± stderr' rounded to `digits` significant figures of the error ('± n.d.' if undetermined)."""
+    if not np.isfinite(stderr):
+        return f"{value:.4g} ± n.d."
+    if stderr == 0:
+        return f"{value:.6g} ± 0"
+    decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(stderr)))))
+    return f"{value:.{decimals}f} ± {stderr:.{decimals}f}"
