@@ -16,6 +16,7 @@ import importlib.util
 #: ``import dnmr`` and every ``dnmr`` command load only the modules they need (fitting pulls in lmfit,
 #: statistics scipy.stats).
 _HOMES = {
+    "activation.parameters": ("ActivationParameters",),
     "activation.eyring": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
     "errors": ("InputError",),
     "fitting.spectrumfit": ("FitOptions", "RateEstimate", "SpectrumFit", "fit_parameters", "fit_spectrum"),
@@ -31,7 +32,7 @@ _HOMES = {
     "activation.thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
                     "temperature_from_spectrum", "thermometer_reading"),
     "fitting.transfer": ("Experiment", "TransferFit", "fit_transfer", "load_experiment", "run_transfer"),
-    "planning.timescale": ("ActivationParameters", "averaged_model", "fast_exchange_limit", "timescale_view"),
+    "planning.timescale": ("averaged_model", "fast_exchange_limit", "timescale_view"),
 }
 _HOME_OF = {name: module for module, names in _HOMES.items() for name in names}
 

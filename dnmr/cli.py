@@ -507,7 +507,7 @@ _TIMESCALE_OPTIONS = (
 
 def _activation_from_options(barrier: float | None, enthalpy: float | None, entropy: float | None):
     """ActivationParameters from the command-line options (None when none were given)."""
-    from dnmr.planning.timescale import ActivationParameters
+    from dnmr.activation.parameters import ActivationParameters
 
     if barrier is not None and (enthalpy is not None or entropy is not None):
         raise InputError("give --barrier-kj-mol or --enthalpy-kj-mol with --entropy-j-mol-k, not both",

@@ -19,7 +19,8 @@ from dnmr.reporting.report import write_report
 from dnmr.fitting.series import fit_series
 from dnmr.planning.solvents import solvent
 from dnmr.activation.thermometry import read_temperature_calibration
-from dnmr.planning.timescale import ActivationParameters, timescale_view
+from dnmr.activation.parameters import ActivationParameters
+from dnmr.planning.timescale import timescale_view
 
 DEMO_SOLVENT = "toluene-d8"
 DEMO_FIELDS_MHZ = (400.0, 600.0)

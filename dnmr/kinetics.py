@@ -32,6 +32,16 @@ def rate_ceiling_per_s(temperature_k: float) -> float:
     return BOLTZMANN * float(temperature_k) / PLANCK
 
 
+def coalescence_rate_per_s(separation_hz: float, coupling_hz: float = 0.0) -> float:
+    """Rate constant (s^-1) at coalescence of an equally populated two-site pair separated by
+    `separation_hz` (Hz), coupled by `coupling_hz` (Hz): k_c = pi sqrt(dnu^2 + 6 J^2) / sqrt 2.
+
+    Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956) for the uncoupled pair (k_c = pi dnu / sqrt 2);
+    Kurland, Rubin & Wise, J. Chem. Phys. 40, 2426 (1964) for the AB pair.
+    """
+    return math.pi * math.hypot(separation_hz, math.sqrt(6.0) * coupling_hz) / math.sqrt(2.0)
+
+
 def eyring_rate(
     gibbs_kj_mol: float | np.ndarray,
     temperature_k: float | np.ndarray,

@@ -23,7 +23,8 @@ from dnmr.model import Exchange, Model, Spectrometer, State
 from dnmr.planning.plan import (CAUTIONS, coalescence, d_optimal_temperatures, information_profile,
                            interpolated_information, ln_rate_information, plan_experiment, predict_coalescence)
 from dnmr.planning.solvents import solvent
-from dnmr.planning.timescale import ActivationParameters, model_at
+from dnmr.activation.parameters import ActivationParameters
+from dnmr.planning.timescale import model_at
 
 SF = 400.0
 

@@ -20,7 +20,8 @@ from reference_eyring import eyring_rate
 from dnmr import simulate
 from dnmr.cli import cli
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.planning.timescale import (ActivationParameters, averaged_model, exchanging_pairs, fast_exchange_limit,
+from dnmr.activation.parameters import ActivationParameters
+from dnmr.planning.timescale import (averaged_model, exchanging_pairs, fast_exchange_limit,
                             rate_window, timescale_view, window_temperatures)
 
 SF = 400.0

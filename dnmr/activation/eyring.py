@@ -94,6 +94,7 @@ from dnmr.kinetics import (
     KCAL_PER_KJ,
     PLANCK,
     STANDARD_TEMPERATURE_K,
+    coalescence_rate_per_s,
     eyring_barrier,
 )
 from dnmr.io.tables import check_kelvin, read_table
@@ -1767,7 +1768,7 @@ def coalescence_barrier(
     check_kelvin(t, "coalescence_temperature_k")
     if not dnu > 0:
         raise InputError("the shift difference must be non-zero (Hz)", where="shift_difference_hz")
-    k_c = math.pi * dnu / math.sqrt(2.0)
+    k_c = coalescence_rate_per_s(dnu)
     gibbs = eyring_barrier(k_c, t, transmission)
     d_dt = GAS_CONSTANT * (math.log(transmission * math.sqrt(2.0) * BOLTZMANN * t / (math.pi * PLANCK * dnu)) + 1) / 1e3
     d_dnu = -GAS_CONSTANT * t / dnu / 1e3

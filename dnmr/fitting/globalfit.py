@@ -85,12 +85,13 @@ from scipy import optimize
 
 from dnmr.activation.eyring import EyringResult, eyring_fit_file
 from dnmr.formatting import format_with_error
+from dnmr.activation.parameters import ActivationEstimate
 from dnmr.engine.blocks import lineshape_terms
 from dnmr.fitting.workers import process_pool, worker_payload
 from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem
 from dnmr.fitting.workers import single_threaded_blas
-from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K, eyring_rate_from_enthalpy)
+from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K)
 from dnmr.model import Model, parse_coupling_key
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
@@ -921,63 +922,6 @@ def _misfit_notes(qualities: list[SpectrumQuality], treatment: Treatment, reduce
 
 # --------------------------------------------------------------------------------------------------
 # results
-
-
-@dataclass(frozen=True)
-class ActivationEstimate:
-    """dH‡ and dS‡ of one process from the global fit, with their joint covariance.
-
-    Attributes
-    ----------
-    process : str
-        Exchange process name.
-    enthalpy_kj_mol, entropy_j_mol_k : float
-        dH‡ (kJ/mol) and dS‡ (J/(mol K)).
-    covariance : ndarray
-        2x2 covariance of (dH‡ in kJ/mol, dS‡ in J/(mol K)), the temperature calibration's part included.
-    calibration_covariance : ndarray or None
-        The part of `covariance` that the temperature calibration brings in (None: no calibration).
-    """
-
-    process: str
-    enthalpy_kj_mol: float
-    entropy_j_mol_k: float
-    covariance: np.ndarray
-    calibration_covariance: np.ndarray | None = None
-
-    @property
-    def enthalpy_stderr(self) -> float:
-        """Standard error of dH‡, kJ/mol."""
-        return float(math.sqrt(self.covariance[0, 0]))
-
-    @property
-    def entropy_stderr(self) -> float:
-        """Standard error of dS‡, J/(mol K)."""
-        return float(math.sqrt(self.covariance[1, 1]))
-
-    @property
-    def correlation(self) -> float:
-        """Correlation coefficient of dH‡ and dS‡."""
-        return float(self.covariance[0, 1] / math.sqrt(self.covariance[0, 0] * self.covariance[1, 1]))
-
-    def gibbs(self, temperature_k: float) -> tuple[float, float]:
-        """dG‡ = dH‡ - T dS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
-        grad = np.array([1.0, -temperature_k / 1e3])
-        return (self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3,
-                float(math.sqrt(grad @ self.covariance @ grad)))
-
-    def error_shares(self) -> dict[str, np.ndarray]:
-        """The two parts of `covariance` (2x2, as it): ``"spectra"`` (the fit's own) and ``"calibration"``
-        (what the temperature calibration adds); NaN without a calibration."""
-        calibration = (np.full((2, 2), math.nan) if self.calibration_covariance is None
-                       else self.calibration_covariance)
-        return {"spectra": self.covariance - np.nan_to_num(calibration), "calibration": calibration}
-
-    def ln_rate(self, temperature_k: float) -> tuple[float, float]:
-        """ln(k / s^-1) and its standard error at `temperature_k` (K)."""
-        grad = np.array([-1e3 / (GAS_CONSTANT * temperature_k), 1.0 / GAS_CONSTANT])
-        value = math.log(eyring_rate_from_enthalpy(self.enthalpy_kj_mol, self.entropy_j_mol_k, temperature_k))
-        return value, float(math.sqrt(grad @ self.covariance @ grad))
 
 
 def _share(covariance: np.ndarray, harmonic_mean_k: float) -> dict[str, float]:

@@ -88,7 +88,7 @@ from dnmr.fitting.workers import process_pool
 from dnmr.errors import InputError, did_you_mean
 from dnmr.fitting.spectrumfit import FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum
 from dnmr.fitting.workers import single_threaded_blas
-from dnmr.kinetics import eyring_barrier, eyring_rate
+from dnmr.kinetics import coalescence_rate_per_s, eyring_barrier, eyring_rate
 from dnmr.model import Model
 from dnmr.io.modelfile import check_keys, load_model, read_toml
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
@@ -1481,7 +1481,7 @@ def _coalescence_rate(model: Model) -> float:
             gap = abs(shifts[a, i] - shifts[b, j])
             if gap > 0:
                 gaps.append(gap)
-    return math.pi * min(gaps) / math.sqrt(2) if gaps else math.inf
+    return coalescence_rate_per_s(min(gaps)) if gaps else math.inf
 
 
 def _rates_are_slow(fit: SpectrumFit, limit: float) -> bool:

@@ -70,7 +70,7 @@ import numpy as np
 
 from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
 from dnmr.errors import InputError
-from dnmr.kinetics import GAS_CONSTANT
+from dnmr.kinetics import GAS_CONSTANT, coalescence_rate_per_s
 from dnmr.model import Exchange, Model, State, coupling_key
 from dnmr.reporting.notebook import NotebookView
 from dnmr.planning.solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
@@ -225,11 +225,12 @@ def count_maxima(values: np.ndarray, tolerance: float = 1e-12) -> int:
 
 
 def _exchange_scale(model: Model, pair: ExchangingPair) -> float:
-    """A rate (s^-1) near coalescence: sqrt(2) pi sqrt(dnu^2 + 6 J^2) divided by the sum of exit factors."""
+    """A rate (s^-1) near coalescence: the two-site coalescence rate (for the sum of exit factors of an
+    equally populated pair, 2) scaled to this pair's sum of exit factors."""
     dnu = pair.frequency_difference_hz(model)
     couplings = [abs(s.coupling(x, y)) for s in model.states for x, y in combinations(pair.cluster, 2)]
     j = max(couplings, default=0.0)
-    return math.sqrt(2.0) * math.pi * math.hypot(dnu, math.sqrt(6.0) * j) / sum(pair.exit_factors(model))
+    return 2.0 * coalescence_rate_per_s(dnu, j) / sum(pair.exit_factors(model))
 
 
 def _counting_interval_hz(sub: Model, pair: ExchangingPair) -> tuple[float, float]:

@@ -50,17 +50,14 @@ from dataclasses import dataclass, field
 from itertools import combinations
 
 import numpy as np
-from scipy.optimize import brentq
 
+from dnmr.activation.parameters import ActivationParameters
 from dnmr.errors import InputError
-from dnmr.kinetics import KCAL_PER_KJ, eyring_rate_from_enthalpy
-from dnmr.model import LIMITS, Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
+from dnmr.model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
 from dnmr.reporting.notebook import NotebookView
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
 DEFAULT_DETECTABLE_FRACTION = 0.1
-#: Temperatures (K) searched when solving the Eyring equation for a rate.
-TEMPERATURE_SEARCH_K = (20.0, 2000.0)
 #: Shifts (ppm) and couplings (Hz) closer than these are taken as equal.
 SHIFT_TOLERANCE_PPM = 1e-6
 COUPLING_TOLERANCE_HZ = 1e-6
@@ -73,87 +70,6 @@ COUPLING_PAIR_NOTE = ("signals marked (J to ...) keep their shift while the exch
 
 
 # --- activation parameters -------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class ActivationParameters:
-    """Eyring activation parameters of one exchange process (forward direction).
-
-    Parameters
-    ----------
-    enthalpy_kj_mol : float
-        dH‡ (kJ/mol); for a free energy of activation alone this is dG‡ with dS‡ = 0.
-    entropy_j_mol_k : float
-        dS‡ (J/(mol K)).
-    transmission : float
-        Transmission coefficient kappa.
-    """
-
-    enthalpy_kj_mol: float
-    entropy_j_mol_k: float = 0.0
-    transmission: float = 1.0
-
-    def __post_init__(self):
-        for key in ("enthalpy_kj_mol", "entropy_j_mol_k", "transmission"):
-            value = getattr(self, key)
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-                raise InputError(f"expected a finite number, got {value!r}", where=key)
-        if not self.transmission > 0:
-            raise InputError(f"the transmission coefficient must be positive, got {self.transmission!r}",
-                             where="transmission")
-        if not 0 < self.enthalpy_kj_mol <= LIMITS["kj_mol"]:  # else faster than kB T/h: no barrier at all
-            raise InputError(f"the barrier (dG‡, or dH‡ with dS‡) must be above 0 and at most {LIMITS['kj_mol']:g}"
-                             f" kJ/mol, got {self.enthalpy_kj_mol!r}", where="enthalpy_kj_mol")
-        if abs(self.entropy_j_mol_k) > LIMITS["j_mol_k"]:
-            raise InputError(f"dS‡ must be at most {LIMITS['j_mol_k']:g} J/(mol K) in size, got "
-                             f"{self.entropy_j_mol_k!r}", where="entropy_j_mol_k")
-
-    @classmethod
-    def from_gibbs(cls, gibbs_kj_mol: float, transmission: float = 1.0) -> "ActivationParameters":
-        """dG‡ (kJ/mol) taken as the same at every temperature (dS‡ = 0)."""
-        return cls(float(gibbs_kj_mol), 0.0, transmission)
-
-    @classmethod
-    def of_exchange(cls, exchange: Exchange) -> "ActivationParameters | None":
-        """The activation parameters a model file gives for `exchange` (None when it gives a rate)."""
-        if exchange.barrier_kj_mol is not None:
-            return cls.from_gibbs(exchange.barrier_kj_mol)
-        if exchange.enthalpy_kj_mol is not None:
-            return cls(exchange.enthalpy_kj_mol, exchange.entropy_j_mol_k)
-        return None
-
-    def gibbs_kj_mol(self, temperature_k: float) -> float:
-        """dG‡ (kJ/mol) at `temperature_k` (K)."""
-        return self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3
-
-    def rate_at(self, temperature_k: float) -> float:
-        """Forward rate constant (s^-1) at `temperature_k` (K)."""
-        return float(eyring_rate_from_enthalpy(self.enthalpy_kj_mol, self.entropy_j_mol_k, temperature_k,
-                                               self.transmission))
-
-    def temperature_at(self, rate_per_s: float) -> float | None:
-        """Temperature (K) at which the rate is `rate_per_s` (s^-1), or None outside 20-2000 K."""
-        low, high = TEMPERATURE_SEARCH_K
-        target = math.log(rate_per_s)
-        gap = lambda t: math.log(self.rate_at(t)) - target  # noqa: E731
-        try:
-            if gap(low) * gap(high) > 0:
-                return None
-        except (OverflowError, ValueError):
-            return None
-        return float(brentq(gap, low, high, xtol=1e-6))
-
-    def to_dict(self) -> dict:
-        """Plain dict (JSON-ready)."""
-        return {"enthalpy_kj_mol": self.enthalpy_kj_mol, "enthalpy_kcal_mol": self.enthalpy_kj_mol * KCAL_PER_KJ,
-                "entropy_j_mol_k": self.entropy_j_mol_k, "transmission": self.transmission}
-
-    def describe(self) -> str:
-        """One line: dG‡ alone, or dH‡ and dS‡."""
-        if self.entropy_j_mol_k == 0:
-            return f"dG‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol)"
-        return (f"dH‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol),"
-                f" dS‡ = {self.entropy_j_mol_k:.1f} J/(mol K)")
-
 
 def process_activations(model: Model, activation: ActivationParameters | None = None,
                         process: str | None = None) -> dict[int, ActivationParameters]:
