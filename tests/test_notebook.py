@@ -33,7 +33,7 @@ def test_simulated_spectrum_shows_its_summary_and_figure():
 
 
 def test_a_figure_that_cannot_be_drawn_is_said_and_the_text_still_shows():
-    from dnmr.reporting.notebook import NotebookView
+    from dnmr.notebook import NotebookView
 
     class Broken(NotebookView):
         """A result whose figure fails."""

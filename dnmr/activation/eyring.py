@@ -98,7 +98,7 @@ from dnmr.kinetics import (
     eyring_barrier,
 )
 from dnmr.io.tables import check_kelvin, read_table
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 from dnmr.activation.thermometry import TemperatureErrors
 
 if TYPE_CHECKING:  # pragma: no cover

@@ -27,7 +27,7 @@ from scipy.signal import find_peaks, peak_widths
 
 from dnmr.errors import InputError, did_you_mean
 from dnmr.io.tables import check_kelvin, read_table
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 THERMOMETER_CAUTIONS = (
     "Cautions: methanol is toxic (by swallowing, breathing its vapour and through the skin) and highly "

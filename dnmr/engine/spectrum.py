@@ -11,7 +11,7 @@ from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.model import Model
 from dnmr.io.output import atomic_write_text
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 
 @dataclass(frozen=True)

@@ -96,7 +96,7 @@ from dnmr.model import Model, parse_coupling_key
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 from dnmr.fitting.series import Series, SeriesFit, fit_series, load_series
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure

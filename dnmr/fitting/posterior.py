@@ -57,7 +57,7 @@ import numpy as np
 from dnmr.formatting import significant
 from dnmr.errors import InputError
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, STANDARD_TEMPERATURE_K
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure

@@ -97,7 +97,7 @@ from dnmr.nuclei import check_frequency_mhz
 from dnmr.io.readers import read_spectrum
 from dnmr.io.progress import ProgressReport
 from dnmr.io.tables import celsius_hints, check_kelvin
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 TREND = "slow-exchange-trend"
 REFERENCE_LINE = "reference-line"

@@ -84,7 +84,7 @@ from dnmr.formatting import significant
 from dnmr.errors import InputError, did_you_mean
 from dnmr.model import Model, parse_coupling_key
 from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
     from dnmr.fitting.posterior import Posterior

@@ -46,7 +46,7 @@ import numpy as np
 
 from dnmr.errors import InputError
 from dnmr.io.inputfiles import read_input_bytes, regular_file_size
-from dnmr.reporting.notebook import NotebookView
+from dnmr.notebook import NotebookView
 from dnmr.nuclei import check_frequency_mhz
 
 MAX_POINTS = 2**21
