@@ -31,7 +31,8 @@ _HOMES = {
     "engine.spectrum": ("Spectrum", "simulate", "simulate_over"),
     "activation.thermometry": ("fit_temperature_calibration", "read_temperature_calibration", "temperature_from_file",
                     "temperature_from_spectrum", "thermometer_reading"),
-    "fitting.transfer": ("Experiment", "TransferFit", "fit_transfer", "load_experiment", "run_transfer"),
+    "fitting.transfer": ("TransferFit", "fit_transfer", "run_transfer"),
+    "fitting.transferfile": ("Experiment", "load_experiment"),
     "planning.timescale": ("averaged_model", "fast_exchange_limit", "timescale_view"),
 }
 _HOME_OF = {name: module for module, names in _HOMES.items() for name in names}

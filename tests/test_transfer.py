@@ -16,13 +16,9 @@ from scipy.linalg import expm
 from dnmr.errors import InputError
 from dnmr.engine.longitudinal import LongitudinalSystem, model_sites
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.fitting.transfer import (
-    Experiment,
-    TransferData,
-    TransferOptions,
-    fit_transfer,
-    site_rates_from_volumes,
-)
+from dnmr.fitting.matrixmethod import site_rates_from_volumes
+from dnmr.fitting.transfer import fit_transfer
+from dnmr.fitting.transferfile import Experiment, TransferData, TransferOptions
 from reference_transfer import forsen_hoffman, integrate_sites, two_site_recovery
 
 SPEC = Spectrometer(400.0)
@@ -372,7 +368,7 @@ def test_bad_table_names_the_file_and_line(tmp_path):
     text = (tmp_path / "si.csv").read_text().splitlines()
     text[3] = text[3].replace(",", ",x", 1)
     (tmp_path / "si.csv").write_text("\n".join(text).replace("anti", "antti", 1) + "\n")
-    from dnmr.fitting.transfer import load_experiment
+    from dnmr.fitting.transferfile import load_experiment
 
     with pytest.raises(InputError, match=r'si.csv: line 1: column "antti" is not a site \(did you mean "anti"\?\)'):
         load_experiment(experiment)

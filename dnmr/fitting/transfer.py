@@ -1,27 +1,9 @@
-"""Slow exchange by magnetisation transfer: selective inversion, saturation transfer and 2D exchange.
+"""Slow exchange by magnetisation transfer: the fits of selective inversion, saturation transfer and 2D exchange.
 
-An *experiment file* (TOML) names a model file, the sample temperature, the kind of experiment, a data
-table (CSV) and options; :func:`fit_transfer` fits the longitudinal exchange model
-(:mod:`dnmr.engine.longitudinal`) to the table and :func:`write_transfer` writes ``rates.csv`` (the columns of
+:func:`fit_transfer` fits the longitudinal exchange model (:mod:`dnmr.engine.longitudinal`) to the table of
+an experiment file (:mod:`dnmr.fitting.transferfile`), for 2D exchange also by the matrix method
+(:mod:`dnmr.fitting.matrixmethod`), and :func:`write_transfer` writes ``rates.csv`` (the columns of
 ``dnmr fit`` plus ``method``) and ``results.json``.
-
-Experiments and their tables (site names as in :func:`dnmr.engine.longitudinal.model_sites`):
-
-``inversion`` (selective inversion recovery)
-    ``delay_s`` and one column of integrals per observed site (``<site>_stderr`` optional).  Fitted:
-    the forward rate of each exchange process, R1 of each observed site, the equilibrium integral of each
-    site and the inversion efficiency (M(0) = (1 - 2 efficiency) M_eq on the inverted sites).
-``saturation`` (saturation transfer, steady state and build-up)
-    ``saturation_s`` (how long the saturated sites were irradiated before the read pulse; 0 is the
-    reference) and one column of integrals per observed, unsaturated site.  Fitted: rates, R1 and the
-    equilibrium integrals.  Steady-state data alone (two saturation times) give only R1/(R1 + k)
-    (Forsén & Hoffman 1963): R1 must then come from the model (``r1 = "fixed"``).
-``exchange-2d`` (EXSY / NOESY-type mixing)
-    ``mixing_s``, ``detected`` (the site on which a row's peaks are detected, F2) and one column per
-    site (the site the magnetisation started on, F1): one full volume matrix per mixing time.  Fitted
-    directly over all mixing times (rates, R1 per site, one volume scale), and by the matrix method
-    L = -logm(A M0^-1) / tm at each mixing time (Perrin & Gipe, J. Am. Chem. Soc. 106, 4036 (1984);
-    Perrin & Dwyer, Chem. Rev. 90, 935 (1990)) with Monte Carlo errors over the volume errors.
 
 Errors follow :mod:`dnmr.fitting.spectrumfit`: chi-square with the stated errors (or, without them, with the scatter
 of the residuals), the covariance scaled by the error scale, and a chi-square profile over log10 k of
@@ -42,10 +24,12 @@ from pathlib import Path
 import lmfit
 import numpy as np
 
-from dnmr.errors import InputError, did_you_mean
+from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
+from dnmr.errors import InputError
+from dnmr.fitting.matrixmethod import SiteRates, matrix_method
+from dnmr.fitting.series import RATE_COLUMNS
 from dnmr.fitting.spectrumfit import (
     NoiseEstimate,
-    Profile,
     RateEstimate,
     _BetterMinimum,
     _RateContext,
@@ -58,320 +42,15 @@ from dnmr.fitting.spectrumfit import (
     _stderr,
     PROFILE_RESTARTS,
 )
+from dnmr.fitting.transferfile import Experiment, load_experiment
 from dnmr.formatting import significant
-from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
-from dnmr.model import Model
-from dnmr.io.modelfile import check_keys, load_model, read_toml
 from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
-from dnmr.fitting.series import RATE_COLUMNS
-from dnmr.io.tables import check_kelvin, read_table
 
-EXPERIMENTS = ("inversion", "saturation", "exchange-2d")
-TIME_COLUMNS = {"inversion": "delay_s", "saturation": "saturation_s", "exchange-2d": "mixing_s"}
-EXPERIMENT_KEYS = {"title", "model", "temperature_k", "experiment", "data", "options"}
-OPTION_KEYS = {"inverted", "saturated", "r1", "equilibrium", "inversion_efficiency", "volume_stderr",
-               "monte_carlo_draws", "seed", "rate_limits_per_s"}
-R1_MODES = ("per-site", "shared", "fixed")
-EQUILIBRIUM_MODES = ("per-site", "shared")
-DETECTED_COLUMN = "detected"
 #: Columns of rates.csv after those of ``dnmr fit`` (RATE_COLUMNS).
 TRANSFER_COLUMNS = ("method", "matrix_rate_per_s", "matrix_rate_stderr", "chi_square", "reduced_chi_square",
                     "data", "flags", "note")
 #: Steps of the coarse scan over log10 k (decades).
 SCAN_STEP_DECADES = 1.0
-#: Monte Carlo draws whose volume matrix has no real logarithm, above which a mixing time is not used.
-MAX_COMPLEX_FRACTION = 0.1
-#: Signed deviations, in Monte Carlo standard errors, that count as significant in the checks.
-CHECK_SIGMAS = 2.0
-
-
-# --------------------------------------------------------------------------------------------------
-# the experiment file
-
-
-@dataclass(frozen=True)
-class TransferOptions:
-    """How to fit a magnetisation-transfer experiment.
-
-    Parameters
-    ----------
-    inverted : tuple of str
-        inversion: the sites the selective pulse inverts.
-    saturated : tuple of str
-        saturation: the sites irradiated.
-    r1 : str
-        "per-site" (R1 of each observed site fitted), "shared" (one R1 for all sites) or "fixed" (the
-        model's ``r1_per_s``).
-    equilibrium : str
-        inversion and saturation: "per-site" (an equilibrium integral per site) or "shared" (one scale on
-        the model's populations x nuclei).
-    inversion_efficiency : float or None
-        inversion: held at this value (0 to 1) instead of fitted.
-    volume_stderr : float or None
-        exchange-2d: standard error of one peak volume (volume units); default: from the residuals of
-        the direct fit.
-    monte_carlo_draws : int
-        exchange-2d: Monte Carlo draws of the matrix method.
-    seed : int
-        Seed of the Monte Carlo draws.
-    rate_limits_per_s : (float, float)
-        Range of each fitted forward rate (s^-1).
-    """
-
-    inverted: tuple[str, ...] = ()
-    saturated: tuple[str, ...] = ()
-    r1: str = "per-site"
-    equilibrium: str = "per-site"
-    inversion_efficiency: float | None = None
-    volume_stderr: float | None = None
-    monte_carlo_draws: int = 1000
-    seed: int = 0
-    rate_limits_per_s: tuple[float, float] = (1e-4, 1e4)
-
-    def __post_init__(self):
-        if self.r1 not in R1_MODES:
-            raise InputError(f'r1 must be one of {", ".join(R1_MODES)}, got {self.r1!r}', where="options.r1")
-        if self.equilibrium not in EQUILIBRIUM_MODES:
-            raise InputError(f'equilibrium must be one of {", ".join(EQUILIBRIUM_MODES)}, got {self.equilibrium!r}',
-                             where="options.equilibrium")
-        eff = self.inversion_efficiency
-        if eff is not None and not (isinstance(eff, (int, float)) and 0.0 <= eff <= 1.0):
-            raise InputError(f"expected a number from 0 to 1, got {eff!r}", where="options.inversion_efficiency")
-        if self.volume_stderr is not None and not (isinstance(self.volume_stderr, (int, float))
-                                                   and self.volume_stderr > 0 and math.isfinite(self.volume_stderr)):
-            raise InputError(f"expected a positive number, got {self.volume_stderr!r}", where="options.volume_stderr")
-        if isinstance(self.monte_carlo_draws, bool) or not isinstance(self.monte_carlo_draws, int) \
-                or not 20 <= self.monte_carlo_draws <= 10**6:
-            raise InputError(f"expected a whole number from 20 to 1000000, got {self.monte_carlo_draws!r}",
-                             where="options.monte_carlo_draws")
-        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
-            raise InputError(f"expected a whole number of 0 or more, got {self.seed!r}", where="options.seed")
-        lo, hi = self.rate_limits_per_s
-        if not (0 < lo < hi and math.isfinite(hi)):
-            raise InputError(f"expected two positive rates, low then high, got {self.rate_limits_per_s!r}",
-                             where="options.rate_limits_per_s")
-        object.__setattr__(self, "inverted", tuple(self.inverted))
-        object.__setattr__(self, "saturated", tuple(self.saturated))
-
-
-@dataclass(frozen=True)
-class TransferData:
-    """A magnetisation-transfer data table.
-
-    Attributes
-    ----------
-    times_s : ndarray
-        Delay, saturation time or mixing time (s) of each row (inversion, saturation) or matrix (exchange-2d).
-    sites : tuple of str
-        The observed sites (columns), by label.
-    values : ndarray
-        Integrals, array (n_times, n_sites); for exchange-2d volumes (n_times, n_sites, n_sites), [t, i, j]
-        detected on site i, started on site j.
-    stderr : ndarray or None
-        Standard errors of `values` (same shape), when the table gives them.
-    source : str
-        The table's file.
-    """
-
-    times_s: np.ndarray
-    sites: tuple[str, ...]
-    values: np.ndarray
-    stderr: np.ndarray | None
-    source: str
-
-
-@dataclass(frozen=True)
-class Experiment:
-    """One magnetisation-transfer experiment: model, temperature, kind, data and options.
-
-    Attributes
-    ----------
-    model : Model
-        The model at the experiment's temperature.
-    temperature_k : float
-        Sample temperature (K).
-    experiment : str
-        "inversion", "saturation" or "exchange-2d".
-    data : TransferData
-        The table.
-    options : TransferOptions
-        How to fit.
-    source : str or None
-        The experiment file.
-    title : str
-        Free text.
-    """
-
-    model: Model
-    temperature_k: float
-    experiment: str
-    data: TransferData
-    options: TransferOptions = field(default_factory=TransferOptions)
-    source: str | None = None
-    title: str = ""
-
-    def __post_init__(self):
-        if self.experiment not in EXPERIMENTS:
-            raise InputError(f'experiment must be one of {", ".join(EXPERIMENTS)}, got {self.experiment!r}',
-                             where="experiment")
-        labels = [s.label for s in model_sites(self.model)]
-        for key in ("inverted", "saturated"):
-            for name in getattr(self.options, key):
-                if name not in labels:
-                    raise InputError(f'unknown site "{name}"{did_you_mean(name, labels)}; sites are {", ".join(labels)}',
-                                     where=f"options.{key}")
-        if not self.model.exchanges:
-            raise InputError("the model has no exchange process to measure", where="model")
-        for key, kind in (("inverted", "inversion"), ("saturated", "saturation"), ("volume_stderr", "exchange-2d"),
-                          ("inversion_efficiency", "inversion")):
-            if getattr(self.options, key) not in (None, ()) and self.experiment != kind:
-                raise InputError(f"applies only to {kind} experiments; remove it", where=f"options.{key}")
-        if self.experiment == "inversion" and not self.options.inverted:
-            raise InputError('name the inverted sites, e.g. inverted = ["Ha"]', where="options.inverted")
-        if self.experiment == "saturation":
-            if not self.options.saturated:
-                raise InputError('name the saturated sites, e.g. saturated = ["Hb"]', where="options.saturated")
-            both = sorted(set(self.options.saturated) & set(self.data.sites))
-            if both:
-                raise InputError(f'site "{both[0]}" is saturated: it has no signal to fit; leave its column out',
-                                 source=self.data.source)
-            if len(np.unique(self.data.times_s)) < 3 and self.options.r1 != "fixed":
-                raise InputError("steady-state data (fewer than three saturation times) give only R1/(R1 + k) of each "
-                                 "site: give r1_per_s in the model and r1 = \"fixed\", or add build-up times",
-                                 where="options.r1")
-        if self.options.r1 == "fixed":
-            site_relaxation_rates(self.model)
-
-
-def _site_columns(table, sites: Sequence[str], skip: set[str]) -> tuple[list[str], list[str]]:
-    """The site columns and their ``_stderr`` columns of a table; any other column is an error."""
-    values, errors = [], []
-    for name in table.cells:
-        if name in skip:
-            continue
-        base = name.removesuffix("_stderr")
-        if base not in sites:
-            raise InputError(f'column "{name}" is not a site{did_you_mean(base, sites)}; sites are {", ".join(sites)}',
-                             table.source, "line 1")
-        (errors if name.endswith("_stderr") else values).append(name)
-    for name in errors:
-        if name.removesuffix("_stderr") not in values:
-            raise InputError(f'column "{name}" has no column of values beside it', table.source)
-    if errors and len(errors) != len(values):
-        raise InputError("give a _stderr column for every site or for none", table.source)
-    if not values:
-        raise InputError(f"no site columns; sites are {', '.join(sites)}", table.source)
-    return values, errors
-
-
-def read_transfer_table(path: str | Path, experiment: str, model: Model) -> TransferData:
-    """Read the data table of `experiment` (see the module notes) for the sites of `model`.
-
-    Raises
-    ------
-    InputError
-        Missing or unknown columns, non-numeric cells, negative times, an incomplete volume matrix,
-        naming the file and line.
-    """
-    sites = [s.label for s in model_sites(model)]
-    time = TIME_COLUMNS[experiment]
-    required = (time, DETECTED_COLUMN) if experiment == "exchange-2d" else (time,)
-    table = read_table(path, required)
-    times = table.numbers(time)
-    bad = np.flatnonzero(times < 0)
-    if bad.size:
-        raise InputError(f"{time} must not be negative", table.source, table.where(int(bad[0])))
-    names, error_names = _site_columns(table, sites, set(required))
-    values = np.column_stack([table.numbers(n) for n in names])
-    stderr = np.column_stack([table.numbers(n) for n in error_names]) if error_names else None
-    if stderr is not None and np.any(stderr <= 0):
-        row = int(np.argwhere(stderr <= 0)[0][0])
-        raise InputError("a standard error must be positive", table.source, table.where(row))
-    if experiment != "exchange-2d":
-        return TransferData(times, tuple(names), values, stderr, table.source)
-    if names != sites:
-        raise InputError(f"a 2D exchange table needs one column per site, in the model's order: {', '.join(sites)}",
-                         table.source, "line 1")
-    detected = table.text(DETECTED_COLUMN)
-    mixing = list(dict.fromkeys(times.tolist()))
-    volumes = np.full((len(mixing), len(sites), len(sites)), np.nan)
-    errors = None if stderr is None else np.full_like(volumes, np.nan)
-    for row, (t, site) in enumerate(zip(times, detected)):
-        if site not in sites:
-            raise InputError(f'unknown site "{site}"{did_you_mean(site, sites)}; sites are {", ".join(sites)}',
-                             table.source, table.where(row))
-        k, i = mixing.index(t), sites.index(site)
-        if np.isfinite(volumes[k, i, 0]):
-            raise InputError(f'site "{site}" is given twice at mixing time {t:g} s', table.source, table.where(row))
-        volumes[k, i] = values[row]
-        if errors is not None:
-            errors[k, i] = stderr[row]
-    for k, t in enumerate(mixing):
-        missing = [s for i, s in enumerate(sites) if not np.isfinite(volumes[k, i, 0])]
-        if missing:
-            raise InputError(f'no row for site "{missing[0]}" at mixing time {t:g} s: each mixing time needs a '
-                             "full volume matrix", table.source)
-    return TransferData(np.array(mixing), tuple(sites), volumes, errors, table.source)
-
-
-def _string_list(value, where: str) -> tuple[str, ...]:
-    if isinstance(value, str):
-        value = [value]
-    if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value):
-        raise InputError(f'expected a list of site names such as ["Ha"], got {value!r}', where=where)
-    return tuple(value)
-
-
-def options_from_dict(table: Mapping) -> TransferOptions:
-    """The ``[options]`` table of an experiment file as :class:`TransferOptions`."""
-    check_keys(dict(table), OPTION_KEYS, "options")
-    values = dict(table)
-    for key in ("inverted", "saturated"):
-        if key in values:
-            values[key] = _string_list(values[key], f"options.{key}")
-    if "rate_limits_per_s" in values:
-        limits = values["rate_limits_per_s"]
-        if not (isinstance(limits, list) and len(limits) == 2
-                and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in limits)):
-            raise InputError(f"expected two rates such as [1e-3, 1e3], got {limits!r}", where="options.rate_limits_per_s")
-        values["rate_limits_per_s"] = tuple(float(v) for v in limits)
-    return TransferOptions(**values)
-
-
-def load_experiment(path: str | Path) -> Experiment:
-    """Read an experiment file (TOML; see docs/transfer-file.md) with its model and data table.
-
-    Raises
-    ------
-    InputError
-        Naming the file and key (or the model or table file and its place) for any problem.
-    """
-    path = Path(path)
-    data = read_toml(path)
-    try:
-        check_keys(data, EXPERIMENT_KEYS, "", required=("model", "temperature_k", "experiment", "data"))
-        for key in ("model", "data", "experiment"):
-            if not isinstance(data[key], str) or not data[key].strip():
-                raise InputError(f"expected text, got {data[key]!r}", where=key)
-        temperature = data["temperature_k"]
-        if isinstance(temperature, bool) or not isinstance(temperature, (int, float)):
-            raise InputError(f"expected a temperature in K, got {temperature!r}", where="temperature_k")
-        check_kelvin(float(temperature), "temperature_k", where="temperature_k")
-        if data["experiment"] not in EXPERIMENTS:
-            raise InputError(f'expected one of {", ".join(EXPERIMENTS)}{did_you_mean(data["experiment"], EXPERIMENTS)},'
-                             f' got {data["experiment"]!r}', where="experiment")
-        options = options_from_dict(data.get("options", {}))
-        title = data.get("title", "")
-        if not isinstance(title, str):
-            raise InputError("expected text", where="title")
-    except InputError as err:
-        raise err.located(source=path) from None
-    model = load_model(path.parent / data["model"]).at_temperature(float(temperature))
-    table = read_transfer_table(path.parent / data["data"], data["experiment"], model)
-    try:
-        return Experiment(model, float(temperature), data["experiment"], table, options, str(path), title)
-    except InputError as err:
-        raise err.located(source=path) from None
 
 
 # --------------------------------------------------------------------------------------------------
@@ -383,7 +62,7 @@ class _TransferProblem:
 
     def __init__(self, experiment: Experiment):
         self.experiment = experiment
-        model, data, options = experiment.model, experiment.data, experiment.options
+        model, data = experiment.model, experiment.data
         self.kind = experiment.experiment
         self.sites = model_sites(model)
         self.labels = [s.label for s in self.sites]
@@ -506,38 +185,6 @@ def _scan_starts(problem: _TransferProblem, params: lmfit.Parameters) -> list[lm
 
 # --------------------------------------------------------------------------------------------------
 # results
-
-
-@dataclass(frozen=True)
-class SiteRates:
-    """Site-to-site rate constants from the matrix method, at one mixing time or combined.
-
-    Attributes
-    ----------
-    mixing_s : float
-        Mixing time (s); NaN for the combination of all mixing times.
-    rates_per_s : ndarray
-        k(j -> i) (s^-1) at [i, j] for i != j; the diagonal holds R1 of each site (s^-1).
-    stderr : ndarray
-        Monte Carlo standard errors of the same (NaN without draws).
-    process_rates : ndarray
-        Forward rate (s^-1) of each exchange process: the least-squares match of the site rates to the
-        model's pattern of each process.
-    process_stderr : ndarray
-        Their Monte Carlo standard errors.
-    checks : list of str
-        Negative, non-detailed-balanced and unexpected elements, in words.
-    """
-
-    mixing_s: float
-    rates_per_s: np.ndarray
-    stderr: np.ndarray
-    process_rates: np.ndarray
-    process_stderr: np.ndarray
-    checks: list[str]
-
-    def to_dict(self) -> dict:
-        return {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in dataclasses.asdict(self).items()}
 
 
 @dataclass
@@ -770,140 +417,6 @@ def _transfer_estimate(estimate: RateEstimate, problem: _TransferProblem, params
     else:
         return estimate
     return dataclasses.replace(estimate, reason=reason)
-
-
-# --------------------------------------------------------------------------------------------------
-# 2D exchange: the matrix method
-
-
-def site_rates_from_volumes(volumes: np.ndarray, m0: np.ndarray, mixing_s: float) -> np.ndarray | None:
-    """L = -logm(A M0^-1) / tm (s^-1) from one volume matrix A (Perrin & Gipe 1984).
-
-    Off the diagonal L[i, j] = -k(j -> i); the column sums are R1 of each site.  None when A M0^-1 has no
-    real logarithm (a negative or complex eigenvalue: noise too large for this mixing time).
-    """
-    X = volumes / m0[None, :]
-    values, vectors = np.linalg.eig(X)
-    if np.any(np.abs(values.imag) > 1e-9 * np.abs(values).max()) or np.any(values.real <= 0):
-        return None
-    log_x = np.real(vectors @ np.diag(np.log(values.real)) @ np.linalg.inv(vectors))
-    return -log_x / mixing_s
-
-
-def _site_rate_matrix(L: np.ndarray) -> np.ndarray:
-    """k(j -> i) off the diagonal, R1 (column sums of L) on it."""
-    out = -L.copy()
-    np.fill_diagonal(out, L.sum(axis=0))
-    return out
-
-
-def _process_rates(rates: np.ndarray, patterns: np.ndarray) -> np.ndarray:
-    """Least-squares forward rates of the processes from site rates k(j -> i) (off-diagonal elements)."""
-    off = ~np.eye(rates.shape[0], dtype=bool)
-    design = np.stack([-p[off] for p in patterns], axis=1)
-    coef, *_ = np.linalg.lstsq(design, rates[off], rcond=None)
-    return coef
-
-
-def matrix_method(experiment: Experiment, m_eq_scale: float, volume_stderr: float | None) -> list[SiteRates]:
-    """The matrix method at each mixing time, with Monte Carlo errors over the volume errors, then the
-    inverse-variance combination of the mixing times.
-
-    Parameters
-    ----------
-    experiment : Experiment
-        A 2D exchange experiment.
-    m_eq_scale : float
-        Volume units per unit of M_eq (from the direct fit); M0 = scale x M_eq.  A mixing time of 0
-        gives M0 from its diagonal instead.  The site-to-site rates do not depend on this scale; R1 does.
-    volume_stderr : float or None
-        Standard error of one volume; the table's own errors when None.
-    """
-    data = experiment.data
-    model = experiment.model
-    patterns = process_patterns(model)
-    populations = model.populations()
-    sites = model_sites(model)
-    m_eq = np.array([populations[model.state_index(s.state)] * s.nuclei for s in sites])
-    zero = np.flatnonzero(data.times_s == 0)
-    m0 = np.diag(data.values[zero[0]]).copy() if zero.size else m_eq_scale * m_eq
-    sigma = data.stderr if volume_stderr is None else np.full_like(data.values, volume_stderr)
-    rng = np.random.default_rng(experiment.options.seed)
-    draws = experiment.options.monte_carlo_draws
-    connected = np.any(np.abs(patterns) > 0, axis=0)
-    results = []
-    for k, t in enumerate(data.times_s):
-        if t == 0:
-            continue
-        L = site_rates_from_volumes(data.values[k], m0, t)
-        if L is None:
-            results.append(SiteRates(float(t), np.full((len(sites),) * 2, np.nan), np.full((len(sites),) * 2, np.nan),
-                                     np.full(len(patterns), np.nan), np.full(len(patterns), np.nan),
-                                     ["the volume matrix has no real logarithm (a negative or complex eigenvalue of "
-                                      "A M0^-1): the noise is too large for the matrix method at this mixing time"]))
-            continue
-        rates = _site_rate_matrix(L)
-        samples, complex_draws = [], 0
-        for _ in range(draws):
-            noisy = data.values[k] + rng.normal(size=sigma[k].shape) * sigma[k]
-            m0_draw = np.diag(data.values[zero[0]] + rng.normal(size=sigma[zero[0]].shape) * sigma[zero[0]]) \
-                if zero.size else m0
-            Ld = site_rates_from_volumes(noisy, m0_draw, t)
-            if Ld is None:
-                complex_draws += 1
-                continue
-            samples.append(_site_rate_matrix(Ld))
-        checks = []
-        if complex_draws > MAX_COMPLEX_FRACTION * draws:
-            checks.append(f"{complex_draws} of {draws} Monte Carlo draws have no real logarithm: errors at this "
-                          "mixing time are unreliable (too short a mixing time for the noise)")
-        samples = np.array(samples) if samples else np.full((1,) + rates.shape, np.nan)
-        stderr = samples.std(axis=0, ddof=1) if len(samples) > 1 else np.full(rates.shape, np.nan)
-        proc = np.array([_process_rates(s, patterns) for s in samples])
-        checks += _matrix_checks(rates, stderr, m_eq, connected, [s.label for s in sites])
-        results.append(SiteRates(float(t), rates, stderr, _process_rates(rates, patterns),
-                                 proc.std(axis=0, ddof=1) if len(proc) > 1 else np.full(len(patterns), np.nan), checks))
-    usable = [r for r in results if np.all(np.isfinite(r.process_stderr)) and np.all(r.process_stderr > 0)]
-    if usable:
-        w = np.array([1.0 / r.process_stderr ** 2 for r in usable])
-        k = np.array([r.process_rates for r in usable])
-        site_w = np.array([1.0 / r.stderr ** 2 for r in usable])
-        site_k = np.array([r.rates_per_s for r in usable])
-        results.append(SiteRates(math.nan, (site_w * site_k).sum(0) / site_w.sum(0), 1.0 / np.sqrt(site_w.sum(0)),
-                                 (w * k).sum(0) / w.sum(0), 1.0 / np.sqrt(w.sum(0)), []))
-    return results
-
-
-def _matrix_checks(rates: np.ndarray, stderr: np.ndarray, m_eq: np.ndarray, connected: np.ndarray,
-                   labels: list[str]) -> list[str]:
-    """Negative, non-detailed-balanced and unexpected site rates, with what they mean."""
-    checks = []
-    n = len(labels)
-    for i in range(n):
-        for j in range(n):
-            if i == j:
-                continue
-            k, s = rates[i, j], stderr[i, j]
-            name = f"k({labels[j]} -> {labels[i]}) = {significant(k)} ± {significant(s, 2)} s^-1"
-            if k < 0:
-                clearly_negative = np.isfinite(s) and k < -CHECK_SIGMAS * s
-                checks.append(f"{name} is negative" + (
-                    ", beyond its error: a cross peak of opposite sign to the diagonal, as cross-relaxation (NOE) "
-                    "of a small molecule gives; exchange alone cannot make it" if clearly_negative else
-                    " but within its error of 0: noise on a slow or absent exchange path"))
-            elif not connected[i, j] and np.isfinite(s) and k > CHECK_SIGMAS * s:
-                checks.append(f"{name} joins sites that no exchange process of the model joins: an exchange path the "
-                              "model lacks, or cross-relaxation (NOE, of the same sign as exchange in large or slowly "
-                              "tumbling molecules)")
-            if j > i:
-                flow_ij, flow_ji = k * m_eq[j], rates[j, i] * m_eq[i]
-                err = math.hypot(s * m_eq[j], stderr[j, i] * m_eq[i])
-                if np.isfinite(err) and abs(flow_ij - flow_ji) > CHECK_SIGMAS * err:
-                    checks.append(f"detailed balance fails between {labels[i]} and {labels[j]}: k M_eq is "
-                                  f"{significant(flow_ij)} one way and {significant(flow_ji)} the other (beyond {CHECK_SIGMAS:g} "
-                                  "errors): wrong populations in the model, unequal excitation of the sites, or "
-                                  "volumes distorted by overlap or baseline")
-    return checks
 
 
 # --------------------------------------------------------------------------------------------------
