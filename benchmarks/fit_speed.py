@@ -9,7 +9,7 @@
 (c) the global fit of that series (dH‡, dS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
-BLAS runs on one thread during fits (dnmr.fitting.spectrumfit.single_threaded_blas, needs threadpoolctl); other load
+BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure.
 
 Run:  python benchmarks/fit_speed.py
@@ -27,7 +27,9 @@ import numpy as np
 import dnmr
 from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.io.readers import MeasuredSpectrum, read_spectrum
-from dnmr.fitting.globalfit import TWO_STEP_FOLDER, _global_fit
+from dnmr.fitting.globalfit import fit_global_from_two_step
+from dnmr.fitting.globalproblem import Treatment
+from dnmr.fitting.globalresult import TWO_STEP_FOLDER
 from dnmr.fitting.series import fit_series
 from dnmr.activation.thermometry import read_temperature_calibration
 
@@ -95,7 +97,8 @@ def main() -> None:
         loaded = dnmr.fitting.series.load_series(series)
         for workers in (1, cores):
             t0 = time.perf_counter()
-            fit = _global_fit(loaded, result, folder / f"out{cores}", calibration, "linear", "per-spectrum", workers)
+            fit = fit_global_from_two_step(loaded, result, folder / f"out{cores}", calibration,
+                                           Treatment(shifts="linear", linewidth="per-spectrum"), workers)
             times[workers] = time.perf_counter() - t0
             a = fit.activation[0]
             print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "

@@ -25,7 +25,8 @@ from realistic_series import SCENARIOS, write_series
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.fitting.globalfit import Treatment, _global_fit, fit_series_global
+from dnmr.fitting.globalfit import fit_global_from_two_step, fit_series_global
+from dnmr.fitting.globalproblem import Treatment
 from dnmr.fitting.series import fit_series, load_series
 from dnmr.activation.thermometry import fit_temperature_calibration
 
@@ -241,7 +242,7 @@ def test_calibration_error_matches_refits_at_perturbed_calibrations(calibrated):
         ends = []
         for sign in (2.0, -2.0):
             moved = dataclasses.replace(cal, coefficients=cal.coefficients + sign * chol[:, j])
-            a = _global_fit(series, two, result.outdir, moved, Treatment(), 2).activation[0]
+            a = fit_global_from_two_step(series, two, result.outdir, moved, Treatment(), 2).activation[0]
             ends.append(np.array([a.enthalpy_kj_mol, a.entropy_j_mol_k]))
         d = (ends[0] - ends[1]) / 4.0
         brute += np.outer(d, d)
