@@ -29,6 +29,7 @@ from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.io.readers import MeasuredSpectrum, read_spectrum
 from dnmr.fitting.globalfit import TWO_STEP_FOLDER, _global_fit
 from dnmr.fitting.series import fit_series
+from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.thermometry import read_temperature_calibration
 
 DEMO = Path(dnmr.__file__).parent / "data" / "demo"
@@ -61,7 +62,7 @@ def demo_series(folder: Path) -> Path:
     """The bundled demo series with the options it needs, pointing at the bundled files (read only)."""
     lines = [f'model = "{DEMO / "model.toml"}"', "[fit]", "region_ppm = [4.15, 4.95]",
              'shifts = "slow-exchange-trend"', 'populations = "free"']
-    for spectrum in dnmr.fitting.series.load_series(DEMO / "series.toml").spectra:
+    for spectrum in load_series(DEMO / "series.toml").spectra:
         lines += ["[[spectrum]]", f'file = "{spectrum.file}"', f"temperature_k = {spectrum.temperature_k}"]
     path = folder / "series.toml"
     path.write_text("\n".join(lines) + "\n")
@@ -81,7 +82,7 @@ def main() -> None:
     folder = Path(tempfile.mkdtemp(prefix="dnmr-bench-"))
     try:
         series = demo_series(folder)
-        print(f"(b) demo series, {len(dnmr.fitting.series.load_series(series).spectra)} spectra, serial against {cores} workers")
+        print(f"(b) demo series, {len(load_series(series).spectra)} spectra, serial against {cores} workers")
         times = {}
         for workers in (1, cores):
             t0 = time.perf_counter()
@@ -92,7 +93,7 @@ def main() -> None:
         print(f"  speed-up {times[1] / times[cores]:.2f} (goal >= 1.7 on 2 cores)")
         print("(c) global fit of the demo series from (b), shifts linear in T, demo calibration")
         calibration = read_temperature_calibration(DEMO / "calibration.csv")
-        loaded = dnmr.fitting.series.load_series(series)
+        loaded = load_series(series)
         for workers in (1, cores):
             t0 = time.perf_counter()
             fit = _global_fit(loaded, result, folder / f"out{cores}", calibration, "linear", "per-spectrum", workers)

@@ -26,7 +26,8 @@ from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.globalfit import Treatment, _global_fit, fit_series_global
-from dnmr.fitting.series import fit_series, load_series
+from dnmr.fitting.series import fit_series
+from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.thermometry import fit_temperature_calibration
 
 SF = 400.0

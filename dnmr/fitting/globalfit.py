@@ -95,7 +95,8 @@ from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDAR
 from dnmr.model import Model, parse_coupling_key
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
-from dnmr.fitting.series import Series, SeriesFit, fit_series, load_series
+from dnmr.fitting.series import SeriesFit, fit_series
+from dnmr.fitting.seriesfile import Series, load_series
 from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover

@@ -63,7 +63,7 @@ from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_pa
 from dnmr.model import Model
 from dnmr.io.modelfile import check_keys, load_model, read_toml
 from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
-from dnmr.fitting.series import RATE_COLUMNS
+from dnmr.fitting.seriesoutput import RATE_COLUMNS
 from dnmr.io.tables import check_kelvin, read_table
 
 EXPERIMENTS = ("inversion", "saturation", "exchange-2d")
