@@ -26,6 +26,7 @@ or with them held; each is stored as ``fits/NNN_<stage>.json``."""
 LOCK_FILE = ".dnmr-lock"
 """Held (an advisory lock) by the run writing into a results folder; a second run is refused meanwhile."""
 STAGES = (STAGE_MAIN, STAGE_SLOW, STAGE_HELD, "posterior")
+"""Every stored result of a spectrum (``fits/NNN_<stage>.json``), its posterior included."""
 
 
 def write_json(path: Path, data) -> None:

@@ -40,7 +40,9 @@ from dnmr.model import Model
 from dnmr.nuclei import check_frequency_mhz
 
 TREND = "slow-exchange-trend"
+"""The treatment that takes a static quantity from the slow-exchange spectra (the default)."""
 REFERENCE_LINE = "reference-line"
+"""The treatment that takes the linewidth from a reference line in every spectrum."""
 TREATMENTS = {
     "shifts": (TREND, "fixed", "free"),
     "couplings": (TREND, "fixed", "free"),
@@ -49,18 +51,26 @@ TREATMENTS = {
 }
 """Series-level treatment of each static spectral parameter (the first is the default)."""
 SHIFT_MODES = TREATMENTS["shifts"]
+"""The treatments of the shifts."""
 TREATMENT_KIND = {"shifts": "shift", "couplings": "coupling", "populations": "population", "linewidth": "linewidth"}
 """The kind of fit parameter each treated quantity holds ("shift" parameters are ``shift_ppm_...``)."""
 REFERENCE_KEYS = {"ppm", "multiplicity", "coupling_hz", "window_ppm", "added_width_hz"}
+"""The keys of ``[fit.reference_line]``."""
 MULTIPLICITIES = {"s": (0, 0.5), "d": (1, 0.5), "t": (2, 0.5), "q": (3, 0.5), "p": (4, 0.5),
                   "1:1:1": (1, 1.0), "1:2:3:2:1": (2, 1.0), "1:3:6:7:6:3:1": (3, 1.0)}
 """Multiplet patterns of a reference line: (number of equivalent partners, their spin); first order."""
 FIT_OPTION_KEYS = {f.name for f in dataclasses.fields(FitOptions)}
+"""The fit options (:class:`dnmr.fitting.spectrumfit.FitOptions`) a series file may set."""
 SERIES_KEYS = {"model", "fit", "spectrum", "processing"}
+"""The top-level keys of a series file."""
 SERIES_FIT_KEYS = FIT_OPTION_KEYS | {"slow_exchange_below_k", "reference_line"}
+"""The keys of ``[fit]``: every fit option (the treatments among them), ``slow_exchange_below_k`` and
+``reference_line``."""
 SPECTRUM_OPTION_KEYS = {"region_ppm", "noise_ppm", "noise", "baseline_order", "phase", "frequency_offset",
                         "max_offset_hz", "linewidth", "parameters"}
+"""The fit options a ``[[spectrum]]`` may change for itself."""
 SPECTRUM_KEYS = {"file", "temperature_k", "frequency_mhz", "axis", "processing"} | SPECTRUM_OPTION_KEYS
+"""The keys of a ``[[spectrum]]``."""
 
 
 @dataclass(frozen=True)

@@ -172,8 +172,9 @@ def _slow_stage(series: Series, runner: FitRunner, hashes, references) -> tuple[
 
 
 def _linewidth_spectra(series: Series, outcomes, slow: list[int]) -> tuple[list[int], list[str]]:
-    """The slow spectra the linewidth trend comes from: the whole slow run (see :func:`linewidth_trend`),
-    with a note when the exchange broadening is resolved in every one of them."""
+    """The slow spectra the linewidth trend comes from: the whole slow run (see
+    :func:`dnmr.fitting.trends.linewidth_trend`), with a note when the exchange broadening is resolved in
+    every one of them."""
     if not slow or any(_is_quiet(outcomes[i].fit) for i in slow):
         return slow, []
     return slow, ["no slow-exchange spectrum is free of resolved exchange broadening, so the linewidth trend comes "
