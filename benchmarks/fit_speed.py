@@ -31,6 +31,7 @@ from dnmr.fitting.globalfit import fit_global_from_two_step
 from dnmr.fitting.globalproblem import Treatment
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER
 from dnmr.fitting.series import fit_series
+from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.thermometry import read_temperature_calibration
 
 DEMO = Path(dnmr.__file__).parent / "data" / "demo"
@@ -63,7 +64,7 @@ def demo_series(folder: Path) -> Path:
     """The bundled demo series with the options it needs, pointing at the bundled files (read only)."""
     lines = [f'model = "{DEMO / "model.toml"}"', "[fit]", "region_ppm = [4.15, 4.95]",
              'shifts = "slow-exchange-trend"', 'populations = "free"']
-    for spectrum in dnmr.fitting.series.load_series(DEMO / "series.toml").spectra:
+    for spectrum in load_series(DEMO / "series.toml").spectra:
         lines += ["[[spectrum]]", f'file = "{spectrum.file}"', f"temperature_k = {spectrum.temperature_k}"]
     path = folder / "series.toml"
     path.write_text("\n".join(lines) + "\n")
@@ -83,7 +84,7 @@ def main() -> None:
     folder = Path(tempfile.mkdtemp(prefix="dnmr-bench-"))
     try:
         series = demo_series(folder)
-        print(f"(b) demo series, {len(dnmr.fitting.series.load_series(series).spectra)} spectra, serial against {cores} workers")
+        print(f"(b) demo series, {len(load_series(series).spectra)} spectra, serial against {cores} workers")
         times = {}
         for workers in (1, cores):
             t0 = time.perf_counter()
@@ -94,7 +95,7 @@ def main() -> None:
         print(f"  speed-up {times[1] / times[cores]:.2f} (goal >= 1.7 on 2 cores)")
         print("(c) global fit of the demo series from (b), shifts linear in T, demo calibration")
         calibration = read_temperature_calibration(DEMO / "calibration.csv")
-        loaded = dnmr.fitting.series.load_series(series)
+        loaded = load_series(series)
         for workers in (1, cores):
             t0 = time.perf_counter()
             fit = fit_global_from_two_step(loaded, result, folder / f"out{cores}", calibration,

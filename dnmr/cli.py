@@ -19,7 +19,7 @@ from dnmr.errors import InputError
 from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
 
 if TYPE_CHECKING:
-    from dnmr.fitting.series import Series
+    from dnmr.fitting.seriesfile import Series
 
 
 class _Group(click.Group):
@@ -227,7 +227,8 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from dnmr.fitting.series import fit_series, load_series
+    from dnmr.fitting.series import fit_series
+    from dnmr.fitting.seriesfile import load_series
 
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",

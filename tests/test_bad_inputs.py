@@ -120,7 +120,7 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
 def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
     # the corpus must fail for the slip it is named after, not because the shared inputs are broken
     from dnmr.io.readers import read_spectrum
-    from dnmr.fitting.series import load_series
+    from dnmr.fitting.seriesfile import load_series
 
     shared = CORPUS / "series" / "_shared"
     series = tmp_path / "series.toml"
@@ -134,7 +134,7 @@ def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
 
 def test_replicate_temperatures_stay_allowed(tmp_path):
     # two files at one temperature may be replicates: flagged, not refused (only one file twice is refused)
-    from dnmr.fitting.series import load_series
+    from dnmr.fitting.seriesfile import load_series
 
     shared = CORPUS / "series" / "_shared"
     series = tmp_path / "series.toml"

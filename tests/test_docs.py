@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from dnmr.fitting import series
+from dnmr.fitting import seriesfile, seriesoutput
 from dnmr.io import modelfile
 from dnmr.cli import cli as dnmr_cli
 
@@ -92,10 +92,10 @@ def test_cli_examples_name_real_commands_and_options():
 
 
 @pytest.mark.parametrize("section, keys", [
-    ("top level", series.SERIES_KEYS),
-    ("fit", series.SERIES_FIT_KEYS),
-    ("spectrum", series.SPECTRUM_KEYS),
-    ("rates.csv", set(series.RATE_COLUMNS) | set(series.TAIL_COLUMNS)),
+    ("top level", seriesfile.SERIES_KEYS),
+    ("fit", seriesfile.SERIES_FIT_KEYS),
+    ("spectrum", seriesfile.SPECTRUM_KEYS),
+    ("rates.csv", set(seriesoutput.RATE_COLUMNS) | set(seriesoutput.TAIL_COLUMNS)),
 ])
 def test_every_series_key_and_output_column_is_documented(section, keys):
     documented = set(re.findall(r"`\[*([a-z0-9_]+)\]*`", (DOCS / "series-file.md").read_text()))

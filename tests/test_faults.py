@@ -249,9 +249,10 @@ def test_interrupted_fit_resumes_with_its_finished_fits(tmp_path):
 def test_workers_end_with_their_parent(tmp_path):
     # the parent is killed outright (no clean-up of its own); its workers must not outlive it
     code = ("import os, sys, time\n"
-            "from dnmr.fitting.series import _Runner, load_series\n"
+            "from dnmr.fitting.runner import FitRunner\n"
+            "from dnmr.fitting.seriesfile import load_series\n"
             "from dnmr.io.progress import ProgressReport\n"
-            f"runner = _Runner(load_series({str(series_file(tmp_path))!r}), None, 2, ProgressReport(False), False)\n"
+            f"runner = FitRunner(load_series({str(series_file(tmp_path))!r}), None, 2, ProgressReport(False), False)\n"
             "futures = [runner.pool.submit(time.sleep, 300) for _ in range(2)]\n"
             "time.sleep(1.0)\n"
             "print(' '.join(str(p) for p in runner.pool._processes), flush=True)\n"

@@ -27,7 +27,8 @@ from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.globalfit import fit_global_from_two_step, fit_series_global
 from dnmr.fitting.globalproblem import Treatment
-from dnmr.fitting.series import fit_series, load_series
+from dnmr.fitting.series import fit_series
+from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.thermometry import fit_temperature_calibration
 
 SF = 400.0

@@ -9,7 +9,7 @@ from click.testing import CliRunner
 
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.fitting.series import load_series
+from dnmr.fitting.seriesfile import load_series
 from dnmr.io.tables import celsius_hints
 from test_series import TEMPERATURES, write_series
 

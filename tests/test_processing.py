@@ -263,7 +263,7 @@ def test_series_of_raw_fids_gives_rates_and_linewidths_that_include_lb(tmp_path)
 
 
 def test_series_processing_typo_names_its_table(tmp_path):
-    from dnmr.fitting.series import load_series
+    from dnmr.fitting.seriesfile import load_series
 
     (tmp_path / "model.toml").write_text(EXCHANGE_MODEL)
     write_bruker(tmp_path / "1", exchange_fid(30.0))

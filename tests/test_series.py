@@ -19,7 +19,8 @@ from closed_forms import mcconnell_two_site
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.fitting.series import fit_series, load_series
+from dnmr.fitting.series import fit_series
+from dnmr.fitting.seriesfile import load_series
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 60.0, 0.0  # invented

@@ -323,7 +323,7 @@ def test_command_writes_the_rates_table_that_eyring_reads(tmp_path):
 
     from dnmr.activation.eyring import read_rates
     from dnmr.cli import cli
-    from dnmr.fitting.series import RATE_COLUMNS
+    from dnmr.fitting.seriesoutput import RATE_COLUMNS
 
     experiment = write_inversion_files(tmp_path)
     run = CliRunner().invoke(cli, ["transfer", str(experiment), "-o", str(tmp_path / "out")])

@@ -91,7 +91,8 @@ from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProble
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, write_global_fit
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
-from dnmr.fitting.series import Series, SeriesFit, fit_series, load_series
+from dnmr.fitting.series import SeriesFit, fit_series
+from dnmr.fitting.seriesfile import Series, load_series
 from dnmr.fitting.spectrumfit import NoiseEstimate, _error_scale
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport

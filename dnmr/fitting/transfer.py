@@ -27,7 +27,7 @@ import numpy as np
 from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_patterns, site_relaxation_rates
 from dnmr.errors import InputError
 from dnmr.fitting.matrixmethod import SiteRates, matrix_method
-from dnmr.fitting.series import RATE_COLUMNS
+from dnmr.fitting.seriesoutput import RATE_COLUMNS
 from dnmr.fitting.spectrumfit import (
     NoiseEstimate,
     RateEstimate,

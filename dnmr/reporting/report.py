@@ -68,7 +68,7 @@ from dnmr.model import Model
 from dnmr.io.modelfile import load_model
 from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as
 from dnmr.planning.plan import CAUTIONS
-from dnmr.fitting.series import file_sha256
+from dnmr.fitting.seriesoutput import file_sha256
 from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, TemperatureCalibration, read_temperature_calibration
 
 REPORT_NAME = "report.html"

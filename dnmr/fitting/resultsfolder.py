@@ -1,0 +1,158 @@
+"""The results folder of a series fit: what it holds, the lock of the run writing it, and the rules for
+writing into one that exists (refused, unless ``overwrite`` replaces an earlier dnmr fit's files or
+``resume`` continues it).
+
+Every file is written atomically; inputs are never written over, and only the files an earlier dnmr fit
+wrote (named in its manifest ``series.json``) are ever removed.
+"""
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Sequence
+from pathlib import Path
+
+from dnmr.errors import InputError
+from dnmr.fitting.seriesfile import Series
+from dnmr.io.output import atomic_write_text, json_ready
+
+OUTPUT_FILES = ("rates.csv", "results.json", "series_fits.png", "series.json")
+"""The files of a series fit at the top of its results folder (beside them ``report.html`` of ``dnmr report``)."""
+RESULT_FOLDERS = ("fits", "figures")
+"""The folders of a series fit inside its results folder: the stored fits and the figures."""
+STAGE_MAIN, STAGE_SLOW, STAGE_HELD = "main", "slow-exchange", "held"
+"""The fits of a spectrum: alone ("main", no trends), in the slow-exchange run with its static parameters free,
+or with them held; each is stored as ``fits/NNN_<stage>.json``."""
+LOCK_FILE = ".dnmr-lock"
+"""Held (an advisory lock) by the run writing into a results folder; a second run is refused meanwhile."""
+STAGES = (STAGE_MAIN, STAGE_SLOW, STAGE_HELD, "posterior")
+"""Every stored result of a spectrum (``fits/NNN_<stage>.json``), its posterior included."""
+
+
+def write_json(path: Path, data) -> None:
+    """Write `data` as JSON (NaN refused) to `path` atomically, replacing an earlier file of the results."""
+    atomic_write_text(path, json.dumps(json_ready(data), indent=1, allow_nan=False) + "\n", overwrite=True)
+
+
+def _result_names(series: Series) -> list[str]:
+    """Every file (relative to OUTDIR) a fit of `series` may write: what a later --overwrite removes."""
+    names = list(OUTPUT_FILES) + ["report.html"]
+    for i, s in enumerate(series.spectra):
+        names += [f"fits/{i:03d}_{stage}.json" for stage in STAGES]
+        names += [f"figures/{i:03d}_{s.file.stem}.png", f"figures/{i:03d}_{s.file.stem}_posterior.png"]
+    return names
+
+
+def _lock(outdir: Path):
+    """Take the lock of `outdir` (an open file holding an exclusive advisory lock, released when closed
+    or when this process ends), or refuse when another run holds it."""
+    import fcntl
+
+    handle = open(outdir / LOCK_FILE, "a+")
+    try:
+        fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        handle.seek(0)
+        holder = handle.read().strip() or "another process"
+        handle.close()
+        raise InputError(f"{outdir} is being written by another dnmr run ({holder}); wait for it to finish or "
+                         "choose another folder", where="--output") from None
+    handle.seek(0)
+    handle.truncate()
+    handle.write(f"dnmr fit, process {os.getpid()}\n")
+    handle.flush()
+    return handle
+
+
+def release_results_folder(handle) -> None:
+    """Release the lock of a results folder (the `handle` :func:`prepare_results_folder` returned) and remove
+    its file."""
+    Path(handle.name).unlink(missing_ok=True)
+    handle.close()
+
+
+def _earlier_manifest(outdir: Path) -> dict | None:
+    """The manifest (series.json) of an earlier dnmr fit in `outdir`, or None when there is none."""
+    manifest = outdir / "series.json"
+    if manifest.is_symlink() or not manifest.is_file():
+        return None
+    try:
+        data = json.loads(manifest.read_text())
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and data.get("program") == "dnmr fit" else None
+
+
+def _remove_earlier_results(outdir: Path, names: Sequence[str]) -> None:
+    """Remove the files of an earlier fit named in `names`, and only those: regular files (a link is
+    never followed out of `outdir`) inside `outdir` itself."""
+    root = outdir.resolve()
+    for name in names:
+        path = outdir / name
+        if not isinstance(name, str) or ".." in Path(name).parts or Path(name).is_absolute():
+            continue
+        if path.is_symlink() or not path.is_file() or not path.resolve().is_relative_to(root):
+            continue
+        path.unlink()
+
+
+def prepare_results_folder(outdir: Path, series: Series, overwrite: bool, resume: bool):
+    """Refuse to overwrite or to write over inputs; clear earlier results when asked; create folders.
+
+    Parameters
+    ----------
+    outdir : Path
+        The results folder.
+    series : Series
+        The series to be fitted into it (its inputs must lie outside what the fit writes).
+    overwrite, resume : bool
+        Replace an earlier dnmr fit's results, or continue them (not both).  With `overwrite`, only the
+        files an earlier dnmr fit wrote are removed (named in its series.json); a folder holding
+        anything else is refused.
+
+    Returns
+    -------
+    The lock of `outdir` (see :func:`_lock`), to be released with :func:`release_results_folder` after the run.
+    """
+    if overwrite and resume:
+        raise InputError("--overwrite discards earlier fits and --resume keeps them: choose one", where="--overwrite")
+    if outdir.exists() and not outdir.is_dir():
+        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
+    ours = {(outdir / name).resolve() for name in OUTPUT_FILES}
+    inputs = [series.source, series.model_file] + [s.file for s in series.spectra]
+    for p in inputs:
+        inside = any(Path(p).resolve().is_relative_to((outdir / f).resolve()) for f in RESULT_FOLDERS)
+        if Path(p).resolve() in ours or inside:
+            raise InputError(f"the input {p} would be overwritten by the results; choose another output folder",
+                             where="--output")
+    for folder in RESULT_FOLDERS:
+        if (outdir / folder).is_symlink() or (outdir / folder).exists() and not (outdir / folder).is_dir():
+            raise InputError(f"{outdir / folder} is a link or a file, not a folder of dnmr's; dnmr writes only "
+                             "inside the results folder: remove it or choose another folder", where="--output")
+    existed = outdir.exists() and any(p.name != LOCK_FILE for p in outdir.iterdir())
+    if existed and not (resume or overwrite):
+        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results or --resume to "
+                         "continue them", where="--output")
+    earlier = _earlier_manifest(outdir) if existed else None
+    if existed and earlier is None:
+        raise InputError(f"{outdir} holds no dnmr fit results (no series.json of dnmr's), so there is nothing of "
+                         f"dnmr's to {'resume' if resume else 'replace'}; choose a new folder",
+                         where="--resume" if resume else "--output")
+    if resume and earlier.get("series") != str(series.source):
+        raise InputError(f"{outdir} holds the results of another series ({earlier.get('series')}); use another "
+                         "folder or --overwrite", where="--resume")
+    outdir.mkdir(parents=True, exist_ok=True)
+    lock = _lock(outdir)
+    try:
+        if existed and overwrite:
+            _remove_earlier_results(outdir, list(earlier.get("files") or []) + _result_names(series))
+        for folder in RESULT_FOLDERS:
+            (outdir / folder).mkdir(exist_ok=True)
+        names = sorted(set(_result_names(series)) | set((earlier or {}).get("files") or [] if resume else ()))
+        write_json(outdir / "series.json", {"program": "dnmr fit", "series": str(series.source), "files": names})
+    except BaseException:
+        release_results_folder(lock)
+        raise
+    return lock
+
+

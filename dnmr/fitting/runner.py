@@ -1,0 +1,339 @@
+"""Running the fits of a series: jobs, seeds from finished neighbours, stored fits and resume.
+
+Spectra are fitted in parallel (one worker process per core), each seeded from spectra fitted before it
+in a fixed order: the coldest and the hottest first, then the middle temperature, then the middles of
+the halves, and so on; a spectrum takes its rates from an Eyring line through the rates of the spectra
+of earlier rounds (ln(k/T) linear in 1/T), the other parameters from the nearest of them.  The seeds
+never depend on which fit finishes first, so the same inputs give the same numbers, serial or parallel.
+Worker processes (:func:`dnmr.fitting.workers.process_pool`) end with the process that started them.
+
+Each fit is stored as it finishes (``fits/NNN_<stage>.json``); ``resume`` reuses a stored fit only
+when the spectrum file, its temperature, the options and the model are unchanged.
+"""
+from __future__ import annotations
+
+import concurrent.futures as futures
+import hashlib
+import json
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from dnmr.errors import InputError
+from dnmr.fitting.resultsfolder import STAGE_MAIN, write_json
+from dnmr.fitting.seriesfile import Series, SeriesSpectrum
+from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
+from dnmr.fitting.workers import process_pool
+from dnmr.io.output import json_ready
+from dnmr.io.readers import read_spectrum
+from dnmr.kinetics import eyring_barrier, eyring_rate
+from dnmr.model import Model
+
+
+@dataclass(frozen=True)
+class FitJob:
+    """One fit to do: a spectrum of the series at one stage, with the options of that stage.
+
+    Attributes
+    ----------
+    index : int
+        The spectrum's place in the series file.
+    stage : str
+        "main", "slow-exchange" or "held" (:data:`dnmr.fitting.resultsfolder.STAGES`).
+    spectrum : SeriesSpectrum
+        The spectrum.
+    options : FitOptions
+        The fit options of that stage.
+    key : str
+        SHA-256 of everything the fit depends on (what a stored fit is reused by).
+    """
+
+    index: int
+    stage: str
+    spectrum: SeriesSpectrum
+    options: FitOptions
+    key: str
+
+
+def fit_job(series: Series, index: int, stage: str, options: FitOptions, hashes: Mapping) -> FitJob:
+    """The job of spectrum `index` at `stage`; `hashes` holds the SHA-256 of every input (by index, and
+    "model"), which with the options and the stage makes the key a stored fit is reused by."""
+    s = series.spectra[index]
+    from dnmr import __version__
+
+    identity = {"spectrum": hashes[index], "file": str(s.file), "temperature_k": s.temperature_k,
+                "frequency_mhz": s.frequency_mhz, "axis": s.axis, "options": options.to_dict(),
+                "model": hashes["model"], "stage": stage, "dnmr": __version__}
+    if s.processing is not None:
+        identity["processing"] = s.processing
+    return FitJob(index, stage, s, options, identity_key(identity))
+
+
+def identity_key(identity: Mapping) -> str:
+    """SHA-256 of everything a stored result depends on (what --resume compares)."""
+    return hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
+
+
+def _run_job(model: Model, job: FitJob, start: Mapping[str, float] | None) -> dict:
+    """Fit one spectrum (in a worker process); never raises: a failure comes back as data."""
+    s = job.spectrum
+    try:
+        spectrum = read_spectrum(s.file, frequency_mhz=s.frequency_mhz or model.spectrometer.frequency_mhz, axis=s.axis,
+                                 processing=s.processing)
+        fit = fit_spectrum(spectrum, model, temperature_k=s.temperature_k, options=job.options, start=start)
+        processing = spectrum.metadata.get("processing")
+        if processing:  # the apodization's exact addition to every linewidth, said beside the fit
+            fit.notes.extend(n for n in processing["notes"] if n not in fit.notes)
+        return {"status": "fitted", "fit": fit.to_dict(), "curves": fit.curves(), "processing": processing}
+    except InputError as err:
+        return {"status": "failed", "bad_input": True, "error": str(err.located(source=s.file))}
+    except Exception as err:  # a failed fit is reported for this spectrum; the others go on
+        return {"status": "failed", "bad_input": False, "error": f"{type(err).__name__}: {err}"}
+
+
+def restored_fit(model: Model, fit_data: dict, curves: dict) -> SpectrumFit:
+    """A stored fit (plain data) as a SpectrumFit of `model` at the fit's temperature."""
+    return SpectrumFit.from_dict(fit_data, curves, model.at_temperature(fit_data["temperature_k"]))
+
+
+def _eyring_start(points: list[tuple[float, float]], temperature_k: float) -> float | None:
+    """log10 k at `temperature_k` from (T, k) pairs: a line ln(k/T) in 1/T, or one barrier."""
+    temps = np.array([t for t, _ in points])
+    rates = np.array([k for _, k in points])
+    if len(points) == 0:
+        return None
+    if len(set(temps.tolist())) < 2:
+        barrier = float(np.mean(eyring_barrier(rates, temps)))
+        return math.log10(eyring_rate(barrier, temperature_k))
+    slope, intercept = np.polyfit(1.0 / temps, np.log(rates / temps), 1)
+    return float((intercept + slope / temperature_k + math.log(temperature_k)) / math.log(10))
+
+
+def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectrum, dict]]) -> dict[str, float]:
+    """Starting values for `target` from finished fits: Eyring rates, the rest from the nearest one."""
+    if not finished:
+        return {}
+    nearest = min(finished, key=lambda f: abs(f[0].temperature_k - target.temperature_k))[1]
+    start = {name: p["estimate"] for name, p in nearest["parameters"].items()
+             if not name.startswith(("log10_k_", "amplitude", "baseline_"))}
+    rate_names = [n for n in nearest["parameters"] if n.startswith("log10_k_")]  # in process order
+    for i, name in enumerate(rate_names):
+        points = [(s.temperature_k, f["rates"][i]["rate_per_s"]) for s, f in finished
+                  if f["rates"][i]["status"] in ("determined", "interval")]
+        value = _eyring_start(points, target.temperature_k)
+        if value is not None:
+            start[name] = value
+    return start
+
+
+def _seed_levels(series: Series, indices: Sequence[int]) -> dict[int, int]:
+    """The level of each spectrum in a fixed seeding order: the coldest and hottest first (level 0), then
+    the middle one in temperature, then the middles of the halves, and so on.  A spectrum is seeded only
+    from the spectra of lower levels, so its starting values, and hence its fit, do not depend on which
+    fits happen to finish first: serial and parallel runs give the same numbers."""
+    order = sorted(indices, key=lambda i: (series.spectra[i].temperature_k, i))
+    levels = {i: 0 for i in order[:1] + order[-1:]}
+    spans, depth = [(0, len(order) - 1)], 1
+    while spans:
+        halves = []
+        for lo, hi in spans:
+            if hi - lo >= 2:
+                mid = (lo + hi) // 2
+                levels[order[mid]] = depth
+                halves += [(lo, mid), (mid, hi)]
+        spans, depth = halves, depth + 1
+    return levels
+
+
+@dataclass
+class SpectrumOutcome:
+    """What became of one spectrum of a series.
+
+    Attributes
+    ----------
+    spectrum : SeriesSpectrum
+        The spectrum.
+    fit : SpectrumFit or None
+        The final fit (None when it failed).
+    error : str
+        Why it failed ("" when fitted).
+    bad_input : bool
+        True when the failure was bad input (an unreadable file...).
+    stage : str
+        Which fit is final: "main" (no trends), "slow-exchange" (static parameters free) or "held"
+        (static parameters held at their trends).
+    reused : bool
+        True when a completed fit was taken over from an earlier run (resume).
+    notes : list of str
+        Remarks of the series fit on this spectrum (shift trend used...).
+    treatment : dict of str to str
+        How "shifts", "couplings", "populations" and "linewidth" were treated in the final fit:
+        "fitted", "trend", "model", "reference-line" or "user".
+    reference : dict or None
+        The fit of the reference line (width, its error, flags) when the series names one.
+    flags : list of str
+        Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
+        (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
+        slow-exchange temperature, whose drift with temperature is unknown and not in the error).
+    """
+
+    spectrum: SeriesSpectrum
+    fit: SpectrumFit | None
+    error: str = ""
+    bad_input: bool = False
+    stage: str = STAGE_MAIN
+    reused: bool = False
+    notes: list[str] = field(default_factory=list)
+    posterior: dict | None = None
+    processing: dict | None = None
+    treatment: dict[str, str] = field(default_factory=dict)
+    reference: dict | None = None
+    flags: list[str] = field(default_factory=list)
+
+    def posterior_rate(self, i: int) -> dict | None:
+        """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
+        if not self.fitted or not self.posterior or "quantities" not in self.posterior:
+            return None
+        names = [n for n in self.fit.parameters if n.startswith("log10_k_")]  # in process order
+        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_k_"):])
+
+    @property
+    def fitted(self) -> bool:
+        """True when the spectrum was fitted."""
+        return self.fit is not None
+
+
+def outcome_from_record(series: Series, index: int, record: dict, stage: str) -> SpectrumOutcome:
+    """What became of spectrum `index` at `stage`, from the record :meth:`FitRunner.run` gave for it."""
+    s = series.spectra[index]
+    if record["status"] != "fitted":
+        return SpectrumOutcome(s, None, record["error"], record.get("bad_input", False), stage)
+    fit = SpectrumFit.from_dict(record["fit"], record["curves"], series.model.at_temperature(s.temperature_k))
+    return SpectrumOutcome(s, fit, stage=stage, reused=record.get("reused", False), processing=record.get("processing"))
+
+
+class FitRunner:
+    """Runs fits in a process pool (or in this process), seeding each from finished neighbours,
+    storing every result as it finishes and reusing stored ones on resume.
+
+    Parameters
+    ----------
+    series : Series
+        The series whose spectra are fitted.
+    outdir : Path
+        The results folder (stored fits go to its ``fits/``).
+    workers : int
+        Worker processes; 1 runs every fit in this process.
+    progress : ProgressReport
+        Where progress is reported (:class:`dnmr.io.progress.ProgressReport`).
+    resume : bool
+        Reuse fits stored by an earlier run with the same inputs.
+    """
+
+    def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool):
+        self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
+        self.pool = process_pool(workers) if workers > 1 else None
+
+    def close(self) -> None:
+        """End the worker processes (waiting for those running; none is started after)."""
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+
+    def _stored(self, job: FitJob) -> Path:
+        return self.outdir / "fits" / f"{job.index:03d}_{job.stage}.json"
+
+    def _reuse(self, job: FitJob) -> dict | None:
+        path = self._stored(job)
+        if not self.resume or not path.exists():
+            return None
+        try:
+            data = json.loads(path.read_text())
+        except (OSError, ValueError):
+            return None
+        return data if data.get("key") == job.key and data.get("status") == "fitted" else None
+
+    def _store(self, job: FitJob, result: dict) -> dict:
+        record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
+                  "temperature_k": job.spectrum.temperature_k, **result}
+        write_json(self._stored(job), record)
+        return record
+
+    def run(self, jobs: list[FitJob], label: str) -> dict[int, dict]:
+        """Fit every job; returns the stored record of each by spectrum index."""
+        records: dict[int, dict] = {}
+        task = self.progress.add_task(label, total=len(jobs))
+        todo = []
+        for job in jobs:
+            reused = self._reuse(job)
+            if reused is not None:
+                records[job.index] = {**reused, "reused": True}
+                self.progress.advance(task, f"{job.spectrum.temperature_k:g} K, from the earlier run")
+            else:
+                todo.append(job)
+        self.progress.refresh()
+        by_index = {j.index: j for j in todo}
+        levels = _seed_levels(self.series, [j.index for j in jobs])
+        waiting = sorted(by_index, key=lambda i: (levels[i], self.series.spectra[i].temperature_k, i))
+        running: dict = {}
+
+        def ready(index: int) -> bool:  # every spectrum of a lower level has finished
+            return all(j in records for j in levels if levels[j] < levels[index])
+
+        def submit(index: int) -> None:
+            waiting.remove(index)
+            done = [(self.series.spectra[j], records[j]["fit"]) for j in sorted(levels)
+                    if levels[j] < levels[index] and records[j]["status"] == "fitted"]
+            start = _start_values(self.series.spectra[index], done)
+            if self.pool is None:
+                running[index] = _run_job(self.series.model, by_index[index], start)
+            else:
+                running[index] = self.pool.submit(_run_job, self.series.model, by_index[index], start)
+
+        def collect(index: int, result: dict) -> None:
+            records[index] = self._store(by_index[index], result)
+            self.progress.advance(task, f"{self.series.spectra[index].temperature_k:g} K")
+            self.progress.refresh()
+
+        while waiting or running:
+            for index in [i for i in waiting if ready(i)][: max(0, self.workers - len(running))]:
+                submit(index)
+            if self.pool is None:
+                index, result = running.popitem()
+                collect(index, result)
+                continue
+            done, _ = futures.wait(list(running.values()), return_when=futures.FIRST_COMPLETED)
+            for index in [i for i, f in running.items() if f in done]:
+                collect(index, _future_result(running.pop(index)))
+        return records
+
+    def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
+        """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
+        progress bar counts the calls done."""
+        task = self.progress.add_task(label, total=len(calls)) if label else None
+
+        def advance() -> None:
+            if task is not None:
+                self.progress.advance(task)
+                self.progress.refresh()
+
+        if self.pool is None:
+            out = []
+            for args in calls:
+                out.append(function(*args))
+                advance()
+            return out
+        pending = [self.pool.submit(function, *args) for args in calls]
+        for _ in futures.as_completed(pending):
+            advance()
+        return [f.result() for f in pending]
+
+
+def _future_result(future) -> dict:
+    try:
+        return future.result()
+    except Exception as err:  # the worker process died (out of memory, killed...)
+        return {"status": "failed", "bad_input": False, "error": f"worker failed: {type(err).__name__}: {err}"}
+

@@ -1,0 +1,369 @@
+"""Slow-exchange trends: static spectral parameters regressed on temperature, and the values held from them.
+
+Shifts and couplings are regressed linearly on T, populations as ln(p/p_first) on 1/T (van 't Hoff), the
+linewidth on T jointly with an Eyring line of the rates (elsewhere the linewidth and the exchange
+broadening k/pi trade against each other).  A held value carries the line's standard error at its
+temperature, which the fit carries into the rates (:mod:`dnmr.fitting.spectrumfit`, held parameters
+with a stderr).  Which spectra the trends come from is decided in :mod:`dnmr.fitting.treatments`.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from dnmr.fitting.spectrumfit import SpectrumFit
+
+PARAMETER_PREFIX = {"shift": "shift_ppm_", "coupling": "coupling_hz_", "population": "population_",
+                    "linewidth": "linewidth_hz_"}
+"""The name prefix of the fit parameters of each kind of static parameter."""
+MIN_HELD_LINEWIDTH_HZ = 1e-3
+"""A linewidth trend extrapolated below this (Hz) is held here (the fit's lower limit of a linewidth)."""
+
+
+@dataclass(frozen=True)
+class ParameterTrend:
+    """One static spectral parameter regressed on temperature over slow-exchange spectra.
+
+    ``y = a + b (x - x0)`` by weighted least squares (weights 1/stderr^2), with x = T (K) for shifts,
+    couplings and the linewidth, and for a population x = 1/T, y = ln(p_state / p_first) (van 't Hoff).
+    The covariance of (a, b) is widened by the reduced chi-square of the line when that is above 1
+    (scatter beyond the errors).  From one temperature (``constant`` is true) a shift, coupling or
+    linewidth is held constant (b = 0), and a population ratio keeps its free-energy difference
+    (b = a / x0: ln K proportional to 1/T, dS° = 0).
+
+    Attributes
+    ----------
+    name : str
+        The fit parameter (``shift_ppm_a_H``, ``coupling_hz_M_Ha_Hb``, ``linewidth_hz_a``, ``population_b``).
+    kind : str
+        "linear-in-T" or "van-t-hoff".
+    temperatures_k, values, stderrs : tuple of float
+        The points regressed (values in the parameter's unit, or ln(p/p_first)).
+    x0 : float
+        Centre of x (K, or 1/K).
+    coefficients : (float, float)
+        a and b.
+    covariance : ((float, float), (float, float))
+        Covariance of a and b.
+    reduced_chi_square : float
+        Of the line (NaN without degrees of freedom).
+    constant : bool
+        True when the points come from one temperature (no slope).
+    """
+
+    name: str
+    kind: str
+    temperatures_k: tuple[float, ...]
+    values: tuple[float, ...]
+    stderrs: tuple[float, ...]
+    x0: float
+    coefficients: tuple[float, float]
+    covariance: tuple[tuple[float, float], tuple[float, float]]
+    reduced_chi_square: float
+    constant: bool = False
+
+    def x(self, temperature_k: float) -> float:
+        """The line's abscissa at `temperature_k` (K): T (K), or 1/T (1/K) for a van 't Hoff line."""
+        return 1.0 / temperature_k if self.kind == "van-t-hoff" else temperature_k
+
+    def at(self, temperature_k: float) -> tuple[float, float]:
+        """The line's value and its standard error at `temperature_k` (K)."""
+        d = np.array([1.0, self.x(temperature_k) - self.x0])
+        a, b = self.coefficients
+        return float(a + b * d[1]), float(math.sqrt(max(d @ np.array(self.covariance) @ d, 0.0)))
+
+    def to_dict(self) -> dict:
+        """Plain data."""
+        return dataclasses.asdict(self)
+
+
+def regress_trend(name: str, kind: str, temperatures_k, values, stderrs) -> ParameterTrend:
+    """Weighted straight line of `values` (with standard errors `stderrs`) on T or 1/T; see
+    :class:`ParameterTrend`.  Points with an unknown error are weighted equally with the scatter as error."""
+    temps = np.asarray(temperatures_k, float)
+    y, err = np.asarray(values, float), np.asarray(stderrs, float)
+    x = 1.0 / temps if kind == "van-t-hoff" else temps
+    known = bool(np.all(np.isfinite(err) & (err > 0)))
+    w = 1.0 / err**2 if known else np.ones_like(y)
+    x0 = float(np.average(x, weights=w))
+    if len(set(temps.tolist())) < 2:
+        mean = float(np.average(y, weights=w))
+        var = 1.0 / w.sum() if known else (float(np.var(y, ddof=1)) / y.size if y.size > 1 else math.nan)
+        # A population ratio from one temperature keeps its free-energy difference (dS° = 0, so ln K is
+        # proportional to 1/T; common practice), not its ratio: the line runs through x = 0.
+        slope = mean / x0 if kind == "van-t-hoff" else 0.0
+        d = np.array([1.0, slope / mean if mean else 0.0])
+        cov = var * np.outer(d, d)
+        return ParameterTrend(name, kind, tuple(temps.tolist()), tuple(y.tolist()), tuple(err.tolist()), x0,
+                              (mean, slope), tuple(tuple(float(v) for v in row) for row in cov), math.nan,
+                              constant=True)
+    design = np.column_stack([np.ones_like(x), x - x0]) * np.sqrt(w)[:, None]
+    coef, *_ = np.linalg.lstsq(design, y * np.sqrt(w), rcond=None)
+    cov = np.linalg.inv(design.T @ design)
+    dof = y.size - 2
+    chi2 = float(np.sum(w * (y - coef[0] - coef[1] * (x - x0)) ** 2))
+    red = chi2 / dof if dof > 0 else math.nan
+    if not known:
+        cov = cov * (red if dof > 0 else math.nan)
+    elif dof > 0 and red > 1.0:
+        cov = cov * red
+    return ParameterTrend(name, kind, tuple(temps.tolist()), tuple(y.tolist()), tuple(err.tolist()), x0,
+                          (float(coef[0]), float(coef[1])), tuple(tuple(float(v) for v in row) for row in cov), red)
+
+
+@dataclass(frozen=True)
+class StaticTrend:
+    """The temperature trends of the static spectral parameters, taken from the slow-exchange spectra.
+
+    Attributes
+    ----------
+    lines : dict of str to ParameterTrend
+        One per trended fit parameter.
+    first_population : str or None
+        The population every van 't Hoff line is relative to.
+    notes : tuple of str
+        How the trends were made (which spectra, a single temperature...).
+    differences : dict of str to ParameterTrend
+        Every shift but the first as its difference from the first (``first_shift``), regressed the same
+        way.  These give the errors of the held shifts: a shift common to all lines (referencing, which
+        in the slow-exchange fits moves every shift alike) is taken up by the frequency offset of the
+        held fits, so only the differences carry an error into the rates.
+    first_shift : str or None
+        The shift the differences are taken from.
+    """
+
+    lines: dict[str, ParameterTrend]
+    first_population: str | None = None
+    notes: tuple[str, ...] = ()
+    differences: dict[str, ParameterTrend] = field(default_factory=dict)
+    first_shift: str | None = None
+
+    def held(self, temperature_k: float, kinds: Sequence[str] = ("shift", "coupling", "population", "linewidth")
+             ) -> dict[str, dict]:
+        """Parameter settings holding the trended parameters of `kinds` at `temperature_k` (K), each with
+        its value as ``start``, ``fixed = True`` and the standard error of the line there (which the fit carries into
+        the rates).  Populations come back normalised, the error on each but the first (the reference of
+        the van 't Hoff lines) as the error of its relative weight."""
+        out: dict[str, dict] = {}
+        prefixes = tuple(PARAMETER_PREFIX[k] for k in kinds)
+        ratios = {}
+        for name, line in self.lines.items():
+            if not name.startswith(prefixes):
+                continue
+            value, stderr = line.at(temperature_k)
+            if line.kind == "van-t-hoff":
+                ratios[name] = (value, stderr)
+                continue
+            if name.startswith(PARAMETER_PREFIX["linewidth"]):
+                value = max(value, MIN_HELD_LINEWIDTH_HZ)
+            if name.startswith(PARAMETER_PREFIX["shift"]):  # only differences of shifts matter (see above)
+                stderr = self.differences[name].at(temperature_k)[1] if name in self.differences else 0.0
+            out[name] = held_setting(value, stderr)
+        if ratios:
+            weights = {name: math.exp(v) for name, (v, _) in ratios.items()}
+            total = 1.0 + sum(weights.values())
+            out[self.first_population] = {"start": 1.0 / total, "fixed": True}
+            for name, (_, stderr) in ratios.items():
+                p = weights[name] / total
+                out[name] = held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
+        return out
+
+    def shift_lines(self) -> dict[str, dict[str, float]]:
+        """The shift lines in the form results.json has always had (ppm at the mean T, ppm per K)."""
+        out = {}
+        for name, line in self.lines.items():
+            if name.startswith(PARAMETER_PREFIX["shift"]):
+                out[name] = {"ppm_at_mean": line.coefficients[0], "ppm_per_k": line.coefficients[1],
+                             "mean_temperature_k": line.x0,
+                             "ppm_at_mean_stderr": math.sqrt(line.covariance[0][0]),
+                             "ppm_per_k_stderr": math.nan if line.constant else math.sqrt(line.covariance[1][1])}
+        return out
+
+    def to_dict(self) -> dict:
+        """Plain data."""
+        return {"lines": {n: line.to_dict() for n, line in self.lines.items()},
+                "first_population": self.first_population, "notes": list(self.notes),
+                "differences": {n: line.to_dict() for n, line in self.differences.items()},
+                "first_shift": self.first_shift}
+
+
+def held_setting(value: float, stderr: float) -> dict:
+    """The parameter setting that holds a parameter at `value`, with its standard error `stderr` (same unit)
+    when that is known and positive."""
+    setting = {"start": float(value), "fixed": True}
+    if math.isfinite(stderr) and stderr > 0:
+        setting["stderr"] = float(stderr)
+    return setting
+
+
+def _parameter_points(fits: Sequence[tuple[float, SpectrumFit]], name: str, widen=None) -> tuple[list, list, list]:
+    """(temperatures, values, stderrs) of parameter `name` over `fits`; `widen(fit)` adds an error in
+    quadrature (the linewidth's trade with an unresolved exchange broadening)."""
+    temps, values, errors = [], [], []
+    for t, fit in fits:
+        par = fit.parameters[name]
+        err = math.nan if par.stderr is None else float(par.stderr)
+        if widen is not None:
+            err = math.hypot(err, widen(fit))
+        temps.append(t)
+        values.append(float(par.value))
+        errors.append(err)
+    return temps, values, errors
+
+
+def _log_ratio_points(fits, name: str, first: str) -> tuple[list, list, list]:
+    """(temperatures, ln(p/p_first), stderrs) of population `name` over `fits`."""
+    temps, values, errors = [], [], []
+    for t, fit in fits:
+        p, p0 = fit.parameters[name], fit.parameters[first]
+        s = math.nan if p.stderr is None else float(p.stderr)
+        s0 = math.nan if p0.stderr is None else float(p0.stderr)
+        two = len([n for n in fit.parameters if n.startswith("population_")]) == 2
+        # two states: p_first = 1 - p, so d ln(p/p_first) = dp (1/p + 1/p_first); more: errors taken independent
+        err = s * (1.0 / p.value + 1.0 / p0.value) if two else math.hypot(s / p.value, s0 / p0.value)
+        temps.append(t)
+        values.append(math.log(p.value / p0.value))
+        errors.append(err)
+    return temps, values, errors
+
+
+def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tuple[float, SpectrumFit]],
+                 kinds: Sequence[str]) -> StaticTrend:
+    """Regress the static parameters of `kinds` on temperature.
+
+    Parameters
+    ----------
+    slow : sequence of (temperature_k, SpectrumFit)
+        The slow-exchange fits with those parameters free: shifts, couplings and populations come from them.
+    quiet : sequence of (temperature_k, SpectrumFit)
+        The fits with the linewidth free the linewidth's line comes from, jointly with their rates (see
+        :func:`linewidth_trend`).
+    kinds : sequence of str
+        Which of "shift", "coupling", "population", "linewidth" to regress.
+    """
+    lines: dict[str, ParameterTrend] = {}
+    differences: dict[str, ParameterTrend] = {}
+    first = first_shift = None
+    if slow:
+        params = slow[0][1].parameters
+        free = [n for n, p in params.items() if p.vary and not p.expr]
+        for kind in ("shift", "coupling"):
+            if kind in kinds:
+                for name in (n for n in free if n.startswith(PARAMETER_PREFIX[kind])):
+                    lines[name] = regress_trend(name, "linear-in-T", *_parameter_points(slow, name))
+        shifts = [n for n in free if n.startswith(PARAMETER_PREFIX["shift"])] if "shift" in kinds else []
+        if shifts:
+            first_shift = shifts[0]
+            base = _parameter_points(slow, first_shift)
+            for name in shifts[1:]:
+                temps, values, errors = _parameter_points(slow, name)
+                differences[name] = regress_trend(name, "linear-in-T", temps, np.subtract(values, base[1]),
+                                                  np.hypot(errors, base[2]))
+        populations = [n for n in params if n.startswith(PARAMETER_PREFIX["population"])]
+        if "population" in kinds and populations and any(params[n].vary for n in populations):
+            first = populations[0]
+            for name in populations[1:]:
+                lines[name] = regress_trend(name, "van-t-hoff", *_log_ratio_points(slow, name, first))
+    if "linewidth" in kinds and quiet:
+        name = next(n for n in quiet[0][1].parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
+        lines[name] = linewidth_trend(quiet, name)
+    return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
+
+
+def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> ParameterTrend:
+    """The linewidth's line in T, fitted jointly with an Eyring line of every process's rate.
+
+    In slow exchange the intrinsic linewidth w and the exchange broadening trade against each other, so
+    each spectrum's w alone is poorly known and its line in T extrapolates badly.  The rates of a process
+    follow Eyring's equation, log10(k/T) = c + d (1/T - 1/T0), so one generalised least-squares fit of
+    w = a + b (T - T0) and of those lines to the pairs (w, log10 k) of every spectrum, weighted by each
+    spectrum's covariance of the pair (its errors and correlation), separates the two.  A rate that is
+    only a bound, or a process with fewer than two determined rates, gives no rate point; then the
+    linewidth's error is widened by what the unresolved exchange could take (``_exchange_width``).  The
+    covariance of (a, b) is widened by the reduced chi-square when that is above 1.  Without rate points
+    this is :func:`regress_trend` of the linewidths.
+    """
+    temps, values, errors = _parameter_points(fits, name)
+    pairs = [_rate_points(fit) for _, fit in fits]
+    counts: dict[str, int] = {}
+    for points in pairs:
+        for rate in points:
+            counts[rate] = counts.get(rate, 0) + 1
+    processes = [rate for rate, n in counts.items() if n >= 2]
+    if len(set(temps)) < 2 or not processes:
+        return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=_exchange_width))
+    rows, targets = [], []
+    size = 2 + 2 * len(processes)
+    t0 = float(np.mean(temps))
+    u0 = 1.0 / t0
+    for (t, fit), w, sw, points in zip(fits, values, errors, pairs):
+        used = [r for r in processes if r in points]
+        if not used:
+            sw = math.hypot(sw, _exchange_width(fit))
+        design = np.zeros((1 + len(used), size))
+        design[0, :2] = 1.0, t - t0
+        obs = [w]
+        sd = [sw]
+        for row, rate in enumerate(used, start=1):
+            j = 2 + 2 * processes.index(rate)
+            design[row, j:j + 2] = 1.0, 1.0 / t - u0
+            obs.append(points[rate][0] - math.log10(t))
+            sd.append(points[rate][1])
+        corr = np.eye(len(obs))
+        for a, first in enumerate([name] + used):
+            for b, second in enumerate([name] + used):
+                if a != b:
+                    rho = fit.correlation(first, second)
+                    corr[a, b] = rho if math.isfinite(rho) else 0.0
+        cov = corr * np.outer(sd, sd)
+        whiten = np.linalg.inv(np.linalg.cholesky(cov))
+        rows.append(whiten @ design)
+        targets.append(whiten @ np.array(obs))
+    design, target = np.vstack(rows), np.concatenate(targets)
+    coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+    cov = np.linalg.pinv(design.T @ design)
+    dof = target.size - size
+    chi2 = float(np.sum((target - design @ coef) ** 2))
+    red = chi2 / dof if dof > 0 else math.nan
+    if dof > 0 and red > 1.0:
+        cov = cov * red
+    return ParameterTrend(name, "linear-in-T", tuple(temps), tuple(values), tuple(errors), t0,
+                          (float(coef[0]), float(coef[1])),
+                          tuple(tuple(float(v) for v in row) for row in cov[:2, :2]), red)
+
+
+def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
+    """(log10 k, its standard error) of every determined rate of `fit`, by fit parameter, for rates fitted
+    with a finite error and a known correlation with the other free parameters."""
+    out = {}
+    names = [n for n in fit.parameters if n.startswith("log10_k_")]
+    for name, rate in zip(names, fit.rates):
+        par = fit.parameters[name]
+        if (rate.status == "determined" and par.vary and not par.expr and par.stderr is not None
+                and math.isfinite(par.stderr) and par.stderr > 0 and par.correl):
+            out[name] = (float(par.value), float(par.stderr))
+    return out
+
+
+def _exchange_width(fit: SpectrumFit) -> float:
+    """Width (Hz) the exchange could add unseen to a fit whose rates are upper bounds: (k_up - k)/pi for the
+    fastest way out of a state (a reverse rate is larger by the population ratio)."""
+    worst = 0.0
+    model = fit.best_model
+    populations = model.populations()
+    for r, ex in zip(fit.rates, model.exchanges):
+        top = r.rate_upper if r.status == "upper-bound" else r.rate_per_s
+        a, b = model.state_index(ex.from_state), model.state_index(ex.to_state)
+        ratio = max(1.0, populations[a] / populations[b])
+        worst = max(worst, (top - r.rate_per_s) * ratio / math.pi if math.isfinite(top) else 0.0)
+    return worst
+
+
+def temperature_span(temps: Sequence[float]) -> str:
+    """The temperatures (K) a trend spans, in words ("240 K" or "230-250 K")."""
+    return f"{min(temps):g} K" if len(set(temps)) == 1 else f"{min(temps):g}-{max(temps):g} K"
+
