@@ -9,7 +9,7 @@
 (c) the global fit of that series (dH‡, dS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
-BLAS runs on one thread during fits (dnmr.fitting.spectrumfit.single_threaded_blas, needs threadpoolctl); other load
+BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure.
 
 Run:  python benchmarks/fit_speed.py

@@ -89,7 +89,9 @@ from dnmr.activation.parameters import ActivationEstimate
 from dnmr.engine.blocks import lineshape_terms
 from dnmr.fitting.workers import process_pool, worker_payload
 from dnmr.errors import InputError
-from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem
+from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
+from dnmr.fitting.problem import FitProblem, NoiseEstimate, error_scale
+from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K)
 from dnmr.model import Model, parse_coupling_key
@@ -174,7 +176,7 @@ class _Member:
     index: int
     temperature_k: float
     fit: SpectrumFit
-    problem: _Problem  # frequencies, phase and baseline terms of its region
+    problem: FitProblem  # frequencies, phase and baseline terms of its region
     base: Model  # the series' model at this temperature
 
     @property
@@ -184,7 +186,7 @@ class _Member:
 
 def _member(index: int, temperature_k: float, fit: SpectrumFit, model: Model) -> _Member:
     base = model.at_temperature(temperature_k)
-    problem = _Problem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
+    problem = FitProblem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
     return _Member(index, temperature_k, fit, problem, base)
 
 
@@ -329,7 +331,7 @@ class _GlobalProblem:
 
     def coupling_names(self) -> list[list[tuple[str, str]]]:
         """Per state, (coupling key of the model, parameter name) of every coupling it gives."""
-        return [[(key, "coupling_hz_" + "_".join(_identifier(x) for x in (state.name, *parse_coupling_key(key))))
+        return [[(key, "coupling_hz_" + "_".join(parameter_identifier(x) for x in (state.name, *parse_coupling_key(key))))
                  for key in state.couplings_hz] for state in self.model.states]
 
     def _add_couplings(self) -> None:
@@ -350,10 +352,10 @@ class _GlobalProblem:
         for j, state in enumerate(self.model.states[1:], start=1):
             ln_k = np.log(pops[:, j] / pops[:, 0])
             slope, intercept = np.polyfit(inverse, ln_k, 1) if np.ptp(inverse) > 0 else (0.0, float(ln_k.mean()))
-            h_name, s_name = f"state_enthalpy_kj_mol_{_identifier(state.name)}", f"state_entropy_j_mol_k_{_identifier(state.name)}"
+            h_name, s_name = f"state_enthalpy_kj_mol_{parameter_identifier(state.name)}", f"state_entropy_j_mol_k_{parameter_identifier(state.name)}"
             self._add(h_name, -slope * GAS_CONSTANT / 1e3, -STATE_ENTHALPY_BOUND_KJ_MOL, STATE_ENTHALPY_BOUND_KJ_MOL)
             self._add(s_name, intercept * GAS_CONSTANT, -STATE_ENTROPY_BOUND_J_MOL_K, STATE_ENTROPY_BOUND_J_MOL_K)
-            self._quantity(f"ln_k_{_identifier(state.name)}", "population",
+            self._quantity(f"ln_k_{parameter_identifier(state.name)}", "population",
                            [(h_name, ("vant-hoff-h",)), (s_name, ("vant-hoff-s",))],
                            DIFFERENCE_STEP["population"])
 
@@ -430,7 +432,7 @@ class _GlobalProblem:
                 changes["couplings_hz"] = {**state.couplings_hz, **{key: value[n] for key, n in couplings}}
             states.append(dataclasses.replace(state, **changes))
         if self.van_t_hoff:
-            ln_k = np.array([0.0] + [value[f"ln_k_{_identifier(s.name)}"] for s in m.base.states[1:]])
+            ln_k = np.array([0.0] + [value[f"ln_k_{parameter_identifier(s.name)}"] for s in m.base.states[1:]])
             weights = np.exp(ln_k - ln_k.max())
             states = [dataclasses.replace(s, population=float(w / weights.sum()), free_energy_kj_mol=None)
                       for s, w in zip(states, weights)]
@@ -518,7 +520,7 @@ class _GlobalProblem:
         return (moved[0] - moved[1]) / (2.0 * step_k)
 
 
-def _nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p: _Problem) -> np.ndarray | None:
+def _nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p: FitProblem) -> np.ndarray | None:
     """d(prediction)/d(`name`) of one spectrum for its amplitude, phases and baseline (exact), or None for
     another parameter. `turned` is exp(i phi) S, the prediction is amplitude Re(turned) + baseline."""
     if name == "amplitude":
@@ -863,7 +865,7 @@ def _qualities(problem: _GlobalProblem, x: np.ndarray, residuals: list[np.ndarra
     for k, (m, r) in enumerate(zip(problem.members, residuals)):
         chi2 = float(r @ r)
         own = len([j for j in problem.columns[k] if problem._owner(problem.free[j]) is not None])
-        _, flags, _ = _error_scale(chi2, r.size - own, m.fit.noise)
+        _, flags, _ = error_scale(chi2, r.size - own, m.fit.noise)
         misfit = "misfit" in flags
         two_step = float(m.fit.chi_square)
         out.append(SpectrumQuality(m.fit.source, float(setpoints[k]), m.temperature_k, int(r.size), chi2, two_step,
@@ -1314,7 +1316,7 @@ def _global_fit(series: Series, two: SeriesFit, outdir: Path, calibration: "Temp
     points = sum(m.fit.noise.points for m in members)
     correlation = float(np.average([m.fit.noise.correlation_factor for m in members],
                                    weights=[m.problem.data.size for m in members]))
-    scale, flags, notes = _error_scale(chi2, dof, NoiseEstimate(1.0, correlation, points, "measured per spectrum"))
+    scale, flags, notes = error_scale(chi2, dof, NoiseEstimate(1.0, correlation, points, "measured per spectrum"))
     if "misfit" in flags:
         notes = [n for n in notes if "reduced chi-square" not in n] + _misfit_notes(qualities, treatment, chi2 / dof)
         notes.append("errors are widened by the square root of the reduced chi-square")

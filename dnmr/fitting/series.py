@@ -86,7 +86,9 @@ import numpy as np
 
 from dnmr.fitting.workers import process_pool
 from dnmr.errors import InputError, did_you_mean
-from dnmr.fitting.spectrumfit import FitOptions, ParameterLayout, SpectrumFit, _pair, fit_parameters, fit_spectrum
+from dnmr.fitting.parameters import ParameterLayout
+from dnmr.fitting.ranges import number_pair
+from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_parameters, fit_spectrum
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.kinetics import coalescence_rate_per_s, eyring_barrier, eyring_rate
 from dnmr.model import Model
@@ -234,7 +236,7 @@ def _reference_line(table, where: str) -> ReferenceLine:
     added = float(number("added_width_hz", table.get("added_width_hz", 0.0)))
     window = table.get("window_ppm")
     if window is not None:
-        window = _pair(window, f"{where}.window_ppm")
+        window = number_pair(window, f"{where}.window_ppm")
     return ReferenceLine(float(number("ppm", table["ppm"])), multiplicity, coupling, window, added)
 
 
