@@ -128,12 +128,12 @@ def test_every_transfer_key_and_column_is_documented(section, module, keys):
 def test_parameter_settings_have_one_set_of_names_in_docs_and_code():
     # the settings keys of the code are the ones the reference documents, and no page, example or
     # demo file still writes a setting in the spellings of earlier releases (value, vary, min, max, expr)
-    from dnmr.fitting import spectrumfit as fitting
+    from dnmr.fitting import parameters
 
     text = (DOCS / "series-file.md").read_text()
     table = text.split("#### Parameter settings", 1)[1].split("\n\n", 2)[1]
     first_cells = [line.split("|")[1] for line in table.splitlines() if line.startswith("| `")]
-    assert {k for cell in first_cells for k in re.findall(r"`([a-z_]+)`", cell)} == set(fitting.SETTING_KEYS)
+    assert {k for cell in first_cells for k in re.findall(r"`([a-z_]+)`", cell)} == set(parameters.SETTING_KEYS)
     root = DOCS.parent
     files = [*DOCS.glob("*.md"), root / "README.md", *root.glob("examples/**/*.toml"), *root.glob("examples/**/*.py"),
              *root.glob("dnmr/data/**/*.toml"), *root.glob("dnmr/*.py")]
@@ -148,6 +148,6 @@ def test_parameter_settings_have_one_set_of_names_in_docs_and_code():
     params.add("population_a", expr="1 - population_b")
     params.add("linewidth_hz_a", 1.0)
     params.add("linewidth_hz_b", expr="2.0 * linewidth_hz_a + 0.5")
-    keys = {k for p in params.values() for k in fitting.parameter_record(p)}
+    keys = {k for p in params.values() for k in parameters.parameter_record(p)}
     documented = set(re.findall(r"`([a-z_]+)`", (DOCS / "cli.md").read_text()))
     assert {"same_as", "times", "plus", "rule"} <= keys and keys <= documented, keys - documented

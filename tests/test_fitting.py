@@ -14,9 +14,11 @@ import numpy as np
 import pytest
 
 from closed_forms import fast_exchange_excess_width, mcconnell_two_site
-from dnmr.fitting import spectrumfit as fitting
+from dnmr.fitting import problem
 from dnmr.errors import InputError
-from dnmr.fitting.spectrumfit import FitOptions, estimate_noise, fit_parameters, fit_spectrum
+from dnmr.fitting.parameters import FitParameter, checked_settings
+from dnmr.fitting.problem import NoiseEstimate, error_scale, estimate_noise
+from dnmr.fitting.spectrumfit import FitOptions, fit_parameters, fit_spectrum
 from dnmr.model import Exchange, Model, Spectrometer, State
 from dnmr.io.readers import MeasuredSpectrum
 from reference_qutip import jumps_with_reverse, qutip_spectrum
@@ -248,7 +250,7 @@ def test_unstable_profile_says_so_and_bounds_from_the_best_it_found(monkeypatch)
     # With no restart allowed, the reported case's first profile finds fits better than the refined one
     # (the fast-exchange chi-square keeps falling slowly towards the limit): it must say so and still
     # bound the rate, counting from the best chi-square it saw, rather than quote the covariance error.
-    monkeypatch.setattr(fitting, "PROFILE_RESTARTS", 0)
+    monkeypatch.setattr(problem, "PROFILE_RESTARTS", 0)
     fit = reported_limit_fit(1e8)
     r = fit.rate("flip")
     assert "unstable" in fit.flags and r.profile.unstable
@@ -289,7 +291,7 @@ def test_parameters_can_be_fixed_tied_and_bounded():
     assert (p["log10_k_flip"]["lower"], p["log10_k_flip"]["upper"]) == (1.0, 3.0)
     assert not {"value", "vary", "min", "max", "expr"} & {k for record in p.values() for k in record}
     params = fit_parameters(two_site_model(), REGION, options)
-    assert isinstance(params["phase0_deg"], fitting.FitParameter) and params["phase0_deg"].unit == "deg"
+    assert isinstance(params["phase0_deg"], FitParameter) and params["phase0_deg"].unit == "deg"
     params["phase0_deg"].fixed = True
     params["phase0_deg"].start = 3.0
     again = fit_spectrum(measured(y), two_site_model(), options=options, parameters=params)
@@ -304,7 +306,7 @@ def test_shared_linewidth_and_free_populations_show_as_a_tie_and_a_rule():
     assert params["linewidth_hz_b"].same_as == "linewidth_hz_a"
     assert params["population_a"].rule == "population_a = 1 - population_b" and not params["population_a"].fixed
     # editing nothing and handing the parameters back keeps both relations
-    settings = fitting._checked_settings({n: p.setting() for n, p in params.items()})
+    settings = checked_settings({n: p.setting() for n, p in params.items()})
     assert "fixed" not in settings["population_a"] and "start" not in settings["linewidth_hz_b"]
 
 
@@ -353,6 +355,6 @@ def test_misfit_threshold_counts_the_uncertainty_of_the_noise_estimate(points, r
     # practice); 1.21 is then within 3 standard deviations, 1.5 is not.  A given sigma (points = 0) has
     # only the first term (0.026).
     dof = 3000
-    noise = fitting.NoiseEstimate(1.0, 1.0, points, "test")
-    _, flags, _ = fitting._error_scale(reduced * dof, dof, noise)
+    noise = NoiseEstimate(1.0, 1.0, points, "test")
+    _, flags, _ = error_scale(reduced * dof, dof, noise)
     assert ("misfit" in flags) is misfit

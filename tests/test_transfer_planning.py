@@ -22,7 +22,6 @@ from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.model import Exchange, Model, Spectrometer, State
 from dnmr.planning.plan import best_mixing_time, plan_experiment
-from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.timescale import TYPICAL_R1_PER_S, timescale_view
 from reference_eyring import eyring_rate
 

@@ -93,7 +93,7 @@ from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, write_global_f
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
 from dnmr.fitting.series import SeriesFit, fit_series
 from dnmr.fitting.seriesfile import Series, load_series
-from dnmr.fitting.spectrumfit import NoiseEstimate, _error_scale
+from dnmr.fitting.problem import NoiseEstimate, error_scale
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
@@ -371,7 +371,7 @@ def _joint_errors(problem: GlobalProblem, solved: _JointSolution) -> tuple[float
     correlation = float(np.average([m.fit.noise.correlation_factor for m in members],
                                    weights=[m.problem.data.size for m in members]))
     chi2, dof = solved.chi_square, solved.degrees_of_freedom
-    scale, flags, notes = _error_scale(chi2, dof, NoiseEstimate(1.0, correlation, points, "measured per spectrum"))
+    scale, flags, notes = error_scale(chi2, dof, NoiseEstimate(1.0, correlation, points, "measured per spectrum"))
     if "misfit" in flags:
         notes = [n for n in notes if "reduced chi-square" not in n] + misfit_notes(solved.qualities, problem.treatment,
                                                                                    chi2 / dof)

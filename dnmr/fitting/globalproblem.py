@@ -20,7 +20,9 @@ import numpy as np
 
 from dnmr.engine.blocks import lineshape_terms
 from dnmr.errors import InputError
-from dnmr.fitting.spectrumfit import ParameterLayout, SpectrumFit, _identifier, _Problem
+from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
+from dnmr.fitting.problem import FitProblem
+from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 from dnmr.model import Model, parse_coupling_key
 
@@ -98,7 +100,7 @@ class GlobalMember:
     index: int
     temperature_k: float
     fit: SpectrumFit
-    problem: _Problem  # frequencies, phase and baseline terms of its region
+    problem: FitProblem  # frequencies, phase and baseline terms of its region
     base: Model  # the series' model at this temperature
 
     @classmethod
@@ -106,7 +108,7 @@ class GlobalMember:
         """Spectrum `index` of the series at sample temperature `temperature_k` (K), from its two-step `fit`
         and the series' `model`."""
         base = model.at_temperature(temperature_k)
-        problem = _Problem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
+        problem = FitProblem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
         return cls(index, temperature_k, fit, problem, base)
 
     @property
@@ -288,7 +290,7 @@ class GlobalProblem:
 
     def coupling_names(self) -> list[list[tuple[str, str]]]:
         """Per state, (coupling key of the model, parameter name) of every coupling it gives."""
-        return [[(key, "coupling_hz_" + "_".join(_identifier(x) for x in (state.name, *parse_coupling_key(key))))
+        return [[(key, "coupling_hz_" + "_".join(parameter_identifier(x) for x in (state.name, *parse_coupling_key(key))))
                  for key in state.couplings_hz] for state in self.model.states]
 
     def _add_couplings(self) -> None:
@@ -309,10 +311,10 @@ class GlobalProblem:
         for j, state in enumerate(self.model.states[1:], start=1):
             ln_k = np.log(pops[:, j] / pops[:, 0])
             slope, intercept = np.polyfit(inverse, ln_k, 1) if np.ptp(inverse) > 0 else (0.0, float(ln_k.mean()))
-            h_name, s_name = f"state_enthalpy_kj_mol_{_identifier(state.name)}", f"state_entropy_j_mol_k_{_identifier(state.name)}"
+            h_name, s_name = f"state_enthalpy_kj_mol_{parameter_identifier(state.name)}", f"state_entropy_j_mol_k_{parameter_identifier(state.name)}"
             self._add(h_name, -slope * GAS_CONSTANT / 1e3, -STATE_ENTHALPY_BOUND_KJ_MOL, STATE_ENTHALPY_BOUND_KJ_MOL)
             self._add(s_name, intercept * GAS_CONSTANT, -STATE_ENTROPY_BOUND_J_MOL_K, STATE_ENTROPY_BOUND_J_MOL_K)
-            self._quantity(f"ln_k_{_identifier(state.name)}", "population",
+            self._quantity(f"ln_k_{parameter_identifier(state.name)}", "population",
                            [(h_name, ("vant-hoff-h",)), (s_name, ("vant-hoff-s",))],
                            DIFFERENCE_STEP["population"])
 
@@ -398,7 +400,7 @@ class GlobalProblem:
                 changes["couplings_hz"] = {**state.couplings_hz, **{key: value[n] for key, n in couplings}}
             states.append(dataclasses.replace(state, **changes))
         if self.van_t_hoff:
-            ln_k = np.array([0.0] + [value[f"ln_k_{_identifier(s.name)}"] for s in m.base.states[1:]])
+            ln_k = np.array([0.0] + [value[f"ln_k_{parameter_identifier(s.name)}"] for s in m.base.states[1:]])
             weights = np.exp(ln_k - ln_k.max())
             states = [dataclasses.replace(s, population=float(w / weights.sum()), free_energy_kj_mol=None)
                       for s, w in zip(states, weights)]
@@ -495,7 +497,7 @@ class GlobalProblem:
         return (moved[0] - moved[1]) / (2.0 * step_k)
 
 
-def nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p: _Problem) -> np.ndarray | None:
+def nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p: FitProblem) -> np.ndarray | None:
     """d(prediction)/d(`name`) of one spectrum for its amplitude, phases and baseline (exact), or None for
     another parameter. `turned` is exp(i phi) S, the prediction is amplitude Re(turned) + baseline."""
     if name == "amplitude":

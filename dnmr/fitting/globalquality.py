@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.fitting.globalproblem import FAMILY_WORDS, NUISANCE, GlobalProblem, Treatment, nuisance_column
-from dnmr.fitting.spectrumfit import _error_scale
+from dnmr.fitting.problem import error_scale
 
 
 @dataclass(frozen=True)
@@ -112,7 +112,7 @@ def spectrum_qualities(problem: GlobalProblem, x: np.ndarray, residuals: list[np
     for k, (m, r) in enumerate(zip(problem.members, residuals)):
         chi2 = float(r @ r)
         own = int(problem.own_columns(k).sum())
-        _, flags, _ = _error_scale(chi2, r.size - own, m.fit.noise)
+        _, flags, _ = error_scale(chi2, r.size - own, m.fit.noise)
         misfit = "misfit" in flags
         two_step = float(m.fit.chi_square)
         out.append(SpectrumQuality(m.fit.source, float(setpoints[k]), m.temperature_k, int(r.size), chi2, two_step,

@@ -466,12 +466,13 @@ def sample_spectrum_posterior(
     """
     import lmfit
 
-    from dnmr.fitting.spectrumfit import ParameterLayout, _Problem
+    from dnmr.fitting.parameters import ParameterLayout
+    from dnmr.fitting.problem import FitProblem
     from dnmr.fitting.workers import single_threaded_blas
 
     require_emcee()
     layout = ParameterLayout.for_model(fit.best_model, fit.options)
-    problem = _Problem(layout, fit.ppm, fit.data, fit.noise)
+    problem = FitProblem(layout, fit.ppm, fit.data, fit.noise)
     params = fit.parameters.copy()
     free = [n for n, p in params.items() if p.vary and not p.expr]
     if not free:

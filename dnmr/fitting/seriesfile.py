@@ -32,7 +32,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from dnmr.errors import InputError, did_you_mean
-from dnmr.fitting.spectrumfit import FitOptions, _pair, fit_parameters
+from dnmr.fitting.ranges import number_pair
+from dnmr.fitting.spectrumfit import FitOptions, fit_parameters
 from dnmr.io.inputfiles import regular_file_size
 from dnmr.io.modelfile import check_keys, load_model, read_toml
 from dnmr.io.tables import celsius_hints, check_kelvin
@@ -171,7 +172,7 @@ def _reference_line(table, where: str) -> ReferenceLine:
     added = float(number("added_width_hz", table.get("added_width_hz", 0.0)))
     window = table.get("window_ppm")
     if window is not None:
-        window = _pair(window, f"{where}.window_ppm")
+        window = number_pair(window, f"{where}.window_ppm")
     return ReferenceLine(float(number("ppm", table["ppm"])), multiplicity, coupling, window, added)
 
 

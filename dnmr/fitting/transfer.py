@@ -28,20 +28,9 @@ from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_pa
 from dnmr.errors import InputError
 from dnmr.fitting.matrixmethod import SiteRates, matrix_method
 from dnmr.fitting.seriesoutput import RATE_COLUMNS
-from dnmr.fitting.spectrumfit import (
-    NoiseEstimate,
-    RateEstimate,
-    _BetterMinimum,
-    _RateContext,
-    _classify,
-    _error_scale,
-    _identifier,
-    _minimize,
-    _profile,
-    parameter_record,
-    _stderr,
-    PROFILE_RESTARTS,
-)
+from dnmr.fitting.parameters import parameter_identifier, parameter_record, parameter_stderr
+from dnmr.fitting.problem import BetterMinimum, NoiseEstimate, PROFILE_RESTARTS, error_scale, minimize, profile_parameter
+from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate
 from dnmr.fitting.transferfile import Experiment, load_experiment
 from dnmr.formatting import significant
 from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
@@ -70,17 +59,17 @@ class _TransferProblem:
         populations = model.populations()
         self.equilibrium = np.array([populations[model.state_index(s.state)] * s.nuclei for s in self.sites])
         self.patterns = process_patterns(model)
-        self.rate_names = tuple(f"log10_k_{_identifier(p)}" for p in model.process_names())
+        self.rate_names = tuple(f"log10_k_{parameter_identifier(p)}" for p in model.process_names())
         self.data = data.values
         self.sigma = np.ones_like(self.data) if data.stderr is None else data.stderr
         self.nfev = 0
 
     # --- parameters -------------------------------------------------------------------------------
     def r1_name(self, label: str) -> str:
-        return f"r1_per_s_{_identifier(label)}"
+        return f"r1_per_s_{parameter_identifier(label)}"
 
     def m_eq_name(self, label: str) -> str:
-        return f"m_eq_{_identifier(label)}"
+        return f"m_eq_{parameter_identifier(label)}"
 
     def parameters(self) -> lmfit.Parameters:
         """Parameters with start values from the model and the data."""
@@ -170,7 +159,7 @@ def _scan_starts(problem: _TransferProblem, params: lmfit.Parameters) -> list[lm
         for x in grid:
             trial = current.copy()
             trial[name].set(value=float(x), vary=False)
-            fits.append(_minimize(problem, trial, tolerance=1e-4))
+            fits.append(minimize(problem, trial, tolerance=1e-4))
         chi = np.array([f.chisqr for f in fits])
         order = np.argsort(chi)
         minima = [i for i in order if (i == 0 or chi[i] <= chi[i - 1]) and (i == len(chi) - 1 or chi[i] <= chi[i + 1])]
@@ -244,8 +233,8 @@ class TransferFit:
         """R1 (s^-1) and its standard error for each site (error NaN where fixed or tied)."""
         out = {}
         for site in model_sites(self.experiment.model):
-            par = self.parameters[f"r1_per_s_{_identifier(site.label)}"]
-            out[site.label] = (float(par.value), _stderr(par) if par.vary else math.nan)
+            par = self.parameters[f"r1_per_s_{parameter_identifier(site.label)}"]
+            out[site.label] = (float(par.value), parameter_stderr(par) if par.vary else math.nan)
         return out
 
     def rate(self, process: str | int = 0) -> RateEstimate:
@@ -271,7 +260,7 @@ class TransferFit:
             lines.append(f"  R1 {label}: {significant(value, 4)} s^-1" + (f" ± {significant(err, 2)}" if np.isfinite(err) else " (fixed or tied)"))
         if "inversion_efficiency" in self.parameters:
             par = self.parameters["inversion_efficiency"]
-            lines.append(f"  inversion efficiency {par.value:.3f}" + (f" ± {_stderr(par):.3f}" if par.vary else " (fixed)"))
+            lines.append(f"  inversion efficiency {par.value:.3f}" + (f" ± {parameter_stderr(par):.3f}" if par.vary else " (fixed)"))
         combined = self.matrix_method[-1] if self.matrix_method else None
         if combined is not None:
             for r, k, s in zip(self.rates, combined.process_rates, combined.process_stderr):
@@ -345,7 +334,7 @@ def _fit(experiment: Experiment) -> TransferFit:
     """The work of :func:`fit_transfer`."""
     problem = _TransferProblem(experiment)
     params = problem.parameters()
-    best = min((_minimize(problem, start) for start in _scan_starts(problem, params)), key=lambda r: r.chisqr)
+    best = min((minimize(problem, start) for start in _scan_starts(problem, params)), key=lambda r: r.chisqr)
     n_points = int(np.isfinite(problem.data).sum())
     dof = n_points - best.nvarys
     if dof < 1:
@@ -361,15 +350,15 @@ def _fit(experiment: Experiment) -> TransferFit:
             notes.append(f"no errors given: the scatter of the residuals ({significant(sigma)} per point) is taken as the "
                          "error of each point")
         problem.sigma = np.full_like(problem.data, sigma)
-        best = _minimize(problem, best.params)
+        best = minimize(problem, best.params)
     for attempt in range(PROFILE_RESTARTS + 1):
-        scale, quality_flags, quality_notes = _error_scale(best.chisqr, dof, NoiseEstimate(1.0, 1.0, 0, "stated"))
+        scale, quality_flags, quality_notes = error_scale(best.chisqr, dof, NoiseEstimate(1.0, 1.0, 0, "stated"))
         try:
-            profiles = {n: _profile(problem, best, n, scale, _stderr(best.params[n]) * math.sqrt(scale),
+            profiles = {n: profile_parameter(problem, best, n, scale, parameter_stderr(best.params[n]) * math.sqrt(scale),
                                     restart=attempt < PROFILE_RESTARTS)
                         for n in problem.rate_names if best.params[n].vary}
             break
-        except _BetterMinimum as better:
+        except BetterMinimum as better:
             best = better.result
     for par in best.params.values():
         if par.stderr is not None:
@@ -384,7 +373,7 @@ def _fit(experiment: Experiment) -> TransferFit:
             and best.params["inversion_efficiency"].value > 1.0 - 1e-6:
         flags.append("at-bound:inversion_efficiency")
         notes.append("the inversion efficiency ended at 1, a perfect inversion (its upper limit)")
-    rates = [_transfer_estimate(_classify(n, p, best.params, profiles.get(n), _RateContext(), {}), problem, best.params)
+    rates = [_transfer_estimate(classify_rate(n, p, best.params, profiles.get(n), RateContext(), {}), problem, best.params)
              for n, p in zip(problem.rate_names, experiment.model.process_names())]
     flags += [f"{r.status}:{r.process}" for r in rates if r.status in ("upper-bound", "lower-bound", "interval",
                                                                        "undetermined")]

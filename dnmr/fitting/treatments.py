@@ -28,7 +28,8 @@ import numpy as np
 from dnmr.fitting.resultsfolder import STAGE_HELD, STAGE_MAIN, STAGE_SLOW
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_job, outcome_from_record
 from dnmr.fitting.seriesfile import REFERENCE_LINE, TREATMENT_KIND, TREND, Series
-from dnmr.fitting.spectrumfit import FitOptions, ParameterLayout, SpectrumFit, fit_spectrum
+from dnmr.fitting.parameters import ParameterLayout
+from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
 from dnmr.fitting.trends import PARAMETER_PREFIX, StaticTrend, held_setting, static_trend, temperature_span
 from dnmr.io.readers import read_spectrum
 from dnmr.kinetics import coalescence_rate_per_s

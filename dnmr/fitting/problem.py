@@ -1,0 +1,469 @@
+"""The shared fit problem: data, noise and the model function of one fitted spectrum
+(:class:`FitProblem`), the local least-squares refinement (:func:`minimize`), the error scale of the
+covariance (:func:`error_scale`) and the chi-square profile of one parameter (:func:`profile_parameter`).
+
+The single fit (:mod:`dnmr.fitting.spectrumfit`), the series, the global fit and the posteriors build on
+:class:`FitProblem`; the magnetisation-transfer fits share the refinement, the error scale and the
+profile (any object with a ``residual(params)`` method is a problem to them).  The method is set out
+in :mod:`dnmr.fitting.spectrumfit` (steps 1, 3, 4 and 5).
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import lmfit
+import numpy as np
+from scipy import signal, stats
+
+from dnmr.engine.blocks import lineshape_terms
+from dnmr.errors import InputError
+from dnmr.fitting.parameters import ParameterLayout, parameter_stderr
+from dnmr.fitting.ranges import ppm_regions
+from dnmr.io.readers import MeasuredSpectrum
+
+NOISE_SEGMENT_POINTS = 64
+"""Points per segment when detrending signal-free regions for the noise estimate."""
+MIN_NOISE_POINTS = 32
+"""Fewest signal-free points from which the noise is estimated."""
+EDGE_FRACTION = 0.125
+"""Share of the fitted region at each end used for the noise when nothing better is available."""
+MAX_NOISE_LAG = 16
+"""Longest lag (points) of the noise autocorrelation counted in the correlation factor."""
+MISFIT_SIGMAS = 3.0
+"""Reduced chi-square this many standard deviations above 1 counts as a misfit."""
+MAX_EVALUATIONS = 60
+"""Largest number of lineshape evaluations of one local refinement, per free parameter."""
+PROFILE_RESTARTS = 3
+"""Times the fit is restarted from a better minimum the profile found; the profile after the last
+restart keeps what it finds and reports the rate as unstable."""
+MAD_TO_SIGMA = 1.4826
+"""Median absolute deviation to standard deviation, for normal noise."""
+CLIP_SIGMAS = 3.5
+"""Noise points further than this many (rough) standard deviations out are taken for signal."""
+
+
+# --------------------------------------------------------------------------------------------------
+# noise
+
+
+@dataclass(frozen=True)
+class NoiseEstimate:
+    """Noise of a spectrum.
+
+    Attributes
+    ----------
+    sigma : float
+        Standard deviation of one point (intensity units).
+    correlation_factor : float
+        1 + 2 sum of the significant autocorrelations of the noise (1 for independent points).
+    points : int
+        Signal-free points used (0 when the noise was given).
+    method : str
+        Where the estimate comes from.
+    """
+
+    sigma: float
+    correlation_factor: float
+    points: int
+    method: str
+
+    def to_dict(self) -> dict:
+        """Plain data (JSON-ready)."""
+        return dataclasses.asdict(self)
+
+
+def _runs(mask: np.ndarray) -> list[np.ndarray]:
+    """Index arrays of the contiguous runs of True in `mask`."""
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return []
+    return np.split(idx, np.flatnonzero(np.diff(idx) > 1) + 1)
+
+
+def _detrended_segments(y: np.ndarray, runs: list[np.ndarray]) -> list[np.ndarray]:
+    """Residuals of a straight line through each segment (about 64 points) of each run."""
+    out = []
+    for run in runs:
+        n_seg = max(1, run.size // NOISE_SEGMENT_POINTS)
+        for seg in np.array_split(run, n_seg):
+            if seg.size < 8:
+                continue
+            t = np.arange(seg.size, dtype=float)
+            coef = np.polyfit(t, y[seg], 1)
+            out.append((y[seg] - np.polyval(coef, t)) * math.sqrt(seg.size / (seg.size - 2)))
+    return out
+
+
+def _correlation_factor(segments: list[np.ndarray], sigma: float) -> float:
+    """1 + 2 sum_k rho_k over the leading lags whose autocorrelation is significant (> 2/sqrt(n))."""
+    quiet = [s for s in segments if np.max(np.abs(s)) < 5.0 * sigma]  # segments holding a line are skipped
+    n = sum(s.size for s in quiet)
+    if n < MIN_NOISE_POINTS:
+        return 1.0
+    power = sum(float(s @ s) for s in quiet)
+    total = 0.0
+    for lag in range(1, MAX_NOISE_LAG + 1):
+        rho = sum(float(s[lag:] @ s[:-lag]) for s in quiet if s.size > lag) / power
+        if rho < 2.0 / math.sqrt(n):
+            break
+        total += rho
+    return max(1.0, 1.0 + 2.0 * total)
+
+
+def _clipped_sigma(residuals: np.ndarray) -> float:
+    """Standard deviation of normal noise among outliers: the median absolute residual gives a first
+    value, the points within CLIP_SIGMAS of it give the final one (corrected for the clipping)."""
+    rough = MAD_TO_SIGMA * float(np.median(np.abs(residuals)))
+    kept = residuals[np.abs(residuals) < CLIP_SIGMAS * rough]
+    c = CLIP_SIGMAS
+    retained = 1.0 - 2.0 * c * stats.norm.pdf(c) / (2.0 * stats.norm.cdf(c) - 1.0)  # variance of the clipped normal
+    return math.sqrt(float(kept @ kept) / max(kept.size, 1) / retained) if kept.size else rough
+
+
+def estimate_noise(
+    spectrum: MeasuredSpectrum,
+    region_ppm: tuple[float, float],
+    noise_ppm=(),
+    noise: float | None = None,
+) -> NoiseEstimate:
+    """Noise standard deviation of a spectrum from its signal-free points.
+
+    The points are detrended in short segments and the standard deviation is estimated robustly (from
+    the median absolute residual, then the standard deviation of the points within 3.5 of those,
+    corrected for the clipping).  Points of processed spectra are often correlated (zero filling,
+    apodisation); the correlation factor c = 1 + 2 sum_k rho_k over the significant lags of the noise
+    autocorrelation counts how many points carry one point's worth of information.
+
+    Parameters
+    ----------
+    spectrum : MeasuredSpectrum
+        The whole spectrum as read.
+    region_ppm : (float, float)
+        The fitted region (ppm).
+    noise_ppm : sequence of (float, float)
+        Signal-free regions (ppm); default the spectrum within two region widths outside the region,
+        else the outer eighths of the region.
+    noise : float, optional
+        A known noise level (intensity units), returned as it is.
+
+    Returns
+    -------
+    NoiseEstimate
+    """
+    if noise is not None:
+        return NoiseEstimate(float(noise), 1.0, 0, "given")
+    ppm, y = spectrum.ppm, spectrum.intensity
+    lo, hi = sorted(region_ppm)
+    regions = ppm_regions(noise_ppm, "noise_ppm")
+    if regions:
+        mask = np.zeros(ppm.size, bool)
+        for a, b in regions:
+            mask |= (ppm >= a) & (ppm <= b)
+        method = "noise region " + ", ".join(f"{a:g} to {b:g} ppm" for a, b in regions)
+    else:
+        width = hi - lo
+        mask = ((ppm < lo) & (ppm >= lo - 2 * width)) | ((ppm > hi) & (ppm <= hi + 2 * width))
+        method = "spectrum outside the fitted region"
+        if mask.sum() < 2 * MIN_NOISE_POINTS:
+            inside = np.flatnonzero((ppm >= lo) & (ppm <= hi))
+            edge = max(8, int(EDGE_FRACTION * inside.size))
+            mask = np.zeros(ppm.size, bool)
+            mask[inside[:edge]] = mask[inside[-edge:]] = True
+            method = "edges of the fitted region (give noise_ppm for a signal-free region)"
+    segments = _detrended_segments(y, _runs(mask))
+    n = sum(s.size for s in segments)
+    if n < MIN_NOISE_POINTS:
+        raise InputError(f"only {n} signal-free points to estimate the noise from ({method}); give noise_ppm "
+                         "covering a flat part of the spectrum, or noise", source=spectrum.source, where="noise_ppm")
+    sigma = _clipped_sigma(np.concatenate(segments))
+    if not sigma > 0:
+        raise InputError(f"the signal-free points ({method}) have no noise at all; give noise",
+                         source=spectrum.source, where="noise_ppm")
+    return NoiseEstimate(sigma, _correlation_factor(segments, sigma), n, method)
+
+
+# --------------------------------------------------------------------------------------------------
+# the fitted function
+
+
+class FitProblem:
+    """Data, noise and the model function of one fit: y(nu) of :mod:`dnmr.fitting.spectrumfit` at the
+    data's frequencies (Hz), with residuals weighed by the noise."""
+
+    def __init__(self, layout: ParameterLayout, ppm: np.ndarray, data: np.ndarray, noise: NoiseEstimate):
+        self.layout = layout
+        self.hz = ppm * layout.model.spectrometer.frequency_mhz
+        self.data = data
+        self.noise = noise
+        self.centre = 0.5 * (self.hz[0] + self.hz[-1])
+        self.span = float(self.hz[-1] - self.hz[0])
+        x = (self.hz - self.centre) / (0.5 * self.span)
+        self.powers = x[:, None] ** np.arange(len(layout.baseline_names))
+        self.nfev = 0
+        step = np.diff(self.hz)
+        # points written with a few decimals are uniform to within their rounding
+        self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=0.02) else None
+
+    def shape(self, values: Mapping[str, float], offset_hz: float | None = None) -> np.ndarray:
+        """Complex spectrum S = A - i D of the model at the data's frequencies."""
+        self.nfev += 1
+        offset = values["offset_hz"] if offset_hz is None else offset_hz
+        return lineshape_terms(self.layout.model_from(values)).evaluate(self.hz - offset)
+
+    def phase(self, values: Mapping[str, float], zero_order: bool = True) -> np.ndarray:
+        """phi(nu) in radians."""
+        first = values["phase1_deg"] * (self.hz - self.centre) / self.span
+        return np.radians(first + (values["phase0_deg"] if zero_order else 0.0))
+
+    def baseline(self, values: Mapping[str, float]) -> np.ndarray:
+        """The polynomial baseline (intensity units) at the data's frequencies."""
+        return self.powers @ np.array([values[n] for n in self.layout.baseline_names])
+
+    def predict(self, values: Mapping[str, float]) -> np.ndarray:
+        """The fitted spectrum y(nu) (intensity units) for parameter `values`."""
+        phased = (np.exp(1j * self.phase(values)) * self.shape(values)).real
+        return values["amplitude"] * phased + self.baseline(values)
+
+    def residual(self, params: lmfit.Parameters) -> np.ndarray:
+        """(fit - data) / noise at every point; 1e3 everywhere for values the model refuses."""
+        try:
+            return (self.predict(params.valuesdict()) - self.data) / self.noise.sigma
+        except InputError:  # parameters outside what a model allows (e.g. a negative population)
+            return np.full(self.data.size, 1e3)
+
+    # --- linear part, for the scan and starting values -----------------------------------
+    def linear_solve(self, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
+        """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
+
+        Only parameters that vary freely (no expression) are solved for; `values` holds the others.
+        Returns chi-square and `values` updated with the solution.
+        """
+        free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
+        base = np.exp(1j * self.phase(values, zero_order=False)) * self.shape(values)
+        turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
+        columns, target = [], self.data.copy()
+        if free("amplitude") and free("phase0_deg"):
+            columns += [base.real, -base.imag]  # amplitude x (cos phi0, sin phi0)
+        elif free("amplitude"):
+            columns.append(turned)
+        else:
+            target -= values["amplitude"] * turned
+        free_baseline = [j for j, n in enumerate(self.layout.baseline_names) if free(n)]
+        for j, n in enumerate(self.layout.baseline_names):
+            if j not in free_baseline:
+                target -= values[n] * self.powers[:, j]
+        columns += [self.powers[:, j] for j in free_baseline]
+        values = dict(values)
+        if columns:
+            design = np.column_stack(columns)
+            coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+            target = target - design @ coef
+            if free("amplitude"):
+                if free("phase0_deg"):
+                    values["amplitude"] = float(max(math.hypot(coef[0], coef[1]), 1e-300))
+                    values["phase0_deg"] = float(np.degrees(math.atan2(coef[1], coef[0])))
+                else:
+                    values["amplitude"] = float(max(coef[0], 1e-300))
+            for j, c in zip(free_baseline, coef[len(coef) - len(free_baseline):]):
+                values[self.layout.baseline_names[j]] = float(c)
+        return float(target @ target) / self.noise.sigma ** 2, values
+
+    def coarse_offset(self, params: lmfit.Parameters, values: dict) -> dict:
+        """Values with the offset moved to the best cross-correlation of model and data (uniform grids)."""
+        par = params["offset_hz"]
+        if not par.vary or par.expr or self.uniform_step is None:
+            return values
+        shape = self.shape(values, offset_hz=0.0).real
+        corr = signal.correlate(self.data - self.data.mean(), shape - shape.mean(), mode="full", method="fft")
+        lags = signal.correlation_lags(self.data.size, shape.size, mode="full") * self.uniform_step
+        allowed = (lags >= par.min) & (lags <= par.max)
+        return {**values, "offset_hz": float(lags[allowed][np.argmax(corr[allowed])])}
+
+
+# --------------------------------------------------------------------------------------------------
+# refinement and profiles
+
+
+def minimize(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-8
+             ) -> lmfit.minimizer.MinimizerResult:
+    """Local least squares (trust region with bounds) from `params`; at most MAX_EVALUATIONS per free parameter."""
+    minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
+    n_free = sum(p.vary and not p.expr for p in params.values())
+    return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
+                              max_nfev=MAX_EVALUATIONS * (n_free + 1))
+
+
+@dataclass(frozen=True)
+class Profile:
+    """Chi-square profiled over log10 k of one process (other free parameters re-optimised).
+
+    Attributes
+    ----------
+    log10_rate : ndarray
+        Points of the profile (log10 of s^-1), ascending.
+    delta_chi_square : ndarray
+        Rise of chi-square above the best fit at each point.
+    lower, upper : float
+        log10 k where the rise reaches the threshold (NaN when it never does on that side).
+    threshold : float
+        The rise that defines the interval (the error scale s).
+    unstable : bool
+        The profile found a fit better than the best one (by more than a twentieth of the threshold);
+        then `delta_chi_square` is negative there and the rise to the threshold is counted from the
+        lowest chi-square found, which widens the interval (the side is never narrower than it should be).
+    """
+
+    log10_rate: np.ndarray
+    delta_chi_square: np.ndarray
+    lower: float
+    upper: float
+    threshold: float
+    unstable: bool = False
+
+    @property
+    def best_log10_rate(self) -> float:
+        """log10 k (s^-1) of the lowest chi-square on the profile."""
+        return float(self.log10_rate[np.argmin(self.delta_chi_square)])
+
+
+class BetterMinimum(Exception):
+    """The profile found parameters better than the 'best' fit; `result` is the fit refined from there."""
+
+    def __init__(self, result: lmfit.minimizer.MinimizerResult):
+        super().__init__("better minimum")
+        self.result = result
+
+
+def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult, name: str, threshold: float,
+                      stderr: float, restart: bool = True) -> Profile:
+    """Profile chi-square over the parameter `name` (log10 k) on both sides of the best fit.
+
+    A point better than the best fit raises :class:`BetterMinimum` (refined from there) when `restart`;
+    otherwise the profile goes on, counting the rise from the lowest chi-square found so far.
+    """
+    x0, chi0 = best.params[name].value, best.chisqr
+    lo_lim, hi_lim = best.params[name].min, best.params[name].max
+    points = {x0: 0.0}
+    fits = {x0: best.params}
+
+    def rise(x: float) -> float:
+        nearest = min(fits, key=lambda v: abs(v - x))
+        trial = fits[nearest].copy()
+        trial[name].set(value=x, vary=False)
+        result = minimize(problem, trial, tolerance=1e-5)
+        if restart and result.chisqr < chi0 - 0.05 * threshold:
+            params = result.params.copy()
+            params[name].set(vary=True)
+            raise BetterMinimum(minimize(problem, params))
+        points[x] = result.chisqr - chi0
+        fits[x] = result.params
+        return points[x] - min(points.values()) - threshold
+
+    def crossing(a: float, b: float) -> float:
+        """Where the rise reaches the threshold between a (below) and b (above): interpolation in
+        sqrt(delta chi-square), exact for a parabola, with a bisection whenever one end stalls."""
+        moved = []
+        for _ in range(16):
+            floor = min(points.values())
+            ra, rb = math.sqrt(max(points[a] - floor, 0.0)), math.sqrt(points[b] - floor)
+            x = a + (b - a) * (math.sqrt(threshold) - ra) / (rb - ra)
+            if abs(b - a) < 1e-4:
+                return x
+            if moved[-2:] in (["a", "a"], ["b", "b"]):
+                x = 0.5 * (a + b)
+            excess = rise(x)
+            if abs(excess) < 0.05 * threshold:
+                return x
+            if excess < 0:
+                a = x
+                moved.append("a")
+            else:
+                b = x
+                moved.append("b")
+        return x
+
+    def side(direction: int) -> float:
+        limit = hi_lim if direction > 0 else lo_lim
+        step = float(np.clip(1.2 * stderr if np.isfinite(stderr) else 0.1, 1e-3, 0.5))
+        x = x0
+        while (limit - x) * direction > 1e-9:
+            x_new = x + direction * step
+            x_new = min(x_new, limit) if direction > 0 else max(x_new, limit)
+            if rise(x_new) >= 0:
+                return crossing(x, x_new)
+            x, step = x_new, step * 2.0
+        return math.nan
+
+    lower, upper = side(-1), side(+1)
+    xs = np.array(sorted(points))
+    rises = np.array([points[x] for x in xs])
+    return Profile(xs, rises, lower, upper, threshold, bool(rises.min() < -0.05 * threshold))
+
+
+def profile_with_restarts(problem: FitProblem, best: lmfit.minimizer.MinimizerResult, names: Sequence[str],
+                          dof: int, noise: NoiseEstimate, held: Sequence[str] = ()
+                          ) -> tuple[lmfit.minimizer.MinimizerResult, dict[str, Profile],
+                                     tuple[float, list[str], list[str]]]:
+    """Profile chi-square over each parameter of `names` (log10 k), restarting from a better minimum.
+
+    A profile that finds a better fit restarts the fit from there, up to PROFILE_RESTARTS times; the
+    profiles after the last restart keep what they find (and say so: ``Profile.unstable``).  `dof`,
+    `noise` and `held` give the error scale (:func:`error_scale`), which sets each profile's threshold.
+
+    Returns
+    -------
+    best : MinimizerResult
+        The best fit found.
+    profiles : dict of str to Profile
+        By parameter name.
+    quality : (float, list of str, list of str)
+        The error scale of `best` with its flags and notes (:func:`error_scale`).
+    """
+    restarts = PROFILE_RESTARTS
+    while True:
+        quality = error_scale(best.chisqr, dof, noise, held=held)
+        scale = quality[0]
+        try:
+            profiles = {n: profile_parameter(problem, best, n, scale,
+                                             parameter_stderr(best.params[n]) * math.sqrt(scale), restart=restarts > 0)
+                        for n in names}
+            return best, profiles, quality
+        except BetterMinimum as better:
+            best, restarts = better.result, restarts - 1
+
+
+def error_scale(chi2: float, dof: int, noise: NoiseEstimate, held: Sequence[str] = ()
+                ) -> tuple[float, list[str], list[str]]:
+    """Covariance factor s, with flags and notes on the fit quality; `held` names the parameters held at
+    values from elsewhere (a trend, a reference line), the first suspects of a misfit.
+
+    s = c x (reduced chi-square if the fit is significantly worse than the noise, else 1), c the noise's
+    correlation factor: a fit that looks better than the noise keeps its errors (on the safe side).
+    """
+    c = noise.correlation_factor
+    red = chi2 / max(dof, 1)
+    # red = (chi^2_dof / dof) (sigma / sigma_est)^2: both factors scatter, by 2c/dof and, for a noise
+    # estimated from `points` signal-free points, by 2c/points in relative variance
+    estimated = 2.0 * c / noise.points if noise.points else 0.0
+    spread = MISFIT_SIGMAS * math.sqrt(2.0 * c / max(dof, 1) + estimated)
+    flags, notes = [], []
+    scale = c
+    if c > 1.0:
+        flags.append("correlated-noise")
+        notes.append(f"neighbouring points of the noise are correlated (factor {c:.2f}); errors are widened by "
+                     f"sqrt({c:.2f})")
+    if red > 1.0 + spread:
+        scale *= red
+        flags.append("misfit")
+        cause = (f"the values held from elsewhere ({', '.join(held)}) may not match the lines of this spectrum, "
+                 "or a baseline, impurity or wrong model" if held else "baseline, impurity, wrong model?")
+        notes.append(f"reduced chi-square {red:.2f} is well above 1: the model does not describe the data to the "
+                     f"noise level ({cause}); errors are widened by its square root")
+    elif red < 1.0 - spread:
+        flags.append("noise-overestimated")
+        notes.append(f"reduced chi-square {red:.2f} is well below 1: the noise estimate is probably too high "
+                     "(signal in the noise region?); errors are left as they are, on the safe side")
+    return scale, flags, notes
