@@ -1,23 +1,23 @@
 """Coalescence from the engine: the rate at which two exchanging signals merge, and its temperature.
 
 Coalescence rate
-    For every exchanging pair (:func:`dnmr.planning.pairs.exchanging_pairs`) the pair is simulated on its own:
-    the two states of its process (one for a mutual exchange) with the spins that the process permutes
-    together with it (one spin for a plain site exchange, both spins of an AB pair that swaps, ...),
-    their couplings among themselves, the model's populations and linewidths, and only that process
-    running (the other processes off, so that each pair's coalescence belongs to its own process).
-    A spin of the cluster that is an equivalent group (``Model.groups``, a CH3 say) stays a group, so
-    the couplings among the cluster keep their multiplet structure.  Spins outside that cluster,
-    heteronuclei included, are left out: their couplings split both signals alike into multiplet
-    components, each of which coalesces with its partner at the same rate when the coupling is the same
-    in both places; where it is not, the components have different shift differences and coalesce at
-    different rates, and the result carries a note naming those couplings.  The coalescence rate is the
-    forward rate constant of the process (as the model file defines it) at which the spectrum, on the
-    closed interval between the two shifts, goes from two maxima to one.  For two sites this is where the minimum between the lines meets the smaller maximum
-    (Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956); Shanan-Atidi & Bar-Eli, J. Phys. Chem. 74, 961
-    (1970)); for an AB pair the interval holds the two inner lines of the quartet and the count drops
-    when the centre turns from a minimum into a maximum (Kurland, Rubin & Wise, J. Chem. Phys. 40, 2426
-    (1964)).  It is found by a scan over six decades of rate and bisection on log k, once with the
+    For every exchanging pair (:func:`dnmr.planning.pairs.exchanging_pairs`) the pair is simulated on its
+    own: the two states of its process (one for a mutual exchange) with the spins that the process
+    permutes together with it (one spin for a plain site exchange, both spins of an AB pair that swaps,
+    ...), their couplings among themselves, the model's populations and linewidths, and only that process
+    running (the other processes off, so that each pair's coalescence belongs to its own process).  A spin
+    of the cluster that is an equivalent group (``Model.groups``, a CH3 say) stays a group, so the
+    couplings among the cluster keep their multiplet structure.  Spins outside that cluster, heteronuclei
+    included, are left out: their couplings split both signals alike into multiplet components, each of
+    which coalesces with its partner at the same rate when the coupling is the same in both places; where
+    it is not, the components have different shift differences and coalesce at different rates, and the
+    result carries a note naming those couplings.  The coalescence rate is the forward rate constant of the
+    process (as the model file defines it) at which the spectrum, on the closed interval between the two
+    shifts, goes from two maxima to one.  For two sites this is where the minimum between the lines meets
+    the smaller maximum (Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956); Shanan-Atidi & Bar-Eli, J. Phys.
+    Chem. 74, 961 (1970)); for an AB pair the interval holds the two inner lines of the quartet and the
+    count drops when the centre turns from a minimum into a maximum (Kurland, Rubin & Wise, J. Chem. Phys.
+    40, 2426 (1964)).  It is found by a scan over six decades of rate and bisection on log k, once with the
     model's linewidths and once in the narrow-line limit (widths 1e-6 of the separation), to show how a
     finite linewidth moves it.
     A coupling-averaging pair (equal shifts, changed couplings; see :mod:`dnmr.planning.pairs`) keeps the

@@ -66,7 +66,6 @@ PLAN_CAVEAT = (
 )
 
 
-
 @dataclass(frozen=True)
 class PlannedTemperature:
     """One temperature of the plan and why it is there.

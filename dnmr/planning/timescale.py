@@ -137,7 +137,6 @@ class TimescaleView(NotebookView):
         return plot_regimes(self.pairs, figure=figure, transfer=self.transfer)
 
 
-
 def _indent(text: str, by: str = "  ") -> str:
     return "\n".join(by + line for line in text.splitlines())
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import numpy as np
+from matplotlib.figure import Figure
 
 from dnmr.errors import InputError
 from dnmr.formatting import rates_text
@@ -17,7 +18,8 @@ from dnmr.planning.transferplan import TransferWindow
 from dnmr.reporting.plotting import INK, REGIME_COLOURS, TRANSFER_COLOUR, figure_text, plot_stack, plt
 
 
-def plot_regimes(pairs: Sequence[PairTimescale], figure=None, transfer: Sequence[TransferWindow] = ()):
+def plot_regimes(pairs: Sequence[PairTimescale], figure: Figure | None = None,
+                 transfer: Sequence[TransferWindow] = ()) -> Figure:
     """Bands of slow, intermediate and fast exchange against temperature: one panel per field, one row per
     pair, and a row per process for the magnetisation-transfer window.
 
@@ -67,7 +69,7 @@ def plot_regimes(pairs: Sequence[PairTimescale], figure=None, transfer: Sequence
     return fig
 
 
-def plot_planned_stack(plan, figure=None):
+def plot_planned_stack(plan, figure: Figure | None = None) -> Figure:
     """Simulated spectra at the planned temperatures, stacked (lowest at the bottom), one panel per field.
 
     Parameters
