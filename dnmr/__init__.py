@@ -25,7 +25,8 @@ _HOMES = {
     "model": ("Exchange", "Model", "Spectrometer", "State"),
     "io.modelfile": ("load_model",),
     "io.readers": ("MeasuredSpectrum", "read_spectrum"),
-    "planning.plan": ("coalescence", "plan_experiment", "predict_coalescence"),
+    "planning.coalescence": ("coalescence", "predict_coalescence"),
+    "planning.plan": ("plan_experiment",),
     "fitting.posterior": ("Posterior", "sample_eyring_posterior", "sample_spectrum_posterior"),
     "fitting.series": ("SeriesFit", "fit_series"),
     "fitting.seriesfile": ("Series", "load_series"),
@@ -35,7 +36,8 @@ _HOMES = {
                     "temperature_from_spectrum", "thermometer_reading"),
     "fitting.transfer": ("TransferFit", "fit_transfer", "run_transfer"),
     "fitting.transferfile": ("Experiment", "load_experiment"),
-    "planning.timescale": ("averaged_model", "fast_exchange_limit", "timescale_view"),
+    "planning.fastexchange": ("averaged_model", "fast_exchange_limit"),
+    "planning.timescale": ("timescale_view",),
 }
 _HOME_OF = {name: module for module, names in _HOMES.items() for name in names}
 

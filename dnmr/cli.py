@@ -583,12 +583,7 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
         **{key: value for key, value in given.items() if value is not None})
     _emit(result, as_json, plot_file, overwrite)
     if series_file:
-        import os
-
-        from dnmr.io.output import atomic_write_text
-
-        relative = os.path.relpath(model_file.resolve(), series_file.resolve().parent)
-        atomic_write_text(series_file, result.series_text(Path(relative).as_posix()), overwrite=overwrite)
+        result.write_series_file(series_file, model_file, overwrite=overwrite)
         click.echo(f"wrote {series_file}", err=as_json)
 
 

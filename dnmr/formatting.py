@@ -1,4 +1,5 @@
-"""One home for numbers shown to people: significant figures, and a value with its standard error."""
+"""One home for numbers shown to people: significant figures, a value with its standard error, a table cell
+that may be empty, and forward rates in words."""
 from __future__ import annotations
 
 import math
@@ -19,3 +20,18 @@ def format_with_error(value: float, stderr: float, digits: int = 2) -> str:
         return f"{value:.6g} ± 0"
     decimals = max(0, digits - 1 - int(math.floor(math.log10(abs(stderr)))))
     return f"{value:.{decimals}f} ± {stderr:.{decimals}f}"
+
+
+def number_or_dash(value: float | None, spec: str) -> str:
+    """`value` in the format `spec` (``"10.4g"``, ``".1f"``), or a '-' right-aligned to the spec's width
+    where there is no value (a table cell left empty)."""
+    width = "".join(ch for ch in spec.split(".")[0] if ch.isdigit())
+    return f"{'-':>{width or 1}}" if value is None else format(value, spec)
+
+
+def rates_text(rates_per_s: dict[str, float]) -> str:
+    """Forward rates (s^-1) by process in words: ``k = 12.3 s^-1`` for one process,
+    ``k: rotation 12.3 s^-1, inversion 4.5 s^-1`` for several."""
+    if len(rates_per_s) == 1:
+        return f"k = {next(iter(rates_per_s.values())):.3g} s^-1"
+    return "k: " + ", ".join(f"{n} {k:.3g} s^-1" for n, k in rates_per_s.items())

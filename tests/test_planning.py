@@ -20,11 +20,14 @@ from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.planning.plan import (CAUTIONS, coalescence, d_optimal_temperatures, information_profile,
-                           interpolated_information, ln_rate_information, plan_experiment, predict_coalescence)
+from dnmr.planning.cautions import CAUTIONS
+from dnmr.planning.coalescence import coalescence, predict_coalescence
+from dnmr.planning.design import (d_optimal_temperatures, information_profile, interpolated_information,
+                                  ln_rate_information)
+from dnmr.planning.plan import plan_experiment
 from dnmr.planning.solvents import solvent
 from dnmr.activation.parameters import ActivationParameters
-from dnmr.planning.timescale import model_at
+from dnmr.planning.conditions import model_at
 
 SF = 400.0
 
@@ -322,8 +325,8 @@ def test_coalescence_of_pairs_whose_averaged_signal_is_still_a_multiplet():
     from closed_forms import shanan_atidi_bar_eli_rates
 
     import dnmr
-    from dnmr.planning.plan import coalescence_rate
-    from dnmr.planning.timescale import exchanging_pairs
+    from dnmr.planning.coalescence import coalescence_rate
+    from dnmr.planning.pairs import exchanging_pairs
 
     def rotamers(j_hz):
         states = [dnmr.State("syn", {"Ha": 4.62, "Hb": 4.47}, {"Ha-Hb": j_hz}, 1.0, population=0.64),
@@ -359,7 +362,7 @@ def test_coalescence_of_coupled_groups_matches_the_system_written_spin_by_spin()
     from test_groups import written_out_model
 
     from dnmr import simulate
-    from dnmr.planning.plan import count_maxima
+    from dnmr.planning.coalescence import count_maxima
 
     model = swapping_ch2_groups()
     (c,) = coalescence(model)
@@ -408,7 +411,7 @@ def test_coalescence_of_a_fluorine_swap_is_gutowsky_holm_of_the_coupling_differe
     from test_timescale import fluorine_swap
 
     from dnmr import simulate
-    from dnmr.planning.plan import count_maxima
+    from dnmr.planning.coalescence import count_maxima
 
     model = fluorine_swap()
     (c,) = coalescence(model)
@@ -427,7 +430,7 @@ def test_coalescence_of_a_coupling_that_differs_between_sites_of_equal_shift():
     # One shift, two sites whose coupling to a 19F is 40 and 10 Hz: each fluorine component is a two-site
     # exchange across |dJ| / 2 = 15 Hz (first order, common practice).  Their McConnell (1958) lineshapes
     # (tests/closed_forms.py) turn from four maxima into two at the rate found.
-    from dnmr.planning.plan import count_maxima
+    from dnmr.planning.coalescence import count_maxima
 
     model = Model(Spectrometer(SF), (State("a", {"H": 3.0}, {"H-F": 40.0}, 1.0, 0.5),
                                      State("b", {"H": 3.0}, {"H-F": 10.0}, 1.0, 0.5)),

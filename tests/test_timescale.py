@@ -21,8 +21,10 @@ from dnmr import simulate
 from dnmr.cli import cli
 from dnmr.model import Exchange, Model, Spectrometer, State
 from dnmr.activation.parameters import ActivationParameters
-from dnmr.planning.timescale import (averaged_model, exchanging_pairs, fast_exchange_limit,
-                            rate_window, timescale_view, window_temperatures)
+from dnmr.planning.fastexchange import averaged_model, fast_exchange_limit
+from dnmr.planning.pairs import exchanging_pairs
+from dnmr.planning.regimes import rate_window, window_temperatures
+from dnmr.planning.timescale import timescale_view
 
 SF = 400.0
 

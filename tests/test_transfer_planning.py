@@ -1,5 +1,5 @@
-"""Planning across both regimes: the magnetisation-transfer window below the lineshapes (dnmr.planning.timescale),
-the transfer temperatures with their delays and mixing times (dnmr.planning.plan), `dnmr plan` and
+"""Planning across both regimes: the magnetisation-transfer window below the lineshapes and the transfer
+temperatures with their delays and mixing times (dnmr.planning.transferplan), `dnmr plan` and
 `dnmr timescale`.
 
 References: the Eyring equation with CODATA constants (Eyring, J. Chem. Phys. 3, 107 (1935);
@@ -21,8 +21,9 @@ from scipy.optimize import minimize_scalar
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.planning.plan import best_mixing_time, plan_experiment
-from dnmr.planning.timescale import TYPICAL_R1_PER_S, timescale_view
+from dnmr.planning.plan import plan_experiment
+from dnmr.planning.timescale import timescale_view
+from dnmr.planning.transferplan import TYPICAL_R1_PER_S, best_mixing_time
 from reference_eyring import eyring_rate
 
 DH, DS = 60.0, -12.0  # invented activation parameters, kJ/mol and J/(mol K)

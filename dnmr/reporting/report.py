@@ -67,7 +67,7 @@ from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.model import Model
 from dnmr.io.modelfile import load_model
 from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as
-from dnmr.planning.plan import CAUTIONS
+from dnmr.planning.cautions import CAUTIONS
 from dnmr.fitting.seriesoutput import file_sha256
 from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, TemperatureCalibration, read_temperature_calibration
 
@@ -636,7 +636,7 @@ def warnings_section(inputs: ReportInputs) -> str:
 
 
 def cautions_section(thermometer: bool = False) -> str:
-    """Safety cautions for variable-temperature work (dnmr.planning.plan.CAUTIONS), and those of the thermometer
+    """Safety cautions for variable-temperature work (dnmr.planning.cautions.CAUTIONS), and those of the thermometer
     liquids when a temperature calibration was used."""
     return section("cautions", "Safety cautions", bullets(CAUTIONS + ((THERMOMETER_CAUTIONS,) if thermometer else ())))
 
