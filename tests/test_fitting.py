@@ -17,7 +17,8 @@ from closed_forms import fast_exchange_excess_width, mcconnell_two_site
 from dnmr.fitting import spectrumfit as fitting
 from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import FitOptions, estimate_noise, fit_parameters, fit_spectrum
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.io.readers import MeasuredSpectrum
 from reference_qutip import jumps_with_reverse, qutip_spectrum
 

@@ -29,7 +29,8 @@ from dnmr.activation.eyring import eyring_fit
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import fit_spectrum
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.fitting.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
 from dnmr.io.readers import MeasuredSpectrum
 

@@ -15,7 +15,8 @@ from scipy.linalg import expm
 
 from dnmr.errors import InputError
 from dnmr.engine.longitudinal import LongitudinalSystem, model_sites
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.fitting.transfer import (
     Experiment,
     TransferData,

@@ -20,7 +20,8 @@ from scipy.optimize import minimize_scalar
 
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.planning.plan import best_mixing_time, plan_experiment
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.timescale import TYPICAL_R1_PER_S, timescale_view

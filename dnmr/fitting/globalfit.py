@@ -92,7 +92,8 @@ from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import NoiseEstimate, ParameterLayout, SpectrumFit, _error_scale, _identifier, _Problem
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.kinetics import (BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K)
-from dnmr.model import Model, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import parse_coupling_key
 from dnmr.io.output import atomic_write_text, json_ready, save_figure
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 from dnmr.fitting.series import Series, SeriesFit, fit_series, load_series

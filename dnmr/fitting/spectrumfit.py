@@ -82,7 +82,8 @@ from dnmr.engine.blocks import default_window_ppm, lineshape_terms
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.formatting import significant
 from dnmr.errors import InputError, did_you_mean
-from dnmr.model import Model, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import parse_coupling_key
 from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
 from dnmr.notebook import NotebookView
 

@@ -71,7 +71,8 @@ import numpy as np
 from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
 from dnmr.errors import InputError
 from dnmr.kinetics import GAS_CONSTANT, coalescence_rate_per_s
-from dnmr.model import Exchange, Model, State, coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, State, coupling_key
 from dnmr.notebook import NotebookView
 from dnmr.planning.solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
 from dnmr.planning.timescale import (

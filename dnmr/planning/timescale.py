@@ -53,7 +53,8 @@ import numpy as np
 
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.errors import InputError
-from dnmr.model import Exchange, Model, Spectrometer, State, coupling_key, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State, coupling_key, parse_coupling_key
 from dnmr.notebook import NotebookView
 
 #: The broadening that makes exchange visible, as a fraction of the intrinsic linewidth (a choice).
