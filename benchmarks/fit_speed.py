@@ -26,7 +26,8 @@ import numpy as np
 
 import dnmr
 from dnmr.fitting.spectrumfit import fit_spectrum
-from dnmr.io.readers import MeasuredSpectrum, read_spectrum
+from dnmr.io.measured import MeasuredSpectrum
+from dnmr.io.readers import read_spectrum
 from dnmr.fitting.globalfit import TWO_STEP_FOLDER, _global_fit
 from dnmr.fitting.series import fit_series
 from dnmr.activation.thermometry import read_temperature_calibration

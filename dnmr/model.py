@@ -1,7 +1,7 @@
 """The spin model: spectrometer, states (conformers, isomers or sites) and exchange processes.
 
-A :class:`Model` joins the parts of :mod:`dnmr.modelparts` and is plain data that a chemist can build in a notebook or load from a TOML file
-(:func:`dnmr.io.modelfile.load_model`).  Every state carries its own spin Hamiltonian — chemical shifts in
+A :class:`Model` joins the parts of :mod:`dnmr.modelparts` and is plain data that a chemist can build in a
+notebook or load from a TOML file (:func:`dnmr.io.modelfile.load_model`).  Every state carries its own spin Hamiltonian — chemical shifts in
 ppm and scalar couplings in Hz over the same set of named spins — plus an intrinsic linewidth and a
 population (or a relative free energy).  Exchange processes carry a spin mapping and a forward rate
 (or activation parameters, evaluated by the Eyring equation at the model's temperature).

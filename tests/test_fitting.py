@@ -19,7 +19,7 @@ from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import FitOptions, estimate_noise, fit_parameters, fit_spectrum
 from dnmr.model import Model
 from dnmr.modelparts import Exchange, Spectrometer, State
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.io.measured import MeasuredSpectrum
 from reference_qutip import jumps_with_reverse, qutip_spectrum
 
 SF = 400.0  # MHz

@@ -32,7 +32,7 @@ from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.model import Model
 from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.fitting.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.io.measured import MeasuredSpectrum
 
 R, KB, H = constants.R, constants.k, constants.h
 TRUE_DH, TRUE_DS = 55.0, -12.0  # kJ/mol, J/(mol K): invented

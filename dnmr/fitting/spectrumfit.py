@@ -84,7 +84,8 @@ from dnmr.formatting import significant
 from dnmr.errors import InputError, did_you_mean
 from dnmr.model import Model
 from dnmr.modelparts import parse_coupling_key
-from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
+from dnmr.io.measured import MIN_POINTS, MeasuredSpectrum
+from dnmr.io.readers import read_spectrum
 from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
