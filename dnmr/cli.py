@@ -629,7 +629,8 @@ def report(outdir: Path, calibration_file: Path | None, output: Path | None, ove
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched), and
     beside it supporting-information/: the rates and activation parameters as CSV, Markdown and LaTeX
     tables, and the Eyring figure in --figure-format."""
-    from dnmr.reporting.report import supporting_folder, write_report
+    from dnmr.reporting.report import write_report
+    from dnmr.reporting.supporting import supporting_folder
 
     written = write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite,
                            transfer=transfer_folders, figure_format=figure_format)

@@ -143,6 +143,39 @@ def figure_file(path: str | Path) -> Path:
     return path.with_suffix("." + chosen_figure_format()) if path.suffix.lower() == ".png" else path
 
 
+def figure_bytes(fig, image_format: str = "png", dpi: int = 150, *, close: bool = False,
+                 software_tag: bool = True) -> bytes:
+    """A matplotlib figure rendered as the bytes of an image file, cropped to what is drawn: the one place
+    dnmr renders figures (:func:`save_figure` writes them, the HTML report and the notebook embed them).
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+        The figure.
+    image_format : str
+        ``"png"``, ``"svg"``, ``"pdf"`` ... (see :data:`FIGURE_FORMATS`).
+    dpi : int
+        Resolution (dots per inch) of raster formats.
+    close : bool
+        Close the figure afterwards (also when rendering fails).
+    software_tag : bool
+        False leaves out the PNG's "Software" entry (matplotlib's version), so that the image depends on
+        the figure alone.
+    """
+    import io
+
+    buffer = io.BytesIO()
+    try:
+        fig.savefig(buffer, format=image_format, dpi=dpi, bbox_inches="tight",
+                    **({} if software_tag else {"metadata": {"Software": None}}))
+    finally:
+        if close:
+            import matplotlib.pyplot as plt
+
+            plt.close(fig)
+    return buffer.getvalue()
+
+
 def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False) -> Path:
     """Save a matplotlib figure atomically (format from the file suffix; ``.png`` follows :func:`figures_as`).
 
@@ -160,13 +193,10 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
         Close the figure afterwards (also when writing fails), as the command line does with the figures
         it only saves; a figure that a notebook goes on showing stays open (the default).
     """
-    import io
-
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        buf = io.BytesIO()
-        fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
-        return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+        data = figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi)
+        return atomic_write_bytes(path, data, overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt
