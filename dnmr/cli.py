@@ -341,7 +341,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     """
     from dnmr.activation.eyring import eyring_fit_file, results_to_dict
     from dnmr.io.output import save_figure
-    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.reporting.eyringplot import plot_eyring
     from dnmr.activation.thermometry import read_temperature_calibration
 
     if posterior:

@@ -144,7 +144,7 @@ def write_report(
 def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
     """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into the
     folder `target`."""
-    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.reporting.eyringplot import plot_eyring
 
     figure = target / "eyring.png"
     if eyring and figure_file(figure).exists() and not overwrite:

@@ -187,7 +187,7 @@ def eyring_section(inputs: ReportInputs) -> str:
     """Eyring plot made here, the calibration and the full analysis of each process."""
     if not inputs.eyring:
         return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
-    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.reporting.eyringplot import plot_eyring
 
     body = figure_html(figure_bytes(plot_eyring(inputs.eyring), "png", FIGURE_DPI, close=True, software_tag=False),
                        "Eyring plot: ln(k/T) against 1000/T with the fitted line, its 95 % band and the residuals",
