@@ -14,6 +14,20 @@ import numpy as np
 from dnmr.errors import InputError
 
 
+def os_error_text(err: OSError) -> str:
+    """One line for a failed file operation: the file, what went wrong, and what to do (the writes here are
+    atomic, so nothing half-written is left behind)."""
+    import errno
+
+    what = err.strerror or type(err).__name__
+    place = err.filename if err.filename is not None else "a file"
+    advice = {errno.ENOSPC: "free some space and run again", errno.EDQUOT: "free some space and run again",
+              errno.EROFS: "write the results to another folder", errno.EACCES: "check the permissions or "
+              "write the results elsewhere", errno.EPERM: "check the permissions or write the results elsewhere"}
+    hint = advice.get(err.errno, "check the disk and the path")
+    return f"{place}: {what}; {hint} (nothing half-written is left behind)"
+
+
 def _refuse_existing(path: Path, overwrite: bool) -> None:
     if (path.exists() or path.is_symlink()) and not overwrite:
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
