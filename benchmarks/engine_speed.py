@@ -31,7 +31,8 @@ from threadpoolctl import threadpool_limits
 
 import dnmr
 from dnmr.engine import resolvent
-from dnmr.engine.blocks import SpinParameters, block_liouvillian, block_pattern, block_start, lineshape_terms
+from dnmr.engine.blocks import block_liouvillian, block_pattern, block_start, lineshape_terms
+from dnmr.engine.spinsystems import SpinParameters
 from dnmr.engine.liouville import coherence_blocks
 from dnmr.engine.resolvent import ContinuedFraction
 

@@ -26,7 +26,8 @@ import numpy as np
 
 import dnmr
 from dnmr.fitting.spectrumfit import fit_spectrum
-from dnmr.io.readers import MeasuredSpectrum, read_spectrum
+from dnmr.io.readers import read_spectrum
+from dnmr.io.measured import MeasuredSpectrum
 from dnmr.fitting.globalfit import fit_global_from_two_step
 from dnmr.fitting.globalproblem import Treatment
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER

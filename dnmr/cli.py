@@ -9,14 +9,13 @@ import json
 import re
 import sys
 import traceback
-from contextlib import contextmanager
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import click
 
 from dnmr.errors import InputError
-from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready
+from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready, os_error_text
 
 if TYPE_CHECKING:
     from dnmr.fitting.seriesfile import Series
@@ -36,25 +35,12 @@ class _Group(click.Group):
         except OSError as err:  # a fault of the disk or the system (full, read-only, gone): not bad input
             if ctx.obj and ctx.obj.get("debug"):
                 traceback.print_exc()
-            click.echo(f"dnmr: error: {_os_error_text(err)}", err=True)
+            click.echo(f"dnmr: error: {os_error_text(err)}", err=True)
             ctx.exit(1)
         except MemoryError:
             click.echo("dnmr: error: out of memory; close other programs or make the problem smaller "
                        "(fewer points, fewer coupled spins)", err=True)
             ctx.exit(1)
-
-
-def _os_error_text(err: OSError) -> str:
-    """One line for a failed file operation: the file, what went wrong, and what to do."""
-    import errno
-
-    what = err.strerror or type(err).__name__
-    place = err.filename if err.filename is not None else "a file"
-    advice = {errno.ENOSPC: "free some space and run again", errno.EDQUOT: "free some space and run again",
-              errno.EROFS: "write the results to another folder", errno.EACCES: "check the permissions or "
-              "write the results elsewhere", errno.EPERM: "check the permissions or write the results elsewhere"}
-    hint = advice.get(err.errno, "check the disk and the path")
-    return f"{place}: {what}; {hint} (nothing half-written is left behind)"
 
 
 @click.group(cls=_Group)
@@ -72,10 +58,6 @@ def print_json(obj) -> None:
     click.echo(json.dumps(json_ready(obj), indent=2))
 
 
-MAX_STACKED_TRACES = 100
-"""Most traces `dnmr stack` draws in one figure."""
-
-
 def _parse_list(text: str, option: str) -> list[float]:
     try:
         values = [float(v) for v in text.replace(";", ",").split(",") if v.strip()]
@@ -85,30 +67,6 @@ def _parse_list(text: str, option: str) -> list[float]:
         raise InputError("expected at least one number", where=option)
     return values
 
-
-@contextmanager
-def _block_progress(enabled: bool):
-    """Progress over the engine's blocks on stderr, for large systems: a bar on a terminal, else plain lines."""
-    from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
-
-    with ProgressReport(enabled) as report:
-        task, shown = None, 0
-
-        def advance(done: int, total: int) -> None:
-            nonlocal task, shown
-            if total < LARGE_SYSTEM_COHERENCES:
-                return
-            if task is None:
-                task = report.add_task("simulating", total, unit="coherences", interval_s=PLAIN_INTERVAL_S)
-            report.advance(task, steps=done - shown)
-            report.refresh()
-            shown = done
-
-        yield advance
-
-
-#: Simulations with at least this many coherences show a progress bar.
-LARGE_SYSTEM_COHERENCES = 2000
 
 #: The option of every command that writes figures under names of its own.
 FIGURE_FORMAT_OPTION = click.option(
@@ -129,32 +87,19 @@ FIGURE_FORMAT_OPTION = click.option(
 def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int | None, overwrite: bool,
              quiet: bool, verbose: bool) -> None:
     """Simulate the exchange-broadened spectrum of MODEL_FILE."""
-    import time
+    from dnmr.reporting.spectrumfiles import write_simulation
 
-    from dnmr import load_model, simulate as run
-    from dnmr.io.output import check_output_file, save_figure
-
-    check_output_file(output, overwrite, "--output")  # before any work: nothing is written half-way
-    check_output_file(plot_file, overwrite, "--plot", figure=True)
-    if plot_file is not None and Path(plot_file).resolve() == Path(output).resolve():
-        raise InputError("--plot names the same file as --output; give the figure its own name", where="--plot")
-    model = load_model(model_file)
-    started = time.perf_counter()
-    with _block_progress(enabled=not quiet) as progress:
-        spectrum = run(model, points=points, progress=progress)
-    elapsed = time.perf_counter() - started
-    spectrum.to_csv(output, overwrite=overwrite)
+    run = write_simulation(model_file, output, plot_file=plot_file, points=points, overwrite=overwrite,
+                           progress=not quiet)
+    spectrum = run.spectrum
     if verbose:
         for route in spectrum.terms.routes:
             click.echo(f"  block: {route}")
-        click.echo(f"  simulated in {elapsed:.3f} s; integral over the window {spectrum.integral():.6g}"
+        click.echo(f"  simulated in {run.elapsed_s:.3f} s; integral over the window {spectrum.integral():.6g}"
                    " (population x observed nuclei, less the tails outside the window)")
     if not quiet:
         click.echo(f"wrote {output} ({len(spectrum.ppm)} points, {spectrum.ppm.min():.3f}-{spectrum.ppm.max():.3f} ppm)")
-    if plot_file:
-        ax = spectrum.plot()
-        save_figure(ax.figure, plot_file, overwrite=overwrite, close=True)
-        if not quiet:
+        if plot_file:
             click.echo(f"wrote {plot_file}")
 
 
@@ -167,25 +112,13 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
 def stack(model_file: Path, rates: str | None, temperatures: str | None, output: Path, overwrite: bool) -> None:
     """Draw MODEL_FILE's spectrum over a list of rates or temperatures, stacked (a coalescence figure)."""
-    from dnmr import load_model
-    from dnmr.io.output import save_figure
-    from dnmr.reporting.plotting import plot_stack
-    from dnmr.engine.spectrum import simulate_over
+    from dnmr.reporting.spectrumfiles import write_stack
 
     if (rates is None) == (temperatures is None):
         raise InputError("give either --rates or --temperatures", where="stack")
-    option, text = ("--rates", rates) if rates is not None else ("--temperatures", temperatures)
-    values = _parse_list(text, option)
-    if len(values) > MAX_STACKED_TRACES:
-        raise InputError(f"{len(values)} values: a stacked figure shows at most {MAX_STACKED_TRACES} traces",
-                         where=option)
-    model = load_model(model_file)
-    if rates is not None:
-        spectra, labels = simulate_over(model, rates_per_s=values)
-    else:
-        spectra, labels = simulate_over(model, temperatures_k=values)
-    ax = plot_stack(spectra, labels, title=model.title)
-    save_figure(ax.figure, output, overwrite=overwrite, close=True)
+    write_stack(model_file, output, overwrite=overwrite,
+                rates_per_s=None if rates is None else _parse_list(rates, "--rates"),
+                temperatures_k=None if temperatures is None else _parse_list(temperatures, "--temperatures"))
     click.echo(f"wrote {output}")
 
 
@@ -342,7 +275,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     """
     from dnmr.activation.eyring import eyring_fit_file, results_to_dict
     from dnmr.io.output import save_figure
-    from dnmr.reporting.plotting import plot_eyring
+    from dnmr.reporting.eyringplot import plot_eyring
     from dnmr.activation.thermometry import read_temperature_calibration
 
     if posterior:
@@ -625,7 +558,8 @@ def report(outdir: Path, calibration_file: Path | None, output: Path | None, ove
     """One self-contained HTML report of the series fit in OUTDIR (figures embedded, nothing fetched), and
     beside it supporting-information/: the rates and activation parameters as CSV, Markdown and LaTeX
     tables, and the Eyring figure in --figure-format."""
-    from dnmr.reporting.report import supporting_folder, write_report
+    from dnmr.reporting.report import write_report
+    from dnmr.reporting.supporting import supporting_folder
 
     written = write_report(outdir, calibration=calibration_file, output=output, overwrite=overwrite,
                            transfer=transfer_folders, figure_format=figure_format)

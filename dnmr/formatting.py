@@ -1,5 +1,5 @@
 """One home for numbers shown to people: significant figures, a value with its standard error, a table cell
-that may be empty, and forward rates in words."""
+that may be empty, a number read from a table, and forward rates in words."""
 from __future__ import annotations
 
 import math
@@ -35,3 +35,14 @@ def rates_text(rates_per_s: dict[str, float]) -> str:
     if len(rates_per_s) == 1:
         return f"k = {next(iter(rates_per_s.values())):.3g} s^-1"
     return "k: " + ", ".join(f"{n} {k:.3g} s^-1" for n, k in rates_per_s.items())
+
+
+def table_number(text, spec: str = ".4g") -> str:
+    """A number read from a table as text (a cell of rates.csv) shown with the format `spec`: '' for an empty
+    cell, the text itself when it is not a number."""
+    if text in ("", None):
+        return ""
+    try:
+        return format(float(text), spec)
+    except ValueError:
+        return str(text)

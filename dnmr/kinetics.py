@@ -6,16 +6,13 @@ Constants are CODATA values from :mod:`scipy.constants`.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy import constants
 
 from dnmr.errors import InputError
-
-if TYPE_CHECKING:
-    from dnmr.model import Model
 
 BOLTZMANN = constants.k  # J/K
 PLANCK = constants.h  # J s
@@ -113,9 +110,11 @@ class Jump:
     forward: bool = True
 
 
-def _permutation(model: "Model", ex) -> tuple[int, ...]:
-    spins = model.all_spins  # one spin order for every state
-    return tuple(spins.index(ex.spins.get(name, name)) for name in spins)
+def spin_permutation(spin_order: Sequence[str], mapping: Mapping[str, str]) -> tuple[int, ...]:
+    """The permutation of an exchange as indices: entry `i` is the index (in `spin_order`) of the spin that
+    spin `i` becomes; `mapping` names the spins that move (spin -> spin), the others keep their names."""
+    spins = list(spin_order)
+    return tuple(spins.index(mapping.get(name, name)) for name in spins)
 
 
 def _inverse(perm: tuple[int, ...]) -> tuple[int, ...]:
@@ -125,40 +124,55 @@ def _inverse(perm: tuple[int, ...]) -> tuple[int, ...]:
     return tuple(inv)
 
 
-def exchange_jumps(model: "Model") -> list[Jump]:
-    """All elementary jumps of a model, with reverse processes implied by detailed balance.
+def _listed_partners(processes: Sequence[tuple[int, int, tuple[int, ...]]]) -> dict[int, int]:
+    """Pairs of listed processes that are each other's reverse (b -> a by the inverse permutation)."""
+    partner: dict[int, int] = {}
+    for i, (a, b, perm) in enumerate(processes):
+        for j in range(i + 1, len(processes)):
+            if j not in partner and processes[j] == (b, a, _inverse(perm)) and i not in partner:
+                partner[i], partner[j] = j, i
+    return partner
+
+
+def jumps_with_reverses(
+    processes: Sequence[tuple[int, int, tuple[int, ...]]],
+    rates_per_s: Sequence[float],
+    populations: Sequence[float],
+    state_names: Sequence[str],
+) -> list[Jump]:
+    """All elementary jumps of exchange processes, with reverse processes implied by detailed balance.
 
     For a process a -> b (a != b) at rate k the reverse b -> a runs at k p_a / p_b; a mutual exchange
-    (a == b) implies its inverse permutation at the same rate.  A reverse that the model lists itself
-    must agree with this (relative tolerance 1e-6), and is then not added twice.
+    (a == b) implies its inverse permutation at the same rate.  A reverse that is listed itself must agree
+    with this (relative tolerance 1e-6), and is then not added twice.
 
-    The forward rates are the model's (``model.rates()``, s^-1); :meth:`Model.jumps` keeps the result.
+    Parameters
+    ----------
+    processes : sequence of (int, int, tuple of int)
+        Source state, target state and spin permutation (:func:`spin_permutation`) of each process.
+    rates_per_s : sequence of float
+        Forward rate constant of each process (s^-1).
+    populations : sequence of float
+        Equilibrium population of each state (sum 1).
+    state_names : sequence of str
+        Name of each state, for messages.
     """
-    rates = model.rates()
-    pop = model.populations()
-    listed = []
-    for i, ex in enumerate(model.exchanges):
-        listed.append((model.state_index(ex.from_state), model.state_index(ex.to_state), _permutation(model, ex)))
-    partner: dict[int, int] = {}
-    for i, (a, b, perm) in enumerate(listed):
-        for j in range(i + 1, len(listed)):
-            if j not in partner and listed[j] == (b, a, _inverse(perm)) and i not in partner:
-                partner[i], partner[j] = j, i
+    partner = _listed_partners(processes)
     jumps: list[Jump] = []
-    for i, (a, b, perm) in enumerate(listed):
-        k = float(rates[i])
-        if a != b and pop[b] == 0:
+    for i, (a, b, perm) in enumerate(processes):
+        k = float(rates_per_s[i])
+        if a != b and populations[b] == 0:
             raise InputError(
-                f'state "{model.states[b].name}" has population 0 but is reached by exchange;'
+                f'state "{state_names[b]}" has population 0 but is reached by exchange;'
                 " give it a positive population", where=f"exchange[{i}].to")
-        k_back = k * pop[a] / pop[b] if a != b else k
+        k_back = k * populations[a] / populations[b] if a != b else k
         if i in partner:
             j = partner[i]
-            if not math.isclose(float(rates[j]), k_back, rel_tol=1e-6, abs_tol=1e-300):
+            if not math.isclose(float(rates_per_s[j]), k_back, rel_tol=1e-6, abs_tol=1e-300):
                 rule = "detailed balance k_rev = k p_from / p_to" if a != b else "equal rates for a permutation and its inverse"
                 raise InputError(
                     f"exchange {i} and its listed reverse {j} disagree: {rule} needs {k_back:.6g} s^-1,"
-                    f" got {float(rates[j]):.6g}; drop the reverse (it is implied) or fix its rate",
+                    f" got {float(rates_per_s[j]):.6g}; drop the reverse (it is implied) or fix its rate",
                     where=f"exchange[{j}].rate_per_s")
             if j < i:
                 continue

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io
 
 FIGURE_DPI = 96
 """Resolution (dots per inch) of the figures embedded in a notebook."""
@@ -45,13 +44,8 @@ def result_html(result) -> str:
 def figure_html(figure) -> str:
     """An ``<img>`` element holding `figure` (a matplotlib Figure, or Axes) as an embedded PNG; the figure
     is closed, so that the notebook does not show it a second time."""
-    import matplotlib.pyplot as plt
+    from dnmr.io.output import figure_bytes  # the one renderer of figures; called only through _repr_html_
 
     figure = getattr(figure, "figure", figure)  # an Axes gives its Figure
-    buffer = io.BytesIO()
-    try:
-        figure.savefig(buffer, format="png", dpi=FIGURE_DPI, bbox_inches="tight")
-    finally:
-        plt.close(figure)
-    data = base64.b64encode(buffer.getvalue()).decode("ascii")
+    data = base64.b64encode(figure_bytes(figure, "png", FIGURE_DPI, close=True)).decode("ascii")
     return f'<img alt="figure" src="data:image/png;base64,{data}"/>'

@@ -96,8 +96,3 @@ def nucleus(symbol: str) -> Nucleus:
     except KeyError:
         known = ", ".join(_TABLE)
         raise InputError(f'unknown nucleus "{symbol}"; use isotope notation, one of {known}') from None
-
-
-def known_nuclei() -> list[str]:
-    """The isotope symbols dnmr knows."""
-    return list(_TABLE)

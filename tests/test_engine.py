@@ -374,15 +374,15 @@ def test_partial_reorthogonalisation_matches_dense_eigendecomposition_on_seven_s
     model = dnmr.Model(dnmr.Spectrometer(SF), [state], [dnmr.Exchange("s", "s", flip, rate_per_s=30.0)])
     hz = np.linspace(0.9 * SF, 3.3 * SF, 4000)
     passes = []
-    estimate = resolvent._next_orthogonality
+    estimate = resolvent.next_orthogonality
     monkeypatch.setattr(resolvent, "USE_COMPILED", False)  # count the steps of the numpy recursion
 
     def counted(*args):
         omega = estimate(*args)
-        passes.append(np.abs(omega[: args[4] + 1]).max() > resolvent._SEMI_ORTHOGONAL)
+        passes.append(np.abs(omega[: args[4] + 1]).max() > resolvent.SEMI_ORTHOGONAL)
         return omega
 
-    monkeypatch.setattr(resolvent, "_next_orthogonality", counted)
+    monkeypatch.setattr(resolvent, "next_orthogonality", counted)
     krylov = blocks.lineshape_terms(model)
     assert sum(isinstance(b, resolvent.ContinuedFraction) for b in krylov.direct) >= 3
     assert 0 < sum(passes) < 0.5 * len(passes)  # partial: some steps, far from all

@@ -145,7 +145,9 @@ def api_figures(inputs):
     """One figure from every plotting function the command line does not already draw."""
     from dnmr.activation.eyring import eyring_fit
     from dnmr.fitting.spectrumfit import fit_spectrum
-    from dnmr.reporting.plotting import plot_fit_stack, plot_posterior_pairs, plot_rates
+    from dnmr.reporting.eyringplot import plot_rates
+    from dnmr.reporting.plotting import plot_fit_stack
+    from dnmr.reporting.posteriorplot import plot_posterior_pairs
     from test_fitting import REGION, measured, mcconnell, two_site_model
 
     rng = np.random.default_rng(3)
@@ -159,8 +161,8 @@ def api_figures(inputs):
     joint = eyring_fit(TEMPERATURES_K, k, 0.05 * k, process="flip", method=methods)
     samples = rng.multivariate_normal([60.0, -5.0], [[4.0, 11.0], [11.0, 36.0]], 4000)
     return {"fit": fit.plot(), "fit stack": plot_fit_stack([fit, fit], ["250 K", "260 K"]),
-            "rates": plot_rates(lines), "eyring, two processes": dnmr.reporting.plotting.plot_eyring(lines),
-            "eyring, three methods": dnmr.reporting.plotting.plot_eyring([joint, lines[1]]),
+            "rates": plot_rates(lines), "eyring, two processes": dnmr.reporting.eyringplot.plot_eyring(lines),
+            "eyring, three methods": dnmr.reporting.eyringplot.plot_eyring([joint, lines[1]]),
             "posterior pairs": plot_posterior_pairs(samples, ["dH‡ / kJ mol^-1", "dS‡ / J mol^-1 K^-1"],
                                                     true_values=[60.0, None], one_sided=[None, "lower-bound"]),
             "spectra overlaid": overlaid(inputs[0])}

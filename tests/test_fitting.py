@@ -19,8 +19,9 @@ from dnmr.errors import InputError
 from dnmr.fitting.parameters import FitParameter, checked_settings
 from dnmr.fitting.problem import NoiseEstimate, error_scale, estimate_noise
 from dnmr.fitting.spectrumfit import FitOptions, fit_parameters, fit_spectrum
-from dnmr.model import Exchange, Model, Spectrometer, State
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
+from dnmr.io.measured import MeasuredSpectrum
 from reference_qutip import jumps_with_reverse, qutip_spectrum
 
 SF = 400.0  # MHz

@@ -20,7 +20,8 @@ from scipy import constants
 from dnmr.activation.eyring import eyring_fit_file, method_offset, read_rates
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.reporting.plotting import PALETTE, plot_eyring
+from dnmr.reporting.eyringplot import plot_eyring
+from dnmr.reporting.plotting import PALETTE
 from reference_eyring import eyring_rate
 
 TRUE_DH, TRUE_DS = 60.0, -12.0  # kJ/mol, J/(mol K): invented truths of the synthetic rates

@@ -19,7 +19,8 @@ from closed_forms import (gutowsky_holm_rate, kurland_rubin_wise_rate, mcconnell
 from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.planning.cautions import CAUTIONS
 from dnmr.planning.coalescence import coalescence, predict_coalescence
 from dnmr.planning.design import (d_optimal_temperatures, information_profile, interpolated_information,

@@ -29,9 +29,10 @@ from dnmr.activation.eyring import eyring_fit
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import fit_spectrum
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.fitting.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.io.measured import MeasuredSpectrum
 
 R, KB, H = constants.R, constants.k, constants.h
 TRUE_DH, TRUE_DS = 55.0, -12.0  # kJ/mol, J/(mol K): invented
@@ -232,7 +233,7 @@ def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
 def test_pairs_figure_panels_labels_and_numbers(p):
     # p densities on the diagonal, p (p - 1) / 2 pair panels below, the correlation coefficients above
     # (Pearson's r, checked against numpy.corrcoef), the median and 95 % interval of each quantity
-    from dnmr.reporting.plotting import plot_posterior_pairs
+    from dnmr.reporting.posteriorplot import plot_posterior_pairs
 
     rng = np.random.default_rng(0)
     samples = rng.normal(size=(4000, p)) @ np.triu(np.full((p, p), 0.5)) + np.arange(p)
@@ -255,7 +256,8 @@ def test_pairs_figure_panels_labels_and_numbers(p):
 
 
 def test_pairs_figure_old_names_say_what_they_became():
-    from dnmr.reporting.plotting import plot_corner, plot_posterior_pairs
+    from dnmr.reporting.plotting import plot_corner
+    from dnmr.reporting.posteriorplot import plot_posterior_pairs
 
     with pytest.raises(InputError, match="renamed to plot_posterior_pairs"):
         plot_corner(np.zeros((10, 2)), ["a", "b"])
@@ -265,7 +267,7 @@ def test_pairs_figure_old_names_say_what_they_became():
 
 def test_pairs_figure_states_a_one_sided_bound_not_a_median():
     # a rate the data only bound is shown by its one-sided 95 % bound (common practice: no error bar)
-    from dnmr.reporting.plotting import plot_posterior_pairs
+    from dnmr.reporting.posteriorplot import plot_posterior_pairs
 
     rng = np.random.default_rng(1)
     samples = np.c_[rng.uniform(-2.0, 1.0, 5000), rng.normal(2.0, 0.2, 5000)]

@@ -20,7 +20,7 @@ from scipy.optimize import curve_fit
 
 from dnmr import read_spectrum
 from dnmr.errors import InputError
-from dnmr.io.processing import ProcessingOptions, read_fid
+from dnmr.io.processing import read_fid
 
 SW = 5000.0  # Hz
 POINTS = 8192  # complex points: 1.64 s of acquisition, long enough for lines of 1 Hz and more to decay

@@ -72,16 +72,16 @@ def test_work_in_batches_counts_on_in_one_task():
 
 
 def test_simulate_reports_blocks_of_large_systems_only(capsys):
-    from dnmr.cli import LARGE_SYSTEM_COHERENCES, _block_progress
+    from dnmr.io.progress import LARGE_SYSTEM_COHERENCES, block_progress
 
-    with _block_progress(True) as advance:
+    with block_progress(True) as advance:
         advance(10, 20)  # a small system: nothing
     assert capsys.readouterr().err == ""
     n = LARGE_SYSTEM_COHERENCES
-    with _block_progress(True) as advance:
+    with block_progress(True) as advance:
         advance(n, 2 * n)
         advance(2 * n, 2 * n)
     assert capsys.readouterr().err.splitlines()[-1].startswith(f"simulating: {2 * n} of {2 * n} coherences, ")
-    with _block_progress(False) as advance:  # --quiet
+    with block_progress(False) as advance:  # --quiet
         advance(2 * n, 2 * n)
     assert capsys.readouterr().err == ""

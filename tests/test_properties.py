@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 
 import dnmr
 from dnmr.engine.blocks import lineshape_terms
-from dnmr.kinetics import exchange_jumps, rate_matrix
+from dnmr.kinetics import rate_matrix
+from dnmr.model import exchange_jumps
 
 SF = 300.0
 

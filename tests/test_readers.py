@@ -28,7 +28,8 @@ import numpy as np
 import pytest
 
 from dnmr.errors import InputError
-from dnmr.io.readers import MAX_POINTS, MeasuredSpectrum, detect_format, read_spectrum
+from dnmr.io.measured import MAX_POINTS, MeasuredSpectrum
+from dnmr.io.readers import detect_format, read_spectrum
 
 SF_MHZ = 400.13
 

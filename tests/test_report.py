@@ -21,10 +21,12 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from dnmr.activation.eyring import eyring_fit_file, format_with_error
+from dnmr.activation.eyring import eyring_fit_file
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.reporting.report import _rate_text, write_report
+from dnmr.formatting import format_with_error
+from dnmr.reporting.fitsections import rate_text
+from dnmr.reporting.report import write_report
 from dnmr.fitting.series import fit_series
 from test_series import ENTHALPY_KJ_MOL, write_series
 
@@ -158,7 +160,7 @@ def test_report_shows_each_posterior_beside_the_least_squares_result(sampled):
     cells = [row for row in page.rows if len(row) == 7]  # the posterior tables
     for s in results["spectra"]:
         ls, post = s["fit"]["rates"][0], s["posterior"]["quantities"]["rate_per_s_flip"]
-        row = next(r for r in cells if r[0] == post["label"] and r[1].startswith(_rate_text(ls)))
+        row = next(r for r in cells if r[0] == post["label"] and r[1].startswith(rate_text(ls)))
         if ls["status"] == "upper-bound":  # the coldest spectrum: only the one-sided bound, no median
             assert post["kind"] == "upper-bound"
             assert row[2:6] == ["", "", "", f"< {post['bound_95']:.4g}"] and "slow-exchange" in row[6]

@@ -19,7 +19,8 @@ from closed_forms import (a2_line, fast_exchange_excess_width, lorentzian_lines,
 from reference_eyring import eyring_rate
 from dnmr import simulate
 from dnmr.cli import cli
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.fastexchange import averaged_model, fast_exchange_limit
 from dnmr.planning.pairs import exchanging_pairs

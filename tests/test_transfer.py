@@ -15,7 +15,8 @@ from scipy.linalg import expm
 
 from dnmr.errors import InputError
 from dnmr.engine.longitudinal import LongitudinalSystem, model_sites
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.fitting.matrixmethod import site_rates_from_volumes
 from dnmr.fitting.transfer import fit_transfer
 from dnmr.fitting.transferfile import Experiment, TransferData, TransferOptions
@@ -385,7 +386,7 @@ def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
     from dnmr.activation.eyring import eyring_fit
     from dnmr.fitting.spectrumfit import fit_spectrum
     from dnmr.kinetics import eyring_rate_from_enthalpy
-    from dnmr.io.readers import MeasuredSpectrum
+    from dnmr.io.measured import MeasuredSpectrum
 
     true_k = lambda t: eyring_rate_from_enthalpy(60.0, -12.0, t)  # noqa: E731
     rng = np.random.default_rng(7)

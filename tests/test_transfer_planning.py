@@ -20,7 +20,8 @@ from scipy.optimize import minimize_scalar
 
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.planning.plan import plan_experiment
 from dnmr.planning.timescale import timescale_view
 from dnmr.planning.transferplan import TYPICAL_R1_PER_S, best_mixing_time

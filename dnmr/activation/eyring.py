@@ -1122,7 +1122,7 @@ class EyringResult(NotebookView):
 
     def plot(self, figure: "Figure | None" = None) -> "Figure":
         """Eyring plot with fit, 95 % confidence band and residuals (see :func:`dnmr.reporting.plotting.plot_eyring`)."""
-        from dnmr.reporting.plotting import plot_eyring
+        from dnmr.reporting.eyringplot import plot_eyring
 
         return plot_eyring([self], figure=figure)
 

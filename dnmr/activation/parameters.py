@@ -10,7 +10,7 @@ from scipy.optimize import brentq
 
 from dnmr.errors import InputError
 from dnmr.kinetics import GAS_CONSTANT, KCAL_PER_KJ, eyring_rate_from_enthalpy
-from dnmr.model import LIMITS, Exchange
+from dnmr.modelparts import LIMITS, Exchange
 
 #: Temperatures (K) searched for the temperature at which a process reaches a given rate.
 TEMPERATURE_SEARCH_K = (20.0, 2000.0)

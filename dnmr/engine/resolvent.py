@@ -211,11 +211,6 @@ class LineshapeTerms:
         """Centre of each Lorentzian term (Hz)."""
         return self.poles.imag / TWO_PI
 
-    @property
-    def line_widths_hz(self) -> np.ndarray:
-        """Full width at half height of each Lorentzian term (Hz)."""
-        return -self.poles.real / np.pi
-
 
 def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
     """sum_k c_k / (i omega - lambda_k); one pass per line (faster than 2-D blocks in numpy)."""
@@ -365,7 +360,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     if kernels is not None:
         csr = sparse.csr_matrix(S, dtype=complex)
         alpha, beta, steps, ok = kernels.lanczos(csr.indptr, csr.indices, csr.data, q0.astype(complex), noise,
-                                                 exhausted, KRYLOV_GROWTH_LIMIT, _SEMI_ORTHOGONAL, _slice_rows(n))
+                                                 exhausted, KRYLOV_GROWTH_LIMIT, SEMI_ORTHOGONAL, _slice_rows(n))
         return (alpha[:steps], beta[:steps - 1]) if ok else None
     Q = np.zeros((n, n), dtype=complex)
     alpha = np.zeros(n, dtype=complex)
@@ -386,8 +381,8 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
             break
         length2 = np.vdot(w, w).real
         b = np.sqrt(w @ w)
-        estimate = _next_orthogonality(omega, omega_prev, alpha, beta, j, b, noise)
-        if again or np.abs(estimate[: j + 1]).max() > _SEMI_ORTHOGONAL:
+        estimate = next_orthogonality(omega, omega_prev, alpha, beta, j, b, noise)
+        if again or np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL:
             basis = Q[: j + 1]
             before = length2
             w -= _projection(basis, w)
@@ -430,17 +425,33 @@ def _slice_rows(n: int) -> int:
 _CACHE_BYTES = 1 << 19
 #: Rounding error of one Lanczos step relative to the size of the operator (unit roundoff).
 _ROUNDING = np.finfo(float).eps
-#: Estimated loss of orthogonality at which the basis is re-orthogonalised (Simon 1984).
-_SEMI_ORTHOGONAL = np.sqrt(np.finfo(float).eps)
+SEMI_ORTHOGONAL = np.sqrt(np.finfo(float).eps)
+"""Estimated loss of orthogonality (sqrt of the unit roundoff) at which the Lanczos basis is
+re-orthogonalised: the basis is kept semi-orthogonal (Simon, Math. Comp. 42, 115 (1984))."""
 
 
-def _next_orthogonality(omega: np.ndarray, omega_prev: np.ndarray, alpha: np.ndarray, beta: np.ndarray,
+def next_orthogonality(omega: np.ndarray, omega_prev: np.ndarray, alpha: np.ndarray, beta: np.ndarray,
                         j: int, b: complex, noise: np.ndarray) -> np.ndarray:
     """Estimates of q_(j+1)^T q_k (k <= j+1) from those of q_j and q_(j-1), by Simon's recurrence
 
     b w_(j+1,k) = beta_k w_(j,k+1) + (alpha_k - alpha_j) w_(j,k) + beta_(k-1) w_(j,k-1) - beta_(j-1) w_(j-1,k),
 
-    with a rounding term of the size of one step's error added to each."""
+    with a rounding term of the size of one step's error added to each; the Lanczos recursion of
+    :func:`lanczos` re-orthogonalises when one passes :data:`SEMI_ORTHOGONAL`.
+
+    Parameters
+    ----------
+    omega, omega_prev : ndarray
+        Estimates for q_j and q_(j-1) (length n + 1).
+    alpha, beta : ndarray
+        Diagonal and off-diagonal of the tridiagonal matrix so far (rad/s).
+    j : int
+        The step just taken.
+    b : complex
+        beta_j, the norm (bilinear form) of the next vector before it is scaled (rad/s).
+    noise : ndarray
+        Rounding term of each estimate.
+    """
     new = np.zeros_like(omega)
     if j:
         t = beta[:j] * omega[1:j + 1] + (alpha[:j] - alpha[j]) * omega[:j] - beta[j - 1] * omega_prev[:j]

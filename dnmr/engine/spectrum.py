@@ -10,7 +10,6 @@ import numpy as np
 from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.model import Model
-from dnmr.io.output import atomic_write_text
 from dnmr.notebook import NotebookView
 
 
@@ -73,7 +72,10 @@ class Spectrum(NotebookView):
                 f"maxima at {maxima} ppm")
 
     def to_csv(self, path: str | Path, overwrite: bool = False) -> Path:
-        """Write columns ppm, hz, intensity, dispersion (high ppm first, full precision), atomically."""
+        """Write columns ppm, hz, intensity, dispersion (high ppm first, full precision), atomically
+        (:func:`dnmr.io.output.atomic_write_text`: an existing file is replaced only with `overwrite`)."""
+        from dnmr.io.output import atomic_write_text
+
         order = slice(None, None, -1)
         rows = zip(self.ppm[order], self.hz[order], self.intensity[order], self.dispersion[order])
         lines = ["ppm,hz,intensity,dispersion"]

@@ -43,7 +43,7 @@ from math import comb
 
 import numpy as np
 
-from dnmr.kinetics import Jump, _permutation
+from dnmr.kinetics import Jump
 from dnmr.engine.liouville import CoherenceBlock, coherence_blocks, largest_block_size
 from dnmr.model import Model
 from dnmr.nuclei import nucleus
@@ -354,7 +354,7 @@ def largest_block_bound(model: Model) -> int:
     """A lower bound on the coherences of the largest block of `model`, from the counts of spins and
     groups alone (no rate, no temperature, no basis state enumerated): the coupled clusters with every
     group in its largest total-spin sector."""
-    moves = [Jump(0, 0, _permutation(model, ex), 0.0, i) for i, ex in enumerate(model.exchanges)]
+    moves = [Jump(0, 0, permutation, 0.0, i) for i, permutation in enumerate(model.exchange_permutations())]
     names = model.all_spins
     return max((largest_block_size(tuple(model.group_size(names[i]) + 1 for i in cluster))
                 for cluster in clusters(model, coupling_array(model), moves)), default=0)

@@ -24,7 +24,8 @@ from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
 from dnmr.fitting.problem import FitProblem
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
-from dnmr.model import Model, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import parse_coupling_key
 
 TREND_DEGREES = {"constant": 0, "linear": 1, "quadratic": 2}
 TREND_SUFFIXES = ("", "_per_k", "_per_k2")

@@ -15,7 +15,7 @@ import numpy as np
 from dnmr.activation.eyring import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.fitting.globalquality import SpectrumQuality
-from dnmr.fitting.series import Series
+from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.formatting import format_with_error
 from dnmr.io.output import atomic_write_text, json_ready, save_figure

@@ -21,7 +21,8 @@ import lmfit
 import numpy as np
 
 from dnmr.errors import InputError, did_you_mean
-from dnmr.model import Model, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import parse_coupling_key
 
 SETTING_KEYS = ("start", "fixed", "lower", "upper", "same_as", "times", "plus", "stderr")
 RENAMED_SETTINGS = {

@@ -299,7 +299,7 @@ class Posterior(NotebookView):
         figure : matplotlib Figure, optional
             Figure to draw into.
         """
-        from dnmr.reporting.plotting import plot_posterior_pairs
+        from dnmr.reporting.posteriorplot import plot_posterior_pairs
 
         names = list(names or self.shown)
         index = [self._index(n) for n in names]

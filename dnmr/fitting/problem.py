@@ -22,7 +22,7 @@ from dnmr.engine.blocks import lineshape_terms
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout, parameter_stderr
 from dnmr.fitting.ranges import ppm_regions
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.io.measured import MeasuredSpectrum
 
 NOISE_SEGMENT_POINTS = 64
 """Points per segment when detrending signal-free regions for the noise estimate."""

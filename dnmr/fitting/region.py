@@ -7,7 +7,9 @@ from pathlib import Path
 
 from dnmr.engine.blocks import default_window_ppm
 from dnmr.errors import InputError
-from dnmr.io.readers import MIN_POINTS, MeasuredSpectrum, read_spectrum
+from dnmr.io.readers import read_spectrum
+from dnmr.io.measured import MeasuredSpectrum
+from dnmr.io.measured import MIN_POINTS
 from dnmr.model import Model
 
 

@@ -138,7 +138,7 @@ class ReferenceLine:
     def model(self, spectrometer, linewidth_hz: float) -> Model:
         """The reference line as a model without exchange (its partners as a group of a heteronucleus of
         their spin, which gives the same first-order multiplet)."""
-        from dnmr.model import State
+        from dnmr.modelparts import State
 
         count, spin = MULTIPLICITIES[self.multiplicity]
         observed = spectrometer.isotope.symbol

@@ -83,7 +83,7 @@ from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_sh
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
 from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
-from dnmr.io.readers import MeasuredSpectrum
+from dnmr.io.measured import MeasuredSpectrum
 from dnmr.model import Model
 from dnmr.notebook import NotebookView
 

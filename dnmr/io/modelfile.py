@@ -13,7 +13,8 @@ from typing import Any
 
 from dnmr.errors import InputError, did_you_mean
 from dnmr.io.inputfiles import read_input_bytes
-from dnmr.model import Exchange, Model, Spectrometer, State
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, Spectrometer, State
 
 if sys.version_info >= (3, 11):
     import tomllib

@@ -14,6 +14,20 @@ import numpy as np
 from dnmr.errors import InputError
 
 
+def os_error_text(err: OSError) -> str:
+    """One line for a failed file operation: the file, what went wrong, and what to do (the writes here are
+    atomic, so nothing half-written is left behind)."""
+    import errno
+
+    what = err.strerror or type(err).__name__
+    place = err.filename if err.filename is not None else "a file"
+    advice = {errno.ENOSPC: "free some space and run again", errno.EDQUOT: "free some space and run again",
+              errno.EROFS: "write the results to another folder", errno.EACCES: "check the permissions or "
+              "write the results elsewhere", errno.EPERM: "check the permissions or write the results elsewhere"}
+    hint = advice.get(err.errno, "check the disk and the path")
+    return f"{place}: {what}; {hint} (nothing half-written is left behind)"
+
+
 def _refuse_existing(path: Path, overwrite: bool) -> None:
     if (path.exists() or path.is_symlink()) and not overwrite:
         raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
@@ -143,6 +157,39 @@ def figure_file(path: str | Path) -> Path:
     return path.with_suffix("." + chosen_figure_format()) if path.suffix.lower() == ".png" else path
 
 
+def figure_bytes(fig, image_format: str = "png", dpi: int = 150, *, close: bool = False,
+                 software_tag: bool = True) -> bytes:
+    """A matplotlib figure rendered as the bytes of an image file, cropped to what is drawn: the one place
+    dnmr renders figures (:func:`save_figure` writes them, the HTML report and the notebook embed them).
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+        The figure.
+    image_format : str
+        ``"png"``, ``"svg"``, ``"pdf"`` ... (see :data:`FIGURE_FORMATS`).
+    dpi : int
+        Resolution (dots per inch) of raster formats.
+    close : bool
+        Close the figure afterwards (also when rendering fails).
+    software_tag : bool
+        False leaves out the PNG's "Software" entry (matplotlib's version), so that the image depends on
+        the figure alone.
+    """
+    import io
+
+    buffer = io.BytesIO()
+    try:
+        fig.savefig(buffer, format=image_format, dpi=dpi, bbox_inches="tight",
+                    **({} if software_tag else {"metadata": {"Software": None}}))
+    finally:
+        if close:
+            import matplotlib.pyplot as plt
+
+            plt.close(fig)
+    return buffer.getvalue()
+
+
 def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False) -> Path:
     """Save a matplotlib figure atomically (format from the file suffix; ``.png`` follows :func:`figures_as`).
 
@@ -160,13 +207,10 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
         Close the figure afterwards (also when writing fails), as the command line does with the figures
         it only saves; a figure that a notebook goes on showing stays open (the default).
     """
-    import io
-
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        buf = io.BytesIO()
-        fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
-        return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+        data = figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi)
+        return atomic_write_bytes(path, data, overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt

@@ -58,8 +58,10 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.errors import InputError
-from dnmr.io.readers import MAX_POINTS, MIN_POINTS, RAW_FORMATS, MeasuredSpectrum, _assemble, _reconcile_frequency
+from dnmr.io.measured import MAX_POINTS, MIN_POINTS, MeasuredSpectrum, assemble_spectrum, reconcile_frequency
 
+RAW_FORMATS = ("bruker-fid", "varian-fid")
+"""Raw FID formats, read and processed here."""
 PIPE_MAGIC = 2.345
 """The number NMRPipe writes as the third float of its header (its byte-order check)."""
 DC_TAIL_FRACTION = 1 / 8
@@ -378,7 +380,7 @@ def process(fid: FID, options: ProcessingOptions | None = None, *, source: str |
         apodization's exact addition to every full width at half height) and notes.
     """
     options = options or ProcessingOptions()
-    frequency_mhz = _reconcile_frequency(fid.reference_mhz, frequency_mhz, "reference frequency")
+    frequency_mhz = reconcile_frequency(fid.reference_mhz, frequency_mhz, "reference frequency")
     data, dwell, delay = np.array(fid.data, dtype=complex), fid.dwell_s, fid.group_delay_points
     steps = [{"step": "read", "format": fid.format, "points": data.size, "spectral_width_hz": fid.spectral_width_hz,
               "acquisition_time_s": data.size * dwell, "group_delay_points": delay,
@@ -422,7 +424,7 @@ def process(fid: FID, options: ProcessingOptions | None = None, *, source: str |
                      f"linewidth_hz include it (intrinsic width = fitted - {lb:g} Hz); rates are unaffected")
     metadata = {"nucleus": fid.metadata.get("nucleus"), "temperature_k": fid.metadata.get("temperature_k"),
                 "referenced_by": fid.metadata.get("referenced_by"), "processing": record}
-    return _assemble(ppm, spectrum.real, frequency_mhz, Path(source or fid.source), fid.format, metadata,
+    return assemble_spectrum(ppm, spectrum.real, frequency_mhz, Path(source or fid.source), fid.format, metadata,
                      lambda i: f"spectrum point {i + 1}")
 
 
@@ -489,9 +491,9 @@ def read_pipe(path: Path, frequency_mhz: float | None = None, axis: str | None =
     obs = float(dic.get("FDF2OBS", 0.0))
     if not obs > 0:
         raise InputError("the header has no observe frequency", where="header FDF2OBS")
-    frequency_mhz = _reconcile_frequency(obs, frequency_mhz, "header FDF2OBS")
+    frequency_mhz = reconcile_frequency(obs, frequency_mhz, "header FDF2OBS")
     ppm = pipe.make_uc(dic, data).ppm_scale()
     metadata = {"nucleus": (dic.get("FDF2LABEL") or "").strip() or None, "sw_hz": float(dic.get("FDF2SW", 0.0)),
                 "origin_hz": float(dic.get("FDF2ORIG", 0.0))}
-    return _assemble(np.asarray(ppm, float), np.real(data).astype(float), frequency_mhz, path, "nmrpipe", metadata,
+    return assemble_spectrum(np.asarray(ppm, float), np.real(data).astype(float), frequency_mhz, path, "nmrpipe", metadata,
                      lambda i: f"spectrum point {i + 1}")

@@ -8,11 +8,15 @@ from __future__ import annotations
 
 import sys
 import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import TextIO
 
 #: Tasks of many small steps (engine blocks, optimiser evaluations) write a plain line at most this often (s).
 PLAIN_INTERVAL_S = 10.0
+#: Simulations with at least this many coherences show a progress bar.
+LARGE_SYSTEM_COHERENCES = 2000
 
 
 def elapsed_text(seconds: float) -> str:
@@ -124,6 +128,27 @@ class ProgressReport:
         if self.bar is not None:
             self.bar.update(task, total=self._tasks[task].done)
         self.refresh()
+
+
+@contextmanager
+def block_progress(enabled: bool) -> Iterator[Callable[[int, int], None]]:
+    """Progress over the engine's blocks on stderr, for systems of at least :data:`LARGE_SYSTEM_COHERENCES`
+    coherences: a bar on a terminal, else plain lines; yields the ``progress(done, total)`` that
+    :func:`dnmr.engine.spectrum.simulate` calls after each block."""
+    with ProgressReport(enabled) as report:
+        task, shown = None, 0
+
+        def advance(done: int, total: int) -> None:
+            nonlocal task, shown
+            if total < LARGE_SYSTEM_COHERENCES:
+                return
+            if task is None:
+                task = report.add_task("simulating", total, unit="coherences", interval_s=PLAIN_INTERVAL_S)
+            report.advance(task, steps=done - shown)
+            report.refresh()
+            shown = done
+
+        yield advance
 
 
 def _is_terminal(stream: TextIO) -> bool:

@@ -42,7 +42,9 @@ import numpy as np
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.engine.blocks import lineshape_terms
 from dnmr.kinetics import coalescence_rate_per_s
-from dnmr.model import Exchange, Model, State, coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import Exchange, State
+from dnmr.modelparts import coupling_key
 from dnmr.planning.conditions import (at_field, checked_fields, populations_follow_temperature, process_activations,
                                       solve_temperature)
 from dnmr.planning.pairs import ExchangingPair, PairAtField, exchanging_pairs

@@ -13,7 +13,8 @@ from collections.abc import Callable, Sequence
 
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.errors import InputError
-from dnmr.model import Model, Spectrometer
+from dnmr.model import Model
+from dnmr.modelparts import Spectrometer
 
 def process_activations(model: Model, activation: ActivationParameters | None = None,
                         process: str | None = None) -> dict[int, ActivationParameters]:

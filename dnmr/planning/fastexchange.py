@@ -18,7 +18,9 @@ from itertools import combinations
 import numpy as np
 
 from dnmr.errors import InputError
-from dnmr.model import Model, State, coupling_key, parse_coupling_key
+from dnmr.model import Model
+from dnmr.modelparts import State, parse_coupling_key
+from dnmr.modelparts import coupling_key
 from dnmr.planning.pairs import COUPLING_TOLERANCE_HZ
 
 #: Shifts closer than this (ppm) are taken as equal.

@@ -18,7 +18,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dnmr.model import Exchange, Model
+from dnmr.model import Model
+from dnmr.modelparts import Exchange
 
 #: Couplings closer than this (Hz) are taken as equal.
 COUPLING_TOLERANCE_HZ = 1e-6

@@ -37,6 +37,8 @@ from dnmr.io.output import atomic_write_text
 
 #: The folder, inside a results folder, that holds the supporting-information tables.
 SUPPORTING_FOLDER = "supporting-information"
+#: The file name of the HTML report (``dnmr report``), beside which its tables go (:func:`supporting_folder`).
+REPORT_NAME = "report.html"
 RATES_STEM, ACTIVATION_STEM, TABLES_STEM = "si_rates", "si_activation", "si_tables"
 BOUND_STATUSES = ("upper-bound", "lower-bound", "interval")
 
@@ -416,3 +418,10 @@ def write_supporting_tables(folder: str | Path, rates: Sequence[SupportingRate],
             if (folder / name).exists():
                 raise InputError(f"{folder / name} already exists; pass --overwrite to replace it", where="output")
     return [atomic_write_text(folder / name, text, overwrite=overwrite) for name, text in texts.items()]
+
+
+def supporting_folder(report: Path) -> Path:
+    """The folder of a report's supporting-information tables: ``supporting-information`` beside report.html,
+    ``<name>-supporting-information`` beside a report of another name (each report keeps its own)."""
+    name = SUPPORTING_FOLDER if report.name == REPORT_NAME else f"{report.stem}-{SUPPORTING_FOLDER}"
+    return report.parent / name
