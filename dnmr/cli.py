@@ -192,7 +192,7 @@ def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, wor
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
     """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
     from dnmr.fitting.globalfit import fit_series_global
-    from dnmr.activation.thermometry import read_temperature_calibration
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
@@ -276,7 +276,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     from dnmr.activation.eyring import eyring_fit_file, results_to_dict
     from dnmr.io.output import save_figure
     from dnmr.reporting.eyringplot import plot_eyring
-    from dnmr.activation.thermometry import read_temperature_calibration
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
 
     if posterior:
         from dnmr.fitting.posterior import require_emcee
@@ -359,7 +359,7 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
@@ -382,7 +382,8 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
     from dnmr.io.output import atomic_write_text
-    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, calibration_from_spectra
+    from dnmr.activation.temperature_calibration import calibration_from_spectra
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:

@@ -99,13 +99,13 @@ from dnmr.kinetics import (
 )
 from dnmr.io.tables import check_kelvin, read_table
 from dnmr.notebook import NotebookView
-from dnmr.activation.thermometry import TemperatureErrors
+from dnmr.activation.temperature_errors import TemperatureErrors
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
     from dnmr.fitting.posterior import Posterior
-    from dnmr.activation.thermometry import TemperatureCalibration
+    from dnmr.activation.temperature_calibration import TemperatureCalibration
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
@@ -1352,7 +1352,7 @@ def eyring_fit_file(
         Standard error (K) of an unknown offset of the probe's temperature, shared by every row.
     calibration : TemperatureCalibration, optional
         The table's temperatures are set-points; replace them by calibrated sample temperatures and carry
-        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.activation.thermometry`).
+        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.activation.temperature_calibration`).
     flagged_rows : {"exclude", "widen"}
         Rows whose fit is flagged as a misfit or as shaped by a nuisance parameter at a limit: set aside
         (default) or fitted with widened errors (see the module notes).

@@ -99,7 +99,7 @@ from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 if TYPE_CHECKING:  # pragma: no cover
-    from dnmr.activation.thermometry import TemperatureCalibration
+    from dnmr.activation.temperature_calibration import TemperatureCalibration
 
 
 def _prepare(outdir: Path, overwrite: bool) -> None:
