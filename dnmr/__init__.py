@@ -17,7 +17,11 @@ import importlib.util
 #: statistics scipy.stats).
 _HOMES = {
     "activation.parameters": ("ActivationParameters",),
-    "activation.eyring": ("EyringResult", "coalescence_barrier", "eyring_fit", "eyring_fit_file", "read_rates"),
+    "activation.coalescence": ("coalescence_barrier",),
+    "activation.eyring": ("eyring_fit", "eyring_fit_file"),
+    "activation.eyring_result": ("EyringResult",),
+    "activation.posterior": ("sample_eyring_posterior",),
+    "activation.rate_table": ("read_rates",),
     "errors": ("InputError",),
     "fitting.spectrumfit": ("FitOptions", "SpectrumFit", "fit_parameters", "fit_spectrum"),
     "fitting.rates": ("RateEstimate",),
@@ -29,7 +33,8 @@ _HOMES = {
     "io.readers": ("read_spectrum",),
     "planning.coalescence": ("coalescence", "predict_coalescence"),
     "planning.plan": ("plan_experiment",),
-    "fitting.posterior": ("Posterior", "sample_eyring_posterior", "sample_spectrum_posterior"),
+    "fitting.posterior": ("sample_spectrum_posterior",),
+    "posterior": ("Posterior",),
     "fitting.series": ("SeriesFit", "fit_series"),
     "fitting.seriesfile": ("Series", "load_series"),
     "planning.solvents": ("Solvent", "load_solvents", "solvent"),

@@ -167,7 +167,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
     if posterior:
-        from dnmr.fitting.posterior import require_emcee
+        from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
     series = load_series(series_file)
@@ -279,7 +279,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     from dnmr.activation.temperature_calibration import read_temperature_calibration
 
     if posterior:
-        from dnmr.fitting.posterior import require_emcee
+        from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
     calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None

@@ -84,7 +84,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import optimize
 
-from dnmr.activation.eyring import EyringResult, eyring_fit_file
+from dnmr.activation.eyring import eyring_fit_file
+from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment

@@ -8,7 +8,7 @@ import platform
 import time
 from pathlib import Path
 
-from dnmr.activation.eyring import EyringResult
+from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 from dnmr.errors import InputError
 from dnmr.fitting.seriesoutput import file_sha256
