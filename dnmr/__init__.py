@@ -22,6 +22,7 @@ _HOMES = {
     "activation.eyring_result": ("EyringResult",),
     "activation.posterior": ("sample_eyring_posterior",),
     "activation.rate_table": ("read_rates",),
+    "activation.study": ("EyringStudy", "run_eyring"),
     "errors": ("InputError",),
     "fitting.spectrumfit": ("FitOptions", "SpectrumFit", "fit_parameters", "fit_spectrum"),
     "fitting.rates": ("RateEstimate",),

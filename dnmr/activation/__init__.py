@@ -4,6 +4,7 @@
 * line_fit — the Eyring and Arrhenius lines by generalised least squares with temperature errors;
 * eyring, eyring_result, eyring_report — the Eyring analysis, its result and its readable report;
 * posterior — posterior samples of ΔH‡ and ΔS‡ (optional emcee);
+* study — the whole analysis in one call (``dnmr eyring``: posteriors, figures, tables);
 * coalescence — a quick ΔG‡ from a coalescence temperature;
 * thermometers, temperature_calibration, temperature_errors — sample temperatures from shift
   thermometers, set-point calibrations, and the independent and shared errors of temperatures;
