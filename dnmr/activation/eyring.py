@@ -248,10 +248,10 @@ def eyring_fit_file(
         Standard error (K) of an unknown offset of the probe's temperature, shared by every row.
     calibration : TemperatureCalibration, optional
         The table's temperatures are set-points; replace them by calibrated sample temperatures and carry
-        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.activation.thermometry`).
+        the calibration's (shared) uncertainty into the fit (see :mod:`dnmr.activation.temperature_calibration`).
     flagged_rows : {"exclude", "widen"}
         Rows whose fit is flagged as a misfit or as shaped by a nuisance parameter at a limit: set aside
-        (default) or fitted with widened errors (see the module notes).
+        (default) or fitted with widened errors (see :mod:`dnmr.activation.rate_table`).
     **options
         Passed to :func:`eyring_fit_series`.
 

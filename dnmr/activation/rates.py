@@ -25,7 +25,8 @@ MAX_RELATIVE_TEMPERATURE_ERROR = 0.2
 
 @dataclass(frozen=True)
 class SetAsideRow:
-    """A rate of a fit table that was not fitted because its fit is flagged (see the module notes).
+    """A rate of a fit table that was not fitted because its fit is flagged (see
+    :mod:`dnmr.activation.rate_table`).
 
     Attributes
     ----------
