@@ -33,7 +33,7 @@ from dnmr.fitting.globalproblem import Treatment
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
-from dnmr.activation.thermometry import read_temperature_calibration
+from dnmr.activation.temperature_calibration import read_temperature_calibration
 
 DEMO = Path(dnmr.__file__).parent / "data" / "demo"
 

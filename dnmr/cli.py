@@ -6,7 +6,6 @@ Every command turns :class:`dnmr.errors.InputError` into one line on stderr and 
 from __future__ import annotations
 
 import json
-import re
 import sys
 import traceback
 from pathlib import Path
@@ -167,7 +166,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
     if posterior:
-        from dnmr.fitting.posterior import require_emcee
+        from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
     series = load_series(series_file)
@@ -192,7 +191,7 @@ def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, wor
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
     """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
     from dnmr.fitting.globalfit import fit_series_global
-    from dnmr.activation.thermometry import read_temperature_calibration
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
 
     if resume:
         raise InputError("--resume is not available with --global", where="--resume")
@@ -273,69 +272,22 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
     With --json the first (or only) process's results are at the top level and, for several processes,
     all of them are listed under "processes"; --posterior adds a "posterior" object to each.
     """
-    from dnmr.activation.eyring import eyring_fit_file, results_to_dict
-    from dnmr.io.output import save_figure
-    from dnmr.reporting.eyringplot import plot_eyring
-    from dnmr.activation.thermometry import read_temperature_calibration
+    from dnmr.activation.study import run_eyring
 
-    if posterior:
-        from dnmr.fitting.posterior import require_emcee
-
-        require_emcee(where="--posterior")
-    calibration = read_temperature_calibration(calibration_file, calibration_degree) if calibration_file else None
-    results = eyring_fit_file(list(rates_files), process=process, temperature_stderr=temperature_stderr,
-                              temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
-                              scale_errors=scale_errors or None, transmission=transmission, calibration=calibration)
-    posteriors = [r.sample_posterior(steps=posterior_steps, seed=posterior_seed) for r in results] if posterior else []
-    figures = [plot_file] + [_posterior_figure_path(plot_file, r.process, len(results)) for r in results[:len(posteriors)]] \
-        if plot_file else []
-    for figure in figures if not overwrite else ():  # refuse before writing any of them
-        if figure.exists():
-            raise InputError(f"{figure} already exists; choose another name or pass --overwrite", where="--plot")
-    if plot_file:
-        save_figure(plot_eyring(results), plot_file, overwrite=overwrite, close=True)
-        for post, figure in zip(posteriors, figures[1:]):
-            save_figure(post.plot(), figure, overwrite=overwrite, close=True)
+    study = run_eyring(rates_files, process=process, temperature_stderr=temperature_stderr,
+                       temperature_offset_stderr=temperature_offset_stderr, flagged_rows=flagged_rows,
+                       scale_errors=scale_errors or None, transmission=transmission, calibration=calibration_file,
+                       calibration_degree=calibration_degree, posterior=posterior, posterior_steps=posterior_steps,
+                       posterior_seed=posterior_seed, plot_file=plot_file, tables_folder=tables_folder,
+                       overwrite=overwrite)
     if as_json:
-        out = results_to_dict(results)
-        pairs = list(zip(out.get("processes", []), posteriors))
-        for entry, post in ([(out, posteriors[0])] if posteriors else []) + pairs:
-            entry["posterior"] = post.to_dict()
-        if calibration is not None:
-            out["calibration"] = calibration.to_dict()
-        print_json(out)
+        print_json(study.to_dict())
     else:
-        parts = ([calibration.report()] if calibration is not None else []) + [r.report() for r in results]
-        click.echo("\n\n".join(parts + [post.report() for post in posteriors]))
-    for figure in figures:
+        click.echo(study.report())
+    for figure in study.figures:
         click.echo(f"wrote {figure}", err=as_json)
     if tables_folder is not None:
-        _write_eyring_tables(tables_folder, rates_files, results, calibration, transmission, overwrite, as_json)
-
-
-def _write_eyring_tables(folder: Path, rates_files: tuple[Path, ...], results, calibration, transmission: float,
-                         overwrite: bool, as_json: bool) -> None:
-    """`dnmr eyring --tables`: the supporting-information tables of the rate tables and their analysis."""
-    import csv
-
-    from dnmr.reporting.supporting import activation_rows, rate_rows_from_table, write_supporting_tables
-
-    if transmission != 1.0:
-        raise InputError("the tables give ΔG‡ at each temperature with transmission coefficient 1; drop "
-                         "--transmission or --tables", where="--tables")
-    rows = []
-    for rates_file in rates_files:
-        with open(rates_file, newline="", encoding="utf-8-sig") as fh:
-            rows += list(csv.DictReader(line for line in fh if not line.lstrip().startswith("#")))
-    written = write_supporting_tables(folder, rate_rows_from_table(rows, calibration), activation_rows(results),
-                                      overwrite=overwrite)
-    click.echo(f"wrote {', '.join(str(p) for p in written)}", err=as_json)
-
-
-def _posterior_figure_path(plot_file: Path, process: str, processes: int) -> Path:
-    """The pairwise posterior figure beside --plot FILE: FILE_posterior.png, or FILE_posterior_<process>.png for several."""
-    tag = "_" + re.sub(r"\W", "_", process) if processes > 1 else ""
-    return plot_file.with_name(f"{plot_file.stem}_posterior{tag}{plot_file.suffix}")
+        click.echo(f"wrote {', '.join(str(p) for p in study.tables)}", err=as_json)
 
 
 @cli.command()
@@ -359,7 +311,7 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
@@ -382,7 +334,8 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
     from dnmr.io.output import atomic_write_text
-    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, calibration_from_spectra
+    from dnmr.activation.temperature_calibration import calibration_from_spectra
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:

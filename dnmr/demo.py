@@ -18,7 +18,7 @@ from dnmr.planning.plan import plan_experiment
 from dnmr.reporting.report import write_report
 from dnmr.fitting.series import fit_series
 from dnmr.planning.solvents import solvent
-from dnmr.activation.thermometry import read_temperature_calibration
+from dnmr.activation.temperature_calibration import read_temperature_calibration
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.timescale import timescale_view
 

@@ -18,16 +18,10 @@ from click.testing import CliRunner
 from scipy import constants, stats
 from statsmodels.stats.outliers_influence import OLSInfluence
 
-from dnmr.activation.eyring import (
-    BASIS_GIVEN,
-    BASIS_SCALED,
-    BASIS_SCATTER,
-    COALESCENCE_CAVEAT,
-    coalescence_barrier,
-    eyring_fit,
-    eyring_fit_file,
-    read_rates,
-)
+from dnmr.activation.coalescence import COALESCENCE_CAVEAT, coalescence_barrier
+from dnmr.activation.eyring import eyring_fit, eyring_fit_file
+from dnmr.activation.line_fit import BASIS_GIVEN, BASIS_SCALED, BASIS_SCATTER
+from dnmr.activation.rate_table import read_rates
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK, eyring_rate

@@ -54,7 +54,7 @@ def warm_imports():
     """Import what the commands import lazily once here, so that each forked child does not again."""
     import matplotlib.pyplot  # noqa: F401
 
-    import dnmr.activation.eyring, dnmr.reporting.plotting, dnmr.reporting.report, dnmr.fitting.series, dnmr.activation.thermometry  # noqa: F401, E401
+    import dnmr.activation.study, dnmr.reporting.plotting, dnmr.reporting.report, dnmr.fitting.series, dnmr.activation.temperature_calibration  # noqa: F401, E401
 
 
 def run_limited(args: list[str]) -> tuple[str, int, str]:

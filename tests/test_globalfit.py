@@ -29,7 +29,7 @@ from dnmr.fitting.globalfit import fit_global_from_two_step, fit_series_global
 from dnmr.fitting.globalproblem import Treatment
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
-from dnmr.activation.thermometry import fit_temperature_calibration
+from dnmr.activation.temperature_calibration import fit_temperature_calibration
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 55.0, -12.0  # invented

@@ -17,7 +17,9 @@ from click.testing import CliRunner
 from matplotlib.colors import to_hex
 from scipy import constants
 
-from dnmr.activation.eyring import eyring_fit_file, method_offset, read_rates
+from dnmr.activation.eyring import eyring_fit_file
+from dnmr.activation.eyring_result import method_offset
+from dnmr.activation.rate_table import read_rates
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.reporting.eyringplot import plot_eyring

@@ -31,7 +31,9 @@ from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.model import Model
 from dnmr.modelparts import Exchange, Spectrometer, State
-from dnmr.fitting.posterior import INSTALL_HINT, sample_eyring_posterior, sample_spectrum_posterior
+from dnmr.activation.posterior import sample_eyring_posterior
+from dnmr.fitting.posterior import sample_spectrum_posterior
+from dnmr.posterior import INSTALL_HINT
 from dnmr.io.measured import MeasuredSpectrum
 
 R, KB, H = constants.R, constants.k, constants.h

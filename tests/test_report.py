@@ -208,7 +208,7 @@ def test_calibration_moves_the_temperatures(fitted, tmp_path):
     cal = tmp_path / "cal.csv"
     cal.write_text("setpoint_k,temperature_k\n180,182.5\n250,251.5\n300,301.0\n350,350.5\n")
     text = write_report(fitted, calibration=cal, output=tmp_path / "r.html").read_text(encoding="utf-8")
-    from dnmr.activation.thermometry import read_temperature_calibration
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
 
     expected = eyring_fit_file(fitted / "rates.csv", calibration=read_temperature_calibration(cal))[0]
     assert parse(text).parameters["enthalpy_kj_mol"][0] == pytest.approx(expected.enthalpy_kj_mol, rel=1e-12)
@@ -270,7 +270,8 @@ def _text_outside_figures(text: str) -> str:
 
 
 def test_calibrated_report_shows_sample_temperature_beside_set_point(fitted, tmp_path):
-    from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, read_temperature_calibration
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     (tmp_path / "cal.csv").write_text(CALIBRATION)
     text = write_report(fitted, calibration=tmp_path / "cal.csv", output=tmp_path / "r.html").read_text(encoding="utf-8")

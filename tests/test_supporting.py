@@ -29,7 +29,7 @@ from dnmr.reporting.supporting import (
     tables_markdown,
     write_supporting_tables,
 )
-from dnmr.activation.thermometry import fit_temperature_calibration
+from dnmr.activation.temperature_calibration import fit_temperature_calibration
 from reference_eyring import eyring_rate
 
 

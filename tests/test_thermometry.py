@@ -1,4 +1,5 @@
-"""Tests of dnmr.activation.thermometry: shift thermometers, reading them from spectra, set-point calibrations.
+"""Tests of dnmr.activation.thermometers and .temperature_calibration: shift thermometers, reading them from
+spectra, set-point calibrations.
 
 Calibration formulas: Ammann, Meier & Merbach, J. Magn. Reson. 46, 319 (1982) (from memory, as given in
 PHYSICS.md); the older methanol fit of Raiford, Fisk & Becker, Anal. Chem. 51, 2050 (1979) (from memory).
@@ -19,13 +20,12 @@ from click.testing import CliRunner
 from dnmr.activation.eyring import eyring_fit_file
 from dnmr.cli import cli
 from dnmr.errors import InputError
-from dnmr.activation.thermometry import (
+from dnmr.activation.temperature_calibration import fit_temperature_calibration, read_temperature_calibration
+from dnmr.activation.thermometers import (
     ETHYLENE_GLYCOL,
     METHANOL,
     THERMOMETER_CAUTIONS,
-    fit_temperature_calibration,
     get_thermometer,
-    read_temperature_calibration,
     temperature_from_file,
     temperature_from_spectrum,
     thermometer_reading,

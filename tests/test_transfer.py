@@ -322,7 +322,7 @@ def test_command_writes_the_rates_table_that_eyring_reads(tmp_path):
 
     from click.testing import CliRunner
 
-    from dnmr.activation.eyring import read_rates
+    from dnmr.activation.rate_table import read_rates
     from dnmr.cli import cli
     from dnmr.fitting.seriesoutput import RATE_COLUMNS
 

@@ -84,7 +84,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import optimize
 
-from dnmr.activation.eyring import EyringResult, eyring_fit_file
+from dnmr.activation.eyring import eyring_fit_file
+from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
@@ -99,7 +100,7 @@ from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 if TYPE_CHECKING:  # pragma: no cover
-    from dnmr.activation.thermometry import TemperatureCalibration
+    from dnmr.activation.temperature_calibration import TemperatureCalibration
 
 
 def _prepare(outdir: Path, overwrite: bool) -> None:

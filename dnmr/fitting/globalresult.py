@@ -12,7 +12,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from dnmr.activation.eyring import EyringResult
+from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.fitting.globalquality import SpectrumQuality
 from dnmr.fitting.seriesfile import Series

@@ -272,7 +272,7 @@ def fit_series(
         With ``exit_status`` 0 (all fitted), 2 (a spectrum failed for bad input) or 1 (a fit failed).
     """
     if posterior is not None:
-        from dnmr.fitting.posterior import require_emcee
+        from dnmr.posterior import require_emcee
 
         require_emcee(where="posterior")
     series = series if isinstance(series, Series) else load_series(series)

@@ -88,7 +88,7 @@ from dnmr.model import Model
 from dnmr.notebook import NotebookView
 
 if TYPE_CHECKING:  # pragma: no cover
-    from dnmr.fitting.posterior import Posterior
+    from dnmr.posterior import Posterior
 
 PHASE_MODES = ("none", "zero-order", "first-order")
 LINEWIDTH_MODES = ("fixed", "shared", "per-state")

@@ -56,8 +56,8 @@ import re
 from collections.abc import Sequence
 from pathlib import Path
 
-from dnmr.activation.eyring import EyringResult
-from dnmr.activation.thermometry import TemperatureCalibration
+from dnmr.activation.eyring_result import EyringResult
+from dnmr.activation.temperature_calibration import TemperatureCalibration
 from dnmr.errors import InputError
 from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as, save_figure
 from dnmr.reporting.globalreport import GLOBAL_NAME, global_document, read_global

@@ -10,8 +10,9 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from dnmr.activation.eyring import EyringResult, eyring_fit_file
-from dnmr.activation.thermometry import TemperatureCalibration, read_temperature_calibration
+from dnmr.activation.eyring import eyring_fit_file
+from dnmr.activation.eyring_result import EyringResult
+from dnmr.activation.temperature_calibration import TemperatureCalibration, read_temperature_calibration
 from dnmr.errors import InputError
 from dnmr.fitting.seriesoutput import file_sha256
 from dnmr.io.modelfile import load_model

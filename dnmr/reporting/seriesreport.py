@@ -8,8 +8,8 @@ import platform
 import time
 from pathlib import Path
 
-from dnmr.activation.eyring import EyringResult
-from dnmr.activation.thermometry import THERMOMETER_CAUTIONS
+from dnmr.activation.eyring_result import EyringResult
+from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 from dnmr.errors import InputError
 from dnmr.fitting.seriesoutput import file_sha256
 from dnmr.formatting import format_with_error, table_number

@@ -28,7 +28,7 @@ OUT = script_output_folder("temperature_calibration-output", SCRIPT)  # never am
 import numpy as np
 
 import dnmr
-from dnmr.activation.thermometry import THERMOMETER_CAUTIONS, get_thermometer
+from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, get_thermometer
 
 print(THERMOMETER_CAUTIONS)  # read these before using the thermometer tubes
 rng = np.random.default_rng(20261203)

@@ -1,0 +1,317 @@
+"""Straight lines in 1/T through rates: the Eyring and Arrhenius fits with rate and temperature errors.
+
+Method
+------
+The Eyring equation k = kappa (kB T / h) exp(ΔS‡/R) exp(-ΔH‡/RT) is a straight line
+
+    ln(k/T) = [ln(kappa kB / h) + ΔS‡/R] - (ΔH‡/R) (1/T),
+
+fitted by generalised least squares: the residuals of ln(k/T) have the covariance
+
+    V = diag(sigma_i^2) + G C_T G,   sigma_i = rate_stderr_i / rate_i (the standard error of ln k_i),
+
+where C_T is the covariance of the temperatures (K^2) and G = diag(dr_i/dT_i), dr/dT = -1/T + slope/T^2
+the change of a point's residual with its temperature (linearised; iterated with the slope, effective
+variance). The estimate is (X^T V^-1 X)^-1 X^T V^-1 y with covariance (X^T V^-1 X)^-1, and the
+goodness of fit is chi-square = r^T V^-1 r with n - 2 degrees of freedom. ΔH‡ = -R * slope,
+ΔS‡ = R * (intercept - ln(kappa kB/h)); ΔG‡(T) = ΔH‡ - T ΔS‡ with its standard error from the full
+covariance of slope and intercept. The Arrhenius line ln k = ln A - Ea/(RT) is fitted the same way.
+Energies in kJ/mol (kcal/mol alongside), entropies in J/(mol K).
+
+Temperature errors
+------------------
+C_T = diag(independent^2) + F F^T: an independent error per point (a ``temperature_stderr`` column or
+value, the scatter of a calibration's points about its curve) plus a few *shared* columns F — the
+uncertainty of a calibration curve (one column per coefficient) and an unknown probe offset
+(``temperature_offset_stderr``: one column, the same in every row). A shared error moves every point
+together; it is not scatter and does not inflate the chi-square. C_T is never formed as a dense n x n
+matrix: V^-1 is applied by the Woodbury identity, so a table of thousands of rows costs a few vectors.
+Because the estimate is linear in the data, its covariance splits exactly into the shares of the rates,
+of the independent temperature errors and of each shared source (``error_shares``).
+
+Standard errors
+---------------
+* Rate errors given (every rate has ``rate_stderr``): the errors are taken at face value (covariance not
+  rescaled) and the reduced chi-square is reported with its p-value; a poor value raises a warning.
+  ``scale_errors=True`` multiplies the covariance by the reduced chi-square instead.
+* No rate errors: ordinary least squares, and the rate part of the errors comes from the residual scatter
+  (needs at least 3 rates; with 2 the errors are reported as not determined). That scatter already holds
+  the independent temperature errors, so only the shared ones are added (through the same linear map).
+
+Residuals
+---------
+Outliers are flagged by studentised residuals (beyond 3 standard deviations by default, common
+practice; judged one at a time so that one gross outlier does not make its neighbours look bad), never
+removed.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import numpy as np
+from scipy import stats
+
+from dnmr.activation.rates import RateSeries
+from dnmr.kinetics import GAS_CONSTANT
+
+#: Where the standard errors of a fit come from (``EyringResult.error_basis``): the rate errors as given,
+#: the rate errors scaled by the reduced chi-square (``scale_errors``), or the scatter about the line.
+BASIS_GIVEN = "given rate errors"
+BASIS_SCALED = "given rate errors, scaled by the reduced chi-square"
+BASIS_SCATTER = "scatter of the rates about the line"
+OUTLIER_THRESHOLD = 3.0  # common practice for studentised residuals
+LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its residual cannot be judged
+SLOPE_TOLERANCE = 1e-9  # relative change of the slope that ends the effective-variance iteration (rounding
+# leaves about 1e-10 on tens of thousands of rows)
+MAX_ITERATIONS = 50
+
+
+class Estimate(NamedTuple):
+    """A value with its standard error (same unit)."""
+
+    value: float | np.ndarray
+    stderr: float | np.ndarray
+
+
+@dataclass(frozen=True)
+class ResidualCovariance:
+    """Covariance of the residuals, diag(diagonal) + shared @ shared.T, applied without forming it.
+
+    Attributes
+    ----------
+    diagonal : ndarray
+        (n,) independent variances (positive).
+    shared : ndarray
+        (n, m) factor of the shared part, m small.
+    """
+
+    diagonal: np.ndarray
+    shared: np.ndarray
+
+    def solve(self, rhs: np.ndarray) -> np.ndarray:
+        """V^-1 rhs by the Woodbury identity: O(n m^2), never an n x n matrix."""
+        d_rhs = rhs / (self.diagonal[:, None] if rhs.ndim == 2 else self.diagonal)
+        if not self.shared.shape[1]:
+            return d_rhs
+        d_u = self.shared / self.diagonal[:, None]
+        core = np.eye(self.shared.shape[1]) + self.shared.T @ d_u
+        return d_rhs - d_u @ np.linalg.solve(core, self.shared.T @ d_rhs)
+
+    def variances(self) -> np.ndarray:
+        """Diagonal of V."""
+        return self.diagonal + (self.shared**2).sum(axis=1)
+
+
+class GlsSolution(NamedTuple):
+    """One generalised least-squares solution: coefficients, (X^T V^-1 X)^-1, the linear map A with
+    coefficients = A y, residuals and chi-square r^T V^-1 r."""
+
+    beta: np.ndarray
+    normal: np.ndarray
+    linear_map: np.ndarray
+    residuals: np.ndarray
+    chi_square: float
+
+
+def generalised_least_squares(design: np.ndarray, y: np.ndarray, covariance: ResidualCovariance) -> GlsSolution:
+    """Generalised least squares: the coefficients of `design` (n x p) that fit `y` (n) under the residual
+    covariance V, with (X^T V^-1 X)^-1, the linear map and the chi-square (see :class:`GlsSolution`)."""
+    weighted = covariance.solve(design)
+    normal = np.linalg.inv(design.T @ weighted)
+    linear_map = normal @ weighted.T
+    beta = linear_map @ y
+    residuals = y - design @ beta
+    return GlsSolution(beta, normal, linear_map, residuals, float(residuals @ covariance.solve(residuals)))
+
+
+def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted least-squares intercept and slope of y = a + b x."""
+    sw = w.sum(-1)
+    xm = (w * x).sum(-1) / sw
+    ym = (w * y).sum(-1) / sw
+    dx = x - xm
+    slope = (w * dx * (y - ym)).sum(-1) / (w * dx * dx).sum(-1)
+    return ym - slope * xm, slope
+
+
+def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """(X^T W X)^-1 of the straight line, written with centred sums for accuracy."""
+    sw = w.sum()
+    xm = (w * x).sum() / sw
+    sxx = (w * (x - xm) ** 2).sum()
+    return np.array([[1 / sw + xm**2 / sxx, -xm / sxx], [-xm / sxx, 1 / sxx]])
+
+
+SHARE_RATES = "rates"
+SHARE_SCATTER = "scatter"
+SHARE_TEMPERATURES = "temperature scatter"
+
+
+@dataclass(frozen=True)
+class LineFit:
+    """Least-squares line y = intercept + slope * (1/T), with y = ln k - power * ln T.
+
+    Attributes
+    ----------
+    intercept, slope : float
+        Fitted coefficients (slope in K).
+    covariance : ndarray
+        Total 2 x 2 covariance of (intercept, slope).
+    covariance_parts : dict of str to ndarray
+        `covariance` split by source (they add up to it): "rates" (or "scatter" when the errors come from
+        the scatter about the line), "temperature scatter" (independent temperature errors) and one entry
+        per shared temperature error ("calibration", "probe offset", "given covariance").
+    residuals : ndarray
+        y - fitted y of each point (ln units).
+    weights : ndarray
+        1/sigma^2 of ln k from the rate errors alone (ones without rate errors).
+    residual_covariance : ResidualCovariance
+        Covariance V of the residuals the line was fitted with (rates and temperatures).
+    chi_square : float
+        r^T V^-1 r, the shared temperature errors counted as correlated (NaN without rate errors).
+    dof : int
+        Degrees of freedom, n - 2.
+    scatter : float
+        sqrt(weighted residual sum of squares / dof): without rate errors, the scatter of ln k about the
+        line; with rate errors, the square root of the reduced chi-square of the rate errors alone.
+    """
+
+    intercept: float
+    slope: float
+    covariance: np.ndarray
+    covariance_parts: dict
+    residuals: np.ndarray
+    weights: np.ndarray
+    residual_covariance: ResidualCovariance
+    chi_square: float
+    dof: int
+    scatter: float
+
+    @property
+    def energy(self) -> Estimate:
+        """-R * slope with its standard error, kJ/mol: ΔH‡ of the Eyring line, Ea of the Arrhenius line."""
+        return Estimate(-GAS_CONSTANT * self.slope / 1e3, GAS_CONSTANT * math.sqrt(self.covariance[1, 1]) / 1e3)
+
+    def predict(self, temperature_k: float | np.ndarray) -> Estimate:
+        """Fitted ordinate at `temperature_k` (K) with its standard error."""
+        x = 1.0 / np.asarray(temperature_k, dtype=float)
+        c = self.covariance
+        var = c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]
+        return Estimate(self.intercept + self.slope * x, np.sqrt(var))
+
+
+def _shared_parts(linear_map: np.ndarray, shared: np.ndarray, sources: Sequence[str]) -> dict:
+    """Covariance of the coefficients from each shared temperature source (columns grouped by name)."""
+    parts = {}
+    for name in dict.fromkeys(sources):
+        columns = linear_map @ shared[:, [j for j, s in enumerate(sources) if s == name]]
+        parts[name] = columns @ columns.T
+    return parts
+
+
+def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
+    """Fit y = ln k - power ln T against 1/T (K^-1) over the rows of `series` (all values, no bounds).
+
+    Parameters
+    ----------
+    series : RateSeries
+        The rates (s^-1) to fit, with their errors and the errors of their temperatures (K).
+    power : int
+        1 for the Eyring line (ln(k/T)), 0 for the Arrhenius line (ln k).
+    scaled : bool
+        Scale the covariance by the reduced chi-square (always so without rate errors).
+    """
+    t, k = series.temperature_k, series.rate_per_s
+    x, y = 1.0 / t, np.log(k) - power * np.log(t)
+    design = np.column_stack([np.ones_like(x), x])
+    errors = series.temperature_errors
+    sigma2 = (series.rate_stderr / k) ** 2
+    have_errors = bool(np.isfinite(sigma2).all())
+    w = 1.0 / sigma2 if have_errors else np.ones_like(t)
+    dof = len(t) - 2
+    slope = float(_line(x, y, w)[1])
+    for _ in range(MAX_ITERATIONS):
+        gradient = -power / t + slope / t**2  # d(residual)/dT
+        shared = gradient[:, None] * errors.shared_k
+        independent = (gradient * errors.independent_k) ** 2
+        # without rate errors the scatter holds the independent errors of rates and temperatures alike
+        covariance = ResidualCovariance(sigma2 + independent if have_errors else np.ones_like(t), shared)
+        scatter_only = ResidualCovariance(np.ones_like(t), shared[:, :0])
+        fit = generalised_least_squares(design, y, covariance if have_errors else scatter_only)
+        converged = abs(fit.beta[1] - slope) <= SLOPE_TOLERANCE * abs(slope)
+        slope = float(fit.beta[1])
+        if converged or not errors.any:
+            break
+    weighted_ss = float((w * fit.residuals**2).sum())
+    scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
+    a = fit.linear_map
+    if have_errors:
+        parts = {SHARE_RATES: (a * sigma2) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
+        chi_square = fit.chi_square
+    else:
+        parts = {SHARE_SCATTER: fit.normal * scatter**2}
+        chi_square = math.nan
+    parts.update(_shared_parts(a, shared, errors.sources))
+    if scaled and have_errors and dof > 0:
+        parts = {name: part * chi_square / dof for name, part in parts.items()}
+    parts = {name: part for name, part in parts.items() if part.any() or name in (SHARE_RATES, SHARE_SCATTER)}
+    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance,
+                   chi_square, dof, scatter)
+
+
+def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
+    """Studentised residuals of the Eyring line through the rows of `series` (all values), with the error
+    basis `basis` (one of the ``BASIS_*`` values).
+
+    With known errors e_i / sqrt(Var e_i), Var e = V - X C X^T (V the residual covariance with the
+    temperature errors, C the covariance of the line); otherwise externally studentised,
+    e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter without point i. A point of leverage h = 1 (each
+    of two points, or one whose weight dwarfs the others') fixes the line through itself: its residual
+    is zero whatever the data, has no variance left (1 - h is zero, or a rounding error either side of
+    it) and cannot be judged, so it gets NaN.
+    """
+    line = fit_line(series, power=1, scaled=basis != BASIS_GIVEN)
+    x, e, w = 1.0 / series.temperature_k, line.residuals, line.weights
+    out = np.full_like(e, np.nan)
+    if basis == BASIS_GIVEN:
+        variance = line.residual_covariance.variances()
+        c = line.covariance
+        keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
+        judged = keep > LEVERAGE_TOLERANCE
+        out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])
+        return out
+    normal = _normal_covariance(x, w)
+    keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
+    judged = keep > LEVERAGE_TOLERANCE
+    dof = len(x) - 3
+    if dof <= 0:
+        return out
+    deleted_ss = (w * e**2).sum() - w[judged] * e[judged] ** 2 / keep[judged]
+    with np.errstate(divide="ignore", invalid="ignore"):  # exact data: 0/0, no residual to judge
+        out[judged] = e[judged] * np.sqrt(w[judged]) / np.sqrt(deleted_ss / dof * keep[judged])
+    return out
+
+
+def outlier_flags(series: RateSeries, basis: str, threshold: float) -> np.ndarray:
+    """Possible outliers of the Eyring line through the rows of `series` (True where flagged).
+
+    Flagged one at a time: the worst point beyond the limit is set aside and the rest judged again. The
+    limit is `threshold` for normal (known-error) residuals, and the Student-t quantile of the same tail
+    probability for externally studentised ones. Setting points aside only for the judging keeps one
+    gross outlier from dragging the line and making its neighbours look bad.
+    """
+    known = basis == BASIS_GIVEN
+    flags = np.zeros(len(series), dtype=bool)
+    tail = stats.norm.sf(threshold)
+    while (~flags).sum() >= (3 if known else 4):
+        keep = np.flatnonzero(~flags)
+        r = np.abs(np.nan_to_num(studentised_residuals(series.subset(keep), basis)))
+        limit = threshold if known else stats.t.isf(tail, len(keep) - 3)
+        worst = int(np.argmax(r))
+        if r[worst] <= limit:
+            break
+        flags[keep[worst]] = True
+    return flags
