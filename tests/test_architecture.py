@@ -14,7 +14,7 @@ PACKAGE = ROOT / "dnmr"
 
 #: The layers, lowest first: a module may import at module level only from its own layer or below.
 LAYERS = (
-    ("dnmr.errors", "dnmr.nuclei", "dnmr.model", "dnmr.kinetics", "dnmr.formatting", "dnmr.notebook",
+    ("dnmr.errors", "dnmr.nuclei", "dnmr.modelparts", "dnmr.model", "dnmr.kinetics", "dnmr.formatting", "dnmr.notebook",
      "dnmr.posterior"),
     ("dnmr.io",),
     ("dnmr.engine",),

@@ -57,7 +57,7 @@ Method
    option that loosens that trend.
 4. With a calibration, its uncertainty is added.  The calibration gives the sample temperatures T with a
    covariance C_T (K^2): the curve's coefficient covariance, shared by all spectra, plus the scatter of
-   its points about the curve on the diagonal (:meth:`dnmr.activation.thermometry.TemperatureCalibration.true_temperature`,
+   its points about the curve on the diagonal (:meth:`dnmr.activation.temperature_calibration.TemperatureCalibration.true_temperature`,
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened

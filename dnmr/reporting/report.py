@@ -32,7 +32,7 @@ Temperatures
 Neither the series file nor ``results.json`` records a temperature calibration: the rates carry the
 temperatures the series file gives.  The Eyring analysis therefore uses a calibration only when one is
 passed (``calibration=`` or ``--calibration CAL.csv``); the temperatures in rates.csv are then taken as
-set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.activation.thermometry`).  The report
+set-points and replaced by calibrated sample temperatures (see :mod:`dnmr.activation.temperature_calibration`).  The report
 states which of the two was done.
 
 Beside the report, ``supporting-information/`` receives the supporting-information tables of

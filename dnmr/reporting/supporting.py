@@ -218,8 +218,8 @@ def rate_rows_from_global(g: dict) -> list[SupportingRate]:
 
 
 def activation_rows(results: Iterable) -> list[SupportingActivation]:
-    """The activation table from :class:`dnmr.activation.eyring.EyringResult` objects or from dicts with their
-    :meth:`~dnmr.activation.eyring.EyringResult.to_dict` keys (the processes of global.json have them too)."""
+    """The activation table from :class:`dnmr.activation.eyring_result.EyringResult` objects or from dicts with their
+    :meth:`~dnmr.activation.eyring_result.EyringResult.to_dict` keys (the processes of global.json have them too)."""
     out = []
     for result in results:
         d = result if isinstance(result, dict) else result.to_dict()
