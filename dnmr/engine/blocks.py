@@ -186,91 +186,6 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
     return combine(results)
 
 
-# --- exact derivatives of the lineshape -----------------------------------------------------------
-
-
-@dataclasses.dataclass(frozen=True)
-class LineshapeDerivatives:
-    """A complex spectrum and its exact derivatives at the same frequencies.
-
-    Attributes
-    ----------
-    spectrum : ndarray (points,), complex
-        S per Hz: absorption Re S (as :func:`dnmr.simulate` gives it), dispersion -Im S.
-    rates : ndarray (processes, points), complex
-        dS/dk (per s^-1) for the forward rate k of each exchange process, in process order; reverse
-        rates follow by detailed balance.
-    linewidths : ndarray (states, points), complex
-        dS/dw (per Hz) for the intrinsic linewidth w (FWHM) of each state, in state order.
-    """
-
-    spectrum: np.ndarray
-    rates: np.ndarray
-    linewidths: np.ndarray
-
-
-def lineshape_derivatives(model: Model, hz: np.ndarray) -> LineshapeDerivatives:
-    """The spectrum of `model` at frequencies `hz` (Hz from 0 ppm) with its exact derivatives with respect
-    to the exchange rates and the linewidths, from the same block decomposition as the spectrum.
-
-    The Liouvillian of a block is linear in the rates and in the linewidths, so each derivative dL is the
-    block built from that parameter alone (jump rates d(rate)/dk, unit width of one state), and
-    dS = <F+| (z - L)^-1 dL (z - L)^-1 |rho0> (:func:`dnmr.engine.resolvent.resolvent_derivatives`).  Every
-    block is solved densely by its Schur form, which costs O(n^3) per block and O(n^2) per point and
-    parameter: meant for models whose blocks have up to a few hundred coherences.
-
-    Parameters
-    ----------
-    model : Model
-        The model (rates at its temperature).
-    hz : ndarray
-        Frequencies (Hz from 0 ppm) at which to evaluate.
-    """
-    omega = TWO_PI * np.asarray(hz, dtype=float)
-    rates = model.rates()
-    under_way = np.where(rates > 0, rates, 1.0)  # a probe at which every process's jumps have a rate
-    probes = spin_systems(model.with_rates(under_way))
-    widened = [spin_systems(_with_linewidth_raised(model, c)) for c in range(len(model.states))]
-    spectrum = np.zeros(omega.size, dtype=complex)
-    slopes = np.zeros((len(rates) + len(model.states), omega.size), dtype=complex)
-    for n, params in enumerate(spin_systems(model)):
-        units = [_unit_parameters(params, jumps=_jump_rate_slopes(params, probes[n], under_way, k))
-                 for k in range(len(rates))]
-        units += [_unit_parameters(params, widths=(w[n].linewidths_hz != params.linewidths_hz).astype(float))
-                  for w in widened]
-        for block in params.blocks:
-            pattern = block_pattern(block, params.topology)
-            value, block_slopes = resolvent.resolvent_derivatives(
-                block_liouvillian(pattern, params), pattern.detect, block_start(pattern, params.populations),
-                [block_liouvillian(pattern, unit) for unit in units], omega)
-            spectrum += value
-            slopes += block_slopes
-    return LineshapeDerivatives(spectrum, slopes[:len(rates)], slopes[len(rates):])
-
-
-def _with_linewidth_raised(model: Model, state: int) -> Model:
-    """`model` with the linewidth of one state raised by 1 Hz (which effective states it reaches)."""
-    return model.replace(states=tuple(dataclasses.replace(s, linewidth_hz=s.linewidth_hz + 1.0) if i == state else s
-                                      for i, s in enumerate(model.states)))
-
-
-def _jump_rate_slopes(params: SpinParameters, probe: SpinParameters, probe_rates: np.ndarray, process: int) -> tuple:
-    """The jumps of `params` at the rates d(rate)/dk of one process's forward rate k (1 for its forward
-    jumps, p_a / p_b for the detailed-balance reverses, 0 for other processes), read off a probe of the
-    same system at positive rates `probe_rates`."""
-    return tuple(dataclasses.replace(j, rate_per_s=p.rate_per_s / probe_rates[process] if p.process == process else 0.0)
-                 for j, p in zip(params.jumps, probe.jumps))
-
-
-def _unit_parameters(params: SpinParameters, *, jumps: tuple = (), widths: np.ndarray | None = None) -> SpinParameters:
-    """`params` with no shifts and couplings, the given jumps and linewidths (Hz) and zero for the rest:
-    the Liouvillian built from it is the derivative of the block with respect to one parameter."""
-    zero_jumps = tuple(dataclasses.replace(j, rate_per_s=0.0) for j in params.jumps)
-    return SpinParameters(np.zeros_like(params.shifts_hz), np.zeros_like(params.couplings_hz),
-                          np.zeros_like(params.linewidths_hz) if widths is None else widths,
-                          params.populations, jumps or zero_jumps, params.levels)
-
-
 #: Share of the machine's physical memory that the Lanczos basis of one block may take.
 MEMORY_SHARE = 0.5
 
@@ -304,6 +219,8 @@ def check_memory(largest_block: int) -> None:
     """Refuse, with one clear line, a model whose largest block (coherences) would need more than
     `MEMORY_SHARE` of the physical memory for its Lanczos basis (n^2 complex numbers)."""
     need = resolvent.krylov_basis_bytes(largest_block)
+    if not need:  # a dense block: no basis (and no need to ask the system)
+        return
     total = physical_memory_bytes()
     if total and need > MEMORY_SHARE * total:
         raise InputError(

@@ -73,7 +73,7 @@ class SchurBlock:
 
     def evaluate(self, omega: np.ndarray) -> np.ndarray:
         """S at angular frequencies `omega` (rad/s), by back substitution vectorised over omega."""
-        return self.left @ _shifted_triangular_solve(self.triangle, self.right, 1j * np.asarray(omega, dtype=float))
+        return self.left @ shifted_triangular_solve(self.triangle, self.right, 1j * np.asarray(omega, dtype=float))
 
     @property
     def weight(self) -> complex:
@@ -241,7 +241,7 @@ def _sum_of_absorption_lines(omega: np.ndarray, poles: np.ndarray, amplitudes: n
     return out
 
 
-def _shifted_triangular_solve(T: np.ndarray, rhs: np.ndarray, z: np.ndarray) -> np.ndarray:
+def shifted_triangular_solve(T: np.ndarray, rhs: np.ndarray, z: np.ndarray) -> np.ndarray:
     """(z - T)^-1 rhs for an upper triangular T at every point of `z` (one column each), by back
     substitution vectorised over the points."""
     n = T.shape[0]
@@ -251,36 +251,12 @@ def _shifted_triangular_solve(T: np.ndarray, rhs: np.ndarray, z: np.ndarray) -> 
     return x
 
 
-def resolvent_derivatives(L: np.ndarray, detect: np.ndarray, start: np.ndarray, changes: list,
-                          omega: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """A block's S = detect . (z - L)^-1 . start and, for each dL in `changes`, its exact derivative
-
-        dS = detect . (z - L)^-1 dL (z - L)^-1 . start,        z = i omega (omega in rad/s),
-
-    (the derivative of the resolvent, d(z - L)^-1 = (z - L)^-1 dL (z - L)^-1).  By the Schur form
-    L = Q T Q^H, backward stable whatever the conditioning of L's eigenvectors: x = (z - T)^-1 Q^H start by
-    back substitution, y = (z - T)^-T Q^T detect by the same on the reversed transpose (upper triangular
-    again), and dS = y . (Q^H dL Q) x at every point.  Cost: O(n^3) once, O(n^2) per point and derivative.
-
-    Returns S (points,) and the derivatives (len(changes), points).
-    """
-    T, Q = sla.schur(np.asarray(L, dtype=complex), output="complex")
-    z = 1j * np.asarray(omega, dtype=float)
-    left = detect @ Q
-    x = _shifted_triangular_solve(T, Q.conj().T @ start, z)
-    y = _shifted_triangular_solve(T.T[::-1, ::-1], left[::-1], z)[::-1]
-    slopes = np.zeros((len(changes), z.size), dtype=complex)
-    for i, change in enumerate(changes):
-        slopes[i] = np.einsum("ip,ip->p", y, (Q.conj().T @ (change @ Q)) @ x)
-    return left @ x, slopes
-
-
-def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
-    """Poles and amplitudes from an eigendecomposition, or None when the eigenbasis is ill-conditioned.
+def eigen_basis(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
+    """Eigenvalues lambda, eigenvectors V and V^-1 of a block, or None where the eigen route is refused.
 
     The test is the 1-norm condition number of the eigenvector matrix V (rounding error in the
-    amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the amplitudes
-    against their sum (large terms that cancel).
+    amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the line amplitudes
+    (detect V)_k (V^-1 start)_k against their sum (large terms that cancel).
     """
     work = 66 * len(L)  # room for LAPACK's blocked algorithms (the wrappers' minimum is unblocked and slow)
     lam, _, V, info = _zgeev(L, compute_vl=0, compute_vr=1, lwork=work)
@@ -293,10 +269,18 @@ def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
     condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
     if not condition < EIGENBASIS_CONDITION_LIMIT:
         return None
-    amp = (detect @ V) * (V_inv @ start)
-    if np.abs(amp).sum() > EIGENBASIS_CONDITION_LIMIT * abs(detect @ start):
+    if np.abs((detect @ V) * (V_inv @ start)).sum() > EIGENBASIS_CONDITION_LIMIT * abs(detect @ start):
         return None  # near-defective: large amplitudes that cancel
-    return lam, amp
+    return lam, V, V_inv
+
+
+def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
+    """Poles and amplitudes from an eigendecomposition (:func:`eigen_basis`), or None where it is refused."""
+    basis = eigen_basis(L, detect, start)
+    if basis is None:
+        return None
+    lam, V, V_inv = basis
+    return lam, (detect @ V) * (V_inv @ start)
 
 
 def schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurBlock:

@@ -342,11 +342,17 @@ def spin_systems(model: Model) -> list[SpinParameters]:
 
     Systems that carry no population (states of population 0) are left out.
     """
+    return [params for _, params in filled_layouts(model)]
+
+
+def filled_layouts(model: Model) -> list[tuple[SystemLayout, SpinParameters]]:
+    """The systems of :func:`spin_systems`, each with the layout it was filled from (which tells where its
+    numbers come from in the model: :meth:`SystemLayout.fill` is linear in shifts, couplings and widths)."""
     jumps = model.jumps()
     couplings = coupling_array(model)
     populations = model.populations()
     numbers = (model.shifts_hz(), couplings, model.linewidths_hz(), populations, jumps)
-    return [layout.fill(*numbers) for layout in system_layouts(model, couplings, jumps)
+    return [(layout, layout.fill(*numbers)) for layout in system_layouts(model, couplings, jumps)
             if populations[layout.states].sum() > 0]
 
 

@@ -21,7 +21,7 @@ import numpy as np
 from dnmr.engine.blocks import lineshape_terms
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
-from dnmr.fitting.problem import FitProblem
+from dnmr.fitting.problem import FitProblem, nuisance_column
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 from dnmr.model import Model
@@ -497,16 +497,3 @@ class GlobalProblem:
             moved.append(self._residual(shifted, self.affine(shifted, t), x))
         return (moved[0] - moved[1]) / (2.0 * step_k)
 
-
-def nuisance_column(name: str, values: dict[str, float], turned: np.ndarray, p: FitProblem) -> np.ndarray | None:
-    """d(prediction)/d(`name`) of one spectrum for its amplitude, phases and baseline (exact), or None for
-    another parameter. `turned` is exp(i phi) S, the prediction is amplitude Re(turned) + baseline."""
-    if name == "amplitude":
-        return turned.real
-    if name == "phase0_deg":
-        return -values["amplitude"] * turned.imag * (math.pi / 180.0)
-    if name == "phase1_deg":
-        return -values["amplitude"] * turned.imag * np.radians((p.hz - p.centre) / p.span)
-    if name in p.layout.baseline_names:
-        return p.powers[:, p.layout.baseline_names.index(name)]
-    return None

@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from dnmr.fitting.globalproblem import FAMILY_WORDS, NUISANCE, GlobalProblem, Treatment, nuisance_column
-from dnmr.fitting.problem import error_scale
+from dnmr.fitting.globalproblem import FAMILY_WORDS, NUISANCE, GlobalProblem, Treatment
+from dnmr.fitting.problem import error_scale, nuisance_column
 
 
 @dataclass(frozen=True)

@@ -10,6 +10,7 @@ for the list.
 """
 from __future__ import annotations
 
+import ast
 import dataclasses
 import math
 import re
@@ -185,6 +186,13 @@ class ParameterLayout:
                 params.add(name, value=value, min=value - reach, max=value + reach, vary=opt.couplings == "free")
         apply_settings(params, opt.parameters)
         return params
+
+    @property
+    def lineshape_names(self) -> tuple[str, ...]:
+        """The parameters the lineshape depends on (rates, linewidths, populations, shifts, couplings)."""
+        return (self.rate_names + self.linewidth_names + self.population_names
+                + tuple(n for names in self.shift_names for n in names)
+                + tuple(n for names in self.coupling_names for n in names))
 
     def model_from(self, values: Mapping[str, float]) -> Model:
         """The model with the parameter `values` (rates, linewidths, populations, shifts, couplings) put in."""
@@ -391,6 +399,49 @@ def with_values(params: lmfit.Parameters, values: Mapping[str, float]) -> lmfit.
             par.value = float(np.clip(value, lo, hi))
     out.update_constraints()
     return out
+
+
+def tie_coefficients(params: lmfit.Parameters) -> dict[str, dict[str, float]]:
+    """How every parameter moves with the free ones: d value / d free value, by parameter name and then by
+    free parameter name (empty for a held one).  Ties and the layout's rules are affine (a tie is one
+    name times a number plus a number, the first population one minus the others), so the numbers are
+    exact; any other constraint is refused with ValueError."""
+    out: dict[str, dict[str, float]] = {}
+
+    def of(name: str) -> dict[str, float]:
+        if name not in out:
+            par = params[name]
+            out[name] = ({name: 1.0} if par.vary else {}) if not par.expr else _affine(ast.parse(par.expr, mode="eval").body, of)
+        return out[name]
+
+    for name in params:
+        of(name)
+    return out
+
+
+def _affine(node: ast.AST, of) -> dict[str, float]:
+    """Coefficients (by free parameter) of an affine constraint's syntax tree; constants drop out."""
+    if isinstance(node, ast.Constant) and isinstance(node.value, (int, float)):
+        return {}
+    if isinstance(node, ast.Name):
+        return of(node.id)
+    if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
+        sign = -1.0 if isinstance(node.op, ast.USub) else 1.0
+        return {k: sign * v for k, v in _affine(node.operand, of).items()}
+    if isinstance(node, ast.BinOp) and isinstance(node.op, (ast.Add, ast.Sub)):
+        sign = -1.0 if isinstance(node.op, ast.Sub) else 1.0
+        out = dict(_affine(node.left, of))
+        for k, v in _affine(node.right, of).items():
+            out[k] = out.get(k, 0.0) + sign * v
+        return out
+    if isinstance(node, ast.BinOp) and isinstance(node.op, ast.Mult):
+        for number, other in ((node.left, node.right), (node.right, node.left)):
+            try:
+                factor = float(ast.literal_eval(number))  # a number, perhaps with a sign
+            except (ValueError, TypeError):
+                continue
+            return {k: factor * v for k, v in _affine(other, of).items()}
+    raise ValueError(f"not an affine constraint: {ast.unparse(node)}")
 
 
 def parameter_stderr(par: lmfit.Parameter) -> float:

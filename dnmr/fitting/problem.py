@@ -16,11 +16,13 @@ from dataclasses import dataclass
 
 import lmfit
 import numpy as np
-from scipy import signal, stats
+from scipy import fft, optimize, stats
 
 from dnmr.engine.blocks import lineshape_terms
+from dnmr.engine.derivatives import coupling_direction, derivatives_pay, lineshape_derivatives
+from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.errors import InputError
-from dnmr.fitting.parameters import ParameterLayout, parameter_stderr
+from dnmr.fitting.parameters import ParameterLayout, parameter_stderr, tie_coefficients
 from dnmr.fitting.ranges import ppm_regions
 from dnmr.io.measured import MeasuredSpectrum
 
@@ -35,7 +37,16 @@ MAX_NOISE_LAG = 16
 MISFIT_SIGMAS = 3.0
 """Reduced chi-square this many standard deviations above 1 counts as a misfit."""
 MAX_EVALUATIONS = 60
-"""Largest number of lineshape evaluations of one local refinement, per free parameter."""
+"""Largest number of lineshape evaluations of one local refinement, per free parameter (with finite
+differences: about MAX_EVALUATIONS steps); with the exact Jacobian, 2 x MAX_EVALUATIONS residuals, each
+with at most one Jacobian (as many steps, and as many again rejected)."""
+USE_EXACT_JACOBIAN = True
+"""Refine with the exact Jacobian (:mod:`dnmr.engine.derivatives`) wherever every block of the model takes
+a dense route, so that it costs less than finite differences; False forces finite differences, which
+reach the same fits (tests/test_fitting.py) with more lineshape evaluations."""
+TERMS_KEPT = 4
+"""Lineshape decompositions a fit problem keeps, by the values of the parameters they depend on: a change
+of amplitude, phase, baseline or frequency offset alone re-evaluates them on the grid, nothing more."""
 PROFILE_RESTARTS = 3
 """Times the fit is restarted from a better minimum the profile found; the profile after the last
 restart keeps what it finds and reports the rate as unstable."""
@@ -203,15 +214,32 @@ class FitProblem:
         x = (self.hz - self.centre) / (0.5 * self.span)
         self.powers = x[:, None] ** np.arange(len(layout.baseline_names))
         self.nfev = 0
+        self.njev = 0
         step = np.diff(self.hz)
         # points written with a few decimals are uniform to within their rounding
         self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=0.02) else None
+        self.exact_jacobian = USE_EXACT_JACOBIAN and derivatives_pay(layout.model)
+        self._terms: dict[tuple, LineshapeTerms] = {}
+        self._data_transform: np.ndarray | None = None
+        self._ties: dict[tuple, dict] = {}
+
+    def terms(self, values: Mapping[str, float]) -> LineshapeTerms:
+        """The engine's decomposition of the model at parameter `values` (one lineshape evaluation, counted in
+        ``nfev``, unless one of the last TERMS_KEPT had the same lineshape parameters)."""
+        key = tuple(float(values[n]) for n in self.layout.lineshape_names)
+        terms = self._terms.get(key)
+        if terms is None:
+            terms = lineshape_terms(self.layout.model_from(values))
+            self.nfev += 1
+            if len(self._terms) >= TERMS_KEPT:
+                self._terms.pop(next(iter(self._terms)))
+            self._terms[key] = terms
+        return terms
 
     def shape(self, values: Mapping[str, float], offset_hz: float | None = None) -> np.ndarray:
         """Complex spectrum S = A - i D of the model at the data's frequencies."""
-        self.nfev += 1
         offset = values["offset_hz"] if offset_hz is None else offset_hz
-        return lineshape_terms(self.layout.model_from(values)).evaluate(self.hz - offset)
+        return self.terms(values).evaluate(self.hz - offset)
 
     def phase(self, values: Mapping[str, float], zero_order: bool = True) -> np.ndarray:
         """phi(nu) in radians."""
@@ -234,6 +262,56 @@ class FitProblem:
         except InputError:  # parameters outside what a model allows (e.g. a negative population)
             return np.full(self.data.size, 1e3)
 
+    def jacobian(self, params: lmfit.Parameters) -> np.ndarray:
+        """d residual / d free parameter (points x free parameters, in lmfit's order: those that vary, without
+        a constraint), exact: the lineshape's derivatives from :func:`dnmr.engine.derivatives.lineshape_derivatives`
+        (one combination of directions per free parameter, ties followed by the chain rule), the nuisance
+        terms' own (:func:`nuisance_column`).  Zero for values the model refuses (the residual is constant there)."""
+        values = params.valuesdict()
+        structure = tuple((n, p.vary, p.expr) for n, p in params.items())
+        ties = self._ties.get(structure)
+        if ties is None:
+            ties = self._ties[structure] = tie_coefficients(params)
+        free = [n for n, p in params.items() if p.vary and not p.expr]
+        shape_of = self._lineshape_directions(values)
+        shape_of["offset_hz"] = (("frequency",), -1.0)
+        along: dict[str, dict[tuple, float]] = {}
+        for name, moves in ties.items():
+            if name in shape_of:
+                direction, scale = shape_of[name]
+                for other, factor in moves.items():
+                    combination = along.setdefault(other, {})
+                    combination[direction] = combination.get(direction, 0.0) + factor * scale
+        out = np.zeros((self.data.size, len(free)))
+        try:
+            found = lineshape_derivatives(self.layout.model_from(values), self.hz - values["offset_hz"],
+                                          list(along.values()))
+        except InputError:
+            return out
+        self.njev += 1
+        rotation = np.exp(1j * self.phase(values))
+        turned = rotation * found.spectrum
+        for name, slope in zip(along, found.slopes):
+            out[:, free.index(name)] = values["amplitude"] * (rotation * slope).real
+        for name, moves in ties.items():
+            column = None if name in shape_of else nuisance_column(name, values, turned, self)
+            for other, factor in moves.items() if column is not None else ():
+                out[:, free.index(other)] += factor * column
+        return out / self.noise.sigma
+
+    def _lineshape_directions(self, values: Mapping[str, float]) -> dict[str, tuple[tuple, float]]:
+        """For each lineshape parameter, its derivative direction (:func:`dnmr.engine.derivatives.all_directions`)
+        and d(model number)/d(parameter): k ln 10 for log10 k, the spectrometer frequency for a shift in ppm."""
+        layout, model = self.layout, self.layout.model
+        sf = model.spectrometer.frequency_mhz
+        out = {n: (("rate", i), 10.0 ** values[n] * math.log(10.0)) for i, n in enumerate(layout.rate_names)}
+        out.update({n: (("linewidth", c), 1.0) for c, n in enumerate(layout.linewidth_names)})
+        out.update({n: (("population", c), 1.0) for c, n in enumerate(layout.population_names)})
+        out.update({n: (("shift", c, s), sf) for c, names in enumerate(layout.shift_names) for s, n in enumerate(names)})
+        out.update({n: (coupling_direction(model, c, key), 1.0)
+                    for c, names in enumerate(layout.coupling_names) for n, key in names.items()})
+        return out
+
     # --- linear part, for the scan and starting values -----------------------------------
     def linear_solve(self, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
         """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
@@ -242,7 +320,9 @@ class FitProblem:
         Returns chi-square and `values` updated with the solution.
         """
         free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
-        base = np.exp(1j * self.phase(values, zero_order=False)) * self.shape(values)
+        base = self.shape(values)
+        if values["phase1_deg"] != 0.0:
+            base = np.exp(1j * self.phase(values, zero_order=False)) * base
         turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
         columns, target = [], self.data.copy()
         if free("amplitude") and free("phase0_deg"):
@@ -272,13 +352,19 @@ class FitProblem:
         return float(target @ target) / self.noise.sigma ** 2, values
 
     def coarse_offset(self, params: lmfit.Parameters, values: dict) -> dict:
-        """Values with the offset moved to the best cross-correlation of model and data (uniform grids)."""
+        """Values with the offset moved to the best cross-correlation of model and data (uniform grids), among
+        the shifts by whole points the offset's bounds allow."""
         par = params["offset_hz"]
         if not par.vary or par.expr or self.uniform_step is None:
             return values
-        shape = self.shape(values, offset_hz=0.0).real
-        corr = signal.correlate(self.data - self.data.mean(), shape - shape.mean(), mode="full", method="fft")
-        lags = signal.correlation_lags(self.data.size, shape.size, mode="full") * self.uniform_step
+        n = self.data.size
+        size = fft.next_fast_len(2 * n - 1, real=True)  # no circular wrap-around
+        if self._data_transform is None:  # the data's half of every cross-correlation, once
+            self._data_transform = fft.rfft(self.data - self.data.mean(), size)
+        shape = self.terms(values).absorption(self.hz)
+        circular = fft.irfft(self._data_transform * np.conj(fft.rfft(shape - shape.mean(), size)), size)
+        corr = np.concatenate([circular[size - (n - 1):], circular[:n]])  # lags -(n - 1) ... n - 1
+        lags = np.arange(-(n - 1), n) * self.uniform_step
         allowed = (lags >= par.min) & (lags <= par.max)
         return {**values, "offset_hz": float(lags[allowed][np.argmax(corr[allowed])])}
 
@@ -289,11 +375,40 @@ class FitProblem:
 
 def minimize(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-8
              ) -> lmfit.minimizer.MinimizerResult:
-    """Local least squares (trust region with bounds) from `params`; at most MAX_EVALUATIONS per free parameter."""
+    """Local least squares (trust region with bounds) from `params`; at most MAX_EVALUATIONS per free parameter.
+
+    `problem` is any object with ``residual(params)``; one whose ``exact_jacobian`` is true gives its
+    Jacobian too (``jacobian(params)``, as :meth:`FitProblem.jacobian`), else finite differences are used.
+    """
+    exact = getattr(problem, "exact_jacobian", False)
     minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
     n_free = sum(p.vary and not p.expr for p in params.values())
     return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
-                              max_nfev=MAX_EVALUATIONS * (n_free + 1))
+                              max_nfev=2 * MAX_EVALUATIONS if exact else MAX_EVALUATIONS * (n_free + 1),
+                              jac=problem.jacobian if exact else "2-point")
+
+
+def refine(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-8) -> tuple[float, lmfit.Parameters]:
+    """Chi-square and parameters at the end of the refinement of :func:`minimize`, for the many refinements of
+    a profile: a problem with an exact Jacobian is refined in `params` itself, as lmfit would refine it but
+    without its copies and covariance; any other through :func:`minimize`."""
+    if not getattr(problem, "exact_jacobian", False):
+        result = minimize(problem, params, tolerance)
+        return float(result.chisqr), result.params
+    free = [n for n, p in params.items() if p.vary and not p.expr]
+
+    def at(x: np.ndarray) -> lmfit.Parameters:
+        for name, value in zip(free, x):
+            params[name].value = float(value)
+        params.update_constraints()
+        return params
+
+    bounds = ([params[n].min for n in free], [params[n].max for n in free])
+    found = optimize.least_squares(lambda x: problem.residual(at(x)), [params[n].value for n in free],
+                                   jac=lambda x: problem.jacobian(at(x)), bounds=bounds, method="trf", x_scale="jac",
+                                   ftol=tolerance, xtol=tolerance, gtol=tolerance, max_nfev=2 * MAX_EVALUATIONS)
+    at(found.x)
+    return float(found.fun @ found.fun), params
 
 
 @dataclass(frozen=True)
@@ -353,13 +468,13 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
         nearest = min(fits, key=lambda v: abs(v - x))
         trial = fits[nearest].copy()
         trial[name].set(value=x, vary=False)
-        result = minimize(problem, trial, tolerance=1e-5)
-        if restart and result.chisqr < chi0 - 0.05 * threshold:
-            params = result.params.copy()
+        chi_square, found = refine(problem, trial, tolerance=1e-5)
+        if restart and chi_square < chi0 - 0.05 * threshold:
+            params = found.copy()
             params[name].set(vary=True)
             raise BetterMinimum(minimize(problem, params))
-        points[x] = result.chisqr - chi0
-        fits[x] = result.params
+        points[x] = chi_square - chi0
+        fits[x] = found
         return points[x] - min(points.values()) - threshold
 
     def crossing(a: float, b: float) -> float:
@@ -467,3 +582,17 @@ def error_scale(chi2: float, dof: int, noise: NoiseEstimate, held: Sequence[str]
         notes.append(f"reduced chi-square {red:.2f} is well below 1: the noise estimate is probably too high "
                      "(signal in the noise region?); errors are left as they are, on the safe side")
     return scale, flags, notes
+
+
+def nuisance_column(name: str, values: Mapping[str, float], turned: np.ndarray, p: FitProblem) -> np.ndarray | None:
+    """d(prediction)/d(`name`) of one spectrum for its amplitude, phases and baseline (exact), or None for
+    another parameter. `turned` is exp(i phi) S, the prediction is amplitude Re(turned) + baseline."""
+    if name == "amplitude":
+        return turned.real
+    if name == "phase0_deg":
+        return -values["amplitude"] * turned.imag * (math.pi / 180.0)
+    if name == "phase1_deg":
+        return -values["amplitude"] * turned.imag * np.radians((p.hz - p.centre) / p.span)
+    if name in p.layout.baseline_names:
+        return p.powers[:, p.layout.baseline_names.index(name)]
+    return None

@@ -259,7 +259,10 @@ class SpectrumFit(NotebookView):
     frequency_mhz : float
         Spectrometer frequency (MHz).
     function_evaluations : int
-        Lineshape evaluations used (scan, refinement and profiles).
+        Lineshape evaluations used (scan, refinement and profiles; one that only moves the amplitude,
+        phase, baseline or offset re-uses the last ones).
+    jacobian_evaluations : int
+        Exact Jacobians used (each one lineshape with its derivatives; 0 where finite differences were used).
     options : FitOptions
         The options used.
     """
@@ -283,6 +286,7 @@ class SpectrumFit(NotebookView):
     frequency_mhz: float = math.nan
     function_evaluations: int = 0
     options: FitOptions = field(default_factory=FitOptions)
+    jacobian_evaluations: int = 0
 
     @property
     def residuals(self) -> np.ndarray:
@@ -364,6 +368,7 @@ class SpectrumFit(NotebookView):
             "flags": list(self.flags),
             "notes": list(self.notes),
             "function_evaluations": self.function_evaluations,
+            "jacobian_evaluations": self.jacobian_evaluations,
             "options": self.options.to_dict(),
         }
 
@@ -383,6 +388,7 @@ class SpectrumFit(NotebookView):
             baseline=np.array(curves["baseline"], float), best_model=layout.model_from(params.valuesdict()),
             source=data["source"], temperature_k=data["temperature_k"], frequency_mhz=data["frequency_mhz"],
             function_evaluations=data["function_evaluations"], options=options,
+            jacobian_evaluations=data.get("jacobian_evaluations", 0),
         )
 
 
@@ -497,7 +503,7 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
         error_scale=float(scale), flags=flags, notes=notes, ppm=part.ppm.copy(), data=part.intensity.copy(),
         fitted=problem.predict(values), baseline=problem.baseline(values), best_model=layout.model_from(values),
         source=str(spectrum.source), temperature_k=temperature_k, frequency_mhz=model.spectrometer.frequency_mhz,
-        function_evaluations=problem.nfev, options=options,
+        function_evaluations=problem.nfev, options=options, jacobian_evaluations=problem.njev,
     )
 
 

@@ -1,0 +1,301 @@
+"""Exact derivatives of the lineshape with respect to the model's numbers, from the block decomposition
+that gives the spectrum.
+
+A block's spectrum is S = <detect| (z - L)^-1 |start> with z = i 2 pi nu.  The Liouvillian is linear in the
+shifts, couplings, linewidths and jump rates, and the start vector in the populations, so the derivative
+with respect to any of them is
+
+    dS = <detect| (z - L)^-1 dL (z - L)^-1 |start> + <detect| (z - L)^-1 |d start>
+
+(the derivative of the resolvent, d(z - L)^-1 = (z - L)^-1 dL (z - L)^-1), with dL the block built from
+the changed numbers alone: :meth:`dnmr.engine.spinsystems.SystemLayout.fill` is linear in them, so a
+model-level change (a unit shift of one spin in one state, d(rate)/dk of every jump of a process...) fills
+a block exactly as the numbers themselves do, groups and heteronuclei included.  The frequency itself
+is one more direction: dS/dnu is the same formula with dL = -i 2 pi (times the identity).
+
+Two routes per block, as for the spectrum (:mod:`dnmr.engine.resolvent`):
+
+- **eigen** (where the eigenbasis is well conditioned): with L = V diag(lambda) V^-1, u = detect V,
+  w = V^-1 start and M = V^-1 dL V, the first term is sum_kl u_k M_kl w_l / ((z - lambda_k)(z - lambda_l)).
+  Pairs of distinct poles are split into partial fractions, so every direction is a sum of first- and
+  second-order poles, O(n^2) to set up and O(n) per point; pairs of (nearly) equal poles keep the
+  product form, which is exact.  The split loses at most eps |Re lambda| / |lambda_k - lambda_l| relative
+  to the pair's peak, which :data:`SPLIT_SEPARATION` bounds by 1e-12.
+- **Schur** (elsewhere): L = Q T Q^H, back substitution at every point, O(n^2) per point and direction.
+
+Blocks that go the Krylov route for the spectrum are solved densely here as well (O(n^3)), which is
+meant for blocks of up to a few hundred coherences; a fit uses these derivatives only where every block
+takes the dense route (:func:`derivatives_pay`).
+"""
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+import scipy.linalg as sla
+
+from dnmr.engine.blocks import block_liouvillian, block_pattern, block_start, check_memory
+from dnmr.engine.liouville import largest_block_size
+from dnmr.engine.resolvent import TWO_PI, eigen_basis, shifted_triangular_solve, takes_krylov_route
+from dnmr.engine.spinsystems import filled_layouts
+from dnmr.model import Model
+from dnmr.modelparts import parse_coupling_key
+
+#: Two poles closer than this share of the larger of their widths (|Re lambda|) are not split into
+#: partial fractions (the split would amplify rounding error by the inverse of their separation).
+SPLIT_SEPARATION = 1e-4
+
+
+def all_directions(model: Model) -> list[tuple]:
+    """Every direction :func:`lineshape_derivatives` knows for `model`, as tuples:
+
+    ``("rate", i)`` the forward rate (s^-1) of process i, ``("linewidth", c)`` the linewidth (Hz) of state
+    c, ``("shift", c, s)`` the shift (Hz) of observed spin s (``model.spins`` order) in state c,
+    ``("coupling", c, a, b)`` the coupling (Hz) of spins a < b (``model.all_spins`` order) in state c,
+    ``("population", c)`` the population of state c as a relative weight (the model normalises the
+    populations to sum 1; a model given by free energies is differentiated at weights equal to its
+    populations), and ``("frequency",)`` the frequency nu (Hz) at which S is evaluated.
+    """
+    n_states, n_spins, n_all = len(model.states), len(model.spins), len(model.all_spins)
+    out: list[tuple] = [("rate", i) for i in range(len(model.exchanges))]
+    out += [("linewidth", c) for c in range(n_states)]
+    out += [("shift", c, s) for c in range(n_states) for s in range(n_spins)]
+    out += [("coupling", c, a, b) for c in range(n_states) for a in range(n_all) for b in range(a + 1, n_all)]
+    out += [("population", c) for c in range(n_states)] if n_states > 1 else []
+    return out + [("frequency",)]
+
+
+@dataclasses.dataclass(frozen=True)
+class LineshapeDerivatives:
+    """A complex spectrum and its exact derivatives at the same frequencies.
+
+    Attributes
+    ----------
+    spectrum : ndarray (points,), complex
+        S per Hz: absorption Re S (as :func:`dnmr.simulate` gives it), dispersion -Im S.
+    directions : tuple
+        The directions asked for (:func:`all_directions`), each a direction or a mapping of directions to
+        weights (a combination: the derivative along sum of weight x direction).
+    slopes : ndarray (directions, points), complex
+        dS per unit of each direction (per s^-1, per Hz, per unit weight).
+    """
+
+    spectrum: np.ndarray
+    directions: tuple
+    slopes: np.ndarray
+
+    def slope(self, direction) -> np.ndarray:
+        """dS along one of the directions asked for (points,)."""
+        return self.slopes[self.directions.index(direction)]
+
+    @property
+    def rates(self) -> np.ndarray:
+        """dS/dk (per s^-1) of every process's forward rate asked for, in process order: (processes, points)."""
+        return self._stack("rate")
+
+    @property
+    def linewidths(self) -> np.ndarray:
+        """dS/dw (per Hz) of every state's linewidth (FWHM) asked for, in state order: (states, points)."""
+        return self._stack("linewidth")
+
+    def _stack(self, kind: str) -> np.ndarray:
+        rows = [v for d, v in zip(self.directions, self.slopes) if isinstance(d, tuple) and d[0] == kind]
+        return np.array(rows).reshape(len(rows), self.spectrum.size)
+
+
+def lineshape_derivatives(model: Model, hz: np.ndarray, directions: Sequence | None = None) -> LineshapeDerivatives:
+    """The spectrum of `model` at frequencies `hz` (Hz from 0 ppm) and its exact derivatives.
+
+    Parameters
+    ----------
+    model : Model
+        The model (rates at its temperature).
+    hz : ndarray
+        Frequencies (Hz from 0 ppm) at which to evaluate.
+    directions : sequence, optional
+        Which derivatives: directions (:func:`all_directions`), or mappings of directions to weights for
+        derivatives along combinations (a tied pair of parameters in one solve); default every rate and
+        every linewidth.
+
+    Returns
+    -------
+    LineshapeDerivatives
+    """
+    if directions is None:
+        directions = [d for d in all_directions(model) if d[0] in ("rate", "linewidth")]
+    directions = tuple(directions)
+    combinations = [dict(d) if isinstance(d, Mapping) else {tuple(d): 1.0} for d in directions]
+    known = set(all_directions(model))
+    for d in (d for c in combinations for d in c):
+        if d not in known:
+            raise ValueError(f"unknown derivative direction {d!r}; see all_directions(model)")
+    omega = TWO_PI * np.asarray(hz, dtype=float)
+    systems = filled_layouts(model)
+    check_memory(max((largest_block_size(p.levels) * len(p.populations) for _, p in systems), default=0))
+    jumps = model.jumps()
+    numbers = [_combined_numbers(model, c, jumps) for c in combinations]
+    sums = _PoleSums(len(directions), omega)
+    for layout, params in systems:
+        units = [layout.fill(*n[:4], [dataclasses.replace(j, rate_per_s=r) for j, r in zip(jumps, n[4])])
+                 for n in numbers]
+        for block in params.blocks:
+            pattern = block_pattern(block, params.topology)
+            changes = [(block_liouvillian(pattern, u), n[5], block_start(pattern, u.populations) if np.any(n[3]) else None)
+                       for n, u in zip(numbers, units)]
+            sums.add_block(block_liouvillian(pattern, params), pattern.detect,
+                           block_start(pattern, params.populations), changes)
+    spectrum, slopes = sums.evaluate()
+    return LineshapeDerivatives(spectrum, directions, slopes)
+
+
+def _combined_numbers(model: Model, combination: Mapping[tuple, float], jumps: Sequence) -> tuple:
+    """The change of the model's numbers along sum of weight x direction: :func:`_unit_numbers` summed,
+    with the frequency's share as the factor of the identity in dL (rad/s per Hz)."""
+    n_states, n_all = len(model.states), len(model.all_spins)
+    total = [np.zeros((n_states, len(model.spins))), np.zeros((n_states, n_all, n_all)), np.zeros(n_states),
+             np.zeros(n_states), np.zeros(len(jumps))]
+    identity = 0.0
+    for direction, weight in combination.items():
+        unit = _unit_numbers(model, direction, jumps)
+        if unit is None:
+            identity += -1j * TWO_PI * weight
+            continue
+        for part, change in zip(total, unit):
+            part += weight * change
+    return (*total, identity)
+
+
+def _unit_numbers(model: Model, direction: tuple, jumps: Sequence):
+    """The change of the model's numbers per unit of `direction`: (shifts (states, spins) Hz, couplings
+    (states, all spins, all spins) Hz, widths Hz, populations, the rate of every jump of `jumps`, the
+    model's), as :meth:`~dnmr.engine.spinsystems.SystemLayout.fill` takes them; None for the frequency."""
+    kind = direction[0]
+    if kind == "frequency":
+        return None
+    n_states, n_all = len(model.states), len(model.all_spins)
+    shifts, couplings = np.zeros((n_states, len(model.spins))), np.zeros((n_states, n_all, n_all))
+    widths, populations = np.zeros(n_states), np.zeros(n_states)
+    p = model.populations()
+    rates = np.zeros(len(jumps))
+    if kind == "rate":
+        for n, j in enumerate(jumps):
+            if j.process == direction[1]:
+                rates[n] = 1.0 if j.forward or j.source == j.target else p[j.target] / p[j.source]
+    elif kind == "linewidth":
+        widths[direction[1]] = 1.0
+    elif kind == "shift":
+        shifts[direction[1], direction[2]] = 1.0
+    elif kind == "coupling":
+        _, c, a, b = direction
+        couplings[c, a, b] = couplings[c, b, a] = 1.0
+    else:
+        populations = _population_slope(model, direction[1])
+        forward = model.rates()
+        for n, j in enumerate(jumps):  # a reverse b -> a runs at k p_a / p_b
+            if not j.forward and j.source != j.target:
+                s, t = j.source, j.target
+                rates[n] = forward[j.process] * (populations[t] / p[s] - p[t] * populations[s] / p[s] ** 2)
+    return shifts, couplings, widths, populations, rates
+
+
+def _population_slope(model: Model, state: int) -> np.ndarray:
+    """d(populations)/d(weight of `state`): the populations are the weights over their sum."""
+    p = model.populations()
+    given = model.states[0].population is not None
+    total = float(sum(s.population for s in model.states)) if given else 1.0
+    return (np.eye(len(p))[state] - p) / total
+
+
+class _PoleSums:
+    """The spectrum and its derivatives gathered block by block: the eigen route's blocks as first- and
+    second-order poles (and products of two nearly equal poles), evaluated on the grid once for all of
+    them; the Schur route's blocks as values at every point."""
+
+    def __init__(self, n_directions: int, omega: np.ndarray):
+        self.z = 1j * np.asarray(omega, dtype=float)
+        self.poles, self.amplitudes, self.first, self.second = [], [], [], []
+        self.pairs: list[tuple[int, int, np.ndarray]] = []
+        self.count = 0
+        self.spectrum = np.zeros(self.z.size, dtype=complex)
+        self.slopes = np.zeros((n_directions, self.z.size), dtype=complex)
+
+    def add_block(self, L: np.ndarray, detect: np.ndarray, start: np.ndarray, changes: Sequence[tuple]) -> None:
+        """One block: S = detect . (z - L)^-1 . start and, for each change (dL, c, d start) in `changes` (dL
+        plus c times the identity; d start None for none), dS = detect . (z - L)^-1 (dL + c) (z - L)^-1 . start
+        + detect . (z - L)^-1 . d start."""
+        L = np.asarray(L, dtype=complex)
+        basis = eigen_basis(L, detect, start)
+        if basis is None:
+            value, slopes = _schur_derivatives(L, detect, start, changes, self.z)
+            self.spectrum += value
+            self.slopes += slopes
+            return
+        lam, V, V_inv = basis
+        u, w = detect @ V, V_inv @ start
+        gap = lam[:, None] - lam[None, :]
+        width = np.maximum(np.abs(lam.real)[:, None], np.abs(lam.real)[None, :])
+        close = np.abs(gap) <= SPLIT_SEPARATION * width
+        pairs = np.argwhere(close & ~np.eye(lam.size, dtype=bool))
+        first = np.zeros((len(changes), lam.size), dtype=complex)
+        second = np.zeros_like(first)
+        joint = np.zeros((len(changes), len(pairs)), dtype=complex)
+        for i, (change, identity, start_change) in enumerate(changes):
+            B = u[:, None] * (V_inv @ change @ V) * w[None, :]
+            split = np.where(close, 0.0, B / np.where(close, 1.0, gap))
+            first[i] = split.sum(axis=1) - split.sum(axis=0)
+            if start_change is not None:
+                first[i] += u * (V_inv @ start_change)
+            second[i] = np.diagonal(B) + identity * u * w
+            joint[i] = B[pairs[:, 0], pairs[:, 1]]
+        self.pairs += [(self.count + k, self.count + m, joint[:, j]) for j, (k, m) in enumerate(pairs)]
+        self.poles.append(lam)
+        self.amplitudes.append(u * w)
+        self.first.append(first)
+        self.second.append(second)
+        self.count += lam.size
+
+    def evaluate(self) -> tuple[np.ndarray, np.ndarray]:
+        """S (points,) and the derivatives (directions, points)."""
+        if not self.poles:
+            return self.spectrum, self.slopes
+        g = 1.0 / (self.z[None, :] - np.concatenate(self.poles)[:, None])  # (poles, points)
+        spectrum = self.spectrum + np.concatenate(self.amplitudes) @ g
+        slopes = self.slopes + np.hstack(self.first) @ g + np.hstack(self.second) @ (g * g)
+        for k, m, coefficients in self.pairs:
+            slopes += coefficients[:, None] * (g[k] * g[m])[None, :]
+        return spectrum, slopes
+
+
+def _schur_derivatives(L: np.ndarray, detect: np.ndarray, start: np.ndarray, changes: Sequence[tuple],
+                       z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:meth:`_PoleSums.add_block` by the Schur form L = Q T Q^H (backward stable whatever the conditioning
+    of L's eigenvectors): x = (z - T)^-1 Q^H start by back substitution, y = (z - T)^-T Q^T detect by the
+    same on the reversed transpose (upper triangular again), and dS = y . (Q^H dL Q + c) x + y . Q^H d start."""
+    T, Q = sla.schur(L, output="complex")
+    left = detect @ Q
+    x = shifted_triangular_solve(T, Q.conj().T @ start, z)
+    y = shifted_triangular_solve(T.T[::-1, ::-1], left[::-1], z)[::-1]
+    slopes = np.zeros((len(changes), z.size), dtype=complex)
+    for i, (change, identity, start_change) in enumerate(changes):
+        moved = (Q.conj().T @ (change @ Q)) @ x + identity * x
+        if start_change is not None:
+            moved += (Q.conj().T @ start_change)[:, None]
+        slopes[i] = np.einsum("ip,ip->p", y, moved)
+    return left @ x, slopes
+
+
+def derivatives_pay(model: Model) -> bool:
+    """Whether exact derivatives cost less than finite differences for `model`: every block takes a dense
+    route for its spectrum (none goes the Krylov route, whose blocks these derivatives would solve
+    densely)."""
+    return not any(takes_krylov_route(block.size * len(params.populations))
+                   for _, params in filled_layouts(model) for block in params.blocks)
+
+
+def coupling_direction(model: Model, state: int, key: str) -> tuple:
+    """The direction ``("coupling", c, a, b)`` of the coupling `key` (as the model file gives it, "A-B") of
+    state `state` (index)."""
+    a, b = sorted(model.all_spins.index(x) for x in parse_coupling_key(key))
+    return ("coupling", state, a, b)
+
