@@ -16,16 +16,20 @@ is one more direction: dS/dnu is the same formula with dL = -i 2 pi (times the i
 Two routes per block, as for the spectrum (:mod:`dnmr.engine.resolvent`):
 
 - **eigen** (where the eigenbasis is well conditioned): with L = V diag(lambda) V^-1, u = detect V,
-  w = V^-1 start and M = V^-1 dL V, the first term is sum_kl u_k M_kl w_l / ((z - lambda_k)(z - lambda_l)).
-  Pairs of distinct poles are split into partial fractions, so every direction is a sum of first- and
-  second-order poles, O(n^2) to set up and O(n) per point; pairs of (nearly) equal poles keep the
-  product form, which is exact.  The split loses at most eps |Re lambda| / |lambda_k - lambda_l| relative
-  to the pair's peak, which :data:`SPLIT_SEPARATION` bounds by 1e-12.
+  w = V^-1 start and M = V^-1 dL V, the first term is sum_kl u_k M_kl w_l g_k g_l, g_k = 1 / (z - lambda_k).
+  Pairs of distinct poles are split into partial fractions, g_k g_l = (g_k - g_l) / (lambda_k - lambda_l),
+  which loses at most eps |Re lambda| / |lambda_k - lambda_l| relative to the pair's peak; pairs closer than
+  :data:`SPLIT_SEPARATION` of their width (and k = l) are expanded instead, g_k g_l = g_k^2 (1 + delta g_k +
+  delta^2 g_k^2 + ...) with delta = lambda_l - lambda_k, |delta g_k| <= 1e-4, to three terms (to one
+  for poles equal to rounding error, :data:`DEGENERATE`).  Either way
+  about 1e-12 relative, and every direction is a sum of poles of order one to four: O(n^2) to set up per
+  direction, O(n) per point, all blocks evaluated on the grid at once.
 - **Schur** (elsewhere): L = Q T Q^H, back substitution at every point, O(n^2) per point and direction.
 
 Blocks that go the Krylov route for the spectrum are solved densely here as well (O(n^3)), which is
-meant for blocks of up to a few hundred coherences; a fit uses these derivatives only where every block
-takes the dense route (:func:`derivatives_pay`).
+meant for blocks of up to a few hundred coherences.  A fit uses these derivatives as its Jacobian where they
+cost less than finite differences (:func:`derivatives_pay`): small models, whose evaluations are mostly fixed
+cost that one call with all the derivatives pays once.
 """
 from __future__ import annotations
 
@@ -45,6 +49,14 @@ from dnmr.modelparts import parse_coupling_key
 #: Two poles closer than this share of the larger of their widths (|Re lambda|) are not split into
 #: partial fractions (the split would amplify rounding error by the inverse of their separation).
 SPLIT_SEPARATION = 1e-4
+#: Most coherences (over all blocks) for which a fit's exact Jacobian is cheaper than finite differences:
+#: measured on fits of 2 to 4 coupled spins in two states and of two methyl groups (benchmarks/fit_speed.py);
+#: above about a hundred the two cost the same, and finite differences stay.
+PAYING_COHERENCES = 100
+#: Poles closer than this share of their width are equal to rounding error: their product is g_k^2 alone.
+DEGENERATE = 1e-12
+#: Poles x points evaluated at once (complex numbers: 4 MiB).
+POINTS_AT_ONCE = 1 << 18
 
 
 def all_directions(model: Model) -> list[tuple]:
@@ -208,15 +220,12 @@ def _population_slope(model: Model, state: int) -> np.ndarray:
 
 
 class _PoleSums:
-    """The spectrum and its derivatives gathered block by block: the eigen route's blocks as first- and
-    second-order poles (and products of two nearly equal poles), evaluated on the grid once for all of
-    them; the Schur route's blocks as values at every point."""
+    """The spectrum and its derivatives gathered block by block: the eigen route's blocks as poles of order
+    one to four, evaluated on the grid once for all of them; the Schur route's blocks as values at every point."""
 
     def __init__(self, n_directions: int, omega: np.ndarray):
         self.z = 1j * np.asarray(omega, dtype=float)
-        self.poles, self.amplitudes, self.first, self.second = [], [], [], []
-        self.pairs: list[tuple[int, int, np.ndarray]] = []
-        self.count = 0
+        self.poles, self.amplitudes, self.orders = [], [], []
         self.spectrum = np.zeros(self.z.size, dtype=complex)
         self.slopes = np.zeros((n_directions, self.z.size), dtype=complex)
 
@@ -233,38 +242,47 @@ class _PoleSums:
             return
         lam, V, V_inv = basis
         u, w = detect @ V, V_inv @ start
-        gap = lam[:, None] - lam[None, :]
+        gap = lam[None, :] - lam[:, None]  # lambda_l - lambda_k
         width = np.maximum(np.abs(lam.real)[:, None], np.abs(lam.real)[None, :])
         close = np.abs(gap) <= SPLIT_SEPARATION * width
-        pairs = np.argwhere(close & ~np.eye(lam.size, dtype=bool))
-        first = np.zeros((len(changes), lam.size), dtype=complex)
-        second = np.zeros_like(first)
-        joint = np.zeros((len(changes), len(pairs)), dtype=complex)
+        apart = close & (np.abs(gap) > DEGENERATE * width)  # close, and not equal to rounding error
+        powers = np.stack([close.astype(float), np.where(apart, gap, 0.0), np.where(apart, gap * gap, 0.0)])
+        orders = np.zeros((len(changes), 4, lam.size), dtype=complex)  # poles of order 1 to 4
         for i, (change, identity, start_change) in enumerate(changes):
             B = u[:, None] * (V_inv @ change @ V) * w[None, :]
-            split = np.where(close, 0.0, B / np.where(close, 1.0, gap))
-            first[i] = split.sum(axis=1) - split.sum(axis=0)
+            split = np.where(close, 0.0, B / np.where(close, 1.0, -gap))  # B / (lambda_k - lambda_l)
+            orders[i, 0] = split.sum(axis=1) - split.sum(axis=0)
             if start_change is not None:
-                first[i] += u * (V_inv @ start_change)
-            second[i] = np.diagonal(B) + identity * u * w
-            joint[i] = B[pairs[:, 0], pairs[:, 1]]
-        self.pairs += [(self.count + k, self.count + m, joint[:, j]) for j, (k, m) in enumerate(pairs)]
+                orders[i, 0] += u * (V_inv @ start_change)
+            # a close pair: g_k g_l = g_k^2 / (1 - delta g_k) = g_k^2 (1 + delta g_k + delta^2 g_k^2 + ...),
+            # |delta g_k| <= SPLIT_SEPARATION, so three terms leave 1e-12 (one where |delta g_k| <= DEGENERATE)
+            orders[i, 1:] = (powers * B[None]).sum(axis=2)
+            orders[i, 1] += identity * u * w
         self.poles.append(lam)
         self.amplitudes.append(u * w)
-        self.first.append(first)
-        self.second.append(second)
-        self.count += lam.size
+        self.orders.append(orders)
 
     def evaluate(self) -> tuple[np.ndarray, np.ndarray]:
-        """S (points,) and the derivatives (directions, points)."""
+        """S (points,) and the derivatives (directions, points), a slice of points at a time (the powers of
+        every pole on it stay in cache; orders three and four only for the poles that have them)."""
         if not self.poles:
             return self.spectrum, self.slopes
-        g = 1.0 / (self.z[None, :] - np.concatenate(self.poles)[:, None])  # (poles, points)
-        spectrum = self.spectrum + np.concatenate(self.amplitudes) @ g
-        slopes = self.slopes + np.hstack(self.first) @ g + np.hstack(self.second) @ (g * g)
-        for k, m, coefficients in self.pairs:
-            slopes += coefficients[:, None] * (g[k] * g[m])[None, :]
-        return spectrum, slopes
+        poles = np.concatenate(self.poles)[:, None]
+        amplitudes = np.concatenate(self.amplitudes)
+        first, second, third, fourth = (np.ascontiguousarray(a) for a in np.concatenate(self.orders, axis=2).transpose(1, 0, 2))
+        higher = np.flatnonzero(third.any(axis=0) | fourth.any(axis=0))
+        third, fourth = np.ascontiguousarray(third[:, higher]), np.ascontiguousarray(fourth[:, higher])
+        step = max(256, POINTS_AT_ONCE // poles.size)
+        for start in range(0, self.z.size, step):
+            part = slice(start, start + step)
+            g = np.reciprocal(self.z[None, part] - poles)  # (poles, points of the slice)
+            self.spectrum[part] += amplitudes @ g
+            self.slopes[:, part] += first @ g + second @ (g * g)
+            if higher.size:
+                near = g[higher]
+                cube = near * near * near
+                self.slopes[:, part] += third @ cube + fourth @ (cube * near)
+        return self.spectrum, self.slopes
 
 
 def _schur_derivatives(L: np.ndarray, detect: np.ndarray, start: np.ndarray, changes: Sequence[tuple],
@@ -286,11 +304,12 @@ def _schur_derivatives(L: np.ndarray, detect: np.ndarray, start: np.ndarray, cha
 
 
 def derivatives_pay(model: Model) -> bool:
-    """Whether exact derivatives cost less than finite differences for `model`: every block takes a dense
-    route for its spectrum (none goes the Krylov route, whose blocks these derivatives would solve
-    densely)."""
-    return not any(takes_krylov_route(block.size * len(params.populations))
-                   for _, params in filled_layouts(model) for block in params.blocks)
+    """Whether a fit's exact Jacobian costs less than finite differences for `model`: at most
+    :data:`PAYING_COHERENCES` coherences in all (the derivatives' work on the grid grows with them, while a
+    small model's evaluation is mostly fixed cost), none in a block that goes the Krylov route (which these
+    derivatives would solve densely)."""
+    sizes = [block.size * len(params.populations) for _, params in filled_layouts(model) for block in params.blocks]
+    return sum(sizes) <= PAYING_COHERENCES and not any(takes_krylov_route(n) for n in sizes)
 
 
 def coupling_direction(model: Model, state: int, key: str) -> tuple:
