@@ -143,17 +143,23 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
                    " and the global fit.")
 @click.option("--no-report", is_flag=True, help="Do not write OUTDIR/report.html after the fit.")
 @click.option("--posterior", is_flag=True,
-              help="After the fits, sample each spectrum's posterior (needs emcee). SLOW: walkers (32 or more) x the steps "
-                   "lineshape evaluations per spectrum, a minute or more per spectrum at the default steps.")
+              help="After the fits, sample each spectrum's posterior (needs emcee): by importance sampling from the fit, "
+                   "one lineshape evaluation per draw (seconds per spectrum); where that is not reliable, by emcee's "
+                   "ensemble, walkers x steps evaluations (a minute or more per spectrum).")
+@click.option("--posterior-method", type=click.Choice(["importance", "emcee"]), default="importance", show_default=True,
+              help="With --posterior: importance sampling from the fit (the ensemble where it is not reliable), or emcee's ensemble.")
+@click.option("--posterior-draws", type=click.IntRange(100, 10**7), default=4000, show_default=True,
+              help="With --posterior: draws of importance sampling.")
 @click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
-              help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
+              help="With --posterior: steps of each walker of the ensemble (32 walkers, or 2 per sampled parameter + 2 "
+                   "when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
-        calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
-        posterior_seed: int, figure_format: str) -> None:
+        calibration_file: Path | None, no_report: bool, posterior: bool, posterior_method: str, posterior_draws: int,
+        posterior_steps: int, posterior_seed: int, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
@@ -179,7 +185,8 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
             return
         result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
                             progress=False if quiet else None,
-                            posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
+                            posterior={"method": posterior_method, "draws": posterior_draws, "steps": posterior_steps,
+                                       "seed": posterior_seed} if posterior else None)
         click.echo(result.report())
         for failed in result.failures:
             click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)

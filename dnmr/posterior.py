@@ -1,10 +1,14 @@
-"""Posterior sampling, the general part: emcee's ensemble, the chain, its diagnostics and summaries.
+"""Posterior sampling, the general part: emcee's ensemble, importance sampling, the samples, their
+diagnostics and summaries.
 
-Optional: needs the emcee package (``pip install emcee``, or the ``bayes`` extra).  Every sampler of dnmr
-(one spectrum's parameters, :mod:`dnmr.fitting.posterior`; the activation parameters of an Eyring line,
-:mod:`dnmr.activation.posterior`) uses emcee's affine-invariant ensemble (Goodman & Weare, Comm. Appl.
-Math. Comp. Sci. 5, 65 (2010); Foreman-Mackey et al., PASP 125, 306 (2013)) and hands its chain to
-:func:`posterior_from_chain`, which makes the :class:`Posterior` that both return.
+Two samplers make the :class:`Posterior` that every posterior of dnmr returns.  emcee's affine-invariant
+ensemble (Goodman & Weare, Comm. Appl. Math. Comp. Sci. 5, 65 (2010); Foreman-Mackey et al., PASP 125,
+306 (2013); optional: ``pip install emcee``, or the ``bayes`` extra) hands its chain to
+:func:`posterior_from_chain`; it serves the activation parameters of an Eyring line
+(:mod:`dnmr.activation.posterior`) and one spectrum's parameters where importance sampling is not
+reliable.  Importance sampling from a proposal close to the posterior (one spectrum's, from its
+least-squares fit: :mod:`dnmr.fitting.posterior`) resamples its weighted draws into the same kind of
+:class:`Posterior` (:mod:`dnmr.importance`).
 
 Chains
 ------
@@ -13,6 +17,7 @@ integrated autocorrelation time tau of every quantity is estimated with emcee's 
 steps; a chain shorter than 50 tau (emcee's documentation advises at least that) gets a note, and so does
 a burn-in shorter than 2 tau or a mean acceptance fraction outside 0.2-0.5 (common practice).  Quantiles
 are of the kept samples: median, 68 % (15.87-84.13 %) and 95 % (2.5-97.5 %) central intervals.
+
 """
 from __future__ import annotations
 
@@ -41,6 +46,7 @@ KINDS = ("interval", "upper-bound", "lower-bound", "undetermined")
 #: Walkers of the ensemble unless a problem has more than 15 sampled parameters (then 2 per parameter + 2).
 DEFAULT_WALKERS = 32
 PRIOR_EDGE = 0.1  # a 95 % interval ending this close (as a share of its width) to the prior's end reaches it
+PARETO_LIMIT = 0.7  # Vehtari et al. 2024: importance-sampling estimates with a larger Pareto shape are not reliable
 EXTRA_LABELS = {"harmonic_mean_temperature_k": "harmonic-mean T / K", "correlation_enthalpy_entropy": "corr(ΔH‡, ΔS‡)"}
 
 
@@ -78,9 +84,9 @@ class PosteriorSummary:
     prior_range : (float, float)
         Where the prior ends (-inf/inf when it does not).
     autocorrelation_steps : float
-        Integrated autocorrelation time (steps) of this quantity's chain.
+        Integrated autocorrelation time (steps) of this quantity's chain (NaN for importance sampling).
     effective_samples : float
-        walkers x kept steps x thin / tau.
+        walkers x kept steps x thin / tau; for importance sampling the effective number of the weighted draws.
     reason : str
         Why a bound, in words.
     """
@@ -145,13 +151,14 @@ class Posterior(NotebookView):
     quantities : tuple of Quantity
         The columns of `chain` (sampled ones and ones derived from them).
     chain : ndarray
-        Kept samples, shape (steps kept, walkers, quantities).
+        Kept samples, shape (steps kept, walkers, quantities); for importance sampling the draws as
+        resampled, shape (draws, 1, quantities).
     autocorrelation_steps : ndarray
-        Integrated autocorrelation time of each quantity, in sampler steps.
+        Integrated autocorrelation time of each quantity, in sampler steps (NaN for importance sampling).
     acceptance_fraction : float
-        Mean acceptance fraction of the walkers.
+        Mean acceptance fraction of the walkers (NaN for importance sampling).
     walkers, steps, burn, thin : int
-        The sampler's settings.
+        The sampler's settings (for importance sampling 1, the draws, 0 and 1).
     seed : int or None
         Seed of the random generators.
     likelihood : str
@@ -162,6 +169,10 @@ class Posterior(NotebookView):
         What to know about the chain and the numbers.
     extra : dict
         Further results (e.g. the dH‡-dS‡ correlation of an Eyring posterior).
+    method : str
+        "emcee" (the ensemble) or "importance" (importance sampling, :mod:`dnmr.importance`).
+    importance : dict
+        For importance sampling: its draws, effective samples and Pareto shape (``pareto_k``), and the proposal.
     """
 
     title: str
@@ -178,6 +189,8 @@ class Posterior(NotebookView):
     shown: tuple[str, ...]
     notes: list[str] = field(default_factory=list)
     extra: dict = field(default_factory=dict)
+    method: str = "emcee"
+    importance: dict = field(default_factory=dict)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -203,7 +216,10 @@ class Posterior(NotebookView):
         i = self._index(name)
         q, x = self.quantities[i], self.samples[:, i]
         tau = float(self.autocorrelation_steps[i])
-        ess = x.size * self.thin / tau if tau > 0 else math.nan
+        if self.method == "importance":
+            ess = float(self.importance["effective_samples"])
+        else:
+            ess = x.size * self.thin / tau if tau > 0 else math.nan
         nan2 = (math.nan, math.nan)
         if q.kind == "interval":
             p = np.percentile(x, [2.5, 15.87, 50.0, 84.13, 97.5])
@@ -225,14 +241,21 @@ class Posterior(NotebookView):
     def report(self) -> str:
         """A readable account: sampler, likelihood, each quantity's median and intervals (or bound), notes."""
         kept = self.chain.shape[0]
-        lines = [f"Posterior of {self.title}",
-                 f"  sampler      emcee ensemble, {self.walkers} walkers x {self.steps} steps, burn-in {self.burn}, "
-                 f"thin {self.thin}: {kept * self.walkers} samples (seed {self.seed})",
-                 f"  acceptance   {self.acceptance_fraction:.2f} (mean over walkers)",
-                 f"  likelihood   {self.likelihood}", ""]
+        if self.method == "importance":
+            info = self.importance
+            sampler = [f"  sampler      importance sampling, {info['draws']} draws from {info['proposal']}, resampled "
+                       f"(seed {self.seed})",
+                       f"  weights      about {info['effective_samples']:.0f} effective samples; Pareto shape "
+                       f"{info['pareto_k']:.2f} (reliable below {PARETO_LIMIT})"]
+        else:
+            sampler = [f"  sampler      emcee ensemble, {self.walkers} walkers x {self.steps} steps, burn-in {self.burn}, "
+                       f"thin {self.thin}: {kept * self.walkers} samples (seed {self.seed})",
+                       f"  acceptance   {self.acceptance_fraction:.2f} (mean over walkers)"]
+        lines = [f"Posterior of {self.title}", *sampler, f"  likelihood   {self.likelihood}", ""]
         width = max(len(q.label) for q in self.quantities)
         for s in self.summaries():
-            ess = f"tau {s.autocorrelation_steps:.0f} steps, about {s.effective_samples:.0f} independent samples"
+            ess = (f"about {s.effective_samples:.0f} independent samples" if self.method == "importance" else
+                   f"tau {s.autocorrelation_steps:.0f} steps, about {s.effective_samples:.0f} independent samples")
             lines.append(f"  {s.label:<{width}}  {s.describe()}   ({ess})")
             if s.reason:
                 lines.append(f"  {'':<{width}}  {s.reason}")
@@ -248,9 +271,10 @@ class Posterior(NotebookView):
 
     def to_dict(self) -> dict:
         """Plain data (JSON-ready): settings, diagnostics, the summary of every quantity; no samples."""
-        return {"title": self.title, "method": "emcee", "likelihood": self.likelihood, "walkers": self.walkers,
+        return {"title": self.title, "method": self.method, "likelihood": self.likelihood, "walkers": self.walkers,
                 "steps": self.steps, "burn": self.burn, "thin": self.thin, "seed": self.seed,
                 "samples": int(self.samples.shape[0]), "acceptance_fraction": self.acceptance_fraction,
+                **({"importance": dict(self.importance)} if self.importance else {}),
                 "quantities": {s.name: s.to_dict() for s in self.summaries()}, **self.extra,
                 "notes": list(self.notes)}
 
@@ -365,13 +389,21 @@ def posterior_from_chain(full: np.ndarray, quantities: Sequence[Quantity], *, ac
                      "(a posterior with several narrow modes?); the samples may not cover it")
     post = Posterior(title, tuple(quantities), kept[::thin].copy(), tau, float(acceptance), walkers, steps, burn,
                      thin, seed, likelihood, tuple(shown), notes, dict(extra or {}))
-    for q, s in zip(quantities, post.summaries()):
+    post.notes += prior_edge_notes(post)
+    return post
+
+
+def prior_edge_notes(post: Posterior) -> list[str]:
+    """Notes on the 95 % intervals of `post` that reach the end of a flat prior (the data bound them on one side
+    only): a line for each."""
+    notes = []
+    for q, s in zip(post.quantities, post.summaries()):
         low, high = s.prior_range
         near = PRIOR_EDGE * (s.ci95[1] - s.ci95[0])
         if q.flat_prior and s.kind == "interval" and (s.ci95[0] - low < near or high - s.ci95[1] < near):
-            post.notes.append(f"the 95 % interval of {s.label} reaches the end of its prior range "
-                              f"({low:g} to {high:g}): the data bound it on one side only, read it as a bound")
-    return post
+            notes.append(f"the 95 % interval of {s.label} reaches the end of its prior range "
+                         f"({low:g} to {high:g}): the data bound it on one side only, read it as a bound")
+    return notes
 
 
 def _autocorrelation(chain: np.ndarray, emcee) -> float:

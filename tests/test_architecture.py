@@ -15,7 +15,7 @@ PACKAGE = ROOT / "dnmr"
 #: The layers, lowest first: a module may import at module level only from its own layer or below.
 LAYERS = (
     ("dnmr.errors", "dnmr.nuclei", "dnmr.modelparts", "dnmr.model", "dnmr.kinetics", "dnmr.formatting", "dnmr.notebook",
-     "dnmr.posterior"),
+     "dnmr.posterior", "dnmr.importance"),
     ("dnmr.io",),
     ("dnmr.engine",),
     ("dnmr.activation",),

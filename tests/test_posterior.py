@@ -1,4 +1,5 @@
-"""Posterior samples (dnmr.fitting.posterior): the Eyring line, one spectrum, the pairwise figure, the CLI.
+"""Posterior samples (dnmr.fitting.posterior): the Eyring line, one spectrum (importance sampling from the fit
+and emcee's ensemble), the pairwise figure, the CLI.
 
 References: Gelman et al., Bayesian Data Analysis, 3rd ed. (2013), section 14.2 (linear regression with
 the noninformative prior: the posterior of the coefficients is normal about the weighted least-squares
@@ -175,18 +176,28 @@ def mcconnell_spectrum(k_true: float, sigma: float, seed: int) -> MeasuredSpectr
 SMALL = {"region_ppm": REGION, "baseline_order": 0, "phase": "none", "frequency_offset": False}
 
 
-def test_well_determined_rate_posterior_matches_least_squares():
+@pytest.mark.parametrize("method", ["importance", "emcee"])
+def test_well_determined_rate_posterior_matches_least_squares(method):
     # McConnell (1958) spectrum near coalescence (k = 120 s^-1, k_c = pi 80 / sqrt 2 = 178 s^-1,
     # Gutowsky & Holm 1956), noise sigma = 0.1 known.  For a well-determined rate the posterior is close
     # to normal (Laplace approximation), so its 95 % interval is about 2 x 1.96 least-squares errors.
+    # Both samplers: importance sampling from the fit (the default) and emcee's ensemble.
     k_true = 120.0
     fit = fit_spectrum(mcconnell_spectrum(k_true, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
     assert fit.rate(0).status == "determined"
     before = fit.parameters.valuesdict()
     calls = []
-    post = sample_spectrum_posterior(fit, steps=500, walkers=12, seed=1, progress=lambda *a: calls.append(a))
+    if method == "emcee":
+        post = sample_spectrum_posterior(fit, method="emcee", steps=500, walkers=12, seed=1,
+                                         progress=lambda *a: calls.append(a))
+        assert calls[-1] == (500, 500) and len(calls) >= 400  # one call a step
+        assert any("autocorrelation times" in n and "emcee advises" in n for n in post.notes)  # 375 kept steps
+    else:
+        post = sample_spectrum_posterior(fit, draws=2000, seed=1, progress=lambda *a: calls.append(a))
+        assert calls[-1] == (2000, 2000) and len(calls) == 2000  # one call a draw
+        assert post.importance["pareto_k"] < 0.7 and post.importance["effective_samples"] > 1000
+        assert post.samples.shape[0] == 2000 and "importance sampling" in post.report()
     assert fit.parameters.valuesdict() == before  # the least-squares fit is left as it was
-    assert calls[-1] == (500, 500) and len(calls) >= 400  # one call a step
     s = post.summary("log10_k_flip")
     assert s.kind == "interval"
     assert s.ci95[0] < math.log10(k_true) < s.ci95[1]
@@ -195,13 +206,14 @@ def test_well_determined_rate_posterior_matches_least_squares():
     rate = post.summary("rate_per_s_flip")  # the same quantiles in s^-1
     assert rate.ci95 == pytest.approx(tuple(10.0 ** v for v in s.ci95), rel=1e-6)  # up to interpolation
     assert rate.median == pytest.approx(10.0 ** s.median, rel=1e-6)
-    assert any("autocorrelation times" in n and "emcee advises" in n for n in post.notes)  # 375 kept steps
     d = json.loads(json.dumps(post.to_dict()))
-    assert d["quantities"]["log10_k_flip"]["kind"] == "interval" and d["walkers"] == 12
+    assert d["quantities"]["log10_k_flip"]["kind"] == "interval" and d["method"] == method
+    assert d["walkers"] == (12 if method == "emcee" else 1)
     assert "error scale" in post.report() and "flip" in post.report()
 
 
-def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
+@pytest.mark.parametrize("method", ["importance", "emcee"])
+def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile(method):
     # k = 0.005 s^-1 broadens the lines by k/pi = 0.002 Hz (slow limit of McConnell 1958), far below
     # what this noise resolves while the linewidth is fitted: the profile gives an upper bound (this
     # noise draw; tests/test_fitting.py shows it is the usual outcome).  The posterior, flat in log10 k,
@@ -209,7 +221,9 @@ def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
     fit = fit_spectrum(mcconnell_spectrum(0.005, 0.1, 0), two_site_model(), linewidth="shared", **SMALL)
     rate = fit.rate(0)
     assert rate.status == "upper-bound"
-    post = sample_spectrum_posterior(fit, steps=700, walkers=12, seed=2)
+    settings = {"method": "emcee", "steps": 700, "walkers": 12} if method == "emcee" else {"draws": 3000}
+    post = sample_spectrum_posterior(fit, seed=2, **settings)
+    assert post.method == method
     s = post.summary("log10_k_flip")
     assert s.kind == "upper-bound" and math.isnan(s.median) and math.isnan(s.ci68[0])
     x = post.column("log10_k_flip")
@@ -227,6 +241,14 @@ def test_slow_limit_posterior_gives_an_upper_bound_like_the_profile():
     assert np.mean(below < 0.5 * (low + s.bound_95)) > 0.3
     assert "upper bound" in post.summary("rate_per_s_flip").describe()
     assert post.summary("rate_per_s_flip").bound_95 == pytest.approx(10.0 ** s.bound_95, rel=1e-6)
+
+
+def test_bad_sampler_settings_are_one_line_errors():
+    fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    for settings, where in (({"method": "gibbs"}, "method"), ({"draws": 50}, "draws")):
+        with pytest.raises(InputError) as err:
+            sample_spectrum_posterior(fit, **settings)
+        assert err.value.where == where
 
 
 # --- the pairwise posterior figure -------------------------------------------------------------------
@@ -332,8 +354,8 @@ def test_cli_without_emcee_is_one_line_exit_2(tmp_path, monkeypatch):
 
 
 def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
-    # two spectra of the series tests (McConnell 1958 spectra, tests/test_series.py); a very short chain:
-    # this checks the outputs, not the numbers (those are checked above)
+    # two spectra of the series tests (McConnell 1958 spectra, tests/test_series.py); few draws and a very
+    # short chain: this checks the outputs, not the numbers (those are checked above)
     from test_series import write_series
 
     fit_table = ('region_ppm = [2.7, 3.3]\nlinewidth = "fixed"\nbaseline_order = 0\nphase = "none"\n'
@@ -341,12 +363,12 @@ def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
     series = write_series(tmp_path / "inputs", [250.0, 290.0], fit_table=fit_table)
     out = tmp_path / "out"
     result = CliRunner().invoke(cli, ["fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report",
-                                      "--posterior", "--posterior-steps", "40", "--posterior-seed", "5"])
+                                      "--posterior", "--posterior-draws", "300", "--posterior-seed", "5"])
     assert result.exit_code == 0, result.output + result.stderr
     data = json.loads((out / "results.json").read_text())
     for entry in data["spectra"]:
         post = entry["posterior"]
-        assert post["steps"] == 40 and post["seed"] == 5
+        assert post["method"] == "importance" and post["importance"]["draws"] == 300 and post["seed"] == 5
         assert {"log10_k_flip", "rate_per_s_flip"} <= set(post["quantities"])
         assert (out / "figures" / Path(post["figure"]).name).exists()
     with open(out / "rates.csv", newline="") as fh:
@@ -359,19 +381,21 @@ def test_cli_fit_posterior_adds_results_and_figures(tmp_path):
     # --resume reuses each stored posterior while spectrum, model, fit and settings are unchanged, and
     # samples again when the settings change
     args = ["fit", str(series), "-o", str(out), "--serial", "--quiet", "--no-report", "--resume", "--posterior",
-            "--posterior-steps", "40"]
+            "--posterior-draws", "300"]
     again = CliRunner().invoke(cli, args + ["--posterior-seed", "5"])
     assert again.exit_code == 0, again.output + again.stderr
     resumed = json.loads((out / "results.json").read_text())
     for before, after in zip(data["spectra"], resumed["spectra"]):
         assert after["posterior"] == before["posterior"]
         assert "posterior reused from the earlier run" in after["notes"]
-    other = CliRunner().invoke(cli, [a for a in args if a != "--quiet"] + ["--posterior-seed", "6"])
+    other = CliRunner().invoke(cli, [a for a in args if a != "--quiet"] + ["--posterior-seed", "6", "--posterior-method",
+                                                                             "emcee", "--posterior-steps", "40"])
     assert other.exit_code == 0, other.output + other.stderr
     assert "sampling posteriors: 2 of 2 done" in other.stderr  # plain progress lines off a terminal
     assert "elapsed" not in again.stderr  # --quiet
     for entry in json.loads((out / "results.json").read_text())["spectra"]:
         assert entry["posterior"]["seed"] == 6 and "posterior reused from the earlier run" not in entry["notes"]
+        assert entry["posterior"]["method"] == "emcee" and entry["posterior"]["steps"] == 40
 
 
 def test_cli_fit_posterior_without_emcee_stops_before_fitting(tmp_path, monkeypatch):

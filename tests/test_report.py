@@ -97,12 +97,12 @@ def report(fitted) -> Path:
 
 @pytest.fixture(scope="module")
 def sampled(fitted, tmp_path_factory) -> Path:
-    """The same fits (reused by resume) with every spectrum's posterior sampled, and its report.  A very
-    short chain: this checks what the report shows, not the numbers (tests/test_posterior.py does)."""
+    """The same fits (reused by resume) with every spectrum's posterior sampled, and its report.  Few
+    draws: this checks what the report shows, not the numbers (tests/test_posterior.py does)."""
     out = tmp_path_factory.mktemp("bayes") / "out"
     shutil.copytree(fitted, out, ignore=shutil.ignore_patterns("report.html", "supporting-information"))
     result = fit_series(fitted.parent / "series.toml", out, resume=True, workers=1, progress=False,
-                        posterior={"steps": 40, "walkers": 16, "seed": 5})
+                        posterior={"draws": 300, "seed": 5})
     assert result.exit_status == 0 and all(o.reused for o in result.outcomes)
     return write_report(out)
 
@@ -170,6 +170,7 @@ def test_report_shows_each_posterior_beside_the_least_squares_result(sampled):
             assert row[4] == f"{post['ci95'][0]:.4g} to {post['ci95'][1]:.4g}"
         for note in s["posterior"]["notes"]:
             assert html.escape(note, quote=True) in text
+        assert f"{s['posterior']['importance']['draws']} draws from a Student t" in text  # how it was sampled
     # the rate table adds the posterior rate from rates.csv
     assert "posterior k / s^-1: median (95 %) or 95 % bound" in text
 

@@ -1,12 +1,11 @@
 """Bayesian errors of one spectrum fit: posterior samples of its free parameters.
 
-Optional: needs the emcee package (``pip install emcee``, or the ``bayes`` extra); the sampler, the chain
-and its diagnostics are those of :mod:`dnmr.posterior`.
+The samplers, the samples and their diagnostics are those of :mod:`dnmr.posterior`; the ensemble needs the
+emcee package (``pip install emcee``, or the ``bayes`` extra).
 
 One spectrum (:func:`sample_spectrum_posterior`)
 ------------------------------------------------
-lmfit's emcee route (``lmfit.Minimizer.emcee``) from the least-squares optimum.  The noise is taken as
-known: the log-likelihood is
+The noise is taken as known: the log-likelihood is
 
     ln L = -chi^2 / (2 s),    chi^2 = sum ((data - fit) / sigma)^2,
 
@@ -19,6 +18,18 @@ for a rate means flat in log10 k between ``rate_limits_per_s``.  A rate the chi-
 is reported as the one-sided 95 % bound of its posterior (95th percentile for an upper bound, 5th for a
 lower one), never with a median and error bar: the posterior there is the prior, and how much of it lies
 below the bound depends on where the prior range ends.
+
+Because the least-squares fit is already the Laplace approximation of this posterior, it makes a close
+proposal for importance sampling (the default, :mod:`dnmr.importance`): a Student t about the optimum with
+1.2^2 x the fit's covariance (the inverse of the curvature J^T J / s at the optimum; heavier tails than
+the posterior's, so the weights stay bounded).  A rate the profile only bounds is drawn along its own
+chi-square profile between its limits, in proportion to exp(-delta chi^2 / (2 s)) of the optimum at each
+value (a fifth uniformly), and the others' centre follows that optimum (refined at 25 values of the rate and
+between them where it moves: near its bound the rate trades against the linewidth).  Where the curvature
+misjudges the posterior (a parameter at a bound), the proposal adapts to the weighted draws.  Each draw costs one lineshape
+evaluation, 4000 draws by default, against walkers x steps for an ensemble; the weights' effective number
+and Pareto shape tell how far to trust them, and where the shape passes 0.7 the posterior is sampled
+again by lmfit's emcee route (``lmfit.Minimizer.emcee``) from the least-squares optimum, with a note.
 """
 from __future__ import annotations
 
@@ -35,10 +46,12 @@ import numpy as np
 import dnmr  # for annotations only: the fit's class is named through the public API (no import circle)
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout
-from dnmr.fitting.problem import FitProblem
+from dnmr.fitting.problem import FitProblem, refine
 from dnmr.fitting.workers import single_threaded_blas
+from dnmr.importance import FlatProfile, StudentProposal, posterior_from_draws, sample_by_importance
 from dnmr.posterior import (
     BOUND_KINDS,
+    PARETO_LIMIT,
     Posterior,
     Quantity,
     posterior_from_chain,
@@ -51,6 +64,20 @@ from dnmr.posterior import (
 PAIRS_MAX = 6
 #: Rate statuses of a fit whose posterior is summarised by a one-sided bound, or not at all.
 NOT_INTERVALS = BOUND_KINDS + ("undetermined",)
+#: The samplers of :func:`sample_spectrum_posterior`.
+METHODS = ("importance", "emcee")
+#: Draws of importance sampling unless asked otherwise.
+DEFAULT_DRAWS = 4000
+#: The proposal's scale is the fit's covariance (then the weighted draws') times the square of this.
+PROPOSAL_WIDTH = 1.2
+#: Values of a bound rate at which the optimum of the other parameters is refined for the proposal first,
+#: then halfway between two where it moves by more than PATH_STEP of the proposal's spread, PATH_MOST_POINTS
+#: values in all at most.
+PATH_POINTS = 25
+PATH_STEP = 0.5
+PATH_MOST_POINTS = 100
+#: Only where chi-square is within this many error scales of the fit's does the path matter (5 sigma).
+PATH_REACH = 25.0
 
 
 def _label(name: str) -> tuple[str, str]:
@@ -93,6 +120,8 @@ def _fit_covariance(fit: "dnmr.SpectrumFit", names: Sequence[str]) -> np.ndarray
 def sample_spectrum_posterior(
     fit: "dnmr.SpectrumFit",
     *,
+    method: str = "importance",
+    draws: int = DEFAULT_DRAWS,
     steps: int = 4000,
     walkers: int | None = None,
     burn: int | None = None,
@@ -100,30 +129,36 @@ def sample_spectrum_posterior(
     seed: int | None = 0,
     progress: Callable[[int, int], None] | None = None,
 ) -> Posterior:
-    """Posterior samples of the free parameters of one spectrum fit (lmfit's emcee route).
+    """Posterior samples of the free parameters of one spectrum fit.
 
     The likelihood is exp(-chi^2 / (2 s)) with the fit's noise sigma and error scale s (module notes);
-    priors are flat within the parameters' bounds; the walkers start about the least-squares optimum,
-    spread by half its errors.  Slow: every step evaluates the lineshape once per walker.
+    priors are flat within the parameters' bounds.  By default importance sampling from the least-squares
+    fit (module notes: one lineshape evaluation per draw), which falls back to emcee's ensemble where its
+    weights say it is not reliable; ``method="emcee"`` asks for the ensemble, whose walkers start about the
+    least-squares optimum (slow: every step evaluates the lineshape once per walker).
 
     Parameters
     ----------
     fit : SpectrumFit
         The least-squares fit (:func:`dnmr.fitting.spectrumfit.fit_spectrum`), from which the data, noise, model and
         bounds are taken.
+    method : {"importance", "emcee"}
+        Importance sampling from the fit (with the ensemble as its fallback), or the ensemble.
+    draws : int
+        Draws of importance sampling (at least 100).
     steps : int
-        Steps of every walker (burn-in included).
+        Steps of every walker of the ensemble (burn-in included).
     walkers : int, optional
         Walkers of the ensemble (at least twice the free parameters; default 32, or two per free
         parameter and two more where that is more).
     burn : int, optional
-        Steps discarded at the start (default steps // 4).
+        Steps of the ensemble discarded at the start (default steps // 4).
     thin : int
-        Keep every thin-th step after the burn-in.
+        Keep every thin-th step of the ensemble after the burn-in.
     seed : int or None
-        Seed of the starting positions and of the sampler (None: fresh each call).
+        Seed of the draws, the resampling, the walkers' starts and the ensemble (None: fresh each call).
     progress : callable, optional
-        Called as progress(step, steps) after every step.
+        Called as progress(done, total) after every draw (importance) or step (ensemble).
 
     Returns
     -------
@@ -132,30 +167,167 @@ def sample_spectrum_posterior(
         and ``rate_per_s_<process>`` (s^-1) for every free rate.  A rate the profile classified as a
         bound is summarised by its one-sided 95 % bound.
     """
-    require_emcee()
+    if method not in METHODS:
+        raise InputError(f"method must be one of {', '.join(METHODS)}, got {method!r}", where="method")
     layout = ParameterLayout.for_model(fit.best_model, fit.options)
-    problem = FitProblem(layout, fit.ppm, fit.data, fit.noise)
-    params = fit.parameters.copy()
-    free = [n for n, p in params.items() if p.vary and not p.expr]
-    if not free:
+    setup = _Setup(fit, FitProblem(layout, fit.ppm, fit.data, fit.noise), fit.parameters.copy(),
+                   {name: r for name, r in zip(layout.rate_names, fit.rates)})
+    if not setup.free:
         raise InputError("the fit has no free parameters to sample", where="parameters")
+    notes = []
+    if method == "importance":
+        if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 100:
+            raise InputError(f"draws must be a whole number of at least 100, got {draws!r}", where="draws")
+        post = _importance_posterior(setup, int(draws), seed, progress)
+        if not post.importance["pareto_k"] > PARETO_LIMIT:
+            return post
+        notes.append(f"importance sampling from the fit was not reliable here (Pareto shape of its weights "
+                     f"{post.importance['pareto_k']:.2f} > {PARETO_LIMIT}): sampled with the emcee ensemble instead")
+    require_emcee()
+    return _ensemble_posterior(setup, steps, walkers, burn, thin, seed, progress, notes)
+
+
+class _Setup:
+    """What both samplers take from a fit: its problem, parameters (a copy), free names, rates by parameter
+    name, bounds, and the words for the likelihood and the title."""
+
+    def __init__(self, fit: "dnmr.SpectrumFit", problem: FitProblem, params: lmfit.Parameters, rate_of: dict):
+        self.fit, self.problem, self.params, self.rate_of = fit, problem, params, rate_of
+        self.free = [n for n, p in params.items() if p.vary and not p.expr]
+        self.low = np.array([params[n].min for n in self.free], float)
+        self.high = np.array([params[n].max for n in self.free], float)
+        self.centre = np.array([params[n].value for n in self.free])
+        where = f" at {fit.temperature_k:g} K" if fit.temperature_k else ""
+        self.title = f"the fit of {Path(fit.source).name or 'the spectrum'}{where}"
+        self.likelihood = (f"exp(-chi^2 / (2 s)), chi^2 with the fit's noise sigma = {fit.noise.sigma:.4g} "
+                           f"({fit.noise.method}) and error scale s = {fit.error_scale:.3g}; flat priors within the "
+                           "parameters' bounds (log10 k flat between the rate limits)")
+
+    def flat(self) -> np.ndarray:
+        """Which free parameters are rates the profile only bounds (or could not determine)."""
+        return np.array([n in self.rate_of and self.rate_of[n].status in NOT_INTERVALS for n in self.free])
+
+
+def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: int | None, thin: int,
+                        seed: int | None, progress: Callable[[int, int], None] | None, notes: list[str]) -> Posterior:
+    """The posterior by lmfit's emcee route, the walkers about the least-squares optimum."""
+    free, params, rate_of = setup.free, setup.params, setup.rate_of
     walkers, burn = sampler_settings(steps, walkers, burn, thin, len(free))
-    rate_of = {name: r for name, r in zip(layout.rate_names, fit.rates)}
-    start = _walker_starts(np.random.default_rng(seed), fit, params, free, rate_of, walkers)
-    residual = _scaled_residual(problem, fit.error_scale, walkers, steps, progress)
+    start = _walker_starts(np.random.default_rng(seed), setup.fit, params, free, rate_of, walkers)
+    residual = _scaled_residual(setup.problem, setup.fit.error_scale, walkers, steps, progress)
     result = _run_emcee(residual, params, start, steps, walkers, seed)
     if progress is not None:
         progress(steps, steps)
     chain = np.asarray(result.chain)[:, :, [result.var_names.index(n) for n in free]]
     full, quantities = _with_rates(chain, params, free, rate_of)
     shown = _most_correlated(chain[burn:].reshape(-1, len(free)), free, [n for n in free if n in rate_of])
-    where = f" at {fit.temperature_k:g} K" if fit.temperature_k else ""
-    likelihood = (f"exp(-chi^2 / (2 s)), chi^2 with the fit's noise sigma = {fit.noise.sigma:.4g} "
-                  f"({fit.noise.method}) and error scale s = {fit.error_scale:.3g}; flat priors within the "
-                  "parameters' bounds (log10 k flat between the rate limits)")
     return posterior_from_chain(full, quantities, acceptance=float(np.mean(result.acceptance_fraction)),
-                                walkers=walkers, steps=steps, burn=burn, thin=thin, seed=seed, likelihood=likelihood,
-                                shown=shown, title=f"the fit of {Path(fit.source).name or 'the spectrum'}{where}")
+                                walkers=walkers, steps=steps, burn=burn, thin=thin, seed=seed,
+                                likelihood=setup.likelihood, shown=shown, title=setup.title, notes=notes)
+
+
+def _importance_posterior(setup: _Setup, draws: int, seed: int | None,
+                          progress: Callable[[int, int], None] | None) -> Posterior:
+    """The posterior by importance sampling from the fit (module notes)."""
+    residual = _scaled_residual(setup.problem, setup.fit.error_scale, 1, draws, None)
+    params = setup.params
+
+    def log_likelihood(x: np.ndarray) -> float:
+        for name, value in zip(setup.free, x):
+            params[name].value = float(value)
+        params.update_constraints()
+        r = residual(params)
+        return -0.5 * float(r @ r)
+
+    with single_threaded_blas():
+        x, log_weights, adapted = sample_by_importance(log_likelihood, _fit_proposal(setup), draws,
+                                                       np.random.default_rng(seed), PROPOSAL_WIDTH, progress)
+    full, quantities = _with_rates(x[:, None, :], params, setup.free, setup.rate_of)
+    shown = _most_correlated(x, setup.free, [n for n in setup.free if n in setup.rate_of])
+    words = (f"a Student t about the least-squares optimum with {PROPOSAL_WIDTH:g}^2 x its covariance"
+             + (", rates that are only bounded drawn along their chi-square profile between their limits (a fifth uniformly)"
+                if setup.flat().any() else "")
+             + (f"; adapted {adapted} time{'s' if adapted > 1 else ''} to the weighted draws" if adapted else ""))
+    return posterior_from_draws(full[:, 0, :], log_weights, quantities, proposal=words, seed=seed,
+                                title=setup.title, likelihood=setup.likelihood, shown=shown)
+
+
+def _fit_proposal(setup: _Setup) -> StudentProposal:
+    """The first proposal (module notes): about the optimum with PROPOSAL_WIDTH^2 x the inverse of the
+    curvature J^T J / s of the parameters other than the flat rates; the flat rates uniform between their
+    limits, the others' centre following their optimum as each flat rate moves (its profile)."""
+    flat = setup.flat()
+    peaked = ~flat
+    jacobian = _jacobian_at_optimum(setup)[:, peaked]
+    norms = np.linalg.norm(jacobian, axis=0)
+    norms = np.where(norms > 0, norms, 1.0)  # columns scaled to one: their sizes differ by many decades
+    unit = jacobian / norms
+    scale = PROPOSAL_WIDTH ** 2 * setup.fit.error_scale * np.linalg.pinv(unit.T @ unit, hermitian=True) / np.outer(norms, norms)
+    profiles = tuple(_rate_profile(setup, j, peaked, np.sqrt(np.diag(scale))) for j in np.flatnonzero(flat))
+    return StudentProposal(setup.centre, scale, peaked, setup.low, setup.high, profiles)
+
+
+def _jacobian_at_optimum(setup: _Setup) -> np.ndarray:
+    """d residual / d free parameter at the least-squares optimum: exact where the fit problem has it, else
+    central differences (steps of a hundredth of a standard error, or 1e-6 of the value)."""
+    params = setup.params.copy()
+    if setup.problem.exact_jacobian:
+        return setup.problem.jacobian(params)
+    columns = []
+    for name in setup.free:
+        par = params[name]
+        step = 0.01 * par.stderr if par.stderr and np.isfinite(par.stderr) and par.stderr > 0 else 1e-6 * max(abs(par.value), 1.0)
+        ends = []
+        for sign in (1.0, -1.0):
+            moved = params.copy()
+            moved[name].set(value=par.value + sign * step)
+            moved.update_constraints()
+            ends.append(setup.problem.residual(moved))
+        columns.append((ends[0] - ends[1]) / (2.0 * step))
+    return np.column_stack(columns)
+
+
+def _rate_profile(setup: _Setup, j: int, peaked: np.ndarray, spread: np.ndarray) -> FlatProfile:
+    """How the optimum of the peaked parameters moves with flat rate `j`, and how high the posterior is there:
+    refined at PATH_POINTS values of it between its limits (each from its neighbour's optimum, outwards from
+    the fit's), then halfway between neighbours whose optima differ by more than PATH_STEP of the proposal's
+    `spread`, where the posterior has mass (chi-square within PATH_REACH x s of the fit's at either end), up
+    to PATH_MOST_POINTS."""
+    grid = list(np.linspace(setup.low[j], setup.high[j], PATH_POINTS))
+    first = int(np.argmin(np.abs(np.array(grid) - setup.centre[j])))
+    optima = {}
+    for order in (range(first, len(grid)), range(first - 1, -1, -1)):
+        start = setup.params
+        for i in order:
+            optima[grid[i]] = _optimum_at(setup, j, grid[i], start)
+            start = optima[grid[i]][1]
+    reach = setup.fit.chi_square + PATH_REACH * setup.fit.error_scale
+    while len(optima) < PATH_MOST_POINTS:
+        values = sorted(optima)
+        moves = [_moves(setup, optima[v][1], peaked) for v in values]
+        jumps = [float(np.max(np.abs(b - a) / spread)) if min(optima[u][0], optima[v][0]) < reach else 0.0
+                 for a, b, u, v in zip(moves, moves[1:], values, values[1:])]
+        worst = int(np.argmax(jumps))
+        if jumps[worst] <= PATH_STEP:
+            break
+        middle = 0.5 * (values[worst] + values[worst + 1])
+        optima[middle] = _optimum_at(setup, j, middle, optima[values[worst]][1])
+    values = sorted(optima)
+    chi_square = np.array([optima[v][0] for v in values])
+    heights = np.exp(-0.5 * (chi_square - chi_square.min()) / setup.fit.error_scale)
+    return FlatProfile(int(j), np.array(values), np.array([_moves(setup, optima[v][1], peaked) for v in values]), heights)
+
+
+def _optimum_at(setup: _Setup, j: int, value: float, start: lmfit.Parameters) -> tuple[float, lmfit.Parameters]:
+    """Chi-square and the least-squares optimum with free parameter `j` held at `value`, refined from `start`."""
+    params = start.copy()
+    params[setup.free[j]].set(value=float(value), vary=False)
+    return refine(setup.problem, params, tolerance=1e-5)
+
+
+def _moves(setup: _Setup, params: lmfit.Parameters, peaked: np.ndarray) -> np.ndarray:
+    """How far the peaked parameters of `params` lie from the fit's optimum."""
+    return np.array([params[n].value for n in setup.free])[peaked] - setup.centre[peaked]
 
 
 def _walker_starts(rng: np.random.Generator, fit: "dnmr.SpectrumFit", params: lmfit.Parameters, free: list[str],

@@ -124,14 +124,15 @@ class SeriesFit(NotebookView):
         sampled = [o for o in self.by_temperature() if o.posterior is not None]
         if not sampled:
             return []
-        lines = ["", "posterior of the rates (emcee; pairwise posterior figures figures/NNN_<name>_posterior.png):"]
+        lines = ["", "posterior of the rates (pairwise posterior figures figures/NNN_<name>_posterior.png):"]
         for o in sampled:
             t = f"  {o.spectrum.temperature_k:>7.2f}"
             if "error" in o.posterior:
                 lines.append(f"{t}  not sampled: {o.posterior['error']}")
                 continue
-            short = " [chain short for its autocorrelation time: run more steps]" if any(
-                "emcee advises" in n for n in o.posterior["notes"]) else ""
+            short = (" [chain short for its autocorrelation time: run more steps]" if any(
+                "emcee advises" in n for n in o.posterior["notes"]) else
+                " [few effective samples: draw more]" if any("effective samples" in n for n in o.posterior["notes"]) else "")
             for i, process in enumerate(self.series.model.process_names()):
                 q = o.posterior_rate(i)
                 if q is not None:
@@ -259,10 +260,10 @@ def fit_series(
         False: no progress report.  Otherwise progress on stderr: a live bar on a terminal, plain lines
         (``fitting spectra: 3 of 17 done (260 K), 12 s elapsed``) when stderr is a file or a pipe.
     posterior : mapping, optional
-        Also sample the posterior of every fitted spectrum (needs emcee; slow: about walkers x steps
-        lineshape evaluations per spectrum) with these settings of
-        :func:`dnmr.fitting.posterior.sample_spectrum_posterior` (steps, walkers, burn, thin, seed; ``{}`` for
-        the defaults).  The summaries go into results.json and at the end of rates.csv, a pairwise posterior figure
+        Also sample the posterior of every fitted spectrum with these settings of
+        :func:`dnmr.fitting.posterior.sample_spectrum_posterior` (method, draws, steps, walkers, burn, thin, seed;
+        ``{}`` for the defaults: importance sampling from the fit, about `draws` lineshape evaluations per
+        spectrum; emcee's ensemble, walkers x steps evaluations, where that is not reliable or asked for).  The summaries go into results.json and at the end of rates.csv, a pairwise posterior figure
         per spectrum into ``figures/NNN_<name>_posterior.png``.  On `resume`, a posterior stored for the
         same spectrum, model, fit and settings is reused.
 

@@ -338,9 +338,9 @@ class SpectrumFit(NotebookView):
         return plot_spectrum_fit(self, figure=figure)
 
     def sample_posterior(self, **settings) -> "Posterior":
-        """Posterior samples of the free parameters (needs emcee); see
-        :func:`dnmr.fitting.posterior.sample_spectrum_posterior` for the method and the settings (steps, walkers,
-        burn, thin, seed, progress)."""
+        """Posterior samples of the free parameters (importance sampling from this fit; emcee's ensemble where
+        that is not reliable); see :func:`dnmr.fitting.posterior.sample_spectrum_posterior` for the method and the
+        settings (method, draws, steps, walkers, burn, thin, seed, progress)."""
         from dnmr.fitting.posterior import sample_spectrum_posterior
 
         return sample_spectrum_posterior(self, **settings)

@@ -82,21 +82,30 @@ def posterior_block(outdir: Path, s: dict) -> str:
     if not post:
         return ""
     name = Path(str(s.get("file", "?"))).name
-    head = "<h4>Posterior (emcee)</h4>"
+    head = f"<h4>Posterior ({'importance sampling' if post.get('method') == 'importance' else 'emcee'})</h4>"
     if "error" in post:
         return head + f"<p class=\"warn\">not sampled: {esc(post['error'])}</p>"
     fit = s.get("fit") or {}
     rows = [[q.get("label", n), _least_squares_text(n, fit), *_posterior_cells(q), q.get("reason", "")]
             for n, q in (post.get("quantities") or {}).items()]
-    body = (f"<p>{esc(post.get('walkers'))} walkers × {esc(post.get('steps'))} steps, burn-in {esc(post.get('burn'))}, "
-            f"thin {esc(post.get('thin'))}, seed {esc(post.get('seed'))}: {esc(post.get('samples'))} samples; "
-            f"acceptance {table_number(post.get('acceptance_fraction'), '.2f')}. Likelihood "
-            f"{esc(post.get('likelihood', ''))}.</p>")
+    body = f"<p>{_sampler_text(post)} Likelihood {esc(post.get('likelihood', ''))}.</p>"
     body += table(["quantity", "least squares", "posterior median", "68 % interval", "95 % interval",
                    "one-sided 95 % bound", "why a bound"], rows, numeric=[False, True, True, True, True, True])
     body += bullets(post.get("notes", []), "muted")
     return head + body + figure_from_file(posterior_figure_path(outdir, s),
                                           f"{name}: posterior samples (pairwise posterior figure)", f"posterior of {name}")
+
+
+def _sampler_text(post: dict) -> str:
+    """How a posterior was sampled, in one sentence (escaped)."""
+    if post.get("method") == "importance":
+        info = post.get("importance") or {}
+        return (f"{esc(info.get('draws'))} draws from {esc(info.get('proposal', 'the fit'))}, seed {esc(post.get('seed'))}; "
+                f"about {table_number(info.get('effective_samples'), '.0f')} effective samples, Pareto shape of the "
+                f"weights {table_number(info.get('pareto_k'), '.2f')}.")
+    return (f"{esc(post.get('walkers'))} walkers × {esc(post.get('steps'))} steps, burn-in {esc(post.get('burn'))}, "
+            f"thin {esc(post.get('thin'))}, seed {esc(post.get('seed'))}: {esc(post.get('samples'))} samples; "
+            f"acceptance {table_number(post.get('acceptance_fraction'), '.2f')}.")
 
 
 def _spectrum_block(outdir: Path, s: dict) -> str:
