@@ -1,23 +1,32 @@
 """Fitting speed, measured in one run (not a test).
 
-(a) single-spectrum fits: lineshape evaluations and wall time per fit (coarse scan, refinement and
-    chi-square profile included) for a two-site spectrum near coalescence, a slow-limit spectrum that
-    only bounds the rate (its profile runs out to the limit), and one spectrum of the bundled demo
-    series (two rotamers of a coupled AB pair, 3276 points);
+(a) single-spectrum fits: lineshape evaluations, exact Jacobians and CPU time per fit (coarse scan, refinement
+    and chi-square profile included) for a two-site spectrum near coalescence, a slow-limit spectrum that
+    only bounds the rate (its profile runs out to the limit), and demo spectra (two rotamers of a coupled AB
+    pair, 3276 points; a rate with an error bar, a 68 % interval and a lower bound), by three routes in turn:
+    the default (exact Jacobian, recent lineshapes re-used), finite differences (lineshapes re-used), and
+    finite differences re-using nothing (the route before the exact Jacobian; goal: default <= 1/3 of it),
+    with the largest difference of log10 k between the default and the route before, in standard errors;
+(d) the posterior of demo spectra (default settings: importance sampling from the fit, 4000 draws): CPU
+    and wall time per spectrum (goal <= 10 s), effective samples and the Pareto shape of the weights, against
+    emcee's ensemble at its default 32 walkers x 4000 steps (timed over 200 steps and scaled);
 (b) the bundled demo series (every spectrum of it; shifts from the slow-exchange trend, populations free) fitted
     with one worker and with one per core: the parallel speed-up (goal >= 1.7 on 2 cores);
 (c) the global fit of that series (dH‡, dS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
-on the machine lowers the parallel figure.
+on the machine lowers the parallel figure and raises every time (CPU times less so; the ratios are of one run).
 
-Run:  python benchmarks/fit_speed.py
+Run:  python benchmarks/fit_speed.py            (everything)
+      python benchmarks/fit_speed.py --single   ((a) and (d) only)
 """
 from __future__ import annotations
 
+import math
 import os
 import shutil
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -25,7 +34,9 @@ from pathlib import Path
 import numpy as np
 
 import dnmr
+from dnmr.fitting import problem
 from dnmr.fitting.spectrumfit import fit_spectrum
+from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.readers import read_spectrum
 from dnmr.io.measured import MeasuredSpectrum
 from dnmr.fitting.globalfit import fit_global_from_two_step
@@ -50,15 +61,66 @@ def synthetic(rate_per_s: float, seed: int) -> MeasuredSpectrum:
     return MeasuredSpectrum(ppm, clean + np.random.default_rng(seed).normal(0, 0.05, ppm.size), 400.0, "synthetic", "text")
 
 
+ROUTES = {"default": (True, 4), "finite differences": (False, 4), "before": (False, 0)}
+"""Routes of (a): (use the exact Jacobian, lineshape decompositions kept)."""
+
+
 def time_fit(label: str, spectrum, model, repeats: int = 3, **options) -> None:
-    best, fit = np.inf, None
+    """Best CPU time of `repeats` fits by every route of ROUTES (taken in turn), evaluations and the ratio."""
+    best, fits = {}, {}
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        fit = fit_spectrum(spectrum, model, **options)
-        best = min(best, time.perf_counter() - t0)
-    n = fit.function_evaluations
-    print(f"  {label:<44} {fit.rate(0).status:<12} {n:5d} evaluations  {best:7.3f} s/fit  "
-          f"{1e3 * best / n:6.2f} ms/evaluation")
+        for route, (exact, kept) in ROUTES.items():
+            problem.USE_EXACT_JACOBIAN, problem.TERMS_KEPT = exact, kept
+            t0 = time.process_time()
+            fits[route] = fit_spectrum(spectrum, model, **options)
+            best[route] = min(best.get(route, np.inf), time.process_time() - t0)
+    problem.USE_EXACT_JACOBIAN, problem.TERMS_KEPT = ROUTES["default"]
+    text = "  ".join(f"{route}: {fits[route].function_evaluations:4d}+{fits[route].jacobian_evaluations:<3d} "
+                     f"{best[route]:6.3f} s" for route in ROUTES)
+    print(f"  {label:<40} {fits['default'].rate(0).status:<12} {text}  default/before {best['default'] / best['before']:.2f}"
+          f" (goal <= 0.33); {difference(fits['default'].rate(0), fits['before'].rate(0))}")
+
+
+def difference(a, b) -> str:
+    """How far two fits' estimates of one rate lie apart: in standard errors, or the bounds' ratio."""
+    if np.isfinite(a.log10_stderr) and a.log10_stderr > 0:
+        return f"log10 k differs by {abs(a.log10_rate - b.log10_rate) / a.log10_stderr:.1e} sd"
+    ends = [(x.rate_lower, y.rate_lower) for x, y in [(a, b)] if np.isfinite(x.rate_lower)]
+    ends += [(x.rate_upper, y.rate_upper) for x, y in [(a, b)] if np.isfinite(x.rate_upper)]
+    return "bounds differ by " + ", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends)
+
+
+def single_fits() -> None:
+    """(a): the single-spectrum fits."""
+    print("(a) single-spectrum fits (best of 3, CPU time): evaluations+Jacobians and seconds per fit, by route")
+    time_fit("two-site, k = 120 s^-1 (near coalescence)", synthetic(120.0, 1), two_site(1e4), region_ppm=(2.7, 3.3))
+    time_fit("two-site, k = 0.01 s^-1 (slow limit: a bound)", synthetic(0.01, 2), two_site(1e4), region_ppm=(2.7, 3.3))
+    model = dnmr.load_model(DEMO / "model.toml")
+    for t in (310, 250, 340):
+        time_fit(f"demo DX-7 at {t} K (2 rotamers, AB, 3276 pts)", read_spectrum(DEMO / "spectra" / f"dx7_{t}K.txt"),
+                 model, temperature_k=float(t), region_ppm=(4.15, 4.95), populations="free")
+
+
+def posteriors() -> None:
+    """(d): posteriors of demo spectra, importance sampling against the ensemble."""
+    from dnmr.fitting.posterior import sample_spectrum_posterior
+
+    print("(d) posteriors of demo spectra: default (importance sampling, 4000 draws) against emcee's ensemble"
+          " (32 walkers x 4000 steps, scaled from 200)")
+    model = dnmr.load_model(DEMO / "model.toml")
+    for t in (250, 290, 310, 340):
+        fit = fit_spectrum(read_spectrum(DEMO / "spectra" / f"dx7_{t}K.txt"), model, temperature_k=float(t),
+                           region_ppm=(4.15, 4.95), populations="free")
+        wall, cpu = time.perf_counter(), time.process_time()
+        post = sample_spectrum_posterior(fit)
+        wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
+        ensemble = time.process_time()
+        sample_spectrum_posterior(fit, method="emcee", steps=200)
+        ensemble = (time.process_time() - ensemble) * 4000 / 200
+        info = post.importance or {"effective_samples": math.nan, "pareto_k": math.nan}
+        print(f"  {t} K {fit.rate(0).status:<12} {post.method:<10} {cpu:5.1f} s CPU, {wall:5.1f} s wall (goal <= 10 s); "
+              f"{info['effective_samples']:6.0f} effective samples, Pareto shape {info['pareto_k']:5.2f}; "
+              f"ensemble about {ensemble:5.0f} s CPU")
 
 
 def demo_series(folder: Path) -> Path:
@@ -73,13 +135,11 @@ def demo_series(folder: Path) -> Path:
 
 
 def main() -> None:
-    print("(a) single-spectrum fits (best of 3)")
-    time_fit("two-site, k = 120 s^-1 (near coalescence)", synthetic(120.0, 1), two_site(1e4), region_ppm=(2.7, 3.3))
-    time_fit("two-site, k = 0.01 s^-1 (slow limit: a bound)", synthetic(0.01, 2), two_site(1e4), region_ppm=(2.7, 3.3))
-    model = dnmr.load_model(DEMO / "model.toml")
-    spectrum = read_spectrum(DEMO / "spectra" / "dx7_310K.txt")
-    time_fit("demo DX-7 at 310 K (2 rotamers, AB, 3276 pts)", spectrum, model, temperature_k=310.0,
-             region_ppm=(4.15, 4.95), populations="free")
+    with single_threaded_blas():
+        single_fits()
+        posteriors()
+    if "--single" in sys.argv[1:]:
+        return
 
     cores = os.cpu_count() or 1
     folder = Path(tempfile.mkdtemp(prefix="dnmr-bench-"))

@@ -230,7 +230,7 @@ def _importance_posterior(setup: _Setup, draws: int, seed: int | None,
                           progress: Callable[[int, int], None] | None) -> Posterior:
     """The posterior by importance sampling from the fit (module notes)."""
     residual = _scaled_residual(setup.problem, setup.fit.error_scale, 1, draws, None)
-    params = setup.params
+    params = setup.params.copy()  # moved to every draw in turn
 
     def log_likelihood(x: np.ndarray) -> float:
         for name, value in zip(setup.free, x):
@@ -242,7 +242,7 @@ def _importance_posterior(setup: _Setup, draws: int, seed: int | None,
     with single_threaded_blas():
         x, log_weights, adapted = sample_by_importance(log_likelihood, _fit_proposal(setup), draws,
                                                        np.random.default_rng(seed), PROPOSAL_WIDTH, progress)
-    full, quantities = _with_rates(x[:, None, :], params, setup.free, setup.rate_of)
+    full, quantities = _with_rates(x[:, None, :], setup.params, setup.free, setup.rate_of)
     shown = _most_correlated(x, setup.free, [n for n in setup.free if n in setup.rate_of])
     words = (f"a Student t about the least-squares optimum with {PROPOSAL_WIDTH:g}^2 x its covariance"
              + (", rates that are only bounded drawn along their chi-square profile between their limits (a fifth uniformly)"

@@ -46,7 +46,8 @@ a dense route, so that it costs less than finite differences; False forces finit
 reach the same fits (tests/test_fitting.py) with more lineshape evaluations."""
 TERMS_KEPT = 4
 """Lineshape decompositions a fit problem keeps, by the values of the parameters they depend on: a change
-of amplitude, phase, baseline or frequency offset alone re-evaluates them on the grid, nothing more."""
+of amplitude, phase, baseline or frequency offset alone re-evaluates them on the grid, nothing more (0 keeps
+none, as before: for comparisons)."""
 PROFILE_RESTARTS = 3
 """Times the fit is restarted from a better minimum the profile found; the profile after the last
 restart keeps what it finds and reports the rate as unstable."""
@@ -231,9 +232,10 @@ class FitProblem:
         if terms is None:
             terms = lineshape_terms(self.layout.model_from(values))
             self.nfev += 1
-            if len(self._terms) >= TERMS_KEPT:
-                self._terms.pop(next(iter(self._terms)))
-            self._terms[key] = terms
+            if TERMS_KEPT:
+                if len(self._terms) >= TERMS_KEPT:
+                    self._terms.pop(next(iter(self._terms)))
+                self._terms[key] = terms
         return terms
 
     def shape(self, values: Mapping[str, float], offset_hz: float | None = None) -> np.ndarray:
