@@ -41,9 +41,9 @@ MAX_EVALUATIONS = 60
 differences: about MAX_EVALUATIONS steps); with the exact Jacobian, 2 x MAX_EVALUATIONS residuals, each
 with at most one Jacobian (as many steps, and as many again rejected)."""
 USE_EXACT_JACOBIAN = True
-"""Refine with the exact Jacobian (:mod:`dnmr.engine.derivatives`) wherever every block of the model takes
-a dense route, so that it costs less than finite differences; False forces finite differences, which
-reach the same fits (tests/test_fitting.py) with more lineshape evaluations."""
+"""Refine with the exact Jacobian (:mod:`dnmr.engine.derivatives`) wherever it costs less than finite
+differences (:func:`dnmr.engine.derivatives.derivatives_pay`); False forces finite differences, which reach
+the same fits (tests/test_exact_jacobian.py) with more lineshape evaluations."""
 TERMS_KEPT = 4
 """Lineshape decompositions a fit problem keeps, by the values of the parameters they depend on: a change
 of amplitude, phase, baseline or frequency offset alone re-evaluates them on the grid, nothing more (0 keeps
