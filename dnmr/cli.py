@@ -311,17 +311,14 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, thermometer_readings
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
         return
     if output is not None:
         raise InputError("-o writes the calibration table of --calibrate LIST.csv; give that list", where="--output")
-    if not shift_differences and not spectra:
-        raise InputError("give --shift-difference PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
-    readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
-    readings += [temperature_from_file(path, liquid, frequency_mhz=frequency_mhz) for path in spectra]
+    readings = thermometer_readings(liquid, shift_differences, spectra, frequency_mhz=frequency_mhz)
     if as_json:
         print_json(readings_to_dict(readings))
     else:
@@ -333,13 +330,12 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
                output: Path | None, overwrite: bool, as_json: bool) -> None:
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
-    from dnmr.io.output import atomic_write_text
     from dnmr.activation.temperature_calibration import calibration_from_spectra
     from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:
-        atomic_write_text(output, result.table_csv(), overwrite=overwrite)
+        result.write_table(output, overwrite=overwrite)
     if as_json:
         print_json(result.to_dict())
     else:
