@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 import pytest
+
+import dnmr
 import statsmodels.api as sm
 from click.testing import CliRunner
 
