@@ -112,13 +112,16 @@ def in_small_filesystem(script: str, tmp_path: Path, read_only: bool = False) ->
 @pytest.mark.parametrize("read_only", [False, True], ids=["full", "read-only"])
 def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
     model = SHARED / "model.toml"
-    series = series_file(tmp_path)
+    series = global_series(tmp_path)
     rates = tmp_path / "rates.csv"
     rates.write_text("temperature_k,rate_per_s\n250,12.0\n260,40.0\n270,95.0\n280,210.0\n")
     commands = [f'"$PY" -m dnmr simulate {model} -o "$DISK/s.csv" --points 32768',
                 f'"$PY" -m dnmr fit {series} -o "$DISK/fit" --serial --quiet',
                 f'"$PY" -m dnmr eyring {rates} --plot "$DISK/eyring.png"',
-                f'"$PY" -m dnmr demo "$DISK/demo"']
+                f'"$PY" -m dnmr demo "$DISK/demo"',
+                # last, on a disk already full: the first write of all is the results folder's lock
+                f'head -c 100000 /dev/zero > "$DISK/filler" 2>/dev/null; "$PY" -m dnmr fit {series} -o "$DISK/global" '
+                '--global --serial --quiet']
     script = " ; ".join(f'{c} >/dev/null 2>"{tmp_path}/err{i}"; echo $? >"{tmp_path}/rc{i}"' for i, c in enumerate(commands))
     done = in_small_filesystem(script + f'; ls -A -R "$DISK" > "{tmp_path}/left"', tmp_path, read_only)
     assert done.returncode == 0, done.stderr
@@ -127,6 +130,7 @@ def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
         message = one_line((tmp_path / f"err{i}").read_text())
         assert status == 1, (command, message)
         assert ("Read-only" if read_only else "No space left") in message, message
+        assert str(tmp_path / "disk") in message, message  # the file or folder that could not be written
     assert ".part" not in (tmp_path / "left").read_text()  # nothing half-written is left behind
 
 

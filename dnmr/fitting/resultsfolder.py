@@ -86,10 +86,12 @@ def lock_results_folder(outdir: Path, program: str = "dnmr fit"):
         handle.close()
         raise InputError(f"{outdir} is being written by another dnmr run ({holder}); wait for it to finish or "
                          "choose another folder", where="--output") from None
-    handle.seek(0)
-    handle.truncate()
-    handle.write(f"{program}, process {os.getpid()}\n")
-    handle.flush()
+    try:  # unbuffered, so that nothing is left to fail again when the file is closed
+        os.ftruncate(handle.fileno(), 0)
+        os.write(handle.fileno(), f"{program}, process {os.getpid()}\n".encode())
+    except OSError as err:  # a full disk: name the lock file, leave none behind
+        release_results_folder(handle)
+        raise OSError(err.errno, err.strerror, handle.name) from None
     return handle
 
 
