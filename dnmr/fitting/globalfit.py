@@ -90,7 +90,8 @@ from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
-from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, write_global_fit
+from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, prepare_global_folder, write_global_fit
+from dnmr.fitting.resultsfolder import release_results_folder
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
 from dnmr.fitting.series import SeriesFit, fit_series
 from dnmr.fitting.seriesfile import Series, load_series
@@ -101,14 +102,6 @@ from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 if TYPE_CHECKING:  # pragma: no cover
     from dnmr.activation.temperature_calibration import TemperatureCalibration
-
-
-def _prepare(outdir: Path, overwrite: bool) -> None:
-    """Refuse an existing folder with results unless `overwrite`."""
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
-    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
-        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
 
 
 def _true_temperatures(series: Series, calibration: "TemperatureCalibration | None",
@@ -207,9 +200,10 @@ def fit_series_global(
         The series (or its TOML file).
     outdir : str or Path
         Folder for global.json, global.txt, the figures and the two-step results (``two-step/``);
-        refused when it holds results, unless `overwrite`.
+        refused when it holds results, unless `overwrite`, and while another run writes into it.
     overwrite : bool
-        Replace earlier results in `outdir`.
+        Replace the results of an earlier global fit in `outdir`: only the files dnmr wrote are removed
+        (:func:`dnmr.fitting.globalresult.prepare_global_folder`).
     calibration : TemperatureCalibration, optional
         The series' temperatures are set-points: the global fit uses the calibrated sample temperatures
         and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
@@ -232,10 +226,13 @@ def fit_series_global(
     treatment = Treatment(shifts, linewidth, couplings)
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
-    _prepare(outdir, overwrite)
-    two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress)
-    write_global_fit(result, overwrite)
+    lock = prepare_global_folder(outdir, series, overwrite)
+    try:
+        two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
+        result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress)
+        write_global_fit(result, overwrite)
+    finally:
+        release_results_folder(lock)
     return result
 
 
