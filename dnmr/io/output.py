@@ -160,18 +160,33 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
         Close the figure afterwards (also when writing fails), as the command line does with the figures
         it only saves; a figure that a notebook goes on showing stays open (the default).
     """
-    import io
-
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        buf = io.BytesIO()
-        fig.savefig(buf, format=path.suffix.lstrip(".") or "png", dpi=dpi, bbox_inches="tight")
-        return atomic_write_bytes(path, buf.getvalue(), overwrite=overwrite)
+        return atomic_write_bytes(path, figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi), overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt
 
             plt.close(fig)
+
+
+def figure_bytes(fig, file_format: str, dpi: int = 150) -> bytes:
+    """The contents of an image file of a matplotlib figure: what a worker sends back to be written.
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+        The figure.
+    file_format : str
+        Image format ("png", "svg", "pdf"...; see :data:`FIGURE_FORMATS`).
+    dpi : int
+        Resolution (dots per inch) of raster formats.
+    """
+    import io
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format=file_format, dpi=dpi, bbox_inches="tight")
+    return buf.getvalue()
 
 
 def new_output_folder(path: str | Path, overwrite: bool = False, inputs=()) -> Path:
