@@ -242,7 +242,7 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     settings = {"quiet": quiet, "global_fit": global_fit, "no_report": no_report, "calibration_file": calibration_file,
                 "treatment": {"shifts": shifts, "linewidth": linewidth, "couplings": couplings},
                 "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None}
-    _check_fit_options(settings)
+    _check_fit_options(settings, resume)
     with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
             executor, threads):
         settings.update(workers=1 if serial else workers or threads, executor=executor)
@@ -252,9 +252,11 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     ctx.exit(0 if global_fit else result.exit_status)
 
 
-def _check_fit_options(settings: dict) -> None:
+def _check_fit_options(settings: dict, resume: bool) -> None:
     """Refuse, before any work, options of `dnmr fit` that do not go together."""
     posterior, global_fit = settings["posterior"] is not None, settings["global_fit"]
+    if resume and global_fit:
+        raise InputError("--resume is not available with --global", where="--resume")
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
@@ -275,8 +277,7 @@ def _fit_one(series_file: Path, outdir: Path, *, overwrite: bool, resume: bool, 
     for warning in series.warnings:
         click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
     if global_fit:
-        return _fit_global(series, outdir, overwrite, resume, workers, quiet, treatment, calibration_file, no_report,
-                           executor)
+        return _fit_global(series, outdir, overwrite, workers, quiet, treatment, calibration_file, no_report, executor)
     result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers,
                         progress=False if quiet else None, posterior=posterior, executor=executor)
     click.echo(result.report())
@@ -307,14 +308,12 @@ def _fit_folder(folder: Path, outdir: Path, overwrite: bool, resume: bool, setti
     return batch.exit_status
 
 
-def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
+def _fit_global(series: Series, outdir: Path, overwrite: bool, workers: int | None, quiet: bool,
                 treatment: dict[str, str], calibration_file: Path | None, no_report: bool, executor=None):
     """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html; returns it."""
     from dnmr.fitting.globalfit import fit_series_global
     from dnmr.activation.thermometry import read_temperature_calibration
 
-    if resume:
-        raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
     result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
                                progress=False if quiet else None, executor=executor, **treatment)
