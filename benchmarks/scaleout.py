@@ -25,7 +25,6 @@ from fit_speed import demo_series
 
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfolder import fit_series_folder
-from dnmr.fitting.workers import process_pool
 
 WORKERS = os.cpu_count() or 1
 
@@ -65,14 +64,10 @@ def many_series(series: Path, folder: Path, local: float) -> None:
     screen.mkdir()
     for name in ("first", "second"):
         shutil.copy(series, screen / f"{name}.toml")
-    pool = process_pool(WORKERS)
-    try:
-        started = time.perf_counter()
-        batch = fit_series_folder(screen, folder / "screen-out",
-                                  functools.partial(fit_series, workers=WORKERS, progress=False, executor=pool))
-        seconds = time.perf_counter() - started
-    finally:
-        pool.shutdown()
+    started = time.perf_counter()
+    batch = fit_series_folder(screen, folder / "screen-out", functools.partial(fit_series, progress=False),
+                              workers=WORKERS)
+    seconds = time.perf_counter() - started
     print(f"  two series in one folder (one shared pool)   {seconds:7.1f} s  {seconds / (2 * local):5.2f} x two "
           f"single runs   exit status {batch.exit_status}")
 

@@ -288,22 +288,14 @@ def _fit_one(series_file: Path, outdir: Path, *, overwrite: bool, resume: bool, 
 
 
 def _fit_folder(folder: Path, outdir: Path, overwrite: bool, resume: bool, settings: dict) -> int:
-    """`dnmr fit FOLDER`: every series file in it, each into its subfolder of `outdir` (dnmr.fitting.seriesfolder),
-    on one pool of worker processes (or the scheduler's); prints the summary and returns the exit status."""
-    import os
-
+    """`dnmr fit FOLDER`: every series file in it, each into its subfolder of `outdir` (dnmr.fitting.seriesfolder);
+    prints the summary and returns the exit status."""
     from dnmr.fitting.seriesfolder import fit_series_folder
-    from dnmr.fitting.workers import process_pool
 
-    workers = settings["workers"] or os.cpu_count() or 1
-    pool = process_pool(workers) if settings["executor"] is None and workers > 1 else None
-    settings = {**settings, "workers": workers, "executor": settings["executor"] or pool}
-    try:
-        batch = fit_series_folder(folder, outdir, lambda path, out, **flags: _fit_one(path, out, **flags, **settings),
-                                  overwrite=overwrite, resume=resume)
-    finally:
-        if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
+    each = {k: v for k, v in settings.items() if k not in ("workers", "executor")}
+    batch = fit_series_folder(folder, outdir, lambda path, out, **flags: _fit_one(path, out, **flags, **each),
+                              overwrite=overwrite, resume=resume, workers=settings["workers"],
+                              executor=settings["executor"])
     click.echo(batch.report())
     return batch.exit_status
 

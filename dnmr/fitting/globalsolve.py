@@ -73,7 +73,7 @@ class GlobalEvaluator:
         self.workers = max(1, min(workers, n))
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
         self.own_pool = process_pool(self.workers) if executor is None and self.workers > 1 else None
-        pool = executor or self.own_pool
+        pool = executor if executor is not None else self.own_pool
         self.shared = SharedPayload(problem, pool) if pool is not None else None
 
     def close(self) -> None:

@@ -251,7 +251,7 @@ class FitRunner:
                  executor: futures.Executor | None = None):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
         self.own_pool = process_pool(workers) if executor is None and workers > 1 else None
-        self.pool = executor or self.own_pool
+        self.pool = executor if executor is not None else self.own_pool
         self.caller = os.getpid()
 
     def close(self) -> None:

@@ -23,8 +23,10 @@ others go on.  ``OUTDIR/summary.csv`` (rewritten after every series) has one row
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import csv
 import io
+import os
 import time
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
@@ -32,6 +34,7 @@ from pathlib import Path
 from typing import Any
 
 from dnmr.errors import InputError
+from dnmr.fitting.workers import process_pool
 from dnmr.io.modelfile import read_toml
 from dnmr.io.output import atomic_write_text
 
@@ -120,7 +123,8 @@ def find_series_files(folder: str | Path, leave_out: Path | None = None) -> list
 
 
 def fit_series_folder(folder: str | Path, outdir: str | Path, fit: Callable[..., Any] | None = None, *,
-                      overwrite: bool = False, resume: bool = False) -> SeriesFolderFit:
+                      overwrite: bool = False, resume: bool = False, workers: int | None = None,
+                      executor: futures.Executor | None = None) -> SeriesFolderFit:
     """Fit every series file in `folder` into its own subfolder of `outdir`, and write summary.csv.
 
     Parameters
@@ -130,12 +134,17 @@ def fit_series_folder(folder: str | Path, outdir: str | Path, fit: Callable[...,
     outdir : str or Path
         Folder of the results; refused when it holds files, unless `overwrite` or `resume`.
     fit : callable, optional
-        Called as ``fit(series_file, results_folder, overwrite=overwrite, resume=resume)`` for each series;
-        returns a :class:`~dnmr.fitting.series.SeriesFit` (or anything with ``series`` and ``outcomes``, or
-        ``series`` and ``fits`` for a global fit).  Default :func:`dnmr.fitting.series.fit_series`; bind other
-        settings (workers, executor, progress...) with :func:`functools.partial`.
+        Called as ``fit(series_file, results_folder, overwrite=..., resume=..., workers=..., executor=...)``
+        for each series; returns a :class:`~dnmr.fitting.series.SeriesFit` (or anything with ``series`` and
+        ``outcomes``, or ``series`` and ``fits`` for a global fit).  Default :func:`dnmr.fitting.series.fit_series`;
+        bind other settings (progress, posterior...) with :func:`functools.partial`.
     overwrite, resume : bool
         Replace, or continue, the results of an earlier run (passed on to every series).
+    workers : int, optional
+        Worker processes, one pool shared by all the series (default one per core; 1: in this process);
+        with `executor`, how many tasks are handed to it at once.
+    executor : concurrent.futures.Executor, optional
+        Where every series' work runs instead (see :func:`dnmr.fitting.series.fit_series`); left running.
 
     Returns
     -------
@@ -159,20 +168,27 @@ def fit_series_folder(folder: str | Path, outdir: str | Path, fit: Callable[...,
         raise InputError(f"{outdir} already exists; pass --overwrite to replace its results or --resume to continue "
                          "them", where="--output")
     result = SeriesFolderFit(folder, outdir)
-    for path in files:
-        result.runs.append(_fit_one(fit or fit_series, path, folder, outdir, overwrite, resume))
-        result.write_summary()
+    workers = workers or os.cpu_count() or 1
+    pool = process_pool(workers) if executor is None and workers > 1 else None
+    flags = {"overwrite": overwrite, "resume": resume, "workers": workers,
+             "executor": pool if pool is not None else executor}
+    try:
+        for path in files:
+            result.runs.append(_fit_one(fit or fit_series, path, folder, outdir, flags))
+            result.write_summary()
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     return result
 
 
-def _fit_one(fit: Callable[..., Any], path: Path, folder: Path, outdir: Path, overwrite: bool,
-             resume: bool) -> SeriesRun:
+def _fit_one(fit: Callable[..., Any], path: Path, folder: Path, outdir: Path, flags: dict) -> SeriesRun:
     """Fit one series of the folder; never raises (but for an interrupt): a failure is its row."""
     name = path.relative_to(folder).with_suffix("").as_posix()
     target = outdir / name
     started = time.perf_counter()
     try:
-        done = fit(path, target, overwrite=overwrite, resume=resume)
+        done = fit(path, target, **flags)
     except InputError as err:
         return SeriesRun(name, str(target), "failed", None, None, 2, str(err), round(time.perf_counter() - started, 2))
     except Exception as err:  # a fault of one series (a full disk...) is its row; the others go on
