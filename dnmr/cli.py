@@ -122,9 +122,9 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 
 
 @cli.command()
-@click.argument("series_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("series_file", type=click.Path(path_type=Path))
 @click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
-              help="Folder for rates.csv, results.json and the figures.")
+              help="Folder for rates.csv, results.json and the figures (for a folder of series: one subfolder each).")
 @click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
@@ -148,20 +148,47 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Send the fits to the Dask scheduler at this address (tcp://host:8786), whose workers have this "
+                   'dnmr; --workers then counts tasks at once (default: its threads). Needs pip install "dnmr-exchange[dask]".')
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
-        posterior_seed: int, figure_format: str) -> None:
+        posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
+
+    SERIES_FILE may be a folder: every series file in it (and its subfolders) is fitted into its own
+    subfolder of OUTDIR, one after the other, and OUTDIR/summary.csv lists what became of each.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from dnmr.fitting.series import fit_series
-    from dnmr.fitting.seriesfile import load_series
+    from contextlib import nullcontext
 
+    from dnmr.fitting.cluster import scheduler_executor
+
+    if scheduler is not None and serial:
+        raise InputError("--serial fits in this process and --scheduler on a cluster: choose one", where="--scheduler")
+    settings = {"quiet": quiet, "global_fit": global_fit, "no_report": no_report, "calibration_file": calibration_file,
+                "treatment": {"shifts": shifts, "linewidth": linewidth, "couplings": couplings},
+                "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None}
+    _check_fit_options(settings, resume)
+    with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
+            executor, threads):
+        settings.update(workers=1 if serial else workers or threads, executor=executor)
+        if series_file.is_dir():
+            ctx.exit(_fit_folder(series_file, outdir, overwrite, resume, settings))
+        result = _fit_one(series_file, outdir, overwrite=overwrite, resume=resume, **settings)
+    ctx.exit(0 if global_fit else result.exit_status)
+
+
+def _check_fit_options(settings: dict, resume: bool) -> None:
+    """Refuse, before any work, options of `dnmr fit` that do not go together."""
+    posterior, global_fit = settings["posterior"] is not None, settings["global_fit"]
+    if resume and global_fit:
+        raise InputError("--resume is not available with --global", where="--resume")
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
@@ -169,37 +196,54 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
+
+
+def _fit_one(series_file: Path, outdir: Path, *, overwrite: bool, resume: bool, quiet: bool, global_fit: bool,
+             no_report: bool, calibration_file: Path | None, treatment: dict[str, str], posterior: dict | None,
+             workers: int | None, executor):
+    """`dnmr fit` of one series file: the fit, its text report and report.html; returns the SeriesFit (or GlobalFit)."""
+    from dnmr.fitting.series import fit_series
+    from dnmr.fitting.seriesfile import load_series
+
     series = load_series(series_file)
     for warning in series.warnings:
         click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
-    with figures_as(figure_format):
-        if global_fit:
-            _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
-                        {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
-            return
-        result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
-                            progress=False if quiet else None,
-                            posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
-        click.echo(result.report())
-        for failed in result.failures:
-            click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-        _write_report_after_fit(outdir, calibration_file, no_report)
-    ctx.exit(result.exit_status)
+    if global_fit:
+        return _fit_global(series, outdir, overwrite, workers, quiet, treatment, calibration_file, no_report, executor)
+    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers,
+                        progress=False if quiet else None, posterior=posterior, executor=executor)
+    click.echo(result.report())
+    for failed in result.failures:
+        click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
+    _write_report_after_fit(outdir, calibration_file, no_report)
+    return result
 
 
-def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
-                treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
-    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
+def _fit_folder(folder: Path, outdir: Path, overwrite: bool, resume: bool, settings: dict) -> int:
+    """`dnmr fit FOLDER`: every series file in it, each into its subfolder of `outdir` (dnmr.fitting.seriesfolder);
+    prints the summary and returns the exit status."""
+    from dnmr.fitting.seriesfolder import fit_series_folder
+
+    each = {k: v for k, v in settings.items() if k not in ("workers", "executor")}
+    batch = fit_series_folder(folder, outdir, lambda path, out, **flags: _fit_one(path, out, **flags, **each),
+                              overwrite=overwrite, resume=resume, workers=settings["workers"],
+                              executor=settings["executor"])
+    click.echo(batch.report())
+    return batch.exit_status
+
+
+def _fit_global(series: Series, outdir: Path, overwrite: bool, workers: int | None, quiet: bool,
+                treatment: dict[str, str], calibration_file: Path | None, no_report: bool, executor=None):
+    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html; returns it."""
     from dnmr.fitting.globalfit import fit_series_global
     from dnmr.activation.temperature_calibration import read_temperature_calibration
 
-    if resume:
-        raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
     result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
-                               progress=False if quiet else None, **treatment)
+                               progress=False if quiet else None, executor=executor, **treatment)
     click.echo(result.report())
     _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
+    return result
 
 
 def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_report: bool) -> None:
