@@ -369,7 +369,7 @@ POOLS = {  # every pool of the fitting wing: the series fit's runner and the glo
                    "pool = FitRunner(load_series(sys.argv[1]), None, 2, ProgressReport(False), False).pool\n"),
     "global fit": ("from types import SimpleNamespace\n"
                    "from dnmr.fitting.globalsolve import GlobalEvaluator\n"
-                   "pool = GlobalEvaluator(SimpleNamespace(members=[0, 1]), 2).pool\n"),
+                   "pool = GlobalEvaluator(SimpleNamespace(members=[0, 1]), 2).own_pool\n"),
 }
 
 

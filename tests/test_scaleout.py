@@ -12,7 +12,6 @@ import concurrent.futures as futures
 import csv
 import socket
 import sys
-from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
