@@ -134,6 +134,16 @@ def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
     assert ".part" not in (tmp_path / "left").read_text()  # nothing half-written is left behind
 
 
+
+def experiment_file(folder: Path) -> Path:
+    """A valid selective-inversion experiment on the corpus' shared model and table (it fits in seconds)."""
+    shared = CORPUS / "transfer" / "_shared"
+    path = folder / "experiment.toml"
+    path.write_text(f'model = "{shared / "model.toml"}"\ntemperature_k = 240.0\nexperiment = "inversion"\n'
+                    f'data = "{shared / "inversion.csv"}"\n[options]\ninverted = ["syn"]\n')
+    return path
+
+
 # --- the results folder ---------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
@@ -324,6 +334,65 @@ def test_global_overwrite_of_a_stopped_run_clears_only_dnmrs_files(fitted, tmp_p
     assert not (out / "global.txt").exists() and not (out / ".dnmr-lock").exists()
     assert (out / "notes.txt").read_text() == "the user's own" and elsewhere.read_text() == "not dnmr's"
     assert (out / "two-step" / "series.json").exists()  # cleared by the two-step fit itself, by its own rules
+
+
+
+# --- the folder of a magnetisation-transfer fit (dnmr transfer): the same lock and --overwrite rules -------
+
+@pytest.fixture(scope="module")
+def transferred(tmp_path_factory) -> tuple[Path, Path]:
+    """An experiment and the folder of its fit, figure as SVG, run under umask 027 (copy before changing it)."""
+    folder = tmp_path_factory.mktemp("transfer")
+    experiment = experiment_file(folder)
+    old = os.umask(0o027)
+    try:
+        done = dnmr("transfer", str(experiment), "-o", str(folder / "out"), "--figure-format", "svg")
+    finally:
+        os.umask(old)
+    assert done.returncode == 0, done.stderr
+    return experiment, folder / "out"
+
+
+def test_transfer_outputs_honour_the_umask(transferred):
+    _, out = transferred
+    assert sorted(p.name for p in out.iterdir()) == ["fit.svg", "rates.csv", "results.json"]  # and no lock file
+    assert out.stat().st_mode & 0o777 == 0o750
+    for path in out.iterdir():
+        assert path.stat().st_mode & 0o777 == 0o640, path  # as umask 027 allows: the group reads, others not
+
+
+def test_transfer_overwrite_replaces_only_its_own_files(transferred, tmp_path):
+    experiment, out = copy_of(transferred, tmp_path)
+    (out / "notes.txt").write_text("the user's own")
+    again = dnmr("transfer", str(experiment), "-o", str(out), "--overwrite")
+    assert again.returncode == 0, again.stderr
+    assert (out / "notes.txt").read_text() == "the user's own"
+    # the earlier run's figure (fit.svg, named in its results.json) went with its results
+    assert sorted(p.name for p in out.iterdir()) == ["fit.png", "notes.txt", "rates.csv", "results.json"]
+
+
+def test_transfer_overwrite_refuses_a_folder_dnmr_never_wrote(tmp_path):
+    out = tmp_path / "theirs"
+    out.mkdir()
+    theirs = {"rates.csv": "their own table", "results.json": '{"program": "their own fit"}',
+              "fit.png": "a figure of the user's"}
+    for name, text in theirs.items():
+        (out / name).write_text(text)
+    done = dnmr("transfer", str(experiment_file(tmp_path)), "-o", str(out), "--overwrite")
+    assert done.returncode == 2 and "no dnmr transfer results" in one_line(done.stderr)
+    assert {p.name: p.read_text() for p in out.iterdir()} == theirs
+
+
+def test_a_transfer_folder_being_written_is_locked(transferred, tmp_path):
+    import fcntl
+
+    experiment, out = copy_of(transferred, tmp_path)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    with open(out / ".dnmr-lock", "a") as held:  # as a running transfer fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        done = dnmr("transfer", str(experiment), "-o", str(out), "--overwrite")
+    assert done.returncode == 2 and "another dnmr run" in one_line(done.stderr)
+    assert {p.name: p.read_bytes() for p in out.iterdir() if p.name != ".dnmr-lock"} == before
 
 
 def test_simulate_checks_every_output_before_writing(tmp_path):
