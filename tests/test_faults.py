@@ -144,6 +144,30 @@ def experiment_file(folder: Path) -> Path:
     return path
 
 
+@pytest.mark.parametrize("room", ["none", "one page"])
+def test_a_full_disk_leaves_no_folder_behind(room, fitted, tmp_path):
+    # issue 13: a folder a run created finds nothing written into it (no room at all, or room for the lock
+    # file alone, so that the run fails at its first result): it is removed again, with its empty
+    # subfolders (fits/, figures/, two-step/, supporting-information/); a folder that existed stays
+    series = global_series(tmp_path)
+    runs = {"fit": f'fit {series} -o "$DISK/new/deeper" --serial --quiet',
+            "fit into an existing folder": f'fit {series} -o "$DISK/mine" --serial --quiet',
+            "global fit": f'fit {series} -o "$DISK/global" --global --serial --quiet',
+            "transfer": f'transfer {experiment_file(tmp_path)} -o "$DISK/transfer"',
+            "report": f'report {fitted[1]} -o "$DISK/report/report.html"',
+            "demo": 'demo "$DISK/demo" --quiet'}
+    free = "$(getconf PAGESIZE)" if room == "one page" else "0"  # tmpfs hands out whole pages
+    script = f'mkdir "$DISK/mine"; head -c $((65536 - {free})) /dev/zero > "$DISK/filler"; ' + " ; ".join(
+        f'"$PY" -m dnmr {args} >/dev/null 2>"{tmp_path}/err{i}"; echo $? >"{tmp_path}/rc{i}"'
+        for i, args in enumerate(runs.values()))
+    done = in_small_filesystem(script + f'; cd "$DISK" && find . -mindepth 1 > "{tmp_path}/left"', tmp_path)
+    assert done.returncode == 0, done.stderr
+    for i, run in enumerate(runs):
+        message = one_line((tmp_path / f"err{i}").read_text())
+        assert int((tmp_path / f"rc{i}").read_text()) == 1 and "No space left" in message, (run, message)
+    assert sorted((tmp_path / "left").read_text().split()) == ["./filler", "./mine"]
+
+
 # --- the results folder ---------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
@@ -393,6 +417,48 @@ def test_a_transfer_folder_being_written_is_locked(transferred, tmp_path):
         done = dnmr("transfer", str(experiment), "-o", str(out), "--overwrite")
     assert done.returncode == 2 and "another dnmr run" in one_line(done.stderr)
     assert {p.name: p.read_bytes() for p in out.iterdir() if p.name != ".dnmr-lock"} == before
+
+
+# --- the report (dnmr report): its folder locked while it writes, no link followed, the umask honoured -----
+
+def test_a_report_into_a_folder_being_written_is_refused(fitted, tmp_path):
+    import fcntl
+
+    _, out = copy_of(fitted, tmp_path)
+    with open(out / ".dnmr-lock", "a") as held:  # as a running fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        held.write("dnmr fit, process 1\n")
+        held.flush()
+        before = sorted(str(p.relative_to(out)) for p in out.rglob("*"))
+        done = dnmr("report", str(out), "--overwrite")
+    assert done.returncode == 2 and "being written by another dnmr run (dnmr fit" in one_line(done.stderr)
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == before  # no report, no tables
+
+
+def test_a_report_never_writes_through_a_linked_folder(fitted, tmp_path):
+    _, out = copy_of(fitted, tmp_path)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "si_rates.csv").write_text("not dnmr's")
+    (out / "supporting-information").symlink_to(elsewhere)
+    done = dnmr("report", str(out), "--overwrite")
+    assert done.returncode == 2 and "link" in one_line(done.stderr)
+    assert {p.name: p.read_text() for p in elsewhere.iterdir()} == {"si_rates.csv": "not dnmr's"}
+    assert not (out / "report.html").exists()
+
+
+def test_report_outputs_honour_the_umask(fitted, tmp_path):
+    _, out = copy_of(fitted, tmp_path)
+    old = os.umask(0o027)
+    try:
+        done = dnmr("report", str(out))
+    finally:
+        os.umask(old)
+    assert done.returncode == 0, done.stderr
+    tables = out / "supporting-information"
+    assert tables.stat().st_mode & 0o777 == 0o750 and not (out / ".dnmr-lock").exists()
+    for path in [out / "report.html", *tables.iterdir()]:
+        assert path.stat().st_mode & 0o777 == 0o640, path  # as umask 027 allows: the group reads, others not
 
 
 def test_simulate_checks_every_output_before_writing(tmp_path):
