@@ -35,10 +35,11 @@ def series_file(folder: Path, names=("t250.csv", "t270.csv"), temperatures=(250.
     return path
 
 
-def dnmr(*args: str, cwd: Path | None = None, timeout: float = 120) -> subprocess.CompletedProcess:
+def dnmr(*args: str, cwd: Path | None = None, timeout: float = 120, umask: int = -1) -> subprocess.CompletedProcess:
+    """Run the command line in a new process (under `umask` when one is given)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
     return subprocess.run([sys.executable, "-m", "dnmr", *args], capture_output=True, text=True, env=env,
-                          cwd=cwd, timeout=timeout)
+                          cwd=cwd, timeout=timeout, umask=umask)
 
 
 def one_line(text: str) -> str:
@@ -236,12 +237,8 @@ def test_a_folder_being_written_is_locked(fitted, tmp_path):
 def test_outputs_honour_the_umask(tmp_path):
     series = series_file(tmp_path)
     out = tmp_path / "out"
-    old = os.umask(0o022)
-    try:
-        done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet")
-        simulated = dnmr("simulate", str(SHARED / "model.toml"), "-o", str(tmp_path / "s.csv"))
-    finally:
-        os.umask(old)
+    done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", umask=0o022)
+    simulated = dnmr("simulate", str(SHARED / "model.toml"), "-o", str(tmp_path / "s.csv"), umask=0o022)
     assert done.returncode == 0 and simulated.returncode == 0
     for path in [out / "rates.csv", out / "results.json", out / "report.html", tmp_path / "s.csv",
                  *(out / "fits").iterdir(), *(out / "figures").iterdir()]:
@@ -260,11 +257,7 @@ def global_fitted(tmp_path_factory) -> tuple[Path, Path]:
     """A series and the folder of its global fit, run serially under umask 022 (copy before changing it)."""
     folder = tmp_path_factory.mktemp("global")
     series = global_series(folder)
-    old = os.umask(0o022)
-    try:
-        done = dnmr("fit", str(series), "-o", str(folder / "out"), "--global", "--serial", "--quiet")
-    finally:
-        os.umask(old)
+    done = dnmr("fit", str(series), "-o", str(folder / "out"), "--global", "--serial", "--quiet", umask=0o022)
     assert done.returncode == 0, done.stderr
     return series, folder / "out"
 
@@ -368,11 +361,7 @@ def transferred(tmp_path_factory) -> tuple[Path, Path]:
     """An experiment and the folder of its fit, figure as SVG, run under umask 027 (copy before changing it)."""
     folder = tmp_path_factory.mktemp("transfer")
     experiment = experiment_file(folder)
-    old = os.umask(0o027)
-    try:
-        done = dnmr("transfer", str(experiment), "-o", str(folder / "out"), "--figure-format", "svg")
-    finally:
-        os.umask(old)
+    done = dnmr("transfer", str(experiment), "-o", str(folder / "out"), "--figure-format", "svg", umask=0o027)
     assert done.returncode == 0, done.stderr
     return experiment, folder / "out"
 
@@ -449,11 +438,7 @@ def test_a_report_never_writes_through_a_linked_folder(fitted, tmp_path):
 
 def test_report_outputs_honour_the_umask(fitted, tmp_path):
     _, out = copy_of(fitted, tmp_path)
-    old = os.umask(0o027)
-    try:
-        done = dnmr("report", str(out))
-    finally:
-        os.umask(old)
+    done = dnmr("report", str(out), umask=0o027)
     assert done.returncode == 0, done.stderr
     tables = out / "supporting-information"
     assert tables.stat().st_mode & 0o777 == 0o750 and not (out / ".dnmr-lock").exists()
