@@ -436,6 +436,14 @@ def test_a_report_never_writes_through_a_linked_folder(fitted, tmp_path):
     assert not (out / "report.html").exists()
 
 
+def test_a_report_of_a_missing_folder_or_into_a_file_writes_nothing(fitted, tmp_path):
+    missing = dnmr("report", str(tmp_path / "missing"))
+    assert missing.returncode == 2 and "no results.json" in one_line(missing.stderr)
+    (tmp_path / "afile").write_text("the user's own")
+    into_file = dnmr("report", str(fitted[1]), "-o", str(tmp_path / "afile" / "report.html"))
+    assert into_file.returncode == 2 and "not a folder" in one_line(into_file.stderr)
+    assert [p.name for p in tmp_path.iterdir()] == ["afile"]  # the folder the report would have made is gone
+
 def test_report_outputs_honour_the_umask(fitted, tmp_path):
     _, out = copy_of(fitted, tmp_path)
     done = dnmr("report", str(out), umask=0o027)

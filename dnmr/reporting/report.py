@@ -60,7 +60,8 @@ from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.temperature_calibration import TemperatureCalibration
 from dnmr.errors import InputError
 from dnmr.fitting.resultsfolder import lock_results_folder, refuse_linked_folders, release_results_folder
-from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as, save_figure
+from dnmr.io.output import (atomic_write_text, check_output_file, chosen_figure_format, figure_file, figures_as,
+                             save_figure)
 from dnmr.reporting.globalreport import GLOBAL_NAME, global_document, read_global
 from dnmr.reporting.reportinputs import gather_inputs
 from dnmr.reporting.seriesreport import render_report
@@ -131,8 +132,7 @@ def write_report(
     outdir = Path(outdir)
     path = Path(output) if output is not None else outdir / REPORT_NAME
     _refuse_inputs(path, outdir)
-    if path.exists() and not overwrite:
-        raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
+    check_output_file(path, overwrite, "--output")
     refuse_linked_folders(path.parent, (supporting_folder(path).name,))
     lock = lock_results_folder(path.parent, REPORT_PROGRAM)
     try:
