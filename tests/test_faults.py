@@ -35,10 +35,11 @@ def series_file(folder: Path, names=("t250.csv", "t270.csv"), temperatures=(250.
     return path
 
 
-def dnmr(*args: str, cwd: Path | None = None, timeout: float = 120) -> subprocess.CompletedProcess:
+def dnmr(*args: str, cwd: Path | None = None, timeout: float = 120, umask: int = -1) -> subprocess.CompletedProcess:
+    """Run the command line in a new process (under `umask` when one is given)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
     return subprocess.run([sys.executable, "-m", "dnmr", *args], capture_output=True, text=True, env=env,
-                          cwd=cwd, timeout=timeout)
+                          cwd=cwd, timeout=timeout, umask=umask)
 
 
 def one_line(text: str) -> str:
@@ -134,6 +135,40 @@ def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
     assert ".part" not in (tmp_path / "left").read_text()  # nothing half-written is left behind
 
 
+
+def experiment_file(folder: Path) -> Path:
+    """A valid selective-inversion experiment on the corpus' shared model and table (it fits in seconds)."""
+    shared = CORPUS / "transfer" / "_shared"
+    path = folder / "experiment.toml"
+    path.write_text(f'model = "{shared / "model.toml"}"\ntemperature_k = 240.0\nexperiment = "inversion"\n'
+                    f'data = "{shared / "inversion.csv"}"\n[options]\ninverted = ["syn"]\n')
+    return path
+
+
+@pytest.mark.parametrize("room", ["none", "one page"])
+def test_a_full_disk_leaves_no_folder_behind(room, fitted, tmp_path):
+    # issue 13: a folder a run created finds nothing written into it (no room at all, or room for the lock
+    # file alone, so that the run fails at its first result): it is removed again, with its empty
+    # subfolders (fits/, figures/, two-step/, supporting-information/); a folder that existed stays
+    series = global_series(tmp_path)
+    runs = {"fit": f'fit {series} -o "$DISK/new/deeper" --serial --quiet',
+            "fit into an existing folder": f'fit {series} -o "$DISK/mine" --serial --quiet',
+            "global fit": f'fit {series} -o "$DISK/global" --global --serial --quiet',
+            "transfer": f'transfer {experiment_file(tmp_path)} -o "$DISK/transfer"',
+            "report": f'report {fitted[1]} -o "$DISK/report/report.html"',
+            "demo": 'demo "$DISK/demo" --quiet'}
+    free = "$(getconf PAGESIZE)" if room == "one page" else "0"  # tmpfs hands out whole pages
+    script = f'mkdir "$DISK/mine"; head -c $((65536 - {free})) /dev/zero > "$DISK/filler"; ' + " ; ".join(
+        f'"$PY" -m dnmr {args} >/dev/null 2>"{tmp_path}/err{i}"; echo $? >"{tmp_path}/rc{i}"'
+        for i, args in enumerate(runs.values()))
+    done = in_small_filesystem(script + f'; cd "$DISK" && find . -mindepth 1 > "{tmp_path}/left"', tmp_path)
+    assert done.returncode == 0, done.stderr
+    for i, run in enumerate(runs):
+        message = one_line((tmp_path / f"err{i}").read_text())
+        assert int((tmp_path / f"rc{i}").read_text()) == 1 and "No space left" in message, (run, message)
+    assert sorted((tmp_path / "left").read_text().split()) == ["./filler", "./mine"]
+
+
 # --- the results folder ---------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
@@ -202,12 +237,8 @@ def test_a_folder_being_written_is_locked(fitted, tmp_path):
 def test_outputs_honour_the_umask(tmp_path):
     series = series_file(tmp_path)
     out = tmp_path / "out"
-    old = os.umask(0o022)
-    try:
-        done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet")
-        simulated = dnmr("simulate", str(SHARED / "model.toml"), "-o", str(tmp_path / "s.csv"))
-    finally:
-        os.umask(old)
+    done = dnmr("fit", str(series), "-o", str(out), "--serial", "--quiet", umask=0o022)
+    simulated = dnmr("simulate", str(SHARED / "model.toml"), "-o", str(tmp_path / "s.csv"), umask=0o022)
     assert done.returncode == 0 and simulated.returncode == 0
     for path in [out / "rates.csv", out / "results.json", out / "report.html", tmp_path / "s.csv",
                  *(out / "fits").iterdir(), *(out / "figures").iterdir()]:
@@ -226,11 +257,7 @@ def global_fitted(tmp_path_factory) -> tuple[Path, Path]:
     """A series and the folder of its global fit, run serially under umask 022 (copy before changing it)."""
     folder = tmp_path_factory.mktemp("global")
     series = global_series(folder)
-    old = os.umask(0o022)
-    try:
-        done = dnmr("fit", str(series), "-o", str(folder / "out"), "--global", "--serial", "--quiet")
-    finally:
-        os.umask(old)
+    done = dnmr("fit", str(series), "-o", str(folder / "out"), "--global", "--serial", "--quiet", umask=0o022)
     assert done.returncode == 0, done.stderr
     return series, folder / "out"
 
@@ -324,6 +351,107 @@ def test_global_overwrite_of_a_stopped_run_clears_only_dnmrs_files(fitted, tmp_p
     assert not (out / "global.txt").exists() and not (out / ".dnmr-lock").exists()
     assert (out / "notes.txt").read_text() == "the user's own" and elsewhere.read_text() == "not dnmr's"
     assert (out / "two-step" / "series.json").exists()  # cleared by the two-step fit itself, by its own rules
+
+
+
+# --- the folder of a magnetisation-transfer fit (dnmr transfer): the same lock and --overwrite rules -------
+
+@pytest.fixture(scope="module")
+def transferred(tmp_path_factory) -> tuple[Path, Path]:
+    """An experiment and the folder of its fit, figure as SVG, run under umask 027 (copy before changing it)."""
+    folder = tmp_path_factory.mktemp("transfer")
+    experiment = experiment_file(folder)
+    done = dnmr("transfer", str(experiment), "-o", str(folder / "out"), "--figure-format", "svg", umask=0o027)
+    assert done.returncode == 0, done.stderr
+    return experiment, folder / "out"
+
+
+def test_transfer_outputs_honour_the_umask(transferred):
+    _, out = transferred
+    assert sorted(p.name for p in out.iterdir()) == ["fit.svg", "rates.csv", "results.json"]  # and no lock file
+    assert out.stat().st_mode & 0o777 == 0o750
+    for path in out.iterdir():
+        assert path.stat().st_mode & 0o777 == 0o640, path  # as umask 027 allows: the group reads, others not
+
+
+def test_transfer_overwrite_replaces_only_its_own_files(transferred, tmp_path):
+    experiment, out = copy_of(transferred, tmp_path)
+    (out / "notes.txt").write_text("the user's own")
+    again = dnmr("transfer", str(experiment), "-o", str(out), "--overwrite")
+    assert again.returncode == 0, again.stderr
+    assert (out / "notes.txt").read_text() == "the user's own"
+    # the earlier run's figure (fit.svg, named in its results.json) went with its results
+    assert sorted(p.name for p in out.iterdir()) == ["fit.png", "notes.txt", "rates.csv", "results.json"]
+
+
+def test_transfer_overwrite_refuses_a_folder_dnmr_never_wrote(tmp_path):
+    out = tmp_path / "theirs"
+    out.mkdir()
+    theirs = {"rates.csv": "their own table", "results.json": '{"program": "their own fit"}',
+              "fit.png": "a figure of the user's"}
+    for name, text in theirs.items():
+        (out / name).write_text(text)
+    done = dnmr("transfer", str(experiment_file(tmp_path)), "-o", str(out), "--overwrite")
+    assert done.returncode == 2 and "no dnmr transfer results" in one_line(done.stderr)
+    assert {p.name: p.read_text() for p in out.iterdir()} == theirs
+
+
+def test_a_transfer_folder_being_written_is_locked(transferred, tmp_path):
+    import fcntl
+
+    experiment, out = copy_of(transferred, tmp_path)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    with open(out / ".dnmr-lock", "a") as held:  # as a running transfer fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        done = dnmr("transfer", str(experiment), "-o", str(out), "--overwrite")
+    assert done.returncode == 2 and "another dnmr run" in one_line(done.stderr)
+    assert {p.name: p.read_bytes() for p in out.iterdir() if p.name != ".dnmr-lock"} == before
+
+
+# --- the report (dnmr report): its folder locked while it writes, no link followed, the umask honoured -----
+
+def test_a_report_into_a_folder_being_written_is_refused(fitted, tmp_path):
+    import fcntl
+
+    _, out = copy_of(fitted, tmp_path)
+    with open(out / ".dnmr-lock", "a") as held:  # as a running fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        held.write("dnmr fit, process 1\n")
+        held.flush()
+        before = sorted(str(p.relative_to(out)) for p in out.rglob("*"))
+        done = dnmr("report", str(out), "--overwrite")
+    assert done.returncode == 2 and "being written by another dnmr run (dnmr fit" in one_line(done.stderr)
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == before  # no report, no tables
+
+
+def test_a_report_never_writes_through_a_linked_folder(fitted, tmp_path):
+    _, out = copy_of(fitted, tmp_path)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "si_rates.csv").write_text("not dnmr's")
+    (out / "supporting-information").symlink_to(elsewhere)
+    done = dnmr("report", str(out), "--overwrite")
+    assert done.returncode == 2 and "link" in one_line(done.stderr)
+    assert {p.name: p.read_text() for p in elsewhere.iterdir()} == {"si_rates.csv": "not dnmr's"}
+    assert not (out / "report.html").exists()
+
+
+def test_a_report_of_a_missing_folder_or_into_a_file_writes_nothing(fitted, tmp_path):
+    missing = dnmr("report", str(tmp_path / "missing"))
+    assert missing.returncode == 2 and "no results.json" in one_line(missing.stderr)
+    (tmp_path / "afile").write_text("the user's own")
+    into_file = dnmr("report", str(fitted[1]), "-o", str(tmp_path / "afile" / "report.html"))
+    assert into_file.returncode == 2 and "not a folder" in one_line(into_file.stderr)
+    assert [p.name for p in tmp_path.iterdir()] == ["afile"]  # the folder the report would have made is gone
+
+def test_report_outputs_honour_the_umask(fitted, tmp_path):
+    _, out = copy_of(fitted, tmp_path)
+    done = dnmr("report", str(out), umask=0o027)
+    assert done.returncode == 0, done.stderr
+    tables = out / "supporting-information"
+    assert tables.stat().st_mode & 0o777 == 0o750 and not (out / ".dnmr-lock").exists()
+    for path in [out / "report.html", *tables.iterdir()]:
+        assert path.stat().st_mode & 0o777 == 0o640, path  # as umask 027 allows: the group reads, others not
 
 
 def test_simulate_checks_every_output_before_writing(tmp_path):

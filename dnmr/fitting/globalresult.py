@@ -16,14 +16,13 @@ from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalquality import SpectrumQuality
-from dnmr.fitting.resultsfolder import (OUTPUT_FILES, REPORT_FILE, RESULT_FOLDERS, earlier_manifest, holds_results,
-                                        lock_results_folder, refuse_inputs_among, refuse_linked_folders,
-                                        release_results_folder, remove_earlier_results)
+from dnmr.fitting.resultsfolder import (OUTPUT_FILES, REPORT_FILE, RESULT_FOLDERS, SUPPORTING_FOLDER, earlier_manifest,
+                                        holds_results, lock_results_folder, refuse_inputs_among, refuse_linked_folders,
+                                        release_results_folder, remove_earlier_results, series_inputs)
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.formatting import format_with_error
 from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figure
-from dnmr.reporting.supporting import SUPPORTING_FOLDER
 from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.notebook import NotebookView
 
@@ -297,11 +296,10 @@ def prepare_global_folder(outdir: Path, series: Series, overwrite: bool):
     """
     if outdir.exists() and not outdir.is_dir():
         raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
-    refuse_inputs_among(outdir, series, _own_files(), ())
-    refuse_inputs_among(outdir / TWO_STEP_FOLDER, series, [*OUTPUT_FILES, REPORT_FILE], RESULT_FOLDERS)
+    refuse_inputs_among(outdir, series_inputs(series), _own_files(), ())
+    refuse_inputs_among(outdir / TWO_STEP_FOLDER, series_inputs(series), [*OUTPUT_FILES, REPORT_FILE], RESULT_FOLDERS)
     refuse_linked_folders(outdir, (TWO_STEP_FOLDER, SUPPORTING_FOLDER))
     existed = holds_results(outdir)
-    outdir.mkdir(parents=True, exist_ok=True)
     lock = lock_results_folder(outdir, GLOBAL_PROGRAM)
     try:
         if existed:

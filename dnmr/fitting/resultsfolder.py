@@ -1,22 +1,25 @@
 """The results folder of a series fit: what it holds, the lock of the run writing it, and the rules for
 writing into one that exists (refused, unless ``overwrite`` replaces an earlier dnmr fit's files or
-``resume`` continues it).  The global fit's folder (:mod:`dnmr.fitting.globalresult`) follows the same
-rules with the same lock.
+``resume`` continues it).  The global fit's folder (:mod:`dnmr.fitting.globalresult`) and the folder of a
+magnetisation-transfer fit (:func:`dnmr.fitting.transfer.transfer_folder`) follow the same rules with the
+same lock, and ``dnmr report`` takes the lock of the folder it writes into.
 
-Every file is written atomically; inputs are never written over, and only the files an earlier dnmr fit
-wrote (named in its manifest ``series.json``) are ever removed.
+Every file is written atomically; inputs are never written over, and only the files an earlier dnmr run
+wrote (named in its manifest: ``series.json``, ``global.json``, a transfer fit's ``results.json``) are ever
+removed.  A folder a run created is removed again when nothing could be written into it (a full disk).
 """
 from __future__ import annotations
 
 import json
 import os
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TextIO
 
 from dnmr.errors import InputError
 from dnmr.fitting.seriesfile import Series
-from dnmr.io.output import atomic_write_text, json_ready
-from dnmr.reporting.supporting import SUPPORTING_FOLDER
+from dnmr.io.output import atomic_write_text, json_ready, missing_folders, remove_empty_folders
 
 OUTPUT_FILES = ("rates.csv", "results.json", "series_fits.png", "series.json")
 """The files of a series fit at the top of its results folder (beside them ``report.html`` of ``dnmr report``)."""
@@ -25,6 +28,8 @@ RESULT_FOLDERS = ("fits", "figures")
 STAGE_MAIN, STAGE_SLOW, STAGE_HELD = "main", "slow-exchange", "held"
 """The fits of a spectrum: alone ("main", no trends), in the slow-exchange run with its static parameters free,
 or with them held; each is stored as ``fits/NNN_<stage>.json``."""
+SUPPORTING_FOLDER = "supporting-information"
+"""The folder, inside a results folder, that holds the supporting-information tables of ``dnmr report``."""
 REPORT_FILE = "report.html"
 """The report ``dnmr report`` (run by ``dnmr fit`` itself) writes into a results folder."""
 LOCK_FILE = ".dnmr-lock"
@@ -47,11 +52,17 @@ def _result_names(series: Series) -> list[str]:
     return names
 
 
-def refuse_inputs_among(outdir: Path, series: Series, files: Sequence[str], folders: Sequence[str]) -> None:
-    """Refuse when an input of `series` (series file, model, spectra) is one of the `files` or lies in one of
-    the `folders` (both relative to `outdir`) that a fit writes."""
+def series_inputs(series: Series) -> list[Path]:
+    """The files a fit of `series` reads: the series file, the model file and the spectra."""
+    return [series.source, series.model_file] + [s.file for s in series.spectra]
+
+
+def refuse_inputs_among(outdir: Path, inputs: Sequence[str | Path], files: Sequence[str],
+                        folders: Sequence[str]) -> None:
+    """Refuse when one of the `inputs` (files a run reads, e.g. :func:`series_inputs`) is one of the `files`
+    or lies in one of the `folders` (both relative to `outdir`) that the run writes."""
     ours = {(outdir / name).resolve() for name in files}
-    for p in [series.source, series.model_file] + [s.file for s in series.spectra]:
+    for p in inputs:
         inside = any(Path(p).resolve().is_relative_to((outdir / f).resolve()) for f in folders)
         if Path(p).resolve() in ours or inside:
             raise InputError(f"the input {p} would be overwritten by the results; choose another output folder",
@@ -72,12 +83,50 @@ def holds_results(outdir: Path) -> bool:
     return outdir.is_dir() and any(p.name != LOCK_FILE for p in outdir.iterdir())
 
 
-def lock_results_folder(outdir: Path, program: str = "dnmr fit"):
-    """Take the lock of the existing folder `outdir` for `program` (an open file holding an exclusive
-    advisory lock, released when closed or when this process ends), or refuse when another run holds it."""
+@dataclass
+class FolderLock:
+    """The lock a run holds on its results folder (:func:`lock_results_folder`).
+
+    Attributes
+    ----------
+    folder : Path
+        The results folder.
+    handle : file
+        The open lock file, holding an exclusive advisory lock (released when closed or when the
+        process ends).
+    created : list of Path
+        The folders the run created to write into, deepest first (the results folder and any missing
+        parents, and subfolders made by :meth:`make_folders`): removed again on release when nothing
+        could be written into them.
+    """
+
+    folder: Path
+    handle: TextIO
+    created: list[Path] = field(default_factory=list)
+
+    def make_folders(self, names: Sequence[str]) -> None:
+        """Create the subfolders `names` of the results folder that are missing (removed again on release
+        when nothing could be written into them)."""
+        for name in names:
+            path = self.folder / name
+            if not path.is_dir():
+                path.mkdir()
+                self.created.insert(0, path)
+
+
+def lock_results_folder(outdir: Path, program: str = "dnmr fit") -> FolderLock:
+    """Create the folder `outdir` when it is missing and take its lock for `program`, or refuse when another
+    run holds it; release it with :func:`release_results_folder`."""
     import fcntl
 
-    handle = open(outdir / LOCK_FILE, "a+")
+    created = missing_folders(outdir)
+    try:
+        outdir.mkdir(parents=True, exist_ok=True)
+        handle = open(outdir / LOCK_FILE, "a+")
+    except OSError:
+        remove_empty_folders(created)
+        raise
+    lock = FolderLock(outdir, handle, created)
     try:
         fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
@@ -89,17 +138,18 @@ def lock_results_folder(outdir: Path, program: str = "dnmr fit"):
     try:  # unbuffered, so that nothing is left to fail again when the file is closed
         os.ftruncate(handle.fileno(), 0)
         os.write(handle.fileno(), f"{program}, process {os.getpid()}\n".encode())
-    except OSError as err:  # a full disk: name the lock file, leave none behind
-        release_results_folder(handle)
+    except OSError as err:  # a full disk: name the lock file, leave none behind (nor the folder made for it)
+        release_results_folder(lock)
         raise OSError(err.errno, err.strerror, handle.name) from None
-    return handle
+    return lock
 
 
-def release_results_folder(handle) -> None:
-    """Release the lock of a results folder (the `handle` :func:`lock_results_folder` returned) and remove
-    its file."""
-    Path(handle.name).unlink(missing_ok=True)
-    handle.close()
+def release_results_folder(lock: FolderLock) -> None:
+    """Release the `lock` of a results folder (:func:`lock_results_folder`), remove its file, and remove the
+    folders the run created if nothing could be written into them (a folder that existed before stays)."""
+    Path(lock.handle.name).unlink(missing_ok=True)
+    lock.handle.close()
+    remove_empty_folders(lock.created)
 
 
 def earlier_manifest(path: Path, program: str) -> dict | None:
@@ -114,8 +164,9 @@ def earlier_manifest(path: Path, program: str) -> dict | None:
     return data if isinstance(data, dict) and data.get("program") == program else None
 
 
-def _listed_files(manifest: dict | None) -> list[str]:
-    """The files an earlier fit's manifest names (none when it names them in no list of names)."""
+def listed_files(manifest: dict | None) -> list[str]:
+    """The files an earlier run's manifest (:func:`earlier_manifest`) names in its list ``files`` (none when
+    it names them in no list of names)."""
     listed = (manifest or {}).get("files")
     return [n for n in listed if isinstance(n, str)] if isinstance(listed, list) else []
 
@@ -155,7 +206,7 @@ def prepare_results_folder(outdir: Path, series: Series, overwrite: bool, resume
         raise InputError("--overwrite discards earlier fits and --resume keeps them: choose one", where="--overwrite")
     if outdir.exists() and not outdir.is_dir():
         raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
-    refuse_inputs_among(outdir, series, list(OUTPUT_FILES) + [REPORT_FILE], RESULT_FOLDERS)
+    refuse_inputs_among(outdir, series_inputs(series), list(OUTPUT_FILES) + [REPORT_FILE], RESULT_FOLDERS)
     refuse_linked_folders(outdir, RESULT_FOLDERS + (SUPPORTING_FOLDER,))
     existed = holds_results(outdir)
     if existed and not (resume or overwrite):
@@ -169,14 +220,12 @@ def prepare_results_folder(outdir: Path, series: Series, overwrite: bool, resume
     if resume and earlier.get("series") != str(series.source):
         raise InputError(f"{outdir} holds the results of another series ({earlier.get('series')}); use another "
                          "folder or --overwrite", where="--resume")
-    outdir.mkdir(parents=True, exist_ok=True)
     lock = lock_results_folder(outdir)
     try:
         if existed and overwrite:
-            remove_earlier_results(outdir, _listed_files(earlier) + _result_names(series))
-        for folder in RESULT_FOLDERS:
-            (outdir / folder).mkdir(exist_ok=True)
-        names = sorted(set(_result_names(series)) | set(_listed_files(earlier) if resume else ()))
+            remove_earlier_results(outdir, listed_files(earlier) + _result_names(series))
+        lock.make_folders(RESULT_FOLDERS)
+        names = sorted(set(_result_names(series)) | set(listed_files(earlier) if resume else ()))
         write_json(outdir / "series.json", {"program": "dnmr fit", "series": str(series.source), "files": names})
     except BaseException:
         release_results_folder(lock)

@@ -159,6 +159,8 @@ class Experiment:
         The experiment file.
     title : str
         Free text.
+    model_file : str or None
+        The model file the experiment file names.
     """
 
     model: Model
@@ -168,6 +170,11 @@ class Experiment:
     options: TransferOptions = field(default_factory=TransferOptions)
     source: str | None = None
     title: str = ""
+    model_file: str | None = None
+
+    def inputs(self) -> list[str]:
+        """The files the experiment was read from (experiment file, model file, data table), as far as known."""
+        return [f for f in (self.source, self.model_file, self.data.source) if f]
 
     def __post_init__(self):
         if self.experiment not in EXPERIMENTS:
@@ -327,9 +334,11 @@ def load_experiment(path: str | Path) -> Experiment:
             raise InputError("expected text", where="title")
     except InputError as err:
         raise err.located(source=path) from None
-    model = named_model(data["model"], path)[1].at_temperature(float(temperature))
+    model_file, model = named_model(data["model"], path)
+    model = model.at_temperature(float(temperature))
     table = read_transfer_table(path.parent / data["data"], data["experiment"], model)
     try:
-        return Experiment(model, float(temperature), data["experiment"], table, options, str(path), title)
+        return Experiment(model, float(temperature), data["experiment"], table, options, str(path), title,
+                          str(model_file))
     except InputError as err:
         raise err.located(source=path) from None
