@@ -24,6 +24,7 @@ _HOMES = {
     "activation.rate_table": ("read_rates",),
     "activation.study": ("EyringStudy", "run_eyring"),
     "errors": ("InputError",),
+    "jobs": ("run_fit",),
     "fitting.spectrumfit": ("FitOptions", "SpectrumFit", "fit_parameters", "fit_spectrum"),
     "fitting.rates": ("RateEstimate",),
     "engine.longitudinal": ("LongitudinalSystem",),

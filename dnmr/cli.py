@@ -9,15 +9,11 @@ import json
 import sys
 import traceback
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import click
 
 from dnmr.errors import InputError
 from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready, os_error_text
-
-if TYPE_CHECKING:
-    from dnmr.fitting.seriesfile import Series
 
 
 class _Group(click.Group):
@@ -168,94 +164,42 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
     from contextlib import nullcontext
 
     from dnmr.fitting.cluster import scheduler_executor
+    from dnmr.jobs import check_fit_settings, run_fit, run_fit_folder
 
     if scheduler is not None and serial:
         raise InputError("--serial fits in this process and --scheduler on a cluster: choose one", where="--scheduler")
-    settings = {"quiet": quiet, "global_fit": global_fit, "no_report": no_report, "calibration_file": calibration_file,
-                "treatment": {"shifts": shifts, "linewidth": linewidth, "couplings": couplings},
-                "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None}
-    _check_fit_options(settings, resume)
-    with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
-            executor, threads):
-        settings.update(workers=1 if serial else workers or threads, executor=executor)
-        if series_file.is_dir():
-            ctx.exit(_fit_folder(series_file, outdir, overwrite, resume, settings))
-        result = _fit_one(series_file, outdir, overwrite=overwrite, resume=resume, **settings)
-    ctx.exit(0 if global_fit else result.exit_status)
-
-
-def _check_fit_options(settings: dict, resume: bool) -> None:
-    """Refuse, before any work, options of `dnmr fit` that do not go together."""
-    posterior, global_fit = settings["posterior"] is not None, settings["global_fit"]
-    if resume and global_fit:
-        raise InputError("--resume is not available with --global", where="--resume")
-    if posterior and global_fit:
-        raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
-                         where="--posterior")
+    check_fit_settings(resume=resume, global_fit=global_fit, posterior={} if posterior else None)
     if posterior:
         from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
+    settings = {"global_fit": global_fit, "write_html": not no_report, "calibration_file": calibration_file,
+                "treatment": {"shifts": shifts, "linewidth": linewidth, "couplings": couplings},
+                "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None,
+                "progress": False if quiet else None,
+                "on_warning": lambda text: click.echo(f"dnmr: warning: {series_file}: {text}", err=True)}
+    with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
+            executor, threads):
+        where = {"overwrite": overwrite, "resume": resume, "workers": 1 if serial else workers or threads,
+                 "executor": executor}
+        if series_file.is_dir():
+            batch = run_fit_folder(series_file, outdir, on_job=_echo_fit_job, **where, **settings)
+            click.echo(batch.report())
+            ctx.exit(batch.exit_status)
+        job = run_fit(series_file, outdir, **where, **settings)
+        _echo_fit_job(job)
+    ctx.exit(job.exit_status)
 
 
-def _fit_one(series_file: Path, outdir: Path, *, overwrite: bool, resume: bool, quiet: bool, global_fit: bool,
-             no_report: bool, calibration_file: Path | None, treatment: dict[str, str], posterior: dict | None,
-             workers: int | None, executor):
-    """`dnmr fit` of one series file: the fit, its text report and report.html; returns the SeriesFit (or GlobalFit)."""
-    from dnmr.fitting.series import fit_series
-    from dnmr.fitting.seriesfile import load_series
-
-    series = load_series(series_file)
-    for warning in series.warnings:
-        click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
-    if global_fit:
-        return _fit_global(series, outdir, overwrite, workers, quiet, treatment, calibration_file, no_report, executor)
-    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers,
-                        progress=False if quiet else None, posterior=posterior, executor=executor)
-    click.echo(result.report())
-    for failed in result.failures:
-        click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-    _write_report_after_fit(outdir, calibration_file, no_report)
-    return result
-
-
-def _fit_folder(folder: Path, outdir: Path, overwrite: bool, resume: bool, settings: dict) -> int:
-    """`dnmr fit FOLDER`: every series file in it, each into its subfolder of `outdir` (dnmr.fitting.seriesfolder);
-    prints the summary and returns the exit status."""
-    from dnmr.fitting.seriesfolder import fit_series_folder
-
-    each = {k: v for k, v in settings.items() if k not in ("workers", "executor")}
-    batch = fit_series_folder(folder, outdir, lambda path, out, **flags: _fit_one(path, out, **flags, **each),
-                              overwrite=overwrite, resume=resume, workers=settings["workers"],
-                              executor=settings["executor"])
-    click.echo(batch.report())
-    return batch.exit_status
-
-
-def _fit_global(series: Series, outdir: Path, overwrite: bool, workers: int | None, quiet: bool,
-                treatment: dict[str, str], calibration_file: Path | None, no_report: bool, executor=None):
-    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html; returns it."""
-    from dnmr.fitting.globalfit import fit_series_global
-    from dnmr.activation.temperature_calibration import read_temperature_calibration
-
-    calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
-                               progress=False if quiet else None, executor=executor, **treatment)
-    click.echo(result.report())
-    _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
-    return result
-
-
-def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_report: bool) -> None:
-    """report.html of the fit just written into `outdir` (rewritten with each run), unless `no_report`."""
-    if no_report:
-        return
-    from dnmr.reporting.report import write_report
-
-    try:
-        click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
-    except InputError as err:
-        click.echo(f"dnmr: warning: no report written: {err}", err=True)
+def _echo_fit_job(job) -> None:
+    """Print what `dnmr fit` did: the fit's report, the spectra that failed, report.html or why there is none."""
+    click.echo(job.report())
+    for problem in job.problems():
+        click.echo(f"dnmr: error: {problem}", err=True)
+    if job.report_file is not None:
+        click.echo(f"report: {job.report_file}")
+    elif job.report_problem is not None:
+        click.echo(f"dnmr: warning: no report written: {job.report_problem}", err=True)
 
 
 @cli.command()

@@ -21,7 +21,7 @@ LAYERS = (
     ("dnmr.activation",),
     ("dnmr.fitting", "dnmr.planning"),
     ("dnmr.reporting",),
-    ("dnmr.cli", "dnmr.demo", "dnmr.__main__", "dnmr"),
+    ("dnmr.cli", "dnmr.demo", "dnmr.jobs", "dnmr.__main__", "dnmr"),
 )
 MAX_MODULE_LINES = 600
 MAX_FUNCTION_LINES = 60

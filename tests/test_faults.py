@@ -569,3 +569,16 @@ def test_stack_refuses_an_empty_or_endless_list_before_any_work(tmp_path):
     endless = dnmr("stack", str(model), "--rates", many, "-o", str(tmp_path / "s.png"))
     assert endless.returncode == 2 and "at most" in one_line(endless.stderr)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_bad_calibration_file_is_refused_before_any_fit(tmp_path):
+    # the calibration is read before the spectra are fitted: one line, exit 2, no results folder
+    bad = tmp_path / "calibration.csv"
+    bad.write_text("setpoint,true\n250,251\n")
+    out = tmp_path / "out"
+    run = dnmr("fit", str(series_file(tmp_path)), "-o", str(out), "--serial", "--quiet",
+               "--calibration", str(bad))
+    assert run.returncode == 2, run.stderr
+    assert "Traceback" not in run.stderr and len(run.stderr.strip().splitlines()) == 1, run.stderr
+    assert "calibration.csv" in run.stderr
+    assert not out.exists()
