@@ -49,8 +49,8 @@ class Tally:
         for row in rows:
             k = true_rate[min(true_rate, key=lambda t: abs(t - float(row["temperature_k"])))]
             if row.get("rate_stderr") not in ("", None):
-                lo = _number(row.get("ci68_low_per_s"), _number(row["rate_per_s"]) - _number(row["rate_stderr"]))
-                hi = _number(row.get("ci68_high_per_s"), _number(row["rate_per_s"]) + _number(row["rate_stderr"]))
+                lo = _number(row.get("rate_ci68_lower"), _number(row["rate_per_s"]) - _number(row["rate_stderr"]))
+                hi = _number(row.get("rate_ci68_upper"), _number(row["rate_per_s"]) + _number(row["rate_stderr"]))
                 self.intervals += 1
                 self.interval_hits += lo <= k <= hi
             elif row.get("rate_lower") not in ("", None) or row.get("rate_upper") not in ("", None):

@@ -586,7 +586,7 @@ def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path)
     and is used with sigma(ln k) = the larger of its half-widths in ln k (conservative; common practice
     for asymmetric errors when the side the line falls on is not known in advance)."""
     path = tmp_path / "rates.csv"
-    path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s\n"
+    path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,rate_ci68_lower,rate_ci68_upper\n"
                     "250,p,10,1,,,determined,9,11\n260,p,25,,,,interval,22,28\n270,p,,,,,failed,,\n"
                     "280,p,140,10,,,determined,130,150\n290,p,300,30,,,determined,270,330\n")
     (result,) = eyring_fit_file(path)
@@ -596,7 +596,7 @@ def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path)
     assert any("line 3 (260.00 K): 68 % interval 22–28 s⁻¹ used with σ(ln k) = 0.128" in w for w in result.warnings)
 
 
-FIT_HEADER = "temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s,reduced_chi_square,flags\n"
+FIT_HEADER = "temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,rate_ci68_lower,rate_ci68_upper,reduced_chi_square,flags\n"
 
 
 def _fit_table(tmp_path, flags: dict[int, str], chi: dict[int, float] | None = None):

@@ -113,6 +113,8 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
     assert status == 2, message
     assert "Traceback" not in message and len(message.splitlines()) == 1, message
     assert path.name in message, message
+    if path.stem.startswith("renamed_"):  # issue 16: a name of an earlier release says what it is called now
+        assert "was renamed to" in message, message
     assert digest(path.parent) == before  # the input folder is untouched
     assert [p.name for p in out.iterdir()] == ["earlier.txt"] and (out / "earlier.txt").read_text() == "an earlier result"
 

@@ -98,7 +98,7 @@ def test_lines_too_close_for_their_width_have_no_coalescence(dnu, resolved):
     assert (c.rate_per_s is not None) == resolved
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(dnu), rel=1e-4)
     if not resolved:
-        assert "slow exchange" in c.note
+        assert "slow exchange" in " ".join(c.notes)
 
 
 def test_observed_nucleus_frequency_from_iupac_ratio():
@@ -386,11 +386,11 @@ def test_unequal_couplings_to_a_heteronucleus_are_named_in_the_note():
                                      State("b", {"H": 3.25}, {"H-F": 10.0}, 1.0, 0.5)),
                   (Exchange("a", "b", rate_per_s=1.0, name="hop"),), heteronuclei={"F": "19F"}, points=2048)
     (c,) = coalescence(model)
-    assert "H-F 40 -> 10 Hz" in c.note
+    assert "H-F 40 -> 10 Hz" in " ".join(c.notes)
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(100.0), rel=1e-4)
     same = model.replace(states=tuple(s.__class__(s.name, s.shifts_ppm, {"H-F": 40.0}, 1.0, 0.5)
                                       for s in model.states))
-    assert coalescence(same)[0].note == ""
+    assert coalescence(same)[0].notes == ()
 
 
 def test_plan_report_quotes_the_separation_as_a_magnitude():
@@ -417,7 +417,7 @@ def test_coalescence_of_a_fluorine_swap_is_gutowsky_holm_of_the_coupling_differe
     model = fluorine_swap()
     (c,) = coalescence(model)
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(40.0), rel=1e-4)
-    assert c.separation_hz == pytest.approx(40.0) and c.shift_difference_hz == 0.0 and c.note == ""
+    assert c.separation_hz == pytest.approx(40.0) and c.shift_difference_hz == 0.0 and c.notes == ()
     assert c.to_dict()["kind"] == "coupling"
     hz = np.linspace(3.0 * SF - 40.0, 3.0 * SF + 40.0, 8001)
 
@@ -455,12 +455,12 @@ def test_components_that_move_by_different_amounts_are_noted():
                   groups={"Fa": 3, "Fb": 3}, heteronuclei={"Fa": "19F", "Fb": "19F"})
     (c,) = coalescence(model)
     assert c.pair.component_moves_hz == (10.0, 20.0, 30.0)
-    assert "move by 10, 20, 30 Hz" in c.note and "last of them" in c.note
+    assert "move by 10, 20, 30 Hz" in " ".join(c.notes) and "last of them" in " ".join(c.notes)
     assert c.to_dict()["component_moves_hz"] == [10.0, 20.0, 30.0]
     from test_timescale import fluorine_swap
 
     (single,) = coalescence(fluorine_swap())  # one move only (40 Hz): no such note
-    assert single.pair.component_moves_hz == (40.0,) and single.note == ""
+    assert single.pair.component_moves_hz == (40.0,) and single.notes == ()
 
 
 def test_plan_covers_an_exchange_that_only_swaps_fluorines():

@@ -163,7 +163,7 @@ def test_report_shows_each_posterior_beside_the_least_squares_result(sampled):
         row = next(r for r in cells if r[0] == post["label"] and r[1].startswith(rate_text(ls)))
         if ls["status"] == "upper-bound":  # the coldest spectrum: only the one-sided bound, no median
             assert post["kind"] == "upper-bound"
-            assert row[2:6] == ["", "", "", f"< {post['bound_95']:.4g}"] and "slow-exchange" in row[6]
+            assert row[2:6] == ["", "", "", f"< {post['bound95']:.4g}"] and "slow-exchange" in row[6]
         else:
             assert row[2] == f"{post['median']:.4g}"
             assert row[3] == f"{post['ci68'][0]:.4g} to {post['ci68'][1]:.4g}"

@@ -153,8 +153,8 @@ def test_selective_inversion_recovers_rate_r1_and_efficiency():
     r1 = fit.relaxation()
     assert abs(r1["a"][0] - 0.8) < 4 * r1["a"][1] and abs(r1["b"][0] - 1.5) < 4 * r1["b"][1]
     eff = fit.parameters["inversion_efficiency"]
-    assert abs(eff.value - 0.95) < 4 * eff.stderr
-    assert abs(fit.parameters["m_eq_a"].value - 60.0) < 4 * fit.parameters["m_eq_a"].stderr
+    assert abs(eff.estimate - 0.95) < 4 * eff.stderr
+    assert abs(fit.parameters["m_eq_a"].estimate - 60.0) < 4 * fit.parameters["m_eq_a"].stderr
 
 
 def test_rate_far_below_r1_is_an_upper_bound():
@@ -251,7 +251,7 @@ def test_error_bars_cover_the_truth_over_noise_replicas():
         exp = Experiment(two_site(k=1.0), 240.0, "saturation", TransferData(times, ("a",), y, None, "syn"),
                          TransferOptions(saturated=("b",), rate_limits_per_s=(1e-3, 1e3)))
         r = fit_transfer(exp).rate(0)
-        lo, hi = r.interval_per_s
+        lo, hi = r.rate_ci68
         covered += bool(lo <= 1.3 <= hi)
     assert 60 <= covered <= 76, covered
 

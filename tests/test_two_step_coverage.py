@@ -44,8 +44,8 @@ def _interval_hits(rows: list[dict], truth) -> list[bool]:
     hits = []
     for row in rows:
         k = true_rate[float(row["temperature_k"])]
-        if row["ci68_low_per_s"] and row["ci68_high_per_s"]:
-            hits.append(float(row["ci68_low_per_s"]) <= k <= float(row["ci68_high_per_s"]))
+        if row["rate_ci68_lower"] and row["rate_ci68_upper"]:
+            hits.append(float(row["rate_ci68_lower"]) <= k <= float(row["rate_ci68_upper"]))
     return hits
 
 
@@ -91,5 +91,5 @@ def test_reference_line_gives_the_linewidth_and_values_past_coalescence(tmp_path
         width = o.reference["width_hz"]
         assert abs(width - scenario.linewidth_at(o.spectrum.temperature_k)) <= 4 * o.reference["stderr_hz"]
         rate = o.fit.rate(0)
-        assert rate.status == "determined" and rate.log10_stderr_held > 0
+        assert rate.status == "determined" and rate.log10_rate_stderr_held > 0
         assert abs(rate.rate_per_s - k_true) <= 3 * rate.rate_stderr

@@ -322,7 +322,7 @@ def _global_problem(series: Series, two_step: SeriesFit, used: list[int], temps:
     two-step fit and its Eyring line."""
     members = [GlobalMember.from_two_step(i, float(t), two_step.outcomes[i].fit, series.model)
                for i, t in zip(used, temps)]
-    idents = [n[len("log10_k_"):] for n in members[0].problem.layout.rate_names]
+    idents = [n[len("log10_rate_"):] for n in members[0].problem.layout.rate_names]
     start = _eyring_start(two_step, eyring, series.model.process_names(), idents, used, temps)
     return GlobalProblem(members, series.model, treatment, _van_t_hoff(series, temps), start)
 

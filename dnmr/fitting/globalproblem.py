@@ -195,7 +195,7 @@ class GlobalProblem:
         self.reference_k = float(np.mean([m.temperature_k for m in members]))
         layout = members[0].problem.layout
         self.layout = layout
-        self.processes = [n[len("log10_k_"):] for n in layout.rate_names]
+        self.processes = [n[len("log10_rate_"):] for n in layout.rate_names]
         self.settings = _settings(members)
         self.params = lmfit.Parameters()
         self.quantities: list[LineshapeQuantity] = []
@@ -217,7 +217,7 @@ class GlobalProblem:
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
-        """Add a parameter; the series' ``[fit.parameters]`` may fix it (fixed = true) at its start value."""
+        """Add a parameter; the series' ``[fit.lmfit_parameters]`` may fix it (fixed = true) at its start value."""
         setting = self.settings.get(name, {})
         if setting.get("fixed") is True:
             value, vary = float(setting.get("start", value)), False
@@ -256,7 +256,7 @@ class GlobalProblem:
                            DIFFERENCE_STEP["rate"], constant=True)
 
     def _two_step(self, name: str) -> np.ndarray:
-        return np.array([m.fit.parameters[name].value if name in m.fit.parameters else math.nan for m in self.members])
+        return np.array([m.fit.lmfit_parameters[name].value if name in m.fit.lmfit_parameters else math.nan for m in self.members])
 
     def _add_shifts(self) -> None:
         """Started from the line positions of the two-step fits (shift plus that fit's frequency offset)."""
@@ -281,7 +281,7 @@ class GlobalProblem:
             fixed = held or self.settings.get(name, {}).get("fixed") is True
             if self.treatment.linewidth == "per-spectrum" and not fixed:
                 for m in self.members:
-                    self._add(f"{m.prefix}{name}", m.fit.parameters[name].value, MIN_LINEWIDTH_HZ)
+                    self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
                 self._quantity(name, "linewidth", [], DIFFERENCE_STEP["linewidth"])
                 continue
             level = float(np.nanmedian(self._two_step(name)[cold]))
@@ -308,7 +308,7 @@ class GlobalProblem:
             return
         names = self.layout.population_names
         inverse = np.array([1.0 / m.temperature_k for m in self.members])
-        pops = np.array([[m.fit.parameters[n].value for n in names] for m in self.members])
+        pops = np.array([[m.fit.lmfit_parameters[n].value for n in names] for m in self.members])
         for j, state in enumerate(self.model.states[1:], start=1):
             ln_k = np.log(pops[:, j] / pops[:, 0])
             slope, intercept = np.polyfit(inverse, ln_k, 1) if np.ptp(inverse) > 0 else (0.0, float(ln_k.mean()))
@@ -324,10 +324,10 @@ class GlobalProblem:
         (the shift trends start at the line positions)."""
         for m in self.members:
             for n in NUISANCE + m.problem.layout.baseline_names:
-                par = m.fit.parameters[n]
+                par = m.fit.lmfit_parameters[n]
                 self.params.add(f"{m.prefix}{n}", value=par.value, min=par.min, max=par.max,
                                 vary=bool(par.vary and not par.expr))
-            par = m.fit.parameters["offset_hz"]
+            par = m.fit.lmfit_parameters["offset_hz"]
             self.params.add(f"{m.prefix}offset_hz", value=0.0, min=par.min, max=par.max,
                             vary=m.fit.options.frequency_offset and not self.settings.get("offset_hz", {}).get("fixed", False))
         self._quantity("offset_hz", "offset", [], DIFFERENCE_STEP["offset"])

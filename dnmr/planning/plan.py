@@ -346,8 +346,7 @@ class ExperimentPlan(NotebookView):
                          f" {number_or_dash(c.temperature_k, '7.1f')}"
                          f"   {number_or_dash(c.narrow_limit_rate_per_s, '15.4g')}"
                          f" {number_or_dash(c.narrow_limit_temperature_k, '7.1f')}")
-            if c.note:
-                lines.append(f"      note: {c.note}")
+            lines += [f"      note: {note}" for note in c.notes]
         return lines + [f"  ({COUPLING_PAIR_NOTE})"] * any(c.pair.coupling_changes for c in self.coalescence)
 
     def _window_lines(self) -> list[str]:

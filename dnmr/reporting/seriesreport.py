@@ -137,7 +137,7 @@ def model_section(inputs: ReportInputs) -> str:
 
 def rate_section(inputs: ReportInputs) -> str:
     """The rate table of rates.csv (with the posterior rates when ``dnmr fit --posterior`` sampled them)."""
-    sampled = any("posterior_median_per_s" in row for row in inputs.rates)
+    sampled = any("posterior_rate_median" in row for row in inputs.rates)
     temperatures = sample_temperature_cells(inputs)
     rows = [temperature + [row.get("process", ""), rate_text(row), row.get("status", ""),
              table_number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")]
