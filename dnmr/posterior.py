@@ -161,7 +161,7 @@ class Posterior(NotebookView):
     notes : list of str
         What to know about the chain and the numbers.
     extra : dict
-        Further results (e.g. the dH‡-dS‡ correlation of an Eyring posterior).
+        Further results (e.g. the ΔH‡-ΔS‡ correlation of an Eyring posterior).
     """
 
     title: str

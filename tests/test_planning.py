@@ -139,7 +139,7 @@ def test_populations_follow_temperature_at_coalescence():
 
 
 def test_enthalpy_and_entropy_give_the_gibbs_energy_at_coalescence():
-    # Eyring with dH‡ and dS‡ (tests/reference_eyring.py).
+    # Eyring with ΔH‡ and ΔS‡ (tests/reference_eyring.py).
     act = ActivationParameters(50.0, -20.0)
     (c,) = predict_coalescence(two_sites(0.5, dnu=100.0), act)
     t = c.temperature_k
@@ -208,7 +208,7 @@ def test_plan_stays_in_the_liquid_range_and_carries_the_cautions():
     assert min(np.diff(field.temperatures_k)) >= 5.0
     assert all(p.reason for p in field.temperatures)
     (errors,) = field.errors
-    assert errors.enthalpy_stderr > 0 and errors.correlation > 0.9  # Grieger, Hunter & Krug (1976)
+    assert errors.enthalpy_stderr > 0 and errors.correlation_enthalpy_entropy > 0.9  # Grieger, Hunter & Krug (1976)
     text = plan.report()
     for word in ("burst", "crack", "liquid nitrogen", "pacemakers", "facility"):
         assert word in text
@@ -275,7 +275,7 @@ def test_cli_plan_json_has_the_contract_keys(model_file):
         krw = kurland_rubin_wise_rate(0.2 * c["frequency_mhz"], 12.0)
         assert c["narrow_limit_rate_per_s"] == pytest.approx(krw, rel=1e-4)
         assert eyring_rate(c["temperature_k"], 60.0) == pytest.approx(c["rate_per_s"], rel=1e-4)
-    assert {"plan", "solvent", "cautions", "measurable_window"} <= set(out)
+    assert {"plan", "solvent", "cautions", "measurable_range"} <= set(out)
     assert out["solvent"]["name"] == "toluene-d8"
 
 
@@ -470,8 +470,8 @@ def test_plan_covers_an_exchange_that_only_swaps_fluorines():
     plan = plan_experiment(fluorine_swap(barrier=60.0), spectra=3)
     (c,) = plan.coalescence
     assert eyring_rate(c.temperature_k, 60.0) == pytest.approx(c.rate_per_s, rel=1e-4)
-    (window,) = plan.windows
-    assert window.slow_below_k < c.temperature_k < window.fast_above_k
+    (timescale,) = plan.timescales
+    assert timescale.slow_below_k < c.temperature_k < timescale.fast_above_k
     (field_plan,) = plan.fields
     assert len(field_plan.temperatures_k) == 3
     assert "H(s) (J to F1, F2)" in plan.report()

@@ -54,7 +54,7 @@ def noisy_rates(seed: int) -> np.ndarray:
 
 
 def line_samples(post) -> np.ndarray:
-    """(intercept, slope) of ln(k/T) = a + b / T from the (dH‡, dS‡) samples."""
+    """(intercept, slope) of ln(k/T) = a + b / T from the (ΔH‡, ΔS‡) samples."""
     dh, ds = post.column("enthalpy_kj_mol"), post.column("entropy_j_mol_k")
     return np.column_stack([ds / R + math.log(KB / H), -dh * 1e3 / R])
 
@@ -88,14 +88,14 @@ def test_eyring_posterior_is_the_weighted_least_squares_line(errors_given):
     d = post.to_dict()
     assert d["correlation_enthalpy_entropy"] == pytest.approx(result.correlation, abs=0.01)
     assert set(d["quantities"]) >= {"enthalpy_kj_mol", "entropy_j_mol_k", "gibbs_298_kj_mol", "gibbs_hm_kj_mol"}
-    # dG‡ at the harmonic-mean temperature: dH‡ - T dS‡ of each sample (the definition)
+    # ΔG‡ at the harmonic-mean temperature: ΔH‡ - T ΔS‡ of each sample (the definition)
     g_hm = post.column("enthalpy_kj_mol") - result.harmonic_mean_temperature_k * post.column("entropy_j_mol_k") / 1e3
     assert post.summary("gibbs_hm_kj_mol").median == pytest.approx(float(np.median(g_hm)), rel=1e-12)
 
 
 def test_eyring_posterior_with_temperature_errors_and_bounds():
     # Latent temperatures with the temperatures' covariance: for small temperature errors the posterior
-    # width of dH‡ matches the least-squares error that propagates them (dnmr's Monte Carlo over the
+    # width of ΔH‡ matches the least-squares error that propagates them (dnmr's Monte Carlo over the
     # temperatures, an outside check of the latent-variable route).  Tolerance: 4 Monte Carlo standard
     # errors of the chain (the half-width of a normal's central 68 % from n samples has a standard error
     # of about sigma / sqrt(n)), plus 5 % for the least-squares side (its 4000 temperature draws, and the

@@ -4,7 +4,7 @@ The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958)
 through test_series.write_series) at rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935))
 for invented activation parameters; the coldest spectrum is so slow that its rate is only an upper bound.
 The activation parameters the report shows are checked against dnmr.activation.eyring.eyring_fit_file on the same
-rates.csv, and the recovered dH‡ against the invented truth.
+rates.csv, and the recovered ΔH‡ against the invented truth.
 """
 from __future__ import annotations
 
@@ -133,7 +133,7 @@ def test_parameters_shown_are_those_of_eyring_fit_file(fitted, report):
         stderr_key = key.replace("_kj_mol", "_stderr").replace("_j_mol_k", "_stderr")
         assert text == format_with_error(expected[key], expected[stderr_key])
     assert shown["correlation_enthalpy_entropy"][0] == pytest.approx(expected["correlation_enthalpy_entropy"], rel=1e-12)
-    # the invented truth (Eyring 1935 rates for dH‡ = 60 kJ/mol) is recovered within 4 standard errors
+    # the invented truth (Eyring 1935 rates for ΔH‡ = 60 kJ/mol) is recovered within 4 standard errors
     assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_KJ_MOL) < 4 * expected["enthalpy_stderr"]
 
 

@@ -378,7 +378,7 @@ def test_bad_table_names_the_file_and_line(tmp_path):
 # --- both methods on one Eyring line ---------------------------------------------------------------
 
 def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
-    # one set of activation parameters (dH‡ 60 kJ/mol, dS‡ -12 J/(mol K); Eyring, J. Chem. Phys. 3, 107
+    # one set of activation parameters (ΔH‡ 60 kJ/mol, ΔS‡ -12 J/(mol K); Eyring, J. Chem. Phys. 3, 107
     # (1935)); lineshapes at 290-310 K from the McConnell (1958) closed form fitted by dnmr.fit_spectrum,
     # selective inversion at 250-262 K from the McConnell biexponential fitted by dnmr.fit_transfer
     from closed_forms import mcconnell_two_site
@@ -414,4 +414,4 @@ def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
     assert abs(line.enthalpy_kj_mol - 60.0) < 3 * line.enthalpy_stderr
     assert abs(line.entropy_j_mol_k + 12.0) < 3 * line.entropy_stderr
     assert np.all(np.abs(line.studentised_residuals) < 3.0), list(zip(methods, line.studentised_residuals))
-    assert line.entropy_stderr < 3.0  # a span of 60 K from both methods pins dS‡ down
+    assert line.entropy_stderr < 3.0  # a span of 60 K from both methods pins ΔS‡ down

@@ -75,7 +75,7 @@ def fit_reference_lines(series: Series) -> tuple[dict[int, dict], list[str]]:
             continue
         par = fit.lmfit_parameters["linewidth_hz_reference"]
         stderr = math.nan if par.stderr is None else float(par.stderr)
-        record = {"window_ppm": list(window), "width_hz": float(par.value), "stderr_hz": stderr,
+        record = {"window_ppm": list(window), "width_hz": float(par.value), "width_stderr": stderr,
                   "reduced_chi_square": fit.reduced_chi_square, "flags": list(fit.flags)}
         if math.isfinite(stderr) and not any(f.startswith("at-bound:linewidth") for f in fit.flags):
             record["setting"] = {name: held_setting(par.value + ref.added_width_hz, stderr)}
