@@ -205,7 +205,7 @@ def test_misfit_names_the_spectra_and_the_option(tmp_path):
     # shifts that drift with T (realistic_series: slopes of -0.0002 and +0.0001 ppm/K, 7 and 3.6 Hz over the
     # range) cannot be held constant: the fit says so, names the misfitting spectra and the option to use
     truth = _written(tmp_path / "data", "mutual-pair", 800)
-    result = fit_series_global(truth.series_file, tmp_path / "g", shifts="constant", workers=1, progress=False)
+    result = fit_series_global(truth.series_file, tmp_path / "g", shift_trend="constant", workers=1, progress=False)
     assert result.reduced_chi_square > 1.5 and result.error_scale > 1.0
     text = " ".join(result.notes)
     assert "--shift-trend linear" in text and "cannot follow" in text

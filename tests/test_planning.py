@@ -394,7 +394,7 @@ def test_unequal_couplings_to_a_heteronucleus_are_named_in_the_note():
 
 
 def test_plan_report_quotes_the_separation_as_a_magnitude():
-    # The shift difference a chemist quotes is the separation |dnu| (Hz; common practice).
+    # The shift difference a chemist quotes is the separation |Δν| (Hz; common practice).
     plan = plan_experiment(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0), spectra=3)
     (c,) = plan.coalescence
     assert c.shift_difference_hz == pytest.approx(-100.0)

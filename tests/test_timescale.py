@@ -363,14 +363,14 @@ def test_methyl_groups_give_the_timescale_of_the_same_system_written_spin_by_spi
 
 
 def test_report_quotes_the_separation_as_a_magnitude():
-    # A shift difference quoted to a chemist is the separation |dnu| in Hz (common practice); the JSON
+    # A shift difference quoted to a chemist is the separation |Δν| in Hz (common practice); the JSON
     # keeps the signed value (arriving minus leaving) beside it.
     view = timescale_view(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0))
     (pair,) = view.pairs
     assert pair.shift_difference_hz == pytest.approx(-100.0) and pair.separation_hz == pytest.approx(100.0)
     row = next(line for line in view.report().splitlines() if pair.pair.label in line)
     assert " 100.00 " in row and "-100.00" not in row
-    assert "|dnu|/Hz" in view.report()
+    assert "|Δν|/Hz" in view.report()
     out = view.to_dict()["pairs"][0]
     assert out["separation_hz"] == pytest.approx(100.0) and out["shift_difference_hz"] == pytest.approx(-100.0)
 
