@@ -141,9 +141,9 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
 
 
 @cli.command()
-@click.argument("series_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("series_file", type=click.Path(path_type=Path))
 @click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
-              help="Folder for rates.csv, results.json and the figures.")
+              help="Folder for rates.csv, results.json and the figures (for a folder of series: one subfolder each).")
 @click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
@@ -168,20 +168,48 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
 @click.option("--posterior-steps", type=click.IntRange(40, 10**7), default=4000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Send the fits to the Dask scheduler at this address (tcp://host:8786), whose workers have this "
+                   'dnmr; --workers then counts tasks at once (default: its threads). Needs pip install "dnmr-exchange[dask]".')
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
         workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str, coupling_trend: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
-        posterior_seed: int, figure_format: str) -> None:
+        posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
+
+    SERIES_FILE may be a folder: every series file in it (and its subfolders) is fitted into its own
+    subfolder of OUTDIR, one after the other, and OUTDIR/summary.csv lists what became of each.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from dnmr.fitting.series import fit_series
-    from dnmr.fitting.seriesfile import load_series
+    from contextlib import nullcontext
 
+    from dnmr.fitting.cluster import scheduler_executor
+
+    if scheduler is not None and serial:
+        raise InputError("--serial fits in this process and --scheduler on a cluster: choose one", where="--scheduler")
+    settings = {"quiet": quiet, "global_fit": global_fit, "no_report": no_report, "calibration_file": calibration_file,
+                "treatment": {"shift_trend": shift_trend, "linewidth_trend": linewidth_trend,
+                              "coupling_trend": coupling_trend},
+                "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None}
+    _check_fit_options(settings, resume)
+    with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
+            executor, threads):
+        settings.update(workers=1 if serial else workers or threads, executor=executor)
+        if series_file.is_dir():
+            ctx.exit(_fit_folder(series_file, outdir, overwrite, resume, settings))
+        result = _fit_one(series_file, outdir, overwrite=overwrite, resume=resume, **settings)
+    ctx.exit(0 if global_fit else result.exit_status)
+
+
+def _check_fit_options(settings: dict, resume: bool) -> None:
+    """Refuse, before any work, options of `dnmr fit` that do not go together."""
+    posterior, global_fit = settings["posterior"] is not None, settings["global_fit"]
+    if resume and global_fit:
+        raise InputError("--resume is not available with --global", where="--resume")
     if posterior and global_fit:
         raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
                          where="--posterior")
@@ -189,38 +217,54 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
         from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
+
+
+def _fit_one(series_file: Path, outdir: Path, *, overwrite: bool, resume: bool, quiet: bool, global_fit: bool,
+             no_report: bool, calibration_file: Path | None, treatment: dict[str, str], posterior: dict | None,
+             workers: int | None, executor):
+    """`dnmr fit` of one series file: the fit, its text report and report.html; returns the SeriesFit (or GlobalFit)."""
+    from dnmr.fitting.series import fit_series
+    from dnmr.fitting.seriesfile import load_series
+
     series = load_series(series_file)
     for warning in series.warnings:
         click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
-    with figures_as(figure_format):
-        if global_fit:
-            _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
-                        {"shift_trend": shift_trend, "linewidth_trend": linewidth_trend, "coupling_trend": coupling_trend},
-                        calibration_file, no_report)
-            return
-        result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
-                            progress=False if quiet else None,
-                            posterior={"steps": posterior_steps, "seed": posterior_seed} if posterior else None)
-        click.echo(result.report())
-        for failed in result.failures:
-            click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-        _write_report_after_fit(outdir, calibration_file, no_report)
-    ctx.exit(result.exit_status)
+    if global_fit:
+        return _fit_global(series, outdir, overwrite, workers, quiet, treatment, calibration_file, no_report, executor)
+    result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers,
+                        progress=False if quiet else None, posterior=posterior, executor=executor)
+    click.echo(result.report())
+    for failed in result.failures:
+        click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
+    _write_report_after_fit(outdir, calibration_file, no_report)
+    return result
 
 
-def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
-                treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
-    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
+def _fit_folder(folder: Path, outdir: Path, overwrite: bool, resume: bool, settings: dict) -> int:
+    """`dnmr fit FOLDER`: every series file in it, each into its subfolder of `outdir` (dnmr.fitting.seriesfolder);
+    prints the summary and returns the exit status."""
+    from dnmr.fitting.seriesfolder import fit_series_folder
+
+    each = {k: v for k, v in settings.items() if k not in ("workers", "executor")}
+    batch = fit_series_folder(folder, outdir, lambda path, out, **flags: _fit_one(path, out, **flags, **each),
+                              overwrite=overwrite, resume=resume, workers=settings["workers"],
+                              executor=settings["executor"])
+    click.echo(batch.report())
+    return batch.exit_status
+
+
+def _fit_global(series: Series, outdir: Path, overwrite: bool, workers: int | None, quiet: bool,
+                treatment: dict[str, str], calibration_file: Path | None, no_report: bool, executor=None):
+    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html; returns it."""
     from dnmr.fitting.globalfit import fit_series_global
     from dnmr.activation.temperature_calibration import read_temperature_calibration
 
-    if resume:
-        raise InputError("--resume is not available with --global", where="--resume")
     calibration = read_temperature_calibration(calibration_file) if calibration_file else None
     result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
-                               progress=False if quiet else None, **treatment)
+                               progress=False if quiet else None, executor=executor, **treatment)
     click.echo(result.report())
     _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
+    return result
 
 
 def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_report: bool) -> None:
@@ -332,17 +376,14 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, thermometer_readings
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
         return
     if output is not None:
         raise InputError("-o writes the calibration table of --calibrate LIST.csv; give that list", where="--output")
-    if not shift_differences and not spectra:
-        raise InputError("give --shift-difference-ppm PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
-    readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
-    readings += [temperature_from_file(path, liquid, frequency_mhz=frequency_mhz) for path in spectra]
+    readings = thermometer_readings(liquid, shift_differences, spectra, frequency_mhz=frequency_mhz)
     if as_json:
         print_json(readings_to_dict(readings))
     else:
@@ -354,13 +395,12 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
                output: Path | None, overwrite: bool, as_json: bool) -> None:
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
-    from dnmr.io.output import atomic_write_text
     from dnmr.activation.temperature_calibration import calibration_from_spectra
     from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:
-        atomic_write_text(output, result.table_csv(), overwrite=overwrite)
+        result.write_table(output, overwrite=overwrite)
     if as_json:
         print_json(result.to_dict())
     else:

@@ -112,13 +112,16 @@ def in_small_filesystem(script: str, tmp_path: Path, read_only: bool = False) ->
 @pytest.mark.parametrize("read_only", [False, True], ids=["full", "read-only"])
 def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
     model = SHARED / "model.toml"
-    series = series_file(tmp_path)
+    series = global_series(tmp_path)
     rates = tmp_path / "rates.csv"
     rates.write_text("temperature_k,rate_per_s\n250,12.0\n260,40.0\n270,95.0\n280,210.0\n")
     commands = [f'"$PY" -m dnmr simulate {model} -o "$DISK/s.csv" --points 32768',
                 f'"$PY" -m dnmr fit {series} -o "$DISK/fit" --serial --quiet',
                 f'"$PY" -m dnmr eyring {rates} --plot "$DISK/eyring.png"',
-                f'"$PY" -m dnmr demo "$DISK/demo"']
+                f'"$PY" -m dnmr demo "$DISK/demo"',
+                # last, on a disk already full: the first write of all is the results folder's lock
+                f'head -c 100000 /dev/zero > "$DISK/filler" 2>/dev/null; "$PY" -m dnmr fit {series} -o "$DISK/global" '
+                '--global --serial --quiet']
     script = " ; ".join(f'{c} >/dev/null 2>"{tmp_path}/err{i}"; echo $? >"{tmp_path}/rc{i}"' for i, c in enumerate(commands))
     done = in_small_filesystem(script + f'; ls -A -R "$DISK" > "{tmp_path}/left"', tmp_path, read_only)
     assert done.returncode == 0, done.stderr
@@ -127,6 +130,7 @@ def test_disk_faults_are_one_line_and_exit_1(read_only, tmp_path):
         message = one_line((tmp_path / f"err{i}").read_text())
         assert status == 1, (command, message)
         assert ("Read-only" if read_only else "No space left") in message, message
+        assert str(tmp_path / "disk") in message, message  # the file or folder that could not be written
     assert ".part" not in (tmp_path / "left").read_text()  # nothing half-written is left behind
 
 
@@ -210,6 +214,118 @@ def test_outputs_honour_the_umask(tmp_path):
         assert path.stat().st_mode & 0o777 == 0o644, path  # readable by colleagues, as the umask allows
 
 
+# --- the folder of a global fit (dnmr fit --global): the same lock and --overwrite rules ------------------
+
+def global_series(folder: Path) -> Path:
+    """A valid three-spectrum series (a global fit needs three): the shared spectra, one of them twice."""
+    return series_file(folder, ("t250.csv", "t260.csv", "t270.csv"), (250.0, 260.0, 270.0))
+
+
+@pytest.fixture(scope="module")
+def global_fitted(tmp_path_factory) -> tuple[Path, Path]:
+    """A series and the folder of its global fit, run serially under umask 022 (copy before changing it)."""
+    folder = tmp_path_factory.mktemp("global")
+    series = global_series(folder)
+    old = os.umask(0o022)
+    try:
+        done = dnmr("fit", str(series), "-o", str(folder / "out"), "--global", "--serial", "--quiet")
+    finally:
+        os.umask(old)
+    assert done.returncode == 0, done.stderr
+    return series, folder / "out"
+
+
+def test_global_outputs_honour_the_umask(global_fitted):
+    _, out = global_fitted
+    written = [p for p in out.rglob("*") if p.is_file()]
+    assert {"global.json", "global.txt", "global_fits.png", "report.html", "rates.csv"} <= {p.name for p in written}
+    for path in written:
+        assert path.stat().st_mode & 0o777 == 0o644, path  # readable by colleagues, as the umask allows
+
+
+def test_global_overwrite_keeps_the_users_files_and_parallel_gives_the_serial_numbers(global_fitted, tmp_path):
+    # issue 13, items 3 and 5: --overwrite replaces only what dnmr wrote; the same inputs give bit-identical
+    # results whether the spectra are fitted serially (the fixture) or in two worker processes (here)
+    import json
+
+    series, out = copy_of(global_fitted, tmp_path)
+    mine = [out / "notes.txt", out / "global_notes.json", out / "two-step" / "figures" / "my_drawing.png"]
+    for path in mine:
+        path.write_text("the user's own")
+    again = dnmr("fit", str(series), "-o", str(out), "--global", "--overwrite", "--workers", "2", "--quiet",
+                 "--no-report")
+    assert again.returncode == 0, again.stderr
+    assert all(p.read_text() == "the user's own" for p in mine)
+    assert not (out / "report.html").exists()  # the earlier run's report went with its results
+    serial, parallel = (json.loads((folder / "global.json").read_text()) for folder in (global_fitted[1], out))
+    for key in ("processes", "parameters", "chi_square", "spectra"):
+        assert parallel[key] == serial[key], key
+    two_step = "two-step/rates.csv"
+    assert (out / two_step).read_bytes() == (global_fitted[1] / two_step).read_bytes()
+
+
+def test_a_global_fit_folder_being_written_is_locked(global_fitted, tmp_path):
+    import fcntl
+
+    series, out = copy_of(global_fitted, tmp_path)
+    with open(out / ".dnmr-lock", "a") as held:  # as a running global fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        before = sorted(str(p.relative_to(out)) for p in out.rglob("*"))
+        done = dnmr("fit", str(series), "-o", str(out), "--global", "--overwrite", "--serial", "--quiet")
+    assert done.returncode == 2 and "another dnmr run" in one_line(done.stderr)
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == before  # nothing of the run's removed
+
+
+def test_global_overwrite_refuses_a_folder_dnmr_never_wrote(tmp_path):
+    series = global_series(tmp_path)
+    out = tmp_path / "theirs"
+    out.mkdir()
+    (out / "global.json").write_text('{"program": "their own fit"}')
+    (out / "global_fits.png").write_text("a figure of the user's")
+    done = dnmr("fit", str(series), "-o", str(out), "--global", "--overwrite", "--serial", "--quiet")
+    assert done.returncode == 2 and "no dnmr global-fit results" in one_line(done.stderr)
+    assert (out / "global.json").read_text() == '{"program": "their own fit"}'
+    assert (out / "global_fits.png").read_text() == "a figure of the user's"
+    assert sorted(p.name for p in out.iterdir()) == ["global.json", "global_fits.png"]
+
+
+def test_a_linked_two_step_folder_is_never_followed(fitted, tmp_path):
+    # two-step/ linked to another fit's folder: writing or clearing it would reach out of OUTDIR
+    series, elsewhere = copy_of(fitted, tmp_path)
+    before = sorted(str(p.relative_to(elsewhere)) for p in elsewhere.rglob("*"))
+    out = tmp_path / "global"
+    out.mkdir()
+    (out / "two-step").symlink_to(elsewhere)
+    done = dnmr("fit", str(global_series(tmp_path)), "-o", str(out), "--global", "--overwrite", "--serial", "--quiet")
+    assert done.returncode == 2 and "link" in one_line(done.stderr)
+    assert sorted(str(p.relative_to(elsewhere)) for p in elsewhere.rglob("*")) == before
+
+
+def test_global_overwrite_of_a_stopped_run_clears_only_dnmrs_files(fitted, tmp_path):
+    # a global fit stopped during its two-step stage left only two-step/ (a fit of dnmr's): --overwrite
+    # takes the folder back; of an earlier global fit's files only dnmr's own names are removed, never a link
+    from dnmr.fitting.globalresult import prepare_global_folder
+    from dnmr.fitting.resultsfolder import release_results_folder
+    from dnmr.fitting.seriesfile import load_series
+
+    series = load_series(global_series(tmp_path))
+    out = tmp_path / "global"
+    shutil.copytree(fitted[1], out / "two-step", symlinks=True)
+    (out / "notes.txt").write_text("the user's own")
+    elsewhere = tmp_path / "their_figure.png"
+    elsewhere.write_text("not dnmr's")
+    (out / "global_fits.png").symlink_to(elsewhere)
+    (out / "global.txt").write_text("an earlier report of dnmr's")
+    lock = prepare_global_folder(out, series, overwrite=True)
+    try:
+        assert "dnmr fit --global" in (out / ".dnmr-lock").read_text()
+    finally:
+        release_results_folder(lock)
+    assert not (out / "global.txt").exists() and not (out / ".dnmr-lock").exists()
+    assert (out / "notes.txt").read_text() == "the user's own" and elsewhere.read_text() == "not dnmr's"
+    assert (out / "two-step" / "series.json").exists()  # cleared by the two-step fit itself, by its own rules
+
+
 def test_simulate_checks_every_output_before_writing(tmp_path):
     model = SHARED / "model.toml"
     bad_figure = dnmr("simulate", str(model), "-o", str(tmp_path / "s.csv"), "--plot", str(tmp_path / "s.xyz"))
@@ -246,19 +362,28 @@ def test_interrupted_fit_resumes_with_its_finished_fits(tmp_path):
     assert reused and reused <= {int(name[:3]) for name in finished}
 
 
-def test_workers_end_with_their_parent(tmp_path):
+POOLS = {  # every pool of the fitting wing: the series fit's runner and the global fit's evaluator
+    "series fit": ("from dnmr.fitting.runner import FitRunner\n"
+                   "from dnmr.fitting.seriesfile import load_series\n"
+                   "from dnmr.io.progress import ProgressReport\n"
+                   "pool = FitRunner(load_series(sys.argv[1]), None, 2, ProgressReport(False), False).pool\n"),
+    "global fit": ("from types import SimpleNamespace\n"
+                   "from dnmr.fitting.globalsolve import GlobalEvaluator\n"
+                   "pool = GlobalEvaluator(SimpleNamespace(members=[0, 1]), 2).pool\n"),
+}
+
+
+@pytest.mark.parametrize("fit", POOLS)
+def test_workers_end_with_their_parent(fit, tmp_path):
     # the parent is killed outright (no clean-up of its own); its workers must not outlive it
-    code = ("import os, sys, time\n"
-            "from dnmr.fitting.runner import FitRunner\n"
-            "from dnmr.fitting.seriesfile import load_series\n"
-            "from dnmr.io.progress import ProgressReport\n"
-            f"runner = FitRunner(load_series({str(series_file(tmp_path))!r}), None, 2, ProgressReport(False), False)\n"
-            "futures = [runner.pool.submit(time.sleep, 300) for _ in range(2)]\n"
+    code = ("import os, sys, time\n" + POOLS[fit]
+            + "futures = [pool.submit(time.sleep, 300) for _ in range(2)]\n"
             "time.sleep(1.0)\n"
-            "print(' '.join(str(p) for p in runner.pool._processes), flush=True)\n"
+            "print(' '.join(str(p) for p in pool._processes), flush=True)\n"
             "time.sleep(300)\n")
     env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
-    parent = subprocess.Popen([sys.executable, "-c", code], env=env, stdout=subprocess.PIPE, text=True)
+    parent = subprocess.Popen([sys.executable, "-c", code, str(series_file(tmp_path))], env=env,
+                              stdout=subprocess.PIPE, text=True)
     workers = [int(p) for p in parent.stdout.readline().split()]
     assert len(workers) == 2
     parent.kill()

@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 import pytest
+
+import dnmr
 import statsmodels.api as sm
 from click.testing import CliRunner
 
@@ -373,3 +375,13 @@ def test_calibration_from_spectra_keeps_the_others_when_one_fails(tmp_path):
     celsius.write_text("setpoint_k,file\n-20,m230.csv\n")
     bad = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(celsius)])
     assert bad.exit_code == 2 and "looks like degrees Celsius" in bad.output
+
+
+def test_thermometer_readings_is_what_the_command_reports():
+    """`dnmr thermometer` is one call of dnmr.thermometer_readings: hand readings first, then files; nothing
+    given is one clear error (the command's own message)."""
+    readings = dnmr.thermometer_readings("methanol", [1.5, 2.0])
+    assert [r.temperature_k for r in readings] == [dnmr.thermometer_reading(dd, "methanol").temperature_k
+                                                   for dd in (1.5, 2.0)]
+    with pytest.raises(dnmr.InputError, match="--shift-difference"):
+        dnmr.thermometer_readings("methanol")

@@ -284,6 +284,12 @@ class CalibrationFromSpectra(NotebookView):
                   for s, r in zip(self.setpoint_k.tolist(), self.readings)]
         return "\n".join(lines) + "\n"
 
+    def write_table(self, path: str | Path, overwrite: bool = False) -> Path:
+        """Write :meth:`table_csv` to `path` atomically (never over an existing file unless `overwrite`)."""
+        from dnmr.io.output import atomic_write_text
+
+        return atomic_write_text(path, self.table_csv(), overwrite=overwrite)
+
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready): the readings with their set-points, the fitted calibration, the cautions."""
         out = readings_to_dict(list(self.readings))

@@ -303,6 +303,33 @@ def temperature_from_file(
     )
 
 
+def thermometer_readings(
+    thermometer: str | ShiftThermometer = "methanol",
+    shift_differences_ppm: Sequence[float] = (),
+    files: Sequence[str | Path] = (),
+    *,
+    frequency_mhz: float | None = None,
+) -> list[ThermometerReading]:
+    """Sample temperatures (K) from shift differences (ppm) read by hand and from thermometer spectrum files,
+    in that order (what ``dnmr thermometer`` reports).
+
+    Parameters
+    ----------
+    thermometer : str or ShiftThermometer
+        'methanol' or 'glycol' (see :data:`THERMOMETER_CAUTIONS` before using either).
+    shift_differences_ppm : sequence of float
+        delta(OH) - delta(CH3 or CH2), ppm.
+    files : sequence of path
+        Thermometer spectra (text, JCAMP-DX or processed folders).
+    frequency_mhz : float, optional
+        Spectrometer frequency (MHz) for spectra with a Hz axis.
+    """
+    if not shift_differences_ppm and not files:
+        raise InputError("give --shift-difference-ppm PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
+    readings = [thermometer_reading(dd, thermometer) for dd in shift_differences_ppm]
+    return readings + [temperature_from_file(path, thermometer, frequency_mhz=frequency_mhz) for path in files]
+
+
 def readings_to_dict(readings: Sequence[ThermometerReading]) -> dict:
     """One JSON-ready object for a list of readings of one thermometer, with its range and cautions."""
     thermo = readings[0].thermometer

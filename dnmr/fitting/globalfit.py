@@ -47,7 +47,7 @@ Method
    Every quantity of a spectrum's lineshape is an affine function of the global parameters, so its
    Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): one lineshape evaluation
    per quantity (forward difference), amplitude, phase and baseline exactly; blocks are built in worker
-   processes.  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
+   processes, or on an executor given (each spectrum's block alone: the same numbers wherever).  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
    parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, times the noise correlation factor, widened by the global
    reduced chi-square when that is significantly above 1 (the rule of :mod:`dnmr.fitting.spectrumfit`).  The reduced
@@ -75,6 +75,7 @@ Modules: :mod:`dnmr.fitting.globalproblem` (parameters, lineshape quantities, re
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import math
 import os
 from dataclasses import dataclass
@@ -90,7 +91,8 @@ from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
-from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, write_global_fit
+from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, prepare_global_folder, write_global_fit
+from dnmr.fitting.resultsfolder import release_results_folder
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
 from dnmr.fitting.series import SeriesFit, fit_series
 from dnmr.fitting.seriesfile import Series, load_series
@@ -101,14 +103,6 @@ from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 if TYPE_CHECKING:  # pragma: no cover
     from dnmr.activation.temperature_calibration import TemperatureCalibration
-
-
-def _prepare(outdir: Path, overwrite: bool) -> None:
-    """Refuse an existing folder with results unless `overwrite`."""
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
-    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
-        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
 
 
 def _true_temperatures(series: Series, calibration: "TemperatureCalibration | None",
@@ -198,6 +192,7 @@ def fit_series_global(
     coupling_trend: str = DEFAULT_TREND,
     workers: int | None = None,
     progress: bool | None = None,
+    executor: futures.Executor | None = None,
 ) -> GlobalFit:
     """Fit all spectra of a series at once with ΔH‡ and ΔS‡ of every process as the parameters.
 
@@ -207,9 +202,10 @@ def fit_series_global(
         The series (or its TOML file).
     outdir : str or Path
         Folder for global.json, global.txt, the figures and the two-step results (``two-step/``);
-        refused when it holds results, unless `overwrite`.
+        refused when it holds results, unless `overwrite`, and while another run writes into it.
     overwrite : bool
-        Replace earlier results in `outdir`.
+        Replace the results of an earlier global fit in `outdir`: only the files dnmr wrote are removed
+        (:func:`dnmr.fitting.globalresult.prepare_global_folder`).
     calibration : TemperatureCalibration, optional
         The series' temperatures are set-points: the global fit uses the calibrated sample temperatures
         and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
@@ -220,10 +216,15 @@ def fit_series_global(
     coupling_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the scalar couplings (Hz) the model gives.
     workers : int, optional
-        Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process).
+        Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process);
+        with `executor`, how many tasks are handed to it at once (default: one per core of this machine).
     progress : bool, optional
         False: no progress report.  Otherwise progress of the two-step fit and of the global fit on stderr
         (a live bar on a terminal, plain lines when stderr is a file or a pipe).
+    executor : concurrent.futures.Executor, optional
+        Run the two-step fits and the global fit's spectrum blocks there instead of in worker processes of
+        dnmr's own (a thread or process pool, a Dask client's ``get_executor()``...); it is left running.
+        The results are the same as without it.
 
     Returns
     -------
@@ -232,16 +233,21 @@ def fit_series_global(
     treatment = Treatment(shift_trend, linewidth_trend, coupling_trend)
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
-    _prepare(outdir, overwrite)
-    two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress)
-    write_global_fit(result, overwrite)
+    lock = prepare_global_folder(outdir, series, overwrite)
+    try:
+        two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress,
+                         executor=executor)
+        result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress, executor)
+        write_global_fit(result, overwrite)
+    finally:
+        release_results_folder(lock)
     return result
 
 
 def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
                              calibration: "TemperatureCalibration | None", treatment: Treatment,
-                             workers: int | None, progress: bool | None = None) -> GlobalFit:
+                             workers: int | None, progress: bool | None = None,
+                             executor: futures.Executor | None = None) -> GlobalFit:
     """The global fit of `series` seeded from its finished two-step fit: :func:`fit_series_global` without
     running the two-step fit and without writing the results.
 
@@ -259,9 +265,11 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     treatment : Treatment
         Temperature trends of the shifts (ppm), linewidth (Hz) and couplings (Hz).
     workers : int or None
-        Worker processes (None: one per core; 1: in this process).
+        Worker processes (None: one per core; 1: in this process); with `executor`, tasks handed to it at once.
     progress : bool, optional
         False: no progress report; otherwise as :func:`fit_series_global`.
+    executor : concurrent.futures.Executor, optional
+        Where the spectrum blocks are evaluated instead of dnmr's own worker processes (left running).
 
     Returns
     -------
@@ -280,7 +288,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     setpoints = np.array([series.spectra[i].temperature_k for i in used])
     eyring = _two_step_eyring(outdir, calibration)
     problem = _global_problem(series, two_step, used, temps, treatment, eyring)
-    solved = _solve_joint(problem, workers, progress, temperature_covariance, setpoints)
+    solved = _solve_joint(problem, workers, progress, temperature_covariance, setpoints, executor)
     scale, covariance, notes = _joint_errors(problem, solved)
     x = solved.result.x
     activation = _activation(problem, x, covariance, solved.from_calibration, series.model.process_names())
@@ -341,14 +349,16 @@ class _JointSolution:
 
 
 def _solve_joint(problem: GlobalProblem, workers: int | None, progress: bool | None,
-                 temperature_covariance: np.ndarray | None, setpoints: np.ndarray) -> _JointSolution:
-    """Solve `problem` on `workers` processes (None: one per core) with a progress report; with the
-    temperatures' covariance (K^2) also the covariance the calibration brings in."""
+                 temperature_covariance: np.ndarray | None, setpoints: np.ndarray,
+                 executor: futures.Executor | None = None) -> _JointSolution:
+    """Solve `problem` on `workers` processes (None: one per core; or in `workers` tasks at a time on
+    `executor`) with a progress report; with the temperatures' covariance (K^2) also the covariance the
+    calibration brings in."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(problem.members)))
     with single_threaded_blas(), ProgressReport(progress) as report:
         task = report.add_task(f"global fit of {len(problem.members)} spectra", unit="evaluations of all spectra",
                                interval_s=PLAIN_INTERVAL_S)
-        evaluator = GlobalEvaluator(problem, workers, step=lambda: report.advance(task))
+        evaluator = GlobalEvaluator(problem, workers, step=lambda: report.advance(task), executor=executor)
         try:
             result, inverse = solve_global(problem, evaluator)
             report.finish(task)

@@ -14,11 +14,16 @@ import numpy as np
 
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
+from dnmr.errors import InputError
 from dnmr.fitting.globalquality import SpectrumQuality
+from dnmr.fitting.resultsfolder import (OUTPUT_FILES, REPORT_FILE, RESULT_FOLDERS, earlier_manifest, holds_results,
+                                        lock_results_folder, refuse_inputs_among, refuse_linked_folders,
+                                        release_results_folder, remove_earlier_results)
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.formatting import format_with_error
-from dnmr.io.output import atomic_write_text, json_ready, save_figure
+from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figure
+from dnmr.reporting.supporting import SUPPORTING_FOLDER
 from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.notebook import NotebookView
 
@@ -29,6 +34,8 @@ if TYPE_CHECKING:  # pragma: no cover
 GLOBAL_FILES = ("global.json", "global.txt", "global_fits.png", "global_residuals.png")
 #: The subfolder of the two-step results (``dnmr fit``) the global fit starts from.
 TWO_STEP_FOLDER = "two-step"
+#: The program global.json names: how a later ``--overwrite`` knows a folder as a global fit of dnmr's.
+GLOBAL_PROGRAM = "dnmr fit --global"
 
 
 def _share(covariance: np.ndarray, harmonic_mean_temperature_k: float) -> dict[str, float]:
@@ -153,7 +160,7 @@ class GlobalFit(NotebookView):
         processes = [self._process_dict(a) for a in self.activation]
         out = {k: v for k, v in processes[0].items() if k != "rates"}
         out.update({
-            "program": "dnmr fit --global", "series": str(self.series.source), "processes": processes,
+            "program": GLOBAL_PROGRAM, "series": str(self.series.source), "processes": processes,
             "comparison": self.comparison(), "two_step": [e.to_dict() for e in self.two_step],
             "two_step_folder": str(self.outdir / TWO_STEP_FOLDER), "options": self.options,
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
@@ -244,3 +251,63 @@ def write_global_fit(result: GlobalFit, overwrite: bool = False) -> None:
     atomic_write_text(outdir / text_name, result.report() + "\n", overwrite=overwrite)
     for name, fig in ((fits_name, result.plot()), (residuals_name, result.plot_residuals())):
         save_figure(fig, outdir / name, overwrite=overwrite, close=True)
+
+
+def _own_files() -> list[str]:
+    """The files a global fit writes at the top of its folder (figures in the chosen format), report.html
+    of ``dnmr report`` among them: all that an ``--overwrite`` removes there."""
+    return [GLOBAL_FILES[0], GLOBAL_FILES[1], *(figure_file(n).name for n in GLOBAL_FILES[2:]), REPORT_FILE]
+
+
+def _refuse_foreign(outdir: Path, overwrite: bool) -> None:
+    """Refuse the existing folder `outdir` unless `overwrite` and it holds an earlier global fit of dnmr's:
+    its global.json, or (a run stopped before writing that) a two-step fit of dnmr's in two-step/; and
+    refuse a global.json or two-step/ that is not dnmr's, which the run would replace."""
+    if not overwrite:
+        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
+    manifest = outdir / GLOBAL_FILES[0]
+    ours = earlier_manifest(manifest, GLOBAL_PROGRAM) is not None
+    two_step = earlier_manifest(outdir / TWO_STEP_FOLDER / "series.json", "dnmr fit") is not None
+    foreign = ((manifest.exists() or manifest.is_symlink()) and not ours
+               or holds_results(outdir / TWO_STEP_FOLDER) and not two_step)
+    if foreign or not (ours or two_step):
+        raise InputError(f"{outdir} holds no dnmr global-fit results (no global.json or two-step/series.json of "
+                         "dnmr's), so there is nothing of dnmr's to replace; choose a new folder", where="--output")
+
+
+def prepare_global_folder(outdir: Path, series: Series, overwrite: bool):
+    """Refuse what a global fit of `series` must not write over, lock `outdir`, and with `overwrite` remove
+    an earlier global fit's own files.
+
+    Parameters
+    ----------
+    outdir : Path
+        The global fit's folder: global.json, global.txt, the two figures, report.html and two-step/.
+    series : Series
+        The series to be fitted (its inputs must lie outside what the fit writes).
+    overwrite : bool
+        Replace an earlier dnmr global fit in `outdir`.  Only its own files at the top are removed
+        here (links and anything else are left alone); two-step/ is cleared by its own fit
+        (:func:`dnmr.fitting.resultsfolder.prepare_results_folder`) by the same rules.
+
+    Returns
+    -------
+    The lock of `outdir`, to be released with :func:`dnmr.fitting.resultsfolder.release_results_folder`;
+    a second run into `outdir` meanwhile is refused.
+    """
+    if outdir.exists() and not outdir.is_dir():
+        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
+    refuse_inputs_among(outdir, series, _own_files(), ())
+    refuse_inputs_among(outdir / TWO_STEP_FOLDER, series, [*OUTPUT_FILES, REPORT_FILE], RESULT_FOLDERS)
+    refuse_linked_folders(outdir, (TWO_STEP_FOLDER, SUPPORTING_FOLDER))
+    existed = holds_results(outdir)
+    outdir.mkdir(parents=True, exist_ok=True)
+    lock = lock_results_folder(outdir, GLOBAL_PROGRAM)
+    try:
+        if existed:
+            _refuse_foreign(outdir, overwrite)
+            remove_earlier_results(outdir, _own_files())
+    except BaseException:
+        release_results_folder(lock)
+        raise
+    return lock

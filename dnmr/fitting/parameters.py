@@ -33,10 +33,12 @@ RENAMED_SETTINGS = {
     "expr": 'same_as = "<parameter name>", optionally with times and plus (no formulas)',
 }
 """Setting keys of earlier releases and what replaced them (refused with a "renamed to" line)."""
-RENAMED_PREFIXES = {"log10_k_": "log10_rate_"}
-"""Beginnings of parameter names of earlier releases and what replaced them (refused with a "renamed to" line)."""
 TIE_KEYS = ("times", "plus")
 """Keys that only make sense beside ``same_as``: the tie is  this = times * other + plus."""
+RATE_PREFIX = "log10_rate_"
+"""The names of the rate parameters: ``log10_rate_<process>``, log10 of the forward rate (s^-1)."""
+RENAMED_PREFIXES = {"log10_k_": RATE_PREFIX}
+"""Beginnings of parameter names of earlier releases and what replaced them (refused with a "renamed to" line)."""
 COUPLING_REACH_HZ = 2.0
 """A free coupling may move this far (Hz) from the model's value, or a quarter of it when larger."""
 
@@ -137,7 +139,7 @@ class ParameterLayout:
         names = lambda prefix, items: tuple(unique(f"{prefix}{parameter_identifier(x)}") for x in items)  # noqa: E731
         return cls(
             model, options,
-            rate_names=names("log10_rate_", model.process_names()),
+            rate_names=names(RATE_PREFIX, model.process_names()),
             linewidth_names=names("linewidth_hz_", model.state_names),
             population_names=names("population_", model.state_names) if len(model.states) > 1 else (),
             shift_names=tuple(names(f"shift_ppm_{parameter_identifier(s.name)}_", model.spins) for s in model.states),

@@ -29,7 +29,7 @@ from dnmr.fitting.resultsfolder import write_json
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, restored_fit
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.trends import StaticTrend
-from dnmr.io.output import atomic_write_text, save_figure
+from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, figure_file, save_figure
 from dnmr.model import Model
 
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
@@ -104,9 +104,20 @@ def save_and_close(fig, path: Path) -> str:
     return str(save_figure(fig, path, overwrite=True, close=True))
 
 
-def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
-    """Draw and save the figure of one fit (in a worker process)."""
-    return save_and_close(restored_fit(model, fit_data, curves).plot(), path)
+def rendered_and_closed(fig, path: Path) -> bytes:
+    """The image file of a figure of the results in the format `path` asks for (its suffix, ``.png``
+    following :func:`dnmr.io.output.figures_as` as the caller resolved it); the figure is closed."""
+    import matplotlib.pyplot as plt
+
+    try:
+        return figure_bytes(fig, path.suffix.lstrip("."))
+    finally:
+        plt.close(fig)
+
+
+def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
+    """The image file of the figure of one fit (in a worker)."""
+    return rendered_and_closed(restored_fit(model, fit_data, curves).plot(), path)
 
 
 def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
@@ -129,9 +140,10 @@ def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: 
     draws = []
     for i, o in enumerate(outcomes):
         if o.fitted:
-            path = outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}.png"
+            path = figure_file(outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}.png")
             draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
-    runner.map(_draw_job, draws)
+    for (*_, path), image in zip(draws, runner.map(_draw_job, draws)):
+        atomic_write_bytes(path, image, overwrite=True)
 
 
 def write_results_json(path: Path, series: Series, outcomes: Sequence[SpectrumOutcome], trend: StaticTrend | None,

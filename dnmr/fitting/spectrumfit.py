@@ -66,6 +66,7 @@ import numpy as np
 
 from dnmr.errors import InputError, did_you_mean
 from dnmr.fitting.parameters import (
+    RATE_PREFIX,
     FitParameter,
     ParameterLayout,
     apply_settings,
@@ -79,12 +80,13 @@ from dnmr.fitting.parameters import (
     with_values,
 )
 from dnmr.fitting.problem import FitProblem, NoiseEstimate, Profile, estimate_noise, profile_with_restarts
-from dnmr.fitting.ranges import number_pair, ppm_regions
+from dnmr.fitting.ranges import check_rate_ceiling, number_pair, ppm_regions
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
 from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.measured import MeasuredSpectrum
+from dnmr.kinetics import STANDARD_TEMPERATURE_K
 from dnmr.model import Model
 from dnmr.notebook import NotebookView
 
@@ -201,6 +203,21 @@ class FitOptions:
             raise InputError(f"scan_points must be a whole number from 5 to 400, got {self.scan_points!r}",
                              where="scan_points")
         set_("parameters", checked_settings(self.parameters))
+
+    def check_rate_ceiling(self, temperature_k: float, at: str = "") -> None:
+        """Refuse a rate these options give (the upper end of ``rate_limits_per_s`` or ``rate_scan_per_s``, a
+        start, lower or upper of a ``log10_rate_`` parameter) above kB T/h at `temperature_k` (K), which no
+        molecule reaches; `at` says whose temperature it is in the message.  See
+        :func:`dnmr.fitting.ranges.check_rate_ceiling`."""
+        for name in ("rate_limits_per_s", "rate_scan_per_s"):
+            hi = getattr(self, name)[1]
+            check_rate_ceiling(math.log10(hi), temperature_k, name, f"{hi:g} s^-1", at)
+        for name, setting in self.parameters.items():
+            if name.startswith(RATE_PREFIX):
+                for key in ("start", "lower", "upper"):
+                    if key in setting:
+                        check_rate_ceiling(setting[key], temperature_k, f"parameters.{name}.{key}",
+                                           f"log10 k = {setting[key]:g}", at)
 
     def replace(self, **changes) -> "FitOptions":
         """A copy with some options changed."""
@@ -467,6 +484,8 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
     """The work of :func:`fit_spectrum`."""
     if temperature_k is not None:
         model = model.at_temperature(temperature_k)
+    temperature = model.temperature_k or STANDARD_TEMPERATURE_K
+    options.check_rate_ceiling(temperature, "" if model.temperature_k else " (no temperature given)")
     spectrum = spectrum_for_model(spectrum, model)
     lo, hi, origin = fit_region(spectrum, model, options.region_ppm)
     part = spectrum.region(lo, hi)

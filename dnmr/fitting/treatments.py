@@ -143,25 +143,26 @@ def _spectrum_options(series: Series, index: int, references: Mapping[int, dict]
 
 def _slow_stage(series: Series, runner: FitRunner, hashes, references) -> tuple[dict[int, SpectrumOutcome], list[int]]:
     """Fit the coldest spectra with the trended parameters free, a batch (one per worker) at a time, until
-    one is not in slow exchange; returns their outcomes and the slow-exchange run (coldest first)."""
+    one is not in slow exchange (each from the model's values, so that the fits do not depend on the number
+    of workers); returns their outcomes and the slow-exchange run (coldest first)."""
     temp = lambda i: series.spectra[i].temperature_k  # noqa: E731
     order = sorted(range(len(series.spectra)), key=temp)
     limit, kinds = _coalescence_rate(series.model), series.trended()
     below = series.slow_exchange_below_k
     outcomes: dict[int, SpectrumOutcome] = {}
 
-    def run(batch: list[int]) -> None:
+    def run(batch: list[int], seeded: bool) -> None:
         jobs = [fit_job(series, i, STAGE_SLOW, _spectrum_options(series, i, references, {}), hashes) for i in batch]
-        for i, record in runner.run(jobs, "slow-exchange spectra").items():
+        for i, record in runner.run(jobs, "slow-exchange spectra", seeded).items():
             outcomes[i] = outcome_from_record(series, i, record, STAGE_SLOW)
 
     if below is not None:
-        run([i for i in order if temp(i) <= below])
+        run([i for i in order if temp(i) <= below], seeded=True)
         return outcomes, [i for i in order if i in outcomes and outcomes[i].fitted]
     slow: list[int] = []
-    for start in range(0, len(order), runner.workers):
+    for start in range(0, len(order), runner.workers):  # unseeded: the same fits whatever the batch size
         batch = order[start:start + runner.workers]
-        run(batch)
+        run(batch, seeded=False)
         for i in batch:
             fit = outcomes[i].fit
             if fit is None:

@@ -209,8 +209,7 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     """
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        data = figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi)
-        return atomic_write_bytes(path, data, overwrite=overwrite)
+        return atomic_write_bytes(path, figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi), overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt
