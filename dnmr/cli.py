@@ -33,13 +33,11 @@ class _Group(click.Group):
 
     def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
         """Refuse an option of an earlier release with its new name, before click's usage error."""
-        command = next((a for a in args if not a.startswith("-")), None)
-        renamed = RENAMED_OPTIONS.get(command, {})
-        for arg in args:
-            old = arg.split("=", 1)[0]
-            if old in renamed:
-                click.echo(f"dnmr: error: the option {old} was renamed to {renamed[old]}", err=True)
-                ctx.exit(2)
+        renamed = RENAMED_OPTIONS.get(next((a for a in args if not a.startswith("-")), None), {})
+        old = next((a.split("=", 1)[0] for a in args if a.split("=", 1)[0] in renamed), None)
+        if old is not None:
+            click.echo(f"dnmr: error: the option {old} was renamed to {renamed[old]}", err=True)
+            ctx.exit(2)
         return super().parse_args(ctx, args)
 
     def invoke(self, ctx: click.Context):
@@ -153,9 +151,8 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
               help="Also fit all spectra at once with ΔH‡ and ΔS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shift-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
               help="With --global: temperature trend of the chemical shifts.")
-@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]),
-              default="linear", show_default=True,
-              help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
+@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
+              show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
 @click.option("--coupling-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear",
               show_default=True, help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),

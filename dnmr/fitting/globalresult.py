@@ -22,8 +22,7 @@ from dnmr.fitting.resultsfolder import (OUTPUT_FILES, REPORT_FILE, RESULT_FOLDER
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.formatting import format_with_error
-from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figure
-from dnmr.reporting.supporting import SUPPORTING_FOLDER
+from dnmr.io.output import SUPPORTING_FOLDER, atomic_write_text, figure_file, json_ready, save_figure
 from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.notebook import NotebookView
 

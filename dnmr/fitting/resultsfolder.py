@@ -15,8 +15,7 @@ from pathlib import Path
 
 from dnmr.errors import InputError
 from dnmr.fitting.seriesfile import Series
-from dnmr.io.output import atomic_write_text, json_ready
-from dnmr.reporting.supporting import SUPPORTING_FOLDER
+from dnmr.io.output import SUPPORTING_FOLDER, atomic_write_text, json_ready
 
 OUTPUT_FILES = ("rates.csv", "results.json", "series_fits.png", "series.json")
 """The files of a series fit at the top of its results folder (beside them ``report.html`` of ``dnmr report``)."""

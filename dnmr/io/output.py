@@ -106,6 +106,9 @@ def atomic_write_text(path: str | Path, text: str, overwrite: bool = False) -> P
     return atomic_write_bytes(path, text.encode("utf-8"), overwrite=overwrite)
 
 
+#: The folder, inside a results folder, that holds the supporting-information tables (``dnmr report``); the
+#: results folders keep it from being a link out of them.
+SUPPORTING_FOLDER = "supporting-information"
 #: Formats dnmr's own figure files can be chosen in (--figure-format): raster PNG, or vector SVG and PDF for print.
 FIGURE_FORMAT_CHOICES = ("png", "svg", "pdf")
 #: The environment variable that carries the format chosen by :func:`figures_as` into worker processes.
