@@ -6,7 +6,7 @@
     series (two rotamers of a coupled AB pair, 3276 points);
 (b) the bundled demo series (every spectrum of it; shifts from the slow-exchange trend, populations free) fitted
     with one worker and with one per core: the parallel speed-up (goal >= 1.7 on 2 cores);
-(c) the global fit of that series (dH‡, dS‡ and shifts linear in T, with the demo calibration) from (b)'s
+(c) the global fit of that series (ΔH‡, ΔS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
@@ -100,7 +100,7 @@ def main() -> None:
         for workers in (1, cores):
             t0 = time.perf_counter()
             fit = fit_global_from_two_step(loaded, result, folder / f"out{cores}", calibration,
-                                           Treatment(shifts="linear", linewidth="per-spectrum"), workers)
+                                           Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
             times[workers] = time.perf_counter() - t0
             a = fit.activation[0]
             print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "

@@ -16,8 +16,25 @@ from dnmr.errors import InputError
 from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready, os_error_text
 
 
+#: Options of earlier releases by command, and their names now: refused with one "renamed to" line (exit 2).
+RENAMED_OPTIONS = {
+    "fit": {"--shifts": "--shift-trend", "--linewidth": "--linewidth-trend", "--couplings": "--coupling-trend"},
+    "stack": {"--rates": "--rates-per-s", "--temperatures": "--temperatures-k"},
+    "thermometer": {"--shift-difference": "--shift-difference-ppm"},
+}
+
+
 class _Group(click.Group):
     """Click group that maps errors onto the exit statuses of the contract (0 ok, 2 bad input, 1 other)."""
+
+    def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
+        """Refuse an option of an earlier release with its new name, before click's usage error."""
+        renamed = RENAMED_OPTIONS.get(next((a for a in args if not a.startswith("-")), None), {})
+        old = next((a.split("=", 1)[0] for a in args if a.split("=", 1)[0] in renamed), None)
+        if old is not None:
+            click.echo(f"dnmr: error: the option {old} was renamed to {renamed[old]}", err=True)
+            ctx.exit(2)
+        return super().parse_args(ctx, args)
 
     def invoke(self, ctx: click.Context):
         try:
@@ -100,20 +117,20 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
 
 @cli.command()
 @click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--rates", help="Forward rates (s^-1) of the first exchange process, comma separated.")
-@click.option("--temperatures", help="Temperatures (K), comma separated (rates from the model's activation parameters).")
+@click.option("--rates-per-s", help="Forward rates (s⁻¹) of the first exchange process, comma separated.")
+@click.option("--temperatures-k", help="Temperatures (K), comma separated (rates from the model's activation parameters).")
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="Image to write (PNG, SVG or PDF).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
-def stack(model_file: Path, rates: str | None, temperatures: str | None, output: Path, overwrite: bool) -> None:
+def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None, output: Path, overwrite: bool) -> None:
     """Draw MODEL_FILE's spectrum over a list of rates or temperatures, stacked (a coalescence figure)."""
     from dnmr.reporting.spectrumfiles import write_stack
 
-    if (rates is None) == (temperatures is None):
-        raise InputError("give either --rates or --temperatures", where="stack")
+    if (rates_per_s is None) == (temperatures_k is None):
+        raise InputError("give either --rates-per-s or --temperatures-k", where="stack")
     write_stack(model_file, output, overwrite=overwrite,
-                rates_per_s=None if rates is None else _parse_list(rates, "--rates"),
-                temperatures_k=None if temperatures is None else _parse_list(temperatures, "--temperatures"))
+                rates_per_s=None if rates_per_s is None else _parse_list(rates_per_s, "--rates-per-s"),
+                temperatures_k=None if temperatures_k is None else _parse_list(temperatures_k, "--temperatures-k"))
     click.echo(f"wrote {output}")
 
 
@@ -127,13 +144,13 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
 @click.option("--quiet", is_flag=True, help="No progress report on stderr (a bar on a terminal, else plain lines).")
 @click.option("--global", "global_fit", is_flag=True,
-              help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
-@click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
+              help="Also fit all spectra at once with ΔH‡ and ΔS‡ as the parameters (two-step fit in OUTDIR/two-step).")
+@click.option("--shift-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
               help="With --global: temperature trend of the chemical shifts.")
-@click.option("--linewidth", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
+@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
               show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
-@click.option("--couplings", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
-              help="With --global: temperature trend of the scalar couplings the model gives.")
+@click.option("--coupling-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear",
+              show_default=True, help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the report's Eyring analysis"
                    " and the global fit.")
@@ -150,7 +167,7 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
+        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str, coupling_trend: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_steps: int,
         posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
@@ -174,7 +191,8 @@ def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, re
 
         require_emcee(where="--posterior")
     settings = {"global_fit": global_fit, "write_html": not no_report, "calibration_file": calibration_file,
-                "treatment": {"shifts": shifts, "linewidth": linewidth, "couplings": couplings},
+                "treatment": {"shift_trend": shift_trend, "linewidth_trend": linewidth_trend,
+                              "coupling_trend": coupling_trend},
                 "posterior": {"steps": posterior_steps, "seed": posterior_seed} if posterior else None,
                 "progress": False if quiet else None,
                 "on_warning": lambda text: click.echo(f"dnmr: warning: {series_file}: {text}", err=True)}
@@ -244,7 +262,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format
 @click.option("--tables", "tables_folder", type=click.Path(file_okay=False, path_type=Path),
               help="Also write the supporting-information tables (CSV, Markdown, LaTeX) into this folder.")
 @click.option("--posterior", is_flag=True,
-              help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
+              help="Also sample the posterior of ΔH‡ and ΔS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
@@ -252,7 +270,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
            overwrite: bool, tables_folder: Path | None, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
-    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
+    """ΔH‡, ΔS‡, ΔG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
     or tables of your own).
 
     Several tables are fitted together, process by process: lineshape rates and magnetisation-transfer
@@ -280,8 +298,8 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
 
 @cli.command()
 @click.argument("liquid", type=click.Choice(["methanol", "glycol"]))
-@click.option("--shift-difference", "shift_differences", type=float, multiple=True,
-              help="dd = delta(OH) - delta(CH3 or CH2) in ppm; repeat for several readings.")
+@click.option("--shift-difference-ppm", "shift_differences", type=float, multiple=True,
+              help="Δδ = δ(OH) − δ(CH3 or CH2) in ppm; repeat for several readings.")
 @click.option("--spectrum", "spectra", type=click.Path(path_type=Path), multiple=True,
               help="Thermometer spectrum (text, JCAMP-DX or processed folder); repeat for several.")
 @click.option("--frequency-mhz", type=float, help="Spectrometer frequency, MHz (for spectra with a Hz axis).")
@@ -360,9 +378,9 @@ def _with_options(options):
 
 
 _TIMESCALE_OPTIONS = (
-    click.option("--barrier-kj-mol", type=float, help="Free energy of activation dG‡ (kJ/mol), the same at every temperature."),
-    click.option("--enthalpy-kj-mol", type=float, help="dH‡ (kJ/mol); give --entropy-j-mol-k with it."),
-    click.option("--entropy-j-mol-k", type=float, help="dS‡ (J/(mol K)); give --enthalpy-kj-mol with it."),
+    click.option("--barrier-kj-mol", type=float, help="Free energy of activation ΔG‡ (kJ/mol), the same at every temperature."),
+    click.option("--enthalpy-kj-mol", type=float, help="ΔH‡ (kJ/mol); give --entropy-j-mol-k with it."),
+    click.option("--entropy-j-mol-k", type=float, help="ΔS‡ (J/(mol K)); give --enthalpy-kj-mol with it."),
     click.option("--process", help="Exchange process the activation parameters belong to (default: every process)."),
     click.option("--frequencies-mhz", help="Fields as 1H frequencies (MHz), comma separated (default: the model's)."),
     click.option("--detectable-fraction", type=float,
@@ -371,7 +389,7 @@ _TIMESCALE_OPTIONS = (
     click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
     click.option("--overwrite", is_flag=True, help="Replace an existing image."),
     click.option("--r1-per-s", type=float,
-                 help="R1 (s^-1) for the magnetisation-transfer window (default: the model's r1_per_s, else a typical"
+                 help="R1 (s^-1) for the magnetisation-transfer range (default: the model's r1_per_s, else a typical"
                       " 1 s^-1)."),
 )
 
@@ -465,7 +483,7 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
               help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
 def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
               detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
-    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
+    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer range below the
     lineshapes, and what becomes equivalent when fast."""
     from dnmr import load_model
     from dnmr.planning.timescale import timescale_view

@@ -84,7 +84,7 @@ def run_fit(
     global_fit : bool
         dH‡ and dS‡ fitted to all spectra at once (``--global``) instead of a rate per spectrum.
     treatment : mapping, optional
-        The global fit's treatment of ``shifts``, ``linewidth`` and ``couplings`` (its defaults otherwise).
+        The global fit's ``shift_trend``, ``linewidth_trend`` and ``coupling_trend`` (its defaults otherwise).
     calibration_file : str or Path, optional
         Temperature calibration table (set-point to sample temperature, K).
     write_html : bool

@@ -563,10 +563,10 @@ def test_values_out_of_range_are_refused(args):
 
 def test_stack_refuses_an_empty_or_endless_list_before_any_work(tmp_path):
     model = SHARED / "model.toml"
-    empty = dnmr("stack", str(model), "--rates", "", "-o", str(tmp_path / "s.png"))
-    assert empty.returncode == 2 and "--rates" in one_line(empty.stderr)
+    empty = dnmr("stack", str(model), "--rates-per-s", "", "-o", str(tmp_path / "s.png"))
+    assert empty.returncode == 2 and "--rates-per-s" in one_line(empty.stderr)
     many = ",".join(str(k) for k in range(1, 10_001))
-    endless = dnmr("stack", str(model), "--rates", many, "-o", str(tmp_path / "s.png"))
+    endless = dnmr("stack", str(model), "--rates-per-s", many, "-o", str(tmp_path / "s.png"))
     assert endless.returncode == 2 and "at most" in one_line(endless.stderr)
     assert list(tmp_path.iterdir()) == []
 

@@ -284,18 +284,18 @@ def test_calibration_is_carried_into_the_eyring_analysis(tmp_path):
 
 
 def test_cli_thermometer_from_shift_difference_shows_cautions():
-    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--shift-difference", "1.5", "--shift-difference", "2.0"])
+    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--shift-difference-ppm", "1.5", "--shift-difference-ppm", "2.0"])
     assert run.exit_code == 0, run.output
     assert "305.03 K" in run.stdout and "248.52 K" in run.stdout
     assert "toxic" in run.stdout and "flammable" in run.stdout and "local safety rules" in run.stdout
 
 
 def test_cli_thermometer_out_of_range_exits_2_with_one_line():
-    run = CliRunner().invoke(cli, ["thermometer", "glycol", "--shift-difference", "2.5"])
+    run = CliRunner().invoke(cli, ["thermometer", "glycol", "--shift-difference-ppm", "2.5"])
     assert run.exit_code == 2
     assert run.stderr.strip().count("\n") == 0 and "outside its calibrated range" in run.stderr
     nothing = CliRunner().invoke(cli, ["thermometer", "methanol"])
-    assert nothing.exit_code == 2 and "--shift-difference" in nothing.stderr
+    assert nothing.exit_code == 2 and "--shift-difference-ppm" in nothing.stderr
 
 
 def test_calibration_error_is_shared_not_scatter(tmp_path):

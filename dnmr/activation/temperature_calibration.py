@@ -3,7 +3,7 @@
 A calibration table (set-point against true temperature, measured with a thermometer of
 :mod:`dnmr.activation.thermometers`) is fitted by a low-order polynomial; applied to a series of
 set-points it gives true temperatures with their covariance — the calibration's errors are shared by all
-points — which the Eyring analysis (:mod:`dnmr.activation.line_fit`) propagates into dH‡, dS‡ and dG‡.
+points — which the Eyring analysis (:mod:`dnmr.activation.line_fit`) propagates into ΔH‡, ΔS‡ and ΔG‡.
 The calibration can be built from thermometer spectra, one per set-point (:func:`calibration_from_spectra`).
 """
 from __future__ import annotations

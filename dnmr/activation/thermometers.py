@@ -108,8 +108,8 @@ class ShiftThermometer:
         other = _other_thermometer(self, t)
         hint = f"; use the {other.name} thermometer there" if other else ""
         return (
-            f"{self.name} thermometer: dd = {dd:g} ppm gives {t:.1f} K, outside its calibrated range "
-            f"{lo:g}-{hi:g} K (dd {d_lo:.3f}-{d_hi:.3f} ppm){hint}"
+            f"{self.name} thermometer: Δδ = {dd:g} ppm gives {t:.1f} K, outside its calibrated range "
+            f"{lo:g}-{hi:g} K (Δδ {d_lo:.3f}-{d_hi:.3f} ppm){hint}"
         )
 
 
@@ -191,7 +191,7 @@ class ThermometerReading:
     def report(self) -> str:
         """One line (plus notes) for the terminal."""
         where = f"{self.source}: " if self.source else ""
-        lines = [f"{where}{self.thermometer.name}, dd = {self.shift_difference_ppm:.4f} ppm -> T = {self.temperature_k:.2f} K"]
+        lines = [f"{where}{self.thermometer.name}, Δδ = {self.shift_difference_ppm:.4f} ppm -> T = {self.temperature_k:.2f} K"]
         if np.isfinite(self.hydroxyl_ppm):
             lines.append(
                 f"  OH at {self.hydroxyl_ppm:.4f} ppm, {self.thermometer.alkyl_group} at {self.alkyl_ppm:.4f} ppm, "
@@ -325,7 +325,7 @@ def thermometer_readings(
         Spectrometer frequency (MHz) for spectra with a Hz axis.
     """
     if not shift_differences_ppm and not files:
-        raise InputError("give --shift-difference PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
+        raise InputError("give --shift-difference-ppm PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
     readings = [thermometer_reading(dd, thermometer) for dd in shift_differences_ppm]
     return readings + [temperature_from_file(path, thermometer, frequency_mhz=frequency_mhz) for path in files]
 

@@ -1,11 +1,11 @@
-"""Global fit of a variable-temperature series: dH‡ and dS‡ fitted to all spectra at once.
+"""Global fit of a variable-temperature series: ΔH‡ and ΔS‡ fitted to all spectra at once.
 
 Model
 -----
 Every spectrum i of the series (sample temperature T_i, K; its region, noise and nuisance terms as in
 :mod:`dnmr.fitting.spectrumfit`) is predicted from one set of global parameters:
 
-* rates: k_p(T_i) = (kB T_i / h) exp(dS‡_p / R) exp(-dH‡_p / (R T_i)) for every process p (Eyring,
+* rates: k_p(T_i) = (kB T_i / h) exp(ΔS‡_p / R) exp(-ΔH‡_p / (R T_i)) for every process p (Eyring,
   transmission coefficient 1); parameters ``enthalpy_kj_mol_<p>`` (kJ/mol), ``entropy_j_mol_k_<p>``
   (J/(mol K)).  T_i is the true sample temperature: the series' set-point passed through the
   calibration when one is given.
@@ -36,8 +36,8 @@ Method
    start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
    is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
    coldest third of the spectra, taken to be in slow exchange, and the shift trends start from lines
-   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); dH‡ and
-   dS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
+   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); ΔH‡ and
+   ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
    spectrum with a clear minimum (at least three; else the two-step Eyring line, else a line through its
    best-fit rates).  Every offset starts at 0; each spectrum's amplitude, phase and baseline (started at
    its two-step values) and offset are refitted alone, then all of them jointly with the rest: none is
@@ -61,7 +61,7 @@ Method
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
-   by the chi-square).  dG‡(T) = dH‡ - T dS‡ with its error from the joint covariance, at 298.15 K and
+   by the chi-square).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
    at the harmonic mean of the temperatures; the calibration's share of each error is reported.
 
 Outputs (OUTDIR, atomic writes): ``global.json``, ``global.txt``, ``global_fits.png`` (spectra and fit),
@@ -136,13 +136,13 @@ def _stderr_table(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray 
 
 def _activation(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray | None,
                 from_calibration: np.ndarray | None, names: list[str]) -> list[ActivationEstimate]:
-    """dH‡ and dS‡ of each process (`names`) at `x` with their covariance and the calibration's share of it."""
+    """ΔH‡ and ΔS‡ of each process (`names`) at `x` with their covariance and the calibration's share of it."""
     g = problem.values(x)
     out = []
     for ident, name in zip(problem.processes, names):
         keys = [f"enthalpy_kj_mol_{ident}", f"entropy_j_mol_k_{ident}"]
         if not all(k in problem.free for k in keys):
-            raise InputError(f"dH‡ and dS‡ of process {name!r} must both be free in the global fit; remove their "
+            raise InputError(f"ΔH‡ and ΔS‡ of process {name!r} must both be free in the global fit; remove their "
                              "settings from [fit.parameters]", where="--global")
         idx = np.ix_(*[[problem.free.index(k) for k in keys]] * 2)
         cov = np.full((2, 2), math.nan) if covariance is None else covariance[idx]
@@ -153,7 +153,7 @@ def _activation(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray | 
 
 def _eyring_start(two: SeriesFit, two_step: list[EyringResult], names: list[str], idents: list[str],
                   used: list[int], temps: np.ndarray) -> dict[str, tuple[float, float]]:
-    """dH‡ and dS‡ to start from: the two-step Eyring line, or, where it has none (too few determined
+    """ΔH‡ and ΔS‡ to start from: the two-step Eyring line, or, where it has none (too few determined
     rates), a line through every spectrum's best-fit rate."""
     by_name = {e.process: e for e in two_step}
     start = {}
@@ -187,14 +187,14 @@ def fit_series_global(
     *,
     overwrite: bool = False,
     calibration: "TemperatureCalibration | None" = None,
-    shifts: str = DEFAULT_TREND,
-    linewidth: str = DEFAULT_TREND,
-    couplings: str = DEFAULT_TREND,
+    shift_trend: str = DEFAULT_TREND,
+    linewidth_trend: str = DEFAULT_TREND,
+    coupling_trend: str = DEFAULT_TREND,
     workers: int | None = None,
     progress: bool | None = None,
     executor: futures.Executor | None = None,
 ) -> GlobalFit:
-    """Fit all spectra of a series at once with dH‡ and dS‡ of every process as the parameters.
+    """Fit all spectra of a series at once with ΔH‡ and ΔS‡ of every process as the parameters.
 
     Parameters
     ----------
@@ -209,11 +209,11 @@ def fit_series_global(
     calibration : TemperatureCalibration, optional
         The series' temperatures are set-points: the global fit uses the calibrated sample temperatures
         and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
-    shifts : {"linear", "constant", "quadratic"}
+    shift_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the chemical shifts (ppm).
-    linewidth : {"linear", "constant", "quadratic", "per-spectrum"}
+    linewidth_trend : {"linear", "constant", "quadratic", "per-spectrum"}
         Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
-    couplings : {"linear", "constant", "quadratic"}
+    coupling_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the scalar couplings (Hz) the model gives.
     workers : int, optional
         Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process);
@@ -230,7 +230,7 @@ def fit_series_global(
     -------
     GlobalFit
     """
-    treatment = Treatment(shifts, linewidth, couplings)
+    treatment = Treatment(shift_trend, linewidth_trend, coupling_trend)
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
     lock = prepare_global_folder(outdir, series, overwrite)
@@ -279,7 +279,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     Raises
     ------
     InputError
-        Fewer than three spectra fitted in the two-step fit, or dH‡ and dS‡ of a process not both free.
+        Fewer than three spectra fitted in the two-step fit, or ΔH‡ and ΔS‡ of a process not both free.
     """
     used = [i for i, o in enumerate(two_step.outcomes) if o.fitted]
     if len(used) < 3:
@@ -330,7 +330,7 @@ def _global_problem(series: Series, two_step: SeriesFit, used: list[int], temps:
     two-step fit and its Eyring line."""
     members = [GlobalMember.from_two_step(i, float(t), two_step.outcomes[i].fit, series.model)
                for i, t in zip(used, temps)]
-    idents = [n[len("log10_k_"):] for n in members[0].problem.layout.rate_names]
+    idents = [n[len("log10_rate_"):] for n in members[0].problem.layout.rate_names]
     start = _eyring_start(two_step, eyring, series.model.process_names(), idents, used, temps)
     return GlobalProblem(members, series.model, treatment, _van_t_hoff(series, temps), start)
 
@@ -401,8 +401,8 @@ def _options(problem: GlobalProblem, calibration: "TemperatureCalibration | None
              from_calibration: np.ndarray | None) -> dict:
     """The options of the fit as global.json records them."""
     treatment = problem.treatment
-    return {"shifts": treatment.shifts, "linewidth": treatment.linewidth, "couplings": treatment.couplings,
-            "populations": "van 't Hoff (ln K linear in 1/T)" if problem.van_t_hoff else "from the model",
+    return {"shift_trend": treatment.shift_trend, "linewidth_trend": treatment.linewidth_trend,
+            "coupling_trend": treatment.coupling_trend, "population_trend": "van 't Hoff (ln K linear in 1/T)" if problem.van_t_hoff else "from the model",
             "calibration": None if calibration is None else calibration.to_dict(),
             "calibration_error_included": from_calibration is not None,
             "reference_temperature_k": problem.reference_k}

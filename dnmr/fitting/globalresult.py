@@ -37,10 +37,10 @@ TWO_STEP_FOLDER = "two-step"
 GLOBAL_PROGRAM = "dnmr fit --global"
 
 
-def _share(covariance: np.ndarray, harmonic_mean_k: float) -> dict[str, float]:
-    """Standard errors from a 2x2 covariance of (dH‡ kJ/mol, dS‡ J/(mol K)): dH‡, dS‡, dG‡ at 298.15 K and
-    at `harmonic_mean_k` (K)."""
-    gibbs = [np.array([1.0, -t / 1e3]) for t in (STANDARD_TEMPERATURE_K, harmonic_mean_k)]
+def _share(covariance: np.ndarray, harmonic_mean_temperature_k: float) -> dict[str, float]:
+    """Standard errors from a 2x2 covariance of (ΔH‡ kJ/mol, ΔS‡ J/(mol K)): ΔH‡, ΔS‡, ΔG‡ at 298.15 K and
+    at `harmonic_mean_temperature_k` (K)."""
+    gibbs = [np.array([1.0, -t / 1e3]) for t in (STANDARD_TEMPERATURE_K, harmonic_mean_temperature_k)]
     return {"enthalpy_kj_mol": float(math.sqrt(covariance[0, 0])), "entropy_j_mol_k": float(math.sqrt(covariance[1, 1])),
             "gibbs_298_kj_mol": float(math.sqrt(gibbs[0] @ covariance @ gibbs[0])),
             "gibbs_hm_kj_mol": float(math.sqrt(gibbs[1] @ covariance @ gibbs[1]))}
@@ -107,7 +107,7 @@ class GlobalFit(NotebookView):
 
     @property
     def harmonic_mean_temperature_k(self) -> float:
-        """Harmonic mean of the fitted temperatures, K (where dG‡ is best determined)."""
+        """Harmonic mean of the fitted temperatures, K (where ΔG‡ is best determined)."""
         return float(len(self.temperatures_k) / np.sum(1.0 / self.temperatures_k))
 
     def _process_dict(self, a: ActivationEstimate) -> dict:
@@ -175,28 +175,28 @@ class GlobalFit(NotebookView):
         t_hm = self.harmonic_mean_temperature_k
         lines = [f"Global fit of {self.series.source.name}: {len(self.fits)} spectra, "
                  f"{self.temperatures_k.min():.2f}-{self.temperatures_k.max():.2f} K; results in {self.outdir}",
-                 f"shifts {self.options['shifts']} in T, linewidth {self.options['linewidth']}"
-                 f"{'' if self.options['linewidth'] == 'per-spectrum' else ' in T'}, couplings "
-                 f"{self.options['couplings']} in T, populations {self.options['populations']}",
+                 f"shifts {self.options['shift_trend']} in T, linewidth {self.options['linewidth_trend']}"
+                 f"{'' if self.options['linewidth_trend'] == 'per-spectrum' else ' in T'}, couplings "
+                 f"{self.options['coupling_trend']} in T, populations {self.options['population_trend']}",
                  f"chi-square {self.chi_square:.1f} on {self.degrees_of_freedom} degrees of freedom (reduced "
                  f"{self.reduced_chi_square:.3f}, against each spectrum's measured noise), error scale "
                  f"{self.error_scale:.3g}", ""]
         for a in self.activation:
             g298, g_hm = a.gibbs(STANDARD_TEMPERATURE_K), a.gibbs(t_hm)
             lines += [f"process {a.process}:",
-                      f"  dH‡ = {format_with_error(a.enthalpy_kj_mol, a.enthalpy_stderr)} kJ/mol "
+                      f"  ΔH‡ = {format_with_error(a.enthalpy_kj_mol, a.enthalpy_stderr)} kJ/mol "
                       f"({format_with_error(a.enthalpy_kj_mol * KCAL_PER_KJ, a.enthalpy_stderr * KCAL_PER_KJ)} kcal/mol)",
-                      f"  dS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
-                      f"  correlation of dH‡ and dS‡: {a.correlation:.4f}",
-                      f"  dG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
-                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
+                      f"  ΔS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
+                      f"  correlation of ΔH‡ and ΔS‡: {a.correlation:.4f}",
+                      f"  ΔG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
+                      f"  ΔG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
             if a.calibration_covariance is not None:
                 for part, cov in a.error_shares().items():
                     share = _share(cov, t_hm)
                     lines.append(f"  errors from the {'spectra' if part == 'spectra' else 'temperature calibration'} "
-                                 f"alone: dH‡ ± {share['enthalpy_kj_mol']:.2g} kJ/mol, dS‡ ± "
-                                 f"{share['entropy_j_mol_k']:.2g} J/(mol K), dG‡(298.15 K) ± "
-                                 f"{share['gibbs_298_kj_mol']:.2g}, dG‡({t_hm:.1f} K) ± "
+                                 f"alone: ΔH‡ ± {share['enthalpy_kj_mol']:.2g} kJ/mol, ΔS‡ ± "
+                                 f"{share['entropy_j_mol_k']:.2g} J/(mol K), ΔG‡(298.15 K) ± "
+                                 f"{share['gibbs_298_kj_mol']:.2g}, ΔG‡({t_hm:.1f} K) ± "
                                  f"{share['gibbs_hm_kj_mol']:.2g} kJ/mol")
             else:
                 lines.append("  temperatures taken as exact: no calibration error included")

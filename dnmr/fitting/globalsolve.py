@@ -214,7 +214,7 @@ def _scanned_rates(problem: GlobalProblem, g: np.ndarray) -> list[tuple[float, f
 def _robust_start(problem: GlobalProblem, x: np.ndarray) -> np.ndarray:
     """`x` restarted where first guesses and the two-step fit may mislead: shift trends from the lines a scan
     finds in the coldest spectra (a third of them, at least two; assumed in slow exchange), the linewidth
-    flat at the coldest spectrum's, every offset at 0; then dH‡ and dS‡ of the first process from an
+    flat at the coldest spectrum's, every offset at 0; then ΔH‡ and ΔS‡ of the first process from an
     Eyring line through the rates a scan finds in each spectrum (where at least three have a clear
     minimum; else the two-step start is kept)."""
     order = np.argsort([m.temperature_k for m in problem.members])
@@ -225,7 +225,7 @@ def _robust_start(problem: GlobalProblem, x: np.ndarray) -> np.ndarray:
         put(m.prefix + "offset_hz", 0.0)
     found, width = _scanned_lines(problem, cold, problem.vector(out))
     temps = np.array([problem.members[k].temperature_k for k in cold]) - problem.reference_k
-    degree = min(TREND_DEGREES[problem.treatment.shifts], len(cold) - 1)
+    degree = min(TREND_DEGREES[problem.treatment.shift_trend], len(cold) - 1)
     for r, values in zip(problem.family_rows("shift"), found.T):
         for j, c in enumerate(np.polynomial.polynomial.polyfit(temps, values, degree)):
             put(problem.quantities[r].name + TREND_SUFFIXES[j], c)

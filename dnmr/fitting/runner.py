@@ -131,8 +131,8 @@ def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectru
         return {}
     nearest = min(finished, key=lambda f: abs(f[0].temperature_k - target.temperature_k))[1]
     start = {name: p["estimate"] for name, p in nearest["parameters"].items()
-             if not name.startswith(("log10_k_", "amplitude", "baseline_"))}
-    rate_names = [n for n in nearest["parameters"] if n.startswith("log10_k_")]  # in process order
+             if not name.startswith(("log10_rate_", "amplitude", "baseline_"))}
+    rate_names = [n for n in nearest["parameters"] if n.startswith("log10_rate_")]  # in process order
     for i, name in enumerate(rate_names):
         points = [(s.temperature_k, f["rates"][i]["rate_per_s"]) for s, f in finished
                   if f["rates"][i]["status"] in ("determined", "interval")]
@@ -210,8 +210,8 @@ class SpectrumOutcome:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
         if not self.fitted or not self.posterior or "quantities" not in self.posterior:
             return None
-        names = [n for n in self.fit.parameters if n.startswith("log10_k_")]  # in process order
-        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_k_"):])
+        names = [n for n in self.fit.lmfit_parameters if n.startswith("log10_rate_")]  # in process order
+        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_rate_"):])
 
     @property
     def fitted(self) -> bool:

@@ -168,9 +168,9 @@ def _trend_text(line: ParameterTrend) -> str:
 def _posterior_rate_text(q: Mapping) -> str:
     """One posterior rate (a PosteriorSummary as plain data) in words."""
     if q["kind"] == "upper-bound":
-        return f"k < {q['bound_95']:.3g} s^-1 (95 % upper bound)"
+        return f"k < {q['bound95']:.3g} s^-1 (95 % upper bound)"
     if q["kind"] == "lower-bound":
-        return f"k > {q['bound_95']:.3g} s^-1 (95 % lower bound)"
+        return f"k > {q['bound95']:.3g} s^-1 (95 % lower bound)"
     if q["kind"] == "undetermined":
         return "k not determined (the posterior is the prior)"
     return f"k = {q['median']:.3g} s^-1, 95 % interval {q['ci95'][0]:.3g} to {q['ci95'][1]:.3g}"

@@ -29,7 +29,7 @@ from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_pa
 from dnmr.errors import InputError
 from dnmr.fitting.matrixmethod import SiteRates, matrix_method
 from dnmr.fitting.seriesoutput import RATE_COLUMNS
-from dnmr.fitting.parameters import parameter_identifier, parameter_record, parameter_stderr
+from dnmr.fitting.parameters import FitParameter, fitted_parameters, parameter_identifier, parameter_record, parameter_stderr
 from dnmr.fitting.problem import BetterMinimum, NoiseEstimate, PROFILE_RESTARTS, error_scale, minimize, profile_parameter
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate
 from dnmr.fitting.resultsfolder import (earlier_manifest, holds_results, listed_files, lock_results_folder,
@@ -40,7 +40,7 @@ from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figu
 
 #: Columns of rates.csv after those of ``dnmr fit`` (RATE_COLUMNS).
 TRANSFER_COLUMNS = ("method", "matrix_rate_per_s", "matrix_rate_stderr", "chi_square", "reduced_chi_square",
-                    "data", "flags", "note")
+                    "data", "flags", "notes")
 #: The files ``dnmr transfer`` writes into its folder: results.json (its manifest), rates.csv, the figure.
 TRANSFER_FILES = ("results.json", "rates.csv", "fit.png")
 #: The program results.json names: how a later ``--overwrite`` knows a folder as one of ``dnmr transfer``.
@@ -66,7 +66,7 @@ class _TransferProblem:
         populations = model.populations()
         self.equilibrium = np.array([populations[model.state_index(s.state)] * s.nuclei for s in self.sites])
         self.patterns = process_patterns(model)
-        self.rate_names = tuple(f"log10_k_{parameter_identifier(p)}" for p in model.process_names())
+        self.rate_names = tuple(f"log10_rate_{parameter_identifier(p)}" for p in model.process_names())
         self.data = data.values
         self.sigma = np.ones_like(self.data) if data.stderr is None else data.stderr
         self.nfev = 0
@@ -193,8 +193,11 @@ class TransferFit:
         What was fitted.
     rates : list of RateEstimate
         One per exchange process, in model order (forward rates, s^-1).
-    parameters : lmfit.Parameters
-        Every parameter (log10_k_*, r1_per_s_*, m_eq_*, inversion_efficiency) with its scaled error.
+    parameters : dict of str to FitParameter
+        Every parameter (log10_rate_*, r1_per_s_*, m_eq_*, inversion_efficiency) with its estimate and scaled
+        error (a property, from `lmfit_parameters`).
+    lmfit_parameters : lmfit.Parameters
+        The same as the fitting wing works with them.
     chi_square, reduced_chi_square : float
         Sum of squared weighted residuals and that over the degrees of freedom.
     degrees_of_freedom : int
@@ -211,7 +214,7 @@ class TransferFit:
 
     experiment: Experiment
     rates: list[RateEstimate]
-    parameters: lmfit.Parameters
+    lmfit_parameters: lmfit.Parameters
     chi_square: float
     reduced_chi_square: float
     degrees_of_freedom: int
@@ -222,13 +225,18 @@ class TransferFit:
     matrix_method: list[SiteRates] = field(default_factory=list)
 
     @property
+    def parameters(self) -> dict[str, FitParameter]:
+        """Every fit parameter by name, in dnmr's words (estimate, stderr, range; see :class:`FitParameter`)."""
+        return fitted_parameters(self.lmfit_parameters, {})
+
+    @property
     def residuals(self) -> np.ndarray:
         """Data minus fit, shaped like the data."""
         return self.experiment.data.values - self.fitted
 
     def curve(self, times_s: Sequence[float]) -> np.ndarray:
         """The fitted model at any times (s), shaped like the data with those times."""
-        return _TransferProblem(self.experiment).predict(self.parameters.valuesdict(), np.asarray(times_s, dtype=float))
+        return _TransferProblem(self.experiment).predict(self.lmfit_parameters.valuesdict(), np.asarray(times_s, dtype=float))
 
     def plot(self, figure=None):
         """Data, fitted curves and residuals (:func:`dnmr.reporting.plotting.plot_transfer_fit`)."""
@@ -240,7 +248,7 @@ class TransferFit:
         """R1 (s^-1) and its standard error for each site (error NaN where fixed or tied)."""
         out = {}
         for site in model_sites(self.experiment.model):
-            par = self.parameters[f"r1_per_s_{parameter_identifier(site.label)}"]
+            par = self.lmfit_parameters[f"r1_per_s_{parameter_identifier(site.label)}"]
             out[site.label] = (float(par.value), parameter_stderr(par) if par.vary else math.nan)
         return out
 
@@ -265,8 +273,8 @@ class TransferFit:
                 lines.append(f"  {'':<{width}}  ({r.reason})")
         for label, (value, err) in self.relaxation().items():
             lines.append(f"  R1 {label}: {significant(value, 4)} s^-1" + (f" ± {significant(err, 2)}" if np.isfinite(err) else " (fixed or tied)"))
-        if "inversion_efficiency" in self.parameters:
-            par = self.parameters["inversion_efficiency"]
+        if "inversion_efficiency" in self.lmfit_parameters:
+            par = self.lmfit_parameters["inversion_efficiency"]
             lines.append(f"  inversion efficiency {par.value:.3f}" + (f" ± {parameter_stderr(par):.3f}" if par.vary else " (fixed)"))
         combined = self.matrix_method[-1] if self.matrix_method else None
         if combined is not None:
@@ -284,14 +292,14 @@ class TransferFit:
             row = {"temperature_k": exp.temperature_k, "process": r.process, "rate_per_s": r.rate_per_s,
                    "rate_stderr": r.rate_stderr, "rate_lower": r.rate_lower, "rate_upper": r.rate_upper,
                    "status": r.status, "log10_rate": r.log10_rate,
-                   "log10_rate_stderr": r.log10_stderr if r.status == "determined" else math.nan,
-                   "ci68_low_per_s": r.interval_per_s[0], "ci68_high_per_s": r.interval_per_s[1],
+                   "log10_rate_stderr": r.log10_rate_stderr if r.status == "determined" else math.nan,
+                   "rate_ci68_lower": r.rate_ci68[0], "rate_ci68_upper": r.rate_ci68[1],
                    "method": exp.experiment,
                    "matrix_rate_per_s": float(combined.process_rates[i]) if combined else math.nan,
                    "matrix_rate_stderr": float(combined.process_stderr[i]) if combined else math.nan,
                    "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
                    "data": exp.data.source, "flags": ";".join(self.flags),
-                   "note": " ".join(([r.reason] if r.reason and r.status != "determined" else []) + self.notes)}
+                   "notes": " ".join(([r.reason] if r.reason and r.status != "determined" else []) + self.notes)}
             rows.append({k: "" if isinstance(v, float) and not math.isfinite(v) else v for k, v in row.items()})
         return rows
 
@@ -305,7 +313,7 @@ class TransferFit:
             "sites": [s.label for s in model_sites(exp.model)], "observed_sites": list(exp.data.sites),
             "rates": [r.to_dict() for r in self.rates],
             "relaxation_per_s": {k: {"value": v, "stderr": e} for k, (v, e) in self.relaxation().items()},
-            "parameters": {n: parameter_record(p) for n, p in self.parameters.items()},
+            "parameters": {n: parameter_record(p) for n, p in self.lmfit_parameters.items()},
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom, "error_scale": self.error_scale,
             "flags": self.flags, "notes": self.notes,

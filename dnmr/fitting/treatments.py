@@ -73,9 +73,9 @@ def fit_reference_lines(series: Series) -> tuple[dict[int, dict], list[str]]:
         except Exception as err:  # one spectrum's reference failing leaves its linewidth free, not the series lost
             out[i] = {"window_ppm": list(window), "error": str(err)}
             continue
-        par = fit.parameters["linewidth_hz_reference"]
+        par = fit.lmfit_parameters["linewidth_hz_reference"]
         stderr = math.nan if par.stderr is None else float(par.stderr)
-        record = {"window_ppm": list(window), "width_hz": float(par.value), "stderr_hz": stderr,
+        record = {"window_ppm": list(window), "width_hz": float(par.value), "width_stderr": stderr,
                   "reduced_chi_square": fit.reduced_chi_square, "flags": list(fit.flags)}
         if math.isfinite(stderr) and not any(f.startswith("at-bound:linewidth") for f in fit.flags):
             record["setting"] = {name: held_setting(par.value + ref.added_width_hz, stderr)}
@@ -115,7 +115,7 @@ def _rates_are_slow(fit: SpectrumFit, limit: float) -> bool:
 def _statics_determined(fit: SpectrumFit, kinds: Sequence[str]) -> bool:
     """Every free parameter of `kinds` has a finite error and is off the bounds of its range."""
     prefixes = tuple(PARAMETER_PREFIX[k] for k in kinds)
-    for name, par in fit.parameters.items():
+    for name, par in fit.lmfit_parameters.items():
         if name.startswith(prefixes) and par.vary and not par.expr:
             if par.stderr is None or not math.isfinite(par.stderr) or f"at-bound:{name}" in fit.flags:
                 return False
@@ -264,14 +264,14 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
     fit = outcome.fit
     for quantity, mode in series.treatments.items():
         prefix = PARAMETER_PREFIX[TREATMENT_KIND[quantity]]
-        names = [n for n in (fit.parameters if fit else ()) if n.startswith(prefix)]
+        names = [n for n in (fit.lmfit_parameters if fit else ()) if n.startswith(prefix)]
         if not names:
             continue
         if any(n in outcome.spectrum.options.parameters for n in names):
             out[quantity] = "user"
         elif mode == REFERENCE_LINE:
             out[quantity] = "reference-line" if reference and "setting" in reference else "fitted"
-        elif any(fit.parameters[n].vary and not fit.parameters[n].expr for n in names):
+        elif any(fit.lmfit_parameters[n].vary and not fit.lmfit_parameters[n].expr for n in names):
             out[quantity] = "fitted"
         elif mode == TREND and trend is not None and any(n in trend.lines for n in names):
             out[quantity] = "trend"
@@ -281,7 +281,7 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
     outcome.flags += [f"{how}-{quantity}" for quantity, how in out.items() if how in ("trend", "reference-line")]
     if out:
         outcome.notes.append(_treatment_note(out))
-    held = [n for n, p in (fit.parameters.items() if fit else ()) if trend and n in trend.lines and not p.vary]
+    held = [n for n, p in (fit.lmfit_parameters.items() if fit else ()) if trend and n in trend.lines and not p.vary]
     if any(trend.lines[n].constant for n in held):
         outcome.flags.append("trend-one-temperature")
         outcome.notes.append("the held values come from one slow-exchange temperature: their drift with temperature "

@@ -23,7 +23,7 @@ and the Eyring analysis fits the rates of OUTDIR and of every transfer folder to
 rate marked by its method).  Without them the report is the lineshape fits' alone.
 
 A folder of ``dnmr fit --global`` (it holds global.json) gets the global fit's report instead: its
-treatment and dH‡, dS‡, the comparison with the two-step result (activation parameters and rates), each
+treatment and ΔH‡, ΔS‡, the comparison with the two-step result (activation parameters and rates), each
 spectrum's chi-square per point against the measured noise beside its two-step fit, the stacked fits
 and residuals, the global parameters, the model, warnings, cautions and the inputs of the two-step folder.
 
