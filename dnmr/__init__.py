@@ -68,5 +68,5 @@ def __dir__() -> list[str]:
     return sorted(set(globals()) | set(__all__))
 
 
-__version__ = "0.2.0"
+__version__ = "0.3.0"
 __all__ = [*_HOME_OF, "__version__"]
