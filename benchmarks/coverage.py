@@ -10,7 +10,7 @@ Printed per scenario:
 
 * rates: the share of 68 % intervals that hold the true rate (goal 60-76 %), the share of bounds that
   hold it, and how many spectra gave a value rather than a bound;
-* dH‡ and dS‡: the share of replicas within 2 standard errors of the truth (goal >= 90 %), and the
+* ΔH‡ and ΔS‡: the share of replicas within 2 standard errors of the truth (goal >= 90 %), and the
   mean and spread of (estimate - truth) / standard error (goal: mean near 0, spread near 1).
 
 Run:  python benchmarks/coverage.py [--replicas 20] [--scenario mutual-pair,two-state,ab-pair] [--global]
@@ -49,8 +49,8 @@ class Tally:
         for row in rows:
             k = true_rate[min(true_rate, key=lambda t: abs(t - float(row["temperature_k"])))]
             if row.get("rate_stderr") not in ("", None):
-                lo = _number(row.get("ci68_low_per_s"), _number(row["rate_per_s"]) - _number(row["rate_stderr"]))
-                hi = _number(row.get("ci68_high_per_s"), _number(row["rate_per_s"]) + _number(row["rate_stderr"]))
+                lo = _number(row.get("rate_ci68_lower"), _number(row["rate_per_s"]) - _number(row["rate_stderr"]))
+                hi = _number(row.get("rate_ci68_upper"), _number(row["rate_per_s"]) + _number(row["rate_stderr"]))
                 self.intervals += 1
                 self.interval_hits += lo <= k <= hi
             elif row.get("rate_lower") not in ("", None) or row.get("rate_upper") not in ("", None):
@@ -69,7 +69,7 @@ class Tally:
         if self.intervals or self.bounds:
             out.append(f"    rates: 68 % intervals hold the truth {_share(self.interval_hits, self.intervals)} (goal 60-76 %); "
                        f"bounds hold it {_share(self.bound_hits, self.bounds)}; no rate: {self.failed}")
-        for label, z in (("dH‡", self.enthalpy_z), ("dS‡", self.entropy_z)):
+        for label, z in (("ΔH‡", self.enthalpy_z), ("ΔS‡", self.entropy_z)):
             if z:
                 z = np.asarray(z)
                 out.append(f"    {label}: within 2 SE {_share(int(np.sum(np.abs(z) <= 2)), len(z))} (goal >= 90 %); "

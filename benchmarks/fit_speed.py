@@ -12,7 +12,7 @@
     emcee's ensemble at its default 32 walkers x 4000 steps (timed over 200 steps and scaled);
 (b) the bundled demo series (every spectrum of it; shifts from the slow-exchange trend, populations free) fitted
     with one worker and with one per core: the parallel speed-up (goal >= 1.7 on 2 cores);
-(c) the global fit of that series (dH‡, dS‡ and shifts linear in T, with the demo calibration) from (b)'s
+(c) the global fit of that series (ΔH‡, ΔS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
@@ -83,8 +83,8 @@ def time_fit(label: str, spectrum, model, repeats: int = 3, **options) -> None:
 
 def difference(a, b) -> str:
     """How far two fits' estimates of one rate lie apart: in standard errors, or the bounds' ratio."""
-    if np.isfinite(a.log10_stderr) and a.log10_stderr > 0:
-        return f"log10 k differs by {abs(a.log10_rate - b.log10_rate) / a.log10_stderr:.1e} sd"
+    if np.isfinite(a.log10_rate_stderr) and a.log10_rate_stderr > 0:
+        return f"log10 k differs by {abs(a.log10_rate - b.log10_rate) / a.log10_rate_stderr:.1e} sd"
     ends = [(x.rate_lower, y.rate_lower) for x, y in [(a, b)] if np.isfinite(x.rate_lower)]
     ends += [(x.rate_upper, y.rate_upper) for x, y in [(a, b)] if np.isfinite(x.rate_upper)]
     return "bounds differ by " + ", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends)
@@ -160,7 +160,7 @@ def main() -> None:
         for workers in (1, cores):
             t0 = time.perf_counter()
             fit = fit_global_from_two_step(loaded, result, folder / f"out{cores}", calibration,
-                                           Treatment(shifts="linear", linewidth="per-spectrum"), workers)
+                                           Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
             times[workers] = time.perf_counter() - t0
             a = fit.activation[0]
             print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "

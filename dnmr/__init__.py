@@ -24,6 +24,7 @@ _HOMES = {
     "activation.rate_table": ("read_rates",),
     "activation.study": ("EyringStudy", "run_eyring"),
     "errors": ("InputError",),
+    "jobs": ("run_fit",),
     "fitting.spectrumfit": ("FitOptions", "SpectrumFit", "fit_parameters", "fit_spectrum"),
     "fitting.rates": ("RateEstimate",),
     "engine.longitudinal": ("LongitudinalSystem",),
@@ -41,7 +42,8 @@ _HOMES = {
     "planning.solvents": ("Solvent", "load_solvents", "solvent"),
     "engine.spectrum": ("Spectrum", "simulate", "simulate_over"),
     "activation.temperature_calibration": ("fit_temperature_calibration", "read_temperature_calibration"),
-    "activation.thermometers": ("temperature_from_file", "temperature_from_spectrum", "thermometer_reading"),
+    "activation.thermometers": ("temperature_from_file", "temperature_from_spectrum", "thermometer_reading",
+                                "thermometer_readings"),
     "fitting.transfer": ("TransferFit", "fit_transfer", "run_transfer"),
     "fitting.transferfile": ("Experiment", "load_experiment"),
     "planning.fastexchange": ("averaged_model", "fast_exchange_limit"),
@@ -66,5 +68,5 @@ def __dir__() -> list[str]:
     return sorted(set(globals()) | set(__all__))
 
 
-__version__ = "0.2.0"
+__version__ = "0.3.0"
 __all__ = [*_HOME_OF, "__version__"]

@@ -9,19 +9,32 @@ import json
 import sys
 import traceback
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import click
 
 from dnmr.errors import InputError
 from dnmr.io.output import FIGURE_FORMAT_CHOICES, figures_as, json_ready, os_error_text
 
-if TYPE_CHECKING:
-    from dnmr.fitting.seriesfile import Series
+
+#: Options of earlier releases by command, and their names now: refused with one "renamed to" line (exit 2).
+RENAMED_OPTIONS = {
+    "fit": {"--shifts": "--shift-trend", "--linewidth": "--linewidth-trend", "--couplings": "--coupling-trend"},
+    "stack": {"--rates": "--rates-per-s", "--temperatures": "--temperatures-k"},
+    "thermometer": {"--shift-difference": "--shift-difference-ppm"},
+}
 
 
 class _Group(click.Group):
     """Click group that maps errors onto the exit statuses of the contract (0 ok, 2 bad input, 1 other)."""
+
+    def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
+        """Refuse an option of an earlier release with its new name, before click's usage error."""
+        renamed = RENAMED_OPTIONS.get(next((a for a in args if not a.startswith("-")), None), {})
+        old = next((a.split("=", 1)[0] for a in args if a.split("=", 1)[0] in renamed), None)
+        if old is not None:
+            click.echo(f"dnmr: error: the option {old} was renamed to {renamed[old]}", err=True)
+            ctx.exit(2)
+        return super().parse_args(ctx, args)
 
     def invoke(self, ctx: click.Context):
         try:
@@ -104,40 +117,40 @@ def simulate(model_file: Path, output: Path, plot_file: Path | None, points: int
 
 @cli.command()
 @click.argument("model_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--rates", help="Forward rates (s^-1) of the first exchange process, comma separated.")
-@click.option("--temperatures", help="Temperatures (K), comma separated (rates from the model's activation parameters).")
+@click.option("--rates-per-s", help="Forward rates (s⁻¹) of the first exchange process, comma separated.")
+@click.option("--temperatures-k", help="Temperatures (K), comma separated (rates from the model's activation parameters).")
 @click.option("-o", "--output", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="Image to write (PNG, SVG or PDF).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing image.")
-def stack(model_file: Path, rates: str | None, temperatures: str | None, output: Path, overwrite: bool) -> None:
+def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None, output: Path, overwrite: bool) -> None:
     """Draw MODEL_FILE's spectrum over a list of rates or temperatures, stacked (a coalescence figure)."""
     from dnmr.reporting.spectrumfiles import write_stack
 
-    if (rates is None) == (temperatures is None):
-        raise InputError("give either --rates or --temperatures", where="stack")
+    if (rates_per_s is None) == (temperatures_k is None):
+        raise InputError("give either --rates-per-s or --temperatures-k", where="stack")
     write_stack(model_file, output, overwrite=overwrite,
-                rates_per_s=None if rates is None else _parse_list(rates, "--rates"),
-                temperatures_k=None if temperatures is None else _parse_list(temperatures, "--temperatures"))
+                rates_per_s=None if rates_per_s is None else _parse_list(rates_per_s, "--rates-per-s"),
+                temperatures_k=None if temperatures_k is None else _parse_list(temperatures_k, "--temperatures-k"))
     click.echo(f"wrote {output}")
 
 
 @cli.command()
-@click.argument("series_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("series_file", type=click.Path(path_type=Path))
 @click.option("-o", "--output", "outdir", type=click.Path(file_okay=False, path_type=Path), required=True,
-              help="Folder for rates.csv, results.json and the figures.")
+              help="Folder for rates.csv, results.json and the figures (for a folder of series: one subfolder each).")
 @click.option("--overwrite", is_flag=True, help="Replace the results of an earlier run in the folder.")
 @click.option("--resume", is_flag=True, help="Continue an earlier run in the folder, keeping its completed fits.")
 @click.option("--serial", is_flag=True, help="Fit one spectrum at a time in this process.")
 @click.option("--workers", type=click.IntRange(1, 256), help="Worker processes (default: one per core).")
 @click.option("--quiet", is_flag=True, help="No progress report on stderr (a bar on a terminal, else plain lines).")
 @click.option("--global", "global_fit", is_flag=True,
-              help="Also fit all spectra at once with dH‡ and dS‡ as the parameters (two-step fit in OUTDIR/two-step).")
-@click.option("--shifts", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
+              help="Also fit all spectra at once with ΔH‡ and ΔS‡ as the parameters (two-step fit in OUTDIR/two-step).")
+@click.option("--shift-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
               help="With --global: temperature trend of the chemical shifts.")
-@click.option("--linewidth", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
+@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
               show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
-@click.option("--couplings", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
-              help="With --global: temperature trend of the scalar couplings the model gives.")
+@click.option("--coupling-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear",
+              show_default=True, help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
               help="Set-point calibration table (CSV: setpoint_k, temperature_k) for the report's Eyring analysis"
                    " and the global fit.")
@@ -154,71 +167,64 @@ def stack(model_file: Path, rates: str | None, temperatures: str | None, output:
               help="With --posterior: steps of each walker of the ensemble (32 walkers, or 2 per sampled parameter + 2 "
                    "when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Send the fits to the Dask scheduler at this address (tcp://host:8786), whose workers have this "
+                   'dnmr; --workers then counts tasks at once (default: its threads). Needs pip install "dnmr-exchange[dask]".')
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool, global_fit: bool, shifts: str, linewidth: str, couplings: str,
+        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str, coupling_trend: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_method: str, posterior_draws: int,
-        posterior_steps: int, posterior_seed: int, figure_format: str) -> None:
+        posterior_steps: int, posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.
+
+    SERIES_FILE may be a folder: every series file in it (and its subfolders) is fitted into its own
+    subfolder of OUTDIR, one after the other, and OUTDIR/summary.csv lists what became of each.
 
     Exit status 0 when every spectrum was fitted; 2 for bad input (series or model file, or a spectrum
     file that cannot be read: the other spectra are still fitted and written); 1 when a fit failed.
     """
-    from dnmr.fitting.series import fit_series
-    from dnmr.fitting.seriesfile import load_series
+    from contextlib import nullcontext
 
-    if posterior and global_fit:
-        raise InputError("--posterior samples the spectrum-by-spectrum fits; it is not available with --global",
-                         where="--posterior")
+    from dnmr.fitting.cluster import scheduler_executor
+    from dnmr.jobs import check_fit_settings, run_fit, run_fit_folder
+
+    if scheduler is not None and serial:
+        raise InputError("--serial fits in this process and --scheduler on a cluster: choose one", where="--scheduler")
+    check_fit_settings(resume=resume, global_fit=global_fit, posterior={} if posterior else None)
     if posterior:
         from dnmr.posterior import require_emcee
 
         require_emcee(where="--posterior")
-    series = load_series(series_file)
-    for warning in series.warnings:
-        click.echo(f"dnmr: warning: {series_file}: {warning}", err=True)
-    with figures_as(figure_format):
-        if global_fit:
-            _fit_global(series, outdir, overwrite, resume, 1 if serial else workers, quiet,
-                        {"shifts": shifts, "linewidth": linewidth, "couplings": couplings}, calibration_file, no_report)
-            return
-        result = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=1 if serial else workers,
-                            progress=False if quiet else None,
-                            posterior={"method": posterior_method, "draws": posterior_draws, "steps": posterior_steps,
-                                       "seed": posterior_seed} if posterior else None)
-        click.echo(result.report())
-        for failed in result.failures:
-            click.echo(f"dnmr: error: {failed.spectrum.where}: {failed.error}", err=True)
-        _write_report_after_fit(outdir, calibration_file, no_report)
-    ctx.exit(result.exit_status)
+    settings = {"global_fit": global_fit, "write_html": not no_report, "calibration_file": calibration_file,
+                "treatment": {"shift_trend": shift_trend, "linewidth_trend": linewidth_trend,
+                              "coupling_trend": coupling_trend},
+                "posterior": {"method": posterior_method, "draws": posterior_draws, "steps": posterior_steps,
+                              "seed": posterior_seed} if posterior else None,
+                "progress": False if quiet else None,
+                "on_warning": lambda text: click.echo(f"dnmr: warning: {series_file}: {text}", err=True)}
+    with figures_as(figure_format), (scheduler_executor(scheduler) if scheduler else nullcontext((None, None))) as (
+            executor, threads):
+        where = {"overwrite": overwrite, "resume": resume, "workers": 1 if serial else workers or threads,
+                 "executor": executor}
+        if series_file.is_dir():
+            batch = run_fit_folder(series_file, outdir, on_job=_echo_fit_job, **where, **settings)
+            click.echo(batch.report())
+            ctx.exit(batch.exit_status)
+        job = run_fit(series_file, outdir, **where, **settings)
+        _echo_fit_job(job)
+    ctx.exit(job.exit_status)
 
 
-def _fit_global(series: Series, outdir: Path, overwrite: bool, resume: bool, workers: int | None, quiet: bool,
-                treatment: dict[str, str], calibration_file: Path | None, no_report: bool) -> None:
-    """`dnmr fit --global`: the global fit (dnmr.fitting.globalfit), its text report and report.html."""
-    from dnmr.fitting.globalfit import fit_series_global
-    from dnmr.activation.temperature_calibration import read_temperature_calibration
-
-    if resume:
-        raise InputError("--resume is not available with --global", where="--resume")
-    calibration = read_temperature_calibration(calibration_file) if calibration_file else None
-    result = fit_series_global(series, outdir, overwrite=overwrite, calibration=calibration, workers=workers,
-                               progress=False if quiet else None, **treatment)
-    click.echo(result.report())
-    _write_report_after_fit(outdir, None, no_report)  # the global fit already used the calibration
-
-
-def _write_report_after_fit(outdir: Path, calibration_file: Path | None, no_report: bool) -> None:
-    """report.html of the fit just written into `outdir` (rewritten with each run), unless `no_report`."""
-    if no_report:
-        return
-    from dnmr.reporting.report import write_report
-
-    try:
-        click.echo(f"report: {write_report(outdir, calibration=calibration_file, overwrite=True)}")
-    except InputError as err:
-        click.echo(f"dnmr: warning: no report written: {err}", err=True)
+def _echo_fit_job(job) -> None:
+    """Print what `dnmr fit` did: the fit's report, the spectra that failed, report.html or why there is none."""
+    click.echo(job.report())
+    for problem in job.problems():
+        click.echo(f"dnmr: error: {problem}", err=True)
+    if job.report_file is not None:
+        click.echo(f"report: {job.report_file}")
+    elif job.report_problem is not None:
+        click.echo(f"dnmr: warning: no report written: {job.report_problem}", err=True)
 
 
 @cli.command()
@@ -263,7 +269,7 @@ def transfer(experiment_file: Path, outdir: Path, overwrite: bool, figure_format
 @click.option("--tables", "tables_folder", type=click.Path(file_okay=False, path_type=Path),
               help="Also write the supporting-information tables (CSV, Markdown, LaTeX) into this folder.")
 @click.option("--posterior", is_flag=True,
-              help="Also sample the posterior of dH‡ and dS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
+              help="Also sample the posterior of ΔH‡ and ΔS‡ (needs emcee); with --plot, draw its pairwise posterior figure too.")
 @click.option("--posterior-steps", type=click.IntRange(100, 10**7), default=10000, show_default=True,
               help="With --posterior: steps of each walker (32, or 2 per sampled parameter + 2 when more; a quarter is burn-in).")
 @click.option("--posterior-seed", type=int, default=0, show_default=True, help="With --posterior: seed of the sampler.")
@@ -271,7 +277,7 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
            temperature_stderr: float | None, temperature_offset_stderr: float | None, flagged_rows: str,
            scale_errors: bool, transmission: float, calibration_file: Path | None, calibration_degree: int,
            overwrite: bool, tables_folder: Path | None, posterior: bool, posterior_steps: int, posterior_seed: int) -> None:
-    """dH‡, dS‡, dG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
+    """ΔH‡, ΔS‡, ΔG‡ (Eyring) and Ea (Arrhenius) from RATES_FILES (rates.csv of `dnmr fit` or `dnmr transfer`,
     or tables of your own).
 
     Several tables are fitted together, process by process: lineshape rates and magnetisation-transfer
@@ -299,8 +305,8 @@ def eyring(rates_files: tuple[Path, ...], as_json: bool, plot_file: Path | None,
 
 @cli.command()
 @click.argument("liquid", type=click.Choice(["methanol", "glycol"]))
-@click.option("--shift-difference", "shift_differences", type=float, multiple=True,
-              help="dd = delta(OH) - delta(CH3 or CH2) in ppm; repeat for several readings.")
+@click.option("--shift-difference-ppm", "shift_differences", type=float, multiple=True,
+              help="Δδ = δ(OH) − δ(CH3 or CH2) in ppm; repeat for several readings.")
 @click.option("--spectrum", "spectra", type=click.Path(path_type=Path), multiple=True,
               help="Thermometer spectrum (text, JCAMP-DX or processed folder); repeat for several.")
 @click.option("--frequency-mhz", type=float, help="Spectrometer frequency, MHz (for spectra with a Hz axis).")
@@ -318,17 +324,14 @@ def thermometer(ctx: click.Context, liquid: str, shift_differences: tuple[float,
                 overwrite: bool, as_json: bool) -> None:
     """Sample temperature from a methanol or ethylene-glycol shift thermometer (Ammann, Meier & Merbach 1982),
     or, with --calibrate, the set-point calibration from a set of thermometer spectra."""
-    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, temperature_from_file, thermometer_reading
+    from dnmr.activation.thermometers import THERMOMETER_CAUTIONS, readings_to_dict, thermometer_readings
 
     if spectrum_list is not None:
         _calibrate(ctx, spectrum_list, liquid, degree, frequency_mhz, output, overwrite, as_json)
         return
     if output is not None:
         raise InputError("-o writes the calibration table of --calibrate LIST.csv; give that list", where="--output")
-    if not shift_differences and not spectra:
-        raise InputError("give --shift-difference PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
-    readings = [thermometer_reading(dd, liquid) for dd in shift_differences]
-    readings += [temperature_from_file(path, liquid, frequency_mhz=frequency_mhz) for path in spectra]
+    readings = thermometer_readings(liquid, shift_differences, spectra, frequency_mhz=frequency_mhz)
     if as_json:
         print_json(readings_to_dict(readings))
     else:
@@ -340,13 +343,12 @@ def _calibrate(ctx: click.Context, spectrum_list: Path, liquid: str, degree: int
                output: Path | None, overwrite: bool, as_json: bool) -> None:
     """`dnmr thermometer --calibrate`: readings, fitted calibration, the table written, cautions; exit 2 when
     a spectrum of the list could not be used (the others are kept)."""
-    from dnmr.io.output import atomic_write_text
     from dnmr.activation.temperature_calibration import calibration_from_spectra
     from dnmr.activation.thermometers import THERMOMETER_CAUTIONS
 
     result = calibration_from_spectra(spectrum_list, liquid, degree, frequency_mhz=frequency_mhz)
     if output is not None:
-        atomic_write_text(output, result.table_csv(), overwrite=overwrite)
+        result.write_table(output, overwrite=overwrite)
     if as_json:
         print_json(result.to_dict())
     else:
@@ -383,9 +385,9 @@ def _with_options(options):
 
 
 _TIMESCALE_OPTIONS = (
-    click.option("--barrier-kj-mol", type=float, help="Free energy of activation dG‡ (kJ/mol), the same at every temperature."),
-    click.option("--enthalpy-kj-mol", type=float, help="dH‡ (kJ/mol); give --entropy-j-mol-k with it."),
-    click.option("--entropy-j-mol-k", type=float, help="dS‡ (J/(mol K)); give --enthalpy-kj-mol with it."),
+    click.option("--barrier-kj-mol", type=float, help="Free energy of activation ΔG‡ (kJ/mol), the same at every temperature."),
+    click.option("--enthalpy-kj-mol", type=float, help="ΔH‡ (kJ/mol); give --entropy-j-mol-k with it."),
+    click.option("--entropy-j-mol-k", type=float, help="ΔS‡ (J/(mol K)); give --enthalpy-kj-mol with it."),
     click.option("--process", help="Exchange process the activation parameters belong to (default: every process)."),
     click.option("--frequencies-mhz", help="Fields as 1H frequencies (MHz), comma separated (default: the model's)."),
     click.option("--detectable-fraction", type=float,
@@ -394,7 +396,7 @@ _TIMESCALE_OPTIONS = (
     click.option("--json", "as_json", is_flag=True, help="Print one JSON object instead of the report."),
     click.option("--overwrite", is_flag=True, help="Replace an existing image."),
     click.option("--r1-per-s", type=float,
-                 help="R1 (s^-1) for the magnetisation-transfer window (default: the model's r1_per_s, else a typical"
+                 help="R1 (s^-1) for the magnetisation-transfer range (default: the model's r1_per_s, else a typical"
                       " 1 s^-1)."),
 )
 
@@ -488,7 +490,7 @@ def plan(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, pro
               help="Draw the slow/intermediate/fast bands against temperature per field (PNG, SVG or PDF).")
 def timescale(model_file: Path, barrier_kj_mol, enthalpy_kj_mol, entropy_j_mol_k, process, frequencies_mhz,
               detectable_fraction, as_json, overwrite, r1_per_s, temperature_k, plot_file) -> None:
-    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer window below the
+    """Slow, intermediate and fast exchange per pair and field, the magnetisation-transfer range below the
     lineshapes, and what becomes equivalent when fast."""
     from dnmr import load_model
     from dnmr.planning.timescale import timescale_view

@@ -13,7 +13,8 @@ from pathlib import Path
 
 from dnmr.activation.eyring import eyring_fit_file, results_to_dict
 from dnmr.io.modelfile import load_model, read_toml
-from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
+from dnmr.io.output import (atomic_write_text, json_ready, missing_folders, new_output_folder, remove_empty_folders,
+                             save_figure)
 from dnmr.planning.plan import plan_experiment
 from dnmr.reporting.report import write_report
 from dnmr.fitting.series import fit_series
@@ -49,7 +50,16 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
         stderr when it is a file or a pipe.
     """
     outdir = Path(outdir)
+    created = missing_folders(outdir)
     new_output_folder(outdir, overwrite)
+    try:
+        return _run_demo(outdir, overwrite, echo, progress)
+    finally:  # a folder made for the demo that nothing could be written into (a full disk) goes again
+        remove_empty_folders(created)
+
+
+def _run_demo(outdir: Path, overwrite: bool, echo, progress: bool | None) -> dict:
+    """The work of :func:`run_demo` in its folder `outdir`, which exists."""
     data = demo_data_dir()
     model = load_model(data / "model.toml")
     truth = read_toml(data / "truth.toml")

@@ -44,12 +44,12 @@ def eyring_rate(
     temperature_k: float | np.ndarray,
     transmission: float = 1.0,
 ) -> float | np.ndarray:
-    """Eyring rate constant k = kappa (kB T / h) exp(-dG‡ / RT) in s^-1.
+    """Eyring rate constant k = kappa (kB T / h) exp(-ΔG‡ / RT) in s^-1.
 
     Parameters
     ----------
     gibbs_kj_mol : float or array
-        Free energy of activation dG‡ in kJ/mol.
+        Free energy of activation ΔG‡ in kJ/mol.
     temperature_k : float or array
         Temperature in K.
     transmission : float
@@ -67,7 +67,7 @@ def eyring_rate_from_enthalpy(
     temperature_k: float | np.ndarray,
     transmission: float = 1.0,
 ) -> float | np.ndarray:
-    """Eyring rate constant (s^-1) from dH‡ (kJ/mol) and dS‡ (J/(mol K)) at `temperature_k` (K)."""
+    """Eyring rate constant (s^-1) from ΔH‡ (kJ/mol) and ΔS‡ (J/(mol K)) at `temperature_k` (K)."""
     gibbs = np.asarray(enthalpy_kj_mol) - np.asarray(temperature_k) * np.asarray(entropy_j_mol_k) / 1e3
     return eyring_rate(gibbs, temperature_k, transmission)
 
@@ -77,7 +77,7 @@ def eyring_barrier(
     temperature_k: float | np.ndarray,
     transmission: float = 1.0,
 ) -> float | np.ndarray:
-    """Free energy of activation dG‡ (kJ/mol) that gives `rate_per_s` (s^-1) at `temperature_k` (K)."""
+    """Free energy of activation ΔG‡ (kJ/mol) that gives `rate_per_s` (s^-1) at `temperature_k` (K)."""
     t = np.asarray(temperature_k, dtype=float)
     k = np.asarray(rate_per_s, dtype=float)
     g = GAS_CONSTANT * t * np.log(transmission * BOLTZMANN * t / (PLANCK * k)) / 1e3

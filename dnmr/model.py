@@ -301,7 +301,7 @@ class Model:
 
     def _no_temperature(self, what: str, where: str) -> InputError:
         return InputError(f"{what} needs a temperature: add [conditions] temperature_k = <K> to the model file, "
-                          "or give the temperatures (dnmr stack --temperatures; Model.at_temperature in Python)",
+                          "or give the temperatures (dnmr stack --temperatures-k; Model.at_temperature in Python)",
                           self.source, where)
 
     def _equilibrium_populations(self) -> np.ndarray:

@@ -201,9 +201,9 @@ class Exchange:
     rate_per_s : float, optional
         Forward first-order rate constant (s^-1).
     barrier_kj_mol : float, optional
-        Free energy of activation dG‡ (kJ/mol), used at the model temperature.
+        Free energy of activation ΔG‡ (kJ/mol), used at the model temperature.
     enthalpy_kj_mol, entropy_j_mol_k : float, optional
-        dH‡ (kJ/mol) and dS‡ (J/(mol K)), used at the model temperature.
+        ΔH‡ (kJ/mol) and ΔS‡ (J/(mol K)), used at the model temperature.
     name : str, optional
         Label in reports; processes without one are called by their index.
     """

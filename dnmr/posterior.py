@@ -79,7 +79,7 @@ class PosteriorSummary:
         Of the samples (NaN unless the kind is "interval").
     ci68, ci95 : (float, float)
         Central 68 % and 95 % intervals (NaN unless the kind is "interval").
-    bound_95 : float
+    bound95 : float
         The one-sided 95 % bound of a bound (NaN otherwise).
     prior_range : (float, float)
         Where the prior ends (-inf/inf when it does not).
@@ -100,7 +100,7 @@ class PosteriorSummary:
     std: float
     ci68: tuple[float, float]
     ci95: tuple[float, float]
-    bound_95: float
+    bound95: float
     prior_range: tuple[float, float]
     autocorrelation_steps: float
     effective_samples: float
@@ -109,9 +109,9 @@ class PosteriorSummary:
     def describe(self) -> str:
         """One line: ``median 121 (68 %: 118 to 124; 95 %: 115 to 127)`` or ``< 3.1 (95 % upper bound)``."""
         if self.kind == "upper-bound":
-            return f"< {significant(self.bound_95)} (95 % upper bound from the posterior; no lower limit)"
+            return f"< {significant(self.bound95)} (95 % upper bound from the posterior; no lower limit)"
         if self.kind == "lower-bound":
-            return f"> {significant(self.bound_95)} (95 % lower bound from the posterior; no upper limit)"
+            return f"> {significant(self.bound95)} (95 % lower bound from the posterior; no upper limit)"
         if self.kind == "undetermined":
             return "not determined: the posterior is the prior"
         return (f"{significant(self.median, 5)}   68 %: {significant(self.ci68[0], 5)} to {significant(self.ci68[1], 5)}   "
@@ -121,7 +121,7 @@ class PosteriorSummary:
         """Plain data (JSON-ready; NaN stays NaN, write it as null)."""
         return {"label": self.label, "unit": self.unit, "kind": self.kind, "median": self.median,
                 "mean": self.mean, "std": self.std, "ci68": list(self.ci68), "ci95": list(self.ci95),
-                "bound_95": self.bound_95, "prior_range": list(self.prior_range),
+                "bound95": self.bound95, "prior_range": list(self.prior_range),
                 "autocorrelation_steps": self.autocorrelation_steps, "effective_samples": self.effective_samples,
                 "reason": self.reason}
 
@@ -168,7 +168,7 @@ class Posterior(NotebookView):
     notes : list of str
         What to know about the chain and the numbers.
     extra : dict
-        Further results (e.g. the dH‡-dS‡ correlation of an Eyring posterior).
+        Further results (e.g. the ΔH‡-ΔS‡ correlation of an Eyring posterior).
     method : str
         "emcee" (the ensemble) or "importance" (importance sampling, :mod:`dnmr.importance`).
     importance : dict

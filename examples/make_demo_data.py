@@ -9,7 +9,7 @@ glycol thermometers.
 Everything here is invented and stated; `dnmr demo` fits these spectra and compares the recovered
 barrier with the truth written to `truth.toml`:
 
-- activation parameters: dH‡ = 64.0 kJ/mol, dS‡ = -6.0 J/(mol K) (aryl rotation, syn -> anti);
+- activation parameters: ΔH‡ = 64.0 kJ/mol, ΔS‡ = -6.0 J/(mol K) (aryl rotation, syn -> anti);
 - rotamer free energy: anti 1.42 kJ/mol above syn;
 - shifts drift linearly with temperature (slopes below, ppm/K, about 298.15 K);
 - intrinsic linewidth 1.2 Hz at 298 K, narrowing slightly when hot (viscosity);

@@ -1,8 +1,8 @@
 """The Eyring equation, written out as an outside reference for the tests.
 
 Source: Eyring, J. Chem. Phys. 3, 107 (1935), transition-state theory:
-``k = kappa (kB T / h) exp(-dG‡ / (R T))`` with ``dG‡ = dH‡ - T dS‡``, so
-``k = kappa (kB T / h) exp(dS‡ / R) exp(-dH‡ / (R T))``.  kB, h and R are the CODATA values of
+``k = kappa (kB T / h) exp(-ΔG‡ / (R T))`` with ``ΔG‡ = ΔH‡ - T ΔS‡``, so
+``k = kappa (kB T / h) exp(ΔS‡ / R) exp(-ΔH‡ / (R T))``.  kB, h and R are the CODATA values of
 scipy.constants (kB and h are exact in the 2019 SI).  Nothing here comes from dnmr.
 """
 from __future__ import annotations
@@ -20,9 +20,9 @@ def eyring_rate(temperature_k, enthalpy_kj_mol: float, entropy_j_mol_k: float = 
     temperature_k : float or array_like
         Temperature (K).
     enthalpy_kj_mol : float
-        dH‡ (kJ/mol); with dS‡ = 0 it is dG‡.
+        ΔH‡ (kJ/mol); with ΔS‡ = 0 it is ΔG‡.
     entropy_j_mol_k : float
-        dS‡ (J/(mol K)).
+        ΔS‡ (J/(mol K)).
     transmission : float
         Transmission coefficient kappa.
     """

@@ -2,7 +2,7 @@
 
 Reference values come from the outside world: scipy.constants (CODATA), statsmodels (weighted least
 squares), the Eyring equation, Gutowsky & Holm, J. Chem. Phys. 25, 1228 (1956), and Grieger, Hunter &
-Krug, Nature 261, 566 (1976). Synthetic rate series are generated from stated dH‡/dS‡ with the Eyring
+Krug, Nature 261, 566 (1976). Synthetic rate series are generated from stated ΔH‡/ΔS‡ with the Eyring
 equation written out here with scipy.constants, not with dnmr's own functions.
 """
 from __future__ import annotations
@@ -56,23 +56,23 @@ def test_constants_are_codata_from_scipy():
 
 
 def test_rate_is_kB_T_over_h_at_zero_barrier():
-    # common practice: with dG‡ = 0 the Eyring rate is the "frequency factor" kB T / h (6.2e12 s^-1 at 298 K)
+    # common practice: with ΔG‡ = 0 the Eyring rate is the "frequency factor" kB T / h (6.2e12 s^-1 at 298 K)
     assert eyring_rate(0.0, 298.15) == pytest.approx(KB * 298.15 / H, rel=1e-14)
     assert eyring_rate(0.0, 298.15) == pytest.approx(6.21e12, rel=1e-3)
-    # and the analysis of such rates returns dH‡ = 0 and dS‡ = 0
+    # and the analysis of such rates returns ΔH‡ = 0 and ΔS‡ = 0
     result = eyring_fit(TEMPS, KB * TEMPS / H)
     assert result.enthalpy_kj_mol == pytest.approx(0.0, abs=1e-9)
     assert result.entropy_j_mol_k == pytest.approx(0.0, abs=1e-7)
 
 
 def test_exact_series_recovers_stated_parameters():
-    # Eyring equation: noise-free rates from stated dH‡, dS‡ give them back, and dG‡ = dH‡ - T dS‡
+    # Eyring equation: noise-free rates from stated ΔH‡, ΔS‡ give them back, and ΔG‡ = ΔH‡ - T ΔS‡
     k = eyring_k(TRUE_DH, TRUE_DS, TEMPS)
     result = eyring_fit(TEMPS, k, 0.05 * k)
     assert result.enthalpy_kj_mol == pytest.approx(TRUE_DH, rel=1e-10)
     assert result.entropy_j_mol_k == pytest.approx(TRUE_DS, rel=1e-8)
     assert result.gibbs(298.15).value == pytest.approx(TRUE_DH - 298.15 * TRUE_DS / 1e3, rel=1e-10)
-    # Arrhenius of the same rates: Ea = dH‡ + R T over the range (textbook relation), within R * a few K
+    # Arrhenius of the same rates: Ea = ΔH‡ + R T over the range (textbook relation), within R * a few K
     assert result.activation_energy_kj_mol == pytest.approx(TRUE_DH + R * result.harmonic_mean_temperature_k / 1e3, abs=0.03)
 
 
@@ -113,7 +113,7 @@ def test_weighted_fit_matches_statsmodels_wls_with_given_errors():
     assert np.sqrt(np.diag(result.eyring.covariance)) == pytest.approx(ref.bse, rel=1e-8)
     assert result.enthalpy_stderr == pytest.approx(R * ref.bse[1] / 1e3, rel=1e-8)
     assert result.entropy_stderr == pytest.approx(R * ref.bse[0], rel=1e-8)
-    # dG‡(T) = -R (slope + T intercept) + const: its error is R times that of the contrast (T, 1)
+    # ΔG‡(T) = -R (slope + T intercept) + const: its error is R times that of the contrast (T, 1)
     for t in (250.0, 298.15, 350.0):
         assert result.gibbs(t).stderr == pytest.approx(R / 1e3 * ref.t_test([t, 1.0]).sd.item(), rel=1e-8)
     assert result.eyring.chi_square == pytest.approx(float((ref.wresid**2).sum()), rel=1e-9)
@@ -318,7 +318,7 @@ def test_long_table_with_shared_errors_needs_no_dense_covariance():
 
 
 def test_enthalpy_entropy_correlation_close_to_one_for_narrow_range():
-    # Grieger, Hunter & Krug, Nature 261, 566 (1976): dH‡ and dS‡ of one series are almost perfectly
+    # Grieger, Hunter & Krug, Nature 261, 566 (1976): ΔH‡ and ΔS‡ of one series are almost perfectly
     # correlated, the more so the narrower the temperature range
     narrow_t = np.linspace(260.0, 280.0, 6)
     wide_t = np.linspace(200.0, 340.0, 6)
@@ -329,8 +329,8 @@ def test_enthalpy_entropy_correlation_close_to_one_for_narrow_range():
 
 
 def test_gibbs_at_harmonic_mean_temperature_uncorrelated_with_enthalpy():
-    # Grieger, Hunter & Krug (1976): at the harmonic-mean temperature dG‡ is uncorrelated with dH‡
-    # (checked on the covariance, and empirically over replicate series), whereas dG‡(298 K) is not
+    # Grieger, Hunter & Krug (1976): at the harmonic-mean temperature ΔG‡ is uncorrelated with ΔH‡
+    # (checked on the covariance, and empirically over replicate series), whereas ΔG‡(298 K) is not
     temps = np.array([225.0, 235.0, 250.0, 262.0, 270.0, 285.0])
     t_hm = len(temps) / (1.0 / temps).sum()
     rng = np.random.default_rng(31)
@@ -347,7 +347,7 @@ def test_gibbs_at_harmonic_mean_temperature_uncorrelated_with_enthalpy():
         g_298.append(r.gibbs(298.15).value)
     assert abs(np.corrcoef(dh, g_hm)[0, 1]) < 0.08  # 3.5 standard errors of a zero correlation over 2000
     assert abs(np.corrcoef(dh, g_298)[0, 1]) > 0.5  # 298 K lies above t_hm: anticorrelated
-    # and dG‡ is best determined near there, far better than dH‡ itself
+    # and ΔG‡ is best determined near there, far better than ΔH‡ itself
     assert result.gibbs(t_hm).stderr < 0.2 * result.enthalpy_stderr
 
 
@@ -386,7 +386,7 @@ def test_outlier_flagged_by_studentised_residual():
 
 
 def test_warnings_for_narrow_span_and_few_rates():
-    # common practice: a span under about 30 K leaves dS‡ poorly determined; fewer than 4 rates are few
+    # common practice: a span under about 30 K leaves ΔS‡ poorly determined; fewer than 4 rates are few
     t = np.array([260.0, 270.0, 280.0])
     k = eyring_k(TRUE_DH, TRUE_DS, t)
     result = eyring_fit(t, k, 0.05 * k)
@@ -440,7 +440,7 @@ def test_coalescence_estimate_is_eyring_plus_gutowsky_holm():
         k_c = math.pi * dnu / math.sqrt(2)
         assert est.rate_per_s == pytest.approx(k_c, rel=1e-14)
         assert est.gibbs_kj_mol == pytest.approx(R * t_c * math.log(KB * t_c / (H * k_c)) / 1e3, rel=1e-12)
-        # the textbook working form (from memory): dG‡ = 19.14 T_c (9.97 + log10(T_c/dnu)) J/mol
+        # the textbook working form (from memory): ΔG‡ = 19.14 T_c (9.97 + log10(T_c/dnu)) J/mol
         assert est.gibbs_kj_mol == pytest.approx(19.14e-3 * t_c * (9.97 + math.log10(t_c / dnu)), rel=1e-3)
     assert "equally populated" in COALESCENCE_CAVEAT and est.caveat in est.report()
 
@@ -586,7 +586,7 @@ def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path)
     and is used with sigma(ln k) = the larger of its half-widths in ln k (conservative; common practice
     for asymmetric errors when the side the line falls on is not known in advance)."""
     path = tmp_path / "rates.csv"
-    path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s\n"
+    path.write_text("temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,rate_ci68_lower,rate_ci68_upper\n"
                     "250,p,10,1,,,determined,9,11\n260,p,25,,,,interval,22,28\n270,p,,,,,failed,,\n"
                     "280,p,140,10,,,determined,130,150\n290,p,300,30,,,determined,270,330\n")
     (result,) = eyring_fit_file(path)
@@ -596,7 +596,7 @@ def test_fit_table_rows_without_a_rate_are_left_out_and_intervals_used(tmp_path)
     assert any("line 3 (260.00 K): 68 % interval 22–28 s⁻¹ used with σ(ln k) = 0.128" in w for w in result.warnings)
 
 
-FIT_HEADER = "temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,ci68_low_per_s,ci68_high_per_s,reduced_chi_square,flags\n"
+FIT_HEADER = "temperature_k,process,rate_per_s,rate_stderr,rate_lower,rate_upper,status,rate_ci68_lower,rate_ci68_upper,reduced_chi_square,flags\n"
 
 
 def _fit_table(tmp_path, flags: dict[int, str], chi: dict[int, float] | None = None):

@@ -21,7 +21,7 @@ LAYERS = (
     ("dnmr.activation",),
     ("dnmr.fitting", "dnmr.planning"),
     ("dnmr.reporting",),
-    ("dnmr.cli", "dnmr.demo", "dnmr.__main__", "dnmr"),
+    ("dnmr.cli", "dnmr.demo", "dnmr.jobs", "dnmr.__main__", "dnmr"),
 )
 MAX_MODULE_LINES = 600
 MAX_FUNCTION_LINES = 60
@@ -126,3 +126,21 @@ def test_functions_are_short_enough_to_read():
                 if node.end_lineno - first.lineno + 1 > MAX_FUNCTION_LINES:
                     long.append(f"{module}.{node.name}")
     assert not long, long
+
+
+def test_lmfit_stays_inside_the_fitting_wing():
+    # DEVELOPERS.md "Names" and "Conventions": lmfit is the fitting wing's own business; outside it results
+    # hand out dnmr's FitParameter records (issue 16), so no other module imports lmfit or reads the
+    # fitting wing's lmfit_parameters
+    outside = []
+    for module, tree in TREES.items():
+        if module.startswith("dnmr.fitting"):
+            continue
+        for node in ast.walk(tree):
+            names = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                     else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if any(n == "lmfit" or n.startswith("lmfit.") for n in names):
+                outside.append(f"{module} imports lmfit")
+            if isinstance(node, ast.Attribute) and node.attr == "lmfit_parameters":
+                outside.append(f"{module} reads lmfit_parameters")
+    assert not outside, outside

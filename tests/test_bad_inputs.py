@@ -9,7 +9,13 @@ Folders of tests/bad_inputs/ and the command each kind of file goes through:
   spectrum reader of ``dnmr thermometer methanol --spectrum FILE``;
 - ``series/``: series files (CONTRACT.md section 3), through ``dnmr fit``; the valid model and spectra
   they point at are in ``series/_shared/``, which the corpus glob skips (it is a folder);
-- ``rates/``: rate tables (CONTRACT.md section 4), through ``dnmr eyring`` with a plot to draw.
+- ``rates/``: rate tables (CONTRACT.md section 4), through ``dnmr eyring`` with a plot to draw;
+- ``transfer/``: magnetisation-transfer experiment files (docs/transfer-file.md), through ``dnmr transfer``;
+  the valid model and table they point at are in ``transfer/_shared/``.
+
+A rate above kB T/h (the Eyring rate of a zero barrier, Eyring, J. Chem. Phys. 3, 107 (1935)) is one no
+first-order process reaches: refused wherever a user gives one (a model's rate, a fit's rate range or
+scan, a rate parameter's start or bounds), at the temperature of the spectrum or experiment.
 """
 from __future__ import annotations
 
@@ -40,6 +46,8 @@ def command_for(path: Path, out: Path) -> list[str]:
         return ["fit", str(path), "-o", str(out / "fit"), "--serial", "--quiet"]
     if kind == "rates":
         return ["eyring", str(path), "--plot", str(out / "eyring.png")]
+    if kind == "transfer":
+        return ["transfer", str(path), "-o", str(out / "fit")]
     raise AssertionError(f"no command for corpus folder {kind}")
 
 
@@ -98,7 +106,7 @@ def run_limited(args: list[str]) -> tuple[str, int, str]:
 def test_corpus_is_large_enough():
     # issue 6: at least 50 malformed inputs, of every kind a chemist hands over; issue 13: at least 150
     assert len(CASES) >= 150
-    assert {p.parent.name for p in CASES} == {"model", "spectrum", "series", "rates"}
+    assert {p.parent.name for p in CASES} == {"model", "spectrum", "series", "rates", "transfer"}
 
 
 @pytest.mark.parametrize("path", CASES, ids=lambda p: f"{p.parent.name}/{p.name}")
@@ -113,6 +121,8 @@ def test_bad_input_is_one_clear_line(path, tmp_path):
     assert status == 2, message
     assert "Traceback" not in message and len(message.splitlines()) == 1, message
     assert path.name in message, message
+    if path.stem.startswith("renamed_"):  # issue 16: a name of an earlier release says what it is called now
+        assert "was renamed to" in message, message
     assert digest(path.parent) == before  # the input folder is untouched
     assert [p.name for p in out.iterdir()] == ["earlier.txt"] and (out / "earlier.txt").read_text() == "an earlier result"
 
@@ -130,6 +140,35 @@ def test_series_inputs_are_valid_apart_from_the_slip(tmp_path):
     loaded = load_series(series)
     assert [s.temperature_k for s in loaded.spectra] == [250.0, 270.0]
     assert read_spectrum(shared / "t250.csv").ppm.size == 512
+
+
+def test_transfer_inputs_are_valid_apart_from_the_slip(tmp_path):
+    # as for the series: the shared model and table load, and the options' slip alone is refused
+    from dnmr.fitting.transferfile import load_experiment
+
+    shared = CORPUS / "transfer" / "_shared"
+    experiment = tmp_path / "experiment.toml"
+    experiment.write_text(f'model = "{shared / "model.toml"}"\ntemperature_k = 240.0\nexperiment = "inversion"\n'
+                          f'data = "{shared / "inversion.csv"}"\n[options]\ninverted = ["syn"]\n')
+    loaded = load_experiment(experiment)
+    assert loaded.data.sites == ("syn", "anti") and loaded.data.times_s.size == 10
+
+
+@pytest.mark.parametrize("change, key", [({"rate_limits_per_s": (1e-3, 1e13)}, "rate_limits_per_s"),
+                                         ({"rate_scan_per_s": (1e-2, 1e13)}, "rate_scan_per_s"),
+                                         ({"parameters": {"log10_rate_rotation": {"upper": 13.0}}},
+                                          "parameters.log10_rate_rotation.upper")])
+def test_fit_of_one_spectrum_refuses_rates_above_kt_over_h(change, key):
+    # kB T/h at 250 K is 5.21e12 s^-1 (Eyring 1935; CODATA constants): 1e13 s^-1 lies above it
+    from dnmr import load_model
+    from dnmr.errors import InputError
+    from dnmr.fitting.spectrumfit import FitOptions, fit_spectrum
+
+    shared = CORPUS / "series" / "_shared"
+    options = FitOptions(**change)
+    with pytest.raises(InputError, match=rf"{key}: .* above kB T/h = 5.21e\+12 s\^-1 at 250 K"):
+        fit_spectrum(shared / "t250.csv", load_model(shared / "model.toml"), temperature_k=250.0, options=options)
+    options.check_rate_ceiling(500.0)  # where the ceiling lies above it (kB T/h = 1.04e13 s^-1 at 500 K): fine
 
 
 def test_replicate_temperatures_stay_allowed(tmp_path):

@@ -47,8 +47,8 @@ CLAIMS = {
     "conformers_couplings": [r"chair flip  k = [\d.]+ ± [\d.]+ s\^-1"],
     "planning": [r"above the boiling point of chloroform-d", r"Cautions:"],
     "temperature_calibration": [r"methanol is toxic", r"calibrated temperatures +5[12]\.\d\d ±"],
-    "transfer_and_lineshape": [r"inversion and lineshapes \(\d rates\): dH‡ = 6\d\.\d\d ± 0\.\d\d kJ/mol",
-                               r"the error of dS‡ shrinks \d\.\d-fold"],
+    "transfer_and_lineshape": [r"inversion and lineshapes \(\d rates\): ΔH‡ = 6\d\.\d\d ± 0\.\d\d kJ/mol",
+                               r"the error of ΔS‡ shrinks \d\.\d-fold"],
     # binomial 1:3:3:1 (common practice); groups against the nuclei written out; the H-F coupling kept
     "heteronuclear_groups": [r"largest difference from 1 : 3 : 3 : 1: \d\.\de-(1[0-9]|0[89])|: 0\.0e\+00",
                              r"nucleus by nucleus .* largest difference \d\.\de-1[2-9]",

@@ -51,7 +51,7 @@ def inputs(tmp_path):
 
 COMMANDS = {  # command line (MODEL, RATES and OUT replaced), figure files it writes
     "simulate": (["simulate", "MODEL", "-o", "OUT/s.csv", "--plot", "OUT/s.png"], ["s.png"]),
-    "stack": (["stack", "MODEL", "--rates", "10,100,1000", "-o", "OUT/stack.png"], ["stack.png"]),
+    "stack": (["stack", "MODEL", "--rates-per-s", "10,100,1000", "-o", "OUT/stack.png"], ["stack.png"]),
     "plan": (["plan", "MODEL", "--barrier-kj-mol", "60", "--spectra", "3", "--plot", "OUT/plan.png"], ["plan.png"]),
     "timescale": (["timescale", "MODEL", "--barrier-kj-mol", "60", "--plot", "OUT/bands.png"], ["bands.png"]),
     "eyring": (["eyring", "RATES", "--plot", "OUT/eyring.png", "--posterior", "--posterior-steps", "100"],
@@ -163,7 +163,7 @@ def api_figures(inputs):
     return {"fit": fit.plot(), "fit stack": plot_fit_stack([fit, fit], ["250 K", "260 K"]),
             "rates": plot_rates(lines), "eyring, two processes": dnmr.reporting.eyringplot.plot_eyring(lines),
             "eyring, three methods": dnmr.reporting.eyringplot.plot_eyring([joint, lines[1]]),
-            "posterior pairs": plot_posterior_pairs(samples, ["dH‡ / kJ mol^-1", "dS‡ / J mol^-1 K^-1"],
+            "posterior pairs": plot_posterior_pairs(samples, ["ΔH‡ / kJ mol^-1", "ΔS‡ / J mol^-1 K^-1"],
                                                     true_values=[60.0, None], one_sided=[None, "lower-bound"]),
             "spectra overlaid": overlaid(inputs[0])}
 

@@ -82,7 +82,7 @@ def result(series_file, tmp_path_factory):
 
 
 def test_recovers_activation_parameters_within_errors(result):
-    # truth: the invented dH‡/dS‡ the spectra were made with (Eyring 1935, CODATA constants)
+    # truth: the invented ΔH‡/ΔS‡ the spectra were made with (Eyring 1935, CODATA constants)
     a = result.activation[0]
     assert abs(a.enthalpy_kj_mol - ENTHALPY_KJ_MOL) < 3 * a.enthalpy_stderr
     assert abs(a.entropy_j_mol_k - ENTROPY_J_MOL_K) < 3 * a.entropy_stderr
@@ -98,9 +98,9 @@ def test_agrees_with_two_step_eyring(result):
 
 
 def test_enthalpy_entropy_correlation_near_one(result):
-    # Grieger, Hunter & Krug, Nature 261, 566 (1976): dH‡ and dS‡ of one series correlate close to +1
+    # Grieger, Hunter & Krug, Nature 261, 566 (1976): ΔH‡ and ΔS‡ of one series correlate close to +1
     assert result.activation[0].correlation > 0.95
-    # and dG‡ at the harmonic-mean temperature is much better determined than at 298.15 K
+    # and ΔG‡ at the harmonic-mean temperature is much better determined than at 298.15 K
     a = result.activation[0]
     assert a.gibbs(result.harmonic_mean_temperature_k)[1] < a.gibbs(298.15)[1]
 
@@ -121,18 +121,18 @@ def test_refuses_existing_outdir_and_bad_choice(result, series_file):
     with pytest.raises(InputError):
         fit_series_global(series_file, result.outdir)
     with pytest.raises(InputError):
-        fit_series_global(series_file, result.outdir.parent / "other", shifts="cubic")
+        fit_series_global(series_file, result.outdir.parent / "other", shift_trend="cubic")
 
 
 def test_cli_global(series_file, tmp_path):
     out = tmp_path / "cli"
     run = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global",
-                                   "--shifts", "linear", "--linewidth", "linear"])
+                                   "--shift-trend", "linear", "--linewidth-trend", "linear"])
     assert run.exit_code == 0, run.output
     # stderr is not a terminal here: plain progress lines of the two-step fit and of the global fit
     assert re.search(r": \d+ of \d+ done \(\d+ K\), \d+ s elapsed", run.stderr), run.stderr
     assert f"global fit of {len(TEMPERATURES)} spectra: finished after " in run.stderr, run.stderr
-    assert json.loads((out / "global.json").read_text())["options"]["shifts"] == "linear"
+    assert json.loads((out / "global.json").read_text())["options"]["shift_trend"] == "linear"
     assert (out / "report.html").is_file() and "report:" in run.output
     again = CliRunner().invoke(cli, ["fit", str(series_file), "-o", str(out), "--global"])
     assert again.exit_code == 2
@@ -185,7 +185,7 @@ def _written(folder: Path, kind: str, seed: int):
 
 @pytest.mark.parametrize("kind", ["mutual-pair", "two-state"])
 def test_default_global_fit_recovers_truth_on_realistic_series(kind, tmp_path):
-    # truth: the scenario's dH‡, dS‡ (invented); spectra from McConnell's closed form with the nuisances of
+    # truth: the scenario's ΔH‡, ΔS‡ (invented); spectra from McConnell's closed form with the nuisances of
     # realistic_series.py. A calibrated fit gives |z| < 3 in 99.7 % of replicas and an rms z near 1; the
     # per-spectrum route with the guessed shifts is off by tens of standard errors on the same series
     z = []
@@ -205,10 +205,10 @@ def test_misfit_names_the_spectra_and_the_option(tmp_path):
     # shifts that drift with T (realistic_series: slopes of -0.0002 and +0.0001 ppm/K, 7 and 3.6 Hz over the
     # range) cannot be held constant: the fit says so, names the misfitting spectra and the option to use
     truth = _written(tmp_path / "data", "mutual-pair", 800)
-    result = fit_series_global(truth.series_file, tmp_path / "g", shifts="constant", workers=1, progress=False)
+    result = fit_series_global(truth.series_file, tmp_path / "g", shift_trend="constant", workers=1, progress=False)
     assert result.reduced_chi_square > 1.5 and result.error_scale > 1.0
     text = " ".join(result.notes)
-    assert "--shifts linear" in text and "cannot follow" in text
+    assert "--shift-trend linear" in text and "cannot follow" in text
     misfits = [q for q in result.spectra if q.misfit]
     assert misfits and all(Path(q.file).name in text for q in misfits)
     assert "noise estimate" not in text  # the measured noise is not blamed for a model that cannot follow

@@ -65,7 +65,7 @@ def pooled(paths):
 
 def test_joint_fit_matches_statsmodels_wls_on_the_pooled_rows(tmp_path):
     # reference library: statsmodels WLS of ln(k/T) on 1/T, weights (k/sigma_k)^2, covariance not rescaled;
-    # dH‡ = -R slope, dS‡ = R (intercept - ln(kB/h)) with CODATA constants (Eyring 1935)
+    # ΔH‡ = -R slope, ΔS‡ = R (intercept - ln(kB/h)) with CODATA constants (Eyring 1935)
     hot, cold = write_tables(tmp_path)
     result = eyring_fit_file([hot, *cold])[0]
     t, k, err = pooled([hot, *cold])

@@ -145,7 +145,7 @@ def test_bad_input_exits_2_without_traceback(tmp_path):
 def test_stack_figure_over_temperatures(tmp_path):
     model_path = write(tmp_path, GOOD)
     out = tmp_path / "stack.png"
-    result = CliRunner().invoke(cli, ["stack", str(model_path), "--temperatures", "260,290,320,350", "-o", str(out)])
+    result = CliRunner().invoke(cli, ["stack", str(model_path), "--temperatures-k", "260,290,320,350", "-o", str(out)])
     assert result.exit_code == 0, result.output
     assert out.stat().st_size > 1000
 
@@ -154,24 +154,24 @@ def test_stack_over_temperatures_needs_rates_that_depend_on_temperature(tmp_path
     # Eyring equation: a rate given as rate_per_s is the same at every temperature, so a stack over
     # temperatures of such a model would repeat one trace; refused in one line naming the fix
     fixed = GOOD.replace("barrier_kj_mol = 65.0", "rate_per_s = 20.0")
-    run = CliRunner().invoke(cli, ["stack", str(write(tmp_path, fixed)), "--temperatures", "260,290",
+    run = CliRunner().invoke(cli, ["stack", str(write(tmp_path, fixed)), "--temperatures-k", "260,290",
                                    "-o", str(tmp_path / "s.png")])
     assert run.exit_code == 2 and run.stderr.strip().count("\n") == 0
-    assert "do not depend on temperature" in run.stderr and "barrier_kj_mol" in run.stderr and "--rates" in run.stderr
+    assert "do not depend on temperature" in run.stderr and "barrier_kj_mol" in run.stderr and "--rates-per-s" in run.stderr
     assert not (tmp_path / "s.png").exists()
 
 
 def test_activation_parameters_without_conditions_take_the_given_temperature(tmp_path):
-    # a model with a barrier but no [conditions]: loads, stacks over --temperatures, and in Python takes the
+    # a model with a barrier but no [conditions]: loads, stacks over --temperatures-k, and in Python takes the
     # temperature from at_temperature (rate from the Eyring equation at that temperature)
     no_conditions = GOOD.replace("[conditions]\ntemperature_k = 298.15\n", "")
     path = write(tmp_path, no_conditions)
     model = dnmr.load_model(path)
     assert model.temperature_k is None
     assert model.at_temperature(250.0).rates()[0] == pytest.approx(dnmr.kinetics.eyring_rate(65.0, 250.0))
-    run = CliRunner().invoke(cli, ["stack", str(path), "--temperatures", "260,290", "-o", str(tmp_path / "s.png")])
+    run = CliRunner().invoke(cli, ["stack", str(path), "--temperatures-k", "260,290", "-o", str(tmp_path / "s.png")])
     assert run.exit_code == 0, run.output
     simulate = CliRunner().invoke(cli, ["simulate", str(path), "-o", str(tmp_path / "x.csv")])
     assert simulate.exit_code == 2 and simulate.stderr.strip().count("\n") == 0
     assert str(path) in simulate.stderr and "exchange[0]" in simulate.stderr
-    assert "[conditions] temperature_k" in simulate.stderr and "--temperatures" in simulate.stderr
+    assert "[conditions] temperature_k" in simulate.stderr and "--temperatures-k" in simulate.stderr

@@ -89,11 +89,11 @@ def test_every_result_of_the_notebook_shows_its_report_and_figure(executed, last
 
 def test_notebook_recovers_the_invented_barrier(executed):
     """The demo spectra were made from an invented truth (dnmr/data/demo/truth.toml); four of them give
-    dG‡(298.15 K) within a few tenths of a kJ/mol of it."""
+    ΔG‡(298.15 K) within a few tenths of a kJ/mol of it."""
     truth = read_toml(demo_data_dir() / "truth.toml")
     text = cell_html(executed, "eyring")
     found = re.search(r"[dΔ]G‡\(298\.15 K\)\s+([\d.]+) ± ([\d.]+) kJ/mol", text.replace("&#x27;", "'"))
-    assert found, "the Eyring report shows dG‡ at 298.15 K"
+    assert found, "the Eyring report shows ΔG‡ at 298.15 K"
     value, error = map(float, found.groups())
     assert abs(value - truth["gibbs_298_kj_mol"]) < max(4 * error, 0.3)
     assert "toluene-d8" in cell_html(executed, "plan")

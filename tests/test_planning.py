@@ -98,7 +98,7 @@ def test_lines_too_close_for_their_width_have_no_coalescence(dnu, resolved):
     assert (c.rate_per_s is not None) == resolved
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(dnu), rel=1e-4)
     if not resolved:
-        assert "slow exchange" in c.note
+        assert "slow exchange" in " ".join(c.notes)
 
 
 def test_observed_nucleus_frequency_from_iupac_ratio():
@@ -139,7 +139,7 @@ def test_populations_follow_temperature_at_coalescence():
 
 
 def test_enthalpy_and_entropy_give_the_gibbs_energy_at_coalescence():
-    # Eyring with dH‡ and dS‡ (tests/reference_eyring.py).
+    # Eyring with ΔH‡ and ΔS‡ (tests/reference_eyring.py).
     act = ActivationParameters(50.0, -20.0)
     (c,) = predict_coalescence(two_sites(0.5, dnu=100.0), act)
     t = c.temperature_k
@@ -208,7 +208,7 @@ def test_plan_stays_in_the_liquid_range_and_carries_the_cautions():
     assert min(np.diff(field.temperatures_k)) >= 5.0
     assert all(p.reason for p in field.temperatures)
     (errors,) = field.errors
-    assert errors.enthalpy_stderr > 0 and errors.correlation > 0.9  # Grieger, Hunter & Krug (1976)
+    assert errors.enthalpy_stderr > 0 and errors.correlation_enthalpy_entropy > 0.9  # Grieger, Hunter & Krug (1976)
     text = plan.report()
     for word in ("burst", "crack", "liquid nitrogen", "pacemakers", "facility"):
         assert word in text
@@ -275,7 +275,7 @@ def test_cli_plan_json_has_the_contract_keys(model_file):
         krw = kurland_rubin_wise_rate(0.2 * c["frequency_mhz"], 12.0)
         assert c["narrow_limit_rate_per_s"] == pytest.approx(krw, rel=1e-4)
         assert eyring_rate(c["temperature_k"], 60.0) == pytest.approx(c["rate_per_s"], rel=1e-4)
-    assert {"plan", "solvent", "cautions", "measurable_window"} <= set(out)
+    assert {"plan", "solvent", "cautions", "measurable_range"} <= set(out)
     assert out["solvent"]["name"] == "toluene-d8"
 
 
@@ -386,15 +386,15 @@ def test_unequal_couplings_to_a_heteronucleus_are_named_in_the_note():
                                      State("b", {"H": 3.25}, {"H-F": 10.0}, 1.0, 0.5)),
                   (Exchange("a", "b", rate_per_s=1.0, name="hop"),), heteronuclei={"F": "19F"}, points=2048)
     (c,) = coalescence(model)
-    assert "H-F 40 -> 10 Hz" in c.note
+    assert "H-F 40 -> 10 Hz" in " ".join(c.notes)
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(100.0), rel=1e-4)
     same = model.replace(states=tuple(s.__class__(s.name, s.shifts_ppm, {"H-F": 40.0}, 1.0, 0.5)
                                       for s in model.states))
-    assert coalescence(same)[0].note == ""
+    assert coalescence(same)[0].notes == ()
 
 
 def test_plan_report_quotes_the_separation_as_a_magnitude():
-    # The shift difference a chemist quotes is the separation |dnu| (Hz; common practice).
+    # The shift difference a chemist quotes is the separation |Δν| (Hz; common practice).
     plan = plan_experiment(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0), spectra=3)
     (c,) = plan.coalescence
     assert c.shift_difference_hz == pytest.approx(-100.0)
@@ -417,7 +417,7 @@ def test_coalescence_of_a_fluorine_swap_is_gutowsky_holm_of_the_coupling_differe
     model = fluorine_swap()
     (c,) = coalescence(model)
     assert c.narrow_limit_rate_per_s == pytest.approx(gutowsky_holm_rate(40.0), rel=1e-4)
-    assert c.separation_hz == pytest.approx(40.0) and c.shift_difference_hz == 0.0 and c.note == ""
+    assert c.separation_hz == pytest.approx(40.0) and c.shift_difference_hz == 0.0 and c.notes == ()
     assert c.to_dict()["kind"] == "coupling"
     hz = np.linspace(3.0 * SF - 40.0, 3.0 * SF + 40.0, 8001)
 
@@ -455,12 +455,12 @@ def test_components_that_move_by_different_amounts_are_noted():
                   groups={"Fa": 3, "Fb": 3}, heteronuclei={"Fa": "19F", "Fb": "19F"})
     (c,) = coalescence(model)
     assert c.pair.component_moves_hz == (10.0, 20.0, 30.0)
-    assert "move by 10, 20, 30 Hz" in c.note and "last of them" in c.note
+    assert "move by 10, 20, 30 Hz" in " ".join(c.notes) and "last of them" in " ".join(c.notes)
     assert c.to_dict()["component_moves_hz"] == [10.0, 20.0, 30.0]
     from test_timescale import fluorine_swap
 
     (single,) = coalescence(fluorine_swap())  # one move only (40 Hz): no such note
-    assert single.pair.component_moves_hz == (40.0,) and single.note == ""
+    assert single.pair.component_moves_hz == (40.0,) and single.notes == ()
 
 
 def test_plan_covers_an_exchange_that_only_swaps_fluorines():
@@ -470,8 +470,8 @@ def test_plan_covers_an_exchange_that_only_swaps_fluorines():
     plan = plan_experiment(fluorine_swap(barrier=60.0), spectra=3)
     (c,) = plan.coalescence
     assert eyring_rate(c.temperature_k, 60.0) == pytest.approx(c.rate_per_s, rel=1e-4)
-    (window,) = plan.windows
-    assert window.slow_below_k < c.temperature_k < window.fast_above_k
+    (timescale,) = plan.timescales
+    assert timescale.slow_below_k < c.temperature_k < timescale.fast_above_k
     (field_plan,) = plan.fields
     assert len(field_plan.temperatures_k) == 3
     assert "H(s) (J to F1, F2)" in plan.report()

@@ -4,7 +4,7 @@ The spectra are made by the McConnell closed form (J. Chem. Phys. 28, 430 (1958)
 through test_series.write_series) at rates from the Eyring equation (Eyring, J. Chem. Phys. 3, 107 (1935))
 for invented activation parameters; the coldest spectrum is so slow that its rate is only an upper bound.
 The activation parameters the report shows are checked against dnmr.activation.eyring.eyring_fit_file on the same
-rates.csv, and the recovered dH‡ against the invented truth.
+rates.csv, and the recovered ΔH‡ against the invented truth.
 """
 from __future__ import annotations
 
@@ -133,7 +133,7 @@ def test_parameters_shown_are_those_of_eyring_fit_file(fitted, report):
         stderr_key = key.replace("_kj_mol", "_stderr").replace("_j_mol_k", "_stderr")
         assert text == format_with_error(expected[key], expected[stderr_key])
     assert shown["correlation_enthalpy_entropy"][0] == pytest.approx(expected["correlation_enthalpy_entropy"], rel=1e-12)
-    # the invented truth (Eyring 1935 rates for dH‡ = 60 kJ/mol) is recovered within 4 standard errors
+    # the invented truth (Eyring 1935 rates for ΔH‡ = 60 kJ/mol) is recovered within 4 standard errors
     assert abs(expected["enthalpy_kj_mol"] - ENTHALPY_KJ_MOL) < 4 * expected["enthalpy_stderr"]
 
 
@@ -163,7 +163,7 @@ def test_report_shows_each_posterior_beside_the_least_squares_result(sampled):
         row = next(r for r in cells if r[0] == post["label"] and r[1].startswith(rate_text(ls)))
         if ls["status"] == "upper-bound":  # the coldest spectrum: only the one-sided bound, no median
             assert post["kind"] == "upper-bound"
-            assert row[2:6] == ["", "", "", f"< {post['bound_95']:.4g}"] and "slow-exchange" in row[6]
+            assert row[2:6] == ["", "", "", f"< {post['bound95']:.4g}"] and "slow-exchange" in row[6]
         else:
             assert row[2] == f"{post['median']:.4g}"
             assert row[3] == f"{post['ci68'][0]:.4g} to {post['ci68'][1]:.4g}"

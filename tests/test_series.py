@@ -150,7 +150,7 @@ def test_one_corrupt_spectrum_fails_alone(tmp_path):
     assert "spectrum[1]" in result.stderr and "t270.txt" in result.stderr
     rows = read_rates(tmp_path / "out" / "rates.csv")
     assert [r["status"] for r in rows] == ["determined", "failed", "determined"]
-    assert rows[1]["rate_per_s"] == "" and "failed" in rows[1]["flags"] and "not a number" in rows[1]["note"]
+    assert rows[1]["rate_per_s"] == "" and "failed" in rows[1]["flags"] and "not a number" in rows[1]["notes"]
     again = CliRunner().invoke(cli, ["fit", str(series), "-o", str(tmp_path / "out"), "--overwrite", "--serial",
                                      "--quiet"])
     assert again.exit_code == 2 and len(list((tmp_path / "out" / "figures").glob("*.png"))) == 2

@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 import pytest
+
+import dnmr
 import statsmodels.api as sm
 from click.testing import CliRunner
 
@@ -282,18 +284,18 @@ def test_calibration_is_carried_into_the_eyring_analysis(tmp_path):
 
 
 def test_cli_thermometer_from_shift_difference_shows_cautions():
-    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--shift-difference", "1.5", "--shift-difference", "2.0"])
+    run = CliRunner().invoke(cli, ["thermometer", "methanol", "--shift-difference-ppm", "1.5", "--shift-difference-ppm", "2.0"])
     assert run.exit_code == 0, run.output
     assert "305.03 K" in run.stdout and "248.52 K" in run.stdout
     assert "toxic" in run.stdout and "flammable" in run.stdout and "local safety rules" in run.stdout
 
 
 def test_cli_thermometer_out_of_range_exits_2_with_one_line():
-    run = CliRunner().invoke(cli, ["thermometer", "glycol", "--shift-difference", "2.5"])
+    run = CliRunner().invoke(cli, ["thermometer", "glycol", "--shift-difference-ppm", "2.5"])
     assert run.exit_code == 2
     assert run.stderr.strip().count("\n") == 0 and "outside its calibrated range" in run.stderr
     nothing = CliRunner().invoke(cli, ["thermometer", "methanol"])
-    assert nothing.exit_code == 2 and "--shift-difference" in nothing.stderr
+    assert nothing.exit_code == 2 and "--shift-difference-ppm" in nothing.stderr
 
 
 def test_calibration_error_is_shared_not_scatter(tmp_path):
@@ -373,3 +375,13 @@ def test_calibration_from_spectra_keeps_the_others_when_one_fails(tmp_path):
     celsius.write_text("setpoint_k,file\n-20,m230.csv\n")
     bad = CliRunner().invoke(cli, ["thermometer", "methanol", "--calibrate", str(celsius)])
     assert bad.exit_code == 2 and "looks like degrees Celsius" in bad.output
+
+
+def test_thermometer_readings_is_what_the_command_reports():
+    """`dnmr thermometer` is one call of dnmr.thermometer_readings: hand readings first, then files; nothing
+    given is one clear error (the command's own message)."""
+    readings = dnmr.thermometer_readings("methanol", [1.5, 2.0])
+    assert [r.temperature_k for r in readings] == [dnmr.thermometer_reading(dd, "methanol").temperature_k
+                                                   for dd in (1.5, 2.0)]
+    with pytest.raises(dnmr.InputError, match="--shift-difference"):
+        dnmr.thermometer_readings("methanol")

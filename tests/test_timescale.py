@@ -24,7 +24,7 @@ from dnmr.modelparts import Exchange, Spectrometer, State
 from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.fastexchange import averaged_model, fast_exchange_limit
 from dnmr.planning.pairs import exchanging_pairs
-from dnmr.planning.regimes import rate_window, window_temperatures
+from dnmr.planning.regimes import rate_range, range_temperatures
 from dnmr.planning.timescale import timescale_view
 
 SF = 400.0
@@ -170,10 +170,10 @@ def test_slow_threshold_is_the_slow_exchange_broadening():
     # (minor) site broadens by the detectable fraction of its width; the engine agrees.
     model = two_sites(0.7, dnu=100.0, width=2.0)
     (pair,) = exchanging_pairs(model)
-    window = rate_window(model, pair, 0.1)
-    k_ba = window.slow_rate_per_s * 0.7 / 0.3
+    span = rate_range(model, pair, 0.1)
+    k_ba = span.slow_rate_per_s * 0.7 / 0.3
     assert slow_exchange_broadening(k_ba) == pytest.approx(0.1 * 2.0, rel=1e-12)
-    _, width = fwhm(engine_absorption(model.with_rates([window.slow_rate_per_s])), 1280.0, 1320.0)
+    _, width = fwhm(engine_absorption(model.with_rates([span.slow_rate_per_s])), 1280.0, 1320.0)
     assert width - 2.0 == pytest.approx(0.2, rel=0.02)
 
 
@@ -181,22 +181,22 @@ def test_fast_threshold_is_the_fast_exchange_excess_width():
     # McConnell (1958), fast limit: excess width p_a p_b (2 pi dnu)^2 / (pi (k_ab + k_ba)).
     model = two_sites(0.7, dnu=100.0, width=2.0)
     (pair,) = exchanging_pairs(model)
-    window = rate_window(model, pair, 0.1)
-    assert fast_exchange_excess_width(100.0, window.fast_rate_per_s, 0.7) == pytest.approx(0.2, rel=1e-12)
-    _, width = fwhm(engine_absorption(model.with_rates([window.fast_rate_per_s])), 1220.0, 1240.0)
+    span = rate_range(model, pair, 0.1)
+    assert fast_exchange_excess_width(100.0, span.fast_rate_per_s, 0.7) == pytest.approx(0.2, rel=1e-12)
+    _, width = fwhm(engine_absorption(model.with_rates([span.fast_rate_per_s])), 1220.0, 1240.0)
     assert width - 2.0 == pytest.approx(0.2, rel=0.02)
-    assert window.regime(0.5 * window.slow_rate_per_s) == "slow"
-    assert window.regime(2.0 * window.fast_rate_per_s) == "fast"
-    assert window.regime(math.sqrt(window.slow_rate_per_s * window.fast_rate_per_s)) == "intermediate"
+    assert span.regime(0.5 * span.slow_rate_per_s) == "slow"
+    assert span.regime(2.0 * span.fast_rate_per_s) == "fast"
+    assert span.regime(math.sqrt(span.slow_rate_per_s * span.fast_rate_per_s)) == "intermediate"
 
 
 def test_regime_temperatures_follow_eyring():
     # Eyring equation, transmission 1, CODATA constants (scipy.constants).
     model = two_sites(0.5, dnu=100.0)
     (pair,) = exchanging_pairs(model)
-    t_slow, t_fast = window_temperatures(model, pair, ActivationParameters.from_gibbs(60.0))
-    window = rate_window(model, pair)
-    for t, k in ((t_slow, window.slow_rate_per_s), (t_fast, window.fast_rate_per_s)):
+    t_slow, t_fast = range_temperatures(model, pair, ActivationParameters.from_gibbs(60.0))
+    span = rate_range(model, pair)
+    for t, k in ((t_slow, span.slow_rate_per_s), (t_fast, span.fast_rate_per_s)):
         assert eyring_rate(t, 60.0) == pytest.approx(k, rel=1e-5)
 
 
@@ -204,7 +204,7 @@ def test_fast_threshold_rises_with_field():
     # The fast-exchange excess width grows with dnu^2, so fast exchange needs higher rates at higher field.
     view = timescale_view(two_sites(0.5), ActivationParameters.from_gibbs(60.0), frequencies_mhz=[300, 600])
     low, high = view.pairs
-    assert high.window.fast_rate_per_s == pytest.approx(4 * low.window.fast_rate_per_s, rel=1e-9)
+    assert high.rate_range.fast_rate_per_s == pytest.approx(4 * low.rate_range.fast_rate_per_s, rel=1e-9)
     assert high.fast_above_k > low.fast_above_k
     assert high.slow_below_k == pytest.approx(low.slow_below_k)
 
@@ -337,7 +337,7 @@ def test_averaged_methyl_next_to_one_proton_is_a_quartet_and_a_doublet():
 
 def test_methyl_groups_give_the_timescale_of_the_same_system_written_spin_by_spin():
     # Invented N,N-dimethyl fragment: MeE and MeZ trade places, MeE couples 1.2 Hz to a 19F.  Written
-    # nucleus by nucleus (tests/test_groups.py) it is six protons; the pairs, their windows and the
+    # nucleus by nucleus (tests/test_groups.py) it is six protons; the pairs, their rate ranges and the
     # averaged system must agree (its six protons equivalent, counted as six nuclei either way).
     from test_groups import written_out_model
 
@@ -349,9 +349,9 @@ def test_methyl_groups_give_the_timescale_of_the_same_system_written_spin_by_spi
     spins = spins.replace(states=(State("s", spins.states[0].shifts_ppm, member_couplings, 0.8, 1.0),),
                           heteronuclei={"F": "19F"})
     (pair,) = exchanging_pairs(grouped)
-    windows = {(rate_window(spins, p).slow_rate_per_s, rate_window(spins, p).fast_rate_per_s)
+    ranges = {(rate_range(spins, p).slow_rate_per_s, rate_range(spins, p).fast_rate_per_s)
                for p in exchanging_pairs(spins)}
-    assert windows == {(rate_window(grouped, pair).slow_rate_per_s, rate_window(grouped, pair).fast_rate_per_s)}
+    assert ranges == {(rate_range(grouped, pair).slow_rate_per_s, rate_range(grouped, pair).fast_rate_per_s)}
     limit, limit_spins = fast_exchange_limit(grouped), fast_exchange_limit(spins)
     (group,), (group_spins,) = limit.groups, limit_spins.groups
     assert group.nuclei == group_spins.nuclei == 6
@@ -363,14 +363,14 @@ def test_methyl_groups_give_the_timescale_of_the_same_system_written_spin_by_spi
 
 
 def test_report_quotes_the_separation_as_a_magnitude():
-    # A shift difference quoted to a chemist is the separation |dnu| in Hz (common practice); the JSON
+    # A shift difference quoted to a chemist is the separation |Δν| in Hz (common practice); the JSON
     # keeps the signed value (arriving minus leaving) beside it.
     view = timescale_view(two_sites(0.5, dnu=-100.0), ActivationParameters.from_gibbs(60.0))
     (pair,) = view.pairs
     assert pair.shift_difference_hz == pytest.approx(-100.0) and pair.separation_hz == pytest.approx(100.0)
     row = next(line for line in view.report().splitlines() if pair.pair.label in line)
     assert " 100.00 " in row and "-100.00" not in row
-    assert "|dnu|/Hz" in view.report()
+    assert "|Δν|/Hz" in view.report()
     out = view.to_dict()["pairs"][0]
     assert out["separation_hz"] == pytest.approx(100.0) and out["shift_difference_hz"] == pytest.approx(-100.0)
 
@@ -396,13 +396,13 @@ def test_swap_of_two_fluorines_is_a_pair_whose_regimes_use_the_coupling_differen
     (pair,) = exchanging_pairs(model)
     assert pair.shift_difference_hz(model) == 0.0 and pair.component_shift_hz == pytest.approx(40.0)
     assert [c.difference_hz for c in pair.coupling_changes] == [-40.0, 40.0]
-    window = rate_window(model, pair, 0.1)
-    assert slow_exchange_broadening(window.slow_rate_per_s) == pytest.approx(0.1, rel=1e-12)
-    assert fast_exchange_excess_width(40.0, window.fast_rate_per_s, 0.5) == pytest.approx(0.1, rel=1e-12)
+    span = rate_range(model, pair, 0.1)
+    assert slow_exchange_broadening(span.slow_rate_per_s) == pytest.approx(0.1, rel=1e-12)
+    assert fast_exchange_excess_width(40.0, span.fast_rate_per_s, 0.5) == pytest.approx(0.1, rel=1e-12)
     # the exact engine: an inner component broadened by 0.1 Hz at the slow threshold, the merged
     # central line 0.1 Hz wider than the intrinsic width at the fast one
-    _, slow = fwhm(engine_absorption(model.with_rates([window.slow_rate_per_s])), 1215.0, 1225.0)
-    _, fast = fwhm(engine_absorption(model.with_rates([window.fast_rate_per_s])), 1195.0, 1205.0)
+    _, slow = fwhm(engine_absorption(model.with_rates([span.slow_rate_per_s])), 1215.0, 1225.0)
+    _, fast = fwhm(engine_absorption(model.with_rates([span.fast_rate_per_s])), 1195.0, 1205.0)
     assert slow - 1.0 == pytest.approx(0.1, rel=0.02) and fast - 1.0 == pytest.approx(0.1, rel=0.02)
 
 

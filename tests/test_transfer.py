@@ -153,8 +153,8 @@ def test_selective_inversion_recovers_rate_r1_and_efficiency():
     r1 = fit.relaxation()
     assert abs(r1["a"][0] - 0.8) < 4 * r1["a"][1] and abs(r1["b"][0] - 1.5) < 4 * r1["b"][1]
     eff = fit.parameters["inversion_efficiency"]
-    assert abs(eff.value - 0.95) < 4 * eff.stderr
-    assert abs(fit.parameters["m_eq_a"].value - 60.0) < 4 * fit.parameters["m_eq_a"].stderr
+    assert abs(eff.estimate - 0.95) < 4 * eff.stderr
+    assert abs(fit.parameters["m_eq_a"].estimate - 60.0) < 4 * fit.parameters["m_eq_a"].stderr
 
 
 def test_rate_far_below_r1_is_an_upper_bound():
@@ -251,7 +251,7 @@ def test_error_bars_cover_the_truth_over_noise_replicas():
         exp = Experiment(two_site(k=1.0), 240.0, "saturation", TransferData(times, ("a",), y, None, "syn"),
                          TransferOptions(saturated=("b",), rate_limits_per_s=(1e-3, 1e3)))
         r = fit_transfer(exp).rate(0)
-        lo, hi = r.interval_per_s
+        lo, hi = r.rate_ci68
         covered += bool(lo <= 1.3 <= hi)
     assert 60 <= covered <= 76, covered
 
@@ -378,7 +378,7 @@ def test_bad_table_names_the_file_and_line(tmp_path):
 # --- both methods on one Eyring line ---------------------------------------------------------------
 
 def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
-    # one set of activation parameters (dH‡ 60 kJ/mol, dS‡ -12 J/(mol K); Eyring, J. Chem. Phys. 3, 107
+    # one set of activation parameters (ΔH‡ 60 kJ/mol, ΔS‡ -12 J/(mol K); Eyring, J. Chem. Phys. 3, 107
     # (1935)); lineshapes at 290-310 K from the McConnell (1958) closed form fitted by dnmr.fit_spectrum,
     # selective inversion at 250-262 K from the McConnell biexponential fitted by dnmr.fit_transfer
     from closed_forms import mcconnell_two_site
@@ -414,4 +414,4 @@ def test_lineshape_and_transfer_rates_fall_on_one_eyring_line():
     assert abs(line.enthalpy_kj_mol - 60.0) < 3 * line.enthalpy_stderr
     assert abs(line.entropy_j_mol_k + 12.0) < 3 * line.entropy_stderr
     assert np.all(np.abs(line.studentised_residuals) < 3.0), list(zip(methods, line.studentised_residuals))
-    assert line.entropy_stderr < 3.0  # a span of 60 K from both methods pins dS‡ down
+    assert line.entropy_stderr < 3.0  # a span of 60 K from both methods pins ΔS‡ down

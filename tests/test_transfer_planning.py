@@ -1,11 +1,11 @@
-"""Planning across both regimes: the magnetisation-transfer window below the lineshapes and the transfer
+"""Planning across both regimes: the magnetisation-transfer range below the lineshapes and the transfer
 temperatures with their delays and mixing times (dnmr.planning.transferplan), `dnmr plan` and
 `dnmr timescale`.
 
 References: the Eyring equation with CODATA constants (Eyring, J. Chem. Phys. 3, 107 (1935);
 tests/reference_eyring.py); the two-site Bloch–McConnell equations for z-magnetisation (McConnell,
 J. Chem. Phys. 28, 430 (1958)) written out here and propagated with scipy's matrix exponential, for the
-mixing time at which the cross peak is largest.  The window's edges (R1/5 and a few tens s^-1) and the
+mixing time at which the cross peak is largest.  The range's edges (R1/5 and a few tens s^-1) and the
 5 T1 of a full recovery are common practice.
 """
 from __future__ import annotations
@@ -61,15 +61,15 @@ def test_best_mixing_time_is_near_one_over_k_plus_r1_in_slow_exchange():
         assert best_mixing_time(1.0, 2 * k) * (k + 1.0) == pytest.approx(1.0, abs=0.05)
 
 
-def test_transfer_window_edges_follow_the_eyring_equation():
+def test_transfer_range_edges_follow_the_eyring_equation():
     view = timescale_view(rotamers())
-    (window,) = view.transfer
+    (span,) = view.transfer
     r1 = (1.6 + 1.9) / 2  # the mean of the model's r1_per_s over its sites
-    assert window.r1_per_s == pytest.approx(r1) and "model file" in window.r1_source
-    assert eyring_rate(window.low_k, DH, DS) == pytest.approx(r1 / 5, rel=1e-5)
-    assert eyring_rate(window.high_k, DH, DS) == pytest.approx(30.0, rel=1e-5)
+    assert span.r1_per_s == pytest.approx(r1) and "model file" in span.r1_source
+    assert eyring_rate(span.low_k, DH, DS) == pytest.approx(r1 / 5, rel=1e-5)
+    assert eyring_rate(span.high_k, DH, DS) == pytest.approx(30.0, rel=1e-5)
     assert "Magnetisation transfer" in view.report() and "k 0.35-30 s^-1" in view.report()
-    assert view.to_dict()["magnetisation_transfer"][0]["low_k"] == pytest.approx(window.low_k)
+    assert view.to_dict()["magnetisation_transfer"][0]["low_k"] == pytest.approx(span.low_k)
 
 
 def test_r1_comes_from_a_stated_typical_value_or_an_override():
@@ -85,19 +85,19 @@ def test_r1_comes_from_a_stated_typical_value_or_an_override():
 def test_plan_gives_transfer_temperatures_times_and_a_joined_range():
     plan = plan_experiment(rotamers(), spectra=3)
     (transfer,) = plan.transfer
-    window = transfer.window
+    span = transfer.rate_range
     temps = [run.temperature_k for run in transfer.runs]
     assert len(temps) == 4 and temps == sorted(temps)
-    assert window.low_k - 0.5 <= temps[0] and temps[-1] <= window.high_k + 0.5
+    assert span.low_k - 0.5 <= temps[0] and temps[-1] <= span.high_k + 0.5
     for run in transfer.runs:
         assert run.rate_per_s == pytest.approx(eyring_rate(run.temperature_k, DH, DS), rel=1e-9)
         # reverse rate by detailed balance at the model's populations (p_syn 0.62, fixed)
         total = run.rate_per_s * (1 + 0.62 / 0.38)
         assert run.exchange_sum_per_s == pytest.approx(total, rel=1e-9)
-        assert run.mixing_time_s == pytest.approx(np.log1p(total / window.r1_per_s) / total, rel=1e-12)
-        assert run.inversion_delays_s[-1] == pytest.approx(5.0 / window.r1_per_s, rel=0.03)  # 5 T1
+        assert run.mixing_time_s == pytest.approx(np.log1p(total / span.r1_per_s) / total, rel=1e-12)
+        assert run.inversion_delays_s[-1] == pytest.approx(5.0 / span.r1_per_s, rel=0.03)  # 5 T1
         assert run.inversion_delays_s[0] < run.mixing_time_s < run.inversion_delays_s[-1]
-        assert run.saturation_s == pytest.approx(5.0 / (window.r1_per_s + total))
+        assert run.saturation_s == pytest.approx(5.0 / (span.r1_per_s + total))
     low, high = transfer.combined_range_k
     assert high - low >= 60.0
     d = plan.to_dict()
@@ -105,7 +105,7 @@ def test_plan_gives_transfer_temperatures_times_and_a_joined_range():
     mt = d["magnetisation_transfer"][0]
     assert mt["combined_span_k"] == pytest.approx(high - low) and len(mt["runs"]) == 4
     text = plan.report()
-    assert "Magnetisation transfer below the lineshape window" in text and "inversion delays (s):" in text
+    assert "Magnetisation transfer below the lineshape range" in text and "inversion delays (s):" in text
     assert f"together: {low:.0f}-{high:.0f} K" in text
 
 
@@ -118,7 +118,7 @@ def test_narrow_usable_range_is_said():
     assert not cold.transfer[0].runs and any("outside the usable range" in n for n in cold.transfer[0].notes)
 
 
-def test_cli_plan_and_timescale_show_both_windows(tmp_path):
+def test_cli_plan_and_timescale_show_both_ranges(tmp_path):
     model = tmp_path / "model.toml"
     model.write_text('title = "invented rotamers"\n[spectrometer]\nnucleus = "1H"\nfrequency_mhz = 400.0\n'
                      '[conditions]\ntemperature_k = 300.0\n'

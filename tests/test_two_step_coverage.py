@@ -8,7 +8,7 @@ replicas keeps this lean; benchmarks/coverage.py measures the same with many rep
 
 What a broken pipeline fails: rates with intervals that do not hold the truth (shifts or couplings held
 at the first guess give slow rates several times too high with tiny intervals, issue 12), rates past
-coalescence that are only bounds (a free linewidth), and dH‡/dS‡ many standard errors from the truth.
+coalescence that are only bounds (a free linewidth), and ΔH‡/ΔS‡ many standard errors from the truth.
 """
 from __future__ import annotations
 
@@ -44,8 +44,8 @@ def _interval_hits(rows: list[dict], truth) -> list[bool]:
     hits = []
     for row in rows:
         k = true_rate[float(row["temperature_k"])]
-        if row["ci68_low_per_s"] and row["ci68_high_per_s"]:
-            hits.append(float(row["ci68_low_per_s"]) <= k <= float(row["ci68_high_per_s"]))
+        if row["rate_ci68_lower"] and row["rate_ci68_upper"]:
+            hits.append(float(row["rate_ci68_lower"]) <= k <= float(row["rate_ci68_upper"]))
     return hits
 
 
@@ -74,7 +74,7 @@ def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
     # 68 % intervals over ~18 rates: binomial spread about 0.11, so 0.40-0.95 fails only a real mistake
     # (too narrow: intervals that ignore the held values' errors; too wide: errors counted twice)
     assert 0.40 <= share <= 0.95, f"68 % intervals hold the truth in {share:.0%} of {len(hits)}"
-    assert np.max(np.abs(z)) <= 3.0, f"dH‡/dS‡ off by {np.round(z, 1)} standard errors"
+    assert np.max(np.abs(z)) <= 3.0, f"ΔH‡/ΔS‡ off by {np.round(z, 1)} standard errors"
 
 
 def test_reference_line_gives_the_linewidth_and_values_past_coalescence(tmp_path):
@@ -89,7 +89,7 @@ def test_reference_line_gives_the_linewidth_and_values_past_coalescence(tmp_path
     for o, k_true in zip(result.by_temperature(), truth.rates_per_s):
         assert o.treatment["linewidth"] == "reference-line"
         width = o.reference["width_hz"]
-        assert abs(width - scenario.linewidth_at(o.spectrum.temperature_k)) <= 4 * o.reference["stderr_hz"]
+        assert abs(width - scenario.linewidth_at(o.spectrum.temperature_k)) <= 4 * o.reference["width_stderr"]
         rate = o.fit.rate(0)
-        assert rate.status == "determined" and rate.log10_stderr_held > 0
+        assert rate.status == "determined" and rate.log10_rate_stderr_held > 0
         assert abs(rate.rate_per_s - k_true) <= 3 * rate.rate_stderr

@@ -16,7 +16,7 @@ from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, coalesce
 
 COALESCENCE_CAVEAT = (
     "An estimate only: it assumes two equally populated sites, no coupling between them and lines "
-    "far narrower than their separation (Gutowsky-Holm k_c = pi dnu / sqrt 2), takes the shift "
+    "far narrower than their separation (Gutowsky-Holm k_c = π Δν / √2), takes the shift "
     "difference of the slow-exchange limit at the coalescence temperature, and the coalescence "
     "temperature itself is seldom known better than a few kelvin. A lineshape fit over a series of "
     "temperatures gives the barrier with a real error bar."

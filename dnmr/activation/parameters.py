@@ -1,4 +1,4 @@
-"""One home for activation parameters: the Eyring dH‡ and dS‡ of one process, as given (a model file, a
+"""One home for activation parameters: the Eyring ΔH‡ and ΔS‡ of one process, as given (a model file, a
 planning guess) or as estimated with their covariance (the Eyring fit, the global fit)."""
 from __future__ import annotations
 
@@ -23,9 +23,9 @@ class ActivationParameters:
     Parameters
     ----------
     enthalpy_kj_mol : float
-        dH‡ (kJ/mol); for a free energy of activation alone this is dG‡ with dS‡ = 0.
+        ΔH‡ (kJ/mol); for a free energy of activation alone this is ΔG‡ with ΔS‡ = 0.
     entropy_j_mol_k : float
-        dS‡ (J/(mol K)).
+        ΔS‡ (J/(mol K)).
     transmission : float
         Transmission coefficient kappa.
     """
@@ -43,15 +43,15 @@ class ActivationParameters:
             raise InputError(f"the transmission coefficient must be positive, got {self.transmission!r}",
                              where="transmission")
         if not 0 < self.enthalpy_kj_mol <= LIMITS["kj_mol"]:  # else faster than kB T/h: no barrier at all
-            raise InputError(f"the barrier (dG‡, or dH‡ with dS‡) must be above 0 and at most {LIMITS['kj_mol']:g}"
+            raise InputError(f"the barrier (ΔG‡, or ΔH‡ with ΔS‡) must be above 0 and at most {LIMITS['kj_mol']:g}"
                              f" kJ/mol, got {self.enthalpy_kj_mol!r}", where="enthalpy_kj_mol")
         if abs(self.entropy_j_mol_k) > LIMITS["j_mol_k"]:
-            raise InputError(f"dS‡ must be at most {LIMITS['j_mol_k']:g} J/(mol K) in size, got "
+            raise InputError(f"ΔS‡ must be at most {LIMITS['j_mol_k']:g} J/(mol K) in size, got "
                              f"{self.entropy_j_mol_k!r}", where="entropy_j_mol_k")
 
     @classmethod
     def from_gibbs(cls, gibbs_kj_mol: float, transmission: float = 1.0) -> "ActivationParameters":
-        """dG‡ (kJ/mol) taken as the same at every temperature (dS‡ = 0)."""
+        """ΔG‡ (kJ/mol) taken as the same at every temperature (ΔS‡ = 0)."""
         return cls(float(gibbs_kj_mol), 0.0, transmission)
 
     @classmethod
@@ -64,7 +64,7 @@ class ActivationParameters:
         return None
 
     def gibbs_kj_mol(self, temperature_k: float) -> float:
-        """dG‡ (kJ/mol) at `temperature_k` (K)."""
+        """ΔG‡ (kJ/mol) at `temperature_k` (K)."""
         return self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3
 
     def rate_at(self, temperature_k: float) -> float:
@@ -90,25 +90,25 @@ class ActivationParameters:
                 "entropy_j_mol_k": self.entropy_j_mol_k, "transmission": self.transmission}
 
     def describe(self) -> str:
-        """One line: dG‡ alone, or dH‡ and dS‡."""
+        """One line: ΔG‡ alone, or ΔH‡ and ΔS‡."""
         if self.entropy_j_mol_k == 0:
-            return f"dG‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol)"
-        return (f"dH‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol),"
-                f" dS‡ = {self.entropy_j_mol_k:.1f} J/(mol K)")
+            return f"ΔG‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol)"
+        return (f"ΔH‡ = {self.enthalpy_kj_mol:.2f} kJ/mol ({self.enthalpy_kj_mol * KCAL_PER_KJ:.2f} kcal/mol),"
+                f" ΔS‡ = {self.entropy_j_mol_k:.1f} J/(mol K)")
 
 
 @dataclass(frozen=True)
 class ActivationEstimate:
-    """dH‡ and dS‡ of one process from the global fit, with their joint covariance.
+    """ΔH‡ and ΔS‡ of one process from the global fit, with their joint covariance.
 
     Attributes
     ----------
     process : str
         Exchange process name.
     enthalpy_kj_mol, entropy_j_mol_k : float
-        dH‡ (kJ/mol) and dS‡ (J/(mol K)).
+        ΔH‡ (kJ/mol) and ΔS‡ (J/(mol K)).
     covariance : ndarray
-        2x2 covariance of (dH‡ in kJ/mol, dS‡ in J/(mol K)), the temperature calibration's part included.
+        2x2 covariance of (ΔH‡ in kJ/mol, ΔS‡ in J/(mol K)), the temperature calibration's part included.
     calibration_covariance : ndarray or None
         The part of `covariance` that the temperature calibration brings in (None: no calibration).
     """
@@ -121,21 +121,21 @@ class ActivationEstimate:
 
     @property
     def enthalpy_stderr(self) -> float:
-        """Standard error of dH‡, kJ/mol."""
+        """Standard error of ΔH‡, kJ/mol."""
         return float(math.sqrt(self.covariance[0, 0]))
 
     @property
     def entropy_stderr(self) -> float:
-        """Standard error of dS‡, J/(mol K)."""
+        """Standard error of ΔS‡, J/(mol K)."""
         return float(math.sqrt(self.covariance[1, 1]))
 
     @property
     def correlation(self) -> float:
-        """Correlation coefficient of dH‡ and dS‡."""
+        """Correlation coefficient of ΔH‡ and ΔS‡."""
         return float(self.covariance[0, 1] / math.sqrt(self.covariance[0, 0] * self.covariance[1, 1]))
 
     def gibbs(self, temperature_k: float) -> tuple[float, float]:
-        """dG‡ = dH‡ - T dS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
+        """ΔG‡ = ΔH‡ - T ΔS‡ and its standard error (kJ/mol) at `temperature_k` (K)."""
         grad = np.array([1.0, -temperature_k / 1e3])
         return (self.enthalpy_kj_mol - temperature_k * self.entropy_j_mol_k / 1e3,
                 float(math.sqrt(grad @ self.covariance @ grad)))

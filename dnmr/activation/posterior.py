@@ -3,14 +3,14 @@
 Optional: needs the emcee package (``pip install emcee``, or the ``bayes`` extra); the sampler, the chain
 and its diagnostics are those of :mod:`dnmr.posterior`.
 
-The Eyring line ln k = ln(kappa kB T / h) + dS‡/R - dH‡/(R T), sampled in (dH‡, dS‡) with flat priors,
+The Eyring line ln k = ln(kappa kB T / h) + ΔS‡/R - ΔH‡/(R T), sampled in (ΔH‡, ΔS‡) with flat priors,
 over the rates that entered the least-squares fit (bound rows are left out, as there).  Each ln k is
 normal with the standard error rate_stderr / rate.  When the Eyring analysis took its errors from the
 scatter (no rate errors, or ``scale_errors``), a common factor f on those errors is sampled as well with
 the prior p(f) ~ 1/f (flat in ln f), which makes the marginal posterior of the line the Student t of
 Gelman et al., Bayesian Data Analysis, 3rd ed., section 14.2.  Temperature errors are latent variables:
 the true temperatures are T_obs + L z with z standard normal and L L^T the temperatures' covariance (so
-correlated calibration errors are covered), and z is sampled with the line and marginalised.  dG‡ at
+correlated calibration errors are covered), and z is sampled with the line and marginalised.  ΔG‡ at
 298.15 K and at the harmonic-mean temperature of the data (weighted as in the fit) follow from every
 sample.
 """
@@ -40,9 +40,9 @@ def sample_eyring_posterior(
     thin: int = 1,
     seed: int | None = 0,
 ) -> Posterior:
-    """Posterior samples of dH‡ (kJ/mol) and dS‡ (J/(mol K)) from the rates of an Eyring analysis.
+    """Posterior samples of ΔH‡ (kJ/mol) and ΔS‡ (J/(mol K)) from the rates of an Eyring analysis.
 
-    Flat priors on dH‡ and dS‡; ln k normal with the rate errors, or with a common factor on them
+    Flat priors on ΔH‡ and ΔS‡; ln k normal with the rate errors, or with a common factor on them
     sampled under p(f) ~ 1/f when the analysis took its errors from the scatter; temperature errors as
     latent temperatures T_obs + L z, z standard normal, L L^T the temperatures' covariance, marginalised
     (see the module notes).  Bound rows are left out, as in the least-squares fit; the probability that
@@ -83,7 +83,7 @@ def sample_eyring_posterior(
 class _EyringLikelihood:
     """The likelihood of the Eyring line over the fitted rates (see the module notes).
 
-    The sampled parameters are dH‡ (kJ/mol), dS‡ (J/(mol K)), ln f when `scaled`, then the latent
+    The sampled parameters are ΔH‡ (kJ/mol), ΔS‡ (J/(mol K)), ln f when `scaled`, then the latent
     temperatures z (standard normal; the true temperatures are `temperature_k` + `latent` @ z).
     """
 
@@ -146,7 +146,7 @@ class _EyringLikelihood:
         latent = self.latent.shape[1]
         temperature = (f"temperatures latent, normal about the measured ones with their covariance ({latent} "
                        "independent components), marginalised") if latent else "temperatures exact"
-        return f"ln k normal about the Eyring line, {errors}; {temperature}; flat priors on dH‡ and dS‡"
+        return f"ln k normal about the Eyring line, {errors}; {temperature}; flat priors on ΔH‡ and ΔS‡"
 
 
 def _run_sampler(emcee: ModuleType, line: _EyringLikelihood, result: "dnmr.EyringResult", steps: int, walkers: int,
@@ -155,7 +155,7 @@ def _run_sampler(emcee: ModuleType, line: _EyringLikelihood, result: "dnmr.Eyrin
     parameters) and the mean acceptance fraction."""
     rng = np.random.default_rng(seed)
     ndim, scaled = line.dimensions, line.scaled
-    to_energy = np.array([[0.0, -R_KJ], [GAS_CONSTANT, 0.0]])  # (intercept, slope) -> (dH‡, dS‡)
+    to_energy = np.array([[0.0, -R_KJ], [GAS_CONSTANT, 0.0]])  # (intercept, slope) -> (ΔH‡, ΔS‡)
     centre = [result.enthalpy_kj_mol, result.entropy_j_mol_k]
     cov = np.zeros((ndim, ndim))
     cov[:2, :2] = to_energy @ result.eyring.covariance @ to_energy.T
@@ -174,7 +174,7 @@ def _run_sampler(emcee: ModuleType, line: _EyringLikelihood, result: "dnmr.Eyrin
 
 
 def _quantities(raw: np.ndarray, harmonic_mean_temperature_k: float, scaled: bool) -> tuple[np.ndarray, list[Quantity]]:
-    """The chain of the reported quantities (dH‡, dS‡, dG‡ at 298.15 K and at the harmonic-mean temperature
+    """The chain of the reported quantities (ΔH‡, ΔS‡, ΔG‡ at 298.15 K and at the harmonic-mean temperature
     (K), the error scale f when sampled) from the raw chain, and what each column is."""
     t_hm = harmonic_mean_temperature_k
     dh, ds = raw[:, :, 0], raw[:, :, 1]
@@ -191,7 +191,7 @@ def _quantities(raw: np.ndarray, harmonic_mean_temperature_k: float, scaled: boo
 
 def _bound_notes(result: "dnmr.EyringResult", line: _EyringLikelihood, kept: np.ndarray) -> list[str]:
     """The bound rows left out, and the posterior probability that the line respects each of them (`kept`:
-    the samples after burn-in, dH‡ and dS‡ in the first two columns)."""
+    the samples after burn-in, ΔH‡ and ΔS‡ in the first two columns)."""
     notes = [f"{len(result.bounds)} bound row(s) left out, as in the least-squares fit"] if result.bounds else []
     for b in result.bounds:
         ln_line = line.line(kept[:, 0], kept[:, 1], b.temperature_k)
@@ -215,6 +215,6 @@ def _correlation_notes(result: "dnmr.EyringResult", line: _EyringLikelihood) -> 
     return [
         "the temperature errors are correlated (a calibration): through the straightness of the Eyring line the "
         "rates pin part of that common error, so this posterior can be narrower than the least-squares errors "
-        f"(dH‡ ± {result.enthalpy_stderr:.2g} kJ/mol, dS‡ ± {result.entropy_stderr:.2g} J/(mol K)), which do "
+        f"(ΔH‡ ± {result.enthalpy_stderr:.2g} kJ/mol, ΔS‡ ± {result.entropy_stderr:.2g} J/(mol K)), which do "
         "not use it; quote those unless the line is known to be straight (no heat capacity of activation, "
         "no tunnelling)"]

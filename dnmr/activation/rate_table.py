@@ -43,7 +43,9 @@ from dnmr.io.tables import read_table
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
-                         "ci68_low_per_s", "ci68_high_per_s", "flags", "reduced_chi_square", "method")
+                         "rate_ci68_lower", "rate_ci68_upper", "flags", "reduced_chi_square", "method")
+#: Columns of rates.csv of earlier releases and their names now (refused with a "renamed to" line).
+RENAMED_RATE_COLUMNS = {"ci68_low_per_s": "rate_ci68_lower", "ci68_high_per_s": "rate_ci68_upper"}
 #: Fit statuses (``dnmr fit``) whose rows carry no rate information at all.
 STATUS_WITHOUT_RATE = ("failed", "undetermined")
 #: What to do with rows a fit flagged as a misfit or as shaped by a nuisance parameter at its limit.
@@ -57,8 +59,8 @@ def read_rates(paths: str | Path | Sequence[str | Path], temperature_stderr: flo
     """Read one rates table (CSV), or several joined, into one :class:`RateSeries` per process.
 
     Columns: ``temperature_k`` and ``rate_per_s`` (required); ``rate_stderr``, ``temperature_stderr``,
-    ``rate_lower``, ``rate_upper``, ``process``, ``method`` (optional); the ``status``, ``ci68_low_per_s``,
-    ``ci68_high_per_s``, ``flags`` and ``reduced_chi_square`` columns of ``dnmr fit`` are read as the
+    ``rate_lower``, ``rate_upper``, ``process``, ``method`` (optional); the ``status``, ``rate_ci68_lower``,
+    ``rate_ci68_upper``, ``flags`` and ``reduced_chi_square`` columns of ``dnmr fit`` are read as the
     module notes say; other columns are ignored. This is the ``rates.csv`` that ``dnmr fit`` or ``dnmr
     transfer`` writes, or a table of your own.
 
@@ -113,14 +115,14 @@ def rate_table_paths(paths: str | Path | Sequence[str | Path]) -> list[Path]:
 def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: str, several: bool) -> list[RateSeries]:
     """One table into a series per process, not yet checked (a table may hold a single temperature
     that joins others)."""
-    table = read_table(path, RATE_COLUMNS_REQUIRED, RATE_COLUMNS_OPTIONAL)
+    table = read_table(path, RATE_COLUMNS_REQUIRED, RATE_COLUMNS_OPTIONAL, RENAMED_RATE_COLUMNS)
     if temperature_stderr is not None and table.has("temperature_stderr"):
         raise InputError(
             "the table has a temperature_stderr column and one value was given as well; use one of them",
             table.source,
         )
     numbers = {name: table.numbers(name, allow_empty=name != "temperature_k") for name in RATE_COLUMNS_REQUIRED}
-    for name in ("rate_stderr", "rate_lower", "rate_upper", "ci68_low_per_s", "ci68_high_per_s", "reduced_chi_square"):
+    for name in ("rate_stderr", "rate_lower", "rate_upper", "rate_ci68_lower", "rate_ci68_upper", "reduced_chi_square"):
         numbers[name] = table.numbers(name, allow_empty=True) if table.has(name) else np.full(len(table), np.nan)
     if table.has("temperature_stderr"):
         t_err = table.numbers("temperature_stderr")
@@ -211,7 +213,7 @@ class _FitRow:
         if status in STATUS_WITHOUT_RATE:
             return cls(False, f"{where}: left out, the fit is {status}")
         problems = _flag_problems(flags.split(";"), numbers["reduced_chi_square"][i])
-        low, high = numbers["ci68_low_per_s"][i], numbers["ci68_high_per_s"][i]
+        low, high = numbers["rate_ci68_lower"][i], numbers["rate_ci68_upper"][i]
         interval = 0 < low < high and np.isfinite(k) and k > 0
         done = []
         if interval and (status == "interval" or problems):

@@ -3,7 +3,7 @@
 A calibration table (set-point against true temperature, measured with a thermometer of
 :mod:`dnmr.activation.thermometers`) is fitted by a low-order polynomial; applied to a series of
 set-points it gives true temperatures with their covariance — the calibration's errors are shared by all
-points — which the Eyring analysis (:mod:`dnmr.activation.line_fit`) propagates into dH‡, dS‡ and dG‡.
+points — which the Eyring analysis (:mod:`dnmr.activation.line_fit`) propagates into ΔH‡, ΔS‡ and ΔG‡.
 The calibration can be built from thermometer spectra, one per set-point (:func:`calibration_from_spectra`).
 """
 from __future__ import annotations
@@ -283,6 +283,12 @@ class CalibrationFromSpectra(NotebookView):
         lines += [f"{s!r},{r.temperature_k!r},{r.shift_difference_ppm!r},{r.thermometer.name},{_csv_cell(r.source)}"
                   for s, r in zip(self.setpoint_k.tolist(), self.readings)]
         return "\n".join(lines) + "\n"
+
+    def write_table(self, path: str | Path, overwrite: bool = False) -> Path:
+        """Write :meth:`table_csv` to `path` atomically (never over an existing file unless `overwrite`)."""
+        from dnmr.io.output import atomic_write_text
+
+        return atomic_write_text(path, self.table_csv(), overwrite=overwrite)
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready): the readings with their set-points, the fitted calibration, the cautions."""

@@ -108,8 +108,8 @@ class ShiftThermometer:
         other = _other_thermometer(self, t)
         hint = f"; use the {other.name} thermometer there" if other else ""
         return (
-            f"{self.name} thermometer: dd = {dd:g} ppm gives {t:.1f} K, outside its calibrated range "
-            f"{lo:g}-{hi:g} K (dd {d_lo:.3f}-{d_hi:.3f} ppm){hint}"
+            f"{self.name} thermometer: Δδ = {dd:g} ppm gives {t:.1f} K, outside its calibrated range "
+            f"{lo:g}-{hi:g} K (Δδ {d_lo:.3f}-{d_hi:.3f} ppm){hint}"
         )
 
 
@@ -191,7 +191,7 @@ class ThermometerReading:
     def report(self) -> str:
         """One line (plus notes) for the terminal."""
         where = f"{self.source}: " if self.source else ""
-        lines = [f"{where}{self.thermometer.name}, dd = {self.shift_difference_ppm:.4f} ppm -> T = {self.temperature_k:.2f} K"]
+        lines = [f"{where}{self.thermometer.name}, Δδ = {self.shift_difference_ppm:.4f} ppm -> T = {self.temperature_k:.2f} K"]
         if np.isfinite(self.hydroxyl_ppm):
             lines.append(
                 f"  OH at {self.hydroxyl_ppm:.4f} ppm, {self.thermometer.alkyl_group} at {self.alkyl_ppm:.4f} ppm, "
@@ -301,6 +301,33 @@ def temperature_from_file(
     return temperature_from_spectrum(
         spectrum.ppm, spectrum.intensity, thermometer, frequency_mhz=spectrum.frequency_mhz, source=str(path)
     )
+
+
+def thermometer_readings(
+    thermometer: str | ShiftThermometer = "methanol",
+    shift_differences_ppm: Sequence[float] = (),
+    files: Sequence[str | Path] = (),
+    *,
+    frequency_mhz: float | None = None,
+) -> list[ThermometerReading]:
+    """Sample temperatures (K) from shift differences (ppm) read by hand and from thermometer spectrum files,
+    in that order (what ``dnmr thermometer`` reports).
+
+    Parameters
+    ----------
+    thermometer : str or ShiftThermometer
+        'methanol' or 'glycol' (see :data:`THERMOMETER_CAUTIONS` before using either).
+    shift_differences_ppm : sequence of float
+        delta(OH) - delta(CH3 or CH2), ppm.
+    files : sequence of path
+        Thermometer spectra (text, JCAMP-DX or processed folders).
+    frequency_mhz : float, optional
+        Spectrometer frequency (MHz) for spectra with a Hz axis.
+    """
+    if not shift_differences_ppm and not files:
+        raise InputError("give --shift-difference-ppm PPM, --spectrum FILE or --calibrate LIST.csv", where="thermometer")
+    readings = [thermometer_reading(dd, thermometer) for dd in shift_differences_ppm]
+    return readings + [temperature_from_file(path, thermometer, frequency_mhz=frequency_mhz) for path in files]
 
 
 def readings_to_dict(readings: Sequence[ThermometerReading]) -> dict:

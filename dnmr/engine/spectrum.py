@@ -148,19 +148,19 @@ def simulate_over(
             raise InputError("the model has no exchange process to vary", where="exchange")
         for k in rates_per_s:
             if not (k >= 0 and np.isfinite(k)):
-                raise InputError(f"rates must be finite and not negative, got {k!r}", where="--rates")
+                raise InputError(f"rates must be finite and not negative, got {k!r}", where="--rates-per-s")
         others = list(model.rates())[1:] if len(model.exchanges) > 1 else []  # a lone process needs no temperature
         models = [model.with_rates([k, *others]) for k in rates_per_s]
         labels = [f"k = {k:.3g} s$^{{-1}}$" for k in rates_per_s]
     else:
         for t in temperatures_k:
             if not (t > 0 and np.isfinite(t)):
-                raise InputError(f"temperatures must be positive kelvin, got {t!r}", where="--temperatures")
+                raise InputError(f"temperatures must be positive kelvin, got {t!r}", where="--temperatures-k")
         if not model.depends_on_temperature:
             raise InputError("every trace would be the same: the model's rates (rate_per_s) and populations do not "
                              "depend on temperature; give activation parameters in [[exchange]] (barrier_kj_mol, or "
-                             "enthalpy_kj_mol with entropy_j_mol_k) or vary the rate with --rates",
-                             model.source, "--temperatures")
+                             "enthalpy_kj_mol with entropy_j_mol_k) or vary the rate with --rates-per-s",
+                             model.source, "--temperatures-k")
         models = [model.at_temperature(t) for t in temperatures_k]
         labels = [f"{t:.0f} K" for t in temperatures_k]
     grid = frequency_grid_ppm(models[0])

@@ -1,11 +1,11 @@
-"""Global fit of a variable-temperature series: dH‡ and dS‡ fitted to all spectra at once.
+"""Global fit of a variable-temperature series: ΔH‡ and ΔS‡ fitted to all spectra at once.
 
 Model
 -----
 Every spectrum i of the series (sample temperature T_i, K; its region, noise and nuisance terms as in
 :mod:`dnmr.fitting.spectrumfit`) is predicted from one set of global parameters:
 
-* rates: k_p(T_i) = (kB T_i / h) exp(dS‡_p / R) exp(-dH‡_p / (R T_i)) for every process p (Eyring,
+* rates: k_p(T_i) = (kB T_i / h) exp(ΔS‡_p / R) exp(-ΔH‡_p / (R T_i)) for every process p (Eyring,
   transmission coefficient 1); parameters ``enthalpy_kj_mol_<p>`` (kJ/mol), ``entropy_j_mol_k_<p>``
   (J/(mol K)).  T_i is the true sample temperature: the series' set-point passed through the
   calibration when one is given.
@@ -36,8 +36,8 @@ Method
    start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
    is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
    coldest third of the spectra, taken to be in slow exchange, and the shift trends start from lines
-   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); dH‡ and
-   dS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
+   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); ΔH‡ and
+   ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
    spectrum with a clear minimum (at least three; else the two-step Eyring line, else a line through its
    best-fit rates).  Every offset starts at 0; each spectrum's amplitude, phase and baseline (started at
    its two-step values) and offset are refitted alone, then all of them jointly with the rest: none is
@@ -47,7 +47,7 @@ Method
    Every quantity of a spectrum's lineshape is an affine function of the global parameters, so its
    Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): one lineshape evaluation
    per quantity (forward difference), amplitude, phase and baseline exactly; blocks are built in worker
-   processes.  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
+   processes, or on an executor given (each spectrum's block alone: the same numbers wherever).  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
    parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, times the noise correlation factor, widened by the global
    reduced chi-square when that is significantly above 1 (the rule of :mod:`dnmr.fitting.spectrumfit`).  The reduced
@@ -61,7 +61,7 @@ Method
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
-   by the chi-square).  dG‡(T) = dH‡ - T dS‡ with its error from the joint covariance, at 298.15 K and
+   by the chi-square).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
    at the harmonic mean of the temperatures; the calibration's share of each error is reported.
 
 Outputs (OUTDIR, atomic writes): ``global.json``, ``global.txt``, ``global_fits.png`` (spectra and fit),
@@ -75,6 +75,7 @@ Modules: :mod:`dnmr.fitting.globalproblem` (parameters, lineshape quantities, re
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import math
 import os
 from dataclasses import dataclass
@@ -90,7 +91,8 @@ from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
-from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, write_global_fit
+from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, prepare_global_folder, write_global_fit
+from dnmr.fitting.resultsfolder import release_results_folder
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
 from dnmr.fitting.series import SeriesFit, fit_series
 from dnmr.fitting.seriesfile import Series, load_series
@@ -101,14 +103,6 @@ from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 if TYPE_CHECKING:  # pragma: no cover
     from dnmr.activation.temperature_calibration import TemperatureCalibration
-
-
-def _prepare(outdir: Path, overwrite: bool) -> None:
-    """Refuse an existing folder with results unless `overwrite`."""
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
-    if outdir.exists() and any(outdir.iterdir()) and not overwrite:
-        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
 
 
 def _true_temperatures(series: Series, calibration: "TemperatureCalibration | None",
@@ -142,13 +136,13 @@ def _stderr_table(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray 
 
 def _activation(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray | None,
                 from_calibration: np.ndarray | None, names: list[str]) -> list[ActivationEstimate]:
-    """dH‡ and dS‡ of each process (`names`) at `x` with their covariance and the calibration's share of it."""
+    """ΔH‡ and ΔS‡ of each process (`names`) at `x` with their covariance and the calibration's share of it."""
     g = problem.values(x)
     out = []
     for ident, name in zip(problem.processes, names):
         keys = [f"enthalpy_kj_mol_{ident}", f"entropy_j_mol_k_{ident}"]
         if not all(k in problem.free for k in keys):
-            raise InputError(f"dH‡ and dS‡ of process {name!r} must both be free in the global fit; remove their "
+            raise InputError(f"ΔH‡ and ΔS‡ of process {name!r} must both be free in the global fit; remove their "
                              "settings from [fit.parameters]", where="--global")
         idx = np.ix_(*[[problem.free.index(k) for k in keys]] * 2)
         cov = np.full((2, 2), math.nan) if covariance is None else covariance[idx]
@@ -159,7 +153,7 @@ def _activation(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray | 
 
 def _eyring_start(two: SeriesFit, two_step: list[EyringResult], names: list[str], idents: list[str],
                   used: list[int], temps: np.ndarray) -> dict[str, tuple[float, float]]:
-    """dH‡ and dS‡ to start from: the two-step Eyring line, or, where it has none (too few determined
+    """ΔH‡ and ΔS‡ to start from: the two-step Eyring line, or, where it has none (too few determined
     rates), a line through every spectrum's best-fit rate."""
     by_name = {e.process: e for e in two_step}
     start = {}
@@ -193,13 +187,14 @@ def fit_series_global(
     *,
     overwrite: bool = False,
     calibration: "TemperatureCalibration | None" = None,
-    shifts: str = DEFAULT_TREND,
-    linewidth: str = DEFAULT_TREND,
-    couplings: str = DEFAULT_TREND,
+    shift_trend: str = DEFAULT_TREND,
+    linewidth_trend: str = DEFAULT_TREND,
+    coupling_trend: str = DEFAULT_TREND,
     workers: int | None = None,
     progress: bool | None = None,
+    executor: futures.Executor | None = None,
 ) -> GlobalFit:
-    """Fit all spectra of a series at once with dH‡ and dS‡ of every process as the parameters.
+    """Fit all spectra of a series at once with ΔH‡ and ΔS‡ of every process as the parameters.
 
     Parameters
     ----------
@@ -207,41 +202,52 @@ def fit_series_global(
         The series (or its TOML file).
     outdir : str or Path
         Folder for global.json, global.txt, the figures and the two-step results (``two-step/``);
-        refused when it holds results, unless `overwrite`.
+        refused when it holds results, unless `overwrite`, and while another run writes into it.
     overwrite : bool
-        Replace earlier results in `outdir`.
+        Replace the results of an earlier global fit in `outdir`: only the files dnmr wrote are removed
+        (:func:`dnmr.fitting.globalresult.prepare_global_folder`).
     calibration : TemperatureCalibration, optional
         The series' temperatures are set-points: the global fit uses the calibrated sample temperatures
         and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
-    shifts : {"linear", "constant", "quadratic"}
+    shift_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the chemical shifts (ppm).
-    linewidth : {"linear", "constant", "quadratic", "per-spectrum"}
+    linewidth_trend : {"linear", "constant", "quadratic", "per-spectrum"}
         Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
-    couplings : {"linear", "constant", "quadratic"}
+    coupling_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the scalar couplings (Hz) the model gives.
     workers : int, optional
-        Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process).
+        Worker processes for the two-step fit and the global fit (default: one per core; 1: in this process);
+        with `executor`, how many tasks are handed to it at once (default: one per core of this machine).
     progress : bool, optional
         False: no progress report.  Otherwise progress of the two-step fit and of the global fit on stderr
         (a live bar on a terminal, plain lines when stderr is a file or a pipe).
+    executor : concurrent.futures.Executor, optional
+        Run the two-step fits and the global fit's spectrum blocks there instead of in worker processes of
+        dnmr's own (a thread or process pool, a Dask client's ``get_executor()``...); it is left running.
+        The results are the same as without it.
 
     Returns
     -------
     GlobalFit
     """
-    treatment = Treatment(shifts, linewidth, couplings)
+    treatment = Treatment(shift_trend, linewidth_trend, coupling_trend)
     series = series if isinstance(series, Series) else load_series(series)
     outdir = Path(outdir)
-    _prepare(outdir, overwrite)
-    two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress)
-    result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress)
-    write_global_fit(result, overwrite)
+    lock = prepare_global_folder(outdir, series, overwrite)
+    try:
+        two = fit_series(series, outdir / TWO_STEP_FOLDER, overwrite=overwrite, workers=workers, progress=progress,
+                         executor=executor)
+        result = fit_global_from_two_step(series, two, outdir, calibration, treatment, workers, progress, executor)
+        write_global_fit(result, overwrite)
+    finally:
+        release_results_folder(lock)
     return result
 
 
 def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
                              calibration: "TemperatureCalibration | None", treatment: Treatment,
-                             workers: int | None, progress: bool | None = None) -> GlobalFit:
+                             workers: int | None, progress: bool | None = None,
+                             executor: futures.Executor | None = None) -> GlobalFit:
     """The global fit of `series` seeded from its finished two-step fit: :func:`fit_series_global` without
     running the two-step fit and without writing the results.
 
@@ -259,9 +265,11 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     treatment : Treatment
         Temperature trends of the shifts (ppm), linewidth (Hz) and couplings (Hz).
     workers : int or None
-        Worker processes (None: one per core; 1: in this process).
+        Worker processes (None: one per core; 1: in this process); with `executor`, tasks handed to it at once.
     progress : bool, optional
         False: no progress report; otherwise as :func:`fit_series_global`.
+    executor : concurrent.futures.Executor, optional
+        Where the spectrum blocks are evaluated instead of dnmr's own worker processes (left running).
 
     Returns
     -------
@@ -271,7 +279,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     Raises
     ------
     InputError
-        Fewer than three spectra fitted in the two-step fit, or dH‡ and dS‡ of a process not both free.
+        Fewer than three spectra fitted in the two-step fit, or ΔH‡ and ΔS‡ of a process not both free.
     """
     used = [i for i, o in enumerate(two_step.outcomes) if o.fitted]
     if len(used) < 3:
@@ -280,7 +288,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     setpoints = np.array([series.spectra[i].temperature_k for i in used])
     eyring = _two_step_eyring(outdir, calibration)
     problem = _global_problem(series, two_step, used, temps, treatment, eyring)
-    solved = _solve_joint(problem, workers, progress, temperature_covariance, setpoints)
+    solved = _solve_joint(problem, workers, progress, temperature_covariance, setpoints, executor)
     scale, covariance, notes = _joint_errors(problem, solved)
     x = solved.result.x
     activation = _activation(problem, x, covariance, solved.from_calibration, series.model.process_names())
@@ -322,7 +330,7 @@ def _global_problem(series: Series, two_step: SeriesFit, used: list[int], temps:
     two-step fit and its Eyring line."""
     members = [GlobalMember.from_two_step(i, float(t), two_step.outcomes[i].fit, series.model)
                for i, t in zip(used, temps)]
-    idents = [n[len("log10_k_"):] for n in members[0].problem.layout.rate_names]
+    idents = [n[len("log10_rate_"):] for n in members[0].problem.layout.rate_names]
     start = _eyring_start(two_step, eyring, series.model.process_names(), idents, used, temps)
     return GlobalProblem(members, series.model, treatment, _van_t_hoff(series, temps), start)
 
@@ -341,14 +349,16 @@ class _JointSolution:
 
 
 def _solve_joint(problem: GlobalProblem, workers: int | None, progress: bool | None,
-                 temperature_covariance: np.ndarray | None, setpoints: np.ndarray) -> _JointSolution:
-    """Solve `problem` on `workers` processes (None: one per core) with a progress report; with the
-    temperatures' covariance (K^2) also the covariance the calibration brings in."""
+                 temperature_covariance: np.ndarray | None, setpoints: np.ndarray,
+                 executor: futures.Executor | None = None) -> _JointSolution:
+    """Solve `problem` on `workers` processes (None: one per core; or in `workers` tasks at a time on
+    `executor`) with a progress report; with the temperatures' covariance (K^2) also the covariance the
+    calibration brings in."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(problem.members)))
     with single_threaded_blas(), ProgressReport(progress) as report:
         task = report.add_task(f"global fit of {len(problem.members)} spectra", unit="evaluations of all spectra",
                                interval_s=PLAIN_INTERVAL_S)
-        evaluator = GlobalEvaluator(problem, workers, step=lambda: report.advance(task))
+        evaluator = GlobalEvaluator(problem, workers, step=lambda: report.advance(task), executor=executor)
         try:
             result, inverse = solve_global(problem, evaluator)
             report.finish(task)
@@ -391,8 +401,8 @@ def _options(problem: GlobalProblem, calibration: "TemperatureCalibration | None
              from_calibration: np.ndarray | None) -> dict:
     """The options of the fit as global.json records them."""
     treatment = problem.treatment
-    return {"shifts": treatment.shifts, "linewidth": treatment.linewidth, "couplings": treatment.couplings,
-            "populations": "van 't Hoff (ln K linear in 1/T)" if problem.van_t_hoff else "from the model",
+    return {"shift_trend": treatment.shift_trend, "linewidth_trend": treatment.linewidth_trend,
+            "coupling_trend": treatment.coupling_trend, "population_trend": "van 't Hoff (ln K linear in 1/T)" if problem.van_t_hoff else "from the model",
             "calibration": None if calibration is None else calibration.to_dict(),
             "calibration_error_included": from_calibration is not None,
             "reference_temperature_k": problem.reference_k}

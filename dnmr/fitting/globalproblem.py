@@ -2,7 +2,7 @@
 Jacobian blocks.
 
 Every spectrum of the series (a :class:`GlobalMember`) is predicted from one set of global parameters
-(dH‡ and dS‡ of every process, temperature trends of the shifts, couplings and linewidth, van 't Hoff
+(ΔH‡ and ΔS‡ of every process, temperature trends of the shifts, couplings and linewidth, van 't Hoff
 populations) and its own amplitude, phase, baseline and frequency offset; see :mod:`dnmr.fitting.globalfit`
 for the model.  Each quantity of a spectrum's lineshape (:class:`LineshapeQuantity`) is an affine function
 of the parameters, so a spectrum's Jacobian block is (d prediction / d quantity) x (d quantity /
@@ -44,6 +44,9 @@ DIFFERENCE_STEP = {"rate": 1e-5, "shift": 1e-4, "linewidth": 1e-4, "coupling": 1
                    "offset": 1e-4}  # forward-difference steps: log10 k, Hz, Hz, Hz, ln K, Hz (shifts converted to ppm)
 FAMILY_WORDS = {"shift": "shifts", "linewidth": "linewidth", "coupling": "couplings", "rate": "rate",
                 "population": "populations"}
+TREND_OPTIONS = {"shift": "--shift-trend", "linewidth": "--linewidth-trend", "coupling": "--coupling-trend"}
+"""The option of ``dnmr fit --global`` (and keyword of :func:`dnmr.fitting.globalfit.fit_series_global`) that
+sets each family's temperature trend."""
 
 
 @dataclass(frozen=True)
@@ -52,32 +55,33 @@ class Treatment:
 
     Parameters
     ----------
-    shifts : {"constant", "linear", "quadratic"}
+    shift_trend : {"constant", "linear", "quadratic"}
         Temperature trend of every chemical shift (ppm).
-    linewidth : {"per-spectrum", "constant", "linear", "quadratic"}
+    linewidth_trend : {"per-spectrum", "constant", "linear", "quadratic"}
         Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
-    couplings : {"constant", "linear", "quadratic"}
+    coupling_trend : {"constant", "linear", "quadratic"}
         Temperature trend of every scalar coupling (Hz) the model gives.
     """
 
-    shifts: str = DEFAULT_TREND
-    linewidth: str = DEFAULT_TREND
-    couplings: str = DEFAULT_TREND
+    shift_trend: str = DEFAULT_TREND
+    linewidth_trend: str = DEFAULT_TREND
+    coupling_trend: str = DEFAULT_TREND
 
     def __post_init__(self):
-        for name, allowed in (("shifts", SHIFT_TRENDS), ("linewidth", LINEWIDTH_TRENDS), ("couplings", COUPLING_TRENDS)):
-            value = getattr(self, name)
+        for family, allowed in (("shift", SHIFT_TRENDS), ("linewidth", LINEWIDTH_TRENDS), ("coupling", COUPLING_TRENDS)):
+            value = getattr(self, f"{family}_trend")
             if value not in allowed:
-                raise InputError(f"{name} must be one of {', '.join(allowed)}, got {value!r}", where=f"--{name}")
+                raise InputError(f"{family}_trend must be one of {', '.join(allowed)}, got {value!r}",
+                                 where=TREND_OPTIONS[family])
 
     def loosened(self, family: str) -> str | None:
         """The option that lets `family` ("shift", "linewidth", "coupling") follow the data more closely,
         or None when none is left."""
-        current = {"shift": self.shifts, "linewidth": self.linewidth, "coupling": self.couplings}[family]
+        current = getattr(self, f"{family}_trend")
         order = {"shift": SHIFT_TRENDS, "linewidth": ("constant", "linear", "quadratic", "per-spectrum"),
                  "coupling": COUPLING_TRENDS}[family]
         later = order[order.index(current) + 1:]
-        return f"--{FAMILY_WORDS[family]} {later[0]}" if later else None
+        return f"{TREND_OPTIONS[family]} {later[0]}" if later else None
 
 
 @dataclass
@@ -134,7 +138,7 @@ class LineshapeQuantity:
 
 def _coefficient(kind: tuple, t: float, t_ref: float) -> float:
     """d quantity / d parameter at temperature `t` (K): ("power", j) for a trend term (T - T_ref)^j,
-    "eyring-h" / "eyring-s" for log10 k against dH‡ (kJ/mol) / dS‡ (J/(mol K)), "vant-hoff-h" /
+    "eyring-h" / "eyring-s" for log10 k against ΔH‡ (kJ/mol) / ΔS‡ (J/(mol K)), "vant-hoff-h" /
     "vant-hoff-s" for ln K against dH / dS of a state."""
     if kind[0] == "power":
         return (t - t_ref) ** kind[1]
@@ -144,7 +148,7 @@ def _coefficient(kind: tuple, t: float, t_ref: float) -> float:
 
 
 def _eyring_constant(t: float) -> float:
-    """log10(kB T / h), s^-1: log10 k at dH‡ = dS‡ = 0."""
+    """log10(kB T / h), s^-1: log10 k at ΔH‡ = ΔS‡ = 0."""
     return math.log10(BOLTZMANN * t / PLANCK)
 
 
@@ -168,7 +172,7 @@ class GlobalProblem:
     van_t_hoff : bool
         Populations follow van 't Hoff (else the model's populations at each temperature).
     start : dict
-        (dH‡ kJ/mol, dS‡ J/(mol K)) to start from, by process identifier.
+        (ΔH‡ kJ/mol, ΔS‡ J/(mol K)) to start from, by process identifier.
 
     Attributes
     ----------
@@ -195,7 +199,7 @@ class GlobalProblem:
         self.reference_k = float(np.mean([m.temperature_k for m in members]))
         layout = members[0].problem.layout
         self.layout = layout
-        self.processes = [n[len("log10_k_"):] for n in layout.rate_names]
+        self.processes = [n[len("log10_rate_"):] for n in layout.rate_names]
         self.settings = _settings(members)
         self.params = lmfit.Parameters()
         self.quantities: list[LineshapeQuantity] = []
@@ -217,7 +221,7 @@ class GlobalProblem:
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
-        """Add a parameter; the series' ``[fit.parameters]`` may fix it (fixed = true) at its start value."""
+        """Add a parameter; the series' ``[fit.lmfit_parameters]`` may fix it (fixed = true) at its start value."""
         setting = self.settings.get(name, {})
         if setting.get("fixed") is True:
             value, vary = float(setting.get("start", value)), False
@@ -256,13 +260,13 @@ class GlobalProblem:
                            DIFFERENCE_STEP["rate"], constant=True)
 
     def _two_step(self, name: str) -> np.ndarray:
-        return np.array([m.fit.parameters[name].value if name in m.fit.parameters else math.nan for m in self.members])
+        return np.array([m.fit.lmfit_parameters[name].value if name in m.fit.lmfit_parameters else math.nan for m in self.members])
 
     def _add_shifts(self) -> None:
         """Started from the line positions of the two-step fits (shift plus that fit's frequency offset)."""
         sf = self.model.spectrometer.frequency_mhz
         offsets = self._two_step("offset_hz") / sf
-        degree = TREND_DEGREES[self.treatment.shifts]
+        degree = TREND_DEGREES[self.treatment.shift_trend]
         for name in [n for names in self.layout.shift_names for n in names]:
             self._trend(name, "shift", degree, self._two_step(name) + offsets, DIFFERENCE_STEP["shift"] / sf)
 
@@ -279,13 +283,13 @@ class GlobalProblem:
         for name in dict.fromkeys(self._linewidth_keys()):
             state = self.model.states[self.layout.linewidth_names.index(name)]
             fixed = held or self.settings.get(name, {}).get("fixed") is True
-            if self.treatment.linewidth == "per-spectrum" and not fixed:
+            if self.treatment.linewidth_trend == "per-spectrum" and not fixed:
                 for m in self.members:
-                    self._add(f"{m.prefix}{name}", m.fit.parameters[name].value, MIN_LINEWIDTH_HZ)
+                    self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
                 self._quantity(name, "linewidth", [], DIFFERENCE_STEP["linewidth"])
                 continue
             level = float(np.nanmedian(self._two_step(name)[cold]))
-            self._trend(name, "linewidth", TREND_DEGREES.get(self.treatment.linewidth, 0),
+            self._trend(name, "linewidth", TREND_DEGREES.get(self.treatment.linewidth_trend, 0),
                         np.full(len(self.members), level), DIFFERENCE_STEP["linewidth"], lower=MIN_LINEWIDTH_HZ,
                         fixed_value=state.linewidth_hz if held else None)
 
@@ -295,7 +299,7 @@ class GlobalProblem:
                  for key in state.couplings_hz] for state in self.model.states]
 
     def _add_couplings(self) -> None:
-        degree = TREND_DEGREES[self.treatment.couplings]
+        degree = TREND_DEGREES[self.treatment.coupling_trend]
         for state, names in zip(self.model.states, self.coupling_names()):
             for key, name in names:
                 self._trend(name, "coupling", degree, np.full(len(self.members), state.couplings_hz[key]),
@@ -308,7 +312,7 @@ class GlobalProblem:
             return
         names = self.layout.population_names
         inverse = np.array([1.0 / m.temperature_k for m in self.members])
-        pops = np.array([[m.fit.parameters[n].value for n in names] for m in self.members])
+        pops = np.array([[m.fit.lmfit_parameters[n].value for n in names] for m in self.members])
         for j, state in enumerate(self.model.states[1:], start=1):
             ln_k = np.log(pops[:, j] / pops[:, 0])
             slope, intercept = np.polyfit(inverse, ln_k, 1) if np.ptp(inverse) > 0 else (0.0, float(ln_k.mean()))
@@ -324,10 +328,10 @@ class GlobalProblem:
         (the shift trends start at the line positions)."""
         for m in self.members:
             for n in NUISANCE + m.problem.layout.baseline_names:
-                par = m.fit.parameters[n]
+                par = m.fit.lmfit_parameters[n]
                 self.params.add(f"{m.prefix}{n}", value=par.value, min=par.min, max=par.max,
                                 vary=bool(par.vary and not par.expr))
-            par = m.fit.parameters["offset_hz"]
+            par = m.fit.lmfit_parameters["offset_hz"]
             self.params.add(f"{m.prefix}offset_hz", value=0.0, min=par.min, max=par.max,
                             vary=m.fit.options.frequency_offset and not self.settings.get("offset_hz", {}).get("fixed", False))
         self._quantity("offset_hz", "offset", [], DIFFERENCE_STEP["offset"])
@@ -351,7 +355,7 @@ class GlobalProblem:
             return np.zeros((0, len(self.free)))
         temps = np.array([m.temperature_k for m in self.members]) - self.reference_k
         rows = []
-        for j in range(TREND_DEGREES[self.treatment.shifts] + 1):
+        for j in range(TREND_DEGREES[self.treatment.shift_trend] + 1):
             if not shifts or not all(n + TREND_SUFFIXES[j] in self.free for n in shifts):
                 break
             row = np.zeros(len(self.free))

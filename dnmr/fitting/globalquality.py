@@ -156,7 +156,8 @@ def misfit_notes(qualities: list[SpectrumQuality], treatment: Treatment, reduced
                 f"the {excess:.0f} by which these spectra exceed their noise")
         if family in advice:
             _, option = advice[family]
-            trend = {"shifts": treatment.shifts, "linewidth": treatment.linewidth, "couplings": treatment.couplings}[family]
+            trend = {"shifts": treatment.shift_trend, "linewidth": treatment.linewidth_trend,
+                     "couplings": treatment.coupling_trend}[family]
             text += (f": the {trend} {family} trend cannot follow the data {where}; "
                      + (f"try {option}" if option else "no looser trend is available: check those spectra's referencing "
                         "and region"))

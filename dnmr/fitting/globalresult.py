@@ -14,11 +14,15 @@ import numpy as np
 
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
+from dnmr.errors import InputError
 from dnmr.fitting.globalquality import SpectrumQuality
+from dnmr.fitting.resultsfolder import (OUTPUT_FILES, REPORT_FILE, RESULT_FOLDERS, SUPPORTING_FOLDER, earlier_manifest,
+                                        holds_results, lock_results_folder, refuse_inputs_among, refuse_linked_folders,
+                                        release_results_folder, remove_earlier_results, series_inputs)
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.formatting import format_with_error
-from dnmr.io.output import atomic_write_text, json_ready, save_figure
+from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figure
 from dnmr.kinetics import KCAL_PER_KJ, STANDARD_TEMPERATURE_K
 from dnmr.notebook import NotebookView
 
@@ -29,12 +33,14 @@ if TYPE_CHECKING:  # pragma: no cover
 GLOBAL_FILES = ("global.json", "global.txt", "global_fits.png", "global_residuals.png")
 #: The subfolder of the two-step results (``dnmr fit``) the global fit starts from.
 TWO_STEP_FOLDER = "two-step"
+#: The program global.json names: how a later ``--overwrite`` knows a folder as a global fit of dnmr's.
+GLOBAL_PROGRAM = "dnmr fit --global"
 
 
-def _share(covariance: np.ndarray, harmonic_mean_k: float) -> dict[str, float]:
-    """Standard errors from a 2x2 covariance of (dH‡ kJ/mol, dS‡ J/(mol K)): dH‡, dS‡, dG‡ at 298.15 K and
-    at `harmonic_mean_k` (K)."""
-    gibbs = [np.array([1.0, -t / 1e3]) for t in (STANDARD_TEMPERATURE_K, harmonic_mean_k)]
+def _share(covariance: np.ndarray, harmonic_mean_temperature_k: float) -> dict[str, float]:
+    """Standard errors from a 2x2 covariance of (ΔH‡ kJ/mol, ΔS‡ J/(mol K)): ΔH‡, ΔS‡, ΔG‡ at 298.15 K and
+    at `harmonic_mean_temperature_k` (K)."""
+    gibbs = [np.array([1.0, -t / 1e3]) for t in (STANDARD_TEMPERATURE_K, harmonic_mean_temperature_k)]
     return {"enthalpy_kj_mol": float(math.sqrt(covariance[0, 0])), "entropy_j_mol_k": float(math.sqrt(covariance[1, 1])),
             "gibbs_298_kj_mol": float(math.sqrt(gibbs[0] @ covariance @ gibbs[0])),
             "gibbs_hm_kj_mol": float(math.sqrt(gibbs[1] @ covariance @ gibbs[1]))}
@@ -101,7 +107,7 @@ class GlobalFit(NotebookView):
 
     @property
     def harmonic_mean_temperature_k(self) -> float:
-        """Harmonic mean of the fitted temperatures, K (where dG‡ is best determined)."""
+        """Harmonic mean of the fitted temperatures, K (where ΔG‡ is best determined)."""
         return float(len(self.temperatures_k) / np.sum(1.0 / self.temperatures_k))
 
     def _process_dict(self, a: ActivationEstimate) -> dict:
@@ -153,7 +159,7 @@ class GlobalFit(NotebookView):
         processes = [self._process_dict(a) for a in self.activation]
         out = {k: v for k, v in processes[0].items() if k != "rates"}
         out.update({
-            "program": "dnmr fit --global", "series": str(self.series.source), "processes": processes,
+            "program": GLOBAL_PROGRAM, "series": str(self.series.source), "processes": processes,
             "comparison": self.comparison(), "two_step": [e.to_dict() for e in self.two_step],
             "two_step_folder": str(self.outdir / TWO_STEP_FOLDER), "options": self.options,
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
@@ -169,28 +175,28 @@ class GlobalFit(NotebookView):
         t_hm = self.harmonic_mean_temperature_k
         lines = [f"Global fit of {self.series.source.name}: {len(self.fits)} spectra, "
                  f"{self.temperatures_k.min():.2f}-{self.temperatures_k.max():.2f} K; results in {self.outdir}",
-                 f"shifts {self.options['shifts']} in T, linewidth {self.options['linewidth']}"
-                 f"{'' if self.options['linewidth'] == 'per-spectrum' else ' in T'}, couplings "
-                 f"{self.options['couplings']} in T, populations {self.options['populations']}",
+                 f"shifts {self.options['shift_trend']} in T, linewidth {self.options['linewidth_trend']}"
+                 f"{'' if self.options['linewidth_trend'] == 'per-spectrum' else ' in T'}, couplings "
+                 f"{self.options['coupling_trend']} in T, populations {self.options['population_trend']}",
                  f"chi-square {self.chi_square:.1f} on {self.degrees_of_freedom} degrees of freedom (reduced "
                  f"{self.reduced_chi_square:.3f}, against each spectrum's measured noise), error scale "
                  f"{self.error_scale:.3g}", ""]
         for a in self.activation:
             g298, g_hm = a.gibbs(STANDARD_TEMPERATURE_K), a.gibbs(t_hm)
             lines += [f"process {a.process}:",
-                      f"  dH‡ = {format_with_error(a.enthalpy_kj_mol, a.enthalpy_stderr)} kJ/mol "
+                      f"  ΔH‡ = {format_with_error(a.enthalpy_kj_mol, a.enthalpy_stderr)} kJ/mol "
                       f"({format_with_error(a.enthalpy_kj_mol * KCAL_PER_KJ, a.enthalpy_stderr * KCAL_PER_KJ)} kcal/mol)",
-                      f"  dS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
-                      f"  correlation of dH‡ and dS‡: {a.correlation:.4f}",
-                      f"  dG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
-                      f"  dG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
+                      f"  ΔS‡ = {format_with_error(a.entropy_j_mol_k, a.entropy_stderr)} J/(mol K)",
+                      f"  correlation of ΔH‡ and ΔS‡: {a.correlation:.4f}",
+                      f"  ΔG‡(298.15 K) = {format_with_error(*g298)} kJ/mol",
+                      f"  ΔG‡({t_hm:.1f} K, harmonic mean) = {format_with_error(*g_hm)} kJ/mol"]
             if a.calibration_covariance is not None:
                 for part, cov in a.error_shares().items():
                     share = _share(cov, t_hm)
                     lines.append(f"  errors from the {'spectra' if part == 'spectra' else 'temperature calibration'} "
-                                 f"alone: dH‡ ± {share['enthalpy_kj_mol']:.2g} kJ/mol, dS‡ ± "
-                                 f"{share['entropy_j_mol_k']:.2g} J/(mol K), dG‡(298.15 K) ± "
-                                 f"{share['gibbs_298_kj_mol']:.2g}, dG‡({t_hm:.1f} K) ± "
+                                 f"alone: ΔH‡ ± {share['enthalpy_kj_mol']:.2g} kJ/mol, ΔS‡ ± "
+                                 f"{share['entropy_j_mol_k']:.2g} J/(mol K), ΔG‡(298.15 K) ± "
+                                 f"{share['gibbs_298_kj_mol']:.2g}, ΔG‡({t_hm:.1f} K) ± "
                                  f"{share['gibbs_hm_kj_mol']:.2g} kJ/mol")
             else:
                 lines.append("  temperatures taken as exact: no calibration error included")
@@ -244,3 +250,62 @@ def write_global_fit(result: GlobalFit, overwrite: bool = False) -> None:
     atomic_write_text(outdir / text_name, result.report() + "\n", overwrite=overwrite)
     for name, fig in ((fits_name, result.plot()), (residuals_name, result.plot_residuals())):
         save_figure(fig, outdir / name, overwrite=overwrite, close=True)
+
+
+def _own_files() -> list[str]:
+    """The files a global fit writes at the top of its folder (figures in the chosen format), report.html
+    of ``dnmr report`` among them: all that an ``--overwrite`` removes there."""
+    return [GLOBAL_FILES[0], GLOBAL_FILES[1], *(figure_file(n).name for n in GLOBAL_FILES[2:]), REPORT_FILE]
+
+
+def _refuse_foreign(outdir: Path, overwrite: bool) -> None:
+    """Refuse the existing folder `outdir` unless `overwrite` and it holds an earlier global fit of dnmr's:
+    its global.json, or (a run stopped before writing that) a two-step fit of dnmr's in two-step/; and
+    refuse a global.json or two-step/ that is not dnmr's, which the run would replace."""
+    if not overwrite:
+        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
+    manifest = outdir / GLOBAL_FILES[0]
+    ours = earlier_manifest(manifest, GLOBAL_PROGRAM) is not None
+    two_step = earlier_manifest(outdir / TWO_STEP_FOLDER / "series.json", "dnmr fit") is not None
+    foreign = ((manifest.exists() or manifest.is_symlink()) and not ours
+               or holds_results(outdir / TWO_STEP_FOLDER) and not two_step)
+    if foreign or not (ours or two_step):
+        raise InputError(f"{outdir} holds no dnmr global-fit results (no global.json or two-step/series.json of "
+                         "dnmr's), so there is nothing of dnmr's to replace; choose a new folder", where="--output")
+
+
+def prepare_global_folder(outdir: Path, series: Series, overwrite: bool):
+    """Refuse what a global fit of `series` must not write over, lock `outdir`, and with `overwrite` remove
+    an earlier global fit's own files.
+
+    Parameters
+    ----------
+    outdir : Path
+        The global fit's folder: global.json, global.txt, the two figures, report.html and two-step/.
+    series : Series
+        The series to be fitted (its inputs must lie outside what the fit writes).
+    overwrite : bool
+        Replace an earlier dnmr global fit in `outdir`.  Only its own files at the top are removed
+        here (links and anything else are left alone); two-step/ is cleared by its own fit
+        (:func:`dnmr.fitting.resultsfolder.prepare_results_folder`) by the same rules.
+
+    Returns
+    -------
+    The lock of `outdir`, to be released with :func:`dnmr.fitting.resultsfolder.release_results_folder`;
+    a second run into `outdir` meanwhile is refused.
+    """
+    if outdir.exists() and not outdir.is_dir():
+        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
+    refuse_inputs_among(outdir, series_inputs(series), _own_files(), ())
+    refuse_inputs_among(outdir / TWO_STEP_FOLDER, series_inputs(series), [*OUTPUT_FILES, REPORT_FILE], RESULT_FOLDERS)
+    refuse_linked_folders(outdir, (TWO_STEP_FOLDER, SUPPORTING_FOLDER))
+    existed = holds_results(outdir)
+    lock = lock_results_folder(outdir, GLOBAL_PROGRAM)
+    try:
+        if existed:
+            _refuse_foreign(outdir, overwrite)
+            remove_earlier_results(outdir, _own_files())
+    except BaseException:
+        release_results_folder(lock)
+        raise
+    return lock

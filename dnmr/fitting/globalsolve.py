@@ -1,10 +1,11 @@
 """Solving the global problem: the evaluator that builds every spectrum's residuals and Jacobian block (in
-worker processes), the start from scans of the spectra, and the joint least squares.
+worker processes, or on any executor), the start from scans of the spectra, and the joint least squares.
 
 See :mod:`dnmr.fitting.globalfit` for the method.
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import math
 from collections.abc import Callable, Sequence
 
@@ -13,7 +14,7 @@ from scipy import optimize
 
 from dnmr.errors import InputError
 from dnmr.fitting.globalproblem import TREND_DEGREES, TREND_SUFFIXES, GlobalMember, GlobalProblem
-from dnmr.fitting.workers import process_pool, worker_payload
+from dnmr.fitting.workers import SharedPayload, process_pool
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
 STEP_TOLERANCE_SE = 0.01  # the joint fit stops once its last step was below this many standard errors
@@ -28,11 +29,6 @@ def _blocks(problem: GlobalProblem, kind: str, x: np.ndarray, ks: Sequence[int])
     work = {"residual": problem.member_residual, "jacobian": problem.member_jacobian,
             "temperature": problem.temperature_derivative, "nuisance": _refit_nuisance_of}[kind]
     return [work(k, x) if kind != "nuisance" else work(problem, k, x) for k in ks]
-
-
-def _worker_blocks(kind: str, x: np.ndarray, ks: Sequence[int]) -> list:
-    """:func:`_blocks` in a worker process, on the problem the pool handed it."""
-    return _blocks(worker_payload(), kind, x, ks)
 
 
 def _refit_nuisance_of(problem: GlobalProblem, k: int, x: np.ndarray) -> np.ndarray:
@@ -64,28 +60,35 @@ def _refit_nuisance_of(problem: GlobalProblem, k: int, x: np.ndarray) -> np.ndar
 
 
 class GlobalEvaluator:
-    """Evaluates a :class:`~dnmr.fitting.globalproblem.GlobalProblem` spectrum by spectrum, in this process or in `workers` processes;
-    `step` is called at every evaluation of the residuals (for the progress report)."""
+    """Evaluates a :class:`~dnmr.fitting.globalproblem.GlobalProblem` spectrum by spectrum: in this process,
+    in `workers` processes of its own, or on `executor` in `workers` tasks at a time (the problem travels
+    once to each of its worker processes, :class:`~dnmr.fitting.workers.SharedPayload`); `step` is called at
+    every evaluation of the residuals (for the progress report).  Every spectrum's block is computed alone,
+    so the numbers do not depend on where or in how many tasks."""
 
-    def __init__(self, problem: GlobalProblem, workers: int, step: Callable[[], None] | None = None):
+    def __init__(self, problem: GlobalProblem, workers: int, step: Callable[[], None] | None = None,
+                 executor: futures.Executor | None = None):
         self.problem, self.step = problem, step
         n = len(problem.members)
         self.workers = max(1, min(workers, n))
         self.chunks = [list(range(n))[i::self.workers] for i in range(self.workers)]
-        self.pool = (process_pool(self.workers, problem)
-                     if self.workers > 1 else None)
+        self.own_pool = process_pool(self.workers) if executor is None and self.workers > 1 else None
+        pool = executor if executor is not None else self.own_pool
+        self.shared = SharedPayload(problem, pool) if pool is not None else None
 
     def close(self) -> None:
-        """Shut the worker processes down (none in this process)."""
-        if self.pool is not None:
-            self.pool.shutdown(wait=True, cancel_futures=True)
+        """Shut the worker processes of its own down (an executor given stays as it was)."""
+        if self.shared is not None:
+            self.shared.close()
+        if self.own_pool is not None:
+            self.own_pool.shutdown(wait=True, cancel_futures=True)
 
     def each(self, kind: str, x: np.ndarray) -> list:
         """Blocks of every spectrum, in order."""
-        if self.pool is None:
+        if self.shared is None:
             parts = [_blocks(self.problem, kind, x, c) for c in self.chunks]
         else:
-            parts = list(self.pool.map(_worker_blocks, [kind] * len(self.chunks), [x] * len(self.chunks), self.chunks))
+            parts = self.shared.map(_blocks, [(kind, x, c) for c in self.chunks])
         out: list = [None] * len(self.problem.members)
         for chunk, blocks in zip(self.chunks, parts):
             for k, b in zip(chunk, blocks):
@@ -211,7 +214,7 @@ def _scanned_rates(problem: GlobalProblem, g: np.ndarray) -> list[tuple[float, f
 def _robust_start(problem: GlobalProblem, x: np.ndarray) -> np.ndarray:
     """`x` restarted where first guesses and the two-step fit may mislead: shift trends from the lines a scan
     finds in the coldest spectra (a third of them, at least two; assumed in slow exchange), the linewidth
-    flat at the coldest spectrum's, every offset at 0; then dH‡ and dS‡ of the first process from an
+    flat at the coldest spectrum's, every offset at 0; then ΔH‡ and ΔS‡ of the first process from an
     Eyring line through the rates a scan finds in each spectrum (where at least three have a clear
     minimum; else the two-step start is kept)."""
     order = np.argsort([m.temperature_k for m in problem.members])
@@ -222,7 +225,7 @@ def _robust_start(problem: GlobalProblem, x: np.ndarray) -> np.ndarray:
         put(m.prefix + "offset_hz", 0.0)
     found, width = _scanned_lines(problem, cold, problem.vector(out))
     temps = np.array([problem.members[k].temperature_k for k in cold]) - problem.reference_k
-    degree = min(TREND_DEGREES[problem.treatment.shifts], len(cold) - 1)
+    degree = min(TREND_DEGREES[problem.treatment.shift_trend], len(cold) - 1)
     for r, values in zip(problem.family_rows("shift"), found.T):
         for j, c in enumerate(np.polynomial.polynomial.polyfit(temps, values, degree)):
             put(problem.quantities[r].name + TREND_SUFFIXES[j], c)

@@ -36,6 +36,10 @@ RENAMED_SETTINGS = {
 """Setting keys of earlier releases and what replaced them (refused with a "renamed to" line)."""
 TIE_KEYS = ("times", "plus")
 """Keys that only make sense beside ``same_as``: the tie is  this = times * other + plus."""
+RATE_PREFIX = "log10_rate_"
+"""The names of the rate parameters: ``log10_rate_<process>``, log10 of the forward rate (s^-1)."""
+RENAMED_PREFIXES = {"log10_k_": RATE_PREFIX}
+"""Beginnings of parameter names of earlier releases and what replaced them (refused with a "renamed to" line)."""
 COUPLING_REACH_HZ = 2.0
 """A free coupling may move this far (Hz) from the model's value, or a quarter of it when larger."""
 
@@ -136,7 +140,7 @@ class ParameterLayout:
         names = lambda prefix, items: tuple(unique(f"{prefix}{parameter_identifier(x)}") for x in items)  # noqa: E731
         return cls(
             model, options,
-            rate_names=names("log10_k_", model.process_names()),
+            rate_names=names(RATE_PREFIX, model.process_names()),
             linewidth_names=names("linewidth_hz_", model.state_names),
             population_names=names("population_", model.state_names) if len(model.states) > 1 else (),
             shift_names=tuple(names(f"shift_ppm_{parameter_identifier(s.name)}_", model.spins) for s in model.states),
@@ -223,8 +227,7 @@ def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str,
     """
     for name in settings:
         if name not in params:
-            raise InputError(f'no fit parameter "{name}"{did_you_mean(name, params)}; parameters are '
-                             f'{", ".join(params)}', where=f"parameters.{name}")
+            raise InputError(unknown_parameter_text(name, params), where=f"parameters.{name}")
     _check_ties(params, settings)
     for name, setting in settings.items():
         par, where = params[name], f"parameters.{name}"
@@ -245,6 +248,14 @@ def apply_settings(params: lmfit.Parameters, settings: Mapping[str, Mapping[str,
         if not par.min < par.max and not par.min == par.max == par.value:
             raise InputError(f"lower {par.min:g} is not below upper {par.max:g}", where=where)
     params.update_constraints()
+
+
+def unknown_parameter_text(name: str, known: Mapping) -> str:
+    """Why `name` is no fit parameter: a name of an earlier release with its new one, else the names there are."""
+    for old, new in RENAMED_PREFIXES.items():
+        if name.startswith(old) and new + name[len(old):] in known:
+            return f'"{name}" was renamed to {new + name[len(old):]}'
+    return f'no fit parameter "{name}"{did_you_mean(name, known)}; parameters are {", ".join(known)}'
 
 
 def _tie_expression(name: str, times: float, plus: float) -> str:
@@ -276,7 +287,7 @@ def _check_ties(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, An
         if other == name:
             raise InputError(f"{name} cannot be tied to itself; hold it with fixed = true instead", where=where)
         if other not in params:
-            raise InputError(f'no fit parameter "{other}"{did_you_mean(other, params)} to tie to', where=where)
+            raise InputError(unknown_parameter_text(other, params), where=where)
         circle = _tie_path(params, other, name, settings)
         if circle:
             raise InputError("the ties go round in a circle (" + " -> ".join([name] + circle)
@@ -299,12 +310,14 @@ def _tie_path(params: lmfit.Parameters, start: str, goal: str, settings: Mapping
 
 @dataclass
 class FitParameter:
-    """How one fit parameter is handled: where it starts, whether it is fixed, its range, or a tie.
+    """How one fit parameter is handled (where it starts, whether it is fixed, its range, or a tie) and,
+    after a fit, its estimate.
 
     Attributes
     ----------
     start : float
-        Starting value (or the held value when fixed), in `unit`.
+        Starting value (or the held value when fixed), in `unit`; in a fit's result the estimate, so that
+        the records start a refinement.
     fixed : bool
         Held at `start` instead of fitted.
     lower, upper : float
@@ -314,11 +327,16 @@ class FitParameter:
     times, plus : float
         Factor and offset (`unit`) of the tie.
     stderr : float or None
-        Standard error of a held value (`unit`), carried into the rates.
+        Standard error (`unit`): of a held value, carried into the rates; in a fit's result, of the estimate
+        (of a held value, the one given).
     rule : str
         A relation dnmr keeps itself (e.g. the first population is 1 minus the others); read only.
     unit : str
         Unit of the parameter (ppm, Hz, deg, log10(s^-1); empty for amplitudes and fractions).
+    estimate : float
+        The fitted value (`unit`); NaN before a fit.
+    correlations : dict of str to float
+        Correlation of the estimate with each other free parameter's (empty before a fit).
     """
 
     start: float
@@ -331,6 +349,8 @@ class FitParameter:
     stderr: float | None = None
     rule: str = ""
     unit: str = ""
+    estimate: float = math.nan
+    correlations: dict[str, float] = dataclasses.field(default_factory=dict)
 
     def setting(self) -> dict[str, Any]:
         """The setting (as in a series file's ``[fit.parameters]``) that gives this handling."""
@@ -340,12 +360,12 @@ class FitParameter:
             out.update(same_as=self.same_as, times=float(self.times), plus=float(self.plus))
         elif self.fixed or not self.rule:
             out.update(start=float(self.start), fixed=bool(self.fixed))
-        if self.stderr is not None:
+        if self.stderr is not None and math.isfinite(self.stderr):
             out["stderr"] = float(self.stderr)
         return out
 
 
-UNITS = (("log10_k_", "log10(s^-1)"), ("r1_per_s", "s^-1"), ("linewidth_hz_", "Hz"), ("coupling_hz_", "Hz"), ("offset_hz", "Hz"),
+UNITS = (("log10_rate_", "log10(s^-1)"), ("r1_per_s", "s^-1"), ("linewidth_hz_", "Hz"), ("coupling_hz_", "Hz"), ("offset_hz", "Hz"),
          ("shift_ppm_", "ppm"), ("phase", "deg"))
 
 
@@ -387,6 +407,19 @@ def as_fit_parameters(params: lmfit.Parameters, settings: Mapping[str, Mapping[s
                                upper=float(par.max), stderr=settings.get(name, {}).get("stderr"),
                                unit=parameter_unit(name), **_tie_of(par))
             for name, par in params.items()}
+
+
+def fitted_parameters(params: lmfit.Parameters, settings: Mapping[str, Mapping[str, Any]]
+                      ) -> dict[str, FitParameter]:
+    """dnmr's view of fitted lmfit `params`: each :class:`FitParameter` with its estimate, standard error
+    (the given one of a held value with a ``stderr`` setting) and correlations; it starts at the estimate."""
+    out = as_fit_parameters(params, settings)
+    for name, par in params.items():
+        own = parameter_stderr(par)
+        out[name] = dataclasses.replace(out[name], estimate=float(par.value),
+                                        stderr=own if math.isfinite(own) else out[name].stderr,
+                                        correlations={k: float(v) for k, v in (par.correl or {}).items()})
+    return out
 
 
 def with_values(params: lmfit.Parameters, values: Mapping[str, float]) -> lmfit.Parameters:

@@ -83,7 +83,7 @@ PATH_REACH = 25.0
 def _label(name: str) -> tuple[str, str]:
     """Axis label and unit of a fit parameter (see the parameter names in :mod:`dnmr.fitting.spectrumfit`)."""
     patterns = (
-        (r"log10_k_(.+)", "{0}: log10(k / s⁻¹)", ""),
+        (r"log10_rate_(.+)", "{0}: log10(k / s⁻¹)", ""),
         (r"linewidth_hz_(.+)", "linewidth {0} / Hz", "Hz"),
         (r"shift_ppm_(.+)", "shift {0} / ppm", "ppm"),
         (r"population_(.+)", "population {0}", ""),
@@ -100,7 +100,7 @@ def _label(name: str) -> tuple[str, str]:
 def _fit_covariance(fit: "dnmr.SpectrumFit", names: Sequence[str]) -> np.ndarray:
     """Covariance of the free parameters from their (scaled) errors and correlations; a small spread
     where an error is not known."""
-    pars = [fit.parameters[n] for n in names]
+    pars = [fit.lmfit_parameters[n] for n in names]
 
     def spread(p) -> float:
         span = p.max - p.min
@@ -163,14 +163,14 @@ def sample_spectrum_posterior(
     Returns
     -------
     Posterior
-        Quantities: every free parameter (``log10_k_<process>`` in log10 of s^-1, linewidths in Hz...)
+        Quantities: every free parameter (``log10_rate_<process>`` in log10 of s^-1, linewidths in Hz...)
         and ``rate_per_s_<process>`` (s^-1) for every free rate.  A rate the profile classified as a
         bound is summarised by its one-sided 95 % bound.
     """
     if method not in METHODS:
         raise InputError(f"method must be one of {', '.join(METHODS)}, got {method!r}", where="method")
     layout = ParameterLayout.for_model(fit.best_model, fit.options)
-    setup = _Setup(fit, FitProblem(layout, fit.ppm, fit.data, fit.noise), fit.parameters.copy(),
+    setup = _Setup(fit, FitProblem(layout, fit.ppm, fit.data, fit.noise), fit.lmfit_parameters.copy(),
                    {name: r for name, r in zip(layout.rate_names, fit.rates)})
     if not setup.free:
         raise InputError("the fit has no free parameters to sample", where="parameters")
@@ -387,7 +387,7 @@ def _with_rates(chain: np.ndarray, params: lmfit.Parameters, free: list[str],
         q = quantities[j]
         reason = r.reason if kind != "interval" else ""
         quantities[j] = Quantity(q.name, q.label, q.unit, kind, q.prior_range, reason)
-        quantities.append(Quantity(f"rate_per_s_{n[len('log10_k_'):]}", f"{r.process}: k / s⁻¹", "s^-1", kind,
+        quantities.append(Quantity(f"rate_per_s_{n[len('log10_rate_'):]}", f"{r.process}: k / s⁻¹", "s^-1", kind,
                                    (10.0 ** q.prior_range[0], 10.0 ** q.prior_range[1]), reason, flat_prior=False))
         derived.append(10.0 ** chain[:, :, j])
     full = np.concatenate([chain] + [d[:, :, None] for d in derived], axis=2) if derived else chain

@@ -48,9 +48,9 @@ class RateEstimate:
         Standard error (s^-1, from the covariance of log10 k); NaN unless the status is "determined".
     rate_lower, rate_upper : float
         Bounds (s^-1) when the data only bound the rate (NaN otherwise).
-    interval_per_s : (float, float)
+    rate_ci68 : (float, float)
         Ends of the profile's 68 % interval (NaN where it is open).
-    log10_rate, log10_stderr : float
+    log10_rate, log10_rate_stderr : float
         The same on the log10 scale the fit works in (the error includes the held parameters' share).
     status : str
         "determined", "interval" (two-sided bound), "upper-bound" (slow-exchange limit),
@@ -59,9 +59,9 @@ class RateEstimate:
         Why a bound and not an error bar, in words.
     profile : Profile or None
         The chi-square profile.
-    log10_stderr_spectrum : float
+    log10_rate_stderr_spectrum : float
         The part of the error from this spectrum's noise (log10 decades).
-    log10_stderr_held : float
+    log10_rate_stderr_held : float
         The part from the errors of held parameters (a trend, a reference line); 0 when none.
     held_shares : dict
         Per held parameter, the change of log10 k for one standard error of it.
@@ -72,21 +72,21 @@ class RateEstimate:
     rate_stderr: float
     rate_lower: float
     rate_upper: float
-    interval_per_s: tuple[float, float]
+    rate_ci68: tuple[float, float]
     log10_rate: float
-    log10_stderr: float
+    log10_rate_stderr: float
     status: str
     reason: str = ""
     profile: Profile | None = None
-    log10_stderr_spectrum: float = math.nan
-    log10_stderr_held: float = 0.0
+    log10_rate_stderr_spectrum: float = math.nan
+    log10_rate_stderr_held: float = 0.0
     held_shares: Mapping[str, float] = field(default_factory=dict)
 
     def describe(self) -> str:
         """One line: ``k = 123 ± 5 s^-1`` or ``k < 3.1 s^-1 (upper bound)``."""
         k = self.rate_per_s
         if self.status == "determined":
-            return f"k = {significant(k)} ± {significant(self.rate_stderr, 2)} s^-1   (log10 k = {self.log10_rate:.3f} ± {self.log10_stderr:.3f})"
+            return f"k = {significant(k)} ± {significant(self.rate_stderr, 2)} s^-1   (log10 k = {self.log10_rate:.3f} ± {self.log10_rate_stderr:.3f})"
         if self.status == "interval":
             return f"k = {significant(k)} s^-1, 68 % interval {significant(self.rate_lower)} to {significant(self.rate_upper)} s^-1"
         if self.status == "upper-bound":
@@ -100,7 +100,7 @@ class RateEstimate:
     def to_dict(self) -> dict:
         """Plain data (JSON-ready; NaN stays NaN, write it as null)."""
         out = {k: v for k, v in dataclasses.asdict(self).items() if k != "profile"}
-        out["interval_per_s"] = list(self.interval_per_s)
+        out["rate_ci68"] = list(self.rate_ci68)
         if self.profile is not None:
             out["profile"] = {"log10_rate": self.profile.log10_rate.tolist(),
                               "delta_chi_square": self.profile.delta_chi_square.tolist(),
@@ -117,7 +117,7 @@ class RateEstimate:
         if prof:
             profile = Profile(np.array(prof["log10_rate"], float), np.array(prof["delta_chi_square"], float),
                               math.nan, math.nan, float(prof["threshold"]), bool(prof.get("unstable", False)))
-        data["interval_per_s"] = tuple(math.nan if v is None else v for v in data["interval_per_s"])
+        data["rate_ci68"] = tuple(math.nan if v is None else v for v in data["rate_ci68"])
         return cls(**data, profile=profile)
 
 
@@ -141,7 +141,7 @@ def _widen(x: float, end: float, extra: float, limit: float) -> float:
 
 
 _OPEN = {"rate_stderr": math.nan, "rate_lower": math.nan, "rate_upper": math.nan,
-         "interval_per_s": (math.nan, math.nan), "reason": ""}
+         "rate_ci68": (math.nan, math.nan), "reason": ""}
 """What a rate estimate leaves open unless its verdict gives it."""
 
 
@@ -178,8 +178,8 @@ def classify_rate(name: str, process: str, params: lmfit.Parameters, profile: Pr
         verdict = _verdict_without_profile(par, s, context)
     else:
         verdict = _verdict_from_profile(par, s, held, profile, context)
-    return RateEstimate(process=process, rate_per_s=10.0 ** par.value, log10_rate=par.value, log10_stderr=s,
-                        profile=profile, log10_stderr_spectrum=own, log10_stderr_held=held,
+    return RateEstimate(process=process, rate_per_s=10.0 ** par.value, log10_rate=par.value, log10_rate_stderr=s,
+                        profile=profile, log10_rate_stderr_spectrum=own, log10_rate_stderr_held=held,
                         held_shares=dict(shares), **{**_OPEN, **verdict})
 
 
@@ -227,12 +227,12 @@ def _verdict_from_profile(par: lmfit.Parameter, s: float, held: float, profile: 
     if np.isfinite(lo) and np.isfinite(hi):
         return _two_sided_verdict(par, s, (lo, hi), interval, profile, context, unstable + held_text)
     if np.isfinite(hi):
-        return {"status": "upper-bound", "rate_upper": interval[1], "interval_per_s": interval,
+        return {"status": "upper-bound", "rate_upper": interval[1], "rate_ci68": interval,
                 "reason": f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
                           "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
                           "under the bound." + unstable + held_text}
     if np.isfinite(lo):
-        return {"status": "lower-bound", "rate_lower": interval[0], "interval_per_s": interval,
+        return {"status": "lower-bound", "rate_lower": interval[0], "rate_ci68": interval,
                 "reason": f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
                           f"s^-1; {_fast_limit_cause(context)}." + unstable + held_text}
     return {"status": "undetermined", "reason": f"the spectrum does not constrain this rate ({level} over the whole "
@@ -246,7 +246,7 @@ def _two_sided_verdict(par: lmfit.Parameter, s: float, ends: tuple[float, float]
     down, up = par.value - ends[0], ends[1] - par.value
     parabolic = _inside(par, s) and all(1 / ASYMMETRY_LIMIT <= h / s <= ASYMMETRY_LIMIT for h in (down, up))
     if parabolic and not profile.unstable and not context.at_bound:
-        return {"status": "determined", "rate_stderr": _rate_stderr(par, s), "interval_per_s": interval,
+        return {"status": "determined", "rate_stderr": _rate_stderr(par, s), "rate_ci68": interval,
                 "reason": remarks.strip()}  # a stable profile: only the held parameters' remark
     if context.at_bound and not profile.unstable:
         cause = (f"{', '.join(context.at_bound)} ended at a bound of its range, which cuts the profile and biases "
@@ -255,7 +255,7 @@ def _two_sided_verdict(par: lmfit.Parameter, s: float, ends: tuple[float, float]
         cause = "the profile is unstable, so no error bar."
     else:
         cause = "chi-square is far from a parabola or cut by a limit of the allowed range, so no error bar."
-    return {"status": "interval", "rate_lower": interval[0], "rate_upper": interval[1], "interval_per_s": interval,
+    return {"status": "interval", "rate_lower": interval[0], "rate_upper": interval[1], "rate_ci68": interval,
             "reason": f"the 68 % interval runs {down:.2f} decades below and {up:.2f} above the best fit "
                       f"(parabolic error {s:.2f}): {cause}{remarks}"}
 

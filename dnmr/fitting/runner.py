@@ -6,6 +6,9 @@ the halves, and so on; a spectrum takes its rates from an Eyring line through th
 of earlier rounds (ln(k/T) linear in 1/T), the other parameters from the nearest of them.  The seeds
 never depend on which fit finishes first, so the same inputs give the same numbers, serial or parallel.
 Worker processes (:func:`dnmr.fitting.workers.process_pool`) end with the process that started them.
+Instead of them, any :class:`concurrent.futures.Executor` may run the fits (threads, a process pool, a Dask
+cluster): the spectra are read here and sent with the fits, and the results come back as plain data, so
+its workers need dnmr but not the files.
 
 Each fit is stored as it finishes (``fits/NNN_<stage>.json``); ``resume`` reuses a stored fit only
 when the spectrum file, its temperature, the options and the model are unchanged.
@@ -16,6 +19,7 @@ import concurrent.futures as futures
 import hashlib
 import json
 import math
+import os
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -26,9 +30,10 @@ from dnmr.errors import InputError
 from dnmr.fitting.resultsfolder import STAGE_MAIN, write_json
 from dnmr.fitting.seriesfile import Series, SeriesSpectrum
 from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
-from dnmr.fitting.workers import process_pool
+from dnmr.fitting.workers import in_worker, process_pool
 from dnmr.io.output import json_ready
 from dnmr.io.readers import read_spectrum
+from dnmr.io.measured import MeasuredSpectrum
 from dnmr.kinetics import eyring_barrier, eyring_rate
 from dnmr.model import Model
 
@@ -77,12 +82,20 @@ def identity_key(identity: Mapping) -> str:
     return hashlib.sha256(json.dumps(json_ready(identity), sort_keys=True).encode()).hexdigest()
 
 
-def _run_job(model: Model, job: FitJob, start: Mapping[str, float] | None) -> dict:
-    """Fit one spectrum (in a worker process); never raises: a failure comes back as data."""
+def _read_job(model: Model, job: FitJob) -> MeasuredSpectrum | dict:
+    """The spectrum of `job`, read here; a file that cannot be read comes back as the failed record."""
     s = job.spectrum
     try:
-        spectrum = read_spectrum(s.file, frequency_mhz=s.frequency_mhz or model.spectrometer.frequency_mhz, axis=s.axis,
-                                 processing=s.processing)
+        return read_spectrum(s.file, frequency_mhz=s.frequency_mhz or model.spectrometer.frequency_mhz, axis=s.axis,
+                             processing=s.processing)
+    except InputError as err:
+        return {"status": "failed", "bad_input": True, "error": str(err.located(source=s.file))}
+
+
+def _run_job(model: Model, job: FitJob, start: Mapping[str, float] | None, spectrum: MeasuredSpectrum) -> dict:
+    """Fit one spectrum (in a worker); never raises: a failure comes back as data."""
+    s = job.spectrum
+    try:
         fit = fit_spectrum(spectrum, model, temperature_k=s.temperature_k, options=job.options, start=start)
         processing = spectrum.metadata.get("processing")
         if processing:  # the apodization's exact addition to every linewidth, said beside the fit
@@ -118,8 +131,8 @@ def _start_values(target: SeriesSpectrum, finished: Sequence[tuple[SeriesSpectru
         return {}
     nearest = min(finished, key=lambda f: abs(f[0].temperature_k - target.temperature_k))[1]
     start = {name: p["estimate"] for name, p in nearest["parameters"].items()
-             if not name.startswith(("log10_k_", "amplitude", "baseline_"))}
-    rate_names = [n for n in nearest["parameters"] if n.startswith("log10_k_")]  # in process order
+             if not name.startswith(("log10_rate_", "amplitude", "baseline_"))}
+    rate_names = [n for n in nearest["parameters"] if n.startswith("log10_rate_")]  # in process order
     for i, name in enumerate(rate_names):
         points = [(s.temperature_k, f["rates"][i]["rate_per_s"]) for s, f in finished
                   if f["rates"][i]["status"] in ("determined", "interval")]
@@ -197,8 +210,8 @@ class SpectrumOutcome:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""
         if not self.fitted or not self.posterior or "quantities" not in self.posterior:
             return None
-        names = [n for n in self.fit.parameters if n.startswith("log10_k_")]  # in process order
-        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_k_"):])
+        names = [n for n in self.fit.lmfit_parameters if n.startswith("log10_rate_")]  # in process order
+        return self.posterior["quantities"].get("rate_per_s_" + names[i][len("log10_rate_"):])
 
     @property
     def fitted(self) -> bool:
@@ -216,8 +229,8 @@ def outcome_from_record(series: Series, index: int, record: dict, stage: str) ->
 
 
 class FitRunner:
-    """Runs fits in a process pool (or in this process), seeding each from finished neighbours,
-    storing every result as it finishes and reusing stored ones on resume.
+    """Runs fits in a process pool (or in this process, or on an executor given), seeding each from
+    finished neighbours, storing every result as it finishes and reusing stored ones on resume.
 
     Parameters
     ----------
@@ -226,21 +239,26 @@ class FitRunner:
     outdir : Path
         The results folder (stored fits go to its ``fits/``).
     workers : int
-        Worker processes; 1 runs every fit in this process.
+        Worker processes; 1 runs every fit in this process.  With `executor`: fits handed to it at once.
     progress : ProgressReport
         Where progress is reported (:class:`dnmr.io.progress.ProgressReport`).
     resume : bool
         Reuse fits stored by an earlier run with the same inputs.
+    executor : concurrent.futures.Executor, optional
+        Runs the fits instead of worker processes of the runner's own (it is left running by `close`).
     """
 
-    def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool):
+    def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool,
+                 executor: futures.Executor | None = None):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
-        self.pool = process_pool(workers) if workers > 1 else None
+        self.own_pool = process_pool(workers) if executor is None and workers > 1 else None
+        self.pool = executor if executor is not None else self.own_pool
+        self.caller = os.getpid()
 
     def close(self) -> None:
-        """End the worker processes (waiting for those running; none is started after)."""
-        if self.pool is not None:
-            self.pool.shutdown(wait=True, cancel_futures=True)
+        """End the worker processes of its own (waiting for those running; none is started after)."""
+        if self.own_pool is not None:
+            self.own_pool.shutdown(wait=True, cancel_futures=True)
 
     def _stored(self, job: FitJob) -> Path:
         return self.outdir / "fits" / f"{job.index:03d}_{job.stage}.json"
@@ -261,8 +279,9 @@ class FitRunner:
         write_json(self._stored(job), record)
         return record
 
-    def run(self, jobs: list[FitJob], label: str) -> dict[int, dict]:
-        """Fit every job; returns the stored record of each by spectrum index."""
+    def run(self, jobs: list[FitJob], label: str, seeded: bool = True) -> dict[int, dict]:
+        """Fit every job; returns the stored record of each by spectrum index.  Unless `seeded` is False,
+        each fit starts from the fits of lower levels (:func:`_seed_levels`)."""
         records: dict[int, dict] = {}
         task = self.progress.add_task(label, total=len(jobs))
         todo = []
@@ -275,7 +294,7 @@ class FitRunner:
                 todo.append(job)
         self.progress.refresh()
         by_index = {j.index: j for j in todo}
-        levels = _seed_levels(self.series, [j.index for j in jobs])
+        levels = _seed_levels(self.series, [j.index for j in jobs]) if seeded else {j.index: 0 for j in jobs}
         waiting = sorted(by_index, key=lambda i: (levels[i], self.series.spectra[i].temperature_k, i))
         running: dict = {}
 
@@ -287,10 +306,14 @@ class FitRunner:
             done = [(self.series.spectra[j], records[j]["fit"]) for j in sorted(levels)
                     if levels[j] < levels[index] and records[j]["status"] == "fitted"]
             start = _start_values(self.series.spectra[index], done)
-            if self.pool is None:
-                running[index] = _run_job(self.series.model, by_index[index], start)
+            spectrum = _read_job(self.series.model, by_index[index])
+            if isinstance(spectrum, dict):  # unreadable: failed here, nothing to send
+                collect(index, spectrum)
+            elif self.pool is None:
+                running[index] = _run_job(self.series.model, by_index[index], start, spectrum)
             else:
-                running[index] = self.pool.submit(_run_job, self.series.model, by_index[index], start)
+                running[index] = self.pool.submit(in_worker, self.caller, _run_job, self.series.model,
+                                                  by_index[index], start, spectrum)
 
         def collect(index: int, result: dict) -> None:
             records[index] = self._store(by_index[index], result)
@@ -300,6 +323,8 @@ class FitRunner:
         while waiting or running:
             for index in [i for i in waiting if ready(i)][: max(0, self.workers - len(running))]:
                 submit(index)
+            if not running:
+                continue
             if self.pool is None:
                 index, result = running.popitem()
                 collect(index, result)
@@ -325,7 +350,7 @@ class FitRunner:
                 out.append(function(*args))
                 advance()
             return out
-        pending = [self.pool.submit(function, *args) for args in calls]
+        pending = [self.pool.submit(in_worker, self.caller, function, *args) for args in calls]
         for _ in futures.as_completed(pending):
             advance()
         return [f.result() for f in pending]

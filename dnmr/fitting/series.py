@@ -26,6 +26,7 @@ still fitted.
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import json
 import math
 import os
@@ -37,11 +38,12 @@ from dnmr.errors import InputError
 from dnmr.fitting.resultsfolder import prepare_results_folder, release_results_folder, write_json
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, identity_key, restored_fit
 from dnmr.fitting.seriesfile import Series, load_series
-from dnmr.fitting.seriesoutput import (draw_fit_figures, file_sha256, rate_row, save_and_close, write_rates_csv,
-                                       write_results_json)
+from dnmr.fitting.seriesoutput import (draw_fit_figures, file_sha256, rate_row, rendered_and_closed, save_and_close,
+                                       write_rates_csv, write_results_json)
 from dnmr.fitting.treatments import fit_reference_lines, fit_with_trends, fit_without_trends
 from dnmr.fitting.trends import ParameterTrend, StaticTrend, temperature_span
 from dnmr.fitting.workers import single_threaded_blas
+from dnmr.io.output import atomic_write_bytes, figure_file
 from dnmr.io.progress import ProgressReport
 from dnmr.model import Model
 from dnmr.notebook import NotebookView
@@ -167,27 +169,22 @@ def _trend_text(line: ParameterTrend) -> str:
 def _posterior_rate_text(q: Mapping) -> str:
     """One posterior rate (a PosteriorSummary as plain data) in words."""
     if q["kind"] == "upper-bound":
-        return f"k < {q['bound_95']:.3g} s^-1 (95 % upper bound)"
+        return f"k < {q['bound95']:.3g} s^-1 (95 % upper bound)"
     if q["kind"] == "lower-bound":
-        return f"k > {q['bound_95']:.3g} s^-1 (95 % lower bound)"
+        return f"k > {q['bound95']:.3g} s^-1 (95 % lower bound)"
     if q["kind"] == "undetermined":
         return "k not determined (the posterior is the prior)"
     return f"k = {q['median']:.3g} s^-1, 95 % interval {q['ci95'][0]:.3g} to {q['ci95'][1]:.3g}"
 
 
-def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path,
-                   record: tuple[Path, str]) -> dict:
-    """Sample the posterior of one fit, save its pairwise posterior figure and store the summary in record[0] under
-    the key record[1] (what ``--resume`` reuses; in a worker process); never raises: a failure comes back
-    as {"error": ...} and is not stored."""
+def _posterior_job(model: Model, fit_data: dict, curves: dict, settings: dict, path: Path) -> dict:
+    """Sample the posterior of one fit (in a worker): its summary and the image file of its pairwise posterior
+    figure (in the format of `path`'s suffix); never raises: a failure comes back as {"error": ...}."""
     from dnmr.fitting.posterior import sample_spectrum_posterior
 
     try:
         posterior = sample_spectrum_posterior(restored_fit(model, fit_data, curves), **settings)
-        save_and_close(posterior.plot(), path)
-        summary = {**posterior.to_dict(), "figure": str(path)}
-        write_json(record[0], {"key": record[1], "posterior": summary})
-        return summary
+        return {"summary": {**posterior.to_dict(), "figure": str(path)}, "image": rendered_and_closed(posterior.plot(), path)}
     except InputError as err:
         return {"error": str(err)}
     except Exception as err:  # one spectrum's sampling failing must not lose the others
@@ -203,7 +200,7 @@ def _sample_posteriors(result: SeriesFit, runner: FitRunner, settings: dict, has
     for i, o in enumerate(result.outcomes):
         if not o.fitted:
             continue
-        figure = result.outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}_posterior.png"
+        figure = figure_file(result.outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}_posterior.png")
         stored = result.outdir / "fits" / f"{i:03d}_posterior.json"
         identity = {"spectrum": hashes[i], "model": hashes["model"], "stage": o.stage, "fit": o.fit.to_dict(),
                     "settings": settings, "dnmr": __version__}
@@ -213,12 +210,16 @@ def _sample_posteriors(result: SeriesFit, runner: FitRunner, settings: dict, has
             o.posterior = reused
             o.notes.append("posterior reused from the earlier run")
             continue
-        calls.append((result.series.model, o.fit.to_dict(), o.fit.curves(), settings, figure, (stored, key)))
-        where.append(o)
-    for o, posterior in zip(where, runner.map(_posterior_job, calls, label="sampling posteriors")):
-        o.posterior = posterior
-        if "error" in posterior:
-            o.notes.append(f"posterior not sampled: {posterior['error']}")
+        calls.append((result.series.model, o.fit.to_dict(), o.fit.curves(), settings, figure))
+        where.append((o, stored, key))
+    for (o, stored, key), sampled in zip(where, runner.map(_posterior_job, calls, label="sampling posteriors")):
+        if "error" in sampled:
+            o.posterior = sampled
+            o.notes.append(f"posterior not sampled: {sampled['error']}")
+            continue
+        atomic_write_bytes(Path(sampled["summary"]["figure"]), sampled["image"], overwrite=True)
+        write_json(stored, {"key": key, "posterior": sampled["summary"]})  # what --resume reuses
+        o.posterior = sampled["summary"]
 
 
 def _stored_posterior(path: Path, key: str, figure: Path) -> dict | None:
@@ -239,6 +240,7 @@ def fit_series(
     workers: int | None = None,
     progress: bool | None = None,
     posterior: Mapping | None = None,
+    executor: futures.Executor | None = None,
 ) -> SeriesFit:
     """Fit every spectrum of a variable-temperature series and write the results to `outdir`.
 
@@ -255,7 +257,8 @@ def fit_series(
         Continue an earlier run of the same series in `outdir`: completed fits whose inputs are unchanged
         are reused, the rest are fitted.
     workers : int, optional
-        Worker processes (default one per core; 1 fits in this process).
+        Worker processes (default one per core; 1 fits in this process).  With `executor`: how many tasks
+        (fits, figures, posteriors) are handed to it at once (default: one per core of this machine).
     progress : bool, optional
         False: no progress report.  Otherwise progress on stderr: a live bar on a terminal, plain lines
         (``fitting spectra: 3 of 17 done (260 K), 12 s elapsed``) when stderr is a file or a pipe.
@@ -266,6 +269,11 @@ def fit_series(
         spectrum; emcee's ensemble, walkers x steps evaluations, where that is not reliable or asked for).  The summaries go into results.json and at the end of rates.csv, a pairwise posterior figure
         per spectrum into ``figures/NNN_<name>_posterior.png``.  On `resume`, a posterior stored for the
         same spectrum, model, fit and settings is reused.
+    executor : concurrent.futures.Executor, optional
+        Run the fits, figures and posteriors there instead of in worker processes of dnmr's own: a thread or
+        process pool, a Dask client's ``get_executor()``...  It is left running.  The spectra are read
+        here and sent with the tasks, and results come back as data written here, so its workers need
+        dnmr (the same version) but not the files.  The results are the same as without it.
 
     Returns
     -------
@@ -280,18 +288,18 @@ def fit_series(
     outdir = Path(outdir)
     lock = prepare_results_folder(outdir, series, overwrite, resume)
     try:
-        return _fit_into(series, outdir, resume, workers, progress, posterior)
+        return _fit_into(series, outdir, resume, workers, progress, posterior, executor)
     finally:
         release_results_folder(lock)
 
 
 def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, progress: bool | None,
-              posterior: Mapping | None) -> SeriesFit:
+              posterior: Mapping | None, executor: futures.Executor | None) -> SeriesFit:
     """Fit the series into the prepared, locked `outdir` (see :func:`fit_series`)."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(series.spectra)))
     hashes = {i: file_sha256(s.file) for i, s in enumerate(series.spectra)}
     hashes["model"] = file_sha256(series.model_file)
-    runner = FitRunner(series, outdir, workers, ProgressReport(progress), resume)
+    runner = FitRunner(series, outdir, workers, ProgressReport(progress), resume, executor)
     try:
         with runner.progress, single_threaded_blas():
             references, notes = fit_reference_lines(series)

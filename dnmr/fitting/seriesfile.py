@@ -348,9 +348,10 @@ def load_series(path: str | Path) -> Series:
         spectra = _spectra(data, folder, options)
     except InputError as err:
         raise err.located(source=path) from None
-    model_file, model = _named_model(data["model"], folder, path)
+    model_file, model = named_model(data["model"], path)
     treatments, options, spectra = _without_absent_quantities(model, treatments, options, spectra)
     _check_parameter_names(model, options, spectra, path)
+    _check_rate_ceilings(options, spectra, path)
     try:
         spectra, notes = _flag_duplicates(spectra)
     except InputError as err:
@@ -405,15 +406,17 @@ def _spectra(data: Mapping, folder: Path, options: FitOptions) -> list[SeriesSpe
     return [_spectrum(t, i, folder, options, processing) for i, t in enumerate(tables)]
 
 
-def _named_model(name: str, folder: Path, path: Path) -> tuple[Path, Model]:
-    """The model file named in the series file `path` (relative to its `folder`) and its model."""
+def named_model(name: str, path: Path) -> tuple[Path, Model]:
+    """The model file `name` that the file `path` (a series or experiment file) names relative to its own
+    folder, and its model; a problem names `path` and its key ``model`` too (that is the file the user gave)."""
+    folder = path.resolve().parent
     model_file = (folder / name).resolve()
     if not model_file.is_file():
-        raise InputError(f'no model file "{name}" in {folder}; check the path (relative to the series file)',
+        raise InputError(f'no model file "{name}" in {folder}; check the path (relative to {path.name})',
                          source=path, where="model")
     try:
         return model_file, load_model(model_file)
-    except InputError as err:  # name the series file too: that is the file the user gave
+    except InputError as err:
         raise InputError(str(err), source=path, where="model") from None
 
 
@@ -441,6 +444,18 @@ def _check_parameter_names(model: Model, options: FitOptions, spectra: Sequence[
             fit_parameters(model, opts.region_ppm, opts)
         except InputError as err:
             raise InputError(err.message, source=path, where=f"{where}.{err.where}" if err.where else where) from None
+
+
+def _check_rate_ceilings(options: FitOptions, spectra: Sequence[SeriesSpectrum], path: Path) -> None:
+    """Refuse rates above kB T/h (:meth:`FitOptions.check_rate_ceiling`) before any fit: those of [fit] at the
+    coldest spectrum's temperature (where the ceiling is lowest), those a [[spectrum]] adds at its own."""
+    coldest = min(spectra, key=lambda s: s.temperature_k)
+    checks = [("fit", options, coldest.temperature_k, f" ({coldest.where}, the coldest of the series)")]
+    for where, opts, temperature, at in checks + [(s.where, s.options, s.temperature_k, "") for s in spectra]:
+        try:
+            opts.check_rate_ceiling(temperature, at)
+        except InputError as err:
+            raise InputError(err.message, source=path, where=f"{where}.{err.where}") from None
 
 
 def _populations_matter(model: Model) -> bool:

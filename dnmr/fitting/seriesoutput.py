@@ -29,17 +29,17 @@ from dnmr.fitting.resultsfolder import write_json
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, restored_fit
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.trends import StaticTrend
-from dnmr.io.output import atomic_write_text, save_figure
+from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, figure_file, save_figure
 from dnmr.model import Model
 
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
-                "log10_rate", "log10_rate_stderr", "ci68_low_per_s", "ci68_high_per_s")
+                "log10_rate", "log10_rate_stderr", "rate_ci68_lower", "rate_ci68_upper")
 """The first columns of rates.csv (the contract's six, then the rate's status, log10 and 68 % interval)."""
 TAIL_COLUMNS = ("offset_hz", "phase0_deg", "chi_square", "reduced_chi_square", "noise", "log10_rate_stderr_held",
-                "treatment", "spectrum", "flags", "note")
+                "treatment", "spectrum", "flags", "notes")
 """The columns of rates.csv after the static parameters of each spectrum."""
-POSTERIOR_COLUMNS = ("posterior_median_per_s", "posterior_ci95_low_per_s", "posterior_ci95_high_per_s",
-                     "posterior_bound95_per_s")
+POSTERIOR_COLUMNS = ("posterior_rate_median", "posterior_rate_ci95_lower", "posterior_rate_ci95_upper",
+                     "posterior_rate_bound95")
 """Added at the end of rates.csv when the posteriors were sampled (``dnmr fit --posterior``)."""
 
 
@@ -76,26 +76,26 @@ def rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) -> 
         row.update({c: "" for c in RATE_COLUMNS[2:]})
         row.update(status="failed")
         row.update({c: "" for c in TAIL_COLUMNS})
-        row.update(spectrum=str(s.file), flags=";".join(("failed",) + s.flags), note=outcome.error)
+        row.update(spectrum=str(s.file), flags=";".join(("failed",) + s.flags), notes=outcome.error)
         return row
     r = fit.rates[i]
     row.update(rate_per_s=r.rate_per_s, rate_stderr=r.rate_stderr, rate_lower=r.rate_lower, rate_upper=r.rate_upper,
                status=r.status, log10_rate=r.log10_rate,
-               log10_rate_stderr=r.log10_stderr if r.status == "determined" else math.nan,
-               ci68_low_per_s=r.interval_per_s[0], ci68_high_per_s=r.interval_per_s[1])
-    for name, par in fit.parameters.items():
+               log10_rate_stderr=r.log10_rate_stderr if r.status == "determined" else math.nan,
+               rate_ci68_lower=r.rate_ci68[0], rate_ci68_upper=r.rate_ci68[1])
+    for name, par in fit.lmfit_parameters.items():
         if name.startswith(("linewidth_hz_", "shift_ppm_", "coupling_hz_", "population_")):
             row[name] = par.value
-    p = fit.parameters
+    p = fit.lmfit_parameters
     row.update(offset_hz=p["offset_hz"].value, phase0_deg=p["phase0_deg"].value, chi_square=fit.chi_square,
                reduced_chi_square=fit.reduced_chi_square, noise=fit.noise.sigma,
-               log10_rate_stderr_held=r.log10_stderr_held if r.log10_stderr_held > 0 else math.nan,
+               log10_rate_stderr_held=r.log10_rate_stderr_held if r.log10_rate_stderr_held > 0 else math.nan,
                treatment=";".join(f"{q}={how}" for q, how in outcome.treatment.items()), spectrum=str(s.file),
                flags=";".join(list(fit.flags) + outcome.flags + list(s.flags)),
-               note=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
+               notes=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
     post = outcome.posterior_rate(i)
     if post is not None:
-        row.update(zip(POSTERIOR_COLUMNS, (post["median"], *post["ci95"], post["bound_95"])))
+        row.update(zip(POSTERIOR_COLUMNS, (post["median"], *post["ci95"], post["bound95"])))
     return {k: _cell(v) for k, v in row.items()}
 
 
@@ -104,9 +104,20 @@ def save_and_close(fig, path: Path) -> str:
     return str(save_figure(fig, path, overwrite=True, close=True))
 
 
-def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> str:
-    """Draw and save the figure of one fit (in a worker process)."""
-    return save_and_close(restored_fit(model, fit_data, curves).plot(), path)
+def rendered_and_closed(fig, path: Path) -> bytes:
+    """The image file of a figure of the results in the format `path` asks for (its suffix, ``.png``
+    following :func:`dnmr.io.output.figures_as` as the caller resolved it); the figure is closed."""
+    import matplotlib.pyplot as plt
+
+    try:
+        return figure_bytes(fig, path.suffix.lstrip("."))
+    finally:
+        plt.close(fig)
+
+
+def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
+    """The image file of the figure of one fit (in a worker)."""
+    return rendered_and_closed(restored_fit(model, fit_data, curves).plot(), path)
 
 
 def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
@@ -129,9 +140,10 @@ def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: 
     draws = []
     for i, o in enumerate(outcomes):
         if o.fitted:
-            path = outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}.png"
+            path = figure_file(outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}.png")
             draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
-    runner.map(_draw_job, draws)
+    for (*_, path), image in zip(draws, runner.map(_draw_job, draws)):
+        atomic_write_bytes(path, image, overwrite=True)
 
 
 def write_results_json(path: Path, series: Series, outcomes: Sequence[SpectrumOutcome], trend: StaticTrend | None,

@@ -15,7 +15,7 @@ line); ``phase1_deg`` is the change of that error across the region; a positive 
 every line to higher frequency.
 
 Parameters (lmfit, one per quantity; each can be fixed, bounded or tied by an lmfit expression):
-``log10_k_<process>`` (rates are fitted on a log scale), ``amplitude``, ``baseline_0..3``,
+``log10_rate_<process>`` (rates are fitted on a log scale), ``amplitude``, ``baseline_0..3``,
 ``phase0_deg``, ``phase1_deg``, ``offset_hz``, ``linewidth_hz_<state>``, ``population_<state>``,
 ``shift_ppm_<state>_<spin>``, ``coupling_hz_<state>_<spin>_<spin>`` (one per coupling the model file
 gives).  Names are the model's names with anything but letters, digits and _ turned into _.
@@ -49,7 +49,7 @@ Method
    from the slow-exchange trend, a linewidth from a reference line) carries that error into every rate
    by implicit differentiation of the normal equations at the optimum
    (:func:`dnmr.fitting.rates.held_shares`); the same amount widens each side of the profile interval
-   in quadrature.  Each rate keeps the split (``log10_stderr_spectrum``, ``log10_stderr_held`` and the
+   in quadrature.  Each rate keeps the split (``log10_rate_stderr_spectrum``, ``log10_rate_stderr_held`` and the
    share of every held parameter).
 """
 from __future__ import annotations
@@ -66,11 +66,13 @@ import numpy as np
 
 from dnmr.errors import InputError, did_you_mean
 from dnmr.fitting.parameters import (
+    RATE_PREFIX,
     FitParameter,
     ParameterLayout,
     apply_settings,
     as_fit_parameters,
     checked_settings,
+    fitted_parameters,
     held_errors,
     parameter_record,
     parameters_from_records,
@@ -78,12 +80,13 @@ from dnmr.fitting.parameters import (
     with_values,
 )
 from dnmr.fitting.problem import FitProblem, NoiseEstimate, Profile, estimate_noise, profile_with_restarts
-from dnmr.fitting.ranges import number_pair, ppm_regions
+from dnmr.fitting.ranges import check_rate_ceiling, number_pair, ppm_regions
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
 from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.measured import MeasuredSpectrum
+from dnmr.kinetics import STANDARD_TEMPERATURE_K
 from dnmr.model import Model
 from dnmr.notebook import NotebookView
 
@@ -201,6 +204,21 @@ class FitOptions:
                              where="scan_points")
         set_("parameters", checked_settings(self.parameters))
 
+    def check_rate_ceiling(self, temperature_k: float, at: str = "") -> None:
+        """Refuse a rate these options give (the upper end of ``rate_limits_per_s`` or ``rate_scan_per_s``, a
+        start, lower or upper of a ``log10_rate_`` parameter) above kB T/h at `temperature_k` (K), which no
+        molecule reaches; `at` says whose temperature it is in the message.  See
+        :func:`dnmr.fitting.ranges.check_rate_ceiling`."""
+        for name in ("rate_limits_per_s", "rate_scan_per_s"):
+            hi = getattr(self, name)[1]
+            check_rate_ceiling(math.log10(hi), temperature_k, name, f"{hi:g} s^-1", at)
+        for name, setting in self.parameters.items():
+            if name.startswith(RATE_PREFIX):
+                for key in ("start", "lower", "upper"):
+                    if key in setting:
+                        check_rate_ceiling(setting[key], temperature_k, f"parameters.{name}.{key}",
+                                           f"log10 k = {setting[key]:g}", at)
+
     def replace(self, **changes) -> "FitOptions":
         """A copy with some options changed."""
         return dataclasses.replace(self, **changes)
@@ -233,9 +251,11 @@ class SpectrumFit(NotebookView):
     ----------
     rates : list of RateEstimate
         One per exchange process, in model order.
-    parameters : lmfit.Parameters
-        Every parameter with its value, standard error (scaled as described in the module notes),
-        bounds and expression.
+    parameters : dict of str to FitParameter
+        Every parameter by name with its estimate, standard error (scaled as described in the module
+        notes), range, tie and correlations (a property, from `lmfit_parameters`).
+    lmfit_parameters : lmfit.Parameters
+        The same as the fitting wing works with them (lmfit stays inside :mod:`dnmr.fitting`).
     chi_square, reduced_chi_square : float
         sum ((data - fit)/noise)^2 and that over the degrees of freedom.
     degrees_of_freedom : int
@@ -268,7 +288,7 @@ class SpectrumFit(NotebookView):
     """
 
     rates: list[RateEstimate]
-    parameters: lmfit.Parameters
+    lmfit_parameters: lmfit.Parameters
     chi_square: float
     reduced_chi_square: float
     degrees_of_freedom: int
@@ -289,6 +309,11 @@ class SpectrumFit(NotebookView):
     jacobian_evaluations: int = 0
 
     @property
+    def parameters(self) -> dict[str, FitParameter]:
+        """Every fit parameter by name, in dnmr's words (estimate, stderr, range, tie; see :class:`FitParameter`)."""
+        return fitted_parameters(self.lmfit_parameters, self.options.parameters)
+
+    @property
     def residuals(self) -> np.ndarray:
         """data - fit (intensity units)."""
         return self.data - self.fitted
@@ -304,7 +329,7 @@ class SpectrumFit(NotebookView):
 
     def correlation(self, first: str, second: str) -> float:
         """Correlation of the estimates of two free parameters (NaN when the covariance gave none)."""
-        value = (self.parameters[first].correl or {}).get(second)
+        value = (self.lmfit_parameters[first].correl or {}).get(second)
         return math.nan if value is None else float(value)
 
     def report(self) -> str:
@@ -322,7 +347,7 @@ class SpectrumFit(NotebookView):
                   f"noise {self.noise.sigma:.4g} per point from the {self.noise.method} "
                   f"({self.noise.points} points, correlation factor {self.noise.correlation_factor:.2f}); "
                   f"error scale {self.error_scale:.3g}", "", "parameters:"]
-        for par in self.parameters.values():
+        for par in self.lmfit_parameters.values():
             state = "fixed" if not par.vary and not par.expr else (f"= {tie_text(par)}" if par.expr else "")
             err = "" if par.stderr is None or not np.isfinite(par.stderr) or state else f"± {par.stderr:.4g}"
             bounds = "" if state else f"[{par.min:.4g}, {par.max:.4g}]"
@@ -359,7 +384,7 @@ class SpectrumFit(NotebookView):
             "region_ppm": [float(self.ppm[0]), float(self.ppm[-1])],
             "points": int(self.ppm.size),
             "rates": [r.to_dict() for r in self.rates],
-            "parameters": {p.name: parameter_record(p) for p in self.parameters.values()},
+            "parameters": {p.name: parameter_record(p) for p in self.lmfit_parameters.values()},
             "chi_square": self.chi_square,
             "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom,
@@ -380,7 +405,7 @@ class SpectrumFit(NotebookView):
         params = parameters_from_records(data["parameters"], layout)
         fitted = np.array(curves["fit"], float)
         return cls(
-            rates=[RateEstimate.from_dict(r) for r in data["rates"]], parameters=params,
+            rates=[RateEstimate.from_dict(r) for r in data["rates"]], lmfit_parameters=params,
             chi_square=data["chi_square"], reduced_chi_square=data["reduced_chi_square"],
             degrees_of_freedom=data["degrees_of_freedom"], noise=NoiseEstimate(**data["noise"]),
             error_scale=data["error_scale"], flags=list(data["flags"]), notes=list(data["notes"]),
@@ -465,6 +490,8 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
     """The work of :func:`fit_spectrum`."""
     if temperature_k is not None:
         model = model.at_temperature(temperature_k)
+    temperature = model.temperature_k or STANDARD_TEMPERATURE_K
+    options.check_rate_ceiling(temperature, "" if model.temperature_k else " (no temperature given)")
     spectrum = spectrum_for_model(spectrum, model)
     lo, hi, origin = fit_region(spectrum, model, options.region_ppm)
     part = spectrum.region(lo, hi)
@@ -498,7 +525,7 @@ def _fit(spectrum, model: Model, temperature_k: float | None, options: FitOption
               if r.status in ("upper-bound", "lower-bound", "interval", "undetermined")]
     values = best.params.valuesdict()
     return SpectrumFit(
-        rates=rates, parameters=best.params, chi_square=float(best.chisqr),
+        rates=rates, lmfit_parameters=best.params, chi_square=float(best.chisqr),
         reduced_chi_square=float(best.chisqr / max(dof, 1)), degrees_of_freedom=int(dof), noise=noise,
         error_scale=float(scale), flags=flags, notes=notes, ppm=part.ppm.copy(), data=part.intensity.copy(),
         fitted=problem.predict(values), baseline=problem.baseline(values), best_model=layout.model_from(values),

@@ -17,7 +17,8 @@ import dataclasses
 import io
 import json
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -28,16 +29,22 @@ from dnmr.engine.longitudinal import LongitudinalSystem, model_sites, process_pa
 from dnmr.errors import InputError
 from dnmr.fitting.matrixmethod import SiteRates, matrix_method
 from dnmr.fitting.seriesoutput import RATE_COLUMNS
-from dnmr.fitting.parameters import parameter_identifier, parameter_record, parameter_stderr
+from dnmr.fitting.parameters import FitParameter, fitted_parameters, parameter_identifier, parameter_record, parameter_stderr
 from dnmr.fitting.problem import BetterMinimum, NoiseEstimate, PROFILE_RESTARTS, error_scale, minimize, profile_parameter
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate
+from dnmr.fitting.resultsfolder import (earlier_manifest, holds_results, listed_files, lock_results_folder,
+                                        refuse_inputs_among, release_results_folder, remove_earlier_results)
 from dnmr.fitting.transferfile import Experiment, load_experiment
 from dnmr.formatting import significant
-from dnmr.io.output import atomic_write_text, json_ready, new_output_folder, save_figure
+from dnmr.io.output import atomic_write_text, figure_file, json_ready, save_figure
 
 #: Columns of rates.csv after those of ``dnmr fit`` (RATE_COLUMNS).
 TRANSFER_COLUMNS = ("method", "matrix_rate_per_s", "matrix_rate_stderr", "chi_square", "reduced_chi_square",
-                    "data", "flags", "note")
+                    "data", "flags", "notes")
+#: The files ``dnmr transfer`` writes into its folder: results.json (its manifest), rates.csv, the figure.
+TRANSFER_FILES = ("results.json", "rates.csv", "fit.png")
+#: The program results.json names: how a later ``--overwrite`` knows a folder as one of ``dnmr transfer``.
+TRANSFER_PROGRAM = "dnmr transfer"
 #: Steps of the coarse scan over log10 k (decades).
 SCAN_STEP_DECADES = 1.0
 
@@ -59,7 +66,7 @@ class _TransferProblem:
         populations = model.populations()
         self.equilibrium = np.array([populations[model.state_index(s.state)] * s.nuclei for s in self.sites])
         self.patterns = process_patterns(model)
-        self.rate_names = tuple(f"log10_k_{parameter_identifier(p)}" for p in model.process_names())
+        self.rate_names = tuple(f"log10_rate_{parameter_identifier(p)}" for p in model.process_names())
         self.data = data.values
         self.sigma = np.ones_like(self.data) if data.stderr is None else data.stderr
         self.nfev = 0
@@ -186,8 +193,11 @@ class TransferFit:
         What was fitted.
     rates : list of RateEstimate
         One per exchange process, in model order (forward rates, s^-1).
-    parameters : lmfit.Parameters
-        Every parameter (log10_k_*, r1_per_s_*, m_eq_*, inversion_efficiency) with its scaled error.
+    parameters : dict of str to FitParameter
+        Every parameter (log10_rate_*, r1_per_s_*, m_eq_*, inversion_efficiency) with its estimate and scaled
+        error (a property, from `lmfit_parameters`).
+    lmfit_parameters : lmfit.Parameters
+        The same as the fitting wing works with them.
     chi_square, reduced_chi_square : float
         Sum of squared weighted residuals and that over the degrees of freedom.
     degrees_of_freedom : int
@@ -204,7 +214,7 @@ class TransferFit:
 
     experiment: Experiment
     rates: list[RateEstimate]
-    parameters: lmfit.Parameters
+    lmfit_parameters: lmfit.Parameters
     chi_square: float
     reduced_chi_square: float
     degrees_of_freedom: int
@@ -215,13 +225,18 @@ class TransferFit:
     matrix_method: list[SiteRates] = field(default_factory=list)
 
     @property
+    def parameters(self) -> dict[str, FitParameter]:
+        """Every fit parameter by name, in dnmr's words (estimate, stderr, range; see :class:`FitParameter`)."""
+        return fitted_parameters(self.lmfit_parameters, {})
+
+    @property
     def residuals(self) -> np.ndarray:
         """Data minus fit, shaped like the data."""
         return self.experiment.data.values - self.fitted
 
     def curve(self, times_s: Sequence[float]) -> np.ndarray:
         """The fitted model at any times (s), shaped like the data with those times."""
-        return _TransferProblem(self.experiment).predict(self.parameters.valuesdict(), np.asarray(times_s, dtype=float))
+        return _TransferProblem(self.experiment).predict(self.lmfit_parameters.valuesdict(), np.asarray(times_s, dtype=float))
 
     def plot(self, figure=None):
         """Data, fitted curves and residuals (:func:`dnmr.reporting.plotting.plot_transfer_fit`)."""
@@ -233,7 +248,7 @@ class TransferFit:
         """R1 (s^-1) and its standard error for each site (error NaN where fixed or tied)."""
         out = {}
         for site in model_sites(self.experiment.model):
-            par = self.parameters[f"r1_per_s_{parameter_identifier(site.label)}"]
+            par = self.lmfit_parameters[f"r1_per_s_{parameter_identifier(site.label)}"]
             out[site.label] = (float(par.value), parameter_stderr(par) if par.vary else math.nan)
         return out
 
@@ -258,8 +273,8 @@ class TransferFit:
                 lines.append(f"  {'':<{width}}  ({r.reason})")
         for label, (value, err) in self.relaxation().items():
             lines.append(f"  R1 {label}: {significant(value, 4)} s^-1" + (f" ± {significant(err, 2)}" if np.isfinite(err) else " (fixed or tied)"))
-        if "inversion_efficiency" in self.parameters:
-            par = self.parameters["inversion_efficiency"]
+        if "inversion_efficiency" in self.lmfit_parameters:
+            par = self.lmfit_parameters["inversion_efficiency"]
             lines.append(f"  inversion efficiency {par.value:.3f}" + (f" ± {parameter_stderr(par):.3f}" if par.vary else " (fixed)"))
         combined = self.matrix_method[-1] if self.matrix_method else None
         if combined is not None:
@@ -277,14 +292,14 @@ class TransferFit:
             row = {"temperature_k": exp.temperature_k, "process": r.process, "rate_per_s": r.rate_per_s,
                    "rate_stderr": r.rate_stderr, "rate_lower": r.rate_lower, "rate_upper": r.rate_upper,
                    "status": r.status, "log10_rate": r.log10_rate,
-                   "log10_rate_stderr": r.log10_stderr if r.status == "determined" else math.nan,
-                   "ci68_low_per_s": r.interval_per_s[0], "ci68_high_per_s": r.interval_per_s[1],
+                   "log10_rate_stderr": r.log10_rate_stderr if r.status == "determined" else math.nan,
+                   "rate_ci68_lower": r.rate_ci68[0], "rate_ci68_upper": r.rate_ci68[1],
                    "method": exp.experiment,
                    "matrix_rate_per_s": float(combined.process_rates[i]) if combined else math.nan,
                    "matrix_rate_stderr": float(combined.process_stderr[i]) if combined else math.nan,
                    "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
                    "data": exp.data.source, "flags": ";".join(self.flags),
-                   "note": " ".join(([r.reason] if r.reason and r.status != "determined" else []) + self.notes)}
+                   "notes": " ".join(([r.reason] if r.reason and r.status != "determined" else []) + self.notes)}
             rows.append({k: "" if isinstance(v, float) and not math.isfinite(v) else v for k, v in row.items()})
         return rows
 
@@ -298,7 +313,7 @@ class TransferFit:
             "sites": [s.label for s in model_sites(exp.model)], "observed_sites": list(exp.data.sites),
             "rates": [r.to_dict() for r in self.rates],
             "relaxation_per_s": {k: {"value": v, "stderr": e} for k, (v, e) in self.relaxation().items()},
-            "parameters": {n: parameter_record(p) for n, p in self.parameters.items()},
+            "parameters": {n: parameter_record(p) for n, p in self.lmfit_parameters.items()},
             "chi_square": self.chi_square, "reduced_chi_square": self.reduced_chi_square,
             "degrees_of_freedom": self.degrees_of_freedom, "error_scale": self.error_scale,
             "flags": self.flags, "notes": self.notes,
@@ -412,37 +427,86 @@ def _transfer_estimate(estimate: RateEstimate, problem: _TransferProblem, params
 # output
 
 
-def write_transfer(fit: TransferFit, outdir: str | Path, overwrite: bool = False) -> Path:
-    """Write ``rates.csv``, ``results.json`` and ``fit.png`` of `fit` into the new folder `outdir` (atomically; an
-    existing non-empty folder only with `overwrite`).  Returns the folder."""
-    outdir = new_output_folder(outdir, overwrite=overwrite)
-    rows = fit.rate_rows()
+def transfer_files() -> list[str]:
+    """The files ``dnmr transfer`` writes into its folder (the figure in the chosen format): results.json,
+    its manifest, first."""
+    return list(TRANSFER_FILES[:2]) + [figure_file(TRANSFER_FILES[2]).name]
+
+
+@contextmanager
+def transfer_folder(outdir: Path, experiment: Experiment, overwrite: bool) -> Iterator[list[str]]:
+    """Hold `outdir` for the results of `experiment` while the block runs: refused when it would write over
+    an input, when it holds anything (unless `overwrite`), when what it holds is not an earlier
+    ``dnmr transfer`` run's (its results.json names the program and its files) and while another dnmr
+    run writes into it; locked meanwhile (:func:`dnmr.fitting.resultsfolder.lock_results_folder`), and a
+    folder created for the run that nothing could be written into is removed again.
+
+    Yields
+    ------
+    list of str
+        The files of the earlier run in `outdir` that the new results replace (none in a new folder).
+    """
+    if outdir.exists() and not outdir.is_dir():
+        raise InputError(f"{outdir} is a file; give a folder for the results", where="--output")
+    refuse_inputs_among(outdir, experiment.inputs(), transfer_files(), ())
+    existed = holds_results(outdir)
+    if existed and not overwrite:
+        raise InputError(f"{outdir} already exists; pass --overwrite to replace its results", where="--output")
+    lock = lock_results_folder(outdir, TRANSFER_PROGRAM)
+    try:
+        earlier = earlier_manifest(outdir / TRANSFER_FILES[0], TRANSFER_PROGRAM) if existed else None
+        if existed and earlier is None:
+            raise InputError(f"{outdir} holds no dnmr transfer results (no results.json of dnmr transfer's), so there "
+                             "is nothing of dnmr's to replace; choose a new folder", where="--output")
+        yield listed_files(earlier)
+    finally:
+        release_results_folder(lock)
+
+
+def _write_into(fit: TransferFit, outdir: Path, earlier: Sequence[str], overwrite: bool) -> None:
+    """Write the results of `fit` into the held folder `outdir` (:func:`transfer_folder`), once the files of an
+    earlier run there (`earlier`) are removed: results.json (naming the program and its files) first."""
+    names = transfer_files()
+    remove_earlier_results(outdir, list(earlier) + names)
+    manifest = {"program": TRANSFER_PROGRAM, "files": names, **fit.to_dict()}
+    atomic_write_text(outdir / names[0], json.dumps(json_ready(manifest), indent=1, allow_nan=False) + "\n",
+                      overwrite=overwrite)
     buffer = io.StringIO()
     writer = csv.DictWriter(buffer, fieldnames=list(RATE_COLUMNS) + list(TRANSFER_COLUMNS), lineterminator="\n")
     writer.writeheader()
-    for row in rows:
+    for row in fit.rate_rows():
         writer.writerow({k: repr(v) if isinstance(v, float) else v for k, v in row.items()})
-    atomic_write_text(outdir / "rates.csv", buffer.getvalue(), overwrite=overwrite)
-    atomic_write_text(outdir / "results.json", json.dumps(json_ready(fit.to_dict()), indent=1, allow_nan=False) + "\n",
-                      overwrite=overwrite)
-    save_figure(fit.plot(), outdir / "fit.png", overwrite=overwrite, close=True)
+    atomic_write_text(outdir / names[1], buffer.getvalue(), overwrite=overwrite)
+    save_figure(fit.plot(), outdir / TRANSFER_FILES[2], overwrite=overwrite, close=True)
+
+
+def write_transfer(fit: TransferFit, outdir: str | Path, overwrite: bool = False) -> Path:
+    """Write ``results.json``, ``rates.csv`` and ``fit.png`` of `fit` into the folder `outdir` (atomically; a
+    folder holding anything only with `overwrite`, and then only one an earlier ``dnmr transfer`` wrote,
+    whose own files alone are replaced; see :func:`transfer_folder`).  Returns the folder."""
+    outdir = Path(outdir)
+    with transfer_folder(outdir, fit.experiment, overwrite) as earlier:
+        _write_into(fit, outdir, earlier, overwrite)
     return outdir
 
 
 def run_transfer(experiment_file: str | Path, outdir: str | Path, overwrite: bool = False) -> TransferFit:
-    """Read an experiment file, fit it and write ``rates.csv`` and ``results.json`` into `outdir`.
+    """Read an experiment file, fit it and write ``results.json``, ``rates.csv`` and ``fit.png`` into `outdir`.
 
     Parameters
     ----------
     experiment_file : str or Path
         The experiment file (TOML).
     outdir : str or Path
-        A new (or empty) folder for the results; an existing one only with `overwrite`.
+        A new (or empty) folder for the results; an existing one only with `overwrite`.  It is checked
+        and locked before the fit (:func:`transfer_folder`): a second run into it meanwhile is refused.
     overwrite : bool
-        Replace the results of an earlier run.
+        Replace the results of an earlier ``dnmr transfer`` run (only the files it wrote; a folder it did
+        not write is refused).
     """
     experiment = load_experiment(experiment_file)
-    new_output_folder(outdir, overwrite=overwrite)  # refuse before the work, not after it
-    fit = fit_transfer(experiment)
-    write_transfer(fit, outdir, overwrite=overwrite)
+    outdir = Path(outdir)
+    with transfer_folder(outdir, experiment, overwrite) as earlier:  # refuse before the work, not after it
+        fit = fit_transfer(experiment)
+        _write_into(fit, outdir, earlier, overwrite)
     return fit

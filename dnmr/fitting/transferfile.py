@@ -32,7 +32,9 @@ import numpy as np
 
 from dnmr.engine.longitudinal import model_sites, site_relaxation_rates
 from dnmr.errors import InputError, did_you_mean
-from dnmr.io.modelfile import check_keys, load_model, read_toml
+from dnmr.fitting.ranges import check_rate_ceiling
+from dnmr.fitting.seriesfile import named_model
+from dnmr.io.modelfile import check_keys, read_toml
 from dnmr.io.tables import check_kelvin, read_table
 from dnmr.model import Model
 
@@ -157,6 +159,8 @@ class Experiment:
         The experiment file.
     title : str
         Free text.
+    model_file : str or None
+        The model file the experiment file names.
     """
 
     model: Model
@@ -166,6 +170,11 @@ class Experiment:
     options: TransferOptions = field(default_factory=TransferOptions)
     source: str | None = None
     title: str = ""
+    model_file: str | None = None
+
+    def inputs(self) -> list[str]:
+        """The files the experiment was read from (experiment file, model file, data table), as far as known."""
+        return [f for f in (self.source, self.model_file, self.data.source) if f]
 
     def __post_init__(self):
         if self.experiment not in EXPERIMENTS:
@@ -179,6 +188,8 @@ class Experiment:
                                      where=f"options.{key}")
         if not self.model.exchanges:
             raise InputError("the model has no exchange process to measure", where="model")
+        hi = self.options.rate_limits_per_s[1]
+        check_rate_ceiling(math.log10(hi), self.temperature_k, "options.rate_limits_per_s", f"{hi:g} s^-1")
         for key, kind in (("inverted", "inversion"), ("saturated", "saturation"), ("volume_stderr", "exchange-2d"),
                           ("inversion_efficiency", "inversion")):
             if getattr(self.options, key) not in (None, ()) and self.experiment != kind:
@@ -323,9 +334,11 @@ def load_experiment(path: str | Path) -> Experiment:
             raise InputError("expected text", where="title")
     except InputError as err:
         raise err.located(source=path) from None
-    model = load_model(path.parent / data["model"]).at_temperature(float(temperature))
+    model_file, model = named_model(data["model"], path)
+    model = model.at_temperature(float(temperature))
     table = read_transfer_table(path.parent / data["data"], data["experiment"], model)
     try:
-        return Experiment(model, float(temperature), data["experiment"], table, options, str(path), title)
+        return Experiment(model, float(temperature), data["experiment"], table, options, str(path), title,
+                          str(model_file))
     except InputError as err:
         raise err.located(source=path) from None

@@ -73,9 +73,9 @@ def fit_reference_lines(series: Series) -> tuple[dict[int, dict], list[str]]:
         except Exception as err:  # one spectrum's reference failing leaves its linewidth free, not the series lost
             out[i] = {"window_ppm": list(window), "error": str(err)}
             continue
-        par = fit.parameters["linewidth_hz_reference"]
+        par = fit.lmfit_parameters["linewidth_hz_reference"]
         stderr = math.nan if par.stderr is None else float(par.stderr)
-        record = {"window_ppm": list(window), "width_hz": float(par.value), "stderr_hz": stderr,
+        record = {"window_ppm": list(window), "width_hz": float(par.value), "width_stderr": stderr,
                   "reduced_chi_square": fit.reduced_chi_square, "flags": list(fit.flags)}
         if math.isfinite(stderr) and not any(f.startswith("at-bound:linewidth") for f in fit.flags):
             record["setting"] = {name: held_setting(par.value + ref.added_width_hz, stderr)}
@@ -115,7 +115,7 @@ def _rates_are_slow(fit: SpectrumFit, limit: float) -> bool:
 def _statics_determined(fit: SpectrumFit, kinds: Sequence[str]) -> bool:
     """Every free parameter of `kinds` has a finite error and is off the bounds of its range."""
     prefixes = tuple(PARAMETER_PREFIX[k] for k in kinds)
-    for name, par in fit.parameters.items():
+    for name, par in fit.lmfit_parameters.items():
         if name.startswith(prefixes) and par.vary and not par.expr:
             if par.stderr is None or not math.isfinite(par.stderr) or f"at-bound:{name}" in fit.flags:
                 return False
@@ -143,25 +143,26 @@ def _spectrum_options(series: Series, index: int, references: Mapping[int, dict]
 
 def _slow_stage(series: Series, runner: FitRunner, hashes, references) -> tuple[dict[int, SpectrumOutcome], list[int]]:
     """Fit the coldest spectra with the trended parameters free, a batch (one per worker) at a time, until
-    one is not in slow exchange; returns their outcomes and the slow-exchange run (coldest first)."""
+    one is not in slow exchange (each from the model's values, so that the fits do not depend on the number
+    of workers); returns their outcomes and the slow-exchange run (coldest first)."""
     temp = lambda i: series.spectra[i].temperature_k  # noqa: E731
     order = sorted(range(len(series.spectra)), key=temp)
     limit, kinds = _coalescence_rate(series.model), series.trended()
     below = series.slow_exchange_below_k
     outcomes: dict[int, SpectrumOutcome] = {}
 
-    def run(batch: list[int]) -> None:
+    def run(batch: list[int], seeded: bool) -> None:
         jobs = [fit_job(series, i, STAGE_SLOW, _spectrum_options(series, i, references, {}), hashes) for i in batch]
-        for i, record in runner.run(jobs, "slow-exchange spectra").items():
+        for i, record in runner.run(jobs, "slow-exchange spectra", seeded).items():
             outcomes[i] = outcome_from_record(series, i, record, STAGE_SLOW)
 
     if below is not None:
-        run([i for i in order if temp(i) <= below])
+        run([i for i in order if temp(i) <= below], seeded=True)
         return outcomes, [i for i in order if i in outcomes and outcomes[i].fitted]
     slow: list[int] = []
-    for start in range(0, len(order), runner.workers):
+    for start in range(0, len(order), runner.workers):  # unseeded: the same fits whatever the batch size
         batch = order[start:start + runner.workers]
-        run(batch)
+        run(batch, seeded=False)
         for i in batch:
             fit = outcomes[i].fit
             if fit is None:
@@ -263,14 +264,14 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
     fit = outcome.fit
     for quantity, mode in series.treatments.items():
         prefix = PARAMETER_PREFIX[TREATMENT_KIND[quantity]]
-        names = [n for n in (fit.parameters if fit else ()) if n.startswith(prefix)]
+        names = [n for n in (fit.lmfit_parameters if fit else ()) if n.startswith(prefix)]
         if not names:
             continue
         if any(n in outcome.spectrum.options.parameters for n in names):
             out[quantity] = "user"
         elif mode == REFERENCE_LINE:
             out[quantity] = "reference-line" if reference and "setting" in reference else "fitted"
-        elif any(fit.parameters[n].vary and not fit.parameters[n].expr for n in names):
+        elif any(fit.lmfit_parameters[n].vary and not fit.lmfit_parameters[n].expr for n in names):
             out[quantity] = "fitted"
         elif mode == TREND and trend is not None and any(n in trend.lines for n in names):
             out[quantity] = "trend"
@@ -280,7 +281,7 @@ def _set_treatment(series: Series, outcome: SpectrumOutcome, trend: StaticTrend 
     outcome.flags += [f"{how}-{quantity}" for quantity, how in out.items() if how in ("trend", "reference-line")]
     if out:
         outcome.notes.append(_treatment_note(out))
-    held = [n for n, p in (fit.parameters.items() if fit else ()) if trend and n in trend.lines and not p.vary]
+    held = [n for n, p in (fit.lmfit_parameters.items() if fit else ()) if trend and n in trend.lines and not p.vary]
     if any(trend.lines[n].constant for n in held):
         outcome.flags.append("trend-one-temperature")
         outcome.notes.append("the held values come from one slow-exchange temperature: their drift with temperature "

@@ -205,7 +205,7 @@ def _parameter_points(fits: Sequence[tuple[float, SpectrumFit]], name: str, wide
     quadrature (the linewidth's trade with an unresolved exchange broadening)."""
     temps, values, errors = [], [], []
     for t, fit in fits:
-        par = fit.parameters[name]
+        par = fit.lmfit_parameters[name]
         err = math.nan if par.stderr is None else float(par.stderr)
         if widen is not None:
             err = math.hypot(err, widen(fit))
@@ -219,10 +219,10 @@ def _log_ratio_points(fits, name: str, first: str) -> tuple[list, list, list]:
     """(temperatures, ln(p/p_first), stderrs) of population `name` over `fits`."""
     temps, values, errors = [], [], []
     for t, fit in fits:
-        p, p0 = fit.parameters[name], fit.parameters[first]
+        p, p0 = fit.lmfit_parameters[name], fit.lmfit_parameters[first]
         s = math.nan if p.stderr is None else float(p.stderr)
         s0 = math.nan if p0.stderr is None else float(p0.stderr)
-        two = len([n for n in fit.parameters if n.startswith("population_")]) == 2
+        two = len([n for n in fit.lmfit_parameters if n.startswith("population_")]) == 2
         # two states: p_first = 1 - p, so d ln(p/p_first) = dp (1/p + 1/p_first); more: errors taken independent
         err = s * (1.0 / p.value + 1.0 / p0.value) if two else math.hypot(s / p.value, s0 / p0.value)
         temps.append(t)
@@ -249,7 +249,7 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
     differences: dict[str, ParameterTrend] = {}
     first = first_shift = None
     if slow:
-        params = slow[0][1].parameters
+        params = slow[0][1].lmfit_parameters
         free = [n for n, p in params.items() if p.vary and not p.expr]
         for kind in ("shift", "coupling"):
             if kind in kinds:
@@ -269,7 +269,7 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
             for name in populations[1:]:
                 lines[name] = regress_trend(name, "van-t-hoff", *_log_ratio_points(slow, name, first))
     if "linewidth" in kinds and quiet:
-        name = next(n for n in quiet[0][1].parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
+        name = next(n for n in quiet[0][1].lmfit_parameters if n.startswith(PARAMETER_PREFIX["linewidth"]))
         lines[name] = linewidth_trend(quiet, name)
     return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
 
@@ -340,9 +340,9 @@ def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
     """(log10 k, its standard error) of every determined rate of `fit`, by fit parameter, for rates fitted
     with a finite error and a known correlation with the other free parameters."""
     out = {}
-    names = [n for n in fit.parameters if n.startswith("log10_k_")]
+    names = [n for n in fit.lmfit_parameters if n.startswith("log10_rate_")]
     for name, rate in zip(names, fit.rates):
-        par = fit.parameters[name]
+        par = fit.lmfit_parameters[name]
         if (rate.status == "determined" and par.vary and not par.expr and par.stderr is not None
                 and math.isfinite(par.stderr) and par.stderr > 0 and par.correl):
             out[name] = (float(par.value), float(par.stderr))

@@ -5,7 +5,7 @@ import math
 import os
 import sys
 import tempfile
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -72,18 +72,50 @@ def check_output_file(path: str | Path | None, overwrite: bool, where: str, figu
     return path
 
 
+def missing_folders(path: str | Path) -> list[Path]:
+    """The folders of `path` (itself and its parents) that do not exist yet, deepest first: those that
+    creating `path` as a folder would create (give them to :func:`remove_empty_folders` afterwards)."""
+    missing = []
+    for folder in (Path(path).absolute(), *Path(path).absolute().parents):
+        if folder.exists() or folder.is_symlink():
+            break
+        missing.append(folder)
+    return missing
+
+
+def remove_empty_folders(created: Sequence[Path]) -> None:
+    """Remove again the folders a run created (`created`, deepest first, as :func:`missing_folders` gives
+    them) when nothing could be written into them: a folder goes only when it is empty once its own empty
+    subfolders are gone; a folder holding any file stays, and a link is never followed."""
+    for folder in created:
+        for root, folders, _ in os.walk(folder, topdown=False):
+            for name in folders:
+                _remove_if_empty(os.path.join(root, name))
+        _remove_if_empty(folder)
+
+
+def _remove_if_empty(folder: str | Path) -> None:
+    try:
+        os.rmdir(folder)
+    except OSError:  # it holds something (or it is a link, never followed, or gone): it stays
+        pass
+
+
 def atomic_write_bytes(path: str | Path, data: bytes, overwrite: bool = False) -> Path:
     """Write `data` to `path` through a temporary file in the same folder and an atomic rename.
 
     The file gets the permissions of :func:`file_mode` (the umask's); a link at `path` is replaced by
-    the file, never followed.  A failure (a full disk) leaves no partial file behind.
+    the file, never followed.  A failure (a full disk) leaves no partial file behind, nor a folder
+    created for the file.
     """
     path = Path(path)
     _refuse_existing(path, overwrite)
+    created = missing_folders(path.parent)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")
     except OSError as err:
+        remove_empty_folders(created)
         raise OSError(err.errno, err.strerror, str(path)) from None
     try:
         with os.fdopen(fd, "wb") as fh:
@@ -95,6 +127,7 @@ def atomic_write_bytes(path: str | Path, data: bytes, overwrite: bool = False) -
     except BaseException as err:
         if os.path.exists(tmp):
             os.unlink(tmp)
+        remove_empty_folders(created)
         if isinstance(err, OSError):  # name the file the user asked for, not the temporary one
             raise OSError(err.errno, err.strerror, str(path)) from None
         raise
@@ -209,8 +242,7 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     """
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        data = figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi)
-        return atomic_write_bytes(path, data, overwrite=overwrite)
+        return atomic_write_bytes(path, figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi), overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt

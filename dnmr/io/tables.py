@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import csv
 import difflib
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -83,7 +83,8 @@ class Table:
         return value
 
 
-def read_table(path: str | Path, required: Sequence[str], optional: Sequence[str] = ()) -> Table:
+def read_table(path: str | Path, required: Sequence[str], optional: Sequence[str] = (),
+               renamed: Mapping[str, str] | None = None) -> Table:
     """Read a CSV table that must have the `required` columns.
 
     Parameters
@@ -95,6 +96,9 @@ def read_table(path: str | Path, required: Sequence[str], optional: Sequence[str
     optional : sequence of str
         Column names the caller understands. A header cell that is not known but is close to a missing
         optional name (a likely misspelling, e.g. ``rate_stder``) is an error rather than silently ignored.
+    renamed : mapping of str to str, optional
+        Column names of earlier releases and their new names: a header naming one is refused with a
+        "renamed to" line.
 
     Returns
     -------
@@ -112,6 +116,10 @@ def read_table(path: str | Path, required: Sequence[str], optional: Sequence[str
         raise InputError("the file is empty; it needs a header row and at least one data row", source)
     header_line, header = rows[0]
     names = [name.strip() for name in header]
+    for name in names:
+        if name in (renamed or {}):
+            raise InputError(f"column {name!r} was renamed to {renamed[name]!r}; rename it in the header",
+                             source, f"line {header_line}")
     _check_header(names, required, optional, source, f"line {header_line}")
     body = rows[1:]
     if not body:

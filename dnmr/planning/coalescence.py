@@ -208,8 +208,8 @@ class Coalescence(PairAtField):
         The same as the linewidths go to zero (s^-1).
     temperature_k, narrow_limit_temperature_k : float or None
         Where the activation parameters reach those rates (K).
-    note : str
-        Why a rate is missing, if one is, or what the rate leaves out (see :func:`unequal_outside_couplings`).
+    notes : tuple of str
+        Why a rate is missing, if one is, and what the rate leaves out (see :func:`unequal_outside_couplings`).
     """
 
     populations: tuple[float, float]
@@ -217,7 +217,7 @@ class Coalescence(PairAtField):
     narrow_limit_rate_per_s: float | None
     temperature_k: float | None = None
     narrow_limit_temperature_k: float | None = None
-    note: str = ""
+    notes: tuple[str, ...] = ()
 
     @property
     def linewidth_effect(self) -> float | None:
@@ -232,7 +232,7 @@ class Coalescence(PairAtField):
                 "populations": [float(p) for p in self.populations],
                 "narrow_limit_rate_per_s": self.narrow_limit_rate_per_s,
                 "narrow_limit_temperature_k": self.narrow_limit_temperature_k,
-                "linewidth_effect": self.linewidth_effect, "note": self.note}
+                "linewidth_effect": self.linewidth_effect, "notes": list(self.notes)}
 
 
 def _coalescence_of(model: Model, pair: ExchangingPair, activation: ActivationParameters | None) -> Coalescence:
@@ -265,7 +265,7 @@ def _coalescence_of(model: Model, pair: ExchangingPair, activation: ActivationPa
                      " multiplet components have different shift differences and coalesce at different rates;"
                      " the rate given is for the exchanging spins alone")
     return Coalescence(pair, model.spectrometer.proton_mhz, model.spectrometer.frequency_mhz,
-                       pair.shift_difference_hz(model), populations, k, k0, t, t0, "; ".join(filter(None, notes)))
+                       pair.shift_difference_hz(model), populations, k, k0, t, t0, tuple(filter(None, notes)))
 
 
 def predict_coalescence(model: Model, activation: ActivationParameters | None = None, *,

@@ -5,13 +5,13 @@ points of the spectrum (finite differences of the engine spectrum, at a dozen te
 interpolated between them), with the overall intensity scale
 fitted too (its information is projected out).  sigma, the rms noise per point, is the tallest point
 of the spectrum without exchange divided by the signal-to-noise ratio.  Through the Eyring equation
-d ln k / d dH‡ = -1/(RT) and d ln k / d dS‡ = 1/R, so a set of temperatures gives an information
-matrix for (dH‡, dS‡); the plan picks the set with the largest determinant (D-optimal design: a
+d ln k / d ΔH‡ = -1/(RT) and d ln k / d ΔS‡ = 1/R, so a set of temperatures gives an information
+matrix for (ΔH‡, ΔS‡); the plan picks the set with the largest determinant (D-optimal design: a
 greedy start and exchange passes) among candidate temperatures inside the solvent's liquid range and
 the probe's range, at least a minimum step apart.  The resulting standard errors are lower bounds
 (noise only); the temperature dependence of shifts and linewidths and thermometer calibration add to
-them (Shoup, Becker & McNeel, J. Phys. Chem. 76, 71 (1972)).  dG‡ is quoted at the harmonic mean
-temperature, where it is uncorrelated with dH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
+them (Shoup, Becker & McNeel, J. Phys. Chem. 76, 71 (1972)).  ΔG‡ is quoted at the harmonic mean
+temperature, where it is uncorrelated with ΔH‡ (Grieger, Hunter & Krug, Nature 261, 566 (1976)).
 """
 from __future__ import annotations
 
@@ -97,7 +97,7 @@ def ln_rate_information(model: Model, processes: Sequence[int], hz: np.ndarray, 
 
 
 def eyring_jacobian(temperature_k: float, n_processes: int) -> np.ndarray:
-    """d ln k_p / d (dH‡_q [kJ/mol], dS‡_q [J/(mol K)]): array (P, 2P), one (dH‡, dS‡) pair per process."""
+    """d ln k_p / d (ΔH‡_q [kJ/mol], ΔS‡_q [J/(mol K)]): array (P, 2P), one (ΔH‡, ΔS‡) pair per process."""
     g = np.zeros((n_processes, 2 * n_processes))
     for p in range(n_processes):
         g[p, 2 * p] = -1e3 / (GAS_CONSTANT * temperature_k)
@@ -106,7 +106,7 @@ def eyring_jacobian(temperature_k: float, n_processes: int) -> np.ndarray:
 
 
 def eyring_information(temperature_k: float, rate_information: np.ndarray) -> np.ndarray:
-    """Information about (dH‡, dS‡) of every process (kJ/mol, J/(mol K)) from information about their ln k."""
+    """Information about (ΔH‡, ΔS‡) of every process (kJ/mol, J/(mol K)) from information about their ln k."""
     g = eyring_jacobian(temperature_k, rate_information.shape[0])
     return g.T @ rate_information @ g
 
@@ -217,38 +217,39 @@ class PredictedErrors:
     ----------
     process : str
     enthalpy_stderr : float
-        Of dH‡ (kJ/mol).
+        Of ΔH‡ (kJ/mol).
     entropy_stderr : float
-        Of dS‡ (J/(mol K)).
-    harmonic_mean_k : float
+        Of ΔS‡ (J/(mol K)).
+    harmonic_mean_temperature_k : float
         Harmonic mean of the planned temperatures (K).
-    gibbs_stderr : float
-        Of dG‡ at the harmonic mean temperature (kJ/mol).
-    correlation : float
-        Correlation of dH‡ and dS‡.
+    gibbs_hm_stderr : float
+        Of ΔG‡ at the harmonic mean temperature (kJ/mol).
+    correlation_enthalpy_entropy : float
+        Correlation of ΔH‡ and ΔS‡.
     """
 
     process: str
     enthalpy_stderr: float
     entropy_stderr: float
-    harmonic_mean_k: float
-    gibbs_stderr: float
-    correlation: float
+    harmonic_mean_temperature_k: float
+    gibbs_hm_stderr: float
+    correlation_enthalpy_entropy: float
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready)."""
         return {"process": self.process, "enthalpy_stderr": self.enthalpy_stderr,
-                "entropy_stderr": self.entropy_stderr, "harmonic_mean_k": self.harmonic_mean_k,
-                "gibbs_at_harmonic_mean_stderr": self.gibbs_stderr, "correlation": self.correlation}
+                "entropy_stderr": self.entropy_stderr, "harmonic_mean_temperature_k": self.harmonic_mean_temperature_k,
+                "gibbs_hm_stderr": self.gibbs_hm_stderr, "correlation_enthalpy_entropy": self.correlation_enthalpy_entropy}
 
     def describe(self) -> str:
         """One line."""
-        return (f"{self.process}: dH‡ ± {self.enthalpy_stderr:.2g} kJ/mol, dS‡ ± {self.entropy_stderr:.2g} J/(mol K)"
-                f" (correlation {self.correlation:.3f}), dG‡({self.harmonic_mean_k:.0f} K) ± {self.gibbs_stderr:.2g} kJ/mol")
+        return (f"{self.process}: ΔH‡ ± {self.enthalpy_stderr:.2g} kJ/mol, ΔS‡ ± {self.entropy_stderr:.2g} J/(mol K)"
+                f" (correlation {self.correlation_enthalpy_entropy:.3f}), ΔG‡({self.harmonic_mean_temperature_k:.0f} K)"
+                f" ± {self.gibbs_hm_stderr:.2g} kJ/mol")
 
 
 def predicted_errors(covariance: np.ndarray, names: Sequence[str], temperatures_k: Sequence[float]) -> list[PredictedErrors]:
-    """Standard errors per process from the covariance of (dH‡, dS‡) pairs (kJ/mol, J/(mol K))."""
+    """Standard errors per process from the covariance of (ΔH‡, ΔS‡) pairs (kJ/mol, J/(mol K))."""
     t_hm = len(temperatures_k) / sum(1.0 / t for t in temperatures_k)
     out = []
     for p, name in enumerate(names):

@@ -25,7 +25,7 @@ from dnmr.modelparts import Exchange
 COUPLING_TOLERANCE_HZ = 1e-6
 #: Report line for coupling-averaging pairs, whose |dnu| column is their component shift.
 COUPLING_PAIR_NOTE = ("signals marked (J to ...) keep their shift while the exchange changes those couplings;"
-                      " their |dnu| is the shift of their multiplet components, sum of |dJ| m (Hz)")
+                      " their |Δν| is the shift of their multiplet components, sum of |ΔJ| m (Hz)")
 
 
 @dataclass(frozen=True)

@@ -1,9 +1,9 @@
 """The experiment plan: which temperatures to run at each field, why, and how precise the result will be.
 
 The plan joins the planning wing's parts: the coalescence of every exchanging pair
-(:mod:`dnmr.planning.coalescence`), the measurable window of each (:mod:`dnmr.planning.regimes`), the
+(:mod:`dnmr.planning.coalescence`), the measurable range of each (:mod:`dnmr.planning.regimes`), the
 D-optimal temperatures inside the usable range of solvent and probe with the standard errors they
-promise (:mod:`dnmr.planning.design`), magnetisation transfer below the lineshape window
+promise (:mod:`dnmr.planning.design`), magnetisation transfer below the lineshape range
 (:mod:`dnmr.planning.transferplan`), the solvent check (:mod:`dnmr.planning.solvents`) and the
 safety cautions (:mod:`dnmr.planning.cautions`).  It writes the series file for ``dnmr fit`` that
 records the planned temperatures and the linewidth treatment its precision assumes.
@@ -34,7 +34,7 @@ from dnmr.planning.design import (DEFAULT_MIN_STEP_K, d_optimal_temperatures, ey
                                   information_profile, interpolated_information, ln_rate_information, noise_level,
                                   predicted_errors, PredictedErrors)
 from dnmr.planning.pairs import COUPLING_PAIR_NOTE, exchanging_pairs
-from dnmr.planning.regimes import DEFAULT_DETECTABLE_FRACTION, REGIMES, PairTimescale, pair_timescales, rate_window
+from dnmr.planning.regimes import DEFAULT_DETECTABLE_FRACTION, REGIMES, PairTimescale, pair_timescales, rate_range
 from dnmr.planning.solvents import DEFAULT_MARGIN_K, Solvent, SolventWarning, check_temperature, solvents_covering
 from dnmr.planning.transferplan import DEFAULT_TRANSFER_RUNS, TransferPlan, plan_transfer, transfer_report_lines
 
@@ -42,7 +42,7 @@ from dnmr.planning.transferplan import DEFAULT_TRANSFER_RUNS, TransferPlan, plan
 DEFAULT_PROBE_RANGE_K = (173.15, 423.15)
 DEFAULT_SIGNAL_TO_NOISE = 100.0
 DEFAULT_SPECTRA = 8
-#: Candidates reach this far (K) beyond the measurable window on both sides.
+#: Candidates reach this far (K) beyond the measurable range on both sides.
 CANDIDATE_MARGIN_K = 15.0
 MAX_CANDIDATES = 150
 
@@ -80,7 +80,7 @@ class PlannedTemperature:
     ln_rate_stderr : dict of str to float
         Standard error of ln k that this spectrum alone gives, per process.
     enthalpy_error_growth : float
-        Relative growth of the largest dH‡ standard error if this spectrum were left out.
+        Relative growth of the largest ΔH‡ standard error if this spectrum were left out.
     solvent_warning : SolventWarning or None
     reason : str
     """
@@ -173,8 +173,8 @@ def _reason(planned: PlannedTemperature, coalescences: Sequence[Coalescence], en
         parts.append(near)
     parts.append("this spectrum alone " + _precision_text(planned.ln_rate_stderr))
     if end:
-        parts.append(f"sets the {end} end of the 1/T span (leverage on dH‡)")
-    parts.append(f"without it the dH‡ error grows by {100 * planned.enthalpy_error_growth:.0f} %")
+        parts.append(f"sets the {end} end of the 1/T span (leverage on ΔH‡)")
+    parts.append(f"without it the ΔH‡ error grows by {100 * planned.enthalpy_error_growth:.0f} %")
     return "; ".join(parts)
 
 
@@ -183,27 +183,27 @@ def _enthalpy_errors(information: Sequence[np.ndarray]) -> np.ndarray:
     return np.sqrt(np.diag(covariance)[0::2])
 
 
-def _candidate_range(windows: Sequence[PairTimescale], limits: tuple[float, float]) -> tuple[tuple[float, float] | None, str]:
-    """Temperatures (K) worth searching: the measurable windows widened a little, inside `limits`."""
-    ends = [t for w in windows for t in (w.slow_below_k, w.fast_above_k) if t is not None]
+def _candidate_range(timescales: Sequence[PairTimescale], limits: tuple[float, float]) -> tuple[tuple[float, float] | None, str]:
+    """Temperatures (K) worth searching: the measurable ranges widened a little, inside `limits`."""
+    ends = [t for w in timescales for t in (w.slow_below_k, w.fast_above_k) if t is not None]
     if not ends:
-        return None, "no temperature reaches the measurable window between 20 and 2000 K"
+        return None, "no temperature reaches the measurable range between 20 and 2000 K"
     low, high = min(ends) - CANDIDATE_MARGIN_K, max(ends) + CANDIDATE_MARGIN_K
     usable = (max(low, limits[0]), min(high, limits[1]))
     if usable[0] >= usable[1]:
-        return None, (f"the measurable window ({min(ends):.0f}-{max(ends):.0f} K) lies outside the usable range"
+        return None, (f"the measurable range ({min(ends):.0f}-{max(ends):.0f} K) lies outside the usable range"
                       f" {limits[0]:.0f}-{limits[1]:.0f} K (solvent and probe); choose another solvent or field")
     return usable, ""
 
 
-def _plan_field(model: Model, activations: dict[int, ActivationParameters], windows: Sequence[PairTimescale],
+def _plan_field(model: Model, activations: dict[int, ActivationParameters], timescales: Sequence[PairTimescale],
                 coalescences: Sequence[Coalescence], limits: tuple[float, float], settings: dict,
                 solvent: Solvent | None) -> FieldPlan:
     """The D-optimal temperatures at the field of `model` (see the module notes)."""
     processes = sorted(activations)
     names = [model.process_names()[p] for p in processes]
     sf = model.spectrometer.frequency_mhz
-    usable, why = _candidate_range(windows, limits)
+    usable, why = _candidate_range(timescales, limits)
     hz, per_point = information_grid(model)
     noise = noise_level(model, hz, settings["signal_to_noise"])
     if usable is None:
@@ -222,7 +222,7 @@ def _plan_field(model: Model, activations: dict[int, ActivationParameters], wind
         f"only {len(chosen)} temperatures fit {settings['min_step_k']:g} K apart in {usable[0]:.0f}-{usable[1]:.0f} K"]
     if len(chosen) < 2:
         return FieldPlan(model.spectrometer.proton_mhz, sf, [], usable, [], noise,
-                         notes + ["the spectra carry too little information to determine dH‡ and dS‡"])
+                         notes + ["the spectra carry too little information to determine ΔH‡ and ΔS‡"])
     temperatures = [float(candidates[i]) for i in chosen]
     exact_info = [exact(t) for t in temperatures]
     picked = [eyring_information(t, f) for t, f in zip(temperatures, exact_info)]
@@ -244,7 +244,7 @@ def _planned_temperature(model: Model, processes: Sequence[int], rate_info: np.n
     """A planned temperature (the model's) without its reason: rates, regimes, precision, solvent check."""
     names = model.process_names()
     rates = model.rates()
-    regimes = {f"{p.process_name}: {p.label}": rate_window(model, p, settings["detectable_fraction"]).regime(rates[p.process])
+    regimes = {f"{p.process_name}: {p.label}": rate_range(model, p, settings["detectable_fraction"]).regime(rates[p.process])
                for p in exchanging_pairs(model)}
     sd = np.sqrt(np.diag(np.linalg.pinv(rate_info)))
     t = model.temperature_k
@@ -264,8 +264,8 @@ class ExperimentPlan(NotebookView):
         Per process name.
     coalescence : list of Coalescence
         Per field and exchanging pair.
-    windows : list of PairTimescale
-        Measurable window (intermediate exchange) per field and pair.
+    timescales : list of PairTimescale
+        Measurable range (intermediate exchange) per field and pair.
     fields : list of FieldPlan
         The recommended temperatures per field.
     solvent : Solvent or None
@@ -280,13 +280,13 @@ class ExperimentPlan(NotebookView):
     notes : list of str
     cautions : tuple of str
     transfer : list of TransferPlan
-        Magnetisation transfer below the lineshape window, per process.
+        Magnetisation transfer below the lineshape range, per process.
     """
 
     model: Model
     activations: dict
     coalescence: list[Coalescence]
-    windows: list[PairTimescale]
+    timescales: list[PairTimescale]
     fields: list[FieldPlan]
     solvent: Solvent | None
     solvent_warnings: list[SolventWarning]
@@ -304,7 +304,7 @@ class ExperimentPlan(NotebookView):
             "nucleus": self.model.spectrometer.nucleus,
             "activation": {n: a.to_dict() for n, a in self.activations.items()},
             "coalescence": [c.to_dict() for c in self.coalescence],
-            "measurable_window": [w.to_dict() for w in self.windows],
+            "measurable_range": [w.to_dict() for w in self.timescales],
             "plan": [f.to_dict() for f in self.fields],
             "solvent": None if self.solvent is None else {
                 **self.solvent.to_dict(), "warnings": [w.to_dict() for w in self.solvent_warnings]},
@@ -318,11 +318,11 @@ class ExperimentPlan(NotebookView):
         }
 
     def report(self) -> str:
-        """A readable report: coalescence, measurable window, plan per field, solvent check, cautions."""
+        """A readable report: coalescence, measurable range, plan per field, solvent check, cautions."""
         lines = [f"Experiment plan{': ' + self.model.title if self.model.title else ''}",
                  f"Observed nucleus {self.model.spectrometer.nucleus}; fields are quoted as 1H frequencies."]
         lines += [f"  {name}: {act.describe()}" for name, act in self.activations.items()]
-        lines += self._coalescence_lines() + self._window_lines()
+        lines += self._coalescence_lines() + self._range_lines()
         for plan in self.fields:
             lines += self._field_lines(plan)
         lines += transfer_report_lines(self.transfer)
@@ -336,7 +336,7 @@ class ExperimentPlan(NotebookView):
         nucleus = self.model.spectrometer.nucleus
         lines = ["", "Coalescence (the pair merges into its averaged signal: two maxima become one for an uncoupled"
                  " or AB pair; k is the forward rate constant of the process)",
-                 f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'|dnu|/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
+                 f"  {'field':>7} {nucleus + ' MHz':>9}  {'signals':<34} {'|Δν|/Hz':>9} {'k_c/s^-1':>10} {'T_c/K':>7}"
                  f"   {'narrow-line k_c':>15} {'T_c/K':>7}",
                  "  (each pair on its own: only its process running, spins outside its exchanging cluster and its"
                  " named coupling partners left out; narrow-line: intrinsic linewidths -> 0)"]
@@ -346,26 +346,25 @@ class ExperimentPlan(NotebookView):
                          f" {number_or_dash(c.temperature_k, '7.1f')}"
                          f"   {number_or_dash(c.narrow_limit_rate_per_s, '15.4g')}"
                          f" {number_or_dash(c.narrow_limit_temperature_k, '7.1f')}")
-            if c.note:
-                lines.append(f"      note: {c.note}")
+            lines += [f"      note: {note}" for note in c.notes]
         return lines + [f"  ({COUPLING_PAIR_NOTE})"] * any(c.pair.coupling_changes for c in self.coalescence)
 
-    def _window_lines(self) -> list[str]:
-        """The report's measurable window of every pair at every field."""
+    def _range_lines(self) -> list[str]:
+        """The report's measurable range of every pair at every field."""
         f = self.settings["detectable_fraction"]
-        lines = ["", f"Measurable window (exchange broadening from {f:g} x the linewidth on the slow side to an"
+        lines = ["", f"Measurable range (exchange broadening from {f:g} x the linewidth on the slow side to an"
                  f" excess width of {f:g} x the linewidth on the fast side)"]
-        for w in self.windows:
+        for w in self.timescales:
             lines.append(f"  {w.proton_mhz:7.1f} MHz  {w.pair.process_name}: {w.pair.label}:"
-                         f" k {w.window.slow_rate_per_s:.3g}-{w.window.fast_rate_per_s:.3g} s^-1,"
+                         f" k {w.rate_range.slow_rate_per_s:.3g}-{w.rate_range.fast_rate_per_s:.3g} s^-1,"
                          f" T {number_or_dash(w.slow_below_k, '.1f')}-{number_or_dash(w.fast_above_k, '.1f')} K"
-                         + ("  (empty: the signals are too close for their linewidth)" if w.window.is_empty else ""))
+                         + ("  (empty: the signals are too close for their linewidth)" if w.rate_range.is_empty else ""))
         return lines
 
     def _field_lines(self, plan: FieldPlan) -> list[str]:
         """The report's planned temperatures at one field, why each is there, and the errors they promise."""
         lines = ["", f"Plan at {plan.proton_mhz:g} MHz ({self.model.spectrometer.nucleus} at {plan.frequency_mhz:.2f} MHz;"
-                 f" S/N {self.settings['signal_to_noise']:g}, D-optimal for dH‡ and dS‡)"]
+                 f" S/N {self.settings['signal_to_noise']:g}, D-optimal for ΔH‡ and ΔS‡)"]
         for p in plan.temperatures:
             lines.append(f"  {p.temperature_k:6.1f} K ({p.temperature_k - 273.15:6.1f} °C)  {rates_text(p.rates_per_s)}")
             lines.append(f"           {p.reason}")
@@ -498,7 +497,7 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
                     detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION,
                     margin_k: float = DEFAULT_MARGIN_K, r1_per_s: float | None = None,
                     transfer_runs: int | None = None) -> ExperimentPlan:
-    """Coalescence temperatures per field, the measurable window, and the temperatures to run.
+    """Coalescence temperatures per field, the measurable range, and the temperatures to run.
 
     Parameters
     ----------
@@ -521,7 +520,7 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
     min_step_k : float
         Smallest step between planned temperatures (K).
     detectable_fraction : float
-        Exchange broadening, as a fraction of the linewidth, that bounds the measurable window.
+        Exchange broadening, as a fraction of the linewidth, that bounds the measurable range.
     margin_k : float
         Distance (K) kept from the solvent's melting and boiling points.
     r1_per_s : float, optional
@@ -537,7 +536,7 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
     settings = _checked_settings(signal_to_noise, spectra, min_step_k, detectable_fraction, margin_k, probe_range_k)
     activations = process_activations(model, activation, process)
     if not activations:
-        raise InputError("the plan needs activation parameters: give a barrier (dG‡) or dH‡ and dS‡,"
+        raise InputError("the plan needs activation parameters: give a barrier (ΔG‡) or ΔH‡ and ΔS‡,"
                          " or put them in the model file", where="activation")
     fields = checked_fields(model, frequencies_mhz)
     limits = settings["probe_range_k"]
@@ -545,10 +544,10 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
         liquid = solvent.liquid_range_k(margin_k)
         limits = (max(limits[0], liquid[0]), min(limits[1], liquid[1]))
     found = pair_coalescences(model, activations, fields)
-    windows = pair_timescales(model, activations, fields, detectable_fraction)
+    timescales = pair_timescales(model, activations, fields, detectable_fraction)
     plans = []
     for mhz in fields:
-        here = [w for w in windows if w.proton_mhz == mhz and w.pair.process in activations]
+        here = [w for w in timescales if w.proton_mhz == mhz and w.pair.process in activations]
         plans.append(_plan_field(at_field(model, mhz), activations, here,
                                  [c for c in found if c.proton_mhz == mhz], limits, settings, solvent))
     coalescence_k = [c.temperature_k for c in found if c.temperature_k is not None]
@@ -561,7 +560,7 @@ def plan_experiment(model: Model, activation: ActivationParameters | None = None
         notes.append(f"coalescence at {', '.join(f'{t:.0f}' for t in outside)} K lies outside the usable range"
                      f" {limits[0]:.0f}-{limits[1]:.0f} K")
     names = model.process_names()
-    transfer = plan_transfer(model, activations, windows, limits, r1_per_s,
+    transfer = plan_transfer(model, activations, timescales, limits, r1_per_s,
                              DEFAULT_TRANSFER_RUNS if transfer_runs is None else transfer_runs, settings["min_step_k"])
-    return ExperimentPlan(model, {names[i]: a for i, a in activations.items()}, found, windows, plans, solvent,
+    return ExperimentPlan(model, {names[i]: a for i, a in activations.items()}, found, timescales, plans, solvent,
                           warnings, list(dict.fromkeys(covering)), limits, settings, notes, transfer=transfer)

@@ -6,7 +6,7 @@ Slow exchange: the broadening of each signal, k_out / pi (FWHM, Hz; k_out the ra
 nucleus leaves that place), stays below a fraction f of the intrinsic linewidth w.
 Fast exchange: the excess width of the averaged line, p1 p2 (2 pi dnu)^2 / (pi (k_out1 + k_out2)),
 stays below f times the averaged linewidth.  Both are the limits of the McConnell equations
-(J. Chem. Phys. 28, 430 (1958)).  In between lies intermediate exchange, which is also the window in
+(J. Chem. Phys. 28, 430 (1958)).  In between lies intermediate exchange, which is also the range in
 which a lineshape fit measures the rate.  f defaults to 0.1: a choice, about the broadening a careful
 fit resolves at good signal-to-noise; for a shift pair couplings are left out of these thresholds.
 """
@@ -28,7 +28,7 @@ REGIMES = ("slow", "intermediate", "fast")
 
 
 @dataclass(frozen=True)
-class RateWindow:
+class RateRange:
     """Forward rates (s^-1) that bound intermediate exchange for one pair at one field.
 
     Attributes
@@ -58,8 +58,8 @@ class RateWindow:
         return "slow" if rate_per_s <= self.slow_rate_per_s else "intermediate"
 
 
-def rate_window(model: Model, pair: ExchangingPair,
-                detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION) -> RateWindow:
+def rate_range(model: Model, pair: ExchangingPair,
+                detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION) -> RateRange:
     """The slow and fast thresholds of `pair` at the model's field and linewidths (see module notes)."""
     if not 0 < detectable_fraction < 1:
         raise InputError(f"the detectable fraction must lie between 0 and 1, got {detectable_fraction!r}",
@@ -69,10 +69,10 @@ def rate_window(model: Model, pair: ExchangingPair,
     slow = min(math.pi * f * w1 / r1, math.pi * f * w2 / r2)
     dnu = pair.frequency_difference_hz(model)
     fast = q1 * q2 * (2 * math.pi * dnu) ** 2 / (math.pi * f * (q1 * w1 + q2 * w2) * (r1 + r2))
-    return RateWindow(slow, fast, f)
+    return RateRange(slow, fast, f)
 
 
-def window_temperatures(model: Model, pair: ExchangingPair, activation: ActivationParameters,
+def range_temperatures(model: Model, pair: ExchangingPair, activation: ActivationParameters,
                         detectable_fraction: float = DEFAULT_DETECTABLE_FRACTION) -> tuple[float | None, float | None]:
     """Temperatures (K) at which the process reaches the slow and the fast threshold of `pair`."""
     follows = populations_follow_temperature(model)
@@ -80,7 +80,7 @@ def window_temperatures(model: Model, pair: ExchangingPair, activation: Activati
     def threshold(which: str) -> Callable[[float | None], float]:
         def rate(t):
             at_t = model if t is None else model.at_temperature(t)
-            return getattr(rate_window(at_t, pair, detectable_fraction), which)
+            return getattr(rate_range(at_t, pair, detectable_fraction), which)
         return rate
 
     return (solve_temperature(activation, threshold("slow_rate_per_s"), follows),
@@ -93,22 +93,22 @@ class PairTimescale(PairAtField):
 
     Attributes
     ----------
-    window : RateWindow
+    rate_range : RateRange
         Forward rates (s^-1) bounding intermediate exchange.
     slow_below_k, fast_above_k : float or None
         Temperatures (K) of the two thresholds (None without activation parameters or outside 20-2000 K).
     """
 
-    window: RateWindow
+    rate_range: RateRange
     slow_below_k: float | None
     fast_above_k: float | None
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready)."""
         return {**super().to_dict(),
-                "slow_rate_per_s": self.window.slow_rate_per_s, "fast_rate_per_s": self.window.fast_rate_per_s,
+                "slow_rate_per_s": self.rate_range.slow_rate_per_s, "fast_rate_per_s": self.rate_range.fast_rate_per_s,
                 "slow_below_k": self.slow_below_k, "fast_above_k": self.fast_above_k,
-                "window_empty": self.window.is_empty}
+                "range_empty": self.rate_range.is_empty}
 
 
 def pair_timescales(model: Model, activations: dict[int, ActivationParameters], fields: Sequence[float],
@@ -119,9 +119,9 @@ def pair_timescales(model: Model, activations: dict[int, ActivationParameters], 
         here = at_field(model, mhz)
         for pair in exchanging_pairs(here):
             act = activations.get(pair.process)
-            temps = window_temperatures(here, pair, act, detectable_fraction) if act else (None, None)
+            temps = range_temperatures(here, pair, act, detectable_fraction) if act else (None, None)
             out.append(PairTimescale(pair, mhz, here.spectrometer.frequency_mhz, pair.shift_difference_hz(here),
-                                     rate_window(here, pair, detectable_fraction), *temps))
+                                     rate_range(here, pair, detectable_fraction), *temps))
     return out
 
 
@@ -130,7 +130,7 @@ def process_regimes(model: Model, detectable_fraction: float = DEFAULT_DETECTABL
     rates = model.rates()
     found: dict[int, set[str]] = {}
     for pair in exchanging_pairs(model):
-        found.setdefault(pair.process, set()).add(rate_window(model, pair, detectable_fraction).regime(rates[pair.process]))
+        found.setdefault(pair.process, set()).add(rate_range(model, pair, detectable_fraction).regime(rates[pair.process]))
     names = model.process_names()
     return {names[i]: (kinds.pop() if len(kinds) == 1 else "intermediate") for i, kinds in sorted(found.items())}
 

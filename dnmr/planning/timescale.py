@@ -3,7 +3,7 @@ equivalent when exchange is fast.
 
 The view joins the planning wing's parts: the exchanging pairs (:mod:`dnmr.planning.pairs`), the regime
 thresholds in rate and temperature at every field (:mod:`dnmr.planning.regimes`), the averaged spin
-system of the fast processes (:mod:`dnmr.planning.fastexchange`) and the window of magnetisation
+system of the fast processes (:mod:`dnmr.planning.fastexchange`) and the range of magnetisation
 transfer below the lineshapes (:mod:`dnmr.planning.transferplan`).
 """
 from __future__ import annotations
@@ -21,7 +21,7 @@ from dnmr.planning.conditions import at_field, checked_fields, model_at, process
 from dnmr.planning.fastexchange import AveragedSystem, fast_exchange_limit
 from dnmr.planning.pairs import COUPLING_PAIR_NOTE
 from dnmr.planning.regimes import DEFAULT_DETECTABLE_FRACTION, PairTimescale, pair_timescales, process_regimes
-from dnmr.planning.transferplan import TransferWindow, transfer_lines, transfer_windows
+from dnmr.planning.transferplan import TransferRange, transfer_lines, transfer_ranges
 
 
 @dataclass(frozen=True)
@@ -84,8 +84,8 @@ class TimescaleView(NotebookView):
         Activation parameters used, per process name.
     detectable_fraction : float
         The fraction of the linewidth that defines the thresholds.
-    transfer : list of TransferWindow
-        Where magnetisation transfer measures each process (below the lineshape window).
+    transfer : list of TransferRange
+        Where magnetisation transfer measures each process (below the lineshape range).
     """
 
     pairs: list[PairTimescale]
@@ -93,7 +93,7 @@ class TimescaleView(NotebookView):
     snapshots: list[ConditionSnapshot]
     activations: dict
     detectable_fraction: float
-    transfer: list[TransferWindow] = field(default_factory=list)
+    transfer: list[TransferRange] = field(default_factory=list)
 
     def report(self) -> str:
         """Readable tables: thresholds per pair and field, regimes now, the averaged system."""
@@ -101,13 +101,13 @@ class TimescaleView(NotebookView):
         lines = [f"NMR timescale (criterion: exchange broadening of {f:g} x the intrinsic linewidth)"]
         for name, act in self.activations.items():
             lines.append(f"  {name}: {act.describe()}")
-        lines.append(f"  {'1H MHz':>7}  {'signals':<34} {'|dnu|/Hz':>9} {'slow k<':>10} {'fast k>':>10}"
+        lines.append(f"  {'1H MHz':>7}  {'signals':<34} {'|Δν|/Hz':>9} {'slow k<':>10} {'fast k>':>10}"
                      f" {'slow T<':>8} {'fast T>':>8}")
         for p in self.pairs:
             lines.append(f"  {p.proton_mhz:7.1f}  {p.pair.process_name + ': ' + p.pair.label:<34}"
-                         f" {p.separation_hz:9.2f} {p.window.slow_rate_per_s:10.3g} {p.window.fast_rate_per_s:10.3g}"
+                         f" {p.separation_hz:9.2f} {p.rate_range.slow_rate_per_s:10.3g} {p.rate_range.fast_rate_per_s:10.3g}"
                          f" {number_or_dash(p.slow_below_k, '8.1f')} {number_or_dash(p.fast_above_k, '8.1f')}"
-                         + ("  (no intermediate window)" if p.window.is_empty else ""))
+                         + ("  (no intermediate range)" if p.rate_range.is_empty else ""))
         lines += ["  rates are forward rate constants in s^-1; temperatures in K"]
         lines += [f"  {COUPLING_PAIR_NOTE}"] * any(p.pair.coupling_changes for p in self.pairs) + [""]
         lines += transfer_lines(self.transfer)
@@ -130,7 +130,7 @@ class TimescaleView(NotebookView):
                 "magnetisation_transfer": [w.to_dict() for w in self.transfer]}
 
     def plot(self, figure=None):
-        """Regime bands against temperature, one panel per field, with the magnetisation-transfer window
+        """Regime bands against temperature, one panel per field, with the magnetisation-transfer range
         (:func:`dnmr.reporting.planfigures.plot_regimes`)."""
         from dnmr.reporting.planfigures import plot_regimes
 
@@ -163,7 +163,7 @@ def timescale_view(model: Model, activation: ActivationParameters | None = None,
     detectable_fraction : float
         Exchange broadening, as a fraction of the intrinsic linewidth, that marks the regime edges.
     r1_per_s : float, optional
-        R1 (s^-1) for the magnetisation-transfer window instead of the model's ``r1_per_s`` (or, without
+        R1 (s^-1) for the magnetisation-transfer range instead of the model's ``r1_per_s`` (or, without
         it, the typical value).
 
     Returns
@@ -184,5 +184,5 @@ def timescale_view(model: Model, activation: ActivationParameters | None = None,
         [snapshot(model, mhz, temperature_k, activations, detectable_fraction) for mhz in fields],
         {names[i]: a for i, a in activations.items()},
         detectable_fraction,
-        transfer_windows(model, activations, r1_per_s),
+        transfer_ranges(model, activations, r1_per_s),
     )

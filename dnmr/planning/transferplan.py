@@ -1,18 +1,18 @@
-"""Magnetisation transfer below the lineshape window: where it measures k, and the temperatures and times
+"""Magnetisation transfer below the lineshape range: where it measures k, and the temperatures and times
 to record.
 
-The window
+The range
     When exchange is too slow to broaden the lines it still carries z-magnetisation from site to site
     within T1: selective inversion, saturation transfer and 2D exchange (``dnmr transfer``) measure k
     from about R1/5 (slower, relaxation erases the transfer before it shows) to a few tens s^-1 (faster,
     the sites equalise within the shortest practical delays and the lines begin to broaden, where the
     lineshapes take over); both are common practice.  R1 is the mean of the model file's ``r1_per_s``
     over its sites, a value given instead, or else a typical 1 s^-1 (T1 about 1 s, 1H of small molecules
-    in mobile solvents; from memory) — stated in every report, since the window's lower end moves with
+    in mobile solvents; from memory) — stated in every report, since the range's lower end moves with
     it.  R1 is taken as the same at every temperature.
 
 The plan
-    A few temperatures evenly in 1/T over that window (inside the usable range) and, at each, the times
+    A few temperatures evenly in 1/T over that range (inside the usable range) and, at each, the times
     to record: the mixing time of a 2D exchange spectrum (or the delay at which a selective
     inversion shows the most transfer), where the cross peak of two-site exchange with equal R1,
     exp(-R1 t) (1 - exp(-K t)) (Macura & Ernst, Mol. Phys. 41, 95 (1980); from memory), is largest:
@@ -20,7 +20,7 @@ The plan
     ln(K/R1)/K when exchange is faster); the delays of a selective
     inversion recovery, log-spaced from a twentieth of that time to 5 T1 (full recovery, common practice);
     and the saturation time that reaches the steady state of a saturation transfer, 5 / (R1 + K).  The
-    transfer window joined with the lineshape window (the union over the fields of the measurable windows)
+    transfer range joined with the lineshape range (the union over the fields of the measurable ranges)
     gives the whole range one study covers.
 """
 from __future__ import annotations
@@ -49,7 +49,7 @@ TRANSFER_FAST_RATE_PER_S = 30.0
 
 
 def relaxation_rate(model: Model, r1_per_s: float | None = None) -> tuple[float, str]:
-    """R1 (s^-1) for the transfer window and where it comes from: `r1_per_s` if given, else the mean of
+    """R1 (s^-1) for the transfer range and where it comes from: `r1_per_s` if given, else the mean of
     the model's ``r1_per_s`` over its sites, else :data:`TYPICAL_R1_PER_S`."""
     from dnmr.engine.longitudinal import site_relaxation_rates
 
@@ -66,7 +66,7 @@ def relaxation_rate(model: Model, r1_per_s: float | None = None) -> tuple[float,
 
 
 @dataclass(frozen=True)
-class TransferWindow:
+class TransferRange:
     """Where magnetisation transfer determines the forward rate of one process.
 
     Attributes
@@ -78,7 +78,7 @@ class TransferWindow:
     r1_source : str
         Where R1 comes from, in words.
     slow_rate_per_s, fast_rate_per_s : float
-        Forward rates (s^-1) bounding the window: R1/5 and a few tens s^-1.
+        Forward rates (s^-1) bounding the range: R1/5 and a few tens s^-1.
     low_k, high_k : float or None
         Temperatures (K) at which the process reaches those rates (None outside 20-2000 K).
     """
@@ -100,20 +100,20 @@ class TransferWindow:
         """Plain dict (JSON-ready)."""
         return {"process": self.process, "r1_per_s": self.r1_per_s, "r1_source": self.r1_source,
                 "slow_rate_per_s": self.slow_rate_per_s, "fast_rate_per_s": self.fast_rate_per_s,
-                "low_k": self.low_k, "high_k": self.high_k, "window_empty": self.is_empty}
+                "low_k": self.low_k, "high_k": self.high_k, "range_empty": self.is_empty}
 
     def describe(self) -> str:
-        """One line: the rates and temperatures of the window."""
+        """One line: the rates and temperatures of the range."""
         if self.is_empty:
-            return f"{self.process}: no window (R1 = {self.r1_per_s:.3g} s^-1 is too fast)"
+            return f"{self.process}: no range (R1 = {self.r1_per_s:.3g} s^-1 is too fast)"
         return (f"{self.process}: k {self.slow_rate_per_s:.3g}-{self.fast_rate_per_s:.3g} s^-1,"
                 f" T {number_or_dash(self.low_k, '.1f')}-{number_or_dash(self.high_k, '.1f')} K"
                 f" (R1 = {self.r1_per_s:.3g} s^-1 from {self.r1_source})")
 
 
-def transfer_windows(model: Model, activations: dict[int, ActivationParameters],
-                     r1_per_s: float | None = None) -> list[TransferWindow]:
-    """The magnetisation-transfer window of every process with activation parameters (see module notes).
+def transfer_ranges(model: Model, activations: dict[int, ActivationParameters],
+                     r1_per_s: float | None = None) -> list[TransferRange]:
+    """The magnetisation-transfer range of every process with activation parameters (see module notes).
 
     Parameters
     ----------
@@ -127,29 +127,29 @@ def transfer_windows(model: Model, activations: dict[int, ActivationParameters],
     r1, source = relaxation_rate(model, r1_per_s)
     slow, fast = TRANSFER_SLOW_FRACTION_OF_R1 * r1, TRANSFER_FAST_RATE_PER_S
     names = model.process_names()
-    return [TransferWindow(names[i], r1, source, slow, fast, act.temperature_at(slow), act.temperature_at(fast))
+    return [TransferRange(names[i], r1, source, slow, fast, act.temperature_at(slow), act.temperature_at(fast))
             for i, act in sorted(activations.items())]
 
 
-def transfer_lines(windows: Sequence[TransferWindow]) -> list[str]:
-    """Report lines of the magnetisation-transfer windows ([] when there are none)."""
-    if not windows:
+def transfer_lines(ranges: Sequence[TransferRange]) -> list[str]:
+    """Report lines of the magnetisation-transfer ranges ([] when there are none)."""
+    if not ranges:
         return []
     return (["Magnetisation transfer (selective inversion, saturation transfer, 2D exchange; dnmr transfer) measures"
-             f" k from R1/5 to about {TRANSFER_FAST_RATE_PER_S:g} s^-1, below the lineshape window:"]
-            + [f"  {w.describe()}" for w in windows] + [""])
+             f" k from R1/5 to about {TRANSFER_FAST_RATE_PER_S:g} s^-1, below the lineshape range:"]
+            + [f"  {w.describe()}" for w in ranges] + [""])
 
 
 # --- the temperatures and times to record ----------------------------------------------------
 
-#: Temperatures planned for magnetisation transfer per process (evenly in 1/T over its window).
+#: Temperatures planned for magnetisation transfer per process (evenly in 1/T over its range).
 DEFAULT_TRANSFER_RUNS = 4
 #: Delays of a selective inversion recovery: log-spaced from this fraction of the best mixing time ...
 FIRST_DELAY_FRACTION = 0.05
 #: ... to this many T1 (full recovery; common practice), in this many steps.
 RECOVERY_T1 = 5.0
 INVERSION_DELAYS = 12
-#: A study should span this much (K) for dS‡ (common practice: the wider, the better).
+#: A study should span this much (K) for ΔS‡ (common practice: the wider, the better).
 WIDE_SPAN_K = 60.0
 
 
@@ -217,20 +217,20 @@ class TransferRun:
 
 @dataclass(frozen=True)
 class TransferPlan:
-    """Magnetisation transfer for one process: its window, the temperatures and times, and how it joins
-    the lineshape window.
+    """Magnetisation transfer for one process: its range, the temperatures and times, and how it joins
+    the lineshape range.
 
     Attributes
     ----------
-    window : TransferWindow
+    rate_range : TransferRange
     runs : list of TransferRun
     lineshape_range_k : (float, float) or None
-        Where lineshapes measure the process (the union over fields of its measurable windows, inside the
+        Where lineshapes measure the process (the union over fields of its measurable ranges, inside the
         usable range), K.
     notes : list of str
     """
 
-    window: TransferWindow
+    rate_range: TransferRange
     runs: list[TransferRun]
     lineshape_range_k: tuple[float, float] | None
     notes: list[str] = field(default_factory=list)
@@ -242,25 +242,25 @@ class TransferPlan:
 
     @property
     def combined_range_k(self) -> tuple[float, float] | None:
-        """From the lowest transfer temperature to the top of the lineshape window (K)."""
+        """From the lowest transfer temperature to the top of the lineshape range (K)."""
         ends = [r for r in (self.transfer_range_k, self.lineshape_range_k) if r is not None]
         return (min(r[0] for r in ends), max(r[1] for r in ends)) if ends else None
 
     def to_dict(self) -> dict:
         """Plain dict (JSON-ready)."""
         combined = self.combined_range_k
-        return {**self.window.to_dict(), "runs": [r.to_dict() for r in self.runs],
+        return {**self.rate_range.to_dict(), "runs": [r.to_dict() for r in self.runs],
                 "transfer_range_k": None if self.transfer_range_k is None else list(self.transfer_range_k),
                 "lineshape_range_k": None if self.lineshape_range_k is None else list(self.lineshape_range_k),
                 "combined_range_k": None if combined is None else list(combined),
                 "combined_span_k": None if combined is None else combined[1] - combined[0], "notes": self.notes}
 
 
-def _lineshape_range(windows: Sequence[PairTimescale], process: int,
+def _lineshape_range(timescales: Sequence[PairTimescale], process: int,
                      limits: tuple[float, float]) -> tuple[float, float] | None:
-    """The union over fields of the process's measurable windows, cut to `limits` (K)."""
-    ends = [(w.slow_below_k, w.fast_above_k) for w in windows if w.pair.process == process
-            and w.slow_below_k is not None and w.fast_above_k is not None and not w.window.is_empty]
+    """The union over fields of the process's measurable ranges, cut to `limits` (K)."""
+    ends = [(w.slow_below_k, w.fast_above_k) for w in timescales if w.pair.process == process
+            and w.slow_below_k is not None and w.fast_above_k is not None and not w.rate_range.is_empty]
     if not ends:
         return None
     low, high = max(min(e[0] for e in ends), limits[0]), min(max(e[1] for e in ends), limits[1])
@@ -276,24 +276,24 @@ def _transfer_temperatures(low_k: float, high_k: float, runs: int, min_step_k: f
     return sorted({float(round(1.0 / x)) for x in np.linspace(1.0 / low_k, 1.0 / high_k, count)})
 
 
-def plan_transfer(model: Model, activations: dict[int, ActivationParameters], windows: Sequence[PairTimescale],
+def plan_transfer(model: Model, activations: dict[int, ActivationParameters], timescales: Sequence[PairTimescale],
                   limits: tuple[float, float], r1_per_s: float | None = None, runs: int = DEFAULT_TRANSFER_RUNS,
                   min_step_k: float = DEFAULT_MIN_STEP_K) -> list[TransferPlan]:
-    """Magnetisation transfer below the lineshape window, for every process with activation parameters.
+    """Magnetisation transfer below the lineshape range, for every process with activation parameters.
 
     Parameters
     ----------
     model : Model
     activations : dict of int to ActivationParameters
         Per process index.
-    windows : sequence of PairTimescale
-        The lineshape windows (per field and pair) to join with.
+    timescales : sequence of PairTimescale
+        The lineshape ranges (per field and pair) to join with.
     limits : (float, float)
         Usable temperatures (K): probe and solvent.
     r1_per_s : float, optional
         R1 (s^-1) instead of the model's (see :func:`relaxation_rate`).
     runs : int
-        Temperatures per process (0: windows and ranges only).
+        Temperatures per process (0: the ranges alone).
     min_step_k : float
         Smallest step between them (K).
 
@@ -304,19 +304,19 @@ def plan_transfer(model: Model, activations: dict[int, ActivationParameters], wi
     if int(runs) != runs or runs < 0:
         raise InputError("must be a whole number, 0 or more", where="transfer_runs")
     out = []
-    for index, window in zip(sorted(activations), transfer_windows(model, activations, r1_per_s)):
+    for index, span in zip(sorted(activations), transfer_ranges(model, activations, r1_per_s)):
         notes, temps = [], []
-        if window.is_empty or window.low_k is None or window.high_k is None:
-            notes.append("no temperature between 20 and 2000 K gives a rate in the transfer window")
+        if span.is_empty or span.low_k is None or span.high_k is None:
+            notes.append("no temperature between 20 and 2000 K gives a rate in the transfer range")
         else:
-            low, high = max(window.low_k, limits[0]), min(window.high_k, limits[1])
+            low, high = max(span.low_k, limits[0]), min(span.high_k, limits[1])
             if low >= high:
-                notes.append(f"the transfer window {window.low_k:.0f}-{window.high_k:.0f} K lies outside the usable"
+                notes.append(f"the transfer range {span.low_k:.0f}-{span.high_k:.0f} K lies outside the usable"
                              f" range {limits[0]:.0f}-{limits[1]:.0f} K")
             else:
                 temps = _transfer_temperatures(low, high, int(runs), min_step_k)
-        plan = TransferPlan(window, [_transfer_run(model, activations, index, t, window.r1_per_s) for t in temps],
-                            _lineshape_range(windows, index, limits), notes)
+        plan = TransferPlan(span, [_transfer_run(model, activations, index, t, span.r1_per_s) for t in temps],
+                            _lineshape_range(timescales, index, limits), notes)
         out.append(replace(plan, notes=notes + _joining_notes(plan, activations[index])))
     return out
 
@@ -332,14 +332,14 @@ def _transfer_run(model: Model, activations: dict[int, ActivationParameters], in
 
 
 def _joining_notes(plan: TransferPlan, activation: ActivationParameters) -> list[str]:
-    """Whether the transfer and lineshape windows meet, and how wide the two together are."""
+    """Whether the transfer and lineshape ranges meet, and how wide the two together are."""
     combined, transfer, lineshape = plan.combined_range_k, plan.transfer_range_k, plan.lineshape_range_k
     notes = []
     if transfer and lineshape and transfer[1] < lineshape[0]:
         notes.append(f"a gap between the methods, {transfer[1]:.0f}-{lineshape[0]:.0f} K (k {activation.rate_at(transfer[1]):.2g}"
                      f"-{activation.rate_at(lineshape[0]):.2g} s^-1): neither measures it well")
     if combined and combined[1] - combined[0] < WIDE_SPAN_K:
-        notes.append(f"together the methods span {combined[1] - combined[0]:.0f} K, under {WIDE_SPAN_K:g} K: dS‡ stays"
+        notes.append(f"together the methods span {combined[1] - combined[0]:.0f} K, under {WIDE_SPAN_K:g} K: ΔS‡ stays"
                      " poorly determined; widen the usable range (solvent, probe) if you can")
     return notes
 
@@ -348,14 +348,14 @@ def transfer_report_lines(plans: Sequence[TransferPlan]) -> list[str]:
     """Report lines of the magnetisation-transfer plans ([] when there are none)."""
     if not plans:
         return []
-    lines = ["", "Magnetisation transfer below the lineshape window (selective inversion, saturation transfer or"
+    lines = ["", "Magnetisation transfer below the lineshape range (selective inversion, saturation transfer or"
              " 2D exchange, then dnmr transfer)"]
     for plan in plans:
-        lines.append(f"  {plan.window.describe()}")
+        lines.append(f"  {plan.rate_range.describe()}")
         lines += [run.describe() for run in plan.runs]
         if plan.lineshape_range_k:
             lo, hi = plan.lineshape_range_k
-            lines.append(f"  lineshapes: {lo:.0f}-{hi:.0f} K (measurable window, all fields)")
+            lines.append(f"  lineshapes: {lo:.0f}-{hi:.0f} K (measurable range, all fields)")
         if plan.combined_range_k:
             lo, hi = plan.combined_range_k
             lines.append(f"  together: {lo:.0f}-{hi:.0f} K, a span of {hi - lo:.0f} K for one Eyring analysis"

@@ -27,11 +27,11 @@ def rate_text(row: dict) -> str:
 
 def posterior_rate_text(row: dict) -> str:
     """The posterior rate of a rates.csv row: median with its 95 % interval, or the one-sided 95 % bound."""
-    if row.get("posterior_bound95_per_s"):
-        return f"{'<' if row.get('status') == 'upper-bound' else '>'} {table_number(row['posterior_bound95_per_s'])}"
-    if row.get("posterior_median_per_s"):
-        return (f"{table_number(row['posterior_median_per_s'])} ({table_number(row.get('posterior_ci95_low_per_s'))} to "
-                f"{table_number(row.get('posterior_ci95_high_per_s'))})")
+    if row.get("posterior_rate_bound95"):
+        return f"{'<' if row.get('status') == 'upper-bound' else '>'} {table_number(row['posterior_rate_bound95'])}"
+    if row.get("posterior_rate_median"):
+        return (f"{table_number(row['posterior_rate_median'])} ({table_number(row.get('posterior_rate_ci95_lower'))} to "
+                f"{table_number(row.get('posterior_rate_ci95_upper'))})")
     return ""
 
 
@@ -48,10 +48,10 @@ def posterior_figure_path(outdir: Path, spectrum: dict) -> Path:
 
 def _least_squares_text(name: str, fit: dict) -> str:
     """The least-squares result of one posterior quantity: the rate as in the rate table for
-    ``rate_per_s_<process>`` and ``log10_k_<process>`` (no error bar for a bound), else value ± error."""
-    rate_names = [n for n in fit.get("parameters", {}) if n.startswith("log10_k_")]
+    ``rate_per_s_<process>`` and ``log10_rate_<process>`` (no error bar for a bound), else value ± error."""
+    rate_names = [n for n in fit.get("parameters", {}) if n.startswith("log10_rate_")]
     rates = dict(zip(rate_names, fit.get("rates", [])))
-    rate = rates.get("log10_k_" + name[len("rate_per_s_"):]) if name.startswith("rate_per_s_") else None
+    rate = rates.get("log10_rate_" + name[len("rate_per_s_"):]) if name.startswith("rate_per_s_") else None
     if rate is not None:
         return rate_text(rate)
     par = fit.get("parameters", {}).get(name) or {}
@@ -68,7 +68,7 @@ def _posterior_cells(q: dict) -> list[str]:
     kind = q.get("kind")
     if kind in ("upper-bound", "lower-bound"):
         sign = "<" if kind == "upper-bound" else ">"
-        return ["", "", "", f"{sign} {table_number(q.get('bound_95'))}"]
+        return ["", "", "", f"{sign} {table_number(q.get('bound95'))}"]
     if kind == "undetermined":
         return ["not determined: the posterior is the prior", "", "", ""]
     span = lambda pair: f"{table_number(pair[0])} to {table_number(pair[1])}" if pair else ""  # noqa: E731

@@ -1,5 +1,5 @@
-"""The report of a global fit (``dnmr fit --global``, a folder holding global.json): its treatment and dH‡,
-dS‡, the comparison with the two-step result, each spectrum's fit quality against the measured noise, the
+"""The report of a global fit (``dnmr fit --global``, a folder holding global.json): its treatment and ΔH‡,
+ΔS‡, the comparison with the two-step result, each spectrum's fit quality against the measured noise, the
 global parameters, and the model, warnings, cautions and inputs of its two-step folder.
 """
 from __future__ import annotations
@@ -19,8 +19,8 @@ from dnmr.reporting.supportingsection import global_supporting_rows, supporting_
 GLOBAL_NAME = "global.json"
 
 
-COMPARED = {"enthalpy_kj_mol": ("dH‡", "kJ/mol"), "entropy_j_mol_k": ("dS‡", "J/(mol K)"),
-            "gibbs_298_kj_mol": ("dG‡(298.15 K)", "kJ/mol"), "gibbs_hm_kj_mol": ("dG‡(T_hm)", "kJ/mol")}
+COMPARED = {"enthalpy_kj_mol": ("ΔH‡", "kJ/mol"), "entropy_j_mol_k": ("ΔS‡", "J/(mol K)"),
+            "gibbs_298_kj_mol": ("ΔG‡(298.15 K)", "kJ/mol"), "gibbs_hm_kj_mol": ("ΔG‡(T_hm)", "kJ/mol")}
 
 
 def read_global(outdir: Path) -> dict:
@@ -40,13 +40,13 @@ def _global_parameter_table(process: dict) -> str:
     rows = []
     for key, (label, unit) in COMPARED.items():
         if key == "gibbs_hm_kj_mol":
-            label = f"dG‡({process['harmonic_mean_temperature_k']:.1f} K, harmonic mean)"
+            label = f"ΔG‡({process['harmonic_mean_temperature_k']:.1f} K, harmonic mean)"
         stderr_key = key.replace("_kj_mol", "_stderr").replace("_j_mol_k", "_stderr")
         value, stderr = process[key], process[stderr_key]
         rows.append(f"<tr><th>{esc(label)}</th>{parameter_cell(key, value, stderr)}<td>{esc(unit)}</td>"
                     f'<td class="num">{esc(format_with_error(value * KCAL_PER_KJ, stderr * KCAL_PER_KJ))} '
                     f"{esc(unit.replace('kJ', 'kcal').replace('J/', 'cal/'))}</td></tr>")
-    rows.append(f'<tr><th>corr(dH‡, dS‡)</th><td class="num" data-key="correlation_enthalpy_entropy" '
+    rows.append(f'<tr><th>corr(ΔH‡, ΔS‡)</th><td class="num" data-key="correlation_enthalpy_entropy" '
                 f'data-value="{process["correlation_enthalpy_entropy"]!r}">{process["correlation_enthalpy_entropy"]:.4f}'
                 "</td><td></td><td></td></tr>")
     head = "<tr><th>quantity</th><th>value ± standard error</th><th>unit</th><th>in kcal/mol or cal/(mol K)</th></tr>"
@@ -56,15 +56,16 @@ def _global_parameter_table(process: dict) -> str:
 
 def _treatment_text(g: dict) -> str:
     o = g.get("options") or {}
-    width = "fitted in every spectrum" if o.get("linewidth") == "per-spectrum" else f"{o.get('linewidth')} in T"
-    return (f"Shifts {o.get('shifts')} in T, couplings {o.get('couplings')} in T, intrinsic linewidth {width}, "
-            f"populations {o.get('populations')}; amplitude, phase, baseline and frequency offset of every spectrum "
+    width = ("fitted in every spectrum" if o.get("linewidth_trend") == "per-spectrum"
+             else f"{o.get('linewidth_trend')} in T")
+    return (f"Shifts {o.get('shift_trend')} in T, couplings {o.get('coupling_trend')} in T, intrinsic linewidth {width}, "
+            f"populations {o.get('population_trend')}; amplitude, phase, baseline and frequency offset of every spectrum "
             f"fitted jointly (offsets anchored to no mean and no trend the shifts could take). Reference temperature "
             f"of the trends {table_number(o.get('reference_temperature_k'), '.2f')} K.")
 
 
 def global_summary_section(g: dict) -> str:
-    """What the global fit assumed, how well it fits against the measured noise, and dH‡, dS‡ per process."""
+    """What the global fit assumed, how well it fits against the measured noise, and ΔH‡, ΔS‡ per process."""
     misfits = [s for s in g.get("spectra", []) if s.get("misfit")]
     quality = (f"Chi-square {g['chi_square']:.1f} on {g['degrees_of_freedom']} degrees of freedom: reduced "
                f"{g['reduced_chi_square']:.3f} against each spectrum's measured noise (weights never depend on how "

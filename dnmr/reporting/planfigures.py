@@ -14,27 +14,27 @@ from matplotlib.figure import Figure
 from dnmr.errors import InputError
 from dnmr.formatting import rates_text
 from dnmr.planning.regimes import PairTimescale
-from dnmr.planning.transferplan import TransferWindow
+from dnmr.planning.transferplan import TransferRange
 from dnmr.reporting.plotting import INK, REGIME_COLOURS, TRANSFER_COLOUR, figure_text, plot_stack, plt
 
 
 def plot_regimes(pairs: Sequence[PairTimescale], figure: Figure | None = None,
-                 transfer: Sequence[TransferWindow] = ()) -> Figure:
+                 transfer: Sequence[TransferRange] = ()) -> Figure:
     """Bands of slow, intermediate and fast exchange against temperature: one panel per field, one row per
-    pair, and a row per process for the magnetisation-transfer window.
+    pair, and a row per process for the magnetisation-transfer range.
 
     Parameters
     ----------
     pairs : sequence of PairTimescale
         With temperatures (activation parameters known).
     figure : matplotlib Figure, optional
-    transfer : sequence of TransferWindow
-        Windows of magnetisation transfer (the same at every field), drawn under the pairs.
+    transfer : sequence of TransferRange
+        Ranges of magnetisation transfer (the same at every field), drawn under the pairs.
 
     Returns
     -------
     matplotlib.figure.Figure
-        Intermediate exchange is the lineshape window; the transfer window is a bar of its own hue.
+        Intermediate exchange is the lineshape range; the transfer range is a bar of its own hue.
     """
     shown = [p for p in pairs if p.slow_below_k is not None and p.fast_above_k is not None]
     if not shown:

@@ -47,7 +47,7 @@ INK, GREY, PALE = PALETTE["ink"], PALETTE["grey"], PALETTE["pale"]
 FIT_COLOUR = PALETTE["vermilion"]  # a fitted spectrum beside the measured one (ink)
 #: Exchange regimes of ``dnmr timescale --plot``: dark to light from slow to fast.
 REGIME_COLOURS = {"slow": PALETTE["indigo"], "intermediate": PALETTE["vermilion"], "fast": PALETTE["gold"]}
-#: The window of magnetisation transfer in the same figure.
+#: The range of magnetisation transfer in the same figure.
 TRANSFER_COLOUR = PALETTE["teal"]
 
 
@@ -67,7 +67,7 @@ _FIGURE_SYMBOLS = ((re.compile(r"\bd([HSG])‡"), r"Δ\1‡"), (re.compile(r"\bd
 
 def figure_text(text: str) -> str:
     """Plain report text made fit for a figure: real superscripts (``s^-1``, ``s⁻¹`` -> s$^{-1}$), a
-    subscript in log$_{10}$, 1.2×10$^{4}$ for 1.2e+04, ΔH‡/ΔS‡/ΔG‡ for dH‡/dS‡/dG‡, Δν for dnu, ↔ for
+    subscript in log$_{10}$, 1.2×10$^{4}$ for 1.2e+04, ΔH‡/ΔS‡/ΔG‡ for ΔH‡/ΔS‡/ΔG‡, Δν for dnu, ↔ for
     <->, a nucleus as $^{13}$C; a literal $ stays one."""
     text = text.replace("$", r"\$")
     for pattern, replacement in _FIGURE_SYMBOLS:

@@ -23,7 +23,7 @@ and the Eyring analysis fits the rates of OUTDIR and of every transfer folder to
 rate marked by its method).  Without them the report is the lineshape fits' alone.
 
 A folder of ``dnmr fit --global`` (it holds global.json) gets the global fit's report instead: its
-treatment and dH‡, dS‡, the comparison with the two-step result (activation parameters and rates), each
+treatment and ΔH‡, ΔS‡, the comparison with the two-step result (activation parameters and rates), each
 spectrum's chi-square per point against the measured noise beside its two-step fit, the stacked fits
 and residuals, the global parameters, the model, warnings, cautions and the inputs of the two-step folder.
 
@@ -59,7 +59,9 @@ from pathlib import Path
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.temperature_calibration import TemperatureCalibration
 from dnmr.errors import InputError
-from dnmr.io.output import atomic_write_text, chosen_figure_format, figure_file, figures_as, save_figure
+from dnmr.fitting.resultsfolder import lock_results_folder, refuse_linked_folders, release_results_folder
+from dnmr.io.output import (atomic_write_text, check_output_file, chosen_figure_format, figure_file, figures_as,
+                             save_figure)
 from dnmr.reporting.globalreport import GLOBAL_NAME, global_document, read_global
 from dnmr.reporting.reportinputs import gather_inputs
 from dnmr.reporting.seriesreport import render_report
@@ -67,6 +69,8 @@ from dnmr.reporting.supporting import REPORT_NAME, supporting_folder, write_supp
 from dnmr.reporting.supportingsection import SupportingRows, global_supporting_rows, supporting_rows
 
 INPUT_NAMES = ("results.json", "rates.csv", "global.json")
+#: The program the report names in the lock of the folder it writes into.
+REPORT_PROGRAM = "dnmr report"
 
 
 def _refuse_inputs(path: Path, outdir: Path) -> None:
@@ -119,14 +123,27 @@ def write_report(
     Raises
     ------
     InputError
-        When OUTDIR has no valid results.json or rates.csv, the calibration cannot be read, or the output
-        exists (without `overwrite`) or would replace an input.
+        When OUTDIR has no valid results.json or rates.csv, the calibration cannot be read, the output
+        exists (without `overwrite`) or would replace an input, its supporting-information folder is a
+        link or a file (nothing is written through a link out of the folder), or another dnmr run is
+        writing into the report's folder (the report takes the folder's lock while it writes, as
+        ``dnmr fit`` does).
     """
     outdir = Path(outdir)
     path = Path(output) if output is not None else outdir / REPORT_NAME
     _refuse_inputs(path, outdir)
-    if path.exists() and not overwrite:
-        raise InputError(f"{path} already exists; choose another name or pass --overwrite", where="output")
+    check_output_file(path, overwrite, "--output")
+    refuse_linked_folders(path.parent, (supporting_folder(path).name,))
+    lock = lock_results_folder(path.parent, REPORT_PROGRAM)
+    try:
+        return _write_locked(outdir, path, calibration, overwrite, transfer, figure_format)
+    finally:
+        release_results_folder(lock)
+
+
+def _write_locked(outdir: Path, path: Path, calibration: TemperatureCalibration | str | Path | None, overwrite: bool,
+                  transfer: Sequence[str | Path], figure_format: str | None) -> Path:
+    """The work of :func:`write_report` once the folder of the report (`path`) is locked."""
     with figures_as(figure_format or chosen_figure_format()):
         if (outdir / GLOBAL_NAME).is_file():
             if transfer:

@@ -28,10 +28,10 @@ BOUND_STATUSES = ("upper-bound", "lower-bound", "interval", "undetermined")
 
 PARAMETER_ROWS = (
     # label, key, unit, converted unit (kcal) or None
-    ("dH‡", "enthalpy", "kJ/mol", "kcal/mol"),
-    ("dS‡", "entropy", "J/(mol K)", "cal/(mol K)"),
-    ("dG‡(298.15 K)", "gibbs_298", "kJ/mol", "kcal/mol"),
-    ("dG‡(T_hm)", "gibbs_hm", "kJ/mol", "kcal/mol"),
+    ("ΔH‡", "enthalpy", "kJ/mol", "kcal/mol"),
+    ("ΔS‡", "entropy", "J/(mol K)", "cal/(mol K)"),
+    ("ΔG‡(298.15 K)", "gibbs_298", "kJ/mol", "kcal/mol"),
+    ("ΔG‡(T_hm)", "gibbs_hm", "kJ/mol", "kcal/mol"),
     ("Ea (Arrhenius)", "activation_energy", "kJ/mol", None),
 )
 
@@ -47,15 +47,15 @@ def parameter_table(result: EyringResult) -> str:
     rows = []
     for label, key, unit, unit2 in PARAMETER_ROWS:
         if key == "gibbs_hm":
-            label = f"dG‡({d['harmonic_mean_temperature_k']:.1f} K, harmonic mean)"
+            label = f"ΔG‡({d['harmonic_mean_temperature_k']:.1f} K, harmonic mean)"
         value, stderr = d[_value_key(key)], d[key + "_stderr"]
         converted = (f'<td class="num">{esc(format_with_error(value * KCAL_PER_KJ, stderr * KCAL_PER_KJ))} '
                      f"{esc(unit2)}</td>") if unit2 else "<td></td>"
         rows.append(f"<tr><th>{esc(label)}</th>{parameter_cell(_value_key(key), value, stderr)}"
                     f"<td>{esc(unit)}</td>{converted}</tr>")
-    rows.append(f'<tr><th>corr(dH‡, dS‡)</th><td class="num" data-key="correlation_enthalpy_entropy" '
+    rows.append(f'<tr><th>corr(ΔH‡, ΔS‡)</th><td class="num" data-key="correlation_enthalpy_entropy" '
                 f'data-value="{result.correlation!r}">{result.correlation:.4f}</td><td></td><td></td></tr>')
-    rows.append(f"<tr><th>corr(dG‡(T_hm), dH‡)</th><td class=\"num\">{d['correlation_gibbs_hm_enthalpy']:+.3f}</td>"
+    rows.append(f"<tr><th>corr(ΔG‡(T_hm), ΔH‡)</th><td class=\"num\">{d['correlation_gibbs_hm_enthalpy']:+.3f}</td>"
                 "<td></td><td></td></tr>")
     head = "<tr><th>quantity</th><th>value ± standard error</th><th>unit</th><th>in kcal/mol or cal/(mol K)</th></tr>"
     return (f'<table class="parameters" data-process="{esc(result.process)}"><thead>{head}</thead>'
@@ -108,8 +108,8 @@ def _exchange_start(exchange) -> str:
     if exchange.rate_per_s is not None:
         return f"k = {exchange.rate_per_s:g} s^-1"
     if exchange.barrier_kj_mol is not None:
-        return f"dG‡ = {exchange.barrier_kj_mol:g} kJ/mol"
-    return f"dH‡ = {exchange.enthalpy_kj_mol:g} kJ/mol, dS‡ = {exchange.entropy_j_mol_k:g} J/(mol K)"
+        return f"ΔG‡ = {exchange.barrier_kj_mol:g} kJ/mol"
+    return f"ΔH‡ = {exchange.enthalpy_kj_mol:g} kJ/mol, ΔS‡ = {exchange.entropy_j_mol_k:g} J/(mol K)"
 
 
 def model_section(inputs: ReportInputs) -> str:
@@ -137,7 +137,7 @@ def model_section(inputs: ReportInputs) -> str:
 
 def rate_section(inputs: ReportInputs) -> str:
     """The rate table of rates.csv (with the posterior rates when ``dnmr fit --posterior`` sampled them)."""
-    sampled = any("posterior_median_per_s" in row for row in inputs.rates)
+    sampled = any("posterior_rate_median" in row for row in inputs.rates)
     temperatures = sample_temperature_cells(inputs)
     rows = [temperature + [row.get("process", ""), rate_text(row), row.get("status", ""),
              table_number(row.get("reduced_chi_square"), ".3f"), row.get("flags", "")]
@@ -196,7 +196,7 @@ def eyring_section(inputs: ReportInputs) -> str:
     if inputs.calibration is not None:
         body += pre(inputs.calibration.report())
     body += "".join(pre(r.report()) for r in inputs.eyring)
-    body += (f'<p class="muted">dG‡ is least correlated with dH‡ at the weighted harmonic-mean temperature '
+    body += (f'<p class="muted">ΔG‡ is least correlated with ΔH‡ at the weighted harmonic-mean temperature '
              f"(Grieger, Hunter &amp; Krug 1976); {STANDARD_TEMPERATURE_K} K is quoted for comparison.</p>")
     return section("eyring", "Eyring analysis", body)
 

@@ -104,7 +104,7 @@ def write_stack(model_file: str | Path, output: str | Path, *, rates_per_s: list
     from dnmr.io.output import save_figure
     from dnmr.reporting.plotting import plot_stack
 
-    option, values = ("--rates", rates_per_s) if rates_per_s is not None else ("--temperatures", temperatures_k)
+    option, values = ("--rates-per-s", rates_per_s) if rates_per_s is not None else ("--temperatures-k", temperatures_k)
     if values is not None and len(values) > MAX_STACKED_TRACES:
         raise InputError(f"{len(values)} values: a stacked figure shows at most {MAX_STACKED_TRACES} traces",
                          where=option)

@@ -30,13 +30,12 @@ from pathlib import Path
 
 import numpy as np
 
+from dnmr.fitting.resultsfolder import SUPPORTING_FOLDER
 from dnmr.formatting import format_with_error
 from dnmr.errors import InputError
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, KCAL_PER_KJ, PLANCK, STANDARD_TEMPERATURE_K
 from dnmr.io.output import atomic_write_text
 
-#: The folder, inside a results folder, that holds the supporting-information tables.
-SUPPORTING_FOLDER = "supporting-information"
 #: The file name of the HTML report (``dnmr report``), beside which its tables go (:func:`supporting_folder`).
 REPORT_NAME = "report.html"
 RATES_STEM, ACTIVATION_STEM, TABLES_STEM = "si_rates", "si_activation", "si_tables"

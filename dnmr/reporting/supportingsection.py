@@ -10,9 +10,8 @@ from dataclasses import dataclass
 from dnmr.errors import InputError
 from dnmr.reporting.reporthtml import esc, section, table
 from dnmr.reporting.reportinputs import ReportInputs
-from dnmr.reporting.supporting import (ACTIVATION_STEM, RATES_STEM, REPORT_NAME, SUPPORTING_FOLDER, TABLES_STEM,
-                                       activation_rows, rate_rows_from_global, rate_rows_from_table, rate_table_cells,
-                                       rates_note)
+from dnmr.reporting.supporting import ACTIVATION_STEM, RATES_STEM, REPORT_NAME, TABLES_STEM, activation_rows, rate_rows_from_global, rate_rows_from_table, rate_table_cells, rates_note
+from dnmr.fitting.resultsfolder import SUPPORTING_FOLDER
 
 @dataclass
 class SupportingRows:

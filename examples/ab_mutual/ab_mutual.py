@@ -42,7 +42,7 @@ c_hz = math.hypot(dnu_hz, j_hz)
 quartet_ppm = sorted(centre_ppm + sign * (c_hz + s2 * abs(j_hz)) / 2 / sf for sign in (1, -1) for s2 in (1, -1))
 frozen = dnmr.simulate(model.with_rates([0.0]))
 print(model.title)
-print(f"dnu = {dnu_hz:.2f} Hz, J = {j_hz} Hz")
+print(f"Δν = {dnu_hz:.2f} Hz, J = {j_hz} Hz")
 print("AB quartet, closed form / ppm:", ", ".join(f"{p:.4f}" for p in reversed(quartet_ppm)))
 print("AB quartet, engine / ppm:     ", ", ".join(f"{p:.4f}" for p in frozen.maxima_ppm()))
 
@@ -50,7 +50,7 @@ print("AB quartet, engine / ppm:     ", ", ".join(f"{p:.4f}" for p in frozen.max
 # ## 2. The VT stack
 
 # %%
-activation = dnmr.ActivationParameters.of_exchange(model.exchanges[0])  # dH‡ and dS‡ from the model file
+activation = dnmr.ActivationParameters.of_exchange(model.exchanges[0])  # ΔH‡ and ΔS‡ from the model file
 temperatures_k = [230, 260, 280, 290, 297, 305, 320, 350, 400]
 spectra, labels = dnmr.simulate_over(model, temperatures_k=temperatures_k)
 ax = plot_stack(spectra, labels, title="DB-7, CH$_2$, 400 MHz (simulated)")
@@ -106,7 +106,7 @@ fig.savefig(OUT / "fast_limit.png", dpi=120, bbox_inches="tight")
 # %%
 summary = "\n".join([
     model.title,
-    f"dnu = {dnu_hz:.3f} Hz, J = {j_hz} Hz; {activation.describe()}",
+    f"Δν = {dnu_hz:.3f} Hz, J = {j_hz} Hz; {activation.describe()}",
     "",
     "coalescence (k in s^-1, T in K)",
     f"  engine, 0.9 Hz lines         k_c = {engine.rate_per_s:10.6g}  T_c = {engine.temperature_k:7.2f}",

@@ -33,7 +33,7 @@ from dnmr.reporting.plotting import plot_stack
 # %% [markdown]
 # ## 1. The model at a few temperatures
 # Populations are given as free energies, so they follow Boltzmann at each temperature; the rate of the
-# flip eq -> ax follows Eyring (dH‡ 44 kJ/mol, dS‡ -2 J/(mol K)); the reverse rate follows from detailed
+# flip eq -> ax follows Eyring (ΔH‡ 44 kJ/mol, ΔS‡ -2 J/(mol K)); the reverse rate follows from detailed
 # balance.
 
 # %%

@@ -108,7 +108,7 @@ ax = plot_stack(spectra, labels, title="TF-8, 400 MHz (simulated)")
 ax.figure.savefig(OUT / "vt_stack.png", dpi=120, bbox_inches="tight")
 coalescence = dnmr.predict_coalescence(model, activation, frequencies_mhz=[400.13, 600.13])
 for c in coalescence:
-    print(f"  {c.proton_mhz:.0f} MHz  {c.pair.label:<18} |dnu| {abs(c.shift_difference_hz):6.2f} Hz"
+    print(f"  {c.proton_mhz:.0f} MHz  {c.pair.label:<18} |Δν| {abs(c.shift_difference_hz):6.2f} Hz"
           f"  k_c {c.rate_per_s:8.2f} s^-1  T_c {c.temperature_k:6.1f} K")
 
 # %% [markdown]

@@ -3,7 +3,7 @@
 #
 # Invented scenario: AZ-2 is an invented N,N-dimethyl heteroaryl amide.  At room temperature its two
 # N-methyl singlets are 0.19 ppm apart; a related amide had a rotation barrier of about 72 kJ/mol, so
-# the chemist expects dG‡ near that.  Before booking magnet time they want to know, at each of the three
+# the chemist expects ΔG‡ near that.  Before booking magnet time they want to know, at each of the three
 # spectrometers they can use (300, 400, 600 MHz): where the singlets coalesce, which temperatures to run,
 # whether their usual solvent (CDCl3) stays liquid there, and what to watch out for.  All numbers are
 # invented (see model.toml).
@@ -26,8 +26,8 @@ import dnmr
 # %% [markdown]
 # ## 1. The model and the barrier to plan for
 # The model gives shifts, linewidth and populations; its rate is a placeholder.  The guess of the barrier
-# comes in as `ActivationParameters`: here dG‡ = 72 kJ/mol taken as the same at every temperature
-# (`from_gibbs`, i.e. dS‡ = 0); give dH‡ and dS‡ instead if you have them.
+# comes in as `ActivationParameters`: here ΔG‡ = 72 kJ/mol taken as the same at every temperature
+# (`from_gibbs`, i.e. ΔS‡ = 0); give ΔH‡ and ΔS‡ instead if you have them.
 
 # %%
 model = dnmr.load_model(HERE / "model.toml")
@@ -57,8 +57,8 @@ print("  liquid around every coalescence temperature:", ", ".join(chloroform.cov
 # %% [markdown]
 # ## 3. The plan
 # For every field: the coalescence rate and temperature (from the engine, with the model's linewidth and
-# in the narrow-line limit), the window of temperatures in which the spectrum measures the rate, and the
-# recommended temperatures, chosen to make dH‡ and dS‡ as well determined as possible (D-optimal, at the
+# in the narrow-line limit), the range of temperatures in which the spectrum measures the rate, and the
+# recommended temperatures, chosen to make ΔH‡ and ΔS‡ as well determined as possible (D-optimal, at the
 # given signal-to-noise), each with the reason it is there and the predicted (noise-only, lower-bound)
 # standard errors.
 

@@ -5,7 +5,7 @@
 # of a VT unit between 215 and 315 K.  The set-point is the temperature of the gas stream, not of the
 # sample; to know the sample temperature they ran a methanol thermometer tube at ten set-points and read
 # the shift difference between the OH and CH3 lines.  They want a calibration table, the rates on true
-# temperatures, and dH‡, dS‡ and dG‡ whose errors include the uncertainty of the calibration.  The probe's
+# temperatures, and ΔH‡, ΔS‡ and ΔG‡ whose errors include the uncertainty of the calibration.  The probe's
 # behaviour (true T = 0.975 x set-point + 8.0 K), the readings and the rates are all invented.
 #
 # Safety: methanol is toxic (by swallowing, breathing its vapour and through the skin) and highly
@@ -50,7 +50,7 @@ def probe_truth(setpoint_k):
 methanol = get_thermometer("methanol")
 calibration_setpoints = np.array([190.0, 205, 220, 235, 250, 265, 280, 295, 310, 325])
 readings = []
-print("\nset-point / K   dd / ppm   methanol T / K")
+print("\nset-point / K   Δδ / ppm   methanol T / K")
 for s in calibration_setpoints:
     dd = round(methanol.shift_difference(float(probe_truth(s))) + rng.normal(0.0, 0.003), 4)
     reading = dnmr.thermometer_reading(dd, "methanol")
@@ -97,7 +97,7 @@ print(calibration.report())
 
 # %% [markdown]
 # ## 4. The rates table (as recorded: at set-points)
-# PX-4's rates (invented truth: dH‡ = 52.0 kJ/mol, dS‡ = -12.0 J/(mol K)) were "measured" at the true
+# PX-4's rates (invented truth: ΔH‡ = 52.0 kJ/mol, ΔS‡ = -12.0 J/(mol K)) were "measured" at the true
 # sample temperatures with 3 % errors, but the lab book has the set-points.
 
 # %%
@@ -112,7 +112,7 @@ measured_rates = true_k * np.exp(rng.normal(0.0, 0.03, true_k.size))
 # ## 5. Eyring analysis, without and with the calibration
 # Without it, the set-points are taken as sample temperatures: the errors look small but the numbers are
 # biased.  With it, `eyring_fit_file(..., calibration=...)` replaces each set-point by the calibrated
-# temperature and carries the calibration's covariance into dH‡, dS‡ and dG‡ (by Monte Carlo over the
+# temperature and carries the calibration's covariance into ΔH‡, ΔS‡ and ΔG‡ (by Monte Carlo over the
 # temperatures, with a fixed seed so the report is reproducible).
 
 # %%
@@ -121,7 +121,7 @@ calibrated = dnmr.eyring_fit_file(OUT / "rates.csv", calibration=calibration)[0]
 print()
 print(calibrated.report())
 t_mid = calibrated.harmonic_mean_temperature_k
-table = [f"{'':26} {'dH‡ / kJ/mol':>16} {'dS‡ / J/(mol K)':>18} {f'dG‡({t_mid:.0f} K) / kJ/mol':>24}",
+table = [f"{'':26} {'ΔH‡ / kJ/mol':>16} {'ΔS‡ / J/(mol K)':>18} {f'ΔG‡({t_mid:.0f} K) / kJ/mol':>24}",
          f"{'truth (invented)':26} {true_activation.enthalpy_kj_mol:9.2f}        {true_activation.entropy_j_mol_k:11.1f}"
          f"        {true_activation.gibbs_kj_mol(t_mid):17.3f}"]
 for name, result in (("set-points taken as true", naive), ("calibrated temperatures", calibrated)):

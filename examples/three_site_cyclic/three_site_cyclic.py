@@ -63,7 +63,7 @@ ax.figure.savefig(OUT / "rate_stack.png", dpi=120, bbox_inches="tight")
 
 # %%
 for c in dnmr.coalescence(model):
-    print(f"  {c.pair.label:<30} dnu = {abs(c.shift_difference_hz):7.1f} Hz, maxima merge at k = {c.rate_per_s:.3g} s^-1")
+    print(f"  {c.pair.label:<30} Δν = {abs(c.shift_difference_hz):7.1f} Hz, maxima merge at k = {c.rate_per_s:.3g} s^-1")
 
 # %% [markdown]
 # ## 4. The fast-exchange limit

@@ -6,8 +6,8 @@
 # Between 290 and 320 K the two singlets broaden and coalesce: lineshapes give the rate.  From 246 to
 # 264 K the lines are sharp and a lineshape fit gives only an upper bound, but a selective inversion of
 # the syn singlet still sees the rotation carry inverted magnetisation to anti within T1.  One Eyring
-# analysis over both ranges (74 K) fixes dH‡ and dS‡ much better than either alone.  All numbers
-# are invented (see model.toml: dH‡ = 60 kJ/mol, dS‡ = -12 J/(mol K)); the "measured" data are
+# analysis over both ranges (74 K) fixes ΔH‡ and ΔS‡ much better than either alone.  All numbers
+# are invented (see model.toml: ΔH‡ = 60 kJ/mol, ΔS‡ = -12 J/(mol K)); the "measured" data are
 # simulated by dnmr itself, with the true rates written next to them.
 #
 # Run:  python transfer_and_lineshape.py [OUTDIR]     (default: ./transfer_and_lineshape-output, a new folder)
@@ -113,13 +113,13 @@ print(both.report())
 save_figure(both.plot(), OUT / "eyring.png")
 lineshape_only = dnmr.eyring_fit_file(OUT / "lineshape-fit" / "rates.csv")[0]
 summary = [
-    "RX-4 (invented): dH‡ and dS‡ of the aryl rotation; truth 60.0 kJ/mol and -12.0 J/(mol K)",
-    f"lineshapes alone ({len(lineshape_only.rate_per_s)} rates):        dH‡ = {lineshape_only.enthalpy_kj_mol:.2f} ± "
-    f"{lineshape_only.enthalpy_stderr:.2f} kJ/mol, dS‡ = {lineshape_only.entropy_j_mol_k:.1f} ± "
+    "RX-4 (invented): ΔH‡ and ΔS‡ of the aryl rotation; truth 60.0 kJ/mol and -12.0 J/(mol K)",
+    f"lineshapes alone ({len(lineshape_only.rate_per_s)} rates):        ΔH‡ = {lineshape_only.enthalpy_kj_mol:.2f} ± "
+    f"{lineshape_only.enthalpy_stderr:.2f} kJ/mol, ΔS‡ = {lineshape_only.entropy_j_mol_k:.1f} ± "
     f"{lineshape_only.entropy_stderr:.1f} J/(mol K)",
-    f"inversion and lineshapes ({len(both.rate_per_s)} rates): dH‡ = {both.enthalpy_kj_mol:.2f} ± {both.enthalpy_stderr:.2f} "
-    f"kJ/mol, dS‡ = {both.entropy_j_mol_k:.1f} ± {both.entropy_stderr:.1f} J/(mol K)",
-    f"the error of dS‡ shrinks {lineshape_only.entropy_stderr / both.entropy_stderr:.1f}-fold",
+    f"inversion and lineshapes ({len(both.rate_per_s)} rates): ΔH‡ = {both.enthalpy_kj_mol:.2f} ± {both.enthalpy_stderr:.2f} "
+    f"kJ/mol, ΔS‡ = {both.entropy_j_mol_k:.1f} ± {both.entropy_stderr:.1f} J/(mol K)",
+    f"the error of ΔS‡ shrinks {lineshape_only.entropy_stderr / both.entropy_stderr:.1f}-fold",
 ]
 print("\n".join(summary))
 (OUT / "summary.txt").write_text("\n".join(summary) + "\n")

@@ -37,13 +37,13 @@ from dnmr.reporting.plotting import plot_stack
 model = dnmr.load_model(HERE / "model.toml")
 p_e, p_z = model.populations()
 dnu_hz = abs(model.states[0].shifts_ppm["Me"] - model.states[1].shifts_ppm["Me"]) * model.spectrometer.frequency_mhz
-activation = dnmr.ActivationParameters.of_exchange(model.exchanges[0])  # dH‡ and dS‡ from the model file
+activation = dnmr.ActivationParameters.of_exchange(model.exchanges[0])  # ΔH‡ and ΔS‡ from the model file
 print(model.title)
 print(f"populations E {p_e:.2f}, Z {p_z:.2f}; shift difference {dnu_hz:.2f} Hz at {model.spectrometer.frequency_mhz} MHz")
 
 # %% [markdown]
 # ## 2. The VT stack
-# `simulate_over` evaluates the model at each temperature (rates by Eyring from dH‡ and dS‡) on one ppm
+# `simulate_over` evaluates the model at each temperature (rates by Eyring from ΔH‡ and ΔS‡) on one ppm
 # grid; `plot_stack` draws them from the bottom up, enlarging broad traces (the factor is printed).
 
 # %%
@@ -94,13 +94,13 @@ print(f"the equal-population formula would put T_c at {t_equal:.1f} K instead")
 
 # %% [markdown]
 # ## 5. What the equal-population shortcut costs
-# The quick estimate dG‡ = R T_c ln(sqrt 2 kB T_c / (pi h dnu)) assumes equal populations.  Compare it at
-# the engine's T_c with the true dG‡ of the E -> Z process there.
+# The quick estimate ΔG‡ = R T_c ln(sqrt 2 kB T_c / (pi h dnu)) assumes equal populations.  Compare it at
+# the engine's T_c with the true ΔG‡ of the E -> Z process there.
 
 # %%
 quick = dnmr.coalescence_barrier(engine.temperature_k, dnu_hz)
 true_gibbs = activation.gibbs_kj_mol(engine.temperature_k)
-print(f"quick estimate dG‡(T_c) = {quick.gibbs_kj_mol:.2f} kJ/mol; true dG‡(E->Z) at T_c = {true_gibbs:.2f} kJ/mol")
+print(f"quick estimate ΔG‡(T_c) = {quick.gibbs_kj_mol:.2f} kJ/mol; true ΔG‡(E->Z) at T_c = {true_gibbs:.2f} kJ/mol")
 
 # %% [markdown]
 # ## 6. Write the results
@@ -109,7 +109,7 @@ print(f"quick estimate dG‡(T_c) = {quick.gibbs_kj_mol:.2f} kJ/mol; true dG‡(
 # %%
 report = "\n".join([
     model.title,
-    f"populations E {p_e:.3f} / Z {p_z:.3f}; dnu = {dnu_hz:.3f} Hz; {activation.describe()}",
+    f"populations E {p_e:.3f} / Z {p_z:.3f}; Δν = {dnu_hz:.3f} Hz; {activation.describe()}",
     "",
     "coalescence (forward rate k(E->Z), s^-1; temperature, K)",
     f"  engine, 1.0 Hz lines          k_c = {engine.rate_per_s:10.6g}   T_c = {engine.temperature_k:7.2f}",
@@ -117,7 +117,7 @@ report = "\n".join([
     f"  Shanan-Atidi & Bar-Eli 1970   k_c = {k_closed:10.6g}   T_c = {t_closed:7.2f}",
     f"  equal populations (G-H 1956)  k_c = {k_equal:10.6g}   T_c = {t_equal:7.2f}   (wrong here)",
     "",
-    f"quick equal-population dG‡(T_c) = {quick.gibbs_kj_mol:.2f} kJ/mol vs true {true_gibbs:.2f} kJ/mol",
+    f"quick equal-population ΔG‡(T_c) = {quick.gibbs_kj_mol:.2f} kJ/mol vs true {true_gibbs:.2f} kJ/mol",
 ])
 (OUT / "coalescence.txt").write_text(report + "\n")
 at_coalescence = dnmr.simulate(model.with_rates([engine.rate_per_s]))
