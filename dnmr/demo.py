@@ -8,9 +8,11 @@ with the invented truth the demo spectra were made from (`dnmr/data/demo/truth.t
 from __future__ import annotations
 
 import json
+import os
 from importlib import resources
 from pathlib import Path
 
+from dnmr.errors import InputError
 from dnmr.activation.eyring import eyring_fit_file, results_to_dict
 from dnmr.io.modelfile import load_model, read_toml
 from dnmr.io.output import (atomic_write_text, json_ready, missing_folders, new_output_folder, remove_empty_folders,
@@ -24,6 +26,8 @@ from dnmr.activation.parameters import ActivationParameters
 from dnmr.planning.timescale import timescale_view
 
 DEMO_SOLVENT = "toluene-d8"
+#: The demo's own record in its folder: what it wrote, so that --overwrite replaces only a demo's results.
+DEMO_MANIFEST = "demo.json"
 DEMO_FIELDS_MHZ = (400.0, 600.0)
 
 
@@ -50,12 +54,33 @@ def run_demo(outdir: str | Path, overwrite: bool = False, echo=print, progress: 
         stderr when it is a file or a pipe.
     """
     outdir = Path(outdir)
+    _refuse_foreign_folder(outdir, overwrite)
     created = missing_folders(outdir)
     new_output_folder(outdir, overwrite)
     try:
-        return _run_demo(outdir, overwrite, echo, progress)
+        done = _run_demo(outdir, overwrite, echo, progress)
+        manifest = {"program": "dnmr demo",
+                    "files": sorted({os.path.relpath(path, outdir) for path in done["written"].values()})}
+        atomic_write_text(outdir / DEMO_MANIFEST, _json(manifest), overwrite=True)
+        return done
     finally:  # a folder made for the demo that nothing could be written into (a full disk) goes again
         remove_empty_folders(created)
+
+
+def _refuse_foreign_folder(outdir: Path, overwrite: bool) -> None:
+    """With `overwrite`, a folder that holds files must be an earlier demo's (its demo.json says so): the
+    demo never replaces files of the same names that someone else put there."""
+    if not (overwrite and outdir.is_dir() and any(outdir.iterdir())):
+        return
+    manifest = outdir / DEMO_MANIFEST
+    try:
+        ours = (not manifest.is_symlink() and manifest.is_file()
+                and json.loads(manifest.read_text(encoding="utf-8")).get("program") == "dnmr demo")
+    except (OSError, ValueError, AttributeError):
+        ours = False
+    if not ours:
+        raise InputError(f"{outdir} holds files that dnmr demo did not write (no {DEMO_MANIFEST} of an earlier "
+                         "demo); --overwrite replaces only a demo's results: choose a new folder", where="output")
 
 
 def _run_demo(outdir: Path, overwrite: bool, echo, progress: bool | None) -> dict:

@@ -5,6 +5,8 @@ to end, not a check of accuracy: accuracy is tested against independent referenc
 """
 from __future__ import annotations
 
+import json
+
 import matplotlib.pyplot as plt
 from click.testing import CliRunner
 
@@ -25,3 +27,15 @@ def test_demo_writes_the_whole_job(tmp_path):
     assert "fits with held values: 13 of 13 done (" in result.stderr and "\x1b" not in result.stderr
     again = CliRunner().invoke(cli, ["demo", str(out)])
     assert again.exit_code == 2 and "already exists" in again.output  # earlier results are not overwritten
+    assert "eyring.png" in json.loads((out / "demo.json").read_text())["files"]  # what --overwrite may replace
+
+
+def test_demo_overwrite_never_replaces_files_it_did_not_write(tmp_path):
+    # a folder of the user's own with a file named like a demo result: refused before any work, kept
+    out = tmp_path / "mine"
+    out.mkdir()
+    (out / "eyring.png").write_bytes(b"the user's own figure")
+    result = CliRunner().invoke(cli, ["demo", str(out), "--overwrite"])
+    assert result.exit_code == 2 and "did not write" in result.output, result.output
+    assert (out / "eyring.png").read_bytes() == b"the user's own figure"
+    assert sorted(p.name for p in out.iterdir()) == ["eyring.png"]
