@@ -582,3 +582,27 @@ def test_a_bad_calibration_file_is_refused_before_any_fit(tmp_path):
     assert "Traceback" not in run.stderr and len(run.stderr.strip().splitlines()) == 1, run.stderr
     assert "calibration.csv" in run.stderr
     assert not out.exists()
+
+
+def test_a_lock_taken_on_a_removed_lock_file_guards_nothing_and_is_refused(tmp_path, monkeypatch):
+    # the holder releases (and removes) the lock file between a second run's open() and its flock(), and a
+    # third run creates a new one: the second run's lock is on a removed file and must not let it go on
+    # (common practice with flock: compare the locked file with the one at the path)
+    import fcntl
+
+    from dnmr.errors import InputError
+    from dnmr.fitting.resultsfolder import lock_results_folder, release_results_folder
+
+    first, real_flock, runs = lock_results_folder(tmp_path), fcntl.flock, {}
+
+    def flock_just_after_release(handle, flags):
+        if not runs:
+            runs["busy"] = True
+            release_results_folder(first)
+            runs["third"] = lock_results_folder(tmp_path)
+        return real_flock(handle, flags)
+
+    monkeypatch.setattr(fcntl, "flock", flock_just_after_release)
+    with pytest.raises(InputError, match="being written by another dnmr run"):
+        lock_results_folder(tmp_path)
+    release_results_folder(runs["third"])

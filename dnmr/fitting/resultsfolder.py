@@ -129,6 +129,8 @@ def lock_results_folder(outdir: Path, program: str = "dnmr fit") -> FolderLock:
     lock = FolderLock(outdir, handle, created)
     try:
         fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        if not _still_the_lock_file(handle):  # taken just as another run released (and removed) it
+            raise BlockingIOError
     except OSError:
         handle.seek(0)
         holder = handle.read().strip() or "another process"
@@ -142,6 +144,16 @@ def lock_results_folder(outdir: Path, program: str = "dnmr fit") -> FolderLock:
         release_results_folder(lock)
         raise OSError(err.errno, err.strerror, handle.name) from None
     return lock
+
+
+def _still_the_lock_file(handle) -> bool:
+    """Whether the lock file we hold is still the one at its path: a run that releases its lock removes the
+    file, so a lock taken on the removed file (opened just before) guards nothing."""
+    try:
+        here, there = os.fstat(handle.fileno()), os.stat(handle.name)
+    except OSError:
+        return False
+    return (here.st_dev, here.st_ino) == (there.st_dev, there.st_ino)
 
 
 def release_results_folder(lock: FolderLock) -> None:
