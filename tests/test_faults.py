@@ -424,6 +424,21 @@ def test_a_report_into_a_folder_being_written_is_refused(fitted, tmp_path):
     assert sorted(str(p.relative_to(out)) for p in out.rglob("*")) == before  # no report, no tables
 
 
+def test_a_report_written_elsewhere_of_a_folder_being_written_is_refused(fitted, tmp_path):
+    # the report reads a folder a fit is still writing: refused, and nothing is written where it was asked
+    import fcntl
+
+    _, out = copy_of(fitted, tmp_path)
+    elsewhere = tmp_path / "elsewhere.html"
+    with open(out / ".dnmr-lock", "a") as held:  # as a running fit holds it
+        fcntl.flock(held, fcntl.LOCK_EX)
+        held.write("dnmr fit, process 1\n")
+        held.flush()
+        done = dnmr("report", str(out), "-o", str(elsewhere))
+    assert done.returncode == 2 and "being written by another dnmr run (dnmr fit" in one_line(done.stderr)
+    assert not elsewhere.exists() and not (tmp_path / "elsewhere-supporting-information").exists()
+
+
 def test_a_report_never_writes_through_a_linked_folder(fitted, tmp_path):
     _, out = copy_of(fitted, tmp_path)
     elsewhere = tmp_path / "elsewhere"

@@ -146,6 +146,26 @@ def lock_results_folder(outdir: Path, program: str = "dnmr fit") -> FolderLock:
     return lock
 
 
+def refuse_folder_being_written(outdir: Path) -> None:
+    """Refuse to read the results in `outdir` while another dnmr run holds its lock (a report written
+    elsewhere would show half-written results); nothing is created in `outdir`."""
+    import fcntl
+
+    path = outdir / LOCK_FILE
+    if path.is_symlink() or not path.is_file():
+        return
+    try:
+        with open(path) as handle:
+            try:
+                fcntl.flock(handle, fcntl.LOCK_SH | fcntl.LOCK_NB)
+            except OSError:
+                holder = handle.read().strip() or "another process"
+                raise InputError(f"{outdir} is being written by another dnmr run ({holder}); wait for it to "
+                                 "finish before reporting on it", where="OUTDIR") from None
+    except OSError:  # unreadable: the run that wrote it will say so; nothing to refuse here
+        return
+
+
 def _still_the_lock_file(handle) -> bool:
     """Whether the lock file we hold is still the one at its path: a run that releases its lock removes the
     file, so a lock taken on the removed file (opened just before) guards nothing."""

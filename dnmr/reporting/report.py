@@ -59,7 +59,7 @@ from pathlib import Path
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.temperature_calibration import TemperatureCalibration
 from dnmr.errors import InputError
-from dnmr.fitting.resultsfolder import lock_results_folder, refuse_linked_folders, release_results_folder
+from dnmr.fitting.resultsfolder import refuse_folder_being_written, lock_results_folder, refuse_linked_folders, release_results_folder
 from dnmr.io.output import (atomic_write_text, check_output_file, chosen_figure_format, figure_file, figures_as,
                              save_figure)
 from dnmr.reporting.globalreport import GLOBAL_NAME, global_document, read_global
@@ -134,6 +134,8 @@ def write_report(
     _refuse_inputs(path, outdir)
     check_output_file(path, overwrite, "--output")
     refuse_linked_folders(path.parent, (supporting_folder(path).name,))
+    if path.parent.resolve() != outdir.resolve():  # the folder read is not the one locked below
+        refuse_folder_being_written(outdir)
     lock = lock_results_folder(path.parent, REPORT_PROGRAM)
     try:
         return _write_locked(outdir, path, calibration, overwrite, transfer, figure_format)
