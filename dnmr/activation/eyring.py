@@ -29,6 +29,19 @@ matrix: V^-1 is applied by the Woodbury identity, so a table of thousands of row
 Because the estimate is linear in the data, its covariance splits exactly into the shares of the rates,
 of the independent temperature errors and of each shared source (``error_shares``).
 
+Rate errors shared through held trends
+--------------------------------------
+``dnmr fit`` holds the shifts, couplings, populations and linewidth of the faster spectra at trends
+taken from the slow-exchange spectra, and the trends' errors go into every one of those rates at once.
+Its ``rates.csv`` gives these parts (``log10_rate_shared_<source>`` columns: u_ij, log10 k, for each
+direction j of a trend line; the rest of ``rate_stderr`` is the spectrum's own error). The line keeps
+the weights 1/sigma_i^2 of the rate errors as given, and its covariance adds A U U^T A^T ("held trends"
+in ``error_shares``, U the shared parts in ln k, A the linear map of the fit) while the rate part keeps
+only what is not shared: counted as independent, the shared parts would average away over the rows
+although they move the whole line.  The shared parts are kept out of the weights on purpose: they are
+linearised sensitivities of rates that depend on the held values far from linearly past coalescence,
+and a generalised least-squares fit trusting them would pull the line by their curvature.
+
 Standard errors
 ---------------
 * Rate errors given (every rate has ``rate_stderr``): the errors are taken at face value (covariance not
@@ -97,7 +110,7 @@ from dnmr.kinetics import (
     coalescence_rate_per_s,
     eyring_barrier,
 )
-from dnmr.io.tables import check_kelvin, read_table
+from dnmr.io.tables import SHARED_RATE_ERROR_PREFIX, check_kelvin, read_table
 from dnmr.notebook import NotebookView
 from dnmr.activation.thermometry import TemperatureErrors
 
@@ -200,6 +213,10 @@ class RateSeries:
         of the user's); None: every row is a lineshape rate.
     row_files : tuple of str or None
         The file of each row, when the series joins several tables (None for one table or arrays).
+    rate_shared : dict of str to ndarray
+        Parts of the rate errors (ln k) that the rows share, by common source (the
+        ``log10_rate_shared_<source>`` columns of ``dnmr fit``: directions of a held slow-exchange trend);
+        each is part of ``rate_stderr``, 0 where a row does not depend on it.
     """
 
     process: str
@@ -216,6 +233,7 @@ class RateSeries:
     setpoint_k: np.ndarray | None = None
     row_methods: tuple[str, ...] | None = None
     row_files: tuple[str, ...] | None = None
+    rate_shared: dict[str, np.ndarray] = field(default_factory=dict)
 
     def __len__(self) -> int:
         return len(self.temperature_k)
@@ -383,6 +401,8 @@ def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: 
     flags = table.text("flags") if table.has("flags") else ("",) * n
     methods = tuple(m.strip() or DEFAULT_METHOD for m in (table.text("method") if table.has("method") else ("",) * n))
     where = (lambda i: f"{table.source} {table.where(i)}") if several else table.where
+    shared = {name.removeprefix(SHARED_RATE_ERROR_PREFIX): math.log(10) * np.nan_to_num(table.numbers(name, allow_empty=True))
+              for name in table.columns(SHARED_RATE_ERROR_PREFIX)}
     rows = [_FitRow.read(where(i), i, numbers, status[i], flags[i], flagged_rows) for i in range(n)]
     series = []
     for name in dict.fromkeys(processes):
@@ -402,6 +422,7 @@ def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: 
             set_aside=tuple(rows[i].set_aside for i in mine if rows[i].set_aside is not None),
             row_methods=tuple(methods[i] for i in kept) if table.has("method") else None,
             row_files=(table.source,) * len(kept) if several else None,
+            rate_shared={name: values[kept] for name, values in shared.items()},
         ))
     return series
 
@@ -440,6 +461,8 @@ def _joined(process: str, parts: list[RateSeries]) -> RateSeries:
         set_aside=tuple(row for p in parts for row in p.set_aside),
         row_methods=tuple(m for p in parts for m in p.methods.tolist()),
         row_files=tuple(f for p in parts for f in p.row_files),
+        rate_shared={name: np.concatenate([p.rate_shared.get(name, np.zeros(len(p))) for p in parts])
+                     for name in dict.fromkeys(n for p in parts for n in p.rate_shared)},
     )
 
 
@@ -631,6 +654,7 @@ def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
 SHARE_RATES = "rates"
 SHARE_SCATTER = "scatter"
 SHARE_TEMPERATURES = "temperature scatter"
+SHARE_HELD = "held trends"
 
 
 @dataclass(frozen=True)
@@ -645,8 +669,9 @@ class LineFit:
         Total 2 x 2 covariance of (intercept, slope).
     covariance_parts : dict of str to ndarray
         `covariance` split by source (they add up to it): "rates" (or "scatter" when the errors come from
-        the scatter about the line), "temperature scatter" (independent temperature errors) and one entry
-        per shared temperature error ("calibration", "probe offset", "given covariance").
+        the scatter about the line), "temperature scatter" (independent temperature errors), "held trends"
+        (rate errors shared through held trends) and one entry per shared temperature error
+        ("calibration", "probe offset", "given covariance").
     residuals : ndarray
         y - fitted y of each point (ln units).
     weights : ndarray
@@ -721,7 +746,11 @@ def _fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
     a = fit.linear_map
     if have_errors:
-        parts = {SHARE_RATES: (a * sigma2) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
+        # the parts of the rate errors shared through held trends move the rows together: the line keeps its
+        # weights (the rate errors as given), and its covariance counts those parts as correlated
+        held = a @ np.column_stack(list(series.rate_shared.values())) if series.rate_shared else np.zeros((2, 0))
+        own = np.clip(sigma2 - sum(v**2 for v in series.rate_shared.values()), 0.0, None)
+        parts = {SHARE_RATES: (a * own) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T, SHARE_HELD: held @ held.T}
         chi_square = fit.chi_square
     else:
         parts = {SHARE_SCATTER: fit.normal * scatter**2}
@@ -1085,7 +1114,8 @@ class EyringResult(NotebookView):
         """Share of each source in the variance of ΔH‡, ΔS‡ and ΔG‡(298.15 K): fractions adding up to 1.
 
         Sources: "rates" (or "scatter" when the errors come from the scatter about the line),
-        "temperature scatter" and each shared temperature error ("calibration", "probe offset", ...).
+        "temperature scatter", "held trends" (rate errors shared through the trends ``dnmr fit`` held) and
+        each shared temperature error ("calibration", "probe offset", ...).
         """
         t = STANDARD_TEMPERATURE_K
         contrasts = {"enthalpy": np.array([0.0, 1.0]), "entropy": np.array([1.0, 0.0]),
@@ -1409,6 +1439,7 @@ def _subset(series: RateSeries, rows: np.ndarray) -> RateSeries:
         setpoint_k=None if series.setpoint_k is None else series.setpoint_k[rows],
         row_methods=None if series.row_methods is None else tuple(series.methods[rows].tolist()),
         row_files=None if series.row_files is None else tuple(np.array(series.row_files)[rows].tolist()),
+        rate_shared={name: values[rows] for name, values in series.rate_shared.items()},
     )
 
 
@@ -1427,7 +1458,8 @@ def _studentised(series: RateSeries, basis: str) -> np.ndarray:
     out = np.full_like(e, np.nan)
     if basis == BASIS_GIVEN:
         variance = line.residual_covariance.variances()
-        c = line.covariance
+        # judged as the line was weighted: the held trends' shared errors as if independent
+        c = line.covariance - line.covariance_parts.get(SHARE_HELD, 0.0)
         keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
         judged = keep > LEVERAGE_TOLERANCE
         out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])

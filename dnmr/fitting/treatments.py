@@ -240,6 +240,10 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
         outcomes[i] = outcome_from_record(series, i, record, STAGE_HELD)
     for i, o in outcomes.items():
         _set_treatment(series, o, trend, references.get(i))
+        if trend is not None and o.fit is not None:
+            own = o.spectrum.options.parameters  # the user's settings: their errors are not the trend's
+            o.shared_rate_errors = [trend.shared_errors(temp(i), {n: v for n, v in r.held_shares.items() if n not in own})
+                                    for r in o.fit.rates]
     return outcomes, trend, notes
 
 

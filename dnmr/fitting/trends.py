@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -170,6 +170,43 @@ class StaticTrend:
             for name, (_, stderr) in ratios.items():
                 p = weights[name] / total
                 out[name] = held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
+        return out
+
+    def shared_errors(self, temperature_k: float, shares: Mapping[str, float]) -> dict[str, float]:
+        """The part of a rate's error (log10 k) that it shares with every other rate held at these trends.
+
+        A held value's error at T is d(T) . (da, db), d = (1, x(T) - x0), and the errors (da, db) of a
+        line's coefficients are one draw for the whole series, (da, db) = L (z1, z2) with L L^T their
+        covariance and z1, z2 independent unit errors.  A rate that moves by ``share`` (log10 k) for one
+        standard error of the held value therefore moves by share u . z, u = L^T d / |L^T d| (the line's
+        direction at T); the rates of all the faster spectra move together, which
+        :func:`dnmr.activation.eyring.eyring_fit_file` counts as correlated.
+
+        Parameters
+        ----------
+        temperature_k : float
+            The spectrum's temperature (K).
+        shares : mapping of str to float
+            log10 k per standard error of each held parameter (:attr:`dnmr.fitting.rates.RateEstimate.held_shares`);
+            parameters held from anywhere but these trends are skipped.
+
+        Returns
+        -------
+        dict of str to float
+            ``<parameter>_1`` and ``<parameter>_2``: the rate's change (log10 k) for z1 = 1 and z2 = 1 of
+            that parameter's line; their squares add up to the share's square.
+        """
+        out = {}
+        for name, share in shares.items():
+            line = self.differences.get(name) if name.startswith(PARAMETER_PREFIX["shift"]) else self.lines.get(name)
+            if line is None or not share:
+                continue
+            values, vectors = np.linalg.eigh(np.array(line.covariance))
+            root = vectors * np.sqrt(np.clip(values, 0.0, None))
+            direction = np.array([1.0, line.x(temperature_k) - line.x0]) @ root
+            size = float(np.linalg.norm(direction))
+            if size > 0:
+                out.update({f"{name}_{j + 1}": float(share * u / size) for j, u in enumerate(direction)})
         return out
 
     def shift_lines(self) -> dict[str, dict[str, float]]:
