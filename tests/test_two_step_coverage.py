@@ -68,7 +68,18 @@ def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
                 assert k <= float(row["rate_upper"])
         assert all("trend" in row["treatment"] or "fitted" in row["treatment"] for row in rows)
         hits += _interval_hits(rows, truth)
-        # the held trends' errors are one draw for all the faster spectra: Eyring must count them as shared
+        # the held trends' errors are one draw for all the faster spectra (and the linewidth's line shares
+        # the errors of the slow-exchange rates it was fitted with): rates.csv gives those parts, within
+        # each rate's error, and Eyring counts them as shared
+        for row in rows:
+            shared = sum(float(v) ** 2 for k, v in row.items() if k.startswith("log10_rate_shared_") and v)
+            if row["status"] == "determined":
+                assert shared <= float(row["log10_rate_stderr"]) ** 2 * (1 + 1e-9)
+                assert shared > 0 or "trend" not in row["treatment"]
+                if "linewidth=fitted" in row["treatment"] and any(
+                        row[k] for k in row if k.startswith("log10_rate_shared_linewidth")):
+                    # a rate the linewidth's line was fitted with: its whole error is among the line's sources
+                    assert shared == pytest.approx(float(row["log10_rate_stderr"]) ** 2, rel=1e-6)
         assert eyring.error_shares()["enthalpy"].get("held trends", 0.0) > 0.0
         z += [(eyring.enthalpy_kj_mol - truth.enthalpy_kj_mol) / eyring.enthalpy_stderr,
               (eyring.entropy_j_mol_k - truth.entropy_j_mol_k) / eyring.entropy_stderr]

@@ -32,9 +32,10 @@ of the independent temperature errors and of each shared source (``error_shares`
 Rate errors shared through held trends
 --------------------------------------
 ``dnmr fit`` holds the shifts, couplings, populations and linewidth of the faster spectra at trends
-taken from the slow-exchange spectra, and the trends' errors go into every one of those rates at once.
-Its ``rates.csv`` gives these parts (``log10_rate_shared_<source>`` columns: u_ij, log10 k, for each
-direction j of a trend line; the rest of ``rate_stderr`` is the spectrum's own error). The line keeps
+taken from the slow-exchange spectra, and the trends' errors go into every one of those rates at once
+(the linewidth's, fitted jointly with the slow-exchange rates, also into those rates). Its
+``rates.csv`` gives these parts (``log10_rate_shared_<source>`` columns: u_ij, log10 k, for each
+independent source j of a trend's error; the rest of ``rate_stderr`` is the spectrum's own). The line keeps
 the weights 1/sigma_i^2 of the rate errors as given, and its covariance adds A U U^T A^T ("held trends"
 in ``error_shares``, U the shared parts in ln k, A the linear map of the fit) while the rate part keeps
 only what is not shared: counted as independent, the shared parts would average away over the rows

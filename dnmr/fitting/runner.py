@@ -179,9 +179,9 @@ class SpectrumOutcome:
         (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
         slow-exchange temperature, whose drift with temperature is unknown and not in the error).
     shared_rate_errors : list of dict
-        Per process, the parts of the rate's error (log10 k) shared with the other spectra held at the same
-        slow-exchange trends, by trend direction (:meth:`dnmr.fitting.trends.StaticTrend.shared_errors`);
-        empty when nothing was held at a trend.
+        Per process, the parts of the rate's error (log10 k) shared with other spectra through the
+        slow-exchange trends, by source (:meth:`dnmr.fitting.trends.StaticTrend.shared_errors`); empty
+        when the rate depends on no trend.
     """
 
     spectrum: SeriesSpectrum

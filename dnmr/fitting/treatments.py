@@ -241,10 +241,20 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
     for i, o in outcomes.items():
         _set_treatment(series, o, trend, references.get(i))
         if trend is not None and o.fit is not None:
-            own = o.spectrum.options.parameters  # the user's settings: their errors are not the trend's
-            o.shared_rate_errors = [trend.shared_errors(temp(i), {n: v for n, v in r.held_shares.items() if n not in own})
-                                    for r in o.fit.rates]
+            o.shared_rate_errors = _shared_rate_errors(o, trend, lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from
+                                                       else None)
     return outcomes, trend, notes
+
+
+def _shared_rate_errors(outcome: SpectrumOutcome, trend: StaticTrend, point: int | None) -> list[dict[str, float]]:
+    """Per process, the parts of the rate's error shared through `trend` (:meth:`StaticTrend.shared_errors`);
+    `point` is the spectrum's place among the linewidth trend's points when its own fit is one of them.
+    Held values the user set are skipped: their errors are not the trend's."""
+    fit, own = outcome.fit, outcome.spectrum.options.parameters
+    names = [n for n in fit.parameters if n.startswith("log10_k_")]
+    return [trend.shared_errors(outcome.spectrum.temperature_k, {n: v for n, v in r.held_shares.items() if n not in own},
+                                None if point is None else (point, name))
+            for name, r in zip(names, fit.rates)]
 
 
 def fit_without_trends(series: Series, runner: FitRunner, hashes: Mapping, references: Mapping[int, dict]
