@@ -241,8 +241,8 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
     for i, o in outcomes.items():
         _set_treatment(series, o, trend, references.get(i))
         if trend is not None and o.fit is not None:
-            o.shared_rate_errors = _shared_rate_errors(o, trend, lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from
-                                                       else None)
+            point = lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from else None
+            o.shared_rate_errors = _shared_rate_errors(o, trend, point)
     return outcomes, trend, notes
 
 

@@ -32,9 +32,9 @@ class ParameterTrend:
     ``y = a + b (x - x0)`` by weighted least squares (weights 1/stderr^2), with x = T (K) for shifts,
     couplings and the linewidth, and for a population x = 1/T, y = ln(p_state / p_first) (van 't Hoff).
     The covariance of (a, b) is widened by the reduced chi-square of the line when the points scatter
-    significantly beyond their errors (:func:`trend_widening`).  From one temperature (``constant`` is true) a shift, coupling or
-    linewidth is held constant (b = 0), and a population ratio keeps its free-energy difference
-    (b = a / x0: ln K proportional to 1/T, dS° = 0).
+    significantly beyond their errors (:func:`trend_widening`).  From one temperature (``constant`` is
+    true) a shift, coupling or linewidth is held constant (b = 0), and a population ratio keeps its
+    free-energy difference (b = a / x0: ln K proportional to 1/T, dS° = 0).
 
     Attributes
     ----------
