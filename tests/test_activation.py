@@ -298,6 +298,36 @@ def test_full_temperature_covariance_matches_statsmodels_gls():
     assert np.sqrt(np.diag(scaled.eyring.covariance)) == pytest.approx(default.bse, rel=1e-8)
 
 
+def test_rate_errors_shared_through_held_trends_are_counted_as_correlated(tmp_path):
+    # Rates held at one trend move together: rates.csv gives those parts in log10_rate_shared_* columns.
+    # The line keeps the weights of the rate errors as given (statsmodels WLS: same coefficients), and its
+    # covariance must be that of the WLS estimator under the true covariance of ln k,
+    # V = diag(sigma^2 - |u|^2) + U U^T (U = ln 10 x the shared columns): checked against the spread of
+    # statsmodels WLS over 20,000 draws of correlated noise (numpy; variance to about 1 %, allow 5 %).
+    k, k_err = _with_uneven_errors(31, 0.02, 0.05)
+    sigma = k_err / k
+    t_mid = TEMPS - TEMPS.mean()
+    shared = np.column_stack([0.4 * sigma, 0.8 * sigma * t_mid / np.abs(t_mid).max()]) / math.log(10)
+    shared[:2] = 0.0  # two rows fitted free: nothing held
+    lines = ["temperature_k,rate_per_s,rate_stderr,log10_rate_shared_linewidth_hz_M_1,log10_rate_shared_linewidth_hz_M_2"]
+    lines += [f"{t:.17g},{r:.17g},{e:.17g}," + ",".join("" if v == 0 else f"{v:.17g}" for v in row)
+              for t, r, e, row in zip(TEMPS, k, k_err, shared)]
+    (tmp_path / "rates.csv").write_text("\n".join(lines) + "\n")
+    result = eyring_fit_file(tmp_path / "rates.csv")[0]
+    x, y = _design(TEMPS, k)
+    ref = sm.WLS(y, x, weights=1.0 / sigma**2).fit()
+    assert [result.eyring.intercept, result.eyring.slope] == pytest.approx(ref.params, rel=1e-9)
+    u = math.log(10) * shared
+    v = np.diag(sigma**2 - (u**2).sum(axis=1)) + u @ u.T
+    draws = np.random.default_rng(32).multivariate_normal(np.zeros(len(TEMPS)), v, size=20_000)
+    spread = np.cov(sm.WLS(draws.T, x, weights=1.0 / sigma**2).fit().params)
+    assert np.diag(result.eyring.covariance) == pytest.approx(np.diag(spread), rel=0.05)
+    independent = eyring_fit(TEMPS, k, k_err)  # the same rates, their errors taken as independent
+    assert result.enthalpy_stderr > 1.1 * independent.enthalpy_stderr
+    shares = result.error_shares()["enthalpy"]
+    assert set(shares) == {"rates", "held trends"} and sum(shares.values()) == pytest.approx(1.0, rel=1e-12)
+
+
 def test_long_table_with_shared_errors_needs_no_dense_covariance():
     # 20,000 rates with a probe offset: a dense 20,000 x 20,000 covariance would take 3.2 GB
     import tracemalloc

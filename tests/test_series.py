@@ -21,6 +21,7 @@ from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
+from dnmr.fitting.trends import StaticTrend, regress_trend
 
 SF = 400.0
 ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K = 60.0, 0.0  # invented
@@ -213,3 +214,30 @@ def test_fast_spectra_take_their_shifts_from_the_slow_exchange_trend(tmp_path):
         assert with_trend.fit.chi_square == pytest.approx(with_model.fit.chi_square, rel=0.01)
         biased = with_model.fit.rate(0)
         assert abs(biased.rate_per_s - eyring_rate(t, ENTHALPY_KJ_MOL, ENTROPY_J_MOL_K)) > 4 * biased.rate_stderr
+        # the held shifts' error is one draw for both fast spectra: rates.csv gives it as shared parts
+        shared = with_trend.shared_rate_errors[0]
+        assert {"shift_ppm_b_H_1", "shift_ppm_b_H_2"} <= set(shared)
+        assert sum(v * v for v in shared.values()) == pytest.approx(r.log10_stderr_held**2, rel=1e-9)
+    header = (tmp_path / "out1" / "rates.csv").read_text().splitlines()[0].split(",")
+    assert {"log10_rate_shared_shift_ppm_b_H_1", "log10_rate_shared_shift_ppm_b_H_2"} <= set(header)
+
+
+def test_shared_rate_errors_follow_the_trend_covariance():
+    # Linear error propagation (common practice): a held value at T is a + b (T - x0), so the errors of the
+    # values held at T1 and T2 have the covariance d1^T C d2 (d = (T, 1) in numpy.polyfit's order, C its
+    # "unscaled" covariance, the reference).  A rate moving by `share` (log10 k) per standard error of its
+    # held value gets shared parts whose squares add up to share^2 and whose products across two
+    # temperatures give share1 share2 corr(T1, T2).
+    temps, widths, errors = [230.0, 240.0, 250.0], [1.30, 1.25, 1.21], [0.05, 0.04, 0.06]
+    line = regress_trend("linewidth_hz_M", "linear-in-T", temps, widths, errors)
+    _, c = np.polyfit(temps, widths, 1, w=1 / np.array(errors), cov="unscaled")
+    trend = StaticTrend({line.name: line})
+    shares = {290.0: 0.02, 330.0: -0.05}
+    parts = {t: trend.shared_errors(t, {line.name: s, "linewidth_hz_reference": 0.3}) for t, s in shares.items()}
+    d = {t: np.array([t, 1.0]) for t in shares}
+    for t, s in shares.items():
+        assert set(parts[t]) == {"linewidth_hz_M_1", "linewidth_hz_M_2"}  # nothing from outside the trend
+        assert sum(v * v for v in parts[t].values()) == pytest.approx(s * s, rel=1e-9)
+    corr = d[290.0] @ c @ d[330.0] / math.sqrt(d[290.0] @ c @ d[290.0] * (d[330.0] @ c @ d[330.0]))
+    product = sum(parts[290.0][k] * parts[330.0][k] for k in parts[290.0])
+    assert product == pytest.approx(shares[290.0] * shares[330.0] * corr, rel=1e-6)

@@ -32,10 +32,25 @@ def _rows(path: Path) -> list[dict]:
 
 def _run(scenario, folder: Path, seed: int):
     truth = write_series(folder / "data", scenario, seed)
-    fit_series(truth.series_file, folder / "out", workers=1, progress=False)
+    result = fit_series(truth.series_file, folder / "out", workers=1, progress=False)
     rows = _rows(folder / "out" / "rates.csv")
     eyring = eyring_fit_file(folder / "out" / "rates.csv")[0]
-    return truth, rows, eyring
+    return truth, rows, eyring, result
+
+
+def _tied_rates_share_their_whole_error(result) -> int:
+    """The rates the linewidth's line was fitted with: their whole error must be among the line's shared
+    sources (they and the held rates err together).  Returns how many were checked."""
+    line = next(v for n, v in result.trend.lines.items() if n.startswith("linewidth_hz_"))
+    slow = [o for o in result.by_temperature() if o.stage == "slow-exchange"]
+    checked = 0
+    for o, rates in zip(slow, line.rate_noise):
+        names = [n for n in o.fit.parameters if n.startswith("log10_rate_")]
+        for name, rate, shared in zip(names, o.fit.rates, o.shared_rate_errors):
+            if name in rates:
+                assert sum(v * v for v in shared.values()) == pytest.approx(rate.log10_rate_stderr**2, rel=1e-6)
+                checked += 1
+    return checked
 
 
 def _interval_hits(rows: list[dict], truth) -> list[bool]:
@@ -55,9 +70,9 @@ def _interval_hits(rows: list[dict], truth) -> list[bool]:
     AB_RING_INVERSION.replace(temperatures_k=(240.0, 255.0, 270.0, 285.0, 300.0, 315.0), points=2048),
 ], ids=["n-methyl-pair", "ab-pair"])
 def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
-    hits, z = [], []
+    hits, z, tied = [], [], 0
     for r in range(REPLICAS):
-        truth, rows, eyring = _run(scenario, tmp_path / f"r{r}", seed=500 + r)
+        truth, rows, eyring, result = _run(scenario, tmp_path / f"r{r}", seed=500 + r)
         # past coalescence the held linewidth keeps the rate from being a lower bound; a cold spectrum may
         # honestly give only an upper bound (exchange broadening below the noise), which must hold the truth
         statuses = [row["status"] for row in rows]
@@ -68,8 +83,19 @@ def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
                 assert k <= float(row["rate_upper"])
         assert all("trend" in row["treatment"] or "fitted" in row["treatment"] for row in rows)
         hits += _interval_hits(rows, truth)
+        # the held trends' errors are one draw for all the faster spectra (and the linewidth's line shares
+        # the errors of the slow-exchange rates it was fitted with): rates.csv gives those parts, within
+        # each rate's error, and Eyring counts them as shared
+        for row in rows:
+            shared = sum(float(v) ** 2 for k, v in row.items() if k.startswith("log10_rate_shared_") and v)
+            if row["status"] == "determined":
+                assert shared <= float(row["log10_rate_stderr"]) ** 2 * (1 + 1e-9)
+                assert shared > 0 or "trend" not in row["treatment"]
+        tied += _tied_rates_share_their_whole_error(result)
+        assert eyring.error_shares()["enthalpy"].get("held trends", 0.0) > 0.0
         z += [(eyring.enthalpy_kj_mol - truth.enthalpy_kj_mol) / eyring.enthalpy_stderr,
               (eyring.entropy_j_mol_k - truth.entropy_j_mol_k) / eyring.entropy_stderr]
+    assert tied > 0  # the linewidth's line came from determined slow-exchange rates in these series
     share = np.mean(hits)
     # 68 % intervals over ~18 rates: binomial spread about 0.11, so 0.40-0.95 fails only a real mistake
     # (too narrow: intervals that ignore the held values' errors; too wide: errors counted twice)

@@ -404,7 +404,8 @@ class EyringResult(NotebookView):
         """Share of each source in the variance of ΔH‡, ΔS‡ and ΔG‡(298.15 K): fractions adding up to 1.
 
         Sources: "rates" (or "scatter" when the errors come from the scatter about the line),
-        "temperature scatter" and each shared temperature error ("calibration", "probe offset", ...).
+        "temperature scatter", "held trends" (rate errors shared through the trends ``dnmr fit`` held) and
+        each shared temperature error ("calibration", "probe offset", ...).
         """
         t = STANDARD_TEMPERATURE_K
         contrasts = {"enthalpy": np.array([0.0, 1.0]), "entropy": np.array([1.0, 0.0]),

@@ -29,6 +29,21 @@ matrix: V^-1 is applied by the Woodbury identity, so a table of thousands of row
 Because the estimate is linear in the data, its covariance splits exactly into the shares of the rates,
 of the independent temperature errors and of each shared source (``error_shares``).
 
+Rate errors shared through held trends
+--------------------------------------
+``dnmr fit`` holds the shifts, couplings, populations and linewidth of the faster spectra at trends
+taken from the slow-exchange spectra, and the trends' errors go into every one of those rates at once
+(the linewidth's, fitted jointly with the slow-exchange rates, also into those rates). Its
+``rates.csv`` gives these parts (``log10_rate_shared_<source>`` columns: u_ij, log10 k, for each
+independent source j of a trend's error; the rest of ``rate_stderr`` is the spectrum's own). The
+line keeps the weights 1/sigma_i^2 of the rate errors as given, and its covariance adds A U U^T A^T
+("held trends" in ``error_shares``, U the shared parts in ln k, A the linear map of the fit) while the
+rate part keeps only what is not shared: counted as independent, the shared parts would average away
+over the rows although they move the whole line.  The shared parts are kept out of the weights on
+purpose: they are linearised sensitivities of rates that depend on the held values far from linearly
+past coalescence, and a generalised least-squares fit trusting them pulls the line by their curvature
+(measured on the realistic series of the tests: dH‡ biased by about 1.7 of its standard errors).
+
 Standard errors
 ---------------
 * Rate errors given (every rate has ``rate_stderr``): the errors are taken at face value (covariance not
@@ -148,6 +163,7 @@ def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
 SHARE_RATES = "rates"
 SHARE_SCATTER = "scatter"
 SHARE_TEMPERATURES = "temperature scatter"
+SHARE_HELD = "held trends"
 
 
 @dataclass(frozen=True)
@@ -162,8 +178,9 @@ class LineFit:
         Total 2 x 2 covariance of (intercept, slope).
     covariance_parts : dict of str to ndarray
         `covariance` split by source (they add up to it): "rates" (or "scatter" when the errors come from
-        the scatter about the line), "temperature scatter" (independent temperature errors) and one entry
-        per shared temperature error ("calibration", "probe offset", "given covariance").
+        the scatter about the line), "temperature scatter" (independent temperature errors), "held trends"
+        (rate errors shared through held trends) and one entry per shared temperature error
+        ("calibration", "probe offset", "given covariance").
     residuals : ndarray
         y - fitted y of each point (ln units).
     weights : ndarray
@@ -249,7 +266,11 @@ def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
     a = fit.linear_map
     if have_errors:
-        parts = {SHARE_RATES: (a * sigma2) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T}
+        # the parts of the rate errors shared through held trends move the rows together: the line keeps its
+        # weights (the rate errors as given), and its covariance counts those parts as correlated
+        held = a @ np.column_stack(list(series.rate_shared.values())) if series.rate_shared else np.zeros((2, 0))
+        own = np.clip(sigma2 - sum(v**2 for v in series.rate_shared.values()), 0.0, None)
+        parts = {SHARE_RATES: (a * own) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T, SHARE_HELD: held @ held.T}
         chi_square = fit.chi_square
     else:
         parts = {SHARE_SCATTER: fit.normal * scatter**2}
@@ -278,7 +299,8 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
     out = np.full_like(e, np.nan)
     if basis == BASIS_GIVEN:
         variance = line.residual_covariance.variances()
-        c = line.covariance
+        # judged as the line was weighted: the held trends' shared errors as if independent
+        c = line.covariance - line.covariance_parts.get(SHARE_HELD, 0.0)
         keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
         judged = keep > LEVERAGE_TOLERANCE
         out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])

@@ -39,7 +39,7 @@ import numpy as np
 from dnmr.activation.rates import DEFAULT_METHOD, RateSeries, SetAsideRow, check_rate_series, check_temperature_stderr
 from dnmr.activation.temperature_errors import TemperatureErrors
 from dnmr.errors import InputError
-from dnmr.io.tables import read_table
+from dnmr.io.tables import SHARED_RATE_ERROR_PREFIX, read_table
 
 RATE_COLUMNS_REQUIRED = ("temperature_k", "rate_per_s")
 RATE_COLUMNS_OPTIONAL = ("rate_stderr", "temperature_stderr", "rate_lower", "rate_upper", "process", "status",
@@ -136,6 +136,9 @@ def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: 
     flags = table.text("flags") if table.has("flags") else ("",) * n
     methods = tuple(m.strip() or DEFAULT_METHOD for m in (table.text("method") if table.has("method") else ("",) * n))
     where = (lambda i: f"{table.source} {table.where(i)}") if several else table.where
+    shared = {name.removeprefix(SHARED_RATE_ERROR_PREFIX):
+              math.log(10) * np.nan_to_num(table.numbers(name, allow_empty=True))
+              for name in table.columns(SHARED_RATE_ERROR_PREFIX)}
     rows = [_FitRow.read(where(i), i, numbers, status[i], flags[i], flagged_rows) for i in range(n)]
     series = []
     for name in dict.fromkeys(processes):
@@ -155,6 +158,7 @@ def _read_one_table(path: Path, temperature_stderr: float | None, flagged_rows: 
             set_aside=tuple(rows[i].set_aside for i in mine if rows[i].set_aside is not None),
             row_methods=tuple(methods[i] for i in kept) if table.has("method") else None,
             row_files=(table.source,) * len(kept) if several else None,
+            rate_shared={name: values[kept] for name, values in shared.items()},
         ))
     return series
 
@@ -193,6 +197,8 @@ def _joined(process: str, parts: list[RateSeries]) -> RateSeries:
         set_aside=tuple(row for p in parts for row in p.set_aside),
         row_methods=tuple(m for p in parts for m in p.methods.tolist()),
         row_files=tuple(f for p in parts for f in p.row_files),
+        rate_shared={name: np.concatenate([p.rate_shared.get(name, np.zeros(len(p))) for p in parts])
+                     for name in dict.fromkeys(n for p in parts for n in p.rate_shared)},
     )
 
 

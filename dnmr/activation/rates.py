@@ -9,7 +9,7 @@ came from (file and line). The temperatures carry their errors, independent and 
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -83,6 +83,10 @@ class RateSeries:
         of the user's); None: every row is a lineshape rate.
     row_files : tuple of str or None
         The file of each row, when the series joins several tables (None for one table or arrays).
+    rate_shared : dict of str to ndarray
+        Parts of the rate errors (ln k) that the rows share, by common source (the
+        ``log10_rate_shared_<source>`` columns of ``dnmr fit``: the independent sources of a held
+        slow-exchange trend's error); each is part of ``rate_stderr``, 0 where a row does not depend on it.
     """
 
     process: str
@@ -99,6 +103,7 @@ class RateSeries:
     setpoint_k: np.ndarray | None = None
     row_methods: tuple[str, ...] | None = None
     row_files: tuple[str, ...] | None = None
+    rate_shared: dict[str, np.ndarray] = field(default_factory=dict)
 
     def __len__(self) -> int:
         return len(self.temperature_k)
@@ -172,6 +177,7 @@ class RateSeries:
             setpoint_k=None if self.setpoint_k is None else self.setpoint_k[rows],
             row_methods=None if self.row_methods is None else tuple(self.methods[rows].tolist()),
             row_files=None if self.row_files is None else tuple(np.array(self.row_files)[rows].tolist()),
+            rate_shared={name: values[rows] for name, values in self.rate_shared.items()},
         )
 
 

@@ -191,6 +191,10 @@ class SpectrumOutcome:
         Remarks of the series fit on this spectrum: ``trend-<quantity>`` and ``reference-line-linewidth``
         (values held from elsewhere), ``trend-one-temperature`` (held at values from a single
         slow-exchange temperature, whose drift with temperature is unknown and not in the error).
+    shared_rate_errors : list of dict
+        Per process, the parts of the rate's error (log10 k) shared with other spectra through the
+        slow-exchange trends, by source (:meth:`dnmr.fitting.trends.StaticTrend.shared_errors`); empty
+        when the rate depends on no trend.
     """
 
     spectrum: SeriesSpectrum
@@ -205,6 +209,7 @@ class SpectrumOutcome:
     treatment: dict[str, str] = field(default_factory=dict)
     reference: dict | None = None
     flags: list[str] = field(default_factory=list)
+    shared_rate_errors: list[dict[str, float]] = field(default_factory=list)
 
     def posterior_rate(self, i: int) -> dict | None:
         """The posterior summary of the rate (s^-1) of process `i`, when sampled and that rate was free."""

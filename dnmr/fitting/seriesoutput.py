@@ -4,7 +4,9 @@
     One row per spectrum and process: the contract's columns temperature_k, process, rate_per_s,
     rate_stderr, rate_lower, rate_upper, then status, log10 rate and its error, the profile's 68 %
     interval, linewidths, shifts, populations, offset, phase, chi-square, noise, the spectrum file,
-    flags and a note (why a bound, or why a fit failed).
+    flags and notes (why a bound, or why a fit failed), then ``log10_rate_shared_<parameter>_<j>``:
+    the parts of the error that rows share through a slow-exchange trend (which ``dnmr eyring`` counts
+    as correlated; :meth:`dnmr.fitting.trends.StaticTrend.shared_errors`).
 ``results.json``
     Everything: versions, input file hashes (SHA-256), options, every parameter with its error, the
     chi-square profiles, the shift trend, the failures.
@@ -30,6 +32,7 @@ from dnmr.fitting.runner import FitRunner, SpectrumOutcome, restored_fit
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.trends import StaticTrend
 from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, figure_file, save_figure
+from dnmr.io.tables import SHARED_RATE_ERROR_PREFIX
 from dnmr.model import Model
 
 RATE_COLUMNS = ("temperature_k", "process", "rate_per_s", "rate_stderr", "rate_lower", "rate_upper", "status",
@@ -93,6 +96,8 @@ def rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) -> 
                treatment=";".join(f"{q}={how}" for q, how in outcome.treatment.items()), spectrum=str(s.file),
                flags=";".join(list(fit.flags) + outcome.flags + list(s.flags)),
                notes=" ".join(([r.reason] if r.reason and r.status != "determined" else []) + outcome.notes))
+    if i < len(outcome.shared_rate_errors):
+        row.update({SHARED_RATE_ERROR_PREFIX + k: v for k, v in outcome.shared_rate_errors[i].items()})
     post = outcome.posterior_rate(i)
     if post is not None:
         row.update(zip(POSTERIOR_COLUMNS, (post["median"], *post["ci95"], post["bound95"])))
@@ -122,11 +127,12 @@ def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
 
 def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
     """Write rates.csv: the rate columns, then the static parameters present (linewidths, shifts, couplings,
-    the rest), the tail columns and the posterior columns when sampled."""
+    the rest), the tail columns, the shared parts of the rate errors and the posterior columns when sampled."""
     present = {k for row in rows for k in row}
-    extra = sorted(present - set(RATE_COLUMNS) - set(TAIL_COLUMNS) - set(POSTERIOR_COLUMNS),
+    shared = sorted(k for k in present if k.startswith(SHARED_RATE_ERROR_PREFIX))
+    extra = sorted(present - set(RATE_COLUMNS) - set(TAIL_COLUMNS) - set(POSTERIOR_COLUMNS) - set(shared),
                    key=lambda k: (not k.startswith("linewidth"), not k.startswith("shift"), not k.startswith("coupling"), k))
-    tail = list(TAIL_COLUMNS) + [c for c in POSTERIOR_COLUMNS if c in present]
+    tail = list(TAIL_COLUMNS) + shared + [c for c in POSTERIOR_COLUMNS if c in present]
     buffer = io.StringIO()
     writer = csv.DictWriter(buffer, fieldnames=list(RATE_COLUMNS) + extra + tail, restval="", lineterminator="\n")
     writer.writeheader()
@@ -173,7 +179,7 @@ def _spectrum_record(index: int, o: SpectrumOutcome, sha256: str | None) -> dict
              "stage": o.stage, "reused": o.reused, "flags": list(o.spectrum.flags), "notes": o.notes,
              "error": o.error or None, "bad_input": o.bad_input, "treatment": o.treatment,
              "series_flags": o.flags,
-             "reference_line": o.reference,
+             "reference_line": o.reference, "shared_rate_errors": o.shared_rate_errors,
              "fit": o.fit.to_dict() if o.fitted else None, "posterior": o.posterior}
     if o.processing is not None:
         entry["processing"] = o.processing

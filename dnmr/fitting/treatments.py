@@ -28,7 +28,7 @@ import numpy as np
 from dnmr.fitting.resultsfolder import STAGE_HELD, STAGE_MAIN, STAGE_SLOW
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_job, outcome_from_record
 from dnmr.fitting.seriesfile import REFERENCE_LINE, TREATMENT_KIND, TREND, Series
-from dnmr.fitting.parameters import ParameterLayout
+from dnmr.fitting.parameters import RATE_PREFIX, ParameterLayout
 from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
 from dnmr.fitting.trends import PARAMETER_PREFIX, StaticTrend, held_setting, static_trend, temperature_span
 from dnmr.io.readers import read_spectrum
@@ -241,7 +241,21 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
         outcomes[i] = outcome_from_record(series, i, record, STAGE_HELD)
     for i, o in outcomes.items():
         _set_treatment(series, o, trend, references.get(i))
+        if trend is not None and o.fit is not None:
+            point = lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from else None
+            o.shared_rate_errors = _shared_rate_errors(o, trend, point)
     return outcomes, trend, notes
+
+
+def _shared_rate_errors(outcome: SpectrumOutcome, trend: StaticTrend, point: int | None) -> list[dict[str, float]]:
+    """Per process, the parts of the rate's error shared through `trend` (:meth:`StaticTrend.shared_errors`);
+    `point` is the spectrum's place among the linewidth trend's points when its own fit is one of them.
+    Held values the user set are skipped: their errors are not the trend's."""
+    fit, own = outcome.fit, outcome.spectrum.options.parameters
+    names = [n for n in fit.parameters if n.startswith(RATE_PREFIX)]
+    return [trend.shared_errors(outcome.spectrum.temperature_k, {n: v for n, v in r.held_shares.items() if n not in own},
+                                None if point is None else (point, name))
+            for name, r in zip(names, fit.rates)]
 
 
 def fit_without_trends(series: Series, runner: FitRunner, hashes: Mapping, references: Mapping[int, dict]

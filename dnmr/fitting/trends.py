@@ -10,11 +10,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
+from dnmr.fitting.problem import MISFIT_SIGMAS
 from dnmr.fitting.spectrumfit import SpectrumFit
 
 PARAMETER_PREFIX = {"shift": "shift_ppm_", "coupling": "coupling_hz_", "population": "population_",
@@ -30,10 +31,10 @@ class ParameterTrend:
 
     ``y = a + b (x - x0)`` by weighted least squares (weights 1/stderr^2), with x = T (K) for shifts,
     couplings and the linewidth, and for a population x = 1/T, y = ln(p_state / p_first) (van 't Hoff).
-    The covariance of (a, b) is widened by the reduced chi-square of the line when that is above 1
-    (scatter beyond the errors).  From one temperature (``constant`` is true) a shift, coupling or
-    linewidth is held constant (b = 0), and a population ratio keeps its free-energy difference
-    (b = a / x0: ln K proportional to 1/T, dS° = 0).
+    The covariance of (a, b) is widened by the reduced chi-square of the line when the points scatter
+    significantly beyond their errors (:func:`trend_widening`).  From one temperature (``constant`` is
+    true) a shift, coupling or linewidth is held constant (b = 0), and a population ratio keeps its
+    free-energy difference (b = a / x0: ln K proportional to 1/T, dS° = 0).
 
     Attributes
     ----------
@@ -53,6 +54,13 @@ class ParameterTrend:
         Of the line (NaN without degrees of freedom).
     constant : bool
         True when the points come from one temperature (no slope).
+    noise_map : tuple of tuple of float
+        For a line fitted jointly with the rates (:func:`linewidth_trend`): (da, db) = noise_map e, e the
+        independent unit errors of the points (each spectrum's measured pair whitened by its covariance),
+        before any widening by the reduced chi-square; empty otherwise.
+    rate_noise : tuple of dict
+        With `noise_map`, per point: the error (log10 k) of each rate it gave, by rate parameter, in the
+        same unit errors e; those rates and the line share them.
     """
 
     name: str
@@ -65,6 +73,8 @@ class ParameterTrend:
     covariance: tuple[tuple[float, float], tuple[float, float]]
     reduced_chi_square: float
     constant: bool = False
+    noise_map: tuple[tuple[float, ...], ...] = ()
+    rate_noise: tuple[dict[str, tuple[float, ...]], ...] = ()
 
     def x(self, temperature_k: float) -> float:
         """The line's abscissa at `temperature_k` (K): T (K), or 1/T (1/K) for a van 't Hoff line."""
@@ -75,6 +85,18 @@ class ParameterTrend:
         d = np.array([1.0, self.x(temperature_k) - self.x0])
         a, b = self.coefficients
         return float(a + b * d[1]), float(math.sqrt(max(d @ np.array(self.covariance) @ d, 0.0)))
+
+    def error_direction(self, temperature_k: float) -> np.ndarray:
+        """The held value's error at `temperature_k` (K) as a unit vector on independent unit errors: those of
+        the points (`noise_map`), else those of the coefficients (L z, L L^T the covariance)."""
+        d = np.array([1.0, self.x(temperature_k) - self.x0])
+        if self.noise_map:
+            direction = d @ np.array(self.noise_map)
+        else:
+            values, vectors = np.linalg.eigh(np.array(self.covariance))
+            direction = d @ (vectors * np.sqrt(np.clip(values, 0.0, None)))
+        size = float(np.linalg.norm(direction))
+        return direction / size if size > 0 else direction * 0.0
 
     def to_dict(self) -> dict:
         """Plain data."""
@@ -109,10 +131,21 @@ def regress_trend(name: str, kind: str, temperatures_k, values, stderrs) -> Para
     red = chi2 / dof if dof > 0 else math.nan
     if not known:
         cov = cov * (red if dof > 0 else math.nan)
-    elif dof > 0 and red > 1.0:
-        cov = cov * red
+    else:
+        cov = cov * trend_widening(red, dof)
     return ParameterTrend(name, kind, tuple(temps.tolist()), tuple(y.tolist()), tuple(err.tolist()), x0,
                           (float(coef[0]), float(coef[1])), tuple(tuple(float(v) for v in row) for row in cov), red)
+
+
+def trend_widening(reduced_chi_square: float, dof: int) -> float:
+    """The factor a trend line's covariance is widened by: its reduced chi-square when the points scatter
+    significantly beyond their errors (the reduced chi-square above 1 by more than MISFIT_SIGMAS of its
+    standard deviation sqrt(2 / dof), the test a spectrum's misfit gets), else 1.  With the two or three
+    slow-exchange spectra a trend usually has, a reduced chi-square of one or two degrees of freedom
+    exceeds 1 by chance a third of the time; widening then would make honest errors too wide."""
+    if dof > 0 and reduced_chi_square > 1.0 + MISFIT_SIGMAS * math.sqrt(2.0 / dof):
+        return reduced_chi_square
+    return 1.0
 
 
 @dataclass(frozen=True)
@@ -170,6 +203,50 @@ class StaticTrend:
             for name, (_, stderr) in ratios.items():
                 p = weights[name] / total
                 out[name] = held_setting(p, p * stderr)  # d(weight) = weight d ln(weight ratio)
+        return out
+
+    def shared_errors(self, temperature_k: float, shares: Mapping[str, float], point: tuple[int, str] | None = None
+                      ) -> dict[str, float]:
+        """The part of a rate's error (log10 k) that it shares with the other rates of the series through
+        these trends.
+
+        A held value's error at T is d(T) . (da, db), d = (1, x(T) - x0), and the errors (da, db) of a
+        line's coefficients are one draw for the whole series: a linear map of independent unit errors,
+        those of the points of the linewidth's joint fit (:attr:`ParameterTrend.noise_map`), else
+        (da, db) = L z, L L^T their covariance.  A rate that moves by ``share`` (log10 k) for one standard
+        error of the held value therefore moves by share u . e, u the unit vector of
+        :meth:`ParameterTrend.error_direction`; the rates of all the faster spectra move together, and
+        with the rates of the slow-exchange spectra the linewidth's line was fitted with.  The analyses
+        count these parts as correlated (:mod:`dnmr.activation.eyring`).
+
+        Parameters
+        ----------
+        temperature_k : float
+            The spectrum's temperature (K).
+        shares : mapping of str to float
+            log10 k per standard error of each held parameter (:attr:`dnmr.fitting.rates.RateEstimate.held_shares`);
+            parameters held from anywhere but these trends are skipped.
+        point : (int, str), optional
+            For a spectrum the linewidth's line was fitted with: its place among the line's points and the
+            rate's parameter (``log10_rate_<process>``); the rate's own error is then one of the line's
+            unit errors.
+
+        Returns
+        -------
+        dict of str to float
+            ``<parameter>_<j>``: the rate's change (log10 k) for the j-th unit error of that parameter's
+            line (j from 1); their squares add up to the shares' squares (and the rate's own error).
+        """
+        out: dict[str, float] = {}
+        for name, share in shares.items():
+            line = self.differences.get(name) if name.startswith(PARAMETER_PREFIX["shift"]) else self.lines.get(name)
+            if line is not None and share:
+                for j, u in enumerate(line.error_direction(temperature_k)):
+                    out[f"{name}_{j + 1}"] = out.get(f"{name}_{j + 1}", 0.0) + float(share * u)
+        for name, line in self.lines.items():
+            own = line.rate_noise[point[0]].get(point[1]) if point and point[0] < len(line.rate_noise) else None
+            for j, u in enumerate(own or ()):
+                out[f"{name}_{j + 1}"] = out.get(f"{name}_{j + 1}", 0.0) + float(u)
         return out
 
     def shift_lines(self) -> dict[str, dict[str, float]]:
@@ -284,8 +361,10 @@ def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> Par
     spectrum's covariance of the pair (its errors and correlation), separates the two.  A rate that is
     only a bound, or a process with fewer than two determined rates, gives no rate point; then the
     linewidth's error is widened by what the unresolved exchange could take (``_exchange_width``).  The
-    covariance of (a, b) is widened by the reduced chi-square when that is above 1.  Without rate points
-    this is :func:`regress_trend` of the linewidths.
+    covariance of (a, b) is widened as in :func:`regress_trend` (:func:`trend_widening`).  The line keeps how
+    its coefficients and the rates of its spectra depend on the same measured errors (``noise_map``,
+    ``rate_noise``), since those rates and the rates held at the line then err together.  Without rate
+    points this is :func:`regress_trend` of the linewidths.
     """
     temps, values, errors = _parameter_points(fits, name)
     pairs = [_rate_points(fit) for _, fit in fits]
@@ -296,44 +375,69 @@ def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> Par
     processes = [rate for rate, n in counts.items() if n >= 2]
     if len(set(temps)) < 2 or not processes:
         return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=_exchange_width))
-    rows, targets = [], []
-    size = 2 + 2 * len(processes)
     t0 = float(np.mean(temps))
-    u0 = 1.0 / t0
-    for (t, fit), w, sw, points in zip(fits, values, errors, pairs):
-        used = [r for r in processes if r in points]
-        if not used:
-            sw = math.hypot(sw, _exchange_width(fit))
-        design = np.zeros((1 + len(used), size))
-        design[0, :2] = 1.0, t - t0
-        obs = [w]
-        sd = [sw]
-        for row, rate in enumerate(used, start=1):
-            j = 2 + 2 * processes.index(rate)
-            design[row, j:j + 2] = 1.0, 1.0 / t - u0
-            obs.append(points[rate][0] - math.log10(t))
-            sd.append(points[rate][1])
-        corr = np.eye(len(obs))
-        for a, first in enumerate([name] + used):
-            for b, second in enumerate([name] + used):
-                if a != b:
-                    rho = fit.correlation(first, second)
-                    corr[a, b] = rho if math.isfinite(rho) else 0.0
-        cov = corr * np.outer(sd, sd)
-        whiten = np.linalg.inv(np.linalg.cholesky(cov))
-        rows.append(whiten @ design)
-        targets.append(whiten @ np.array(obs))
-    design, target = np.vstack(rows), np.concatenate(targets)
+    points = [_joint_point(t, fit, name, (w, sw), rates, processes, t0)
+              for (t, fit), w, sw, rates in zip(fits, values, errors, pairs)]
+    design = np.vstack([p.design for p in points])
+    target = np.concatenate([p.target for p in points])
     coef, *_ = np.linalg.lstsq(design, target, rcond=None)
-    cov = np.linalg.pinv(design.T @ design)
-    dof = target.size - size
+    unscaled = np.linalg.pinv(design.T @ design)
+    dof = target.size - design.shape[1]
     chi2 = float(np.sum((target - design @ coef) ** 2))
     red = chi2 / dof if dof > 0 else math.nan
-    if dof > 0 and red > 1.0:
-        cov = cov * red
+    cov = unscaled * trend_widening(red, dof)
+    noise_map = unscaled[:2] @ design.T  # (da, db) per unit error of the whitened points
+    offsets = np.cumsum([0] + [p.root.shape[0] for p in points])
+    rate_noise = []
+    for p, start in zip(points, offsets):
+        rows = {}
+        for row, rate in enumerate(p.rates, start=1):
+            full = np.zeros(target.size)
+            full[start:start + p.root.shape[0]] = p.root[row]
+            rows[rate] = tuple(float(v) for v in full)
+        rate_noise.append(rows)
     return ParameterTrend(name, "linear-in-T", tuple(temps), tuple(values), tuple(errors), t0,
                           (float(coef[0]), float(coef[1])),
-                          tuple(tuple(float(v) for v in row) for row in cov[:2, :2]), red)
+                          tuple(tuple(float(v) for v in row) for row in cov[:2, :2]), red,
+                          noise_map=tuple(tuple(float(v) for v in row) for row in noise_map),
+                          rate_noise=tuple(rate_noise))
+
+
+@dataclass(frozen=True)
+class _JointPoint:
+    """One spectrum in the joint fit of the linewidth and the Eyring lines: its rows of the design and of
+    the data, whitened by its covariance C = root root^T, and the rates (log10 k parameters) it gives."""
+
+    design: np.ndarray
+    target: np.ndarray
+    root: np.ndarray
+    rates: tuple[str, ...]
+
+
+def _joint_point(t: float, fit: SpectrumFit, name: str, width: tuple[float, float],
+                 rates: Mapping[str, tuple[float, float]], processes: Sequence[str], t0: float) -> _JointPoint:
+    """The whitened rows of one spectrum at `t` (K): its linewidth `width` (value, error; Hz) and the
+    log10(k/T) of each of `processes` among its determined `rates`, their covariance from the fit."""
+    used = [r for r in processes if r in rates]
+    w, sw = width
+    if not used:
+        sw = math.hypot(sw, _exchange_width(fit))
+    design = np.zeros((1 + len(used), 2 + 2 * len(processes)))
+    design[0, :2] = 1.0, t - t0
+    obs, sd = [w], [sw]
+    for row, rate in enumerate(used, start=1):
+        j = 2 + 2 * processes.index(rate)
+        design[row, j:j + 2] = 1.0, 1.0 / t - 1.0 / t0
+        obs.append(rates[rate][0] - math.log10(t))
+        sd.append(rates[rate][1])
+    corr = np.eye(len(obs))
+    for a, first in enumerate([name] + used):
+        for b, second in enumerate([name] + used):
+            if a != b:
+                rho = fit.correlation(first, second)
+                corr[a, b] = rho if math.isfinite(rho) else 0.0
+    root = np.linalg.cholesky(corr * np.outer(sd, sd))
+    return _JointPoint(np.linalg.solve(root, design), np.linalg.solve(root, np.array(obs)), root, tuple(used))
 
 
 def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:

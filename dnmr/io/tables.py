@@ -21,6 +21,10 @@ from dnmr.kinetics import MAX_TEMPERATURE_K
 
 MAX_TABLE_BYTES = 64 * 2**20
 """Largest CSV table read (bytes): far more than any table of rates or temperatures."""
+SHARED_RATE_ERROR_PREFIX = "log10_rate_shared_"
+"""Columns of a rates table (``dnmr fit`` writes them) holding parts of a rate's error, in log10 k, that the
+rows share: one column per common source (a direction of a held slow-exchange trend), an empty cell where
+a row does not depend on it.  The analyses count these parts as correlated across the rows."""
 
 
 @dataclass(frozen=True)
@@ -62,6 +66,10 @@ class Table:
                 continue
             values[i] = self._number(text, column, i)
         return values
+
+    def columns(self, prefix: str = "") -> tuple[str, ...]:
+        """The header's column names that start with `prefix`, in file order."""
+        return tuple(name for name in self.cells if name.startswith(prefix))
 
     def text(self, column: str) -> tuple[str, ...]:
         """Cell texts of a column."""
