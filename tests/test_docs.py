@@ -165,7 +165,8 @@ ROOT = DOCS.parent
 NAMED_MAPS = {"parameters", "correlations", "methods", "method_offsets", "quantities", "lines", "differences",
               "held_shares", "gains", "treatments", "versions", "setting"}
 #: Values described as a whole in docs/output-keys.md (their inner keys are data, or documented elsewhere).
-OPAQUE = {"error_shares", "processing", "calibration", "options", "two_step", "treatment"}
+OPAQUE = {"error_shares", "processing", "calibration", "options", "two_step", "treatment", "shared_rate_errors",
+          "rate_noise"}
 
 
 def written_keys(data, opaque: set[str] = OPAQUE, found: set[str] | None = None) -> set[str]:

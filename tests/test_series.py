@@ -217,7 +217,7 @@ def test_fast_spectra_take_their_shifts_from_the_slow_exchange_trend(tmp_path):
         # the held shifts' error is one draw for both fast spectra: rates.csv gives it as shared parts
         shared = with_trend.shared_rate_errors[0]
         assert {"shift_ppm_b_H_1", "shift_ppm_b_H_2"} <= set(shared)
-        assert sum(v * v for v in shared.values()) == pytest.approx(r.log10_stderr_held**2, rel=1e-9)
+        assert sum(v * v for v in shared.values()) == pytest.approx(r.log10_rate_stderr_held**2, rel=1e-9)
     header = (tmp_path / "out1" / "rates.csv").read_text().splitlines()[0].split(",")
     assert {"log10_rate_shared_shift_ppm_b_H_1", "log10_rate_shared_shift_ppm_b_H_2"} <= set(header)
 
