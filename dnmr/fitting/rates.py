@@ -25,6 +25,7 @@ from typing import Any
 import lmfit
 import numpy as np
 
+from dnmr.errors import InputError
 from dnmr.formatting import significant
 from dnmr.fitting.parameters import parameter_stderr, tie_text
 from dnmr.fitting.problem import FitProblem, Profile
@@ -311,3 +312,13 @@ def held_shares(problem: FitProblem, params: lmfit.Parameters, rate_names: Seque
 def _finite_or_zero(x: float) -> float:
     """`x`, or 0 where it is NaN or infinite."""
     return x if np.isfinite(x) else 0.0
+
+
+def rate_of_process(rates: Sequence[RateEstimate], process: str | int = 0) -> RateEstimate:
+    """The estimate of one process among a fit's `rates`, by name or index."""
+    if isinstance(process, int):
+        return rates[process]
+    for r in rates:
+        if r.process == process:
+            return r
+    raise InputError(f"no process {process!r}; processes are {[r.process for r in rates]}")

@@ -81,7 +81,7 @@ from dnmr.fitting.parameters import (
 )
 from dnmr.fitting.problem import FitProblem, NoiseEstimate, Profile, estimate_noise, profile_with_restarts
 from dnmr.fitting.ranges import check_rate_ceiling, number_pair, ppm_regions
-from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares
+from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares, rate_of_process
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
 from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
@@ -320,12 +320,7 @@ class SpectrumFit(NotebookView):
 
     def rate(self, process: str | int = 0) -> RateEstimate:
         """The estimate for one process, by name or index."""
-        if isinstance(process, int):
-            return self.rates[process]
-        for r in self.rates:
-            if r.process == process:
-                return r
-        raise InputError(f"no process {process!r}; processes are {[r.process for r in self.rates]}")
+        return rate_of_process(self.rates, process)
 
     def correlation(self, first: str, second: str) -> float:
         """Correlation of the estimates of two free parameters (NaN when the covariance gave none)."""

@@ -31,7 +31,7 @@ from dnmr.fitting.matrixmethod import SiteRates, matrix_method
 from dnmr.fitting.seriesoutput import RATE_COLUMNS
 from dnmr.fitting.parameters import FitParameter, fitted_parameters, parameter_identifier, parameter_record, parameter_stderr
 from dnmr.fitting.problem import BetterMinimum, NoiseEstimate, PROFILE_RESTARTS, error_scale, minimize, profile_parameter
-from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate
+from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, rate_of_process
 from dnmr.fitting.resultsfolder import (earlier_manifest, holds_results, listed_files, lock_results_folder,
                                         refuse_inputs_among, release_results_folder, remove_earlier_results)
 from dnmr.fitting.transferfile import Experiment, load_experiment
@@ -254,12 +254,7 @@ class TransferFit:
 
     def rate(self, process: str | int = 0) -> RateEstimate:
         """The estimate of one process, by name or index."""
-        if isinstance(process, int):
-            return self.rates[process]
-        for r in self.rates:
-            if r.process == process:
-                return r
-        raise InputError(f"unknown process {process!r}; processes are {[r.process for r in self.rates]}")
+        return rate_of_process(self.rates, process)
 
     def report(self) -> str:
         """The fit in a few lines: rates (or bounds), R1, and the remarks."""
