@@ -30,7 +30,7 @@ from dnmr.errors import InputError
 from dnmr.fitting.matrixmethod import SiteRates, matrix_method
 from dnmr.fitting.seriesoutput import RATE_COLUMNS
 from dnmr.fitting.parameters import FitParameter, fitted_parameters, parameter_identifier, parameter_record, parameter_stderr
-from dnmr.fitting.problem import BetterMinimum, NoiseEstimate, PROFILE_RESTARTS, error_scale, minimize, profile_parameter
+from dnmr.fitting.problem import NoiseEstimate, minimize, profile_with_restarts
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, rate_of_process
 from dnmr.fitting.resultsfolder import (earlier_manifest, holds_results, listed_files, lock_results_folder,
                                         refuse_inputs_among, release_results_folder, remove_earlier_results)
@@ -361,15 +361,9 @@ def _fit(experiment: Experiment) -> TransferFit:
                          "error of each point")
         problem.sigma = np.full_like(problem.data, sigma)
         best = minimize(problem, best.params)
-    for attempt in range(PROFILE_RESTARTS + 1):
-        scale, quality_flags, quality_notes = error_scale(best.chisqr, dof, NoiseEstimate(1.0, 1.0, 0, "stated"))
-        try:
-            profiles = {n: profile_parameter(problem, best, n, scale, parameter_stderr(best.params[n]) * math.sqrt(scale),
-                                    restart=attempt < PROFILE_RESTARTS)
-                        for n in problem.rate_names if best.params[n].vary}
-            break
-        except BetterMinimum as better:
-            best = better.result
+    best, profiles, (scale, quality_flags, quality_notes) = profile_with_restarts(
+        problem, best, [n for n in problem.rate_names if best.params[n].vary], dof,
+        NoiseEstimate(1.0, 1.0, 0, "stated"))
     for par in best.params.values():
         if par.stderr is not None:
             par.stderr *= math.sqrt(scale)
