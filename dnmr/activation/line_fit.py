@@ -43,6 +43,11 @@ over the rows although they move the whole line.  The shared parts are kept out 
 purpose: they are linearised sensitivities of rates that depend on the held values far from linearly
 past coalescence, and a generalised least-squares fit trusting them pulls the line by their curvature
 (measured on the realistic series of the tests: dH‡ biased by about 1.7 of its standard errors).
+What is judged against the errors counts them as correlated too (``LineFit.full_covariance``): the
+chi-square is the generalised least-squares minimum under the full covariance (the line takes up most of
+a shared part, so counted as independent they would make the rates look to scatter far less than their
+errors), and the studentised residuals divide by the variance the residuals of the weighted line have
+under it.
 
 Standard errors
 ---------------
@@ -82,6 +87,7 @@ LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its res
 SLOPE_TOLERANCE = 1e-9  # relative change of the slope that ends the effective-variance iteration (rounding
 # leaves about 1e-10 on tens of thousands of rows)
 MAX_ITERATIONS = 50
+OWN_VARIANCE_FLOOR = 1e-6  # least share of a rate's variance left independent when its shared parts are taken out
 
 
 class Estimate(NamedTuple):
@@ -118,6 +124,30 @@ class ResidualCovariance:
     def variances(self) -> np.ndarray:
         """Diagonal of V."""
         return self.diagonal + (self.shared**2).sum(axis=1)
+
+    def correlated(self, columns: np.ndarray) -> "ResidualCovariance":
+        """The same covariance with `columns` (n, m), parts of the independent variances that the rows
+        share, counted as correlated: diagonal - sum of their squares, shared part widened by them.
+
+        The independent rest keeps at least :data:`OWN_VARIANCE_FLOOR` of its variance, so that a table's
+        rounding (a shared part a little above the stated error) cannot make V singular."""
+        if not columns.shape[1]:
+            return self
+        own = np.maximum(self.diagonal - (columns**2).sum(axis=1), OWN_VARIANCE_FLOOR * self.diagonal)
+        return ResidualCovariance(own, np.hstack([self.shared, columns]))
+
+    def sandwich(self, linear_map: np.ndarray) -> np.ndarray:
+        """A V A^T: the covariance of coefficients A y (A a (p, n) linear map) when y has this covariance."""
+        a_shared = linear_map @ self.shared
+        return (linear_map * self.diagonal) @ linear_map.T + a_shared @ a_shared.T
+
+    def residual_variances(self, design: np.ndarray, linear_map: np.ndarray) -> np.ndarray:
+        """Diagonal of (I - X A) V (I - X A)^T: the variances of the residuals y - X A y of a linear fit
+        (X `design` (n, p), A `linear_map` (p, n)) when y has this covariance, O(n p^2 + n m p)."""
+        fitted_self = (design * linear_map.T).sum(axis=1)  # diagonal of X A
+        spread = np.einsum("ij,jk,ik->i", design, (linear_map * self.diagonal) @ linear_map.T, design)
+        shared_left = self.shared - design @ (linear_map @ self.shared)
+        return self.diagonal * (1.0 - 2.0 * fitted_self) + spread + (shared_left**2).sum(axis=1)
 
 
 class GlsSolution(NamedTuple):
@@ -186,9 +216,18 @@ class LineFit:
     weights : ndarray
         1/sigma^2 of ln k from the rate errors alone (ones without rate errors).
     residual_covariance : ResidualCovariance
-        Covariance V of the residuals the line was fitted with (rates and temperatures).
+        Covariance V of the residuals the line was fitted with (rates and temperatures): its weights.
+    full_covariance : ResidualCovariance
+        Covariance of ln k about the line with every shared error counted as correlated: V with the
+        parts of the rate errors shared through held trends moved off the diagonal into shared columns
+        (V itself when no rate errors are shared). The line's errors, its chi-square and its residuals
+        are judged against it.
+    linear_map : ndarray
+        (2, n) map A of the fit: (intercept, slope) = A y.
     chi_square : float
-        r^T V^-1 r, the shared temperature errors counted as correlated (NaN without rate errors).
+        Goodness of fit under `full_covariance`: the least r^T V_full^-1 r over all lines (the generalised
+        least-squares minimum, chi-square with n - 2 degrees of freedom whichever weights drew the line;
+        r^T V^-1 r of the line's own residuals when no rate errors are shared). NaN without rate errors.
     dof : int
         Degrees of freedom, n - 2.
     scatter : float
@@ -203,6 +242,8 @@ class LineFit:
     residuals: np.ndarray
     weights: np.ndarray
     residual_covariance: ResidualCovariance
+    full_covariance: ResidualCovariance
+    linear_map: np.ndarray
     chi_square: float
     dof: int
     scatter: float
@@ -265,13 +306,16 @@ def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     weighted_ss = float((w * fit.residuals**2).sum())
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
     a = fit.linear_map
+    full = covariance
     if have_errors:
         # the parts of the rate errors shared through held trends move the rows together: the line keeps its
-        # weights (the rate errors as given), and its covariance counts those parts as correlated
-        held = a @ np.column_stack(list(series.rate_shared.values())) if series.rate_shared else np.zeros((2, 0))
-        own = np.clip(sigma2 - sum(v**2 for v in series.rate_shared.values()), 0.0, None)
+        # weights (the rate errors as given), and its covariance and chi-square count those parts as correlated
+        rate_shared = series.rate_shared_columns
+        full = covariance.correlated(rate_shared)
+        held = a @ rate_shared
+        own = np.clip(sigma2 - (rate_shared**2).sum(axis=1), 0.0, None)
         parts = {SHARE_RATES: (a * own) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T, SHARE_HELD: held @ held.T}
-        chi_square = fit.chi_square
+        chi_square = generalised_least_squares(design, y, full).chi_square
     else:
         parts = {SHARE_SCATTER: fit.normal * scatter**2}
         chi_square = math.nan
@@ -279,7 +323,7 @@ def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     if scaled and have_errors and dof > 0:
         parts = {name: part * chi_square / dof for name, part in parts.items()}
     parts = {name: part for name, part in parts.items() if part.any() or name in (SHARE_RATES, SHARE_SCATTER)}
-    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance,
+    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance, full, a,
                    chi_square, dof, scatter)
 
 
@@ -287,8 +331,9 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
     """Studentised residuals of the Eyring line through the rows of `series` (all values), with the error
     basis `basis` (one of the ``BASIS_*`` values).
 
-    With known errors e_i / sqrt(Var e_i), Var e = V - X C X^T (V the residual covariance with the
-    temperature errors, C the covariance of the line); otherwise externally studentised,
+    With known errors e_i / sqrt(Var e_i), Var e the diagonal of (I - X A) V_full (I - X A)^T (A the
+    line's linear map, V_full its full covariance: rate and temperature errors, shared parts correlated;
+    V - X C X^T when the line is weighted by V_full itself); otherwise externally studentised,
     e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter without point i. A point of leverage h = 1 (each
     of two points, or one whose weight dwarfs the others') fixes the line through itself: its residual
     is zero whatever the data, has no variance left (1 - h is zero, or a rounding error either side of
@@ -298,12 +343,12 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
     x, e, w = 1.0 / series.temperature_k, line.residuals, line.weights
     out = np.full_like(e, np.nan)
     if basis == BASIS_GIVEN:
-        variance = line.residual_covariance.variances()
-        # judged as the line was weighted: the held trends' shared errors as if independent
-        c = line.covariance - line.covariance_parts.get(SHARE_HELD, 0.0)
-        keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
-        judged = keep > LEVERAGE_TOLERANCE
-        out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])
+        # a part shared through a held trend moves the rows together and the line takes most of it up: it
+        # leaves less in the residuals than if it were independent
+        design = np.column_stack([np.ones_like(x), x])
+        variance = line.full_covariance.residual_variances(design, line.linear_map)
+        judged = variance > LEVERAGE_TOLERANCE * line.full_covariance.variances()
+        out[judged] = e[judged] / np.sqrt(variance[judged])
         return out
     normal = _normal_covariance(x, w)
     keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
