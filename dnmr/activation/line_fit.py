@@ -117,13 +117,22 @@ class ResidualCovariance:
         d_rhs = rhs / (self.diagonal[:, None] if rhs.ndim == 2 else self.diagonal)
         if not self.shared.shape[1]:
             return d_rhs
-        d_u = self.shared / self.diagonal[:, None]
-        core = np.eye(self.shared.shape[1]) + self.shared.T @ d_u
+        d_u, core = self._woodbury()
         return d_rhs - d_u @ np.linalg.solve(core, self.shared.T @ d_rhs)
+
+    def _woodbury(self) -> tuple[np.ndarray, np.ndarray]:
+        """D^-1 U and the core I + U^T D^-1 U of the Woodbury identity."""
+        d_u = self.shared / self.diagonal[:, None]
+        return d_u, np.eye(self.shared.shape[1]) + self.shared.T @ d_u
 
     def variances(self) -> np.ndarray:
         """Diagonal of V."""
         return self.diagonal + (self.shared**2).sum(axis=1)
+
+    def inverse_diagonal(self) -> np.ndarray:
+        """Diagonal of V^-1 (Woodbury), O(n m^2)."""
+        d_u, core = self._woodbury()
+        return 1.0 / self.diagonal - np.einsum("ij,ij->i", d_u @ np.linalg.inv(core), d_u)
 
     def correlated(self, columns: np.ndarray) -> "ResidualCovariance":
         """The same covariance with `columns` (n, m), parts of the independent variances that the rows
@@ -180,14 +189,6 @@ def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
     dx = x - xm
     slope = (w * dx * (y - ym)).sum(-1) / (w * dx * dx).sum(-1)
     return ym - slope * xm, slope
-
-
-def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """(X^T W X)^-1 of the straight line, written with centred sums for accuracy."""
-    sw = w.sum()
-    xm = (w * x).sum() / sw
-    sxx = (w * (x - xm) ** 2).sum()
-    return np.array([[1 / sw + xm**2 / sxx, -xm / sxx], [-xm / sxx, 1 / sxx]])
 
 
 SHARE_RATES = "rates"
@@ -333,32 +334,37 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
 
     With known errors e_i / sqrt(Var e_i), Var e the diagonal of (I - X A) V_full (I - X A)^T (A the
     line's linear map, V_full its full covariance: rate and temperature errors, shared parts correlated;
-    V - X C X^T when the line is weighted by V_full itself); otherwise externally studentised,
-    e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter without point i. A point of leverage h = 1 (each
-    of two points, or one whose weight dwarfs the others') fixes the line through itself: its residual
-    is zero whatever the data, has no variance left (1 - h is zero, or a rounding error either side of
-    it) and cannot be judged, so it gets NaN.
+    V - X C X^T when the line is weighted by V_full itself). With errors of unknown scale the same,
+    externally studentised: divided by s_(i), the square root of the reduced chi-square without point i
+    (chi-square minus the drop an extra coefficient for point i would give, (e_i^T P y)^2 / e_i^T P e_i,
+    P = V^-1 - V^-1 X C X^T V^-1, over n - 3 degrees of freedom); V = V_full scaled by the reduced
+    chi-square, or the identity when the errors come from the scatter alone, which makes it the textbook
+    e sqrt(w) / (s_(i) sqrt(1 - h)) of weighted least squares. A point of leverage h = 1 (each of two
+    points, or one whose weight dwarfs the others') fixes the line through itself: its residual is zero
+    whatever the data, has no variance left (1 - h is zero, or a rounding error either side of it) and
+    cannot be judged, so it gets NaN.
     """
     line = fit_line(series, power=1, scaled=basis != BASIS_GIVEN)
-    x, e, w = 1.0 / series.temperature_k, line.residuals, line.weights
+    x, e = 1.0 / series.temperature_k, line.residuals
+    design = np.column_stack([np.ones_like(x), x])
+    covariance = line.full_covariance if basis != BASIS_SCATTER else ResidualCovariance(np.ones_like(x), design[:, :0])
+    # a part shared through a held trend moves the rows together and the line takes most of it up: it
+    # leaves less in the residuals than if it were independent
+    variance = covariance.residual_variances(design, line.linear_map)
+    judged = variance > LEVERAGE_TOLERANCE * covariance.variances()
     out = np.full_like(e, np.nan)
     if basis == BASIS_GIVEN:
-        # a part shared through a held trend moves the rows together and the line takes most of it up: it
-        # leaves less in the residuals than if it were independent
-        design = np.column_stack([np.ones_like(x), x])
-        variance = line.full_covariance.residual_variances(design, line.linear_map)
-        judged = variance > LEVERAGE_TOLERANCE * line.full_covariance.variances()
         out[judged] = e[judged] / np.sqrt(variance[judged])
         return out
-    normal = _normal_covariance(x, w)
-    keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
-    judged = keep > LEVERAGE_TOLERANCE
     dof = len(x) - 3
     if dof <= 0:
         return out
-    deleted_ss = (w * e**2).sum() - w[judged] * e[judged] ** 2 / keep[judged]
+    fit = generalised_least_squares(design, e + design @ [line.intercept, line.slope], covariance)
+    weighted = covariance.solve(design)
+    kept_precision = covariance.inverse_diagonal() - np.einsum("ij,jk,ik->i", weighted, fit.normal, weighted)
+    deleted = fit.chi_square - covariance.solve(fit.residuals)[judged] ** 2 / kept_precision[judged]
     with np.errstate(divide="ignore", invalid="ignore"):  # exact data: 0/0, no residual to judge
-        out[judged] = e[judged] * np.sqrt(w[judged]) / np.sqrt(deleted_ss / dof * keep[judged])
+        out[judged] = e[judged] / np.sqrt(variance[judged] * deleted / dof)
     return out
 
 
