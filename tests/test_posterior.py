@@ -12,6 +12,7 @@ standard errors, from the chain's own effective sample size.
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import csv
 import json
 import math
@@ -246,6 +247,42 @@ def test_well_determined_rate_posterior_matches_least_squares(method):
     assert d["quantities"]["log10_rate_flip"]["kind"] == "interval" and d["method"] == method
     assert d["walkers"] == (12 if method == "emcee" else 1)
     assert "error scale" in post.report() and "flip" in post.report()
+
+
+@pytest.mark.parametrize("pool", [futures.ProcessPoolExecutor, futures.ThreadPoolExecutor])
+def test_importance_posterior_on_an_executor_equals_the_serial_one(pool):
+    # The draws come from this process's seeded generator and each ln posterior is a function of its draw
+    # alone, so the workers of an executor (processes, or threads sharing one payload) must give the same
+    # weights and samples as the serial run, bit for bit.
+    fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    serial = sample_spectrum_posterior(fit, draws=600, seed=2)
+    calls, tasks = [], []
+
+    class Counted(pool):
+        def submit(self, *args, **kwargs):
+            tasks.append(args[0])
+            return super().submit(*args, **kwargs)
+
+    with Counted(max_workers=2) as executor:
+        spread = sample_spectrum_posterior(fit, draws=600, seed=2, executor=executor,
+                                           progress=lambda *a: calls.append(a))
+    assert len(tasks) >= 600 // 50  # the draws went to the executor, 50 to a task
+    assert np.array_equal(spread.samples, serial.samples)
+    assert spread.importance == serial.importance and spread.notes == serial.notes
+    assert calls[-1] == (600, 600)  # after every stage of draws
+
+
+def test_emcee_with_an_executor_runs_here_and_says_so():
+    # The ensemble moves its walkers in turns: with an executor it runs in this process, the same chain as
+    # without one, and a note says where it ran.
+    fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    settings = {"method": "emcee", "steps": 60, "walkers": 8, "seed": 1}
+    serial = sample_spectrum_posterior(fit, **settings)
+    with futures.ThreadPoolExecutor(max_workers=2) as executor:
+        here = sample_spectrum_posterior(fit, executor=executor, **settings)
+    assert np.array_equal(here.samples, serial.samples)
+    assert [n for n in here.notes if n not in serial.notes] == [
+        "the emcee ensemble ran in this process, not on the executor given (the ensemble route does not distribute its walkers)"]
 
 
 @pytest.mark.parametrize("method", ["importance", "emcee"])

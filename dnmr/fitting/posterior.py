@@ -33,6 +33,7 @@ again by lmfit's emcee route (``lmfit.Minimizer.emcee``) from the least-squares 
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import contextlib
 import io
 import math
@@ -47,7 +48,7 @@ import dnmr  # for annotations only: the fit's class is named through the public
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout
 from dnmr.fitting.problem import FitProblem, refine
-from dnmr.fitting.workers import single_threaded_blas
+from dnmr.fitting.workers import SharedPayload, single_threaded_blas
 from dnmr.importance import FlatProfile, StudentProposal, posterior_from_draws, sample_by_importance
 from dnmr.posterior import (
     BOUND_KINDS,
@@ -78,6 +79,8 @@ PATH_STEP = 0.5
 PATH_MOST_POINTS = 100
 #: Only where chi-square is within this many error scales of the fit's does the path matter (5 sigma).
 PATH_REACH = 25.0
+#: Draws of importance sampling evaluated by one task on an executor (each a lineshape evaluation).
+DRAWS_PER_TASK = 50
 
 
 def _label(name: str) -> tuple[str, str]:
@@ -128,6 +131,7 @@ def sample_spectrum_posterior(
     thin: int = 1,
     seed: int | None = 0,
     progress: Callable[[int, int], None] | None = None,
+    executor: futures.Executor | None = None,
 ) -> Posterior:
     """Posterior samples of the free parameters of one spectrum fit.
 
@@ -158,7 +162,13 @@ def sample_spectrum_posterior(
     seed : int or None
         Seed of the draws, the resampling, the walkers' starts and the ensemble (None: fresh each call).
     progress : callable, optional
-        Called as progress(done, total) after every draw (importance) or step (ensemble).
+        Called as progress(done, total) after every draw (importance; with `executor` after every stage of
+        draws) or step (ensemble).
+    executor : concurrent.futures.Executor, optional
+        Where the draws of importance sampling are evaluated, :data:`DRAWS_PER_TASK` to a task (a process
+        pool, a Dask client's ``get_executor()``...; left running): the same draws, weights and samples as
+        in this process.  The ensemble does not distribute its walkers: it runs in this process, and a note
+        says so when an executor was given.
 
     Returns
     -------
@@ -178,12 +188,14 @@ def sample_spectrum_posterior(
     if method == "importance":
         if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 100:
             raise InputError(f"draws must be a whole number of at least 100, got {draws!r}", where="draws")
-        post = _importance_posterior(setup, int(draws), seed, progress)
+        post = _importance_posterior(setup, int(draws), seed, progress, executor)
         if not post.importance["pareto_k"] > PARETO_LIMIT:
             return post
         notes.append(f"importance sampling from the fit was not reliable here (Pareto shape of its weights "
                      f"{post.importance['pareto_k']:.2f} > {PARETO_LIMIT}): sampled with the emcee ensemble instead")
     require_emcee()
+    if executor is not None:
+        notes.append("the emcee ensemble ran in this process, not on the executor given (the ensemble route does not distribute its walkers)")
     return _ensemble_posterior(setup, steps, walkers, burn, thin, seed, progress, notes)
 
 
@@ -214,7 +226,7 @@ def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: in
     free, params, rate_of = setup.free, setup.params, setup.rate_of
     walkers, burn = sampler_settings(steps, walkers, burn, thin, len(free))
     start = _walker_starts(np.random.default_rng(seed), setup.fit, params, free, rate_of, walkers)
-    residual = _scaled_residual(setup.problem, setup.fit.error_scale, walkers, steps, progress)
+    residual = _counted(_ScaledResidual(setup.problem, setup.fit.error_scale), walkers, steps, progress)
     result = _run_emcee(residual, params, start, steps, walkers, seed)
     if progress is not None:
         progress(steps, steps)
@@ -226,22 +238,25 @@ def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: in
                                 likelihood=setup.likelihood, shown=shown, title=setup.title, notes=notes)
 
 
-def _importance_posterior(setup: _Setup, draws: int, seed: int | None,
-                          progress: Callable[[int, int], None] | None) -> Posterior:
-    """The posterior by importance sampling from the fit (module notes)."""
-    residual = _scaled_residual(setup.problem, setup.fit.error_scale, 1, draws, None)
-    params = setup.params.copy()  # moved to every draw in turn
+def _importance_posterior(setup: _Setup, draws: int, seed: int | None, progress: Callable[[int, int], None] | None,
+                          executor: futures.Executor | None) -> Posterior:
+    """The posterior by importance sampling from the fit (module notes), its draws evaluated on `executor`
+    when one is given."""
+    log_likelihood = _LogLikelihood(_ScaledResidual(setup.problem, setup.fit.error_scale), setup.params, setup.free)
+    payload = None if executor is None else SharedPayload(log_likelihood, executor)
 
-    def log_likelihood(x: np.ndarray) -> float:
-        for name, value in zip(setup.free, x):
-            params[name].value = float(value)
-        params.update_constraints()
-        r = residual(params)
-        return -0.5 * float(r @ r)
+    def on_executor(_, rows: np.ndarray) -> np.ndarray:
+        chunks = np.array_split(rows, max(1, math.ceil(len(rows) / DRAWS_PER_TASK)))
+        return np.concatenate(payload.map(_log_likelihoods, [(chunk,) for chunk in chunks]))
 
-    with single_threaded_blas():
-        x, log_weights, adapted = sample_by_importance(log_likelihood, _fit_proposal(setup), draws,
-                                                       np.random.default_rng(seed), PROPOSAL_WIDTH, progress)
+    try:
+        with single_threaded_blas():
+            x, log_weights, adapted = sample_by_importance(log_likelihood, _fit_proposal(setup), draws,
+                                                           np.random.default_rng(seed), PROPOSAL_WIDTH, progress,
+                                                           None if payload is None else on_executor)
+    finally:
+        if payload is not None:
+            payload.close()
     full, quantities = _with_rates(x[:, None, :], setup.params, setup.free, setup.rate_of)
     shown = _most_correlated(x, setup.free, [n for n in setup.free if n in setup.rate_of])
     words = (f"a Student t about the least-squares optimum with {PROPOSAL_WIDTH:g}^2 x its covariance"
@@ -347,21 +362,69 @@ def _walker_starts(rng: np.random.Generator, fit: "dnmr.SpectrumFit", params: lm
     return start
 
 
-def _scaled_residual(problem: FitProblem, error_scale: float, walkers: int, steps: int,
-                     progress: Callable[[int, int], None] | None) -> Callable:
+class _ScaledResidual:
     """The fit's residual divided by the square root of its error scale (1e3 everywhere for a model out of
-    range), reporting progress once per step of the ensemble."""
-    root_scale = math.sqrt(error_scale)
+    range); picklable, for the workers of an executor.
+
+    Parameters
+    ----------
+    problem : FitProblem
+        The fit's problem.
+    error_scale : float
+        The fit's error scale s (dimensionless).
+    """
+
+    def __init__(self, problem: FitProblem, error_scale: float):
+        self.problem, self.root_scale = problem, math.sqrt(error_scale)
+
+    def __call__(self, params: lmfit.Parameters) -> np.ndarray:
+        r = self.problem.residual(params)
+        return r / self.root_scale if np.isfinite(r).all() else np.full(r.size, 1e3)  # as for a model out of range
+
+
+class _LogLikelihood:
+    """ln L = -chi^2 / (2 s) at a point of the free parameters (module notes); picklable, for the workers of
+    an executor.  Moves its own copy of the parameters to each point: one instance per thread.
+
+    Parameters
+    ----------
+    residual : _ScaledResidual
+        The fit's scaled residual.
+    params : lmfit.Parameters
+        The fit's parameters (copied).
+    free : sequence of str
+        The free parameters, in the order of a point's coordinates.
+    """
+
+    def __init__(self, residual: _ScaledResidual, params: lmfit.Parameters, free: Sequence[str]):
+        self.residual, self.params, self.free = residual, params.copy(), tuple(free)
+
+    def __call__(self, x: np.ndarray) -> float:
+        for name, value in zip(self.free, x):
+            self.params[name].value = float(value)
+        self.params.update_constraints()
+        r = self.residual(self.params)
+        return -0.5 * float(r @ r)
+
+
+def _log_likelihoods(log_likelihood: _LogLikelihood, rows: np.ndarray) -> np.ndarray:
+    """ln L at every row of `rows` (points of the free parameters), on a copy of `log_likelihood` of its own
+    (tasks of a thread pool share the instance they were sent)."""
+    mine = _LogLikelihood(log_likelihood.residual, log_likelihood.params, log_likelihood.free)
+    return np.array([mine(row) for row in rows], dtype=float)
+
+
+def _counted(residual: Callable, walkers: int, steps: int, progress: Callable[[int, int], None] | None) -> Callable:
+    """`residual`, reporting progress once per step of the ensemble."""
     calls = [0]
 
-    def residual(p):
+    def counted(p):
         calls[0] += 1
         if progress is not None and calls[0] % walkers == 1 and calls[0] > 1:
             progress(min(calls[0] // walkers, steps), steps)
-        r = problem.residual(p)
-        return r / root_scale if np.isfinite(r).all() else np.full(r.size, 1e3)  # as for a model out of range
+        return residual(p)
 
-    return residual
+    return counted
 
 
 def _run_emcee(residual: Callable, params: lmfit.Parameters, start: np.ndarray, steps: int, walkers: int,
