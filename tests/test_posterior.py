@@ -272,17 +272,23 @@ def test_importance_posterior_on_an_executor_equals_the_serial_one(pool):
     assert calls[-1] == (600, 600)  # after every stage of draws
 
 
-def test_emcee_with_an_executor_runs_here_and_says_so():
-    # The ensemble moves its walkers in turns: with an executor it runs in this process, the same chain as
-    # without one, and a note says where it ran.
+def test_emcee_on_an_executor_equals_the_serial_chain():
+    # The walkers' moves are drawn here from the seed; each half of the walkers is evaluated on the executor
+    # at every step: the same chain as in this process, bit for bit.
     fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
     settings = {"method": "emcee", "steps": 60, "walkers": 8, "seed": 1}
     serial = sample_spectrum_posterior(fit, **settings)
-    with futures.ThreadPoolExecutor(max_workers=2) as executor:
-        here = sample_spectrum_posterior(fit, executor=executor, **settings)
-    assert np.array_equal(here.samples, serial.samples)
-    assert [n for n in here.notes if n not in serial.notes] == [
-        "the emcee ensemble ran in this process, not on the executor given (the ensemble route does not distribute its walkers)"]
+    tasks = []
+
+    class Counted(futures.ProcessPoolExecutor):
+        def submit(self, *args, **kwargs):
+            tasks.append(args[0])
+            return super().submit(*args, **kwargs)
+
+    with Counted(max_workers=2) as executor:
+        spread = sample_spectrum_posterior(fit, executor=executor, **settings)
+    assert len(tasks) >= 2 * 60  # every step's two halves of the walkers went to the executor
+    assert np.array_equal(spread.samples, serial.samples) and spread.notes == serial.notes
 
 
 @pytest.mark.parametrize("method", ["importance", "emcee"])
