@@ -80,8 +80,10 @@ PATH_STEP = 0.5
 PATH_MOST_POINTS = 100
 #: Only where chi-square is within this many error scales of the fit's does the path matter (5 sigma).
 PATH_REACH = 25.0
-#: Draws of importance sampling evaluated by one task on an executor (each a lineshape evaluation).
+#: Draws of importance sampling, and walkers of the ensemble, evaluated by one task on an executor (each a
+#: lineshape evaluation; the ensemble evaluates half its walkers at a time and waits for them).
 DRAWS_PER_TASK = 50
+WALKERS_PER_TASK = 4
 
 
 def _label(name: str) -> tuple[str, str]:
@@ -168,7 +170,7 @@ def sample_spectrum_posterior(
     executor : concurrent.futures.Executor, optional
         Where the lineshapes are evaluated (a process pool, a Dask client's ``get_executor()``...; left
         running): the draws of importance sampling, :data:`DRAWS_PER_TASK` to a task, or each half of the
-        ensemble's walkers at every step.  The draws and the walkers' moves are made here from the seed, so
+        ensemble's walkers at every step, :data:`WALKERS_PER_TASK` to a task.  The draws and the walkers' moves are made here from the seed, so
         the samples are the same as in this process.
 
     Returns
@@ -227,7 +229,7 @@ def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: in
     free, params, rate_of = setup.free, setup.params, setup.rate_of
     walkers, burn = sampler_settings(steps, walkers, burn, thin, len(free))
     start = _walker_starts(np.random.default_rng(seed), setup.fit, params, free, rate_of, walkers)
-    with _Evaluation(_LogPosterior(setup), executor) as evaluate:
+    with _Evaluation(_LogPosterior(setup), executor, WALKERS_PER_TASK) as evaluate:
         chain, acceptance = _run_emcee(evaluate, start, steps, seed, progress)
     full, quantities = _with_rates(chain, params, free, rate_of)
     shown = _most_correlated(chain[burn:].reshape(-1, len(free)), free, [n for n in free if n in rate_of])
@@ -241,7 +243,7 @@ def _importance_posterior(setup: _Setup, draws: int, seed: int | None, progress:
     """The posterior by importance sampling from the fit (module notes), its draws evaluated on `executor`
     when one is given."""
     log_posterior = _LogPosterior(setup)
-    with _Evaluation(log_posterior, executor) as evaluate, single_threaded_blas():
+    with _Evaluation(log_posterior, executor, DRAWS_PER_TASK) as evaluate, single_threaded_blas():
         x, log_weights, adapted = sample_by_importance(log_posterior, _fit_proposal(setup), draws,
                                                        np.random.default_rng(seed), PROPOSAL_WIDTH, progress,
                                                        None if executor is None else lambda _, rows: evaluate(rows))
@@ -405,18 +407,18 @@ def _log_posteriors(log_posterior: _LogPosterior, rows: np.ndarray) -> np.ndarra
 
 
 class _Evaluation:
-    """The ln posterior of many points at once: in this process, or on an executor in tasks of
-    :data:`DRAWS_PER_TASK` points, `log_posterior` sent once to each worker process.  A context manager
-    (the payload is dropped at its end)."""
+    """The ln posterior of many points at once: in this process, or on an executor in tasks of `per_task`
+    points, `log_posterior` sent once to each worker process.  A context manager (the payload is dropped at
+    its end)."""
 
-    def __init__(self, log_posterior: _LogPosterior, executor: futures.Executor | None):
-        self.log_posterior = log_posterior
+    def __init__(self, log_posterior: _LogPosterior, executor: futures.Executor | None, per_task: int):
+        self.log_posterior, self.per_task = log_posterior, per_task
         self.payload = None if executor is None else SharedPayload(log_posterior, executor)
 
     def __call__(self, rows: np.ndarray) -> np.ndarray:
         if self.payload is None:
             return _log_posteriors(self.log_posterior, rows)
-        chunks = np.array_split(rows, max(1, math.ceil(len(rows) / DRAWS_PER_TASK)))
+        chunks = np.array_split(rows, max(1, math.ceil(len(rows) / self.per_task)))
         return np.concatenate(self.payload.map(_log_posteriors, [(chunk,) for chunk in chunks]))
 
     def __enter__(self) -> "_Evaluation":
