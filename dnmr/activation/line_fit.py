@@ -62,7 +62,10 @@ Residuals
 ---------
 Outliers are flagged by studentised residuals (beyond 3 standard deviations by default, common
 practice; judged one at a time so that one gross outlier does not make its neighbours look bad), never
-removed.
+removed. Each residual is divided by its standard deviation under the full covariance (shared errors
+correlated), and with errors of unknown scale also by the scatter without it (externally studentised:
+the chi-square without the point, by the mean-shift drop that reduces to the textbook weighted
+least-squares formula without shared errors).
 """
 from __future__ import annotations
 
