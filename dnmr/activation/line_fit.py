@@ -340,9 +340,9 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
     V - X C X^T when the line is weighted by V_full itself). With errors of unknown scale the same,
     externally studentised: divided by s_(i), the square root of the reduced chi-square without point i
     (chi-square minus the drop an extra coefficient for point i would give, (e_i^T P y)^2 / e_i^T P e_i,
-    P = V^-1 - V^-1 X C X^T V^-1, over n - 3 degrees of freedom); V = V_full scaled by the reduced
-    chi-square, or the identity when the errors come from the scatter alone, which makes it the textbook
-    e sqrt(w) / (s_(i) sqrt(1 - h)) of weighted least squares. A point of leverage h = 1 (each of two
+    P = V^-1 - V^-1 X C X^T V^-1, C = (X^T V^-1 X)^-1, over n - 3 degrees of freedom), with V = V_full
+    (the identity when the errors come from the scatter alone); without shared errors this is the
+    textbook e sqrt(w) / (s_(i) sqrt(1 - h)) of weighted least squares. A point of leverage h = 1 (each of two
     points, or one whose weight dwarfs the others') fixes the line through itself: its residual is zero
     whatever the data, has no variance left (1 - h is zero, or a rounding error either side of it) and
     cannot be judged, so it gets NaN.
