@@ -147,8 +147,10 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
               help="Also fit all spectra at once with ΔH‡ and ΔS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shift-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
               help="With --global: temperature trend of the chemical shifts.")
-@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
-              show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
+@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum", "reference-line"]),
+              help="With --global: temperature trend of the intrinsic linewidth, one per spectrum, or the width of the "
+                   "series' reference line in every spectrum (default: reference-line when the series file has a "
+                   "[fit.reference_line], else linear).")
 @click.option("--coupling-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear",
               show_default=True, help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),

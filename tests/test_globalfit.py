@@ -268,3 +268,70 @@ def test_calibration_error_reported(calibrated, result):
     # without a calibration nothing is claimed
     plain = json.loads((result.outdir / "global.json").read_text())
     assert plain["calibration_error_included"] is False and "calibration_share_stderr" not in plain
+
+
+# --- issue 12 item 4: the reference line and the couplings in the global fit ---------------------------------
+
+
+def test_reference_line_gives_each_spectrum_its_linewidth(tmp_path):
+    # truth: the N-methyl scenario's ΔH‡, ΔS‡ (invented) and its intrinsic width, linear in T (broader when
+    # cold), shared by a non-exchanging singlet at 2.5 ppm; spectra from McConnell's closed form (J. Chem.
+    # Phys. 28, 430 (1958)) and a Lorentzian (Bloch equations) for the singlet (tests/realistic_series.py)
+    scenario = SCENARIOS["mutual-pair"].replace(temperatures_k=SCENARIOS["mutual-pair"].temperatures_k[::2],
+                                                points=4096, reference_line_ppm=2.5)
+    truth = write_series(tmp_path / "data", scenario, seed=91)
+    truth.series_file.write_text(truth.series_file.read_text().replace(
+        'model = "model.toml"\n', 'model = "model.toml"\n[fit]\nprofile = false\n[fit.reference_line]\nppm = 2.5\n'
+                                  "window_ppm = [2.4, 2.6]\n"))
+    result = fit_series_global(truth.series_file, tmp_path / "g", workers=1, progress=False)
+    data = json.loads((result.outdir / "global.json").read_text())
+    assert data["options"]["linewidth_trend"] == "reference-line" and data["options"]["reference_line"]["ppm"] == 2.5
+    assert "reference line at 2.5 ppm" in (result.outdir / "global.txt").read_text()
+    # every spectrum's linewidth is held at its reference width, which follows the true width
+    held = {n: p for n, p in result.parameters.items() if n.startswith("s") and "linewidth_hz" in n}
+    assert len(held) == len(truth.temperatures_k) and all(p["fixed"] and p["stderr"] > 0 for p in held.values())
+    for t, p in zip(result.temperatures_k, held.values()):
+        assert abs(p["estimate"] - scenario.linewidth_at(t)) < 4 * p["stderr"]
+    # within 2 standard errors of the truth, the widths' errors among them
+    a = result.activation[0]
+    assert abs(a.enthalpy_kj_mol - truth.enthalpy_kj_mol) < 2 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - truth.entropy_j_mol_k) < 2 * a.entropy_stderr
+    assert any("reference widths' errors alone" in n for n in result.notes), result.notes
+    assert abs(result.reduced_chi_square - 1.0) < 0.1, result.notes
+    # rates past coalescence (Gutowsky & Holm: k_c = pi dnu / sqrt 2, about 133 s^-1 for 60 Hz) are values,
+    # in the global fit and in its two-step stage with the same reference widths
+    dnu = abs(np.subtract(*scenario.shifts_ppm)) * scenario.frequency_mhz
+    past = [(r, k) for r, k in zip(data["processes"][0]["rates"], truth.rates_per_s) if k > math.pi * dnu / math.sqrt(2.0)]
+    assert len(past) >= 2
+    for r, k in past:
+        assert r["two_step_status"] == "determined" and 0 < r["rate_stderr"] < 0.2 * r["rate_per_s"]
+        assert abs(r["rate_per_s"] - k) < 3 * r["rate_stderr"]
+
+
+def test_reference_line_trend_needs_a_reference_line(series_file, tmp_path):
+    with pytest.raises(InputError, match=r"\[fit.reference_line\]"):
+        fit_series_global(series_file, tmp_path / "g", linewidth_trend="reference-line", workers=1, progress=False)
+
+
+def test_couplings_start_from_the_two_step_fit_and_are_recovered(tmp_path):
+    # an AB pair on ring inversion whose model-file J is 0.5 Hz off (tests/realistic_series.py: QuTiP's
+    # Lindblad Liouvillian as the reference lineshape, J = -12.5 Hz + 0.002 Hz/K (T - 298.15 K), invented)
+    from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+
+    truth = _written(tmp_path / "data", "ab-pair", 901)
+    scenario = truth.scenario
+    series = load_series(truth.series_file)
+    two = fit_series(series, tmp_path / "two", workers=1, progress=False)
+    members = [GlobalMember.from_two_step(i, o.spectrum.temperature_k, o.fit, series.model)
+               for i, o in enumerate(two.outcomes)]
+    problem = GlobalProblem(members, series.model, Treatment(), False, {"swap": (55.0, -8.0)})
+    (name,) = [n for n in problem.params if n.startswith("coupling_hz_") and not n.endswith(("_per_k", "_per_k2"))]
+    t_ref, model_j = problem.reference_k, series.model.states[0].couplings_hz["Ha-Hb"]
+    assert abs(model_j - scenario.coupling_at(t_ref)) > 0.45  # the model file's guess
+    assert abs(problem.params[name].value - scenario.coupling_at(t_ref)) < 0.15  # the start: the two-step fit's
+    result = fit_series_global(series, tmp_path / "g", workers=1, progress=False)
+    j = result.parameters[name]
+    assert abs(j["estimate"] - scenario.coupling_at(t_ref)) < 3 * j["stderr"]
+    a = result.activation[0]
+    assert abs(a.enthalpy_kj_mol - truth.enthalpy_kj_mol) < 2 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - truth.entropy_j_mol_k) < 2 * a.entropy_stderr

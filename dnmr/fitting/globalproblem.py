@@ -22,15 +22,15 @@ from dnmr.engine.blocks import lineshape_terms
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
 from dnmr.fitting.problem import FitProblem, nuisance_column
+from dnmr.fitting.seriesfile import REFERENCE_LINE
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 from dnmr.model import Model
-from dnmr.modelparts import parse_coupling_key
 
 TREND_DEGREES = {"constant": 0, "linear": 1, "quadratic": 2}
 TREND_SUFFIXES = ("", "_per_k", "_per_k2")
 SHIFT_TRENDS = ("constant", "linear", "quadratic")
-LINEWIDTH_TRENDS = ("per-spectrum", "constant", "linear", "quadratic")
+LINEWIDTH_TRENDS = ("per-spectrum", "constant", "linear", "quadratic", REFERENCE_LINE)
 COUPLING_TRENDS = ("constant", "linear", "quadratic")
 DEFAULT_TREND = "linear"
 NUISANCE = ("amplitude", "phase0_deg", "phase1_deg")  # with the baseline terms: exact Jacobian columns
@@ -57,8 +57,9 @@ class Treatment:
     ----------
     shift_trend : {"constant", "linear", "quadratic"}
         Temperature trend of every chemical shift (ppm).
-    linewidth_trend : {"per-spectrum", "constant", "linear", "quadratic"}
-        Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
+    linewidth_trend : {"per-spectrum", "constant", "linear", "quadratic", "reference-line"}
+        Intrinsic linewidth (Hz): a trend in T, fitted in every spectrum, or held in every spectrum at the
+        width of the series' reference line there (plus its ``added_width_hz``), its error carried.
     coupling_trend : {"constant", "linear", "quadratic"}
         Temperature trend of every scalar coupling (Hz) the model gives.
     """
@@ -78,9 +79,9 @@ class Treatment:
         """The option that lets `family` ("shift", "linewidth", "coupling") follow the data more closely,
         or None when none is left."""
         current = getattr(self, f"{family}_trend")
-        order = {"shift": SHIFT_TRENDS, "linewidth": ("constant", "linear", "quadratic", "per-spectrum"),
+        order = {"shift": SHIFT_TRENDS, "linewidth": ("constant", "linear", "quadratic", REFERENCE_LINE, "per-spectrum"),
                  "coupling": COUPLING_TRENDS}[family]
-        later = order[order.index(current) + 1:]
+        later = [t for t in order[order.index(current) + 1:] if t != REFERENCE_LINE]
         return f"{TREND_OPTIONS[family]} {later[0]}" if later else None
 
 
@@ -100,6 +101,9 @@ class GlobalMember:
         Its single-spectrum fit problem: frequencies (Hz), data, noise, phase and baseline terms of its region.
     base : Model
         The series' model at its temperature.
+    reference : dict or None
+        Its reference-line fit from the two-step stage (:func:`dnmr.fitting.treatments.fit_reference_lines`;
+        a ``setting`` holding the linewidth, with its stderr, where the line gave one), None without a reference line.
     """
 
     index: int
@@ -107,14 +111,16 @@ class GlobalMember:
     fit: SpectrumFit
     problem: FitProblem  # frequencies, phase and baseline terms of its region
     base: Model  # the series' model at this temperature
+    reference: dict | None = None
 
     @classmethod
-    def from_two_step(cls, index: int, temperature_k: float, fit: SpectrumFit, model: Model) -> "GlobalMember":
+    def from_two_step(cls, index: int, temperature_k: float, fit: SpectrumFit, model: Model,
+                      reference: dict | None = None) -> "GlobalMember":
         """Spectrum `index` of the series at sample temperature `temperature_k` (K), from its two-step `fit`
-        and the series' `model`."""
+        (and its reference-line fit `reference`) and the series' `model`."""
         base = model.at_temperature(temperature_k)
         problem = FitProblem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
-        return cls(index, temperature_k, fit, problem, base)
+        return cls(index, temperature_k, fit, problem, base, reference)
 
     @property
     def prefix(self) -> str:
@@ -153,8 +159,10 @@ def _eyring_constant(t: float) -> float:
 
 
 def _settings(members: list[GlobalMember]) -> dict:
-    """The series' per-parameter settings (those of the first fitted spectrum: series-wide ones)."""
-    return dict(members[0].fit.options.parameters)
+    """The series' per-parameter settings: those every fitted spectrum has alike (a spectrum's own also hold
+    the values its two-step fit held: a trend's or its reference line's, which differ between spectra)."""
+    first = members[0].fit.options.parameters
+    return {n: v for n, v in first.items() if all(m.fit.options.parameters.get(n) == v for m in members[1:])}
 
 
 class GlobalProblem:
@@ -191,6 +199,9 @@ class GlobalProblem:
         Rows anchoring the frequency offsets (appended to the residuals).
     maps : list of (ndarray, ndarray)
         Per spectrum, (A, b) of :meth:`affine` at its temperature.
+    held_stderr : dict of str to float
+        Standard errors of held parameters measured elsewhere (a reference line's width, Hz), by name:
+        the fit carries them into its covariance (:meth:`held_derivative`).
     """
 
     def __init__(self, members: list[GlobalMember], model: Model, treatment: Treatment, van_t_hoff: bool,
@@ -203,6 +214,7 @@ class GlobalProblem:
         self.settings = _settings(members)
         self.params = lmfit.Parameters()
         self.quantities: list[LineshapeQuantity] = []
+        self.held_stderr: dict[str, float] = {}
         self._add_rates(start)
         self._add_shifts()
         self._add_linewidths()
@@ -276,16 +288,23 @@ class GlobalProblem:
         return list(names) if self.members[0].fit.options.linewidth == "per-state" else [names[0]] * len(names)
 
     def _add_linewidths(self) -> None:
-        """Started from the two-step widths of the coldest third of the spectra (where exchange does not
-        trade against them), flat in T."""
+        """A trend started from the two-step widths of the coldest third of the spectra (where exchange does
+        not trade against them), flat in T; or one per spectrum: free, started from its two-step width, or
+        (reference line) held at its reference width where the line gave one (the width's error kept in
+        `held_stderr`)."""
         held = self.members[0].fit.options.linewidth == "fixed"
         cold = np.argsort([m.temperature_k for m in self.members])[:max(1, len(self.members) // 3)]
         for name in dict.fromkeys(self._linewidth_keys()):
             state = self.model.states[self.layout.linewidth_names.index(name)]
             fixed = held or self.settings.get(name, {}).get("fixed") is True
-            if self.treatment.linewidth_trend == "per-spectrum" and not fixed:
+            if self.treatment.linewidth_trend in ("per-spectrum", REFERENCE_LINE) and not fixed:
                 for m in self.members:
-                    self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
+                    setting = (m.reference or {}).get("setting", {}).get(name)
+                    if self.treatment.linewidth_trend == REFERENCE_LINE and setting is not None:
+                        self._add(f"{m.prefix}{name}", setting["start"], MIN_LINEWIDTH_HZ, vary=False)
+                        self.held_stderr[f"{m.prefix}{name}"] = float(setting.get("stderr", 0.0))
+                    else:
+                        self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
                 self._quantity(name, "linewidth", [], DIFFERENCE_STEP["linewidth"])
                 continue
             level = float(np.nanmedian(self._two_step(name)[cold]))
@@ -294,16 +313,31 @@ class GlobalProblem:
                         fixed_value=state.linewidth_hz if held else None)
 
     def coupling_names(self) -> list[list[tuple[str, str]]]:
-        """Per state, (coupling key of the model, parameter name) of every coupling it gives."""
-        return [[(key, "coupling_hz_" + "_".join(parameter_identifier(x) for x in (state.name, *parse_coupling_key(key))))
-                 for key in state.couplings_hz] for state in self.model.states]
+        """Per state, (coupling key of the model, parameter name) of every coupling it gives (the names of the
+        single-spectrum fits)."""
+        return [[(key, name) for name, key in names.items()] for names in self.layout.coupling_names]
+
+    def _two_step_determined(self, name: str) -> np.ndarray:
+        """The two-step value of `name` in each spectrum where it is known: held there (at a trend, the
+        model's value or a setting) or fitted with a finite error off its bounds; NaN elsewhere."""
+        out = []
+        for m in self.members:
+            par = m.fit.lmfit_parameters[name]
+            known = (not par.vary or par.expr) or (par.stderr is not None and math.isfinite(par.stderr)
+                                                   and f"at-bound:{name}" not in m.fit.flags)
+            out.append(par.value if known else math.nan)
+        return np.array(out)
 
     def _add_couplings(self) -> None:
+        """Started from a line through the two-step couplings (those fitted in the slow-exchange spectra and
+        held at their trend elsewhere), the model's where none is known."""
         degree = TREND_DEGREES[self.treatment.coupling_trend]
         for state, names in zip(self.model.states, self.coupling_names()):
             for key, name in names:
-                self._trend(name, "coupling", degree, np.full(len(self.members), state.couplings_hz[key]),
-                            DIFFERENCE_STEP["coupling"])
+                values = self._two_step_determined(name)
+                if not np.isfinite(values).any() or self.settings.get(name, {}).get("fixed") is True:
+                    values = np.full(len(self.members), state.couplings_hz[key])
+                self._trend(name, "coupling", degree, values, DIFFERENCE_STEP["coupling"])
 
     def _add_populations(self) -> None:
         """van 't Hoff for every state after the first: ln(p_j/p_1) = -dH_j/(R T) + dS_j/R, started from a
@@ -474,22 +508,37 @@ class GlobalProblem:
                 continue
         return out, turned, values
 
+    def _lineshape_columns(self, k: int, x: np.ndarray, names: Sequence[str]) -> tuple[np.ndarray, np.ndarray, dict]:
+        """d prediction / d parameter of spectrum `k` through its lineshape quantities, for the parameters
+        `names`, with exp(i phi) S and the nuisance values at `x`."""
+        A = self.maps[k][0][:, [self.names.index(n) for n in names]]
+        D, turned, values = self.quantity_derivatives(k, x, [r for r in range(len(self.quantities)) if np.any(A[r])])
+        return D @ A, turned, values
+
     def member_jacobian(self, k: int, x: np.ndarray) -> np.ndarray:
         """d residual / d x of spectrum `k` in its columns ``self.columns[k]`` (the global parameters and its own)."""
         m, p = self.members[k], self.members[k].problem
         cols = self.columns[k]
-        A = self.maps[k][0][:, [self.names.index(self.free[j]) for j in cols]]
         try:
-            D, turned, values = self.quantity_derivatives(k, x, [r for r in range(len(self.quantities)) if np.any(A[r])])
+            out, turned, values = self._lineshape_columns(k, x, [self.free[j] for j in cols])
         except InputError:
             return np.zeros((p.data.size, len(cols)))
-        out = D @ A
         for c, j in enumerate(cols):
             name = self.free[j]
             exact = nuisance_column(name[len(m.prefix):], values, turned, p) if name.startswith(m.prefix) else None
             if exact is not None:
                 out[:, c] = exact
         return out / p.noise.sigma
+
+    def held_derivative(self, k: int, x: np.ndarray) -> np.ndarray:
+        """d residual / d held parameter of spectrum `k`, one column per name of ``self.held_stderr`` (zero
+        for the other spectra's)."""
+        names = list(self.held_stderr)
+        own = [c for c, n in enumerate(names) if self.owner(n) == self.members[k].index]
+        out = np.zeros((self.members[k].problem.data.size, len(names)))
+        if own:
+            out[:, own] = self._lineshape_columns(k, x, [names[c] for c in own])[0] / self.members[k].problem.noise.sigma
+        return out
 
     def temperature_derivative(self, k: int, x: np.ndarray, step_k: float = 0.01) -> np.ndarray:
         """d residual / d T_k of spectrum `k` (central difference, `step_k` K; T_ref held)."""
