@@ -26,7 +26,7 @@ from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.globalfit import fit_global_from_two_step, fit_series_global
-from dnmr.fitting.globalproblem import Treatment
+from dnmr.fitting.globaltreatment import Treatment
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.temperature_calibration import fit_temperature_calibration
@@ -335,3 +335,65 @@ def test_couplings_start_from_the_two_step_fit_and_are_recovered(tmp_path):
     a = result.activation[0]
     assert abs(a.enthalpy_kj_mol - truth.enthalpy_kj_mol) < 2 * a.enthalpy_stderr
     assert abs(a.entropy_j_mol_k - truth.entropy_j_mol_k) < 2 * a.entropy_stderr
+
+
+# --- issue 18: the global fit's Jacobian from the lineshape's exact derivatives -----------------------------
+
+
+@pytest.mark.parametrize("kind", ["two-state", "ab-pair"])
+def test_exact_quantity_derivatives_match_central_differences(kind, tmp_path):
+    # every lineshape quantity of the global problem (log10 k, shifts in ppm, the linewidth, the coupling, ln K
+    # of van 't Hoff populations, the frequency offset) against central differences of the predicted spectrum
+    # (at each quantity's forward-difference step: truncation and rounding both far below 1e-6 of the
+    # column: common practice)
+    from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+
+    scenario = SCENARIOS[kind]
+    truth = write_series(tmp_path / "data", scenario.replace(temperatures_k=scenario.temperatures_k[::3], points=1024), 11)
+    with open(truth.series_file, "a") as handle:
+        handle.write("\n[fit]\nprofile = false\n")
+    series = load_series(truth.series_file)
+    two = fit_series(series, tmp_path / "two", workers=1, progress=False)
+    members = [GlobalMember.from_two_step(i, o.spectrum.temperature_k, o.fit, series.model)
+               for i, o in enumerate(two.outcomes)]
+    process = series.model.process_names()[0]
+    problem = GlobalProblem(members, series.model, Treatment(), kind == "two-state",
+                            {process: (truth.enthalpy_kj_mol, truth.entropy_j_mol_k)})
+    assert all(problem.exact)
+    families = {q.family for q in problem.quantities}
+    assert families >= {"rate", "shift", "linewidth", "offset", "population" if kind == "two-state" else "coupling"}
+    x = np.array([problem.params[n].value for n in problem.free])
+    g = problem.vector(x)
+    for k, m in enumerate(problem.members):
+        exact, turned, values = problem.quantity_derivatives(k, x, range(len(problem.quantities)))
+        q, turned_here, _ = problem.parts(m, problem.maps[k], g)
+        assert np.allclose(turned, turned_here, rtol=0, atol=1e-10 * np.abs(turned_here).max())
+        rotation = values["amplitude"] * np.exp(1j * m.problem.phase(values))
+        for r, quantity in enumerate(problem.quantities):
+            h = quantity.step
+            ends = []
+            for sign in (1.0, -1.0):
+                moved = q.copy()
+                moved[r] += sign * h
+                ends.append((rotation * problem.shape(m, moved)).real)
+            central = (ends[0] - ends[1]) / (2 * h)
+            # to 1e-6 of the column, or of the spectrum's largest column where it nearly vanishes (a coupling
+            # averaged away in fast exchange: there the differences' rounding, 1e-16 / step, dominates)
+            floor = 1e-6 * np.linalg.norm(exact, axis=0).max()
+            assert np.linalg.norm(exact[:, r] - central) <= max(1e-6 * np.linalg.norm(central), floor), (k, quantity.name)
+
+
+def test_exact_jacobian_gives_the_finite_difference_fit(result, monkeypatch):
+    # the same optimum and errors as the global fit with forward differences (both stop within 0.01 joint
+    # standard errors of the optimum; their Jacobians differ by the differences' truncation, ~1e-5)
+    from dnmr.fitting import globalproblem
+
+    series = load_series(result.series.source)
+    two = fit_series(series, result.outdir / "two-step", resume=True, workers=1, progress=False)
+    monkeypatch.setattr(globalproblem, "USE_EXACT_JACOBIAN", False)
+    differences = fit_global_from_two_step(series, two, result.outdir, None, Treatment(), 1)
+    a, b = result.activation[0], differences.activation[0]
+    assert abs(a.enthalpy_kj_mol - b.enthalpy_kj_mol) < 0.01 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - b.entropy_j_mol_k) < 0.01 * a.entropy_stderr
+    assert a.enthalpy_stderr == pytest.approx(b.enthalpy_stderr, rel=1e-3)
+    assert a.entropy_stderr == pytest.approx(b.entropy_stderr, rel=1e-3)

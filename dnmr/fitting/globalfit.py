@@ -21,6 +21,10 @@ Every spectrum i of the series (sample temperature T_i, K; its region, noise and
   ln(p_j / p_1) = -dH_j / (R T) + dS_j / R relative to the first state, parameters
   ``state_enthalpy_kj_mol_<state>`` and ``state_entropy_j_mol_k_<state>``; otherwise the model's
   populations at T_i.
+  With a reference line (``[fit.reference_line]``; ``reference-line``, the default then) the linewidth of
+  every spectrum is held at that spectrum's reference width (plus ``added_width_hz``), as the two-step fit
+  measured it (fitted alone where it was not determined), and the widths' errors are carried into the
+  covariance as the calibration's are (step 4).
 * per spectrum (prefix ``s<i>_``, i its place in the series file): amplitude, baseline, phase and
   frequency offset, fitted jointly with the rest, as its own fit options allow.  A common move of
   every line is the same as a frequency offset, so the offsets are anchored: they are held to zero mean
@@ -36,8 +40,9 @@ Method
    start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
    is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
    coldest third of the spectra, taken to be in slow exchange, and the shift trends start from lines
-   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); ΔH‡ and
-   ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
+   through what the scans found; the coupling trends from lines through the two-step couplings (fitted in
+   the slow-exchange spectra, held at their trend elsewhere); the linewidth starts flat at the coldest
+   spectrum's (scanned); ΔH‡ and ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
    spectrum with a clear minimum (at least three; else the two-step Eyring line, else a line through its
    best-fit rates).  Every offset starts at 0; each spectrum's amplitude, phase and baseline (started at
    its two-step values) and offset are refitted alone, then all of them jointly with the rest: none is
@@ -45,8 +50,12 @@ Method
 2. All residuals (fit - data) / sigma_i are minimised together (scipy ``least_squares``, trust region).
    sigma_i is each spectrum's measured noise: the weights never depend on how well a spectrum fits.
    Every quantity of a spectrum's lineshape is an affine function of the global parameters, so its
-   Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): one lineshape evaluation
-   per quantity (forward difference), amplitude, phase and baseline exactly; blocks are built in worker
+   Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): d prediction / d quantity
+   from the lineshape's exact derivatives (:mod:`dnmr.engine.derivatives`, all quantities in one solve;
+   the chain rule through k = 10^(log10 k) for the Eyring rate, the spectrometer frequency for shifts in
+   ppm, p_j for ln K of van 't Hoff populations) where they cost less than finite differences
+   (:func:`dnmr.engine.derivatives.derivatives_pay`: models of up to 100 coherences), else one lineshape
+   evaluation per quantity (forward difference); amplitude, phase and baseline exactly; blocks are built in worker
    processes, or on an executor given (each spectrum's block alone: the same numbers wherever).  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
    parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, times the noise correlation factor, widened by the global
@@ -61,7 +70,8 @@ Method
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
-   by the chi-square).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
+   by the chi-square).  Reference widths w held in the fit add (dx/dw) C_w (dx/dw)^T the same way (C_w
+   diagonal: each width's own error; dr/dw is the linewidth column of that spectrum).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
    at the harmonic mean of the temperatures; the calibration's share of each error is reported.
 
 Outputs (OUTDIR, atomic writes): ``global.json``, ``global.txt``, ``global_fits.png`` (spectra and fit),
@@ -90,7 +100,8 @@ from dnmr.activation.eyring import eyring_fit_file
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
-from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
+from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+from dnmr.fitting.globaltreatment import DEFAULT_TREND, Treatment
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, prepare_global_folder, write_global_fit
 from dnmr.fitting.resultsfolder import release_results_folder

@@ -19,20 +19,16 @@ import lmfit
 import numpy as np
 
 from dnmr.engine.blocks import lineshape_terms
+from dnmr.engine.derivatives import coupling_direction, derivatives_pay, lineshape_derivatives
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
-from dnmr.fitting.problem import FitProblem, nuisance_column
+from dnmr.fitting.problem import USE_EXACT_JACOBIAN, FitProblem, nuisance_column
+from dnmr.fitting.globaltreatment import TREND_DEGREES, TREND_SUFFIXES, Treatment
 from dnmr.fitting.seriesfile import REFERENCE_LINE
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 from dnmr.model import Model
 
-TREND_DEGREES = {"constant": 0, "linear": 1, "quadratic": 2}
-TREND_SUFFIXES = ("", "_per_k", "_per_k2")
-SHIFT_TRENDS = ("constant", "linear", "quadratic")
-LINEWIDTH_TRENDS = ("per-spectrum", "constant", "linear", "quadratic", REFERENCE_LINE)
-COUPLING_TRENDS = ("constant", "linear", "quadratic")
-DEFAULT_TREND = "linear"
 NUISANCE = ("amplitude", "phase0_deg", "phase1_deg")  # with the baseline terms: exact Jacobian columns
 ENTHALPY_BOUNDS_KJ_MOL = (0.0, 400.0)
 ENTROPY_BOUNDS_J_MOL_K = (-400.0, 400.0)
@@ -44,47 +40,6 @@ DIFFERENCE_STEP = {"rate": 1e-5, "shift": 1e-4, "linewidth": 1e-4, "coupling": 1
                    "offset": 1e-4}  # forward-difference steps: log10 k, Hz, Hz, Hz, ln K, Hz (shifts converted to ppm)
 FAMILY_WORDS = {"shift": "shifts", "linewidth": "linewidth", "coupling": "couplings", "rate": "rate",
                 "population": "populations"}
-TREND_OPTIONS = {"shift": "--shift-trend", "linewidth": "--linewidth-trend", "coupling": "--coupling-trend"}
-"""The option of ``dnmr fit --global`` (and keyword of :func:`dnmr.fitting.globalfit.fit_series_global`) that
-sets each family's temperature trend."""
-
-
-@dataclass(frozen=True)
-class Treatment:
-    """How the global fit ties the spectra together.
-
-    Parameters
-    ----------
-    shift_trend : {"constant", "linear", "quadratic"}
-        Temperature trend of every chemical shift (ppm).
-    linewidth_trend : {"per-spectrum", "constant", "linear", "quadratic", "reference-line"}
-        Intrinsic linewidth (Hz): a trend in T, fitted in every spectrum, or held in every spectrum at the
-        width of the series' reference line there (plus its ``added_width_hz``), its error carried.
-    coupling_trend : {"constant", "linear", "quadratic"}
-        Temperature trend of every scalar coupling (Hz) the model gives.
-    """
-
-    shift_trend: str = DEFAULT_TREND
-    linewidth_trend: str = DEFAULT_TREND
-    coupling_trend: str = DEFAULT_TREND
-
-    def __post_init__(self):
-        for family, allowed in (("shift", SHIFT_TRENDS), ("linewidth", LINEWIDTH_TRENDS), ("coupling", COUPLING_TRENDS)):
-            value = getattr(self, f"{family}_trend")
-            if value not in allowed:
-                raise InputError(f"{family}_trend must be one of {', '.join(allowed)}, got {value!r}",
-                                 where=TREND_OPTIONS[family])
-
-    def loosened(self, family: str) -> str | None:
-        """The option that lets `family` ("shift", "linewidth", "coupling") follow the data more closely,
-        or None when none is left."""
-        current = getattr(self, f"{family}_trend")
-        order = {"shift": SHIFT_TRENDS, "linewidth": ("constant", "linear", "quadratic", REFERENCE_LINE, "per-spectrum"),
-                 "coupling": COUPLING_TRENDS}[family]
-        later = [t for t in order[order.index(current) + 1:] if t != REFERENCE_LINE]
-        return f"{TREND_OPTIONS[family]} {later[0]}" if later else None
-
-
 @dataclass
 class GlobalMember:
     """One spectrum in the global problem: its two-step fit supplies data, noise, region and fit options.
@@ -199,6 +154,9 @@ class GlobalProblem:
         Rows anchoring the frequency offsets (appended to the residuals).
     maps : list of (ndarray, ndarray)
         Per spectrum, (A, b) of :meth:`affine` at its temperature.
+    exact : list of bool
+        Per spectrum, whether its Jacobian block comes from the lineshape's exact derivatives (models where
+        they cost less than finite differences, :func:`dnmr.engine.derivatives.derivatives_pay`).
     held_stderr : dict of str to float
         Standard errors of held parameters measured elsewhere (a reference line's width, Hz), by name:
         the fit carries them into its covariance (:meth:`held_derivative`).
@@ -230,6 +188,7 @@ class GlobalProblem:
         self.columns = [np.array([j for j, o in enumerate(owners) if o is None or o == m.index]) for m in members]
         self.gauge = self._gauge()
         self.maps = [self.affine(m, m.temperature_k) for m in members]
+        self.exact = [USE_EXACT_JACOBIAN and derivatives_pay(m.base) for m in members]
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
@@ -491,10 +450,36 @@ class GlobalProblem:
         """(fit - data) / sigma of spectrum `k`."""
         return self._residual(self.members[k], self.maps[k], x)
 
+    def _direction(self, r: int, q: np.ndarray, model: Model) -> dict[tuple, float]:
+        """Quantity `r` as a combination of the engine's derivative directions
+        (:func:`dnmr.engine.derivatives.all_directions`): d(model number)/d(quantity) for each, at the
+        quantities `q` of the spectrum whose model is `model` (k ln 10 for log10 k, the spectrometer frequency
+        for a shift in ppm, the state's population for ln K, -1 for the frequency offset)."""
+        quantity = self.quantities[r]
+        name, layout = quantity.name, self.layout
+        if quantity.family == "rate":
+            return {("rate", layout.rate_names.index(name)): 10.0 ** q[r] * math.log(10.0)}
+        if quantity.family == "shift":
+            c, s = next((c, names.index(name)) for c, names in enumerate(layout.shift_names) if name in names)
+            return {("shift", c, s): model.spectrometer.frequency_mhz}
+        if quantity.family == "linewidth":
+            return {("linewidth", c): 1.0 for c, key in enumerate(self._linewidth_keys()) if key == name}
+        if quantity.family == "coupling":
+            c, key = next((c, key) for c, names in enumerate(self.coupling_names()) for key, n in names if n == name)
+            return {coupling_direction(model, c, key): 1.0}
+        if quantity.family == "population":
+            c = next(c for c, s in enumerate(model.states) if name == f"ln_k_{parameter_identifier(s.name)}")
+            return {("population", c): float(model.populations()[c])}
+        return {("frequency",): -1.0}
+
     def quantity_derivatives(self, k: int, x: np.ndarray, which: Sequence[int]) -> tuple[np.ndarray, np.ndarray, dict]:
-        """d prediction / d quantity of spectrum `k` for the quantities `which` (forward differences; zero
-        columns for the others), with exp(i phi) S and the nuisance values at `x`."""
+        """d prediction / d quantity of spectrum `k` for the quantities `which` (zero columns for the others),
+        with exp(i phi) S and the nuisance values at `x`: exact (:func:`dnmr.engine.derivatives.lineshape_derivatives`,
+        one solve for all of them) where that costs less than finite differences (:attr:`exact`), else forward
+        differences."""
         m = self.members[k]
+        if self.exact[k]:
+            return self._exact_derivatives(m, self.maps[k], self.vector(x), which)
         q, turned, values = self.parts(m, self.maps[k], self.vector(x))
         rotation = values["amplitude"] * np.exp(1j * m.problem.phase(values))
         base = values["amplitude"] * turned.real
@@ -507,6 +492,21 @@ class GlobalProblem:
             except InputError:
                 continue
         return out, turned, values
+
+    def _exact_derivatives(self, m: GlobalMember, affine: tuple[np.ndarray, np.ndarray], g: np.ndarray,
+                           which: Sequence[int]) -> tuple[np.ndarray, np.ndarray, dict]:
+        """:meth:`quantity_derivatives` from the lineshape's exact derivatives at all parameter values `g`."""
+        A, b = affine
+        q = A @ g + b
+        values = self.nuisance(m, g)
+        model, offset = self.spectrum_model(m, q)
+        which = list(which)
+        found = lineshape_derivatives(model, m.problem.hz - offset, [self._direction(r, q, model) for r in which])
+        rotation = np.exp(1j * m.problem.phase(values))
+        out = np.zeros((m.problem.data.size, len(self.quantities)))
+        if which:
+            out[:, which] = (values["amplitude"] * rotation * found.slopes).real.T
+        return out, rotation * found.spectrum, values
 
     def _lineshape_columns(self, k: int, x: np.ndarray, names: Sequence[str]) -> tuple[np.ndarray, np.ndarray, dict]:
         """d prediction / d parameter of spectrum `k` through its lineshape quantities, for the parameters

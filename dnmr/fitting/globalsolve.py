@@ -13,7 +13,8 @@ import numpy as np
 from scipy import optimize
 
 from dnmr.errors import InputError
-from dnmr.fitting.globalproblem import TREND_DEGREES, TREND_SUFFIXES, GlobalMember, GlobalProblem
+from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+from dnmr.fitting.globaltreatment import TREND_DEGREES, TREND_SUFFIXES
 from dnmr.fitting.workers import SharedPayload, process_pool
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
