@@ -175,7 +175,7 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str, coupling_trend: str,
+        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str | None, coupling_trend: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_method: str, posterior_draws: int,
         posterior_steps: int, posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.

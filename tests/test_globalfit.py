@@ -273,17 +273,26 @@ def test_calibration_error_reported(calibrated, result):
 # --- issue 12 item 4: the reference line and the couplings in the global fit ---------------------------------
 
 
-def test_reference_line_gives_each_spectrum_its_linewidth(tmp_path):
-    # truth: the N-methyl scenario's ΔH‡, ΔS‡ (invented) and its intrinsic width, linear in T (broader when
-    # cold), shared by a non-exchanging singlet at 2.5 ppm; spectra from McConnell's closed form (J. Chem.
-    # Phys. 28, 430 (1958)) and a Lorentzian (Bloch equations) for the singlet (tests/realistic_series.py)
+@pytest.fixture(scope="module")
+def referenced(tmp_path_factory):
+    """The N-methyl scenario (tests/realistic_series.py) with a non-exchanging singlet at 2.5 ppm named as the
+    series' reference line, and its global fit with the defaults."""
     scenario = SCENARIOS["mutual-pair"].replace(temperatures_k=SCENARIOS["mutual-pair"].temperatures_k[::2],
                                                 points=4096, reference_line_ppm=2.5)
-    truth = write_series(tmp_path / "data", scenario, seed=91)
+    folder = tmp_path_factory.mktemp("reference")
+    truth = write_series(folder / "data", scenario, seed=91)
     truth.series_file.write_text(truth.series_file.read_text().replace(
         'model = "model.toml"\n', 'model = "model.toml"\n[fit]\nprofile = false\n[fit.reference_line]\nppm = 2.5\n'
                                   "window_ppm = [2.4, 2.6]\n"))
-    result = fit_series_global(truth.series_file, tmp_path / "g", workers=1, progress=False)
+    return truth, fit_series_global(truth.series_file, folder / "g", workers=1, progress=False)
+
+
+def test_reference_line_gives_each_spectrum_its_linewidth(referenced):
+    # truth: the N-methyl scenario's ΔH‡, ΔS‡ (invented) and its intrinsic width, linear in T (broader when
+    # cold), shared by a non-exchanging singlet at 2.5 ppm; spectra from McConnell's closed form (J. Chem.
+    # Phys. 28, 430 (1958)) and a Lorentzian (Bloch equations) for the singlet (tests/realistic_series.py)
+    truth, result = referenced
+    scenario = truth.scenario
     data = json.loads((result.outdir / "global.json").read_text())
     assert data["options"]["linewidth_trend"] == "reference-line" and data["options"]["reference_line"]["ppm"] == 2.5
     assert "reference line at 2.5 ppm" in (result.outdir / "global.txt").read_text()
@@ -306,6 +315,33 @@ def test_reference_line_gives_each_spectrum_its_linewidth(tmp_path):
     for r, k in past:
         assert r["two_step_status"] == "determined" and 0 < r["rate_stderr"] < 0.2 * r["rate_per_s"]
         assert abs(r["rate_per_s"] - k) < 3 * r["rate_stderr"]
+
+
+def test_reference_width_errors_match_refits_at_moved_widths(referenced):
+    # Brute force against the propagated covariance (first-order error propagation, common practice): refit
+    # with each reference width moved by its standard error; sum_i d_i d_i^T, d_i the move of (ΔH‡, ΔS‡),
+    # is the widths' share of the covariance for a response linear over one standard error
+    import copy
+
+    truth, result = referenced
+    series = load_series(truth.series_file)
+    two = fit_series(series, result.outdir / "two-step", resume=True, workers=1, progress=False)
+    a = result.activation[0]
+    brute = np.zeros((2, 2))
+    for i, o in enumerate(two.outcomes):
+        ((name, setting),) = o.reference["setting"].items()
+        moved = copy.copy(o)
+        moved.reference = copy.deepcopy(o.reference)
+        moved.reference["setting"][name]["start"] = setting["start"] + setting["stderr"]
+        refit = fit_global_from_two_step(series, dataclasses.replace(two, outcomes=[*two.outcomes[:i], moved, *two.outcomes[i + 1:]]),
+                                         result.outdir, None, Treatment(linewidth_trend="reference-line"), 1).activation[0]
+        d = np.array([refit.enthalpy_kj_mol - a.enthalpy_kj_mol, refit.entropy_j_mol_k - a.entropy_j_mol_k])
+        brute += np.outer(d, d)
+    shares = re.search(r"ΔH‡ ± ([0-9.]+) kJ/mol, ΔS‡ ± ([0-9.]+) J", " ".join(result.notes))
+    assert float(shares.group(1)) == pytest.approx(math.sqrt(brute[0, 0]), rel=0.1)
+    assert float(shares.group(2)) == pytest.approx(math.sqrt(brute[1, 1]), rel=0.1)
+    # and the share is part of the reported error, not all of it
+    assert 0 < math.sqrt(brute[0, 0]) < a.enthalpy_stderr
 
 
 def test_reference_line_trend_needs_a_reference_line(series_file, tmp_path):
