@@ -14,7 +14,8 @@
     with one worker and with one per core: the parallel speed-up (goal >= 1.7 on 2 cores);
 (c) the global fit of that series (ΔH‡, ΔS‡ and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
-    (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
+    (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process); then
+    with one worker and forward differences for its Jacobian (the route before the exact derivatives).
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure and raises every time (CPU times less so; the ratios are of one run).
 
@@ -34,7 +35,7 @@ from pathlib import Path
 import numpy as np
 
 import dnmr
-from dnmr.fitting import problem
+from dnmr.fitting import globalproblem, problem
 from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.readers import read_spectrum
@@ -134,6 +135,24 @@ def demo_series(folder: Path) -> Path:
     return path
 
 
+def global_jacobians(series, two_step, outdir: Path, calibration, exact_fit, exact_s: float) -> None:
+    """(c) again with one worker and forward differences for the Jacobian blocks (the route before the exact
+    lineshape derivatives): time against `exact_s` (s), and how far apart the two fits' ΔH‡ and ΔS‡ are."""
+    globalproblem.USE_EXACT_JACOBIAN = False
+    try:
+        t0 = time.perf_counter()
+        fit = fit_global_from_two_step(series, two_step, outdir, calibration,
+                                       Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), 1)
+        seconds = time.perf_counter() - t0
+    finally:
+        globalproblem.USE_EXACT_JACOBIAN = True
+    a, b = exact_fit.activation[0], fit.activation[0]
+    print(f"  forward differences, 1 worker: {seconds:6.1f} s  {fit.function_evaluations} residual and "
+          f"{fit.jacobian_evaluations} Jacobian evaluations; exact derivatives {exact_s / seconds:.2f} of that time; "
+          f"ΔH‡ apart by {abs(a.enthalpy_kj_mol - b.enthalpy_kj_mol) / a.enthalpy_stderr:.1e}, ΔS‡ by "
+          f"{abs(a.entropy_j_mol_k - b.entropy_j_mol_k) / a.entropy_stderr:.1e} standard errors")
+
+
 def main() -> None:
     with single_threaded_blas():
         single_fits()
@@ -157,10 +176,12 @@ def main() -> None:
         print("(c) global fit of the demo series from (b), shifts linear in T, demo calibration")
         calibration = read_temperature_calibration(DEMO / "calibration.csv")
         loaded = load_series(series)
+        global_fits = {}
         for workers in (1, cores):
             t0 = time.perf_counter()
-            fit = fit_global_from_two_step(loaded, result, folder / f"out{cores}", calibration,
-                                           Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
+            fit = global_fits[workers] = fit_global_from_two_step(
+                loaded, result, folder / f"out{cores}", calibration,
+                Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
             times[workers] = time.perf_counter() - t0
             a = fit.activation[0]
             print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "
@@ -168,6 +189,7 @@ def main() -> None:
                   f"{sum(not p['fixed'] for p in fit.parameters.values())} free parameters; "
                   f"dH = {a.enthalpy_kj_mol:.3f} kJ/mol, dS = {a.entropy_j_mol_k:.3f} J/(mol K)")
         print(f"  speed-up {times[1] / times[cores]:.2f}")
+        global_jacobians(loaded, result, folder / f"out{cores}", calibration, global_fits[1], times[1])
     finally:
         shutil.rmtree(folder)
 

@@ -147,8 +147,10 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
               help="Also fit all spectra at once with ΔH‡ and ΔS‡ as the parameters (two-step fit in OUTDIR/two-step).")
 @click.option("--shift-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear", show_default=True,
               help="With --global: temperature trend of the chemical shifts.")
-@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum"]), default="linear",
-              show_default=True, help="With --global: temperature trend of the intrinsic linewidth, or one per spectrum.")
+@click.option("--linewidth-trend", type=click.Choice(["linear", "constant", "quadratic", "per-spectrum", "reference-line"]),
+              help="With --global: temperature trend of the intrinsic linewidth, one per spectrum, or the width of the "
+                   "series' reference line in every spectrum (default: reference-line when the series file has a "
+                   "[fit.reference_line], else linear).")
 @click.option("--coupling-trend", type=click.Choice(["linear", "constant", "quadratic"]), default="linear",
               show_default=True, help="With --global: temperature trend of the scalar couplings the model gives.")
 @click.option("--calibration", "calibration_file", type=click.Path(dir_okay=False, path_type=Path),
@@ -173,7 +175,7 @@ def stack(model_file: Path, rates_per_s: str | None, temperatures_k: str | None,
 @FIGURE_FORMAT_OPTION
 @click.pass_context
 def fit(ctx: click.Context, series_file: Path, outdir: Path, overwrite: bool, resume: bool, serial: bool,
-        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str, coupling_trend: str,
+        workers: int | None, quiet: bool, global_fit: bool, shift_trend: str, linewidth_trend: str | None, coupling_trend: str,
         calibration_file: Path | None, no_report: bool, posterior: bool, posterior_method: str, posterior_draws: int,
         posterior_steps: int, posterior_seed: int, scheduler: str | None, figure_format: str) -> None:
     """Fit every spectrum of the VT series SERIES_FILE: rates (or bounds) with errors, into OUTDIR.

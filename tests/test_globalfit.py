@@ -26,7 +26,7 @@ from reference_eyring import eyring_rate
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.globalfit import fit_global_from_two_step, fit_series_global
-from dnmr.fitting.globalproblem import Treatment
+from dnmr.fitting.globaltreatment import Treatment
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
 from dnmr.activation.temperature_calibration import fit_temperature_calibration
@@ -268,3 +268,168 @@ def test_calibration_error_reported(calibrated, result):
     # without a calibration nothing is claimed
     plain = json.loads((result.outdir / "global.json").read_text())
     assert plain["calibration_error_included"] is False and "calibration_share_stderr" not in plain
+
+
+# --- issue 12 item 4: the reference line and the couplings in the global fit ---------------------------------
+
+
+@pytest.fixture(scope="module")
+def referenced(tmp_path_factory):
+    """The N-methyl scenario (tests/realistic_series.py) with a non-exchanging singlet at 2.5 ppm named as the
+    series' reference line, and its global fit with the defaults."""
+    scenario = SCENARIOS["mutual-pair"].replace(temperatures_k=SCENARIOS["mutual-pair"].temperatures_k[::2],
+                                                points=4096, reference_line_ppm=2.5)
+    folder = tmp_path_factory.mktemp("reference")
+    truth = write_series(folder / "data", scenario, seed=91)
+    truth.series_file.write_text(truth.series_file.read_text().replace(
+        'model = "model.toml"\n', 'model = "model.toml"\n[fit]\nprofile = false\n[fit.reference_line]\nppm = 2.5\n'
+                                  "window_ppm = [2.4, 2.6]\n"))
+    return truth, fit_series_global(truth.series_file, folder / "g", workers=1, progress=False)
+
+
+def test_reference_line_gives_each_spectrum_its_linewidth(referenced):
+    # truth: the N-methyl scenario's ΔH‡, ΔS‡ (invented) and its intrinsic width, linear in T (broader when
+    # cold), shared by a non-exchanging singlet at 2.5 ppm; spectra from McConnell's closed form (J. Chem.
+    # Phys. 28, 430 (1958)) and a Lorentzian (Bloch equations) for the singlet (tests/realistic_series.py)
+    truth, result = referenced
+    scenario = truth.scenario
+    data = json.loads((result.outdir / "global.json").read_text())
+    assert data["options"]["linewidth_trend"] == "reference-line" and data["options"]["reference_line"]["ppm"] == 2.5
+    assert "reference line at 2.5 ppm" in (result.outdir / "global.txt").read_text()
+    # every spectrum's linewidth is held at its reference width, which follows the true width
+    held = {n: p for n, p in result.parameters.items() if n.startswith("s") and "linewidth_hz" in n}
+    assert len(held) == len(truth.temperatures_k) and all(p["fixed"] and p["stderr"] > 0 for p in held.values())
+    for t, p in zip(result.temperatures_k, held.values()):
+        assert abs(p["estimate"] - scenario.linewidth_at(t)) < 4 * p["stderr"]
+    # within 2 standard errors of the truth, the widths' errors among them
+    a = result.activation[0]
+    assert abs(a.enthalpy_kj_mol - truth.enthalpy_kj_mol) < 2 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - truth.entropy_j_mol_k) < 2 * a.entropy_stderr
+    assert any("reference widths' errors alone" in n for n in result.notes), result.notes
+    assert abs(result.reduced_chi_square - 1.0) < 0.1, result.notes
+    # rates past coalescence (Gutowsky & Holm: k_c = pi dnu / sqrt 2, about 133 s^-1 for 60 Hz) are values,
+    # in the global fit and in its two-step stage with the same reference widths
+    dnu = abs(np.subtract(*scenario.shifts_ppm)) * scenario.frequency_mhz
+    past = [(r, k) for r, k in zip(data["processes"][0]["rates"], truth.rates_per_s) if k > math.pi * dnu / math.sqrt(2.0)]
+    assert len(past) >= 2
+    for r, k in past:
+        assert r["two_step_status"] == "determined" and 0 < r["rate_stderr"] < 0.2 * r["rate_per_s"]
+        assert abs(r["rate_per_s"] - k) < 3 * r["rate_stderr"]
+
+
+def test_reference_width_errors_match_refits_at_moved_widths(referenced):
+    # Brute force against the propagated covariance (first-order error propagation, common practice): refit
+    # with each reference width moved by its standard error; sum_i d_i d_i^T, d_i the move of (ΔH‡, ΔS‡),
+    # is the widths' share of the covariance for a response linear over one standard error
+    import copy
+
+    truth, result = referenced
+    series = load_series(truth.series_file)
+    two = fit_series(series, result.outdir / "two-step", resume=True, workers=1, progress=False)
+    a = result.activation[0]
+    brute = np.zeros((2, 2))
+    for i, o in enumerate(two.outcomes):
+        ((name, setting),) = o.reference["setting"].items()
+        moved = copy.copy(o)
+        moved.reference = copy.deepcopy(o.reference)
+        moved.reference["setting"][name]["start"] = setting["start"] + setting["stderr"]
+        refit = fit_global_from_two_step(series, dataclasses.replace(two, outcomes=[*two.outcomes[:i], moved, *two.outcomes[i + 1:]]),
+                                         result.outdir, None, Treatment(linewidth_trend="reference-line"), 1).activation[0]
+        d = np.array([refit.enthalpy_kj_mol - a.enthalpy_kj_mol, refit.entropy_j_mol_k - a.entropy_j_mol_k])
+        brute += np.outer(d, d)
+    shares = re.search(r"ΔH‡ ± ([0-9.]+) kJ/mol, ΔS‡ ± ([0-9.]+) J", " ".join(result.notes))
+    assert float(shares.group(1)) == pytest.approx(math.sqrt(brute[0, 0]), rel=0.1)
+    assert float(shares.group(2)) == pytest.approx(math.sqrt(brute[1, 1]), rel=0.1)
+    # and the share is part of the reported error, not all of it
+    assert 0 < math.sqrt(brute[0, 0]) < a.enthalpy_stderr
+
+
+def test_reference_line_trend_needs_a_reference_line(series_file, tmp_path):
+    with pytest.raises(InputError, match=r"\[fit.reference_line\]"):
+        fit_series_global(series_file, tmp_path / "g", linewidth_trend="reference-line", workers=1, progress=False)
+
+
+def test_couplings_start_from_the_two_step_fit_and_are_recovered(tmp_path):
+    # an AB pair on ring inversion whose model-file J is 0.5 Hz off (tests/realistic_series.py: QuTiP's
+    # Lindblad Liouvillian as the reference lineshape, J = -12.5 Hz + 0.002 Hz/K (T - 298.15 K), invented)
+    from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+
+    truth = _written(tmp_path / "data", "ab-pair", 901)
+    scenario = truth.scenario
+    series = load_series(truth.series_file)
+    two = fit_series(series, tmp_path / "two", workers=1, progress=False)
+    members = [GlobalMember.from_two_step(i, o.spectrum.temperature_k, o.fit, series.model)
+               for i, o in enumerate(two.outcomes)]
+    problem = GlobalProblem(members, series.model, Treatment(), False, {"swap": (55.0, -8.0)})
+    (name,) = [n for n in problem.params if n.startswith("coupling_hz_") and not n.endswith(("_per_k", "_per_k2"))]
+    t_ref, model_j = problem.reference_k, series.model.states[0].couplings_hz["Ha-Hb"]
+    assert abs(model_j - scenario.coupling_at(t_ref)) > 0.45  # the model file's guess
+    assert abs(problem.params[name].value - scenario.coupling_at(t_ref)) < 0.15  # the start: the two-step fit's
+    result = fit_series_global(series, tmp_path / "g", workers=1, progress=False)
+    j = result.parameters[name]
+    assert abs(j["estimate"] - scenario.coupling_at(t_ref)) < 3 * j["stderr"]
+    a = result.activation[0]
+    assert abs(a.enthalpy_kj_mol - truth.enthalpy_kj_mol) < 2 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - truth.entropy_j_mol_k) < 2 * a.entropy_stderr
+
+
+# --- issue 18: the global fit's Jacobian from the lineshape's exact derivatives -----------------------------
+
+
+@pytest.mark.parametrize("kind", ["two-state", "ab-pair"])
+def test_exact_quantity_derivatives_match_central_differences(kind, tmp_path):
+    # every lineshape quantity of the global problem (log10 k, shifts in ppm, the linewidth, the coupling, ln K
+    # of van 't Hoff populations, the frequency offset) against central differences of the predicted spectrum
+    # (at each quantity's forward-difference step: truncation and rounding both far below 1e-6 of the
+    # column: common practice)
+    from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+
+    scenario = SCENARIOS[kind]
+    truth = write_series(tmp_path / "data", scenario.replace(temperatures_k=scenario.temperatures_k[::3], points=1024), 11)
+    with open(truth.series_file, "a") as handle:
+        handle.write("\n[fit]\nprofile = false\n")
+    series = load_series(truth.series_file)
+    two = fit_series(series, tmp_path / "two", workers=1, progress=False)
+    members = [GlobalMember.from_two_step(i, o.spectrum.temperature_k, o.fit, series.model)
+               for i, o in enumerate(two.outcomes)]
+    process = series.model.process_names()[0]
+    problem = GlobalProblem(members, series.model, Treatment(), kind == "two-state",
+                            {process: (truth.enthalpy_kj_mol, truth.entropy_j_mol_k)})
+    assert all(problem.exact)
+    families = {q.family for q in problem.quantities}
+    assert families >= {"rate", "shift", "linewidth", "offset", "population" if kind == "two-state" else "coupling"}
+    x = np.array([problem.params[n].value for n in problem.free])
+    g = problem.vector(x)
+    for k, m in enumerate(problem.members):
+        exact, turned, values = problem.quantity_derivatives(k, x, range(len(problem.quantities)))
+        q, turned_here, _ = problem.parts(m, problem.maps[k], g)
+        assert np.allclose(turned, turned_here, rtol=0, atol=1e-10 * np.abs(turned_here).max())
+        rotation = values["amplitude"] * np.exp(1j * m.problem.phase(values))
+        for r, quantity in enumerate(problem.quantities):
+            h = quantity.step
+            ends = []
+            for sign in (1.0, -1.0):
+                moved = q.copy()
+                moved[r] += sign * h
+                ends.append((rotation * problem.shape(m, moved)).real)
+            central = (ends[0] - ends[1]) / (2 * h)
+            # to 1e-6 of the column, or of the spectrum's largest column where it nearly vanishes (a coupling
+            # averaged away in fast exchange: there the differences' rounding, 1e-16 / step, dominates)
+            floor = 1e-6 * np.linalg.norm(exact, axis=0).max()
+            assert np.linalg.norm(exact[:, r] - central) <= max(1e-6 * np.linalg.norm(central), floor), (k, quantity.name)
+
+
+def test_exact_jacobian_gives_the_finite_difference_fit(result, monkeypatch):
+    # the same optimum and errors as the global fit with forward differences (both stop within 0.01 joint
+    # standard errors of the optimum; their Jacobians differ by the differences' truncation, ~1e-5)
+    from dnmr.fitting import globalproblem
+
+    series = load_series(result.series.source)
+    two = fit_series(series, result.outdir / "two-step", resume=True, workers=1, progress=False)
+    monkeypatch.setattr(globalproblem, "USE_EXACT_JACOBIAN", False)
+    differences = fit_global_from_two_step(series, two, result.outdir, None, Treatment(), 1)
+    a, b = result.activation[0], differences.activation[0]
+    assert abs(a.enthalpy_kj_mol - b.enthalpy_kj_mol) < 0.01 * a.enthalpy_stderr
+    assert abs(a.entropy_j_mol_k - b.entropy_j_mol_k) < 0.01 * a.entropy_stderr
+    assert a.enthalpy_stderr == pytest.approx(b.enthalpy_stderr, rel=1e-3)
+    assert a.entropy_stderr == pytest.approx(b.entropy_stderr, rel=1e-3)

@@ -21,6 +21,10 @@ Every spectrum i of the series (sample temperature T_i, K; its region, noise and
   ln(p_j / p_1) = -dH_j / (R T) + dS_j / R relative to the first state, parameters
   ``state_enthalpy_kj_mol_<state>`` and ``state_entropy_j_mol_k_<state>``; otherwise the model's
   populations at T_i.
+  With a reference line (``[fit.reference_line]``; ``reference-line``, the default then) the linewidth of
+  every spectrum is held at that spectrum's reference width (plus ``added_width_hz``), as the two-step fit
+  measured it (fitted alone where it was not determined), and the widths' errors are carried into the
+  covariance as the calibration's are (step 4).
 * per spectrum (prefix ``s<i>_``, i its place in the series file): amplitude, baseline, phase and
   frequency offset, fitted jointly with the rest, as its own fit options allow.  A common move of
   every line is the same as a frequency offset, so the offsets are anchored: they are held to zero mean
@@ -36,8 +40,9 @@ Method
    start trusts neither the model file's first guesses nor what the two-step fits absorbed: every shift
    is scanned (+-15 Hz, two passes, amplitude, phase and baseline solved linearly at each point) in the
    coldest third of the spectra, taken to be in slow exchange, and the shift trends start from lines
-   through what the scans found; the linewidth starts flat at the coldest spectrum's (scanned); ΔH‡ and
-   ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
+   through what the scans found; the coupling trends from lines through the two-step couplings (fitted in
+   the slow-exchange spectra, held at their trend elsewhere); the linewidth starts flat at the coldest
+   spectrum's (scanned); ΔH‡ and ΔS‡ of the first process start from an Eyring line through the rates a scan over log k finds in each
    spectrum with a clear minimum (at least three; else the two-step Eyring line, else a line through its
    best-fit rates).  Every offset starts at 0; each spectrum's amplitude, phase and baseline (started at
    its two-step values) and offset are refitted alone, then all of them jointly with the rest: none is
@@ -45,8 +50,12 @@ Method
 2. All residuals (fit - data) / sigma_i are minimised together (scipy ``least_squares``, trust region).
    sigma_i is each spectrum's measured noise: the weights never depend on how well a spectrum fits.
    Every quantity of a spectrum's lineshape is an affine function of the global parameters, so its
-   Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): one lineshape evaluation
-   per quantity (forward difference), amplitude, phase and baseline exactly; blocks are built in worker
+   Jacobian block is (d prediction / d quantity) x (d quantity / d parameters): d prediction / d quantity
+   from the lineshape's exact derivatives (:mod:`dnmr.engine.derivatives`, all quantities in one solve;
+   the chain rule through k = 10^(log10 k) for the Eyring rate, the spectrometer frequency for shifts in
+   ppm, p_j for ln K of van 't Hoff populations) where they cost less than finite differences
+   (:func:`dnmr.engine.derivatives.derivatives_pay`: models of up to 100 coherences), else one lineshape
+   evaluation per quantity (forward difference); amplitude, phase and baseline exactly; blocks are built in worker
    processes, or on an executor given (each spectrum's block alone: the same numbers wherever).  The fit stops once a step lowers chi-square by less than 0.01^2, i.e. moves the
    parameters by less than about 0.01 joint standard errors.
 3. Covariance (J^T J)^-1 at the optimum, times the noise correlation factor, widened by the global
@@ -61,7 +70,8 @@ Method
    as the two-step Eyring analysis uses it).  The optimum moves with T; differentiating the normal
    equations J^T r = 0 gives dx/dT = -(J^T J)^-1 J^T dr/dT (dr/dT by central differences, each T_i moving
    only spectrum i's residuals, T_ref held), and the covariance gains (dx/dT) C_T (dx/dT)^T (not widened
-   by the chi-square).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
+   by the chi-square).  Reference widths w held in the fit add (dx/dw) C_w (dx/dw)^T the same way (C_w
+   diagonal: each width's own error; dr/dw is the linewidth column of that spectrum).  ΔG‡(T) = ΔH‡ - T ΔS‡ with its error from the joint covariance, at 298.15 K and
    at the harmonic mean of the temperatures; the calibration's share of each error is reported.
 
 Outputs (OUTDIR, atomic writes): ``global.json``, ``global.txt``, ``global_fits.png`` (spectra and fit),
@@ -76,6 +86,7 @@ Modules: :mod:`dnmr.fitting.globalproblem` (parameters, lineshape quantities, re
 from __future__ import annotations
 
 import concurrent.futures as futures
+import dataclasses
 import math
 import os
 from dataclasses import dataclass
@@ -89,13 +100,14 @@ from dnmr.activation.eyring import eyring_fit_file
 from dnmr.activation.eyring_result import EyringResult
 from dnmr.activation.parameters import ActivationEstimate
 from dnmr.errors import InputError
-from dnmr.fitting.globalproblem import DEFAULT_TREND, GlobalMember, GlobalProblem, Treatment
+from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+from dnmr.fitting.globaltreatment import DEFAULT_TREND, Treatment
 from dnmr.fitting.globalquality import SpectrumQuality, misfit_notes, spectrum_qualities
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER, GlobalFit, prepare_global_folder, write_global_fit
 from dnmr.fitting.resultsfolder import release_results_folder
 from dnmr.fitting.globalsolve import GlobalEvaluator, solve_global
 from dnmr.fitting.series import SeriesFit, fit_series
-from dnmr.fitting.seriesfile import Series, load_series
+from dnmr.fitting.seriesfile import REFERENCE_LINE, Series, load_series
 from dnmr.fitting.problem import NoiseEstimate, error_scale
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.progress import PLAIN_INTERVAL_S, ProgressReport
@@ -116,21 +128,23 @@ def _true_temperatures(series: Series, calibration: "TemperatureCalibration | No
     return true.temperature_k, true.covariance
 
 
-def _calibration_covariance(evaluator: GlobalEvaluator, x: np.ndarray, jac: np.ndarray, inverse: np.ndarray,
-                            temperature_covariance: np.ndarray) -> np.ndarray:
-    """Covariance of the free parameters that the temperatures' covariance (K^2) brings in.
+def _propagated_covariance(jac: np.ndarray, inverse: np.ndarray, derivative: np.ndarray,
+                           covariance: np.ndarray) -> np.ndarray:
+    """Covariance of the free parameters that quantities held in the fit bring in: the sample temperatures
+    (K) or reference widths (Hz) with `covariance` and d residuals / d them `derivative`.
 
-    The optimum x(T) moves with the sample temperatures: differentiating J^T r = 0 gives
-    dx/dT = -(J^T J)^-1 J^T dr/dT (first order, as the covariance itself), so the temperatures add
-    (dx/dT) C_T (dx/dT)^T. Not widened by the chi-square: it is the calibration's own uncertainty."""
-    sensitivity = -inverse @ (jac.T @ evaluator.temperature_jacobian(x))
-    return sensitivity @ temperature_covariance @ sensitivity.T
+    The optimum x(y) moves with the held quantities y: differentiating J^T r = 0 gives
+    dx/dy = -(J^T J)^-1 J^T dr/dy (first order, as the covariance itself), so they add
+    (dx/dy) C_y (dx/dy)^T. Not widened by the chi-square: it is their own uncertainty."""
+    sensitivity = -inverse @ (jac.T @ derivative)
+    return sensitivity @ covariance @ sensitivity.T
 
 
 def _stderr_table(problem: GlobalProblem, x: np.ndarray, covariance: np.ndarray | None) -> dict:
-    """Every parameter at `x`: estimate, standard error (NaN where not given) and whether it is held."""
+    """Every parameter at `x`: estimate, standard error (NaN where not given; a held reference width's own)
+    and whether it is held."""
     g = problem.values(x)
-    errors = {} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance))))
+    errors = {**problem.held_stderr, **({} if covariance is None else dict(zip(problem.free, np.sqrt(np.diag(covariance)))))}
     return {n: {"estimate": v, "stderr": float(errors.get(n, math.nan)), "fixed": n not in problem.free} for n, v in g.items()}
 
 
@@ -168,6 +182,41 @@ def _eyring_start(two: SeriesFit, two_step: list[EyringResult], names: list[str]
     return start
 
 
+def _default_linewidth_trend(series: Series) -> str:
+    """The linewidth treatment of a global fit of `series` when none is given: its reference line when the
+    series takes the linewidth from one, else the default trend."""
+    return REFERENCE_LINE if series.treatments.get("linewidth") == REFERENCE_LINE else DEFAULT_TREND
+
+
+def _check_treatment(series: Series, treatment: Treatment) -> None:
+    """Refuse a reference-line linewidth for a series whose two-step fit measures no reference line."""
+    if treatment.linewidth_trend == REFERENCE_LINE and series.treatments.get("linewidth") != REFERENCE_LINE:
+        raise InputError('--linewidth-trend reference-line needs a [fit.reference_line] table (ppm of a signal in no '
+                         'exchange) in the series file, with linewidth = "reference-line" or no linewidth key',
+                         source=str(series.source), where="--linewidth-trend")
+
+
+def _reference_notes(problem: GlobalProblem, solved: "_JointSolution", covariance: np.ndarray | None,
+                     names: list[str]) -> list[str]:
+    """How the reference line gave the linewidth: where it was held, where fitted, and its share of the errors."""
+    if problem.treatment.linewidth_trend != REFERENCE_LINE:
+        return []
+    held = [m for m in problem.members if any(problem.owner(n) == m.index for n in problem.held_stderr)]
+    notes = [f"linewidth: held in {len(held)} of {len(problem.members)} spectra at the width of the reference line "
+             "there (plus its added_width_hz), its error carried into ΔH‡ and ΔS‡"]
+    free = [m.fit.source for m in problem.members if m not in held]
+    if free:
+        notes.append("the reference line gave no width in " + ", ".join(Path(f).name for f in free)
+                     + ", so the linewidth is fitted in each of them alone")
+    if solved.from_references is not None and covariance is not None:
+        for ident, name in zip(problem.processes, names):
+            idx = [problem.free.index(f"enthalpy_kj_mol_{ident}"), problem.free.index(f"entropy_j_mol_k_{ident}")]
+            share = np.sqrt(np.diag(solved.from_references)[idx])
+            notes.append(f"process {name}: the reference widths' errors alone give ΔH‡ ± {share[0]:.2g} kJ/mol, "
+                         f"ΔS‡ ± {share[1]:.2g} J/(mol K) (included in the errors)")
+    return notes
+
+
 def _van_t_hoff(series: Series, temperatures_k: np.ndarray) -> bool:
     """Populations follow van 't Hoff when the series fits them or the model's states differ in population
     (at the mean temperature), unless the series fixes one of them."""
@@ -188,7 +237,7 @@ def fit_series_global(
     overwrite: bool = False,
     calibration: "TemperatureCalibration | None" = None,
     shift_trend: str = DEFAULT_TREND,
-    linewidth_trend: str = DEFAULT_TREND,
+    linewidth_trend: str | None = None,
     coupling_trend: str = DEFAULT_TREND,
     workers: int | None = None,
     progress: bool | None = None,
@@ -211,8 +260,11 @@ def fit_series_global(
         and carries the calibration's uncertainty into its errors (so does the two-step Eyring comparison).
     shift_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the chemical shifts (ppm).
-    linewidth_trend : {"linear", "constant", "quadratic", "per-spectrum"}
-        Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
+    linewidth_trend : {"linear", "constant", "quadratic", "per-spectrum", "reference-line"}, optional
+        Intrinsic linewidth (Hz): a trend in T, fitted in every spectrum, or held in every spectrum at the
+        width of the series' reference line there (its error carried into ΔH‡ and ΔS‡).  Default:
+        "reference-line" when the series takes the linewidth from a reference line (``[fit.reference_line]``),
+        else "linear".
     coupling_trend : {"linear", "constant", "quadratic"}
         Temperature trend of the scalar couplings (Hz) the model gives.
     workers : int, optional
@@ -230,8 +282,9 @@ def fit_series_global(
     -------
     GlobalFit
     """
-    treatment = Treatment(shift_trend, linewidth_trend, coupling_trend)
     series = series if isinstance(series, Series) else load_series(series)
+    treatment = Treatment(shift_trend, linewidth_trend or _default_linewidth_trend(series), coupling_trend)
+    _check_treatment(series, treatment)
     outdir = Path(outdir)
     lock = prepare_global_folder(outdir, series, overwrite)
     try:
@@ -281,6 +334,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     InputError
         Fewer than three spectra fitted in the two-step fit, or ΔH‡ and ΔS‡ of a process not both free.
     """
+    _check_treatment(series, treatment)
     used = [i for i, o in enumerate(two_step.outcomes) if o.fitted]
     if len(used) < 3:
         raise InputError(f"only {len(used)} spectra could be fitted; a global fit needs at least 3", where="--global")
@@ -290,6 +344,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
     problem = _global_problem(series, two_step, used, temps, treatment, eyring)
     solved = _solve_joint(problem, workers, progress, temperature_covariance, setpoints, executor)
     scale, covariance, notes = _joint_errors(problem, solved)
+    notes += _reference_notes(problem, solved, covariance, series.model.process_names())
     x = solved.result.x
     activation = _activation(problem, x, covariance, solved.from_calibration, series.model.process_names())
     if solved.from_calibration is not None:
@@ -307,7 +362,7 @@ def fit_global_from_two_step(series: Series, two_step: SeriesFit, outdir: Path,
         parameters=_stderr_table(problem, x, covariance), chi_square=solved.chi_square,
         reduced_chi_square=solved.chi_square / max(solved.degrees_of_freedom, 1),
         degrees_of_freedom=solved.degrees_of_freedom, error_scale=float(scale),
-        options=_options(problem, calibration, solved.from_calibration),
+        options=_options(problem, series, calibration, solved.from_calibration),
         spectra=solved.qualities,
         notes=list(two_step.notes) + notes + [f"{o.spectrum.where} left out: its two-step fit failed"
                                               for o in two_step.failures],
@@ -328,8 +383,8 @@ def _global_problem(series: Series, two_step: SeriesFit, used: list[int], temps:
                     eyring: list[EyringResult]) -> GlobalProblem:
     """The global problem of the spectra `used` at their sample temperatures `temps` (K), started from the
     two-step fit and its Eyring line."""
-    members = [GlobalMember.from_two_step(i, float(t), two_step.outcomes[i].fit, series.model)
-               for i, t in zip(used, temps)]
+    members = [GlobalMember.from_two_step(i, float(t), two_step.outcomes[i].fit, series.model,
+                                          two_step.outcomes[i].reference) for i, t in zip(used, temps)]
     idents = [n[len("log10_rate_"):] for n in members[0].problem.layout.rate_names]
     start = _eyring_start(two_step, eyring, series.model.process_names(), idents, used, temps)
     return GlobalProblem(members, series.model, treatment, _van_t_hoff(series, temps), start)
@@ -342,6 +397,7 @@ class _JointSolution:
     result: optimize.OptimizeResult
     inverse: np.ndarray | None  # (J^T J)^-1 of the free parameters; None when singular
     from_calibration: np.ndarray | None  # the covariance the temperature calibration brings in
+    from_references: np.ndarray | None  # the covariance the reference widths' errors bring in
     residuals: list[np.ndarray]  # each spectrum's, over its noise
     qualities: list[SpectrumQuality]
     chi_square: float
@@ -363,15 +419,18 @@ def _solve_joint(problem: GlobalProblem, workers: int | None, progress: bool | N
             result, inverse = solve_global(problem, evaluator)
             report.finish(task)
             from_calibration = (None if temperature_covariance is None or inverse is None else
-                                _calibration_covariance(evaluator, result.x, result.jac, inverse,
-                                                        temperature_covariance))
+                                _propagated_covariance(result.jac, inverse, evaluator.temperature_jacobian(result.x),
+                                                       temperature_covariance))
+            from_references = (None if not problem.held_stderr or inverse is None else
+                               _propagated_covariance(result.jac, inverse, evaluator.held_jacobian(result.x),
+                                                      np.diag(np.square(list(problem.held_stderr.values())))))
             residuals = evaluator.each("residual", result.x)
         finally:
             evaluator.close()
         qualities = spectrum_qualities(problem, result.x, residuals, setpoints)
     chi2 = float(sum(r @ r for r in residuals))
     dof = int(problem.rows[-1]) - len(problem.free) + problem.gauge.shape[0]
-    return _JointSolution(result, inverse, from_calibration, residuals, qualities, chi2, dof)
+    return _JointSolution(result, inverse, from_calibration, from_references, residuals, qualities, chi2, dof)
 
 
 def _joint_errors(problem: GlobalProblem, solved: _JointSolution) -> tuple[float, np.ndarray | None, list[str]]:
@@ -390,19 +449,22 @@ def _joint_errors(problem: GlobalProblem, solved: _JointSolution) -> tuple[float
     covariance = None if solved.inverse is None else solved.inverse * scale
     if covariance is None:
         notes.append("the joint covariance is singular: some parameters are not determined; errors are not given")
-    elif solved.from_calibration is not None:
-        covariance = covariance + solved.from_calibration
+    else:
+        for part in (solved.from_calibration, solved.from_references):
+            covariance = covariance if part is None else covariance + part
     if not solved.result.success:
         notes.append(f"the optimiser stopped without converging: {solved.result.message}")
     return scale, covariance, notes
 
 
-def _options(problem: GlobalProblem, calibration: "TemperatureCalibration | None",
+def _options(problem: GlobalProblem, series: Series, calibration: "TemperatureCalibration | None",
              from_calibration: np.ndarray | None) -> dict:
     """The options of the fit as global.json records them."""
     treatment = problem.treatment
+    reference = series.reference_line if treatment.linewidth_trend == REFERENCE_LINE else None
     return {"shift_trend": treatment.shift_trend, "linewidth_trend": treatment.linewidth_trend,
             "coupling_trend": treatment.coupling_trend, "population_trend": "van 't Hoff (ln K linear in 1/T)" if problem.van_t_hoff else "from the model",
             "calibration": None if calibration is None else calibration.to_dict(),
             "calibration_error_included": from_calibration is not None,
-            "reference_temperature_k": problem.reference_k}
+            "reference_temperature_k": problem.reference_k,
+            "reference_line": None if reference is None else dataclasses.asdict(reference)}

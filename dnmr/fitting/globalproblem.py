@@ -19,20 +19,16 @@ import lmfit
 import numpy as np
 
 from dnmr.engine.blocks import lineshape_terms
+from dnmr.engine.derivatives import coupling_direction, derivatives_pay, lineshape_derivatives
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout, parameter_identifier
-from dnmr.fitting.problem import FitProblem, nuisance_column
+from dnmr.fitting.problem import USE_EXACT_JACOBIAN, FitProblem, nuisance_column
+from dnmr.fitting.globaltreatment import TREND_DEGREES, TREND_SUFFIXES, Treatment
+from dnmr.fitting.seriesfile import REFERENCE_LINE
 from dnmr.fitting.spectrumfit import SpectrumFit
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 from dnmr.model import Model
-from dnmr.modelparts import parse_coupling_key
 
-TREND_DEGREES = {"constant": 0, "linear": 1, "quadratic": 2}
-TREND_SUFFIXES = ("", "_per_k", "_per_k2")
-SHIFT_TRENDS = ("constant", "linear", "quadratic")
-LINEWIDTH_TRENDS = ("per-spectrum", "constant", "linear", "quadratic")
-COUPLING_TRENDS = ("constant", "linear", "quadratic")
-DEFAULT_TREND = "linear"
 NUISANCE = ("amplitude", "phase0_deg", "phase1_deg")  # with the baseline terms: exact Jacobian columns
 ENTHALPY_BOUNDS_KJ_MOL = (0.0, 400.0)
 ENTROPY_BOUNDS_J_MOL_K = (-400.0, 400.0)
@@ -44,46 +40,6 @@ DIFFERENCE_STEP = {"rate": 1e-5, "shift": 1e-4, "linewidth": 1e-4, "coupling": 1
                    "offset": 1e-4}  # forward-difference steps: log10 k, Hz, Hz, Hz, ln K, Hz (shifts converted to ppm)
 FAMILY_WORDS = {"shift": "shifts", "linewidth": "linewidth", "coupling": "couplings", "rate": "rate",
                 "population": "populations"}
-TREND_OPTIONS = {"shift": "--shift-trend", "linewidth": "--linewidth-trend", "coupling": "--coupling-trend"}
-"""The option of ``dnmr fit --global`` (and keyword of :func:`dnmr.fitting.globalfit.fit_series_global`) that
-sets each family's temperature trend."""
-
-
-@dataclass(frozen=True)
-class Treatment:
-    """How the global fit ties the spectra together.
-
-    Parameters
-    ----------
-    shift_trend : {"constant", "linear", "quadratic"}
-        Temperature trend of every chemical shift (ppm).
-    linewidth_trend : {"per-spectrum", "constant", "linear", "quadratic"}
-        Intrinsic linewidth (Hz): a trend in T, or fitted in every spectrum.
-    coupling_trend : {"constant", "linear", "quadratic"}
-        Temperature trend of every scalar coupling (Hz) the model gives.
-    """
-
-    shift_trend: str = DEFAULT_TREND
-    linewidth_trend: str = DEFAULT_TREND
-    coupling_trend: str = DEFAULT_TREND
-
-    def __post_init__(self):
-        for family, allowed in (("shift", SHIFT_TRENDS), ("linewidth", LINEWIDTH_TRENDS), ("coupling", COUPLING_TRENDS)):
-            value = getattr(self, f"{family}_trend")
-            if value not in allowed:
-                raise InputError(f"{family}_trend must be one of {', '.join(allowed)}, got {value!r}",
-                                 where=TREND_OPTIONS[family])
-
-    def loosened(self, family: str) -> str | None:
-        """The option that lets `family` ("shift", "linewidth", "coupling") follow the data more closely,
-        or None when none is left."""
-        current = getattr(self, f"{family}_trend")
-        order = {"shift": SHIFT_TRENDS, "linewidth": ("constant", "linear", "quadratic", "per-spectrum"),
-                 "coupling": COUPLING_TRENDS}[family]
-        later = order[order.index(current) + 1:]
-        return f"{TREND_OPTIONS[family]} {later[0]}" if later else None
-
-
 @dataclass
 class GlobalMember:
     """One spectrum in the global problem: its two-step fit supplies data, noise, region and fit options.
@@ -100,6 +56,9 @@ class GlobalMember:
         Its single-spectrum fit problem: frequencies (Hz), data, noise, phase and baseline terms of its region.
     base : Model
         The series' model at its temperature.
+    reference : dict or None
+        Its reference-line fit from the two-step stage (:func:`dnmr.fitting.treatments.fit_reference_lines`;
+        a ``setting`` holding the linewidth, with its stderr, where the line gave one), None without a reference line.
     """
 
     index: int
@@ -107,14 +66,16 @@ class GlobalMember:
     fit: SpectrumFit
     problem: FitProblem  # frequencies, phase and baseline terms of its region
     base: Model  # the series' model at this temperature
+    reference: dict | None = None
 
     @classmethod
-    def from_two_step(cls, index: int, temperature_k: float, fit: SpectrumFit, model: Model) -> "GlobalMember":
+    def from_two_step(cls, index: int, temperature_k: float, fit: SpectrumFit, model: Model,
+                      reference: dict | None = None) -> "GlobalMember":
         """Spectrum `index` of the series at sample temperature `temperature_k` (K), from its two-step `fit`
-        and the series' `model`."""
+        (and its reference-line fit `reference`) and the series' `model`."""
         base = model.at_temperature(temperature_k)
         problem = FitProblem(ParameterLayout.for_model(base, fit.options), fit.ppm, fit.data, fit.noise)
-        return cls(index, temperature_k, fit, problem, base)
+        return cls(index, temperature_k, fit, problem, base, reference)
 
     @property
     def prefix(self) -> str:
@@ -153,8 +114,10 @@ def _eyring_constant(t: float) -> float:
 
 
 def _settings(members: list[GlobalMember]) -> dict:
-    """The series' per-parameter settings (those of the first fitted spectrum: series-wide ones)."""
-    return dict(members[0].fit.options.parameters)
+    """The series' per-parameter settings: those every fitted spectrum has alike (a spectrum's own also hold
+    the values its two-step fit held: a trend's or its reference line's, which differ between spectra)."""
+    first = members[0].fit.options.parameters
+    return {n: v for n, v in first.items() if all(m.fit.options.parameters.get(n) == v for m in members[1:])}
 
 
 class GlobalProblem:
@@ -191,6 +154,12 @@ class GlobalProblem:
         Rows anchoring the frequency offsets (appended to the residuals).
     maps : list of (ndarray, ndarray)
         Per spectrum, (A, b) of :meth:`affine` at its temperature.
+    exact : list of bool
+        Per spectrum, whether its Jacobian block comes from the lineshape's exact derivatives (models where
+        they cost less than finite differences, :func:`dnmr.engine.derivatives.derivatives_pay`).
+    held_stderr : dict of str to float
+        Standard errors of held parameters measured elsewhere (a reference line's width, Hz), by name:
+        the fit carries them into its covariance (:meth:`held_derivative`).
     """
 
     def __init__(self, members: list[GlobalMember], model: Model, treatment: Treatment, van_t_hoff: bool,
@@ -203,6 +172,7 @@ class GlobalProblem:
         self.settings = _settings(members)
         self.params = lmfit.Parameters()
         self.quantities: list[LineshapeQuantity] = []
+        self.held_stderr: dict[str, float] = {}
         self._add_rates(start)
         self._add_shifts()
         self._add_linewidths()
@@ -218,6 +188,7 @@ class GlobalProblem:
         self.columns = [np.array([j for j, o in enumerate(owners) if o is None or o == m.index]) for m in members]
         self.gauge = self._gauge()
         self.maps = [self.affine(m, m.temperature_k) for m in members]
+        self.exact = [USE_EXACT_JACOBIAN and derivatives_pay(m.base) for m in members]
 
     # ---- parameters --------------------------------------------------------------------------------
     def _add(self, name: str, value: float, lower: float = -np.inf, upper: float = np.inf, vary: bool = True) -> None:
@@ -276,16 +247,23 @@ class GlobalProblem:
         return list(names) if self.members[0].fit.options.linewidth == "per-state" else [names[0]] * len(names)
 
     def _add_linewidths(self) -> None:
-        """Started from the two-step widths of the coldest third of the spectra (where exchange does not
-        trade against them), flat in T."""
+        """A trend started from the two-step widths of the coldest third of the spectra (where exchange does
+        not trade against them), flat in T; or one per spectrum: free, started from its two-step width, or
+        (reference line) held at its reference width where the line gave one (the width's error kept in
+        `held_stderr`)."""
         held = self.members[0].fit.options.linewidth == "fixed"
         cold = np.argsort([m.temperature_k for m in self.members])[:max(1, len(self.members) // 3)]
         for name in dict.fromkeys(self._linewidth_keys()):
             state = self.model.states[self.layout.linewidth_names.index(name)]
             fixed = held or self.settings.get(name, {}).get("fixed") is True
-            if self.treatment.linewidth_trend == "per-spectrum" and not fixed:
+            if self.treatment.linewidth_trend in ("per-spectrum", REFERENCE_LINE) and not fixed:
                 for m in self.members:
-                    self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
+                    setting = (m.reference or {}).get("setting", {}).get(name)
+                    if self.treatment.linewidth_trend == REFERENCE_LINE and setting is not None:
+                        self._add(f"{m.prefix}{name}", setting["start"], MIN_LINEWIDTH_HZ, vary=False)
+                        self.held_stderr[f"{m.prefix}{name}"] = float(setting.get("stderr", 0.0))
+                    else:
+                        self._add(f"{m.prefix}{name}", m.fit.lmfit_parameters[name].value, MIN_LINEWIDTH_HZ)
                 self._quantity(name, "linewidth", [], DIFFERENCE_STEP["linewidth"])
                 continue
             level = float(np.nanmedian(self._two_step(name)[cold]))
@@ -294,16 +272,31 @@ class GlobalProblem:
                         fixed_value=state.linewidth_hz if held else None)
 
     def coupling_names(self) -> list[list[tuple[str, str]]]:
-        """Per state, (coupling key of the model, parameter name) of every coupling it gives."""
-        return [[(key, "coupling_hz_" + "_".join(parameter_identifier(x) for x in (state.name, *parse_coupling_key(key))))
-                 for key in state.couplings_hz] for state in self.model.states]
+        """Per state, (coupling key of the model, parameter name) of every coupling it gives (the names of the
+        single-spectrum fits)."""
+        return [[(key, name) for name, key in names.items()] for names in self.layout.coupling_names]
+
+    def _two_step_determined(self, name: str) -> np.ndarray:
+        """The two-step value of `name` in each spectrum where it is known: held there (at a trend, the
+        model's value or a setting) or fitted with a finite error off its bounds; NaN elsewhere."""
+        out = []
+        for m in self.members:
+            par = m.fit.lmfit_parameters[name]
+            known = (not par.vary or par.expr) or (par.stderr is not None and math.isfinite(par.stderr)
+                                                   and f"at-bound:{name}" not in m.fit.flags)
+            out.append(par.value if known else math.nan)
+        return np.array(out)
 
     def _add_couplings(self) -> None:
+        """Started from a line through the two-step couplings (those fitted in the slow-exchange spectra and
+        held at their trend elsewhere), the model's where none is known."""
         degree = TREND_DEGREES[self.treatment.coupling_trend]
         for state, names in zip(self.model.states, self.coupling_names()):
             for key, name in names:
-                self._trend(name, "coupling", degree, np.full(len(self.members), state.couplings_hz[key]),
-                            DIFFERENCE_STEP["coupling"])
+                values = self._two_step_determined(name)
+                if not np.isfinite(values).any() or self.settings.get(name, {}).get("fixed") is True:
+                    values = np.full(len(self.members), state.couplings_hz[key])
+                self._trend(name, "coupling", degree, values, DIFFERENCE_STEP["coupling"])
 
     def _add_populations(self) -> None:
         """van 't Hoff for every state after the first: ln(p_j/p_1) = -dH_j/(R T) + dS_j/R, started from a
@@ -457,10 +450,36 @@ class GlobalProblem:
         """(fit - data) / sigma of spectrum `k`."""
         return self._residual(self.members[k], self.maps[k], x)
 
+    def _direction(self, r: int, q: np.ndarray, model: Model) -> dict[tuple, float]:
+        """Quantity `r` as a combination of the engine's derivative directions
+        (:func:`dnmr.engine.derivatives.all_directions`): d(model number)/d(quantity) for each, at the
+        quantities `q` of the spectrum whose model is `model` (k ln 10 for log10 k, the spectrometer frequency
+        for a shift in ppm, the state's population for ln K, -1 for the frequency offset)."""
+        quantity = self.quantities[r]
+        name, layout = quantity.name, self.layout
+        if quantity.family == "rate":
+            return {("rate", layout.rate_names.index(name)): 10.0 ** q[r] * math.log(10.0)}
+        if quantity.family == "shift":
+            c, s = next((c, names.index(name)) for c, names in enumerate(layout.shift_names) if name in names)
+            return {("shift", c, s): model.spectrometer.frequency_mhz}
+        if quantity.family == "linewidth":
+            return {("linewidth", c): 1.0 for c, key in enumerate(self._linewidth_keys()) if key == name}
+        if quantity.family == "coupling":
+            c, key = next((c, key) for c, names in enumerate(self.coupling_names()) for key, n in names if n == name)
+            return {coupling_direction(model, c, key): 1.0}
+        if quantity.family == "population":
+            c = next(c for c, s in enumerate(model.states) if name == f"ln_k_{parameter_identifier(s.name)}")
+            return {("population", c): float(model.populations()[c])}
+        return {("frequency",): -1.0}
+
     def quantity_derivatives(self, k: int, x: np.ndarray, which: Sequence[int]) -> tuple[np.ndarray, np.ndarray, dict]:
-        """d prediction / d quantity of spectrum `k` for the quantities `which` (forward differences; zero
-        columns for the others), with exp(i phi) S and the nuisance values at `x`."""
+        """d prediction / d quantity of spectrum `k` for the quantities `which` (zero columns for the others),
+        with exp(i phi) S and the nuisance values at `x`: exact (:func:`dnmr.engine.derivatives.lineshape_derivatives`,
+        one solve for all of them) where that costs less than finite differences (:attr:`exact`), else forward
+        differences."""
         m = self.members[k]
+        if self.exact[k]:
+            return self._exact_derivatives(m, self.maps[k], self.vector(x), which)
         q, turned, values = self.parts(m, self.maps[k], self.vector(x))
         rotation = values["amplitude"] * np.exp(1j * m.problem.phase(values))
         base = values["amplitude"] * turned.real
@@ -474,22 +493,52 @@ class GlobalProblem:
                 continue
         return out, turned, values
 
+    def _exact_derivatives(self, m: GlobalMember, affine: tuple[np.ndarray, np.ndarray], g: np.ndarray,
+                           which: Sequence[int]) -> tuple[np.ndarray, np.ndarray, dict]:
+        """:meth:`quantity_derivatives` from the lineshape's exact derivatives at all parameter values `g`."""
+        A, b = affine
+        q = A @ g + b
+        values = self.nuisance(m, g)
+        model, offset = self.spectrum_model(m, q)
+        which = list(which)
+        found = lineshape_derivatives(model, m.problem.hz - offset, [self._direction(r, q, model) for r in which])
+        rotation = np.exp(1j * m.problem.phase(values))
+        out = np.zeros((m.problem.data.size, len(self.quantities)))
+        if which:
+            out[:, which] = (values["amplitude"] * rotation * found.slopes).real.T
+        return out, rotation * found.spectrum, values
+
+    def _lineshape_columns(self, k: int, x: np.ndarray, names: Sequence[str]) -> tuple[np.ndarray, np.ndarray, dict]:
+        """d prediction / d parameter of spectrum `k` through its lineshape quantities, for the parameters
+        `names`, with exp(i phi) S and the nuisance values at `x`."""
+        A = self.maps[k][0][:, [self.names.index(n) for n in names]]
+        D, turned, values = self.quantity_derivatives(k, x, [r for r in range(len(self.quantities)) if np.any(A[r])])
+        return D @ A, turned, values
+
     def member_jacobian(self, k: int, x: np.ndarray) -> np.ndarray:
         """d residual / d x of spectrum `k` in its columns ``self.columns[k]`` (the global parameters and its own)."""
         m, p = self.members[k], self.members[k].problem
         cols = self.columns[k]
-        A = self.maps[k][0][:, [self.names.index(self.free[j]) for j in cols]]
         try:
-            D, turned, values = self.quantity_derivatives(k, x, [r for r in range(len(self.quantities)) if np.any(A[r])])
+            out, turned, values = self._lineshape_columns(k, x, [self.free[j] for j in cols])
         except InputError:
             return np.zeros((p.data.size, len(cols)))
-        out = D @ A
         for c, j in enumerate(cols):
             name = self.free[j]
             exact = nuisance_column(name[len(m.prefix):], values, turned, p) if name.startswith(m.prefix) else None
             if exact is not None:
                 out[:, c] = exact
         return out / p.noise.sigma
+
+    def held_derivative(self, k: int, x: np.ndarray) -> np.ndarray:
+        """d residual / d held parameter of spectrum `k`, one column per name of ``self.held_stderr`` (zero
+        for the other spectra's)."""
+        names = list(self.held_stderr)
+        own = [c for c, n in enumerate(names) if self.owner(n) == self.members[k].index]
+        out = np.zeros((self.members[k].problem.data.size, len(names)))
+        if own:
+            out[:, own] = self._lineshape_columns(k, x, [names[c] for c in own])[0] / self.members[k].problem.noise.sigma
+        return out
 
     def temperature_derivative(self, k: int, x: np.ndarray, step_k: float = 0.01) -> np.ndarray:
         """d residual / d T_k of spectrum `k` (central difference, `step_k` K; T_ref held)."""

@@ -10,7 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from dnmr.fitting.globalproblem import FAMILY_WORDS, NUISANCE, GlobalProblem, Treatment
+from dnmr.fitting.globalproblem import FAMILY_WORDS, NUISANCE, GlobalProblem
+from dnmr.fitting.globaltreatment import Treatment
 from dnmr.fitting.problem import error_scale, nuisance_column
 
 

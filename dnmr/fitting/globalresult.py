@@ -175,8 +175,7 @@ class GlobalFit(NotebookView):
         t_hm = self.harmonic_mean_temperature_k
         lines = [f"Global fit of {self.series.source.name}: {len(self.fits)} spectra, "
                  f"{self.temperatures_k.min():.2f}-{self.temperatures_k.max():.2f} K; results in {self.outdir}",
-                 f"shifts {self.options['shift_trend']} in T, linewidth {self.options['linewidth_trend']}"
-                 f"{'' if self.options['linewidth_trend'] == 'per-spectrum' else ' in T'}, couplings "
+                 f"shifts {self.options['shift_trend']} in T, linewidth {linewidth_words(self.options)}, couplings "
                  f"{self.options['coupling_trend']} in T, populations {self.options['population_trend']}",
                  f"chi-square {self.chi_square:.1f} on {self.degrees_of_freedom} degrees of freedom (reduced "
                  f"{self.reduced_chi_square:.3f}, against each spectrum's measured noise), error scale "
@@ -238,6 +237,16 @@ class GlobalFit(NotebookView):
         return plot_fit_stack([self.fits[i] for i in order], [f"{self.temperatures_k[i]:.1f} K" for i in order],
                               figure=figure, title=f"{self.series.model.title or self.series.source.name}\n"
                                                    "measured (black) and global fit (red)")
+
+
+def linewidth_words(options: dict) -> str:
+    """How the global fit treated the intrinsic linewidth, in words, from its `options` (as global.json has them)."""
+    trend, reference = options.get("linewidth_trend"), options.get("reference_line")
+    if trend == "per-spectrum":
+        return "fitted in every spectrum"
+    if reference:
+        return f"held in every spectrum at the width of the reference line at {reference['ppm']:g} ppm"
+    return f"{trend} in T"
 
 
 def write_global_fit(result: GlobalFit, overwrite: bool = False) -> None:

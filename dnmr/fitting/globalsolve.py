@@ -13,7 +13,8 @@ import numpy as np
 from scipy import optimize
 
 from dnmr.errors import InputError
-from dnmr.fitting.globalproblem import TREND_DEGREES, TREND_SUFFIXES, GlobalMember, GlobalProblem
+from dnmr.fitting.globalproblem import GlobalMember, GlobalProblem
+from dnmr.fitting.globaltreatment import TREND_DEGREES, TREND_SUFFIXES
 from dnmr.fitting.workers import SharedPayload, process_pool
 from dnmr.kinetics import BOLTZMANN, GAS_CONSTANT, PLANCK
 
@@ -25,9 +26,11 @@ SCAN_RISE = 25.0  # a rate scan's minimum counts when chi-square rises by this m
 
 
 def _blocks(problem: GlobalProblem, kind: str, x: np.ndarray, ks: Sequence[int]) -> list:
-    """Residuals, Jacobian blocks, temperature derivatives or nuisance refits (`kind`) of spectra `ks` at `x`."""
+    """Residuals, Jacobian blocks, temperature derivatives, derivatives by the held parameters or nuisance
+    refits (`kind`) of spectra `ks` at `x`."""
     work = {"residual": problem.member_residual, "jacobian": problem.member_jacobian,
-            "temperature": problem.temperature_derivative, "nuisance": _refit_nuisance_of}[kind]
+            "temperature": problem.temperature_derivative, "held": problem.held_derivative,
+            "nuisance": _refit_nuisance_of}[kind]
     return [work(k, x) if kind != "nuisance" else work(problem, k, x) for k in ks]
 
 
@@ -116,6 +119,11 @@ class GlobalEvaluator:
         for k, column in enumerate(self.each("temperature", x)):
             out[rows[k]:rows[k + 1], k] = column
         return out
+
+    def held_jacobian(self, x: np.ndarray) -> np.ndarray:
+        """d residuals / d held parameters (one column per name of ``problem.held_stderr``; zero on the gauge rows)."""
+        blocks = self.each("held", x) + [np.zeros((self.problem.gauge.shape[0], len(self.problem.held_stderr)))]
+        return np.vstack(blocks)
 
     def refit_nuisance(self, x: np.ndarray) -> np.ndarray:
         """`x` with every spectrum's own parameters refitted at its global parameters."""

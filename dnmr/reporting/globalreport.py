@@ -9,6 +9,7 @@ import math
 from pathlib import Path
 
 from dnmr.errors import InputError
+from dnmr.fitting.globalresult import linewidth_words
 from dnmr.formatting import format_with_error, table_number
 from dnmr.kinetics import KCAL_PER_KJ
 from dnmr.reporting.reporthtml import bullets, esc, figure_from_file, html_document, parameter_cell, section, table
@@ -56,8 +57,7 @@ def _global_parameter_table(process: dict) -> str:
 
 def _treatment_text(g: dict) -> str:
     o = g.get("options") or {}
-    width = ("fitted in every spectrum" if o.get("linewidth_trend") == "per-spectrum"
-             else f"{o.get('linewidth_trend')} in T")
+    width = linewidth_words(o)
     return (f"Shifts {o.get('shift_trend')} in T, couplings {o.get('coupling_trend')} in T, intrinsic linewidth {width}, "
             f"populations {o.get('population_trend')}; amplitude, phase, baseline and frequency offset of every spectrum "
             f"fitted jointly (offsets anchored to no mean and no trend the shifts could take). Reference temperature "
