@@ -41,7 +41,7 @@ from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.readers import read_spectrum
 from dnmr.io.measured import MeasuredSpectrum
 from dnmr.fitting.globalfit import fit_global_from_two_step
-from dnmr.fitting.globalproblem import Treatment
+from dnmr.fitting.globaltreatment import Treatment
 from dnmr.fitting.globalresult import TWO_STEP_FOLDER
 from dnmr.fitting.series import fit_series
 from dnmr.fitting.seriesfile import load_series
