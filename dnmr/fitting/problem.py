@@ -18,10 +18,10 @@ import lmfit
 import numpy as np
 from scipy import fft, optimize, stats
 
-from dnmr.engine.blocks import lineshape_terms
-from dnmr.engine.derivatives import coupling_direction, derivatives_pay, lineshape_derivatives
+from dnmr.engine.derivatives import coupling_direction, derivatives_pay
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.errors import InputError
+from dnmr.fitting.fitlineshape import FitLineshape
 from dnmr.fitting.parameters import ParameterLayout, parameter_stderr, tie_coefficients
 from dnmr.fitting.ranges import ppm_regions
 from dnmr.io.measured import MeasuredSpectrum
@@ -220,6 +220,7 @@ class FitProblem:
         # points written with a few decimals are uniform to within their rounding
         self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=0.02) else None
         self.exact_jacobian = USE_EXACT_JACOBIAN and derivatives_pay(layout.model)
+        self.lineshape = FitLineshape(layout)
         self._terms: dict[tuple, LineshapeTerms] = {}
         self._data_transform: np.ndarray | None = None
         self._ties: dict[tuple, dict] = {}
@@ -230,7 +231,7 @@ class FitProblem:
         key = tuple(float(values[n]) for n in self.layout.lineshape_names)
         terms = self._terms.get(key)
         if terms is None:
-            terms = lineshape_terms(self.layout.model_from(values))
+            terms = self.lineshape.terms(values)
             self.nfev += 1
             if TERMS_KEPT:
                 if len(self._terms) >= TERMS_KEPT:
@@ -286,8 +287,7 @@ class FitProblem:
                     combination[direction] = combination.get(direction, 0.0) + factor * scale
         out = np.zeros((self.data.size, len(free)))
         try:
-            found = lineshape_derivatives(self.layout.model_from(values), self.hz - values["offset_hz"],
-                                          list(along.values()))
+            found = self.lineshape.derivatives(values, self.hz - values["offset_hz"], list(along.values()))
         except InputError:
             return out
         self.njev += 1
