@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import lmfit
 import numpy as np
-from scipy import fft, optimize, stats
+from scipy import optimize, stats
 
 from dnmr.engine.derivatives import coupling_direction, derivatives_pay
 from dnmr.engine.resolvent import LineshapeTerms
@@ -222,7 +222,8 @@ class FitProblem:
         self.exact_jacobian = USE_EXACT_JACOBIAN and derivatives_pay(layout.model)
         self.lineshape = FitLineshape(layout)
         self._terms: dict[tuple, LineshapeTerms] = {}
-        self._data_transform: np.ndarray | None = None
+        self.scan_cache: dict = {}
+        """What the coarse scan (:mod:`dnmr.fitting.scan`) keeps between its cross-correlations."""
         self._ties: dict[tuple, dict] = {}
 
     def terms(self, values: Mapping[str, float]) -> LineshapeTerms:
@@ -313,62 +314,6 @@ class FitProblem:
         out.update({n: (coupling_direction(model, c, key), 1.0)
                     for c, names in enumerate(layout.coupling_names) for n, key in names.items()})
         return out
-
-    # --- linear part, for the scan and starting values -----------------------------------
-    def linear_solve(self, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
-        """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
-
-        Only parameters that vary freely (no expression) are solved for; `values` holds the others.
-        Returns chi-square and `values` updated with the solution.
-        """
-        free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
-        base = self.shape(values)
-        if values["phase1_deg"] != 0.0:
-            base = np.exp(1j * self.phase(values, zero_order=False)) * base
-        turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
-        columns, target = [], self.data.copy()
-        if free("amplitude") and free("phase0_deg"):
-            columns += [base.real, -base.imag]  # amplitude x (cos phi0, sin phi0)
-        elif free("amplitude"):
-            columns.append(turned)
-        else:
-            target -= values["amplitude"] * turned
-        free_baseline = [j for j, n in enumerate(self.layout.baseline_names) if free(n)]
-        for j, n in enumerate(self.layout.baseline_names):
-            if j not in free_baseline:
-                target -= values[n] * self.powers[:, j]
-        columns += [self.powers[:, j] for j in free_baseline]
-        values = dict(values)
-        if columns:
-            design = np.column_stack(columns)
-            coef, *_ = np.linalg.lstsq(design, target, rcond=None)
-            target = target - design @ coef
-            if free("amplitude"):
-                if free("phase0_deg"):
-                    values["amplitude"] = float(max(math.hypot(coef[0], coef[1]), 1e-300))
-                    values["phase0_deg"] = float(np.degrees(math.atan2(coef[1], coef[0])))
-                else:
-                    values["amplitude"] = float(max(coef[0], 1e-300))
-            for j, c in zip(free_baseline, coef[len(coef) - len(free_baseline):]):
-                values[self.layout.baseline_names[j]] = float(c)
-        return float(target @ target) / self.noise.sigma ** 2, values
-
-    def coarse_offset(self, params: lmfit.Parameters, values: dict) -> dict:
-        """Values with the offset moved to the best cross-correlation of model and data (uniform grids), among
-        the shifts by whole points the offset's bounds allow."""
-        par = params["offset_hz"]
-        if not par.vary or par.expr or self.uniform_step is None:
-            return values
-        n = self.data.size
-        size = fft.next_fast_len(2 * n - 1, real=True)  # no circular wrap-around
-        if self._data_transform is None:  # the data's half of every cross-correlation, once
-            self._data_transform = fft.rfft(self.data - self.data.mean(), size)
-        shape = self.terms(values).absorption(self.hz)
-        circular = fft.irfft(self._data_transform * np.conj(fft.rfft(shape - shape.mean(), size)), size)
-        corr = np.concatenate([circular[size - (n - 1):], circular[:n]])  # lags -(n - 1) ... n - 1
-        lags = np.arange(-(n - 1), n) * self.uniform_step
-        allowed = (lags >= par.min) & (lags <= par.max)
-        return {**values, "offset_hz": float(lags[allowed][np.argmax(corr[allowed])])}
 
 
 # --------------------------------------------------------------------------------------------------

@@ -1,15 +1,18 @@
 """Where a fit starts without a start value: the coarse scan over the rates (amplitude, zero-order
 phase and baseline solved linearly at every point, the frequency offset by cross-correlation), the
-search over free shifts, and the refinement from the best starts.
+search over free shifts, and the refinement from the best starts; the linear solve (:func:`linear_solve`) and
+the cross-correlation (:func:`coarse_offset`) they are made of.
 
 Steps 2 and 3 of the method in :mod:`dnmr.fitting.spectrumfit`.
 """
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import lmfit
 import numpy as np
+from scipy import fft
 
 from dnmr.fitting.parameters import with_values
 from dnmr.fitting.problem import FitProblem, minimize
@@ -39,8 +42,8 @@ def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: t
     for name in varying:
         points = []
         for x in grid:
-            trial = problem.coarse_offset(params, {**values, name: float(x)})
-            points.append(problem.linear_solve(params, trial))
+            trial = coarse_offset(problem, params, {**values, name: float(x)})
+            points.append(linear_solve(problem, params, trial))
         chi = np.array([c for c, _ in points])
         curves[name] = chi
         order = np.argsort(chi)
@@ -50,7 +53,7 @@ def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: t
         if slow_start and 0 not in minima[:2]:
             starts.append(points[0][1])
     if not varying:
-        starts = [problem.linear_solve(params, problem.coarse_offset(params, values))[1]]
+        starts = [linear_solve(problem, params, coarse_offset(problem, params, values))[1]]
     return starts, curves
 
 
@@ -66,13 +69,13 @@ def search_shifts(problem: FitProblem, params: lmfit.Parameters, values: dict) -
     widths = [values[n] for n in problem.layout.linewidth_names]
     step = max(SHIFT_SEARCH_MIN_STEP_HZ, min(widths) / 3.0) / sf
     grid = np.arange(-SHIFT_SEARCH_HZ / sf, SHIFT_SEARCH_HZ / sf + 0.5 * step, step)
-    chi, values = problem.linear_solve(params, values)
+    chi, values = linear_solve(problem, params, values)
     for _ in range(2):
         for name in names:
             par, centre = params[name], values[name]
             for x in centre + grid:
                 if par.min <= x <= par.max:
-                    trial_chi, trial = problem.linear_solve(params, {**values, name: float(x)})
+                    trial_chi, trial = linear_solve(problem, params, {**values, name: float(x)})
                     if trial_chi < chi:
                         chi, values = trial_chi, trial
     return values
@@ -87,3 +90,74 @@ def refine_best(problem: FitProblem, params: lmfit.Parameters, starts: Sequence[
         if best is None or result.chisqr < best.chisqr:
             best = result
     return best
+
+
+def linear_solve(problem: FitProblem, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
+    """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
+
+    Only parameters that vary freely (no expression) are solved for; `values` holds the others.
+    Returns chi-square and `values` updated with the solution.
+    """
+    free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
+    base = problem.shape(values)
+    if values["phase1_deg"] != 0.0:
+        base = np.exp(1j * problem.phase(values, zero_order=False)) * base
+    turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
+    columns, target = [], problem.data.copy()
+    if free("amplitude") and free("phase0_deg"):
+        columns += [base.real, -base.imag]  # amplitude x (cos phi0, sin phi0)
+    elif free("amplitude"):
+        columns.append(turned)
+    else:
+        target -= values["amplitude"] * turned
+    free_baseline = [j for j, n in enumerate(problem.layout.baseline_names) if free(n)]
+    for j, n in enumerate(problem.layout.baseline_names):
+        if j not in free_baseline:
+            target -= values[n] * problem.powers[:, j]
+    columns += [problem.powers[:, j] for j in free_baseline]
+    values = dict(values)
+    if columns:
+        design = np.array(columns)  # one row per column of the design matrix
+        coef = _linear_least_squares(design, target)
+        target = target - coef @ design
+        if free("amplitude"):
+            if free("phase0_deg"):
+                values["amplitude"] = float(max(math.hypot(coef[0], coef[1]), 1e-300))
+                values["phase0_deg"] = float(np.degrees(math.atan2(coef[1], coef[0])))
+            else:
+                values["amplitude"] = float(max(coef[0], 1e-300))
+        for j, c in zip(free_baseline, coef[len(coef) - len(free_baseline):]):
+            values[problem.layout.baseline_names[j]] = float(c)
+    return float(target @ target) / problem.noise.sigma ** 2, values
+
+
+def coarse_offset(problem: FitProblem, params: lmfit.Parameters, values: dict) -> dict:
+    """Values with the offset moved to the best cross-correlation of model and data (uniform grids), among
+    the shifts by whole points the offset's bounds allow."""
+    par = params["offset_hz"]
+    if not par.vary or par.expr or problem.uniform_step is None:
+        return values
+    n = problem.data.size
+    size = fft.next_fast_len(2 * n - 1, real=True)  # no circular wrap-around
+    if problem.scan_cache.get("lags") != (par.min, par.max):
+        # the data's half of every cross-correlation and the allowed lags, once
+        lag = np.arange(-(n - 1), n)
+        allowed = (lag * problem.uniform_step >= par.min) & (lag * problem.uniform_step <= par.max)
+        problem.scan_cache.update(lags=(par.min, par.max), transform=fft.rfft(problem.data - problem.data.mean(), size),
+                                  places=lag[allowed] % size, shifts=lag[allowed] * problem.uniform_step)
+    cache = problem.scan_cache  # "places": where the allowed lags are in the circular result
+    shape = problem.terms(values).absorption(problem.hz)
+    circular = fft.irfft(cache["transform"] * np.conj(fft.rfft(shape - shape.mean(), size)), size)
+    return {**values, "offset_hz": float(cache["shifts"][np.argmax(circular[cache["places"]])])}
+
+
+def _linear_least_squares(rows: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """Coefficients c minimising |target - c @ rows| over a few well-scaled rows (the normal equations, as
+    accurate as starting values need and several times quicker than an SVD), by SVD where they are singular."""
+    try:
+        coef = np.linalg.solve(rows @ rows.T, rows @ target)
+        if np.all(np.isfinite(coef)):
+            return coef
+    except np.linalg.LinAlgError:
+        pass
+    return np.linalg.lstsq(rows.T, target, rcond=None)[0]

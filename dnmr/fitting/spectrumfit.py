@@ -83,7 +83,7 @@ from dnmr.fitting.problem import FitProblem, NoiseEstimate, Profile, estimate_no
 from dnmr.fitting.ranges import check_rate_ceiling, number_pair, ppm_regions
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares, rate_of_process
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
-from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
+from dnmr.fitting.scan import linear_solve, refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.measured import MeasuredSpectrum
 from dnmr.kinetics import STANDARD_TEMPERATURE_K
@@ -552,7 +552,7 @@ def _best_fit(problem: FitProblem, params: lmfit.Parameters, options: FitOptions
     if options.shifts == "free":
         starts = [search_shifts(problem, params, s) for s in starts]
     if start:
-        starts.append(problem.linear_solve(params, params.valuesdict())[1])
+        starts.append(linear_solve(problem, params, params.valuesdict())[1])
     return refine_best(problem, params, starts)
 
 
