@@ -275,16 +275,17 @@ class _PoleSums:
         apart = close & (np.abs(gap) > DEGENERATE * width)  # close, and not equal to rounding error
         powers = np.stack([close.astype(float), np.where(apart, gap, 0.0), np.where(apart, gap * gap, 0.0)])
         orders = np.zeros((len(changes), 4, lam.size), dtype=complex)  # poles of order 1 to 4
-        for i, (change, identity, start_change) in enumerate(changes):
-            B = u[:, None] * (V_inv @ change @ V) * w[None, :]
+        if changes:  # every change at once: B[i] = u (V^-1 dL_i V) w
+            B = u[None, :, None] * (V_inv @ np.array([c[0] for c in changes], dtype=complex) @ V) * w[None, None, :]
             split = np.where(close, 0.0, B / np.where(close, 1.0, -gap))  # B / (lambda_k - lambda_l)
-            orders[i, 0] = split.sum(axis=1) - split.sum(axis=0)
-            if start_change is not None:
-                orders[i, 0] += u * (V_inv @ start_change)
+            orders[:, 0] = split.sum(axis=2) - split.sum(axis=1)
             # a close pair: g_k g_l = g_k^2 / (1 - delta g_k) = g_k^2 (1 + delta g_k + delta^2 g_k^2 + ...),
             # |delta g_k| <= SPLIT_SEPARATION, so three terms leave 1e-12 (one where |delta g_k| <= DEGENERATE)
-            orders[i, 1:] = (powers * B[None]).sum(axis=2)
-            orders[i, 1] += identity * u * w
+            orders[:, 1:] = (powers[None] * B[:, None]).sum(axis=3)
+            orders[:, 1] += np.array([c[1] for c in changes])[:, None] * (u * w)
+        for i, (_, _, start_change) in enumerate(changes):
+            if start_change is not None:
+                orders[i, 0] += u * (V_inv @ start_change)
         self.poles.append(lam)
         self.amplitudes.append(u * w)
         self.orders.append(orders)

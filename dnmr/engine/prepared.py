@@ -165,14 +165,16 @@ class PreparedModel:
         """The spectrum at `numbers` and frequencies `hz` (Hz) with its derivatives along `changes`, each the
         change of the numbers per unit of one of `directions` (shifts, couplings, widths, populations, jump
         rates and the factor of the identity, as :func:`dnmr.engine.derivatives.combined_numbers` gives it)."""
-        moves = [(self._vector(change[:5]), change[5], change[3]) for change in changes]
+        moves = np.array([self._vector(change[:5]) for change in changes]).reshape(len(changes), -1).T
 
         def blocks():
             for block, L, effective in self._blocks(numbers):
-                pattern = block.pattern
-                steps = [(self._liouvillian(block, dx), identity,
-                          block_start(pattern, self._effective(block, dp)) if np.any(dp) else None)
-                         for dx, identity, dp in moves]
+                pattern, n = block.pattern, len(block.pattern.detect)
+                dL = np.zeros((len(changes), n * n), dtype=complex)
+                dL[:, block.index] = (block.matrix @ moves).T
+                steps = [(step.reshape(n, n), change[5],
+                          block_start(pattern, self._effective(block, change[3])) if np.any(change[3]) else None)
+                         for step, change in zip(dL, changes)]
                 yield L, pattern.detect, block_start(pattern, effective), steps
 
         return block_derivatives(blocks(), hz, directions)
