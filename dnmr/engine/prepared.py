@@ -165,13 +165,14 @@ class PreparedModel:
         """The spectrum at `numbers` and frequencies `hz` (Hz) with its derivatives along `changes`, each the
         change of the numbers per unit of one of `directions` (shifts, couplings, widths, populations, jump
         rates and the factor of the identity, as :func:`dnmr.engine.derivatives.combined_numbers` gives it)."""
-        moves = np.array([self._vector(change[:5]) for change in changes]).reshape(len(changes), -1).T
+        moves = np.array([self._vector(change[:5]) for change in changes]).T  # (numbers, changes)
 
         def blocks():
             for block, L, effective in self._blocks(numbers):
                 pattern, n = block.pattern, len(block.pattern.detect)
                 dL = np.zeros((len(changes), n * n), dtype=complex)
-                dL[:, block.index] = (block.matrix @ moves).T
+                if changes:
+                    dL[:, block.index] = (block.matrix @ moves).T
                 steps = [(step.reshape(n, n), change[5],
                           block_start(pattern, self._effective(block, change[3])) if np.any(change[3]) else None)
                          for step, change in zip(dL, changes)]
