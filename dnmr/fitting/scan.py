@@ -23,6 +23,8 @@ SHIFT_SEARCH_HZ = 12.0
 """With free shifts, each is first searched this far (Hz) either side of its start value."""
 SHIFT_SEARCH_MIN_STEP_HZ = 0.2
 """Finest step (Hz) of that search (else a third of the narrowest linewidth)."""
+SHIFT_SEARCH_COARSENING = 3
+"""The search first steps this many finest steps at a time, then takes the finest steps around the best point."""
 
 
 def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: tuple[float, float],
@@ -59,7 +61,8 @@ def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: t
 
 def search_shifts(problem: FitProblem, params: lmfit.Parameters, values: dict) -> dict:
     """Values with every free shift moved to the best point of a coarse search within SHIFT_SEARCH_HZ of
-    its start (amplitude, phase and baseline solved linearly at each point), spin by spin, twice over.
+    its start (amplitude, phase and baseline solved linearly at each point), spin by spin, twice over; each
+    search steps SHIFT_SEARCH_COARSENING finest steps at a time, then finest steps around its best point.
 
     A first-guess shift a few Hz off is further than a narrow line is wide: a local refinement from it
     can settle on a false minimum (a line fitted by the wrong partner), which this search avoids.
@@ -68,13 +71,15 @@ def search_shifts(problem: FitProblem, params: lmfit.Parameters, values: dict) -
     names = [n for names in problem.layout.shift_names for n in names if params[n].vary and not params[n].expr]
     widths = [values[n] for n in problem.layout.linewidth_names]
     step = max(SHIFT_SEARCH_MIN_STEP_HZ, min(widths) / 3.0) / sf
-    grid = np.arange(-SHIFT_SEARCH_HZ / sf, SHIFT_SEARCH_HZ / sf + 0.5 * step, step)
+    coarse = SHIFT_SEARCH_COARSENING * step
+    grid = np.arange(-SHIFT_SEARCH_HZ / sf, SHIFT_SEARCH_HZ / sf + 0.5 * coarse, coarse)
+    near = step * np.array([k for k in range(1 - SHIFT_SEARCH_COARSENING, SHIFT_SEARCH_COARSENING) if k])
     chi, values = linear_solve(problem, params, values)
     for _ in range(2):
         for name in names:
-            par, centre = params[name], values[name]
-            for x in centre + grid:
-                if par.min <= x <= par.max:
+            for points in (values[name] + grid, None):  # the coarse grid, then the fine steps around its best
+                points = values[name] + near if points is None else points
+                for x in points[(points >= params[name].min) & (points <= params[name].max)]:
                     trial_chi, trial = linear_solve(problem, params, {**values, name: float(x)})
                     if trial_chi < chi:
                         chi, values = trial_chi, trial
