@@ -261,22 +261,34 @@ class FitProblem:
 
     def residual(self, params: lmfit.Parameters) -> np.ndarray:
         """(fit - data) / noise at every point; 1e3 everywhere for values the model refuses."""
+        return self.residual_at(params.valuesdict())
+
+    def residual_at(self, values: Mapping[str, float]) -> np.ndarray:
+        """:meth:`residual` at the values of every parameter."""
         try:
-            return (self.predict(params.valuesdict()) - self.data) / self.noise.sigma
+            return (self.predict(values) - self.data) / self.noise.sigma
         except InputError:  # parameters outside what a model allows (e.g. a negative population)
             return np.full(self.data.size, 1e3)
+
+    def ties(self, params: lmfit.Parameters) -> tuple[dict[str, dict[str, float]], list[str]]:
+        """How every parameter moves with the free ones (:func:`dnmr.fitting.parameters.tie_coefficients`, kept by
+        the parameters' structure) and the free ones (those that vary, without a constraint) in lmfit's order."""
+        structure = tuple((n, p.vary, p.expr) for n, p in params.items())
+        ties = self._ties.get(structure)
+        if ties is None:
+            ties = self._ties[structure] = tie_coefficients(params)
+        return ties, [n for n, p in params.items() if p.vary and not p.expr]
 
     def jacobian(self, params: lmfit.Parameters) -> np.ndarray:
         """d residual / d free parameter (points x free parameters, in lmfit's order: those that vary, without
         a constraint), exact: the lineshape's derivatives from :func:`dnmr.engine.derivatives.lineshape_derivatives`
         (one combination of directions per free parameter, ties followed by the chain rule), the nuisance
         terms' own (:func:`nuisance_column`).  Zero for values the model refuses (the residual is constant there)."""
-        values = params.valuesdict()
-        structure = tuple((n, p.vary, p.expr) for n, p in params.items())
-        ties = self._ties.get(structure)
-        if ties is None:
-            ties = self._ties[structure] = tie_coefficients(params)
-        free = [n for n, p in params.items() if p.vary and not p.expr]
+        return self.jacobian_at(params.valuesdict(), *self.ties(params))
+
+    def jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]], free: Sequence[str]
+                    ) -> np.ndarray:
+        """:meth:`jacobian` at the values of every parameter, with the ties and free parameters of :meth:`ties`."""
         shape_of = self._lineshape_directions(values)
         shape_of["offset_hz"] = (("frequency",), -1.0)
         along: dict[str, dict[tuple, float]] = {}
@@ -342,20 +354,30 @@ def refine(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-
     if not getattr(problem, "exact_jacobian", False):
         result = minimize(problem, params, tolerance)
         return float(result.chisqr), result.params
-    free = [n for n, p in params.items() if p.vary and not p.expr]
+    ties, free = problem.ties(params)
+    start = params.valuesdict()
+    # every constraint is affine (tie_coefficients): a value is its part at the start plus its moves
+    rest = {n: start[n] - sum(c * start[f] for f, c in moves.items()) for n, moves in ties.items()}
 
-    def at(x: np.ndarray) -> lmfit.Parameters:
-        for name, value in zip(free, x):
-            params[name].value = float(value)
-        params.update_constraints()
-        return params
+    def at(x: np.ndarray) -> dict[str, float]:
+        moved = dict(zip(free, x.tolist()))
+        return {n: rest[n] + sum(c * moved[f] for f, c in moves.items()) for n, moves in ties.items()}
 
     bounds = ([params[n].min for n in free], [params[n].max for n in free])
-    found = optimize.least_squares(lambda x: problem.residual(at(x)), [params[n].value for n in free],
-                                   jac=lambda x: problem.jacobian(at(x)), bounds=bounds, method="trf", x_scale="jac",
-                                   ftol=tolerance, xtol=tolerance, gtol=tolerance, max_nfev=2 * MAX_EVALUATIONS)
-    at(found.x)
+    found = optimize.least_squares(lambda x: problem.residual_at(at(x)), [start[n] for n in free],
+                                   jac=lambda x: problem.jacobian_at(at(x), ties, free), bounds=bounds, method="trf",
+                                   x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
+                                   max_nfev=2 * MAX_EVALUATIONS)
+    _set_values(params, dict(zip(free, found.x.tolist())))
     return float(found.fun @ found.fun), params
+
+
+def _set_values(params: lmfit.Parameters, values: Mapping[str, float]) -> None:
+    """Set the parameters of `values` that have no constraint (held ones too) and update the tied ones."""
+    for name, value in values.items():
+        if not params[name].expr:
+            params[name].value = float(value)
+    params.update_constraints()
 
 
 @dataclass(frozen=True)
@@ -409,19 +431,19 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
     x0, chi0 = best.params[name].value, best.chisqr
     lo_lim, hi_lim = best.params[name].min, best.params[name].max
     points = {x0: 0.0}
-    fits = {x0: best.params}
+    fits = {x0: best.params.valuesdict()}  # the refined values at each point
+    trial = best.params.copy()  # one set of parameters, refined from the nearest point's values each time
+    trial[name].set(vary=False)
 
     def rise(x: float) -> float:
-        nearest = min(fits, key=lambda v: abs(v - x))
-        trial = fits[nearest].copy()
-        trial[name].set(value=x, vary=False)
+        _set_values(trial, {**fits[min(fits, key=lambda v: abs(v - x))], name: x})
         chi_square, found = refine(problem, trial, tolerance=1e-5)
         if restart and chi_square < chi0 - 0.05 * threshold:
             params = found.copy()
             params[name].set(vary=True)
             raise BetterMinimum(minimize(problem, params))
         points[x] = chi_square - chi0
-        fits[x] = found
+        fits[x] = found.valuesdict()
         return points[x] - min(points.values()) - threshold
 
     def crossing(a: float, b: float) -> float:
