@@ -29,8 +29,9 @@ SHIFT_SEARCH_COARSENING = 3
 
 def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: tuple[float, float],
                scan_points: int, slow_start: bool = False) -> tuple[list[dict], dict]:
-    """Coarse scan over log k of each varying rate in turn, at `scan_points` points over `rate_scan_per_s`
-    (s^-1); returns starting points (parameter values) and the scan curves (chi-square by rate name).
+    """Coarse scan over log k of each varying rate in turn, on `scan_points` points over `rate_scan_per_s`
+    (s^-1): every other one, then the neighbours of the best local minima (:func:`_scan_points`); returns
+    starting points (parameter values) and the scan curves (chi-square by rate name, NaN where not scanned).
 
     With `slow_start` the slowest scan point is a start too: with free shifts or couplings that are a few
     Hz off, a faster rate can broaden misplaced lines into a better scan point than the right, slow one,
@@ -42,21 +43,41 @@ def scan_rates(problem: FitProblem, params: lmfit.Parameters, rate_scan_per_s: t
     varying = [n for n in problem.layout.rate_names if params[n].vary and not params[n].expr]
     starts: list[dict] = []
     for name in varying:
-        points = []
-        for x in grid:
-            trial = coarse_offset(problem, params, {**values, name: float(x)})
-            points.append(linear_solve(problem, params, trial))
-        chi = np.array([c for c, _ in points])
+        points = _scan_points(problem, params, values, name, grid)
+        chi = np.array([points[i][0] if i in points else np.nan for i in range(len(grid))])
         curves[name] = chi
-        order = np.argsort(chi)
-        values = points[order[0]][1]
-        minima = [i for i in order if (i == 0 or chi[i] <= chi[i - 1]) and (i == len(chi) - 1 or chi[i] <= chi[i + 1])]
-        starts = [points[i][1] for i in minima[:2] if chi[i] <= SECOND_START_RATIO * chi[order[0]]]
+        minima = _local_minima(points)
+        values = points[minima[0]][1]
+        starts = [points[i][1] for i in minima[:2] if points[i][0] <= SECOND_START_RATIO * points[minima[0]][0]]
         if slow_start and 0 not in minima[:2]:
             starts.append(points[0][1])
     if not varying:
         starts = [linear_solve(problem, params, coarse_offset(problem, params, values))[1]]
     return starts, curves
+
+
+def _scan_points(problem: FitProblem, params: lmfit.Parameters, values: dict, name: str, grid: np.ndarray
+                 ) -> dict[int, tuple[float, dict]]:
+    """Chi-square and solved values at points of the scan of the rate `name` over `grid` (log10 s^-1), by grid
+    index: every other point and the last, then the neighbours of the two best local minima until both are
+    local minima of the whole grid (the points left out lie where the curve rises on both sides)."""
+    points: dict[int, tuple[float, dict]] = {}
+    todo = sorted(set(range(0, len(grid), 2)) | {len(grid) - 1})
+    while todo:
+        for i in todo:
+            points[i] = linear_solve(problem, params, coarse_offset(problem, params, {**values, name: float(grid[i])}))
+        todo = sorted({j for i in _local_minima(points)[:2] for j in (i - 1, i + 1) if 0 <= j < len(grid)} - set(points))
+    return points
+
+
+def _local_minima(points: dict[int, tuple[float, dict]]) -> list[int]:
+    """Indices of the local minima of chi-square among the scanned `points` (neighbours: the next scanned
+    ones), lowest first."""
+    index = sorted(points)
+    chi = [points[i][0] for i in index]
+    order = np.argsort(chi, kind="stable")
+    return [index[k] for k in order
+            if (k == 0 or chi[k] <= chi[k - 1]) and (k == len(chi) - 1 or chi[k] <= chi[k + 1])]
 
 
 def search_shifts(problem: FitProblem, params: lmfit.Parameters, values: dict) -> dict:
