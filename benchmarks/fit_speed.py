@@ -53,7 +53,7 @@ DEMO = Path(dnmr.__file__).parent / "data" / "demo"
 BASELINE_COMMIT = "9edcebd"
 """The code before the exact Jacobian and the prepared models: the parent of the commit that brought the exact
 lineshape derivatives (what issue 18 item 2 calls today's time)."""
-REPEATS = 3
+REPEATS = 5
 """Fits of each case by each code (the best CPU time counts)."""
 
 

@@ -26,11 +26,12 @@ Method
    ``noise_ppm``, else the spectrum outside the fitted region, else the outer eighths of the region),
    estimated robustly, with the correlation factor c of neighbouring points
    (:func:`dnmr.fitting.problem.estimate_noise`).
-2. *Coarse scan*: log k is scanned over ``rate_scan_per_s`` (default 1e-2 to 1e7 s^-1, 37 points).
-   At every point the amplitude, zero-order phase and baseline enter linearly and are solved by linear
-   least squares, and the frequency offset is found by cross-correlation, so the scan needs no start
-   value for any of them.  The best scan point, the second-best local minimum and a start value from
-   the caller (a neighbouring temperature) are each refined, and the best refinement is kept.
+2. *Coarse scan*: log k is scanned over ``rate_scan_per_s`` (default 1e-2 to 1e7 s^-1, a grid of 37 points:
+   every other point, then the neighbours of the two best local minima).  At every point the amplitude,
+   zero-order phase and baseline enter linearly and are solved by linear least squares, and the frequency
+   offset is found by cross-correlation, so the scan needs no start value for any of them.  The best scan
+   point, the second-best local minimum and a start value from the caller (a neighbouring temperature) are
+   each refined, and the best refinement is kept.
 3. *Refinement*: lmfit ``least_squares`` (trust region, bounds) on residuals divided by the noise.
 4. *Uncertainties*: chi-square = sum ((data - fit) / noise)^2.  The covariance is (J^T J)^-1 of those
    residuals multiplied by the error scale s = c x (reduced chi-square if the fit is significantly
@@ -146,7 +147,8 @@ class FitOptions:
     rate_limits_per_s : (float, float)
         Bounds of every fitted rate (s^-1); the profile runs out to them.
     scan_points : int
-        Points of the coarse scan.
+        Points of the coarse scan's grid (every other one is scanned, then the neighbours of the best
+        minima).
     profile : bool
         Profile chi-square over every rate to find bounds (on by default; off only for speed).
     parameters : mapping
