@@ -272,6 +272,8 @@ class FitRunner:
     def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool,
                  executor: futures.Executor | None = None):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
+        if executor is None and workers > 1:  # the workers fork from here: they draw without importing matplotlib
+            import matplotlib.pyplot  # noqa: F401  (this process draws the series figure with it anyway)
         self.own_pool = process_pool(workers) if executor is None and workers > 1 else None
         self.pool = executor if executor is not None else self.own_pool
         self.caller = os.getpid()
