@@ -137,11 +137,18 @@ class StudentProposal:
         return np.maximum(values, 1e-30 * max(values.max(initial=0.0), 1e-300)), vectors
 
 
+#: How a caller may have the draws of a stage evaluated (on an executor, say): evaluate(log_likelihood, rows)
+#: gives the ln posterior of every row of an (m, d) array.
+Evaluation = Callable[[Callable[[np.ndarray], float], np.ndarray], np.ndarray]
+
+
 def sample_by_importance(log_likelihood: Callable[[np.ndarray], float], proposal: StudentProposal, draws: int,
                          rng: np.random.Generator, width: float,
-                         progress: Callable[[int, int], None] | None = None) -> tuple[np.ndarray, np.ndarray, int]:
+                         progress: Callable[[int, int], None] | None = None,
+                         evaluate: Evaluation | None = None) -> tuple[np.ndarray, np.ndarray, int]:
     """Draws and their ln weights (up to a constant; -inf outside [low, high]) from `proposal`, adapted up to
     :data:`ADAPTATIONS` times while its draws are inefficient (module notes), and how often it adapted.
+    The draws and the weights do not depend on how the ln posteriors are evaluated.
 
     Parameters
     ----------
@@ -156,7 +163,10 @@ def sample_by_importance(log_likelihood: Callable[[np.ndarray], float], proposal
     width : float
         An adapted proposal's scale is `width`^2 x the weighted covariance.
     progress : callable, optional
-        Called as progress(done, draws) after every draw.
+        Called as progress(done, draws) after every draw (with `evaluate`: after every stage).
+    evaluate : callable, optional
+        evaluate(log_likelihood, rows): the ln posterior of each row (an (m, d) array inside the box) all at
+        once, for instance in the workers of an executor; default one after another in this process.
     """
     stage = max(1, int(STAGE_SHARE * draws))
     proposals, sizes = [proposal], [0]
@@ -166,7 +176,8 @@ def sample_by_importance(log_likelihood: Callable[[np.ndarray], float], proposal
         left = draws - x.shape[0]
         n = left if settled or len(proposals) > ADAPTATIONS else min(stage, left)
         more = proposals[-1].draw(rng, n)
-        target = np.concatenate([target, _log_targets(log_likelihood, more, proposal, x.shape[0], draws, progress)])
+        target = np.concatenate([target, _log_targets(log_likelihood, more, proposal, x.shape[0], draws, progress,
+                                                      evaluate)])
         x = np.vstack([x, more])
         sizes[-1] += n
         log_weights = target - _mixture_log_density(x, proposals, sizes)
@@ -186,10 +197,16 @@ def _mixture_log_density(x: np.ndarray, proposals: Sequence[StudentProposal], si
 
 
 def _log_targets(log_likelihood: Callable[[np.ndarray], float], x: np.ndarray, box: StudentProposal, done: int,
-                 total: int, progress: Callable[[int, int], None] | None) -> np.ndarray:
-    """ln posterior of each draw (-inf outside the box), reporting progress after each."""
+                 total: int, progress: Callable[[int, int], None] | None, evaluate: Evaluation | None) -> np.ndarray:
+    """ln posterior of each draw (-inf outside the box), reporting progress after each (after all of them
+    with `evaluate`)."""
     inside = np.all((x >= box.low) & (x <= box.high), axis=1)
     out = np.full(x.shape[0], -np.inf)
+    if evaluate is not None:
+        out[inside] = evaluate(log_likelihood, x[inside])
+        if progress is not None:
+            progress(done + x.shape[0], total)
+        return out
     for i in range(x.shape[0]):
         if inside[i]:
             out[i] = log_likelihood(x[i])

@@ -169,7 +169,8 @@ OPAQUE = {"error_shares", "processing", "calibration", "options", "two_step", "t
           "rate_noise"}
 
 
-def written_keys(data, opaque: set[str] = OPAQUE, found: set[str] | None = None) -> set[str]:
+def written_keys(data, opaque: set[str] = OPAQUE, found: set[str] | None = None,
+                 named: set[str] = NAMED_MAPS) -> set[str]:
     """Every key of a JSON document that names something of dnmr's (see NAMED_MAPS and OPAQUE)."""
     found = set() if found is None else found
     if isinstance(data, dict):
@@ -177,11 +178,11 @@ def written_keys(data, opaque: set[str] = OPAQUE, found: set[str] | None = None)
             found.add(key)
             if key in opaque:
                 continue
-            for inner in (value.values() if key in NAMED_MAPS and isinstance(value, dict) else [value]):
-                written_keys(inner, opaque, found)
+            for inner in (value.values() if key in named and isinstance(value, dict) else [value]):
+                written_keys(inner, opaque, found, named)
     elif isinstance(data, list):
         for value in data:
-            written_keys(value, opaque, found)
+            written_keys(value, opaque, found, named)
     return found
 
 
@@ -311,3 +312,28 @@ def test_names_of_earlier_releases_appear_only_in_the_table_of_renamed_names():
         body = path.read_text().replace(table, "")
         found = [m.group(0) for pattern in stale for m in [re.search(pattern, body)] if m]
         assert not found, f"{path.name} still names {found}"
+
+
+PLAN = ("`dnmr plan --json`", "Activation parameters assumed (`activation`)", "Exchanging pairs (`coalescence`, `measurable_range`, `pairs`)",
+        "Magnetisation transfer (`magnetisation_transfer`)")
+TIMESCALE = ("`dnmr timescale --json`", "Activation parameters assumed (`activation`)", "Exchanging pairs (`coalescence`, `measurable_range`, `pairs`)",
+             "Magnetisation transfer (`magnetisation_transfer`)")
+#: Maps of the planning output keyed by a process, a pair or a spin.
+PLANNING_MAPS = {"activation", "rates_per_s", "regimes", "ln_rate_stderr", "shifts_ppm", "couplings_hz"}
+
+
+@pytest.mark.parametrize("command, sections", [
+    (["plan", "--solvent", "toluene-d8"], PLAN), (["timescale", "--temperature-k", "250"], TIMESCALE)])
+def test_every_planning_key_written_is_documented_and_every_documented_key_written(command, sections):
+    import json
+
+    from click.testing import CliRunner
+
+    model = ROOT / "examples" / "ab_mutual" / "model.toml"  # a ring inversion of an AB pair: a coupling hides
+    result = CliRunner().invoke(dnmr_cli, [command[0], str(model), "--json", *command[1:]])
+    assert result.exit_code == 0, result.output
+    keys = written_keys(json.loads(result.stdout), OPAQUE, named=NAMED_MAPS | PLANNING_MAPS)
+    documented, sometimes = documented_output_keys(*sections)
+    assert not keys - documented, f"{command[0]}: keys written but not in docs/output-keys.md: {sorted(keys - documented)}"
+    missing = documented - sometimes - keys
+    assert not missing, f"{command[0]}: keys in docs/output-keys.md that are not written: {sorted(missing)}"

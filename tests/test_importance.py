@@ -68,6 +68,30 @@ def test_flat_profile_draws_follow_its_density():
                                                  * 0.5 * 0.01 * 8.0 / (2.0 + 0.9 + 0.25 + 0.0525 + 0.04), abs=0.02)
 
 
+def test_evaluating_a_stage_at_once_gives_the_same_draws_and_weights():
+    """The draws come from the generator alone, so evaluating each stage's draws in one call (as on an
+    executor) gives the same draws and weights as one at a time; progress is reported after each stage."""
+    inverse = np.linalg.inv(np.array([[0.04, 0.018], [0.018, 0.0225]]))
+
+    def log_likelihood(x):
+        return -0.5 * float(x @ inverse @ x)
+
+    first = StudentProposal(np.array([0.3, -0.2]), np.diag([0.4, 0.3]), np.array([True, True]),
+                            np.array([-1.0, -1.0]), np.array([1.0, 1.0]))
+    one_by_one = sample_by_importance(log_likelihood, first, 1000, np.random.default_rng(4), 1.2)
+    batches, calls = [], []
+
+    def at_once(function, rows):
+        batches.append(len(rows))
+        return np.array([function(row) for row in rows])
+
+    staged = sample_by_importance(log_likelihood, first, 1000, np.random.default_rng(4), 1.2,
+                                  progress=lambda *a: calls.append(a), evaluate=at_once)
+    assert np.array_equal(staged[0], one_by_one[0]) and np.array_equal(staged[1], one_by_one[1])
+    assert staged[2] == one_by_one[2] and len(calls) == len(batches) and calls[-1] == (1000, 1000)
+    assert sum(batches) <= 1000 and max(batches) > 1  # draws outside the box are not evaluated
+
+
 def test_adaptive_sampler_recovers_a_normal_posterior_from_a_poor_first_proposal():
     """Posterior N(m, C) inside a box it hardly touches; the first proposal is shifted by two standard
     deviations and three times too wide: the sampler adapts, and the weighted mean and covariance match m and

@@ -8,6 +8,7 @@ are checked against statsmodels (WLS on the pooled rows, with an indicator colum
 from __future__ import annotations
 
 import json
+import math
 
 import matplotlib.pyplot as plt
 import numpy as np
@@ -109,6 +110,40 @@ def test_method_offset_matches_statsmodels_with_an_indicator_column(tmp_path):
     assert offset.stderr == pytest.approx(ref.bse[2], rel=1e-8)
     assert offset.value == pytest.approx(np.log(2.0), abs=3 * offset.stderr)
     assert any("the inversion rates lie" in w and "the methods disagree" in w for w in result.warnings)
+
+
+def test_method_offset_counts_held_trend_errors_shared_by_one_methods_rows(tmp_path):
+    # The lineshape rates share a held trend's error (log10_rate_shared_* columns: a common shift and a tilt),
+    # which moves them together against the inversion rates: the offset's error must hold it. Reference:
+    # the spread of statsmodels WLS's indicator coefficient (weights as the line's) over 20,000 draws of
+    # correlated noise, V = diag(sigma^2 - |u|^2) + U U^T (numpy; variance to about 1 %, allow 5 % in the
+    # standard error).
+    hot_k, hot_err = _rates(HOT_K, 0.05, 3)
+    cold_k, cold_err = _rates(COLD_K, 0.01, 4)
+    tilt = (HOT_K - HOT_K.mean()) / np.ptp(HOT_K)
+    u = np.column_stack([np.full(4, 0.04), 0.05 * tilt])  # ln k: most of the 5 % of each rate
+    hot = tmp_path / "lineshape.csv"
+    hot.write_text("temperature_k,process,rate_per_s,rate_stderr,status,log10_rate_shared_shift_ppm_A_1,"
+                   "log10_rate_shared_shift_ppm_A_2\n" + "".join(
+                       f"{t},rotation,{r!r},{e!r},determined,{a / math.log(10)!r},{b / math.log(10)!r}\n"
+                       for t, r, e, (a, b) in zip(HOT_K, hot_k.tolist(), hot_err.tolist(), u.tolist())))
+    cold = tmp_path / "inversion.csv"
+    cold.write_text("temperature_k,process,rate_per_s,rate_stderr,status,method\n" + "".join(
+        f"{t},rotation,{r!r},{e!r},determined,inversion\n" for t, r, e in zip(COLD_K, cold_k.tolist(), cold_err.tolist())))
+    result = eyring_fit_file([hot, cold])[0]
+    offset = method_offset(result, "inversion")
+    t = np.concatenate([HOT_K, COLD_K])
+    sigma = np.concatenate([hot_err / hot_k, cold_err / cold_k])
+    x = np.column_stack([np.ones_like(t), 1.0 / t, (np.arange(8) >= 4).astype(float)])
+    shared = np.vstack([u, np.zeros((4, 2))])
+    v = np.diag(sigma**2 - (shared**2).sum(axis=1)) + shared @ shared.T
+    y = np.log(np.concatenate([hot_k, cold_k]) / t)
+    assert offset.value == pytest.approx(sm.WLS(y, x, weights=1.0 / sigma**2).fit().params[2], rel=1e-8)
+    draws = np.random.default_rng(5).multivariate_normal(np.zeros(8), v, size=20_000)
+    spread = float(np.std(sm.WLS(draws.T, x, weights=1.0 / sigma**2).fit().params[2]))
+    assert offset.stderr == pytest.approx(spread, rel=0.05)
+    independent = sm.WLS(y, x, weights=1.0 / sigma**2).fit(cov_type="fixed scale").bse[2]
+    assert independent < 0.8 * spread  # counted as independent, the shared parts would average away
 
 
 def test_methods_that_agree_raise_no_disagreement(tmp_path):

@@ -12,6 +12,7 @@ standard errors, from the chain's own effective sample size.
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import csv
 import json
 import math
@@ -26,7 +27,9 @@ from click.testing import CliRunner
 from scipy import constants
 
 from closed_forms import mcconnell_two_site
-from dnmr.activation.eyring import eyring_fit
+from dnmr.activation.eyring import eyring_fit, eyring_fit_series
+from dnmr.activation.rates import RateSeries
+from dnmr.activation.temperature_errors import TemperatureErrors
 from dnmr.cli import cli
 from dnmr.errors import InputError
 from dnmr.fitting.spectrumfit import fit_spectrum
@@ -119,9 +122,9 @@ def test_correlated_temperature_errors_give_the_generalised_least_squares_width(
     # Correlated temperature errors (a calibration's common offset): with latent temperatures
     # marginalised, the linearised model is regression with the full error covariance
     # Sigma = W^-1 + J C J^T (J = d ln(k/T)/dT along the line), whose flat-prior posterior has covariance
-    # (X^T Sigma^-1 X)^-1: generalised least squares (Gelman et al., BDA3, section 14.7).  That can be
-    # narrower than the least-squares errors, which propagate C into the weighted fit without using it
-    # (on the demo series 0.19 against 0.31 kJ/mol), and the posterior must say so.  Tolerance: 4 Monte Carlo standard errors plus 5 % for the linearisation.
+    # (X^T Sigma^-1 X)^-1: generalised least squares (Gelman et al., BDA3, section 14.7), as the
+    # least-squares line counts them, and the posterior says that both rest on the line being straight.
+    # Tolerance: 4 Monte Carlo standard errors plus 5 % for the linearisation.
     k = eyring_k(TEMPS) * np.exp(np.random.default_rng(11).normal(0.0, 0.005, TEMPS.size))
     k_err = 0.005 * k
     covariance_t = 1.0 ** 2 + np.diag(np.full(TEMPS.size, 0.2 ** 2))  # K^2: 1 K common, 0.2 K each
@@ -136,7 +139,41 @@ def test_correlated_temperature_errors_give_the_generalised_least_squares_width(
     s = post.summary("enthalpy_kj_mol")
     half_width = 0.5 * (s.ci68[1] - s.ci68[0])
     assert half_width == pytest.approx(gls_dh, rel=4.0 / math.sqrt(s.effective_samples) + 0.05)
-    assert any("correlated" in n and "least-squares errors" in n for n in post.notes)
+    assert half_width == pytest.approx(result.enthalpy_stderr, rel=4.0 / math.sqrt(s.effective_samples) + 0.05)
+    assert any("correlated" in n and "least-squares line" in n and "straight" in n for n in post.notes)
+
+
+def test_eyring_posterior_counts_held_trend_errors_as_the_line_does():
+    # Rate errors shared through held trends (log10_rate_shared_*: most of each rate's error, a common shift
+    # and a tilt): the posterior must spread as the line's estimate does under the correlated errors.
+    # Reference: Monte Carlo with correlated draws (numpy), the spread of statsmodels WLS (the line's weights)
+    # over 20,000 draws from V = diag(sigma^2 - |u|^2) + U U^T; the samples are stretched to the line's
+    # covariance by the open-faced sandwich adjustment (Shaby, J. Comput. Graph. Stat. 23, 853 (2014)).
+    # Tolerance: 4 Monte Carlo standard errors of the chain plus 5 % (the 20,000 draws, about 1 %).
+    sigma = np.linspace(0.02, 0.05, TEMPS.size)
+    tilt = (TEMPS - TEMPS.mean()) / np.ptp(TEMPS)
+    u = np.column_stack([0.7 * sigma, 1.2 * sigma * tilt])
+    u[:2] = 0.0
+    v = np.diag(sigma**2 - (u**2).sum(axis=1)) + u @ u.T
+    k = eyring_k(TEMPS) * np.exp(np.random.default_rng(12).multivariate_normal(np.zeros(TEMPS.size), v))
+    n = TEMPS.size
+    series = RateSeries("", TEMPS, k, sigma * k, np.full(n, np.nan), np.full(n, np.nan),
+                        TemperatureErrors(np.zeros(n), np.zeros((n, 0))),
+                        rate_shared={"shift_ppm_A_1": u[:, 0], "shift_ppm_A_2": u[:, 1]})
+    result = eyring_fit_series(series)
+    post = sample_eyring_posterior(result, steps=3000, walkers=16, seed=5)
+    x = sm.add_constant(1.0 / TEMPS)
+    draws = np.random.default_rng(13).multivariate_normal(np.zeros(n), v, size=20_000)
+    spread = sm.WLS(draws.T, x, weights=1.0 / sigma**2).fit().params.T @ np.array([[0.0, R], [-R / 1e3, 0.0]])
+    for name, reference, column in (("enthalpy_kj_mol", result.enthalpy_stderr, 0), ("entropy_j_mol_k", result.entropy_stderr, 1)):
+        s = post.summary(name)
+        tolerance = 4.0 / math.sqrt(s.effective_samples) + 0.05
+        assert np.std(post.column(name)) == pytest.approx(np.std(spread[:, column]), rel=tolerance)
+        assert np.std(post.column(name)) == pytest.approx(reference, rel=tolerance)
+        assert np.median(post.column(name)) == pytest.approx(getattr(result, name), abs=4 * reference / math.sqrt(s.effective_samples))
+    # without the shared parts the errors are far narrower: the check above tells the two apart
+    assert eyring_fit(TEMPS, k, sigma * k).enthalpy_stderr < 0.7 * np.std(spread[:, 0])
+    assert any("held trends" in note and "Shaby" in note for note in post.notes)
 
 
 def test_two_rates_without_errors_have_no_posterior():
@@ -210,6 +247,48 @@ def test_well_determined_rate_posterior_matches_least_squares(method):
     assert d["quantities"]["log10_rate_flip"]["kind"] == "interval" and d["method"] == method
     assert d["walkers"] == (12 if method == "emcee" else 1)
     assert "error scale" in post.report() and "flip" in post.report()
+
+
+@pytest.mark.parametrize("pool", [futures.ProcessPoolExecutor, futures.ThreadPoolExecutor])
+def test_importance_posterior_on_an_executor_equals_the_serial_one(pool):
+    # The draws come from this process's seeded generator and each ln posterior is a function of its draw
+    # alone, so the workers of an executor (processes, or threads sharing one payload) must give the same
+    # weights and samples as the serial run, bit for bit.
+    fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    serial = sample_spectrum_posterior(fit, draws=600, seed=2)
+    calls, tasks = [], []
+
+    class Counted(pool):
+        def submit(self, *args, **kwargs):
+            tasks.append(args[0])
+            return super().submit(*args, **kwargs)
+
+    with Counted(max_workers=2) as executor:
+        spread = sample_spectrum_posterior(fit, draws=600, seed=2, executor=executor,
+                                           progress=lambda *a: calls.append(a))
+    assert len(tasks) >= 600 // 50  # the draws went to the executor, 50 to a task
+    assert np.array_equal(spread.samples, serial.samples)
+    assert spread.importance == serial.importance and spread.notes == serial.notes
+    assert calls[-1] == (600, 600)  # after every stage of draws
+
+
+def test_emcee_on_an_executor_equals_the_serial_chain():
+    # The walkers' moves are drawn here from the seed; each half of the walkers is evaluated on the executor
+    # at every step: the same chain as in this process, bit for bit.
+    fit = fit_spectrum(mcconnell_spectrum(120.0, 0.1, 3), two_site_model(), linewidth="fixed", **SMALL)
+    settings = {"method": "emcee", "steps": 60, "walkers": 8, "seed": 1}
+    serial = sample_spectrum_posterior(fit, **settings)
+    tasks = []
+
+    class Counted(futures.ProcessPoolExecutor):
+        def submit(self, *args, **kwargs):
+            tasks.append(args[0])
+            return super().submit(*args, **kwargs)
+
+    with Counted(max_workers=2) as executor:
+        spread = sample_spectrum_posterior(fit, executor=executor, **settings)
+    assert len(tasks) >= 2 * 60  # every step's two halves of the 8 walkers went to the executor, 4 to a task
+    assert np.array_equal(spread.samples, serial.samples) and spread.notes == serial.notes
 
 
 @pytest.mark.parametrize("method", ["importance", "emcee"])

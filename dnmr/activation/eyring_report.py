@@ -11,7 +11,7 @@ import math
 import numpy as np
 
 import dnmr  # for annotations only: the result's class is named through the public API (no import circle)
-from dnmr.activation.line_fit import BASIS_SCATTER
+from dnmr.activation.line_fit import BASIS_SCATTER, SHARE_HELD
 from dnmr.activation.rates import DEFAULT_METHOD
 from dnmr.formatting import format_with_error
 from dnmr.kinetics import KCAL_PER_KJ
@@ -67,7 +67,9 @@ def _summary_lines(r: "dnmr.EyringResult", d: dict) -> list[str]:
     if r.error_basis == BASIS_SCATTER:
         lines.append(f"  scatter of ln k      {r.eyring.scatter:.3g} (about {100 * r.eyring.scatter:.2g} % in k)")
     elif r.eyring.dof > 0:
-        shared = " (shared temperature errors counted as correlated)" if r.temperature_error_sources else ""
+        kinds = (["temperature"] if r.temperature_error_sources else []) + (
+            ["held-trend rate"] if SHARE_HELD in r.eyring.covariance_parts else [])
+        shared = f" (shared {' and '.join(kinds)} errors counted as correlated)" if kinds else ""
         lines.append(f"  reduced chi-square   {d['reduced_chi_square']:.3g} ({r.eyring.dof} degrees of freedom, "
                      f"p = {d['chi_square_p_value']:.2g}){shared}")
     if d["temperature_errors"] == "none":

@@ -460,8 +460,11 @@ class EyringResult(NotebookView):
 def method_offset(result: EyringResult, method: str) -> Estimate:
     """Offset of one method's rates from the Eyring line through the other rates, in ln k, with its error.
 
-    The line is refitted with one more coefficient, a constant added to ln k for the rows of `method`
-    (generalised least squares with the covariance of the fit: rate and temperature errors); the
+    The line is refitted with one more coefficient, a constant added to ln k for the rows of `method`,
+    weighted as the line was (generalised least squares with its rate and temperature errors); the
+    coefficient's variance is that of this estimate under the line's full covariance (a V_full a^T, a the
+    coefficient's row of the linear map), so rate errors shared through held trends, which move one
+    method's rows together against the others', count as correlated, as in the line's errors. The
     coefficient and its standard error say whether the methods agree (a systematic difference between
     them shows as an offset several standard errors from zero). Without rate errors the error comes from
     the scatter about the three-coefficient fit alone (NaN with fewer than 4 rates). NaN when the rows cannot
@@ -485,13 +488,12 @@ def method_offset(result: EyringResult, method: str) -> Estimate:
     design = np.column_stack([np.ones_like(x), x, (result.methods == method).astype(float)])
     if np.linalg.matrix_rank(design) < 3:
         return Estimate(math.nan, math.nan)
-    scatter = result.error_basis == BASIS_SCATTER
-    covariance = ResidualCovariance(np.ones_like(x), np.zeros((len(x), 0))) if scatter else line.residual_covariance
-    fit = generalised_least_squares(design, y, covariance)
-    variance = fit.normal[2, 2]
     dof = len(x) - 3
-    if scatter:
-        variance = variance * fit.chi_square / dof if dof > 0 else math.nan
-    elif result.error_basis == BASIS_SCALED and dof > 0:
-        variance *= fit.chi_square / dof
+    if result.error_basis == BASIS_SCATTER:
+        fit = generalised_least_squares(design, y, ResidualCovariance(np.ones_like(x), np.zeros((len(x), 0))))
+        return Estimate(float(fit.beta[2]), math.sqrt(fit.normal[2, 2] * fit.chi_square / dof) if dof > 0 else math.nan)
+    fit = generalised_least_squares(design, y, line.residual_covariance)
+    variance = line.full_covariance.sandwich(fit.linear_map[2:])[0, 0]
+    if result.error_basis == BASIS_SCALED and dof > 0:
+        variance *= generalised_least_squares(design, y, line.full_covariance).chi_square / dof
     return Estimate(float(fit.beta[2]), math.sqrt(variance))

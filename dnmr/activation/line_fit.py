@@ -43,6 +43,11 @@ over the rows although they move the whole line.  The shared parts are kept out 
 purpose: they are linearised sensitivities of rates that depend on the held values far from linearly
 past coalescence, and a generalised least-squares fit trusting them pulls the line by their curvature
 (measured on the realistic series of the tests: dH‡ biased by about 1.7 of its standard errors).
+What is judged against the errors counts them as correlated too (``LineFit.full_covariance``): the
+chi-square is the generalised least-squares minimum under the full covariance (the line takes up most of
+a shared part, so counted as independent they would make the rates look to scatter far less than their
+errors), and the studentised residuals divide by the variance the residuals of the weighted line have
+under it.
 
 Standard errors
 ---------------
@@ -57,7 +62,10 @@ Residuals
 ---------
 Outliers are flagged by studentised residuals (beyond 3 standard deviations by default, common
 practice; judged one at a time so that one gross outlier does not make its neighbours look bad), never
-removed.
+removed. Each residual is divided by its standard deviation under the full covariance (shared errors
+correlated), and with errors of unknown scale also by the scatter without it (externally studentised:
+the chi-square without the point, by the mean-shift drop that reduces to the textbook weighted
+least-squares formula without shared errors).
 """
 from __future__ import annotations
 
@@ -82,6 +90,7 @@ LEVERAGE_TOLERANCE = 1e-9  # 1 - h below this: the point fixes the line, its res
 SLOPE_TOLERANCE = 1e-9  # relative change of the slope that ends the effective-variance iteration (rounding
 # leaves about 1e-10 on tens of thousands of rows)
 MAX_ITERATIONS = 50
+OWN_VARIANCE_FLOOR = 1e-6  # least share of a rate's variance left independent when its shared parts are taken out
 
 
 class Estimate(NamedTuple):
@@ -111,13 +120,46 @@ class ResidualCovariance:
         d_rhs = rhs / (self.diagonal[:, None] if rhs.ndim == 2 else self.diagonal)
         if not self.shared.shape[1]:
             return d_rhs
-        d_u = self.shared / self.diagonal[:, None]
-        core = np.eye(self.shared.shape[1]) + self.shared.T @ d_u
+        d_u, core = self._woodbury()
         return d_rhs - d_u @ np.linalg.solve(core, self.shared.T @ d_rhs)
+
+    def _woodbury(self) -> tuple[np.ndarray, np.ndarray]:
+        """D^-1 U and the core I + U^T D^-1 U of the Woodbury identity."""
+        d_u = self.shared / self.diagonal[:, None]
+        return d_u, np.eye(self.shared.shape[1]) + self.shared.T @ d_u
 
     def variances(self) -> np.ndarray:
         """Diagonal of V."""
         return self.diagonal + (self.shared**2).sum(axis=1)
+
+    def inverse_diagonal(self) -> np.ndarray:
+        """Diagonal of V^-1 (Woodbury), O(n m^2)."""
+        d_u, core = self._woodbury()
+        return 1.0 / self.diagonal - np.einsum("ij,ij->i", d_u @ np.linalg.inv(core), d_u)
+
+    def correlated(self, columns: np.ndarray) -> "ResidualCovariance":
+        """The same covariance with `columns` (n, m), parts of the independent variances that the rows
+        share, counted as correlated: diagonal - sum of their squares, shared part widened by them.
+
+        The independent rest keeps at least :data:`OWN_VARIANCE_FLOOR` of its variance, so that a table's
+        rounding (a shared part a little above the stated error) cannot make V singular."""
+        if not columns.shape[1]:
+            return self
+        own = np.maximum(self.diagonal - (columns**2).sum(axis=1), OWN_VARIANCE_FLOOR * self.diagonal)
+        return ResidualCovariance(own, np.hstack([self.shared, columns]))
+
+    def sandwich(self, linear_map: np.ndarray) -> np.ndarray:
+        """A V A^T: the covariance of coefficients A y (A a (p, n) linear map) when y has this covariance."""
+        a_shared = linear_map @ self.shared
+        return (linear_map * self.diagonal) @ linear_map.T + a_shared @ a_shared.T
+
+    def residual_variances(self, design: np.ndarray, linear_map: np.ndarray) -> np.ndarray:
+        """Diagonal of (I - X A) V (I - X A)^T: the variances of the residuals y - X A y of a linear fit
+        (X `design` (n, p), A `linear_map` (p, n)) when y has this covariance, O(n p^2 + n m p)."""
+        fitted_self = (design * linear_map.T).sum(axis=1)  # diagonal of X A
+        spread = np.einsum("ij,jk,ik->i", design, (linear_map * self.diagonal) @ linear_map.T, design)
+        shared_left = self.shared - design @ (linear_map @ self.shared)
+        return self.diagonal * (1.0 - 2.0 * fitted_self) + spread + (shared_left**2).sum(axis=1)
 
 
 class GlsSolution(NamedTuple):
@@ -152,14 +194,6 @@ def _line(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.n
     return ym - slope * xm, slope
 
 
-def _normal_covariance(x: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """(X^T W X)^-1 of the straight line, written with centred sums for accuracy."""
-    sw = w.sum()
-    xm = (w * x).sum() / sw
-    sxx = (w * (x - xm) ** 2).sum()
-    return np.array([[1 / sw + xm**2 / sxx, -xm / sxx], [-xm / sxx, 1 / sxx]])
-
-
 SHARE_RATES = "rates"
 SHARE_SCATTER = "scatter"
 SHARE_TEMPERATURES = "temperature scatter"
@@ -186,9 +220,18 @@ class LineFit:
     weights : ndarray
         1/sigma^2 of ln k from the rate errors alone (ones without rate errors).
     residual_covariance : ResidualCovariance
-        Covariance V of the residuals the line was fitted with (rates and temperatures).
+        Covariance V of the residuals the line was fitted with (rates and temperatures): its weights.
+    full_covariance : ResidualCovariance
+        Covariance of ln k about the line with every shared error counted as correlated: V with the
+        parts of the rate errors shared through held trends moved off the diagonal into shared columns
+        (V itself when no rate errors are shared). The line's errors, its chi-square and its residuals
+        are judged against it.
+    linear_map : ndarray
+        (2, n) map A of the fit: (intercept, slope) = A y.
     chi_square : float
-        r^T V^-1 r, the shared temperature errors counted as correlated (NaN without rate errors).
+        Goodness of fit under `full_covariance`: the least r^T V_full^-1 r over all lines (the generalised
+        least-squares minimum, chi-square with n - 2 degrees of freedom whichever weights drew the line;
+        r^T V^-1 r of the line's own residuals when no rate errors are shared). NaN without rate errors.
     dof : int
         Degrees of freedom, n - 2.
     scatter : float
@@ -203,6 +246,8 @@ class LineFit:
     residuals: np.ndarray
     weights: np.ndarray
     residual_covariance: ResidualCovariance
+    full_covariance: ResidualCovariance
+    linear_map: np.ndarray
     chi_square: float
     dof: int
     scatter: float
@@ -265,13 +310,16 @@ def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     weighted_ss = float((w * fit.residuals**2).sum())
     scatter = math.sqrt(weighted_ss / dof) if dof > 0 else math.nan
     a = fit.linear_map
+    full = covariance
     if have_errors:
         # the parts of the rate errors shared through held trends move the rows together: the line keeps its
-        # weights (the rate errors as given), and its covariance counts those parts as correlated
-        held = a @ np.column_stack(list(series.rate_shared.values())) if series.rate_shared else np.zeros((2, 0))
-        own = np.clip(sigma2 - sum(v**2 for v in series.rate_shared.values()), 0.0, None)
+        # weights (the rate errors as given), and its covariance and chi-square count those parts as correlated
+        rate_shared = series.rate_shared_columns
+        full = covariance.correlated(rate_shared)
+        held = a @ rate_shared
+        own = np.clip(sigma2 - (rate_shared**2).sum(axis=1), 0.0, None)
         parts = {SHARE_RATES: (a * own) @ a.T, SHARE_TEMPERATURES: (a * independent) @ a.T, SHARE_HELD: held @ held.T}
-        chi_square = fit.chi_square
+        chi_square = generalised_least_squares(design, y, full).chi_square
     else:
         parts = {SHARE_SCATTER: fit.normal * scatter**2}
         chi_square = math.nan
@@ -279,7 +327,7 @@ def fit_line(series: RateSeries, power: int, scaled: bool) -> LineFit:
     if scaled and have_errors and dof > 0:
         parts = {name: part * chi_square / dof for name, part in parts.items()}
     parts = {name: part for name, part in parts.items() if part.any() or name in (SHARE_RATES, SHARE_SCATTER)}
-    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance,
+    return LineFit(float(fit.beta[0]), slope, sum(parts.values()), parts, fit.residuals, w, covariance, full, a,
                    chi_square, dof, scatter)
 
 
@@ -287,33 +335,39 @@ def studentised_residuals(series: RateSeries, basis: str) -> np.ndarray:
     """Studentised residuals of the Eyring line through the rows of `series` (all values), with the error
     basis `basis` (one of the ``BASIS_*`` values).
 
-    With known errors e_i / sqrt(Var e_i), Var e = V - X C X^T (V the residual covariance with the
-    temperature errors, C the covariance of the line); otherwise externally studentised,
-    e sqrt(w) / (s_(i) sqrt(1 - h)), s_(i) the scatter without point i. A point of leverage h = 1 (each
-    of two points, or one whose weight dwarfs the others') fixes the line through itself: its residual
-    is zero whatever the data, has no variance left (1 - h is zero, or a rounding error either side of
-    it) and cannot be judged, so it gets NaN.
+    With known errors e_i / sqrt(Var e_i), Var e the diagonal of (I - X A) V_full (I - X A)^T (A the
+    line's linear map, V_full its full covariance: rate and temperature errors, shared parts correlated;
+    V - X C X^T when the line is weighted by V_full itself). With errors of unknown scale the same,
+    externally studentised: divided by s_(i), the square root of the reduced chi-square without point i
+    (chi-square minus the drop an extra coefficient for point i would give, (e_i^T P y)^2 / e_i^T P e_i,
+    P = V^-1 - V^-1 X C X^T V^-1, C = (X^T V^-1 X)^-1, over n - 3 degrees of freedom), with V = V_full
+    (the identity when the errors come from the scatter alone); without shared errors this is the
+    textbook e sqrt(w) / (s_(i) sqrt(1 - h)) of weighted least squares. A point of leverage h = 1 (each of two
+    points, or one whose weight dwarfs the others') fixes the line through itself: its residual is zero
+    whatever the data, has no variance left (1 - h is zero, or a rounding error either side of it) and
+    cannot be judged, so it gets NaN.
     """
     line = fit_line(series, power=1, scaled=basis != BASIS_GIVEN)
-    x, e, w = 1.0 / series.temperature_k, line.residuals, line.weights
+    x, e = 1.0 / series.temperature_k, line.residuals
+    design = np.column_stack([np.ones_like(x), x])
+    covariance = line.full_covariance if basis != BASIS_SCATTER else ResidualCovariance(np.ones_like(x), design[:, :0])
+    # a part shared through a held trend moves the rows together and the line takes most of it up: it
+    # leaves less in the residuals than if it were independent
+    variance = covariance.residual_variances(design, line.linear_map)
+    judged = variance > LEVERAGE_TOLERANCE * covariance.variances()
     out = np.full_like(e, np.nan)
     if basis == BASIS_GIVEN:
-        variance = line.residual_covariance.variances()
-        # judged as the line was weighted: the held trends' shared errors as if independent
-        c = line.covariance - line.covariance_parts.get(SHARE_HELD, 0.0)
-        keep = 1.0 - (c[0, 0] + 2 * x * c[0, 1] + x * x * c[1, 1]) / variance
-        judged = keep > LEVERAGE_TOLERANCE
-        out[judged] = e[judged] / np.sqrt(variance[judged] * keep[judged])
+        out[judged] = e[judged] / np.sqrt(variance[judged])
         return out
-    normal = _normal_covariance(x, w)
-    keep = 1.0 - w * (normal[0, 0] + 2 * x * normal[0, 1] + x * x * normal[1, 1])
-    judged = keep > LEVERAGE_TOLERANCE
     dof = len(x) - 3
     if dof <= 0:
         return out
-    deleted_ss = (w * e**2).sum() - w[judged] * e[judged] ** 2 / keep[judged]
+    fit = generalised_least_squares(design, e + design @ [line.intercept, line.slope], covariance)
+    weighted = covariance.solve(design)
+    kept_precision = covariance.inverse_diagonal() - np.einsum("ij,jk,ik->i", weighted, fit.normal, weighted)
+    deleted = fit.chi_square - covariance.solve(fit.residuals)[judged] ** 2 / kept_precision[judged]
     with np.errstate(divide="ignore", invalid="ignore"):  # exact data: 0/0, no residual to judge
-        out[judged] = e[judged] * np.sqrt(w[judged]) / np.sqrt(deleted_ss / dof * keep[judged])
+        out[judged] = e[judged] / np.sqrt(variance[judged] * deleted / dof)
     return out
 
 

@@ -10,25 +10,39 @@ scatter (no rate errors, or ``scale_errors``), a common factor f on those errors
 the prior p(f) ~ 1/f (flat in ln f), which makes the marginal posterior of the line the Student t of
 Gelman et al., Bayesian Data Analysis, 3rd ed., section 14.2.  Temperature errors are latent variables:
 the true temperatures are T_obs + L z with z standard normal and L L^T the temperatures' covariance (so
-correlated calibration errors are covered), and z is sampled with the line and marginalised.  ΔG‡ at
-298.15 K and at the harmonic-mean temperature of the data (weighted as in the fit) follow from every
-sample.
+correlated calibration errors are covered), and z is sampled with the line and marginalised, as the
+least-squares line counts them (generalised least squares).  ΔG‡ at 298.15 K and at the harmonic-mean
+temperature of the data (weighted as in the fit) follow from every sample.
+
+Rate errors shared through held trends
+--------------------------------------
+The parts of the rate errors that ``dnmr fit`` shares between rows through held slow-exchange trends
+(``log10_rate_shared_*``) are counted as the least-squares line counts them: the rates keep their errors
+as given as the likelihood's weights (a likelihood with the shared parts correlated would be generalised
+least squares, which their curvature biases; see :mod:`dnmr.activation.line_fit`), and the samples of
+(ΔH‡, ΔS‡) are stretched about the least-squares estimate so that their covariance becomes the line's,
+which counts those parts as correlated: the open-faced sandwich adjustment of Shaby, J. Comput. Graph.
+Stat. 23, 853 (2014), theta* = theta_hat + Omega (theta - theta_hat) with Omega = L_line L_work^-1
+(Cholesky factors of the line's covariance and of the same line's with the shared parts counted as
+independent, which is what the unadjusted samples spread by).
 """
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from types import ModuleType
 
 import numpy as np
 
 import dnmr  # for annotations only: the result's class is named through the public API (no import circle)
+from dnmr.activation.line_fit import SHARE_HELD, fit_line
 from dnmr.activation.temperature_errors import covariance_factor
 from dnmr.errors import InputError
 from dnmr.kinetics import GAS_CONSTANT, STANDARD_TEMPERATURE_K
 from dnmr.posterior import Posterior, Quantity, posterior_from_chain, require_emcee, sampler_settings, starting_ball
 
 R_KJ = GAS_CONSTANT / 1e3  # kJ/(mol K)
+TO_ENERGY = np.array([[0.0, -R_KJ], [GAS_CONSTANT, 0.0]])  # d(ΔH‡, ΔS‡)/d(intercept, slope) of the Eyring line
 
 
 def sample_eyring_posterior(
@@ -44,9 +58,10 @@ def sample_eyring_posterior(
 
     Flat priors on ΔH‡ and ΔS‡; ln k normal with the rate errors, or with a common factor on them
     sampled under p(f) ~ 1/f when the analysis took its errors from the scatter; temperature errors as
-    latent temperatures T_obs + L z, z standard normal, L L^T the temperatures' covariance, marginalised
-    (see the module notes).  Bound rows are left out, as in the least-squares fit; the probability that
-    the line respects each of them is reported in the notes.
+    latent temperatures T_obs + L z, z standard normal, L L^T the temperatures' covariance, marginalised;
+    rate errors shared through held trends counted as correlated as in the least-squares line, by the
+    open-faced sandwich adjustment (see the module notes).  Bound rows are left out, as in the
+    least-squares fit; the probability that the line respects each of them is reported in the notes.
 
     Parameters
     ----------
@@ -67,9 +82,17 @@ def sample_eyring_posterior(
     line = _EyringLikelihood.of(result)
     walkers, burn = sampler_settings(steps, walkers, burn, thin, line.dimensions)
     raw, acceptance = _run_sampler(emcee, line, result, steps, walkers, seed)
+    adjustment = held_trend_adjustment(result)
+    if adjustment is not None:
+        centre = np.array([result.enthalpy_kj_mol, result.entropy_j_mol_k])
+        raw[:, :, :2] = centre + (raw[:, :, :2] - centre) @ adjustment.T
     t_hm = result.harmonic_mean_temperature_k
     full, quantities = _quantities(raw, t_hm, line.scaled)
     notes = _bound_notes(result, line, full[burn:].reshape(-1, full.shape[-1])) + _correlation_notes(result, line)
+    if adjustment is not None:
+        notes.append("the rate errors shared through held trends are counted as correlated, as in the "
+                     "least-squares line: the samples of ΔH‡ and ΔS‡ are stretched about its estimate to its "
+                     "covariance (open-faced sandwich adjustment, Shaby 2014)")
     title = f"the Eyring line of process {result.process!r}" if result.process else "the Eyring line"
     post = posterior_from_chain(full, quantities, acceptance=acceptance, walkers=walkers, steps=steps, burn=burn,
                                 thin=thin, seed=seed, title=title, likelihood=line.describe(),
@@ -77,6 +100,18 @@ def sample_eyring_posterior(
                                 extra={"harmonic_mean_temperature_k": t_hm})
     post.extra["correlation_enthalpy_entropy"] = post.correlation("enthalpy_kj_mol", "entropy_j_mol_k")
     return post
+
+
+def held_trend_adjustment(result: "dnmr.EyringResult") -> np.ndarray | None:
+    """Omega of the open-faced sandwich adjustment (2 x 2, acting on (ΔH‡ / kJ mol^-1, ΔS‡ / J mol^-1 K^-1)):
+    L_line L_work^-1, so that Omega C_work Omega^T = C_line (see the module notes); None when no rate
+    errors are shared through held trends (the samples then spread as the line's errors already)."""
+    if SHARE_HELD not in result.eyring.covariance_parts:
+        return None
+    fitted = result.series.subset(result.used)
+    working = fit_line(replace(fitted, rate_shared={}), power=1, scaled=result.errors_scaled).covariance
+    line, work = (TO_ENERGY @ c @ TO_ENERGY.T for c in (result.eyring.covariance, working))
+    return np.linalg.cholesky(line) @ np.linalg.inv(np.linalg.cholesky(work))
 
 
 @dataclass(frozen=True)
@@ -155,10 +190,9 @@ def _run_sampler(emcee: ModuleType, line: _EyringLikelihood, result: "dnmr.Eyrin
     parameters) and the mean acceptance fraction."""
     rng = np.random.default_rng(seed)
     ndim, scaled = line.dimensions, line.scaled
-    to_energy = np.array([[0.0, -R_KJ], [GAS_CONSTANT, 0.0]])  # (intercept, slope) -> (ΔH‡, ΔS‡)
     centre = [result.enthalpy_kj_mol, result.entropy_j_mol_k]
     cov = np.zeros((ndim, ndim))
-    cov[:2, :2] = to_energy @ result.eyring.covariance @ to_energy.T
+    cov[:2, :2] = TO_ENERGY @ result.eyring.covariance @ TO_ENERGY.T
     if scaled:
         centre.append(math.log(max(result.eyring.scatter, 1e-300)))
         cov[2, 2] = 1.0 / (2.0 * max(line.ln_rate.size - 2, 1))  # the spread of ln s for n - 2 degrees of freedom
@@ -206,15 +240,12 @@ def _bound_notes(result: "dnmr.EyringResult", line: _EyringLikelihood, kept: np.
 
 
 def _correlation_notes(result: "dnmr.EyringResult", line: _EyringLikelihood) -> list[str]:
-    """A note when the temperature errors are correlated: the posterior may then be narrower than the
-    least-squares errors."""
+    """A note when the temperature errors are correlated: the rates pin part of their common error."""
     cov_t = line.temperature_covariance
     off_diagonal = cov_t - np.diag(np.diag(cov_t))
     if np.abs(off_diagonal).max(initial=0.0) <= 1e-9 * max(float(np.abs(cov_t).max(initial=0.0)), 1e-300):
         return []
     return [
         "the temperature errors are correlated (a calibration): through the straightness of the Eyring line the "
-        "rates pin part of that common error, so this posterior can be narrower than the least-squares errors "
-        f"(ΔH‡ ± {result.enthalpy_stderr:.2g} kJ/mol, ΔS‡ ± {result.entropy_stderr:.2g} J/(mol K)), which do "
-        "not use it; quote those unless the line is known to be straight (no heat capacity of activation, "
-        "no tunnelling)"]
+        "rates pin part of that common error, here as in the least-squares line (generalised least squares), so "
+        "both rest on the line being straight (no heat capacity of activation, no tunnelling)"]

@@ -118,6 +118,11 @@ class RateSeries:
         """The distinct methods, in order of first appearance."""
         return tuple(dict.fromkeys(self.methods.tolist()))
 
+    @property
+    def rate_shared_columns(self) -> np.ndarray:
+        """The parts of the rate errors shared through held trends as an (n, m) array, ln k (m = 0 when none)."""
+        return np.column_stack(list(self.rate_shared.values())) if self.rate_shared else np.zeros((len(self), 0))
+
     def row_source(self, row: int) -> str | None:
         """The file a row comes from (the series' source for one table)."""
         return self.row_files[row] if self.row_files is not None else self.source

@@ -29,14 +29,16 @@ between them where it moves: near its bound the rate trades against the linewidt
 misjudges the posterior (a parameter at a bound), the proposal adapts to the weighted draws.  Each draw costs one lineshape
 evaluation, 4000 draws by default, against walkers x steps for an ensemble; the weights' effective number
 and Pareto shape tell how far to trust them, and where the shape passes 0.7 the posterior is sampled
-again by lmfit's emcee route (``lmfit.Minimizer.emcee``) from the least-squares optimum, with a note.
+again by emcee's ensemble from the least-squares optimum, with a note.  Given an executor, both samplers
+evaluate their lineshapes there (the draws, and each half of the walkers at every step), while the random
+numbers are drawn here, so that the samples do not depend on where they were evaluated.
 """
 from __future__ import annotations
 
-import contextlib
-import io
+import concurrent.futures as futures
 import math
 import re
+import threading
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
@@ -47,7 +49,7 @@ import dnmr  # for annotations only: the fit's class is named through the public
 from dnmr.errors import InputError
 from dnmr.fitting.parameters import ParameterLayout
 from dnmr.fitting.problem import FitProblem, refine
-from dnmr.fitting.workers import single_threaded_blas
+from dnmr.fitting.workers import SharedPayload, single_threaded_blas
 from dnmr.importance import FlatProfile, StudentProposal, posterior_from_draws, sample_by_importance
 from dnmr.posterior import (
     BOUND_KINDS,
@@ -78,6 +80,10 @@ PATH_STEP = 0.5
 PATH_MOST_POINTS = 100
 #: Only where chi-square is within this many error scales of the fit's does the path matter (5 sigma).
 PATH_REACH = 25.0
+#: Draws of importance sampling, and walkers of the ensemble, evaluated by one task on an executor (each a
+#: lineshape evaluation; the ensemble evaluates half its walkers at a time and waits for them).
+DRAWS_PER_TASK = 50
+WALKERS_PER_TASK = 4
 
 
 def _label(name: str) -> tuple[str, str]:
@@ -128,6 +134,7 @@ def sample_spectrum_posterior(
     thin: int = 1,
     seed: int | None = 0,
     progress: Callable[[int, int], None] | None = None,
+    executor: futures.Executor | None = None,
 ) -> Posterior:
     """Posterior samples of the free parameters of one spectrum fit.
 
@@ -158,7 +165,13 @@ def sample_spectrum_posterior(
     seed : int or None
         Seed of the draws, the resampling, the walkers' starts and the ensemble (None: fresh each call).
     progress : callable, optional
-        Called as progress(done, total) after every draw (importance) or step (ensemble).
+        Called as progress(done, total) after every draw (importance; with `executor` after every stage of
+        draws) or step (ensemble).
+    executor : concurrent.futures.Executor, optional
+        Where the lineshapes are evaluated (a process pool, a Dask client's ``get_executor()``...; left
+        running): the draws of importance sampling, :data:`DRAWS_PER_TASK` to a task, or each half of the
+        ensemble's walkers at every step, :data:`WALKERS_PER_TASK` to a task.  The draws and the walkers' moves are made here from the seed, so
+        the samples are the same as in this process.
 
     Returns
     -------
@@ -178,13 +191,13 @@ def sample_spectrum_posterior(
     if method == "importance":
         if isinstance(draws, bool) or not isinstance(draws, (int, np.integer)) or draws < 100:
             raise InputError(f"draws must be a whole number of at least 100, got {draws!r}", where="draws")
-        post = _importance_posterior(setup, int(draws), seed, progress)
+        post = _importance_posterior(setup, int(draws), seed, progress, executor)
         if not post.importance["pareto_k"] > PARETO_LIMIT:
             return post
         notes.append(f"importance sampling from the fit was not reliable here (Pareto shape of its weights "
                      f"{post.importance['pareto_k']:.2f} > {PARETO_LIMIT}): sampled with the emcee ensemble instead")
     require_emcee()
-    return _ensemble_posterior(setup, steps, walkers, burn, thin, seed, progress, notes)
+    return _ensemble_posterior(setup, steps, walkers, burn, thin, seed, progress, notes, executor)
 
 
 class _Setup:
@@ -208,40 +221,32 @@ class _Setup:
         return np.array([n in self.rate_of and self.rate_of[n].status in NOT_INTERVALS for n in self.free])
 
 
-def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: int | None, thin: int,
-                        seed: int | None, progress: Callable[[int, int], None] | None, notes: list[str]) -> Posterior:
-    """The posterior by lmfit's emcee route, the walkers about the least-squares optimum."""
+def _ensemble_posterior(setup: _Setup, steps: int, walkers: int | None, burn: int | None, thin: int, seed: int | None,
+                        progress: Callable[[int, int], None] | None, notes: list[str],
+                        executor: futures.Executor | None) -> Posterior:
+    """The posterior by emcee's ensemble, the walkers about the least-squares optimum, evaluated on `executor`
+    when one is given."""
     free, params, rate_of = setup.free, setup.params, setup.rate_of
     walkers, burn = sampler_settings(steps, walkers, burn, thin, len(free))
     start = _walker_starts(np.random.default_rng(seed), setup.fit, params, free, rate_of, walkers)
-    residual = _scaled_residual(setup.problem, setup.fit.error_scale, walkers, steps, progress)
-    result = _run_emcee(residual, params, start, steps, walkers, seed)
-    if progress is not None:
-        progress(steps, steps)
-    chain = np.asarray(result.chain)[:, :, [result.var_names.index(n) for n in free]]
+    with _Evaluation(_LogPosterior(setup), executor, WALKERS_PER_TASK) as evaluate:
+        chain, acceptance = _run_emcee(evaluate, start, steps, seed, progress)
     full, quantities = _with_rates(chain, params, free, rate_of)
     shown = _most_correlated(chain[burn:].reshape(-1, len(free)), free, [n for n in free if n in rate_of])
-    return posterior_from_chain(full, quantities, acceptance=float(np.mean(result.acceptance_fraction)),
+    return posterior_from_chain(full, quantities, acceptance=acceptance,
                                 walkers=walkers, steps=steps, burn=burn, thin=thin, seed=seed,
                                 likelihood=setup.likelihood, shown=shown, title=setup.title, notes=notes)
 
 
-def _importance_posterior(setup: _Setup, draws: int, seed: int | None,
-                          progress: Callable[[int, int], None] | None) -> Posterior:
-    """The posterior by importance sampling from the fit (module notes)."""
-    residual = _scaled_residual(setup.problem, setup.fit.error_scale, 1, draws, None)
-    params = setup.params.copy()  # moved to every draw in turn
-
-    def log_likelihood(x: np.ndarray) -> float:
-        for name, value in zip(setup.free, x):
-            params[name].value = float(value)
-        params.update_constraints()
-        r = residual(params)
-        return -0.5 * float(r @ r)
-
-    with single_threaded_blas():
-        x, log_weights, adapted = sample_by_importance(log_likelihood, _fit_proposal(setup), draws,
-                                                       np.random.default_rng(seed), PROPOSAL_WIDTH, progress)
+def _importance_posterior(setup: _Setup, draws: int, seed: int | None, progress: Callable[[int, int], None] | None,
+                          executor: futures.Executor | None) -> Posterior:
+    """The posterior by importance sampling from the fit (module notes), its draws evaluated on `executor`
+    when one is given."""
+    log_posterior = _LogPosterior(setup)
+    with _Evaluation(log_posterior, executor, DRAWS_PER_TASK) as evaluate, single_threaded_blas():
+        x, log_weights, adapted = sample_by_importance(log_posterior, _fit_proposal(setup), draws,
+                                                       np.random.default_rng(seed), PROPOSAL_WIDTH, progress,
+                                                       None if executor is None else lambda _, rows: evaluate(rows))
     full, quantities = _with_rates(x[:, None, :], setup.params, setup.free, setup.rate_of)
     shown = _most_correlated(x, setup.free, [n for n in setup.free if n in setup.rate_of])
     words = (f"a Student t about the least-squares optimum with {PROPOSAL_WIDTH:g}^2 x its covariance"
@@ -347,30 +352,107 @@ def _walker_starts(rng: np.random.Generator, fit: "dnmr.SpectrumFit", params: lm
     return start
 
 
-def _scaled_residual(problem: FitProblem, error_scale: float, walkers: int, steps: int,
-                     progress: Callable[[int, int], None] | None) -> Callable:
+class _ScaledResidual:
     """The fit's residual divided by the square root of its error scale (1e3 everywhere for a model out of
-    range), reporting progress once per step of the ensemble."""
-    root_scale = math.sqrt(error_scale)
-    calls = [0]
+    range); picklable, for the workers of an executor.
 
-    def residual(p):
-        calls[0] += 1
-        if progress is not None and calls[0] % walkers == 1 and calls[0] > 1:
-            progress(min(calls[0] // walkers, steps), steps)
-        r = problem.residual(p)
-        return r / root_scale if np.isfinite(r).all() else np.full(r.size, 1e3)  # as for a model out of range
+    Parameters
+    ----------
+    problem : FitProblem
+        The fit's problem.
+    error_scale : float
+        The fit's error scale s (dimensionless).
+    """
 
-    return residual
+    def __init__(self, problem: FitProblem, error_scale: float):
+        self.problem, self.root_scale = problem, math.sqrt(error_scale)
+
+    def __call__(self, params: lmfit.Parameters) -> np.ndarray:
+        r = self.problem.residual(params)
+        return r / self.root_scale if np.isfinite(r).all() else np.full(r.size, 1e3)  # as for a model out of range
 
 
-def _run_emcee(residual: Callable, params: lmfit.Parameters, start: np.ndarray, steps: int, walkers: int,
-               seed: int | None) -> lmfit.minimizer.MinimizerResult:
-    """lmfit's emcee route from `start`, on one BLAS thread, its printed warnings swallowed."""
-    minimizer = lmfit.Minimizer(residual, params, nan_policy="propagate")
-    with contextlib.redirect_stdout(io.StringIO()), single_threaded_blas():  # lmfit prints emcee's tau warning
-        return minimizer.emcee(params=params, steps=steps, nwalkers=walkers, burn=0, thin=1, is_weighted=True,
-                               pos=start, seed=None if seed is None else int(seed), progress=False)
+class _LogPosterior:
+    """ln posterior at a point of the free parameters (module notes): -chi^2 / (2 s) within the parameters'
+    bounds (flat priors), -inf outside.  Picklable, for the workers of an executor; each thread moves a copy
+    of the parameters of its own."""
+
+    def __init__(self, setup: _Setup):
+        self.residual = _ScaledResidual(setup.problem, setup.fit.error_scale)
+        self.params, self.free, self.low, self.high = setup.params.copy(), tuple(setup.free), setup.low, setup.high
+        self.local = threading.local()
+
+    def __getstate__(self) -> dict:
+        return {name: value for name, value in self.__dict__.items() if name != "local"}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state, local=threading.local())
+
+    def __call__(self, x: np.ndarray) -> float:
+        if np.any(x < self.low) or np.any(x > self.high):
+            return -math.inf
+        params = getattr(self.local, "params", None)
+        if params is None:
+            params = self.local.params = self.params.copy()
+        for name, value in zip(self.free, x):
+            params[name].value = float(value)
+        params.update_constraints()
+        r = self.residual(params)
+        return -0.5 * float(r @ r)
+
+
+def _log_posteriors(log_posterior: _LogPosterior, rows: np.ndarray) -> np.ndarray:
+    """ln posterior at every row of `rows` (points of the free parameters)."""
+    return np.array([log_posterior(row) for row in rows], dtype=float)
+
+
+class _Evaluation:
+    """The ln posterior of many points at once: in this process, or on an executor in tasks of `per_task`
+    points, `log_posterior` sent once to each worker process.  A context manager (the payload is dropped at
+    its end)."""
+
+    def __init__(self, log_posterior: _LogPosterior, executor: futures.Executor | None, per_task: int):
+        self.log_posterior, self.per_task = log_posterior, per_task
+        self.payload = None if executor is None else SharedPayload(log_posterior, executor)
+
+    def __call__(self, rows: np.ndarray) -> np.ndarray:
+        if self.payload is None:
+            return _log_posteriors(self.log_posterior, rows)
+        chunks = np.array_split(rows, max(1, math.ceil(len(rows) / self.per_task)))
+        return np.concatenate(self.payload.map(_log_posteriors, [(chunk,) for chunk in chunks]))
+
+    def __enter__(self) -> "_Evaluation":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self.payload is not None:
+            self.payload.close()
+
+
+def _run_emcee(evaluate: _Evaluation, start: np.ndarray, steps: int, seed: int | None,
+               progress: Callable[[int, int], None] | None) -> tuple[np.ndarray, float]:
+    """emcee's ensemble from `start` (walkers x parameters), each half of the walkers evaluated at once by
+    `evaluate`, on one BLAS thread: the chain (steps, walkers, parameters) and the mean acceptance fraction.
+    Progress is reported once per step."""
+    emcee = require_emcee()
+    walkers = start.shape[0]
+    evaluated = [0]
+
+    def log_probability(rows: np.ndarray) -> np.ndarray:
+        values = evaluate(np.asarray(rows, dtype=float))
+        before = evaluated[0] // walkers - 1  # steps done (the first call evaluates the start)
+        evaluated[0] += len(values)
+        done = evaluated[0] // walkers - 1
+        if progress is not None and before < done <= steps:
+            progress(done, steps)
+        return values
+
+    sampler = emcee.EnsembleSampler(walkers, start.shape[1], log_probability, vectorize=True)
+    if seed is not None:
+        sampler.random_state = np.random.RandomState(seed).get_state()
+    with single_threaded_blas():
+        sampler.run_mcmc(start, steps, progress=False)
+    return sampler.get_chain(), float(np.mean(sampler.acceptance_fraction))
 
 
 def _with_rates(chain: np.ndarray, params: lmfit.Parameters, free: list[str],

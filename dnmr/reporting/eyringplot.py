@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from dnmr.reporting.plotting import GREY, INK, PALETTE, SERIES, figure_text, plt, series_colour
+from dnmr.reporting.plotting import (GREY, INK, PALETTE, SERIES, data_and_residual_axes, figure_text, plt,
+                                     series_colour)
 
 #: Marker and hue of the rates of each method in an Eyring figure that joins several methods.
 METHOD_STYLES = {"lineshape": ("o", "indigo"), "inversion": ("^", "vermilion"), "saturation": ("s", "plum"),
@@ -138,8 +139,7 @@ def plot_eyring(results, *, figure=None):
         style per process.
     """
     results = _as_list(results)
-    fig = figure if figure is not None else plt.figure(figsize=(6.4, 6.4))
-    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.08})
+    fig, ax, res = data_and_residual_axes(figure, (6.4, 6.4), hspace=0.08)
     _draw_activation_results(ax, results, _kilo_reciprocal, _eyring_ordinate, residual_ax=res)
     ax.set_ylabel(r"ln($k$ / $T$)   ($k$ in s$^{-1}$, $T$ in K)")
     top = ax.secondary_xaxis("top", functions=(_kilo_reciprocal, _kilo_reciprocal))

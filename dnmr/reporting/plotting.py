@@ -134,6 +134,14 @@ def plot_stack(spectra, labels, ax=None, title: str = ""):
     return ax
 
 
+def data_and_residual_axes(figure, size_inches: tuple[float, float], hspace: float = 0.06):
+    """A figure (``figure``, or a new one of ``size_inches``) with the data panel above a third as tall
+    residual panel that shares its x axis; returns (figure, data axes, residual axes)."""
+    fig = figure if figure is not None else plt.figure(figsize=size_inches)
+    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": hspace})
+    return fig, ax, res
+
+
 def plot_spectrum_fit(fit, *, figure=None):
     """Data, fitted spectrum and residuals of one fit against ppm (high to low).
 
@@ -150,8 +158,7 @@ def plot_spectrum_fit(fit, *, figure=None):
         Upper panel: data (black), fit (orange-red), baseline (grey, dashed); lower panel: data - fit
         with the band of ±2 noise standard deviations.
     """
-    fig = figure if figure is not None else plt.figure(figsize=(7.0, 4.8))
-    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.06})
+    fig, ax, res = data_and_residual_axes(figure, (7.0, 4.8))
     ax.plot(fit.ppm, fit.data, color=INK, lw=0.8, label="data")
     ax.plot(fit.ppm, fit.fitted, color=FIT_COLOUR, lw=1.1, label="fit")
     ax.plot(fit.ppm, fit.baseline, color=GREY, lw=0.8, ls="--", label="baseline")
@@ -190,8 +197,7 @@ def plot_transfer_fit(fit, *, figure=None):
     """
     exp = fit.experiment
     times = exp.data.times_s
-    fig = figure if figure is not None else plt.figure(figsize=(6.8, 5.0))
-    ax, res = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1], "hspace": 0.06})
+    fig, ax, res = data_and_residual_axes(figure, (6.8, 5.0))
     grid = np.linspace(0.0, float(times.max()), 300)
     dense, data, residuals = fit.curve(grid), exp.data.values, fit.residuals
     if exp.experiment == "exchange-2d":
