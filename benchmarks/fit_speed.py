@@ -1,33 +1,42 @@
-"""Fitting speed, measured in one run (not a test).
+"""Fitting speed, measured in one run (not a test); every goal of issue 18 items 1 to 3 is printed beside its
+measured figure, with the machine's load (1-minute load average) before and after each section.
 
 (a) single-spectrum fits: lineshape evaluations, exact Jacobians and CPU time per fit (coarse scan, refinement
     and chi-square profile included) for a two-site spectrum near coalescence, a slow-limit spectrum that
     only bounds the rate (its profile runs out to the limit), and demo spectra (two rotamers of a coupled AB
-    pair, 3276 points; a rate with an error bar, a 68 % interval and a lower bound), by three routes in turn:
-    the default (exact Jacobian, recent lineshapes re-used), finite differences (lineshapes re-used), and
-    finite differences re-using nothing (the route before the exact Jacobian; goal: default <= 1/3 of it),
-    with the largest difference of log10 k between the default and the route before, in standard errors;
+    pair, 3276 points; a rate with an error bar, a 68 % interval and a lower bound).  "Before" is the code
+    of BASELINE_COMMIT (the fits before the exact Jacobian and the prepared models), exported from git and run
+    in a subprocess that takes turns with this one fit by fit, so that both see the same load; goal: this
+    code's fit in <= 1/3 of the time before, with the same answer (the largest difference of log10 k, in
+    standard errors, or of the bounds);
 (d) the posterior of demo spectra (default settings: importance sampling from the fit, 4000 draws): CPU
     and wall time per spectrum (goal <= 10 s), effective samples and the Pareto shape of the weights, against
     emcee's ensemble at its default 32 walkers x 4000 steps (timed over 200 steps and scaled);
-(b) the bundled demo series (every spectrum of it; shifts from the slow-exchange trend, populations free) fitted
-    with one worker and with one per core: the parallel speed-up (goal >= 1.7 on 2 cores);
-(c) the global fit of that series (ΔH‡, ΔS‡ and shifts linear in T, with the demo calibration) from (b)'s
+(b) the bundled demo series (every spectrum of it; shifts from the slow-exchange trend, populations free) as
+    ``dnmr fit`` runs it (dnmr.jobs.run_fit: fits, figures, results files and report.html), with one worker and
+    with one per core, against the sum of the single fits of its spectra through the API (fit_spectrum with the
+    same region and populations, one after the other): goals series <= 1.3 x that sum and a parallel speed-up
+    >= 1.8 on 2 cores (wall-clock time);
+(c) the global fit of that series (dH, dS and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
-    (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process); then
-    with one worker and forward differences for its Jacobian (the route before the exact derivatives).
+    (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure and raises every time (CPU times less so; the ratios are of one run).
 
 Run:  python benchmarks/fit_speed.py            (everything)
       python benchmarks/fit_speed.py --single   ((a) and (d) only)
+      python benchmarks/fit_speed.py --series   ((b) only)
 """
 from __future__ import annotations
 
+import io
+import json
 import math
 import os
 import shutil
+import subprocess
 import sys
+import tarfile
 import tempfile
 import time
 from pathlib import Path
@@ -35,19 +44,17 @@ from pathlib import Path
 import numpy as np
 
 import dnmr
-from dnmr.fitting import globalproblem, problem
 from dnmr.fitting.spectrumfit import fit_spectrum
 from dnmr.fitting.workers import single_threaded_blas
-from dnmr.io.readers import read_spectrum
 from dnmr.io.measured import MeasuredSpectrum
-from dnmr.fitting.globalfit import fit_global_from_two_step
-from dnmr.fitting.globaltreatment import Treatment
-from dnmr.fitting.globalresult import TWO_STEP_FOLDER
-from dnmr.fitting.series import fit_series
-from dnmr.fitting.seriesfile import load_series
-from dnmr.activation.temperature_calibration import read_temperature_calibration
+from dnmr.io.readers import read_spectrum
 
 DEMO = Path(dnmr.__file__).parent / "data" / "demo"
+BASELINE_COMMIT = "9edcebd"
+"""The code before the exact Jacobian and the prepared models: the parent of the commit that brought the exact
+lineshape derivatives (what issue 18 item 2 calls today's time)."""
+REPEATS = 5
+"""Fits of each case by each code (the best CPU time counts)."""
 
 
 def two_site(rate_per_s: float) -> dnmr.Model:
@@ -62,44 +69,102 @@ def synthetic(rate_per_s: float, seed: int) -> MeasuredSpectrum:
     return MeasuredSpectrum(ppm, clean + np.random.default_rng(seed).normal(0, 0.05, ppm.size), 400.0, "synthetic", "text")
 
 
-ROUTES = {"default": (True, 4), "finite differences": (False, 4), "before": (False, 0)}
-"""Routes of (a): (use the exact Jacobian, lineshape decompositions kept)."""
+def cases() -> dict[str, tuple]:
+    """The fits of (a) by label: (spectrum, model, options); only calls that the baseline's code has too."""
+    out = {"two-site, k = 120 s^-1 (near coalescence)": (synthetic(120.0, 1), two_site(1e4), {"region_ppm": (2.7, 3.3)}),
+           "two-site, k = 0.01 s^-1 (slow limit: a bound)": (synthetic(0.01, 2), two_site(1e4), {"region_ppm": (2.7, 3.3)})}
+    model = dnmr.load_model(DEMO / "model.toml")
+    for t in (310, 250, 340):
+        out[f"demo DX-7 at {t} K (2 rotamers, AB, 3276 pts)"] = (
+            read_spectrum(DEMO / "spectra" / f"dx7_{t}K.txt"), model,
+            {"temperature_k": float(t), "region_ppm": (4.15, 4.95), "populations": "free"})
+    return out
 
 
-def time_fit(label: str, spectrum, model, repeats: int = 3, **options) -> None:
-    """Best CPU time of `repeats` fits by every route of ROUTES (taken in turn), evaluations and the ratio."""
-    best, fits = {}, {}
-    for _ in range(repeats):
-        for route, (exact, kept) in ROUTES.items():
-            problem.USE_EXACT_JACOBIAN, problem.TERMS_KEPT = exact, kept
-            t0 = time.process_time()
-            fits[route] = fit_spectrum(spectrum, model, **options)
-            best[route] = min(best.get(route, np.inf), time.process_time() - t0)
-    problem.USE_EXACT_JACOBIAN, problem.TERMS_KEPT = ROUTES["default"]
-    text = "  ".join(f"{route}: {fits[route].function_evaluations:4d}+{fits[route].jacobian_evaluations:<3d} "
-                     f"{best[route]:6.3f} s" for route in ROUTES)
-    print(f"  {label:<40} {fits['default'].rate(0).status:<12} {text}  default/before {best['default'] / best['before']:.2f}"
-          f" (goal <= 0.33); {difference(fits['default'].rate(0), fits['before'].rate(0))}")
+def timed_fit(case: tuple) -> tuple[float, object]:
+    """CPU time (s) of one fit of `case`, and the fit."""
+    spectrum, model, options = case
+    t0 = time.process_time()
+    fit = fit_spectrum(spectrum, model, **options)
+    return time.process_time() - t0, fit
 
 
-def difference(a, b) -> str:
+def rate_record(fit) -> tuple:
+    """(log10 k, its standard error, lower and upper bound in s^-1, status) of the first rate, from either code."""
+    r = fit.rates[0]
+    pick = lambda *names: next((float(getattr(r, n)) for n in names if getattr(r, n, None) is not None), math.nan)  # noqa: E731
+    return (pick("log10_rate", "log10_k"), pick("log10_rate_stderr", "log10_stderr"), pick("rate_lower"),
+            pick("rate_upper"), r.status)
+
+
+def baseline_worker() -> None:
+    """The subprocess of (a): fits the case named on each line of stdin with the code on its path and answers
+    with the CPU time, the evaluations and the rate."""
+    known = cases()
+    with single_threaded_blas():
+        for line in sys.stdin:
+            seconds, fit = timed_fit(known[line.strip()])
+            print(json.dumps([seconds, fit.function_evaluations, rate_record(fit)]), flush=True)
+
+
+def start_baseline(folder: Path) -> subprocess.Popen | str:
+    """The baseline's code exported from git into `folder` and its worker started, or why it could not be."""
+    root = Path(__file__).resolve().parent.parent
+    try:
+        archive = subprocess.run(["git", "-C", str(root), "archive", "--format=tar", BASELINE_COMMIT, "dnmr"],
+                                 capture_output=True, check=True).stdout
+    except (OSError, subprocess.CalledProcessError) as err:
+        return f"git archive {BASELINE_COMMIT} failed ({err})"
+    with tarfile.open(fileobj=io.BytesIO(archive)) as tar:
+        tar.extractall(folder)
+    env = {**os.environ, "PYTHONPATH": str(folder)}
+    return subprocess.Popen([sys.executable, str(Path(__file__).resolve()), "--baseline-worker"], cwd=folder, env=env,
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+
+
+def difference(a: tuple, b: tuple) -> str:
     """How far two fits' estimates of one rate lie apart: in standard errors, or the bounds' ratio."""
-    if np.isfinite(a.log10_rate_stderr) and a.log10_rate_stderr > 0:
-        return f"log10 k differs by {abs(a.log10_rate - b.log10_rate) / a.log10_rate_stderr:.1e} sd"
-    ends = [(x.rate_lower, y.rate_lower) for x, y in [(a, b)] if np.isfinite(x.rate_lower)]
-    ends += [(x.rate_upper, y.rate_upper) for x, y in [(a, b)] if np.isfinite(x.rate_upper)]
-    return "bounds differ by " + ", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends)
+    if a[4] == "determined" or (np.isfinite(a[1]) and a[1] > 0 and a[4] == "interval"):
+        return f"log10 k differs by {abs(a[0] - b[0]) / a[1]:.1e} sd"
+    ends = [(x, y) for x, y in ((a[2], b[2]), (a[3], b[3])) if np.isfinite(x) and np.isfinite(y)]
+    return "bounds differ by " + (", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends) or "(none)")
+
+
+def load() -> str:
+    """The machine's 1-minute load average, as text."""
+    return f"load {os.getloadavg()[0]:.1f}"
 
 
 def single_fits() -> None:
-    """(a): the single-spectrum fits."""
-    print("(a) single-spectrum fits (best of 3, CPU time): evaluations+Jacobians and seconds per fit, by route")
-    time_fit("two-site, k = 120 s^-1 (near coalescence)", synthetic(120.0, 1), two_site(1e4), region_ppm=(2.7, 3.3))
-    time_fit("two-site, k = 0.01 s^-1 (slow limit: a bound)", synthetic(0.01, 2), two_site(1e4), region_ppm=(2.7, 3.3))
-    model = dnmr.load_model(DEMO / "model.toml")
-    for t in (310, 250, 340):
-        time_fit(f"demo DX-7 at {t} K (2 rotamers, AB, 3276 pts)", read_spectrum(DEMO / "spectra" / f"dx7_{t}K.txt"),
-                 model, temperature_k=float(t), region_ppm=(4.15, 4.95), populations="free")
+    """(a): the single-spectrum fits, this code and the baseline's taking turns."""
+    known = cases()
+    folder = Path(tempfile.mkdtemp(prefix="dnmr-baseline-"))
+    worker = start_baseline(folder)
+    print(f"(a) single-spectrum fits (best of {REPEATS}, CPU time): evaluations+Jacobians and seconds per fit, "
+          f"this code against the code of {BASELINE_COMMIT} (before); {load()}")
+    try:
+        for label, case in known.items():
+            best, before, fit, old = math.inf, math.inf, None, None
+            for _ in range(REPEATS):
+                seconds, fit = timed_fit(case)
+                best = min(best, seconds)
+                if not isinstance(worker, str):
+                    worker.stdin.write(label + "\n")
+                    worker.stdin.flush()
+                    old = json.loads(worker.stdout.readline())
+                    before = min(before, old[0])
+            text = f"{fit.function_evaluations:4d}+{fit.jacobian_evaluations:<3d} {best:6.3f} s"
+            if old is None:
+                print(f"  {label:<46} {fit.rates[0].status:<12} {text}  (before: {worker})")
+                continue
+            print(f"  {label:<46} {fit.rates[0].status:<12} {text}  before: {old[1]:4d} {before:6.3f} s  "
+                  f"ratio {best / before:.2f} (goal <= 0.33); {difference(rate_record(fit), old[2])}")
+    finally:
+        if not isinstance(worker, str):
+            worker.stdin.close()
+            worker.wait()
+        shutil.rmtree(folder)
+    print(f"  ({load()})")
 
 
 def posteriors() -> None:
@@ -107,7 +172,7 @@ def posteriors() -> None:
     from dnmr.fitting.posterior import sample_spectrum_posterior
 
     print("(d) posteriors of demo spectra: default (importance sampling, 4000 draws) against emcee's ensemble"
-          " (32 walkers x 4000 steps, scaled from 200)")
+          f" (32 walkers x 4000 steps, scaled from 200); {load()}")
     model = dnmr.load_model(DEMO / "model.toml")
     for t in (250, 290, 310, 340):
         fit = fit_spectrum(read_spectrum(DEMO / "spectra" / f"dx7_{t}K.txt"), model, temperature_k=float(t),
@@ -126,6 +191,8 @@ def posteriors() -> None:
 
 def demo_series(folder: Path) -> Path:
     """The bundled demo series with the options it needs, pointing at the bundled files (read only)."""
+    from dnmr.fitting.seriesfile import load_series
+
     lines = [f'model = "{DEMO / "model.toml"}"', "[fit]", "region_ppm = [4.15, 4.95]",
              'shifts = "slow-exchange-trend"', 'populations = "free"']
     for spectrum in load_series(DEMO / "series.toml").spectra:
@@ -135,9 +202,81 @@ def demo_series(folder: Path) -> Path:
     return path
 
 
+def cpu_seconds() -> float:
+    """CPU time (s) of this process and of its finished worker processes."""
+    t = os.times()
+    return t.user + t.system + t.children_user + t.children_system
+
+
+def single_fits_of_series(series_file: Path) -> tuple[float, float]:
+    """Wall and CPU time (s) of the single fits of every spectrum of the series through the API, one after the other."""
+    from dnmr.fitting.seriesfile import load_series
+
+    series = load_series(series_file)
+    t0, c0 = time.perf_counter(), cpu_seconds()
+    for s in series.spectra:
+        fit_spectrum(read_spectrum(s.file), series.model, temperature_k=s.temperature_k, region_ppm=(4.15, 4.95),
+                     populations="free")
+    return time.perf_counter() - t0, cpu_seconds() - c0
+
+
+def series_fits(folder: Path, cores: int):
+    """(b): the demo series as `dnmr fit` runs it, with one worker and with `cores`; returns its two-step result."""
+    from dnmr.fitting.globalresult import TWO_STEP_FOLDER
+    from dnmr.jobs import run_fit
+
+    series = demo_series(folder)
+    print(f"(b) demo series as dnmr fit runs it (fits, figures, results, report.html), 1 and {cores} workers, against "
+          f"the sum of its single fits (wall time); {load()}")
+    singles, singles_cpu = single_fits_of_series(series)
+    times, result = {}, None
+    for workers in (1, cores):
+        t0, c0 = time.perf_counter(), cpu_seconds()
+        job = run_fit(series, folder / f"out{workers}" / TWO_STEP_FOLDER, workers=workers, progress=False)
+        times[workers], cpu = time.perf_counter() - t0, cpu_seconds() - c0
+        result = job.fit
+        fitted = sum(o.fitted for o in result.outcomes)
+        print(f"  {workers} worker(s): {times[workers]:6.1f} s wall, {times[workers] / singles:.2f} x the single fits' "
+              f"{singles:.1f} s ({singles / len(result.outcomes):.2f} s per spectrum; goal <= 1.3 x); CPU {cpu:.1f} s, "
+              f"{cpu / singles_cpu:.2f} x their {singles_cpu:.1f} s; {fitted} of {len(result.outcomes)} fitted, "
+              f"report {'written' if job.report_file else job.report_problem}")
+    print(f"  speed-up {times[1] / times[cores]:.2f} (goal >= 1.8 on 2 cores; {cores} cores here); {load()}")
+    return series, result
+
+
+def global_fits(folder: Path, cores: int, series: Path, result) -> None:
+    """(c): the global fit of the demo series from (b)'s two-step result."""
+    from dnmr.activation.temperature_calibration import read_temperature_calibration
+    from dnmr.fitting.globalfit import fit_global_from_two_step
+    from dnmr.fitting.globaltreatment import Treatment
+    from dnmr.fitting.seriesfile import load_series
+
+    print(f"(c) global fit of the demo series from (b), shifts linear in T, demo calibration; {load()}")
+    calibration = read_temperature_calibration(DEMO / "calibration.csv")
+    loaded = load_series(series)
+    times, fits = {}, {}
+    for workers in (1, cores):
+        t0 = time.perf_counter()
+        fit = fits[workers] = fit_global_from_two_step(
+            loaded, result, folder / f"out{cores}", calibration,
+            Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
+        times[workers] = time.perf_counter() - t0
+        a = fit.activation[0]
+        print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "
+              f"{fit.jacobian_evaluations} Jacobian evaluations, "
+              f"{sum(not p['fixed'] for p in fit.parameters.values())} free parameters; "
+              f"dH = {a.enthalpy_kj_mol:.3f} kJ/mol, dS = {a.entropy_j_mol_k:.3f} J/(mol K)")
+    print(f"  speed-up {times[1] / times[cores]:.2f}")
+    global_jacobians(loaded, result, folder / f"out{cores}", calibration, fits[1], times[1])
+
+
 def global_jacobians(series, two_step, outdir: Path, calibration, exact_fit, exact_s: float) -> None:
     """(c) again with one worker and forward differences for the Jacobian blocks (the route before the exact
     lineshape derivatives): time against `exact_s` (s), and how far apart the two fits' ΔH‡ and ΔS‡ are."""
+    from dnmr.fitting import globalproblem
+    from dnmr.fitting.globalfit import fit_global_from_two_step
+    from dnmr.fitting.globaltreatment import Treatment
+
     globalproblem.USE_EXACT_JACOBIAN = False
     try:
         t0 = time.perf_counter()
@@ -154,42 +293,22 @@ def global_jacobians(series, two_step, outdir: Path, calibration, exact_fit, exa
 
 
 def main() -> None:
-    with single_threaded_blas():
-        single_fits()
-        posteriors()
-    if "--single" in sys.argv[1:]:
+    arguments = sys.argv[1:]
+    if "--baseline-worker" in arguments:
+        baseline_worker()
         return
-
+    if "--series" not in arguments:
+        with single_threaded_blas():
+            single_fits()
+            posteriors()
+    if "--single" in arguments:
+        return
     cores = os.cpu_count() or 1
     folder = Path(tempfile.mkdtemp(prefix="dnmr-bench-"))
     try:
-        series = demo_series(folder)
-        print(f"(b) demo series, {len(load_series(series).spectra)} spectra, serial against {cores} workers")
-        times = {}
-        for workers in (1, cores):
-            t0 = time.perf_counter()
-            result = fit_series(series, folder / f"out{workers}" / TWO_STEP_FOLDER, workers=workers, progress=False)
-            times[workers] = time.perf_counter() - t0
-            fitted = sum(o.fitted for o in result.outcomes)
-            print(f"  {workers} worker(s): {times[workers]:6.1f} s  ({fitted} of {len(result.outcomes)} fitted)")
-        print(f"  speed-up {times[1] / times[cores]:.2f} (goal >= 1.7 on 2 cores)")
-        print("(c) global fit of the demo series from (b), shifts linear in T, demo calibration")
-        calibration = read_temperature_calibration(DEMO / "calibration.csv")
-        loaded = load_series(series)
-        global_fits = {}
-        for workers in (1, cores):
-            t0 = time.perf_counter()
-            fit = global_fits[workers] = fit_global_from_two_step(
-                loaded, result, folder / f"out{cores}", calibration,
-                Treatment(shift_trend="linear", linewidth_trend="per-spectrum"), workers)
-            times[workers] = time.perf_counter() - t0
-            a = fit.activation[0]
-            print(f"  {workers} worker(s): {times[workers]:6.1f} s  {fit.function_evaluations} residual and "
-                  f"{fit.jacobian_evaluations} Jacobian evaluations, "
-                  f"{sum(not p['fixed'] for p in fit.parameters.values())} free parameters; "
-                  f"dH = {a.enthalpy_kj_mol:.3f} kJ/mol, dS = {a.entropy_j_mol_k:.3f} J/(mol K)")
-        print(f"  speed-up {times[1] / times[cores]:.2f}")
-        global_jacobians(loaded, result, folder / f"out{cores}", calibration, global_fits[1], times[1])
+        series, result = series_fits(folder, cores)
+        if "--series" not in arguments:
+            global_fits(folder, cores, series, result)
     finally:
         shutil.rmtree(folder)
 

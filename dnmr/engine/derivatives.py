@@ -34,7 +34,7 @@ cost that one call with all the derivatives pays once.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 
 import numpy as np
 import scipy.linalg as sla
@@ -142,34 +142,69 @@ def lineshape_derivatives(model: Model, hz: np.ndarray, directions: Sequence | N
     for d in (d for c in combinations for d in c):
         if d not in known:
             raise ValueError(f"unknown derivative direction {d!r}; see all_directions(model)")
-    omega = TWO_PI * np.asarray(hz, dtype=float)
     systems = filled_layouts(model)
     check_memory(max((largest_block_size(p.levels) * len(p.populations) for _, p in systems), default=0))
     jumps = model.jumps()
-    numbers = [_combined_numbers(model, c, jumps) for c in combinations]
-    sums = _PoleSums(len(directions), omega)
-    for layout, params in systems:
-        units = [layout.fill(*n[:4], [dataclasses.replace(j, rate_per_s=r) for j, r in zip(jumps, n[4])])
-                 for n in numbers]
-        for block in params.blocks:
-            pattern = block_pattern(block, params.topology)
-            changes = [(block_liouvillian(pattern, u), n[5], block_start(pattern, u.populations) if np.any(n[3]) else None)
-                       for n, u in zip(numbers, units)]
-            sums.add_block(block_liouvillian(pattern, params), pattern.detect,
-                           block_start(pattern, params.populations), changes)
+    state = ModelState(model.populations(), model.rates(), _weight_total(model))
+    numbers = [combined_numbers(model, c, jumps, state) for c in combinations]
+
+    def blocks():
+        for layout, params in systems:
+            units = [layout.fill(*n[:4], [dataclasses.replace(j, rate_per_s=r) for j, r in zip(jumps, n[4])])
+                     for n in numbers]
+            for block in params.blocks:
+                pattern = block_pattern(block, params.topology)
+                changes = [(block_liouvillian(pattern, u), n[5], block_start(pattern, u.populations) if np.any(n[3]) else None)
+                           for n, u in zip(numbers, units)]
+                yield block_liouvillian(pattern, params), pattern.detect, block_start(pattern, params.populations), changes
+
+    return block_derivatives(blocks(), hz, directions)
+
+
+def block_derivatives(blocks: Iterable[tuple], hz: np.ndarray, directions: Sequence) -> LineshapeDerivatives:
+    """The spectrum and its derivatives at frequencies `hz` (Hz) from its blocks, each given as (L, detect, start,
+    changes) with one change (dL, c, d start or None) per direction of `directions` (:meth:`_PoleSums.add_block`)."""
+    sums = _PoleSums(len(directions), TWO_PI * np.asarray(hz, dtype=float))
+    for block in blocks:
+        sums.add_block(*block)
     spectrum, slopes = sums.evaluate()
-    return LineshapeDerivatives(spectrum, directions, slopes)
+    return LineshapeDerivatives(spectrum, tuple(directions), slopes)
 
 
-def _combined_numbers(model: Model, combination: Mapping[tuple, float], jumps: Sequence) -> tuple:
-    """The change of the model's numbers along sum of weight x direction: :func:`_unit_numbers` summed,
-    with the frequency's share as the factor of the identity in dL (rad/s per Hz)."""
+@dataclasses.dataclass(frozen=True)
+class ModelState:
+    """The value-dependent numbers that derivatives along rates and populations need.
+
+    Attributes
+    ----------
+    populations : ndarray
+        Equilibrium populations of the states (sum 1).
+    rates_per_s : ndarray
+        Forward rate of each process (s^-1).
+    weight_total : float
+        Sum of the states' relative weights (1 for populations from free energies).
+    """
+
+    populations: np.ndarray
+    rates_per_s: np.ndarray
+    weight_total: float = 1.0
+
+
+def _weight_total(model: Model) -> float:
+    """Sum of the populations as the model gives them (relative weights), 1 where free energies give them."""
+    return float(sum(s.population for s in model.states)) if model.states[0].population is not None else 1.0
+
+
+def combined_numbers(model: Model, combination: Mapping[tuple, float], jumps: Sequence, state: ModelState) -> tuple:
+    """The change of the model's numbers along sum of weight x direction (:func:`all_directions`): :func:`_unit_numbers`
+    summed, with the frequency's share as the factor of the identity in dL (rad/s per Hz) last; `model` gives the
+    structure, `jumps` (the model's, in order) and `state` the numbers at which the derivative is taken."""
     n_states, n_all = len(model.states), len(model.all_spins)
     total = [np.zeros((n_states, len(model.spins))), np.zeros((n_states, n_all, n_all)), np.zeros(n_states),
              np.zeros(n_states), np.zeros(len(jumps))]
     identity = 0.0
     for direction, weight in combination.items():
-        unit = _unit_numbers(model, direction, jumps)
+        unit = _unit_numbers(model, direction, jumps, state)
         if unit is None:
             identity += -1j * TWO_PI * weight
             continue
@@ -178,7 +213,7 @@ def _combined_numbers(model: Model, combination: Mapping[tuple, float], jumps: S
     return (*total, identity)
 
 
-def _unit_numbers(model: Model, direction: tuple, jumps: Sequence):
+def _unit_numbers(model: Model, direction: tuple, jumps: Sequence, state: ModelState):
     """The change of the model's numbers per unit of `direction`: (shifts (states, spins) Hz, couplings
     (states, all spins, all spins) Hz, widths Hz, populations, the rate of every jump of `jumps`, the
     model's), as :meth:`~dnmr.engine.spinsystems.SystemLayout.fill` takes them; None for the frequency."""
@@ -188,7 +223,7 @@ def _unit_numbers(model: Model, direction: tuple, jumps: Sequence):
     n_states, n_all = len(model.states), len(model.all_spins)
     shifts, couplings = np.zeros((n_states, len(model.spins))), np.zeros((n_states, n_all, n_all))
     widths, populations = np.zeros(n_states), np.zeros(n_states)
-    p = model.populations()
+    p = state.populations
     rates = np.zeros(len(jumps))
     if kind == "rate":
         for n, j in enumerate(jumps):
@@ -202,21 +237,13 @@ def _unit_numbers(model: Model, direction: tuple, jumps: Sequence):
         _, c, a, b = direction
         couplings[c, a, b] = couplings[c, b, a] = 1.0
     else:
-        populations = _population_slope(model, direction[1])
-        forward = model.rates()
+        populations = (np.eye(n_states)[direction[1]] - p) / state.weight_total  # populations = weights / their sum
+        forward = state.rates_per_s
         for n, j in enumerate(jumps):  # a reverse b -> a runs at k p_a / p_b
             if not j.forward and j.source != j.target:
                 s, t = j.source, j.target
                 rates[n] = forward[j.process] * (populations[t] / p[s] - p[t] * populations[s] / p[s] ** 2)
     return shifts, couplings, widths, populations, rates
-
-
-def _population_slope(model: Model, state: int) -> np.ndarray:
-    """d(populations)/d(weight of `state`): the populations are the weights over their sum."""
-    p = model.populations()
-    given = model.states[0].population is not None
-    total = float(sum(s.population for s in model.states)) if given else 1.0
-    return (np.eye(len(p))[state] - p) / total
 
 
 class _PoleSums:
@@ -248,16 +275,17 @@ class _PoleSums:
         apart = close & (np.abs(gap) > DEGENERATE * width)  # close, and not equal to rounding error
         powers = np.stack([close.astype(float), np.where(apart, gap, 0.0), np.where(apart, gap * gap, 0.0)])
         orders = np.zeros((len(changes), 4, lam.size), dtype=complex)  # poles of order 1 to 4
-        for i, (change, identity, start_change) in enumerate(changes):
-            B = u[:, None] * (V_inv @ change @ V) * w[None, :]
+        if changes:  # every change at once: B[i] = u (V^-1 dL_i V) w
+            B = u[None, :, None] * (V_inv @ np.array([c[0] for c in changes], dtype=complex) @ V) * w[None, None, :]
             split = np.where(close, 0.0, B / np.where(close, 1.0, -gap))  # B / (lambda_k - lambda_l)
-            orders[i, 0] = split.sum(axis=1) - split.sum(axis=0)
-            if start_change is not None:
-                orders[i, 0] += u * (V_inv @ start_change)
+            orders[:, 0] = split.sum(axis=2) - split.sum(axis=1)
             # a close pair: g_k g_l = g_k^2 / (1 - delta g_k) = g_k^2 (1 + delta g_k + delta^2 g_k^2 + ...),
             # |delta g_k| <= SPLIT_SEPARATION, so three terms leave 1e-12 (one where |delta g_k| <= DEGENERATE)
-            orders[i, 1:] = (powers * B[None]).sum(axis=2)
-            orders[i, 1] += identity * u * w
+            orders[:, 1:] = (powers[None] * B[:, None]).sum(axis=3)
+            orders[:, 1] += np.array([c[1] for c in changes])[:, None] * (u * w)
+        for i, (_, _, start_change) in enumerate(changes):
+            if start_change is not None:
+                orders[i, 0] += u * (V_inv @ start_change)
         self.poles.append(lam)
         self.amplitudes.append(u * w)
         self.orders.append(orders)
@@ -275,7 +303,7 @@ class _PoleSums:
         step = max(256, POINTS_AT_ONCE // poles.size)
         for start in range(0, self.z.size, step):
             part = slice(start, start + step)
-            g = np.reciprocal(self.z[None, part] - poles)  # (poles, points of the slice)
+            g = 1.0 / (self.z[None, part] - poles)  # (poles, points of the slice); numpy's complex reciprocal is 5x slower
             self.spectrum[part] += amplitudes @ g
             self.slopes[:, part] += first @ g + second @ (g * g)
             if higher.size:

@@ -16,12 +16,12 @@ from dataclasses import dataclass
 
 import lmfit
 import numpy as np
-from scipy import fft, optimize, stats
+from scipy import optimize, stats
 
-from dnmr.engine.blocks import lineshape_terms
-from dnmr.engine.derivatives import coupling_direction, derivatives_pay, lineshape_derivatives
+from dnmr.engine.derivatives import coupling_direction, derivatives_pay
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.errors import InputError
+from dnmr.fitting.fitlineshape import FitLineshape
 from dnmr.fitting.parameters import ParameterLayout, parameter_stderr, tie_coefficients
 from dnmr.fitting.ranges import ppm_regions
 from dnmr.io.measured import MeasuredSpectrum
@@ -220,8 +220,10 @@ class FitProblem:
         # points written with a few decimals are uniform to within their rounding
         self.uniform_step = float(step.mean()) if np.allclose(step, step.mean(), rtol=0.02) else None
         self.exact_jacobian = USE_EXACT_JACOBIAN and derivatives_pay(layout.model)
+        self.lineshape = FitLineshape(layout)
         self._terms: dict[tuple, LineshapeTerms] = {}
-        self._data_transform: np.ndarray | None = None
+        self.scan_cache: dict = {}
+        """What the coarse scan (:mod:`dnmr.fitting.scan`) keeps between its cross-correlations."""
         self._ties: dict[tuple, dict] = {}
 
     def terms(self, values: Mapping[str, float]) -> LineshapeTerms:
@@ -230,7 +232,7 @@ class FitProblem:
         key = tuple(float(values[n]) for n in self.layout.lineshape_names)
         terms = self._terms.get(key)
         if terms is None:
-            terms = lineshape_terms(self.layout.model_from(values))
+            terms = self.lineshape.terms(values)
             self.nfev += 1
             if TERMS_KEPT:
                 if len(self._terms) >= TERMS_KEPT:
@@ -259,22 +261,34 @@ class FitProblem:
 
     def residual(self, params: lmfit.Parameters) -> np.ndarray:
         """(fit - data) / noise at every point; 1e3 everywhere for values the model refuses."""
+        return self.residual_at(params.valuesdict())
+
+    def residual_at(self, values: Mapping[str, float]) -> np.ndarray:
+        """:meth:`residual` at the values of every parameter."""
         try:
-            return (self.predict(params.valuesdict()) - self.data) / self.noise.sigma
+            return (self.predict(values) - self.data) / self.noise.sigma
         except InputError:  # parameters outside what a model allows (e.g. a negative population)
             return np.full(self.data.size, 1e3)
+
+    def ties(self, params: lmfit.Parameters) -> tuple[dict[str, dict[str, float]], list[str]]:
+        """How every parameter moves with the free ones (:func:`dnmr.fitting.parameters.tie_coefficients`, kept by
+        the parameters' structure) and the free ones (those that vary, without a constraint) in lmfit's order."""
+        structure = tuple((n, p.vary, p.expr) for n, p in params.items())
+        ties = self._ties.get(structure)
+        if ties is None:
+            ties = self._ties[structure] = tie_coefficients(params)
+        return ties, [n for n, p in params.items() if p.vary and not p.expr]
 
     def jacobian(self, params: lmfit.Parameters) -> np.ndarray:
         """d residual / d free parameter (points x free parameters, in lmfit's order: those that vary, without
         a constraint), exact: the lineshape's derivatives from :func:`dnmr.engine.derivatives.lineshape_derivatives`
         (one combination of directions per free parameter, ties followed by the chain rule), the nuisance
         terms' own (:func:`nuisance_column`).  Zero for values the model refuses (the residual is constant there)."""
-        values = params.valuesdict()
-        structure = tuple((n, p.vary, p.expr) for n, p in params.items())
-        ties = self._ties.get(structure)
-        if ties is None:
-            ties = self._ties[structure] = tie_coefficients(params)
-        free = [n for n, p in params.items() if p.vary and not p.expr]
+        return self.jacobian_at(params.valuesdict(), *self.ties(params))
+
+    def jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]], free: Sequence[str]
+                    ) -> np.ndarray:
+        """:meth:`jacobian` at the values of every parameter, with the ties and free parameters of :meth:`ties`."""
         shape_of = self._lineshape_directions(values)
         shape_of["offset_hz"] = (("frequency",), -1.0)
         along: dict[str, dict[tuple, float]] = {}
@@ -286,8 +300,7 @@ class FitProblem:
                     combination[direction] = combination.get(direction, 0.0) + factor * scale
         out = np.zeros((self.data.size, len(free)))
         try:
-            found = lineshape_derivatives(self.layout.model_from(values), self.hz - values["offset_hz"],
-                                          list(along.values()))
+            found = self.lineshape.derivatives(values, self.hz - values["offset_hz"], list(along.values()))
         except InputError:
             return out
         self.njev += 1
@@ -313,62 +326,6 @@ class FitProblem:
         out.update({n: (coupling_direction(model, c, key), 1.0)
                     for c, names in enumerate(layout.coupling_names) for n, key in names.items()})
         return out
-
-    # --- linear part, for the scan and starting values -----------------------------------
-    def linear_solve(self, params: lmfit.Parameters, values: dict) -> tuple[float, dict]:
-        """Chi-square with amplitude, zero-order phase and baseline solved by linear least squares.
-
-        Only parameters that vary freely (no expression) are solved for; `values` holds the others.
-        Returns chi-square and `values` updated with the solution.
-        """
-        free = lambda name: params[name].vary and not params[name].expr  # noqa: E731
-        base = self.shape(values)
-        if values["phase1_deg"] != 0.0:
-            base = np.exp(1j * self.phase(values, zero_order=False)) * base
-        turned = (np.exp(1j * math.radians(values["phase0_deg"])) * base).real
-        columns, target = [], self.data.copy()
-        if free("amplitude") and free("phase0_deg"):
-            columns += [base.real, -base.imag]  # amplitude x (cos phi0, sin phi0)
-        elif free("amplitude"):
-            columns.append(turned)
-        else:
-            target -= values["amplitude"] * turned
-        free_baseline = [j for j, n in enumerate(self.layout.baseline_names) if free(n)]
-        for j, n in enumerate(self.layout.baseline_names):
-            if j not in free_baseline:
-                target -= values[n] * self.powers[:, j]
-        columns += [self.powers[:, j] for j in free_baseline]
-        values = dict(values)
-        if columns:
-            design = np.column_stack(columns)
-            coef, *_ = np.linalg.lstsq(design, target, rcond=None)
-            target = target - design @ coef
-            if free("amplitude"):
-                if free("phase0_deg"):
-                    values["amplitude"] = float(max(math.hypot(coef[0], coef[1]), 1e-300))
-                    values["phase0_deg"] = float(np.degrees(math.atan2(coef[1], coef[0])))
-                else:
-                    values["amplitude"] = float(max(coef[0], 1e-300))
-            for j, c in zip(free_baseline, coef[len(coef) - len(free_baseline):]):
-                values[self.layout.baseline_names[j]] = float(c)
-        return float(target @ target) / self.noise.sigma ** 2, values
-
-    def coarse_offset(self, params: lmfit.Parameters, values: dict) -> dict:
-        """Values with the offset moved to the best cross-correlation of model and data (uniform grids), among
-        the shifts by whole points the offset's bounds allow."""
-        par = params["offset_hz"]
-        if not par.vary or par.expr or self.uniform_step is None:
-            return values
-        n = self.data.size
-        size = fft.next_fast_len(2 * n - 1, real=True)  # no circular wrap-around
-        if self._data_transform is None:  # the data's half of every cross-correlation, once
-            self._data_transform = fft.rfft(self.data - self.data.mean(), size)
-        shape = self.terms(values).absorption(self.hz)
-        circular = fft.irfft(self._data_transform * np.conj(fft.rfft(shape - shape.mean(), size)), size)
-        corr = np.concatenate([circular[size - (n - 1):], circular[:n]])  # lags -(n - 1) ... n - 1
-        lags = np.arange(-(n - 1), n) * self.uniform_step
-        allowed = (lags >= par.min) & (lags <= par.max)
-        return {**values, "offset_hz": float(lags[allowed][np.argmax(corr[allowed])])}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -397,20 +354,30 @@ def refine(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-
     if not getattr(problem, "exact_jacobian", False):
         result = minimize(problem, params, tolerance)
         return float(result.chisqr), result.params
-    free = [n for n, p in params.items() if p.vary and not p.expr]
+    ties, free = problem.ties(params)
+    start = params.valuesdict()
+    # every constraint is affine (tie_coefficients): a value is its part at the start plus its moves
+    rest = {n: start[n] - sum(c * start[f] for f, c in moves.items()) for n, moves in ties.items()}
 
-    def at(x: np.ndarray) -> lmfit.Parameters:
-        for name, value in zip(free, x):
-            params[name].value = float(value)
-        params.update_constraints()
-        return params
+    def at(x: np.ndarray) -> dict[str, float]:
+        moved = dict(zip(free, x.tolist()))
+        return {n: rest[n] + sum(c * moved[f] for f, c in moves.items()) for n, moves in ties.items()}
 
     bounds = ([params[n].min for n in free], [params[n].max for n in free])
-    found = optimize.least_squares(lambda x: problem.residual(at(x)), [params[n].value for n in free],
-                                   jac=lambda x: problem.jacobian(at(x)), bounds=bounds, method="trf", x_scale="jac",
-                                   ftol=tolerance, xtol=tolerance, gtol=tolerance, max_nfev=2 * MAX_EVALUATIONS)
-    at(found.x)
+    found = optimize.least_squares(lambda x: problem.residual_at(at(x)), [start[n] for n in free],
+                                   jac=lambda x: problem.jacobian_at(at(x), ties, free), bounds=bounds, method="trf",
+                                   x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
+                                   max_nfev=2 * MAX_EVALUATIONS)
+    _set_values(params, dict(zip(free, found.x.tolist())))
     return float(found.fun @ found.fun), params
+
+
+def _set_values(params: lmfit.Parameters, values: Mapping[str, float]) -> None:
+    """Set the parameters of `values` that have no constraint (held ones too) and update the tied ones."""
+    for name, value in values.items():
+        if not params[name].expr:
+            params[name].value = float(value)
+    params.update_constraints()
 
 
 @dataclass(frozen=True)
@@ -464,19 +431,19 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
     x0, chi0 = best.params[name].value, best.chisqr
     lo_lim, hi_lim = best.params[name].min, best.params[name].max
     points = {x0: 0.0}
-    fits = {x0: best.params}
+    fits = {x0: best.params.valuesdict()}  # the refined values at each point
+    trial = best.params.copy()  # one set of parameters, refined from the nearest point's values each time
+    trial[name].set(vary=False)
 
     def rise(x: float) -> float:
-        nearest = min(fits, key=lambda v: abs(v - x))
-        trial = fits[nearest].copy()
-        trial[name].set(value=x, vary=False)
+        _set_values(trial, {**fits[min(fits, key=lambda v: abs(v - x))], name: x})
         chi_square, found = refine(problem, trial, tolerance=1e-5)
         if restart and chi_square < chi0 - 0.05 * threshold:
             params = found.copy()
             params[name].set(vary=True)
             raise BetterMinimum(minimize(problem, params))
         points[x] = chi_square - chi0
-        fits[x] = found
+        fits[x] = found.valuesdict()
         return points[x] - min(points.values()) - threshold
 
     def crossing(a: float, b: float) -> float:

@@ -11,7 +11,9 @@ cluster): the spectra are read here and sent with the fits, and the results come
 its workers need dnmr but not the files.
 
 Each fit is stored as it finishes (``fits/NNN_<stage>.json``); ``resume`` reuses a stored fit only
-when the spectrum file, its temperature, the options and the model are unchanged.
+when the spectrum file, its temperature, the options and the model are unchanged.  With worker processes (or
+an executor), the figure of a fit of a final stage (main or held) is drawn there as soon as the fit is in,
+while other fits still run, instead of all figures at the end (:meth:`FitRunner.early_figure`).
 """
 from __future__ import annotations
 
@@ -27,11 +29,11 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.errors import InputError
-from dnmr.fitting.resultsfolder import STAGE_MAIN, write_json
+from dnmr.fitting.resultsfolder import STAGE_HELD, STAGE_MAIN, write_json
 from dnmr.fitting.seriesfile import Series, SeriesSpectrum
 from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
 from dnmr.fitting.workers import in_worker, process_pool
-from dnmr.io.output import json_ready
+from dnmr.io.output import figure_bytes, figure_file, json_ready
 from dnmr.io.readers import read_spectrum
 from dnmr.io.measured import MeasuredSpectrum
 from dnmr.kinetics import eyring_barrier, eyring_rate
@@ -110,6 +112,20 @@ def _run_job(model: Model, job: FitJob, start: Mapping[str, float] | None, spect
 def restored_fit(model: Model, fit_data: dict, curves: dict) -> SpectrumFit:
     """A stored fit (plain data) as a SpectrumFit of `model` at the fit's temperature."""
     return SpectrumFit.from_dict(fit_data, curves, model.at_temperature(fit_data["temperature_k"]))
+
+
+FINAL_STAGES = (STAGE_MAIN, STAGE_HELD)
+"""Stages whose fits are always final (a slow-exchange fit may be fitted again with held values)."""
+
+
+def fit_figure_path(outdir: Path, index: int, spectrum: SeriesSpectrum) -> Path:
+    """Where the figure of the fit of spectrum `index` goes: ``figures/NNN_<name>.png`` (or the chosen format)."""
+    return figure_file(outdir / "figures" / f"{index:03d}_{spectrum.file.stem}.png")
+
+
+def fit_figure(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
+    """The image file (the format of `path`'s suffix) of the figure of a stored fit: data, fit and residuals."""
+    return figure_bytes(restored_fit(model, fit_data, curves).plot(), path.suffix.lstrip("."), close=True)
 
 
 def _eyring_start(points: list[tuple[float, float]], temperature_k: float) -> float | None:
@@ -256,14 +272,34 @@ class FitRunner:
     def __init__(self, series: Series, outdir: Path, workers: int, progress, resume: bool,
                  executor: futures.Executor | None = None):
         self.series, self.outdir, self.workers, self.progress, self.resume = series, outdir, workers, progress, resume
+        if executor is None and workers > 1:  # the workers fork from here: they draw without importing matplotlib
+            import matplotlib.pyplot  # noqa: F401  (this process draws the series figure with it anyway)
         self.own_pool = process_pool(workers) if executor is None and workers > 1 else None
         self.pool = executor if executor is not None else self.own_pool
         self.caller = os.getpid()
+        self.figures: dict[tuple[int, str], futures.Future] = {}
 
     def close(self) -> None:
         """End the worker processes of its own (waiting for those running; none is started after)."""
         if self.own_pool is not None:
             self.own_pool.shutdown(wait=True, cancel_futures=True)
+
+    def early_figure(self, index: int, stage: str) -> bytes | None:
+        """The figure of spectrum `index`'s fit at `stage` drawn by a worker while the other fits ran, or None when
+        none was (no workers, a fit reused from an earlier run, a slow-exchange fit, or drawing failed)."""
+        future = self.figures.pop((index, stage), None)
+        try:
+            return future.result() if future is not None else None
+        except Exception:  # the worker died or drawing failed: the caller draws it again, and says why if it fails
+            return None
+
+    def _draw_early(self, job: FitJob, record: dict) -> None:
+        """Hand the figure of a final fit to the workers at once (off the critical path of the fits)."""
+        if self.pool is None or job.stage not in FINAL_STAGES or record.get("status") != "fitted":
+            return
+        path = fit_figure_path(self.outdir, job.index, job.spectrum)
+        self.figures[job.index, job.stage] = self.pool.submit(in_worker, self.caller, fit_figure, self.series.model,
+                                                              record["fit"], record["curves"], path)
 
     def _stored(self, job: FitJob) -> Path:
         return self.outdir / "fits" / f"{job.index:03d}_{job.stage}.json"
@@ -322,6 +358,7 @@ class FitRunner:
 
         def collect(index: int, result: dict) -> None:
             records[index] = self._store(by_index[index], result)
+            self._draw_early(by_index[index], records[index])
             self.progress.advance(task, f"{self.series.spectra[index].temperature_k:g} K")
             self.progress.refresh()
 

@@ -28,10 +28,10 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.fitting.resultsfolder import write_json
-from dnmr.fitting.runner import FitRunner, SpectrumOutcome, restored_fit
+from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_figure, fit_figure_path
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.trends import StaticTrend
-from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, figure_file, save_figure
+from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, save_figure
 from dnmr.io.tables import SHARED_RATE_ERROR_PREFIX
 from dnmr.model import Model
 
@@ -120,11 +120,6 @@ def rendered_and_closed(fig, path: Path) -> bytes:
         plt.close(fig)
 
 
-def _draw_job(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
-    """The image file of the figure of one fit (in a worker)."""
-    return rendered_and_closed(restored_fit(model, fit_data, curves).plot(), path)
-
-
 def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
     """Write rates.csv: the rate columns, then the static parameters present (linewidths, shifts, couplings,
     the rest), the tail columns, the shared parts of the rate errors and the posterior columns when sampled."""
@@ -142,13 +137,18 @@ def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
 
 
 def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: Path, runner: FitRunner) -> None:
-    """Draw data, fit and residuals of every fitted spectrum into ``figures/NNN_<name>.png`` (in the pool)."""
+    """Draw data, fit and residuals of every fitted spectrum into ``figures/NNN_<name>.png`` (in the pool; the figures
+    the workers drew while the fits ran, :meth:`FitRunner.early_figure`, are written as they are)."""
     draws = []
     for i, o in enumerate(outcomes):
         if o.fitted:
-            path = figure_file(outdir / "figures" / f"{i:03d}_{o.spectrum.file.stem}.png")
-            draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
-    for (*_, path), image in zip(draws, runner.map(_draw_job, draws)):
+            path = fit_figure_path(outdir, i, o.spectrum)
+            image = runner.early_figure(i, o.stage)  # drawn while other fits ran
+            if image is not None:
+                atomic_write_bytes(path, image, overwrite=True)
+            else:
+                draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
+    for (*_, path), image in zip(draws, runner.map(fit_figure, draws)):
         atomic_write_bytes(path, image, overwrite=True)
 
 

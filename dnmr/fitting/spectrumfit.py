@@ -26,11 +26,12 @@ Method
    ``noise_ppm``, else the spectrum outside the fitted region, else the outer eighths of the region),
    estimated robustly, with the correlation factor c of neighbouring points
    (:func:`dnmr.fitting.problem.estimate_noise`).
-2. *Coarse scan*: log k is scanned over ``rate_scan_per_s`` (default 1e-2 to 1e7 s^-1, 37 points).
-   At every point the amplitude, zero-order phase and baseline enter linearly and are solved by linear
-   least squares, and the frequency offset is found by cross-correlation, so the scan needs no start
-   value for any of them.  The best scan point, the second-best local minimum and a start value from
-   the caller (a neighbouring temperature) are each refined, and the best refinement is kept.
+2. *Coarse scan*: log k is scanned over ``rate_scan_per_s`` (default 1e-2 to 1e7 s^-1, a grid of 37 points:
+   every other point, then the neighbours of the two best local minima).  At every point the amplitude,
+   zero-order phase and baseline enter linearly and are solved by linear least squares, and the frequency
+   offset is found by cross-correlation, so the scan needs no start value for any of them.  The best scan
+   point, the second-best local minimum and a start value from the caller (a neighbouring temperature) are
+   each refined, and the best refinement is kept.
 3. *Refinement*: lmfit ``least_squares`` (trust region, bounds) on residuals divided by the noise.
 4. *Uncertainties*: chi-square = sum ((data - fit) / noise)^2.  The covariance is (J^T J)^-1 of those
    residuals multiplied by the error scale s = c x (reduced chi-square if the fit is significantly
@@ -83,7 +84,7 @@ from dnmr.fitting.problem import FitProblem, NoiseEstimate, Profile, estimate_no
 from dnmr.fitting.ranges import check_rate_ceiling, number_pair, ppm_regions
 from dnmr.fitting.rates import RateContext, RateEstimate, classify_rate, held_shares, rate_of_process
 from dnmr.fitting.region import chosen_region, fit_region, shifts_outside, spectrum_for_model
-from dnmr.fitting.scan import refine_best, scan_rates, search_shifts
+from dnmr.fitting.scan import linear_solve, refine_best, scan_rates, search_shifts
 from dnmr.fitting.workers import single_threaded_blas
 from dnmr.io.measured import MeasuredSpectrum
 from dnmr.kinetics import STANDARD_TEMPERATURE_K
@@ -146,7 +147,8 @@ class FitOptions:
     rate_limits_per_s : (float, float)
         Bounds of every fitted rate (s^-1); the profile runs out to them.
     scan_points : int
-        Points of the coarse scan.
+        Points of the coarse scan's grid (every other one is scanned, then the neighbours of the best
+        minima).
     profile : bool
         Profile chi-square over every rate to find bounds (on by default; off only for speed).
     parameters : mapping
@@ -552,7 +554,7 @@ def _best_fit(problem: FitProblem, params: lmfit.Parameters, options: FitOptions
     if options.shifts == "free":
         starts = [search_shifts(problem, params, s) for s in starts]
     if start:
-        starts.append(problem.linear_solve(params, params.valuesdict())[1])
+        starts.append(linear_solve(problem, params, params.valuesdict())[1])
     return refine_best(problem, params, starts)
 
 
