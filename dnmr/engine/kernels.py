@@ -182,20 +182,19 @@ def _norm2(x):  # pragma: no cover - compiled
 def _project_pair(Q, rows, w, carry, slice_rows):  # pragma: no cover - compiled
     """:func:`dnmr.engine.resolvent._project_pair`: w -= sum_k q_k (q_k^T w) over the first `rows` rows of Q,
     and `carry` = sum_k q_k (q_k^T q_last) over all of them but the last, q_last, in one pass over the rows
-    (slices read from memory once for their four products)."""
+    (slices read from memory once for their four products, BLAS gemv)."""
     last = rows - 1
-    pair = np.empty((2, w.size), dtype=np.complex128)
-    pair[0] = Q[last]
-    pair[1] = w
-    out = np.zeros_like(pair)
+    q = Q[last].copy()
+    out = np.zeros_like(w)
+    carry[:] = 0.0
     for start in range(0, rows, slice_rows):
         part = Q[start:min(rows, start + slice_rows)]
-        products = np.dot(part, pair.T)
+        overlaps = np.dot(part, q)
         if start + part.shape[0] > last:
-            products[last - start, 0] = 0.0
-        out += np.dot(products.T.copy(), part)
-    w -= out[1]
-    carry[:] = out[0]
+            overlaps[last - start] = 0.0
+        out += np.dot(np.dot(part, w), part)
+        carry += np.dot(overlaps, part)
+    w -= out
 
 
 @njit(cache=True, nogil=True)

@@ -416,15 +416,15 @@ def _project_pair(basis: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndar
     halves the passes over it)."""
     rows = _slice_rows(basis.shape[1])
     last = len(basis) - 1
-    pair = np.stack([basis[last], w])
-    out = np.zeros_like(pair)
+    out, carry = np.zeros_like(w), np.zeros_like(w)
     for start in range(0, len(basis), rows):
         part = basis[start:start + rows]
-        products = part @ pair.T
+        overlaps = part @ basis[last]
         if start + len(part) > last:
-            products[last - start, 0] = 0.0
-        out += products.T @ part
-    return out[1], out[0]
+            overlaps[last - start] = 0.0
+        out += (part @ w) @ part
+        carry += overlaps @ part
+    return out, carry
 
 
 def _slice_rows(n: int) -> int:
