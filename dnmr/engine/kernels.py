@@ -78,7 +78,7 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
     the first `steps` entries of alpha and `steps` - 1 of beta hold the tridiagonal; ok is False on a
     serious breakdown."""
     n = q0.size
-    Q = np.zeros((n, n), dtype=np.complex128)
+    Q = np.empty((n, n), dtype=np.complex128)  # row j + 1 is written before any pass reads it
     alpha = np.zeros(n, dtype=np.complex128)
     beta = np.zeros(max(n - 1, 1), dtype=np.complex128)
     omega = np.zeros(n + 1, dtype=np.complex128)       # estimates of q_j^T q_k, k <= j
@@ -108,7 +108,7 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
             carried = False
         elif largest > semi_orthogonal:
             before = length2
-            _project_pair(Q, j + 1, w, carry, slice_rows)
+            project_pair(Q, j + 1, w, carry, slice_rows)
             carried = True
             length2 = _norm2(w)
             if length2 < 0.5 * before:  # "twice is enough"
@@ -179,8 +179,8 @@ def _norm2(x):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def _project_pair(Q, rows, w, carry, slice_rows):  # pragma: no cover - compiled
-    """:func:`dnmr.engine.resolvent._project_pair`: w -= sum_k q_k (q_k^T w) over the first `rows` rows of Q,
+def project_pair(Q, rows, w, carry, slice_rows):  # pragma: no cover - compiled
+    """:func:`dnmr.engine.resolvent.project_pair`: w -= sum_k q_k (q_k^T w) over the first `rows` rows of Q,
     and `carry` = sum_k q_k (q_k^T q_last) over all of them but the last, q_last, in one pass over the rows
     (slices read from memory once for their four products, BLAS gemv)."""
     last = rows - 1

@@ -321,7 +321,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
     the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
     against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next (the
-    next step's share found in the same pass over the basis, :func:`_project_pair`).  That keeps the basis
+    next step's share found in the same pass over the basis, :func:`project_pair`).  That keeps the basis
     semi-orthogonal, which is enough for T to be the projection of S to working accuracy; a step costs a
     sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and then (about one
     step in ten for six to eight spins).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
@@ -355,7 +355,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     omega = np.zeros(n + 1, dtype=complex)       # estimates of q_j^T q_k, k <= j (omega[j] = 1)
     omega_prev = np.zeros(n + 1, dtype=complex)  # the same for q_(j-1)
     omega[0] = 1.0
-    carry = None  # the second step's share of the last re-orthogonalisation (see :func:`_project_pair`)
+    carry = None  # the second step's share of the last re-orthogonalisation (see :func:`project_pair`)
     for j in range(n):
         w = operator @ Q[j]
         if j:
@@ -375,7 +375,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         elif np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL:
             basis = Q[: j + 1]
             before = length2
-            projection, carry = _project_pair(basis, w)
+            projection, carry = project_pair(basis, w)
             w -= projection
             length2 = np.vdot(w, w).real
             if length2 < 0.5 * before:  # "twice is enough"
@@ -405,7 +405,7 @@ def _projection(basis: np.ndarray, w: np.ndarray) -> np.ndarray:
     return out
 
 
-def _project_pair(basis: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def project_pair(basis: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The projection of :func:`_projection` of `w` on the rows of `basis`, and in the same pass over the
     basis sum_k q_k (q_k^T q_j) over all rows but the last, q_j.
 
