@@ -74,58 +74,48 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
     """The recursion of :func:`dnmr.engine.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
     step for step: the sparse product, Simon's estimates of the loss of orthogonality, and classical
     Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` (at
-    that step and the next).  Returns (alpha, beta, steps, ok): the first `steps` entries of alpha and
-    `steps` - 1 of beta hold the tridiagonal; ok is False on a serious breakdown."""
+    that step, and at the next by the share found in the same pass).  Returns (alpha, beta, steps, ok):
+    the first `steps` entries of alpha and `steps` - 1 of beta hold the tridiagonal; ok is False on a
+    serious breakdown."""
     n = q0.size
-    Q = np.zeros((n, n), dtype=np.complex128)
+    Q = np.empty((n, n), dtype=np.complex128)  # row j + 1 is written before any pass reads it
     alpha = np.zeros(n, dtype=np.complex128)
     beta = np.zeros(max(n - 1, 1), dtype=np.complex128)
     omega = np.zeros(n + 1, dtype=np.complex128)       # estimates of q_j^T q_k, k <= j
     omega_prev = np.zeros(n + 1, dtype=np.complex128)  # the same for q_(j-1)
     new = np.zeros(n + 1, dtype=np.complex128)
     w = np.empty(n, dtype=np.complex128)
+    carry = np.zeros(n, dtype=np.complex128)
     Q[0] = q0
     omega[0] = 1.0
-    again = False
+    carried = False
     for j in range(n):
         q = Q[j]
-        for r in range(n):
-            s = 0j
-            for p in range(indptr[r], indptr[r + 1]):
-                s += data[p] * q[indices[p]]
-            w[r] = s
+        _csr_product(indptr, indices, data, q, w)
         if j:
             w -= beta[j - 1] * Q[j - 1]
         alpha[j] = _bilinear(q, w)
         w -= alpha[j] * q
         if j == n - 1:
             break
+        if carried:
+            w += beta[j - 1] * carry
         length2 = _norm2(w)
         b = np.sqrt(_bilinear(w, w))
-        divisor = b if b != 0 else 1e-300
-        new[:] = 0.0
-        for k in range(j):
-            t = beta[k] * omega[k + 1] + (alpha[k] - alpha[j]) * omega[k] - beta[j - 1] * omega_prev[k]
-            if k:
-                t += beta[k - 1] * omega[k - 1]
-            new[k] = t
-        largest = 0.0
-        for k in range(j + 1):
-            new[k] = (new[k] + noise[k]) / divisor
-            largest = max(largest, abs(new[k]))
-        new[j + 1] = 1.0
-        if again or largest > semi_orthogonal:
+        largest = _next_orthogonality(new, omega, omega_prev, alpha, beta, j, b, noise)
+        if carried:
+            _reset_orthogonality(new, noise, j, b)
+            carried = False
+        elif largest > semi_orthogonal:
             before = length2
-            _project_out(Q, j + 1, w, slice_rows)
+            project_pair(Q, j + 1, w, carry, slice_rows)
+            carried = True
             length2 = _norm2(w)
             if length2 < 0.5 * before:  # "twice is enough"
                 _project_out(Q, j + 1, w, slice_rows)
                 length2 = _norm2(w)
             b = np.sqrt(_bilinear(w, w))
-            scale = max(abs(b), 1e-300)
-            for k in range(j + 1):
-                new[k] = noise[k] / scale
-            again = not again
+            _reset_orthogonality(new, noise, j, b)
         if length2 ** 0.5 <= exhausted:
             return alpha, beta, j + 1, True  # the Krylov space is exhausted: exact with fewer steps
         if abs(b) ** 2 * growth_limit < length2:
@@ -134,6 +124,42 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
         Q[j + 1] = w / b
         omega_prev, omega, new = omega, new, omega_prev
     return alpha, beta, n, True
+
+
+@njit(cache=True, nogil=True)
+def _csr_product(indptr, indices, data, q, w):  # pragma: no cover - compiled
+    """w = A q for the CSR matrix A (`indptr`, `indices`, `data`)."""
+    for r in range(w.size):
+        s = 0j
+        for p in range(indptr[r], indptr[r + 1]):
+            s += data[p] * q[indices[p]]
+        w[r] = s
+
+
+@njit(cache=True, nogil=True)
+def _next_orthogonality(new, omega, omega_prev, alpha, beta, j, b, noise):  # pragma: no cover - compiled
+    """:func:`dnmr.engine.resolvent.next_orthogonality` into `new`; returns the largest estimate for k <= j."""
+    divisor = b if b != 0 else 1e-300
+    new[:] = 0.0
+    for k in range(j):
+        t = beta[k] * omega[k + 1] + (alpha[k] - alpha[j]) * omega[k] - beta[j - 1] * omega_prev[k]
+        if k:
+            t += beta[k - 1] * omega[k - 1]
+        new[k] = t
+    largest = 0.0
+    for k in range(j + 1):
+        new[k] = (new[k] + noise[k]) / divisor
+        largest = max(largest, abs(new[k]))
+    new[j + 1] = 1.0
+    return largest
+
+
+@njit(cache=True, nogil=True)
+def _reset_orthogonality(new, noise, j, b):  # pragma: no cover - compiled
+    """The estimates for k <= j after a re-orthogonalisation: one step's rounding error."""
+    scale = max(abs(b), 1e-300)
+    for k in range(j + 1):
+        new[k] = noise[k] / scale
 
 
 @njit(cache=True, nogil=True)
@@ -150,6 +176,25 @@ def _norm2(x):  # pragma: no cover - compiled
     for i in range(x.size):
         s += x[i].real * x[i].real + x[i].imag * x[i].imag
     return s
+
+
+@njit(cache=True, nogil=True)
+def project_pair(Q, rows, w, carry, slice_rows):  # pragma: no cover - compiled
+    """:func:`dnmr.engine.resolvent.project_pair`: w -= sum_k q_k (q_k^T w) over the first `rows` rows of Q,
+    and `carry` = sum_k q_k (q_k^T q_last) over all of them but the last, q_last, in one pass over the rows
+    (slices read from memory once for their four products, BLAS gemv)."""
+    last = rows - 1
+    q = Q[last].copy()
+    out = np.zeros_like(w)
+    carry[:] = 0.0
+    for start in range(0, rows, slice_rows):
+        part = Q[start:min(rows, start + slice_rows)]
+        overlaps = np.dot(part, q)
+        if start + part.shape[0] > last:
+            overlaps[last - start] = 0.0
+        out += np.dot(np.dot(part, w), part)
+        carry += np.dot(overlaps, part)
+    w -= out
 
 
 @njit(cache=True, nogil=True)

@@ -320,10 +320,11 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     The loss of orthogonality q_k^T q_j is not measured but estimated by its own three-term recurrence
     (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
     the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
-    against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next.  That
-    keeps the basis semi-orthogonal, which is enough for T to be the projection of S to working accuracy;
-    a step costs a sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and
-    then (about one step in ten for six to eight spins).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
+    against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next (the
+    next step's share found in the same pass over the basis, :func:`project_pair`).  That keeps the basis
+    semi-orthogonal, which is enough for T to be the projection of S to working accuracy; a step costs a
+    sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and then (about one
+    step in ten for six to eight spins).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
     is taken where available.  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1, or None on a serious breakdown or excessive growth of
     the basis (the caller then takes another route).
@@ -354,7 +355,7 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     omega = np.zeros(n + 1, dtype=complex)       # estimates of q_j^T q_k, k <= j (omega[j] = 1)
     omega_prev = np.zeros(n + 1, dtype=complex)  # the same for q_(j-1)
     omega[0] = 1.0
-    again = False
+    carry = None  # the second step's share of the last re-orthogonalisation (see :func:`project_pair`)
     for j in range(n):
         w = operator @ Q[j]
         if j:
@@ -363,20 +364,25 @@ def lanczos(S, g: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         w -= alpha[j] * Q[j]
         if j == n - 1:
             break
+        if carry is not None:
+            w += beta[j - 1] * carry
         length2 = np.vdot(w, w).real
         b = np.sqrt(w @ w)
         estimate = next_orthogonality(omega, omega_prev, alpha, beta, j, b, noise)
-        if again or np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL:
+        if carry is not None:
+            estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
+            carry = None
+        elif np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL:
             basis = Q[: j + 1]
             before = length2
-            w -= _projection(basis, w)
+            projection, carry = project_pair(basis, w)
+            w -= projection
             length2 = np.vdot(w, w).real
             if length2 < 0.5 * before:  # "twice is enough"
                 w -= _projection(basis, w)
                 length2 = np.vdot(w, w).real
             b = np.sqrt(w @ w)
             estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
-            again = not again
         if length2 ** 0.5 <= exhausted:
             return alpha[: j + 1], beta[:j]  # the Krylov space is exhausted: exact with fewer steps
         if abs(b) ** 2 * KRYLOV_GROWTH_LIMIT < length2:
@@ -397,6 +403,28 @@ def _projection(basis: np.ndarray, w: np.ndarray) -> np.ndarray:
         part = basis[start:start + rows]
         out += (part @ w) @ part
     return out
+
+
+def project_pair(basis: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The projection of :func:`_projection` of `w` on the rows of `basis`, and in the same pass over the
+    basis sum_k q_k (q_k^T q_j) over all rows but the last, q_j.
+
+    The second is what re-orthogonalising the next step's vector would remove: that vector is
+    S q_(j+1) - alpha q_(j+1) - beta_j q_j, and once q_(j+1) is orthogonal to the basis, its products with
+    the earlier q_k are -beta_j q_k^T q_j up to rounding error (S q_k = beta q_(k-1) + alpha q_k + beta q_(k+1)
+    and S is symmetric).  The next step adds beta_j times it instead of reading the basis again (which
+    halves the passes over it)."""
+    rows = _slice_rows(basis.shape[1])
+    last = len(basis) - 1
+    out, carry = np.zeros_like(w), np.zeros_like(w)
+    for start in range(0, len(basis), rows):
+        part = basis[start:start + rows]
+        overlaps = part @ basis[last]
+        if start + len(part) > last:
+            overlaps[last - start] = 0.0
+        out += (part @ w) @ part
+        carry += overlaps @ part
+    return out, carry
 
 
 def _slice_rows(n: int) -> int:
