@@ -133,6 +133,25 @@ def test_without_numba_the_numpy_route_is_taken(monkeypatch):
     assert spectrum.intensity.max() > 0
 
 
+def test_a_broken_numba_install_falls_back_to_the_numpy_route_with_a_warning(monkeypatch):
+    """numba that imports but fails inside (seen when a script's folder shadows a package numba imports):
+    the numpy loops run, and the user is told why the compiled ones are off."""
+    import importlib
+
+    real_import = importlib.import_module
+
+    def failing(name, *args):
+        if name.endswith(".kernels"):
+            raise AttributeError("module 'coverage' has no attribute 'types'")
+        return real_import(name, *args)
+
+    monkeypatch.setattr(resolvent.importlib, "import_module", failing)
+    monkeypatch.setattr(resolvent, "_KERNELS", [])
+    with pytest.warns(RuntimeWarning, match="compiled loops are off"):
+        assert resolvent.compiled_kernels() is None
+    assert dnmr.simulate(chain_model(5, seed=2), points=2048).intensity.max() > 0
+
+
 def imported_after(code: str) -> bool:
     """Whether numba is imported after running `code` in a fresh interpreter."""
     probe = code + "\nimport sys; print('numba' in sys.modules)"

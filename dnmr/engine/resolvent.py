@@ -20,6 +20,7 @@ Three exact routes, chosen per block; each only moves rounding error:
 from __future__ import annotations
 
 import importlib
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -58,6 +59,10 @@ def compiled_kernels():
         try:
             kernels = importlib.import_module(f"{__package__}.kernels")
         except ImportError:  # numba is an optional extra
+            kernels = None
+        except Exception as exc:  # a broken numba install: the numpy loops give the same numbers
+            warnings.warn(f"the compiled loops are off (numba failed to load: {type(exc).__name__}: {exc}); "
+                          "dnmr uses its numpy loops, which give the same spectra", RuntimeWarning, stacklevel=2)
             kernels = None
         _KERNELS.append(kernels)
     return _KERNELS[0]
