@@ -92,6 +92,8 @@ def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
             if row["status"] == "determined":
                 assert shared <= float(row["log10_rate_stderr"]) ** 2 * (1 + 1e-9)
                 assert shared > 0 or "trend" not in row["treatment"]
+            if row["log10_rate_stderr_held"]:  # every held value came from the trends: the held error is shared
+                assert shared == pytest.approx(float(row["log10_rate_stderr_held"]) ** 2, rel=1e-6)
         tied += _tied_rates_share_their_whole_error(result)
         assert eyring.error_shares()["enthalpy"].get("held trends", 0.0) > 0.0
         z += [(eyring.enthalpy_kj_mol - truth.enthalpy_kj_mol) / eyring.enthalpy_stderr,
