@@ -13,6 +13,7 @@ coalescence that are only bounds (a free linewidth), and ΔH‡/ΔS‡ many stan
 from __future__ import annotations
 
 import csv
+import math
 from pathlib import Path
 
 import numpy as np
@@ -91,6 +92,8 @@ def test_default_two_step_rates_and_barriers_are_honest(scenario, tmp_path):
             if row["status"] == "determined":
                 assert shared <= float(row["log10_rate_stderr"]) ** 2 * (1 + 1e-9)
                 assert shared > 0 or "trend" not in row["treatment"]
+            if row["log10_rate_stderr_held"]:  # every held value came from the trends: the held error is shared
+                assert shared == pytest.approx(float(row["log10_rate_stderr_held"]) ** 2, rel=1e-6)
         tied += _tied_rates_share_their_whole_error(result)
         assert eyring.error_shares()["enthalpy"].get("held trends", 0.0) > 0.0
         z += [(eyring.enthalpy_kj_mol - truth.enthalpy_kj_mol) / eyring.enthalpy_stderr,
@@ -119,3 +122,81 @@ def test_reference_line_gives_the_linewidth_and_values_past_coalescence(tmp_path
         rate = o.fit.rate(0)
         assert rate.status == "determined" and rate.log10_rate_stderr_held > 0
         assert abs(rate.rate_per_s - k_true) <= 3 * rate.rate_stderr
+
+
+class _MeasuredFit:
+    """What the trends read of a slow-exchange fit: free parameters with errors and correlations, rates."""
+
+    def __init__(self, values: dict, covariance: np.ndarray):
+        import lmfit
+        from types import SimpleNamespace
+
+        self.lmfit_parameters = lmfit.Parameters()
+        sd = np.sqrt(np.diag(covariance))
+        names = list(values)
+        for a, name in enumerate(names):
+            self.lmfit_parameters.add(name, value=values[name])
+            par = self.lmfit_parameters[name]
+            par.stderr = float(sd[a])
+            par.correl = {other: float(covariance[a, b] / (sd[a] * sd[b])) for b, other in enumerate(names) if b != a}
+        self.rates = [SimpleNamespace(status="determined")]
+
+    def correlation(self, first: str, second: str) -> float:
+        return self.lmfit_parameters[first].correl[second]
+
+
+def test_held_values_of_different_trends_err_together_as_measured():
+    # Linear error propagation (common practice): each line's coefficients are linear in the values the
+    # slow-exchange fits measured, c_p = A_p y, so cov(c_p, c_q) = A_p C A_q^T with C the block-diagonal
+    # covariance of those values (each fit's covariance, here invented with a linewidth-coupling-rate
+    # correlation).  The lines' common basis must give that cross-covariance, and a rate held at both
+    # values gets the error of their combination, s^T cov s, not the sum of independent shares.
+    from dnmr.fitting.trendbasis import common_noise_basis
+    from dnmr.fitting.trends import static_trend
+
+    temps = [230.0, 240.0, 250.0]
+    names = ["linewidth_hz_M", "coupling_hz_M_Ha_Hb", "log10_rate_swap"]
+    rng = np.random.default_rng(3)
+    blocks, fits = [], []
+    for t in temps:
+        sd = np.array([0.03, 0.004, 0.02]) * (1 + 0.3 * rng.random(3))
+        corr = np.array([[1.0, 0.6, -0.9], [0.6, 1.0, -0.5], [-0.9, -0.5, 1.0]])
+        cov = corr * np.outer(sd, sd)
+        values = dict(zip(names, (1.3 - 0.004 * (t - 240) + rng.normal(0, 0.02), -12.5 + rng.normal(0, 0.003),
+                                  math.log10(0.5 * math.exp((t - 240) / 8)))))
+        blocks.append(cov)
+        fits.append((t, _MeasuredFit(values, cov)))
+    trend = common_noise_basis(static_trend(fits, fits, ("coupling", "linewidth")), fits)
+    width, coupling = trend.lines["linewidth_hz_M"], trend.lines["coupling_hz_M_Ha_Hb"]
+    assert width.common_basis and coupling.common_basis
+    # the reference: both lines as linear maps of the nine measured values, built here from their definitions
+    x0 = np.mean(temps)
+    v = np.zeros((9, 9))
+    for i, block in enumerate(blocks):
+        v[3 * i:3 * i + 3, 3 * i:3 * i + 3] = block
+    d_joint = np.zeros((6, 4))  # (w, log10(k/T)) rows of each spectrum on (a, b, c, d)
+    for i, t in enumerate(temps):
+        d_joint[2 * i] = [1.0, t - x0, 0.0, 0.0]
+        d_joint[2 * i + 1] = [0.0, 0.0, 1.0, 1.0 / t - 1.0 / x0]
+    pick = [3 * i + j for i in range(3) for j in (0, 2)]
+    v_joint = v[np.ix_(pick, pick)]
+    gls = np.linalg.solve(d_joint.T @ np.linalg.solve(v_joint, d_joint), d_joint.T @ np.linalg.inv(v_joint))
+    a_width = np.zeros((2, 9))
+    a_width[:, pick] = gls[:2]
+    w = 1.0 / np.array([b[1, 1] for b in blocks])
+    x = np.array(temps) - coupling.x0
+    design = np.column_stack([np.ones(3), x])
+    a_coupling = np.zeros((2, 9))
+    a_coupling[:, [1, 4, 7]] = np.linalg.solve(design.T @ (design * w[:, None]), design.T * w)
+    cross = a_width @ v @ a_coupling.T
+    assert np.array(width.noise_map) @ np.array(coupling.noise_map).T == pytest.approx(cross, rel=1e-6, abs=1e-12)
+    assert np.array(width.noise_map) @ np.array(width.noise_map).T == pytest.approx(np.array(width.covariance), rel=1e-6)
+    # a rate at 300 K held at both values: its held error is the combination's
+    t = 300.0
+    e = np.array([1.0, t - x0])
+    g = np.vstack([e @ a_width, np.array([1.0, t - coupling.x0]) @ a_coupling])
+    cov_held = g @ v @ g.T
+    shares = {"linewidth_hz_M": 0.05, "coupling_hz_M_Ha_Hb": -0.01}
+    s = np.array(list(shares.values())) / np.sqrt(np.diag(cov_held))  # log10 k per unit of each held value
+    assert trend.held_error(t, shares) == pytest.approx(math.sqrt(s @ cov_held @ s), rel=1e-6)
+    assert sum(v * v for v in trend.shared_errors(t, shares).values()) == pytest.approx(s @ cov_held @ s, rel=1e-6)

@@ -184,6 +184,36 @@ def classify_rate(name: str, process: str, params: lmfit.Parameters, profile: Pr
                         held_shares=dict(shares), **{**_OPEN, **verdict})
 
 
+def with_held_error(estimate: RateEstimate, held: float) -> RateEstimate:
+    """`estimate` with the held parameters' part of its error (log10 k) changed to `held` (the fit summed
+    the held shares as independent; correlated held values, :meth:`dnmr.fitting.trends.StaticTrend.held_error`,
+    give another total): the error and each end of the interval are widened by `held` in quadrature in
+    place of the fit's part, the status kept."""
+    x, before = estimate.log10_rate, math.sqrt(sum(v * v for v in estimate.held_shares.values()))
+    own = estimate.log10_rate_stderr_spectrum
+    s = math.hypot(own, held) if np.isfinite(own) else own
+
+    def moved(end: float) -> float:
+        if not np.isfinite(end):
+            return end
+        e = math.log10(end) - x
+        bare = math.sqrt(max(e * e - before * before, 0.0))
+        return 10.0 ** (x + math.copysign(math.hypot(bare, held), e))
+
+    ci = tuple(moved(end) for end in estimate.rate_ci68)
+    changes = {"log10_rate_stderr": s, "log10_rate_stderr_held": held, "rate_ci68": ci,
+               "reason": estimate.reason.replace(f"add {before:.3f} decades", f"add {held:.3f} decades")}
+    if estimate.status == "determined":
+        changes["rate_stderr"] = 10.0 ** x * math.log(10) * s
+    elif estimate.status == "interval":
+        changes["rate_lower"], changes["rate_upper"] = ci
+    elif estimate.status == "upper-bound":
+        changes["rate_upper"] = ci[1]
+    elif estimate.status == "lower-bound":
+        changes["rate_lower"] = ci[0]
+    return dataclasses.replace(estimate, **changes)
+
+
 def _inside(par: lmfit.Parameter, s: float) -> bool:
     """The error bar s (log10 k) lies within the allowed range: one reaching past a limit of the range is
     no error bar, the range cut it."""

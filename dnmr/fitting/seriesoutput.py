@@ -4,7 +4,7 @@
     One row per spectrum and process: the contract's columns temperature_k, process, rate_per_s,
     rate_stderr, rate_lower, rate_upper, then status, log10 rate and its error, the profile's 68 %
     interval, linewidths, shifts, populations, offset, phase, chi-square, noise, the spectrum file,
-    flags and notes (why a bound, or why a fit failed), then ``log10_rate_shared_<parameter>_<j>``:
+    flags and notes (why a bound, or why a fit failed), then ``log10_rate_shared_<source>_<j>``:
     the parts of the error that rows share through a slow-exchange trend (which ``dnmr eyring`` counts
     as correlated; :meth:`dnmr.fitting.trends.StaticTrend.shared_errors`).
 ``results.json``

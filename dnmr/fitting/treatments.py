@@ -29,7 +29,9 @@ from dnmr.fitting.resultsfolder import STAGE_HELD, STAGE_MAIN, STAGE_SLOW
 from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_job, outcome_from_record
 from dnmr.fitting.seriesfile import REFERENCE_LINE, TREATMENT_KIND, TREND, Series
 from dnmr.fitting.parameters import RATE_PREFIX, ParameterLayout
+from dnmr.fitting.rates import with_held_error
 from dnmr.fitting.spectrumfit import FitOptions, SpectrumFit, fit_spectrum
+from dnmr.fitting.trendbasis import common_noise_basis
 from dnmr.fitting.trends import PARAMETER_PREFIX, StaticTrend, held_setting, static_trend, temperature_span
 from dnmr.io.readers import read_spectrum
 from dnmr.kinetics import coalescence_rate_per_s
@@ -219,6 +221,8 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
     if slow:
         trend = static_trend([(temp(i), outcomes[i].fit) for i in slow], [(temp(i), outcomes[i].fit) for i in lw_from],
                              kinds)
+        if not lw_from or lw_from == slow:  # one set of spectra: their values' errors on one basis
+            trend = common_noise_basis(trend, [(temp(i), outcomes[i].fit) for i in slow])
         notes.append(f"slow-exchange run: {len(slow)} spectr{'um' if len(slow) == 1 else 'a'} ({temperature_span([temp(i) for i in slow])}); "
                      + ", ".join(f"{q} from it" for q, k in TREATMENT_KIND.items() if k in kinds and k != "linewidth")
                      + (f"; linewidth from {len(lw_from)} of them ({temperature_span([temp(i) for i in lw_from])})" if lw_from else ""))
@@ -243,6 +247,8 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
         _set_treatment(series, o, trend, references.get(i))
         if trend is not None and o.fit is not None:
             point = lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from else None
+            if point is None:
+                _count_held_correlations(o, trend)
             o.shared_rate_errors = _shared_rate_errors(o, trend, point)
     return outcomes, trend, notes
 
@@ -256,6 +262,20 @@ def _shared_rate_errors(outcome: SpectrumOutcome, trend: StaticTrend, point: int
     return [trend.shared_errors(outcome.spectrum.temperature_k, {n: v for n, v in r.held_shares.items() if n not in own},
                                 None if point is None else (point, name))
             for name, r in zip(names, fit.rates)]
+
+
+def _count_held_correlations(outcome: SpectrumOutcome, trend: StaticTrend) -> None:
+    """Give each rate of a fit with held values the held error with the correlations of the trends' common
+    basis (:meth:`StaticTrend.held_error`) in place of the fit's sum of independent shares: values held from
+    lines measured in the same slow-exchange spectra err together.  Held values the user set keep their
+    own, independent errors."""
+    fit, own = outcome.fit, outcome.spectrum.options.parameters
+    for k, rate in enumerate(fit.rates):
+        if rate.held_shares:
+            trended = {n: v for n, v in rate.held_shares.items() if n not in own}
+            other = sum(v * v for n, v in rate.held_shares.items() if n in own)
+            held = math.sqrt(other + trend.held_error(outcome.spectrum.temperature_k, trended) ** 2)
+            fit.rates[k] = with_held_error(rate, held)
 
 
 def fit_without_trends(series: Series, runner: FitRunner, hashes: Mapping, references: Mapping[int, dict]

@@ -23,6 +23,9 @@ PARAMETER_PREFIX = {"shift": "shift_ppm_", "coupling": "coupling_hz_", "populati
 """The name prefix of the fit parameters of each kind of static parameter."""
 MIN_HELD_LINEWIDTH_HZ = 1e-3
 """A linewidth trend extrapolated below this (Hz) is held here (the fit's lower limit of a linewidth)."""
+SLOW_EXCHANGE_SOURCE = "slow_exchange"
+"""The name of the independent errors of the values measured in the slow-exchange run, which every line with
+a common basis shares (rates.csv's ``log10_rate_shared_slow_exchange_<j>``)."""
 
 
 @dataclass(frozen=True)
@@ -55,12 +58,18 @@ class ParameterTrend:
     constant : bool
         True when the points come from one temperature (no slope).
     noise_map : tuple of tuple of float
-        For a line fitted jointly with the rates (:func:`linewidth_trend`): (da, db) = noise_map e, e the
-        independent unit errors of the points (each spectrum's measured pair whitened by its covariance),
-        before any widening by the reduced chi-square; empty otherwise.
+        (da, db) = noise_map e, e independent unit errors of the points, before any widening by the reduced
+        chi-square: for a line fitted jointly with the rates (:func:`linewidth_trend`) each spectrum's
+        measured pair whitened by its covariance; for a line of a common basis (`common_basis`) every value
+        measured in each slow-exchange spectrum whitened by its covariance (:func:`common_noise_basis`);
+        empty otherwise.
     rate_noise : tuple of dict
         With `noise_map`, per point: the error (log10 k) of each rate it gave, by rate parameter, in the
         same unit errors e; those rates and the line share them.
+    common_basis : bool
+        True when `noise_map` is on the unit errors every trend of the run shares, so that the errors of
+        values held from different lines (a linewidth and a population measured in the same spectra) are
+        correlated as the slow-exchange fits measured them.
     """
 
     name: str
@@ -75,6 +84,7 @@ class ParameterTrend:
     constant: bool = False
     noise_map: tuple[tuple[float, ...], ...] = ()
     rate_noise: tuple[dict[str, tuple[float, ...]], ...] = ()
+    common_basis: bool = False
 
     def x(self, temperature_k: float) -> float:
         """The line's abscissa at `temperature_k` (K): T (K), or 1/T (1/K) for a van 't Hoff line."""
@@ -212,7 +222,8 @@ class StaticTrend:
 
         A held value's error at T is d(T) . (da, db), d = (1, x(T) - x0), and the errors (da, db) of a
         line's coefficients are one draw for the whole series: a linear map of independent unit errors,
-        those of the points of the linewidth's joint fit (:attr:`ParameterTrend.noise_map`), else
+        those of the values measured in the slow-exchange spectra (:attr:`ParameterTrend.noise_map`; on a
+        common basis every line uses the same ones, so held values measured together err together), else
         (da, db) = L z, L L^T their covariance.  A rate that moves by ``share`` (log10 k) for one standard
         error of the held value therefore moves by share u . e, u the unit vector of
         :meth:`ParameterTrend.error_direction`; the rates of all the faster spectra move together, and
@@ -234,20 +245,37 @@ class StaticTrend:
         Returns
         -------
         dict of str to float
-            ``<parameter>_<j>``: the rate's change (log10 k) for the j-th unit error of that parameter's
-            line (j from 1); their squares add up to the shares' squares (and the rate's own error).
+            ``slow_exchange_<j>``: the rate's change (log10 k) for the j-th unit error of the common basis
+            (j from 1), or ``<parameter>_<j>`` for the j-th of a line of its own; on a common basis their
+            squares add up to the held values' error with their correlations (:meth:`held_error`), else to
+            the shares' squares (and the rate's own error).
         """
         out: dict[str, float] = {}
         for name, share in shares.items():
-            line = self.differences.get(name) if name.startswith(PARAMETER_PREFIX["shift"]) else self.lines.get(name)
+            line = self.line_of(name)
             if line is not None and share:
+                source = SLOW_EXCHANGE_SOURCE if line.common_basis else name
                 for j, u in enumerate(line.error_direction(temperature_k)):
-                    out[f"{name}_{j + 1}"] = out.get(f"{name}_{j + 1}", 0.0) + float(share * u)
+                    out[f"{source}_{j + 1}"] = out.get(f"{source}_{j + 1}", 0.0) + float(share * u)
         for name, line in self.lines.items():
             own = line.rate_noise[point[0]].get(point[1]) if point and point[0] < len(line.rate_noise) else None
+            source = SLOW_EXCHANGE_SOURCE if line.common_basis else name
             for j, u in enumerate(own or ()):
-                out[f"{name}_{j + 1}"] = out.get(f"{name}_{j + 1}", 0.0) + float(u)
+                out[f"{source}_{j + 1}"] = out.get(f"{source}_{j + 1}", 0.0) + float(u)
         return out
+
+    def held_error(self, temperature_k: float, shares: Mapping[str, float]) -> float:
+        """The error (log10 k) a rate gets from the held parameters of `shares` (log10 k per standard error
+        of each, :attr:`dnmr.fitting.rates.RateEstimate.held_shares`) at `temperature_k` (K): those held
+        from these trends counted with the correlations of a common basis (:meth:`shared_errors`), any
+        other as independent."""
+        own = sum(v * v for n, v in shares.items() if self.line_of(n) is None)
+        return math.sqrt(own + sum(v * v for v in self.shared_errors(temperature_k, shares).values()))
+
+    def line_of(self, name: str) -> ParameterTrend | None:
+        """The line that gives held parameter `name` its error (a shift's: its difference from the first
+        shift), or None."""
+        return self.differences.get(name) if name.startswith(PARAMETER_PREFIX["shift"]) else self.lines.get(name)
 
     def shift_lines(self) -> dict[str, dict[str, float]]:
         """The shift lines in the form results.json has always had (ppm at the mean T, ppm per K)."""
@@ -335,11 +363,8 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
         shifts = [n for n in free if n.startswith(PARAMETER_PREFIX["shift"])] if "shift" in kinds else []
         if shifts:
             first_shift = shifts[0]
-            base = _parameter_points(slow, first_shift)
             for name in shifts[1:]:
-                temps, values, errors = _parameter_points(slow, name)
-                differences[name] = regress_trend(name, "linear-in-T", temps, np.subtract(values, base[1]),
-                                                  np.hypot(errors, base[2]))
+                differences[name] = regress_trend(name, "linear-in-T", *_difference_points(slow, name, first_shift))
         populations = [n for n in params if n.startswith(PARAMETER_PREFIX["population"])]
         if "population" in kinds and populations and any(params[n].vary for n in populations):
             first = populations[0]
@@ -351,6 +376,35 @@ def static_trend(slow: Sequence[tuple[float, SpectrumFit]], quiet: Sequence[tupl
     return StaticTrend(lines, first, differences=differences, first_shift=first_shift)
 
 
+def _difference_points(fits, name: str, first: str) -> tuple[list, list, list]:
+    """(temperatures, shift `name` minus shift `first` (ppm), stderrs) over `fits`, the errors with the two
+    shifts' correlation."""
+    temps, values, errors = [], [], []
+    for t, fit in fits:
+        variance = value_covariance(fit, [{name: 1.0, first: -1.0}])
+        temps.append(t)
+        values.append(float(fit.lmfit_parameters[name].value - fit.lmfit_parameters[first].value))
+        errors.append(math.sqrt(variance[0, 0]) if np.isfinite(variance).all() else math.nan)
+    return temps, values, errors
+
+
+def value_covariance(fit: SpectrumFit, gradients: Sequence[Mapping[str, float]]) -> np.ndarray:
+    """Covariance of values linear in the free parameters of `fit` (each a gradient by parameter name, in
+    the value's unit per the parameter's), from the fit's standard errors and correlations (NaN where a
+    standard error is missing)."""
+    names = sorted({n for g in gradients for n in g})
+    params = fit.lmfit_parameters
+    sd = np.array([math.nan if params[n].stderr is None else float(params[n].stderr) for n in names])
+    corr = np.eye(len(names))
+    for a, first in enumerate(names):
+        for b, second in enumerate(names):
+            if a != b:
+                rho = fit.correlation(first, second)
+                corr[a, b] = rho if math.isfinite(rho) else 0.0
+    g = np.array([[gradient.get(n, 0.0) for n in names] for gradient in gradients])
+    return g @ (corr * np.outer(sd, sd)) @ g.T
+
+
 def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> ParameterTrend:
     """The linewidth's line in T, fitted jointly with an Eyring line of every process's rate.
 
@@ -360,24 +414,23 @@ def linewidth_trend(fits: Sequence[tuple[float, SpectrumFit]], name: str) -> Par
     w = a + b (T - T0) and of those lines to the pairs (w, log10 k) of every spectrum, weighted by each
     spectrum's covariance of the pair (its errors and correlation), separates the two.  A rate that is
     only a bound, or a process with fewer than two determined rates, gives no rate point; then the
-    linewidth's error is widened by what the unresolved exchange could take (``_exchange_width``).  The
+    linewidth's error is widened by what the unresolved exchange could take (``exchange_width``).  The
     covariance of (a, b) is widened as in :func:`regress_trend` (:func:`trend_widening`).  The line keeps how
     its coefficients and the rates of its spectra depend on the same measured errors (``noise_map``,
     ``rate_noise``), since those rates and the rates held at the line then err together.  Without rate
     points this is :func:`regress_trend` of the linewidths.
     """
     temps, values, errors = _parameter_points(fits, name)
-    pairs = [_rate_points(fit) for _, fit in fits]
+    pairs = [rate_points(fit) for _, fit in fits]
     counts: dict[str, int] = {}
     for points in pairs:
         for rate in points:
             counts[rate] = counts.get(rate, 0) + 1
     processes = [rate for rate, n in counts.items() if n >= 2]
     if len(set(temps)) < 2 or not processes:
-        return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=_exchange_width))
+        return regress_trend(name, "linear-in-T", *_parameter_points(fits, name, widen=exchange_width))
     t0 = float(np.mean(temps))
-    points = [_joint_point(t, fit, name, (w, sw), rates, processes, t0)
-              for (t, fit), w, sw, rates in zip(fits, values, errors, pairs)]
+    points = [_joint_point(t, fit, name, w, rates, processes, t0) for (t, fit), w, rates in zip(fits, values, pairs)]
     design = np.vstack([p.design for p in points])
     target = np.concatenate([p.target for p in points])
     coef, *_ = np.linalg.lstsq(design, target, rcond=None)
@@ -414,33 +467,27 @@ class _JointPoint:
     rates: tuple[str, ...]
 
 
-def _joint_point(t: float, fit: SpectrumFit, name: str, width: tuple[float, float],
-                 rates: Mapping[str, tuple[float, float]], processes: Sequence[str], t0: float) -> _JointPoint:
-    """The whitened rows of one spectrum at `t` (K): its linewidth `width` (value, error; Hz) and the
-    log10(k/T) of each of `processes` among its determined `rates`, their covariance from the fit."""
+def _joint_point(t: float, fit: SpectrumFit, name: str, width: float, rates: Mapping[str, tuple[float, float]],
+                 processes: Sequence[str], t0: float) -> _JointPoint:
+    """The whitened rows of one spectrum at `t` (K): its linewidth `width` (Hz) and the log10(k/T) of each
+    of `processes` among its determined `rates`, their covariance from the fit (the linewidth's widened by
+    the unresolved exchange broadening when no rate is used)."""
     used = [r for r in processes if r in rates]
-    w, sw = width
-    if not used:
-        sw = math.hypot(sw, _exchange_width(fit))
     design = np.zeros((1 + len(used), 2 + 2 * len(processes)))
     design[0, :2] = 1.0, t - t0
-    obs, sd = [w], [sw]
+    obs = [width]
     for row, rate in enumerate(used, start=1):
         j = 2 + 2 * processes.index(rate)
         design[row, j:j + 2] = 1.0, 1.0 / t - 1.0 / t0
         obs.append(rates[rate][0] - math.log10(t))
-        sd.append(rates[rate][1])
-    corr = np.eye(len(obs))
-    for a, first in enumerate([name] + used):
-        for b, second in enumerate([name] + used):
-            if a != b:
-                rho = fit.correlation(first, second)
-                corr[a, b] = rho if math.isfinite(rho) else 0.0
-    root = np.linalg.cholesky(corr * np.outer(sd, sd))
+    covariance = value_covariance(fit, [{name: 1.0}] + [{rate: 1.0} for rate in used])
+    if not used:
+        covariance[0, 0] += exchange_width(fit) ** 2
+    root = np.linalg.cholesky(covariance)
     return _JointPoint(np.linalg.solve(root, design), np.linalg.solve(root, np.array(obs)), root, tuple(used))
 
 
-def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
+def rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
     """(log10 k, its standard error) of every determined rate of `fit`, by fit parameter, for rates fitted
     with a finite error and a known correlation with the other free parameters."""
     out = {}
@@ -453,7 +500,7 @@ def _rate_points(fit: SpectrumFit) -> dict[str, tuple[float, float]]:
     return out
 
 
-def _exchange_width(fit: SpectrumFit) -> float:
+def exchange_width(fit: SpectrumFit) -> float:
     """Width (Hz) the exchange could add unseen to a fit whose rates are upper bounds: (k_up - k)/pi for the
     fastest way out of a state (a reverse rate is larger by the population ratio)."""
     worst = 0.0
