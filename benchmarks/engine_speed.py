@@ -28,9 +28,6 @@ import tracemalloc
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-# numba imports the package `coverage` where it can find one: benchmarks/coverage.py (another benchmark) must
-# not stand in for it, so this folder leaves the import path (run_alone loads this file by its path).
-sys.path[:] = [p for p in sys.path if Path(p or ".").resolve() != HERE]
 
 import numpy as np
 from threadpoolctl import threadpool_limits

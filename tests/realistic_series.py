@@ -4,7 +4,7 @@ A chemist's spectra are never the model file's idealisation: the first-guess shi
 few Hz off, shifts and the referencing drift with temperature, every spectrum carries a small phase error
 and a sloping baseline, and the intrinsic linewidth changes with temperature.  This module writes such
 series (model file, spectra, series file with *no* fit options) from stated truths, so that the tests and
-``benchmarks/coverage.py`` can run dnmr's defaults on them and compare every rate and ΔH‡, ΔS‡ with the
+``benchmarks/error_coverage.py`` can run dnmr's defaults on them and compare every rate and ΔH‡, ΔS‡ with the
 truth in units of the stated errors.
 
 The lineshapes come from independent references only:

@@ -4,7 +4,7 @@ The series come from tests/realistic_series.py: lineshapes from independent refe
 J. Chem. Phys. 28, 430 (1958), closed form; QuTiP for the coupled AB pair), rates from the Eyring
 equation, with first-guess shifts and couplings off in the model file, drifting shifts and referencing,
 phase errors, sloping baselines and a temperature-dependent intrinsic width.  A handful of short noise
-replicas keeps this lean; benchmarks/coverage.py measures the same with many replicas.
+replicas keeps this lean; benchmarks/error_coverage.py measures the same with many replicas.
 
 What a broken pipeline fails: rates with intervals that do not hold the truth (shifts or couplings held
 at the first guess give slow rates several times too high with tiny intervals, issue 12), rates past

@@ -19,7 +19,7 @@ than 200 coin tosses.  The interval coverage and the spreads therefore come with
 bootstrap over whole replicas (resampled with replacement; common practice for clustered data): a goal
 missed inside that range is not evidence of a mistake; more replicas narrow it.
 
-Run:  python benchmarks/coverage.py [--replicas 20] [--scenario mutual-pair,two-state,ab-pair] [--global]
+Run:  python benchmarks/error_coverage.py [--replicas 20] [--scenario mutual-pair,two-state,ab-pair] [--global]
 """
 from __future__ import annotations
 
