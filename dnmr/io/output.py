@@ -190,8 +190,8 @@ def figure_file(path: str | Path) -> Path:
     return path.with_suffix("." + chosen_figure_format()) if path.suffix.lower() == ".png" else path
 
 
-#: zlib level of dnmr's PNG files: 1 of 9 writes a line figure about five times faster than the usual 6, for
-#: files about an eighth larger (the image is the same: PNG is lossless).
+#: zlib level of dnmr's PNG files: 1 of 9 writes a line figure in two thirds of the time of the usual 6, for
+#: files about a tenth larger (the image is the same: PNG is lossless).
 PNG_COMPRESS_LEVEL = 1
 
 
@@ -249,7 +249,8 @@ def _drawn_once(fig, dpi: int, metadata: dict) -> bytes | None:
     import matplotlib
     from matplotlib.backend_bases import FigureCanvasBase
     from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.image import imsave
+    from PIL import Image
+    from PIL.PngImagePlugin import PngInfo
 
     if type(fig.canvas) is FigureCanvasBase:
         FigureCanvasAgg(fig)
@@ -266,8 +267,16 @@ def _drawn_once(fig, dpi: int, metadata: dict) -> bytes | None:
     image = _cut_to_drawing(pixels, round(matplotlib.rcParams["savefig.pad_inches"] * dpi), fig.get_facecolor())
     if image is None:
         return None
+    if np.all(image[..., 3] == 255):  # opaque: written as RGB, a quarter less to compress
+        image = image[..., :3]
+    info = PngInfo()
+    for key, value in {"Software": f"Matplotlib version{matplotlib.__version__}, https://matplotlib.org/",
+                       **metadata}.items():
+        if value is not None:
+            info.add_text(key, value)
     buffer = io.BytesIO()
-    imsave(buffer, image, format="png", dpi=dpi, metadata=metadata, pil_kwargs={"compress_level": PNG_COMPRESS_LEVEL})
+    Image.fromarray(np.ascontiguousarray(image)).save(buffer, format="png", dpi=(dpi, dpi), pnginfo=info,
+                                                      compress_level=PNG_COMPRESS_LEVEL)
     return buffer.getvalue()
 
 
