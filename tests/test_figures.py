@@ -31,7 +31,7 @@ import dnmr.io.output
 from colour_vision import MACHADO_2009, colour_difference, lightness
 from dnmr.cli import cli
 from dnmr.io.output import save_figure
-from dnmr.reporting.plotting import PALETTE, REGIME_COLOURS, SERIES
+from dnmr.reporting.plotting import INK as INK_COLOUR, PALETTE, REGIME_COLOURS, SERIES
 from reference_eyring import eyring_rate
 from test_planning import MODEL_TOML
 
@@ -282,3 +282,30 @@ def test_a_fit_figure_drawn_again_in_place_is_the_figure_of_the_new_fit():
     reused = plot_spectrum_fit(first)
     assert plot_spectrum_fit(second, figure=reused) is reused
     assert figure_bytes(reused, close=True) == fresh
+
+
+def test_figures_are_cut_to_what_is_drawn_as_matplotlib_cuts_them():
+    """A PNG drawn once and cut to its drawing has the size of matplotlib's own tight crop (savefig with
+    bbox_inches="tight", the reference) within a few pixels; a figure drawn beyond its edges keeps all of it
+    (matplotlib crops it), and a figure not said to be inside its edges is always cropped by matplotlib."""
+    import io
+
+    from PIL import Image
+
+    from dnmr.io.output import figure_bytes
+
+    def size(data: bytes) -> tuple[int, int]:
+        return Image.open(io.BytesIO(data)).size
+
+    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    ax.plot([0.0, 1.0], [0.0, 1.0], color=INK_COLOUR)
+    ax.set_title("title")
+    ax.set_ylabel("intensity")
+    reference = io.BytesIO()
+    fig.savefig(reference, format="png", dpi=150, bbox_inches="tight")
+    cut = size(figure_bytes(fig, inside=True))
+    assert all(abs(a - b) <= 3 for a, b in zip(cut, size(reference.getvalue()))), (cut, size(reference.getvalue()))
+    ax.text(1.0, 0.5, "across the right edge", transform=ax.transAxes)
+    assert size(figure_bytes(fig, inside=True))[0] > 6.0 * 150
+    ax.text(1.3, 0.5, "beyond the right edge", transform=ax.transAxes)
+    assert size(figure_bytes(fig, close=True))[0] > 6.5 * 150

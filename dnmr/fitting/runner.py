@@ -135,7 +135,7 @@ def fit_figure(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
     panels: a series makes them once per worker, not once per spectrum."""
     figure = restored_fit(model, fit_data, curves).plot(figure=getattr(_DRAWN, "figure", None))
     _DRAWN.figure = figure
-    return figure_bytes(figure, path.suffix.lstrip("."), close=True)
+    return figure_bytes(figure, path.suffix.lstrip("."), close=True, inside=True)
 
 
 def _eyring_start(points: list[tuple[float, float]], temperature_k: float) -> float | None:

@@ -196,13 +196,14 @@ PNG_COMPRESS_LEVEL = 1
 
 
 def figure_bytes(fig, image_format: str = "png", dpi: int = 150, *, close: bool = False,
-                 software_tag: bool = True) -> bytes:
+                 software_tag: bool = True, inside: bool = False) -> bytes:
     """A matplotlib figure rendered as the bytes of an image file, cropped to what is drawn: the one place
     dnmr renders figures (:func:`save_figure` writes them, the HTML report and the notebook embed them).
 
-    A PNG of a figure on matplotlib's plain raster canvas is drawn once and cut to what is drawn (plus
-    matplotlib's padding); other formats, and a figure drawn beyond its own edges, are laid out again for
-    the crop by matplotlib (``bbox_inches="tight"``), which draws twice.
+    matplotlib finds the crop by laying the figure out once more (``bbox_inches="tight"``), which takes about
+    as long as drawing it.  A figure that keeps everything `inside` its edges is, as a PNG on matplotlib's plain
+    raster canvas, drawn once and cut to the pixels drawn instead (with matplotlib's padding); should the
+    drawing touch an edge after all, matplotlib crops it.
 
     Parameters
     ----------
@@ -217,12 +218,15 @@ def figure_bytes(fig, image_format: str = "png", dpi: int = 150, *, close: bool 
     software_tag : bool
         False leaves out the PNG's "Software" entry (matplotlib's version), so that the image depends on
         the figure alone.
+    inside : bool
+        Nothing of the figure lies beyond its edges (no key or text placed outside): it may be cut to its
+        pixels.  An artist wholly beyond an edge would be lost.
     """
     import io
 
     metadata = {} if software_tag else {"Software": None}
     try:
-        image = _drawn_once(fig, dpi, metadata) if image_format.lower() == "png" else None
+        image = _drawn_once(fig, dpi, metadata) if inside and image_format.lower() == "png" else None
         if image is None:
             buffer = io.BytesIO()
             fig.savefig(buffer, format=image_format, dpi=dpi, bbox_inches="tight", metadata=metadata or None,

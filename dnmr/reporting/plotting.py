@@ -161,7 +161,8 @@ def plot_spectrum_fit(fit, *, figure=None):
     matplotlib.figure.Figure
         Upper panel: data (black), fit (orange-red), baseline (grey, dashed); lower panel: data - fit
         with the band of ±2 noise standard deviations.  The traces are reduced to their envelope per pixel
-        column (:func:`envelope_points`), which draws the same.
+        column (:func:`envelope_points`), which draws the same.  Everything is drawn inside the figure's edges
+        (``inside`` of :func:`dnmr.io.output.figure_bytes`).
     """
     panels = _FIT_PANELS.get(figure) if figure is not None else None
     if panels is None:
