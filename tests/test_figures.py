@@ -31,7 +31,7 @@ import dnmr.io.output
 from colour_vision import MACHADO_2009, colour_difference, lightness
 from dnmr.cli import cli
 from dnmr.io.output import save_figure
-from dnmr.reporting.plotting import PALETTE, REGIME_COLOURS, SERIES
+from dnmr.reporting.plotting import INK as INK_COLOUR, PALETTE, REGIME_COLOURS, SERIES
 from reference_eyring import eyring_rate
 from test_planning import MODEL_TOML
 
@@ -248,3 +248,64 @@ def test_stacked_fits_show_their_scale_factors_and_residual_bands_are_labelled()
     assert any("±2σ of the noise" in t for t in _texts(single))
     for fig in (stack, residuals, single):
         plt.close(fig)
+
+
+def test_traces_keep_their_envelope_in_every_pixel_column():
+    """Min/max decimation (common practice for drawing long traces): every pixel column keeps the highest and
+    the lowest point of the full trace, and its first and last, in order; checked against the full data."""
+    from dnmr.reporting.plotting import envelope_points
+
+    rng = np.random.default_rng(7)
+    ppm = np.linspace(9.0, 1.0, 16384)  # high to low, as spectra are stored
+    y = 1.0 / (1 + ((ppm - 4.2) / 0.01) ** 2) + 0.01 * rng.normal(size=ppm.size)
+    columns = 700
+    x_kept, y_kept = envelope_points(ppm, y, columns)
+    assert 2 * columns <= x_kept.size <= 4 * columns
+    assert np.all(np.diff(x_kept) < 0)  # the order along x is kept
+    column = lambda x: np.minimum((columns * (x - ppm[0]) / (ppm[-1] - ppm[0])).astype(int), columns - 1)
+    full, kept = column(ppm), column(x_kept)
+    for c in range(columns):
+        assert y_kept[kept == c].max() == y[full == c].max() and y_kept[kept == c].min() == y[full == c].min()
+    assert (x_kept[0], x_kept[-1], y_kept[0], y_kept[-1]) == (ppm[0], ppm[-1], y[0], y[-1])
+    assert envelope_points(ppm[:1000], y[:1000], columns)[0].size == 1000  # few points a column: all kept
+
+
+def test_a_fit_figure_drawn_again_in_place_is_the_figure_of_the_new_fit():
+    """A series draws every fit into the panels of the figure it drew before; the image is that of a new figure."""
+    from dnmr.io.output import figure_bytes
+    from dnmr.reporting.plotting import plot_spectrum_fit
+
+    rng = np.random.default_rng(3)
+    first, second = _fake_fit(1.0, rng), _fake_fit(0.25, rng)
+    second.temperature_k, second.source = 300.0, "y.csv"
+    fresh = figure_bytes(plot_spectrum_fit(second), close=True)
+    reused = plot_spectrum_fit(first)
+    assert plot_spectrum_fit(second, figure=reused) is reused
+    assert figure_bytes(reused, close=True) == fresh
+
+
+def test_figures_are_cut_to_what_is_drawn_as_matplotlib_cuts_them():
+    """A PNG drawn once and cut to its drawing has the size of matplotlib's own tight crop (savefig with
+    bbox_inches="tight", the reference) within a few pixels; a figure drawn beyond its edges keeps all of it
+    (matplotlib crops it), and a figure not said to be inside its edges is always cropped by matplotlib."""
+    import io
+
+    from PIL import Image
+
+    from dnmr.io.output import figure_bytes
+
+    def size(data: bytes) -> tuple[int, int]:
+        return Image.open(io.BytesIO(data)).size
+
+    fig, ax = plt.subplots(figsize=(6.0, 4.0))
+    ax.plot([0.0, 1.0], [0.0, 1.0], color=INK_COLOUR)
+    ax.set_title("title")
+    ax.set_ylabel("intensity")
+    reference = io.BytesIO()
+    fig.savefig(reference, format="png", dpi=150, bbox_inches="tight")
+    cut = size(figure_bytes(fig, inside=True))
+    assert all(abs(a - b) <= 3 for a, b in zip(cut, size(reference.getvalue()))), (cut, size(reference.getvalue()))
+    ax.text(1.0, 0.5, "across the right edge", transform=ax.transAxes)
+    assert size(figure_bytes(fig, inside=True))[0] > 6.0 * 150
+    ax.text(1.3, 0.5, "beyond the right edge", transform=ax.transAxes)
+    assert size(figure_bytes(fig, close=True))[0] > 6.5 * 150

@@ -22,6 +22,7 @@ import hashlib
 import json
 import math
 import os
+import threading
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -123,9 +124,18 @@ def fit_figure_path(outdir: Path, index: int, spectrum: SeriesSpectrum) -> Path:
     return figure_file(outdir / "figures" / f"{index:03d}_{spectrum.file.stem}.png")
 
 
+#: The fit figure each thread (of this process or a worker) drew last: the next fit is drawn into it in place.
+_DRAWN = threading.local()
+
+
 def fit_figure(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
-    """The image file (the format of `path`'s suffix) of the figure of a stored fit: data, fit and residuals."""
-    return figure_bytes(restored_fit(model, fit_data, curves).plot(), path.suffix.lstrip("."), close=True)
+    """The image file (the format of `path`'s suffix) of the figure of a stored fit: data, fit and residuals.
+
+    The figure is closed (pyplot forgets it) but kept by the thread, which draws its next fit into the same
+    panels: a series makes them once per worker, not once per spectrum."""
+    figure = restored_fit(model, fit_data, curves).plot(figure=getattr(_DRAWN, "figure", None))
+    _DRAWN.figure = figure
+    return figure_bytes(figure, path.suffix.lstrip("."), close=True, inside=True)
 
 
 def _eyring_start(points: list[tuple[float, float]], temperature_k: float) -> float | None:

@@ -136,7 +136,8 @@ def plot_eyring(results, *, figure=None):
         one-sided bound); possible outliers are ringed.  Rates of lineshape fits alone take one hue per
         process; where other methods (inversion, saturation, exchange-2d, or names of your own) join them,
         each method has its marker and hue (:data:`METHOD_STYLES`) and the lines are black, one line
-        style per process.
+        style per process.  Everything is drawn inside the figure's edges (``inside`` of
+        :func:`dnmr.io.output.figure_bytes`).
     """
     results = _as_list(results)
     fig, ax, res = data_and_residual_axes(figure, (6.4, 6.4), hspace=0.08)

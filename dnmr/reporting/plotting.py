@@ -18,6 +18,8 @@ the Eyring figures are in :mod:`dnmr.reporting.eyringplot`, the pairwise posteri
 from __future__ import annotations
 
 import re
+import weakref
+from dataclasses import dataclass
 
 import matplotlib
 
@@ -150,33 +152,128 @@ def plot_spectrum_fit(fit, *, figure=None):
     fit : SpectrumFit
         The fit (see :func:`dnmr.fitting.spectrumfit.fit_spectrum`).
     figure : matplotlib Figure, optional
-        Figure to draw into (default: a new one).
+        Figure to draw into (default: a new one).  A figure this function drew before is drawn again in
+        place with `fit` (its panels, labels and keys are kept: cheaper than a new figure, as when a series
+        draws the figure of every fit).
 
     Returns
     -------
     matplotlib.figure.Figure
         Upper panel: data (black), fit (orange-red), baseline (grey, dashed); lower panel: data - fit
-        with the band of ±2 noise standard deviations.
+        with the band of ±2 noise standard deviations.  The traces are reduced to their envelope per pixel
+        column (:func:`envelope_points`), which draws the same.  Everything is drawn inside the figure's edges
+        (``inside`` of :func:`dnmr.io.output.figure_bytes`).
     """
+    panels = _FIT_PANELS.get(figure) if figure is not None else None
+    if panels is None:
+        panels = _fit_panels(figure)
+        _FIT_PANELS[panels.figure] = panels
+    _show_fit(panels, fit)
+    return panels.figure
+
+
+@dataclass(frozen=True)
+class _FitPanels:
+    """The artists of a fit figure that change from fit to fit."""
+
+    figure: object
+    data: object
+    fitted: object
+    baseline: object
+    residuals: object
+    band: object
+    rates: object
+
+
+#: Fit figures drawn by :func:`plot_spectrum_fit`, with their artists (forgotten with the figure).
+_FIT_PANELS: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+def _fit_panels(figure) -> _FitPanels:
+    """The panels of a fit figure (in `figure`, or a new one), with empty traces."""
     fig, ax, res = data_and_residual_axes(figure, (7.0, 4.8))
-    ax.plot(fit.ppm, fit.data, color=INK, lw=0.8, label="data")
-    ax.plot(fit.ppm, fit.fitted, color=FIT_COLOUR, lw=1.1, label="fit")
-    ax.plot(fit.ppm, fit.baseline, color=GREY, lw=0.8, ls="--", label="baseline")
+    data, = ax.plot([], [], color=INK, lw=0.8, label="data")
+    fitted, = ax.plot([], [], color=FIT_COLOUR, lw=1.1, label="fit")
+    baseline, = ax.plot([], [], color=GREY, lw=0.8, ls="--", label="baseline")
     ax.set_ylabel("intensity")
     ax.legend(frameon=False, fontsize=8, loc="upper right")
-    text = "\n".join(figure_text(f"{r.process}: {r.describe().split('   ')[0]}") for r in fit.rates)
-    ax.text(0.01, 0.97, text, transform=ax.transAxes, va="top", ha="left", fontsize=8)
-    band = 2.0 * fit.noise.sigma
-    res.axhspan(-band, band, color=PALE, lw=0)
+    rates = ax.text(0.01, 0.97, "", transform=ax.transAxes, va="top", ha="left", fontsize=8)
+    band = res.axhspan(-1.0, 1.0, color=PALE, lw=0)
     label_band(res, "±2σ of the noise")
-    res.plot(fit.ppm, fit.residuals, color=INK, lw=0.6)
+    residuals, = res.plot([], [], color=INK, lw=0.6)
     res.set_ylabel("residual")
     nmr_axis(res)
+    return _FitPanels(fig, data, fitted, baseline, residuals, band, rates)
+
+
+def _show_fit(panels: _FitPanels, fit) -> None:
+    """Put `fit` into the panels: traces, noise band, rates, title and the axes' limits."""
     from pathlib import Path
 
+    ax, res = panels.data.axes, panels.residuals.axes
+    columns = _pixel_columns(ax)
+    for line, values in ((panels.data, fit.data), (panels.fitted, fit.fitted), (panels.baseline, fit.baseline),
+                         (panels.residuals, fit.residuals)):
+        line.set_data(*envelope_points(fit.ppm, values, columns))
+    band = 2.0 * fit.noise.sigma
+    panels.band.set_y(-band)
+    panels.band.set_height(2.0 * band)
+    panels.rates.set_text("\n".join(figure_text(f"{r.process}: {r.describe().split('   ')[0]}") for r in fit.rates))
     name = Path(fit.source).name if fit.source else "spectrum"
     ax.set_title(figure_text(name) + (f", {fit.temperature_k:g} K" if fit.temperature_k else ""), fontsize=10)
-    return fig
+    for axes in (ax, res):
+        axes.relim()
+        axes.autoscale_view()
+
+
+#: Resolution (dots per inch) at which traces keep their envelope: twice the 150 dpi dnmr writes figures at.
+ENVELOPE_DPI = 300
+
+
+def _pixel_columns(ax) -> int:
+    """Pixel columns of `ax` at :data:`ENVELOPE_DPI`."""
+    return max(1, int(ax.get_position().width * ax.figure.get_figwidth() * ENVELOPE_DPI))
+
+
+def envelope_points(x: np.ndarray, y: np.ndarray, columns: int) -> tuple[np.ndarray, np.ndarray]:
+    """A trace reduced to what a line through it shows on `columns` pixel columns: in each column, the first
+    and last point and the lowest and highest, in their order along x (the trace unchanged when it has no
+    more than four points a column).
+
+    Every column keeps the trace's own minimum and maximum, and the segments between columns join the same
+    points as before, so the drawn line covers the same pixels (min/max decimation).
+
+    Parameters
+    ----------
+    x : ndarray
+        Abscissa (ppm, say), monotonic.
+    y : ndarray
+        Ordinate, same length.
+    columns : int
+        Pixel columns across the range of `x`.
+
+    Returns
+    -------
+    (ndarray, ndarray)
+        The kept points of `x` and `y`.
+    """
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    if x.size <= 4 * columns:
+        return x, y
+    span = x[-1] - x[0]
+    column = np.minimum((columns * (x - x[0]) / span).astype(np.int64), columns - 1)
+    starts = np.flatnonzero(np.r_[True, column[1:] != column[:-1]])
+    ends = np.r_[starts[1:], x.size] - 1
+    lowest = _first_in_column(y == np.repeat(np.minimum.reduceat(y, starts), ends - starts + 1), column)
+    highest = _first_in_column(y == np.repeat(np.maximum.reduceat(y, starts), ends - starts + 1), column)
+    keep = np.unique(np.concatenate([starts, ends, lowest, highest]))
+    return x[keep], y[keep]
+
+
+def _first_in_column(hits: np.ndarray, column: np.ndarray) -> np.ndarray:
+    """Index of the first True of `hits` in each pixel column (every column has one)."""
+    where = np.flatnonzero(hits)
+    return where[np.r_[True, column[where][1:] != column[where][:-1]]]
 
 
 def plot_transfer_fit(fit, *, figure=None):

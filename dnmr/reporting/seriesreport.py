@@ -189,7 +189,8 @@ def eyring_section(inputs: ReportInputs) -> str:
         return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
     from dnmr.reporting.eyringplot import plot_eyring
 
-    body = figure_html(figure_bytes(plot_eyring(inputs.eyring), "png", FIGURE_DPI, close=True, software_tag=False),
+    body = figure_html(figure_bytes(plot_eyring(inputs.eyring), "png", FIGURE_DPI, close=True, software_tag=False,
+                                    inside=True),
                        "Eyring plot: ln(k/T) against 1000/T with the fitted line, its 95 % band and the residuals",
                        "Eyring plot")
     body += f"<p>{esc(_temperature_basis(inputs))}</p>"
