@@ -621,3 +621,28 @@ def test_a_lock_taken_on_a_removed_lock_file_guards_nothing_and_is_refused(tmp_p
     with pytest.raises(InputError, match="being written by another dnmr run"):
         lock_results_folder(tmp_path)
     release_results_folder(runs["third"])
+
+
+def test_a_figure_that_cannot_be_drawn_loses_no_fit(tmp_path, monkeypatch):
+    """Drawing can fail (a font library's error was seen once in a worker): the fits, rates.csv, results.json and
+    the other figures stand, and the spectrum's notes say which figure is missing and why."""
+    import json
+
+    from dnmr.fitting import runner
+    from dnmr.fitting.series import fit_series
+
+    real = runner.fit_figure
+
+    def fails_on_the_first(model, fit_data, curves, path):
+        if path.name.startswith("000_"):
+            raise RuntimeError("FT_Load_Glyph failed: too many hints")
+        return real(model, fit_data, curves, path)
+
+    monkeypatch.setattr(runner, "fit_figure", fails_on_the_first)
+    result = fit_series(series_file(tmp_path), tmp_path / "out", workers=1, progress=False)
+    assert all(o.fitted for o in result.outcomes)
+    figures = sorted(p.name for p in (tmp_path / "out" / "figures").iterdir())
+    assert len(figures) == 1 and figures[0].startswith("001_")
+    spectra = json.loads((tmp_path / "out" / "results.json").read_text())["spectra"]
+    assert any("not drawn (RuntimeError: FT_Load_Glyph failed" in n for n in spectra[0]["notes"])
+    assert (tmp_path / "out" / "rates.csv").exists()

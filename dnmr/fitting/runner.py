@@ -138,6 +138,14 @@ def fit_figure(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes:
     return figure_bytes(figure, path.suffix.lstrip("."), close=True, inside=True)
 
 
+def fit_figure_or_reason(model: Model, fit_data: dict, curves: dict, path: Path) -> bytes | str:
+    """:func:`fit_figure`, or why it could not be drawn (one line) when drawing fails."""
+    try:
+        return fit_figure(model, fit_data, curves, path)
+    except Exception as exc:  # noqa: BLE001 (matplotlib and its font library raise many kinds)
+        return f"{type(exc).__name__}: {exc}"
+
+
 def _eyring_start(points: list[tuple[float, float]], temperature_k: float) -> float | None:
     """log10 k at `temperature_k` from (T, k) pairs: a line ln(k/T) in 1/T, or one barrier."""
     temps = np.array([t for t, _ in points])

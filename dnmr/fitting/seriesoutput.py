@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.fitting.resultsfolder import write_json
-from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_figure, fit_figure_path
+from dnmr.fitting.runner import FitRunner, SpectrumOutcome, fit_figure_or_reason, fit_figure_path
 from dnmr.fitting.seriesfile import Series
 from dnmr.fitting.trends import StaticTrend
 from dnmr.io.output import atomic_write_bytes, atomic_write_text, figure_bytes, save_figure
@@ -139,7 +139,7 @@ def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
 def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: Path, runner: FitRunner) -> None:
     """Draw data, fit and residuals of every fitted spectrum into ``figures/NNN_<name>.png`` (in the pool; the figures
     the workers drew while the fits ran, :meth:`FitRunner.early_figure`, are written as they are)."""
-    draws = []
+    draws, drawn_for = [], []
     for i, o in enumerate(outcomes):
         if o.fitted:
             path = fit_figure_path(outdir, i, o.spectrum)
@@ -148,8 +148,12 @@ def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: 
                 atomic_write_bytes(path, image, overwrite=True)
             else:
                 draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
-    for (*_, path), image in zip(draws, runner.map(fit_figure, draws)):
-        atomic_write_bytes(path, image, overwrite=True)
+                drawn_for.append(o)
+    for outcome, (*_, path), image in zip(drawn_for, draws, runner.map(fit_figure_or_reason, draws)):
+        if isinstance(image, bytes):
+            atomic_write_bytes(path, image, overwrite=True)
+        else:  # a figure is a view of the fit: the fit, its rates and the other figures stand
+            outcome.notes.append(f"figure {path.name} not drawn ({image})")
 
 
 def write_results_json(path: Path, series: Series, outcomes: Sequence[SpectrumOutcome], trend: StaticTrend | None,
