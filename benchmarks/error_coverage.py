@@ -135,6 +135,14 @@ def global_fit(truth: SeriesTruth, work: Path, tally: Tally, workers: int) -> No
 
     result = fit_series_global(truth.series_file, work / "global", workers=workers, progress=False)
     a = result.activation[0]
+    # the global fit's rate at T is the Eyring rate of its ΔH‡, ΔS‡; its error is that of ln k (global.json's
+    # rate_stderr is k times it), so the 68 % interval is k exp(-+ se_ln)
+    rows = []
+    for t in result.temperatures_k:
+        ln_k, se = a.ln_rate(float(t))
+        rows.append({"temperature_k": t, "rate_per_s": math.exp(ln_k), "rate_stderr": math.exp(ln_k) * se,
+                     "rate_ci68_lower": math.exp(ln_k - se), "rate_ci68_upper": math.exp(ln_k + se)})
+    tally.add_rates(rows, truth)
     se = np.sqrt(np.diag(a.covariance))
     tally.add_activation(a.enthalpy_kj_mol, se[0], a.entropy_j_mol_k, se[1], truth)
 
