@@ -342,9 +342,12 @@ def minimize(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1
     exact = getattr(problem, "exact_jacobian", False)
     minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
     n_free = sum(p.vary and not p.expr for p in params.values())
-    return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
-                              max_nfev=2 * MAX_EVALUATIONS if exact else MAX_EVALUATIONS * (n_free + 1),
-                              jac=problem.jacobian if exact else "2-point")
+    # where the data cannot determine a parameter, lmfit takes the square root of a negative variance: the
+    # error is NaN, which the fit reports as undetermined (a bound), so numpy's warning is noise to the user
+    with np.errstate(invalid="ignore"):
+        return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance,
+                                  gtol=tolerance, jac=problem.jacobian if exact else "2-point",
+                                  max_nfev=2 * MAX_EVALUATIONS if exact else MAX_EVALUATIONS * (n_free + 1))
 
 
 def refine(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-8) -> tuple[float, lmfit.Parameters]:
