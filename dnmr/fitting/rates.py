@@ -28,7 +28,7 @@ import numpy as np
 from dnmr.errors import InputError
 from dnmr.formatting import significant
 from dnmr.fitting.parameters import parameter_stderr, tie_text
-from dnmr.fitting.problem import FitProblem, Profile
+from dnmr.fitting.problem import BOUND_LEVEL, FitProblem, Profile
 
 ASYMMETRY_LIMIT = 1.5
 """Half-widths of the profile interval differing by more than this ratio make it an interval."""
@@ -208,9 +208,9 @@ def with_held_error(estimate: RateEstimate, held: float) -> RateEstimate:
     elif estimate.status == "interval":
         changes["rate_lower"], changes["rate_upper"] = ci
     elif estimate.status == "upper-bound":
-        changes["rate_upper"] = ci[1]
+        changes["rate_upper"] = moved(estimate.rate_upper)
     elif estimate.status == "lower-bound":
-        changes["rate_lower"] = ci[0]
+        changes["rate_lower"] = moved(estimate.rate_lower)
     return dataclasses.replace(estimate, **changes)
 
 
@@ -257,15 +257,23 @@ def _verdict_from_profile(par: lmfit.Parameter, s: float, held: float, profile: 
                 if profile.unstable else "")
     if np.isfinite(lo) and np.isfinite(hi):
         return _two_sided_verdict(par, s, (lo, hi), interval, profile, context, unstable + held_text)
-    if np.isfinite(hi):
-        return {"status": "upper-bound", "rate_upper": interval[1], "rate_ci68": interval,
+    bound = _widen(x, profile.bound, held, par.max if np.isfinite(hi) else par.min)
+    promise = (f" The bound is one-sided 95 % (delta chi-square {BOUND_LEVEL * profile.threshold:.3g}); the 68 % "
+               "interval is in rate_ci68.")
+    if np.isfinite(hi) and np.isfinite(bound):
+        return {"status": "upper-bound", "rate_upper": 10.0 ** bound, "rate_ci68": interval,
                 "reason": f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
                           "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
-                          "under the bound." + unstable + held_text}
-    if np.isfinite(lo):
-        return {"status": "lower-bound", "rate_lower": interval[0], "rate_ci68": interval,
+                          "under the bound." + promise + unstable + held_text}
+    if np.isfinite(lo) and np.isfinite(bound):
+        return {"status": "lower-bound", "rate_lower": 10.0 ** bound, "rate_ci68": interval,
                 "reason": f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
-                          f"s^-1; {_fast_limit_cause(context)}." + unstable + held_text}
+                          f"s^-1; {_fast_limit_cause(context)}." + promise + unstable + held_text}
+    if np.isfinite(lo) or np.isfinite(hi):
+        return {"status": "undetermined", "rate_ci68": interval,
+                "reason": f"the spectrum bounds this rate on one side only at 68 % ({level}); chi-square never rises "
+                          f"to the one-sided 95 % level (delta chi-square {BOUND_LEVEL * profile.threshold:.3g}) "
+                          "within the allowed range, so no bound is promised." + unstable + held_text}
     return {"status": "undetermined", "reason": f"the spectrum does not constrain this rate ({level} over the whole "
                                                 f"range).{unstable}"}
 
