@@ -5,7 +5,9 @@ nothing (:class:`RateEstimate`, :func:`classify_rate`), and the share of held pa
 *Identifiability*: chi-square is profiled over log k (:func:`dnmr.fitting.problem.profile_parameter`)
 out to where it has risen by the error scale s (the 68 % interval).  If the profile never rises that
 far towards slow exchange the data only give an upper bound; if it stays flat towards fast exchange,
-a lower bound.  Either way the standard error is left empty.  A two-sided interval far from symmetric
+a lower bound.  Either way the standard error is left empty, and the bound is one-sided 95 %: where the
+profile on the closed side rises by :data:`dnmr.fitting.problem.BOUND_LEVEL` (2.71) thresholds, not the
+68 % end; a profile that never rises that far bounds nothing ("undetermined").  A two-sided interval far from symmetric
 about the best fit, or from the quadratic error, is an interval instead of an error bar; so is any
 rate whose profile is cut by a free nuisance parameter at a bound of its range.  An error bar that
 would reach past a limit of the allowed range is never quoted: the range, not the data, cut it.
@@ -48,7 +50,7 @@ class RateEstimate:
     rate_stderr : float
         Standard error (s^-1, from the covariance of log10 k); NaN unless the status is "determined".
     rate_lower, rate_upper : float
-        Bounds (s^-1) when the data only bound the rate (NaN otherwise).
+        One-sided 95 % bounds (s^-1) when the data only bound the rate (NaN otherwise).
     rate_ci68 : (float, float)
         Ends of the profile's 68 % interval (NaN where it is open).
     log10_rate, log10_rate_stderr : float
