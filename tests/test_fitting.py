@@ -12,6 +12,7 @@ import math
 import matplotlib.pyplot as plt
 import numpy as np
 import pytest
+from scipy import stats
 
 from closed_forms import fast_exchange_excess_width, mcconnell_two_site
 from dnmr.fitting import problem
@@ -245,6 +246,25 @@ def test_rate_at_a_limit_of_its_range_is_a_bound_not_an_error_bar(k_true, status
     blind = reported_limit_fit(k_true, profile=False).rate("flip")
     assert blind.status == "undetermined" and math.isnan(blind.rate_stderr)
     assert "limit of the allowed range" in blind.reason
+
+
+@pytest.mark.parametrize("k_true, side", [(1e8, 0), (1e-3, 1)])
+def test_a_bound_is_one_sided_95_percent_not_the_end_of_the_68_percent_interval(k_true, side):
+    # A bound is a promise that the rate lies beyond it.  The end of the 68 % profile interval (delta
+    # chi-square 1) holds the truth only 84 % of the time on one side; the one-sided 95 % bound of a
+    # profile likelihood is where the rise reaches the 90 % point of chi-square with one degree of freedom,
+    # 2.706 (scipy.stats.chi2; common practice).  Spectra: McConnell (1958) at the two limits.
+    r = reported_limit_fit(k_true).rate("flip")
+    bound = (r.rate_lower, r.rate_upper)[side]
+    assert r.status == ("lower-bound", "upper-bound")[side]
+    assert problem.BOUND_LEVEL == pytest.approx(stats.chi2.ppf(0.90, 1))
+    prof = r.profile
+    rise_at_bound = np.interp(math.log10(bound), prof.log10_rate, prof.delta_chi_square)
+    assert rise_at_bound == pytest.approx(stats.chi2.ppf(0.90, 1) * prof.threshold, rel=0.1)
+    assert rise_at_bound > 2.0 * prof.threshold  # the 68 % end sits at 1 threshold
+    end68 = r.rate_ci68[side]
+    assert (bound - end68) * (1 if side else -1) > 0  # the bound lies beyond the 68 % end
+    assert "one-sided 95 %" in r.reason
 
 
 def test_unstable_profile_says_so_and_bounds_from_the_best_it_found(monkeypatch):

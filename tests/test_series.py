@@ -242,3 +242,24 @@ def test_shared_rate_errors_follow_the_trend_covariance():
     corr = d[290.0] @ c @ d[330.0] / math.sqrt(d[290.0] @ c @ d[290.0] * (d[330.0] @ c @ d[330.0]))
     product = sum(parts[290.0][k] * parts[330.0][k] for k in parts[290.0])
     assert product == pytest.approx(shares[290.0] * shares[330.0] * corr, rel=1e-6)
+
+
+def test_a_free_fit_whose_interval_reaches_coalescence_is_not_slow_exchange():
+    # Found in a replica of the 13C two-state series (seed 1059): at 295 K, 15 K below coalescence, the free
+    # fit fell into two broad unresolved lines (23 Hz wide) at k = 35 s^-1, 68 % interval 8.6 to 127 s^-1
+    # (truth 124); counted as slow exchange on its best fit alone, its wrong shifts and linewidth went into
+    # the trends and gave a false lower bound at 345 K.  Coalescence of lines 86 Hz apart: pi dnu / sqrt 2
+    # (Gutowsky & Holm 1956).
+    from types import SimpleNamespace
+    from dnmr.fitting.rates import RateEstimate
+    from dnmr.fitting.treatments import SLOW_EXCHANGE_FRACTION, rates_are_slow
+    coalescence = math.pi * 86.0 / math.sqrt(2.0)
+
+    def fit(k, ci68):
+        rate = RateEstimate("swap", k, 0.5 * (ci68[1] - ci68[0]), math.nan, math.nan, ci68, math.log10(k),
+                            0.1, "determined")
+        return SimpleNamespace(rates=[rate])
+
+    assert 35.0 < SLOW_EXCHANGE_FRACTION * coalescence < 127.0
+    assert not rates_are_slow(fit(35.0, (8.6, 127.0)), coalescence)
+    assert rates_are_slow(fit(20.0, (19.1, 20.8)), coalescence)

@@ -383,6 +383,11 @@ def _set_values(params: lmfit.Parameters, values: Mapping[str, float]) -> None:
     params.update_constraints()
 
 
+BOUND_LEVEL = float(stats.chi2.ppf(0.90, 1))
+"""Rise of the profile, in units of its threshold, at a one-sided 95 % bound: the 90 % point of chi-square with
+one degree of freedom, 2.71 (profile likelihood, common practice).  A rate the data only bound is promised below (above) it at 95 %, not at the 84 % of the 68 % end."""
+
+
 @dataclass(frozen=True)
 class Profile:
     """Chi-square profiled over log10 k of one process (other free parameters re-optimised).
@@ -401,6 +406,10 @@ class Profile:
         The profile found a fit better than the best one (by more than a twentieth of the threshold);
         then `delta_chi_square` is negative there and the rise to the threshold is counted from the
         lowest chi-square found, which widens the interval (the side is never narrower than it should be).
+    bound : float
+        When only one side reaches the threshold (the data only bound the rate): log10 k where the rise on
+        that side reaches BOUND_LEVEL times the threshold, the one-sided 95 % bound; NaN otherwise, or
+        when the rise never gets there (then the profile bounds nothing).
     """
 
     log10_rate: np.ndarray
@@ -409,6 +418,7 @@ class Profile:
     upper: float
     threshold: float
     unstable: bool = False
+    bound: float = math.nan
 
     @property
     def best_log10_rate(self) -> float:
@@ -438,7 +448,7 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
     trial = best.params.copy()  # one set of parameters, refined from the nearest point's values each time
     trial[name].set(vary=False)
 
-    def rise(x: float) -> float:
+    def rise(x: float, level: float = threshold) -> float:
         _set_values(trial, {**fits[min(fits, key=lambda v: abs(v - x))], name: x})
         chi_square, found = refine(problem, trial, tolerance=1e-5)
         if restart and chi_square < chi0 - 0.05 * threshold:
@@ -447,21 +457,21 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
             raise BetterMinimum(minimize(problem, params))
         points[x] = chi_square - chi0
         fits[x] = found.valuesdict()
-        return points[x] - min(points.values()) - threshold
+        return points[x] - min(points.values()) - level
 
-    def crossing(a: float, b: float) -> float:
+    def crossing(a: float, b: float, level: float) -> float:
         """Where the rise reaches the threshold between a (below) and b (above): interpolation in
         sqrt(delta chi-square), exact for a parabola, with a bisection whenever one end stalls."""
         moved = []
         for _ in range(16):
             floor = min(points.values())
             ra, rb = math.sqrt(max(points[a] - floor, 0.0)), math.sqrt(points[b] - floor)
-            x = a + (b - a) * (math.sqrt(threshold) - ra) / (rb - ra)
+            x = a + (b - a) * (math.sqrt(level) - ra) / (rb - ra)
             if abs(b - a) < 1e-4:
                 return x
             if moved[-2:] in (["a", "a"], ["b", "b"]):
                 x = 0.5 * (a + b)
-            excess = rise(x)
+            excess = rise(x, level)
             if abs(excess) < 0.05 * threshold:
                 return x
             if excess < 0:
@@ -472,22 +482,25 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
                 moved.append("b")
         return x
 
-    def side(direction: int) -> float:
+    def side(direction: int, level: float = threshold) -> float:
         limit = hi_lim if direction > 0 else lo_lim
         step = float(np.clip(1.2 * stderr if np.isfinite(stderr) else 0.1, 1e-3, 0.5))
         x = x0
         while (limit - x) * direction > 1e-9:
             x_new = x + direction * step
             x_new = min(x_new, limit) if direction > 0 else max(x_new, limit)
-            if rise(x_new) >= 0:
-                return crossing(x, x_new)
+            if (points[x_new] - min(points.values()) - level if x_new in points else rise(x_new, level)) >= 0:
+                return crossing(x, x_new, level)
             x, step = x_new, step * 2.0
         return math.nan
 
     lower, upper = side(-1), side(+1)
+    bound = math.nan
+    if np.isfinite(lower) != np.isfinite(upper):  # only a bound: taken where the rise is one-sided 95 %
+        bound = side(1 if np.isfinite(upper) else -1, BOUND_LEVEL * threshold)
     xs = np.array(sorted(points))
     rises = np.array([points[x] for x in xs])
-    return Profile(xs, rises, lower, upper, threshold, bool(rises.min() < -0.05 * threshold))
+    return Profile(xs, rises, lower, upper, threshold, bool(rises.min() < -0.05 * threshold), bound)
 
 
 def profile_with_restarts(problem: FitProblem, best: lmfit.minimizer.MinimizerResult, names: Sequence[str],

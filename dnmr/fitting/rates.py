@@ -5,7 +5,9 @@ nothing (:class:`RateEstimate`, :func:`classify_rate`), and the share of held pa
 *Identifiability*: chi-square is profiled over log k (:func:`dnmr.fitting.problem.profile_parameter`)
 out to where it has risen by the error scale s (the 68 % interval).  If the profile never rises that
 far towards slow exchange the data only give an upper bound; if it stays flat towards fast exchange,
-a lower bound.  Either way the standard error is left empty.  A two-sided interval far from symmetric
+a lower bound.  Either way the standard error is left empty, and the bound is one-sided 95 %: where the
+profile on the closed side rises by :data:`dnmr.fitting.problem.BOUND_LEVEL` (2.71) thresholds, not the
+68 % end; a profile that never rises that far bounds nothing ("undetermined").  A two-sided interval far from symmetric
 about the best fit, or from the quadratic error, is an interval instead of an error bar; so is any
 rate whose profile is cut by a free nuisance parameter at a bound of its range.  An error bar that
 would reach past a limit of the allowed range is never quoted: the range, not the data, cut it.
@@ -28,7 +30,7 @@ import numpy as np
 from dnmr.errors import InputError
 from dnmr.formatting import significant
 from dnmr.fitting.parameters import parameter_stderr, tie_text
-from dnmr.fitting.problem import FitProblem, Profile
+from dnmr.fitting.problem import BOUND_LEVEL, FitProblem, Profile
 
 ASYMMETRY_LIMIT = 1.5
 """Half-widths of the profile interval differing by more than this ratio make it an interval."""
@@ -48,7 +50,7 @@ class RateEstimate:
     rate_stderr : float
         Standard error (s^-1, from the covariance of log10 k); NaN unless the status is "determined".
     rate_lower, rate_upper : float
-        Bounds (s^-1) when the data only bound the rate (NaN otherwise).
+        One-sided 95 % bounds (s^-1) when the data only bound the rate (NaN otherwise).
     rate_ci68 : (float, float)
         Ends of the profile's 68 % interval (NaN where it is open).
     log10_rate, log10_rate_stderr : float
@@ -208,9 +210,9 @@ def with_held_error(estimate: RateEstimate, held: float) -> RateEstimate:
     elif estimate.status == "interval":
         changes["rate_lower"], changes["rate_upper"] = ci
     elif estimate.status == "upper-bound":
-        changes["rate_upper"] = ci[1]
+        changes["rate_upper"] = moved(estimate.rate_upper)
     elif estimate.status == "lower-bound":
-        changes["rate_lower"] = ci[0]
+        changes["rate_lower"] = moved(estimate.rate_lower)
     return dataclasses.replace(estimate, **changes)
 
 
@@ -257,15 +259,23 @@ def _verdict_from_profile(par: lmfit.Parameter, s: float, held: float, profile: 
                 if profile.unstable else "")
     if np.isfinite(lo) and np.isfinite(hi):
         return _two_sided_verdict(par, s, (lo, hi), interval, profile, context, unstable + held_text)
-    if np.isfinite(hi):
-        return {"status": "upper-bound", "rate_upper": interval[1], "rate_ci68": interval,
+    bound = _widen(x, profile.bound, held, par.max if np.isfinite(hi) else par.min)
+    promise = (f" The bound is one-sided 95 % (delta chi-square {BOUND_LEVEL * profile.threshold:.3g}); the 68 % "
+               "interval is in rate_ci68.")
+    if np.isfinite(hi) and np.isfinite(bound):
+        return {"status": "upper-bound", "rate_upper": 10.0 ** bound, "rate_ci68": interval,
                 "reason": f"slow-exchange limit: the fit is as good ({level}) down to k = {10 ** par.min:.3g} "
                           "s^-1; the exchange broadening of the lines is below what the noise resolves for any k "
-                          "under the bound." + unstable + held_text}
-    if np.isfinite(lo):
-        return {"status": "lower-bound", "rate_lower": interval[0], "rate_ci68": interval,
+                          "under the bound." + promise + unstable + held_text}
+    if np.isfinite(lo) and np.isfinite(bound):
+        return {"status": "lower-bound", "rate_lower": 10.0 ** bound, "rate_ci68": interval,
                 "reason": f"fast-exchange limit: the fit is as good ({level}) up to k = {10 ** par.max:.3g} "
-                          f"s^-1; {_fast_limit_cause(context)}." + unstable + held_text}
+                          f"s^-1; {_fast_limit_cause(context)}." + promise + unstable + held_text}
+    if np.isfinite(lo) or np.isfinite(hi):
+        return {"status": "undetermined", "rate_ci68": interval,
+                "reason": f"the spectrum bounds this rate on one side only at 68 % ({level}); chi-square never rises "
+                          f"to the one-sided 95 % level (delta chi-square {BOUND_LEVEL * profile.threshold:.3g}) "
+                          "within the allowed range, so no bound is promised." + unstable + held_text}
     return {"status": "undetermined", "reason": f"the spectrum does not constrain this rate ({level} over the whole "
                                                 f"range).{unstable}"}
 

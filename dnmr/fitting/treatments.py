@@ -105,10 +105,15 @@ def _coalescence_rate(model: Model) -> float:
     return coalescence_rate_per_s(min(gaps)) if gaps else math.inf
 
 
-def _rates_are_slow(fit: SpectrumFit, limit: float) -> bool:
-    """Every rate (or its upper bound) under SLOW_EXCHANGE_FRACTION of the coalescence rate `limit`."""
+def rates_are_slow(fit: SpectrumFit, limit: float) -> bool:
+    """Whether `fit` counts as slow exchange: every rate (its upper bound, or the upper end of its 68 %
+    interval) under SLOW_EXCHANGE_FRACTION of the coalescence rate `limit` (s^-1).  A best fit under it whose
+    interval reaches past it is no evidence of slow exchange: near coalescence a free fit can fall into two
+    broad unresolved lines at a small rate."""
     for r in fit.rates:
         k = r.rate_upper if r.status in ("upper-bound", "interval") else r.rate_per_s
+        if r.status == "determined" and np.isfinite(r.rate_ci68[1]):
+            k = max(k, r.rate_ci68[1])
         if r.status in ("undetermined", "lower-bound") or not k < SLOW_EXCHANGE_FRACTION * limit:
             return False
     return True
@@ -169,7 +174,7 @@ def _slow_stage(series: Series, runner: FitRunner, hashes, references) -> tuple[
             fit = outcomes[i].fit
             if fit is None:
                 continue
-            if not (_rates_are_slow(fit, limit) and _statics_determined(fit, kinds)):
+            if not (rates_are_slow(fit, limit) and _statics_determined(fit, kinds)):
                 return outcomes, slow
             slow.append(i)
     return outcomes, slow
