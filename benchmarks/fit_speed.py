@@ -129,7 +129,8 @@ def difference(a: tuple, b: tuple) -> str:
     if a[4] == "determined" or (np.isfinite(a[1]) and a[1] > 0 and a[4] == "interval"):
         return f"log10 k differs by {abs(a[0] - b[0]) / a[1]:.1e} sd"
     ends = [(x, y) for x, y in ((a[2], b[2]), (a[3], b[3])) if np.isfinite(x) and np.isfinite(y)]
-    return "bounds differ by " + (", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends) or "(none)")
+    return ("bounds differ by " + (", ".join(f"{abs(x / y - 1):.1%}" for x, y in ends) or "(none)")
+            + f" (now one-sided 95 %; the code of {BASELINE_COMMIT} bounded at the 68 % interval's end)")
 
 
 def load() -> str:
