@@ -112,12 +112,7 @@ def save_and_close(fig, path: Path) -> str:
 def rendered_and_closed(fig, path: Path) -> bytes:
     """The image file of a figure of the results in the format `path` asks for (its suffix, ``.png``
     following :func:`dnmr.io.output.figures_as` as the caller resolved it); the figure is closed."""
-    import matplotlib.pyplot as plt
-
-    try:
-        return figure_bytes(fig, path.suffix.lstrip("."))
-    finally:
-        plt.close(fig)
+    return figure_bytes(fig, path.suffix.lstrip("."), close=True)
 
 
 def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
