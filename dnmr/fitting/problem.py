@@ -385,7 +385,8 @@ def _set_values(params: lmfit.Parameters, values: Mapping[str, float]) -> None:
 
 BOUND_LEVEL = float(stats.chi2.ppf(0.90, 1))
 """Rise of the profile, in units of its threshold, at a one-sided 95 % bound: the 90 % point of chi-square with
-one degree of freedom, 2.71 (profile likelihood, common practice).  A rate the data only bound is promised below (above) it at 95 %, not at the 84 % of the 68 % end."""
+one degree of freedom, 2.71 (profile likelihood, common practice).  A rate the data only bound is promised
+below (above) it at 95 %, not at the 84 % of the 68 % end."""
 
 
 @dataclass(frozen=True)
