@@ -204,7 +204,7 @@ def with_held_error(estimate: RateEstimate, held: float) -> RateEstimate:
 
     ci = tuple(moved(end) for end in estimate.rate_ci68)
     changes = {"log10_rate_stderr": s, "log10_rate_stderr_held": held, "rate_ci68": ci,
-               "reason": estimate.reason.replace(f"add {before:.3f} decades", f"add {held:.3f} decades")}
+               "reason": estimate.reason.replace(_held_sentence(before), _held_sentence(held))}
     if estimate.status == "determined":
         changes["rate_stderr"] = 10.0 ** x * math.log(10) * s
     elif estimate.status == "interval":
@@ -214,6 +214,11 @@ def with_held_error(estimate: RateEstimate, held: float) -> RateEstimate:
     elif estimate.status == "lower-bound":
         changes["rate_lower"] = moved(estimate.rate_lower)
     return dataclasses.replace(estimate, **changes)
+
+
+def _held_sentence(held: float) -> str:
+    """The sentence of a rate's reason that gives the held parameters' share `held` (log10 k) of its error."""
+    return f" The held parameters add {held:.3f} decades in quadrature (widening the interval too)."
 
 
 def _inside(par: lmfit.Parameter, s: float) -> bool:
@@ -252,8 +257,7 @@ def _verdict_from_profile(par: lmfit.Parameter, s: float, held: float, profile: 
     lo, hi = _widen(x, profile.lower, held, par.min), _widen(x, profile.upper, held, par.max)
     interval = (10.0 ** lo if np.isfinite(lo) else math.nan, 10.0 ** hi if np.isfinite(hi) else math.nan)
     level = f"delta chi-square < {profile.threshold:.3g}"
-    held_text = (f" The held parameters add {held:.3f} decades in quadrature (widening the interval too)."
-                 if held > 0 else "")
+    held_text = _held_sentence(held) if held > 0 else ""
     unstable = (f" The profile found a better fit at log10 k = {profile.best_log10_rate:.3f} (chi-square lower by "
                 f"{-profile.delta_chi_square.min():.3g}), so the bound is counted from that fit."
                 if profile.unstable else "")
