@@ -16,13 +16,14 @@ from dataclasses import dataclass
 
 import lmfit
 import numpy as np
-from scipy import optimize, stats
+from scipy import stats
 
 from dnmr.engine.derivatives import coupling_direction, derivatives_pay
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.errors import InputError
 from dnmr.fitting.fitlineshape import FitLineshape
 from dnmr.fitting.parameters import ParameterLayout, parameter_stderr, tie_coefficients
+from dnmr.fitting.profile import conditional_slopes, level_crossing, predicted_start, refine_from
 from dnmr.fitting.ranges import ppm_regions
 from dnmr.io.measured import MeasuredSpectrum
 
@@ -55,6 +56,8 @@ MAD_TO_SIGMA = 1.4826
 """Median absolute deviation to standard deviation, for normal noise."""
 CLIP_SIGMAS = 3.5
 """Noise points further than this many (rough) standard deviations out are taken for signal."""
+REFUSED_RESIDUAL = 1e3
+"""The residual at every point for parameter values the model refuses (a constant the refinement steps away from)."""
 
 
 # --------------------------------------------------------------------------------------------------
@@ -260,7 +263,7 @@ class FitProblem:
         return values["amplitude"] * phased + self.baseline(values)
 
     def residual(self, params: lmfit.Parameters) -> np.ndarray:
-        """(fit - data) / noise at every point; 1e3 everywhere for values the model refuses."""
+        """(fit - data) / noise at every point; REFUSED_RESIDUAL everywhere for values the model refuses."""
         return self.residual_at(params.valuesdict())
 
     def residual_at(self, values: Mapping[str, float]) -> np.ndarray:
@@ -268,7 +271,7 @@ class FitProblem:
         try:
             return (self.predict(values) - self.data) / self.noise.sigma
         except InputError:  # parameters outside what a model allows (e.g. a negative population)
-            return np.full(self.data.size, 1e3)
+            return np.full(self.data.size, REFUSED_RESIDUAL)
 
     def ties(self, params: lmfit.Parameters) -> tuple[dict[str, dict[str, float]], list[str]]:
         """How every parameter moves with the free ones (:func:`dnmr.fitting.parameters.tie_coefficients`, kept by
@@ -289,6 +292,12 @@ class FitProblem:
     def jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]], free: Sequence[str]
                     ) -> np.ndarray:
         """:meth:`jacobian` at the values of every parameter, with the ties and free parameters of :meth:`ties`."""
+        return self.residual_and_jacobian_at(values, ties, free)[1]
+
+    def residual_and_jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]],
+                                 free: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`residual_at` and :meth:`jacobian_at` from the one call that gives the spectrum with its
+        derivatives (no lineshape evaluation of its own)."""
         shape_of = self._lineshape_directions(values)
         shape_of["offset_hz"] = (("frequency",), -1.0)
         along: dict[str, dict[tuple, float]] = {}
@@ -302,7 +311,7 @@ class FitProblem:
         try:
             found = self.lineshape.derivatives(values, self.hz - values["offset_hz"], list(along.values()))
         except InputError:
-            return out
+            return np.full(self.data.size, REFUSED_RESIDUAL), out
         self.njev += 1
         rotation = np.exp(1j * self.phase(values))
         turned = rotation * found.spectrum
@@ -312,7 +321,8 @@ class FitProblem:
             column = None if name in shape_of else nuisance_column(name, values, turned, self)
             for other, factor in moves.items() if column is not None else ():
                 out[:, free.index(other)] += factor * column
-        return out / self.noise.sigma
+        fitted = values["amplitude"] * turned.real + self.baseline(values)
+        return (fitted - self.data) / self.noise.sigma, out / self.noise.sigma
 
     def _lineshape_directions(self, values: Mapping[str, float]) -> dict[str, tuple[tuple, float]]:
         """For each lineshape parameter, its derivative direction (:func:`dnmr.engine.derivatives.all_directions`)
@@ -366,13 +376,12 @@ def refine(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1e-
         moved = dict(zip(free, x.tolist()))
         return {n: rest[n] + sum(c * moved[f] for f, c in moves.items()) for n, moves in ties.items()}
 
-    bounds = ([params[n].min for n in free], [params[n].max for n in free])
-    found = optimize.least_squares(lambda x: problem.residual_at(at(x)), [start[n] for n in free],
-                                   jac=lambda x: problem.jacobian_at(at(x), ties, free), bounds=bounds, method="trf",
-                                   x_scale="jac", ftol=tolerance, xtol=tolerance, gtol=tolerance,
-                                   max_nfev=2 * MAX_EVALUATIONS)
-    _set_values(params, dict(zip(free, found.x.tolist())))
-    return float(found.fun @ found.fun), params
+    bounds = (np.array([params[n].min for n in free]), np.array([params[n].max for n in free]))
+    x, r = refine_from(lambda x: problem.residual_at(at(x)),
+                       lambda x: problem.residual_and_jacobian_at(at(x), ties, free),
+                       np.array([start[n] for n in free]), bounds, tolerance, 2 * MAX_EVALUATIONS)
+    _set_values(params, dict(zip(free, x.tolist())))
+    return float(r @ r), params
 
 
 def _set_values(params: lmfit.Parameters, values: Mapping[str, float]) -> None:
@@ -427,6 +436,12 @@ class Profile:
         return float(self.log10_rate[np.argmin(self.delta_chi_square)])
 
 
+CROSSING_ACCURACY = 0.025
+"""The search for a crossing of the profile (:func:`dnmr.fitting.profile.level_crossing`) ends when the crossing
+estimated with the last point lies within this share of that point's distance from the best value (2.5 % of
+the interval's half-width at the threshold); the estimate, a secant through the last point, is closer still."""
+
+
 class BetterMinimum(Exception):
     """The profile found parameters better than the 'best' fit; `result` is the fit refined from there."""
 
@@ -439,6 +454,9 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
                       stderr: float, restart: bool = True) -> Profile:
     """Profile chi-square over the parameter `name` (log10 k) on both sides of the best fit.
 
+    Each point is refined from values predicted from the points before it
+    (:func:`dnmr.fitting.profile.predicted_start`); the crossings of the threshold, and of the bound's level
+    from the points the threshold's search left, are found by :func:`dnmr.fitting.profile.level_crossing`.
     A point better than the best fit raises :class:`BetterMinimum` (refined from there) when `restart`;
     otherwise the profile goes on, counting the rise from the lowest chi-square found so far.
     """
@@ -446,11 +464,13 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
     lo_lim, hi_lim = best.params[name].min, best.params[name].max
     points = {x0: 0.0}
     fits = {x0: best.params.valuesdict()}  # the refined values at each point
-    trial = best.params.copy()  # one set of parameters, refined from the nearest point's values each time
+    slopes = conditional_slopes(best.covar, best.var_names, name)
+    trial = best.params.copy()  # one set of parameters, refined from predicted values each time
     trial[name].set(vary=False)
 
-    def rise(x: float, level: float = threshold) -> float:
-        _set_values(trial, {**fits[min(fits, key=lambda v: abs(v - x))], name: x})
+    def evaluate(x: float) -> None:
+        start = predicted_start(fits, x, x0, slopes, 2.0 * stderr)
+        _set_values(trial, {n: float(np.clip(v, trial[n].min, trial[n].max)) for n, v in start.items()} | {name: x})
         chi_square, found = refine(problem, trial, tolerance=1e-5)
         if restart and chi_square < chi0 - 0.05 * threshold:
             params = found.copy()
@@ -458,44 +478,19 @@ def profile_parameter(problem: FitProblem, best: lmfit.minimizer.MinimizerResult
             raise BetterMinimum(minimize(problem, params))
         points[x] = chi_square - chi0
         fits[x] = found.valuesdict()
-        return points[x] - min(points.values()) - level
 
-    def crossing(a: float, b: float, level: float) -> float:
-        """Where the rise reaches the threshold between a (below) and b (above): interpolation in
-        sqrt(delta chi-square), exact for a parabola, with a bisection whenever one end stalls."""
-        moved = []
-        for _ in range(16):
-            floor = min(points.values())
-            ra, rb = math.sqrt(max(points[a] - floor, 0.0)), math.sqrt(points[b] - floor)
-            x = a + (b - a) * (math.sqrt(level) - ra) / (rb - ra)
-            if abs(b - a) < 1e-4:
-                return x
-            if moved[-2:] in (["a", "a"], ["b", "b"]):
-                x = 0.5 * (a + b)
-            excess = rise(x, level)
-            if abs(excess) < 0.05 * threshold:
-                return x
-            if excess < 0:
-                a = x
-                moved.append("a")
-            else:
-                b = x
-                moved.append("b")
-        return x
+    def side(direction: int, level: float = threshold, mirror: float = math.nan) -> float:
+        """The crossing of `level` on one side.  Its first step goes where a parabola through the best point
+        and the other side's crossing `mirror` reaches the level, else where the standard error's parabola
+        does (the stride the walk may always take)."""
+        along = math.sqrt(level / threshold)
+        stride = float(np.clip((stderr if np.isfinite(stderr) else 0.1) * along, 1e-3, 0.5))
+        first = float(np.clip(abs(mirror - x0) * along, 1e-3, 0.5)) if np.isfinite(mirror) else stride
+        return level_crossing(points, evaluate, x0, direction, hi_lim if direction > 0 else lo_lim, level,
+                              CROSSING_ACCURACY, first, stride)
 
-    def side(direction: int, level: float = threshold) -> float:
-        limit = hi_lim if direction > 0 else lo_lim
-        step = float(np.clip(1.2 * stderr if np.isfinite(stderr) else 0.1, 1e-3, 0.5))
-        x = x0
-        while (limit - x) * direction > 1e-9:
-            x_new = x + direction * step
-            x_new = min(x_new, limit) if direction > 0 else max(x_new, limit)
-            if (points[x_new] - min(points.values()) - level if x_new in points else rise(x_new, level)) >= 0:
-                return crossing(x, x_new, level)
-            x, step = x_new, step * 2.0
-        return math.nan
-
-    lower, upper = side(-1), side(+1)
+    lower = side(-1)
+    upper = side(+1, mirror=lower)
     bound = math.nan
     if np.isfinite(lower) != np.isfinite(upper):  # only a bound: taken where the rise is one-sided 95 %
         bound = side(1 if np.isfinite(upper) else -1, BOUND_LEVEL * threshold)
