@@ -347,16 +347,30 @@ def minimize(problem: FitProblem, params: lmfit.Parameters, tolerance: float = 1
     """Local least squares (trust region with bounds) from `params`; at most MAX_EVALUATIONS per free parameter.
 
     `problem` is any object with ``residual(params)``; one whose ``exact_jacobian`` is true gives its
-    Jacobian too (``jacobian(params)``, as :meth:`FitProblem.jacobian`), else finite differences are used.
+    residuals with its Jacobian too (:meth:`FitProblem.residual_and_jacobian_at`, with :meth:`FitProblem.ties`),
+    else finite differences are used.
     """
     exact = getattr(problem, "exact_jacobian", False)
-    minimizer = lmfit.Minimizer(problem.residual, params, scale_covar=False, nan_policy="raise")
+    kept: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+
+    def paired(params: lmfit.Parameters) -> tuple[np.ndarray, np.ndarray]:
+        # the residuals and Jacobian from one call: the solver asks for the Jacobian at each point it accepts,
+        # right after the residuals there, and the call that gives the derivatives gives the spectrum too
+        values = params.valuesdict()
+        key = tuple(values.values())
+        if key not in kept:
+            kept.clear()
+            kept[key] = problem.residual_and_jacobian_at(values, *problem.ties(params))
+        return kept[key]
+
+    minimizer = lmfit.Minimizer((lambda p: paired(p)[0]) if exact else problem.residual, params, scale_covar=False,
+                                nan_policy="raise")
     n_free = sum(p.vary and not p.expr for p in params.values())
     # where the data cannot determine a parameter, lmfit takes the square root of a negative variance: the
     # error is NaN, which the fit reports as undetermined (a bound), so numpy's warning is noise to the user
     with np.errstate(invalid="ignore"):
         return minimizer.minimize(method="least_squares", x_scale="jac", ftol=tolerance, xtol=tolerance,
-                                  gtol=tolerance, jac=problem.jacobian if exact else "2-point",
+                                  gtol=tolerance, jac=(lambda p: paired(p)[1]) if exact else "2-point",
                                   max_nfev=2 * MAX_EVALUATIONS if exact else MAX_EVALUATIONS * (n_free + 1))
 
 
