@@ -184,9 +184,11 @@ class _Bracket:
         return self.inner + self.direction * step
 
     def closing(self) -> float:
-        """The next point between the ends: the midpoint where one end stalls, else the secant of the last two
-        points below if it falls between the ends, else the secant between the ends."""
-        if self.moved[-2:] in ("ii", "oo"):
+        """The next point between the ends: the midpoint where one end stalls (it moved twice in a row, or the
+        end below moved to a point less than half as high as the level), else the secant of the last two points
+        below if it falls between the ends, else the secant between the ends."""
+        low = self.moved[-1:] == "i" and self.height(self.inner) < 0.5 * self.target
+        if self.moved[-2:] in ("ii", "oo") or low:
             return 0.5 * (self.inner + self.outer)
         x = self._secant(self.inner, self.before)
         return x if (x - self.inner) * (self.outer - x) > 0.0 else self._secant(self.inner, self.outer)
