@@ -253,13 +253,19 @@ class FitProblem:
         first = values["phase1_deg"] * (self.hz - self.centre) / self.span
         return np.radians(first + (values["phase0_deg"] if zero_order else 0.0))
 
+    def rotation(self, values: Mapping[str, float]) -> complex | np.ndarray:
+        """exp(i phi(nu)): one number when the first-order phase is zero."""
+        if values["phase1_deg"] == 0.0:
+            return complex(np.exp(1j * math.radians(values["phase0_deg"])))
+        return np.exp(1j * self.phase(values))
+
     def baseline(self, values: Mapping[str, float]) -> np.ndarray:
         """The polynomial baseline (intensity units) at the data's frequencies."""
         return self.powers @ np.array([values[n] for n in self.layout.baseline_names])
 
     def predict(self, values: Mapping[str, float]) -> np.ndarray:
         """The fitted spectrum y(nu) (intensity units) for parameter `values`."""
-        phased = (np.exp(1j * self.phase(values)) * self.shape(values)).real
+        phased = (self.rotation(values) * self.shape(values)).real
         return values["amplitude"] * phased + self.baseline(values)
 
     def residual(self, params: lmfit.Parameters) -> np.ndarray:
@@ -307,22 +313,22 @@ class FitProblem:
                 for other, factor in moves.items():
                     combination = along.setdefault(other, {})
                     combination[direction] = combination.get(direction, 0.0) + factor * scale
-        out = np.zeros((self.data.size, len(free)))
+        out = np.zeros((len(free), self.data.size))  # one row per free parameter, transposed at the end
         try:
             found = self.lineshape.derivatives(values, self.hz - values["offset_hz"], list(along.values()))
         except InputError:
-            return np.full(self.data.size, REFUSED_RESIDUAL), out
+            return np.full(self.data.size, REFUSED_RESIDUAL), out.T
         self.njev += 1
-        rotation = np.exp(1j * self.phase(values))
+        rotation = self.rotation(values)
         turned = rotation * found.spectrum
-        for name, slope in zip(along, found.slopes):
-            out[:, free.index(name)] = values["amplitude"] * (rotation * slope).real
+        if along:
+            out[[free.index(name) for name in along]] = values["amplitude"] * (rotation * found.slopes).real
         for name, moves in ties.items():
             column = None if name in shape_of else nuisance_column(name, values, turned, self)
             for other, factor in moves.items() if column is not None else ():
-                out[:, free.index(other)] += factor * column
+                out[free.index(other)] += factor * column
         fitted = values["amplitude"] * turned.real + self.baseline(values)
-        return (fitted - self.data) / self.noise.sigma, out / self.noise.sigma
+        return (fitted - self.data) / self.noise.sigma, out.T / self.noise.sigma
 
     def _lineshape_directions(self, values: Mapping[str, float]) -> dict[str, tuple[tuple, float]]:
         """For each lineshape parameter, its derivative direction (:func:`dnmr.engine.derivatives.all_directions`)
