@@ -309,6 +309,7 @@ def symmetrised(L, weights: np.ndarray):
         asymmetry = np.abs(S.data - T.data).max(initial=0.0)  # same pattern: compare element for element
         S.data += T.data
         S.data *= 0.5
+        S.eliminate_zeros()  # elements of couplings that are zero (a third of all in a chain): work for nothing
     else:
         D = L * (weights[None, :] / weights[:, None])
         scale = np.abs(D).max()
