@@ -12,8 +12,6 @@ compilation (a few seconds); later processes load it.
 """
 from __future__ import annotations
 
-import math
-
 import numpy as np
 from numba import njit
 
@@ -24,49 +22,93 @@ _CHUNK = 256
 @njit(cache=True, nogil=True, error_model="numpy")
 def continued_fraction(omega, alpha, b2, norm, every):  # pragma: no cover - compiled
     """norm q_2 / q_1 at each angular frequency by the determinant recurrence of
-    :meth:`dnmr.engine.resolvent.ContinuedFraction.evaluate` (same order of operations, same exact power-of-two
-    rescaling every `every` levels).  Points where q_1 is zero or not finite come back not finite (the
-    caller solves them with pivoting)."""
+    :meth:`dnmr.engine.resolvent.ContinuedFraction.evaluate`: the same operations in the same order, two
+    levels per pass over a chunk of points, and the same exact power-of-two rescaling at least every
+    `every` levels (where it happens does not change a bit of the ratio).  Points where q_1 is zero or not
+    finite come back not finite (the caller solves them with pivoting)."""
     n = omega.size
     m = alpha.size
     out = np.empty(n, dtype=np.complex128)
-    hr = np.empty(_CHUNK)
-    hi = np.empty(_CHUNK)
-    ar = np.empty(_CHUNK)
-    ai = np.empty(_CHUNK)
+    state = np.empty((5, _CHUNK))  # Re, Im of q_(j+1) and q_(j+2); scale factors
+    every = max(2, every - every % 2)
     for first in range(0, n, _CHUNK):
         size = min(_CHUNK, n - first)
         w = omega[first:first + size]
-        last = alpha[m - 1]
+        hr, hi, ar, ai = state[0], state[1], state[2], state[3]
         for p in range(size):
-            hr[p] = -last.real          # q_(j+1) = z - alpha_m, z = i omega
-            hi[p] = w[p] - last.imag
+            hr[p] = -alpha[m - 1].real  # q_(j+1) = z - alpha_m, z = i omega
+            hi[p] = w[p] - alpha[m - 1].imag
             ar[p] = 1.0                 # q_(j+2)
             ai[p] = 0.0
-        for level in range(1, m):
-            a = alpha[m - 1 - level]
-            br = b2[m - 1 - level].real
-            bi = b2[m - 1 - level].imag
-            for p in range(size):
-                sr = -a.real
-                si = w[p] - a.imag
-                nr = (sr * hr[p] - si * hi[p]) - (ar[p] * br - ai[p] * bi)
-                ni = (sr * hi[p] + si * hr[p]) - (ar[p] * bi + ai[p] * br)
-                ar[p] = hr[p]
-                ai[p] = hi[p]
-                hr[p] = nr
-                hi[p] = ni
-            if level % every == 0:
-                for p in range(size):
-                    biggest = max(abs(hr[p]) + abs(hi[p]), abs(ar[p]) + abs(ai[p]))
-                    exponent = math.frexp(biggest)[1]
-                    hr[p] = math.ldexp(hr[p], -exponent)
-                    hi[p] = math.ldexp(hi[p], -exponent)
-                    ar[p] = math.ldexp(ar[p], -exponent)
-                    ai[p] = math.ldexp(ai[p], -exponent)
+        level = 1
+        if m % 2 == 0:  # an odd number of levels below the last: one alone first
+            _one_level(w, alpha[m - 2], b2[m - 2], state, size)
+            level = 2
+        since = 0
+        while level < m:
+            _two_levels(w, alpha[m - 1 - level], b2[m - 1 - level], alpha[m - 2 - level], b2[m - 2 - level],
+                        state, size)
+            level += 2
+            since += 2
+            if since >= every:
+                _rescale(state, size)
+                since = 0
         for p in range(size):
             out[first + p] = norm * complex(ar[p], ai[p]) / complex(hr[p], hi[p])
     return out
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _one_level(w, a, b, state, size):  # pragma: no cover - compiled
+    """One level of the recurrence: q_j = (z - a) q_(j+1) - b q_(j+2) (b = beta_j^2), in real arithmetic."""
+    hr, hi, ar, ai = state[0], state[1], state[2], state[3]
+    sr = -a.real
+    for p in range(size):
+        si = w[p] - a.imag
+        nr = (sr * hr[p] - si * hi[p]) - (ar[p] * b.real - ai[p] * b.imag)
+        ni = (sr * hi[p] + si * hr[p]) - (ar[p] * b.imag + ai[p] * b.real)
+        ar[p] = hr[p]
+        ai[p] = hi[p]
+        hr[p] = nr
+        hi[p] = ni
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _two_levels(w, a, b, c, d, state, size):  # pragma: no cover - compiled
+    """Two levels of the recurrence (a, b, then c, d) in one pass over the points: the same operations as
+    :func:`_one_level` twice, with half the loads and stores."""
+    hr, hi, ar, ai = state[0], state[1], state[2], state[3]
+    sr = -a.real
+    tr = -c.real
+    for p in range(size):
+        si = w[p] - a.imag
+        h_r = hr[p]
+        h_i = hi[p]
+        nr = (sr * h_r - si * h_i) - (ar[p] * b.real - ai[p] * b.imag)
+        ni = (sr * h_i + si * h_r) - (ar[p] * b.imag + ai[p] * b.real)
+        ti = w[p] - c.imag
+        hr[p] = (tr * nr - ti * ni) - (h_r * d.real - h_i * d.imag)
+        hi[p] = (tr * ni + ti * nr) - (h_r * d.imag + h_i * d.real)
+        ar[p] = nr
+        ai[p] = ni
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _rescale(state, size):  # pragma: no cover - compiled
+    """Multiply both q of each point by the power of two 2^-e, e = frexp's exponent of the larger |Re| + |Im|
+    (as :func:`dnmr.engine.resolvent._rescale`), built from the exponent bits so that the loop vectorises
+    instead of calling frexp and ldexp per number: exact, and bit for bit ldexp's result.  A zero or
+    subnormal size gets 2^1022, an infinite or NaN one 2^-1022 (it stays not finite)."""
+    factor = state[4]
+    bits = factor.view(np.int64)
+    for p in range(size):
+        factor[p] = max(abs(state[0, p]) + abs(state[1, p]), abs(state[2, p]) + abs(state[3, p]))
+    for p in range(size):
+        bits[p] = max(1, 2045 - ((bits[p] >> 52) & 0x7FF)) << 52
+    for row in range(4):
+        values = state[row]
+        for p in range(size):
+            values[p] *= factor[p]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
