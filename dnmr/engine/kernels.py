@@ -95,30 +95,36 @@ def _two_levels(w, a, b, c, d, state, size):  # pragma: no cover - compiled
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def _rescale(state, size):  # pragma: no cover - compiled
-    """Multiply both q of each point by the power of two 2^-e, e = frexp's exponent of the larger |Re| + |Im|
-    (as :func:`dnmr.engine.resolvent._rescale`), built from the exponent bits so that the loop vectorises
+    """Multiply the complex numbers of each point (pairs of rows Re, Im of `state`; its last row is scratch)
+    by the power of two 2^-e, e = frexp's exponent of the largest |Re| + |Im| (as
+    :func:`dnmr.engine.convergence.rescale`), built from the exponent bits so that the loop vectorises
     instead of calling frexp and ldexp per number: exact, and bit for bit ldexp's result.  A zero or
     subnormal size gets 2^1022, an infinite or NaN one 2^-1022 (it stays not finite)."""
-    factor = state[4]
+    rows = state.shape[0] - 1
+    factor = state[rows]
     bits = factor.view(np.int64)
-    for p in range(size):
-        factor[p] = max(abs(state[0, p]) + abs(state[1, p]), abs(state[2, p]) + abs(state[3, p]))
+    factor[:size] = 0.0
+    for row in range(0, rows, 2):
+        for p in range(size):
+            factor[p] = max(factor[p], abs(state[row, p]) + abs(state[row + 1, p]))
     for p in range(size):
         bits[p] = max(1, 2045 - ((bits[p] >> 52) & 0x7FF)) << 52
-    for row in range(4):
+    for row in range(rows):
         values = state[row]
         for p in range(size):
             values[p] *= factor[p]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orthogonal, slice_rows):  # pragma: no cover
+def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orthogonal, slice_rows,
+            watched, every, look, converged):  # pragma: no cover - compiled
     """The recursion of :func:`dnmr.engine.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
     step for step: the sparse product, Simon's estimates of the loss of orthogonality, and classical
     Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` (at
-    that step, and at the next by the share found in the same pass).  Returns (alpha, beta, steps, ok):
-    the first `steps` entries of alpha and `steps` - 1 of beta hold the tridiagonal; ok is False on a
-    serious breakdown."""
+    that step, and at the next by the share found in the same pass); with angular frequencies `watched`
+    (none: no watch), the continued fraction on them is carried along and the recursion stops once it has
+    converged (:func:`_watch`).  Returns (alpha, beta, steps, ok): the first `steps` entries of alpha and
+    `steps` - 1 of beta hold the tridiagonal; ok is False on a serious breakdown."""
     n = q0.size
     Q = np.empty((n, n), dtype=np.complex128)  # row j + 1 is written before any pass reads it
     alpha = np.zeros(n, dtype=np.complex128)
@@ -131,12 +137,16 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
     Q[0] = q0
     omega[0] = 1.0
     carried = False
+    watch = np.empty((9, watched.size))  # Re, Im of P_k, P_(k-1), N_k, N_(k-1); scratch
+    previous = np.full(watched.size, np.nan + 0j)
     for j in range(n):
         q = Q[j]
         _csr_product(indptr, indices, data, q, w)
         if j:
             w -= beta[j - 1] * Q[j - 1]
         alpha[j] = _bilinear(q, w)
+        if watched.size and _watch(watched, alpha, beta, j, watch, previous, every, look, converged):
+            return alpha, beta, j + 1, True  # converged on the grid
         w -= alpha[j] * q
         if j == n - 1:
             break
@@ -166,6 +176,40 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
         Q[j + 1] = w / b
         omega_prev, omega, new = omega, new, omega_prev
     return alpha, beta, n, True
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _watch(omega, alpha, beta, j, watch, previous, every, look, converged):  # pragma: no cover - compiled
+    """:meth:`dnmr.engine.convergence.ConvergenceWatch.settled` for step `j`: the forward recurrence of the
+    leading minors at the points `omega` (two rows of `watch` each for Re and Im of P_k, P_(k-1), N_k,
+    N_(k-1)), rescaled every `every` steps; every `look` steps True if no point of N_k / P_k moved by more
+    than `converged` of the largest since the last look (`previous`)."""
+    size = omega.size
+    if j == 0:
+        for p in range(size):
+            watch[0, p], watch[1, p] = -alpha[0].real, omega[p] - alpha[0].imag  # P_1 = z - alpha_0
+            watch[2, p], watch[3, p] = 1.0, 0.0                                # P_0
+            watch[4, p], watch[5, p] = 1.0, 0.0                                # N_1
+            watch[6, p], watch[7, p] = 0.0, 0.0                                # N_0
+    else:
+        b = beta[j - 1] * beta[j - 1]
+        _one_level(omega, alpha[j], b, watch[0:4], size)
+        _one_level(omega, alpha[j], b, watch[4:8], size)
+    if (j + 1) % every == 0:
+        _rescale(watch, size)
+    if (j + 1) % look:
+        return False
+    change = 0.0
+    peak = 0.0
+    for p in range(size):
+        value = complex(watch[4, p], watch[5, p]) / complex(watch[0, p], watch[1, p])
+        moved = abs(value - previous[p])
+        if not moved <= change:  # NaN too
+            change = moved
+        if not abs(value) <= peak:
+            peak = abs(value)
+        previous[p] = value
+    return change <= converged * peak
 
 
 @njit(cache=True, nogil=True)
