@@ -141,19 +141,13 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
     previous = np.full(watched.size, np.nan + 0j)
     for j in range(n):
         q = Q[j]
-        _csr_product(indptr, indices, data, q, w)
-        if j:
-            w -= beta[j - 1] * Q[j - 1]
-        alpha[j] = _bilinear(q, w)
+        alpha[j] = _product(indptr, indices, data, q, Q[j - 1] if j else q, beta[j - 1] if j else 0.0, w)
         if watched.size and _watch(watched, alpha, beta, j, watch, previous, every, look, converged):
             return alpha, beta, j + 1, True  # converged on the grid
-        w -= alpha[j] * q
+        length2, b2 = _finish(w, alpha[j], q, beta[j - 1] if carried else 0.0, carry)
         if j == n - 1:
             break
-        if carried:
-            w += beta[j - 1] * carry
-        length2 = _norm2(w)
-        b = np.sqrt(_bilinear(w, w))
+        b = np.sqrt(b2)
         largest = _next_orthogonality(new, omega, omega_prev, alpha, beta, j, b, noise)
         if carried:
             _reset_orthogonality(new, noise, j, b)
@@ -173,7 +167,7 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
         if abs(b) ** 2 * growth_limit < length2:
             return alpha, beta, j + 1, False  # serious breakdown
         beta[j] = b
-        Q[j + 1] = w / b
+        _store(Q[j + 1], w, b)
         omega_prev, omega, new = omega, new, omega_prev
     return alpha, beta, n, True
 
@@ -213,13 +207,42 @@ def _watch(omega, alpha, beta, j, watch, previous, every, look, converged):  # p
 
 
 @njit(cache=True, nogil=True)
-def _csr_product(indptr, indices, data, q, w):  # pragma: no cover - compiled
-    """w = A q for the CSR matrix A (`indptr`, `indices`, `data`)."""
+def _product(indptr, indices, data, q, before, b, w):  # pragma: no cover - compiled
+    """w = A q - b before for the CSR matrix A (`indptr`, `indices`, `data`); returns q^T w.  One pass, the
+    same operations in the same order as the sparse product, the subtraction and the bilinear form one
+    after the other."""
+    bilinear = 0j
     for r in range(w.size):
         s = 0j
         for p in range(indptr[r], indptr[r + 1]):
             s += data[p] * q[indices[p]]
+        s -= b * before[r]
         w[r] = s
+        bilinear += q[r] * s
+    return bilinear
+
+
+@njit(cache=True, nogil=True)
+def _finish(w, a, q, c, carry):  # pragma: no cover - compiled
+    """w = (w - a q) + c carry (the second only for c != 0), in one pass; returns ||w||^2 and w^T w."""
+    length2 = 0.0
+    bilinear = 0j
+    carried = c != 0
+    for r in range(w.size):
+        v = w[r] - a * q[r]
+        if carried:
+            v += c * carry[r]
+        w[r] = v
+        length2 += v.real * v.real + v.imag * v.imag
+        bilinear += v * v
+    return length2, bilinear
+
+
+@njit(cache=True, nogil=True)
+def _store(row, w, b):  # pragma: no cover - compiled
+    """row = w / b, without a temporary array."""
+    for r in range(w.size):
+        row[r] = w[r] / b
 
 
 @njit(cache=True, nogil=True)
