@@ -200,7 +200,8 @@ def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float,
         "early = sorted({r.split(', ')[1].split(' (')[0] for r in spectrum.terms.routes if 'converged' in r})\n"
         "print(*times, engine_speed.resident_mib('VmHWM'), before, '|', ', '.join(early) or 'none')\n"
     ) % (str(HERE / "engine_speed.py"), compiled, n_spins, THREADS)
-    out, early = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split("|")
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    out, early = result.stdout.split("|")
     first, second, peak, before = (float(v) for v in out.split())
     return first, second, peak, before, early.strip()
 

@@ -76,7 +76,8 @@ def test_compiled_lanczos_keeps_the_tridiagonal_of_the_numpy_recursion(compiled,
     model = chain_model(5, seed=11)
     captured = []
     recursion = resolvent.lanczos
-    monkeypatch.setattr(resolvent, "lanczos", lambda S, g, omega=None: captured.append((S, g)) or recursion(S, g, omega))
+    monkeypatch.setattr(resolvent, "lanczos",
+                        lambda S, g, omega=None: captured.append((S, g)) or recursion(S, g, omega))
     blocks.lineshape_terms(model)
     S, g = max(captured, key=lambda c: len(c[1]))
     a_fast, b_fast = recursion(S, g)

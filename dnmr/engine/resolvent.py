@@ -44,8 +44,9 @@ SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
 #: Blocks at least this large stop the Lanczos recursion once its continued fraction has converged on the
-#: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than it saves (measured: a
-#: seven-spin block of 1225 converges only after 97 % of its steps, an eight-spin block of 3920 after 35 %).
+#: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than
+#: it saves (measured: a seven-spin block of 1225 converges only after 97 % of its steps, an eight-spin block
+#: of 3920 after 35 %).
 EARLY_STOP_MIN_SIZE = 1500
 #: Use the compiled loops of :mod:`dnmr.engine.kernels` on the Krylov route where numba is installed (set to
 #: False to force the numpy loops, which are the reference).
@@ -328,9 +329,9 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
     semi-orthogonal, which is enough for T to be the projection of S to working accuracy; a step costs a
     sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and then (about one
     step in ten for six to eight spins).  Given a grid, a block of at least :data:`EARLY_STOP_MIN_SIZE`
-    coherences carries its continued fraction along on it (:class:`~dnmr.engine.convergence.ConvergenceWatch`) and stops when it has
-    converged there, which for eight coupled spins comes after a third to two thirds of the steps (the passes
-    over the basis grow as the cube of the steps).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
+    coherences carries its continued fraction along on it (:class:`~dnmr.engine.convergence.ConvergenceWatch`)
+    and stops when it has converged there, which for eight coupled spins comes after a third to two thirds
+    of the steps (the passes over the basis grow as the cube of the steps).  The compiled loop (:func:`dnmr.engine.kernels.lanczos`)
     is taken where available.  Returns the tridiagonal (alpha, beta) with
     g^T (z - S)^-1 g = (g^T g) e1 (z - T)^-1 e1 (on the grid, to rounding error, if it stopped early), or None
     on a serious breakdown or excessive growth of the basis (the caller then takes another route).
