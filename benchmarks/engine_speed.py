@@ -10,7 +10,8 @@
 (d) an N,N-dimethyl-type model (two CH3 groups swapped by rotation, coupled to one more spin): the
     model with magnetically equivalent groups / the same model written as seven individual spins
     (goal <= 1/20), and the peak memory of each;
-(e) time and peak memory of an eight-spin simulation (goals: <= 10 s, within 24 GB).
+(e) time and peak memory of an eight-spin simulation (goals: <= 10 s, within 24 GB), and the Lanczos steps of
+    its blocks that stopped once their continued fraction had converged on the grid.
 
 (b), (c) and (e) are measured twice: with the compiled loops of the Krylov route (``dnmr.engine.kernels``, the
 optional extra ``pip install ".[fast]"``) where numba is installed, and with the numpy loops that every
@@ -175,13 +176,13 @@ def resident_mib(field: str) -> float:
     raise RuntimeError(f"no {field} in /proc/self/status (the memory figures need Linux)")
 
 
-def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float]:
+def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float, str]:
     """CPU times (s) of a first and a second simulation of the n-spin chain in a fresh process (the first
     includes the index work that is cached for later simulations of the same spin topology, as in every
     evaluation of a fit after the first, and loading the compiled loops from numba's on-disk cache), the
-    peak resident memory (MiB) and the resident memory before the simulations (MiB: Python and the imported
-    libraries); in a fresh process so that the peak belongs to these simulations alone and no tracing slows
-    them down."""
+    peak resident memory (MiB), the resident memory before the simulations (MiB: Python and the imported
+    libraries) and the Lanczos steps of the blocks whose recursion stopped once converged on the grid; in
+    a fresh process so that the peak belongs to these simulations alone and no tracing slows them down."""
     code = (
         "import importlib.util, time\n"
         "spec = importlib.util.spec_from_file_location('engine_speed', %r)\n"
@@ -194,28 +195,31 @@ def run_alone(n_spins: int, compiled: bool) -> tuple[float, float, float, float]
         "times = []\n"
         "with threadpool_limits(%r):\n"
         "    for rate in (40.0, 41.0):\n"
-        "        t0 = time.process_time(); dnmr.simulate(model.with_rates([rate]))\n"
+        "        t0 = time.process_time(); spectrum = dnmr.simulate(model.with_rates([rate]))\n"
         "        times.append(time.process_time() - t0)\n"
-        "print(*times, engine_speed.resident_mib('VmHWM'), before)\n"
+        "early = sorted({r.split(', ')[1].split(' (')[0] for r in spectrum.terms.routes if 'converged' in r})\n"
+        "print(*times, engine_speed.resident_mib('VmHWM'), before, '|', ', '.join(early) or 'none')\n"
     ) % (str(HERE / "engine_speed.py"), compiled, n_spins, THREADS)
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
-    return float(out[0]), float(out[1]), float(out[2]), float(out[3])
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    out, early = result.stdout.split("|")
+    first, second, peak, before = (float(v) for v in out.split())
+    return first, second, peak, before, early.strip()
 
 
 def bench_seven_and_eight(six_spin_time_s: float) -> None:
     """(c) and (e), each in a fresh process, with the loops that `resolvent.USE_COMPILED` selects."""
     compiled = resolvent.USE_COMPILED
-    first, second, m6, base = run_alone(6, compiled)
+    first, second, m6, base, _ = run_alone(6, compiled)
     print(f"    six spins alone: {first * 1e3:.0f} ms first, {second * 1e3:.0f} ms again, peak resident memory"
           f" {m6:.0f} MiB ({base:.0f} MiB of it Python and the libraries before the simulation)")
-    first, second, m7, base = run_alone(7, compiled)
+    first, second, m7, base, _ = run_alone(7, compiled)
     print(f"(c) seven spins, {POINTS} points: {first:.2f} s first, {second:.2f} s again with the index work cached"
           f" ({second / six_spin_time_s:.1f} x six spins; goal <= 0.3 s: {verdict(second, 0.3)}), peak memory"
           f" {m7:.0f} MiB ({base:.0f} MiB before the simulation)")
-    first, second, m8, base = run_alone(8, compiled)
+    first, second, m8, base, early = run_alone(8, compiled)
     print(f"(e) eight spins, {POINTS} points: {first:.1f} s first, {second:.1f} s again (goal <= 10 s:"
           f" {verdict(second, 10.0)}), peak memory {m8:.0f} MiB ({base:.0f} MiB before the simulation; goal <= 24 GB:"
-          f" {verdict(m8 / 1024, 24.0)})")
+          f" {verdict(m8 / 1024, 24.0)}); recursions stopped on convergence on the grid: {early}")
     print(f"    {load_text()}")
 
 

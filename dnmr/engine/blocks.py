@@ -157,7 +157,8 @@ def block_start(pattern: BlockPattern, populations: np.ndarray) -> np.ndarray:
     return np.outer(populations, u).ravel() * (4.0 / pattern.block.dimension)
 
 
-def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = None) -> LineshapeTerms:
+def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = None,
+                    hz: np.ndarray | None = None) -> LineshapeTerms:
     """Decompose the spectrum of `model` into Lorentzian terms and directly evaluated blocks.
 
     Parameters
@@ -166,7 +167,11 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
         The model.
     progress : callable, optional
         Called as ``progress(done, total)`` (coherences) after each block, for long simulations.
+    hz : ndarray, optional
+        The only frequencies (Hz) the terms will be evaluated at: the Lanczos recursion of a large block
+        then stops once its continued fraction has converged there (:func:`dnmr.engine.resolvent.lanczos`).
     """
+    omega = None if hz is None else TWO_PI * np.asarray(hz, dtype=float)
     systems = spin_systems(model)
     check_memory(max((largest_block_size(p.levels) * len(p.populations) for p in systems), default=0))
     work = [(p, b) for p in systems for b in p.blocks]  # blocks of the independent systems (enumerated)
@@ -179,7 +184,7 @@ def lineshape_terms(model: Model, progress: Callable[[int, int], None] | None = 
         pattern = block_pattern(block, topology)
         L = block_liouvillian(pattern, params, as_sparse=resolvent.takes_krylov_route(block.size * len(params.populations)))
         start = block_start(pattern, params.populations)
-        results.append(block_terms(L, pattern.detect, start, np.repeat(roots, block.size)))
+        results.append(block_terms(L, pattern.detect, start, np.repeat(roots, block.size), omega))
         done += block.size * len(params.populations)
         if progress is not None:
             progress(done, total)

@@ -28,7 +28,7 @@ class Spectrum(NotebookView):
     title : str
         The model's title.
     terms : LineshapeTerms, optional
-        The engine's decomposition, kept to give the dispersion on request.
+        The engine's decomposition, kept to give the dispersion on request (exact on this grid).
     """
 
     ppm: np.ndarray
@@ -123,7 +123,7 @@ def simulate(
         grid = grid[::-1]
     if np.any(grid[1:] <= grid[:-1]):
         grid = np.unique(grid)
-    terms = lineshape_terms(model, progress)
+    terms = lineshape_terms(model, progress, grid * sf)  # exact on this grid (which `dispersion` uses too)
     return Spectrum(grid, terms.absorption(grid * sf), sf, model.title, terms)
 
 
