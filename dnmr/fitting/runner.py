@@ -297,36 +297,44 @@ class FitRunner:
         self.caller = os.getpid()
         self.figures: dict[tuple[int, str], futures.Future] = {}
         self.queued: dict[tuple[int, str], tuple] = {}  # figures waiting for a worker that no fit needs
+        self.drawn_from: dict[tuple[int, str], str] = {}  # the fit each figure handed out shows (canonical JSON)
 
     def close(self) -> None:
         """End the worker processes of its own (waiting for those running; none is started after)."""
         if self.own_pool is not None:
             self.own_pool.shutdown(wait=True, cancel_futures=True)
 
-    def early_figure(self, index: int, stage: str) -> bytes | None:
-        """The figure of spectrum `index`'s fit at `stage` drawn by a worker while the other fits ran, or None when
-        none was (no workers, a fit reused from an earlier run, or drawing failed)."""
+    def early_figure(self, index: int, stage: str, fit_data: dict) -> bytes | None:
+        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) drawn by a
+        worker while the other fits ran, or None when none was (no workers, a fit reused from an earlier run,
+        drawing failed) or when it shows another fit than `fit_data` (the series changed its rates after)."""
         if (index, stage) in self.queued:
             self.flush()
         future = self.figures.pop((index, stage), None)
+        if future is None or self.drawn_from.pop((index, stage)) != _canonical(fit_data):
+            return None
         try:
-            return future.result() if future is not None else None
+            return future.result()
         except Exception:  # the worker died or drawing failed: the caller draws it again, and says why if it fails
             return None
 
-    def _draw_early(self, job: FitJob, record: dict) -> None:
-        """Queue the figure of a fit for a worker that no fit needs (off the critical path of the fits).  A
-        slow-exchange fit's figure is drawn too: it is used when that fit stays final, which is only known
-        after the slow-exchange run, and forgotten when the spectrum is fitted again (:meth:`_forget`)."""
+    def _draw_early(self, job: FitJob, record: dict, final: Callable[[int, dict], dict] | None) -> None:
+        """Queue the figure of a fit for a worker that no fit needs (off the critical path of the fits): of the
+        fit `final` makes of the record (its final form), else of the record's.  A slow-exchange fit's figure is
+        drawn too: it is used when that fit stays final, which is only known after the slow-exchange run, and
+        forgotten when the spectrum is fitted again (:meth:`_forget`)."""
         if self.pool is None or record.get("status") != "fitted":
             return
+        fit_data = record["fit"] if final is None else final(job.index, record)
         path = fit_figure_path(self.outdir, job.index, job.spectrum)
-        self.queued[job.index, job.stage] = (fit_figure, self.series.model, record["fit"], record["curves"], path)
+        self.drawn_from[job.index, job.stage] = _canonical(fit_data)
+        self.queued[job.index, job.stage] = (fit_figure, self.series.model, fit_data, record["curves"], path)
 
     def _forget(self, indices: set[int]) -> None:
         """Forget the figures of earlier fits of the spectra `indices`, which are fitted again."""
         for key in [k for k in {*self.queued, *self.figures} if k[0] in indices]:
             self.queued.pop(key, None)
+            self.drawn_from.pop(key, None)
             future = self.figures.pop(key, None)
             if future is not None:
                 future.cancel()
@@ -366,10 +374,13 @@ class FitRunner:
         """Store a fit's record (``fits/NNN_<stage>.json``), what --resume reuses."""
         write_json(self._stored(record["index"], record["stage"]), record)
 
-    def run(self, jobs: list[FitJob], label: str, seeded: bool = True) -> dict[int, dict]:
+    def run(self, jobs: list[FitJob], label: str, seeded: bool = True,
+            final: Callable[[int, dict], dict] | None = None) -> dict[int, dict]:
         """Fit every job; returns the stored record of each by spectrum index.  Unless `seeded` is False,
-        each fit starts from the fits of lower levels (:func:`_seed_levels`)."""
-        return _Stage(self, jobs, label, seeded).run()
+        each fit starts from the fits of lower levels (:func:`_seed_levels`).  `final(index, record)`, when
+        given, is the final fit (:meth:`SpectrumFit.to_dict`) the series makes of a record, which the figure
+        drawn as the fit comes in shows."""
+        return _Stage(self, jobs, label, seeded, final).run()
 
     def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
         """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
@@ -403,8 +414,9 @@ class _Stage:
     are handed out (before waiting again), and their figures go to the workers that no fit needs
     (:meth:`FitRunner.early_figure`)."""
 
-    def __init__(self, runner: FitRunner, jobs: list[FitJob], label: str, seeded: bool):
-        self.runner, self.spectra = runner, runner.series.spectra
+    def __init__(self, runner: FitRunner, jobs: list[FitJob], label: str, seeded: bool,
+                 final: Callable[[int, dict], dict] | None):
+        self.runner, self.spectra, self.final = runner, runner.series.spectra, final
         self.records: dict[int, dict] = {}
         self.task = runner.progress.add_task(label, total=len(jobs))
         todo = []
@@ -470,7 +482,7 @@ class _Stage:
                   "temperature_k": job.spectrum.temperature_k, **result}
         self.records[index] = record
         self.unwritten.append(record)
-        self.runner._draw_early(job, record)
+        self.runner._draw_early(job, record, self.final)
         self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
         self.runner.progress.refresh()
 
@@ -479,6 +491,11 @@ class _Stage:
         for record in self.unwritten:
             self.runner._write(record)
         self.unwritten.clear()
+
+
+def _canonical(fit_data: dict) -> str:
+    """A fit as plain data (:meth:`SpectrumFit.to_dict`) in one canonical text: equal texts, equal figures."""
+    return json.dumps(json_ready(fit_data), sort_keys=True)
 
 
 def _future_result(future) -> dict:
