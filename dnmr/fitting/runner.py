@@ -311,7 +311,7 @@ class FitRunner:
         if (index, stage) in self.queued:
             self.flush()
         future = self.figures.pop((index, stage), None)
-        if future is None or self.drawn_from.pop((index, stage)) != _canonical(fit_data):
+        if future is None or self.drawn_from.pop((index, stage), None) != _canonical(fit_data):
             return None
         try:
             return future.result()
