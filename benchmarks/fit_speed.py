@@ -305,11 +305,14 @@ def timeline(folder: Path, cores: int) -> None:
         print(f"    {a - start:6.2f} {b - start:6.2f}  {name:<12} {what}")
     stages = [p for p in parts if p[0] == "this process" and p[1] != "fit_series"]
     fitted = next(p for p in parts if p[1] == "fit_series")
-    print(f"    this process alone: {stages[0][2] - start:.2f} s before the first fit, {fitted[3] - stages[-1][3]:.2f} s of "
-          f"outputs after the last, {end - fitted[3]:.2f} s of report.html")
+    first, last = stages[0][2], stages[-1][3]
+    print(f"    {first - start:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), {fitted[3] - last:.2f} s of "
+          f"outputs (figures on the workers, the series figure here), {end - fitted[3]:.2f} s of report.html (here only)")
     for where in workers:
         busy = sum(p[3] - p[2] for p in parts if p[0] == where)
-        print(f"    worker {workers.index(where) + 1}: busy {busy:.2f} s, idle {end - start - busy:.2f} s of {end - start:.2f} s")
+        during = sum(min(p[3], last) - max(p[2], first) for p in parts if p[0] == where and p[2] < last and p[3] > first)
+        print(f"    worker {workers.index(where) + 1}: idle {last - first - during:.2f} s of the {last - first:.2f} s of fits, "
+              f"{end - start - busy:.2f} s of the whole {end - start:.2f} s")
 
 
 def global_fits(folder: Path, cores: int, series: Path, result) -> None:

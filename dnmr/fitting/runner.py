@@ -410,8 +410,8 @@ class _Stage:
     the records of those done.
 
     A spectrum is started as soon as every spectrum of a lower level (:func:`_seed_levels`) is done, the
-    coldest first.  With workers, the records of the fits just done are written to disk after the next fits
-    are handed out (before waiting again), and their figures go to the workers that no fit needs
+    coldest first.  With workers, the records of the fits just done are written to disk and their figures queued
+    after the next fits are handed out (before waiting again); the figures go to the workers that no fit needs
     (:meth:`FitRunner.early_figure`)."""
 
     def __init__(self, runner: FitRunner, jobs: list[FitJob], label: str, seeded: bool,
@@ -433,7 +433,7 @@ class _Stage:
         self.levels = _seed_levels(runner.series, [j.index for j in jobs]) if seeded else {j.index: 0 for j in jobs}
         self.waiting = sorted(self.jobs, key=lambda i: (self.levels[i], self.spectra[i].temperature_k, i))
         self.running: dict[int, futures.Future | dict] = {}
-        self.unwritten: list[dict] = []
+        self.unsettled: list[FitJob] = []
 
     def run(self) -> dict[int, dict]:
         """Fit every job waiting; the records by spectrum index."""
@@ -441,18 +441,18 @@ class _Stage:
         while self.waiting or self.running:
             for index in [i for i in self.waiting if self.ready(i)][: max(0, runner.workers - len(self.running))]:
                 self.submit(index)
-            self.write()  # the fits just done, while the next ones run
+            self.settle()  # the fits just done, while the next ones run
             if not self.running:
                 continue
             if runner.pool is None:  # fitted in submit: stored at once
                 self.collect(*self.running.popitem())
-                self.write()
+                self.settle()
                 continue
             drawing = runner._feed(len(self.running))  # a figure on each worker that no fit needs
             done, _ = futures.wait(list(self.running.values()) + drawing, return_when=futures.FIRST_COMPLETED)
             for index in [i for i, f in self.running.items() if f in done]:
                 self.collect(index, _future_result(self.running.pop(index)))
-        self.write()
+        self.settle()
         return self.records
 
     def ready(self, index: int) -> bool:
@@ -476,21 +476,21 @@ class _Stage:
                                                      start, spectrum)
 
     def collect(self, index: int, result: dict) -> None:
-        """Take in the result of spectrum `index`'s fit (written to disk by :meth:`write`)."""
+        """Take in the result of spectrum `index`'s fit (stored, its figure queued, by :meth:`settle`)."""
         job = self.jobs[index]
         record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
                   "temperature_k": job.spectrum.temperature_k, **result}
         self.records[index] = record
-        self.unwritten.append(record)
-        self.runner._draw_early(job, record, self.final)
+        self.unsettled.append(job)
         self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
         self.runner.progress.refresh()
 
-    def write(self) -> None:
-        """Store the records of the fits taken in since the last call."""
-        for record in self.unwritten:
-            self.runner._write(record)
-        self.unwritten.clear()
+    def settle(self) -> None:
+        """Store the records of the fits taken in since the last call and queue their figures."""
+        for job in self.unsettled:
+            self.runner._write(self.records[job.index])
+            self.runner._draw_early(job, self.records[job.index], self.final)
+        self.unsettled.clear()
 
 
 def _canonical(fit_data: dict) -> str:
