@@ -476,20 +476,20 @@ class _Stage:
                                                      start, spectrum)
 
     def collect(self, index: int, result: dict) -> None:
-        """Take in the result of spectrum `index`'s fit (stored, its figure queued, by :meth:`settle`)."""
+        """Take in the result of spectrum `index`'s fit (stored, its figure queued and counted done by :meth:`settle`)."""
         job = self.jobs[index]
         record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
                   "temperature_k": job.spectrum.temperature_k, **result}
         self.records[index] = record
         self.unsettled.append(job)
-        self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
-        self.runner.progress.refresh()
 
     def settle(self) -> None:
-        """Store the records of the fits taken in since the last call and queue their figures."""
+        """Store the records of the fits taken in since the last call, queue their figures and count them done."""
         for job in self.unsettled:
             self.runner._write(self.records[job.index])
             self.runner._draw_early(job, self.records[job.index], self.final)
+            self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
+            self.runner.progress.refresh()
         self.unsettled.clear()
 
 
