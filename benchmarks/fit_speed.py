@@ -269,7 +269,7 @@ def noted(where: str, what: str, function, *args, **kwargs):
 
 
 def timed_task(caller_pid: int, function, *args):
-    """dnmr.fitting.workers.in_worker with the task noted: run in a worker, it is pickled by reference to this module."""
+    """dnmr.fitting.workers.in_worker with the task noted (in a worker: pickled by reference to this module)."""
     from dnmr.fitting.runner import FitJob
     from dnmr.fitting.workers import in_worker
 
@@ -306,13 +306,15 @@ def timeline(folder: Path, cores: int) -> None:
     stages = [p for p in parts if p[0] == "this process" and p[1] != "fit_series"]
     fitted = next(p for p in parts if p[1] == "fit_series")
     first, last = stages[0][2], stages[-1][3]
-    print(f"    {first - start:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), {fitted[3] - last:.2f} s of "
-          f"outputs (figures on the workers, the series figure here), {end - fitted[3]:.2f} s of report.html (here only)")
+    print(f"    {first - start:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), "
+          f"{fitted[3] - last:.2f} s of outputs (figures on the workers, the series figure here), "
+          f"{end - fitted[3]:.2f} s of report.html (here only)")
     for where in workers:
         busy = sum(p[3] - p[2] for p in parts if p[0] == where)
-        during = sum(min(p[3], last) - max(p[2], first) for p in parts if p[0] == where and p[2] < last and p[3] > first)
-        print(f"    worker {workers.index(where) + 1}: idle {last - first - during:.2f} s of the {last - first:.2f} s of fits, "
-              f"{end - start - busy:.2f} s of the whole {end - start:.2f} s")
+        during = sum(min(p[3], last) - max(p[2], first) for p in parts
+                     if p[0] == where and p[2] < last and p[3] > first)
+        print(f"    worker {workers.index(where) + 1}: idle {last - first - during:.2f} s of the {last - first:.2f} s "
+              f"of fits, {end - start - busy:.2f} s of the whole {end - start:.2f} s")
 
 
 def global_fits(folder: Path, cores: int, series: Path, result) -> None:

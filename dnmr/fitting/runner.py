@@ -476,7 +476,7 @@ class _Stage:
                                                      start, spectrum)
 
     def collect(self, index: int, result: dict) -> None:
-        """Take in the result of spectrum `index`'s fit (stored, its figure queued and counted done by :meth:`settle`)."""
+        """Take in the result of spectrum `index`'s fit (stored, its figure queued, counted done: :meth:`settle`)."""
         job = self.jobs[index]
         record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
                   "temperature_k": job.spectrum.temperature_k, **result}
