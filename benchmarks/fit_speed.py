@@ -23,9 +23,14 @@ measured figure, with the machine's load (1-minute load average) before and afte
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure and raises every time (CPU times less so; the ratios are of one run).
 
+With --timeline, (b) is followed by one more run with one worker per core, timed part by part: the wall-clock
+start and end of every task on each worker (fits, figures) and of this process's parts (before the first fit, each
+stage of fits, the outputs after them, report.html), and how long each worker stood idle.
+
 Run:  python benchmarks/fit_speed.py            (everything)
       python benchmarks/fit_speed.py --single   ((a) and (d) only)
       python benchmarks/fit_speed.py --series   ((b) only)
+      python benchmarks/fit_speed.py --series --timeline   ((b) and its timeline)
 """
 from __future__ import annotations
 
@@ -249,6 +254,69 @@ def series_fits(folder: Path, cores: int):
     return series, result
 
 
+TIMELINE = Path(tempfile.gettempdir()) / f"dnmr-timeline-{os.getpid()}.jsonl"
+"""Where the timeline's parts are noted, one JSON line each, by this process and by the workers it forks."""
+
+
+def noted(where: str, what: str, function, *args, **kwargs):
+    """`function(*args, **kwargs)`, its wall-clock start and end noted in TIMELINE under `where` (a process)."""
+    start = time.time()
+    try:
+        return function(*args, **kwargs)
+    finally:
+        with open(TIMELINE, "a") as fh:
+            fh.write(json.dumps([where, what, start, time.time()]) + "\n")
+
+
+def timed_task(caller_pid: int, function, *args):
+    """dnmr.fitting.workers.in_worker with the task noted (in a worker: pickled by reference to this module)."""
+    from dnmr.fitting.runner import FitJob
+    from dnmr.fitting.workers import in_worker
+
+    job = next((a for a in args if isinstance(a, FitJob)), None)
+    what = f"fit {job.stage} {job.spectrum.temperature_k:g} K" if job else f"{function.__name__} " + " ".join(
+        a.name for a in args if isinstance(a, Path))
+    return noted(f"worker {os.getpid()}", what, in_worker, caller_pid, function, *args)
+
+
+def timeline(folder: Path, cores: int) -> None:
+    """(b) once more with `cores` workers, timed part by part (the module's docstring says which parts)."""
+    from dnmr.fitting import runner, series
+    from dnmr.jobs import run_fit
+
+    print(f"  timeline of one run with {cores} workers (s from the start; {load()}):")
+    saved = runner.in_worker, runner.FitRunner.run, series.fit_series
+    runner.in_worker = timed_task
+    runner.FitRunner.run = lambda self, jobs, label, *a, **k: noted("this process", label, saved[1], self, jobs, label,
+                                                                    *a, **k)
+    series.fit_series = lambda *a, **k: noted("this process", "fit_series", saved[2], *a, **k)
+    TIMELINE.unlink(missing_ok=True)
+    try:
+        start = time.time()
+        run_fit(demo_series(folder), folder / "timeline", workers=cores, progress=False)
+        end = time.time()
+    finally:
+        runner.in_worker, runner.FitRunner.run, series.fit_series = saved
+    parts = sorted((json.loads(line) for line in TIMELINE.read_text().splitlines()), key=lambda p: p[2])
+    TIMELINE.unlink()
+    workers = sorted({p[0] for p in parts if p[0].startswith("worker")})
+    for where, what, a, b in parts:
+        name = f"worker {workers.index(where) + 1}" if where in workers else where
+        print(f"    {a - start:6.2f} {b - start:6.2f}  {name:<12} {what}")
+    stages = [p for p in parts if p[0] == "this process" and p[1] != "fit_series"]
+    fitted = next(p for p in parts if p[1] == "fit_series")
+    first, last = stages[0][2], stages[-1][3]
+    print(f"    {first - start:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), "
+          f"{fitted[3] - last:.2f} s of outputs (figures on the workers, the series figure here), "
+          f"{end - fitted[3]:.2f} s of report.html (here only)")
+    for where in workers:
+        busy = sum(p[3] - p[2] for p in parts if p[0] == where)
+        during = sum(min(p[3], last) - max(p[2], first) for p in parts
+                     if p[0] == where and p[2] < last and p[3] > first)
+        print(f"    worker {workers.index(where) + 1}: idle {last - first - during:.2f} s of the {last - first:.2f} s "
+              f"of fits, {end - start - busy:.2f} s of the whole {end - start:.2f} s")
+
+
 def global_fits(folder: Path, cores: int, series: Path, result) -> None:
     """(c): the global fit of the demo series from (b)'s two-step result."""
     from dnmr.activation.temperature_calibration import read_temperature_calibration
@@ -312,6 +380,8 @@ def main() -> None:
     folder = Path(tempfile.mkdtemp(prefix="dnmr-bench-"))
     try:
         series, result = series_fits(folder, cores)
+        if "--timeline" in arguments:
+            timeline(folder, cores)
         if "--series" not in arguments:
             global_fits(folder, cores, series, result)
     finally:

@@ -623,6 +623,34 @@ def test_a_lock_taken_on_a_removed_lock_file_guards_nothing_and_is_refused(tmp_p
     release_results_folder(runs["third"])
 
 
+def mathtext_layouts_kept() -> int:
+    """How many math-text layouts (with their fonts) this process keeps."""
+    from matplotlib.mathtext import MathTextParser
+
+    return MathTextParser._parse_cached.cache_info().currsize
+
+
+def test_workers_do_not_read_fonts_through_their_parents_files():
+    """matplotlib's own note (font_manager.py: FT2Font objects cannot be used across fork()s): a worker forked from a
+    process that drew math text inherited its fonts, which read their files through the parent's open files with one
+    shared read position; drawing in both at once failed ("failed to load glyph", seen in a series fit run after
+    another in one process).  A worker starts without them."""
+    import matplotlib.pyplot as plt
+
+    from dnmr.fitting.workers import in_worker, process_pool
+
+    figure = plt.figure()
+    figure.text(0.5, 0.5, "k = 12 s$^{-1}$")
+    figure.canvas.draw()
+    plt.close(figure)
+    assert mathtext_layouts_kept() > 0
+    pool = process_pool(1)
+    try:
+        assert pool.submit(in_worker, os.getpid(), mathtext_layouts_kept).result() == 0
+    finally:
+        pool.shutdown()
+
+
 def test_a_figure_that_cannot_be_drawn_loses_no_fit(tmp_path, monkeypatch):
     """Drawing can fail (a font library's error was seen once in a worker): the fits, rates.csv, results.json and
     the other figures stand, and the spectrum's notes say which figure is missing and why."""

@@ -12,8 +12,8 @@ its workers need dnmr but not the files.
 
 Each fit is stored as it finishes (``fits/NNN_<stage>.json``); ``resume`` reuses a stored fit only
 when the spectrum file, its temperature, the options and the model are unchanged.  With worker processes (or
-an executor), the figure of a fit of a final stage (main or held) is drawn there as soon as the fit is in,
-while other fits still run, instead of all figures at the end (:meth:`FitRunner.early_figure`).
+an executor), the figure of each fit is drawn there as soon as the fit is in, on a worker that no fit needs
+(the fits go first), instead of all figures at the end (:meth:`FitRunner.early_figure`).
 """
 from __future__ import annotations
 
@@ -296,34 +296,72 @@ class FitRunner:
         self.pool = executor if executor is not None else self.own_pool
         self.caller = os.getpid()
         self.figures: dict[tuple[int, str], futures.Future] = {}
+        self.queued: dict[tuple[int, str], tuple] = {}  # figures waiting for a worker that no fit needs
+        self.drawn_from: dict[tuple[int, str], str] = {}  # the fit each figure handed out shows (canonical JSON)
 
     def close(self) -> None:
         """End the worker processes of its own (waiting for those running; none is started after)."""
         if self.own_pool is not None:
             self.own_pool.shutdown(wait=True, cancel_futures=True)
 
-    def early_figure(self, index: int, stage: str) -> bytes | None:
-        """The figure of spectrum `index`'s fit at `stage` drawn by a worker while the other fits ran, or None when
-        none was (no workers, a fit reused from an earlier run, a slow-exchange fit, or drawing failed)."""
+    def early_figure(self, index: int, stage: str, fit_data: dict) -> bytes | None:
+        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) drawn by a
+        worker while the other fits ran, or None when none was (no workers, a fit reused from an earlier run,
+        drawing failed) or when it shows another fit than `fit_data` (the series changed its rates after)."""
+        if (index, stage) in self.queued:
+            self.flush()
         future = self.figures.pop((index, stage), None)
+        if future is None or self.drawn_from.pop((index, stage), None) != _canonical(fit_data):
+            return None
         try:
-            return future.result() if future is not None else None
+            return future.result()
         except Exception:  # the worker died or drawing failed: the caller draws it again, and says why if it fails
             return None
 
-    def _draw_early(self, job: FitJob, record: dict) -> None:
-        """Hand the figure of a final fit to the workers at once (off the critical path of the fits)."""
-        if self.pool is None or job.stage not in FINAL_STAGES or record.get("status") != "fitted":
+    def _draw_early(self, job: FitJob, record: dict, final: Callable[[int, dict], dict] | None) -> None:
+        """Queue the figure of a fit for a worker that no fit needs (off the critical path of the fits): of the
+        fit `final` makes of the record (its final form), else of the record's.  A slow-exchange fit's figure is
+        drawn too: it is used when that fit stays final, which is only known after the slow-exchange run, and
+        forgotten when the spectrum is fitted again (:meth:`_forget`)."""
+        if self.pool is None or record.get("status") != "fitted":
             return
+        fit_data = record["fit"] if final is None else final(job.index, record)
         path = fit_figure_path(self.outdir, job.index, job.spectrum)
-        self.figures[job.index, job.stage] = self.pool.submit(in_worker, self.caller, fit_figure, self.series.model,
-                                                              record["fit"], record["curves"], path)
+        self.drawn_from[job.index, job.stage] = _canonical(fit_data)
+        self.queued[job.index, job.stage] = (fit_figure, self.series.model, fit_data, record["curves"], path)
 
-    def _stored(self, job: FitJob) -> Path:
-        return self.outdir / "fits" / f"{job.index:03d}_{job.stage}.json"
+    def _forget(self, indices: set[int]) -> None:
+        """Forget the figures of earlier fits of the spectra `indices`, which are fitted again."""
+        for key in [k for k in {*self.queued, *self.figures} if k[0] in indices]:
+            self.queued.pop(key, None)
+            self.drawn_from.pop(key, None)
+            future = self.figures.pop(key, None)
+            if future is not None:
+                future.cancel()
+
+    def _feed(self, busy: int) -> list[futures.Future]:
+        """Hand queued figures (of final fits first) to the workers left idle by the `busy` fits running; returns
+        the figures being drawn."""
+        drawing = [f for f in self.figures.values() if not f.done()]
+        while self.queued and busy + len(drawing) < self.workers:
+            key = min(self.queued, key=lambda k: k[1] not in FINAL_STAGES)  # the first final one, else the first
+            drawing.append(self._submit_figure(key))
+        return drawing
+
+    def flush(self) -> None:
+        """Hand every figure still waiting for an idle worker to the pool (to draw while this process works on)."""
+        while self.queued:
+            self._submit_figure(next(iter(self.queued)))
+
+    def _submit_figure(self, key: tuple[int, str]) -> futures.Future:
+        self.figures[key] = self.pool.submit(in_worker, self.caller, *self.queued.pop(key))
+        return self.figures[key]
+
+    def _stored(self, index: int, stage: str) -> Path:
+        return self.outdir / "fits" / f"{index:03d}_{stage}.json"
 
     def _reuse(self, job: FitJob) -> dict | None:
-        path = self._stored(job)
+        path = self._stored(job.index, job.stage)
         if not self.resume or not path.exists():
             return None
         try:
@@ -332,67 +370,17 @@ class FitRunner:
             return None
         return data if data.get("key") == job.key and data.get("status") == "fitted" else None
 
-    def _store(self, job: FitJob, result: dict) -> dict:
-        record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
-                  "temperature_k": job.spectrum.temperature_k, **result}
-        write_json(self._stored(job), record)
-        return record
+    def _write(self, record: dict) -> None:
+        """Store a fit's record (``fits/NNN_<stage>.json``), what --resume reuses."""
+        write_json(self._stored(record["index"], record["stage"]), record)
 
-    def run(self, jobs: list[FitJob], label: str, seeded: bool = True) -> dict[int, dict]:
+    def run(self, jobs: list[FitJob], label: str, seeded: bool = True,
+            final: Callable[[int, dict], dict] | None = None) -> dict[int, dict]:
         """Fit every job; returns the stored record of each by spectrum index.  Unless `seeded` is False,
-        each fit starts from the fits of lower levels (:func:`_seed_levels`)."""
-        records: dict[int, dict] = {}
-        task = self.progress.add_task(label, total=len(jobs))
-        todo = []
-        for job in jobs:
-            reused = self._reuse(job)
-            if reused is not None:
-                records[job.index] = {**reused, "reused": True}
-                self.progress.advance(task, f"{job.spectrum.temperature_k:g} K, from the earlier run")
-            else:
-                todo.append(job)
-        self.progress.refresh()
-        by_index = {j.index: j for j in todo}
-        levels = _seed_levels(self.series, [j.index for j in jobs]) if seeded else {j.index: 0 for j in jobs}
-        waiting = sorted(by_index, key=lambda i: (levels[i], self.series.spectra[i].temperature_k, i))
-        running: dict = {}
-
-        def ready(index: int) -> bool:  # every spectrum of a lower level has finished
-            return all(j in records for j in levels if levels[j] < levels[index])
-
-        def submit(index: int) -> None:
-            waiting.remove(index)
-            done = [(self.series.spectra[j], records[j]["fit"]) for j in sorted(levels)
-                    if levels[j] < levels[index] and records[j]["status"] == "fitted"]
-            start = _start_values(self.series.spectra[index], done)
-            spectrum = _read_job(self.series.model, by_index[index])
-            if isinstance(spectrum, dict):  # unreadable: failed here, nothing to send
-                collect(index, spectrum)
-            elif self.pool is None:
-                running[index] = _run_job(self.series.model, by_index[index], start, spectrum)
-            else:
-                running[index] = self.pool.submit(in_worker, self.caller, _run_job, self.series.model,
-                                                  by_index[index], start, spectrum)
-
-        def collect(index: int, result: dict) -> None:
-            records[index] = self._store(by_index[index], result)
-            self._draw_early(by_index[index], records[index])
-            self.progress.advance(task, f"{self.series.spectra[index].temperature_k:g} K")
-            self.progress.refresh()
-
-        while waiting or running:
-            for index in [i for i in waiting if ready(i)][: max(0, self.workers - len(running))]:
-                submit(index)
-            if not running:
-                continue
-            if self.pool is None:
-                index, result = running.popitem()
-                collect(index, result)
-                continue
-            done, _ = futures.wait(list(running.values()), return_when=futures.FIRST_COMPLETED)
-            for index in [i for i, f in running.items() if f in done]:
-                collect(index, _future_result(running.pop(index)))
-        return records
+        each fit starts from the fits of lower levels (:func:`_seed_levels`).  `final(index, record)`, when
+        given, is the final fit (:meth:`SpectrumFit.to_dict`) the series makes of a record, which the figure
+        drawn as the fit comes in shows."""
+        return _Stage(self, jobs, label, seeded, final).run()
 
     def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
         """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
@@ -410,10 +398,104 @@ class FitRunner:
                 out.append(function(*args))
                 advance()
             return out
+        self.flush()
         pending = [self.pool.submit(in_worker, self.caller, function, *args) for args in calls]
         for _ in futures.as_completed(pending):
             advance()
         return [f.result() for f in pending]
+
+
+class _Stage:
+    """The fits of one :meth:`FitRunner.run`: those waiting for the fits they are seeded from, those running, and
+    the records of those done.
+
+    A spectrum is started as soon as every spectrum of a lower level (:func:`_seed_levels`) is done, the
+    coldest first.  With workers, the records of the fits just done are written to disk and their figures queued
+    after the next fits are handed out (before waiting again); the figures go to the workers that no fit needs
+    (:meth:`FitRunner.early_figure`)."""
+
+    def __init__(self, runner: FitRunner, jobs: list[FitJob], label: str, seeded: bool,
+                 final: Callable[[int, dict], dict] | None):
+        self.runner, self.spectra, self.final = runner, runner.series.spectra, final
+        self.records: dict[int, dict] = {}
+        self.task = runner.progress.add_task(label, total=len(jobs))
+        todo = []
+        for job in jobs:
+            reused = runner._reuse(job)
+            if reused is not None:
+                self.records[job.index] = {**reused, "reused": True}
+                runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K, from the earlier run")
+            else:
+                todo.append(job)
+        runner.progress.refresh()
+        runner._forget({j.index for j in jobs})
+        self.jobs = {j.index: j for j in todo}
+        self.levels = _seed_levels(runner.series, [j.index for j in jobs]) if seeded else {j.index: 0 for j in jobs}
+        self.waiting = sorted(self.jobs, key=lambda i: (self.levels[i], self.spectra[i].temperature_k, i))
+        self.running: dict[int, futures.Future | dict] = {}
+        self.unsettled: list[FitJob] = []
+
+    def run(self) -> dict[int, dict]:
+        """Fit every job waiting; the records by spectrum index."""
+        runner = self.runner
+        while self.waiting or self.running:
+            for index in [i for i in self.waiting if self.ready(i)][: max(0, runner.workers - len(self.running))]:
+                self.submit(index)
+            self.settle()  # the fits just done, while the next ones run
+            if not self.running:
+                continue
+            if runner.pool is None:  # fitted in submit: stored at once
+                self.collect(*self.running.popitem())
+                self.settle()
+                continue
+            drawing = runner._feed(len(self.running))  # a figure on each worker that no fit needs
+            done, _ = futures.wait(list(self.running.values()) + drawing, return_when=futures.FIRST_COMPLETED)
+            for index in [i for i, f in self.running.items() if f in done]:
+                self.collect(index, _future_result(self.running.pop(index)))
+        self.settle()
+        return self.records
+
+    def ready(self, index: int) -> bool:
+        """Whether every spectrum of a lower level than `index`'s has been fitted."""
+        return all(j in self.records for j in self.levels if self.levels[j] < self.levels[index])
+
+    def submit(self, index: int) -> None:
+        """Start the fit of spectrum `index` (here without workers), seeded from the fits of lower levels."""
+        runner, job = self.runner, self.jobs[index]
+        self.waiting.remove(index)
+        done = [(self.spectra[j], self.records[j]["fit"]) for j in sorted(self.levels)
+                if self.levels[j] < self.levels[index] and self.records[j]["status"] == "fitted"]
+        start = _start_values(self.spectra[index], done)
+        spectrum = _read_job(runner.series.model, job)
+        if isinstance(spectrum, dict):  # unreadable: failed here, nothing to send
+            self.collect(index, spectrum)
+        elif runner.pool is None:
+            self.running[index] = _run_job(runner.series.model, job, start, spectrum)
+        else:
+            self.running[index] = runner.pool.submit(in_worker, runner.caller, _run_job, runner.series.model, job,
+                                                     start, spectrum)
+
+    def collect(self, index: int, result: dict) -> None:
+        """Take in the result of spectrum `index`'s fit (stored, its figure queued, counted done: :meth:`settle`)."""
+        job = self.jobs[index]
+        record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
+                  "temperature_k": job.spectrum.temperature_k, **result}
+        self.records[index] = record
+        self.unsettled.append(job)
+
+    def settle(self) -> None:
+        """Store the records of the fits taken in since the last call, queue their figures and count them done."""
+        for job in self.unsettled:
+            self.runner._write(self.records[job.index])
+            self.runner._draw_early(job, self.records[job.index], self.final)
+            self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
+            self.runner.progress.refresh()
+        self.unsettled.clear()
+
+
+def _canonical(fit_data: dict) -> str:
+    """A fit as plain data (:meth:`SpectrumFit.to_dict`) in one canonical text: equal texts, equal figures."""
+    return json.dumps(json_ready(fit_data), sort_keys=True)
 
 
 def _future_result(future) -> dict:

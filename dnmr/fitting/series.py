@@ -325,8 +325,9 @@ def _write_outputs(result: SeriesFit, runner: FitRunner, hashes: Mapping) -> Non
     """rates.csv, the figures and results.json of `result` (see :mod:`dnmr.fitting.seriesoutput`)."""
     outdir = result.outdir
     write_rates_csv(outdir / "rates.csv", result.rate_rows())
-    draw_fit_figures(result.outcomes, result.series.model, outdir, runner)
+    runner.flush()  # the workers draw the fit figures still waiting while this process draws the series figure
     if any(o.fitted for o in result.outcomes):
         save_and_close(result.plot(), outdir / "series_fits.png")
+    draw_fit_figures(result.outcomes, result.series.model, outdir, runner)
     write_results_json(outdir / "results.json", result.series, result.outcomes, result.trend, result.notes,
                        result.exit_status, hashes)

@@ -138,11 +138,12 @@ def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: 
     for i, o in enumerate(outcomes):
         if o.fitted:
             path = fit_figure_path(outdir, i, o.spectrum)
-            image = runner.early_figure(i, o.stage)  # drawn while other fits ran
+            fit_data = o.fit.to_dict()
+            image = runner.early_figure(i, o.stage, fit_data)  # drawn while other fits ran
             if image is not None:
                 atomic_write_bytes(path, image, overwrite=True)
             else:
-                draws.append((model, o.fit.to_dict(), o.fit.curves(), path))
+                draws.append((model, fit_data, o.fit.curves(), path))
                 drawn_for.append(o)
     for outcome, (*_, path), image in zip(drawn_for, draws, runner.map(fit_figure_or_reason, draws)):
         if isinstance(image, bytes):

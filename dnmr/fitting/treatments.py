@@ -246,13 +246,21 @@ def fit_with_trends(series: Series, runner: FitRunner, hashes: Mapping, referenc
         held_kinds = ["linewidth"] if i in slow else kinds
         held = trend.held(temp(i), held_kinds) if trend else {}
         jobs.append(fit_job(series, i, STAGE_HELD, _spectrum_options(series, i, references, held, held_kinds), hashes))
-    for i, record in runner.run(jobs, "fits with held values").items():
-        outcomes[i] = outcome_from_record(series, i, record, STAGE_HELD)
+
+    def final_held(i: int, record: dict) -> SpectrumOutcome:  # held errors with their correlations, as drawn
+        outcome = outcome_from_record(series, i, record, STAGE_HELD)
+        if trend is not None and outcome.fit is not None:
+            _count_held_correlations(outcome, trend)
+        return outcome
+
+    final = lambda i, record: final_held(i, record).fit.to_dict()  # noqa: E731
+    for i, record in runner.run(jobs, "fits with held values", final=final).items():
+        outcomes[i] = final_held(i, record)
     for i, o in outcomes.items():
         _set_treatment(series, o, trend, references.get(i))
         if trend is not None and o.fit is not None:
             point = lw_from.index(i) if o.stage == STAGE_SLOW and i in lw_from else None
-            if point is None:
+            if point is None and o.stage == STAGE_SLOW:
                 _count_held_correlations(o, trend)
             o.shared_rate_errors = _shared_rate_errors(o, trend, point)
     return outcomes, trend, notes

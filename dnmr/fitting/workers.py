@@ -53,7 +53,8 @@ def start_worker(parent_pid: int) -> None:
 
 def prepare_worker(caller_pid: int) -> None:
     """Hold BLAS to one thread for the life of this process, once, unless it is the caller's own process
-    (`caller_pid`; threads of the caller run inside its fit, which already holds BLAS to one thread).
+    (`caller_pid`; threads of the caller run inside its fit, which already holds BLAS to one thread), and drop
+    the fonts inherited from the parent (:func:`forget_inherited_fonts`).
 
     Every task calls it, so a worker that dnmr did not start (a Dask worker, a pool of the user's) computes
     as dnmr's own workers do: the same numbers, without BLAS threads contending."""
@@ -63,6 +64,19 @@ def prepare_worker(caller_pid: int) -> None:
     with _LOCK:
         if _BLAS_LIMIT is None:
             _BLAS_LIMIT = single_threaded_blas()
+            forget_inherited_fonts()
+
+
+def forget_inherited_fonts() -> None:
+    """Drop the fonts of the math-text layouts that a forked worker inherited from its parent.
+
+    A font object reads its file through the open file that the parent and every forked worker share, with one
+    read position: two processes drawing at once read each other's bytes and fail ("failed to load glyph").
+    matplotlib empties its own font cache in a forked process, not that of its math-text layouts (the rates'
+    "s^-1" on a fit figure), which a parent that drew figures before starting the workers passes on."""
+    mathtext = sys.modules.get("matplotlib.mathtext")
+    if mathtext is not None:
+        mathtext.MathTextParser._parse_cached.cache_clear()
 
 
 def in_worker(caller_pid: int, function: Callable, *args: Any) -> Any:
