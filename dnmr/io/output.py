@@ -300,7 +300,8 @@ def _cut_to_drawing(pixels: np.ndarray, pad: int, colour) -> np.ndarray | None:
     return image
 
 
-def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False) -> Path:
+def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, close: bool = False,
+                inside: bool = False) -> Path:
     """Save a matplotlib figure atomically (format from the file suffix; ``.png`` follows :func:`figures_as`).
 
     Parameters
@@ -316,10 +317,14 @@ def save_figure(fig, path: str | Path, overwrite: bool = False, dpi: int = 150, 
     close : bool
         Close the figure afterwards (also when writing fails), as the command line does with the figures
         it only saves; a figure that a notebook goes on showing stays open (the default).
+    inside : bool
+        Nothing of the figure lies beyond its edges: a PNG is drawn once and cut to its pixels
+        (:func:`figure_bytes`).
     """
     try:
         path = check_output_file(figure_file(path), overwrite, "output", figure=True)
-        return atomic_write_bytes(path, figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi), overwrite=overwrite)
+        image = figure_bytes(fig, path.suffix.lstrip(".") or "png", dpi, inside=inside)
+        return atomic_write_bytes(path, image, overwrite=overwrite)
     finally:
         if close:
             import matplotlib.pyplot as plt

@@ -170,7 +170,8 @@ def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[
         raise InputError(f"{figure_file(figure)} already exists; pass --overwrite to replace it", where="output")
     written = write_supporting_tables(target, rows.rates, rows.activation, title=rows.title, overwrite=overwrite)
     if eyring:
-        written.append(save_figure(plot_eyring(list(eyring)), figure, overwrite=overwrite, close=True))
+        written.append(save_figure(plot_eyring(list(eyring)), figure, overwrite=overwrite, close=True,
+                                   inside=True))
     return written
 
 
