@@ -45,8 +45,10 @@ SPARSE_MATVEC_SIZE = 128
 KRYLOV_GROWTH_LIMIT = 1e6
 #: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate: the
 #: estimate's rounding term assumes vectors of unit length (measured on a seven-spin block of 735, where one
-#: vector reached 109: the true loss then ran up to 800x ahead of the estimate and the spectrum off by 4e-7).
-NEAR_BREAKDOWN = 30.0
+#: vector reached 109: the true loss then ran up to 800x ahead of the estimate and the spectrum off by 4e-7
+#: of the block's peak).  At 50, twice below that, the passes over the basis grow by 9 % on seven spins and
+#: 2 % on eight (30: 17 % and 19 %).
+NEAR_BREAKDOWN = 50.0
 #: Blocks at least this large stop the Lanczos recursion once its continued fraction has converged on the
 #: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than
 #: it saves (measured: a seven-spin block of 1225 converges only after 97 % of its steps, an eight-spin block
