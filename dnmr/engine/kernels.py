@@ -116,12 +116,12 @@ def _rescale(state, size):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orthogonal, slice_rows,
+def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, near_breakdown, semi_orthogonal, slice_rows,
             watched, every, look, converged):  # pragma: no cover - compiled
     """The recursion of :func:`dnmr.engine.resolvent.lanczos` on a CSR matrix (`indptr`, `indices`, `data`),
     step for step: the sparse product, Simon's estimates of the loss of orthogonality, and classical
-    Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` (at
-    that step, and at the next by the share found in the same pass); with angular frequencies `watched`
+    Gram-Schmidt in slices of `slice_rows` basis vectors when an estimate passes `semi_orthogonal` or the
+    next vector's squared length passes `near_breakdown` (at that step, and at the next by the share found in the same pass); with angular frequencies `watched`
     (none: no watch), the continued fraction on them is carried along and the recursion stops once it has
     converged (:func:`_watch`).  Returns (alpha, beta, steps, ok): the first `steps` entries of alpha and
     `steps` - 1 of beta hold the tridiagonal; ok is False on a serious breakdown."""
@@ -152,7 +152,7 @@ def lanczos(indptr, indices, data, q0, noise, exhausted, growth_limit, semi_orth
         if carried:
             _reset_orthogonality(new, noise, j, b)
             carried = False
-        elif largest > semi_orthogonal:
+        elif largest > semi_orthogonal or length2 > near_breakdown * abs(b) ** 2:
             before = length2
             project_pair(Q, j + 1, w, carry, slice_rows)
             carried = True

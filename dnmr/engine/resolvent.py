@@ -43,6 +43,12 @@ KRYLOV_MIN_SIZE = 80
 SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
+#: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate: the
+#: estimate's rounding term assumes vectors of unit length (measured on a seven-spin block of 735, where one
+#: vector reached 109: the true loss then ran up to 800x ahead of the estimate and the spectrum off by 4e-7
+#: of the block's peak).  At 50, twice below that, the passes over the basis grow by 9 % on seven spins and
+#: 2 % on eight (30: 17 % and 19 %).
+NEAR_BREAKDOWN = 50.0
 #: Blocks at least this large stop the Lanczos recursion once its continued fraction has converged on the
 #: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than
 #: it saves (measured: a seven-spin block of 1225 converges only after 97 % of its steps, an eight-spin block
@@ -324,7 +330,8 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
     The loss of orthogonality q_k^T q_j is not measured but estimated by its own three-term recurrence
     (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
     the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
-    against all earlier vectors only when the estimate passes sqrt(eps), at that step and the next (the
+    against all earlier vectors only when the estimate passes sqrt(eps) or the next vector grows longer than
+    :data:`NEAR_BREAKDOWN` allows, at that step and the next (the
     next step's share found in the same pass over the basis, :func:`project_pair`).  That keeps the basis
     semi-orthogonal, which is enough for T to be the projection of S to working accuracy; a step costs a
     sparse product and O(j) for the estimates, the O(n j) pass over the basis only now and then (about one
@@ -383,7 +390,7 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
         if carry is not None:
             estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
             carry = None
-        elif np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL:
+        elif np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL or length2 > NEAR_BREAKDOWN * abs(b) ** 2:
             basis = Q[: j + 1]
             before = length2
             projection, carry = project_pair(basis, w)
@@ -408,7 +415,7 @@ def _compiled_lanczos(csr, q0: np.ndarray, noise: np.ndarray, exhausted: float, 
                       growth: float) -> tuple[np.ndarray, np.ndarray] | None:
     """:func:`lanczos` by the compiled loop (:func:`dnmr.engine.kernels.lanczos`), same arguments and result."""
     alpha, beta, steps, ok = compiled_kernels().lanczos(
-        csr.indptr, csr.indices, csr.data, q0, noise, exhausted, KRYLOV_GROWTH_LIMIT, SEMI_ORTHOGONAL,
+        csr.indptr, csr.indices, csr.data, q0, noise, exhausted, KRYLOV_GROWTH_LIMIT, NEAR_BREAKDOWN, SEMI_ORTHOGONAL,
         _slice_rows(len(q0)), watched, rescaling_interval(growth), CONVERGENCE_STEPS, CONVERGED)
     return (alpha[:steps], beta[:steps - 1]) if ok else None
 
