@@ -16,7 +16,7 @@ measured figure, with the machine's load (1-minute load average) before and afte
     ``dnmr fit`` runs it (dnmr.jobs.run_fit: fits, figures, results files and report.html), with one worker and
     with one per core, against the sum of the single fits of its spectra through the API (fit_spectrum with the
     same region and populations, one after the other): goals series <= 1.3 x that sum and a parallel speed-up
-    >= 1.8 on 2 cores (wall-clock time);
+    >= 1.8 on 2 cores (wall-clock time; the three are run in turn SERIES_ROUNDS times and the best of each compared);
 (c) the global fit of that series (dH, dS and shifts linear in T, with the demo calibration) from (b)'s
     two-step result: residual and Jacobian evaluations, wall time with one worker and one per core, speed-up
     (the dense trust-region solve, an SVD of the 55 600 x 96 Jacobian per step, runs in this process).
@@ -230,6 +230,40 @@ def single_fits_of_series(series_file: Path) -> tuple[float, float]:
     return time.perf_counter() - t0, cpu_seconds() - c0
 
 
+def compute_task(repeats: int = 40) -> float:
+    """Wall time (s) of a fixed task of pure computation on one BLAS thread (eigendecompositions of a complex
+    120 x 120 matrix): the machine's own yardstick for (b)'s speed-up."""
+    rng = np.random.default_rng(0)
+    matrix = rng.standard_normal((120, 120)) + 1j * rng.standard_normal((120, 120))
+    with single_threaded_blas():
+        t0 = time.perf_counter()
+        for _ in range(repeats):
+            np.linalg.eig(matrix)
+        return time.perf_counter() - t0
+
+
+def machine_speed_up(cores: int) -> tuple[float, float]:
+    """Wall time (s) of `cores` compute tasks one after the other and all at once in `cores` processes: the
+    speed-up this machine gives to work with no serial part at all, the ceiling of (b)'s."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(cores) as pool:
+        list(pool.map(compute_task, [2] * cores))  # the processes started
+        t0 = time.perf_counter()
+        for _ in range(cores):
+            compute_task()
+        serial = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        list(pool.map(compute_task, [40] * cores))
+        return serial, time.perf_counter() - t0
+
+
+SERIES_ROUNDS = 3
+"""(b) runs the single fits, one worker and one per core in turn this many times and compares the best of each:
+the shared machine's speed swings by up to 1.5x from one run to the next (CPU time too), the best is the run
+least slowed by others."""
+
+
 def series_fits(folder: Path, cores: int):
     """(b): the demo series as `dnmr fit` runs it, with one worker and with `cores`; returns its two-step result."""
     from dnmr.fitting.globalresult import TWO_STEP_FOLDER
@@ -237,20 +271,30 @@ def series_fits(folder: Path, cores: int):
 
     series = demo_series(folder)
     print(f"(b) demo series as dnmr fit runs it (fits, figures, results, report.html), 1 and {cores} workers, against "
-          f"the sum of its single fits (wall time); {load()}")
-    singles, singles_cpu = single_fits_of_series(series)
-    times, result = {}, None
+          f"the sum of its single fits (wall time), best of {SERIES_ROUNDS} rounds taken in turn; {load()}")
+    best: dict = {}
+    for round_ in range(SERIES_ROUNDS):
+        runs = {"singles": single_fits_of_series(series)}
+        runs["machine serial"], runs["machine parallel"] = ((t,) for t in machine_speed_up(cores))
+        for workers in (1, cores):
+            t0, c0 = time.perf_counter(), cpu_seconds()
+            job = run_fit(series, folder / f"out{workers}-{round_}" / TWO_STEP_FOLDER, workers=workers, progress=False)
+            runs[workers] = (time.perf_counter() - t0, cpu_seconds() - c0)
+        print(f"  round {round_ + 1}: single fits {runs['singles'][0]:.1f} s, 1 worker {runs[1][0]:.1f} s, "
+              f"{cores} workers {runs[cores][0]:.1f} s (wall); the machine's speed-up of pure computation "
+              f"{runs['machine serial'][0] / runs['machine parallel'][0]:.2f}")
+        best = {key: min(best.get(key, value), value) for key, value in runs.items()}
+    (singles, singles_cpu), result = best["singles"], job.fit
+    fitted = sum(o.fitted for o in result.outcomes)
     for workers in (1, cores):
-        t0, c0 = time.perf_counter(), cpu_seconds()
-        job = run_fit(series, folder / f"out{workers}" / TWO_STEP_FOLDER, workers=workers, progress=False)
-        times[workers], cpu = time.perf_counter() - t0, cpu_seconds() - c0
-        result = job.fit
-        fitted = sum(o.fitted for o in result.outcomes)
-        print(f"  {workers} worker(s): {times[workers]:6.1f} s wall, {times[workers] / singles:.2f} x the single fits' "
-              f"{singles:.1f} s ({singles / len(result.outcomes):.2f} s per spectrum; goal <= 1.3 x); CPU {cpu:.1f} s, "
-              f"{cpu / singles_cpu:.2f} x their {singles_cpu:.1f} s; {fitted} of {len(result.outcomes)} fitted, "
-              f"report {'written' if job.report_file else job.report_problem}")
-    print(f"  speed-up {times[1] / times[cores]:.2f} (goal >= 1.8 on 2 cores; {cores} cores here); {load()}")
+        wall, cpu = best[workers]
+        print(f"  {workers} worker(s): {wall:6.1f} s wall, {wall / singles:.2f} x the single fits' {singles:.1f} s "
+              f"({singles / len(result.outcomes):.2f} s per spectrum; goal <= 1.3 x); CPU {cpu:.1f} s, "
+              f"{cpu / singles_cpu:.2f} x their {singles_cpu:.1f} s")
+    print(f"  {fitted} of {len(result.outcomes)} fitted, report {'written' if job.report_file else job.report_problem}")
+    machine = best["machine serial"][0] / best["machine parallel"][0]
+    print(f"  speed-up {best[1][0] / best[cores][0]:.2f} (goal >= 1.8 on 2 cores; {cores} cores here; the machine's "
+          f"own for pure computation, best times, {machine:.2f}); {load()}")
     return series, result
 
 
