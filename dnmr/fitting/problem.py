@@ -293,17 +293,13 @@ class FitProblem:
         a constraint), exact: the lineshape's derivatives from :func:`dnmr.engine.derivatives.lineshape_derivatives`
         (one combination of directions per free parameter, ties followed by the chain rule), the nuisance
         terms' own (:func:`nuisance_column`).  Zero for values the model refuses (the residual is constant there)."""
-        return self.jacobian_at(params.valuesdict(), *self.ties(params))
-
-    def jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]], free: Sequence[str]
-                    ) -> np.ndarray:
-        """:meth:`jacobian` at the values of every parameter, with the ties and free parameters of :meth:`ties`."""
-        return self.residual_and_jacobian_at(values, ties, free)[1]
+        return self.residual_and_jacobian_at(params.valuesdict(), *self.ties(params))[1]
 
     def residual_and_jacobian_at(self, values: Mapping[str, float], ties: Mapping[str, Mapping[str, float]],
                                  free: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`residual_at` and :meth:`jacobian_at` from the one call that gives the spectrum with its
-        derivatives (no lineshape evaluation of its own)."""
+        """:meth:`residual_at` and :meth:`jacobian` at the values of every parameter, with the ties and free
+        parameters of :meth:`ties`, from the one call that gives the spectrum with its derivatives (no lineshape
+        evaluation of its own)."""
         shape_of = self._lineshape_directions(values)
         shape_of["offset_hz"] = (("frequency",), -1.0)
         along: dict[str, dict[tuple, float]] = {}
