@@ -41,7 +41,8 @@ import scipy.linalg as sla
 
 from dnmr.engine.blocks import block_liouvillian, block_pattern, block_start, check_memory
 from dnmr.engine.liouville import largest_block_size
-from dnmr.engine.resolvent import TWO_PI, eigen_basis, shifted_triangular_solve, takes_krylov_route
+from dnmr.engine.eigenlines import eigen_basis
+from dnmr.engine.resolvent import TWO_PI, shifted_triangular_solve, takes_krylov_route
 from dnmr.engine.spinsystems import filled_layouts
 from dnmr.model import Model
 from dnmr.modelparts import parse_coupling_key
@@ -267,8 +268,7 @@ class _PoleSums:
             self.spectrum += value
             self.slopes += slopes
             return
-        lam, V, V_inv = basis
-        u, w = detect @ V, V_inv @ start
+        lam, V, V_inv, u, w = basis
         gap = lam[None, :] - lam[:, None]  # lambda_l - lambda_k
         width = np.maximum(np.abs(lam.real)[:, None], np.abs(lam.real)[None, :])
         close = np.abs(gap) <= SPLIT_SEPARATION * width

@@ -2,9 +2,9 @@
 
 Three exact routes, chosen per block; each only moves rounding error:
 
-- **eigen**: L = V diag(lambda) V^-1 makes S a sum of complex Lorentzians (cheap on any grid).  L is not
-  normal and can be defective (two equally populated sites at k = pi dnu give a double eigenvalue), so
-  the route is refused when V is ill-conditioned or the line amplitudes cancel.
+- **eigen** (:mod:`dnmr.engine.eigenlines`): L = V diag(lambda) V^-1 makes S a sum of complex Lorentzians
+  (cheap on any grid).  L is not normal and can be defective (two equally populated sites at k = pi dnu give
+  a double eigenvalue), so the route is refused when V is ill-conditioned or the line amplitudes cancel.
 - **Schur**: L = Q T Q^H; S by triangular solves at every frequency.  Backward stable; used where the
   eigen route is refused.
 - **Krylov** (large blocks): detailed balance makes D^-1 L D complex symmetric for D = diag(sqrt p), and
@@ -26,15 +26,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg as sla
 from scipy import sparse
-from scipy.linalg.lapack import zgeev as _zgeev
-from scipy.linalg.lapack import zgetrf as _zgetrf
-from scipy.linalg.lapack import zgetri as _zgetri
 
 from dnmr.engine.convergence import CONVERGED, CONVERGENCE_STEPS, ConvergenceWatch, rescale, rescaling_interval
+from dnmr.engine.eigenlines import eigen_lines
 
 TWO_PI = 2.0 * np.pi
-#: Largest condition number of an eigenvector basis that is trusted (rounding error ~ 1e-16 x this).
-EIGENBASIS_CONDITION_LIMIT = 1e6
 #: Lines below this fraction of the tallest peak and of the largest area are dropped (bounds the error).
 LINE_HEIGHT_CUTOFF = 1e-15
 #: Blocks at least this large go the Krylov route (below it a dense eigendecomposition is as quick).
@@ -203,12 +199,20 @@ class LineshapeTerms:
             out += block.evaluate(omega)
         return out
 
-    def absorption(self, hz: np.ndarray) -> np.ndarray:
-        """Absorption Re S at frequencies `hz` (Hz), in real arithmetic (about twice as fast as `evaluate`)."""
-        omega = TWO_PI * np.asarray(hz, dtype=float)
-        out = _sum_of_absorption_lines(omega, self.poles, self.amplitudes)
-        for block in self.direct:
-            out += block.evaluate(omega).real
+    def absorption(self, hz: np.ndarray, *, hz_per_unit: float = 1.0) -> np.ndarray:
+        """Absorption Re S at frequencies `hz` (Hz), in real arithmetic (about twice as fast as `evaluate`).
+
+        With `hz_per_unit`, `hz` is an axis in other units: ppm, with the spectrometer frequency (MHz) as the Hz
+        per ppm, which spares multiplying the axis out.
+        """
+        axis = np.asarray(hz, dtype=float)
+        scale = TWO_PI * hz_per_unit
+        # c / (i omega - lambda) = (c / scale) / (i x - lambda / scale) for omega = scale x: the lines on the axis
+        out = _sum_of_absorption_lines(axis, self.poles / scale, self.amplitudes / scale)
+        if self.direct:
+            omega = scale * axis
+            for block in self.direct:
+                out += block.evaluate(omega).real
         return out
 
     def integral(self) -> float:
@@ -234,19 +238,23 @@ def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.nda
 
 
 def _sum_of_absorption_lines(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
-    """Re sum_k c_k / (i omega - lambda_k) = sum_k (Re c a + Im c d) / (a^2 + d^2), a = -Re lambda, d = omega - Im lambda."""
-    out = np.zeros(omega.shape)
-    d = np.empty_like(out)
+    """Re sum_k c_k / (i omega - lambda_k) = sum_k (Re c a + Im c d) / (a^2 + d^2), a = -Re lambda, d = omega - Im lambda
+    (the first line written straight into the sum)."""
+    out = np.empty(omega.shape) if poles.size else np.zeros(omega.shape)
+    d = out
     den = np.empty_like(out)
     for c, lam in zip(amplitudes.tolist(), poles.tolist()):
         a = -lam.real
         np.subtract(omega, lam.imag, out=d)
-        np.multiply(d, d, out=den)
+        np.square(d, out=den)
         den += a * a
         d *= c.imag
         d += c.real * a
         d /= den
-        out += d
+        if d is out:
+            d = np.empty_like(out)
+        else:
+            out += d
     return out
 
 
@@ -258,38 +266,6 @@ def shifted_triangular_solve(T: np.ndarray, rhs: np.ndarray, z: np.ndarray) -> n
     for i in range(n - 1, -1, -1):
         x[i] = (rhs[i] + T[i, i + 1:] @ x[i + 1:]) / (z - T[i, i])
     return x
-
-
-def eigen_basis(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
-    """Eigenvalues lambda, eigenvectors V and V^-1 of a block, or None where the eigen route is refused.
-
-    The test is the 1-norm condition number of the eigenvector matrix V (rounding error in the
-    amplitudes grows like 1e-16 times it) and, for near-defective blocks, the size of the line amplitudes
-    (detect V)_k (V^-1 start)_k against their sum (large terms that cancel).
-    """
-    work = 66 * len(L)  # room for LAPACK's blocked algorithms (the wrappers' minimum is unblocked and slow)
-    lam, _, V, info = _zgeev(L, compute_vl=0, compute_vr=1, lwork=work)
-    if info != 0:
-        return None
-    lu, piv, info = _zgetrf(V)
-    if info != 0:
-        return None  # singular eigenvector matrix: defective
-    V_inv, info = _zgetri(lu, piv, lwork=work)
-    condition = np.abs(V).sum(axis=0).max() * np.abs(V_inv).sum(axis=0).max()
-    if not condition < EIGENBASIS_CONDITION_LIMIT:
-        return None
-    if np.abs((detect @ V) * (V_inv @ start)).sum() > EIGENBASIS_CONDITION_LIMIT * abs(detect @ start):
-        return None  # near-defective: large amplitudes that cancel
-    return lam, V, V_inv
-
-
-def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
-    """Poles and amplitudes from an eigendecomposition (:func:`eigen_basis`), or None where it is refused."""
-    basis = eigen_basis(L, detect, start)
-    if basis is None:
-        return None
-    lam, V, V_inv = basis
-    return lam, (detect @ V) * (V_inv @ start)
 
 
 def schur_block(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> SchurBlock:
@@ -528,6 +504,8 @@ def prune(poles: np.ndarray, amplitudes: np.ndarray) -> tuple[np.ndarray, np.nda
     if amplitudes.size == 0:
         return poles, amplitudes
     area = np.abs(amplitudes)
+    if np.minimum.reduce(area) > LINE_HEIGHT_CUTOFF * np.maximum.reduce(area):
+        return poles, amplitudes  # every line's area alone keeps it
     height = area / np.maximum(-poles.real, 1e-300)
     keep = (height > LINE_HEIGHT_CUTOFF * height.max()) | (area > LINE_HEIGHT_CUTOFF * area.max())
     return poles[keep], amplitudes[keep]
@@ -552,8 +530,12 @@ def block_terms(L, detect: np.ndarray, start: np.ndarray, weights: np.ndarray, o
         fraction = krylov_block(L, detect, start, weights, omega)
         if fraction is not None:
             return "direct", fraction
-    if sparse.issparse(L):
-        L = L.toarray()
+    return dense_block_terms(L.toarray() if sparse.issparse(L) else L, detect, start)
+
+
+def dense_block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
+    """One block by the dense routes (:func:`block_terms` without the Krylov route): ('lines', (poles,
+    amplitudes)) where the eigenbasis is safe, else ('direct', :class:`SchurBlock`)."""
     lines = eigen_lines(L, detect, start)
     if lines is None:
         return "direct", schur_block(L, detect, start)
@@ -576,7 +558,9 @@ def combine(blocks) -> LineshapeTerms:
             steps = len(value.alpha)
             early = f" of {value.size} (converged on the grid)" if steps < value.size else ""
             routes.append(f"Krylov continued fraction, {steps}{early} Lanczos steps")
-    if poles:
+    if len(poles) == 1:
+        p, a = prune(poles[0], amps[0])
+    elif poles:
         p, a = prune(np.concatenate(poles), np.concatenate(amps))
     else:
         p, a = np.zeros(0, complex), np.zeros(0, complex)
