@@ -23,6 +23,7 @@ from __future__ import annotations
 import dataclasses
 import os
 from collections.abc import Callable
+from functools import lru_cache
 
 import numpy as np
 from scipy import sparse
@@ -39,7 +40,7 @@ from dnmr.errors import InputError
 from dnmr.model import Model
 from dnmr.engine import resolvent
 from dnmr.engine.resolvent import TWO_PI, LineshapeTerms, block_terms, combine
-from dnmr.engine.spinsystems import SpinParameters, largest_block_bound, spin_systems  # a model as independent spin systems
+from dnmr.engine.spinsystems import SpinParameters, largest_block_bound, remembered, spin_systems  # a model as independent spin systems
 
 
 # --- assembling the Liouvillian -------------------------------------------------------------------
@@ -107,13 +108,7 @@ _PATTERNS: dict = {}
 
 def block_pattern(block: CoherenceBlock, topology: tuple) -> BlockPattern:
     """The cached :class:`BlockPattern` of `block` for a topology (kept for the 64 most recent)."""
-    key = (block, topology)
-    pattern = _PATTERNS.get(key)
-    if pattern is None:
-        if len(_PATTERNS) >= 64:
-            _PATTERNS.pop(next(iter(_PATTERNS)))
-        pattern = _PATTERNS[key] = BlockPattern.build(block, topology)
-    return pattern
+    return remembered(_PATTERNS, (block, topology), lambda: BlockPattern.build(block, topology))
 
 
 def _block_elements(pattern: BlockPattern, params: SpinParameters):
@@ -242,6 +237,11 @@ def _size_text(size: int) -> str:
 
 # --- frequency grid --------------------------------------------------------------------------
 
+#: The most points :func:`default_points` gives.
+MAX_DEFAULT_POINTS = 131072
+_EPS = np.finfo(float).eps
+
+
 def default_window_ppm(model: Model) -> tuple[float, float]:
     """A window (ppm, low to high) that holds every line of every state with a margin."""
     shifts = model.shifts_hz()
@@ -257,14 +257,27 @@ def default_points(model: Model, window_ppm: tuple[float, float]) -> int:
     """Enough points for about 8 per intrinsic linewidth of the narrowest state (4096 to 131072)."""
     span_hz = abs(window_ppm[1] - window_ppm[0]) * model.spectrometer.frequency_mhz
     needed = span_hz / (model.linewidths_hz().min() / 8.0)
-    return int(min(131072, max(4096, 2 ** np.ceil(np.log2(needed)))))
+    return int(min(MAX_DEFAULT_POINTS, max(4096, 2 ** np.ceil(np.log2(needed)))))
 
 
 def frequency_grid_ppm(model: Model, window_ppm=None, points: int | None = None) -> np.ndarray:
-    """The ppm grid (ascending) of a simulation: the model's window and points unless given here."""
+    """The ppm grid (ascending, no point repeated) of a simulation: the model's window and points unless given
+    here."""
     window = window_ppm or model.window_ppm or default_window_ppm(model)
     lo, hi = sorted(float(v) for v in window)
     n = int(points or model.points or default_points(model, (lo, hi)))
-    grid = lo + ((hi - lo) / (n - 1)) * np.arange(n)
+    step = (hi - lo) / (n - 1)
+    grid = (_counts(n) if n <= MAX_DEFAULT_POINTS else np.arange(n, dtype=float)) * step
+    grid += lo
     grid[-1] = hi
-    return grid
+    # every point lies within about eps max(|lo|, |hi|) of lo + step i (n << 1/eps), so neighbours differ where the
+    # step is several times that; a window narrower than rounding resolves keeps its distinct points
+    return grid if step > 4.0 * _EPS * max(abs(lo), abs(hi)) else np.unique(grid)
+
+
+@lru_cache(maxsize=4)
+def _counts(n: int) -> np.ndarray:
+    """0, 1, ..., n - 1 as floats (read-only), shared by every grid of n points."""
+    counts = np.arange(n, dtype=float)
+    counts.flags.writeable = False
+    return counts

@@ -20,7 +20,7 @@ particles.  Frequencies are in Hz; the engine multiplies by -i 2 pi.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import lru_cache
+from functools import cached_property, lru_cache
 from itertools import combinations
 
 import numpy as np
@@ -52,12 +52,12 @@ class CoherenceBlock:
         if self.levels is None:
             object.__setattr__(self, "levels", (2,) * self.n_spins)
 
-    @property
+    @cached_property
     def size(self) -> int:
         """Number of coherences in the block (per state)."""
         return len(self.r_states) * len(self.s_states)
 
-    @property
+    @cached_property
     def dimension(self) -> int:
         """Dimension of the particles' Hilbert space, prod(2 S_i + 1) (2^N for N spins-1/2)."""
         return int(np.prod(self.levels, dtype=np.int64))

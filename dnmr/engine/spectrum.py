@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from dnmr.engine.blocks import frequency_grid_ppm, lineshape_terms
+from dnmr.engine.prepared import small_model_terms
 from dnmr.engine.resolvent import LineshapeTerms
 from dnmr.model import Model
 from dnmr.notebook import NotebookView
@@ -117,14 +118,19 @@ def simulate(
     Spectrum
         Absorption per Hz on an ascending ppm axis (dispersion on request, ``.dispersion``).
     """
-    grid = np.asarray(ppm, dtype=float) if ppm is not None else frequency_grid_ppm(model, window_ppm, points)
+    if ppm is None:
+        grid = frequency_grid_ppm(model, window_ppm, points)
+    else:
+        grid = np.asarray(ppm, dtype=float)
+        if grid.size > 1 and grid[0] > grid[-1]:
+            grid = grid[::-1]
+        if np.any(grid[1:] <= grid[:-1]):
+            grid = np.unique(grid)
     sf = model.spectrometer.frequency_mhz
-    if grid.size > 1 and grid[0] > grid[-1]:
-        grid = grid[::-1]
-    if np.any(grid[1:] <= grid[:-1]):
-        grid = np.unique(grid)
-    terms = lineshape_terms(model, progress, grid * sf)  # exact on this grid (which `dispersion` uses too)
-    return Spectrum(grid, terms.absorption(grid * sf), sf, model.title, terms)
+    terms = small_model_terms(model, progress)
+    if terms is None:
+        terms = lineshape_terms(model, progress, grid * sf)  # exact on this grid (which `dispersion` uses too)
+    return Spectrum(grid, terms.absorption(grid, hz_per_unit=sf), sf, model.title, terms)
 
 
 def simulate_over(

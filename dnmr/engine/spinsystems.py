@@ -35,11 +35,12 @@ it), so the engine's symmetric (Krylov) route applies unchanged.
 """
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Hashable, Iterator, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 from itertools import combinations, product
 from math import comb
+from typing import TypeVar
 
 import numpy as np
 
@@ -47,6 +48,8 @@ from dnmr.kinetics import Jump
 from dnmr.engine.liouville import CoherenceBlock, coherence_blocks, largest_block_size
 from dnmr.model import Model
 from dnmr.nuclei import nucleus
+
+T = TypeVar("T")
 
 
 @dataclass(frozen=True)
@@ -312,11 +315,24 @@ def _pair_indices(n: int) -> tuple[np.ndarray, np.ndarray]:
     return pairs[:, 0], pairs[:, 1]
 
 
-def _structure(model: Model, couplings: np.ndarray, jumps: list[Jump]) -> tuple:
-    """Everything the layouts depend on: spins, groups, heteronuclei, where couplings vanish, jumps."""
+def structure_key(model: Model, couplings: np.ndarray, jumps: Sequence[Jump]) -> tuple:
+    """Everything the layouts depend on, as a key of caches: spins, groups, heteronuclei, where couplings vanish
+    (`couplings` as :func:`coupling_array` gives them), jumps (`model.jumps()`) without their rates."""
     return (len(model.states), tuple(model.all_spins), tuple(model.groups.items()),
-            tuple(model.heteronuclei.items()), np.packbits(couplings != 0).tobytes(),
+            tuple(model.heteronuclei.items()), (couplings != 0).tobytes(),
             tuple((j.source, j.target, j.permutation) for j in jumps))
+
+
+def remembered(store: dict, key: Hashable, make: Callable[[], T], keep: int = 64) -> T:
+    """`store[key]`, made by `make()` the first time; `store` keeps the `keep` most recently made (the index work
+    of a structure, done once for every model of that structure)."""
+    try:
+        return store[key]
+    except KeyError:
+        if len(store) >= keep:
+            store.pop(next(iter(store)))
+        made = store[key] = make()
+        return made
 
 
 _LAYOUTS: dict = {}
@@ -324,17 +340,11 @@ _LAYOUTS: dict = {}
 
 def system_layouts(model: Model, couplings: np.ndarray, jumps: list[Jump]) -> tuple[SystemLayout, ...]:
     """The layouts of the independent spin systems of `model` (cached for the 64 most recent structures)."""
-    key = _structure(model, couplings, jumps)
-    layouts = _LAYOUTS.get(key)
-    if layouts is None:
-        if len(_LAYOUTS) >= 64:
-            _LAYOUTS.pop(next(iter(_LAYOUTS)))
-        layouts = _LAYOUTS[key] = tuple(
-            SystemLayout.build(len(model.all_spins), cluster, labels, nodes, jumps)
-            for cluster in clusters(model, couplings, jumps)
-            for labels in [cluster_labels(model, cluster, couplings, jumps)]
-            for nodes in connected_configurations(len(model.states), labels, jumps))
-    return layouts
+    return remembered(_LAYOUTS, structure_key(model, couplings, jumps), lambda: tuple(
+        SystemLayout.build(len(model.all_spins), cluster, labels, nodes, jumps)
+        for cluster in clusters(model, couplings, jumps)
+        for labels in [cluster_labels(model, cluster, couplings, jumps)]
+        for nodes in connected_configurations(len(model.states), labels, jumps)))
 
 
 def spin_systems(model: Model) -> list[SpinParameters]:
