@@ -207,8 +207,7 @@ class LineshapeTerms:
         """
         axis = np.asarray(hz, dtype=float)
         scale = TWO_PI * hz_per_unit
-        # c / (i omega - lambda) = (c / scale) / (i x - lambda / scale) for omega = scale x: the lines on the axis
-        out = _sum_of_absorption_lines(axis, self.poles / scale, self.amplitudes / scale)
+        out = _sum_of_absorption_lines(axis, self.poles, self.amplitudes, scale)
         if self.direct:
             omega = scale * axis
             for block in self.direct:
@@ -237,15 +236,17 @@ def _sum_of_lorentzians(omega: np.ndarray, poles: np.ndarray, amplitudes: np.nda
     return out
 
 
-def _sum_of_absorption_lines(omega: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray) -> np.ndarray:
-    """Re sum_k c_k / (i omega - lambda_k) = sum_k (Re c a + Im c d) / (a^2 + d^2), a = -Re lambda, d = omega - Im lambda
-    (the first line written straight into the sum)."""
-    out = np.empty(omega.shape) if poles.size else np.zeros(omega.shape)
+def _sum_of_absorption_lines(axis: np.ndarray, poles: np.ndarray, amplitudes: np.ndarray, scale: float) -> np.ndarray:
+    """Re sum_k c_k / (i omega - lambda_k) at omega = scale x: with c / (i omega - lambda) = (c / scale) / (i x -
+    lambda / scale), sum_k (Re c a + Im c d) / (a^2 + d^2) for the scaled c and lambda, a = -Re lambda,
+    d = x - Im lambda (the first line written straight into the sum)."""
+    out = np.empty(axis.shape) if poles.size else np.zeros(axis.shape)
     d = out
     den = np.empty_like(out)
     for c, lam in zip(amplitudes.tolist(), poles.tolist()):
+        c, lam = c / scale, lam / scale
         a = -lam.real
-        np.subtract(omega, lam.imag, out=d)
+        np.subtract(axis, lam.imag, out=d)
         np.square(d, out=den)
         den += a * a
         d *= c.imag
