@@ -7,8 +7,9 @@ refused where the eigenvector matrix is ill-conditioned or the line amplitudes c
 (:func:`trusted_eigenbasis`); :mod:`dnmr.engine.resolvent` then takes the Schur route.
 
 Blocks of one or two coherences (a single spin exchanging between two sites, an AB pair in one state, an
-uncoupled spin without exchange) are decomposed in closed form, in complex scalars, which costs a few
-microseconds instead of the tens that LAPACK calls and array checks cost on a 2 x 2 matrix.  For
+uncoupled spin without exchange) can be decomposed in closed form, in complex scalars, which costs a few
+microseconds instead of the tens that LAPACK calls and array checks cost on a 2 x 2 matrix (a simulation of a
+small model does so: :func:`eigen_lines`).  For
 L = [[a, b], [c, d]] with mean m = (a + d) / 2, half difference h = (a - d) / 2 and s = sqrt(h^2 + b c), the
 eigenvalues are m + s and m - s (their difference free of the large common m), with eigenvectors (r, c)
 and (b, -r), r = s + h: indeed (L - m - s) (r, c) = ((h - s) r + b c, c r - (h + s) c) = (h^2 - s^2 + b c, 0)
@@ -59,10 +60,16 @@ def eigen_basis(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
     return lam, V, V_inv, u, w
 
 
-def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
-    """Poles (rad/s) and amplitudes of a block's lines (:func:`eigen_basis`; in closed form for a block of one
-    or two coherences, :func:`small_block_lines`), or None where the eigen route is refused."""
-    if len(L) <= 2:
+def eigen_lines(L: np.ndarray, detect: np.ndarray, start: np.ndarray, *,
+                closed_form: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
+    """Poles (rad/s) and amplitudes of a block's lines (:func:`eigen_basis`), or None where the eigen route is
+    refused; with `closed_form`, a block of one or two coherences by :func:`small_block_lines`.
+
+    The two differ by rounding error only, but a fit compares spectra with those its exact derivatives give,
+    which come from :func:`eigen_basis`, and near the fast-exchange limit that rounding error (about eps k of
+    the narrow line's width) moves its path: fits keep to one decomposition, and only a simulation, which
+    stands alone, asks for the closed form."""
+    if closed_form and len(L) <= 2:
         return small_block_lines(L, detect, start)
     basis = eigen_basis(L, detect, start)
     if basis is None:

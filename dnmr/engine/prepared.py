@@ -31,9 +31,10 @@ from dnmr.model import Model
 from dnmr.modelparts import LIMITS
 
 #: Largest block (coherences over all the states of its spin system) of a model that :func:`dnmr.simulate`
-#: evaluates through its prepared structure (two or three sites of an uncoupled spin, an AB pair in two states).
-#: Preparing costs about a millisecond the first time a structure is met (16 coherences: a few); larger blocks
-#: spend their time in the decomposition, where preparing saves little.
+#: evaluates through its prepared structure (two or three sites of an uncoupled spin, an AB pair in two states,
+#: three coupled spins).  Preparing costs the first simulation of a structure 2 to 6 ms more (measured on an AB
+#: pair in two states and on three spins), and saves about a third of every later one; larger blocks spend
+#: their time in the decomposition, where preparing saves little.
 SMALL_BLOCK_SIZE = 16
 
 
@@ -121,14 +122,15 @@ class PreparedStructure:
                     elements = L
                 yield block, elements.reshape(n, n), start
 
-    def terms(self, x: np.ndarray, populations: np.ndarray,
-              progress: Callable[[int, int], None] | None = None) -> LineshapeTerms:
+    def terms(self, x: np.ndarray, populations: np.ndarray, progress: Callable[[int, int], None] | None = None,
+              *, closed_form: bool = False) -> LineshapeTerms:
         """The decomposition of the spectrum at the numbers `x` (:meth:`vector`) and the states' `populations`, as
-        :func:`dnmr.engine.blocks.lineshape_terms` gives it for the model with those numbers (`progress` as there)."""
+        :func:`dnmr.engine.blocks.lineshape_terms` gives it for the model with those numbers (`progress` as there;
+        `closed_form` as in :func:`~dnmr.engine.eigenlines.eigen_lines`)."""
         carried = list(self.liouvillians(x, populations))
         results, done, total = [], 0, sum(len(start) for _, _, start in carried)
         for block, L, start in carried:
-            results.append(dense_block_terms(L, block.pattern.detect, start))
+            results.append(dense_block_terms(L, block.pattern.detect, start, closed_form=closed_form))
             done += len(start)
             if progress is not None:
                 progress(done, total)
@@ -144,9 +146,10 @@ _STRUCTURES: dict = {}
 
 
 def prepared_structure(model: Model, couplings: np.ndarray, jumps: Sequence[Jump]) -> PreparedStructure | None:
-    """:meth:`PreparedStructure.build` of `model`'s structure, kept for the 64 most recent structures."""
+    """:meth:`PreparedStructure.build` of `model`'s structure, kept for the 8 most recent structures (a structure of
+    blocks near the Krylov size holds megabytes)."""
     return remembered(_STRUCTURES, structure_key(model, couplings, jumps),
-                      lambda: PreparedStructure.build(model, couplings, jumps))
+                      lambda: PreparedStructure.build(model, couplings, jumps), keep=8)
 
 
 _SMALL: dict = {}
@@ -157,7 +160,8 @@ def small_model_terms(model: Model, progress: Callable[[int, int], None] | None 
     :data:`SMALL_BLOCK_SIZE` coherences, else None (:func:`dnmr.engine.blocks.lineshape_terms` is then the route).
 
     The same terms as :func:`~dnmr.engine.blocks.lineshape_terms` to rounding error, with `progress` as there; for
-    a structure met before, the cost is the model's numbers gathered into one vector and the blocks' decompositions.
+    a structure met before, the cost is the model's numbers gathered into one vector and the blocks' decompositions
+    (blocks of one or two coherences in closed form: :func:`~dnmr.engine.eigenlines.small_block_lines`).
     """
     couplings, jumps = coupling_array(model), model.jumps()
 
@@ -171,7 +175,7 @@ def small_model_terms(model: Model, progress: Callable[[int, int], None] | None 
     if structure is None:
         return None
     x = structure.vector(model.shifts_hz(), couplings, model.linewidths_hz(), [j.rate_per_s for j in jumps])
-    return structure.terms(x, model.populations(), progress)
+    return structure.terms(x, model.populations(), progress, closed_form=True)
 
 
 class PreparedModel:

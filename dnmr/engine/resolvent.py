@@ -534,10 +534,11 @@ def block_terms(L, detect: np.ndarray, start: np.ndarray, weights: np.ndarray, o
     return dense_block_terms(L.toarray() if sparse.issparse(L) else L, detect, start)
 
 
-def dense_block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray):
+def dense_block_terms(L: np.ndarray, detect: np.ndarray, start: np.ndarray, *, closed_form: bool = False):
     """One block by the dense routes (:func:`block_terms` without the Krylov route): ('lines', (poles,
-    amplitudes)) where the eigenbasis is safe, else ('direct', :class:`SchurBlock`)."""
-    lines = eigen_lines(L, detect, start)
+    amplitudes)) where the eigenbasis is safe, else ('direct', :class:`SchurBlock`); `closed_form` as in
+    :func:`~dnmr.engine.eigenlines.eigen_lines`."""
+    lines = eigen_lines(L, detect, start, closed_form=closed_form)
     if lines is None:
         return "direct", schur_block(L, detect, start)
     return "lines", lines
