@@ -43,11 +43,9 @@ KRYLOV_MIN_SIZE = 80
 SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
-#: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate (a
-#: safety net: since the estimate's rounding term grows with the vectors' lengths it no longer needs it, but
-#: it was what first kept a seven-spin block of 735 exact, where one vector reached 109 and the estimate,
-#: taking unit lengths, ran up to 800x behind the true loss).  At 50 it adds 9 % to the passes over the
-#: basis on seven spins and 2 % on eight (30: 17 % and 19 %).
+#: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate: a safety
+#: net since the estimate's rounding term grows with the vectors' lengths (it first kept a seven-spin block of
+#: 735 exact, where one vector reached 109).  At 50 it adds 9 % to the passes on seven spins, 2 % on eight.
 NEAR_BREAKDOWN = 50.0
 #: Blocks at least this large stop the Lanczos recursion once its continued fraction has converged on the
 #: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than
@@ -385,6 +383,7 @@ def _numpy_lanczos(operator, q0: np.ndarray, noise: np.ndarray, exhausted: float
     omega[0] = 1.0
     lengths = np.ones(n)  # Euclidean lengths of the q_k (at least 1, since q_k^T q_k = 1)
     lengths[0] = np.sqrt(np.vdot(q0, q0).real)
+    weighted = noise * lengths  # rounding terms times the lengths of the q_k, kept up to date
     carry = None  # the second step's share of the last re-orthogonalisation (see :func:`project_pair`)
     for j in range(n):
         w = operator @ Q[j]
@@ -400,7 +399,7 @@ def _numpy_lanczos(operator, q0: np.ndarray, noise: np.ndarray, exhausted: float
             w += beta[j - 1] * carry
         length2 = np.vdot(w, w).real
         b = np.sqrt(w @ w)
-        rounding = noise[: j + 1] * lengths[: j + 1] * max(lengths[j], lengths[max(j - 1, 0)])
+        rounding = weighted[: j + 1] * max(lengths[j], lengths[max(j - 1, 0)])
         estimate = next_orthogonality(omega, omega_prev, alpha, beta, j, b, rounding)
         if carry is not None:
             estimate[: j + 1] = rounding / max(abs(b), 1e-300)
@@ -423,6 +422,7 @@ def _numpy_lanczos(operator, q0: np.ndarray, noise: np.ndarray, exhausted: float
         beta[j] = b
         Q[j + 1] = w / b
         lengths[j + 1] = np.sqrt(length2) / abs(b)
+        weighted[j + 1] = noise[j + 1] * lengths[j + 1]
         omega_prev, omega = omega, estimate
     return alpha, beta
 
