@@ -39,11 +39,9 @@ KRYLOV_MIN_SIZE = 80
 SPARSE_MATVEC_SIZE = 128
 #: Largest squared length a Lanczos vector may reach (its growth amplifies rounding error).
 KRYLOV_GROWTH_LIMIT = 1e6
-#: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate: the
-#: estimate's rounding term assumes vectors of unit length (measured on a seven-spin block of 735, where one
-#: vector reached 109: the true loss then ran up to 800x ahead of the estimate and the spectrum off by 4e-7
-#: of the block's peak).  At 50, twice below that, the passes over the basis grow by 9 % on seven spins and
-#: 2 % on eight (30: 17 % and 19 %).
+#: Squared length of a Lanczos vector past which the basis is re-orthogonalised whatever the estimate: a safety
+#: net since the estimate's rounding term grows with the vectors' lengths (it first kept a seven-spin block of
+#: 735 exact, where one vector reached 109).  At 50 it adds 9 % to the passes on seven spins, 2 % on eight.
 NEAR_BREAKDOWN = 50.0
 #: Blocks at least this large stop the Lanczos recursion once its continued fraction has converged on the
 #: simulation's grid (:class:`~dnmr.engine.convergence.ConvergenceWatch`); below it watching costs more than
@@ -306,7 +304,12 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
 
     The loss of orthogonality q_k^T q_j is not measured but estimated by its own three-term recurrence
     (Simon, Math. Comp. 42, 115 (1984), carried from the Hermitian inner product to the bilinear form:
-    the algebra is the same with transposes for conjugate transposes), and the basis is re-orthogonalised
+    the algebra is the same with transposes for conjugate transposes).  Simon's rounding term, one step's
+    error eps ||S|| for vectors of unit length, is scaled by the Euclidean lengths of the vectors involved:
+    in the bilinear form q^T q = 1 leaves ||q|| free (at least 1; up to 15 on seven spins), and a step's
+    rounding error f_j, of size eps ||S|| ||q_j||, moves q_k^T q_(j+1) by up to ||f_j|| ||q_k|| / |beta_j|
+    (with unit lengths assumed, one start in six or eight on seven spins, moved by rounding error only, was
+    off by 4e-7 to 3e-5 of its block's peak).  The basis is re-orthogonalised
     against all earlier vectors only when the estimate passes sqrt(eps) or the next vector grows longer than
     :data:`NEAR_BREAKDOWN` allows, at that step and the next (the
     next step's share found in the same pass over the basis, :func:`project_pair`).  That keeps the basis
@@ -339,15 +342,25 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
     if compiled_kernels() is not None:
         return _compiled_lanczos(sparse.csr_matrix(S, dtype=complex), q0.astype(complex), noise, exhausted,
                                  watched, growth)
-    watch = ConvergenceWatch(watched, growth) if watched.size else None
+    operator = S.tocsr() if sparse.issparse(S) else sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
+    return _numpy_lanczos(operator, q0, noise, exhausted, ConvergenceWatch(watched, growth) if watched.size else None)
+
+
+def _numpy_lanczos(operator, q0: np.ndarray, noise: np.ndarray, exhausted: float,
+                   watch: ConvergenceWatch | None) -> tuple[np.ndarray, np.ndarray] | None:
+    """The recursion of :func:`lanczos` in numpy (one call per vector operation): same arguments, with the
+    symmetrised block as `operator` and the grid's watch (or None), and the same result."""
+    n = len(q0)
     Q = np.zeros((n, n), dtype=complex)
     alpha = np.zeros(n, dtype=complex)
     beta = np.zeros(max(n - 1, 0), dtype=complex)
     Q[0] = q0
-    operator = S.tocsr() if sparse.issparse(S) else sparse.csr_matrix(S) if n >= SPARSE_MATVEC_SIZE else S
     omega = np.zeros(n + 1, dtype=complex)       # estimates of q_j^T q_k, k <= j (omega[j] = 1)
     omega_prev = np.zeros(n + 1, dtype=complex)  # the same for q_(j-1)
     omega[0] = 1.0
+    lengths = np.ones(n)  # Euclidean lengths of the q_k (at least 1, since q_k^T q_k = 1)
+    lengths[0] = np.sqrt(np.vdot(q0, q0).real)
+    weighted = noise * lengths  # rounding terms times the lengths of the q_k, kept up to date
     carry = None  # the second step's share of the last re-orthogonalisation (see :func:`project_pair`)
     for j in range(n):
         w = operator @ Q[j]
@@ -363,9 +376,10 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
             w += beta[j - 1] * carry
         length2 = np.vdot(w, w).real
         b = np.sqrt(w @ w)
-        estimate = next_orthogonality(omega, omega_prev, alpha, beta, j, b, noise)
+        rounding = weighted[: j + 1] * max(lengths[j], lengths[max(j - 1, 0)])
+        estimate = next_orthogonality(omega, omega_prev, alpha, beta, j, b, rounding)
         if carry is not None:
-            estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
+            estimate[: j + 1] = rounding / max(abs(b), 1e-300)
             carry = None
         elif np.abs(estimate[: j + 1]).max() > SEMI_ORTHOGONAL or length2 > NEAR_BREAKDOWN * abs(b) ** 2:
             basis = Q[: j + 1]
@@ -377,13 +391,15 @@ def lanczos(S, g: np.ndarray, omega: np.ndarray | None = None) -> tuple[np.ndarr
                 w -= _projection(basis, w)
                 length2 = np.vdot(w, w).real
             b = np.sqrt(w @ w)
-            estimate[: j + 1] = noise[: j + 1] / max(abs(b), 1e-300)
+            estimate[: j + 1] = rounding / max(abs(b), 1e-300)
         if length2 ** 0.5 <= exhausted:
             return alpha[: j + 1], beta[:j]  # the Krylov space is exhausted: exact with fewer steps
         if abs(b) ** 2 * KRYLOV_GROWTH_LIMIT < length2:
             return None  # serious breakdown: w is nearly isotropic in the bilinear form
         beta[j] = b
         Q[j + 1] = w / b
+        lengths[j + 1] = np.sqrt(length2) / abs(b)
+        weighted[j + 1] = noise[j + 1] * lengths[j + 1]
         omega_prev, omega = omega, estimate
     return alpha, beta
 
@@ -466,7 +482,7 @@ def next_orthogonality(omega: np.ndarray, omega_prev: np.ndarray, alpha: np.ndar
     b : complex
         beta_j, the norm (bilinear form) of the next vector before it is scaled (rad/s).
     noise : ndarray
-        Rounding term of each estimate.
+        Rounding term of each estimate, k <= j (one step's rounding error, scaled by the lengths of q_j and q_k).
     """
     new = np.zeros_like(omega)
     if j:
@@ -474,7 +490,7 @@ def next_orthogonality(omega: np.ndarray, omega_prev: np.ndarray, alpha: np.ndar
         t[1:] += beta[:j - 1] * omega[:j - 1]
         new[:j] = t
     new[: j + 1] += noise[: j + 1]
-    new[: j + 1] /= b if b != 0 else 1e-300
+    new[: j + 1] *= 1.0 / (b if b != 0 else 1e-300)
     new[j + 1] = 1.0
     return new
 
