@@ -374,6 +374,8 @@ def json_ready(obj):
     if isinstance(obj, Mapping):
         return {str(k): json_ready(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
+        if all(type(v) is float for v in obj) and all(map(math.isfinite, obj)):  # a curve: thousands of plain floats
+            return list(obj)
         return [json_ready(v) for v in obj]
     if isinstance(obj, np.ndarray):
         return json_ready(obj.tolist())
