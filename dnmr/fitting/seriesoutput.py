@@ -105,8 +105,9 @@ def rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) -> 
 
 
 def save_and_close(fig, path: Path) -> str:
-    """Save a figure of the results to `path` (replacing an earlier one) and close it; returns the path."""
-    return str(save_figure(fig, path, overwrite=True, close=True))
+    """Save a figure of the results that keeps everything inside its edges (the series figure) to `path`, replacing
+    an earlier one, and close it; returns the path."""
+    return str(save_figure(fig, path, overwrite=True, close=True, inside=True))
 
 
 def rendered_and_closed(fig, path: Path) -> bytes:
