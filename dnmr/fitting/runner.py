@@ -304,19 +304,17 @@ class FitRunner:
         if self.own_pool is not None:
             self.own_pool.shutdown(wait=True, cancel_futures=True)
 
-    def early_figure(self, index: int, stage: str, fit_data: dict) -> bytes | None:
-        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) drawn by a
-        worker while the other fits ran, or None when none was (no workers, a fit reused from an earlier run,
-        drawing failed) or when it shows another fit than `fit_data` (the series changed its rates after)."""
+    def early_figure(self, index: int, stage: str, fit_data: dict) -> futures.Future | None:
+        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) as a worker
+        draws it, queued while the other fits ran (its future: the image file, or an exception when drawing failed),
+        or None when none was (no workers, a fit reused from an earlier run) or when it shows another fit than
+        `fit_data` (the series changed its rates after)."""
         if (index, stage) in self.queued:
             self.flush()
         future = self.figures.pop((index, stage), None)
         if future is None or self.drawn_from.pop((index, stage), None) != _canonical(fit_data):
             return None
-        try:
-            return future.result()
-        except Exception:  # the worker died or drawing failed: the caller draws it again, and says why if it fails
-            return None
+        return future
 
     def _draw_early(self, job: FitJob, record: dict, final: Callable[[int, dict], dict] | None) -> None:
         """Queue the figure of a fit for a worker that no fit needs (off the critical path of the fits): of the
@@ -382,6 +380,19 @@ class FitRunner:
         drawn as the fit comes in shows."""
         return _Stage(self, jobs, label, seeded, final).run()
 
+    def submit(self, function: Callable, *args) -> futures.Future:
+        """Start `function(*args)` in the pool, after the figures still waiting for an idle worker (or run it here:
+        a future already done); its future."""
+        if self.pool is not None:
+            self.flush()
+            return self.pool.submit(in_worker, self.caller, function, *args)
+        future = futures.Future()
+        try:
+            future.set_result(function(*args))
+        except Exception as exc:  # raised where the result is asked for, as from a worker
+            future.set_exception(exc)
+        return future
+
     def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
         """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
         progress bar counts the calls done."""
@@ -398,8 +409,7 @@ class FitRunner:
                 out.append(function(*args))
                 advance()
             return out
-        self.flush()
-        pending = [self.pool.submit(in_worker, self.caller, function, *args) for args in calls]
+        pending = [self.submit(function, *args) for args in calls]
         for _ in futures.as_completed(pending):
             advance()
         return [f.result() for f in pending]
