@@ -326,6 +326,11 @@ def noted_figure(model, fit_data: dict, curves: dict, path: Path):
     return noted(f"figure {path.name}", REAL["fit_figure"], model, fit_data, curves, path)
 
 
+def noted_eyring_figures(eyring, image_format: str):
+    """dnmr.reporting.seriesreport.eyring_figures (the report's Eyring figure), noted."""
+    return noted("figure eyring (report)", REAL["eyring_figures"], eyring, image_format)
+
+
 def wrapped() -> list[tuple]:
     """(module, name, replacement) of every function the timeline notes."""
     from dnmr.fitting import runner, series
@@ -336,7 +341,8 @@ def wrapped() -> list[tuple]:
             (runner.FitRunner, "run", lambda self, jobs, label, *a, **k: noted(label, run, self, jobs, label, *a, **k)),
             (series, "fit_series", lambda *a, **k: noted("fit_series", REAL["fit_series"], *a, **k)),
             (series, "save_and_close", lambda *a, **k: noted("series figure", REAL["save_and_close"], *a, **k)),
-            (report.ReportFigures, "draw", lambda self: noted("report figures", REAL["draw"], self)),
+            (report.ReportFigures, "draw", lambda self, *a: noted("report figures", REAL["draw"], self, *a)),
+            (report, "eyring_figures", noted_eyring_figures),
             (report, "write_report", lambda *a, **k: noted("report.html", REAL["write_report"], *a, **k))]
 
 

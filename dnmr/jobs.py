@@ -122,7 +122,7 @@ def run_fit(
         from dnmr.fitting.series import fit_series
         from dnmr.reporting.report import ReportFigures
 
-        ahead = ReportFigures(outdir, calibration_file) if write_html else None  # drawn while the workers draw
+        ahead = ReportFigures(outdir, calibration_file) if write_html else None  # drawn beside the fits' figures
         fit = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers, progress=progress,
                          posterior=dict(posterior) if posterior is not None else None, executor=executor,
                          alongside=ahead.draw if ahead is not None else None)

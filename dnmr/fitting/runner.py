@@ -380,11 +380,12 @@ class FitRunner:
         drawn as the fit comes in shows."""
         return _Stage(self, jobs, label, seeded, final).run()
 
-    def submit(self, function: Callable, *args) -> futures.Future:
-        """Start `function(*args)` in the pool, after the figures still waiting for an idle worker (or run it here:
-        a future already done); its future."""
+    def submit(self, function: Callable, *args, first: bool = False) -> futures.Future:
+        """Start `function(*args)` in the pool, after the figures still waiting for an idle worker or, `first`, ahead
+        of them (or run it here: a future already done); its future."""
         if self.pool is not None:
-            self.flush()
+            if not first:
+                self.flush()
             return self.pool.submit(in_worker, self.caller, function, *args)
         future = futures.Future()
         try:

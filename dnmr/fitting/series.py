@@ -241,7 +241,7 @@ def fit_series(
     progress: bool | None = None,
     posterior: Mapping | None = None,
     executor: futures.Executor | None = None,
-    alongside: Callable[[], None] | None = None,
+    alongside: Callable[[Callable], None] | None = None,
 ) -> SeriesFit:
     """Fit every spectrum of a variable-temperature series and write the results to `outdir`.
 
@@ -276,8 +276,9 @@ def fit_series(
         here and sent with the tasks, and results come back as data written here, so its workers need
         dnmr (the same version) but not the files.  The results are the same as without it.
     alongside : callable, optional
-        Called (without arguments) in this process once rates.csv is written, while the workers draw the figures
-        of the fits: ``dnmr fit`` draws its report's figures there (:func:`dnmr.jobs.run_fit`).
+        Called in this process once rates.csv is written, before the figures of the fits are drawn, with a function
+        ``submit(function, *args)`` that starts a task ahead of them on the workers (:meth:`FitRunner.submit`) and
+        returns its future: ``dnmr fit`` draws its report's figure there (:func:`dnmr.jobs.run_fit`).
 
     Returns
     -------
@@ -299,7 +300,7 @@ def fit_series(
 
 def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, progress: bool | None,
               posterior: Mapping | None, executor: futures.Executor | None,
-              alongside: Callable[[], None] | None) -> SeriesFit:
+              alongside: Callable[[Callable], None] | None) -> SeriesFit:
     """Fit the series into the prepared, locked `outdir` (see :func:`fit_series`)."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(series.spectra)))
     hashes = {i: file_sha256(s.file) for i, s in enumerate(series.spectra)}
@@ -326,17 +327,17 @@ def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, p
     return result
 
 
-def _write_outputs(result: SeriesFit, runner: FitRunner, hashes: Mapping, alongside: Callable[[], None] | None) -> None:
-    """rates.csv, the figures and results.json of `result` (see :mod:`dnmr.fitting.seriesoutput`); while the workers
-    draw the figures of the fits, this process draws the series figure and calls `alongside`."""
+def _write_outputs(result: SeriesFit, runner: FitRunner, hashes: Mapping, alongside: Callable | None) -> None:
+    """rates.csv, the figures and results.json of `result` (see :mod:`dnmr.fitting.seriesoutput`): the tasks of
+    `alongside` first, then the figures of the fits on the workers while this process draws the series figure."""
     outdir = result.outdir
     write_rates_csv(outdir / "rates.csv", result.rate_rows())
+    if alongside is not None:
+        alongside(lambda function, *args: runner.submit(function, *args, first=True))
 
     def meanwhile() -> None:
         if any(o.fitted for o in result.outcomes):
             save_and_close(result.plot(), outdir / "series_fits.png")
-        if alongside is not None:
-            alongside()
 
     draw_fit_figures(result.outcomes, result.series.model, outdir, runner, meanwhile)
     write_results_json(outdir / "results.json", result.series, result.outcomes, result.trend, result.notes,

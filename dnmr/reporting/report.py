@@ -51,9 +51,11 @@ The pieces: :mod:`dnmr.reporting.reportinputs` reads the folders, :mod:`dnmr.rep
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import os
 import re
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from functools import partial
 from pathlib import Path
 
 from dnmr.activation.eyring import eyring_fit_file
@@ -180,9 +182,9 @@ def write_supporting_files(target: Path, rows: SupportingRows, figures: EyringFi
 
 
 class ReportFigures:
-    """The figures of a series' report drawn before the report is written: ``dnmr fit`` draws them (:meth:`draw`)
-    from rates.csv while its workers draw the figures of the fits, and :func:`write_report` uses them when
-    rates.csv, the calibration and the figure format are still those they were drawn from.
+    """The figures of a series' report drawn before the report is written: ``dnmr fit`` has a worker draw them
+    (:meth:`draw`) from rates.csv beside the figures of the fits, and :func:`write_report` uses them when rates.csv,
+    the calibration and the figure format are still those they were drawn from.
 
     Parameters
     ----------
@@ -195,17 +197,30 @@ class ReportFigures:
     def __init__(self, outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None):
         self.outdir, self.calibration = Path(outdir), calibration
         self.rates: bytes | None = None
-        self.eyring: EyringFigures | None = None
+        self.drawing: EyringFigures | futures.Future | None = None
 
-    def draw(self) -> None:
-        """Draw the Eyring figure from rates.csv as it is now; nothing when it cannot be drawn (the report then tries
-        again and says why)."""
+    def draw(self, submit: Callable[..., futures.Future] | None = None) -> None:
+        """Draw the Eyring figure from rates.csv as it is now: here, or as a task that `submit(function, *args)`
+        starts (on a worker: :func:`dnmr.fitting.series.fit_series`'s `alongside`); nothing when it cannot be drawn
+        (the report then tries again and says why)."""
         try:
             self.rates = (self.outdir / "rates.csv").read_bytes()
             eyring = eyring_fit_file([self.outdir / "rates.csv"], calibration=read_calibration(self.calibration)[0])
-            self.eyring = eyring_figures(eyring, chosen_figure_format()) if eyring else None
+            if eyring:
+                self.drawing = (eyring_figures if submit is None else partial(submit, eyring_figures))(
+                    eyring, chosen_figure_format())
         except Exception:  # noqa: BLE001 (whatever failed fails again in the report, which says so)
-            self.eyring = None
+            self.drawing = None
+
+    @property
+    def eyring(self) -> EyringFigures | None:
+        """The Eyring figures drawn (waiting for the worker drawing them), or None when none were."""
+        if not isinstance(self.drawing, futures.Future):
+            return self.drawing
+        try:
+            return self.drawing.result()
+        except Exception:  # noqa: BLE001 (the worker died or drawing failed there: the report draws them itself)
+            return None
 
     def drawn_for(self, outdir: Path, calibration: TemperatureCalibration | str | Path | None,
                   transfer: Sequence[str | Path]) -> bool:
