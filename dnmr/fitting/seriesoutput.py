@@ -133,7 +133,7 @@ def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
 
 
 def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: Path, runner: FitRunner,
-                     meanwhile: Callable[[], None] = lambda: None) -> None:
+                     meanwhile: Callable[[], None]) -> None:
     """Draw data, fit and residuals of every fitted spectrum into ``figures/NNN_<name>.png`` (in the pool; the figures
     the workers drew while the fits ran, :meth:`FitRunner.early_figure`, are written as they are); `meanwhile` is
     called in this process while the workers draw.  A figure that cannot be drawn becomes a note on its spectrum."""
