@@ -23,9 +23,11 @@ measured figure, with the machine's load (1-minute load average) before and afte
 BLAS runs on one thread during fits (dnmr.fitting.workers.single_threaded_blas, needs threadpoolctl); other load
 on the machine lowers the parallel figure and raises every time (CPU times less so; the ratios are of one run).
 
-With --timeline, (b) is followed by one more run with one worker per core, timed part by part: the wall-clock
-start and end of every task on each worker (fits, figures) and of this process's parts (before the first fit, each
-stage of fits, the outputs after them, report.html), and how long each worker stood idle.
+With --timeline, (b) is followed by two more runs, with one worker and with one per core, timed part by part: the
+wall-clock start and end of every task on each worker (fits, figures) and of this process's parts (before the first fit, each
+stage of fits, the outputs after them: the series figure and the report's figures drawn while the workers draw
+those of the fits, report.html), with the CPU time of each, the CPU time of each kind of task with one worker and
+with one per core, and how long each worker stood idle.
 
 Run:  python benchmarks/fit_speed.py            (everything)
       python benchmarks/fit_speed.py --single   ((a) and (d) only)
@@ -300,65 +302,117 @@ def series_fits(folder: Path, cores: int):
 
 TIMELINE = Path(tempfile.gettempdir()) / f"dnmr-timeline-{os.getpid()}.jsonl"
 """Where the timeline's parts are noted, one JSON line each, by this process and by the workers it forks."""
+REAL: dict = {}
+"""The functions of dnmr the timeline wraps, as they were (the workers fork after they are wrapped and keep this)."""
 
 
-def noted(where: str, what: str, function, *args, **kwargs):
-    """`function(*args, **kwargs)`, its wall-clock start and end noted in TIMELINE under `where` (a process)."""
-    start = time.time()
+def noted(what: str, function, *args, **kwargs):
+    """`function(*args, **kwargs)`, noted in TIMELINE: its process, wall-clock start and end, CPU time (s)."""
+    start, cpu = time.time(), time.process_time()
     try:
         return function(*args, **kwargs)
     finally:
         with open(TIMELINE, "a") as fh:
-            fh.write(json.dumps([where, what, start, time.time()]) + "\n")
+            fh.write(json.dumps([os.getpid(), what, start, time.time(), time.process_time() - cpu]) + "\n")
 
 
-def timed_task(caller_pid: int, function, *args):
-    """dnmr.fitting.workers.in_worker with the task noted (in a worker: pickled by reference to this module)."""
-    from dnmr.fitting.runner import FitJob
-    from dnmr.fitting.workers import in_worker
+def noted_fit(model, job, *args):
+    """dnmr.fitting.runner.run_job, noted (in a worker: pickled by reference to this module)."""
+    return noted(f"fit {job.stage} {job.spectrum.temperature_k:g} K", REAL["run_job"], model, job, *args)
 
-    job = next((a for a in args if isinstance(a, FitJob)), None)
-    what = f"fit {job.stage} {job.spectrum.temperature_k:g} K" if job else f"{function.__name__} " + " ".join(
-        a.name for a in args if isinstance(a, Path))
-    return noted(f"worker {os.getpid()}", what, in_worker, caller_pid, function, *args)
+
+def noted_figure(model, fit_data: dict, curves: dict, path: Path):
+    """dnmr.fitting.runner.fit_figure, noted."""
+    return noted(f"figure {path.name}", REAL["fit_figure"], model, fit_data, curves, path)
+
+
+def noted_eyring_figures(eyring, image_format: str):
+    """dnmr.reporting.seriesreport.eyring_figures (the report's Eyring figure), noted."""
+    return noted("figure eyring (report)", REAL["eyring_figures"], eyring, image_format)
+
+
+def wrapped() -> list[tuple]:
+    """(module, name, replacement) of every function the timeline notes."""
+    from dnmr.fitting import runner, series
+    from dnmr.reporting import report
+
+    run = REAL.setdefault("run", runner.FitRunner.run)
+    return [(runner, "run_job", noted_fit), (runner, "fit_figure", noted_figure),
+            (runner.FitRunner, "run", lambda self, jobs, label, *a, **k: noted(label, run, self, jobs, label, *a, **k)),
+            (series, "fit_series", lambda *a, **k: noted("fit_series", REAL["fit_series"], *a, **k)),
+            (series, "save_and_close", lambda *a, **k: noted("series figure", REAL["save_and_close"], *a, **k)),
+            (report.ReportFigures, "draw", lambda self, *a: noted("report figures", REAL["draw"], self, *a)),
+            (report, "eyring_figures", noted_eyring_figures),
+            (report, "write_report", lambda *a, **k: noted("report.html", REAL["write_report"], *a, **k))]
+
+
+def timed_run(folder: Path, workers: int) -> dict:
+    """The demo series as `dnmr fit` runs it with `workers`, every part noted: the parts (process, what, start, end,
+    CPU), the run's start and end, this process's CPU and its workers' (s)."""
+    from dnmr.jobs import run_fit
+
+    patches = wrapped()
+    for module, name, replacement in patches:
+        REAL.setdefault(name, getattr(module, name))
+        setattr(module, name, replacement)
+    TIMELINE.unlink(missing_ok=True)
+    try:
+        before, start = os.times(), time.time()
+        run_fit(demo_series(folder), folder / f"timeline{workers}", workers=workers, progress=False)
+        end, after = time.time(), os.times()
+    finally:
+        for module, name, _ in patches:
+            setattr(module, name, REAL[name])
+    parts = sorted((json.loads(line) for line in TIMELINE.read_text().splitlines()), key=lambda p: p[2])
+    TIMELINE.unlink()
+    return {"parts": parts, "start": start, "end": end, "main_cpu": after.user + after.system - before.user - before.system,
+            "workers_cpu": after.children_user + after.children_system - before.children_user - before.children_system}
 
 
 def timeline(folder: Path, cores: int) -> None:
-    """(b) once more with `cores` workers, timed part by part (the module's docstring says which parts)."""
-    from dnmr.fitting import runner, series
-    from dnmr.jobs import run_fit
+    """(b) once with one worker and once with `cores`, timed part by part (the module's docstring says which)."""
+    print(f"  timeline with 1 and {cores} workers ({load()}); the run with {cores} (s from its start, CPU s):")
+    runs = {workers: timed_run(folder, workers) for workers in (1, cores)}
+    run = runs[cores]
+    pids = sorted({p[0] for p in run["parts"] if p[0] != os.getpid()})
+    name = lambda pid: f"worker {pids.index(pid) + 1}" if pid in pids else "this process"  # noqa: E731
+    for pid, what, a, b, cpu in run["parts"]:
+        print(f"    {a - run['start']:6.2f} {b - run['start']:6.2f} {cpu:5.2f}  {name(pid):<12} {what}")
+    for workers, run in runs.items():
+        print(f"    {workers} worker(s): {phases(run)}")
+    print("    CPU time (s), 1 worker against " + f"{cores}: " + "; ".join(
+        f"{kind} {cpu_of(runs[1], kind):.2f} against {cpu_of(runs[cores], kind):.2f}"
+        for kind in ("fit", "figure", "this process", "workers outside tasks")))
+    for pid in pids:
+        busy = sum(p[3] - p[2] for p in run["parts"] if p[0] == pid)
+        print(f"    {name(pid)}: idle {run['end'] - run['start'] - busy:.2f} s of the whole {run['end'] - run['start']:.2f} s")
 
-    print(f"  timeline of one run with {cores} workers (s from the start; {load()}):")
-    saved = runner.in_worker, runner.FitRunner.run, series.fit_series
-    runner.in_worker = timed_task
-    runner.FitRunner.run = lambda self, jobs, label, *a, **k: noted("this process", label, saved[1], self, jobs, label,
-                                                                    *a, **k)
-    series.fit_series = lambda *a, **k: noted("this process", "fit_series", saved[2], *a, **k)
-    TIMELINE.unlink(missing_ok=True)
-    try:
-        start = time.time()
-        run_fit(demo_series(folder), folder / "timeline", workers=cores, progress=False)
-        end = time.time()
-    finally:
-        runner.in_worker, runner.FitRunner.run, series.fit_series = saved
-    parts = sorted((json.loads(line) for line in TIMELINE.read_text().splitlines()), key=lambda p: p[2])
-    TIMELINE.unlink()
-    workers = sorted({p[0] for p in parts if p[0].startswith("worker")})
-    for where, what, a, b in parts:
-        name = f"worker {workers.index(where) + 1}" if where in workers else where
-        print(f"    {a - start:6.2f} {b - start:6.2f}  {name:<12} {what}")
-    stages = [p for p in parts if p[0] == "this process" and p[1] != "fit_series"]
-    fitted = next(p for p in parts if p[1] == "fit_series")
-    first, last = stages[0][2], stages[-1][3]
-    print(f"    {first - start:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), "
-          f"{fitted[3] - last:.2f} s of outputs (figures on the workers, the series figure here), "
-          f"{end - fitted[3]:.2f} s of report.html (here only)")
-    for where in workers:
-        busy = sum(p[3] - p[2] for p in parts if p[0] == where)
-        during = sum(min(p[3], last) - max(p[2], first) for p in parts
-                     if p[0] == where and p[2] < last and p[3] > first)
-        print(f"    worker {workers.index(where) + 1}: idle {last - first - during:.2f} s of the {last - first:.2f} s "
-              f"of fits, {end - start - busy:.2f} s of the whole {end - start:.2f} s")
+
+MAIN_PARTS = ("fit_series", "series figure", "report figures", "report.html")
+"""The parts of a run noted in this process that are not a stage of fits (:func:`wrapped`)."""
+
+
+def phases(run: dict) -> str:
+    """The run's phases in words: before the first fit, the stages of fits, the outputs, report.html (wall s)."""
+    parts = {p[1]: p for p in run["parts"] if p[0] == os.getpid()}
+    stages = [p for p in run["parts"] if p[0] == os.getpid() and p[1] not in MAIN_PARTS
+              and p[1].split()[0] not in ("fit", "figure")]
+    first, last, fitted, report = stages[0][2], stages[-1][3], parts["fit_series"], parts["report.html"]
+    return (f"{first - run['start']:.2f} s before the first fit, {last - first:.2f} s of fits (the stages), "
+            f"{fitted[3] - last:.2f} s of outputs, {report[3] - report[2]:.2f} s of report.html "
+            f"({report[4]:.2f} s CPU here); {run['end'] - run['start']:.2f} s in all")
+
+
+def cpu_of(run: dict, kind: str) -> float:
+    """CPU time (s) of `run`: its tasks of a `kind` ("fit", "figure"), this process's outside them, or its workers'
+    outside their tasks (start-up, receiving tasks, sending results)."""
+    tasks = [p for p in run["parts"] if p[1].split()[0] in ("fit", "figure")]
+    if kind in ("fit", "figure"):
+        return sum(p[4] for p in tasks if p[1].split()[0] == kind)
+    here = sum(p[4] for p in tasks if p[0] == os.getpid())
+    if kind == "this process":
+        return run["main_cpu"] - here
+    return run["workers_cpu"] - sum(p[4] for p in tasks) + here
 
 
 def global_fits(folder: Path, cores: int, series: Path, result) -> None:

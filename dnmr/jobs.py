@@ -112,6 +112,7 @@ def run_fit(
     for warning in series.warnings:
         if on_warning is not None:
             on_warning(warning)
+    ahead = None
     if global_fit:
         from dnmr.fitting.globalfit import fit_series_global
 
@@ -119,12 +120,15 @@ def run_fit(
                                 progress=progress, executor=executor, **(treatment or {}))
     else:
         from dnmr.fitting.series import fit_series
+        from dnmr.reporting.report import ReportFigures
 
+        ahead = ReportFigures(outdir, calibration_file) if write_html else None  # drawn beside the fits' figures
         fit = fit_series(series, outdir, overwrite=overwrite, resume=resume, workers=workers, progress=progress,
-                         posterior=dict(posterior) if posterior is not None else None, executor=executor)
+                         posterior=dict(posterior) if posterior is not None else None, executor=executor,
+                         alongside=ahead.draw if ahead is not None else None)
     job = FitJob(fit, tuple(series.warnings), global_fit=global_fit)
     if write_html:  # the global fit has already used the calibration
-        job.report_file, job.report_problem = _write_html(Path(outdir), None if global_fit else calibration_file)
+        job.report_file, job.report_problem = _write_html(Path(outdir), None if global_fit else calibration_file, ahead)
     return job
 
 
@@ -160,11 +164,12 @@ def run_fit_folder(folder: str | Path, outdir: str | Path, *, overwrite: bool = 
                              executor=executor)
 
 
-def _write_html(outdir: Path, calibration_file) -> tuple[Path | None, str | None]:
-    """report.html of the fit just written into `outdir` (rewritten with each run), or why it could not be."""
+def _write_html(outdir: Path, calibration_file, ahead) -> tuple[Path | None, str | None]:
+    """report.html of the fit just written into `outdir` (rewritten with each run; `ahead`: its figures drawn
+    before, :class:`dnmr.reporting.report.ReportFigures`), or why it could not be."""
     from dnmr.reporting.report import write_report
 
     try:
-        return write_report(outdir, calibration=calibration_file, overwrite=True), None
+        return write_report(outdir, calibration=calibration_file, overwrite=True, ahead=ahead), None
     except InputError as err:
         return None, str(err)

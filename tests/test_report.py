@@ -9,6 +9,7 @@ rates.csv, and the recovered ΔH‡ against the invented truth.
 from __future__ import annotations
 
 import base64
+import concurrent.futures as futures
 import html
 import json
 import shutil
@@ -115,6 +116,41 @@ def test_report_embeds_every_figure_as_png_data(fitted, report):
     for src in page.images:
         assert src.startswith("data:image/png;base64,")
         assert base64.b64decode(src.split(",", 1)[1], validate=True).startswith(PNG_SIGNATURE)
+
+
+def test_figures_drawn_ahead_give_the_same_report_and_stale_ones_are_not_used(fitted, tmp_path):
+    """dnmr fit has a worker draw its report's Eyring figure beside the fits' figures
+    (dnmr.reporting.report.ReportFigures): the report written with it, drawn there or here, is the report written
+    without it, to the byte (but the time it was written), and a figure drawn from another rates.csv or
+    calibration is not used."""
+    import re
+
+    from dnmr.reporting.report import ReportFigures
+
+    out = tmp_path / "out"
+    shutil.copytree(fitted, out, ignore=shutil.ignore_patterns("report.html", "supporting-information"))
+    written = {}
+    for name in ("on a worker", "ahead", "here"):
+        ahead = ReportFigures(out)
+        if name == "ahead":
+            ahead.draw()
+        elif name == "on a worker":
+            with futures.ProcessPoolExecutor(max_workers=1) as pool:
+                ahead.draw(pool.submit)
+                assert isinstance(ahead.drawing, futures.Future)
+        assert (ahead.eyring is not None) == (name != "here")
+        path = write_report(out, overwrite=True, ahead=ahead)
+        written[name] = (re.sub(r"report written [0-9TZ:-]+", "", path.read_text()),
+                         (out / "supporting-information" / "eyring.png").read_bytes())
+    assert written["on a worker"] == written["ahead"] == written["here"]
+    stale = ReportFigures(out)
+    stale.draw()
+    assert stale.drawn_for(out, None, ())
+    assert not stale.drawn_for(out, fitted.parent / "calibration.csv", ())  # another calibration
+    (out / "rates.csv").write_bytes((out / "rates.csv").read_bytes() + b"\n")  # another rates.csv
+    assert not stale.drawn_for(out, None, ())
+    write_report(out, overwrite=True, ahead=stale)  # drawn again, here
+    assert (out / "supporting-information" / "eyring.png").read_bytes() == written["here"][1]
 
 
 def test_report_makes_no_external_reference(report):

@@ -119,6 +119,26 @@ def test_series_outputs_are_complete(run):
     assert "flip" in result.output and "250.00" in result.output
 
 
+def test_stored_fits_are_json_laid_out_as_the_json_module_lays_it_out_with_curves_on_one_line(run):
+    """Python's json module is the reference: a stored fit reads back as the data written, and its text is the one
+    ``json.dumps(data, indent=1)`` gives but for each curve (thousands of numbers), which is one line."""
+    from dnmr.fitting.resultsfolder import NUMBERS_ON_ONE_LINE, json_text
+
+    folder = run[0]
+    for path in sorted((folder / "out" / "fits").glob("*.json")):
+        text = path.read_text()
+        data = json.loads(text)
+        assert text == json_text(data) + "\n"
+        assert all(len(curve) > NUMBERS_ON_ONE_LINE for curve in data["curves"].values())
+        for name, curve in data["curves"].items():
+            assert f'"{name}": {json.dumps(curve)}' in text
+        without_curves = {k: v for k, v in data.items() if k != "curves"}
+        assert json_text(without_curves) == json.dumps(without_curves, indent=1)
+    short = {"a": [1, 2.5, None, "x", True, {"b": []}, {}], "c": {"d": "é\n\"", "e": [[1, 2], []]}, "f": list(range(64))}
+    assert json_text(short) == json.dumps(short, indent=1)
+    assert json.loads(json_text({"x": [1.0] * 64 + [math.nan]})) == {"x": [1.0] * 64 + [None]}  # JSON has no NaN
+
+
 def test_existing_output_folder_is_refused_then_resumed(run, tmp_path):
     folder, series, before, _ = run
     out = folder / "out"

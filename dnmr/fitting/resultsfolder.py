@@ -39,8 +39,33 @@ STAGES = (STAGE_MAIN, STAGE_SLOW, STAGE_HELD, "posterior")
 
 
 def write_json(path: Path, data) -> None:
-    """Write `data` as JSON (NaN refused) to `path` atomically, replacing an earlier file of the results."""
-    atomic_write_text(path, json.dumps(json_ready(data), indent=1, allow_nan=False) + "\n", overwrite=True)
+    """Write `data` as JSON (:func:`json_text`) to `path` atomically, replacing an earlier file of the results."""
+    atomic_write_text(path, json_text(data) + "\n", overwrite=True)
+
+
+#: A list of more numbers than this is written on one line by :func:`json_text` (a fit's curves, thousands of points).
+NUMBERS_ON_ONE_LINE = 64
+
+
+def json_text(data) -> str:
+    """`data` (made :func:`~dnmr.io.output.json_ready`) as JSON text, NaN refused, laid out as ``json.dumps`` with
+    ``indent=1`` lays it out, but for a list of more than :data:`NUMBERS_ON_ONE_LINE` numbers: one line (read
+    as well, and written by the json module's compiled encoder, not number by number)."""
+    return _laid_out(json_ready(data), 0)
+
+
+def _laid_out(data, depth: int) -> str:
+    """JSON-ready `data`, nested `depth` deep, as :func:`json_text` lays it out."""
+    inner = "\n" + " " * (depth + 1)
+    if isinstance(data, dict) and data:
+        items = (f"{json.dumps(k)}: {_laid_out(v, depth + 1)}" for k, v in data.items())
+    elif isinstance(data, list) and data and not (len(data) > NUMBERS_ON_ONE_LINE and all(
+            type(v) in (int, float) for v in data)):
+        items = (_laid_out(v, depth + 1) for v in data)
+    else:
+        return json.dumps(data, allow_nan=False)
+    brackets = "{}" if isinstance(data, dict) else "[]"
+    return brackets[0] + inner + ("," + inner).join(items) + "\n" + " " * depth + brackets[1]
 
 
 def _result_names(series: Series) -> list[str]:

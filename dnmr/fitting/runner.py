@@ -95,7 +95,7 @@ def _read_job(model: Model, job: FitJob) -> MeasuredSpectrum | dict:
         return {"status": "failed", "bad_input": True, "error": str(err.located(source=s.file))}
 
 
-def _run_job(model: Model, job: FitJob, start: Mapping[str, float] | None, spectrum: MeasuredSpectrum) -> dict:
+def run_job(model: Model, job: FitJob, start: Mapping[str, float] | None, spectrum: MeasuredSpectrum) -> dict:
     """Fit one spectrum (in a worker); never raises: a failure comes back as data."""
     s = job.spectrum
     try:
@@ -304,19 +304,17 @@ class FitRunner:
         if self.own_pool is not None:
             self.own_pool.shutdown(wait=True, cancel_futures=True)
 
-    def early_figure(self, index: int, stage: str, fit_data: dict) -> bytes | None:
-        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) drawn by a
-        worker while the other fits ran, or None when none was (no workers, a fit reused from an earlier run,
-        drawing failed) or when it shows another fit than `fit_data` (the series changed its rates after)."""
+    def early_figure(self, index: int, stage: str, fit_data: dict) -> futures.Future | None:
+        """The figure of spectrum `index`'s final fit at `stage` (`fit_data`: :meth:`SpectrumFit.to_dict`) as a worker
+        draws it, queued while the other fits ran (its future: the image file, or an exception when drawing failed),
+        or None when none was (no workers, a fit reused from an earlier run) or when it shows another fit than
+        `fit_data` (the series changed its rates after)."""
         if (index, stage) in self.queued:
             self.flush()
         future = self.figures.pop((index, stage), None)
         if future is None or self.drawn_from.pop((index, stage), None) != _canonical(fit_data):
             return None
-        try:
-            return future.result()
-        except Exception:  # the worker died or drawing failed: the caller draws it again, and says why if it fails
-            return None
+        return future
 
     def _draw_early(self, job: FitJob, record: dict, final: Callable[[int, dict], dict] | None) -> None:
         """Queue the figure of a fit for a worker that no fit needs (off the critical path of the fits): of the
@@ -382,6 +380,20 @@ class FitRunner:
         drawn as the fit comes in shows."""
         return _Stage(self, jobs, label, seeded, final).run()
 
+    def submit(self, function: Callable, *args, first: bool = False) -> futures.Future:
+        """Start `function(*args)` in the pool, after the figures still waiting for an idle worker or, `first`, ahead
+        of them (or run it here: a future already done); its future."""
+        if self.pool is not None:
+            if not first:
+                self.flush()
+            return self.pool.submit(in_worker, self.caller, function, *args)
+        future = futures.Future()
+        try:
+            future.set_result(function(*args))
+        except Exception as exc:  # raised where the result is asked for, as from a worker
+            future.set_exception(exc)
+        return future
+
     def map(self, function: Callable, calls: list[tuple], label: str | None = None) -> list:
         """Run `function(*args)` for every tuple of `calls` in the pool (or here); with a `label`, a
         progress bar counts the calls done."""
@@ -398,8 +410,7 @@ class FitRunner:
                 out.append(function(*args))
                 advance()
             return out
-        self.flush()
-        pending = [self.pool.submit(in_worker, self.caller, function, *args) for args in calls]
+        pending = [self.submit(function, *args) for args in calls]
         for _ in futures.as_completed(pending):
             advance()
         return [f.result() for f in pending]
@@ -411,8 +422,8 @@ class _Stage:
 
     A spectrum is started as soon as every spectrum of a lower level (:func:`_seed_levels`) is done, the
     coldest first.  With workers, the records of the fits just done are written to disk and their figures queued
-    after the next fits are handed out (before waiting again); the figures go to the workers that no fit needs
-    (:meth:`FitRunner.early_figure`)."""
+    one by one after the next fits are handed out, each fit finished meanwhile taken in and its successors started
+    in between; the figures go to the workers that no fit needs (:meth:`FitRunner.early_figure`)."""
 
     def __init__(self, runner: FitRunner, jobs: list[FitJob], label: str, seeded: bool,
                  final: Callable[[int, dict], dict] | None):
@@ -438,22 +449,21 @@ class _Stage:
     def run(self) -> dict[int, dict]:
         """Fit every job waiting; the records by spectrum index."""
         runner = self.runner
-        while self.waiting or self.running:
+        while self.waiting or self.running or self.unsettled:
+            self.collect_finished()
             for index in [i for i in self.waiting if self.ready(i)][: max(0, runner.workers - len(self.running))]:
                 self.submit(index)
-            self.settle()  # the fits just done, while the next ones run
-            if not self.running:
-                continue
-            if runner.pool is None:  # fitted in submit: stored at once
-                self.collect(*self.running.popitem())
-                self.settle()
-                continue
-            drawing = runner._feed(len(self.running))  # a figure on each worker that no fit needs
-            done, _ = futures.wait(list(self.running.values()) + drawing, return_when=futures.FIRST_COMPLETED)
-            for index in [i for i, f in self.running.items() if f in done]:
-                self.collect(index, _future_result(self.running.pop(index)))
-        self.settle()
+            if self.unsettled:  # the fits done, one by one, looking for fits to start in between
+                self.settle(self.unsettled.pop(0))
+            elif self.running and runner.pool is not None:
+                drawing = runner._feed(len(self.running))  # a figure on each worker that no fit needs
+                futures.wait(list(self.running.values()) + drawing, return_when=futures.FIRST_COMPLETED)
         return self.records
+
+    def collect_finished(self) -> None:
+        """Take in every fit finished (without waiting for any)."""
+        for index in [i for i, f in self.running.items() if isinstance(f, dict) or f.done()]:
+            self.collect(index, _future_result(self.running.pop(index)))
 
     def ready(self, index: int) -> bool:
         """Whether every spectrum of a lower level than `index`'s has been fitted."""
@@ -470,27 +480,28 @@ class _Stage:
         if isinstance(spectrum, dict):  # unreadable: failed here, nothing to send
             self.collect(index, spectrum)
         elif runner.pool is None:
-            self.running[index] = _run_job(runner.series.model, job, start, spectrum)
+            self.running[index] = run_job(runner.series.model, job, start, spectrum)
         else:
-            self.running[index] = runner.pool.submit(in_worker, runner.caller, _run_job, runner.series.model, job,
+            self.running[index] = runner.pool.submit(in_worker, runner.caller, run_job, runner.series.model, job,
                                                      start, spectrum)
 
     def collect(self, index: int, result: dict) -> None:
-        """Take in the result of spectrum `index`'s fit (stored, its figure queued, counted done: :meth:`settle`)."""
+        """Take in the result of spectrum `index`'s fit (to be stored, its figure queued and counted done:
+        :meth:`settle`)."""
         job = self.jobs[index]
         record = {"key": job.key, "index": job.index, "stage": job.stage, "file": str(job.spectrum.file),
                   "temperature_k": job.spectrum.temperature_k, **result}
         self.records[index] = record
         self.unsettled.append(job)
 
-    def settle(self) -> None:
-        """Store the records of the fits taken in since the last call, queue their figures and count them done."""
-        for job in self.unsettled:
-            self.runner._write(self.records[job.index])
-            self.runner._draw_early(job, self.records[job.index], self.final)
-            self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
-            self.runner.progress.refresh()
-        self.unsettled.clear()
+    def settle(self, job: FitJob) -> None:
+        """Queue the figure of a fit taken in (handed at once to a worker that no fit needs), store its record and
+        count it done."""
+        self.runner._draw_early(job, self.records[job.index], self.final)
+        self.runner._feed(len(self.running))
+        self.runner._write(self.records[job.index])
+        self.runner.progress.advance(self.task, f"{job.spectrum.temperature_k:g} K")
+        self.runner.progress.refresh()
 
 
 def _canonical(fit_data: dict) -> str:
@@ -498,7 +509,10 @@ def _canonical(fit_data: dict) -> str:
     return json.dumps(json_ready(fit_data), sort_keys=True)
 
 
-def _future_result(future) -> dict:
+def _future_result(future: futures.Future | dict) -> dict:
+    """The record a fit's future gives (a fit done in this process is its record already)."""
+    if isinstance(future, dict):
+        return future
     try:
         return future.result()
     except Exception as err:  # the worker process died (out of memory, killed...)

@@ -30,7 +30,7 @@ import concurrent.futures as futures
 import json
 import math
 import os
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -241,6 +241,7 @@ def fit_series(
     progress: bool | None = None,
     posterior: Mapping | None = None,
     executor: futures.Executor | None = None,
+    alongside: Callable[[Callable], None] | None = None,
 ) -> SeriesFit:
     """Fit every spectrum of a variable-temperature series and write the results to `outdir`.
 
@@ -274,6 +275,10 @@ def fit_series(
         process pool, a Dask client's ``get_executor()``...  It is left running.  The spectra are read
         here and sent with the tasks, and results come back as data written here, so its workers need
         dnmr (the same version) but not the files.  The results are the same as without it.
+    alongside : callable, optional
+        Called in this process once rates.csv is written, before the figures of the fits are drawn, with a function
+        ``submit(function, *args)`` that starts a task ahead of them on the workers (:meth:`FitRunner.submit`) and
+        returns its future: ``dnmr fit`` draws its report's figure there (:func:`dnmr.jobs.run_fit`).
 
     Returns
     -------
@@ -288,13 +293,14 @@ def fit_series(
     outdir = Path(outdir)
     lock = prepare_results_folder(outdir, series, overwrite, resume)
     try:
-        return _fit_into(series, outdir, resume, workers, progress, posterior, executor)
+        return _fit_into(series, outdir, resume, workers, progress, posterior, executor, alongside)
     finally:
         release_results_folder(lock)
 
 
 def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, progress: bool | None,
-              posterior: Mapping | None, executor: futures.Executor | None) -> SeriesFit:
+              posterior: Mapping | None, executor: futures.Executor | None,
+              alongside: Callable[[Callable], None] | None) -> SeriesFit:
     """Fit the series into the prepared, locked `outdir` (see :func:`fit_series`)."""
     workers = max(1, min(workers or os.cpu_count() or 1, len(series.spectra)))
     hashes = {i: file_sha256(s.file) for i, s in enumerate(series.spectra)}
@@ -315,19 +321,24 @@ def _fit_into(series: Series, outdir: Path, resume: bool, workers: int | None, p
                                list(series.notes) + notes)
             if posterior is not None:
                 _sample_posteriors(result, runner, dict(posterior), hashes)
-            _write_outputs(result, runner, hashes)
+            _write_outputs(result, runner, hashes, alongside)
     finally:
         runner.close()
     return result
 
 
-def _write_outputs(result: SeriesFit, runner: FitRunner, hashes: Mapping) -> None:
-    """rates.csv, the figures and results.json of `result` (see :mod:`dnmr.fitting.seriesoutput`)."""
+def _write_outputs(result: SeriesFit, runner: FitRunner, hashes: Mapping, alongside: Callable | None) -> None:
+    """rates.csv, the figures and results.json of `result` (see :mod:`dnmr.fitting.seriesoutput`): the tasks of
+    `alongside` first, then the figures of the fits on the workers while this process draws the series figure."""
     outdir = result.outdir
     write_rates_csv(outdir / "rates.csv", result.rate_rows())
-    runner.flush()  # the workers draw the fit figures still waiting while this process draws the series figure
-    if any(o.fitted for o in result.outcomes):
-        save_and_close(result.plot(), outdir / "series_fits.png")
-    draw_fit_figures(result.outcomes, result.series.model, outdir, runner)
+    if alongside is not None:
+        alongside(lambda function, *args: runner.submit(function, *args, first=True))
+
+    def meanwhile() -> None:
+        if any(o.fitted for o in result.outcomes):
+            save_and_close(result.plot(), outdir / "series_fits.png")
+
+    draw_fit_figures(result.outcomes, result.series.model, outdir, runner, meanwhile)
     write_results_json(outdir / "results.json", result.series, result.outcomes, result.trend, result.notes,
                        result.exit_status, hashes)

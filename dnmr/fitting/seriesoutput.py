@@ -22,7 +22,7 @@ import io
 import math
 import platform
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -105,8 +105,9 @@ def rate_row(outcome: SpectrumOutcome, i: int, process: str, series: Series) -> 
 
 
 def save_and_close(fig, path: Path) -> str:
-    """Save a figure of the results to `path` (replacing an earlier one) and close it; returns the path."""
-    return str(save_figure(fig, path, overwrite=True, close=True))
+    """Save a figure of the results that keeps everything inside its edges (the series figure) to `path`, replacing
+    an earlier one, and close it; returns the path."""
+    return str(save_figure(fig, path, overwrite=True, close=True, inside=True))
 
 
 def rendered_and_closed(fig, path: Path) -> bytes:
@@ -131,21 +132,28 @@ def write_rates_csv(path: Path, rows: Sequence[dict]) -> None:
     atomic_write_text(path, buffer.getvalue(), overwrite=True)
 
 
-def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: Path, runner: FitRunner) -> None:
+def draw_fit_figures(outcomes: Sequence[SpectrumOutcome], model: Model, outdir: Path, runner: FitRunner,
+                     meanwhile: Callable[[], None]) -> None:
     """Draw data, fit and residuals of every fitted spectrum into ``figures/NNN_<name>.png`` (in the pool; the figures
-    the workers drew while the fits ran, :meth:`FitRunner.early_figure`, are written as they are)."""
-    draws, drawn_for = [], []
+    the workers drew while the fits ran, :meth:`FitRunner.early_figure`, are written as they are); `meanwhile` is
+    called in this process while the workers draw.  A figure that cannot be drawn becomes a note on its spectrum."""
+    drawing = []
     for i, o in enumerate(outcomes):
         if o.fitted:
-            path = fit_figure_path(outdir, i, o.spectrum)
-            fit_data = o.fit.to_dict()
-            image = runner.early_figure(i, o.stage, fit_data)  # drawn while other fits ran
-            if image is not None:
-                atomic_write_bytes(path, image, overwrite=True)
+            path, fit_data = fit_figure_path(outdir, i, o.spectrum), o.fit.to_dict()
+            early = runner.early_figure(i, o.stage, fit_data)  # drawn while other fits ran
+            if early is None:
+                drawing.append((o, path, fit_data, False, runner.submit(fit_figure_or_reason, model, fit_data,
+                                                                        o.fit.curves(), path)))
             else:
-                draws.append((model, fit_data, o.fit.curves(), path))
-                drawn_for.append(o)
-    for outcome, (*_, path), image in zip(drawn_for, draws, runner.map(fit_figure_or_reason, draws)):
+                drawing.append((o, path, fit_data, True, early))
+    meanwhile()
+    for outcome, path, fit_data, early, future in drawing:
+        try:
+            image = future.result()
+        except Exception as exc:  # the worker died, or drawing failed in one that drew it early: drawn again here
+            image = (fit_figure_or_reason(model, fit_data, outcome.fit.curves(), path) if early
+                     else f"worker failed: {type(exc).__name__}: {exc}")
         if isinstance(image, bytes):
             atomic_write_bytes(path, image, overwrite=True)
         else:  # a figure is a view of the fit: the fit, its rates and the other figures stand

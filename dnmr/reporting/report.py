@@ -51,20 +51,21 @@ The pieces: :mod:`dnmr.reporting.reportinputs` reads the folders, :mod:`dnmr.rep
 """
 from __future__ import annotations
 
+import concurrent.futures as futures
 import os
 import re
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from functools import partial
 from pathlib import Path
 
-from dnmr.activation.eyring_result import EyringResult
+from dnmr.activation.eyring import eyring_fit_file
 from dnmr.activation.temperature_calibration import TemperatureCalibration
 from dnmr.errors import InputError
 from dnmr.fitting.resultsfolder import refuse_folder_being_written, lock_results_folder, refuse_linked_folders, release_results_folder
-from dnmr.io.output import (atomic_write_text, check_output_file, chosen_figure_format, figure_file, figures_as,
-                             save_figure)
+from dnmr.io.output import atomic_write_bytes, atomic_write_text, check_output_file, chosen_figure_format, figure_file, figures_as
 from dnmr.reporting.globalreport import GLOBAL_NAME, global_document, read_global
-from dnmr.reporting.reportinputs import gather_inputs
-from dnmr.reporting.seriesreport import render_report
+from dnmr.reporting.reportinputs import gather_inputs, read_calibration
+from dnmr.reporting.seriesreport import EyringFigures, eyring_figures, render_report
 from dnmr.reporting.supporting import REPORT_NAME, supporting_folder, write_supporting_tables
 from dnmr.reporting.supportingsection import SupportingRows, global_supporting_rows, supporting_rows
 
@@ -87,6 +88,7 @@ def write_report(
     overwrite: bool = False,
     transfer: Sequence[str | Path] = (),
     figure_format: str | None = None,
+    ahead: ReportFigures | None = None,
 ) -> Path:
     """Write one self-contained HTML report of the series fit in `outdir`.
 
@@ -111,6 +113,9 @@ def write_report(
     figure_format : {"png", "svg", "pdf"}, optional
         Format of the Eyring figure written beside the supporting-information tables (default: the one
         :func:`dnmr.io.output.figures_as` chose, else PNG).
+    ahead : ReportFigures, optional
+        The report's figures drawn before it (``dnmr fit`` draws them while its workers draw the figures of the
+        fits), used when drawn from the same rates.csv, calibration and figure format (else drawn here).
 
     Returns
     -------
@@ -138,13 +143,13 @@ def write_report(
         refuse_folder_being_written(outdir)
     lock = lock_results_folder(path.parent, REPORT_PROGRAM)
     try:
-        return _write_locked(outdir, path, calibration, overwrite, transfer, figure_format)
+        return _write_locked(outdir, path, calibration, overwrite, transfer, figure_format, ahead)
     finally:
         release_results_folder(lock)
 
 
 def _write_locked(outdir: Path, path: Path, calibration: TemperatureCalibration | str | Path | None, overwrite: bool,
-                  transfer: Sequence[str | Path], figure_format: str | None) -> Path:
+                  transfer: Sequence[str | Path], figure_format: str | None, ahead: ReportFigures | None) -> Path:
     """The work of :func:`write_report` once the folder of the report (`path`) is locked."""
     with figures_as(figure_format or chosen_figure_format()):
         if (outdir / GLOBAL_NAME).is_file():
@@ -152,27 +157,77 @@ def _write_locked(outdir: Path, path: Path, calibration: TemperatureCalibration 
                 raise InputError("magnetisation-transfer folders go with the report of a spectrum-by-spectrum fit; "
                                  f"name {outdir / 'two-step'} instead", where="--transfer")
             document = global_document(outdir, calibration)
-            write_supporting_files(supporting_folder(path), global_supporting_rows(read_global(outdir)), [], overwrite)
+            write_supporting_files(supporting_folder(path), global_supporting_rows(read_global(outdir)), None, overwrite)
         else:
             inputs = gather_inputs(outdir, calibration, transfer)
-            document = render_report(inputs)
-            write_supporting_files(supporting_folder(path), supporting_rows(inputs), inputs.eyring, overwrite)
+            figures = ahead.eyring if ahead is not None and ahead.drawn_for(outdir, calibration, transfer) else None
+            if figures is None and inputs.eyring:
+                figures = eyring_figures(inputs.eyring, chosen_figure_format())
+            document = render_report(inputs, figures)
+            write_supporting_files(supporting_folder(path), supporting_rows(inputs), figures, overwrite)
     return atomic_write_text(path, relative_paths(document, path.parent), overwrite=overwrite)
 
 
-def write_supporting_files(target: Path, rows: SupportingRows, eyring: Sequence[EyringResult], overwrite: bool) -> list[Path]:
-    """Write the supporting-information tables (and the Eyring figure, in the chosen figure format) into the
+def write_supporting_files(target: Path, rows: SupportingRows, figures: EyringFigures | None, overwrite: bool) -> list[Path]:
+    """Write the supporting-information tables (and the Eyring figure, `figures`, in the chosen figure format) into the
     folder `target`."""
-    from dnmr.reporting.eyringplot import plot_eyring
-
-    figure = target / "eyring.png"
-    if eyring and figure_file(figure).exists() and not overwrite:
-        raise InputError(f"{figure_file(figure)} already exists; pass --overwrite to replace it", where="output")
+    figure = figure_file(target / "eyring.png")
+    if figures is not None and figure.exists() and not overwrite:
+        raise InputError(f"{figure} already exists; pass --overwrite to replace it", where="output")
     written = write_supporting_tables(target, rows.rates, rows.activation, title=rows.title, overwrite=overwrite)
-    if eyring:
-        written.append(save_figure(plot_eyring(list(eyring)), figure, overwrite=overwrite, close=True,
-                                   inside=True))
+    if figures is not None:
+        written.append(atomic_write_bytes(check_output_file(figure, overwrite, "output", figure=True), figures.supporting,
+                                          overwrite=overwrite))
     return written
+
+
+class ReportFigures:
+    """The figures of a series' report drawn before the report is written: ``dnmr fit`` has a worker draw them
+    (:meth:`draw`) from rates.csv beside the figures of the fits, and :func:`write_report` uses them when rates.csv,
+    the calibration and the figure format are still those they were drawn from.
+
+    Parameters
+    ----------
+    outdir : Path
+        The results folder of the series fit.
+    calibration : TemperatureCalibration, str or Path, optional
+        The calibration the report will be written with (the same object).
+    """
+
+    def __init__(self, outdir: str | Path, calibration: TemperatureCalibration | str | Path | None = None):
+        self.outdir, self.calibration = Path(outdir), calibration
+        self.rates: bytes | None = None
+        self.drawing: EyringFigures | futures.Future | None = None
+
+    def draw(self, submit: Callable[..., futures.Future] | None = None) -> None:
+        """Draw the Eyring figure from rates.csv as it is now: here, or as a task that `submit(function, *args)`
+        starts (on a worker: :func:`dnmr.fitting.series.fit_series`'s `alongside`); nothing when it cannot be drawn
+        (the report then tries again and says why)."""
+        try:
+            self.rates = (self.outdir / "rates.csv").read_bytes()
+            eyring = eyring_fit_file([self.outdir / "rates.csv"], calibration=read_calibration(self.calibration)[0])
+            if eyring:
+                self.drawing = (eyring_figures if submit is None else partial(submit, eyring_figures))(
+                    eyring, chosen_figure_format())
+        except Exception:  # noqa: BLE001 (whatever failed fails again in the report, which says so)
+            self.drawing = None
+
+    @property
+    def eyring(self) -> EyringFigures | None:
+        """The Eyring figures drawn (waiting for the worker drawing them), or None when none were."""
+        if not isinstance(self.drawing, futures.Future):
+            return self.drawing
+        try:
+            return self.drawing.result()
+        except Exception:  # noqa: BLE001 (the worker died or drawing failed there: the report draws them itself)
+            return None
+
+    def drawn_for(self, outdir: Path, calibration: TemperatureCalibration | str | Path | None,
+                  transfer: Sequence[str | Path]) -> bool:
+        """Whether the report of `outdir` with `calibration` and `transfer` draws the same figures as were drawn."""
+        return (self.eyring is not None and not transfer and calibration is self.calibration
+                and outdir.resolve() == self.outdir.resolve() and self.eyring.image_format == chosen_figure_format()
+                and (outdir / "rates.csv").read_bytes() == self.rates)
 
 
 _DATA_URI = re.compile(r'(data:[^"\s]+)')

@@ -103,7 +103,9 @@ def _model(results: dict) -> tuple[Model | None, list[str]]:
         return None, warnings + [f"the model file cannot be read any more: {err}"]
 
 
-def _calibration(calibration: TemperatureCalibration | str | Path | None) -> tuple[TemperatureCalibration | None, Path | None]:
+def read_calibration(calibration: TemperatureCalibration | str | Path | None) -> tuple[TemperatureCalibration | None, Path | None]:
+    """The calibration given as an object or a CSV file (read with degree 1), and the file it came from (None for an
+    object or no calibration)."""
     if calibration is None or isinstance(calibration, TemperatureCalibration):
         return calibration, None
     return read_temperature_calibration(calibration), Path(calibration)
@@ -131,7 +133,7 @@ def gather_inputs(outdir: str | Path, calibration: TemperatureCalibration | str 
     outdir = Path(outdir)
     results = read_results(outdir)
     inputs = ReportInputs(outdir, results, read_rate_rows(outdir))
-    inputs.calibration, inputs.calibration_file = _calibration(calibration)
+    inputs.calibration, inputs.calibration_file = read_calibration(calibration)
     inputs.model, inputs.warnings = _model(results)
     inputs.transfer = [read_transfer_folder(Path(folder)) for folder in transfer]
     try:

@@ -6,6 +6,8 @@ from __future__ import annotations
 import json
 import platform
 import time
+from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 from dnmr.activation.eyring_result import EyringResult
@@ -183,14 +185,45 @@ def identifiability_section(inputs: ReportInputs) -> str:
     return section("identifiability", "Identifiability", body)
 
 
-def eyring_section(inputs: ReportInputs) -> str:
-    """Eyring plot made here, the calibration and the full analysis of each process."""
-    if not inputs.eyring:
-        return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
+@dataclass(frozen=True)
+class EyringFigures:
+    """The Eyring figure of a report, drawn once as two image files.
+
+    Attributes
+    ----------
+    embedded : bytes
+        The PNG embedded in report.html (at :data:`~dnmr.reporting.reporthtml.FIGURE_DPI`).
+    supporting : bytes
+        The file beside the supporting-information tables (150 dpi where raster).
+    image_format : str
+        The format of `supporting` ("png", "svg" or "pdf").
+    """
+
+    embedded: bytes
+    supporting: bytes
+    image_format: str
+
+
+def eyring_figures(eyring: Sequence[EyringResult], image_format: str) -> EyringFigures:
+    """The Eyring figure of the analyses `eyring` (one per process), the file beside the supporting-information
+    tables in `image_format`."""
+    import matplotlib.pyplot as plt
+
     from dnmr.reporting.eyringplot import plot_eyring
 
-    body = figure_html(figure_bytes(plot_eyring(inputs.eyring), "png", FIGURE_DPI, close=True, software_tag=False,
-                                    inside=True),
+    figure = plot_eyring(list(eyring))
+    try:
+        return EyringFigures(figure_bytes(figure, "png", FIGURE_DPI, software_tag=False, inside=True),
+                             figure_bytes(figure, image_format, inside=True), image_format)
+    finally:
+        plt.close(figure)
+
+
+def eyring_section(inputs: ReportInputs, figures: EyringFigures | None) -> str:
+    """The Eyring plot (`figures`: those of `inputs.eyring`), the calibration and the full analysis of each process."""
+    if not inputs.eyring:
+        return section("eyring", "Eyring analysis", '<p class="warn">Not possible: see the warnings.</p>')
+    body = figure_html(figures.embedded,
                        "Eyring plot: ln(k/T) against 1000/T with the fitted line, its 95 % band and the residuals",
                        "Eyring plot")
     body += f"<p>{esc(_temperature_basis(inputs))}</p>"
@@ -267,12 +300,13 @@ def inputs_section(inputs: ReportInputs) -> str:
     return section("inputs", "Inputs and software", body)
 
 
-def render_report(inputs: ReportInputs) -> str:
-    """The whole HTML document (self-contained: inline style, embedded figures, no scripts or links)."""
+def render_report(inputs: ReportInputs, figures: EyringFigures | None) -> str:
+    """The whole HTML document (self-contained: inline style, embedded figures, no scripts or links); `figures` are
+    the Eyring figures of `inputs.eyring` (None when there is no analysis)."""
     model_title = inputs.model.title if inputs.model is not None and inputs.model.title else ""
     title = f"dnmr report: {model_title or inputs.outdir.name}"
     sections = [summary_section(inputs), model_section(inputs), rate_section(inputs), identifiability_section(inputs),
-                fits_section(inputs), transfer_section(inputs), eyring_section(inputs),
+                fits_section(inputs), transfer_section(inputs), eyring_section(inputs, figures),
                 supporting_section(supporting_rows(inputs)), warnings_section(inputs),
                 cautions_section(inputs.calibration is not None), inputs_section(inputs)]
     return html_document(title, sections)
