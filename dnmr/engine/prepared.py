@@ -136,11 +136,6 @@ class PreparedStructure:
                 progress(done, total)
         return combine(results)
 
-    @property
-    def largest_block(self) -> int:
-        """Coherences of the largest block (over all the states of its spin system)."""
-        return max((len(block.pattern.detect) for block in self.blocks), default=0)
-
 
 _STRUCTURES: dict = {}
 
